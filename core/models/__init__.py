@@ -1,0 +1,10 @@
+"""Forecasting model families: ARIMA with exogenous inputs, exponential smoothing, nonlinear AR.
+
+Every family follows the protocol of :class:`ForecastModel`; :data:`FAMILIES` maps the
+registry names (``arima``, ``smoothing``, ``nonlinear-ar``) to the classes.
+"""
+
+from ._base import FitResult, ForecastModel, check_series, exog_matrix
+from .registry import FAMILIES, get_family, model_from_dict
+
+__all__ = ["FAMILIES", "FitResult", "ForecastModel", "check_series", "exog_matrix", "get_family", "model_from_dict"]

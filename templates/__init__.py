@@ -1,0 +1,1 @@
+"""Jinja2 templates of the fitaudit report (package data)."""

@@ -1,0 +1,34 @@
+"""Shared fixtures.  Prefect settings are fixed here, before anything imports prefect."""
+
+from __future__ import annotations
+
+import os
+import pathlib
+import tempfile
+
+import numpy as np
+import pytest
+
+_PREFECT_HOME = pathlib.Path(tempfile.gettempdir()) / f"fitaudit-test-prefect-{os.getuid()}"
+os.environ.setdefault("PREFECT_HOME", str(_PREFECT_HOME))
+os.environ.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
+os.environ.setdefault("DO_NOT_TRACK", "1")
+os.environ.setdefault("PREFECT_LOGGING_LEVEL", "WARNING")
+os.environ.setdefault("PREFECT_SERVER_LOGGING_LEVEL", "CRITICAL")
+os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", "120")
+os.environ.setdefault("PREFECT_LOGGING_TO_API_WHEN_MISSING_FLOW", "ignore")
+os.environ.setdefault("PREFECT_TASKS_DEFAULT_NO_CACHE", "true")
+
+REPO = pathlib.Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture
+def rng() -> np.random.Generator:
+    """A seeded generator; tests that need randomness take this."""
+    return np.random.default_rng(20261201)
+
+
+@pytest.fixture(scope="session")
+def repo_root() -> pathlib.Path:
+    """The repository root."""
+    return REPO

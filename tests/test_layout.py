@@ -1,0 +1,78 @@
+"""Packaging and layering rules (design.md section 3, style.md 'Packaging')."""
+
+from __future__ import annotations
+
+import ast
+import pathlib
+import sys
+import tomllib
+
+import pytest
+
+REPO = pathlib.Path(__file__).resolve().parents[1]
+TOP = ("core", "tasks", "flows", "templates")
+
+
+def _pyproject() -> dict:
+    return tomllib.loads((REPO / "pyproject.toml").read_text())
+
+
+def test_every_package_folder_is_listed():
+    cfg = _pyproject()["tool"]["setuptools"]
+    listed = set(cfg["packages"])
+    mapping = cfg["package-dir"]
+    found = set()
+    for top in TOP:
+        for init in (REPO / top).rglob("__init__.py"):
+            rel = init.parent.relative_to(REPO / top)
+            dotted = "fitaudit." + top + ("" if rel == pathlib.Path(".") else "." + ".".join(rel.parts))
+            found.add(dotted)
+        assert mapping[f"fitaudit.{top}"] == top
+    assert found == listed, f"folders with __init__.py {sorted(found - listed)} are not listed; listed but missing {sorted(listed - found)}"
+
+
+def test_installed_under_one_namespace():
+    import fitaudit.core
+    import fitaudit.flows
+    import fitaudit.tasks
+    import fitaudit.templates
+
+    assert pathlib.Path(fitaudit.core.__file__).parent == REPO / "core"
+    # nothing called core/tasks/flows at top level of the import system (outside the repo folder)
+    for name in ("core", "tasks", "flows", "templates"):
+        spec_paths = [p for p in sys.path if p and pathlib.Path(p).resolve() != REPO]
+        for p in spec_paths:
+            assert not (pathlib.Path(p) / name / "__init__.py").exists() or "site-packages" not in p, name
+
+
+FORBIDDEN = ("prefect", "jinja2", "pyarrow", "pandas", "yaml", "fitaudit.tasks", "fitaudit.flows", "fitaudit.templates", "statsmodels")
+ALLOWED_THIRD_PARTY = ("numpy", "scipy")
+
+
+def _imports(tree: ast.AST):
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            for alias in node.names:
+                yield alias.name, node.lineno
+        elif isinstance(node, ast.ImportFrom):
+            if node.level == 0 and node.module:
+                yield node.module, node.lineno
+
+
+@pytest.mark.parametrize("path", sorted((REPO / "core").rglob("*.py")), ids=lambda p: str(p.relative_to(REPO)))
+def test_core_imports_only_stdlib_numpy_scipy(path):
+    tree = ast.parse(path.read_text(), filename=str(path))
+    stdlib = sys.stdlib_module_names
+    for module, line in _imports(tree):
+        root = module.split(".")[0]
+        assert not any(module == f or module.startswith(f + ".") for f in FORBIDDEN), f"{path}:{line} imports {module}"
+        assert root in stdlib or root in ALLOWED_THIRD_PARTY or module.startswith("fitaudit.core"), (
+            f"{path}:{line} imports {module}; core/ may import only the standard library, numpy and scipy"
+        )
+
+
+@pytest.mark.parametrize("path", sorted(p for top in ("tests", "bench") for p in (REPO / top).rglob("*.py")), ids=lambda p: str(p.relative_to(REPO)))
+def test_tests_import_fitaudit_namespace_only(path):
+    tree = ast.parse(path.read_text(), filename=str(path))
+    for module, line in _imports(tree):
+        assert module.split(".")[0] not in TOP, f"{path}:{line} imports {module}; import fitaudit.{module} instead"
