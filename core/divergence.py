@@ -193,7 +193,7 @@ def power_generator(x, alpha):
     x, a = np.broadcast_arrays(x, a)
     out = np.empty(x.shape)
     pos = x > 0
-    with np.errstate(divide="ignore"):
+    with np.errstate(divide="ignore", over="ignore"):
         u = np.log(np.where(pos, x, 1.0))
         out[pos] = np.exp(_log_phi(u[pos], a[pos]))
     zer = ~pos
@@ -210,6 +210,20 @@ def _power_r(scaling: str, r: float | None) -> float | None:
     return r
 
 
+def _quiet(fn):
+    """Run ``fn`` with floating-point warnings off: limits such as 1/alpha for alpha ~ 1e-320
+    legitimately overflow to +inf."""
+
+    def wrapper(*args, **kwargs):
+        with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+            return fn(*args, **kwargs)
+
+    wrapper.__name__, wrapper.__qualname__, wrapper.__doc__ = fn.__name__, fn.__qualname__, fn.__doc__
+    wrapper.__wrapped__ = fn
+    return wrapper
+
+
+@_quiet
 def empty_cell_factor(alpha, beta, scaling: str = "geometric", r: float | None = None) -> np.ndarray:
     """Limit f0 of an empty cell (p = 0 < q): its contribution to B is ``f0 * q``.
 
@@ -256,6 +270,7 @@ def empty_cell_factor(alpha, beta, scaling: str = "geometric", r: float | None =
     raise _unknown_scaling(scaling)
 
 
+@_quiet
 def zero_model_cell_factor(alpha, beta, scaling: str = "geometric", r: float | None = None) -> np.ndarray:
     """Limit g0 of a cell the model calls impossible (q = 0 < p): its contribution is ``g0 * p``.
 
@@ -341,6 +356,14 @@ def _check_alpha_beta(alpha, beta, owner: str) -> tuple[np.ndarray, np.ndarray]:
 # --------------------------------------------------------------------------------------------
 # Element-wise cell contributions (reference path, any broadcasting)
 # --------------------------------------------------------------------------------------------
+def _log_ratio(p: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """u = log(p/q) for p, q > 0: log1p((p - q)/q) near p = q (relative accuracy), else a difference of logs."""
+    d = (p - q) / q
+    near = np.abs(d) < 0.5
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(near, np.log1p(np.where(near, d, 0.0)), np.log(p) - np.log(q))
+
+
 def _log_scale_ratio(u, q, b, scaling: str, r: float | None):
     """log(m/q) for p, q > 0, with u = log(p/q)."""
     if scaling == "model":
@@ -355,6 +378,7 @@ def _log_scale_ratio(u, q, b, scaling: str, r: float | None):
         return np.logaddexp(np.log(b) + r * u, np.log1p(-b)) / r
 
 
+@_quiet
 def _cell_terms(p, q, a, b, scaling: str, r: float | None) -> np.ndarray:
     """Per-cell contributions b_alpha(p, q, m) >= 0 of every broadcast element."""
     r = _power_r(scaling, r)
@@ -363,7 +387,7 @@ def _cell_terms(p, q, a, b, scaling: str, r: float | None) -> np.ndarray:
     pos = (p > 0) & (q > 0)
     if pos.any():
         pp, qq, aa, bb = p[pos], q[pos], a[pos], b[pos]
-        u = np.log1p((pp - qq) / qq)
+        u = _log_ratio(pp, qq)
         with np.errstate(over="ignore", invalid="ignore"):
             logb = np.log(qq) + _log_phi(u, aa) + (1.0 - aa) * _log_scale_ratio(u, qq, bb, scaling, r)
             out[pos] = np.exp(logb)
@@ -551,6 +575,7 @@ def _nan_to_none(x):
     return x
 
 
+@_quiet
 def _grid_sums(p: np.ndarray, q: np.ndarray, alphas: np.ndarray, betas: np.ndarray, scaling: str, r) -> np.ndarray:
     """B over the (alpha, beta) grid for rows p (N, s) and q (N, s) or (s,): shape (N, A, B).
 
@@ -564,7 +589,7 @@ def _grid_sums(p: np.ndarray, q: np.ndarray, alphas: np.ndarray, betas: np.ndarr
     pos = (p > 0) & (q2 > 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         qs = np.where(pos, q2, 1.0)
-        u = np.where(pos, np.log1p((p - qs) / qs), 0.0)  # (N, s)
+        u = np.where(pos, _log_ratio(np.where(pos, p, 1.0), qs), 0.0)  # (N, s)
         logphi = _log_phi(u[:, None, :], alphas[None, :, None])  # (N, A, s)
         gen = np.log(qs)[:, None, :] + logphi
         gen = np.where(pos[:, None, :], gen, -np.inf)
@@ -671,10 +696,14 @@ def divergence_map(counts, probs, alphas=DEFAULT_ALPHAS, betas=DEFAULT_BETAS, sc
     if (n <= 0).any():
         raise InputError(f"{owner}: a count vector sums to zero; nothing to compare.")
     p = c2 / n[:, None]
-    qb = q if q.ndim == 1 else q
-    stat = _chunked(lambda rows: 2.0 * n[rows, None, None] * _grid_sums(p[rows], qb if qb.ndim == 1 else qb[rows], a, b, scaling, r), len(n), a.size * b.size * c.shape[-1])
     members_alpha = np.array([v[0] for v in CLASSICAL_MEMBERS.values()])
-    mem = 2.0 * n[:, None] * _grid_sums(p, qb, members_alpha, np.zeros(1), "model", None)[:, :, 0]
+    with np.errstate(over="ignore"):
+        stat = _chunked(
+            lambda rows: 2.0 * n[rows, None, None] * _grid_sums(p[rows], q if q.ndim == 1 else q[rows], a, b, scaling, r),
+            len(n),
+            a.size * b.size * c.shape[-1],
+        )
+        mem = 2.0 * n[:, None] * _grid_sums(p, q, members_alpha, np.zeros(1), "model", None)[:, :, 0]
     infinite = np.isinf(stat)
     finite_stat = np.where(infinite, -np.inf, stat)
     flat = finite_stat.reshape(len(n), -1)

@@ -1,0 +1,95 @@
+"""Small file helpers shared by the stages: canonical JSON, hashing, write-once files."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import math
+import os
+import pathlib
+from typing import Any
+
+__all__ = ["canonical_json", "sha256_bytes", "sha256_file", "write_once", "utc_now", "json_ready"]
+
+_CHUNK = 1 << 20
+
+
+def json_ready(obj: Any) -> Any:
+    """Convert numpy scalars/arrays, tuples, paths and non-finite floats to JSON-safe values.
+
+    Non-finite floats become the strings ``"inf"``, ``"-inf"`` and ``"nan"`` so that files stay
+    strict JSON (``allow_nan=False``) and round-trip without loss of meaning.
+    """
+    if isinstance(obj, dict):
+        return {str(k): json_ready(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_ready(v) for v in obj]
+    if hasattr(obj, "tolist") and not isinstance(obj, (str, bytes)):
+        return json_ready(obj.tolist())
+    if isinstance(obj, bool) or obj is None or isinstance(obj, (int, str)):
+        return obj
+    if isinstance(obj, float):
+        if math.isnan(obj):
+            return "nan"
+        if math.isinf(obj):
+            return "inf" if obj > 0 else "-inf"
+        return obj
+    if isinstance(obj, pathlib.PurePath):
+        return obj.as_posix()
+    if isinstance(obj, (_dt.date, _dt.datetime)):
+        return obj.isoformat()
+    if hasattr(obj, "item"):
+        return json_ready(obj.item())
+    raise TypeError(f"cannot serialise {type(obj).__name__} to JSON")
+
+
+def canonical_json(obj: Any, indent: int | None = None) -> bytes:
+    """Deterministic UTF-8 JSON: sorted keys, no NaN, fixed separators (hash input)."""
+    text = json.dumps(
+        json_ready(obj),
+        sort_keys=True,
+        ensure_ascii=False,
+        allow_nan=False,
+        indent=indent,
+        separators=(",", ":") if indent is None else (",", ": "),
+    )
+    return text.encode("utf-8") + (b"\n" if indent is not None else b"")
+
+
+def sha256_bytes(data: bytes) -> str:
+    """Hex SHA-256 of bytes."""
+    return hashlib.sha256(data).hexdigest()
+
+
+def sha256_file(path: str | os.PathLike) -> str:
+    """Hex SHA-256 of a file, read in 1 MiB chunks."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(_CHUNK), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def write_once(path: str | os.PathLike, data: bytes) -> None:
+    """Write ``data`` to a new file; never overwrite an existing one.
+
+    Writes a temporary sibling, fsyncs it, then hard-links it into place (``os.link`` fails if
+    the target exists), so readers never see a half-written file.
+    """
+    path = pathlib.Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    with open(tmp, "wb") as fh:
+        fh.write(data)
+        fh.flush()
+        os.fsync(fh.fileno())
+    try:
+        os.link(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def utc_now() -> str:
+    """Current UTC time as ISO 8601 with a ``Z`` suffix (seconds precision)."""
+    return _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
