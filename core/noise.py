@@ -1,0 +1,1376 @@
+"""Noise laws: the assumed distribution of a model's standardised innovations.
+
+Continuous laws are location-scale families ``F(x; loc, scale, shape) = F0((x - loc) / scale; shape)``:
+
+=============  ==========================  ===========================  =========================
+law            standard density f0(z)      variance of the standard law  shape
+=============  ==========================  ===========================  =========================
+``normal``     exp(-z^2/2) / sqrt(2 pi)    1                             --
+``student-t``  t density with nu d.f.      nu / (nu - 2)                 nu = df > 2
+``laplace``    exp(-|z|) / 2               2                             --
+``logistic``   e^-z / (1 + e^-z)^2         pi^2 / 3                      --
+=============  ==========================  ===========================  =========================
+
+Count laws work with a predictive mean ``mu_t`` per time point: ``poisson`` (variance mu) and
+``negative-binomial`` (NB2: variance ``mu + mu^2 / size``, shape = size).
+
+Each law estimates its parameters by maximum likelihood from residuals (the location only when the
+model's intercept or mean makes it effectively estimated, method.md 5.2), supplies the per-observation
+Fisher information of the estimated parameters and the derivatives of equiprobable-cell probabilities
+(both needed by the Nikulin-Rao-Robson correction, method.md 3.4), and simulates.  Count laws supply
+the randomised probability integral transform of method.md 4.4.
+
+References
+----------
+.. [1] K. L. Lange, R. J. A. Little and J. M. G. Taylor, "Robust statistical modeling using the t
+       distribution", JASA 84, 1989, p. 881 (Fisher information of the t; from memory).
+.. [2] C. Liu and D. B. Rubin, "ML estimation of the t distribution using EM and its extensions,
+       ECM and ECME", Statistica Sinica 5, 1995, p. 19 (from memory).
+.. [3] N. L. Johnson, S. Kotz and N. Balakrishnan, "Continuous Univariate Distributions", vol. 2,
+       2nd ed., Wiley 1995, chapters 23 (logistic) and 24 (Laplace) (from memory).
+.. [4] P. K. Dunn and G. K. Smyth, "Randomized quantile residuals", J. Comput. Graph. Statist. 5,
+       1996, p. 236; C. Czado, T. Gneiting and L. Held, "Predictive model assessment for count
+       data", Biometrics 65, 2009, p. 1254 (both from memory).
+.. [5] A. C. Cameron and P. K. Trivedi, "Regression Analysis of Count Data", 2nd ed., Cambridge
+       2013, section 3.3 (NB2; from memory).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+from scipy import integrate, special
+
+from .exceptions import ConvergenceWarning, InputError, InsufficientDataError, SpecificationError
+
+__all__ = [
+    "NOISE_LAWS",
+    "PARAMETER_NAMES",
+    "STUDENT_T_DF_BOUNDS",
+    "NB_SIZE_BOUNDS",
+    "NoiseParams",
+    "NoiseLaw",
+    "NormalLaw",
+    "StudentTLaw",
+    "LaplaceLaw",
+    "LogisticLaw",
+    "PoissonLaw",
+    "NegativeBinomialLaw",
+    "get_law",
+]
+
+#: Names of the noise parameters, in the order used by ``NoiseParams.estimated``, Fisher
+#: information matrices and cell-probability gradients.
+PARAMETER_NAMES: tuple[str, str, str] = ("loc", "scale", "shape")
+
+#: Range searched by the maximum-likelihood estimate of the student-t degrees of freedom.
+STUDENT_T_DF_BOUNDS: tuple[float, float] = (2.1, 200.0)
+
+#: Range searched by the maximum-likelihood estimate of the negative-binomial size.
+NB_SIZE_BOUNDS: tuple[float, float] = (1e-3, 1e6)
+
+_NEWTON_MAX_ITER = 100  # Newton iterations per row
+_NEWTON_STEP_TOL = 1e-10  # convergence: largest step in standardised units
+_MAX_HALVINGS = 40  # backtracking steps per Newton iteration
+_ARMIJO = 1e-4  # sufficient-increase constant of the line search
+
+
+# --------------------------------------------------------------------------------------------
+# Parameters
+# --------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class NoiseParams:
+    """Parameters of a noise law, fitted or frozen.
+
+    Parameters
+    ----------
+    law : str
+        Name of the noise law (a key of :data:`NOISE_LAWS`).
+    loc, scale : float
+        Location and scale of a continuous law (``x = loc + scale * z``).  Count laws take their
+        mean per time point from the model and store ``loc = 0`` and ``scale = 1``.
+    shape : float or None
+        Student-t degrees of freedom or negative-binomial size; None for laws without a shape.
+    estimated : tuple of str
+        Which of ``("loc", "scale", "shape")`` were estimated from the data, in that order; ``()``
+        for frozen production parameters.
+    """
+
+    law: str
+    loc: float
+    scale: float
+    shape: float | None
+    estimated: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "loc", float(self.loc))
+        object.__setattr__(self, "scale", float(self.scale))
+        if self.shape is not None:
+            object.__setattr__(self, "shape", float(self.shape))
+        estimated = tuple(self.estimated)
+        object.__setattr__(self, "estimated", estimated)
+        if not (math.isfinite(self.loc) and math.isfinite(self.scale) and self.scale > 0):
+            raise InputError(
+                f"NoiseParams for the {self.law!r} law need a finite loc and a finite positive scale; "
+                f"got loc={self.loc!r}, scale={self.scale!r}."
+            )
+        if self.shape is not None and not (math.isfinite(self.shape) and self.shape > 0):
+            raise InputError(f"NoiseParams for the {self.law!r} law: shape must be finite and positive; got {self.shape!r}.")
+        order = [PARAMETER_NAMES.index(e) if e in PARAMETER_NAMES else -1 for e in estimated]
+        if -1 in order or order != sorted(set(order)):
+            raise InputError(
+                f"NoiseParams.estimated must list distinct names from {PARAMETER_NAMES} in that order; got {estimated!r}."
+            )
+        if "shape" in estimated and self.shape is None:
+            raise InputError(f"NoiseParams for the {self.law!r} law list 'shape' as estimated but carry no shape.")
+
+    def to_dict(self) -> dict:
+        """Plain-Python form: ``{"law", "loc", "scale", "shape", "estimated"}``."""
+        return {
+            "law": self.law,
+            "loc": self.loc,
+            "scale": self.scale,
+            "shape": self.shape,
+            "estimated": list(self.estimated),
+        }
+
+
+# --------------------------------------------------------------------------------------------
+# Input checks
+# --------------------------------------------------------------------------------------------
+def _as_rows(x, owner: str, name: str) -> np.ndarray:
+    """A finite float array of shape (R, n) (a 1-D input becomes one row)."""
+    try:
+        a = np.array(x, dtype=float, ndmin=1)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{owner}: {name!r} must be numeric; {exc}.") from None
+    if a.ndim == 1:
+        a = a[None, :]
+    if a.ndim != 2 or a.shape[1] == 0:
+        raise InputError(f"{owner}: {name!r} must be a non-empty 1-D series or a 2-D array (replicates, n); got shape {a.shape}.")
+    bad = ~np.isfinite(a)
+    if bad.any():
+        first = np.argwhere(bad)[0].tolist()
+        raise InputError(
+            f"{owner}: {name!r} contains {int(bad.sum())} NaN or infinite value(s) (first at {first}); "
+            "drop the positions outside the fit window before fitting the noise law."
+        )
+    return a
+
+
+def _as_counts(y, owner: str) -> np.ndarray:
+    try:
+        a = np.array(y, dtype=float, ndmin=1)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{owner}: the counts must be numeric; {exc}.") from None
+    if a.size == 0:
+        raise InputError(f"{owner}: the counts are empty.")
+    bad = ~np.isfinite(a) | (a < 0) | (a != np.round(a))
+    if bad.any():
+        raise InputError(f"{owner}: counts must be finite non-negative integers; got values such as {a[bad][:3].tolist()}.")
+    return a
+
+
+def _as_means(mean, shape: tuple[int, ...], owner: str) -> np.ndarray:
+    try:
+        m = np.asarray(mean, dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"{owner}: the predictive means must be numeric; {exc}.") from None
+    try:
+        m = np.broadcast_to(m, shape)
+    except ValueError:
+        raise InputError(f"{owner}: the predictive means have shape {m.shape}, which does not match the counts' shape {shape}.") from None
+    if not np.isfinite(m).all() or (m <= 0).any():
+        raise InputError(f"{owner}: predictive means must be finite and positive; the smallest is {np.min(m)!r}.")
+    return m
+
+
+def _check_rng(rng, owner: str) -> np.random.Generator:
+    if not isinstance(rng, np.random.Generator):
+        raise InputError(f"{owner}: rng must be a numpy.random.Generator (np.random.default_rng(seed)); got {type(rng).__name__}.")
+    return rng
+
+
+# --------------------------------------------------------------------------------------------
+# Batched Newton ascent with box bounds (used by the logistic and student-t fits)
+# --------------------------------------------------------------------------------------------
+def _newton_ascent(loglik, data: np.ndarray, theta0: np.ndarray, lower: np.ndarray, upper: np.ndarray):
+    """Maximise ``loglik`` separately for every row by projected Newton steps.
+
+    ``loglik(theta (r, k), data (r, n), derivatives)`` returns the log-likelihood (r,) and, when
+    ``derivatives`` is true, also its gradient (r, k) and Hessian (r, k, k).  Each iteration takes
+    the Newton direction of the Hessian with its eigenvalues replaced by their absolute values
+    (floored), so the direction always ascends; components at a bound whose gradient points
+    outward are held fixed; an Armijo backtracking search guarantees an increase.  Rows stop
+    independently, so a row's result does not depend on the other rows.
+
+    Returns
+    -------
+    theta : ndarray (R, k)
+    converged : ndarray of bool (R,)
+    """
+    theta = theta0.copy()
+    n = data.shape[1]
+    converged = np.zeros(len(theta), dtype=bool)
+    todo = np.arange(len(theta))
+    eye = np.eye(theta.shape[1], dtype=bool)
+    for _ in range(_NEWTON_MAX_ITER):
+        if todo.size == 0:
+            break
+        th, y = theta[todo], data[todo]
+        ll, grad, hess = loglik(th, y, True)
+        frozen = ((th <= lower) & (grad < 0)) | ((th >= upper) & (grad > 0))
+        grad = np.where(frozen, 0.0, grad)
+        coupled = ~(frozen[:, :, None] | frozen[:, None, :])
+        curvature = np.where(coupled, -hess, np.where(eye, 1.0, 0.0))
+        evals, evecs = np.linalg.eigh(curvature)
+        evals = np.abs(evals)
+        evals = np.maximum(evals, 1e-8 * evals.max(axis=1, keepdims=True) + 1e-12)
+        coef = np.einsum("rji,rj->ri", evecs, grad) / evals
+        direction = np.einsum("rij,rj->ri", evecs, coef)
+        decrement = np.einsum("ri,ri->r", grad, direction)
+
+        new_th = th.copy()
+        step = np.ones(len(todo))
+        pending = np.ones(len(todo), dtype=bool)
+        for _ in range(_MAX_HALVINGS):
+            idx = np.flatnonzero(pending)
+            if idx.size == 0:
+                break
+            cand = np.clip(th[idx] + step[idx, None] * direction[idx], lower, upper)
+            with np.errstate(all="ignore"):
+                ll_cand = loglik(cand, y[idx], False)
+            ok = ll_cand >= ll[idx] + _ARMIJO * step[idx] * decrement[idx]
+            new_th[idx[ok]] = cand[ok]
+            pending[idx[ok]] = False
+            step[idx[~ok]] *= 0.5
+        moved = np.max(np.abs(new_th - th), axis=1)
+        small_step = ~pending & (moved <= _NEWTON_STEP_TOL)
+        # no acceptable step: the attainable increase is below rounding if the decrement is tiny
+        stalled = pending
+        theta[todo] = new_th
+        done = small_step | stalled
+        converged[todo[small_step]] = True
+        converged[todo[stalled & (decrement <= 1e-6 * n)]] = True
+        todo = todo[~done]
+    return theta, converged
+
+
+# --------------------------------------------------------------------------------------------
+# The base class
+# --------------------------------------------------------------------------------------------
+class NoiseLaw:
+    """A noise law: the distribution assumed for a model's standardised innovations.
+
+    Parameters
+    ----------
+    shape : float, optional
+        A fixed shape (student-t degrees of freedom, negative-binomial size); None means the shape
+        is estimated from the data.  Laws without a shape accept only None.
+
+    Attributes
+    ----------
+    name : str
+        Registry name (a key of :data:`NOISE_LAWS`).
+    discrete : bool
+        True for count laws (``poisson``, ``negative-binomial``).
+    has_shape : bool
+        Whether the law has a shape parameter.
+    shape : float or None
+        The fixed shape, or None.
+
+    Notes
+    -----
+    Continuous laws implement the location-scale methods (``fit``, ``fit_batch``, ``cdf``,
+    ``ppf``, ``logpdf``, ``pdf``, ``cdf_batch``, ``sample``, ``sample_standard``,
+    ``from_variance``, ``fisher_information``, ``cell_probability_gradient``); count laws
+    implement ``fit_counts``, ``fit_counts_batch``, ``randomized_pit``, ``sample_counts`` and
+    ``logpmf``.  Calling a method of the other kind raises :class:`SpecificationError`.
+    """
+
+    name: ClassVar[str] = ""
+    discrete: ClassVar[bool] = False
+    has_shape: ClassVar[bool] = False
+
+    def __init__(self, shape: float | None = None):
+        if shape is not None:
+            if not self.has_shape:
+                raise InputError(f"The {self.name!r} noise law has no shape parameter; got shape={shape!r}. Omit it.")
+            shape = self._check_shape(shape)
+        self.shape = shape
+
+    # -- identity ----------------------------------------------------------------------------
+    def __repr__(self) -> str:
+        return f"get_law({self.name!r}, shape={self.shape!r})"
+
+    def __eq__(self, other) -> bool:
+        return isinstance(other, NoiseLaw) and (self.name, self.shape) == (other.name, other.shape)
+
+    def __hash__(self) -> int:
+        return hash((self.name, self.shape))
+
+    def _check_shape(self, shape) -> float:
+        raise NotImplementedError  # laws with a shape override this
+
+    # -- estimated parameters ----------------------------------------------------------------
+    def estimated_names(self, location: bool = True) -> tuple[str, ...]:
+        """Names of the parameters estimated from the data, in :data:`PARAMETER_NAMES` order.
+
+        Continuous laws: ``loc`` when ``location`` is true, always ``scale``, and ``shape`` when the
+        law has one and it is not fixed.  Count laws: ``loc`` when ``location`` is true (the level
+        of the predictive mean is fitted, e.g. an intercept) and ``shape`` when the
+        negative-binomial size is estimated.
+        """
+        names = ["loc"] if location else []
+        if not self.discrete:
+            names.append("scale")
+        if self.has_shape and self.shape is None:
+            names.append("shape")
+        return tuple(names)
+
+    def n_estimated(self, location: bool) -> int:
+        """k, the number of noise parameters estimated from the residuals (method.md 5.2).
+
+        Parameters
+        ----------
+        location : bool
+            Whether the location counts as estimated (the model has an intercept or mean).
+
+        Returns
+        -------
+        int
+            ``len(self.estimated_names(location))``.
+        """
+        return len(self.estimated_names(location))
+
+    # -- guards ------------------------------------------------------------------------------
+    def _check_params(self, params: NoiseParams, owner: str) -> NoiseParams:
+        if not isinstance(params, NoiseParams):
+            raise InputError(f"{self.name} {owner}: params must be NoiseParams; got {type(params).__name__}.")
+        if params.law != self.name:
+            raise InputError(f"{self.name} {owner}: params belong to the {params.law!r} law, not {self.name!r}.")
+        if self.has_shape:
+            if params.shape is None:
+                raise InputError(f"{self.name} {owner}: params carry no shape; the {self.name!r} law needs one.")
+            self._check_shape(params.shape)
+        elif params.shape is not None:
+            raise InputError(f"{self.name} {owner}: the {self.name!r} law has no shape; params carry shape={params.shape!r}.")
+        return params
+
+    def _wrong_kind(self, method: str) -> SpecificationError:
+        if self.discrete:
+            hint = "count laws use fit_counts, fit_counts_batch, randomized_pit, sample_counts and logpmf"
+        else:
+            hint = "continuous laws use fit, fit_batch, cdf, ppf, logpdf, pdf, cdf_batch, sample and sample_standard"
+        kind = "count" if self.discrete else "continuous location-scale"
+        return SpecificationError(f"{method} does not apply to the {self.name!r} noise law, a {kind} law; {hint}.")
+
+    # -- location-scale interface (continuous laws override) ---------------------------------
+    def fit(self, x, location: bool = True) -> NoiseParams:
+        """Maximum-likelihood fit to residuals (continuous laws); see the subclasses."""
+        raise self._wrong_kind("fit")
+
+    def fit_batch(self, X, location: bool = True):
+        """Row-wise maximum-likelihood fit (continuous laws); see the subclasses."""
+        raise self._wrong_kind("fit_batch")
+
+    def from_variance(self, sigma2: float, loc: float = 0.0, shape: float | None = None) -> NoiseParams:
+        """Frozen parameters with a given variance (continuous laws); see the subclasses."""
+        raise self._wrong_kind("from_variance")
+
+    def cdf(self, x, params: NoiseParams):
+        """Distribution function (continuous laws)."""
+        raise self._wrong_kind("cdf")
+
+    def ppf(self, u, params: NoiseParams):
+        """Quantile function (continuous laws)."""
+        raise self._wrong_kind("ppf")
+
+    def logpdf(self, x, params: NoiseParams):
+        """Log density (continuous laws)."""
+        raise self._wrong_kind("logpdf")
+
+    def pdf(self, x, params: NoiseParams):
+        """Density (continuous laws)."""
+        raise self._wrong_kind("pdf")
+
+    def cdf_batch(self, X, loc, scale, shape=None):
+        """Row-wise distribution function (continuous laws)."""
+        raise self._wrong_kind("cdf_batch")
+
+    def sample(self, size, rng: np.random.Generator, params: NoiseParams):
+        """Random draws (continuous laws)."""
+        raise self._wrong_kind("sample")
+
+    def sample_standard(self, size, rng: np.random.Generator, shape: float | None = None):
+        """Draws of the standard law (continuous laws)."""
+        raise self._wrong_kind("sample_standard")
+
+    def fisher_information(self, params: NoiseParams):
+        """Per-observation Fisher information (continuous laws)."""
+        raise self._wrong_kind("fisher_information")
+
+    def cell_probability_gradient(self, s: int, params: NoiseParams):
+        """Derivatives of equiprobable-cell probabilities (continuous laws)."""
+        raise self._wrong_kind("cell_probability_gradient")
+
+    # -- count interface (count laws override) -----------------------------------------------
+    def fit_counts(self, y, mean) -> NoiseParams:
+        """Maximum-likelihood fit given predictive means (count laws)."""
+        raise self._wrong_kind("fit_counts")
+
+    def fit_counts_batch(self, Y, mean):
+        """Row-wise fit given predictive means (count laws)."""
+        raise self._wrong_kind("fit_counts_batch")
+
+    def randomized_pit(self, y, mean, params: NoiseParams, rng: np.random.Generator):
+        """Randomised probability integral transform (count laws)."""
+        raise self._wrong_kind("randomized_pit")
+
+    def sample_counts(self, mean, rng: np.random.Generator, params: NoiseParams):
+        """Random counts (count laws)."""
+        raise self._wrong_kind("sample_counts")
+
+    def logpmf(self, y, mean, params: NoiseParams):
+        """Log probability of counts (count laws)."""
+        raise self._wrong_kind("logpmf")
+
+
+# --------------------------------------------------------------------------------------------
+# Continuous location-scale laws
+# --------------------------------------------------------------------------------------------
+class _LocationScaleLaw(NoiseLaw):
+    """Shared machinery of the location-scale laws ``F0((x - loc) / scale; shape)``.
+
+    Subclasses supply the standard law (``_std_cdf``, ``_std_ppf``, ``_std_logpdf``,
+    ``_std_variance``, ``_std_fisher``, ``_draw_standard``) and the estimator ``_fit_rows``.
+    """
+
+    def fit(self, x, location: bool = True) -> NoiseParams:
+        """Maximum-likelihood fit of the law to one residual series.
+
+        Exactly :meth:`fit_batch` applied to one row, so simulated and observed fits use the same
+        estimator.
+
+        Parameters
+        ----------
+        x : array_like, 1-D
+            Residuals (finite; drop positions outside the fit window first).
+        location : bool, default True
+            Estimate the location (the model has an intercept or mean); False fixes ``loc = 0``.
+
+        Returns
+        -------
+        NoiseParams
+            With ``estimated = self.estimated_names(location)``.
+        """
+        if np.ndim(x) != 1:
+            raise InputError(f"{self.name} fit: the residuals must be 1-D; got shape {np.shape(x)}. Use fit_batch for many rows.")
+        loc, scale, shape = self.fit_batch(np.asarray(x)[None, :], location)
+        return NoiseParams(
+            law=self.name,
+            loc=float(loc[0]),
+            scale=float(scale[0]),
+            shape=None if shape is None else float(shape[0]),
+            estimated=self.estimated_names(location),
+        )
+
+    def fit_batch(self, X, location: bool = True):
+        """Maximum-likelihood fit of the law to every row of ``X`` (vectorised over rows).
+
+        Parameters
+        ----------
+        X : array_like (R, n)
+            One residual series per row (a 1-D input is one row).
+        location : bool, default True
+            Estimate the location; False fixes it at 0.
+
+        Returns
+        -------
+        loc, scale : ndarray (R,)
+        shape : ndarray (R,) or None
+            The estimated or fixed shape per row; None for laws without a shape.
+
+        Raises
+        ------
+        InsufficientDataError
+            Fewer than ``k + 1`` observations per row.
+        InputError
+            Non-finite values, or a row whose residuals are all equal (scale 0).
+
+        Warns
+        -----
+        ConvergenceWarning
+            When an iterative fit did not converge for some rows within its iteration budget.
+        """
+        X = _as_rows(X, f"{self.name} fit", "residuals")
+        k = self.n_estimated(location)
+        if X.shape[1] < k + 1:
+            raise InsufficientDataError(
+                f"Fitting the {self.name!r} noise law estimates {k} parameter(s) and needs at least {k + 1} residuals; "
+                f"got {X.shape[1]}."
+            )
+        center = np.median(X, axis=1) if location else np.zeros(len(X))
+        flat = np.all(X == center[:, None], axis=1)
+        if flat.any():
+            raise InputError(
+                f"{self.name} fit: row(s) {np.flatnonzero(flat)[:5].tolist()} have all residuals equal"
+                f"{' to their median' if location else ' to 0'}; the scale cannot be estimated (is the model an exact fit?)."
+            )
+        return self._fit_rows(X, bool(location))
+
+    def _fit_rows(self, X: np.ndarray, location: bool):
+        raise NotImplementedError  # each law supplies its estimator
+
+    # -- parameters from a variance ----------------------------------------------------------
+    def from_variance(self, sigma2: float, loc: float = 0.0, shape: float | None = None) -> NoiseParams:
+        """Frozen production parameters: the law whose variance is ``sigma2``.
+
+        ``scale = sqrt(sigma2 / Var0)`` with ``Var0`` the variance of the standard law: normal
+        ``sigma``; student-t ``sigma sqrt((df - 2) / df)``; laplace ``b = sigma / sqrt(2)``;
+        logistic ``s = sigma sqrt(3) / pi``.
+
+        Parameters
+        ----------
+        sigma2 : float
+            Innovation variance (e.g. a model's ``sigma2`` parameter), > 0.
+        loc : float, default 0.0
+        shape : float, optional
+            The shape (student-t df) if the law was built without a fixed one.
+
+        Returns
+        -------
+        NoiseParams
+            With ``estimated = ()``.
+        """
+        sigma2 = float(sigma2)
+        if not (math.isfinite(sigma2) and sigma2 > 0):
+            raise InputError(f"{self.name} from_variance: sigma2 must be finite and positive; got {sigma2!r}.")
+        if self.has_shape:
+            if shape is None:
+                shape = self.shape
+            if shape is None:
+                raise InputError(
+                    f"{self.name} from_variance: the {self.name!r} law needs its shape (degrees of freedom); "
+                    "pass shape=... or build the law with a fixed shape."
+                )
+            shape = self._check_shape(shape)
+        elif shape is not None:
+            raise InputError(f"{self.name} from_variance: the {self.name!r} law has no shape; got shape={shape!r}.")
+        scale = math.sqrt(sigma2 / self._std_variance(shape))
+        return NoiseParams(law=self.name, loc=float(loc), scale=scale, shape=shape, estimated=())
+
+    # -- distribution functions --------------------------------------------------------------
+    def _standardise(self, x, params: NoiseParams, owner: str) -> np.ndarray:
+        self._check_params(params, owner)
+        x = np.asarray(x, dtype=float)
+        if np.isnan(x).any():
+            raise InputError(f"{self.name} {owner}: x contains NaN; drop those positions first.")
+        return (x - params.loc) / params.scale
+
+    def cdf(self, x, params: NoiseParams):
+        """Distribution function ``F0((x - loc) / scale; shape)``.
+
+        Parameters
+        ----------
+        x : array_like
+        params : NoiseParams
+
+        Returns
+        -------
+        ndarray or float
+            Values in [0, 1], shaped like ``x``.
+        """
+        z = self._standardise(x, params, "cdf")
+        return _squeeze(self._std_cdf(z, params.shape))
+
+    def ppf(self, u, params: NoiseParams):
+        """Quantile function ``loc + scale * F0^{-1}(u; shape)``; ``u`` in [0, 1] (0 and 1 map to -inf, +inf)."""
+        self._check_params(params, "ppf")
+        u = np.asarray(u, dtype=float)
+        if np.isnan(u).any() or (u < 0).any() or (u > 1).any():
+            raise InputError(f"{self.name} ppf: probabilities must lie in [0, 1]; got values outside.")
+        return _squeeze(params.loc + params.scale * self._std_ppf(u, params.shape))
+
+    def logpdf(self, x, params: NoiseParams):
+        """Log density ``log f0((x - loc) / scale; shape) - log(scale)``."""
+        z = self._standardise(x, params, "logpdf")
+        return _squeeze(self._std_logpdf(z, params.shape) - math.log(params.scale))
+
+    def pdf(self, x, params: NoiseParams):
+        """Density ``f0((x - loc) / scale; shape) / scale``."""
+        return np.exp(self.logpdf(x, params))
+
+    def cdf_batch(self, X, loc, scale, shape=None):
+        """Row-wise distribution function (probability integral transform of many replicates).
+
+        ``U[r, t] = F0((X[r, t] - loc[r]) / scale[r]; shape[r])``.
+
+        Parameters
+        ----------
+        X : array_like (R, n)
+        loc, scale : array_like (R,)
+        shape : array_like (R,) or None
+            Per-row shape; None uses the law's fixed shape (required for student-t otherwise).
+
+        Returns
+        -------
+        ndarray (R, n)
+        """
+        X = _as_rows(X, f"{self.name} cdf_batch", "X")
+        R = len(X)
+        loc = np.broadcast_to(np.asarray(loc, dtype=float), (R,))
+        scale = np.broadcast_to(np.asarray(scale, dtype=float), (R,))
+        if not (np.isfinite(loc).all() and np.isfinite(scale).all() and (scale > 0).all()):
+            raise InputError(f"{self.name} cdf_batch: loc must be finite and scale finite and positive in every row.")
+        shape_col = self._shape_column(shape, R, "cdf_batch")
+        return self._std_cdf((X - loc[:, None]) / scale[:, None], shape_col)
+
+    def _shape_column(self, shape, R: int, owner: str):
+        if not self.has_shape:
+            if shape is not None:
+                raise InputError(f"{self.name} {owner}: the {self.name!r} law has no shape; pass shape=None.")
+            return None
+        if shape is None:
+            if self.shape is None:
+                raise InputError(f"{self.name} {owner}: pass the per-row shape (the law's shape is estimated, not fixed).")
+            return self.shape
+        shape = np.broadcast_to(np.asarray(shape, dtype=float), (R,))
+        if not (np.isfinite(shape).all() and (shape > 2).all()):
+            raise InputError(f"{self.name} {owner}: every shape must be finite and > 2.")
+        return shape[:, None]
+
+    # -- simulation ---------------------------------------------------------------------------
+    def sample_standard(self, size, rng: np.random.Generator, shape: float | None = None):
+        """Draws of the standard law (loc 0, scale 1), for pivotal simulation.
+
+        Parameters
+        ----------
+        size : int or tuple of int
+        rng : numpy.random.Generator
+        shape : float, optional
+            Shape of the law (student-t df); defaults to the law's fixed shape.
+
+        Returns
+        -------
+        ndarray
+        """
+        _check_rng(rng, f"{self.name} sample_standard")
+        if self.has_shape:
+            shape = self.shape if shape is None else shape
+            if shape is None:
+                raise InputError(f"{self.name} sample_standard: pass the shape (degrees of freedom).")
+            shape = self._check_shape(shape)
+        elif shape is not None:
+            raise InputError(f"{self.name} sample_standard: the {self.name!r} law has no shape; got shape={shape!r}.")
+        return self._draw_standard(size, rng, shape)
+
+    def sample(self, size, rng: np.random.Generator, params: NoiseParams):
+        """Draws ``loc + scale * Z`` with ``Z`` from the standard law."""
+        self._check_params(params, "sample")
+        return params.loc + params.scale * self.sample_standard(size, rng, params.shape)
+
+    # -- information and cell derivatives ----------------------------------------------------
+    def _indices(self, params: NoiseParams) -> list[int]:
+        return [PARAMETER_NAMES.index(e) for e in params.estimated]
+
+    def fisher_information(self, params: NoiseParams) -> np.ndarray:
+        """Per-observation Fisher information of the estimated parameters (analytic).
+
+        ``J = D J0 D`` with ``J0`` the information of the standard law in (loc, scale, shape) and
+        ``D = diag(1/scale, 1/scale, 1)``, restricted to ``params.estimated`` (in that order).
+        Standard-law information (off-diagonal loc terms vanish for these symmetric laws):
+
+        * normal: ``J0 = diag(1, 2)``;
+        * laplace: ``J0 = diag(1, 1)``;
+        * logistic: ``J0 = diag(1/3, (pi^2 + 3)/9)``;
+        * student-t with nu d.f. [1]_: ``J_loc = (nu + 1)/(nu + 3)``, ``J_scale = 2 nu/(nu + 3)``,
+          ``J_scale,nu = -2/((nu + 1)(nu + 3))``,
+          ``J_nu = [psi'(nu/2) - psi'((nu + 1)/2)]/4 - (nu + 5)/(2 nu (nu + 1)(nu + 3))``.
+
+        Parameters
+        ----------
+        params : NoiseParams
+
+        Returns
+        -------
+        ndarray (k, k)
+            ``k = len(params.estimated)``.
+        """
+        self._check_params(params, "fisher_information")
+        d = np.array([1.0 / params.scale, 1.0 / params.scale, 1.0])
+        j0 = self._std_fisher(params.shape)
+        p = j0.shape[0]
+        full = d[:p, None] * j0 * d[None, :p]
+        idx = self._indices(params)
+        return full[np.ix_(idx, idx)]
+
+    def cell_probability_gradient(self, s: int, params: NoiseParams) -> np.ndarray:
+        """Derivatives of equiprobable-cell probabilities with respect to the estimated parameters.
+
+        Cells are ``[c_{j-1}, c_j)`` with ``c_j = F^{-1}(j/s; params)`` held fixed, so
+        ``q_j(theta) = F(c_j; theta) - F(c_{j-1}; theta)`` equals ``1/s`` at ``theta = params``.
+        With ``z_j = F0^{-1}(j/s)``: ``dF(c_j)/dloc = -f0(z_j)/scale``,
+        ``dF(c_j)/dscale = -z_j f0(z_j)/scale`` and, for the student-t,
+        ``dF(c_j)/dnu = int_0^{z_j} f0(t) d log f0(t)/dnu dt`` (a one-dimensional integral of the
+        closed-form score, by adaptive quadrature); derivatives vanish at ``z = +-inf``.
+
+        Parameters
+        ----------
+        s : int
+            Number of cells, >= 2.
+        params : NoiseParams
+
+        Returns
+        -------
+        ndarray (s, k)
+            Row j is ``d q_j / d theta``, columns in the order of ``params.estimated``; every
+            column sums to 0.
+        """
+        self._check_params(params, "cell_probability_gradient")
+        if isinstance(s, bool) or not isinstance(s, (int, np.integer)) or s < 2:
+            raise InputError(f"{self.name} cell_probability_gradient: s must be an int >= 2; got {s!r}.")
+        z = self._std_ppf(np.arange(1, s) / s, params.shape)  # interior boundaries
+        f = np.exp(self._std_logpdf(z, params.shape))
+        dF = np.zeros((s + 1, 3))
+        dF[1:s, 0] = -f / params.scale
+        dF[1:s, 1] = -z * f / params.scale
+        if self.has_shape:
+            dF[1:s, 2] = self._std_cdf_shape_derivative(z, params.shape)
+        dq = np.diff(dF, axis=0)
+        return dq[:, self._indices(params)]
+
+    # -- hooks for subclasses ----------------------------------------------------------------
+    def _std_cdf(self, z, shape):
+        raise NotImplementedError
+
+    def _std_ppf(self, u, shape):
+        raise NotImplementedError
+
+    def _std_logpdf(self, z, shape):
+        raise NotImplementedError
+
+    def _std_variance(self, shape) -> float:
+        raise NotImplementedError
+
+    def _std_fisher(self, shape) -> np.ndarray:
+        raise NotImplementedError
+
+    def _draw_standard(self, size, rng, shape):
+        raise NotImplementedError
+
+
+def _squeeze(a):
+    a = np.asarray(a)
+    return a[()] if a.ndim == 0 else a
+
+
+class NormalLaw(_LocationScaleLaw):
+    """Normal noise, ``f(x) = exp(-z^2/2) / (scale sqrt(2 pi))``, ``z = (x - loc)/scale``.
+
+    Maximum likelihood in closed form: ``loc = mean(x)`` (or 0) and
+    ``scale = sqrt(mean((x - loc)^2))`` (denominator n).  Fisher information
+    ``diag(1, 2) / scale^2`` (method.md 3.3).
+    """
+
+    name = "normal"
+
+    def _fit_rows(self, X, location):
+        loc = X.mean(axis=1) if location else np.zeros(len(X))
+        scale = np.sqrt(np.mean((X - loc[:, None]) ** 2, axis=1))
+        return loc, scale, None
+
+    def _std_cdf(self, z, shape):
+        return special.ndtr(z)
+
+    def _std_ppf(self, u, shape):
+        return special.ndtri(u)
+
+    def _std_logpdf(self, z, shape):
+        return -0.5 * np.square(z) - 0.5 * math.log(2.0 * math.pi)
+
+    def _std_variance(self, shape):
+        return 1.0
+
+    def _std_fisher(self, shape):
+        return np.diag([1.0, 2.0])
+
+    def _draw_standard(self, size, rng, shape):
+        return rng.standard_normal(size)
+
+
+class LaplaceLaw(_LocationScaleLaw):
+    """Laplace (double exponential) noise, ``f(x) = exp(-|x - loc|/b) / (2 b)``.
+
+    Maximum likelihood in closed form: ``loc = median(x)`` (or 0) and ``b = mean(|x - loc|)``
+    (Norton, Am. Statist. 38, 1984, p. 135, from memory).  Fisher information ``diag(1, 1)/b^2``
+    [3]_.
+    """
+
+    name = "laplace"
+
+    def _fit_rows(self, X, location):
+        loc = np.median(X, axis=1) if location else np.zeros(len(X))
+        scale = np.mean(np.abs(X - loc[:, None]), axis=1)
+        return loc, scale, None
+
+    def _std_cdf(self, z, shape):
+        z = np.asarray(z, dtype=float)
+        half_tail = 0.5 * np.exp(-np.abs(z))
+        return np.where(z < 0, half_tail, 1.0 - half_tail)
+
+    def _std_ppf(self, u, shape):
+        u = np.asarray(u, dtype=float)
+        with np.errstate(divide="ignore"):
+            return np.where(u < 0.5, np.log(2.0 * u), -np.log(2.0 * (1.0 - u)))
+
+    def _std_logpdf(self, z, shape):
+        return -np.abs(z) - math.log(2.0)
+
+    def _std_variance(self, shape):
+        return 2.0
+
+    def _std_fisher(self, shape):
+        return np.diag([1.0, 1.0])
+
+    def _draw_standard(self, size, rng, shape):
+        return rng.laplace(0.0, 1.0, size)
+
+
+class _NewtonFittedLaw(_LocationScaleLaw):
+    """Laws fitted by batched Newton ascent on the log-likelihood.
+
+    Each row is standardised by a robust start (median, law-specific spread); the optimiser works
+    in (loc', log scale' [, log shape]) of the standardised data, so the fit is location-scale
+    equivariant and the same for a row whether it is fitted alone or with others.
+    Subclasses supply ``_std_terms(z, shape, with_shape)`` returning ``g = log f0`` and its
+    derivatives ``g_z``, ``g_zz`` (and, with the shape, ``g_v``, ``g_zv``, ``g_vv``), the start
+    ``_start_spread`` and, with a free shape, ``_shape_start`` and ``_shape_bounds``.
+    """
+
+    def _fit_rows(self, X, location):
+        R = len(X)
+        center = np.median(X, axis=1) if location else np.zeros(R)
+        dev = X - center[:, None]
+        spread = self._start_spread(dev)
+        Y = dev / spread[:, None]
+        shape_free = self.has_shape and self.shape is None
+        k = int(location) + 1 + int(shape_free)
+        theta0 = np.zeros((R, k))
+        lower = np.full(k, -np.inf)
+        upper = np.full(k, np.inf)
+        if shape_free:
+            lo, hi = self._shape_bounds
+            theta0[:, -1] = math.log(self._shape_start)
+            lower[-1], upper[-1] = math.log(lo), math.log(hi)
+
+        def loglik(theta, data, derivatives):
+            return self._loglik(theta, data, derivatives, location, shape_free)
+
+        theta, converged = _newton_ascent(loglik, Y, theta0, lower, upper)
+        if not converged.all():
+            warnings.warn(
+                ConvergenceWarning(
+                    f"The {self.name!r} maximum-likelihood fit did not converge for {int((~converged).sum())} of {R} "
+                    f"series within {_NEWTON_MAX_ITER} Newton iterations; the last iterate is used. Check the "
+                    "residuals for outliers or a level shift."
+                ),
+                stacklevel=3,
+            )
+        loc = center + spread * theta[:, 0] if location else np.zeros(R)
+        scale = spread * np.exp(theta[:, int(location)])
+        if shape_free:
+            # report the bounds exactly when the estimate sits on them
+            log_shape = theta[:, -1]
+            shape = np.where(log_shape <= lower[-1], lo, np.where(log_shape >= upper[-1], hi, np.exp(log_shape)))
+        elif self.has_shape:
+            shape = np.full(R, self.shape)
+        else:
+            shape = None
+        return loc, scale, shape
+
+    def _loglik(self, theta, Y, derivatives, location, shape_free):
+        """Log-likelihood of standardised rows and its derivatives in (m, log s [, log nu])."""
+        n = Y.shape[1]
+        m = theta[:, 0] if location else np.zeros(len(theta))
+        tau = theta[:, int(location)]
+        sig = np.exp(tau)
+        nu = np.exp(theta[:, -1])[:, None] if shape_free else self.shape
+        Z = (Y - m[:, None]) / sig[:, None]
+        terms = self._std_terms(Z, nu, with_shape=shape_free, derivatives=derivatives)
+        ll = terms["g"].sum(axis=1) - n * tau
+        if not derivatives:
+            return ll
+        g1, g2 = terms["g_z"], terms["g_zz"]
+        k = theta.shape[1]
+        t = int(location)
+        grad = np.empty((len(theta), k))
+        hess = np.empty((len(theta), k, k))
+        grad[:, t] = -(g1 * Z).sum(axis=1) - n
+        hess[:, t, t] = (g2 * Z * Z + g1 * Z).sum(axis=1)
+        if location:
+            grad[:, 0] = -g1.sum(axis=1) / sig
+            hess[:, 0, 0] = g2.sum(axis=1) / sig**2
+            hess[:, 0, t] = hess[:, t, 0] = (g2 * Z + g1).sum(axis=1) / sig
+        if shape_free:
+            v = k - 1
+            nu1 = nu[:, 0]
+            gv = terms["g_v"].sum(axis=1)
+            gzv = terms["g_zv"]
+            grad[:, v] = nu1 * gv
+            hess[:, v, v] = nu1**2 * terms["g_vv"].sum(axis=1) + nu1 * gv
+            hess[:, t, v] = hess[:, v, t] = -nu1 * (gzv * Z).sum(axis=1)
+            if location:
+                hess[:, 0, v] = hess[:, v, 0] = -nu1 * gzv.sum(axis=1) / sig
+        return ll, grad, hess
+
+
+class LogisticLaw(_NewtonFittedLaw):
+    """Logistic noise, ``f(x) = e^{-z} / (s (1 + e^{-z})^2)``, ``z = (x - loc)/s``.
+
+    Maximum likelihood by batched Newton ascent (score equations ``sum tanh(z_t/2) = 0`` and
+    ``sum z_t tanh(z_t/2) = n``).  Fisher information ``diag(1/3, (pi^2 + 3)/9) / s^2`` [3]_.
+    """
+
+    name = "logistic"
+
+    def _std_terms(self, z, shape, with_shape, derivatives=True):
+        a = np.abs(z)
+        out = {"g": -a - 2.0 * np.log1p(np.exp(-a))}
+        if derivatives:
+            th = np.tanh(0.5 * z)
+            out["g_z"] = -th
+            out["g_zz"] = -0.5 * (1.0 - th * th)
+        return out
+
+    def _start_spread(self, dev):
+        return np.sqrt(np.mean(dev**2, axis=1)) * math.sqrt(3.0) / math.pi
+
+    def _std_cdf(self, z, shape):
+        return special.expit(z)
+
+    def _std_ppf(self, u, shape):
+        return special.logit(u)
+
+    def _std_logpdf(self, z, shape):
+        a = np.abs(z)
+        return -a - 2.0 * np.log1p(np.exp(-a))
+
+    def _std_variance(self, shape):
+        return math.pi**2 / 3.0
+
+    def _std_fisher(self, shape):
+        return np.diag([1.0 / 3.0, (math.pi**2 + 3.0) / 9.0])
+
+    def _draw_standard(self, size, rng, shape):
+        return rng.logistic(0.0, 1.0, size)
+
+
+class StudentTLaw(_NewtonFittedLaw):
+    """Student-t noise with ``nu`` degrees of freedom (shape), location and scale.
+
+    ``log f0(z) = lgamma((nu+1)/2) - lgamma(nu/2) - log(nu pi)/2 - (nu+1)/2 log(1 + z^2/nu)``.
+    Maximum likelihood by batched Newton ascent in (loc, log scale, log nu), with ``nu`` held in
+    :data:`STUDENT_T_DF_BOUNDS` (the variance must exist; beyond 200 the law is practically
+    normal).  A fixed ``nu`` must exceed 2.  Fisher information from Lange, Little and Taylor
+    (1989) [1]_; see :meth:`fisher_information`.
+    """
+
+    name = "student-t"
+    has_shape = True
+    _shape_bounds = STUDENT_T_DF_BOUNDS
+    _shape_start = 8.0
+
+    def _check_shape(self, shape) -> float:
+        try:
+            value = float(shape)
+        except (TypeError, ValueError):
+            value = float("nan")
+        if isinstance(shape, bool) or not (math.isfinite(value) and value > 2):
+            raise InputError(
+                f"The shape (degrees of freedom) of the 'student-t' noise law must be a finite number > 2 so that "
+                f"the variance exists; got {shape!r}."
+            )
+        return value
+
+    def _std_terms(self, z, nu, with_shape, derivatives=True):
+        z2 = z * z
+        den = nu + z2
+        log_kernel = np.log1p(z2 / nu)
+        const = special.gammaln((nu + 1) / 2) - special.gammaln(nu / 2) - 0.5 * np.log(nu * math.pi)
+        out = {"g": const - 0.5 * (nu + 1) * log_kernel}
+        if not derivatives:
+            return out
+        out["g_z"] = -(nu + 1) * z / den
+        out["g_zz"] = -(nu + 1) * (nu - z2) / den**2
+        if with_shape:
+            c1 = 0.5 * special.digamma((nu + 1) / 2) - 0.5 * special.digamma(nu / 2) - 0.5 / nu
+            c2 = 0.25 * special.polygamma(1, (nu + 1) / 2) - 0.25 * special.polygamma(1, nu / 2) + 0.5 / nu**2
+            out["g_v"] = c1 - 0.5 * log_kernel + (nu + 1) * z2 / (2 * nu * den)
+            out["g_zv"] = -z * (z2 - 1) / den**2
+            out["g_vv"] = c2 + z2 / (2 * nu * den) - z2 * (nu * nu + 2 * nu + z2) / (2 * nu * nu * den**2)
+        return out
+
+    def _start_spread(self, dev):
+        mad = 1.482602218505602 * np.median(np.abs(dev), axis=1)
+        rms = np.sqrt(np.mean(dev**2, axis=1))
+        return np.where(mad > 0, mad, rms)
+
+    def _std_cdf(self, z, nu):
+        return special.stdtr(nu, z)
+
+    def _std_ppf(self, u, nu):
+        u = np.asarray(u, dtype=float)
+        inner = np.clip(u, np.finfo(float).tiny, 1.0 - np.finfo(float).epsneg)
+        # scipy.special.stdtrit returns +inf at u = 0, so the end points are set explicitly
+        return np.where(u <= 0, -np.inf, np.where(u >= 1, np.inf, special.stdtrit(nu, inner)))
+
+    def _std_logpdf(self, z, nu):
+        return self._std_terms(np.asarray(z, dtype=float), nu, with_shape=False, derivatives=False)["g"]
+
+    def _std_variance(self, nu):
+        return nu / (nu - 2.0)
+
+    def _std_fisher(self, nu):
+        j = np.zeros((3, 3))
+        j[0, 0] = (nu + 1) / (nu + 3)
+        j[1, 1] = 2 * nu / (nu + 3)
+        j[1, 2] = j[2, 1] = -2.0 / ((nu + 1) * (nu + 3))
+        j[2, 2] = 0.25 * (special.polygamma(1, nu / 2) - special.polygamma(1, (nu + 1) / 2)) - (nu + 5) / (
+            2 * nu * (nu + 1) * (nu + 3)
+        )
+        return j
+
+    def _std_cdf_shape_derivative(self, z, nu):
+        """``dF0(z; nu)/dnu = int_0^z f0(t) g_v(t) dt`` for each z (F0(0) = 1/2 for every nu)."""
+        z = np.asarray(z, dtype=float)
+
+        def integrand(tau):
+            t = tau * z
+            terms = self._std_terms(t, nu, with_shape=True)
+            return z * np.exp(terms["g"]) * terms["g_v"]
+
+        value, _ = integrate.quad_vec(integrand, 0.0, 1.0, epsabs=1e-14, epsrel=1e-12)
+        return value
+
+    def _draw_standard(self, size, rng, nu):
+        return rng.standard_t(nu, size)
+
+
+# --------------------------------------------------------------------------------------------
+# Count laws
+# --------------------------------------------------------------------------------------------
+class _CountLaw(NoiseLaw):
+    """Count laws with a predictive mean per time point (method.md 4.4)."""
+
+    discrete = True
+
+    def _count_params(self, params, owner):
+        return self._check_params(params, owner)
+
+    def _cdf(self, y, mean, shape):
+        raise NotImplementedError
+
+    def logpmf(self, y, mean, params: NoiseParams):
+        """Log probability ``log P(Y_t = y_t)`` under the law with mean ``mean_t``.
+
+        Parameters
+        ----------
+        y : array_like
+            Non-negative integer counts.
+        mean : array_like
+            Predictive means, broadcastable to ``y``; positive.
+        params : NoiseParams
+
+        Returns
+        -------
+        ndarray
+        """
+        self._count_params(params, "logpmf")
+        y = _as_counts(y, f"{self.name} logpmf")
+        mean = _as_means(mean, y.shape, f"{self.name} logpmf")
+        return self._logpmf(y, mean, params.shape)
+
+    def randomized_pit(self, y, mean, params: NoiseParams, rng: np.random.Generator):
+        """Randomised probability integral transform of counts.
+
+        ``u_t = F_t(y_t - 1) + V_t P_t(Y = y_t)`` with ``V_t ~ U(0, 1)`` independent (``F_t(-1) = 0``);
+        exactly i.i.d. U(0, 1) when ``y_t`` follows the law with mean ``mean_t`` [4]_ (method.md 4.4).
+
+        Parameters
+        ----------
+        y : array_like
+            Non-negative integer counts.
+        mean : array_like
+            Predictive means, broadcastable to ``y``.
+        params : NoiseParams
+        rng : numpy.random.Generator
+            Seeded generator; record its seed with the result.
+
+        Returns
+        -------
+        ndarray
+            Shaped like ``y``, values in [0, 1].
+        """
+        self._count_params(params, "randomized_pit")
+        rng = _check_rng(rng, f"{self.name} randomized_pit")
+        y = _as_counts(y, f"{self.name} randomized_pit")
+        mean = _as_means(mean, y.shape, f"{self.name} randomized_pit")
+        below = np.where(y > 0, self._cdf(np.maximum(y - 1, 0), mean, params.shape), 0.0)
+        mass = np.exp(self._logpmf(y, mean, params.shape))
+        return np.clip(below + rng.uniform(size=y.shape) * mass, 0.0, 1.0)
+
+    def sample_counts(self, mean, rng: np.random.Generator, params: NoiseParams):
+        """Random counts with the given means (any shape; e.g. (R, n) for R replicates).
+
+        Parameters
+        ----------
+        mean : array_like
+            Positive predictive means.
+        rng : numpy.random.Generator
+        params : NoiseParams
+
+        Returns
+        -------
+        ndarray of float
+            Integer-valued counts shaped like ``mean``.
+        """
+        self._count_params(params, "sample_counts")
+        rng = _check_rng(rng, f"{self.name} sample_counts")
+        mean = np.asarray(mean, dtype=float)
+        mean = _as_means(mean, mean.shape, f"{self.name} sample_counts")
+        return self._draw(mean, rng, params.shape).astype(float)
+
+    def fit_counts(self, y, mean) -> NoiseParams:
+        """Maximum-likelihood fit of the law's free parameters given the predictive means.
+
+        Poisson: nothing is estimated.  Negative binomial: the size, unless fixed.  Exactly
+        :meth:`fit_counts_batch` on one row.
+
+        Parameters
+        ----------
+        y : array_like, 1-D
+            Non-negative integer counts.
+        mean : array_like
+            Predictive means, broadcastable to ``y``.
+
+        Returns
+        -------
+        NoiseParams
+            ``loc = 0``, ``scale = 1`` (unused by count laws), ``shape`` the size (NB),
+            ``estimated = ("shape",)`` when the size was estimated, else ``()``.
+        """
+        y = _as_counts(y, f"{self.name} fit_counts")
+        if y.ndim != 1:
+            raise InputError(f"{self.name} fit_counts: the counts must be 1-D; got shape {y.shape}. Use fit_counts_batch.")
+        mean = _as_means(mean, y.shape, f"{self.name} fit_counts")
+        shape = self.fit_counts_batch(y[None, :], mean[None, :])
+        estimated = ("shape",) if self.has_shape and self.shape is None else ()
+        return NoiseParams(
+            law=self.name, loc=0.0, scale=1.0, shape=None if shape is None else float(shape[0]), estimated=estimated
+        )
+
+    def fit_counts_batch(self, Y, mean):
+        """Row-wise fit given the predictive means (vectorised over rows).
+
+        Parameters
+        ----------
+        Y : array_like (R, n)
+            Counts, one series per row.
+        mean : array_like
+            Means broadcastable to ``(R, n)``.
+
+        Returns
+        -------
+        ndarray (R,) or None
+            The size per row (negative binomial; the fixed size if given); None for Poisson.
+        """
+        Y = _as_counts(Y, f"{self.name} fit_counts_batch")
+        if Y.ndim != 2:
+            raise InputError(f"{self.name} fit_counts_batch: counts must be 2-D (replicates, n); got shape {Y.shape}.")
+        mean = _as_means(mean, Y.shape, f"{self.name} fit_counts_batch")
+        return self._fit_shape(Y, mean)
+
+    def _fit_shape(self, Y, mean):
+        raise NotImplementedError
+
+
+class PoissonLaw(_CountLaw):
+    """Poisson counts, ``P(Y_t = y) = mu_t^y e^{-mu_t} / y!``; nothing to estimate beyond the means."""
+
+    name = "poisson"
+
+    def _logpmf(self, y, mean, shape):
+        return special.xlogy(y, mean) - mean - special.gammaln(y + 1.0)
+
+    def _cdf(self, y, mean, shape):
+        return special.pdtr(y, mean)
+
+    def _draw(self, mean, rng, shape):
+        return rng.poisson(mean)
+
+    def _fit_shape(self, Y, mean):
+        return None
+
+
+class NegativeBinomialLaw(_CountLaw):
+    """Negative-binomial (NB2) counts with mean ``mu_t`` and size ``r`` (shape).
+
+    ``P(Y = y) = Gamma(y + r) / (Gamma(r) y!) p^r (1 - p)^y`` with ``p = r / (r + mu)``, so
+    ``Var(Y) = mu + mu^2 / r`` [5]_ (scipy's ``nbinom(n=r, p=r/(r + mu))``).  The size is estimated
+    by maximum likelihood given the means: the root of the score
+    ``sum_t [psi(y_t + r) - psi(r) - log(1 + mu_t/r) + (mu_t - y_t)/(r + mu_t)]`` by a safeguarded
+    Newton-bisection in ``log r`` within :data:`NB_SIZE_BOUNDS` (the upper bound when the counts
+    show no over-dispersion, the lower bound when the score stays negative).
+    """
+
+    name = "negative-binomial"
+    has_shape = True
+
+    def _check_shape(self, shape) -> float:
+        try:
+            value = float(shape)
+        except (TypeError, ValueError):
+            value = float("nan")
+        if isinstance(shape, bool) or not (math.isfinite(value) and value > 0):
+            raise InputError(f"The shape (size) of the 'negative-binomial' noise law must be a finite number > 0; got {shape!r}.")
+        return value
+
+    def _logpmf(self, y, mean, r):
+        return (
+            special.gammaln(y + r)
+            - special.gammaln(r)
+            - special.gammaln(y + 1.0)
+            - r * np.log1p(mean / r)
+            + special.xlogy(y, mean)
+            - y * np.log(r + mean)
+        )
+
+    def _cdf(self, y, mean, r):
+        return special.betainc(r, y + 1.0, r / (r + mean))
+
+    def _draw(self, mean, rng, r):
+        return rng.negative_binomial(r, r / (r + mean))
+
+    @staticmethod
+    def _score(eta, Y, mean):
+        """Score in r and its derivative in r, at r = exp(eta) per row."""
+        r = np.exp(eta)[:, None]
+        score = (special.digamma(Y + r) - special.digamma(r) - np.log1p(mean / r) + (mean - Y) / (r + mean)).sum(axis=1)
+        slope = (
+            special.polygamma(1, Y + r) - special.polygamma(1, r) + mean / (r * (r + mean)) - (mean - Y) / (r + mean) ** 2
+        ).sum(axis=1)
+        return score, slope
+
+    def _fit_shape(self, Y, mean):
+        R = len(Y)
+        if self.shape is not None:
+            return np.full(R, self.shape)
+        lo = np.full(R, math.log(NB_SIZE_BOUNDS[0]))
+        hi = np.full(R, math.log(NB_SIZE_BOUNDS[1]))
+        s_lo, _ = self._score(lo, Y, mean)
+        s_hi, _ = self._score(hi, Y, mean)
+        size = np.where(s_lo <= 0, NB_SIZE_BOUNDS[0], NB_SIZE_BOUNDS[1])  # boundary solutions
+        inside = np.flatnonzero((s_lo > 0) & (s_hi < 0))
+        if inside.size:
+            size[inside] = np.exp(
+                self._score_root(lo[inside], hi[inside], s_lo[inside], s_hi[inside], Y[inside], mean[inside])
+            )
+        return size
+
+    def _score_root(self, lo, hi, s_lo, s_hi, Y, mean):
+        """Safeguarded Newton iteration for the root of the score in log r.
+
+        The bracket ``[lo, hi]`` has ``score(lo) > 0 > score(hi)`` and shrinks at every step.
+        Starts from the moment estimate ``r = sum mu^2 / sum((y - mu)^2 - y)`` (clipped into the
+        bracket); a Newton step that leaves the bracket, or is taken where the score is not
+        decreasing, is replaced by the secant of the bracket ends (regula falsi with the Illinois
+        modification, Dowell and Jarratt, BIT 11, 1971, p. 168, from memory).
+        """
+        excess = np.sum((Y - mean) ** 2 - Y, axis=1)
+        with np.errstate(divide="ignore"):
+            moment = np.log(np.sum(mean**2, axis=1)) - np.log(np.maximum(excess, 0.0))
+        eta = np.clip(moment, lo + 0.1 * (hi - lo), hi - 0.1 * (hi - lo))
+        todo = np.arange(len(eta))
+        last_up = np.zeros(len(eta), dtype=np.int8)  # +1 / -1: which end moved last (0: none yet)
+        for _ in range(200):
+            if todo.size == 0:
+                break
+            e = eta[todo]
+            score, slope = self._score(e, Y[todo], mean[todo])
+            up = score > 0
+            # Illinois rule: when the same end moves twice, halve the score kept at the other end
+            repeat = last_up[todo] == np.where(up, 1, -1)
+            last_up[todo] = np.where(up, 1, -1)
+            l, h = np.where(up, e, lo[todo]), np.where(up, hi[todo], e)
+            sl = np.where(up, score, np.where(repeat, 0.5, 1.0) * s_lo[todo])
+            sh = np.where(up, np.where(repeat, 0.5, 1.0) * s_hi[todo], score)
+            d_eta = np.exp(e) * slope  # d score / d eta
+            with np.errstate(divide="ignore", invalid="ignore"):
+                newton = e - score / d_eta
+                secant = l - sl * (h - l) / (sh - sl)
+            newton_ok = (d_eta < 0) & (newton > l) & (newton < h)
+            # the secant of a bracket lies inside it; on an end only when that end is the root to rounding
+            secant_at_end = ~newton_ok & ((secant <= l) | (secant >= h))
+            secant = np.clip(secant, l, h)
+            nxt = np.where(newton_ok, newton, np.where(np.isfinite(secant), secant, 0.5 * (l + h)))
+            lo[todo], hi[todo], s_lo[todo], s_hi[todo], eta[todo] = l, h, sl, sh, nxt
+            finished = (np.abs(nxt - e) < 1e-10) | (h - l < 1e-10) | (score == 0) | secant_at_end
+            todo = todo[~finished]
+        if todo.size:
+            warnings.warn(
+                ConvergenceWarning(
+                    f"The negative-binomial size estimate did not converge for {todo.size} of {len(eta)} series "
+                    "within 200 iterations; the last iterate is used. Check the predictive means and the counts."
+                ),
+                stacklevel=4,
+            )
+        return eta
+
+
+#: The noise laws by name.
+NOISE_LAWS: dict[str, type[NoiseLaw]] = {
+    "normal": NormalLaw,
+    "student-t": StudentTLaw,
+    "laplace": LaplaceLaw,
+    "logistic": LogisticLaw,
+    "poisson": PoissonLaw,
+    "negative-binomial": NegativeBinomialLaw,
+}
+
+
+def get_law(name: str, shape: float | None = None) -> NoiseLaw:
+    """The noise law called ``name``, with an optional fixed shape.
+
+    Parameters
+    ----------
+    name : {"normal", "student-t", "laplace", "logistic", "poisson", "negative-binomial"}
+    shape : float, optional
+        Fixed student-t degrees of freedom (> 2) or negative-binomial size (> 0); None estimates
+        it.  Laws without a shape accept only None.
+
+    Returns
+    -------
+    NoiseLaw
+
+    Raises
+    ------
+    InputError
+        Unknown name (the message lists the valid names) or invalid shape.
+
+    Examples
+    --------
+    >>> law = get_law("normal")
+    >>> law.n_estimated(location=True)
+    2
+    >>> get_law("student-t", shape=5).from_variance(5 / 3).scale
+    1.0
+    """
+    if name not in NOISE_LAWS:
+        valid = ", ".join(repr(k) for k in NOISE_LAWS)
+        raise InputError(f"Unknown noise law {name!r}; valid noise laws are {valid}.")
+    return NOISE_LAWS[name](shape)
