@@ -8,6 +8,7 @@ import json
 import math
 import os
 import pathlib
+import tempfile
 from typing import Any
 
 __all__ = ["canonical_json", "sha256_bytes", "sha256_file", "write_once", "utc_now", "json_ready"]
@@ -79,12 +80,13 @@ def write_once(path: str | os.PathLike, data: bytes) -> None:
     """
     path = pathlib.Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    with open(tmp, "wb") as fh:
-        fh.write(data)
-        fh.flush()
-        os.fsync(fh.fileno())
+    fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    tmp = pathlib.Path(tmp_name)
     try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
         os.link(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)
