@@ -1,0 +1,1315 @@
+"""Crash-safe, tamper-evident archive of audit runs (design.md section 6; governance.md 1.3, req. 14-16).
+
+Layout under the archive root::
+
+    runs/<YYYY>/<run-id>/   one folder per published run; manifest.json lists every other file
+    chain.jsonl             hash-chained log: one canonical-JSON line per run, promotion, purge, sign-off
+    params/<model>/<n>.json parameter versions (written by fitaudit.tasks.params), checked by verify
+    .staging/               run folders being written (private)
+    .journal/               intents written before a step that must be completed or rolled back (private)
+    .trash/                 purged run folders being deleted (private)
+    .lock                   lock file serialising every change to chain.jsonl and runs/
+
+Publication protocol (``RunWriter.finish``)
+-------------------------------------------
+1. Every file is written once into ``.staging/<run-id>.<hex>/`` (fsynced; never overwritten); the
+   staging folder is ``flock``-ed by its writer so ``recover`` leaves a live one alone.
+2. ``manifest.json`` (caller's fields + ``run_id``, ``as_of``, ``schema_version`` and ``files``:
+   SHA-256 and size of every other file) is written and every staged folder is fsynced.
+3. Under the archive lock: the chain is checked, then ``.journal/run-<run-id>.json`` records the
+   intended chain payload (run id, path, as-of date, manifest SHA-256).
+4. The staging folder is renamed to ``runs/<YYYY>/<run-id>/`` (atomic; the run becomes visible whole).
+5. The ``run`` entry is appended to ``chain.jsonl`` (see below), then the journal is removed.
+
+A chain append first writes ``.journal/append.json`` (byte offset and the exact line), then writes the
+line with one ``O_APPEND`` write and fsyncs, then removes the journal.  ``chain.jsonl`` therefore only
+ever grows; an interrupted append is finished by writing the rest of the journaled line.
+
+``verify_archive`` accepts a run folder that is missing from the chain only when a run journal covers
+it (and the folder matches the journaled manifest hash): such a folder is a *pending* note, not a
+problem.  ``recover`` completes such a publication (appends the entry) or, when the rename had not
+happened, rolls it back; it also finishes interrupted appends and purges and deletes abandoned
+staging folders.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import datetime as _dt
+import fcntl
+import json
+import os
+import pathlib
+import re
+import secrets
+import shutil
+from typing import Any, Callable, Iterator
+
+from fitaudit.core.exceptions import FitauditError, InputError
+
+from ._io import canonical_json, sha256_bytes, sha256_file, utc_now, write_once
+from .params import ParameterStoreError, list_versions, verify_params
+from .registry import SAFE_ID
+
+__all__ = [
+    "SAFE_NAME",
+    "CHAIN_KINDS",
+    "NOTE_KINDS",
+    "MANIFEST_SCHEMA_VERSION",
+    "ArchiveError",
+    "ArchiveProblem",
+    "PublishedRun",
+    "RunWriter",
+    "new_run_id",
+    "open_run",
+    "append_chain",
+    "read_chain",
+    "verify_archive",
+    "recover",
+    "list_runs",
+    "record_signoff",
+    "purge_runs",
+]
+
+SAFE_NAME = SAFE_ID  # run ids and path segments follow the registry's rule for model ids
+CHAIN_KINDS = ("run", "promotion", "purge", "signoff")
+NOTE_KINDS = frozenset({"pending", "leftover"})
+MANIFEST_SCHEMA_VERSION = 1
+GENESIS = "0" * 64
+
+_CHAIN = "chain.jsonl"
+_RUNS = "runs"
+_PARAMS = "params"
+_STAGING = ".staging"
+_JOURNAL = ".journal"
+_TRASH = ".trash"
+_LOCK = ".lock"
+_APPEND_JOURNAL = "append.json"
+_PURGE_JOURNAL = "purge.json"
+_MANIFEST = "manifest.json"
+_REPORT = "index.html"
+_ENTRY_KEYS = frozenset({"seq", "kind", "time", "payload", "prev", "hash"})
+_HEX64 = re.compile(r"^[0-9a-f]{64}$")
+_RUN_PATH = re.compile(r"^runs/(?P<year>[0-9]{4})/(?P<run_id>[^/]+)$")
+_PARAMS_PATH = re.compile(r"^params/(?P<model>[^/]+)/(?P<version>[1-9][0-9]*)\.json$")
+_RUN_ID_DATE = re.compile(r"^(?P<y>[0-9]{4})(?P<m>[0-9]{2})(?P<d>[0-9]{2})-")
+
+# Test seam: when set, called with a step name at each step of the protocols (crash tests use it to
+# sleep or to SIGKILL the process at a chosen step).  Never set in production code.
+_STEP_HOOK: Callable[[str], None] | None = None
+
+
+class ArchiveError(FitauditError):
+    """The archive is in a state that forbids the requested change; the message says what to do."""
+
+
+@dataclasses.dataclass(frozen=True)
+class ArchiveProblem:
+    """One finding of :func:`verify_archive`.
+
+    ``kind`` is one of ``chain``, ``missing``, ``added``, ``changed``, ``unrecorded``, ``layout``,
+    ``params``, ``journal`` (problems) or ``pending``, ``leftover`` (notes, see ``NOTE_KINDS``);
+    ``where`` names the file or chain line, relative to the archive root.
+    """
+
+    kind: str
+    where: str
+    message: str
+
+    @property
+    def is_note(self) -> bool:
+        """True for notes (an interrupted publication covered by a journal, private leftovers)."""
+        return self.kind in NOTE_KINDS
+
+    def to_dict(self) -> dict[str, str]:
+        """Plain-dict form."""
+        return dataclasses.asdict(self)
+
+    def __str__(self) -> str:
+        return f"{self.where}: {self.message}"
+
+
+@dataclasses.dataclass(frozen=True)
+class PublishedRun:
+    """A run made visible by :meth:`RunWriter.finish`."""
+
+    run_id: str
+    path: pathlib.Path
+    manifest_sha256: str
+    seq: int
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain-dict form (path as a string)."""
+        return {"run_id": self.run_id, "path": str(self.path), "manifest_sha256": self.manifest_sha256, "seq": self.seq}
+
+
+# ----------------------------------------------------------------------------------------------
+# names and paths
+
+
+def _check_name(value: object, what: str) -> str:
+    if not isinstance(value, str) or not SAFE_NAME.fullmatch(value):
+        raise InputError(
+            f"{what} {value!r} is not a safe name: use 1-128 characters from A-Z, a-z, 0-9, '_', '.', '-', "
+            "starting with a letter or digit"
+        )
+    return value
+
+
+def _split_relpath(relpath: object) -> tuple[str, ...]:
+    """Validate a file path inside a run folder and return its segments."""
+    if not isinstance(relpath, str) or not relpath:
+        raise InputError(f"file path {relpath!r} must be a non-empty string such as 'models/m1.html'")
+    if "\x00" in relpath:
+        raise InputError(f"file path {relpath!r} contains a NUL character; remove it")
+    if relpath.startswith(("/", "\\")) or re.match(r"^[A-Za-z]:", relpath):
+        raise InputError(f"file path {relpath!r} is absolute; give a path relative to the run folder")
+    parts = tuple(relpath.split("/"))
+    if any(part in ("", ".", "..") for part in parts):
+        raise InputError(f"file path {relpath!r} has an empty, '.' or '..' segment; give a plain relative path")
+    for part in parts:
+        if not SAFE_NAME.fullmatch(part):
+            raise InputError(
+                f"file path {relpath!r}: segment {part!r} is not a safe name; use 1-128 characters from "
+                "A-Z, a-z, 0-9, '_', '.', '-', starting with a letter or digit"
+            )
+    return parts
+
+
+def _root(archive_root: str | os.PathLike) -> pathlib.Path:
+    return pathlib.Path(os.fspath(archive_root)).absolute()
+
+
+def _rel(root: pathlib.Path, path: pathlib.Path) -> str:
+    return path.relative_to(root).as_posix()
+
+
+def _as_date(value: object, what: str) -> _dt.date:
+    if isinstance(value, _dt.datetime) or not isinstance(value, _dt.date):
+        raise InputError(f"{what} must be a datetime.date (not a datetime); got {value!r}")
+    return value
+
+
+def _text(value: object, what: str, *, allow_empty: bool = False) -> str:
+    if not isinstance(value, str) or (not allow_empty and not value.strip()):
+        raise InputError(f"{what} must be a non-empty string; got {value!r}")
+    return value
+
+
+def new_run_id(as_of: _dt.date, now: _dt.datetime | None = None) -> str:
+    """Return a fresh run id ``<as-of YYYYMMDD>-T<UTC HHMMSS>Z-<4 random hex>``.
+
+    Parameters
+    ----------
+    as_of : datetime.date
+        The audit's as-of date; it leads the id so ids sort by as-of date.
+    now : datetime.datetime, optional
+        A timezone-aware time (default: the current time); converted to UTC.
+
+    Returns
+    -------
+    str
+        For example ``"20261130-T223001Z-3f9a"``; always matches ``SAFE_NAME``.
+    """
+    as_of = _as_date(as_of, "as_of")
+    if now is None:
+        now = _dt.datetime.now(_dt.timezone.utc)
+    if not isinstance(now, _dt.datetime) or now.tzinfo is None:
+        raise InputError(f"now must be a timezone-aware datetime (for example with tzinfo=timezone.utc); got {now!r}")
+    now = now.astimezone(_dt.timezone.utc)
+    return f"{as_of:%Y%m%d}-T{now:%H%M%S}Z-{secrets.token_hex(2)}"
+
+
+def _as_of_from_run_id(run_id: str) -> _dt.date:
+    match = _RUN_ID_DATE.match(run_id)
+    if match:
+        with contextlib.suppress(ValueError):
+            return _dt.date(int(match["y"]), int(match["m"]), int(match["d"]))
+    raise InputError(f"run id {run_id!r} does not start with an as-of date YYYYMMDD-; pass as_of= to open_run")
+
+
+# ----------------------------------------------------------------------------------------------
+# low-level durability helpers
+
+
+def _step(name: str) -> None:
+    if _STEP_HOOK is not None:
+        _STEP_HOOK(name)
+
+
+def _fsync_dir(path: pathlib.Path) -> None:
+    fd = os.open(path, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _fsync_tree(folder: pathlib.Path) -> None:
+    for dirpath, _dirs, _files in os.walk(folder, topdown=False):
+        _fsync_dir(pathlib.Path(dirpath))
+
+
+def _mkdirs(root: pathlib.Path, rel: str) -> pathlib.Path:
+    """Create ``root/rel`` (and parents), fsyncing each parent whose listing changed."""
+    path = root
+    for part in rel.split("/"):
+        child = path / part
+        if not child.is_dir():
+            child.mkdir(exist_ok=True)
+            _fsync_dir(path)
+        path = child
+    return path
+
+
+@contextlib.contextmanager
+def _archive_lock(root: pathlib.Path, *, shared: bool = False) -> Iterator[None]:
+    """Hold ``<root>/.lock`` (exclusive to change the archive, shared to read it consistently).
+
+    A shared lock is taken only when the lock file exists, so verification never writes.
+    """
+    if shared:
+        try:
+            fd = os.open(root / _LOCK, os.O_RDONLY)
+        except OSError:
+            yield
+            return
+    else:
+        root.mkdir(parents=True, exist_ok=True)
+        fd = os.open(root / _LOCK, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH if shared else fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(fd)
+
+
+def _write_journal(root: pathlib.Path, name: str, record: dict) -> None:
+    folder = _mkdirs(root, _JOURNAL)
+    write_once(folder / name, canonical_json(record))
+    _fsync_dir(folder)
+
+
+def _remove_journal(root: pathlib.Path, name: str) -> None:
+    folder = root / _JOURNAL
+    (folder / name).unlink(missing_ok=True)
+    _fsync_dir(folder)
+
+
+def _read_json(path: pathlib.Path) -> Any:
+    return json.loads(path.read_bytes())
+
+
+def _children(folder: pathlib.Path) -> list[pathlib.Path]:
+    return sorted(folder.iterdir()) if folder.is_dir() and not folder.is_symlink() else []
+
+
+def _append_bytes(path: pathlib.Path, data: bytes) -> None:
+    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    try:
+        view = memoryview(data)
+        while view:
+            view = view[os.write(fd, view):]
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def _remove_tree(path: pathlib.Path) -> None:
+    shutil.rmtree(path)
+    _fsync_dir(path.parent)
+
+
+# ----------------------------------------------------------------------------------------------
+# the chain
+
+
+@dataclasses.dataclass(frozen=True)
+class _Chain:
+    """chain.jsonl as read: well-formed entries with their line numbers, problems, raw bytes."""
+
+    entries: tuple[tuple[int, dict], ...]
+    problems: tuple[ArchiveProblem, ...]
+    data: bytes
+    torn: bytes  # trailing bytes after the last newline (an interrupted append, or damage)
+
+
+def _entry_hash(entry: dict) -> str:
+    return sha256_bytes(canonical_json({k: v for k, v in entry.items() if k != "hash"}))
+
+
+def _load_chain(root: pathlib.Path) -> _Chain:
+    path = root / _CHAIN
+    data = path.read_bytes() if path.exists() else b""
+    lines = data.split(b"\n")
+    torn = lines.pop()
+    entries: list[tuple[int, dict]] = []
+    problems: list[ArchiveProblem] = []
+    expected_prev: str | None = GENESIS
+
+    def bad(line_no: int, message: str) -> None:
+        problems.append(ArchiveProblem("chain", f"{_CHAIN} line {line_no}", message))
+
+    for line_no, raw in enumerate(lines, start=1):
+        try:
+            entry = json.loads(raw)
+        except ValueError:
+            bad(line_no, "is not valid JSON (line edited or damaged)")
+            expected_prev = None
+            continue
+        if not isinstance(entry, dict) or set(entry) != _ENTRY_KEYS:
+            bad(line_no, f"is not a chain entry (expected exactly the keys {sorted(_ENTRY_KEYS)})")
+            expected_prev = None
+            continue
+        if canonical_json(entry) != raw:
+            bad(line_no, "is not in canonical form (line edited)")
+        if entry["hash"] != _entry_hash(entry):
+            bad(line_no, "hash does not match the entry's content (line edited)")
+        if entry["seq"] != line_no:
+            bad(line_no, f"has seq {entry['seq']!r} but is line {line_no} (lines dropped, duplicated or reordered)")
+        if expected_prev is not None and entry["prev"] != expected_prev:
+            bad(line_no, f"prev does not equal the hash of line {line_no - 1} (a line was dropped, inserted or reordered)")
+        if entry["kind"] not in CHAIN_KINDS or not isinstance(entry["payload"], dict):
+            bad(line_no, f"has unknown kind {entry['kind']!r} or a payload that is not an object")
+        else:
+            entries.append((line_no, entry))
+        expected_prev = entry["hash"] if isinstance(entry["hash"], str) else None
+    return _Chain(tuple(entries), tuple(problems), data, torn)
+
+
+def _intact_chain(root: pathlib.Path) -> _Chain:
+    chain = _load_chain(root)
+    if chain.torn and not chain.problems and (root / _JOURNAL / _APPEND_JOURNAL).exists():
+        raise ArchiveError(f"an append to {_CHAIN} was interrupted; call recover() to complete it")
+    if chain.problems or chain.torn:
+        first = chain.problems[0] if chain.problems else ArchiveProblem("chain", _CHAIN, "ends with an incomplete line")
+        raise ArchiveError(
+            f"{first}; the chain is damaged, so nothing more is appended. Run `fitaudit verify` on the archive "
+            "and restore chain.jsonl from a trusted copy"
+        )
+    return chain
+
+
+def _settle_append(root: pathlib.Path) -> str | None:
+    """Finish (or confirm) an append recorded in ``.journal/append.json``; return what was done."""
+    journal = root / _JOURNAL / _APPEND_JOURNAL
+    if not journal.exists():
+        return None
+    try:
+        intent = _read_json(journal)
+        line, offset = intent["line"].encode("utf-8"), int(intent["offset"])
+    except (ValueError, KeyError, TypeError, AttributeError) as exc:
+        raise ArchiveError(f"{_JOURNAL}/{_APPEND_JOURNAL} is damaged ({exc}); run `fitaudit verify` and investigate") from exc
+    chain_path = root / _CHAIN
+    data = chain_path.read_bytes() if chain_path.exists() else b""
+    tail = data[offset:]
+    if len(data) < offset or not line.startswith(tail):
+        raise ArchiveError(
+            f"{_CHAIN} does not match the interrupted append recorded in {_JOURNAL}/{_APPEND_JOURNAL} "
+            "(the chain was changed after the crash); run `fitaudit verify` and investigate"
+        )
+    seq = json.loads(line)["seq"]
+    action = f"confirmed chain entry {seq}"
+    if len(tail) < len(line):
+        _append_bytes(chain_path, line[len(tail):])
+        action = f"completed interrupted append of chain entry {seq}"
+    _remove_journal(root, _APPEND_JOURNAL)
+    return action
+
+
+def _append_locked(root: pathlib.Path, kind: str, payload: dict) -> dict:
+    """Append one entry; the caller holds the archive lock."""
+    _settle_append(root)
+    chain = _intact_chain(root)
+    last = chain.entries[-1][1] if chain.entries else None
+    body = {
+        "seq": 1 + (last["seq"] if last else 0),
+        "kind": kind,
+        "time": utc_now(),
+        "payload": payload,
+        "prev": last["hash"] if last else GENESIS,
+    }
+    line = canonical_json({**body, "hash": _entry_hash(body)}) + b"\n"
+    _write_journal(root, _APPEND_JOURNAL, {"offset": len(chain.data), "line": line.decode("utf-8")})
+    _step("append-journal-written")
+    created = not (root / _CHAIN).exists()
+    _append_bytes(root / _CHAIN, line)
+    if created:
+        _fsync_dir(root)
+    _step("chain-appended")
+    _remove_journal(root, _APPEND_JOURNAL)
+    return json.loads(line)
+
+
+def _payload_json(kind: str, payload: object) -> dict:
+    if not isinstance(payload, dict):
+        raise InputError(f"the payload of a {kind!r} chain entry must be a dict; got {type(payload).__name__}")
+    try:
+        return json.loads(canonical_json(payload))
+    except (TypeError, ValueError) as exc:
+        raise InputError(f"the payload of a {kind!r} chain entry cannot be written as JSON: {exc}") from exc
+
+
+def append_chain(archive_root: str | os.PathLike, kind: str, payload: dict) -> dict:
+    """Append one entry to ``chain.jsonl`` under the archive lock and return it.
+
+    Parameters
+    ----------
+    archive_root : path
+        The archive folder.
+    kind : {"promotion"}
+        Only promotions are appended directly.  ``run`` entries come from :meth:`RunWriter.finish`,
+        ``purge`` from :func:`purge_runs` and ``signoff`` from :func:`record_signoff`, which check
+        what they record.
+    payload : dict
+        For a promotion: ``path`` (``"params/<model-id>/<n>.json"``, the ``promoted`` version written by
+        :func:`fitaudit.tasks.params.promote`) and ``sha256`` (that version's ``sha256`` field); any
+        further JSON fields (model id, versions, approver, note) are kept.
+
+    Returns
+    -------
+    dict
+        The entry ``{"seq", "kind", "time", "payload", "prev", "hash"}`` where ``hash`` is the SHA-256
+        of the canonical JSON of the entry without ``hash`` and ``prev`` the previous entry's hash
+        (64 zeros for the first).
+
+    Raises
+    ------
+    InputError
+        Unknown kind, a kind with its own function, or a promotion naming a missing or different file.
+    ArchiveError
+        The chain is damaged.
+    """
+    if kind not in CHAIN_KINDS:
+        raise InputError(f"chain entry kind {kind!r} is unknown; valid kinds are {list(CHAIN_KINDS)}")
+    helper = {"run": "RunWriter.finish()", "purge": "purge_runs()", "signoff": "record_signoff()"}.get(kind)
+    if helper:
+        raise InputError(f"{kind!r} chain entries are appended by {helper}, which checks what they record; call it instead")
+    root = _root(archive_root)
+    payload = _payload_json(kind, payload)
+    with _archive_lock(root):
+        problem = _promotion_problem(root, payload)
+        if problem:
+            raise InputError(f"promotion not recorded: {problem}")
+        return _append_locked(root, kind, payload)
+
+
+def read_chain(archive_root: str | os.PathLike) -> list[dict]:
+    """Return the entries of ``chain.jsonl``, oldest first.
+
+    Raises
+    ------
+    ArchiveError
+        If any line is damaged, out of order or incomplete (``verify_archive`` gives every detail).
+    """
+    root = _root(archive_root)
+    with _archive_lock(root, shared=True):
+        return [entry for _, entry in _intact_chain(root).entries]
+
+
+# ----------------------------------------------------------------------------------------------
+# reading the chain's meaning: runs, purges, sign-offs, promotions
+
+
+@dataclasses.dataclass
+class _RunRecord:
+    run_id: str
+    path: str
+    as_of: str
+    manifest_sha256: str
+    report_sha256: str | None
+    line: int
+    time: str
+    purged_line: int | None = None
+    signoffs: list[dict] = dataclasses.field(default_factory=list)
+
+
+def _run_payload_problem(payload: dict) -> str | None:
+    match = _RUN_PATH.fullmatch(str(payload.get("path")))
+    if not (isinstance(payload.get("run_id"), str) and SAFE_NAME.fullmatch(payload["run_id"])):
+        return "payload has no safe run_id"
+    if not match or match["run_id"] != payload["run_id"]:
+        return "payload path is not runs/<YYYY>/<run_id>"
+    if not _HEX64.fullmatch(str(payload.get("manifest_sha256"))):
+        return "payload has no manifest_sha256"
+    try:
+        _dt.date.fromisoformat(str(payload.get("as_of")))
+    except ValueError:
+        return "payload has no ISO as_of date"
+    return None
+
+
+def _interpret(chain: _Chain) -> tuple[dict[str, _RunRecord], list[ArchiveProblem]]:
+    """Follow run, purge and sign-off entries; return the run records and inconsistencies."""
+    runs: dict[str, _RunRecord] = {}
+    problems: list[ArchiveProblem] = []
+    for line, entry in chain.entries:
+        where, payload = f"{_CHAIN} line {line}", entry["payload"]
+        if entry["kind"] == "run":
+            problem = _run_payload_problem(payload)
+            if problem:
+                problems.append(ArchiveProblem("chain", where, problem))
+            elif payload["run_id"] in runs:
+                first = runs[payload["run_id"]].line
+                problems.append(ArchiveProblem("chain", where, f"records run {payload['run_id']} again (first at line {first})"))
+            else:
+                runs[payload["run_id"]] = _RunRecord(
+                    payload["run_id"], payload["path"], payload["as_of"], payload["manifest_sha256"],
+                    payload.get("report_sha256"), line, entry["time"],
+                )
+        elif entry["kind"] == "purge":
+            items = payload.get("runs")
+            if not isinstance(items, list) or not items:
+                problems.append(ArchiveProblem("chain", where, "purge payload has no list of runs"))
+                continue
+            for item in items:
+                record = runs.get(item.get("run_id")) if isinstance(item, dict) else None
+                if record is None or record.purged_line is not None:
+                    problems.append(ArchiveProblem("chain", where, f"purges {item!r}, which is not a published, unpurged run"))
+                elif item.get("manifest_sha256") != record.manifest_sha256 or item.get("path") != record.path:
+                    problems.append(ArchiveProblem("chain", where, f"purge of run {record.run_id} does not match line {record.line}"))
+                else:
+                    record.purged_line = line
+        elif entry["kind"] == "signoff":
+            record = runs.get(payload.get("run_id"))
+            if record is None or record.purged_line is not None:
+                message = f"signs off run {payload.get('run_id')!r}, which is not a published, unpurged run"
+                problems.append(ArchiveProblem("chain", where, message))
+            elif payload.get("manifest_sha256") != record.manifest_sha256:
+                message = f"sign-off's manifest SHA-256 differs from run {record.run_id} at line {record.line}"
+                problems.append(ArchiveProblem("chain", where, message))
+            else:
+                record.signoffs.append({**payload, "time": entry["time"], "line": line})
+    return runs, problems
+
+
+def _intact_runs(root: pathlib.Path) -> tuple[_Chain, dict[str, _RunRecord]]:
+    chain = _intact_chain(root)
+    runs, problems = _interpret(chain)
+    if problems:
+        raise ArchiveError(f"{problems[0]}; run `fitaudit verify` on the archive and restore chain.jsonl from a trusted copy")
+    return chain, runs
+
+
+# ----------------------------------------------------------------------------------------------
+# checking run folders and parameter files
+
+
+def _scan_folder(folder: pathlib.Path) -> tuple[dict[str, pathlib.Path], list[str], list[str]]:
+    """Regular files (relpath -> path), folders, and other entries (symlinks, devices) under ``folder``."""
+    files: dict[str, pathlib.Path] = {}
+    dirs: list[str] = []
+    odd: list[str] = []
+    for dirpath, dirnames, filenames in os.walk(folder):
+        base = pathlib.Path(dirpath)
+        for name in sorted(dirnames + filenames):
+            path = base / name
+            rel = path.relative_to(folder).as_posix()
+            if path.is_symlink() or not (path.is_file() or path.is_dir()):
+                odd.append(rel)
+            elif path.is_dir():
+                dirs.append(rel)
+            else:
+                files[rel] = path
+    return files, dirs, odd
+
+
+def _check_run_folder(root: pathlib.Path, rel: str, run_id: str, manifest_sha256: str, source: str) -> list[ArchiveProblem]:
+    """Compare a run folder with its manifest and the manifest with the hash recorded at ``source``."""
+    folder = root / rel
+    if folder.is_symlink() or not folder.is_dir():
+        return [ArchiveProblem("missing", rel, f"run folder is missing (recorded at {source})")]
+    manifest_path = folder / _MANIFEST
+    if manifest_path.is_symlink() or not manifest_path.is_file():
+        return [ArchiveProblem("missing", f"{rel}/{_MANIFEST}", f"manifest is missing (run recorded at {source})")]
+    problems = []
+    data = manifest_path.read_bytes()
+    if sha256_bytes(data) != manifest_sha256:
+        problems.append(ArchiveProblem(
+            "changed", f"{rel}/{_MANIFEST}",
+            f"content changed: its SHA-256 {sha256_bytes(data)[:12]}... differs from {manifest_sha256[:12]}... recorded at {source}",
+        ))
+    try:
+        manifest = json.loads(data)
+        listed = manifest["files"]
+        if manifest.get("run_id") != run_id or not isinstance(listed, dict):
+            raise ValueError
+    except (ValueError, KeyError, TypeError, AttributeError):
+        return problems + [ArchiveProblem("changed", f"{rel}/{_MANIFEST}", f"is not the manifest of run {run_id}")]
+    files, dirs, odd = _scan_folder(folder)
+    files.pop(_MANIFEST)
+    for name in odd:
+        problems.append(ArchiveProblem("added", f"{rel}/{name}", "is not a regular file or folder (link or device added)"))
+    for name in sorted(set(listed) - set(files)):
+        problems.append(ArchiveProblem("missing", f"{rel}/{name}", "is listed in manifest.json but missing (file deleted)"))
+    for name in sorted(set(files) - set(listed)):
+        problems.append(ArchiveProblem("added", f"{rel}/{name}", "is not listed in manifest.json (file added)"))
+    for name in sorted(set(files) & set(listed)):
+        digest, size = sha256_file(files[name]), files[name].stat().st_size
+        expected = listed[name] if isinstance(listed[name], dict) else {}
+        if digest != expected.get("sha256") or size != expected.get("size"):
+            problems.append(ArchiveProblem(
+                "changed", f"{rel}/{name}", f"content changed: SHA-256 {digest[:12]}... ({size} bytes) differs from manifest.json",
+            ))
+    needed = {"/".join(name.split("/")[:k]) for name in listed for k in range(1, name.count("/") + 1)}
+    for name in sorted(set(dirs) - needed):
+        problems.append(ArchiveProblem("added", f"{rel}/{name}", "folder is not part of the run (folder added)"))
+    return problems
+
+
+def _promotion_problem(root: pathlib.Path, payload: dict) -> str | None:
+    """Why a promotion payload does not match the parameter version it names (None when it does)."""
+    match = _PARAMS_PATH.fullmatch(str(payload.get("path")))
+    if not match:
+        return f"payload path {payload.get('path')!r} is not params/<model-id>/<version>.json"
+    try:
+        versions = {v.version: v for v in list_versions(root, match["model"])}
+    except ParameterStoreError as exc:
+        return str(exc).replace(f"{root}/", "")
+    record = versions.get(int(match["version"]))
+    if record is None:
+        return f"{payload['path']} is missing"
+    if record.sha256 != payload.get("sha256"):
+        return f"{payload['path']} has sha256 {record.sha256[:12]}..., not the recorded {str(payload.get('sha256'))[:12]}..."
+    return None
+
+
+def _check_params(root: pathlib.Path) -> list[ArchiveProblem]:
+    """The parameter store's own checks (fitaudit.tasks.params.verify_params), plus byte-exact form."""
+    problems = []
+    for message in verify_params(root):
+        where, _, text = message.replace(f"{root}/", "").partition(": ")
+        problems.append(ArchiveProblem("params", where, text))
+    for path in sorted((root / _PARAMS).glob("*/*")):
+        rel = _rel(root, path)
+        if path.name.startswith(".") and path.name.endswith(".tmp"):
+            problems.append(ArchiveProblem("leftover", rel, "temporary file of an interrupted write"))
+        elif path.name.endswith(".json") and path.is_file() and not path.is_symlink():
+            data = path.read_bytes()
+            with contextlib.suppress(ValueError):  # unreadable files are reported by verify_params
+                if data != canonical_json(json.loads(data), indent=2):
+                    message = "is not byte-for-byte the canonical JSON the parameter store writes (file edited)"
+                    problems.append(ArchiveProblem("params", rel, message))
+    return problems
+
+
+# ----------------------------------------------------------------------------------------------
+# verification
+
+
+def _run_id_of(journal: dict) -> str | None:
+    """The run id of a well-formed run journal, else None."""
+    payload = journal.get("payload")
+    if isinstance(payload, dict) and _run_payload_problem(payload) is None:
+        return payload["run_id"]
+    return None
+
+
+@dataclasses.dataclass
+class _Journals:
+    append: dict | None = None
+    purge: dict | None = None
+    runs: dict[str, dict] = dataclasses.field(default_factory=dict)  # target path -> run journal
+
+
+def _read_journals(root: pathlib.Path, problems: list[ArchiveProblem]) -> _Journals:
+    journals = _Journals()
+    folder = root / _JOURNAL
+    for path in _children(folder):
+        rel = _rel(root, path)
+        if path.name.startswith(".") and path.name.endswith(".tmp"):
+            problems.append(ArchiveProblem("leftover", rel, "temporary file of an interrupted journal write"))
+            continue
+        try:
+            record = _read_json(path)
+        except (OSError, ValueError):
+            problems.append(ArchiveProblem("journal", rel, "is not a readable journal"))
+            continue
+        if not isinstance(record, dict):
+            record = {}
+        offset = record.get("offset")
+        if path.name == _APPEND_JOURNAL and isinstance(record.get("line"), str) and isinstance(offset, int) and offset >= 0:
+            journals.append = record  # its note comes from _check_chain_tail
+        elif path.name == _PURGE_JOURNAL and isinstance(record.get("payload"), dict):
+            journals.purge = record
+            problems.append(ArchiveProblem("pending", rel, "a purge was interrupted; recover() finishes or rolls it back"))
+        elif path.name == f"run-{_run_id_of(record)}.json" and SAFE_NAME.fullmatch(str(record.get("staging"))):
+            journals.runs[record["payload"]["path"]] = record
+            problems.append(ArchiveProblem(
+                "pending", rel, f"publication of run {_run_id_of(record)} was interrupted; recover() completes or rolls it back",
+            ))
+        else:
+            problems.append(ArchiveProblem("journal", rel, "is not a journal this archive writes (file added)"))
+    return journals
+
+
+def _check_chain_tail(chain: _Chain, journals: _Journals) -> list[ArchiveProblem]:
+    intent = journals.append
+    last_line = chain.data.count(b"\n") + 1
+    if intent is None:
+        if chain.torn:
+            message = "is incomplete (no final newline) and no append journal covers it"
+            return [ArchiveProblem("chain", f"{_CHAIN} line {last_line}", message)]
+        return []
+    line, offset = intent["line"].encode("utf-8"), intent["offset"]
+    tail = chain.data[offset:]
+    if offset <= len(chain.data) and line.startswith(tail):  # tail is the torn line, empty, or the whole line
+        state = "finished; its journal is not yet removed" if tail == line else "was interrupted"
+        return [ArchiveProblem("pending", f"{_JOURNAL}/{_APPEND_JOURNAL}", f"append of a chain entry {state}; recover() settles it")]
+    message = f"does not match the end of {_CHAIN} (chain changed after an interrupted append)"
+    return [ArchiveProblem("journal", f"{_JOURNAL}/{_APPEND_JOURNAL}", message)]
+
+
+def _check_recorded_runs(root: pathlib.Path, runs: dict[str, _RunRecord], journals: _Journals) -> list[ArchiveProblem]:
+    items = journals.purge["payload"].get("runs") if journals.purge else None
+    purging = {item.get("path") for item in items if isinstance(item, dict)} if isinstance(items, list) else set()
+    problems = []
+    for record in runs.values():
+        source = f"{_CHAIN} line {record.line}"
+        if record.purged_line is None:
+            problems += _check_run_folder(root, record.path, record.run_id, record.manifest_sha256, source)
+        elif (root / record.path).exists() or (root / record.path).is_symlink():
+            if record.path not in purging:  # else covered by the purge journal's note
+                message = f"was purged at {_CHAIN} line {record.purged_line} but is present"
+                problems.append(ArchiveProblem("unrecorded", record.path, message))
+    return problems
+
+
+def _check_run_tree(root: pathlib.Path, runs: dict[str, _RunRecord], journals: _Journals) -> list[ArchiveProblem]:
+    """Every folder under runs/ must be a recorded run or a journaled pending publication."""
+    recorded = {record.path for record in runs.values()}
+    problems = []
+    top = root / _RUNS
+    for year_dir in _children(top):
+        if year_dir.is_symlink() or not year_dir.is_dir() or not re.fullmatch(r"[0-9]{4}", year_dir.name):
+            problems.append(ArchiveProblem("layout", _rel(root, year_dir), "is not a year folder runs/<YYYY>/ (entry added)"))
+            continue
+        for folder in sorted(year_dir.iterdir()):
+            rel = _rel(root, folder)
+            if rel in recorded:
+                continue
+            journal = journals.runs.get(rel)
+            if journal is None:
+                problems.append(ArchiveProblem(
+                    "unrecorded", rel,
+                    "is not recorded in chain.jsonl and no publication journal covers it (chain line removed, or folder added)",
+                ))
+                continue
+            payload = journal["payload"]
+            problems += _check_run_folder(root, rel, payload["run_id"], payload["manifest_sha256"], "its publication journal")
+    return problems
+
+
+def _leftovers(root: pathlib.Path) -> list[ArchiveProblem]:
+    notes = []
+    for private in (_STAGING, _TRASH):
+        for path in _children(root / private):
+            notes.append(ArchiveProblem("leftover", _rel(root, path), "private working folder; recover() removes it when abandoned"))
+    return notes
+
+
+def verify_archive(
+    archive_root: str | os.PathLike, *, include_notes: bool = False, expected_head: str | None = None
+) -> list[ArchiveProblem]:
+    """Check every file and the hash chain; an empty list means the archive is intact.
+
+    Parameters
+    ----------
+    archive_root : path
+        The archive folder (only read; verification works on a read-only copy).
+    include_notes : bool, default False
+        Also return notes (``kind`` in ``NOTE_KINDS``): publications, appends and purges interrupted
+        after their journal was written, and private leftovers; ``recover()`` settles them.
+    expected_head : str, optional
+        A chain hash recorded elsewhere (for example printed by an earlier verification).  A hash
+        chain alone cannot show that entries were cut from its end, or that it was rewritten
+        wholesale; an outside copy of a later head can.
+
+    Returns
+    -------
+    list of ArchiveProblem
+        Each names the file or chain line and what is wrong.
+
+    Notes
+    -----
+    Checks: each chain line is canonical JSON with ``seq`` = line number, a correct ``hash`` and
+    ``prev`` = hash of the line before; each ``run`` entry's folder exists (unless a later ``purge``
+    entry names it, in which case it must be absent), its ``manifest.json`` has the recorded SHA-256,
+    and the folder holds exactly the files the manifest lists with their SHA-256 and sizes; every
+    folder under ``runs/`` is recorded, or covered by a run journal (a *pending* note); sign-offs and
+    purges refer to recorded runs with the same manifest hash; the parameter store passes
+    :func:`fitaudit.tasks.params.verify_params`, each parameter file is byte-for-byte the canonical
+    JSON the store writes, and every ``promotion`` entry's ``sha256`` matches the version it names.
+    """
+    root = _root(archive_root)
+    if not root.is_dir():
+        return [ArchiveProblem("missing", str(root), "archive folder not found")]
+    with _archive_lock(root, shared=True):
+        problems: list[ArchiveProblem] = []
+        chain = _load_chain(root)
+        problems += chain.problems
+        journals = _read_journals(root, problems)
+        unjournaled = [f for f in (root / _RUNS).glob("*/*") if _rel(root, f) not in journals.runs]
+        if not (root / _CHAIN).exists() and unjournaled:
+            problems.append(ArchiveProblem("missing", _CHAIN, "is missing although run folders exist (chain deleted)"))
+        problems += _check_chain_tail(chain, journals)
+        runs, meaning = _interpret(chain)
+        problems += meaning
+        problems += _check_recorded_runs(root, runs, journals)
+        problems += _check_run_tree(root, runs, journals)
+        for line, entry in chain.entries:
+            if entry["kind"] == "promotion":
+                problem = _promotion_problem(root, entry["payload"])
+                if problem:
+                    problems.append(ArchiveProblem("params", f"{_CHAIN} line {line}", f"promotion: {problem}"))
+        problems += _check_params(root)
+        problems += _leftovers(root)
+        if expected_head is not None and all(entry["hash"] != expected_head for _, entry in chain.entries):
+            problems.append(ArchiveProblem(
+                "chain", _CHAIN,
+                f"does not contain the expected head {expected_head[:12]}... (lines removed from its end, or the chain rewritten)",
+            ))
+    return problems if include_notes else [p for p in problems if not p.is_note]
+
+
+# ----------------------------------------------------------------------------------------------
+# writing a run
+
+
+class RunWriter:
+    """Writes one run into a private staging folder and publishes it atomically with :meth:`finish`.
+
+    Use as a context manager (``with open_run(...) as run:``); leaving the block without ``finish``
+    (or with an exception) discards the staging folder.  Files are written once and never replaced.
+    """
+
+    def __init__(self, root: pathlib.Path, run_id: str, year: int, as_of: _dt.date, staging: pathlib.Path, lock_fd: int):
+        self.run_id = run_id
+        self.as_of = as_of
+        self.path = root / _RUNS / f"{year:04d}" / run_id
+        self._root = root
+        self._staging = staging
+        self._lock_fd: int | None = lock_fd
+        self._files: dict[str, dict[str, Any]] = {}
+
+    def __enter__(self) -> RunWriter:
+        return self
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if self._lock_fd is None:
+            return
+        self.abort()
+        if exc_type is None:
+            raise ArchiveError(
+                f"run {self.run_id} was not finished; call finish(manifest) inside the with-block. Its staged files were discarded"
+            )
+
+    def _check_open(self) -> None:
+        if self._lock_fd is None:
+            raise ArchiveError(f"run {self.run_id} is already finished or aborted; open a new run")
+
+    def write_bytes(self, relpath: str, data: bytes) -> None:
+        """Write one file of the run; ``relpath`` is relative (``"models/m1.html"``), never reused.
+
+        Raises
+        ------
+        InputError
+            Unsafe path (absolute, ``..``, NUL, segments not matching ``SAFE_NAME``), ``manifest.json``,
+            a path already written, or data that is not bytes.
+        """
+        self._check_open()
+        parts = _split_relpath(relpath)
+        key = "/".join(parts)
+        if key == _MANIFEST:
+            raise InputError(f"{_MANIFEST} is written by finish(); pass the manifest's fields there")
+        if not isinstance(data, (bytes, bytearray, memoryview)):
+            raise InputError(f"data for {key!r} must be bytes; use write_text or write_json for {type(data).__name__}")
+        clash = [p for p in ("/".join(parts[:k]) for k in range(1, len(parts) + 1)) if p in self._files]
+        if clash or any(name.startswith(key + "/") for name in self._files):
+            raise InputError(
+                f"{key!r} in run {self.run_id} was already written (or clashes with a file or folder of that name); "
+                "files are never overwritten"
+            )
+        data = bytes(data)
+        write_once(self._staging.joinpath(*parts), data)
+        self._files[key] = {"sha256": sha256_bytes(data), "size": len(data)}
+        _step("file-written")
+
+    def write_text(self, relpath: str, text: str) -> None:
+        """Write ``text`` encoded as UTF-8 (see :meth:`write_bytes`)."""
+        if not isinstance(text, str):
+            raise InputError(f"text for {relpath!r} must be a str; got {type(text).__name__}")
+        self.write_bytes(relpath, text.encode("utf-8"))
+
+    def write_json(self, relpath: str, obj: Any) -> None:
+        """Write ``obj`` as canonical JSON (sorted keys, indent 2; see :meth:`write_bytes`)."""
+        try:
+            data = canonical_json(obj, indent=2)
+        except (TypeError, ValueError) as exc:
+            raise InputError(f"{relpath!r} of run {self.run_id} cannot be written as JSON: {exc}") from exc
+        self.write_bytes(relpath, data)
+
+    def abort(self) -> None:
+        """Discard the staged files (nothing becomes visible)."""
+        if self._lock_fd is None:
+            return
+        shutil.rmtree(self._staging, ignore_errors=True)
+        self._release()
+
+    def _release(self) -> None:
+        os.close(self._lock_fd)
+        self._lock_fd = None
+
+    def finish(self, manifest: dict) -> PublishedRun:
+        """Write ``manifest.json``, publish the run folder atomically and append its chain entry.
+
+        Parameters
+        ----------
+        manifest : dict
+            The caller's fields (run id, UTC start/end, operator, tool and package versions, registry
+            hash, input fingerprints, seeds, timings, ``counts``, ...).  ``run_id`` and ``as_of`` are
+            added (or must agree); ``schema_version`` and ``files`` (``{relpath: {"sha256", "size"}}``
+            for every other file) are added and may not be given.
+
+        Returns
+        -------
+        PublishedRun
+            Run id, final folder, SHA-256 of ``manifest.json`` and the chain entry's ``seq``.
+        """
+        self._check_open()
+        if not isinstance(manifest, dict):
+            raise InputError(f"manifest of run {self.run_id} must be a dict; got {type(manifest).__name__}")
+        reserved = sorted({"files", "schema_version"} & set(manifest))
+        if reserved:
+            raise InputError(f"manifest of run {self.run_id} may not set {reserved}; finish() adds them")
+        for key, value in (("run_id", self.run_id), ("as_of", self.as_of.isoformat())):
+            if key in manifest and manifest[key] != value:
+                raise InputError(f"manifest {key} {manifest[key]!r} differs from the run's {value!r}")
+        full = {**manifest, "run_id": self.run_id, "as_of": self.as_of.isoformat(),
+                "schema_version": MANIFEST_SCHEMA_VERSION, "files": dict(sorted(self._files.items()))}
+        try:
+            data = canonical_json(full, indent=2)
+        except (TypeError, ValueError) as exc:
+            raise InputError(f"manifest of run {self.run_id} cannot be written as JSON: {exc}") from exc
+        write_once(self._staging / _MANIFEST, data)
+        _fsync_tree(self._staging)
+        _step("staged")
+        payload = {
+            "run_id": self.run_id,
+            "path": _rel(self._root, self.path),
+            "as_of": self.as_of.isoformat(),
+            "manifest_sha256": sha256_bytes(data),
+            "report_sha256": self._files.get(_REPORT, {}).get("sha256"),
+        }
+        with _archive_lock(self._root):
+            entry = self._publish_locked(payload)
+        self._release()
+        return PublishedRun(self.run_id, self.path, payload["manifest_sha256"], entry["seq"])
+
+    def _publish_locked(self, payload: dict) -> dict:
+        _settle_append(self._root)
+        _, runs = _intact_runs(self._root)
+        if self.run_id in runs or self.path.exists():
+            raise ArchiveError(f"run {self.run_id} is already published; open a run with a new id (new_run_id())")
+        journal = f"run-{self.run_id}.json"
+        _mkdirs(self._root, self.path.parent.relative_to(self._root).as_posix())
+        _write_journal(self._root, journal, {"staging": self._staging.name, "payload": payload})
+        _step("journal-written")
+        try:
+            os.rename(self._staging, self.path)
+        except OSError as exc:
+            _remove_journal(self._root, journal)
+            raise ArchiveError(f"could not move run {self.run_id} into {self.path}: {exc}") from exc
+        _fsync_dir(self.path.parent)
+        _fsync_dir(self._staging.parent)
+        _step("renamed")
+        try:
+            entry = _append_locked(self._root, "run", payload)
+        except Exception as exc:
+            raise ArchiveError(
+                f"run {self.run_id} was published but its chain entry could not be appended ({exc}); call recover()"
+            ) from exc
+        _step("run-appended")
+        _remove_journal(self._root, journal)
+        _step("journal-removed")
+        return entry
+
+
+def open_run(archive_root: str | os.PathLike, run_id: str, year: int, *, as_of: _dt.date | None = None) -> RunWriter:
+    """Start writing run ``run_id``, to be published as ``<archive>/runs/<year>/<run_id>/``.
+
+    Parameters
+    ----------
+    archive_root : path
+        The archive folder (created if missing).
+    run_id : str
+        Matches ``SAFE_NAME``; unique in the archive (use :func:`new_run_id`).
+    year : int
+        The four-digit year folder.
+    as_of : datetime.date, optional
+        The audit's as-of date (used by retention); by default read from the run id's leading
+        ``YYYYMMDD-``.
+
+    Returns
+    -------
+    RunWriter
+    """
+    root = _root(archive_root)
+    _check_name(run_id, "run id")
+    if isinstance(year, bool) or not isinstance(year, int) or not 1000 <= year <= 9999:
+        raise InputError(f"year must be a four-digit int; got {year!r}")
+    as_of = _as_of_from_run_id(run_id) if as_of is None else _as_date(as_of, "as_of")
+    with _archive_lock(root):  # recover() scans .staging under this lock: it never sees an unlocked new folder
+        _settle_append(root)
+        _, runs = _intact_runs(root)
+        if run_id in runs or (root / _RUNS / f"{year:04d}" / run_id).exists():
+            raise ArchiveError(f"run {run_id} is already published; open a run with a new id (new_run_id())")
+        staging = _mkdirs(root, _STAGING) / f"{run_id}.{secrets.token_hex(4)}"
+        staging.mkdir()
+        fd = os.open(staging, os.O_RDONLY | os.O_DIRECTORY)
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    return RunWriter(root, run_id, year, as_of, staging, fd)
+
+
+# ----------------------------------------------------------------------------------------------
+# recovery
+
+
+def _recover_run(root: pathlib.Path, journal_path: pathlib.Path, runs: dict[str, _RunRecord]) -> str:
+    try:
+        record = _read_json(journal_path)
+    except ValueError:
+        record = {}
+    run_id = _run_id_of(record) if isinstance(record, dict) else None
+    if run_id is None or journal_path.name != f"run-{run_id}.json" or not SAFE_NAME.fullmatch(str(record.get("staging"))):
+        raise ArchiveError(f"{_rel(root, journal_path)} is not a journal this archive writes; run `fitaudit verify` and investigate")
+    payload, target = record["payload"], root / record["payload"]["path"]
+    staging = root / _STAGING / record["staging"]
+    if run_id in runs:
+        action = f"run {run_id}: publication had finished; removed its journal"
+    elif target.exists():
+        problems = _check_run_folder(root, payload["path"], run_id, payload["manifest_sha256"], "its publication journal")
+        if problems:
+            raise ArchiveError(
+                f"cannot complete the interrupted publication of run {run_id}: {problems[0]}; investigate before recovering"
+            )
+        _append_locked(root, "run", {**payload, "recovered": True})
+        action = f"run {run_id}: completed interrupted publication (appended its chain entry)"
+    else:
+        if staging.exists():
+            _remove_tree(staging)
+        action = f"run {run_id}: rolled back interrupted publication (not yet visible)"
+    _remove_journal(root, journal_path.name)
+    return action
+
+
+def _delete_run_folders(root: pathlib.Path, items: list[dict]) -> list[str]:
+    removed = []
+    for item in items:
+        folder = root / item["path"]
+        if folder.exists():
+            trash = _mkdirs(root, _TRASH) / f"{item['run_id']}.{secrets.token_hex(4)}"
+            os.rename(folder, trash)
+            _fsync_dir(folder.parent)
+            _step("purge-moved")
+            _remove_tree(trash)
+            removed.append(item["run_id"])
+    return removed
+
+
+def _recover_purge(root: pathlib.Path, chain: _Chain) -> str:
+    payload = _read_json(root / _JOURNAL / _PURGE_JOURNAL)["payload"]
+    logged = any(e["kind"] == "purge" and canonical_json(e["payload"]) == canonical_json(payload) for _, e in chain.entries)
+    if logged:
+        removed = _delete_run_folders(root, payload["runs"])
+        action = f"completed interrupted purge (removed {len(removed)} remaining run folders)"
+    else:
+        action = "rolled back interrupted purge (it was not logged; nothing was removed)"
+    _remove_journal(root, _PURGE_JOURNAL)
+    return action
+
+
+def _in_use(folder: pathlib.Path) -> bool:
+    """True when a live RunWriter holds the staging folder's lock."""
+    fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        return True
+    finally:
+        os.close(fd)
+    return False
+
+
+def _remove_abandoned(root: pathlib.Path) -> list[str]:
+    """Delete abandoned staging folders, half-deleted purged folders and temporary journal files.
+
+    The caller holds the archive lock, so no new staging folder appears meanwhile.
+    """
+    actions = []
+    for path in _children(root / _STAGING):
+        if path.is_symlink() or not path.is_dir():
+            path.unlink()
+        elif _in_use(path):
+            continue
+        else:
+            _remove_tree(path)
+        actions.append(f"removed abandoned staging entry {_rel(root, path)}")
+    for path in _children(root / _TRASH):
+        _remove_tree(path)
+        actions.append(f"finished deleting purged folder {_rel(root, path)}")
+    for path in [p for p in _children(root / _JOURNAL) if p.name.startswith(".") and p.name.endswith(".tmp")]:
+        path.unlink()
+        actions.append(f"removed temporary file {_rel(root, path)}")
+    return actions
+
+
+def recover(archive_root: str | os.PathLike) -> list[str]:
+    """Settle interrupted work; call at the start of every run.
+
+    Finishes an interrupted chain append, completes each journaled publication whose folder was
+    already renamed into ``runs/`` (appending its chain entry, marked ``"recovered": true``) or rolls
+    it back, finishes or rolls back an interrupted purge, and removes abandoned staging folders
+    (those not locked by a live writer).
+
+    Returns
+    -------
+    list of str
+        One line per action taken (empty when there was nothing to do).
+
+    Raises
+    ------
+    ArchiveError
+        When the journals and the archive disagree (a sign of tampering); nothing is guessed.
+    """
+    root = _root(archive_root)
+    if not root.is_dir():
+        return []
+    actions: list[str] = []
+    with _archive_lock(root):
+        settled = _settle_append(root)
+        actions += [settled] if settled else []
+        _, runs = _intact_runs(root)
+        for journal_path in sorted((root / _JOURNAL).glob("run-*.json")):
+            actions.append(_recover_run(root, journal_path, runs))
+        if (root / _JOURNAL / _PURGE_JOURNAL).exists():
+            actions.append(_recover_purge(root, _intact_chain(root)))
+        actions += _remove_abandoned(root)
+    return actions
+
+
+# ----------------------------------------------------------------------------------------------
+# listing, sign-off, retention
+
+
+def list_runs(archive_root: str | os.PathLike) -> list[dict]:
+    """Runs recorded in the chain, oldest first, for an archive index page.
+
+    Returns
+    -------
+    list of dict
+        ``run_id``, ``path`` (relative to the archive), ``as_of``, ``time`` (of the chain entry),
+        ``seq``, ``manifest_sha256``, ``report_sha256``, ``counts`` (the manifest's ``counts``, or
+        None when absent or purged), ``purged`` (bool) and ``signoffs`` (name, role, time, note,
+        report SHA-256 of each).
+    """
+    root = _root(archive_root)
+    listing = []
+    with _archive_lock(root, shared=True):
+        _, runs = _intact_runs(root)
+        for record in runs.values():
+            counts = None
+            if record.purged_line is None:
+                data = (root / record.path / _MANIFEST).read_bytes()
+                if sha256_bytes(data) != record.manifest_sha256:
+                    raise ArchiveError(f"{record.path}/{_MANIFEST} differs from {_CHAIN} line {record.line}; run `fitaudit verify`")
+                counts = json.loads(data).get("counts")
+            listing.append({
+                "run_id": record.run_id, "path": record.path, "as_of": record.as_of, "time": record.time,
+                "seq": record.line, "manifest_sha256": record.manifest_sha256, "report_sha256": record.report_sha256,
+                "counts": counts, "purged": record.purged_line is not None,
+                "signoffs": [{k: s.get(k) for k in ("name", "role", "time", "note", "report_sha256")} for s in record.signoffs],
+            })
+    return listing
+
+
+def record_signoff(archive_root: str | os.PathLike, run_id: str, *, name: str, role: str, note: str = "") -> dict:
+    """Record a reviewer's sign-off of a run's report in the chain (governance.md requirement 14).
+
+    The run folder is verified first; the entry holds the SHA-256 of the exact ``index.html`` and
+    ``manifest.json`` signed, the reviewer's name and role, the note, and (as the entry's ``time``)
+    the UTC timestamp.  A report is never edited; a regenerated report is a new run to sign.
+
+    Returns
+    -------
+    dict
+        The chain entry.
+    """
+    _check_name(run_id, "run id")
+    name, role = _text(name, "name"), _text(role, "role")
+    note = _text(note, "note", allow_empty=True)
+    root = _root(archive_root)
+    with _archive_lock(root):
+        _settle_append(root)
+        _, runs = _intact_runs(root)
+        record = runs.get(run_id)
+        if record is None or record.purged_line is not None:
+            raise ArchiveError(f"run {run_id} is not a published run in this archive (or was purged); nothing to sign")
+        problems = _check_run_folder(root, record.path, run_id, record.manifest_sha256, f"{_CHAIN} line {record.line}")
+        if problems:
+            raise ArchiveError(f"cannot sign run {run_id}: {problems[0]}")
+        files = _read_json(root / record.path / _MANIFEST)["files"]
+        if _REPORT not in files:
+            raise ArchiveError(f"run {run_id} has no {_REPORT} to sign")
+        payload = {"run_id": run_id, "path": record.path, "report": _REPORT, "report_sha256": files[_REPORT]["sha256"],
+                   "manifest_sha256": record.manifest_sha256, "name": name, "role": role, "note": note}
+        return _append_locked(root, "signoff", payload)
+
+
+def purge_runs(archive_root: str | os.PathLike, *, before: _dt.date, reason: str, approved_by: str) -> dict | None:
+    """Delete the runs whose as-of date is before ``before``, logging one ``purge`` chain entry.
+
+    The entry (``before``, ``reason``, ``approved_by`` and each purged run's id, path and manifest
+    SHA-256) is appended before anything is deleted; each folder is then moved to ``.trash/`` and
+    deleted.  Runs that fail verification are not purged (that would destroy the evidence).
+
+    Returns
+    -------
+    dict or None
+        The chain entry, or None when no run is old enough.
+
+    Raises
+    ------
+    ArchiveError
+        A publication or purge is pending (call ``recover()``), the chain is damaged, or a run to purge
+        fails verification.
+    """
+    before = _as_date(before, "before")
+    reason, approved_by = _text(reason, "reason"), _text(approved_by, "approved_by")
+    root = _root(archive_root)
+    with _archive_lock(root):
+        _settle_append(root)
+        pending = sorted((root / _JOURNAL).glob("*.json")) if (root / _JOURNAL).is_dir() else []
+        if pending:
+            raise ArchiveError(f"interrupted work is pending ({_rel(root, pending[0])}); call recover() before purging")
+        _, runs = _intact_runs(root)
+        victims = [r for r in runs.values() if r.purged_line is None and _dt.date.fromisoformat(r.as_of) < before]
+        if not victims:
+            return None
+        for record in victims:
+            problems = _check_run_folder(root, record.path, record.run_id, record.manifest_sha256, f"{_CHAIN} line {record.line}")
+            if problems:
+                raise ArchiveError(
+                    f"run {record.run_id} fails verification ({problems[0]}); purging it would destroy the evidence, "
+                    "investigate first"
+                )
+        items = [{"run_id": r.run_id, "path": r.path, "manifest_sha256": r.manifest_sha256} for r in victims]
+        payload = {"before": before.isoformat(), "reason": reason, "approved_by": approved_by, "runs": items}
+        _write_journal(root, _PURGE_JOURNAL, {"payload": payload})
+        _step("purge-journal-written")
+        entry = _append_locked(root, "purge", payload)
+        _step("purge-appended")
+        _delete_run_folders(root, items)
+        _remove_journal(root, _PURGE_JOURNAL)
+        return entry
