@@ -1,0 +1,163 @@
+"""Calibration: chi-square points, Monte Carlo p-values, null tables, Nikulin-Rao-Robson."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from fitaudit.core.calibration import (
+    CalibrationCache,
+    NullTable,
+    chi2_critical_value,
+    chi2_p_value,
+    nrr_term,
+    production_table,
+    refit_table,
+    standardised_maximum,
+)
+from fitaudit.core.cells import cell_counts, number_of_cells
+from fitaudit.core.divergence import DEFAULT_ALPHAS, DEFAULT_BETAS, divergence_map
+from fitaudit.core.noise import get_law
+
+GRID = (DEFAULT_ALPHAS, DEFAULT_BETAS, "geometric", None)
+
+
+@pytest.mark.parametrize(
+    "df,value",
+    [
+        (1, 3.84146),  # source: method.md 6.2, upper 5 % points (Abramowitz & Stegun table 26.8, table number from memory)
+        (2, 5.99146),  # source: method.md 6.2
+        (3, 7.81473),  # source: method.md 6.2
+        (4, 9.48773),  # source: method.md 6.2
+        (5, 11.0705),  # source: method.md 6.2
+        (10, 18.30704),  # source: method.md 6.2
+    ],
+)
+def test_chi_square_upper_five_percent_points(df, value):
+    assert chi2_critical_value(0.05, df) == pytest.approx(value, abs=6e-5)
+
+
+def test_chi_square_lower_tail_point():
+    # source: NIST/SEMATECH e-Handbook 1.3.6.7.4, df 10, probability of exceeding 0.90 -> 4.865
+    assert chi2_critical_value(0.90, 10) == pytest.approx(4.865, abs=5e-4)
+    assert chi2_p_value(np.inf, 3) == 0.0
+    assert chi2_p_value(4.865, 10) == pytest.approx(0.90, abs=1e-4)
+
+
+def test_monte_carlo_p_value_and_critical_value_by_hand():
+    # four simulated standardised maxima 1, 2, 3, 4 (R = 4): p(2.5) = (1 + 2) / 5  # source: Davison & Hinkley (1997) eq. 4.11
+    table = NullTable(("hand",), np.ones((1, 1)), np.array([1.0, 2.0, 3.0, 4.0]))
+    assert table.p_value(2.5) == pytest.approx(3 / 5)
+    assert table.p_value(4.0) == pytest.approx(2 / 5)
+    assert table.p_value(10.0) == pytest.approx(1 / 5)
+    r999 = NullTable(("hand",), np.ones((1, 1)), np.arange(1.0, 1000.0))
+    c = r999.critical_value(0.05)
+    # common practice: with R = 999 the 5 % test rejects when at most 49 replicates reach the statistic
+    assert c == 950.0
+    assert r999.p_value(c + 1e-9) <= 0.05 < r999.p_value(c)
+
+
+def test_standardised_maximum_skips_infinite_points():
+    stats_ = np.array([[[1.0, np.inf], [3.0, 2.0]], [[np.inf, np.inf], [np.inf, np.inf]]])
+    ref = np.array([[2.0, 1.0], [1.5, np.inf]])
+    out = standardised_maximum(stats_, ref)
+    assert out[0] == pytest.approx(2.0) and out[1] == np.inf
+
+
+def test_tables_are_shared_and_do_not_depend_on_build_order():
+    a, b = CalibrationCache(), CalibrationCache()
+    t1 = production_table(40, 8, *GRID, 99, 3, a)
+    production_table(60, 10, *GRID, 99, 3, b)
+    t2 = production_table(40, 8, *GRID, 99, 3, b)
+    assert np.array_equal(t1.r_max, t2.r_max) and np.array_equal(t1.reference, t2.reference)
+    assert production_table(40, 8, *GRID, 99, 3, a) is t1 and a.hits == 1 and a.builds == 1
+
+
+def test_production_null_size(rng):
+    """Under the null (uniform PIT values) the simulated calibration rejects about 5 %."""
+    n, s = 60, number_of_cells(60)
+    cache = CalibrationCache()
+    table = production_table(n, s, *GRID, 499, 11, cache)
+    reps = 400
+    counts = cell_counts(rng.random((reps, n)), s)
+    r_obs = standardised_maximum(divergence_map(counts, np.full(s, 1 / s)).statistic, table.reference)
+    p = np.array([table.p_value(v) for v in r_obs])
+    rate = np.mean(p <= 0.05)
+    # common practice: 400 replicates give a Monte Carlo standard error of about 0.011 at 5 %
+    assert 0.02 <= rate <= 0.085
+
+
+def test_refit_table_is_pivotal_for_location_scale(rng):
+    """Residuals from normal(5, 3) with location and scale re-estimated have ~uniform p-values.
+
+    The size of a Monte Carlo test is exact only on average over tables, so ten tables (seeds)
+    each judge 60 data sets.
+    """
+    law = get_law("normal")
+    n = 150
+    s = number_of_cells(n, 2)
+    p = []
+    for seed in range(10):
+        table = refit_table(law, n, s, True, *GRID, 199, seed)
+        x = rng.normal(5.0, 3.0, (60, n))
+        loc, scale, _ = law.fit_batch(x, location=True)
+        counts = cell_counts(law.cdf_batch(x, loc, scale, None), s)
+        r_obs = standardised_maximum(divergence_map(counts, np.full(s, 1 / s)).statistic, table.reference)
+        p.extend(table.p_value(v) for v in r_obs)
+    rates = [np.mean(np.array(p) <= a) for a in (0.05, 0.10, 0.25)]
+    # common practice: 600 p-values, binomial bounds at about 3 standard errors around 0.05 / 0.10 / 0.25
+    assert 0.022 <= rates[0] <= 0.085
+    assert 0.065 <= rates[1] <= 0.14
+    assert 0.20 <= rates[2] <= 0.30
+
+
+def _normal_equiprobable_gradient(s: int, sigma: float) -> np.ndarray:
+    """dq_j/dmu and dq_j/dsigma for cells equiprobable under N(0, sigma^2), boundaries fixed (by hand)."""
+    z = stats.norm.ppf(np.linspace(0, 1, s + 1))
+    phi = stats.norm.pdf(z)
+    with np.errstate(invalid="ignore"):
+        zphi = np.where(np.isfinite(z), z * phi, 0.0)
+    d_mu = -(phi[1:] - phi[:-1]) / sigma
+    d_sigma = -(zphi[1:] - zphi[:-1]) / sigma
+    return np.column_stack([d_mu, d_sigma])
+
+
+def test_nrr_term_hand_worked_case():
+    """Y^2 - X^2 = V'B (J - J*)^-1 B'V for normal (mu, sigma), s = 4, computed by hand with scipy."""
+    counts = np.array([30.0, 20.0, 22.0, 28.0])
+    sigma = 2.0
+    s, n = 4, counts.sum()
+    grad = _normal_equiprobable_gradient(s, sigma)
+    info = np.diag([1.0, 2.0]) / sigma**2  # source: per-observation Fisher information of N(mu, sigma^2) (method.md 3.3)
+    v = (counts - n / s) / np.sqrt(n / s)
+    b = grad * np.sqrt(s)
+    by_hand = v @ b @ np.linalg.inv(info - b.T @ b) @ b.T @ v
+    assert nrr_term(counts, info, grad) == pytest.approx(by_hand, rel=1e-12)
+    # the noise module's analytic gradient and information give the same term
+    law = get_law("normal")
+    params = law.from_variance(sigma**2)
+    fitted = type(params)(law="normal", loc=0.0, scale=sigma, shape=None, estimated=("loc", "scale"))
+    assert nrr_term(counts, law.fisher_information(fitted), law.cell_probability_gradient(s, fitted)) == pytest.approx(by_hand, rel=1e-9)
+    del params
+
+
+def test_nrr_restores_chi_square_size(rng):
+    """method.md 3.4: iid normal, n = 500, s = 10, ML (mu, sigma): X2 + NRR has size ~0.0475 at chi2(9)."""
+    law = get_law("normal")
+    n, s, reps = 500, 10, 400
+    x = rng.standard_normal((reps, n))
+    loc, scale, _ = law.fit_batch(x, location=True)
+    u = law.cdf_batch(x, loc, scale, None)
+    counts = cell_counts(u, s)
+    x2 = divergence_map(counts, np.full(s, 1 / s), [2.0], [0.0]).statistic[:, 0, 0]
+    y2 = []
+    for i in range(reps):
+        p = type(law.fit(x[i]))(law="normal", loc=loc[i], scale=scale[i], shape=None, estimated=("loc", "scale"))
+        y2.append(x2[i] + nrr_term(counts[i], law.fisher_information(p), law.cell_probability_gradient(s, p)))
+    crit = stats.chi2.isf(0.05, s - 1)
+    rate_y2 = np.mean(np.array(y2) > crit)
+    rate_x2 = np.mean(x2 > crit)
+    # source: method.md 3.4 simulation: 0.0475 with the correction, 0.0187 for X2 alone
+    assert 0.02 <= rate_y2 <= 0.09
+    assert rate_x2 < rate_y2
