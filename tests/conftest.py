@@ -6,8 +6,11 @@ import os
 import pathlib
 import tempfile
 
-import numpy as np
-import pytest
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")  # threaded BLAS slows small optimisations on 2 cores
+
+import numpy as np  # noqa: E402
+import pytest  # noqa: E402
 
 _PREFECT_HOME = pathlib.Path(tempfile.gettempdir()) / f"fitaudit-test-prefect-{os.getuid()}"
 os.environ.setdefault("PREFECT_HOME", str(_PREFECT_HOME))

@@ -1,0 +1,872 @@
+"""Exponential smoothing in additive-error innovations state-space form, ETS(A, N|A|Ad, N|A|M).
+
+The model (Hyndman, Koehler, Ord & Snyder 2008, *Forecasting with Exponential Smoothing*,
+Springer, table 2.2, additive-error half), with level l, trend b, seasonal s and period m:
+
+    mu_t = (l_{t-1} + phi b_{t-1}) + s_{t-m}      additive season (s = 0 without a season)
+    mu_t = (l_{t-1} + phi b_{t-1}) * s_{t-m}      multiplicative season
+    y_t  = mu_t + e_t,                            e_t ~ N(0, sigma2) independent
+    l_t  = l_{t-1} + phi b_{t-1} + alpha e_t / q_t
+    b_t  = phi b_{t-1} + beta e_t / q_t
+    s_t  = s_{t-m} + gamma e_t / r_t
+
+with q_t = r_t = 1 for an additive season and q_t = s_{t-m}, r_t = l_{t-1} + phi b_{t-1} for a
+multiplicative one; phi = 1 without damping, b = 0 without a trend.
+
+Two evaluation routes, both without a Python loop over single time points:
+
+* additive season (or none): the model is linear, so the one-step errors are a time-invariant
+  filter of y minus the deterministic path d_t of the initial states,
+  ``e = lfilter(num, den, y - d)`` (:func:`error_filter`).  The initial states enter linearly,
+  so for given smoothing parameters they are the least-squares solution and are profiled out of
+  the likelihood, whose gradient is analytic;
+* multiplicative season: within one seasonal cycle the seasonal factors in use are fixed, and
+  level and trend follow Holt's linear recursion of the deseasonalised series y_t / s_{t-m}.
+  Each cycle is one vectorised linear map; the loop runs over cycles (n / m of them) and is
+  batched over parameter vectors for numerical derivatives.
+"""
+
+from __future__ import annotations
+
+import warnings
+from typing import Mapping
+
+import numpy as np
+from scipy.optimize import least_squares, minimize
+from scipy.signal import lfilter
+
+from .._validation import Interval, Options, validate_params
+from ..exceptions import ConvergenceWarning, InputError, SpecificationError
+from ._base import FitResult, ForecastModel, check_series, information_criteria
+from .registry import _register
+
+__all__ = ["ExpSmoothing", "error_filter"]
+
+#: Distance of alpha, beta/alpha and gamma/(1 - alpha) from 0 and 1 (the bounds of statsmodels'
+#: ETSModel and of R's forecast::ets).
+SMOOTHING_MARGIN = 1e-4
+#: Range of the damping parameter phi (Hyndman & Athanasopoulos, fpp2 section 7.6).
+PHI_RANGE = (0.8, 0.98)
+#: Relative step of the central differences used for gradients and the information matrix.
+_DIFF_STEP = 6e-6
+#: Number of local searches (from the best points of the starting grid); the likelihood can be multimodal.
+_LOCAL_SEARCHES = 3
+#: Stand-in for non-finite one-step errors during the multiplicative-season search (series scaled to mean 1).
+_NONFINITE_PENALTY = 1e6
+
+
+def error_filter(alpha: float, beta: float, gamma: float, phi: float, trend: bool, period: int) -> tuple[np.ndarray, np.ndarray]:
+    """Numerator and denominator of the filter from ``y - d`` to the one-step errors (additive ETS).
+
+    Parameters
+    ----------
+    alpha, beta, gamma, phi : float
+        Smoothing parameters (beta = 0 without a trend, gamma unused without a season,
+        phi = 1 without damping).
+    trend : bool
+        Whether the model has a trend component.
+    period : int
+        Seasonal period m, or 0 for a model without an (additive) season.
+
+    Returns
+    -------
+    num, den : ndarray
+        Polynomial coefficients in ascending powers of the backshift B, ``den[0] == 1``.
+
+    Notes
+    -----
+    Eliminating the states from the additive-error equations gives the ARIMA form
+    ``den(B) y_t = num(B) e_t`` with (the reduced forms of Hyndman et al. 2008, ch. 11)
+
+        num(B) = (1 - B)(1 - phi B)(1 - B^m)
+        den(B) = num(B) + alpha B (1 - phi B)(1 - B^m) + phi beta B (1 - B^m)
+                 + gamma B^m (1 - B)(1 - phi B)
+
+    (drop the factors of absent components).  With a season both polynomials vanish at B = 1:
+    the common factor (1 - B) is the redundancy between level and seasonal states and is
+    cancelled, which leaves ``num = (1 - phi B)(1 - B^m)`` and
+    ``den = (1 - B)(1 - phi B) S(B) + alpha B (1 - phi B) S(B) + phi beta B S(B) + gamma B^m (1 - phi B)``
+    with ``S(B) = 1 + B + ... + B^(m-1)``.  The one-step errors are ``e = lfilter(num, den, y - d)``,
+    d the deterministic path of the initial states, and simulation inverts this:
+    ``y = d + lfilter(den, num, e)``.
+    """
+    m = period
+    if not m:
+        if not trend:
+            return np.array([1.0, -1.0]), np.array([1.0, alpha - 1.0])
+        num = np.array([1.0, -(1.0 + phi), phi])
+        return num, num + np.array([0.0, alpha + phi * beta, -alpha * phi])
+    if not trend:
+        num = np.zeros(m + 1)
+        num[[0, m]] = 1.0, -1.0
+        den = num.copy()
+        den[1:] += alpha  # alpha B S(B)
+        den[m] += gamma  # gamma B^m
+        return num, den
+    num = np.zeros(m + 2)
+    num[[0, 1, m, m + 1]] = 1.0, -phi, -1.0, phi  # (1 - phi B)(1 - B^m)
+    den = num.copy()
+    den[1 : m + 1] += alpha + phi * beta  # alpha B S(B) + phi beta B S(B)
+    den[2 : m + 2] -= alpha * phi  # -alpha phi B^2 S(B)
+    den[m] += gamma
+    den[m + 1] -= gamma * phi  # gamma B^m (1 - phi B)
+    return num, den
+
+
+@_register
+class ExpSmoothing(ForecastModel):
+    """Exponential smoothing with additive errors: ETS(A,N,N), (A,A,N), (A,Ad,N), (A,*,A), (A,*,M).
+
+    Parameters
+    ----------
+    trend : {None, "add"}
+        Additive trend (Holt) or none.
+    damped : bool
+        Damp the trend with phi (needs ``trend="add"``).
+    seasonal : {None, "add", "mul"}
+        Additive or multiplicative seasonality (Holt-Winters) or none.
+    period : int or None
+        Seasonal period m >= 2; required with, and only with, a season.
+
+    Notes
+    -----
+    *Parameters*, in this order (absent components dropped): ``alpha, beta, gamma, phi, l0, b0,
+    s0, ..., s{m-2}, sigma2``.  ``l0, b0`` are the states at the origin (before the first
+    observation); ``s{k}`` is the seasonal state k periods before the origin, s_{-k} in Hyndman et
+    al.'s notation, so ``s0`` is used by observation m and the last one, ``s{m-1}``, by observation 1.
+
+    *Seasonal normalisation*: ``s{m-1}`` is not a parameter; it is fixed so that the m initial
+    seasonal states sum to 0 (additive) or to m (multiplicative), the convention of R's
+    forecast::ets (Hyndman's reference implementation).  statsmodels' ETSModel instead fixes
+    ``initial_seasonal.{m-1}`` (the same state) to 0 or 1.  Both describe the same fitted values:
+    adding c to every seasonal state and -c to l0 (additive), or multiplying the seasonal states
+    by c and dividing l0 and b0 by c (multiplicative), changes no prediction.
+
+    *Bounds* (the "usual" region of Hyndman & Athanasopoulos, *Forecasting: Principles and
+    Practice*, 2nd ed., section 7.6; the parametrisation of statsmodels' ETSModel):
+    ``1e-4 <= alpha <= 1 - 1e-4``, ``1e-4 <= beta/alpha <= 1 - 1e-4``,
+    ``1e-4 <= gamma/(1 - alpha) <= 1 - 1e-4`` and ``0.8 <= phi <= 0.98``.  Forecastability
+    (invertibility) is not enforced.
+
+    *Likelihood*: Gaussian with sigma2 concentrated out,
+    ``loglik = -n/2 (log(2 pi SSE/n) + 1)``, the convention of statsmodels' ETSModel.  R's
+    forecast::ets reports ``-n/2 log(SSE)``, which differs by ``-n/2 (log(2 pi / n) + 1)``, and
+    its sigma2 is ``SSE / (n - number of estimated parameters)``; ours is the MLE ``SSE / n``.
+
+    *Multiplicative season*: the update is ``s_t = s_{t-m} + gamma e_t / (l_{t-1} + phi b_{t-1})``
+    as in Hyndman et al. (2008, table 2.2) and R's forecast::ets.  statsmodels' ETSModel uses
+    ``s_t = g y_t / l_t + (1 - g) s_{t-m}`` with the updated level l_t and ``g = gamma/(1 - alpha)``,
+    which agrees to first order only; its errors match ours over the first cycle and then drift
+    apart, so its fits differ slightly (by little when gamma is small).
+
+    *Standard errors* (``FitResult.extras["bse"]``): from the Gauss-Newton information
+    ``J'J / sigma2``, J the central-difference Jacobian of the one-step errors with respect to
+    the parameters; ``bse(sigma2) = sigma2 sqrt(2 / n)``.  Parameters at a bound are listed in
+    ``extras["at_bound"]``; their standard errors are not meaningful.
+
+    For the Ljung-Box test the model counts no ARMA coefficients (:meth:`n_dynamic_params` is 0):
+    the smoothing parameters are not ARMA coefficients of a stationary model.
+
+    References
+    ----------
+    R. J. Hyndman, A. B. Koehler, J. K. Ord and R. D. Snyder (2008). *Forecasting with
+    Exponential Smoothing: The State Space Approach*. Springer.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from fitaudit.core.models.smoothing import ExpSmoothing
+    >>> spec = ExpSmoothing(trend="add", damped=True, seasonal="mul", period=7)
+    >>> spec.describe()
+    'ETS(A,Ad,M) m=7'
+    >>> spec.param_names()[:5]
+    ['alpha', 'beta', 'gamma', 'phi', 'l0']
+    """
+
+    family = "smoothing"
+    _parameter_constraints = {
+        "trend": [Options(("add",)), None],
+        "damped": [Options((True, False))],
+        "seasonal": [Options(("add", "mul")), None],
+        "period": [Interval(int, 2, None, closed="left"), None],
+    }
+
+    def __init__(self, trend=None, damped=False, seasonal=None, period=None):
+        validate_params(self, {"trend": trend, "damped": damped, "seasonal": seasonal, "period": period})
+        if damped and trend is None:
+            raise SpecificationError("ExpSmoothing: damped=True needs trend='add'; there is no trend to damp.")
+        if seasonal is not None and period is None:
+            raise SpecificationError(
+                f"ExpSmoothing: seasonal={seasonal!r} needs the seasonal period, e.g. period=7 for daily data "
+                "with a weekly pattern or period=12 for monthly data."
+            )
+        if seasonal is None and period is not None:
+            raise SpecificationError(
+                f"ExpSmoothing: period={period!r} is given but seasonal is None; set seasonal='add' or 'mul', "
+                "or drop the period."
+            )
+        self.trend = trend
+        self.damped = bool(damped)
+        self.seasonal = seasonal
+        self.period = None if period is None else int(period)
+
+    # -- description ------------------------------------------------------------------------
+    def describe(self) -> str:
+        """Short name in Hyndman et al.'s taxonomy, e.g. ``ETS(A,Ad,M) m=7``."""
+        trend = "N" if self.trend is None else ("Ad" if self.damped else "A")
+        season = {None: "N", "add": "A", "mul": "M"}[self.seasonal]
+        return f"ETS(A,{trend},{season})" + (f" m={self.period}" if self.period else "")
+
+    def seasonal_period(self) -> int:
+        """The seasonal period m, or 1 without a season."""
+        return self.period or 1
+
+    def n_dynamic_params(self) -> int:
+        """0: exponential smoothing has no ARMA coefficients to deduct from the Ljung-Box df."""
+        return 0
+
+    def _smoothing_names(self) -> list[str]:
+        names = ["alpha"]
+        if self.trend:
+            names.append("beta")
+        if self.seasonal:
+            names.append("gamma")
+        if self.damped:
+            names.append("phi")
+        return names
+
+    def _state_names(self) -> list[str]:
+        names = ["l0"]
+        if self.trend:
+            names.append("b0")
+        if self.seasonal:
+            names += [f"s{k}" for k in range(self.period - 1)]
+        return names
+
+    def param_names(self, exog_names: list[str] | None = None) -> list[str]:
+        """``alpha, [beta], [gamma], [phi], l0, [b0], [s0 .. s{m-2}], sigma2``."""
+        return self._smoothing_names() + self._state_names() + ["sigma2"]
+
+    def min_length(self, n_exog: int = 0) -> int:
+        """Four observations more than parameters, and at least two full seasonal cycles."""
+        return max(len(self.param_names()) + 4, 2 * (self.period or 0))
+
+    # -- parameter vectors -----------------------------------------------------------------
+    def _columns(self, P: np.ndarray) -> dict[str, np.ndarray]:
+        """Split a (B, d) batch of parameter vectors (param order, no sigma2) into named columns."""
+        names = self.param_names()[:-1]
+        col = {name: P[:, i] for i, name in enumerate(names)}
+        B = P.shape[0]
+        return {
+            "alpha": col["alpha"],
+            "beta": col.get("beta", np.zeros(B)),
+            "gamma": col.get("gamma", np.zeros(B)),
+            "phi": col.get("phi", np.ones(B)),
+            "l0": col["l0"],
+            "b0": col.get("b0", np.zeros(B)),
+            "seasonal": P[:, len(names) - (self.period - 1):] if self.seasonal else np.zeros((B, 0)),
+        }
+
+    def _first_cycle(self, free: np.ndarray) -> np.ndarray:
+        """Seasonal factors used by observations 1..m, from the free states s0..s{m-2} (B, m-1)."""
+        total = self.period if self.seasonal == "mul" else 0.0
+        full = np.concatenate([free, (total - free.sum(axis=1))[:, None]], axis=1)
+        return full[:, ::-1]
+
+    def _to_natural(self, z: np.ndarray) -> np.ndarray:
+        """Optimiser coordinates (alpha, beta/alpha, gamma/(1-alpha), phi, states) to parameters."""
+        P = np.array(z, dtype=float, copy=True)
+        names = self._smoothing_names()
+        alpha = P[..., 0]
+        if "beta" in names:
+            P[..., names.index("beta")] *= alpha
+        if "gamma" in names:
+            P[..., names.index("gamma")] *= 1.0 - alpha
+        return P
+
+    def _to_optimiser(self, p: np.ndarray) -> np.ndarray:
+        z = np.array(p, dtype=float, copy=True)
+        names = self._smoothing_names()
+        alpha = z[..., 0]
+        if "beta" in names:
+            z[..., names.index("beta")] /= alpha
+        if "gamma" in names:
+            z[..., names.index("gamma")] /= 1.0 - alpha
+        return z
+
+    def _chain_rule(self, z: np.ndarray, grad: np.ndarray) -> np.ndarray:
+        """Gradient in optimiser coordinates from the gradient in (alpha, beta, gamma, phi)."""
+        names = self._smoothing_names()
+        out = grad.copy()
+        alpha = z[0]
+        if "beta" in names:
+            i = names.index("beta")
+            out[0] += z[i] * grad[i]
+            out[i] = alpha * grad[i]
+        if "gamma" in names:
+            i = names.index("gamma")
+            out[0] -= z[i] * grad[i]
+            out[i] = (1.0 - alpha) * grad[i]
+        return out
+
+    def _bounds(self) -> list[tuple[float | None, float | None]]:
+        unit = (SMOOTHING_MARGIN, 1.0 - SMOOTHING_MARGIN)
+        smoothing = [PHI_RANGE if name == "phi" else unit for name in self._smoothing_names()]
+        return smoothing + [(None, None)] * len(self._state_names())
+
+    # -- one-step errors -------------------------------------------------------------------
+    def _deterministic_path(self, row: np.ndarray, n: int) -> np.ndarray:
+        """d_t = l0 + b0 (phi + ... + phi^t) + s_{t-m}: the predictions when every error is zero (additive)."""
+        phi = self._smoothing_values(row)["phi"]
+        states = row[len(self._smoothing_names()):]
+        path = np.full(n, states[0])
+        if self.trend:
+            path += states[1] * np.cumsum(phi ** np.arange(1, n + 1))
+        if self.seasonal:
+            path += np.resize(self._first_cycle(states[None, -(self.period - 1):])[0], n)
+        return path
+
+    def _smoothing_values(self, theta: np.ndarray) -> dict[str, float]:
+        """alpha, beta, gamma, phi from the leading entries of a parameter vector (absent: 0, 0, 0, 1)."""
+        values = {"alpha": 0.0, "beta": 0.0, "gamma": 0.0, "phi": 1.0}
+        values.update(zip(self._smoothing_names(), map(float, theta)))
+        return values
+
+    def _additive_filter(self, c: Mapping[str, float]) -> tuple[np.ndarray, np.ndarray]:
+        return error_filter(c["alpha"], c["beta"], c["gamma"], c["phi"], bool(self.trend), self.period or 0)
+
+    def _additive_errors(self, y: np.ndarray, row: np.ndarray) -> np.ndarray:
+        num, den = self._additive_filter(self._smoothing_values(row))
+        return lfilter(num, den, y - self._deterministic_path(row, y.size))
+
+    def _multiplicative_errors(self, y: np.ndarray, P: np.ndarray) -> np.ndarray:
+        """One-step errors of a (B, d) batch of parameter vectors, shape (B, n); see the module notes.
+
+        Within a cycle the seasonal factors S in use are known; with u = y / S, level and trend
+        follow Holt's recursion x_t = A x_{t-1} + g u_t, L_t = w' x_{t-1}, where
+        A = [[1-alpha, phi(1-alpha)], [-beta, phi(1-beta)]], g = (alpha, beta), w = (1, phi).
+        Then e_t = S_t (u_t - L_t) and s_t = S_t (1 + gamma (u_t - L_t) / L_t).
+        """
+        m = self.period
+        c = self._columns(P)
+        K = _cycle_operator(c, m)
+        cycles = -(-y.size // m)
+        Y = np.zeros(cycles * m)
+        Y[: y.size] = y
+        Y = Y.reshape(cycles, m)
+        S = self._first_cycle(c["seasonal"])
+        v = np.zeros((P.shape[0], m + 2, 1))  # (level, trend, u_1..u_m) of the current cycle
+        v[:, 0, 0], v[:, 1, 0] = c["l0"], c["b0"]
+        E = np.empty((P.shape[0], cycles, m))
+        gamma = c["gamma"][:, None]
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            for k in range(cycles):
+                u = Y[k] / S
+                v[:, 2:, 0] = u
+                out = K @ v
+                eps = u - out[:, :m, 0]
+                E[:, k] = S * eps
+                S = S * (1.0 + gamma * eps / out[:, :m, 0])
+                v[:, :2] = out[:, m:]
+        return E.reshape(P.shape[0], -1)[:, : y.size]
+
+    def _batch_errors(self, y: np.ndarray, P: np.ndarray) -> np.ndarray:
+        """One-step errors (B, n) for a batch of natural parameter vectors (param order, no sigma2)."""
+        if self.seasonal == "mul":
+            return self._multiplicative_errors(y, P)
+        with np.errstate(over="ignore", invalid="ignore"):
+            return np.stack([self._additive_errors(y, row) for row in P])
+
+    def _validate_y(self, y, min_length: int) -> np.ndarray:
+        y = check_series(y, self.describe(), min_length)
+        if self.seasonal == "mul" and (y <= 0).any():
+            bad = np.nonzero(y <= 0)[0]
+            raise InputError(
+                f"{self.describe()}: multiplicative seasonality needs a strictly positive series, but it has "
+                f"{bad.size} value(s) <= 0 (first at position {int(bad[0])}, value {y[bad[0]]:g}). "
+                "Use seasonal='add', or shift or transform the series."
+            )
+        return y
+
+    @staticmethod
+    def _reject_exog(exog, what: str) -> None:
+        if exog is not None:
+            raise SpecificationError(
+                f"ExpSmoothing.{what}: exponential smoothing takes no exogenous inputs; drop exog, or register "
+                "the series with family 'arima' (regression with ARIMA errors) to use them."
+            )
+
+    def errors(self, y, params: Mapping[str, float], exog=None) -> np.ndarray:
+        """One-step-ahead errors ``y_t - mu_t`` of frozen parameters, from the states at the series start.
+
+        Parameters
+        ----------
+        y : array_like, shape (n,)
+            The series; its first observation follows the origin of ``l0, b0, s*``.
+        params : mapping
+            Exactly :meth:`param_names` (``sigma2`` is required but unused).
+        exog : None
+            Not supported.
+
+        Returns
+        -------
+        ndarray, shape (n,)
+            The one-step errors (all defined).
+
+        Raises
+        ------
+        InputError
+            Bad series (see :func:`check_series`), or a non-positive value under a
+            multiplicative season.
+        SpecificationError
+            Parameters that do not match the spec, or that make the error recursion overflow.
+        """
+        self._reject_exog(exog, "errors")
+        y = self._validate_y(y, 1)
+        vec = self._check_params(params, [])[:-1]
+        e = self._batch_errors(y, vec[None, :])[0]
+        if not np.isfinite(e).all():
+            raise SpecificationError(
+                f"{self.describe()}: the one-step errors overflow with parameters {dict(params)} (the level or the "
+                "error recursion is unstable on this series); refit the model."
+            )
+        return e
+
+    # -- estimation --------------------------------------------------------------------------
+    def fit(self, y, exog=None) -> FitResult:
+        """Maximum-likelihood fit within the usual bounds (see the class notes).
+
+        Parameters
+        ----------
+        y : array_like, shape (n,)
+            The series: finite, not constant, at least :meth:`min_length` long, and positive for
+            a multiplicative season.
+        exog : None
+            Not supported (raises :class:`SpecificationError`).
+
+        Returns
+        -------
+        FitResult
+            ``params`` in :meth:`param_names` order, ``residuals`` = :meth:`errors` at them,
+            ``extras["bse"]`` and ``extras["at_bound"]``.
+
+        Warns
+        -----
+        ConvergenceWarning
+            When the optimiser stops without meeting its criterion.
+
+        Notes
+        -----
+        The Gaussian likelihood with sigma2 concentrated out is maximised by minimising the sum
+        of squared one-step errors.  Additive season (or none): the initial states are profiled
+        out by least squares; L-BFGS-B (analytic gradient) maximises the profile likelihood over
+        the smoothing parameters from the three best points of a small grid, and the best local
+        maximum is kept (the likelihood can be multimodal).  Multiplicative season: bounded
+        nonlinear least squares over all parameters (trust-region reflective, central-difference
+        Jacobian) on the series divided by its mean, from the distinct additive-season fits
+        (seasonal states converted to factors ``1 + s / l0``) and from the best of them with
+        heavy smoothing; the best is kept.
+        """
+        self._reject_exog(exog, "fit")
+        y = self._validate_y(y, self.min_length())
+        if self.seasonal == "mul":
+            vec, res = self._fit_multiplicative(y)
+        else:
+            vec, res = self._fit_additive(y)
+        return self._result(y, vec, res)
+
+    def _fit_additive(self, y: np.ndarray):
+        return self._additive_searches(y)[0]
+
+    def _additive_searches(self, y: np.ndarray) -> list[tuple[np.ndarray, object]]:
+        """Local maxima of the profile likelihood from the best grid points, best first.
+
+        Each entry is (parameter vector without sigma2, scipy OptimizeResult).
+        """
+        profile = _AdditiveProfile(self, y)
+        bounds = self._bounds()[: len(self._smoothing_names())]
+
+        def objective(z: np.ndarray) -> float:
+            sse = profile(self._to_natural(np.asarray(z, dtype=float)[None, :])[0])[0]
+            return 0.5 * y.size * np.log(sse) if np.isfinite(sse) and sse > 0 else 1e300
+
+        def value_and_gradient(z: np.ndarray) -> tuple[float, np.ndarray]:
+            theta = self._to_natural(z[None, :])[0]
+            sse, grad, _ = profile.value_and_gradient(theta)
+            if not (np.isfinite(sse) and sse > 0):
+                return 1e300, np.zeros_like(z)
+            return 0.5 * y.size * np.log(sse), 0.5 * y.size / sse * self._chain_rule(z, grad)
+
+        grid = self._start_grid()
+        values = np.array([objective(z) for z in grid])
+        runs = [
+            minimize(value_and_gradient, grid[i], method="L-BFGS-B", jac=True, bounds=bounds,
+                     options={"ftol": 1e-13, "gtol": 1e-9, "maxiter": 500})
+            for i in np.argsort(values, kind="stable")[:_LOCAL_SEARCHES]
+        ]
+        runs.sort(key=lambda r: (_rounded(r.fun), not r.success))  # near-ties: a converged run first
+        out = []
+        for res in runs:
+            theta = self._to_natural(res.x[None, :])[0]
+            out.append((np.concatenate([theta, profile(theta)[1]]), res))
+        return out
+
+    def _start_grid(self) -> list[np.ndarray]:
+        """Starting points (optimiser coordinates) for the smoothing parameters."""
+        axes = {"alpha": (0.05, 0.2, 0.5, 0.8), "beta": (0.01, 0.1, 0.4), "gamma": (0.01, 0.1, 0.4), "phi": (0.85, 0.95)}
+        grids = np.meshgrid(*[axes[name] for name in self._smoothing_names()], indexing="ij")
+        return list(np.stack([g.ravel() for g in grids], axis=1))
+
+    def _fit_multiplicative(self, y: np.ndarray):
+        scale = float(np.mean(y))
+        ys = y / scale
+        names = self.param_names()[:-1]
+        bounds = self._bounds()
+
+        lower = np.array([-np.inf if lo is None else lo for lo, _ in bounds])
+        upper = np.array([np.inf if hi is None else hi for _, hi in bounds])
+
+        def residuals(z: np.ndarray) -> np.ndarray:
+            e = self._multiplicative_errors(ys, self._to_natural(z[None, :]))[0]
+            return np.where(np.isfinite(e), e, _NONFINITE_PENALTY)
+
+        def jacobian(z: np.ndarray) -> np.ndarray:
+            Z, step = _central_batch(z)
+            E = self._multiplicative_errors(ys, self._to_natural(Z[1:]))
+            J = (E[0::2] - E[1::2]).T / (2.0 * step)
+            return np.where(np.isfinite(J), J, 0.0)
+
+        runs = [
+            least_squares(residuals, np.clip(self._to_optimiser(start), lower, upper), jac=jacobian,
+                          bounds=(lower, upper), method="trf", x_scale="jac", ftol=1e-12, xtol=1e-12, gtol=1e-10,
+                          max_nfev=500)
+            for start in self._multiplicative_starts(ys)
+        ]
+        res = min(runs, key=lambda r: (_rounded(r.cost), not r.success))
+        vec = self._to_natural(res.x[None, :])[0]
+        for name in ("l0", "b0"):
+            if name in names:
+                vec[names.index(name)] *= scale
+        return vec, res
+
+    def _multiplicative_starts(self, y: np.ndarray) -> list[np.ndarray]:
+        """Starting vectors: the distinct additive-season fits with seasonal factors ``1 + s / l0``
+        (mean one), and the best of them with heavy smoothing (alpha 0.1, beta/alpha and
+        gamma/(1 - alpha) 0.01, phi 0.97), which escapes optima with the trend smoothing at its bound.
+        """
+        additive = ExpSmoothing(trend=self.trend, damped=self.damped, seasonal="add", period=self.period)
+        m = self.period
+        k = len(self._smoothing_names())
+        starts: list[np.ndarray] = []
+        for vec, _ in additive._additive_searches(y):
+            if any(np.allclose(vec[:k], s[:k], atol=1e-3) for s in starts):
+                continue
+            level = vec[k]
+            offsets = additive._first_cycle(vec[None, -(m - 1):])[0][::-1]  # s0..s{m-1}
+            factors = np.clip(1.0 + offsets / level, 0.05, None) if level > 0 else np.ones(m)
+            factors *= m / factors.sum()
+            start = vec.copy()
+            start[-(m - 1):] = factors[:-1]
+            starts.append(start)
+        heavy = self._to_optimiser(starts[0])
+        heavy[:k] = [0.97 if name == "phi" else (0.1 if name == "alpha" else 0.01) for name in self._smoothing_names()]
+        starts.insert(1, self._to_natural(heavy))
+        return starts[:_LOCAL_SEARCHES]
+
+    def _result(self, y: np.ndarray, vec: np.ndarray, res) -> FitResult:
+        n = y.size
+        residuals = self._batch_errors(y, vec[None, :])[0]
+        sse = float(residuals @ residuals)
+        if not np.isfinite(sse) or sse <= 0:
+            raise SpecificationError(
+                f"{self.describe()}: the fit produced non-finite or zero errors; the series may be deterministic "
+                "or unsuitable for this model (try another trend or season)."
+            )
+        sigma2 = sse / n
+        loglik = -0.5 * n * (np.log(2.0 * np.pi * sigma2) + 1.0)
+        names = self.param_names()
+        params = {name: float(v) for name, v in zip(names[:-1], vec)} | {"sigma2": sigma2}
+        aic, bic = information_criteria(loglik, len(names), n)
+        if not res.success:
+            warnings.warn(
+                f"{self.describe()}: the optimiser stopped without converging ({res.message}); check the series for "
+                "level shifts or outliers, or choose a simpler trend or season.",
+                ConvergenceWarning,
+                stacklevel=3,
+            )
+        return FitResult(
+            spec=ExpSmoothing(**self.get_params()),
+            params=params,
+            loglik=float(loglik),
+            sigma2=sigma2,
+            aic=aic,
+            bic=bic,
+            nobs=n,
+            residuals=residuals,
+            converged=bool(res.success),
+            message=str(res.message),
+            iterations=int(res.nfev),
+            extras={"bse": self._standard_errors(y, vec, sigma2), "at_bound": self._at_bound(vec)},
+        )
+
+    def _standard_errors(self, y: np.ndarray, vec: np.ndarray, sigma2: float) -> dict[str, float]:
+        """sqrt of diag(sigma2 (J'J)^-1), J the central-difference Jacobian of the errors."""
+        Z, step = _central_batch(vec)
+        E = self._batch_errors(y, Z)
+        J = (E[1::2] - E[2::2]).T / (2.0 * step)
+        names = self.param_names()
+        with np.errstate(invalid="ignore"):
+            try:
+                cov = sigma2 * np.linalg.inv(J.T @ J)
+                bse = np.sqrt(np.diag(cov))
+            except np.linalg.LinAlgError:
+                bse = np.full(vec.size, np.nan)
+        out = {name: float(b) for name, b in zip(names[:-1], bse)}
+        out["sigma2"] = float(sigma2 * np.sqrt(2.0 / y.size))
+        return out
+
+    def _at_bound(self, vec: np.ndarray) -> list[str]:
+        z = self._to_optimiser(vec[None, :])[0]
+        names = self._smoothing_names()
+        hits = []
+        for i, (lo, hi) in enumerate(self._bounds()[: len(names)]):
+            if min(abs(z[i] - lo), abs(z[i] - hi)) < 1e-6:
+                hits.append(names[i])
+        return hits
+
+    # -- simulation ----------------------------------------------------------------------------
+    def simulate(self, params: Mapping[str, float], n: int, rng: np.random.Generator, exog=None, innovations=None) -> np.ndarray:
+        """Simulate n observations from the states in ``params`` (l0, b0, s*) forward.
+
+        Parameters
+        ----------
+        params : mapping
+            Exactly :meth:`param_names`.
+        n : int
+            Number of observations.
+        rng : numpy.random.Generator
+            Source of N(0, sigma2) innovations when ``innovations`` is None.
+        exog : None
+            Not supported.
+        innovations : array_like, shape (n,), optional
+            The errors e_1..e_n, used as given.
+
+        Returns
+        -------
+        ndarray, shape (n,)
+
+        Notes
+        -----
+        Additive season (or none): ``y = d + lfilter(den, num, e)``, the deterministic path of
+        the initial states plus the inverse of the error filter (:func:`error_filter`).
+        Multiplicative season: cycle by cycle, solving the (unit lower-triangular) within-cycle
+        system for the levels.
+        """
+        self._reject_exog(exog, "simulate")
+        vec = self._check_params(params, [])
+        e = _innovations(n, rng, vec[-1], innovations, self.describe())
+        row = vec[:-1]
+        if self.seasonal != "mul":
+            num, den = self._additive_filter(self._smoothing_values(row))
+            return self._deterministic_path(row, n) + lfilter(den, num, e)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            y = self._simulate_multiplicative(row, e)
+        if not np.isfinite(y).all():
+            raise SpecificationError(
+                f"{self.describe()}: the simulated level reached zero (the seasonal update divides by it); "
+                "the noise is too large for multiplicative seasonality at these parameters."
+            )
+        return y
+
+    def _simulate_multiplicative(self, row: np.ndarray, e: np.ndarray) -> np.ndarray:
+        P = row[None, :]
+        m = self.period
+        c = self._columns(P)
+        K = _cycle_operator(c, m)[0]
+        cycles = -(-e.size // m)
+        E = np.zeros(cycles * m)
+        E[: e.size] = e
+        E = E.reshape(cycles, m)
+        # L = P x + T u with u = L + eps, so L = (I - T)^-1 (P x + T eps)
+        solve = np.linalg.inv(np.eye(m) - K[:m, 2:])
+        from_state = solve @ K[:m, :2]
+        from_error = solve @ K[:m, 2:]
+        S = self._first_cycle(c["seasonal"])[0]
+        x = np.array([c["l0"][0], c["b0"][0]])
+        Y = np.empty((cycles, m))
+        gamma = c["gamma"][0]
+        for k in range(cycles):
+            eps = E[k] / S
+            L = from_state @ x + from_error @ eps
+            u = L + eps
+            Y[k] = u * S
+            S = S * (1.0 + gamma * eps / L)
+            x = K[m:] @ np.concatenate([x, u])
+        return Y.ravel()[: e.size]
+
+
+class _AdditiveProfile:
+    """Profile sum of squares of additive ETS, the initial states solved by least squares, and its gradient.
+
+    The errors are ``e = lfilter(num, den, y - d)`` with the deterministic path d linear in the
+    states (:meth:`ExpSmoothing._deterministic_path`), so for given smoothing parameters the states
+    are the least-squares coefficients of the filtered path components.  By time invariance the
+    filtered seasonal indicators are shifts of one filtered indicator comb, so only y, the level,
+    the trend and one comb are filtered.
+
+    Gradient (envelope theorem, states at their least-squares values): with w_v and w_e the
+    inputs y - d and the errors e passed through 1 / den,
+    ``dSSE/dtheta = 2 sum_j [dnum_j/dtheta (e . w_v shifted by j) - dden_j/dtheta (e . w_e shifted by j)]``
+    plus, for phi, ``2 e . lfilter(num, den, dv/dphi)``.  num and den are affine in each smoothing
+    parameter, so their derivatives are exact unit differences of :func:`error_filter`.
+    """
+
+    def __init__(self, spec: "ExpSmoothing", y: np.ndarray):
+        self.spec = spec
+        self.y = y
+        n = y.size
+        self.powers = np.arange(1, n + 1)
+        self.inputs = np.zeros((4, n))  # y, level, trend, seasonal comb
+        self.inputs[0] = y
+        self.inputs[1] = 1.0
+        self.m = spec.period if spec.seasonal else 0
+        if self.m:
+            self.inputs[3, :: self.m] = 1.0
+            self.comb_shifts = _lag_index(n, self.m)
+        self.rows = [0, 1] + ([2] if spec.trend else []) + ([3] if self.m else [])
+        self.n_states = len(spec._state_names())
+        n_coefficients = (self.m or 1) + 1 + bool(spec.trend)  # length of num and den
+        self.coefficient_shifts = _lag_index(n, n_coefficients)
+
+    def __call__(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
+        """(SSE, least-squares states) at smoothing parameters ``theta`` (param order)."""
+        sse, states, _ = self._solve(theta)
+        return sse, states
+
+    def _solve(self, theta: np.ndarray):
+        spec = self.spec
+        c = spec._smoothing_values(theta)
+        num, den = spec._additive_filter(c)
+        if spec.trend:
+            self.inputs[2] = np.cumsum(c["phi"] ** self.powers)
+        with np.errstate(over="ignore", invalid="ignore"):
+            F = lfilter(num, den, self.inputs[self.rows], axis=-1)
+        if not np.isfinite(F).all():
+            return np.inf, np.zeros(self.n_states), None
+        r = F[0]
+        columns = [F[1:3] if spec.trend else F[1:2]]
+        if self.m:
+            shifted = _lagged(F[-1], self.comb_shifts)
+            columns.append((shifted[:, self.m - 1 : 0 : -1] - shifted[:, :1]).T)
+        M = np.concatenate(columns, axis=0).T
+        states = _least_squares(M, r)
+        e = r - M @ states
+        return float(e @ e), states, (c, num, den, e)
+
+    def value_and_gradient(self, theta: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        """(SSE, dSSE/dtheta, states) at smoothing parameters ``theta`` (param order)."""
+        sse, states, parts = self._solve(theta)
+        if parts is None or not np.isfinite(sse):
+            return np.inf, np.zeros(len(theta)), states
+        spec = self.spec
+        c, num, den, e = parts
+        row = np.concatenate([theta, states])
+        with np.errstate(over="ignore", invalid="ignore"):
+            w = lfilter([1.0], den, np.stack([self.y - spec._deterministic_path(row, self.y.size), e]), axis=-1)
+        lagged_products = np.stack([e @ _lagged(w[0], self.coefficient_shifts), e @ _lagged(w[1], self.coefficient_shifts)])
+        grad = np.empty(len(theta))
+        for i, name in enumerate(spec._smoothing_names()):
+            shifted = dict(c)
+            shifted[name] += 1.0
+            num1, den1 = spec._additive_filter(shifted)
+            grad[i] = (num1 - num) @ lagged_products[0] - (den1 - den) @ lagged_products[1]
+            if name == "phi":
+                dpath = states[1] * np.cumsum(self.powers * c["phi"] ** (self.powers - 1))
+                grad[i] -= e @ lfilter(num, den, dpath)
+        return sse, 2.0 * grad, states
+
+
+def _lag_index(n: int, lags: int) -> np.ndarray:
+    """Index into ``concatenate([zeros(lags), x])`` giving the (n, lags) matrix x[t - j] (0 before the start)."""
+    return lags + np.arange(n)[:, None] - np.arange(lags)[None, :]
+
+
+def _lagged(x: np.ndarray, index: np.ndarray) -> np.ndarray:
+    return np.concatenate([np.zeros(index.shape[1]), x])[index]
+
+
+def _least_squares(M: np.ndarray, r: np.ndarray) -> np.ndarray:
+    """Least-squares coefficients by column-scaled normal equations (lstsq if singular).
+
+    The residual is computed afterwards from the coefficients, so coefficient errors affect the
+    sum of squares only to second order.
+    """
+    scale = np.sqrt(np.einsum("ij,ij->j", M, M))
+    scale[scale == 0] = 1.0
+    Ms = M / scale
+    try:
+        return np.linalg.solve(Ms.T @ Ms, Ms.T @ r) / scale
+    except np.linalg.LinAlgError:
+        return np.linalg.lstsq(M, r, rcond=None)[0]
+
+
+def _cycle_operator(c: Mapping[str, np.ndarray], m: int) -> np.ndarray:
+    """One seasonal cycle of Holt's recursion as a linear map, batched: (B, m + 2, m + 2).
+
+    Acting on (l, b, u_1, ..., u_m) (states at the cycle start, deseasonalised observations),
+    rows 0..m-1 give the predicted levels L_i = w' A^i x + sum_{j<i} w' A^(i-1-j) g u_j and the
+    last two rows the states after the cycle, A^m x + sum_j A^(m-1-j) g u_j, with
+    A = [[1-alpha, phi(1-alpha)], [-beta, phi(1-beta)]], g = (alpha, beta), w = (1, phi).
+    """
+    alpha, beta, phi = c["alpha"], c["beta"], c["phi"]
+    B = alpha.size
+    A = np.empty((B, 2, 2))
+    A[:, 0, 0] = 1.0 - alpha
+    A[:, 0, 1] = phi * (1.0 - alpha)
+    A[:, 1, 0] = -beta
+    A[:, 1, 1] = phi * (1.0 - beta)
+    g = np.stack([alpha, beta], axis=1)
+    w = np.stack([np.ones(B), phi], axis=1)
+    powers = np.empty((m + 1, B, 2, 2))
+    powers[0] = np.eye(2)
+    for i in range(m):  # over the period, not over time
+        powers[i + 1] = powers[i] @ A
+    K = np.zeros((B, m + 2, m + 2))
+    K[:, :m, :2] = np.einsum("bk,ibkl->bil", w, powers[:m])
+    impulse = np.einsum("bil,bl->bi", K[:, :m, :2], g)  # w' A^i g
+    rows, cols = np.tril_indices(m, -1)
+    K[:, rows, 2 + cols] = impulse[:, rows - 1 - cols]
+    K[:, m:, :2] = powers[m]
+    K[:, m:, 2:] = np.einsum("jbkl,bl->bkj", powers[m - 1 :: -1][:m], g)
+    return K
+
+
+def _rounded(value: float) -> float:
+    """An objective value to 10 significant digits, so that numerically equal optima compare equal."""
+    return float(f"{value:.10g}")
+
+
+def _central_batch(z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Rows z, z + h_1 e_1, z - h_1 e_1, z + h_2 e_2, ... and the steps h."""
+    step = _DIFF_STEP * np.maximum(1.0, np.abs(z))
+    d = z.size
+    Z = np.repeat(z[None, :], 2 * d + 1, axis=0)
+    Z[1 + 2 * np.arange(d), np.arange(d)] += step
+    Z[2 + 2 * np.arange(d), np.arange(d)] -= step
+    return Z, step
+
+
+def _innovations(n: int, rng: np.random.Generator, sigma2: float, innovations, owner: str) -> np.ndarray:
+    """The innovations as given, or N(0, sigma2) draws; clear errors on bad lengths or variances."""
+    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
+        raise InputError(f"{owner}: the number of observations to simulate must be a positive integer; got {n!r}.")
+    if innovations is not None:
+        e = np.asarray(innovations, dtype=float)
+        if e.shape != (n,):
+            raise InputError(f"{owner}: innovations have shape {e.shape}, expected ({n},).")
+        if not np.isfinite(e).all():
+            raise InputError(f"{owner}: innovations contain NaN or infinite values.")
+        return e
+    if not sigma2 > 0:
+        raise SpecificationError(f"{owner}: sigma2 must be positive to draw innovations; got {sigma2!r}.")
+    return rng.normal(0.0, np.sqrt(sigma2), size=n)
