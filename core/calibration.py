@@ -29,6 +29,7 @@ built.  p = (1 + #{T* >= T_obs}) / (R + 1).
 from __future__ import annotations
 
 import hashlib
+import threading
 from dataclasses import dataclass, field
 from typing import Callable, Hashable
 
@@ -168,17 +169,28 @@ class CalibrationCache:
     tables: dict = field(default_factory=dict)
     hits: int = 0
     builds: int = 0
+    _lock: threading.Lock = field(default_factory=threading.Lock, repr=False, compare=False)
 
     def get(self, key: tuple, build: Callable[[], NullTable]) -> NullTable:
-        """The table for ``key``; ``build`` runs only when the key is new."""
-        table = self.tables.get(key)
-        if table is None:
-            table = build()
-            self.tables[key] = table
-            self.builds += 1
-        else:
-            self.hits += 1
-        return table
+        """The table for ``key``; ``build`` runs only when the key is new (thread-safe)."""
+        with self._lock:
+            table = self.tables.get(key)
+            if table is None:
+                table = build()
+                self.tables[key] = table
+                self.builds += 1
+            else:
+                self.hits += 1
+            return table
+
+    def __getstate__(self) -> dict:
+        state = dict(self.__dict__)
+        state.pop("_lock", None)
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._lock = threading.Lock()
 
     def merge(self, other: "CalibrationCache") -> None:
         """Add the tables of ``other`` that this cache lacks."""

@@ -191,6 +191,16 @@ class ForecastModel(abc.ABC):
     def errors(self, y, params: Mapping[str, float], exog=None) -> np.ndarray:
         """One-step-ahead forecast errors of the given parameters, aligned to ``y`` (NaN where undefined)."""
 
+    def production_errors(self, y, params: Mapping[str, float], exog=None) -> np.ndarray:
+        """One-step errors of frozen production parameters on a new stretch of data.
+
+        Equal to :meth:`errors` for families whose parameters hold no initial states (ARIMA with
+        its exact initialisation, nonlinear autoregressions).  Families whose parameters include
+        initial states tied to the origin of the original fit window override this: the states
+        are re-estimated on ``y`` with every other parameter frozen.
+        """
+        return self.errors(y, params, exog)
+
     @abc.abstractmethod
     def simulate(self, params: Mapping[str, float], n: int, rng: np.random.Generator, exog=None, innovations=None) -> np.ndarray:
         """Simulate ``n`` observations from the model with the given parameters.

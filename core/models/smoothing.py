@@ -432,6 +432,48 @@ class ExpSmoothing(ForecastModel):
             )
         return e
 
+    def production_errors(self, y, params: Mapping[str, float], exog=None) -> np.ndarray:
+        """One-step errors of frozen smoothing parameters with the initial states re-estimated on ``y``.
+
+        The stored ``l0, b0, s*`` describe the origin of the window the production version was
+        fitted on; on a later stretch of data (which may start on another weekday) they would
+        misalign the season.  Here ``alpha, beta, gamma, phi`` stay frozen and the initial states
+        minimise the sum of squared one-step errors on ``y``: by linear least squares for an
+        additive season (the same profile as in :meth:`fit`), by nonlinear least squares from the
+        stored states for a multiplicative one.
+        """
+        self._reject_exog(exog, "production_errors")
+        y = self._validate_y(y, self.min_length())
+        vec = self._check_params(params, [])[:-1]
+        k = len(self._smoothing_names())
+        theta = vec[:k]
+        if self.seasonal == "mul":
+            from scipy.optimize import least_squares
+
+            scale = float(np.mean(y))
+
+            def resid(states: np.ndarray) -> np.ndarray:
+                e = self._batch_errors(y / scale, np.concatenate([theta, states])[None, :])[0]
+                return np.where(np.isfinite(e), e, 1e6)
+
+            start = vec[k:].copy()
+            start[0] = start[0] / scale
+            if self.trend:
+                start[1] = start[1] / scale
+            sol = least_squares(resid, start, method="trf")
+            states = sol.x.copy()
+            states[0] *= scale
+            if self.trend:
+                states[1] *= scale
+        else:
+            _, states = _AdditiveProfile(self, y)(theta)
+        e = self._batch_errors(y, np.concatenate([theta, states])[None, :])[0]
+        if not np.isfinite(e).all():
+            raise SpecificationError(
+                f"{self.describe()}: the one-step errors overflow with parameters {dict(params)} on this series; refit the model."
+            )
+        return e
+
     # -- estimation --------------------------------------------------------------------------
     def fit(self, y, exog=None) -> FitResult:
         """Maximum-likelihood fit within the usual bounds (see the class notes).

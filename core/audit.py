@@ -1,0 +1,864 @@
+"""The audit protocol: production check, refit check, verdict (design.md sections 1 and 4).
+
+For one series and its model entry, :func:`audit_series`
+
+1. runs the **production check** (when a production parameter version is given): the frozen
+   parameters make one-step forecasts over the whole series; the errors of the audit window (the
+   tail) go through the PIT of the noise law with the production variance, are counted in
+   equiprobable cells and scored by the divergence map; a Ljung-Box test checks independence;
+2. runs the **refit check**: the model is re-estimated on the fit window and its in-sample
+   innovations are scored the same way, with the noise parameters re-estimated;
+3. reaches a **verdict**: with a production version, ``pass`` if the production check passes,
+   otherwise ``refit`` if the refit check passes, otherwise ``respecify``; without one, ``pass``
+   or ``respecify`` from the refit check; ``insufficient`` (too little data) and ``error`` (with
+   the message) when a check cannot run.
+
+A check fails when its distribution gate or its independence gate fails, Bonferroni across the
+two: its p-value is ``min(1, 2 min(p_distribution, p_independence))``.  Across a run,
+:func:`apply_fleet_rules` adjusts these p-values (Benjamini-Hochberg by default) and escalates a
+``refit`` verdict that keeps recurring to ``respecify``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import time
+import warnings
+from dataclasses import dataclass, field
+from typing import Any, Literal, Mapping, Sequence
+
+import numpy as np
+
+from ._validation import Interval, Options, check_param
+from .calibration import (
+    CalibrationCache,
+    NullTable,
+    describe_key,
+    standardised_maximum,
+    bootstrap_table,
+    chi2_critical_value,
+    chi2_p_value,
+    key_rng,
+    nrr_term,
+    production_table,
+    refit_table,
+)
+from .cells import cell_counts, number_of_cells
+from .change import ChangeResult, locate_change
+from .diagnostics import acf, acf_band, ljung_box, ljung_box_lags, mcleod_li
+from .divergence import DEFAULT_ALPHAS, DEFAULT_BETAS, SCALINGS, DivergenceMap, divergence_map
+from .exceptions import ConvergenceWarning, FitauditError, InputError, InsufficientDataError
+from .fleet import adjust_pvalues, escalate_persistent_refit
+from .models import ForecastModel, check_series, exog_matrix, model_from_dict
+from .noise import NoiseLaw, NoiseParams, get_law
+
+__all__ = [
+    "AuditSettings",
+    "CheckResult",
+    "AuditResult",
+    "VERDICTS",
+    "audit_series",
+    "apply_fleet_rules",
+    "as_model",
+    "as_noise_law",
+]
+
+VERDICTS = ("pass", "refit", "respecify", "insufficient", "error")
+Calibration = Literal["asymptotic", "simulated", "bootstrap"]
+
+
+# --------------------------------------------------------------------------------------------
+# Settings
+# --------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class AuditSettings:
+    """Everything that fixes how a series is audited (hashable, JSON-ready via ``to_dict``).
+
+    Parameters
+    ----------
+    level : float, default 0.05
+        Significance level of a check (Bonferroni-split between its two gates).
+    calibration : {"asymptotic", "simulated", "bootstrap"}, default "simulated"
+    alphas, betas : tuple of float
+        The (alpha, beta) grid of the divergence map.
+    scaling : str, default "geometric"
+    r : float or None
+        Power-mean exponent for ``scaling="power"``.
+    replicates : int, default 999
+        Simulated data sets per null table.
+    bootstrap_replicates : int, default 199
+        Refits per model for ``calibration="bootstrap"``.
+    seed : int, default 0
+        Seed of every simulation (tables are seeded by seed and key).
+    audit_window : int, default 56
+        Length of the tail scored by the production check.
+    fit_window : int or None
+        Observations used by the refit (the most recent); None uses the whole series.
+    lb_lags : int or None
+        Ljung-Box lag; None applies the rule of design.md section 4.
+    locate_change : bool, default True
+        Locate the most likely break of a failing production check.
+    change_permutations : int, default 499
+    practical_divergence, practical_acf : float or None
+        Optional effect-size thresholds: a gate is flagged only if its p-value is significant
+        *and* its effect (``T_max / 2n``, or the largest absolute residual autocorrelation)
+        reaches the threshold.  None (default) flags on the p-value alone.
+    """
+
+    level: float = 0.05
+    calibration: Calibration = "simulated"
+    alphas: tuple = tuple(float(a) for a in DEFAULT_ALPHAS)
+    betas: tuple = tuple(float(b) for b in DEFAULT_BETAS)
+    scaling: str = "geometric"
+    r: float | None = None
+    replicates: int = 999
+    bootstrap_replicates: int = 199
+    seed: int = 0
+    audit_window: int = 56
+    fit_window: int | None = None
+    lb_lags: int | None = None
+    locate_change: bool = True
+    change_permutations: int = 499
+    practical_divergence: float | None = None
+    practical_acf: float | None = None
+
+    _parameter_constraints = {
+        "level": [Interval(float, 0.0, 0.5, "neither")],
+        "calibration": [Options(("asymptotic", "simulated", "bootstrap"))],
+        "scaling": [Options(SCALINGS)],
+        "replicates": [Interval(int, 19, None)],
+        "bootstrap_replicates": [Interval(int, 19, None)],
+        "seed": [Interval(int, 0, None)],
+        "audit_window": [Interval(int, 1, None)],
+        "fit_window": [Interval(int, 1, None), None],
+        "lb_lags": [Interval(int, 1, None), None],
+        "change_permutations": [Interval(int, 19, None)],
+        "practical_divergence": [Interval(float, 0.0, None), None],
+        "practical_acf": [Interval(float, 0.0, 1.0), None],
+    }
+
+    def __post_init__(self):
+        for name, cons in self._parameter_constraints.items():
+            check_param("AuditSettings", name, getattr(self, name), *cons)
+        object.__setattr__(self, "alphas", tuple(float(a) for a in self.alphas))
+        object.__setattr__(self, "betas", tuple(float(b) for b in self.betas))
+        if not self.alphas or not self.betas:
+            raise InputError("AuditSettings: the (alpha, beta) grid must not be empty.")
+        if any(b < 0 or b > 1 for b in self.betas):
+            raise InputError(f"AuditSettings: betas must lie in [0, 1]; got {self.betas}.")
+        if (self.scaling == "power") != (self.r is not None):
+            raise InputError("AuditSettings: give r exactly when scaling='power'.")
+
+    def to_dict(self) -> dict:
+        """Plain-Python view."""
+        return {f.name: (list(getattr(self, f.name)) if isinstance(getattr(self, f.name), tuple) else getattr(self, f.name)) for f in dataclasses.fields(self)}
+
+
+# --------------------------------------------------------------------------------------------
+# Results
+# --------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class CheckResult:
+    """One check (``production`` or ``refit``) of one series.
+
+    ``status`` is ``ok`` when the check ran; ``insufficient`` or ``error`` carry ``message``.
+    For ``ok`` checks: the divergence map, its raw maximum ``t_max`` and its standardised maximum
+    ``r_max`` (each member over its own null reference, see
+    :class:`~fitaudit.core.calibration.NullTable`) with the deciding member's ``alpha_max``,
+    ``beta_max``, ``t_at_max`` and simultaneous ``critical_value``; ``critical_grid`` holds the
+    critical value of every grid point and ``scaled_grid`` = T / critical value (the gate fails
+    when any point exceeds 1); the calibrated p-value of the distribution gate, the independence gate (Ljung-Box) with McLeod-Li
+    reported, the Bonferroni-combined ``p_value`` (``p_adjusted`` after fleet adjustment), effect
+    sizes, cell counts and the noise parameters; ``plots`` holds compact data for the report
+    (standardised-residual histogram, Q-Q points, autocorrelations).
+    """
+
+    kind: str
+    status: str
+    message: str = ""
+    n: int = 0
+    cells: int = 0
+    k: int = 0
+    noise: dict = field(default_factory=dict)
+    map: DivergenceMap | None = None
+    t_max: float = float("nan")
+    r_max: float = float("nan")
+    alpha_max: float = float("nan")
+    beta_max: float = float("nan")
+    t_at_max: float = float("nan")
+    critical_value: float = float("nan")
+    critical_grid: np.ndarray | None = None
+    scaled_grid: np.ndarray | None = None
+    p_distribution: float = float("nan")
+    calibration: dict = field(default_factory=dict)
+    members: dict = field(default_factory=dict)
+    ljung_box: dict = field(default_factory=dict)
+    mcleod_li: dict = field(default_factory=dict)
+    p_independence: float = float("nan")
+    p_value: float = float("nan")
+    p_adjusted: float | None = None
+    effect_divergence: float = float("nan")
+    effect_acf: float = float("nan")
+    counts: tuple = ()
+    window: dict = field(default_factory=dict)
+    plots: dict = field(default_factory=dict)
+    settings_level: float = 0.05
+    practical: tuple = (None, None)
+
+    @property
+    def ok(self) -> bool:
+        """True when the check ran."""
+        return self.status == "ok"
+
+    def gate_flags(self, threshold: float | None = None, adjusted: bool = False) -> tuple[bool, bool]:
+        """(distribution gate fails, independence gate fails) at ``threshold`` (default: level).
+
+        Each gate is tested at ``threshold / 2`` (Bonferroni); with ``adjusted`` the fleet-adjusted
+        p-value of the check decides and the gate with the smaller raw p-value is the one flagged.
+        A gate whose effect is below its practical threshold (when set) is not flagged.
+        """
+        if not self.ok:
+            return (False, False)
+        thr = self.settings_level if threshold is None else threshold
+        pd_, pi_ = self.p_distribution, self.p_independence
+        if adjusted and self.p_adjusted is not None:
+            significant = self.p_adjusted <= thr
+            dist = significant and (np.isnan(pi_) or pd_ <= pi_)
+            ind = significant and not dist
+        else:
+            dist = pd_ <= thr / 2
+            ind = (not np.isnan(pi_)) and pi_ <= thr / 2
+        pdiv, pacf = self.practical
+        if pdiv is not None:
+            dist = dist and self.effect_divergence >= pdiv
+        if pacf is not None:
+            ind = ind and self.effect_acf >= pacf
+        return bool(dist), bool(ind)
+
+    def passed(self, threshold: float | None = None, adjusted: bool = False) -> bool:
+        """True when the check ran and neither gate is flagged."""
+        return self.ok and not any(self.gate_flags(threshold, adjusted))
+
+    def to_dict(self) -> dict:
+        """JSON-ready view (the map as its own ``to_dict``; infinities as strings)."""
+        out = {}
+        for f in dataclasses.fields(self):
+            v = getattr(self, f.name)
+            if f.name == "map":
+                v = None if v is None else v.to_dict()
+            elif isinstance(v, tuple):
+                v = list(v)
+            out[f.name] = _plain(v)
+        return out
+
+
+@dataclass(frozen=True)
+class AuditResult:
+    """The outcome of auditing one series.
+
+    Attributes
+    ----------
+    verdict : str
+        One of ``pass``, ``refit``, ``respecify``, ``insufficient``, ``error``.
+    reasons : tuple of str
+        One plain sentence each, with the numbers behind the verdict.
+    production : CheckResult or None
+        The production check (None without a production version).
+    refit : CheckResult
+        The refit check.
+    spec : dict
+        The model spec audited.
+    noise : str
+        The noise law.
+    fitted : dict
+        The refit's parameters, log-likelihood, AIC and optimiser status.
+    production_params : dict or None
+        The frozen parameters that were checked.
+    change : ChangeResult or None
+        The most likely break of a failing production check.
+    escalated : bool
+        True when a recurring ``refit`` was escalated to ``respecify``.
+    timings : dict
+        Seconds per stage (kept out of :meth:`to_dict`, so results are reproducible byte for byte).
+    """
+
+    verdict: str
+    reasons: tuple
+    production: CheckResult | None
+    refit: CheckResult
+    spec: dict
+    noise: str
+    fitted: dict = field(default_factory=dict)
+    production_params: dict | None = None
+    change: ChangeResult | None = None
+    escalated: bool = False
+    timings: dict = field(default_factory=dict)
+
+    @property
+    def deciding_check(self) -> CheckResult:
+        """The check whose outcome the verdict reports first (production when present)."""
+        return self.production if self.production is not None else self.refit
+
+    def to_dict(self) -> dict:
+        """JSON-ready view without timings."""
+        return {
+            "verdict": self.verdict,
+            "reasons": list(self.reasons),
+            "production": None if self.production is None else self.production.to_dict(),
+            "refit": self.refit.to_dict(),
+            "spec": _plain(self.spec),
+            "noise": self.noise,
+            "fitted": _plain(self.fitted),
+            "production_params": _plain(self.production_params),
+            "change": None if self.change is None else self.change.to_dict(),
+            "escalated": self.escalated,
+        }
+
+
+def _plain(v: Any) -> Any:
+    """numpy -> Python, non-finite floats -> strings (strict JSON)."""
+    if isinstance(v, dict):
+        return {str(k): _plain(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_plain(x) for x in v]
+    if isinstance(v, np.ndarray):
+        return _plain(v.tolist())
+    if isinstance(v, (np.floating, float)):
+        f = float(v)
+        if np.isnan(f):
+            return None
+        if np.isinf(f):
+            return "inf" if f > 0 else "-inf"
+        return f
+    if isinstance(v, (np.integer,)):
+        return int(v)
+    if isinstance(v, (np.bool_,)):
+        return bool(v)
+    return v
+
+
+# --------------------------------------------------------------------------------------------
+# Helpers
+# --------------------------------------------------------------------------------------------
+def as_model(spec: ForecastModel | Mapping[str, Any]) -> ForecastModel:
+    """A model spec object from a spec or its dict form."""
+    if isinstance(spec, ForecastModel):
+        return spec
+    if isinstance(spec, Mapping):
+        return model_from_dict(spec)
+    raise InputError(f"audit_series: spec must be a model spec or a dict with a 'family'; got {type(spec).__name__}.")
+
+
+def as_noise_law(noise: str | Mapping[str, Any] | NoiseLaw, shape: float | None = None) -> NoiseLaw:
+    """A noise law from its name, ``{"law": name, "shape": value}`` or an instance."""
+    if isinstance(noise, NoiseLaw):
+        return noise if shape is None else get_law(noise.name, shape=shape)
+    if isinstance(noise, Mapping):
+        return get_law(str(noise.get("law")), shape=noise.get("shape", shape))
+    return get_law(str(noise), shape=shape)
+
+
+def _digest(*arrays: np.ndarray) -> str:
+    h = hashlib.sha256()
+    for a in arrays:
+        h.update(np.ascontiguousarray(a, dtype=float).tobytes())
+    return h.hexdigest()[:16]
+
+
+def _slice_exog(exog: Mapping[str, np.ndarray] | None, sl: slice) -> dict | None:
+    if exog is None:
+        return None
+    return {k: np.asarray(v, dtype=float)[sl] for k, v in exog.items()}
+
+
+def _plot_data(e: np.ndarray, law: NoiseLaw, params: NoiseParams, lags: int) -> dict:
+    """Compact data for the report: histogram of standardised residuals with the noise density,
+    Q-Q points and autocorrelations with their band."""
+    if law.discrete:
+        z = e / (np.std(e) or 1.0)
+        density = None
+    else:
+        z = (e - params.loc) / params.scale
+    lo, hi = -5.0, 5.0
+    edges = np.linspace(lo, hi, 26)
+    counts, _ = np.histogram(np.clip(z, lo, hi - 1e-9), bins=edges)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    if not law.discrete:
+        std = NoiseParams(law=params.law, loc=0.0, scale=1.0, shape=params.shape, estimated=())
+        density = law.pdf(centres, std)
+    k = min(z.size, 80)
+    probs = (np.arange(1, k + 1) - 0.5) / k
+    sample_q = np.quantile(z, probs)
+    theory_q = law.ppf(probs, NoiseParams(law=params.law, loc=0.0, scale=1.0, shape=params.shape, estimated=())) if not law.discrete else np.quantile(np.random.default_rng(0).standard_normal(4000), probs)
+    r = acf(e, lags)
+    return {
+        "hist_edges": edges.round(6).tolist(),
+        "hist_counts": counts.astype(int).tolist(),
+        "hist_density": None if density is None else np.asarray(density).round(6).tolist(),
+        "qq_theoretical": np.asarray(theory_q).round(6).tolist(),
+        "qq_sample": np.asarray(sample_q).round(6).tolist(),
+        "acf": np.asarray(r[1:]).round(6).tolist(),
+        "acf_band": float(acf_band(e.size)),
+    }
+
+
+def _score(
+    kind: str,
+    e: np.ndarray,
+    u: np.ndarray,
+    law: NoiseLaw,
+    nparams: NoiseParams,
+    k: int,
+    model_df: int,
+    period: int,
+    settings: AuditSettings,
+    table_for: Any,
+    window: dict,
+) -> CheckResult:
+    """Score residuals ``e`` with PIT values ``u``: cells, map, calibration, independence."""
+    n = e.size
+    s = number_of_cells(n, k)
+    counts = cell_counts(u, s)
+    dmap = divergence_map(counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r)
+    t_obs = dmap.t_max
+    calib: dict = {"method": settings.calibration}
+    half = settings.level / 2
+    if settings.calibration == "asymptotic" or table_for is None:
+        extra = 0.0
+        if kind == "refit" and not law.discrete and k > 0:
+            extra = nrr_term(counts, law.fisher_information(nparams), law.cell_probability_gradient(s, nparams))
+            calib["nrr_term"] = extra
+        df = s - 1
+        c = chi2_critical_value(half, df)
+        p_dist = chi2_p_value(t_obs + extra, df)
+        reference = np.full(dmap.statistic.shape, c)
+        crit_grid = reference - extra
+        r_obs = (t_obs + extra) / c
+        calib.update({"method": "asymptotic", "reference": f"chi-square({df})"})
+    else:
+        table: NullTable = table_for(n, s)
+        reference = table.reference
+        r_obs = float(standardised_maximum(dmap.statistic, reference))
+        p_dist = table.p_value(r_obs)
+        crit_grid = reference * table.critical_value(half)
+        calib.update({"method": table.method, "replicates": table.replicates, "table": describe_key(table.key)})
+    with np.errstate(invalid="ignore", divide="ignore"):
+        scaled = np.where(np.isfinite(dmap.statistic) & np.isfinite(crit_grid), dmap.statistic / crit_grid, np.nan)
+        ratio = np.where(np.isfinite(dmap.statistic) & np.isfinite(reference), dmap.statistic / reference, -np.inf)
+    if np.isfinite(ratio).any():
+        ia, ib = np.unravel_index(int(np.argmax(ratio)), ratio.shape)
+        a_max, b_max = settings.alphas[ia], settings.betas[ib]
+        t_at, crit_at = float(dmap.statistic[ia, ib]), float(crit_grid[ia, ib])
+    else:
+        a_max = b_max = t_at = crit_at = float("nan")
+    lags = settings.lb_lags or ljung_box_lags(n, period, model_df)
+    lags = min(lags, n - 1)
+    lb = ljung_box(e, lags, model_df=model_df if kind == "refit" else 0)
+    ml = mcleod_li(e, lags)
+    r = acf(e, lags)
+    effect_acf = float(np.max(np.abs(r[1:]))) if lags >= 1 else float("nan")
+    p_ind = lb.p_value
+    p_comb = float(min(1.0, 2.0 * min(p_dist, p_ind)))
+    members = {}
+    for name, value in dmap.members.items():
+        members[name] = {"statistic": float(value), "p_value_chi2": chi2_p_value(float(value), s - 1)}
+    return CheckResult(
+        kind=kind,
+        status="ok",
+        n=n,
+        cells=s,
+        k=k,
+        noise=nparams.to_dict(),
+        map=dmap,
+        t_max=float(t_obs),
+        r_max=float(r_obs),
+        alpha_max=float(a_max),
+        beta_max=float(b_max),
+        t_at_max=t_at,
+        critical_value=crit_at,
+        critical_grid=crit_grid,
+        scaled_grid=scaled,
+        p_distribution=float(p_dist),
+        calibration=calib,
+        members=members,
+        ljung_box=lb.to_dict(),
+        mcleod_li=ml.to_dict(),
+        p_independence=float(p_ind),
+        p_value=p_comb,
+        effect_divergence=float(t_obs / (2.0 * n)) if np.isfinite(t_obs) else float("inf"),
+        effect_acf=effect_acf,
+        counts=tuple(int(c) for c in counts),
+        window=window,
+        plots=_plot_data(e, law, nparams, max(lags, min(2 * period, n // 4) if period > 1 else lags)),
+        settings_level=settings.level,
+        practical=(settings.practical_divergence, settings.practical_acf),
+    )
+
+
+def _failed_check(kind: str, exc: BaseException, window: dict | None = None) -> CheckResult:
+    status = "insufficient" if isinstance(exc, InsufficientDataError) else "error"
+    msg = str(exc) or type(exc).__name__
+    if not isinstance(exc, FitauditError):
+        msg = f"{type(exc).__name__}: {msg}"
+    return CheckResult(kind=kind, status=status, message=msg, window=window or {})
+
+
+# --------------------------------------------------------------------------------------------
+# The two checks
+# --------------------------------------------------------------------------------------------
+def _production_check(model, y, exog, params, law_prod: NoiseLaw, settings, cache, label) -> tuple[CheckResult, np.ndarray | None, NoiseParams | None]:
+    n_all = y.size
+    w = settings.audit_window
+    window = {"first": n_all - w, "last": n_all - 1, "length": w}
+    try:
+        if w > n_all:
+            raise InsufficientDataError(
+                f"{label}: the audit window ({w} observations) is longer than the series ({n_all}); "
+                "shorten the audit window or load more history."
+            )
+        errors = model.production_errors(y, params, exog)
+        tail = np.asarray(errors[-w:], dtype=float)
+        if np.isnan(tail).any():
+            raise InsufficientDataError(
+                f"{label}: {int(np.isnan(tail).sum())} of the {w} audit-window errors are undefined "
+                "(lost to differencing or lags); load more history before the audit window."
+            )
+        if not np.isfinite(tail).all():
+            raise InputError(f"{label}: the production parameters give infinite forecast errors; check the parameter version.")
+        if law_prod.discrete:
+            mean = y[-w:] - tail
+            nparams = law_prod.fit_counts(y[-w:], mean) if law_prod.has_shape and law_prod.shape is None else law_prod.fit_counts(y[-w:], mean)
+            u = law_prod.randomized_pit(y[-w:], mean, nparams, key_rng(settings.seed, "pit", "production", _digest(y)))
+        else:
+            nparams = law_prod.from_variance(float(params["sigma2"]))
+            u = law_prod.cdf(tail, nparams)
+        table_for = None
+        if settings.calibration != "asymptotic":
+            def table_for(n, s):
+                return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache)
+        check = _score("production", tail, u, law_prod, nparams, 0, 0, model.seasonal_period(), settings, table_for, window)
+        return check, np.asarray(errors, dtype=float), nparams
+    except (FitauditError, ValueError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError) as exc:
+        return _failed_check("production", exc, window), None, None
+
+
+def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label) -> tuple[CheckResult, Any]:
+    n_all = y.size
+    fw = settings.fit_window or n_all
+    fw = min(fw, n_all)
+    sl = slice(n_all - fw, n_all)
+    window = {"first": n_all - fw, "last": n_all - 1, "length": fw}
+    fit = None
+    try:
+        yf = y[sl]
+        xf = _slice_exog(exog, sl)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", ConvergenceWarning)
+            fit = model.fit(yf, xf)
+        if not fit.converged:
+            detail = "; ".join(str(w.message) for w in caught if issubclass(w.category, ConvergenceWarning)) or fit.message
+            raise FitauditError(
+                f"{label}: the refit of {model.describe()} did not converge ({detail}). "
+                "Check the series for level shifts or outliers, or simplify the orders."
+            )
+        e_all = np.asarray(fit.residuals, dtype=float)
+        defined = ~np.isnan(e_all)
+        e = e_all[defined]
+        if not np.isfinite(e).all():
+            raise InputError(f"{label}: the refit produced infinite residuals; the series may contain extreme values.")
+        location = model.has_location()
+        if law.discrete:
+            mean = yf[defined] - e
+            nparams = law.fit_counts(yf[defined], mean)
+            k = len(nparams.estimated)
+            u = law.randomized_pit(yf[defined], mean, nparams, key_rng(settings.seed, "pit", "refit", _digest(y)))
+            table_for = None
+            if settings.calibration != "asymptotic":
+                def table_for(n, s):
+                    return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache)
+        else:
+            nparams = law.fit(e, location=location)
+            k = law.n_estimated(location)
+            u = law.cdf(e, nparams)
+            table_for = None
+            if settings.calibration == "simulated":
+                def table_for(n, s):
+                    return refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=nparams.shape, cache=cache)
+            elif settings.calibration == "bootstrap":
+                def table_for(n, s):
+                    simulated = refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=nparams.shape, cache=cache)
+                    return _bootstrap(model, fit, law, nparams, yf, xf, n, s, location, settings, simulated.reference)
+        check = _score("refit", e, u, law, nparams, k, model.n_dynamic_params(), model.seasonal_period(), settings, table_for, window)
+        return check, fit
+    except (FitauditError, ValueError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError) as exc:
+        return _failed_check("refit", exc, window), fit
+
+
+def _bootstrap(model, fit, law: NoiseLaw, nparams: NoiseParams, yf, xf, n: int, s: int, location: bool, settings: AuditSettings, reference: np.ndarray) -> NullTable:
+    """Parametric bootstrap of the refit check: simulate the fitted model, refit, rescore."""
+    rng = key_rng(settings.seed, "bootstrap", _digest(yf))
+
+    def score(r: np.random.Generator) -> float:
+        innov = law.sample(yf.size, r, nparams) - nparams.loc
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                ystar = model.simulate(fit.params, yf.size, r, exog=xf, innovations=innov)
+                f2 = model.fit(ystar, xf)
+            e2 = np.asarray(f2.residuals, dtype=float)
+            e2 = e2[~np.isnan(e2)]
+            p2 = law.fit(e2, location=location)
+            counts = cell_counts(law.cdf(e2, p2), s)
+            return divergence_map(counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r).statistic
+        except (FitauditError, ValueError, np.linalg.LinAlgError, ArithmeticError):
+            return None
+
+    return bootstrap_table(score, settings.bootstrap_replicates, rng, reference, key=("bootstrap", f"data={_digest(yf)}", f"n={n}", f"s={s}", f"R={settings.bootstrap_replicates}"))
+
+
+# --------------------------------------------------------------------------------------------
+# Verdicts and reasons
+# --------------------------------------------------------------------------------------------
+def _fmt_p(p: float) -> str:
+    if p is None or np.isnan(p):
+        return "n/a"
+    return "< 0.001" if p < 0.001 else f"= {p:.3f}"
+
+
+def _why_failed(check: CheckResult, threshold: float, adjusted: bool) -> str:
+    dist, ind = check.gate_flags(threshold, adjusted)
+    parts = []
+    if dist:
+        where = f" (largest at alpha {check.alpha_max:g}, beta {check.beta_max:g})" if np.isfinite(check.alpha_max) else ""
+        parts.append(
+            f"the residual distribution departs from the assumed {check.noise.get('law', 'noise')} law "
+            f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{where}, p {_fmt_p(check.p_distribution)})"
+        )
+    if ind:
+        lb = check.ljung_box
+        parts.append(
+            f"the residuals are autocorrelated (Ljung-Box Q {lb.get('statistic', float('nan')):.1f} on {lb.get('lags')} lags, "
+            f"p {_fmt_p(check.p_independence)}; largest |autocorrelation| {check.effect_acf:.2f})"
+        )
+    return " and ".join(parts) if parts else "no gate was flagged"
+
+
+def _summary_pass(check: CheckResult) -> str:
+    return (
+        f"no point of the divergence map exceeds its critical value (largest T {check.t_at_max:.1f} against {check.critical_value:.1f}, p {_fmt_p(check.p_distribution)}) "
+        f"and Ljung-Box finds no autocorrelation (p {_fmt_p(check.p_independence)})"
+    )
+
+
+def decide_verdict(production: CheckResult | None, refit: CheckResult, threshold: float, adjusted: bool = False) -> tuple[str, tuple]:
+    """Verdict and plain-language reasons from the two checks (design.md section 4).
+
+    With a production check: ``pass`` if it passes, else ``refit`` if the refit check passes,
+    else ``respecify``; without one, ``pass`` or ``respecify`` from the refit check.  A check
+    that could not run makes the verdict ``insufficient`` or ``error`` with its message.
+    """
+    if production is not None:
+        if not production.ok:
+            return production.status, (f"The production check could not run: {production.message}",)
+        if production.passed(threshold, adjusted):
+            reasons = [f"The production parameters still describe the audit window of {production.n} observations: {_summary_pass(production)}."]
+            if not refit.ok:
+                reasons.append(f"The refit check could not run ({refit.status}): {refit.message}")
+            return "pass", tuple(reasons)
+        first = f"The production parameters no longer fit the audit window of {production.n} observations: {_why_failed(production, threshold, adjusted)}."
+        if not refit.ok:
+            return refit.status, (first, f"The refit check could not run: {refit.message}")
+        if refit.passed(threshold, adjusted):
+            return "refit", (first, f"Re-estimating the same model fixes it: {_summary_pass(refit)}; promote the refitted parameters.")
+        return "respecify", (first, f"Refitting does not help: {_why_failed(refit, threshold, adjusted)}; the model class no longer describes the series and needs a person to choose a new specification.")
+    if not refit.ok:
+        return refit.status, (f"The refit check could not run: {refit.message}",)
+    if refit.passed(threshold, adjusted):
+        return "pass", (f"The refitted model describes the series ({refit.n} residuals): {_summary_pass(refit)}.",)
+    return "respecify", (f"The refitted model does not describe the series: {_why_failed(refit, threshold, adjusted)}; the model class needs a person to choose a new specification.",)
+
+
+# --------------------------------------------------------------------------------------------
+# Public entry points
+# --------------------------------------------------------------------------------------------
+def audit_series(
+    y,
+    spec,
+    noise="normal",
+    exog=None,
+    production: Mapping[str, float] | None = None,
+    settings: AuditSettings = AuditSettings(),
+    *,
+    production_noise: Mapping[str, Any] | None = None,
+    cache: CalibrationCache | None = None,
+    label: str | None = None,
+) -> AuditResult:
+    """Audit one series: production check, refit check, verdict.
+
+    Parameters
+    ----------
+    y : array_like, shape (n,)
+        The series, oldest first, ending at the as-of date; the audit window is its tail.
+    spec : ForecastModel or dict
+        The model spec (e.g. ``Arima(order=(1, 0, 1))`` or ``{"family": "arima", ...}``).
+    noise : str, dict or NoiseLaw, default "normal"
+        The assumed law of the innovations (``{"law": "student-t", "shape": 5}`` fixes a shape).
+    exog : mapping of str to array, optional
+        Exogenous inputs aligned with ``y``.
+    production : dict, optional
+        The production version's parameters; None audits the refit only.
+    settings : AuditSettings
+    production_noise : dict, optional
+        Noise parameters stored with the production version (``{"shape": ...}``), used when the
+        law's shape is estimated rather than fixed.
+    cache : CalibrationCache, optional
+        Shared null tables (one per run); a private cache is used when omitted.
+    label : str, optional
+        Name used in messages (the model id).
+
+    Returns
+    -------
+    AuditResult
+        Never raises for bad data: problems become ``insufficient`` or ``error`` verdicts with a
+        message naming the model and the fix.
+    """
+    t_start = time.perf_counter()
+    cache = cache if cache is not None else CalibrationCache()
+    spec_dict: dict = dict(spec) if isinstance(spec, Mapping) else {}
+    noise_name = noise if isinstance(noise, str) else (noise.get("law") if isinstance(noise, Mapping) else getattr(noise, "name", str(noise)))
+    try:
+        model = as_model(spec)
+        spec_dict = model.to_dict()
+        label = label or model.describe()
+        law = as_noise_law(noise)
+        y_arr = check_series(y, label, min_length=2)
+        if exog is not None:
+            exog_matrix(exog, y_arr.size, label)  # validates lengths and values
+            exog = {k: np.asarray(v, dtype=float) for k, v in dict(exog).items()}
+    except (FitauditError, ValueError, TypeError) as exc:
+        check = _failed_check("refit", exc)
+        return AuditResult(
+            verdict=check.status, reasons=(f"The audit could not start: {check.message}",), production=None, refit=check,
+            spec=_plain(spec_dict), noise=str(noise_name), timings={"total_s": time.perf_counter() - t_start},
+        )
+
+    timings = {}
+    prod_check = prod_errors = prod_noise = None
+    if production is not None:
+        t0 = time.perf_counter()
+        try:
+            shape = (production_noise or {}).get("shape") if law.has_shape else None
+            law_prod = as_noise_law(law, shape=shape) if shape is not None else law
+            if law_prod.has_shape and getattr(law_prod, "shape", None) is None and not law_prod.discrete:
+                raise InputError(
+                    f"{label}: the {law.name} law's shape is estimated, but the production version stores none; "
+                    "fix the shape in the registry (e.g. df: 5) or store it with the parameter version."
+                )
+            prod_check, prod_errors, prod_noise = _production_check(model, y_arr, exog, dict(production), law_prod, settings, cache, label)
+        except FitauditError as exc:
+            prod_check = _failed_check("production", exc)
+        timings["production_s"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    refit_check, fit = _refit_check(model, y_arr, exog, law, settings, cache, label)
+    timings["refit_s"] = time.perf_counter() - t0
+
+    verdict, reasons = decide_verdict(prod_check, refit_check, settings.level)
+    change = None
+    if (
+        settings.locate_change
+        and prod_check is not None
+        and prod_check.ok
+        and not prod_check.passed(settings.level)
+        and prod_errors is not None
+        and not law.discrete
+    ):
+        try:
+            # the errors since the last defined one-step forecast: a break at the start of the
+            # audit window is then locatable too (index is a position in the series)
+            first = int(np.argmax(~np.isnan(prod_errors)))
+            change = locate_change(prod_errors[first:], noise=law_prod, permutations=settings.change_permutations, seed=settings.seed)
+            change = dataclasses.replace(change, index=change.index + first)
+        except (FitauditError, ValueError):
+            change = None
+    fitted = {}
+    if fit is not None:
+        fitted = {
+            "params": {k: float(v) for k, v in fit.params.items()},
+            "loglik": float(fit.loglik),
+            "aic": float(fit.aic),
+            "bic": float(fit.bic),
+            "sigma2": float(fit.sigma2),
+            "nobs": int(fit.nobs),
+            "converged": bool(fit.converged),
+            "message": str(fit.message),
+        }
+    timings["total_s"] = time.perf_counter() - t_start
+    return AuditResult(
+        verdict=verdict,
+        reasons=reasons,
+        production=prod_check,
+        refit=refit_check,
+        spec=_plain(spec_dict),
+        noise=law.name if law.shape is None or not law.has_shape else f"{law.name}({law.shape:g})",
+        fitted=fitted,
+        production_params=None if production is None else {k: float(v) for k, v in production.items()},
+        change=change,
+        timings=timings,
+    )
+
+
+def apply_fleet_rules(
+    results: Sequence[AuditResult],
+    *,
+    q: float = 0.10,
+    method: str = "bh",
+    histories: Sequence[Sequence[str]] | None = None,
+    k: int = 2,
+    n: int = 3,
+) -> list[AuditResult]:
+    """Adjust p-values across a run, re-decide verdicts, escalate recurring refits.
+
+    Every check that ran contributes its Bonferroni-combined p-value to one family, adjusted with
+    ``method`` (``bh`` Benjamini-Hochberg, ``by`` Benjamini-Yekutieli, ``bonferroni``, ``none``);
+    a check then fails when its adjusted p-value is at most ``q`` (for ``none``: the raw p-value
+    at each result's own level).  A ``refit`` verdict that occurs in at least ``k`` of the last
+    ``n`` audits (this one included; ``histories[i]`` lists model i's earlier verdicts, oldest
+    first) becomes ``respecify``.  Raw and adjusted p-values are both kept.
+    """
+    histories = histories if histories is not None else [()] * len(results)
+    if len(histories) != len(results):
+        raise InputError(f"apply_fleet_rules: {len(results)} results but {len(histories)} histories.")
+    slots = []
+    pvals = []
+    for i, res in enumerate(results):
+        for kind in ("production", "refit"):
+            chk = getattr(res, kind)
+            if chk is not None and chk.ok:
+                slots.append((i, kind))
+                pvals.append(chk.p_value)
+    adjusted = adjust_pvalues(np.asarray(pvals, dtype=float), method=method) if pvals else np.array([])
+    updated: list[dict] = [dict() for _ in results]
+    for (i, kind), p_adj in zip(slots, adjusted):
+        updated[i][kind] = dataclasses.replace(getattr(results[i], kind), p_adjusted=float(p_adj))
+    out = []
+    for i, res in enumerate(results):
+        res = dataclasses.replace(res, **updated[i]) if updated[i] else res
+        if res.verdict in ("pass", "refit", "respecify"):
+            use_adjusted = method != "none"
+            threshold = q if use_adjusted else None
+            verdict, reasons = decide_verdict(res.production, res.refit, threshold if threshold is not None else res.refit.settings_level, adjusted=use_adjusted)
+            if use_adjusted:
+                reasons = reasons + (f"p-values were adjusted across the run's {len(pvals)} checks ({_method_name(method)}, q = {q:g}).",)
+            escalated = False
+            if verdict == "refit" and escalate_persistent_refit(list(histories[i]), verdict, k=k, n=n):
+                verdict, escalated = "respecify", True
+                reasons = reasons + (f"A refit was also needed in earlier audits ({k} of the last {n} including this one), so the model is escalated for respecification.",)
+            res = dataclasses.replace(res, verdict=verdict, reasons=reasons, escalated=escalated)
+        out.append(res)
+    return out
+
+
+def _method_name(method: str) -> str:
+    return {"bh": "Benjamini-Hochberg", "by": "Benjamini-Yekutieli", "bonferroni": "Bonferroni", "none": "no adjustment"}.get(method, method)
