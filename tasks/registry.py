@@ -42,6 +42,7 @@ from dataclasses import dataclass
 from typing import Any, Callable
 
 import yaml
+from prefect import task
 
 from fitaudit.core.exceptions import FitauditError
 
@@ -1325,3 +1326,16 @@ def check_registry(path: str | os.PathLike) -> list[RegistryProblem]:
     base = os.path.dirname(os.path.abspath(os.fspath(path)))
     problems, entry_problems, _ = _analyse(text, name, base, digest)
     return sorted(problems + entry_problems, key=lambda p: p.line or 0)
+
+
+# --------------------------------------------------------------------------------------------
+# Prefect task
+# --------------------------------------------------------------------------------------------
+@task(name="load-registry", retries=2, retry_delay_seconds=2, persist_result=False)
+def load_registry_task(path: str) -> Registry:
+    """Prefect task: read and validate the registry (retried for transient I/O errors).
+
+    Registry-level problems raise :class:`RegistryError` and fail the run before any model is
+    audited; entry-level problems come back in ``Registry.rejected``.
+    """
+    return load_registry(path)

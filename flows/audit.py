@@ -1,0 +1,240 @@
+"""The scheduled audit job: ``audit_flow``.
+
+Composition only: every step is a task from :mod:`fitaudit.tasks`; models are audited in batches
+(one task per batch, never one per model), results go through the fleet rules, the report and the
+archive, and verdicts are published as Prefect events.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import pathlib
+import shutil
+import time
+from prefect import flow, get_run_logger, task, unmapped
+from prefect.cache_policies import NO_CACHE
+from prefect.task_runners import ThreadPoolTaskRunner
+
+from fitaudit.core.calibration import CalibrationCache
+from fitaudit.tasks.archive import new_run_id, recover
+from fitaudit.tasks.audit import Outcome, audit_batch_task, candidates_task, finalize, records, rejected_outcome, with_candidates
+from fitaudit.tasks.batches import stage_inputs_task
+from fitaudit.tasks.events import emit_run_event, emit_verdict_events, publish_artifacts
+from fitaudit.tasks.publish import (
+    code_commit,
+    load_history,
+    operator_identity,
+    package_versions,
+    publish_run,
+    render_archive_index_file,
+)
+from fitaudit.tasks.registry import Registry, load_registry_task
+from fitaudit.tasks.results import build_results
+from fitaudit.tasks.settings import get_settings
+
+__all__ = ["audit_flow", "run_audit"]
+
+
+def _utc() -> str:
+    return dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+
+
+@task(name="recover-archive", cache_policy=NO_CACHE, persist_result=False)
+def recover_task(archive: str) -> list[str]:
+    """Complete or roll back an interrupted publication before a new run starts."""
+    return recover(archive) if pathlib.Path(archive).exists() else []
+
+
+@task(name="load-history", cache_policy=NO_CACHE, persist_result=False)
+def history_task(archive: str, as_of: dt.date, model_ids: list[str]) -> dict:
+    """Earlier verdicts per model from the archive."""
+    return load_history(archive, as_of, model_ids)
+
+
+@task(name="apply-fleet-rules", cache_policy=NO_CACHE, persist_result=False)
+def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
+    """p-value adjustment across the run and the persistence rule."""
+    return finalize(outcomes, registry.policy)
+
+
+@task(name="publish-run", cache_policy=NO_CACHE, persist_result=False, retries=1, retry_delay_seconds=2)
+def publish_task(archive: str, doc: dict, meta: dict, manifest: dict, run_id: str) -> dict:
+    """Render the pages, write the run folder atomically, refresh the archive index."""
+    from fitaudit.tasks.report import render_run
+
+    pages = render_run(doc, meta)
+    published = publish_run(archive, doc, pages, manifest, run_id=run_id)
+    render_archive_index_file(archive)
+    return {"run_id": published.run_id, "path": str(pathlib.Path(archive) / published.path), "manifest_sha256": published.manifest_sha256}
+
+
+@task(name="publish-events", cache_policy=NO_CACHE, persist_result=False)
+def events_task(recs: list[dict], summary: dict, run: dict) -> int:
+    """One event per model verdict, one per run, and the run's artifacts."""
+    n = emit_verdict_events(recs, run)
+    emit_run_event(run, summary)
+    publish_artifacts(recs, summary, run)
+    return n
+
+
+def _workers() -> int:
+    """Parallel workers of the running flow's task runner (threads or Dask workers)."""
+    from prefect.context import FlowRunContext
+
+    ctx = FlowRunContext.get()
+    runner = getattr(ctx, "task_runner", None)
+    for attr in ("max_workers", "_max_workers"):
+        value = getattr(runner, attr, None)
+        if isinstance(value, int) and value > 0:
+            return value
+    kwargs = getattr(runner, "cluster_kwargs", None) or {}
+    return int(kwargs.get("n_workers", 1))
+
+
+def _runner_name() -> str:
+    from prefect.context import FlowRunContext
+
+    ctx = FlowRunContext.get()
+    return type(getattr(ctx, "task_runner", None)).__name__
+
+
+@flow(name="fitaudit-audit", persist_result=False, log_prints=False, task_runner=ThreadPoolTaskRunner(max_workers=2))
+def audit_flow(
+    registry: str,
+    as_of: dt.date | None = None,
+    archive: str | None = None,
+    models: list[str] | None = None,
+    batch_size: int = 0,
+    trigger_refits: bool = False,
+    search_candidates: bool = True,
+) -> dict:
+    """Audit every model of a registry at an as-of date and archive the report.
+
+    Parameters
+    ----------
+    registry : str
+        Path of the registry YAML.
+    as_of : date, optional
+        Data up to the end of this day are used; default today (UTC).
+    archive : str, optional
+        Archive folder; default the ``archive_root`` setting.
+    models : list of str, optional
+        Audit only these model ids.
+    batch_size : int
+        Models per task (0 chooses automatically).
+    search_candidates : bool
+        Score neighbouring specifications for ``respecify`` models and list passing ones in the
+        report (default True).
+    trigger_refits : bool
+        Start the refit flow for models with a ``refit`` or ``respecify`` verdict right away (works
+        on the embedded server); otherwise an automation listening to the events can do it.
+
+    Returns
+    -------
+    dict
+        Run id, report path, summary counts and timings.
+    """
+    t_start = time.perf_counter()
+    started = _utc()
+    settings = get_settings()
+    archive = str(pathlib.Path(archive or settings.archive_root).resolve())
+    as_of = as_of or dt.datetime.now(dt.timezone.utc).date()
+    logger = get_run_logger()
+    timings: dict[str, float] = {}
+
+    reg = load_registry_task(registry)
+    recovered = recover_task(archive)
+    run_id = new_run_id(as_of)
+    ids = [m.id for m in reg.models if models is None or m.id in set(models)]
+    history = history_task(archive, as_of, ids)
+    work = pathlib.Path(archive) / ".work" / run_id
+    t0 = time.perf_counter()
+    stage_args = dict(archive_root=archive, histories=history, model_ids=ids, batch_size=batch_size or settings.batch_size, workers=_workers())
+    try:
+        staged = stage_inputs_task(reg, as_of, str(work), **stage_args)
+    except OSError:
+        staged = stage_inputs_task(reg, as_of, str(work), os_errors="record", **stage_args)
+    timings["stage_s"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    cache = CalibrationCache()
+    futures = audit_batch_task.map([b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache))
+    outcomes = [o for batch in futures.result() for o in batch]
+    outcomes += [rejected_outcome(r) for r in reg.rejected if models is None or r.id in set(models)]
+    timings["audit_s"] = time.perf_counter() - t0
+    timings["core_s"] = sum(o.timings.get("total_s", 0.0) for o in outcomes)
+
+    final = finalize_task(outcomes, reg)
+    if search_candidates:
+        t0 = time.perf_counter()
+        todo = {o.model_id for o in final if o.verdict == "respecify"}
+        jobs = [(b.path, [m for m in b.model_ids if m in todo]) for b in staged.batches if todo.intersection(b.model_ids)]
+        if jobs:
+            found = candidates_task.map([j[0] for j in jobs], [j[1] for j in jobs], unmapped(reg.policy), unmapped(cache))
+            final = with_candidates(final, {k: v for part in found.result() for k, v in part.items()})
+        timings["candidates_s"] = time.perf_counter() - t0
+    recs = records(final, as_of.isoformat())
+    doc = build_results(
+        as_of=as_of.isoformat(),
+        registry={"path": pathlib.Path(reg.path).name, "sha256": reg.sha256},
+        policy=reg.policy.to_dict(),
+        records=recs,
+        tool_version=package_versions()["fitaudit"] or "unknown",
+    )
+    t0 = time.perf_counter()
+    meta = {
+        "run_id": run_id,
+        "started_utc": started,
+        "finished_utc": _utc(),
+        "operator": operator_identity(settings.operator),
+        "tool_version": doc["run"]["tool_version"],
+        "code_commit": code_commit(),
+        "prefect_version": package_versions()["prefect"],
+    }
+    manifest = {
+        **{k: meta[k] for k in ("started_utc", "operator", "tool_version", "code_commit")},
+        "packages": package_versions(),
+        "registry": {"path": str(pathlib.Path(reg.path).resolve()), "sha256": reg.sha256},
+        "inputs": staged.fingerprints,
+        "source_errors": staged.source_errors,
+        "policy": reg.policy.to_dict(),
+        "seeds": {"policy_seed": reg.policy.seed},
+        "counts": {k: doc["summary"][k] for k in ("registered", "audited", "pass", "refit", "respecify", "insufficient", "error")},
+        "batches": len(staged.batches),
+        "calibration_tables": len(cache),
+        "recovered": recovered,
+        "task_runner": _runner_name(),
+    }
+    timings["total_s"] = time.perf_counter() - t_start
+    manifest["timings"] = {**timings, "per_model": {o.model_id: o.timings for o in final}}
+    manifest["finished_utc"] = meta["finished_utc"]
+    published = publish_task(archive, doc, meta, manifest, run_id)
+    timings["publish_s"] = time.perf_counter() - t0
+    report = str(pathlib.Path(published["path"]) / "index.html")
+    run = {"run_id": run_id, "as_of": as_of.isoformat(), "report_path": report}
+    events_task(recs, doc["summary"], run)
+    counts = manifest["counts"]
+    logger.info("audit %s as of %s: %s; report %s", run_id, as_of, counts, report)
+
+    refits = None
+    if trigger_refits:
+        from fitaudit.flows.refit import refit_flow
+
+        todo = [r["id"] for r in recs if r["verdict"] in ("refit", "respecify")]
+        if todo:
+            refits = refit_flow(registry=registry, model_ids=todo, archive=archive, as_of=as_of, reason=f"verdicts of audit run {run_id}")
+    shutil.rmtree(work, ignore_errors=True)
+    return {
+        "run_id": run_id,
+        "as_of": as_of.isoformat(),
+        "report": report,
+        "archive": archive,
+        "counts": counts,
+        "timings": {k: round(v, 3) for k, v in timings.items()},
+        "refits": refits,
+    }
+
+
+def run_audit(registry: str, **kwargs) -> dict:
+    """Call :func:`audit_flow` (convenience for scripts and the command line)."""
+    return audit_flow(registry=registry, **kwargs)

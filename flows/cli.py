@@ -1,0 +1,317 @@
+"""The ``fitaudit`` command line.
+
+Commands: ``demo``, ``run``, ``refit``, ``backfill``, ``serve``, ``verify``, ``registry check``,
+``promote`` and ``signoff``; ``fitaudit COMMAND --help`` describes each.
+
+Exit codes: 0 success (an audit whose models fail still succeeds, unless ``--fail-on`` names
+their verdicts); 1 unexpected failure; 2 invalid usage or an invalid registry; 3 a verdict named
+by ``--fail-on`` occurred; 4 ``verify`` found a problem.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import datetime as dt
+import json
+import os
+import pathlib
+import sys
+from typing import Sequence
+
+from . import _env
+
+__all__ = ["main", "build_parser"]
+
+EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_FAIL_ON, EXIT_VERIFY = 0, 1, 2, 3, 4
+VERDICTS = ("pass", "refit", "respecify", "insufficient", "error")
+
+
+def _date(text: str) -> dt.date:
+    try:
+        return dt.date.fromisoformat(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a date like 2026-11-30, got {text!r}") from None
+
+
+def _verdicts(text: str) -> tuple[str, ...]:
+    items = tuple(v.strip() for v in text.split(",") if v.strip())
+    bad = [v for v in items if v not in VERDICTS]
+    if bad:
+        raise argparse.ArgumentTypeError(f"unknown verdict(s) {', '.join(bad)}; choose from {', '.join(VERDICTS)}")
+    return items
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser (exposed for tests and documentation)."""
+    p = argparse.ArgumentParser(
+        prog="fitaudit",
+        description="Weekly goodness-of-fit audits of registered forecasting models, on Prefect 3.",
+        epilog="Exit codes: 0 ok; 1 failure; 2 usage or registry invalid; 3 --fail-on verdict seen; 4 verify found problems.",
+    )
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    d = sub.add_parser("demo", help="write the demo extract, registry and archive, audit them, print the report path")
+    d.add_argument("--out", default="fitaudit-demo", help="folder for the demo (default ./fitaudit-demo)")
+    d.add_argument("--fresh", action="store_true", help="delete the demo folder first")
+    d.add_argument("--weeks", type=int, default=3, help="weekly audits to run on the first demo (default 3: two earlier weeks build a history)")
+
+    def run_options(sp: argparse.ArgumentParser) -> None:
+        sp.add_argument("registry", help="registry YAML file")
+        sp.add_argument("--archive", help="archive folder (default: the archive_root setting, ./archive)")
+        sp.add_argument("--as-of", type=_date, help="as-of date YYYY-MM-DD (default: today, UTC)")
+        sp.add_argument("--batch-size", type=int, default=0, help="models per Prefect task (default: automatic)")
+        sp.add_argument("--dask", metavar="ADDRESS", help="run batches on Dask: a scheduler address, or local:N for a local cluster of N processes")
+        sp.add_argument("--start-server", action="store_true", help="start a local Prefect server for this command (needed by --dask when PREFECT_API_URL is unset)")
+        sp.add_argument("--quiet", action="store_true", help="print only the report path")
+
+    r = sub.add_parser("run", help="audit every model of a registry once")
+    run_options(r)
+    r.add_argument("--models", nargs="+", metavar="ID", help="audit only these model ids")
+    r.add_argument("--refit", action="store_true", help="start the refit flow right away for refit/respecify verdicts")
+    r.add_argument("--fail-on", type=_verdicts, default=(), metavar="VERDICTS", help="exit 3 if any model gets one of these verdicts (comma-separated)")
+
+    f = sub.add_parser("refit", help="refit models, store parameter versions, promote or list candidates")
+    run_options(f)
+    f.add_argument("--model", dest="models", action="append", required=True, metavar="ID", help="model id (repeat for several)")
+    f.add_argument("--approve", action="store_true", help="promote passing refits now (records --by as approver)")
+    f.add_argument("--by", default="", help="approver's name and role, recorded with the promotion")
+
+    b = sub.add_parser("backfill", help="audit a range of past as-of dates so that trends exist from day one")
+    run_options(b)
+    b.add_argument("--start", type=_date, required=True, help="first as-of date")
+    b.add_argument("--end", type=_date, required=True, help="last as-of date")
+    b.add_argument("--every", type=int, default=7, help="days between as-of dates (default 7)")
+
+    s = sub.add_parser("serve", help="serve the audit (weekly cron) and refit (event-triggered) deployments")
+    s.add_argument("registry", help="registry YAML file")
+    s.add_argument("--archive", help="archive folder")
+    s.add_argument("--cron", default="0 6 * * 1", help="cron schedule of the audit (default Mondays 06:00)")
+    s.add_argument("--timezone", default="UTC", help="time zone of the schedule")
+    s.add_argument("--start-server", action="store_true", help="start a local Prefect server if PREFECT_API_URL is unset")
+
+    v = sub.add_parser("verify", help="check every archived file and the hash chain; exit 4 on any problem")
+    v.add_argument("archive", help="archive folder")
+    v.add_argument("--head", help="expected hash of the last chain entry (recorded elsewhere), to detect a truncated or rewritten chain")
+    v.add_argument("--notes", action="store_true", help="also list notes (pending publications, leftovers)")
+    v.add_argument("--json", action="store_true", help="print problems as JSON")
+
+    g = sub.add_parser("registry", help="registry commands")
+    gsub = g.add_subparsers(dest="registry_command", metavar="SUBCOMMAND")
+    gsub.required = True
+    gc = gsub.add_parser("check", help="validate a registry and print every problem with file:line")
+    gc.add_argument("file", help="registry YAML file")
+
+    pr = sub.add_parser("promote", help="promote a candidate parameter version (writes a new version; never edits one)")
+    pr.add_argument("archive", help="archive folder")
+    pr.add_argument("model", help="model id")
+    pr.add_argument("version", type=int, help="candidate version to promote")
+    pr.add_argument("--by", required=True, help="approver's name and role")
+    pr.add_argument("--note", required=True, help="why it is approved")
+
+    so = sub.add_parser("signoff", help="record a reviewer's sign-off of an archived run in the hash chain")
+    so.add_argument("archive", help="archive folder")
+    so.add_argument("run_id", help="run id")
+    so.add_argument("--name", required=True)
+    so.add_argument("--role", required=True)
+    so.add_argument("--note", default="")
+    return p
+
+
+@contextlib.contextmanager
+def _server_if_needed(args: argparse.Namespace):
+    """Start a local Prefect server when asked, or when Dask is requested without one."""
+    wants = getattr(args, "start_server", False) or (getattr(args, "dask", None) and "PREFECT_API_URL" not in os.environ)
+    if wants and "PREFECT_API_URL" not in os.environ:
+        if getattr(args, "dask", None) and not args.start_server:
+            raise SystemExit(
+                "fitaudit: --dask needs a Prefect server (Dask workers cannot share the embedded one). "
+                "Set PREFECT_API_URL to a running server (`prefect server start`) or add --start-server."
+            )
+        from .server import local_server
+
+        log = pathlib.Path(os.environ["PREFECT_HOME"]) / "server.log"
+        log.parent.mkdir(parents=True, exist_ok=True)
+        with local_server(log_path=str(log)) as url:
+            print(f"fitaudit: started a local Prefect server at {url} (log {log})", file=sys.stderr)
+            yield url
+    else:
+        yield os.environ.get("PREFECT_API_URL")
+
+
+def _with_runner(flow_fn, dask: str | None):
+    if not dask:
+        return flow_fn
+    from prefect_dask import DaskTaskRunner
+
+    if dask.startswith("local:"):
+        n = int(dask.split(":", 1)[1] or 2)
+        runner = DaskTaskRunner(cluster_class="distributed.LocalCluster", cluster_kwargs={"n_workers": n, "threads_per_worker": 1, "processes": True, "dashboard_address": None})
+    else:
+        runner = DaskTaskRunner(address=dask)
+    return flow_fn.with_options(task_runner=runner)
+
+
+def _print_summary(result: dict, quiet: bool) -> None:
+    if quiet:
+        print(result["report"])
+        return
+    c = result["counts"]
+    print(f"audit {result['run_id']} as of {result['as_of']}: {c['registered']} registered, {c['audited']} audited")
+    print("  " + ", ".join(f"{v} {c[v]}" for v in VERDICTS))
+    t = result.get("timings", {})
+    if t:
+        print(f"  {t.get('total_s', 0):.1f} s in the flow; {t.get('core_s', 0):.1f} s in the audit computations")
+    print(f"report: {result['report']}")
+
+
+def _cmd_registry_check(args) -> int:
+    from fitaudit.tasks.registry import check_registry
+
+    problems = check_registry(args.file)
+    if not problems:
+        print(f"{args.file}: valid")
+        return EXIT_OK
+    for p in problems:
+        print(str(p))
+    print(f"{len(problems)} problem(s)", file=sys.stderr)
+    return EXIT_USAGE
+
+
+def _cmd_verify(args) -> int:
+    from fitaudit.tasks.archive import verify_archive
+
+    problems = verify_archive(args.archive, include_notes=args.notes, expected_head=args.head)
+    real = [p for p in problems if not p.is_note]
+    if args.json:
+        print(json.dumps([p.to_dict() for p in problems], indent=2))
+    else:
+        for p in problems:
+            print(("note: " if p.is_note else "problem: ") + str(p))
+        print(f"{args.archive}: {'intact' if not real else f'{len(real)} problem(s)'}")
+    return EXIT_VERIFY if real else EXIT_OK
+
+
+def _cmd_run(args) -> int:
+    from fitaudit.tasks.registry import RegistryError
+
+    with _server_if_needed(args):
+        from .audit import audit_flow
+
+        flow_fn = _with_runner(audit_flow, args.dask)
+        try:
+            result = flow_fn(registry=args.registry, as_of=args.as_of, archive=args.archive, models=args.models, batch_size=args.batch_size, trigger_refits=args.refit)
+        except RegistryError as exc:
+            print(str(exc), file=sys.stderr)
+            return EXIT_USAGE
+    _print_summary(result, args.quiet)
+    if args.fail_on and any(result["counts"][v] for v in args.fail_on):
+        return EXIT_FAIL_ON
+    return EXIT_OK
+
+
+def _cmd_refit(args) -> int:
+    with _server_if_needed(args):
+        from .refit import refit_flow
+
+        result = _with_runner(refit_flow, args.dask)(registry=args.registry, model_ids=args.models, archive=args.archive, as_of=args.as_of, approve=args.approve, approved_by=args.by)
+    for rec in result["records"]:
+        extra = ""
+        if rec.get("promoted_version"):
+            extra = f" (version {rec['promoted_version']} in production)"
+        elif rec.get("candidate_version"):
+            extra = f" (candidate version {rec['candidate_version']}; promote with `fitaudit promote`)"
+        elif rec.get("candidates") is not None:
+            extra = f" ({len(rec['candidates'])} passing candidate(s))"
+        print(f"{rec['model_id']}: {rec['status']}{extra}")
+    print(f"refit record: {result['path']}")
+    return EXIT_OK
+
+
+def _cmd_backfill(args) -> int:
+    with _server_if_needed(args):
+        from .backfill import backfill_flow
+
+        results = _with_runner(backfill_flow, args.dask)(registry=args.registry, start=args.start, end=args.end, every_days=args.every, archive=args.archive)
+    for r in results:
+        _print_summary(r, True)
+    return EXIT_OK
+
+
+def _cmd_serve(args) -> int:
+    if "PREFECT_API_URL" not in os.environ and not args.start_server:
+        print(
+            "fitaudit serve: schedules and event-triggered refits need a long-lived Prefect server, and none is "
+            "configured (PREFECT_API_URL is unset; the embedded server runs no scheduler).\n"
+            "Start one with `prefect server start` and `export PREFECT_API_URL=http://127.0.0.1:4200/api`, "
+            "or run `fitaudit serve ... --start-server`. A single audit works without a server: `fitaudit run`.",
+            file=sys.stderr,
+        )
+        return EXIT_USAGE
+    with _server_if_needed(args):
+        from .deploy import serve_all
+
+        serve_all(registry=str(pathlib.Path(args.registry).resolve()), archive=args.archive, cron=args.cron, timezone=args.timezone)
+    return EXIT_OK
+
+
+def _cmd_promote(args) -> int:
+    from fitaudit.tasks.archive import append_chain
+    from fitaudit.tasks.params import promote
+
+    version = promote(args.archive, args.model, args.version, approved_by=args.by, note=args.note)
+    append_chain(args.archive, "promotion", {"path": f"params/{args.model}/{version.version}.json", "sha256": version.sha256, "model_id": args.model, "promotes": args.version, "approved_by": args.by})
+    print(f"{args.model}: version {version.version} promotes version {args.version} into production")
+    return EXIT_OK
+
+
+def _cmd_signoff(args) -> int:
+    from fitaudit.tasks.archive import record_signoff
+
+    entry = record_signoff(args.archive, args.run_id, name=args.name, role=args.role, note=args.note)
+    print(f"sign-off recorded as chain entry {entry['seq']} (hash {entry['hash'][:16]}...)")
+    return EXIT_OK
+
+
+def _cmd_demo(args) -> int:
+    with _server_if_needed(args):
+        from .demo import run_demo
+
+        result = run_demo(args.out, fresh=args.fresh, weeks=args.weeks)
+    _print_summary(result, False)
+    print(f"verify the archive with: fitaudit verify {result['archive']}")
+    return EXIT_OK
+
+
+COMMANDS = {
+    "demo": _cmd_demo,
+    "run": _cmd_run,
+    "refit": _cmd_refit,
+    "backfill": _cmd_backfill,
+    "serve": _cmd_serve,
+    "verify": _cmd_verify,
+    "registry": _cmd_registry_check,
+    "promote": _cmd_promote,
+    "signoff": _cmd_signoff,
+}
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``fitaudit`` command."""
+    args = build_parser().parse_args(argv)
+    _env.configure_prefect()
+    from fitaudit.core.exceptions import FitauditError
+
+    try:
+        return COMMANDS[args.command](args)
+    except FitauditError as exc:
+        print(f"fitaudit {args.command}: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    except KeyboardInterrupt:
+        print("fitaudit: interrupted", file=sys.stderr)
+        return EXIT_ERROR
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,111 @@
+"""The refit flow: refit, re-audit, version, promote (or search candidates for respecification)."""
+
+from __future__ import annotations
+
+import datetime as dt
+import pathlib
+import shutil
+
+from prefect import flow, get_run_logger, task, unmapped
+from prefect.cache_policies import NO_CACHE
+from prefect.events import emit_event
+
+from fitaudit.core.calibration import CalibrationCache
+from fitaudit.tasks.archive import new_run_id, open_run, recover
+from fitaudit.tasks.batches import stage_inputs_task
+from fitaudit.tasks.publish import code_commit, operator_identity, package_versions
+from fitaudit.tasks.refit import refit_batch_task
+from fitaudit.tasks.registry import load_registry_task
+from fitaudit.tasks.settings import get_settings
+
+__all__ = ["refit_flow"]
+
+
+@task(name="record-refits", cache_policy=NO_CACHE, persist_result=False)
+def record_task(archive: str, run_id: str, as_of: dt.date, records: list[dict], manifest: dict) -> str:
+    """Archive the refit records as a run folder (``refit.json``), linked into the chain."""
+    writer = open_run(archive, run_id, as_of.year, as_of=as_of)
+    with writer:
+        writer.write_json("refit.json", {"schema": "fitaudit.refit", "schema_version": 1, "as_of": as_of.isoformat(), "records": records})
+        published = writer.finish(manifest)
+    return str(pathlib.Path(archive) / published.path)
+
+
+@task(name="refit-events", cache_policy=NO_CACHE, persist_result=False)
+def refit_events_task(records: list[dict], run_id: str) -> None:
+    """``fitaudit.model.promoted`` / ``.refit-awaiting-approval`` / ``.respecify-candidates`` events."""
+    names = {"promoted": "promoted", "awaiting approval": "refit-awaiting-approval", "respecify": "respecify-candidates"}
+    for rec in records:
+        name = names.get(rec.get("status"))
+        if name:
+            emit_event(
+                event=f"fitaudit.model.{name}",
+                resource={"prefect.resource.id": f"fitaudit.model.{rec['model_id']}", "prefect.resource.name": rec["model_id"]},
+                related=[{"prefect.resource.id": f"fitaudit.refit.{run_id}", "prefect.resource.role": "refit-run"}],
+                payload={k: rec.get(k) for k in ("status", "candidate_version", "promoted_version") if rec.get(k) is not None}
+                | {"candidates": len(rec.get("candidates") or [])},
+            )
+
+
+@flow(name="fitaudit-refit", persist_result=False, log_prints=False)
+def refit_flow(
+    registry: str,
+    model_ids: list[str],
+    archive: str | None = None,
+    as_of: dt.date | None = None,
+    approve: bool = False,
+    approved_by: str = "",
+    reason: str = "",
+) -> dict:
+    """Refit the named models and store new parameter versions.
+
+    Parameters
+    ----------
+    registry : str
+        Registry YAML path.
+    model_ids : list of str
+        Models to refit (e.g. those with a ``refit`` or ``respecify`` verdict).
+    archive : str, optional
+        Archive folder (parameter store and chain); default the ``archive_root`` setting.
+    as_of : date, optional
+        Data up to this day; default today (UTC).
+    approve, approved_by : bool, str
+        Promote passing refits now, recording who approved (policy ``approval``); with policy
+        ``automatic`` passing refits are promoted anyway.
+    reason : str
+        Why the refit was started (e.g. the triggering event), recorded in the manifest.
+    """
+    settings = get_settings()
+    archive = str(pathlib.Path(archive or settings.archive_root).resolve())
+    as_of = as_of or dt.datetime.now(dt.timezone.utc).date()
+    reg = load_registry_task(registry)
+    recover(archive) if pathlib.Path(archive).exists() else None
+    run_id = new_run_id(as_of)
+    work = pathlib.Path(archive) / ".work" / run_id
+    known = {m.id for m in reg.models}
+    unknown = [m for m in model_ids if m not in known]
+    staged = stage_inputs_task(reg, as_of, str(work), archive_root=archive, model_ids=[m for m in model_ids if m in known], batch_size=settings.batch_size)
+    operator = operator_identity(settings.operator)
+    futures = refit_batch_task.map(
+        [b.path for b in staged.batches], unmapped(reg.policy), unmapped(archive), unmapped(run_id), unmapped(operator),
+        unmapped(approve), unmapped(approved_by), unmapped(CalibrationCache()),
+    )
+    records = [r for batch in futures.result() for r in batch]
+    records += [{"model_id": m, "status": "error", "reasons": [f"model {m!r} is not an accepted entry of the registry"]} for m in unknown]
+    manifest = {
+        "kind": "refit",
+        "operator": operator,
+        "tool_version": package_versions()["fitaudit"],
+        "code_commit": code_commit(),
+        "packages": package_versions(),
+        "registry": {"path": str(pathlib.Path(reg.path).resolve()), "sha256": reg.sha256},
+        "inputs": staged.fingerprints,
+        "reason": reason,
+        "policy": reg.policy.to_dict(),
+        "counts": {s: sum(1 for r in records if r.get("status") == s) for s in sorted({r.get("status") for r in records})},
+    }
+    path = record_task(archive, run_id, as_of, records, manifest)
+    shutil.rmtree(work, ignore_errors=True)
+    refit_events_task(records, run_id)
+    get_run_logger().info("refit %s: %s", run_id, manifest["counts"])
+    return {"run_id": run_id, "path": path, "records": records}

@@ -1,0 +1,326 @@
+"""Staging: one scan per source, per-model inputs written to batch files for the audit tasks.
+
+The audit flow never passes extracts between tasks.  :func:`stage_inputs` scans each source once
+(filter push-down on the series keys and the time range the windows need), cuts every model's
+fit window ending at the as-of date, attaches what the audit needs (production parameter version,
+earlier verdicts, lineage, data problems) and writes one ``batch-NNNN.npz`` file per batch of
+models from the same source.  Audit tasks receive only the path.  Memory stays bounded by one
+source's requested rows at a time.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import json
+import math
+import pathlib
+from dataclasses import dataclass, field
+from typing import Any, Iterable, Sequence
+
+import numpy as np
+from prefect import task
+from prefect.cache_policies import NO_CACHE
+
+from fitaudit.core.models import model_from_dict
+
+from ._io import canonical_json, json_ready
+from .extracts import ExtractError, ExtractFingerprint, SeriesProblem, fingerprint_source, read_series, series_problems
+from .params import ParameterStoreError, production_version
+from .registry import ModelEntry, Registry
+
+__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_size_for", "FREQUENCY_DAYS"]
+
+#: Upper bound of one period of each registry frequency, in days (for the time range to read).
+FREQUENCY_DAYS = {"15min": 1 / 96, "30min": 1 / 48, "H": 1 / 24, "D": 1, "W": 7, "MS": 31, "M": 31, "QS": 92, "Q": 92}
+
+
+@dataclass(frozen=True)
+class ModelInput:
+    """Everything one model's audit needs, read back from a batch file."""
+
+    entry: dict
+    y: np.ndarray
+    time: np.ndarray
+    exog: dict
+    production: dict | None
+    lineage: dict
+    problems: tuple
+    history: tuple
+
+    @property
+    def model_id(self) -> str:
+        """The model entry's id."""
+        return self.entry["id"]
+
+
+@dataclass(frozen=True)
+class BatchRef:
+    """A staged batch: its file and the ids of its models."""
+
+    path: str
+    model_ids: tuple
+
+
+@dataclass(frozen=True)
+class StagedRun:
+    """Result of staging: batches, fingerprints per source and source-level failures."""
+
+    batches: tuple
+    fingerprints: dict
+    source_errors: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        """JSON-ready view."""
+        return {
+            "batches": [{"path": b.path, "model_ids": list(b.model_ids)} for b in self.batches],
+            "fingerprints": {k: v for k, v in self.fingerprints.items()},
+            "source_errors": dict(self.source_errors),
+        }
+
+
+def batch_size_for(n_models: int, workers: int = 1, requested: int = 0) -> int:
+    """Models per task: ``requested`` if set, else enough models that a task does seconds of work.
+
+    Rule (prefect.md section 2): at most a few dozen tasks per run and at least ``2 * workers``
+    tasks when there are enough models; batches of 25 to 200 models.
+    """
+    if requested > 0:
+        return requested
+    target_tasks = max(2 * workers, math.ceil(n_models / 200))
+    return int(min(200, max(25, math.ceil(n_models / max(target_tasks, 1)))))
+
+
+def _end_of_day(as_of: dt.date) -> np.datetime64:
+    return np.datetime64(as_of + dt.timedelta(days=1), "ns") - np.timedelta64(1, "ns")
+
+
+def _production(archive_root: pathlib.Path | None, entry: ModelEntry) -> dict | None:
+    """The production parameter version, or an ``error`` note when it cannot be used."""
+    if archive_root is None:
+        return None
+    try:
+        version = production_version(archive_root, entry.id)
+    except (ParameterStoreError, OSError, ValueError) as exc:
+        return {"error": f"model {entry.id!r}: its parameter store cannot be read ({exc}); run `fitaudit verify` on the archive."}
+    if version is None:
+        return None
+    out = {
+        "version": version.version,
+        "sha256": version.sha256,
+        "created_at": version.created_at,
+        "params": dict(version.params),
+        "noise": dict(version.noise),
+        "spec": dict(version.spec),
+    }
+    if not _same_spec(version.spec, entry.spec):
+        out["error"] = (
+            f"model {entry.id!r}: production parameter version {version.version} was fitted for spec "
+            f"{json.dumps(json_ready(version.spec), sort_keys=True)}, but the registry now says "
+            f"{json.dumps(json_ready(entry.spec), sort_keys=True)}; refit and promote a version for the new spec "
+            f"(`fitaudit refit --model {entry.id}`)."
+        )
+    return out
+
+
+def _same_spec(a: dict, b: dict) -> bool:
+    """Whether two spec dicts describe the same model (defaults filled in by the model class)."""
+    try:
+        return json_ready(model_from_dict(dict(a)).to_dict()) == json_ready(model_from_dict(dict(b)).to_dict())
+    except Exception:  # an unreadable stored spec is a mismatch, reported by the caller
+        return False
+
+
+def _lineage(entry: ModelEntry, fp: ExtractFingerprint | None, time: np.ndarray, n_loaded: int) -> dict:
+    def iso(t):
+        return str(np.datetime_as_string(t, unit="s")) if t is not None else None
+
+    return {
+        "source": entry.source,
+        "series": entry.series,
+        "value": entry.value,
+        "exogenous": list(entry.exogenous),
+        "extract_digest": fp.digest if fp is not None else None,
+        "extract_rows": fp.rows if fp is not None else None,
+        "extract_files": len(fp.files) if fp is not None else None,
+        "rows_loaded": int(n_loaded),
+        "first": iso(time[0]) if time.size else None,
+        "last": iso(time[-1]) if time.size else None,
+        "fit_window": entry.fit_window,
+        "audit_window": entry.audit_window,
+        "audit_first": iso(time[-entry.audit_window]) if time.size >= entry.audit_window else None,
+    }
+
+
+def _write_batch(path: pathlib.Path, inputs: list[dict], arrays: dict[str, np.ndarray]) -> None:
+    np.savez(path.with_suffix(".npz"), **arrays)
+    path.with_suffix(".json").write_bytes(canonical_json(inputs, indent=2))
+
+
+def read_batch(path: str | pathlib.Path) -> list[ModelInput]:
+    """Read a staged batch back as :class:`ModelInput` objects."""
+    path = pathlib.Path(path)
+    meta = json.loads(path.with_suffix(".json").read_text())
+    with np.load(path.with_suffix(".npz"), allow_pickle=False) as data:
+        out = []
+        for i, m in enumerate(meta):
+            exog = {name: data[f"{i}/x/{j}"] for j, name in enumerate(m["exog_names"])}
+            out.append(
+                ModelInput(
+                    entry=m["entry"],
+                    y=data[f"{i}/y"],
+                    time=data[f"{i}/t"],
+                    exog=exog,
+                    production=m["production"],
+                    lineage=m["lineage"],
+                    problems=tuple(m["problems"]),
+                    history=tuple(m["history"]),
+                )
+            )
+    return out
+
+
+def stage_inputs(
+    registry: Registry,
+    as_of: dt.date,
+    staging_dir: str | pathlib.Path,
+    *,
+    archive_root: str | pathlib.Path | None = None,
+    histories: dict[str, Sequence[dict]] | None = None,
+    model_ids: Iterable[str] | None = None,
+    batch_size: int = 0,
+    workers: int = 1,
+    os_errors: str = "raise",
+) -> StagedRun:
+    """Scan every source once and write batch files of per-model inputs.
+
+    Parameters
+    ----------
+    registry : Registry
+    as_of : date
+        Data up to the end of this day are used; each model gets its last ``fit`` observations.
+    staging_dir : path
+        Where the batch files go (a private folder of the run).
+    archive_root : path, optional
+        Archive holding the parameter store (production versions).
+    histories : dict, optional
+        Earlier audits per model id (oldest first), attached to each input.
+    model_ids : iterable of str, optional
+        Audit only these models (default: every accepted model).
+    batch_size, workers : int
+        See :func:`batch_size_for`.
+    os_errors : {"raise", "record"}
+        An ``OSError`` while reading a source (possibly transient: a network file system, an
+        object store) is raised by default, so that the Prefect task retries the staging; with
+        ``"record"`` it becomes an ``error`` for every model of that source.  Permanent problems
+        (``ExtractError``: missing path, corrupt file, missing columns) are always recorded.
+    """
+    staging = pathlib.Path(staging_dir)
+    staging.mkdir(parents=True, exist_ok=True)
+    archive = pathlib.Path(archive_root) if archive_root is not None else None
+    wanted = set(model_ids) if model_ids is not None else None
+    entries = [m for m in registry.models if wanted is None or m.id in wanted]
+    size = batch_size_for(len(entries), workers, batch_size)
+    end = _end_of_day(as_of)
+    histories = histories or {}
+    by_source: dict[str, list[ModelEntry]] = {}
+    for e in sorted(entries, key=lambda e: e.id):
+        by_source.setdefault(e.source, []).append(e)
+
+    batches: list[BatchRef] = []
+    fingerprints: dict[str, dict] = {}
+    source_errors: dict[str, str] = {}
+    for source_name in sorted(by_source):
+        source = registry.sources[source_name]
+        models = by_source[source_name]
+        span_days = FREQUENCY_DAYS.get(source.frequency, 31) * (max(m.fit_window for m in models) + 2) + 2
+        start = end - np.timedelta64(int(math.ceil(span_days * 86400)), "s")
+        columns = sorted({m.value for m in models} | {x for m in models for x in m.exogenous})
+        fp = None
+        try:
+            fp = fingerprint_source(source, registry.base_dir)
+            fingerprints[source_name] = fp.to_dict()
+            data = read_series(source, sorted({m.series for m in models}), columns, start=start, end=end, base_dir=registry.base_dir)
+        except ExtractError as exc:
+            source_errors[source_name] = str(exc)
+            data = {}
+        except OSError as exc:
+            if os_errors == "raise":
+                raise
+            source_errors[source_name] = f"reading source {source_name!r} failed after retries ({type(exc).__name__}: {exc}); check that its storage is reachable"
+            data = {}
+        for chunk_start in range(0, len(models), size):
+            chunk = models[chunk_start : chunk_start + size]
+            metas, arrays = [], {}
+            for i, entry in enumerate(chunk):
+                meta, y, t, exog = _model_input(entry, data.get(entry.series), source_errors.get(source_name), fp, archive, source.frequency)
+                meta["history"] = [dict(h) for h in histories.get(entry.id, ())]
+                arrays[f"{i}/y"] = y
+                arrays[f"{i}/t"] = t
+                for j, name in enumerate(meta["exog_names"]):
+                    arrays[f"{i}/x/{j}"] = exog[name]
+                metas.append(meta)
+            path = staging / f"batch-{len(batches) + 1:04d}"
+            _write_batch(path, metas, arrays)
+            batches.append(BatchRef(str(path), tuple(e.id for e in chunk)))
+        del data
+    return StagedRun(tuple(batches), fingerprints, source_errors)
+
+
+def _model_input(entry: ModelEntry, series, source_error: str | None, fp, archive, frequency: str) -> tuple[dict, np.ndarray, np.ndarray, dict]:
+    """Cut one model's fit window and collect its problems.
+
+    The reader validated the whole span it loaded; when it found problems, the model's own
+    window is validated again so that a flaw outside the window does not stop the audit.
+    """
+    empty_t = np.array([], dtype="datetime64[ns]")
+    problems: list[dict] = []
+    production = _production(archive, entry)
+    if source_error is not None:
+        problems.append({"kind": "unreadable-source", "severity": "error", "message": f"model {entry.id!r}: {source_error}"})
+    if series is None:
+        meta = {"entry": entry.to_dict(), "exog_names": [], "production": production, "problems": problems, "lineage": _lineage(entry, fp, empty_t, 0)}
+        return meta, np.array([]), empty_t, {}
+    columns = [entry.value, *entry.exogenous]
+    found = list(series.problems_for(columns))
+    time = series.time
+    n_loaded = time.size
+    keep = slice(max(0, n_loaded - entry.fit_window), n_loaded)
+    t = time[keep]
+    y = np.asarray(series.columns.get(entry.value, np.full(n_loaded, np.nan)), dtype=float)[keep]
+    exog = {name: np.asarray(series.columns.get(name, np.full(n_loaded, np.nan)), dtype=float)[keep] for name in entry.exogenous}
+    if found and n_loaded:
+        found = list(series_problems(entry.series, t, {entry.value: y, **exog}, frequency, source=entry.source, exogenous=tuple(entry.exogenous)))
+    short = series.length_problem(entry.fit_window)
+    if short is not None and not any(p.severity == "error" for p in found):
+        found.append(short)
+    for p in found:
+        problems.append({"kind": p.kind, "severity": p.severity, "message": f"model {entry.id!r}: {p.message}"})
+    if n_loaded == 0 and not problems:
+        problems.append({"kind": "no-data", "severity": "insufficient", "message": f"model {entry.id!r}: no observations of series {entry.series!r} in source {entry.source!r} on or before the as-of date."})
+    meta = {
+        "entry": entry.to_dict(),
+        "exog_names": list(entry.exogenous),
+        "production": production,
+        "problems": problems,
+        "lineage": _lineage(entry, fp, t, n_loaded),
+    }
+    return meta, y, t, exog
+
+
+
+def _retry_transient(task, task_run, state) -> bool:
+    """Retry only I/O errors (``OSError``), not validation problems."""
+    try:
+        state.result()
+    except OSError:
+        return True
+    except Exception:
+        return False
+    return False
+
+
+@task(name="stage-extracts", retries=2, retry_delay_seconds=3, retry_condition_fn=_retry_transient, cache_policy=NO_CACHE, persist_result=False)
+def stage_inputs_task(registry: Registry, as_of: dt.date, staging_dir: str, **kwargs) -> StagedRun:
+    """Prefect task: one scan per source, batch files out (retried for transient I/O errors)."""
+    return stage_inputs(registry, as_of, staging_dir, **kwargs)

@@ -1,0 +1,33 @@
+"""Package-level configuration, read from the environment or ``prefect.toml``.
+
+``PREFECT_INTEGRATIONS_FITAUDIT_ARCHIVE_ROOT=/srv/archive`` or, in ``prefect.toml``::
+
+    [integrations.fitaudit]
+    archive_root = "/srv/archive"
+    batch_size = 100
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from prefect.settings.base import PrefectBaseSettings, build_settings_config
+from pydantic import Field
+
+__all__ = ["FitauditSettings", "get_settings"]
+
+
+class FitauditSettings(PrefectBaseSettings):
+    """Static configuration of the fitaudit plugin (per-run choices are flow parameters)."""
+
+    model_config = build_settings_config(("integrations", "fitaudit"))
+
+    archive_root: Path = Field(default=Path("./archive"), description="Folder of the tamper-evident archive.")
+    registry_path: Path = Field(default=Path("./registry.yaml"), description="The model registry (YAML).")
+    batch_size: int = Field(default=0, ge=0, description="Models per Prefect task; 0 chooses automatically.")
+    operator: str = Field(default="", description="Operator or service account recorded in each manifest.")
+
+
+def get_settings() -> FitauditSettings:
+    """Fresh settings object (reads the environment at call time)."""
+    return FitauditSettings()
