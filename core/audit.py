@@ -241,16 +241,27 @@ class CheckResult:
         return self.ok and not any(self.gate_flags(threshold, adjusted))
 
     def to_dict(self) -> dict:
-        """JSON-ready view (the map as its own ``to_dict``; infinities as strings)."""
+        """JSON-ready view (the map as its own ``to_dict``; infinities as strings).
+
+        Grids are rounded to 6 decimals: enough for every figure the report prints, and it keeps a
+        thousand-model results file compact.
+        """
         out = {}
         for f in dataclasses.fields(self):
             v = getattr(self, f.name)
             if f.name == "map":
-                v = None if v is None else v.to_dict()
+                v = None if v is None else dict(v.to_dict(), statistic=_rounded(v.statistic))
+            elif f.name in ("critical_grid", "scaled_grid"):
+                v = None if v is None else _rounded(v)
             elif isinstance(v, tuple):
                 v = list(v)
             out[f.name] = _plain(v)
         return out
+
+
+def _rounded(grid: np.ndarray) -> list:
+    """A grid as nested lists rounded to 6 decimals, non-finite values as strings or None."""
+    return _plain(np.round(np.asarray(grid, dtype=float), 6))
 
 
 @dataclass(frozen=True)

@@ -89,7 +89,7 @@ def publish_run(
     run_id = run_id or new_run_id(as_of)
     writer = open_run(archive_root, run_id, as_of.year, as_of=as_of)
     with writer:
-        writer.write_bytes("results.json", canonical_json(doc, indent=2))
+        writer.write_bytes("results.json", canonical_json(doc))
         writer.write_bytes("results.parquet", _parquet_bytes(results_rows(doc)))
         for rel, data in sorted(pages.items()):
             writer.write_bytes(rel, data)

@@ -35,3 +35,24 @@ def rng() -> np.random.Generator:
 def repo_root() -> pathlib.Path:
     """The repository root."""
     return REPO
+
+
+@pytest.fixture(scope="session")
+def prefect_server(tmp_path_factory):
+    """A real Prefect API for the session: reuse ``PREFECT_API_URL`` if set, else start one.
+
+    Starting ``prefect server start`` costs 15-25 s once per session; every flow test then runs
+    against it (Dask workers and served deployments need a real server anyway).
+    """
+    from prefect.settings import PREFECT_API_URL, temporary_settings
+
+    url = os.environ.get("PREFECT_API_URL")
+    if url:
+        yield url
+        return
+    from fitaudit.flows.server import local_server
+
+    log = tmp_path_factory.mktemp("prefect-server") / "server.log"
+    with local_server(log_path=str(log), timeout=180) as url:
+        with temporary_settings(updates={PREFECT_API_URL: url}):
+            yield url

@@ -5,6 +5,20 @@ registry names (``arima``, ``smoothing``, ``nonlinear-ar``) to the classes.
 """
 
 from ._base import FitResult, ForecastModel, check_series, exog_matrix
+from .arima import Arima
+from .nonlinear import NonlinearAR
 from .registry import FAMILIES, get_family, model_from_dict
+from .smoothing import ExpSmoothing
 
-__all__ = ["FAMILIES", "FitResult", "ForecastModel", "check_series", "exog_matrix", "get_family", "model_from_dict"]
+__all__ = [
+    "FAMILIES",
+    "Arima",
+    "ExpSmoothing",
+    "FitResult",
+    "ForecastModel",
+    "NonlinearAR",
+    "check_series",
+    "exog_matrix",
+    "get_family",
+    "model_from_dict",
+]

@@ -1,0 +1,98 @@
+"""The flows on a real Prefect server: end to end, determinism across batch sizes and runners."""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import pathlib
+import shutil
+
+import pytest
+
+from fitaudit.tasks.archive import verify_archive
+from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
+
+pytestmark = pytest.mark.server
+
+SUBSET = [
+    "demand-d-02",  # healthy
+    "demand-d-07",  # planted: volatility jump (refit)
+    "demand-d-13",  # planted: heavy tails, no production version (respecify)
+    "demand-d-25",  # planted: too short (insufficient)
+    "demand-d-31",  # planted: missing reading (error)
+    "energy-pump-01",  # exponential smoothing
+    "leakage-leak-01",  # threshold autoregression
+]
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    root = tmp_path_factory.mktemp("flows-demo")
+    return write_demo(root)
+
+
+def _results(run: dict) -> bytes:
+    return (pathlib.Path(run["report"]).parent / "results.json").read_bytes()
+
+
+def _fresh_archive(demo: dict, tmp_path: pathlib.Path) -> str:
+    """A copy of the demo archive (parameter store) so that runs do not see each other."""
+    target = tmp_path / "archive"
+    shutil.copytree(demo["archive"], target)
+    return str(target)
+
+
+@pytest.fixture(scope="module")
+def first_run(demo, prefect_server, tmp_path_factory):
+    from fitaudit.flows.audit import audit_flow
+
+    archive = _fresh_archive(demo, tmp_path_factory.mktemp("run1"))
+    return audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=archive, models=SUBSET, batch_size=3)
+
+
+def test_audit_flow_end_to_end(first_run):
+    counts = first_run["counts"]
+    assert counts["registered"] == len(SUBSET) == sum(counts[v] for v in ("pass", "refit", "respecify", "insufficient", "error"))
+    doc = json.loads(_results(first_run))
+    verdicts = {m["id"]: m["verdict"] for m in doc["models"]}
+    assert verdicts["demand-d-25"] == "insufficient"
+    assert verdicts["demand-d-31"] == "error"
+    assert verdicts["demand-d-13"] == "respecify"
+    assert verdicts["demand-d-07"] == "refit"
+    assert not [p for p in verify_archive(first_run["archive"]) if not p.is_note]
+    manifest = json.loads((pathlib.Path(first_run["report"]).parent / "manifest.json").read_text())
+    for key in ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "packages", "registry", "inputs", "seeds", "timings", "files"):
+        assert manifest.get(key), key
+    assert manifest["batches"] == 3  # 7 models in batches of 3 from two sources
+
+
+def test_results_do_not_depend_on_batch_size(demo, first_run, tmp_path):
+    from fitaudit.flows.audit import audit_flow
+
+    other = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=_fresh_archive(demo, tmp_path), models=SUBSET, batch_size=1)
+    assert _results(other) == _results(first_run)
+
+
+def test_events_and_artifacts_exist(first_run):
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterKey
+
+    async def read():
+        async with get_client() as client:
+            arts = await client.read_artifacts(artifact_filter=ArtifactFilter(key=ArtifactFilterKey(any_=["fitaudit-verdicts", "fitaudit-summary", "fitaudit-report"])))
+            return {a.key for a in arts}
+
+    assert {"fitaudit-verdicts", "fitaudit-summary", "fitaudit-report"} <= asyncio.run(read())
+
+
+@pytest.mark.slow
+def test_dask_runner_gives_the_same_results(demo, first_run, tmp_path):
+    pytest.importorskip("prefect_dask")
+    from prefect_dask import DaskTaskRunner
+
+    from fitaudit.flows.audit import audit_flow
+
+    runner = DaskTaskRunner(cluster_class="distributed.LocalCluster", cluster_kwargs={"n_workers": 2, "threads_per_worker": 1, "processes": True, "dashboard_address": None})
+    run = audit_flow.with_options(task_runner=runner)(registry=demo["registry"], as_of=DEMO_AS_OF, archive=_fresh_archive(demo, tmp_path), models=SUBSET, batch_size=3)
+    assert run["counts"] == first_run["counts"]
+    assert _results(run) == _results(first_run)
