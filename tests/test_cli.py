@@ -1,0 +1,80 @@
+"""The ``fitaudit`` command line: help, exit codes, registry check, verify, serve guard, run."""
+
+from __future__ import annotations
+
+import os
+import pathlib
+import subprocess
+import sys
+
+import pytest
+
+from fitaudit.flows.cli import EXIT_FAIL_ON, EXIT_OK, EXIT_USAGE, EXIT_VERIFY, build_parser, main
+from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
+
+COMMANDS = [["demo"], ["run"], ["refit"], ["backfill"], ["serve"], ["verify"], ["registry", "check"], ["promote"], ["signoff"]]
+
+
+@pytest.mark.parametrize("cmd", COMMANDS, ids=lambda c: " ".join(c))
+def test_every_command_has_help(cmd, capsys):
+    with pytest.raises(SystemExit) as exc:
+        build_parser().parse_args([*cmd, "--help"])
+    assert exc.value.code == 0
+    out = capsys.readouterr().out
+    assert "usage: fitaudit " + " ".join(cmd) in out
+
+
+def test_top_level_help_lists_commands_and_exit_codes(capsys):
+    with pytest.raises(SystemExit):
+        build_parser().parse_args(["--help"])
+    out = capsys.readouterr().out
+    for name in ("demo", "run", "refit", "serve", "verify", "registry"):
+        assert name in out
+    assert "Exit codes" in out
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    return write_demo(tmp_path_factory.mktemp("cli-demo"))
+
+
+def test_registry_check_lists_every_problem_with_file_and_line(demo, capsys):
+    assert main(["registry", "check", demo["registry"]]) == EXIT_USAGE  # the demo plants one bad entry
+    out = capsys.readouterr().out
+    assert "registry.yaml:" in out and "noise" in out and "'gaussian'" in out
+
+
+def test_registry_check_valid(tmp_path, demo, capsys):
+    text = pathlib.Path(demo["registry"]).read_text()
+    cut = text.index("  - id: demand-d-40-legacy")
+    good = tmp_path / "registry.yaml"
+    good.write_text(text[:cut])
+    (tmp_path / "data").symlink_to(pathlib.Path(demo["data"]))
+    assert main(["registry", "check", str(good)]) == EXIT_OK
+    assert "valid" in capsys.readouterr().out
+
+
+def test_serve_without_a_server_explains_what_is_needed(demo, monkeypatch, capsys):
+    monkeypatch.delenv("PREFECT_API_URL", raising=False)
+    assert main(["serve", demo["registry"]]) == EXIT_USAGE
+    err = capsys.readouterr().err
+    assert "long-lived Prefect server" in err and "PREFECT_API_URL" in err and "--start-server" in err
+
+
+@pytest.mark.server
+def test_run_and_verify_through_the_command(demo, prefect_server, tmp_path):
+    env = dict(os.environ, PREFECT_API_URL=prefect_server)
+    archive = demo["archive"]
+    cmd = [sys.executable, "-m", "fitaudit.flows.cli", "run", demo["registry"], "--archive", archive, "--as-of", DEMO_AS_OF.isoformat(), "--models", "demand-d-02", "demand-d-31"]
+    ok = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=600)
+    assert ok.returncode == EXIT_OK, ok.stderr
+    assert "report: " in ok.stdout and "error 1" in ok.stdout
+    assert "ERROR" not in ok.stderr and "Traceback" not in ok.stderr
+    failing = subprocess.run([*cmd, "--fail-on", "error,respecify", "--quiet"], env=env, capture_output=True, text=True, timeout=600)
+    assert failing.returncode == EXIT_FAIL_ON
+    assert failing.stdout.strip().endswith("index.html")
+    assert main(["verify", archive]) == EXIT_OK
+    manifest = next(pathlib.Path(archive, "runs").rglob("manifest.json"))
+    manifest.chmod(0o644)
+    manifest.write_bytes(manifest.read_bytes().replace(b'"operator"', b'"0perator"', 1))
+    assert main(["verify", archive]) == EXIT_VERIFY
