@@ -60,6 +60,7 @@ __all__ = [
     "VERDICTS",
     "audit_series",
     "apply_fleet_rules",
+    "prepare_calibration",
     "as_model",
     "as_noise_law",
 ]
@@ -818,6 +819,38 @@ def audit_series(
         change=change,
         timings=timings,
     )
+
+
+def prepare_calibration(
+    entries: Sequence[tuple[Any, Any, AuditSettings, int, bool]],
+    cache: CalibrationCache | None = None,
+) -> CalibrationCache:
+    """Build, once, the simulated null tables a run's models will need.
+
+    ``entries`` holds ``(spec, noise, settings, n_observations, has_production)`` per model: the
+    production table depends on the audit window only, the refit table on the number of
+    residuals (``n_observations - spec.presample()``), the noise law and whether the location is
+    estimated.  Tables of laws whose shape is estimated are keyed by the estimate and built on
+    demand during the audit; so are bootstrap tables.  The returned cache is passed to every batch
+    (also to other processes), so no table is built twice.
+    """
+    cache = cache if cache is not None else CalibrationCache()
+    for spec, noise, settings, n_obs, has_production in entries:
+        if settings.calibration == "asymptotic":
+            continue
+        try:
+            model, law = as_model(spec), as_noise_law(noise)
+            if has_production and n_obs >= settings.audit_window:
+                n = settings.audit_window
+                production_table(n, number_of_cells(n, 0), settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache)
+            if settings.calibration == "simulated" and not law.discrete and not (law.has_shape and law.shape is None):
+                n = (settings.fit_window or n_obs) - model.presample()
+                location = model.has_location()
+                s = number_of_cells(n, law.n_estimated(location))
+                refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=law.shape, cache=cache)
+        except (FitauditError, ValueError):
+            continue  # the model's own audit reports the problem
+    return cache
 
 
 def apply_fleet_rules(

@@ -15,9 +15,8 @@ from prefect import flow, get_run_logger, task, unmapped
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
 
-from fitaudit.core.calibration import CalibrationCache
 from fitaudit.tasks.archive import new_run_id, recover
-from fitaudit.tasks.audit import Outcome, audit_batch_task, candidates_task, finalize, records, rejected_outcome, with_candidates
+from fitaudit.tasks.audit import Outcome, audit_batch_task, calibration_task, candidates_task, finalize, records, rejected_outcome, with_candidates
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.events import emit_run_event, emit_verdict_events, publish_artifacts
 from fitaudit.tasks.publish import (
@@ -157,7 +156,9 @@ def audit_flow(
     timings["stage_s"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
-    cache = CalibrationCache()
+    cache = calibration_task([b.path for b in staged.batches], reg.policy)
+    timings["calibration_s"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
     futures = audit_batch_task.map([b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache))
     outcomes = [o for batch in futures.result() for o in batch]
     outcomes += [rejected_outcome(r) for r in reg.rejected if models is None or r.id in set(models)]

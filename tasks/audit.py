@@ -16,15 +16,15 @@ from typing import Any, Iterable, Mapping, Sequence
 from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 
-from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model
+from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model, prepare_calibration
 from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.exceptions import FitauditError
 
-from .batches import ModelInput, read_batch
+from .batches import ModelInput, batch_metadata, read_batch
 from .registry import Policy, RejectedEntry
 from .results import model_record
 
-__all__ = ["Outcome", "settings_for", "audit_input", "audit_inputs", "audit_batch", "finalize", "rejected_outcome", "records", "audit_batch_task", "candidates_for", "candidates_task", "with_candidates"]
+__all__ = ["Outcome", "settings_for", "audit_input", "audit_inputs", "audit_batch", "finalize", "rejected_outcome", "records", "audit_batch_task", "candidates_for", "candidates_task", "with_candidates", "calibration_for", "calibration_task"]
 
 
 @dataclass(frozen=True)
@@ -185,6 +185,29 @@ def records(outcomes: Sequence[Outcome], as_of: str) -> list[dict]:
             )
         )
     return out
+
+
+def calibration_for(batch_paths: Sequence[str], policy: Policy) -> CalibrationCache:
+    """Build the run's shared null tables from the staged batches' metadata (no data read)."""
+    entries = []
+    for path in batch_paths:
+        for meta in batch_metadata(path):
+            if any(p["severity"] == "error" for p in meta["problems"]) or meta["lineage"].get("rows_loaded", 0) == 0:
+                continue
+            entry = meta["entry"]
+            production = meta.get("production")
+            n_obs = min(int(meta["lineage"]["rows_loaded"]), int(entry["windows"]["fit"]))
+            noise = {"law": entry["noise"]["law"], "shape": entry["noise"].get("shape")}
+            entries.append((dict(entry["spec"]), noise, settings_for(entry, policy), n_obs, bool(production and not production.get("error"))))
+    return prepare_calibration(entries)
+
+
+@task(name="prepare-calibration", cache_policy=NO_CACHE, persist_result=False)
+def calibration_task(batch_paths: list[str], policy: Policy) -> CalibrationCache:
+    """Prefect task: simulate every null table the run needs, once, before the batches start."""
+    cache = calibration_for(batch_paths, policy)
+    get_run_logger().info("calibration: %d null tables", len(cache))
+    return cache
 
 
 @task(name="audit-batch", cache_policy=NO_CACHE, persist_result=False)

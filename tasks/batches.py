@@ -29,7 +29,7 @@ from .extracts import ExtractError, ExtractFingerprint, SeriesProblem, fingerpri
 from .params import ParameterStoreError, production_version
 from .registry import ModelEntry, Registry
 
-__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_size_for", "FREQUENCY_DAYS"]
+__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "FREQUENCY_DAYS"]
 
 #: Upper bound of one period of each registry frequency, in days (for the time range to read).
 FREQUENCY_DAYS = {"15min": 1 / 96, "30min": 1 / 48, "H": 1 / 24, "D": 1, "W": 7, "MS": 31, "M": 31, "QS": 92, "Q": 92}
@@ -157,10 +157,15 @@ def _write_batch(path: pathlib.Path, inputs: list[dict], arrays: dict[str, np.nd
     path.with_suffix(".json").write_bytes(canonical_json(inputs, indent=2))
 
 
+def batch_metadata(path: str | pathlib.Path) -> list[dict]:
+    """The JSON part of a staged batch (entries, production versions, lineage, problems), no data."""
+    return json.loads(pathlib.Path(path).with_suffix(".json").read_text())
+
+
 def read_batch(path: str | pathlib.Path) -> list[ModelInput]:
     """Read a staged batch back as :class:`ModelInput` objects."""
     path = pathlib.Path(path)
-    meta = json.loads(path.with_suffix(".json").read_text())
+    meta = batch_metadata(path)
     with np.load(path.with_suffix(".npz"), allow_pickle=False) as data:
         out = []
         for i, m in enumerate(meta):

@@ -217,6 +217,10 @@ class ForecastModel(abc.ABC):
         """Number of ARMA-type dynamic coefficients (degrees of freedom for Ljung-Box)."""
         return 0
 
+    def presample(self) -> int:
+        """Leading observations that get no residual (lost to differencing or lags)."""
+        return 0
+
     def has_location(self) -> bool:
         """True when the model estimates a level/intercept (the residual mean is then not free)."""
         return True

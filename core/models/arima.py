@@ -330,6 +330,10 @@ class Arima(ForecastModel):
     def _lost(self) -> int:
         return self.order[1] + self.seasonal_period() * self.seasonal[1]
 
+    def presample(self) -> int:
+        """The d + D s observations lost to differencing."""
+        return self._lost()
+
     def _prepare(self, y, exog, fitting: bool) -> _Data:
         owner = self.describe()
         y = check_series(y, owner)

@@ -226,6 +226,10 @@ class NonlinearAR(ForecastModel):
             return regimes[0] + regimes[1] + ["threshold", "delay", "sigma2"]
         return list(self.start) + ["sigma2"]
 
+    def presample(self) -> int:
+        """The observations before the first one with all lags available."""
+        return self._origin()
+
     def _origin(self, delay: int | None = None) -> int:
         """First index with all lags (and the threshold variable) available."""
         return max(max(self.lags), delay or self.delay or 0)
