@@ -1,0 +1,1033 @@
+"""The HTML report of an audit run (design.md section 6; governance.md 3 and requirements 17-25).
+
+:func:`render_run` turns the results document (:func:`fitaudit.tasks.results.build_results`, the
+machine-readable twin ``results.json``) and the run's metadata into self-contained pages:
+
+``index.html``
+    The run page: summary counts first, the expected number of false flags, the exceptions
+    (most severe first, one reason each), movement against the previous audit, and every model's
+    status over its last eight audits.
+``models/<safe_id>.html``
+    One page per model: verdict and reasons, the two checks side by side, the divergence map as a
+    heat map of T / critical value, residual histogram, Q-Q plot, autocorrelations, parameters,
+    change point, candidates, history, data lineage and settings.
+``method.html``
+    What the statistics mean, with formulas and references, the run's thresholds and the cautions.
+
+:func:`render_archive_index` renders the archive's list of runs.  All pages use inline CSS and
+SVG only (no scripts, fonts, images or external links), show every status by symbol and word as
+well as colour, give each chart a data table, and print on A4.
+
+This is the only module of fitaudit that imports Jinja2.  Templates receive plain view
+dictionaries built here (chart geometry included) and only format them; user-supplied text is
+escaped by autoescape and its bidirectional and control characters are made visible.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+import unicodedata
+from typing import Any, Iterable, Mapping, Sequence
+
+import jinja2
+
+from fitaudit.core.exceptions import InputError
+
+from .registry import SAFE_ID
+from .results import SEVERITY
+
+__all__ = ["STATUS", "HEAT_BINS", "CAUTION", "environment", "render_run", "render_archive_index"]
+
+#: Status symbol and word for each verdict (colour is never the only signal, WCAG 2.1 SC 1.4.1).
+STATUS: dict[str, tuple[str, str]] = {
+    "pass": ("✓", "pass"),
+    "refit": ("↻", "refit"),
+    "respecify": ("⚑", "respecify"),
+    "insufficient": ("◌", "insufficient"),
+    "error": ("✕", "error"),
+}
+
+#: Upper edges of the heat-map classes of T / critical value (class ``h1`` .. ``h8``); 1 is the gate.
+HEAT_BINS: tuple[float, ...] = (0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 4.0)
+
+CAUTION = (
+    "A passing audit is statistical evidence, not proof that a model is fit for its use. "
+    "Decisions to keep, refit or retire a model follow the organisation's model-risk policy, "
+    "applicable regulation and the judgement of qualified reviewers."
+)
+
+_MOVEMENT = {
+    "new": "new exception",
+    "persisting": "persisting",
+    "resolved": "resolved",
+    "steady": "still passing",
+    "first": "first audit",
+}
+_MEMBER_LABELS = {
+    "pearson": "Pearson X²",
+    "likelihood-ratio": "G² (likelihood ratio)",
+    "cressie-read-2/3": "Cressie-Read λ = 2/3",
+    "freeman-tukey": "Freeman-Tukey",
+    "neyman": "Neyman",
+}
+#: (alpha, beta) of the classical members (model scaling, i.e. beta = 0 on a geometric grid).
+_MEMBER_POINTS = {
+    "pearson": (2.0, 0.0),
+    "likelihood-ratio": (1.0, 0.0),
+    "cressie-read-2/3": (5.0 / 3.0, 0.0),
+    "freeman-tukey": (0.5, 0.0),
+    "neyman": (-1.0, 0.0),
+}
+_HISTORY_CELLS = 8
+_SHORT_TEXT = 160
+_REQUIRED_META = ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "code_commit", "prefect_version")
+_VISIBLE_CONTROLS = {0x061C, 0x200E, 0x200F, 0x2028, 0x2029} | set(range(0x202A, 0x202F)) | set(range(0x2066, 0x206A))
+
+
+# ----------------------------------------------------------------------------------------------
+# Jinja environment and formatting filters
+# ----------------------------------------------------------------------------------------------
+def _float(x: Any) -> float | None:
+    """A number from the document (None, numbers, or the strings "inf", "-inf", "nan")."""
+    if x is None or isinstance(x, bool):
+        return None
+    if isinstance(x, str):
+        try:
+            x = float(x)
+        except ValueError:
+            return None
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return None if math.isnan(v) else v
+
+
+def _format_number(x: Any, digits: int = 3) -> str:
+    """A number with ``digits`` significant figures (Jinja filter ``num``).
+
+    Fixed notation without trailing zeros, scientific below 1e-4 and from 1e6 on; integers print
+    whole, missing values (None, NaN) as ``n/a`` and infinities (also the document's ``"inf"``) as
+    ``∞``.
+    """
+    if isinstance(x, int) and not isinstance(x, bool):
+        return str(x)
+    v = _float(x)
+    if v is None:
+        return "n/a"
+    if math.isinf(v):
+        return "∞" if v > 0 else "-∞"
+    if v == 0:
+        return "0"
+    a = abs(v)
+    if a < 1e-4 or a >= 1e6:
+        return f"{v:.{digits - 1}e}"
+    decimals = max(0, digits - 1 - math.floor(math.log10(a)))
+    text = f"{v:.{decimals}f}"
+    if "." in text:
+        text = text.rstrip("0").rstrip(".")
+    return "0" if float(text) == 0 else text
+
+
+def _format_p(p: Any) -> str:
+    """A p-value with three decimals, ``< 0.001`` below that, ``n/a`` when missing (filter ``p``).
+
+    Three decimals match the resolution of the default 999 simulated replicates, whose smallest
+    p-value is 1 / 1000.
+    """
+    v = _float(p)
+    if v is None:
+        return "n/a"
+    return "< 0.001" if v < 0.001 else f"{v:.3f}"
+
+
+def _coord(x: float) -> str:
+    """An SVG coordinate with at most one decimal."""
+    text = f"{x:.1f}"
+    return text[:-2] if text.endswith(".0") else text
+
+
+def _count(x: Any) -> str:
+    return "n/a" if x is None else str(x)
+
+
+@functools.lru_cache(maxsize=1)
+def environment() -> jinja2.Environment:
+    """The report's Jinja2 environment (built once and cached).
+
+    Returns
+    -------
+    jinja2.Environment
+        Templates from the ``fitaudit.templates`` package (``PackageLoader``); autoescape on for
+        ``.html`` and ``.j2`` names and by default for every other name and string template;
+        ``StrictUndefined``, so a missing name raises instead of printing nothing; the filters
+        ``num``, ``p``, ``px`` and ``count``.
+    """
+    env = jinja2.Environment(
+        loader=jinja2.PackageLoader("fitaudit.templates", "."),
+        autoescape=jinja2.select_autoescape(enabled_extensions=("html", "j2"), default_for_string=True, default=True),
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+        keep_trailing_newline=True,
+    )
+    env.filters.update(num=_format_number, p=_format_p, px=_coord, count=_count)
+    return env
+
+
+def _render(template: str, context: Mapping[str, Any]) -> bytes:
+    return environment().get_template(template).render(**context).encode("utf-8")
+
+
+# ----------------------------------------------------------------------------------------------
+# Small view helpers
+# ----------------------------------------------------------------------------------------------
+def _text(value: Any, limit: int | None = None) -> str:
+    """User text made safe to show: bidi/control characters visible as ``[U+XXXX]``, long text cut.
+
+    Escaping of ``<``, ``&`` and quotes is left to autoescape; this guards what escaping cannot:
+    direction overrides that reorder the rest of a line, and invisible controls.
+    """
+    if value is None:
+        return ""
+    text = str(value)
+    cut = 0
+    if limit is not None and len(text) > limit:
+        cut, text = len(text) - limit, text[:limit]
+    out = []
+    for ch in text:
+        code = ord(ch)
+        if code in _VISIBLE_CONTROLS or (unicodedata.category(ch) == "Cc" and ch not in "\t\n"):
+            out.append(f"[U+{code:04X}]")
+        else:
+            out.append(ch)
+    shown = "".join(out)
+    return f"{shown}… (+{cut} characters)" if cut else shown
+
+
+def _status(verdict: str) -> dict:
+    symbol, word = STATUS[verdict]
+    return {"key": verdict, "symbol": symbol, "word": word}
+
+
+def _deciding_check(audit: Mapping[str, Any] | None) -> Mapping[str, Any] | None:
+    """The check whose outcome decides the verdict: production when present, else refit."""
+    if not audit:
+        return None
+    return audit.get("production") if audit.get("production") is not None else audit.get("refit")
+
+
+def _ok(check: Mapping[str, Any] | None) -> bool:
+    return bool(check) and check.get("status") == "ok"
+
+
+def _value_text(value: Any) -> str:
+    """A settings/lineage value as short text."""
+    if value is None:
+        return "—"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, (int, float)):
+        return _format_number(value, 4)
+    if isinstance(value, (list, tuple)):
+        if not value:
+            return "none"
+        if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value) and len(value) > 8:
+            return f"{len(value)} values from {_format_number(value[0], 4)} to {_format_number(value[-1], 4)}"
+        return ", ".join(_value_text(v) for v in value[:20]) + (f", … ({len(value) - 20} more)" if len(value) > 20 else "")
+    if isinstance(value, Mapping):
+        return "; ".join(f"{_text(k)}: {_value_text(v)}" for k, v in value.items())
+    return _text(value)
+
+
+def _kv_rows(mapping: Mapping[str, Any] | None, prefix: str = "", limit: int = 200) -> list[dict]:
+    """Flatten nested mappings (and lists of mappings) into ``{"key", "value"}`` rows."""
+    rows: list[dict] = []
+    for key, value in (mapping or {}).items():
+        name = f"{prefix}{key}"
+        if isinstance(value, Mapping) and value:
+            rows.extend(_kv_rows(value, f"{name}.", limit))
+        elif isinstance(value, (list, tuple)) and value and all(isinstance(v, Mapping) for v in value):
+            for i, item in enumerate(value[:20]):
+                rows.extend(_kv_rows(item, f"{name}[{i}].", limit))
+            if len(value) > 20:
+                rows.append({"key": _text(f"{name}[…]"), "value": f"{len(value) - 20} more entries"})
+        else:
+            rows.append({"key": _text(name, _SHORT_TEXT), "value": _value_text(value)})
+        if len(rows) >= limit:
+            rows = rows[:limit] + [{"key": "…", "value": "further entries omitted"}]
+            break
+    return rows
+
+
+# ----------------------------------------------------------------------------------------------
+# SVG charts: geometry computed here, drawn by templates/_charts.html.j2
+# ----------------------------------------------------------------------------------------------
+class _Scale:
+    """Linear map from data [lo, hi] to pixels [p0, p1]."""
+
+    def __init__(self, lo: float, hi: float, p0: float, p1: float):
+        if not hi > lo:
+            hi = lo + 1.0
+        self.lo, self.hi, self.p0, self.p1 = lo, hi, p0, p1
+
+    def __call__(self, v: float) -> float:
+        return self.p0 + (v - self.lo) / (self.hi - self.lo) * (self.p1 - self.p0)
+
+
+def _nice_ticks(lo: float, hi: float, count: int = 5) -> list[float]:
+    """Round tick values covering [lo, hi] (steps of 1, 2 or 5 times a power of ten)."""
+    span = hi - lo
+    if not span > 0:
+        return [lo]
+    raw = span / max(count - 1, 1)
+    mag = 10 ** math.floor(math.log10(raw))
+    step = next(m * mag for m in (1, 2, 5, 10) if m * mag >= raw)
+    first = math.ceil(lo / step - 1e-9) * step
+    ticks, t = [], first
+    while t <= hi + 1e-9 * step:
+        ticks.append(0.0 if abs(t) < 1e-12 * step else round(t, 10))
+        t += step
+    return ticks
+
+
+def _chart(chart_id: str, width: float, height: float, title: str, desc: str) -> dict:
+    return {"id": chart_id, "cls": "plot", "w": width, "h": height, "title": title, "desc": desc,
+            "grid": [], "rects": [], "lines": [], "polylines": [], "paths": [], "circles": [], "texts": []}
+
+
+def _axes(chart: dict, x: _Scale, y: _Scale, xticks: Sequence[float], yticks: Sequence[float], xlabel: str, ylabel: str) -> None:
+    """Frame, ticks, gridlines and axis titles."""
+    left, right, bottom, top = x.p0, x.p1, y.p0, y.p1
+    for t in yticks:
+        py = y(t)
+        chart["grid"].append({"x1": left, "y1": py, "x2": right, "y2": py, "cls": "gl"})
+        chart["texts"].append({"x": left - 4, "y": py + 3.5, "text": _format_number(t, 2), "cls": "tk", "anchor": "end"})
+    for t in xticks:
+        px = x(t)
+        chart["lines"].append({"x1": px, "y1": bottom, "x2": px, "y2": bottom + 4, "cls": "ax"})
+        chart["texts"].append({"x": px, "y": bottom + 15, "text": _format_number(t, 2), "cls": "tk", "anchor": "middle"})
+    chart["lines"].append({"x1": left, "y1": bottom, "x2": right, "y2": bottom, "cls": "ax"})
+    chart["lines"].append({"x1": left, "y1": bottom, "x2": left, "y2": top, "cls": "ax"})
+    chart["texts"].append({"x": (left + right) / 2, "y": bottom + 30, "text": xlabel, "cls": "lb", "anchor": "middle"})
+    chart["texts"].append({"x": left - 34, "y": top - 6, "text": ylabel, "cls": "lb", "anchor": "start"})
+
+
+def _heat_class(v: float) -> str:
+    return "h" + str(1 + sum(v > edge for edge in HEAT_BINS))
+
+
+def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
+    """The divergence map as a heat map of T / critical value, with its data table."""
+    dmap = check["map"]
+    alphas = [float(a) for a in dmap["alphas"]]
+    betas = [float(b) for b in dmap["betas"]]
+    grid = check.get("scaled_grid") or [[None] * len(betas) for _ in alphas]
+    infinite = dmap.get("infinite") or [[False] * len(betas) for _ in alphas]
+    na, nb = len(alphas), len(betas)
+    cw, ch, left, top = 40.0, 18.0, 178.0, 16.0
+    width, height = left + nb * cw + 12, top + na * ch + 46
+    values = [[_float(grid[i][j]) for j in range(nb)] for i in range(na)]
+    fail = [[v is not None and not bool(infinite[i][j]) and v > 1.0 for j, v in enumerate(row)] for i, row in enumerate(values)]
+
+    def cell_x(j: int) -> float:
+        return left + j * cw
+
+    def cell_y(i: int) -> float:
+        return top + (na - 1 - i) * ch
+
+    n_fail = sum(map(sum, fail))
+    n_inf = sum(bool(infinite[i][j]) for i in range(na) for j in range(nb))
+    finite = [v for i, row in enumerate(values) for j, v in enumerate(row) if v is not None and not infinite[i][j]]
+    largest = max(finite) if finite else None
+    desc = (
+        f"{label}: T divided by its critical value at {na} values of alpha ({_format_number(alphas[0])} to "
+        f"{_format_number(alphas[-1])}, rows) and {nb} values of beta ({_format_number(betas[0])} to {_format_number(betas[-1])}, columns). "
+        f"{n_fail} of {na * nb} points exceed 1 (the check fails there); {n_inf} are infinite (an empty cell); "
+        f"the largest finite value is {_format_number(largest)}."
+    )
+    chart = _chart(chart_id, width, height, f"Divergence map of the {label.lower()}", desc)
+    chart["cls"] = "heat"
+    rows_table = []
+    for i in range(na):
+        row_cells = []
+        for j in range(nb):
+            v = values[i][j]
+            x0, y0 = cell_x(j), cell_y(i)
+            if infinite[i][j]:
+                cls, shown = "hinf", "∞"
+                chart["texts"].append({"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "∞", "cls": "sym", "anchor": "middle"})
+            elif v is None:
+                cls, shown = "hna", "n/a"
+                chart["texts"].append({"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "–", "cls": "sym", "anchor": "middle"})
+            else:
+                cls, shown = _heat_class(v), _format_number(v)
+            chart["rects"].append({"x": x0, "y": y0, "w": cw, "h": ch, "cls": cls})
+            row_cells.append({"text": shown, "fail": fail[i][j]})
+        rows_table.append({"alpha": _format_number(alphas[i]), "cells": row_cells})
+    # edge of the failing region: every side of a failing cell that borders a non-failing one
+    segments = []
+    for i in range(na):
+        for j in range(nb):
+            if not fail[i][j]:
+                continue
+            x0, y0 = cell_x(j), cell_y(i)
+            if i + 1 >= na or not fail[i + 1][j]:
+                segments.append(f"M{_coord(x0)} {_coord(y0)}H{_coord(x0 + cw)}")
+            if i == 0 or not fail[i - 1][j]:
+                segments.append(f"M{_coord(x0)} {_coord(y0 + ch)}H{_coord(x0 + cw)}")
+            if j == 0 or not fail[i][j - 1]:
+                segments.append(f"M{_coord(x0)} {_coord(y0)}V{_coord(y0 + ch)}")
+            if j + 1 >= nb or not fail[i][j + 1]:
+                segments.append(f"M{_coord(x0 + cw)} {_coord(y0)}V{_coord(y0 + ch)}")
+    if segments:
+        chart["paths"].append({"d": "".join(segments), "cls": "edge"})
+    # axes: alpha ticks on the left, beta ticks below
+    for i, a in enumerate(alphas):
+        if i % 2 == 0 or na <= 9:
+            chart["texts"].append({"x": left - 5, "y": cell_y(i) + ch / 2 + 4, "text": _format_number(a), "cls": "tk", "anchor": "end"})
+    for j, b in enumerate(betas):
+        if j % 2 == 0 or nb <= 5:
+            chart["texts"].append({"x": cell_x(j) + cw / 2, "y": top + na * ch + 14, "text": _format_number(b), "cls": "tk", "anchor": "middle"})
+    chart["texts"].append({"x": left + nb * cw / 2, "y": top + na * ch + 32, "text": "β (weight of the data in the scaling mean)", "cls": "lb", "anchor": "middle"})
+    chart["texts"].append({"x": left - 30, "y": top - 4, "text": "α", "cls": "lb", "anchor": "middle"})
+    # classical members (model scaling = beta 0 of a geometric or power grid) and the maximum
+    members_marked = []
+    scaling = dmap.get("scaling")
+    if scaling in ("geometric", "power", "model") and betas and abs(betas[0]) < 1e-12 and na > 1:
+        step = (alphas[-1] - alphas[0]) / (na - 1)
+        for name, (a, _b) in _MEMBER_POINTS.items():
+            if not alphas[0] - 1e-9 <= a <= alphas[-1] + 1e-9:
+                continue
+            pos = (a - alphas[0]) / step
+            cy = top + (na - 1 - pos) * ch + ch / 2
+            cx = cell_x(0) + cw / 2
+            chart["circles"].append({"cx": cx, "cy": cy, "r": 4.5, "cls": "mem"})
+            chart["lines"].append({"x1": left - 50, "y1": cy, "x2": left - 38, "y2": cy, "cls": "lead"})
+            chart["texts"].append({"x": left - 53, "y": cy + 3.5, "text": _MEMBER_LABELS[name], "cls": "mt", "anchor": "end"})
+            members_marked.append(name)
+    a_max, b_max = _float(check.get("alpha_max")), _float(check.get("beta_max"))
+    max_point = None
+    if a_max is not None and b_max is not None:
+        i = min(range(na), key=lambda k: abs(alphas[k] - a_max))
+        j = min(range(nb), key=lambda k: abs(betas[k] - b_max))
+        cx, cy = cell_x(j) + cw / 2, cell_y(i) + ch / 2
+        chart["paths"].append({"d": f"M{_coord(cx)} {_coord(cy - 7)}L{_coord(cx + 7)} {_coord(cy)}L{_coord(cx)} {_coord(cy + 7)}L{_coord(cx - 7)} {_coord(cy)}Z", "cls": "mx"})
+        max_point = {"alpha": _format_number(a_max), "beta": _format_number(b_max)}
+    return {
+        "chart": chart,
+        "table": {"betas": [_format_number(b) for b in betas], "rows": rows_table},
+        "n_fail": n_fail,
+        "n_inf": n_inf,
+        "n_points": na * nb,
+        "largest": largest,
+        "max_point": max_point,
+        "members_marked": [_MEMBER_LABELS[m] for m in members_marked],
+        "bins": _heat_legend(),
+    }
+
+
+def _heat_legend() -> list[dict]:
+    edges = (None,) + HEAT_BINS + (None,)
+    out = []
+    for k in range(len(HEAT_BINS) + 1):
+        lo, hi = edges[k], edges[k + 1]
+        if lo is None:
+            text = f"≤ {_format_number(hi)}"
+        elif hi is None:
+            text = f"> {_format_number(lo)}"
+        else:
+            text = f"{_format_number(lo)} – {_format_number(hi)}"
+        out.append({"cls": f"h{k + 1}", "text": text, "fails": lo is not None and lo >= 1.0})
+    return out
+
+
+def _histogram(check: Mapping[str, Any], chart_id: str, label: str) -> dict | None:
+    plots = check.get("plots") or {}
+    edges, counts = plots.get("hist_edges"), plots.get("hist_counts")
+    if not edges or not counts:
+        return None
+    density = plots.get("hist_density")
+    total = sum(counts) or 1
+    observed = [c / (total * (edges[k + 1] - edges[k])) for k, c in enumerate(counts)]
+    theory = [_float(d) or 0.0 for d in density] if density else None
+    top_value = max(observed + (theory or [])) * 1.1 or 1.0
+    width, height = 420.0, 230.0
+    x = _Scale(edges[0], edges[-1], 48, width - 12)
+    y = _Scale(0.0, top_value, height - 42, 18)
+    desc = (
+        f"{label}: observed density of the {total} standardised residuals in {len(counts)} bins from "
+        f"{_format_number(edges[0])} to {_format_number(edges[-1])}"
+        + (", with the density of the noise law as a line." if theory else "; the noise law is discrete, so no density is drawn.")
+    )
+    chart = _chart(chart_id, width, height, f"Residual histogram of the {label.lower()}", desc)
+    _axes(chart, x, y, _nice_ticks(edges[0], edges[-1], 6), _nice_ticks(0.0, top_value, 4), "standardised residual", "density")
+    for k, d in enumerate(observed):
+        if d > 0:
+            x0, x1 = x(edges[k]), x(edges[k + 1])
+            chart["rects"].append({"x": x0 + 0.5, "y": y(d), "w": max(x1 - x0 - 1, 0.5), "h": y(0) - y(d), "cls": "bar"})
+    centres = [(edges[k] + edges[k + 1]) / 2 for k in range(len(counts))]
+    if theory:
+        chart["polylines"].append({"points": " ".join(f"{_coord(x(c))},{_coord(y(d))}" for c, d in zip(centres, theory)), "cls": "ref"})
+    rows = [
+        {"bin": f"{_format_number(edges[k])} to {_format_number(edges[k + 1])}", "count": counts[k],
+         "observed": _format_number(observed[k]), "noise": _format_number(theory[k]) if theory else "n/a"}
+        for k in range(len(counts)) if counts[k] or (theory and theory[k] > 1e-3)
+    ]
+    return {"chart": chart, "rows": rows, "has_density": bool(theory)}
+
+
+def _qq(check: Mapping[str, Any], chart_id: str, label: str) -> dict | None:
+    plots = check.get("plots") or {}
+    theo, samp = plots.get("qq_theoretical"), plots.get("qq_sample")
+    if not theo or not samp:
+        return None
+    pairs = [(a, b) for a, b in zip((_float(t) for t in theo), (_float(s) for s in samp)) if a is not None and b is not None and math.isfinite(a) and math.isfinite(b)]
+    if not pairs:
+        return None
+    lo = min(min(p) for p in pairs)
+    hi = max(max(p) for p in pairs)
+    pad = 0.05 * (hi - lo or 1.0)
+    lo, hi = lo - pad, hi + pad
+    width, height = 300.0, 260.0
+    x = _Scale(lo, hi, 48, width - 12)
+    y = _Scale(lo, hi, height - 42, 18)
+    desc = f"{label}: {len(pairs)} quantiles of the standardised residuals against the quantiles of the noise law; points on the dashed diagonal mean agreement."
+    chart = _chart(chart_id, width, height, f"Q-Q plot of the {label.lower()}", desc)
+    ticks = _nice_ticks(lo, hi, 5)
+    _axes(chart, x, y, ticks, ticks, "noise-law quantile", "residual quantile")
+    chart["lines"].append({"x1": x(lo), "y1": y(lo), "x2": x(hi), "y2": y(hi), "cls": "ref"})
+    for a, b in pairs:
+        chart["circles"].append({"cx": x(a), "cy": y(b), "r": 2.6, "cls": "pt"})
+    rows = [{"theoretical": _format_number(a), "sample": _format_number(b)} for a, b in pairs]
+    return {"chart": chart, "rows": rows}
+
+
+def _acf(check: Mapping[str, Any], chart_id: str, label: str) -> dict | None:
+    plots = check.get("plots") or {}
+    values = [_float(r) for r in (plots.get("acf") or [])]
+    band = _float(plots.get("acf_band"))
+    if not values:
+        return None
+    lim = max([abs(v) for v in values if v is not None] + ([band] if band else []) + [0.2]) * 1.15
+    width, height = 420.0, 220.0
+    lags = len(values)
+    x = _Scale(0.0, lags + 1.0, 48, width - 12)
+    y = _Scale(-lim, lim, height - 42, 18)
+    outside = sum(1 for v in values if v is not None and band is not None and abs(v) > band)
+    desc = (
+        f"{label}: autocorrelations of the residuals at lags 1 to {lags}"
+        + (f"; dashed lines at ±{_format_number(band)} (approximate 95 % band). {outside} of {lags} lags fall outside it." if band else ".")
+    )
+    chart = _chart(chart_id, width, height, f"Residual autocorrelations of the {label.lower()}", desc)
+    _axes(chart, x, y, _nice_ticks(1.0, float(lags), 6), _nice_ticks(-lim, lim, 5), "lag", "autocorrelation")
+    chart["lines"].append({"x1": x(0), "y1": y(0), "x2": x(lags + 1), "y2": y(0), "cls": "ax"})
+    if band:
+        for b in (band, -band):
+            chart["lines"].append({"x1": x(0), "y1": y(b), "x2": x(lags + 1), "y2": y(b), "cls": "ref"})
+    rows = []
+    for k, v in enumerate(values, start=1):
+        if v is None:
+            continue
+        chart["lines"].append({"x1": x(k), "y1": y(0), "x2": x(k), "y2": y(v), "cls": "stem"})
+        chart["circles"].append({"cx": x(k), "cy": y(v), "r": 2.8, "cls": "pt"})
+        rows.append({"lag": k, "value": _format_number(v), "outside": band is not None and abs(v) > band})
+    return {"chart": chart, "rows": rows, "band": _format_number(band) if band else "n/a"}
+
+
+def _history_chart(points: Sequence[dict], chart_id: str) -> dict | None:
+    """The standardised maximum over past audits, each point drawn as its verdict symbol."""
+    shown = list(points[-26:])
+    values = [p["r"] for p in shown if p["r"] is not None]
+    if not values:
+        return None
+    width, height = 460.0, 210.0
+    hi = max(values) * 1.15 or 1.0
+    x = _Scale(-0.5, len(shown) - 0.5, 48, width - 12)
+    y = _Scale(0.0, hi, height - 46, 18)
+    desc = (
+        f"Standardised maximum R of the deciding check at {len(values)} audits from {shown[0]['as_of']} to {shown[-1]['as_of']}; "
+        f"each point is drawn as the symbol of that audit's verdict."
+    )
+    chart = _chart(chart_id, width, height, "History of the standardised maximum", desc)
+    _axes(chart, x, y, [], _nice_ticks(0.0, hi, 4), "audit (as-of date)", "R")
+    every = max(1, math.ceil(len(shown) / 6))
+    for k, p in enumerate(shown):
+        if k % every == 0 or k == len(shown) - 1:
+            chart["texts"].append({"x": x(k), "y": y(0) + 15, "text": p["as_of"], "cls": "tk", "anchor": "middle"})
+    run = []
+    for k, p in enumerate(shown):
+        if p["r"] is None:
+            if len(run) > 1:
+                chart["polylines"].append({"points": " ".join(run), "cls": "line"})
+            run = []
+            continue
+        run.append(f"{_coord(x(k))},{_coord(y(p['r']))}")
+        chart["texts"].append({"x": x(k), "y": y(p["r"]) + 5, "text": p["status"]["symbol"], "cls": "glyph", "anchor": "middle"})
+    if len(run) > 1:
+        chart["polylines"].insert(0, {"points": " ".join(run), "cls": "line"})
+    return {"chart": chart}
+
+
+# ----------------------------------------------------------------------------------------------
+# The run page
+# ----------------------------------------------------------------------------------------------
+def _meta_view(meta: Mapping[str, Any]) -> dict:
+    if not isinstance(meta, Mapping):
+        raise InputError(f"render_run: meta must be a dict of run metadata; got {type(meta).__name__}")
+    missing = [k for k in _REQUIRED_META if meta.get(k) in (None, "")]
+    if missing:
+        raise InputError(f"render_run: meta lacks {', '.join(missing)}; pass every one of {', '.join(_REQUIRED_META)} (archive_head and previous_run_id are optional)")
+    view = {k: _text(meta[k], _SHORT_TEXT) for k in _REQUIRED_META}
+    view["archive_head"] = _text(meta.get("archive_head")) or None
+    view["previous_run_id"] = _text(meta.get("previous_run_id")) or None
+    return view
+
+
+def _check_models(models: Sequence[Mapping[str, Any]]) -> None:
+    seen: dict[str, str] = {}
+    for k, m in enumerate(models):
+        safe = m.get("safe_id")
+        if not isinstance(safe, str) or not SAFE_ID.match(safe):
+            raise InputError(
+                f"render_run: model #{k} (id {str(m.get('id'))[:80]!r}) has safe_id {str(safe)[:80]!r}, which is not a safe file name "
+                f"(pattern {SAFE_ID.pattern}); build the record with fitaudit.tasks.results.model_record from the registry's safe_id"
+            )
+        if safe.lower() in seen:
+            raise InputError(f"render_run: models {seen[safe.lower()]!r} and {str(m.get('id'))[:80]!r} share the file name {safe!r} (case-insensitively); safe ids must be unique")
+        if m.get("verdict") not in STATUS:
+            raise InputError(f"render_run: model {str(m.get('id'))[:80]!r} has verdict {m.get('verdict')!r}; expected one of {', '.join(STATUS)}")
+        seen[safe.lower()] = str(m.get("id"))[:80]
+
+
+def _model_link(m: Mapping[str, Any], prefix: str = "models/") -> dict:
+    return {"id": _text(m["id"], _SHORT_TEXT), "href": f"{prefix}{m['safe_id']}.html", "safe_id": m["safe_id"]}
+
+
+def _summary_view(doc: Mapping[str, Any]) -> dict:
+    s = doc["summary"]
+    counts = [{"key": v, "status": _status(v), "value": s[v]} for v in STATUS]
+    total = sum(c["value"] for c in counts)
+    registered = s["registered"]
+    width = 640.0
+    segments, x0 = [], 0.0
+    for c in counts:
+        if c["value"] and registered:
+            w = width * c["value"] / registered
+            segments.append({"x": x0, "w": w, "cls": f"f-{c['key']}", "key": c["key"]})
+            x0 += w
+    adj = s.get("adjustment") or {}
+    method = {"bh": "Benjamini-Hochberg", "by": "Benjamini-Yekutieli", "bonferroni": "Bonferroni", "none": "no adjustment"}.get(adj.get("method"), _text(adj.get("method")))
+    bar = _chart("summary-bar", width, 28.0, "Verdicts of the registered models",
+                 "Share of each verdict among the registered models: " + "; ".join(f"{c['status']['word']} {c['value']}" for c in counts) + ".")
+    bar["cls"] = "stack"
+    for seg in segments:
+        bar["rects"].append({"x": seg["x"], "y": 2.0, "w": max(seg["w"] - 1.5, 0.5), "h": 24.0, "cls": seg["cls"]})
+    return {
+        "false_flags": _false_flag_sentence(s["checks"], _float(s.get("expected_false_flags_unadjusted")), _float(adj.get("level")), adj.get("method"), method, _float(adj.get("q"))),
+        "counts": counts,
+        "registered": registered,
+        "audited": s["audited"],
+        "reconciles": total == registered,
+        "checks": s["checks"],
+        "expected_false_flags": _float(s.get("expected_false_flags_unadjusted")),
+        "level": _float(adj.get("level")),
+        "method": method,
+        "method_key": adj.get("method"),
+        "q": _float(adj.get("q")),
+        "bar": bar,
+    }
+
+
+def _false_flag_sentence(checks: int, expected: float | None, level: float | None, key: str | None, method: str, q: float | None) -> str:
+    """The expected number of false flags if every model were healthy, and what the adjustment does."""
+    text = (
+        f"This run scored {checks} checks (the production and refit checks that ran). If every model were healthy, "
+        f"about {_format_number(expected)} of them would still fail at the {_format_number(level)} level before any adjustment."
+    )
+    if key in ("bh", "by"):
+        text += (
+            f" Verdicts use p-values adjusted across the run with the {method} procedure at q = {_format_number(q)}, which keeps the "
+            f"expected share of false flags among the flagged checks at or below {_format_number(None if q is None else 100 * q)} %"
+            + (", whatever the dependence between the tests." if key == "by" else " (for independent or positively dependent tests).")
+        )
+    elif key == "bonferroni":
+        text += f" Verdicts use Bonferroni-adjusted p-values at {_format_number(q)}, which keeps the chance of any false flag in the run at or below {_format_number(q)}."
+    else:
+        text += " Verdicts use unadjusted p-values, so about that many false flags are to be expected among the exceptions."
+    return text
+
+
+def _exceptions_view(models: Sequence[Mapping[str, Any]]) -> list[dict]:
+    rows = []
+    for m in sorted((m for m in models if m["verdict"] != "pass"), key=lambda m: (m.get("severity", SEVERITY[m["verdict"]]), m["id"])):
+        exc = m.get("exception") or {}
+        rows.append({
+            "link": _model_link(m),
+            "status": _status(m["verdict"]),
+            "owner": _text(m.get("owner"), _SHORT_TEXT),
+            "tier": _text(m.get("tier")),
+            "since": _text(exc.get("first_seen")),
+            "consecutive": exc.get("consecutive"),
+            "movement": _MOVEMENT.get(m.get("movement"), _text(m.get("movement"))),
+            "escalated": bool(m.get("escalated")),
+            "reason": _text(m["reasons"][0], 600) if m.get("reasons") else "No reason was recorded.",
+        })
+    return rows
+
+
+def _movement_view(doc: Mapping[str, Any], models: Sequence[Mapping[str, Any]]) -> dict:
+    moves = doc["summary"].get("movement") or {}
+    groups = []
+    for key in ("new", "persisting", "resolved"):
+        members = [dict(_model_link(m), status=_status(m["verdict"])) for m in models if m.get("movement") == key]
+        groups.append({"key": key, "label": _MOVEMENT[key], "count": moves.get(key, len(members)), "models": members})
+    return {"groups": groups, "steady": moves.get("steady", 0), "first": moves.get("first", 0)}
+
+
+def _status_row(m: Mapping[str, Any], as_of: str) -> dict:
+    past = [h for h in (m.get("history") or []) if h.get("verdict") in STATUS][-(_HISTORY_CELLS - 1):]
+    cells = [None] * (_HISTORY_CELLS - 1 - len(past))
+    cells += [{"status": _status(h["verdict"]), "as_of": _text(h.get("as_of"))} for h in past]
+    cells.append({"status": _status(m["verdict"]), "as_of": _text(as_of)})
+    check = _deciding_check(m.get("audit"))
+    ok = _ok(check)
+    return {
+        "link": _model_link(m),
+        "owner": _text(m.get("owner"), 60),
+        "status": _status(m["verdict"]),
+        "movement": _MOVEMENT.get(m.get("movement"), _text(m.get("movement"))),
+        "cells": cells,
+        "r_max": check.get("r_max") if ok else None,
+        "p_value": check.get("p_value") if ok else None,
+        "p_adjusted": check.get("p_adjusted") if ok else None,
+    }
+
+
+# ----------------------------------------------------------------------------------------------
+# The model page
+# ----------------------------------------------------------------------------------------------
+_RESIDUAL_TYPE = {
+    "production": "one-step forecast errors of the frozen production parameters over the audit window",
+    "refit": "in-sample one-step innovations of the model re-estimated on the fit window",
+}
+
+
+def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] | None) -> list[dict]:
+    """The side-by-side table of the two checks: one row per quantity, one cell per check."""
+    checks = [production, refit]
+
+    def cell(check, fn):
+        if check is None:
+            return "not run (no production version)"
+        if not _ok(check):
+            return "—"
+        try:
+            return fn(check)
+        except (KeyError, TypeError):
+            return "n/a"
+
+    def noise_text(c):
+        noise = c.get("noise") or {}
+        parts = [f"{k} {_format_number(noise.get(k), 4)}" for k in ("loc", "scale", "shape") if noise.get(k) is not None]
+        est = noise.get("estimated") or []
+        return f"{_text(noise.get('law'))}: " + ", ".join(parts) + (f" (estimated: {', '.join(map(str, est))})" if est else " (fixed)")
+
+    def lb_text(d):
+        return f"Q {_format_number(d.get('statistic'))} on {d.get('lags')} lags, df {d.get('df')}"
+
+    def window_text(c):
+        w = c.get("window") or {}
+        return f"positions {w.get('first')}–{w.get('last')} ({w.get('length')} observations)" if w else "n/a"
+
+    rows = [
+        {"label": "Status", "key": "status", "cells": [("not run (no production version)" if c is None else (c.get("status", "n/a") + (f": {_text(c.get('message'))}" if c.get("message") else ""))) for c in checks]},
+        {"label": "Residual type", "key": "residual_type", "cells": [("—" if c is None else _RESIDUAL_TYPE.get(c.get("kind"), "n/a")) for c in checks]},
+    ]
+    specs = [
+        ("Window", "window", window_text),
+        ("Residuals n", "n", lambda c: str(c["n"])),
+        ("Cells s", "cells", lambda c: str(c["cells"])),
+        ("Estimated noise parameters k", "k", lambda c: str(c["k"])),
+        ("Noise law", "noise", noise_text),
+        ("Calibration", "calibration", lambda c: _text((c.get("calibration") or {}).get("method"))),
+        ("Replicates", "replicates", lambda c: _count((c.get("calibration") or {}).get("replicates"))),
+        ("Reference", "reference", lambda c: _text((c.get("calibration") or {}).get("table") or (c.get("calibration") or {}).get("reference") or "n/a")),
+        ("Largest statistic T_max", "t_max", lambda c: _format_number(c.get("t_max"))),
+        ("Standardised maximum R", "r_max", lambda c: _format_number(c.get("r_max"))),
+        ("Deciding point (α, β)", "argmax", lambda c: f"α {_format_number(c.get('alpha_max'))}, β {_format_number(c.get('beta_max'))}"),
+        ("T there / its critical value", "t_at_max", lambda c: f"{_format_number(c.get('t_at_max'))} / {_format_number(c.get('critical_value'))}"),
+        ("p, distribution gate", "p_distribution", lambda c: _format_p(c.get("p_distribution"))),
+        ("Ljung-Box", "ljung_box", lambda c: lb_text(c.get("ljung_box") or {})),
+        ("p, independence gate (Ljung-Box)", "p_independence", lambda c: _format_p(c.get("p_independence"))),
+        ("McLeod-Li (squared residuals, reported)", "mcleod_li", lambda c: lb_text(c.get("mcleod_li") or {}) + f", p {_format_p((c.get('mcleod_li') or {}).get('p_value'))}"),
+        ("p, check (Bonferroni over the two gates)", "p_value", lambda c: _format_p(c.get("p_value"))),
+        ("p, adjusted across the run", "p_adjusted", lambda c: _format_p(c.get("p_adjusted"))),
+        ("Effect: T_max / 2n", "effect_divergence", lambda c: _format_number(c.get("effect_divergence"))),
+        ("Effect: largest |autocorrelation|", "effect_acf", lambda c: _format_number(c.get("effect_acf"))),
+        ("Ljung-Box convention", "lb_convention", lambda c: _text((c.get("ljung_box") or {}).get("convention") or "n/a")),
+    ]
+    for label, key, fn in specs:
+        rows.append({"label": label, "key": key, "cells": [cell(c, fn) for c in checks]})
+    return rows
+
+
+def _members_rows(check: Mapping[str, Any]) -> list[dict]:
+    rows = []
+    for name, entry in (check.get("members") or {}).items():
+        a, b = _MEMBER_POINTS.get(name, (None, None))
+        rows.append({
+            "name": _MEMBER_LABELS.get(name, _text(name)),
+            "alpha": "5/3" if name == "cressie-read-2/3" else _format_number(a),
+            "beta": _format_number(b),
+            "statistic": _format_number((entry or {}).get("statistic")),
+            "p": _format_p((entry or {}).get("p_value_chi2")),
+        })
+    return rows
+
+
+def _check_view(check: Mapping[str, Any] | None, kind: str) -> dict | None:
+    if not _ok(check):
+        return None
+    label = {"production": "Production check", "refit": "Refit check"}[kind]
+    n = check.get("n") or 0
+    s = check.get("cells") or 0
+    counts = check.get("counts") or []
+    return {
+        "kind": kind,
+        "label": label,
+        "map": _heatmap(check, f"map-{kind}", label) if check.get("map") else None,
+        "hist": _histogram(check, f"hist-{kind}", label),
+        "qq": _qq(check, f"qq-{kind}", label),
+        "acf": _acf(check, f"acf-{kind}", label),
+        "members": _members_rows(check),
+        "cells": [{"cell": k + 1, "observed": c, "expected": _format_number(n / s if s else None)} for k, c in enumerate(counts)],
+    }
+
+
+def _params_rows(audit: Mapping[str, Any]) -> list[dict]:
+    prod = audit.get("production_params") or {}
+    fitted = (audit.get("fitted") or {}).get("params") or {}
+    names = list(prod) + [k for k in fitted if k not in prod]
+    rows = []
+    for name in names:
+        a, b = _float(prod.get(name)), _float(fitted.get(name))
+        rows.append({
+            "name": _text(name, _SHORT_TEXT),
+            "production": _format_number(a, 4) if name in prod else "—",
+            "refit": _format_number(b, 4) if name in fitted else "—",
+            "change": _format_number(b - a, 3) if a is not None and b is not None and math.isfinite(a) and math.isfinite(b) else "—",
+        })
+    return rows
+
+
+def _change_view(audit: Mapping[str, Any]) -> dict | None:
+    change = audit.get("change")
+    if not change:
+        return None
+    before, after = change.get("before") or [], change.get("after") or []
+    production = audit.get("production") or {}
+    return {
+        "index": change.get("index"),
+        "statistic": _format_number(change.get("statistic")),
+        "p": _format_p(change.get("p_value")),
+        "permutations": change.get("permutations"),
+        "cells": change.get("cells"),
+        "window": production.get("window") or {},
+        "rows": [{"cell": k + 1, "before": _format_number(b), "after": _format_number(a)} for k, (b, a) in enumerate(zip(before, after))],
+    }
+
+
+_CANDIDATE_COLUMNS = {
+    "spec_text": "Specification",
+    "noise": "Noise law",
+    "verdict": "Verdict",
+    "passed": "Map passes",
+    "scaled_max": "Largest T / critical value",
+    "r_max": "R",
+    "p_value": "p",
+    "aic": "AIC",
+    "reason": "Reason",
+}
+
+
+def _candidate_cell(key: str, value: Any) -> str:
+    if key == "verdict" and value in STATUS:
+        return " ".join(STATUS[value])
+    if key == "p_value":
+        return _format_p(value)
+    return _value_text(value)
+
+
+def _candidates_view(candidates: Sequence[Mapping[str, Any]] | None) -> dict | None:
+    """The candidate list as a table: known fields first, in a fixed order, then any others."""
+    if candidates is None:
+        return None
+    present = {k for c in candidates for k in c}
+    keys = [k for k in _CANDIDATE_COLUMNS if k in present]
+    keys += sorted(k for k in present if k not in _CANDIDATE_COLUMNS and not (k == "spec" and "spec_text" in present))
+    return {
+        "columns": [_CANDIDATE_COLUMNS.get(k) or _text(k.replace("_", " "), 60) for k in keys],
+        "rows": [[_candidate_cell(k, c.get(k)) for k in keys] for c in candidates],
+    }
+
+
+def _history_view(m: Mapping[str, Any], as_of: str) -> dict:
+    points = []
+    for h in m.get("history") or []:
+        if h.get("verdict") in STATUS:
+            points.append({"as_of": _text(h.get("as_of")), "status": _status(h["verdict"]), "r": _float(h.get("r_max")), "p": h.get("p_value"), "current": False})
+    check = _deciding_check(m.get("audit"))
+    ok = _ok(check)
+    points.append({"as_of": _text(as_of), "status": _status(m["verdict"]), "r": _float(check.get("r_max")) if ok else None,
+                   "p": check.get("p_value") if ok else None, "current": True})
+    return {"points": points, "chart": _history_chart(points, "history-r")}
+
+
+def _noise_text(noise: Any) -> str:
+    """``normal`` or ``student-t (shape 5)`` from the registry's ``{"law", "shape"}``."""
+    if isinstance(noise, Mapping):
+        shape = noise.get("shape")
+        return _text(noise.get("law")) + ("" if shape is None else f" (shape {_format_number(shape, 4)})")
+    return _text(noise)
+
+
+def _model_view(m: Mapping[str, Any], as_of: str) -> dict:
+    audit = m.get("audit")
+    pv = m.get("production_version")
+    exc = m.get("exception")
+    view = {
+        "id": _text(m["id"]),
+        "id_short": _text(m["id"], _SHORT_TEXT),
+        "safe_id": m["safe_id"],
+        "status": _status(m["verdict"]),
+        "reasons": [_text(r, 4000) for r in m.get("reasons") or []],
+        "escalated": bool(m.get("escalated")),
+        "movement": _MOVEMENT.get(m.get("movement"), _text(m.get("movement"))),
+        "exception": {"first_seen": _text(exc.get("first_seen")), "consecutive": exc.get("consecutive")} if exc else None,
+        "identity": [
+            {"key": "Model id", "value": _text(m["id"])},
+            {"key": "Owner", "value": _text(m.get("owner"))},
+            {"key": "Tier", "value": _value_text(m.get("tier"))},
+            {"key": "Description", "value": _text(m.get("description"))},
+            {"key": "Source / series", "value": f"{_text(m.get('source'))} / {_text(m.get('series'))}"},
+            {"key": "Model spec", "value": _text(m.get("spec_text"))},
+            {"key": "Noise law", "value": _noise_text(m.get("noise"))},
+            {"key": "Production version", "value": (f"{_text(pv.get('version'))} (SHA-256 {_text(pv.get('sha256'))}, created {_text(pv.get('created_at'))})" if pv else "none")},
+            {"key": "Last validated", "value": _text(m.get("last_validated")) or "—"},
+        ],
+        "lineage": _kv_rows(m.get("lineage")),
+        "settings": _kv_rows(m.get("settings")),
+        "history": _history_view(m, as_of),
+        "candidates": _candidates_view(m.get("candidates")),
+        "audit": None,
+    }
+    if audit:
+        production, refit = audit.get("production"), audit.get("refit")
+        view["audit"] = {
+            "has_production": production is not None,
+            "check_rows": _check_rows(production, refit),
+            "checks": [c for c in (_check_view(production, "production"), _check_view(refit, "refit")) if c],
+            "params": _params_rows(audit),
+            "fitted": {k: (audit.get("fitted") or {}).get(k) for k in ("loglik", "aic", "bic", "nobs", "converged")},
+            "fit_message": _text((audit.get("fitted") or {}).get("message")).rstrip("."),
+            "change": _change_view(audit),
+        }
+    return view
+
+
+# ----------------------------------------------------------------------------------------------
+# Public entry points
+# ----------------------------------------------------------------------------------------------
+def render_run(doc: dict, meta: dict) -> dict[str, bytes]:
+    """Render every page of an audit run.
+
+    Parameters
+    ----------
+    doc : dict
+        The results document (:func:`fitaudit.tasks.results.build_results`, JSON-ready).
+    meta : dict
+        Run metadata not in the document: ``run_id``, ``started_utc``, ``finished_utc``,
+        ``operator``, ``tool_version``, ``code_commit``, ``prefect_version`` and, optionally,
+        ``archive_head`` (the chain hash before this run) and ``previous_run_id``.
+
+    Returns
+    -------
+    dict of str to bytes
+        ``index.html``, ``method.html`` and ``models/<safe_id>.html`` for every model, UTF-8.
+
+    Raises
+    ------
+    InputError
+        When ``meta`` lacks a field, or a model's ``safe_id`` is not a safe, unique file name.
+    """
+    run_meta = _meta_view(meta)
+    models = doc["models"]
+    _check_models(models)
+    as_of = _text(doc["run"]["as_of"])
+    common = {
+        "meta": run_meta,
+        "as_of": as_of,
+        "caution": CAUTION,
+        "statuses": [_status(v) for v in STATUS],
+        "registry": {"path": _text((doc["run"].get("registry") or {}).get("path")), "sha256": _text((doc["run"].get("registry") or {}).get("sha256"))},
+        "schema": f"{_text(doc.get('schema'))} v{_text(doc.get('schema_version'))}",
+    }
+    pages: dict[str, bytes] = {}
+    pages["index.html"] = _render("run.html.j2", {
+        **common,
+        "root": "",
+        "summary": _summary_view(doc),
+        "exceptions": _exceptions_view(models),
+        "movement": _movement_view(doc, models),
+        "rows": [_status_row(m, as_of) for m in models],
+        "history_cells": _HISTORY_CELLS,
+    })
+    pages["method.html"] = _render("method.html.j2", {
+        **common,
+        "root": "",
+        "policy": _kv_rows(doc["run"].get("policy")),
+        "heat_bins": _heat_legend(),
+    })
+    for m in models:
+        pages[f"models/{m['safe_id']}.html"] = _render("model.html.j2", {**common, "root": "../", "m": _model_view(m, doc["run"]["as_of"])})
+    return pages
+
+
+def render_archive_index(runs: Iterable[Mapping[str, Any]]) -> bytes:
+    """Render the archive's index page.
+
+    Parameters
+    ----------
+    runs : iterable of dict
+        :func:`fitaudit.tasks.archive.list_runs` output: ``run_id``, ``path``, ``as_of``, ``time``,
+        ``seq``, ``counts`` (the manifest's verdict counts, or None), ``purged``, ``signoffs`` and
+        ``manifest_sha256``.
+
+    Returns
+    -------
+    bytes
+        The UTF-8 page (to be written as ``<archive>/index.html``): one row per run, newest first,
+        with its counts, sign-offs and a relative link ``runs/<YYYY>/<run-id>/index.html``; purged
+        runs and paths not of that form get no link.
+    """
+    rows = []
+    for r in sorted(runs, key=lambda r: (r.get("seq") or 0), reverse=True):
+        path = str(r.get("path") or "")
+        parts = path.split("/")
+        linkable = (len(parts) == 3 and parts[0] == "runs" and len(parts[1]) == 4 and parts[1].isdigit()
+                    and bool(SAFE_ID.match(parts[2])) and not r.get("purged"))
+        counts = r.get("counts") if isinstance(r.get("counts"), Mapping) else {}
+        rows.append({
+            "run_id": _text(r.get("run_id"), _SHORT_TEXT),
+            "href": f"{path}/index.html" if linkable else None,
+            "as_of": _text(r.get("as_of")),
+            "time": _text(r.get("time")),
+            "registered": counts.get("registered"),
+            "counts": [counts.get(v) for v in STATUS],
+            "purged": bool(r.get("purged")),
+            "signoffs": [f"{_text(s.get('name'), 80)} ({_text(s.get('role'), 80)}, {_text(s.get('time'))})" for s in r.get("signoffs") or []],
+            "manifest": _text(r.get("manifest_sha256"))[:16],
+        })
+    return _render("archive_index.html.j2", {"runs": rows, "caution": CAUTION, "statuses": [_status(v) for v in STATUS], "root": ""})

@@ -1,0 +1,756 @@
+"""The HTML report: structure, self-containment, accessibility, escaping, twins and sizes.
+
+Fixture documents come from the real pipeline: seeded series are audited with
+``fitaudit.core.audit.audit_series``, adjusted across the run with ``apply_fleet_rules`` and
+wrapped with ``fitaudit.tasks.results.model_record`` / ``build_results``.  Pages are parsed with the
+standard library's ``html.parser``; colour contrast is computed with the WCAG 2.1 formulas.
+"""
+
+from __future__ import annotations
+
+import copy
+import datetime as dt
+import importlib.resources
+import json
+import math
+import posixpath
+import re
+from html.parser import HTMLParser
+
+import jinja2
+import numpy as np
+import pytest
+
+from fitaudit.core.audit import AuditSettings, apply_fleet_rules, audit_series
+from fitaudit.core.exceptions import InputError
+from fitaudit.core.models.arima import Arima
+from fitaudit.tasks import archive
+from fitaudit.tasks.report import STATUS, environment, render_archive_index, render_run
+from fitaudit.tasks.results import build_results, model_record
+
+try:
+    from fitaudit.core.models.smoothing import ExpSmoothing
+except ImportError:  # pragma: no cover - smoothing is optional for these tests
+    ExpSmoothing = None
+
+AS_OF = "2026-11-30"
+HOSTILE = "<script>alert(1)</script>"
+ATTRIBUTE_BREAKER = 'x" onmouseover="alert(2)'
+RLO = "\u202e"
+LONG = "y" * 10_000
+META = {
+    "run_id": "20261130-T010203Z-abcd",
+    "started_utc": "2026-11-30T01:02:03Z",
+    "finished_utc": "2026-11-30T01:04:00Z",
+    "operator": "svc-audit",
+    "tool_version": "0.1.0",
+    "code_commit": "292b527",
+    "prefect_version": "3.9.0",
+}
+POLICY = {"level": 0.05, "multiple_testing": "bh", "fdr_q": 0.10, "justification": "weekly audit policy", "approved_by": "model-risk committee"}
+
+
+# ----------------------------------------------------------------------------------------------
+# fixture: a small run through the real audit pipeline
+# ----------------------------------------------------------------------------------------------
+def _ar1(rng: np.random.Generator, n: int, phi: float = 0.6) -> np.ndarray:
+    e = rng.standard_normal(n)
+    y = np.zeros(n)
+    for t in range(1, n):
+        y[t] = phi * y[t - 1] + e[t]
+    return y
+
+
+def _history(*verdicts: str) -> list[dict]:
+    start = dt.date(2026, 11, 30) - dt.timedelta(weeks=len(verdicts))
+    return [{"as_of": (start + dt.timedelta(weeks=k)).isoformat(), "verdict": v, "r_max": 0.7 + 0.05 * k, "p_value": 0.4} for k, v in enumerate(verdicts)]
+
+
+def build_fixture_document() -> dict:
+    """Seven models covering the five verdicts, histories, a change point and hostile strings."""
+    rng = np.random.default_rng(20261201)
+    settings = AuditSettings(replicates=199, audit_window=60, change_permutations=99)
+    arima = Arima(order=(1, 0, 0), trend="c")
+    y = _ar1(rng, 300)
+    production = arima.fit(y[:240]).params
+    stale = dict(production, intercept=production["intercept"] + 2.5)  # a level shift the refit absorbs
+    walk = np.cumsum(rng.standard_t(2, size=300))  # heavy-tailed random walk: AR(1) cannot describe it
+    cases = [
+        ("healthy-ar1", y, arima, production, _history("pass", "pass", "refit")),
+        ("stale-level", y, arima, stale, _history("pass")),
+        ("heavy-walk", walk, arima, production, _history("pass", "refit", "refit")),
+        ("short-series", y[:20], arima, production, _history("insufficient")),
+        ("gappy", np.r_[y[:100], np.nan, y[100:]], arima, None, []),
+    ]
+    if ExpSmoothing is not None:
+        trend = np.cumsum(rng.standard_normal(200)) + 0.1 * np.arange(200)
+        cases.append(("trend-ets", trend, ExpSmoothing(trend="add"), None, _history(*["pass"] * 9)))
+    results = [audit_series(series, spec, production=prod, settings=settings, label=name) for name, series, spec, prod, _ in cases]
+    results = apply_fleet_rules(results, q=POLICY["fdr_q"], histories=[[h["verdict"] for h in hist] for *_, hist in cases])
+    records = []
+    for (name, series, spec, prod, hist), res in zip(cases, results):
+        entry = {"id": name, "safe_id": name, "owner": "forecasting-team", "tier": 2, "description": f"Weekly demand, {name}",
+                 "source": "demo", "series": name}
+        candidates = None
+        if res.verdict == "respecify":
+            entry["owner"] = ATTRIBUTE_BREAKER
+            entry["description"] = RLO + "reversed " + LONG
+            candidates = [{"spec_text": "ARIMA(0,1,1)" + HOSTILE, "noise": "student-t", "r_max": 0.91, "p_value": 0.21}]
+        records.append(model_record(
+            entry, as_of=AS_OF, verdict=res.verdict, reasons=res.reasons, audit=res.to_dict(), spec_text=spec.describe(),
+            lineage={"extract": {"digest": "ab" * 32, "rows": int(series.size), "columns": ["value", "<img src=x>"]}, "windows": {"audit": 60}},
+            settings=settings.to_dict(),
+            production_version={"version": 3, "sha256": "cd" * 32, "created_at": "2026-10-01T00:00:00Z"} if prod else None,
+            history=hist, candidates=candidates, escalated=res.escalated,
+        ))
+    records.append(model_record(  # a registry entry that never reached the audit
+        {"id": HOSTILE, "safe_id": "entry-7", "owner": None}, as_of=AS_OF, verdict="error",
+        reasons=[f"models[6].id: {HOSTILE!s} is not a usable id; use letters, digits, '.', '_' or '-'."], audit=None, spec_text="unknown",
+    ))
+    doc = build_results(as_of=AS_OF, registry={"path": "registry.yaml", "sha256": "ef" * 32}, policy=POLICY, records=records, tool_version="0.1.0")
+    return json.loads(json.dumps(doc))  # exactly what results.json holds
+
+
+@pytest.fixture(scope="module")
+def doc() -> dict:
+    return build_fixture_document()
+
+
+@pytest.fixture(scope="module")
+def pages(doc) -> dict[str, bytes]:
+    return render_run(doc, META)
+
+
+@pytest.fixture(scope="module")
+def dom(pages) -> dict[str, "Node"]:
+    return {name: parse(data) for name, data in pages.items()}
+
+
+def test_fixture_covers_every_verdict(doc):
+    verdicts = {m["verdict"] for m in doc["models"]}
+    assert verdicts == set(STATUS), verdicts  # the fixture must exercise pass, refit, respecify, insufficient, error
+    assert any(m["audit"] and m["audit"]["change"] for m in doc["models"])  # a located change point
+
+
+# ----------------------------------------------------------------------------------------------
+# a tiny DOM over html.parser
+# ----------------------------------------------------------------------------------------------
+VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}
+
+
+class Node:
+    def __init__(self, tag: str, attrs: dict, parent: "Node | None"):
+        self.tag, self.attrs, self.parent, self.children = tag, attrs, parent, []
+
+    def text(self) -> str:
+        return "".join(c if isinstance(c, str) else c.text() for c in self.children)
+
+    def iter(self, tag: str | None = None):
+        for c in self.children:
+            if isinstance(c, Node):
+                if tag is None or c.tag == tag:
+                    yield c
+                yield from c.iter(tag)
+
+    def elements(self) -> list["Node"]:
+        return [c for c in self.children if isinstance(c, Node)]
+
+    def classes(self) -> set[str]:
+        return set((self.attrs.get("class") or "").split())
+
+    def find_id(self, ident: str) -> "Node | None":
+        return next((n for n in self.iter() if n.attrs.get("id") == ident), None)
+
+
+class _Builder(HTMLParser):
+    def __init__(self):
+        super().__init__(convert_charrefs=True)
+        self.root = Node("#document", {}, None)
+        self.cur = self.root
+        self.doctype = None
+
+    def handle_decl(self, decl):
+        self.doctype = decl
+
+    def handle_starttag(self, tag, attrs):
+        node = Node(tag, dict(attrs), self.cur)
+        self.cur.children.append(node)
+        if tag not in VOID:
+            self.cur = node
+
+    def handle_startendtag(self, tag, attrs):
+        self.cur.children.append(Node(tag, dict(attrs), self.cur))
+
+    def handle_endtag(self, tag):
+        node = self.cur
+        while node is not None and node.tag != tag:
+            node = node.parent
+        assert node is not None, f"end tag </{tag}> without a start tag"
+        self.cur = node.parent
+
+    def handle_data(self, data):
+        self.cur.children.append(data)
+
+
+def parse(data: bytes) -> Node:
+    b = _Builder()
+    b.feed(data.decode("utf-8"))
+    b.close()
+    assert b.cur is b.root, f"unclosed element <{b.cur.tag}>"
+    assert b.doctype and b.doctype.lower() == "doctype html"
+    return b.root
+
+
+def table_rows(table: Node) -> tuple[list[str], list[tuple[Node, list[str]]]]:
+    """Header texts and (row, cell texts) of a simple table."""
+    header = [c.text().strip() for c in next(table.iter("thead")).iter() if c.tag in ("th", "td")]
+    rows = []
+    for tr in next(table.iter("tbody")).iter("tr"):
+        rows.append((tr, [c.text().strip() for c in tr.elements() if c.tag in ("th", "td")]))
+    return header, rows
+
+
+def table_by_caption(root: Node, start: str) -> Node:
+    for t in root.iter("table"):
+        cap = next(t.iter("caption"), None)
+        if cap is not None and cap.text().strip().startswith(start):
+            return t
+    raise AssertionError(f"no table captioned {start!r}")
+
+
+def printed_matches(printed: str, value) -> bool:
+    """True when ``printed`` is ``value`` rounded to the digits shown (n/a, ∞ and "< 0.001" included)."""
+    printed = printed.strip()
+    if printed == "n/a":
+        return value is None or value == "nan"
+    if printed == "∞":
+        return value == "inf"
+    if printed == "< 0.001":
+        return value is not None and float(value) < 0.001
+    if value is None or isinstance(value, str):
+        return False
+    if "e" in printed:
+        mantissa = printed.split("e")[0]
+        decimals = len(mantissa.split(".")[1]) if "." in mantissa else 0
+        return math.isclose(float(printed), value, rel_tol=0.51 * 10.0 ** -decimals)
+    decimals = len(printed.split(".")[1]) if "." in printed else 0
+    return abs(float(printed) - value) <= 0.5 * 10.0 ** -decimals * (1 + 1e-9)
+
+
+def test_printed_matches_helper_can_fail():
+    assert printed_matches("0.738", 0.73812) and printed_matches("184", 184.2) and printed_matches("< 0.001", 0.0005)
+    assert not printed_matches("0.74", 0.7312) and not printed_matches("< 0.001", 0.01) and not printed_matches("n/a", 0.3)
+
+
+# ----------------------------------------------------------------------------------------------
+# pages, language, title, self-containment
+# ----------------------------------------------------------------------------------------------
+def test_one_page_per_model_plus_run_and_method(doc, pages):
+    expected = {"index.html", "method.html"} | {f"models/{m['safe_id']}.html" for m in doc["models"]}
+    assert set(pages) == expected
+    assert all(isinstance(v, bytes) and v.decode("utf-8") for v in pages.values())
+
+
+def test_every_page_has_language_title_and_charset(dom):
+    for name, root in dom.items():
+        html = next(root.iter("html"))
+        assert html.attrs.get("lang") == "en", name  # source: WCAG 2.1 SC 3.1.1 Language of Page
+        titles = list(root.iter("title"))
+        page_title = [t for t in titles if t.parent.tag == "head"]
+        assert len(page_title) == 1 and page_title[0].text().strip(), name  # source: WCAG 2.1 SC 2.4.2 Page Titled
+        assert any(m.attrs.get("charset", "").lower() == "utf-8" for m in root.iter("meta")), name
+
+
+RESOURCE_TAGS = {"script", "img", "link", "iframe", "frame", "object", "embed", "audio", "video", "source", "track", "base", "form", "input", "image", "use", "foreignobject"}
+
+
+def _check_self_contained(name: str, root: Node, raw: str, targets: dict[str, Node], archive_links: bool = False) -> None:
+    for node in root.iter():
+        assert node.tag not in RESOURCE_TAGS, f"{name}: <{node.tag}> loads or runs something"
+        for attr, value in node.attrs.items():
+            assert not attr.startswith("on"), f"{name}: event handler attribute {attr}"
+            assert attr not in ("src", "srcset", "xlink:href", "action", "formaction", "poster", "data"), f"{name}: {attr}={value!r}"
+        if "href" in node.attrs:
+            href = node.attrs["href"]
+            assert node.tag == "a", f"{name}: href on <{node.tag}>"
+            assert not re.match(r"^[a-zA-Z][a-zA-Z0-9+.-]*:", href) and not href.startswith(("/", "\\")), f"{name}: external link {href!r}"
+            path, _, fragment = href.partition("#")
+            if archive_links:
+                assert re.fullmatch(r"runs/\d{4}/[A-Za-z0-9][A-Za-z0-9_.-]*/index\.html", path) or (not path and fragment), href
+                continue
+            target_name = posixpath.normpath(posixpath.join(posixpath.dirname(name), path)) if path else name
+            assert target_name in targets, f"{name}: link {href!r} leaves the run's pages"
+            if fragment:
+                assert targets[target_name].find_id(fragment) is not None, f"{name}: link {href!r} to a missing anchor"
+    lowered = raw.lower()
+    for needle in ("url(", "@import", "javascript:", "http://", "https://", "//cdn", "<script"):
+        assert needle not in lowered, f"{name}: contains {needle!r}"
+
+
+def test_pages_are_self_contained(pages, dom):
+    # source: governance.md requirement 21 (no external src/href/url() references) and design.md section 6
+    for name, root in dom.items():
+        _check_self_contained(name, root, pages[name].decode("utf-8"), dom)
+
+
+def test_self_containment_check_can_fail(dom):
+    bad = parse(b'<!DOCTYPE html><html lang="en"><head><title>x</title></head><body><a href="https://example.org/">x</a></body></html>')
+    with pytest.raises(AssertionError, match="external link"):
+        _check_self_contained("index.html", bad, "", dom)
+
+
+# ----------------------------------------------------------------------------------------------
+# accessibility: tables, charts, status, contrast
+# ----------------------------------------------------------------------------------------------
+def test_every_table_has_a_caption_and_scoped_headers(dom):
+    # source: WCAG 2.1 SC 1.3.1 Info and Relationships (H39 captions, H63 scope); governance.md req. 22
+    count = 0
+    for name, root in dom.items():
+        for table in root.iter("table"):
+            count += 1
+            first = table.elements()[0]
+            assert first.tag == "caption" and first.text().strip(), f"{name}: table without a leading caption"
+            for th in table.iter("th"):
+                assert th.attrs.get("scope") in ("col", "row"), f"{name}: <th>{th.text()[:40]}</th> without scope"
+    assert count > 20
+
+
+def test_every_chart_has_a_text_alternative(dom):
+    # source: WCAG 2.1 SC 1.1.1 Non-text Content; governance.md req. 22 (a data table for each chart)
+    svgs = 0
+    for name, root in dom.items():
+        for svg in root.iter("svg"):
+            svgs += 1
+            assert svg.attrs.get("role") == "img", name
+            ids = svg.attrs.get("aria-labelledby", "").split()
+            assert len(ids) == 2, name
+            title, desc = (svg.find_id(i) for i in ids)
+            assert title is not None and title.tag == "title" and title.text().strip(), name
+            assert desc is not None and desc.tag == "desc" and len(desc.text().strip()) > 30, name
+        for fig in root.iter("figure"):
+            assert any(c.tag == "figcaption" and c.text().strip() for c in fig.elements()), name
+            if name.startswith("models/"):
+                assert next(fig.iter("table"), None) is not None, f"{name}: figure {fig.attrs.get('id')} has no data table"
+    assert svgs >= 10
+
+
+def test_status_is_shown_by_symbol_and_word(dom, doc):
+    # source: WCAG 2.1 SC 1.4.1 Use of Color (status never by colour alone)
+    symbols = {sym for sym, _ in STATUS.values()}
+    assert len(symbols) == len(STATUS)
+    coloured = 0
+    for name, root in dom.items():
+        for node in root.iter():
+            keys = [c[3:] for c in node.classes() if c.startswith("st-")]
+            for key in keys:
+                coloured += 1
+                symbol, word = STATUS[key]
+                text = node.text()
+                assert symbol in text and word in text, f"{name}: status colour {key} on {text!r} without symbol and word"
+    assert coloured > len(doc["models"]) * 3
+    run = dom["index.html"]
+    headers = [th.text().strip() for th in next(run.find_id("counts").iter("thead")).iter("th")]
+    assert headers[2:] == [f"{s} {w}" for s, w in STATUS.values()]
+
+
+CSS_CONTRAST_SOURCE = "WCAG 2.1: definitions of relative luminance and contrast ratio; SC 1.4.3 (4.5:1) and SC 1.4.11 (3:1)"
+
+
+def _relative_luminance(hex_colour: str) -> float:
+    # source: WCAG 2.1, definition "relative luminance" (sRGB, threshold 0.03928 as printed there)
+    channels = [int(hex_colour[i : i + 2], 16) / 255 for i in (1, 3, 5)]
+    lin = [c / 12.92 if c <= 0.03928 else ((c + 0.055) / 1.055) ** 2.4 for c in channels]
+    return 0.2126 * lin[0] + 0.7152 * lin[1] + 0.0722 * lin[2]
+
+
+def _contrast(a: str, b: str) -> float:
+    # source: WCAG 2.1, definition "contrast ratio" (L1 + 0.05) / (L2 + 0.05)
+    la, lb = sorted((_relative_luminance(a), _relative_luminance(b)), reverse=True)
+    return (la + 0.05) / (lb + 0.05)
+
+
+def _stylesheet() -> str:
+    return importlib.resources.files("fitaudit.templates").joinpath("report.css").read_text(encoding="utf-8")
+
+
+def _palette(css: str) -> dict[str, str]:
+    root = re.search(r":root\s*\{(.*?)\}", css, re.S).group(1)
+    return {name: value.lower() for name, value in re.findall(r"--([a-z0-9-]+)\s*:\s*(#[0-9a-fA-F]{6})\s*;", root)}
+
+
+def test_contrast_formula_matches_the_definition():
+    assert _contrast("#000000", "#ffffff") == pytest.approx(21.0)  # source: WCAG 2.1 contrast ratio (ranges from 1 to 21)
+    assert _contrast("#777777", "#777777") == pytest.approx(1.0)  # source: WCAG 2.1 contrast ratio (equal colours give 1)
+    assert _contrast("#767676", "#ffffff") == pytest.approx(4.54, abs=0.01)  # from memory: #767676 is the lightest grey passing 4.5:1 on white
+
+
+def test_palette_contrast_meets_wcag_aa():
+    # source: CSS_CONTRAST_SOURCE; pairs follow the naming convention documented at the top of report.css
+    palette = _palette(_stylesheet())
+    group = lambda prefix: {k: v for k, v in palette.items() if k.startswith(prefix)}  # noqa: E731
+    bgs, inks, marks, heats, overs = group("bg-"), group("ink-"), group("mark-"), group("heat-"), group("over-")
+    assert len(bgs) >= 5 and len(inks) >= 2 and len(marks) >= 5 and len(heats) >= 8 and overs
+    failures = []
+    for fg_group, bg_group, need in ((inks, bgs, 4.5), (marks, bgs, 3.0), (heats, bgs, 3.0), (overs, heats, 3.0)):
+        for f, fc in fg_group.items():
+            for b, bc in bg_group.items():
+                if _contrast(fc, bc) < need:
+                    failures.append(f"--{f} on --{b}: {_contrast(fc, bc):.2f} < {need}")
+    for symbol_cell in ("heat-inf", "heat-na"):
+        if _contrast(palette["over-ink"], palette[symbol_cell]) < 4.5:
+            failures.append(f"--over-ink on --{symbol_cell}")
+    assert not failures, failures
+
+
+def test_stylesheet_uses_only_palette_colours_in_their_roles():
+    css = _stylesheet()
+    palette = _palette(css)
+    body = re.sub(r":root\s*\{.*?\}", "", css, count=1, flags=re.S)
+    assert not re.search(r"#[0-9a-fA-F]{3,8}\b|rgb|hsl", body), "colour literal outside the palette"
+    used = set(re.findall(r"var\(--([a-z0-9-]+)\)", body))
+    assert used <= set(palette), used - set(palette)
+    for prop, allowed in (("color", ("ink-",)), ("fill", ("ink-", "mark-", "heat-", "over-")), ("stroke", ("mark-", "over-", "deco-"))):
+        for value in re.findall(rf"(?<![-a-z]){prop}\s*:\s*([^;}}]+)", body):
+            if value.strip() == "none":
+                continue
+            names = re.findall(r"var\(--([a-z0-9-]+)\)", value)
+            assert names and all(n.startswith(allowed) for n in names), f"{prop}: {value}"
+    for value in re.findall(r"(?<![-a-z])background(?:-color)?\s*:\s*([^;}]+)", body):
+        names = re.findall(r"var\(--([a-z0-9-]+)\)", value)
+        assert names and all(n.startswith(("bg-", "heat-")) for n in names), f"background: {value}"
+
+
+def test_every_chart_mark_has_a_palette_colour(dom):
+    """Each class drawn in an SVG is coloured by a rule of the stylesheet (so the contrast test covers it)."""
+    css = _stylesheet()
+    drawn = {cls for root in dom.values() for svg in root.iter("svg") for node in svg.iter() if node.tag != "svg" for cls in node.classes()}
+    assert {"edge", "mem", "mx", "bar", "pt", "ref", "stem"} <= drawn
+    for cls in drawn:
+        rule = re.search(rf"svg \.{re.escape(cls)}\s*\{{([^}}]*)\}}", css)
+        assert rule and re.search(r"(fill|stroke)\s*:\s*var\(--", rule.group(1)), f"class {cls} has no colour rule"
+
+
+def test_print_stylesheet_is_a4_and_keeps_rows_whole():
+    css = _stylesheet()
+    start = css.index("@media print")
+    block = css[start:]
+    assert re.search(r"@page\s*\{[^}]*size:\s*A4", block)
+    assert re.search(r"tr[^{]*\{[^}]*break-inside:\s*avoid", block)
+    assert "details::details-content" in block  # data tables in <details> print too
+    assert not re.search(r"display:\s*none", block.replace("nav.top { display: none; }", "")), "print hides something besides navigation"
+
+
+# ----------------------------------------------------------------------------------------------
+# twins: the pages say what the document says
+# ----------------------------------------------------------------------------------------------
+def test_run_page_counts_match_the_document(doc, dom):
+    run = dom["index.html"]
+    header, rows = table_rows(run.find_id("counts"))
+    values = dict(zip(header, rows[0][1]))
+    s = doc["summary"]
+    assert int(values["Registered"]) == s["registered"] == len(doc["models"])
+    assert int(values["Audited"]) == s["audited"]
+    for verdict, (symbol, word) in STATUS.items():
+        assert int(values[f"{symbol} {word}"]) == s[verdict] == sum(m["verdict"] == verdict for m in doc["models"])
+    assert sum(int(values[f"{sym} {w}"]) for sym, w in STATUS.values()) == int(values["Registered"])
+    assert run.find_id("reconcile").text().startswith(f"Reconciled: {s['registered']} registered")
+    flags = run.find_id("false-flags").text()
+    expected = s["expected_false_flags_unadjusted"]
+    assert expected == pytest.approx(s["checks"] * POLICY["level"])
+    printed = re.search(r"about (\S+) of them", flags).group(1)
+    assert printed_matches(printed, expected)
+    assert f"scored {s['checks']} checks" in flags and "Benjamini-Hochberg" in flags and "q = 0.1" in flags
+
+
+def test_exceptions_table_is_sorted_by_severity_with_one_reason_each(doc, dom):
+    table = dom["index.html"].find_id("exceptions").iter("table").__next__()
+    header, rows = table_rows(table)
+    expected = sorted((m for m in doc["models"] if m["verdict"] != "pass"), key=lambda m: (m["severity"], m["id"]))
+    assert [r[header.index("Model")] for _, r in rows] == [m["id"] for m in expected]
+    for (_, cells), m in zip(rows, expected):
+        symbol, word = STATUS[m["verdict"]]
+        assert cells[header.index("Status")].startswith(f"{symbol} {word}")
+        assert cells[header.index("Reason")] == m["reasons"][0]
+    links = [next(tr.iter("a")).attrs["href"] for tr, _ in rows]
+    assert links == [f"models/{m['safe_id']}.html" for m in expected]
+
+
+def test_run_page_rows_match_the_document(doc, dom):
+    run = dom["index.html"]
+    table = next(run.find_id("trail").iter("table"))
+    header, rows = table_rows(table)
+    by_anchor = {tr.attrs["id"]: cells for tr, cells in rows}
+    assert len(by_anchor) == len(doc["models"])
+    for m in doc["models"]:
+        cells = by_anchor[f"model-{m['safe_id']}"]
+        symbol, word = STATUS[m["verdict"]]
+        assert cells[header.index("Verdict")] == f"{symbol} {word}"
+        assert cells[header.index("now")] == f"{symbol} {word}"
+        check = None
+        if m["audit"]:
+            check = m["audit"]["production"] or m["audit"]["refit"]
+            check = check if check["status"] == "ok" else None
+        assert printed_matches(cells[header.index("R")], check and check["r_max"])
+        assert printed_matches(cells[header.index("p")], check and check["p_value"])
+        assert printed_matches(cells[header.index("p adj.")], check and check["p_adjusted"])
+        trail = cells[header.index("−7") : header.index("now") + 1]
+        past = [h["verdict"] for h in m["history"]][-7:]
+        expected = ["· no audit"] * (7 - len(past)) + [f"{STATUS[v][0]} {STATUS[v][1]}" for v in past] + [f"{symbol} {word}"]
+        assert trail == expected
+
+
+def test_movement_matches_the_document(doc, dom):
+    run = dom["index.html"]
+    header, rows = table_rows(run.find_id("movement-counts"))
+    counts = dict(zip(header, rows[0][1]))
+    moves = doc["summary"]["movement"]
+    assert {k: int(counts[label]) for k, label in (("new", "new exception"), ("persisting", "persisting"), ("resolved", "resolved"), ("steady", "still passing"), ("first", "first audit"))} == moves
+    for key in ("new", "persisting", "resolved"):
+        listed = [a.text() for a in run.find_id(f"moved-{key}").iter("a")]
+        assert listed == [m["id"] for m in doc["models"] if m["movement"] == key]
+    assert moves["resolved"] >= 1 and moves["persisting"] >= 1 and moves["new"] >= 1  # the fixture moves in every direction
+
+
+CHECK_FIELDS = {
+    "Standardised maximum R": "r_max",
+    "Largest statistic T_max": "t_max",
+    "p, distribution gate": "p_distribution",
+    "p, independence gate (Ljung-Box)": "p_independence",
+    "p, check (Bonferroni over the two gates)": "p_value",
+    "p, adjusted across the run": "p_adjusted",
+    "Effect: T_max / 2n": "effect_divergence",
+    "Effect: largest |autocorrelation|": "effect_acf",
+}
+
+
+def test_model_pages_match_the_document(doc, dom):
+    compared = 0
+    for m in doc["models"]:
+        page = dom[f"models/{m['safe_id']}.html"]
+        article = page.find_id(f"model-{m['safe_id']}")
+        assert article is not None and article.tag == "article"
+        symbol, word = STATUS[m["verdict"]]
+        assert f"Verdict: {symbol} {word}" in page.find_id("verdict").text()
+        reasons = [li.text() for li in next(page.find_id("verdict").iter("ol")).iter("li")]
+        assert reasons == m["reasons"]
+        if not m["audit"]:
+            continue
+        header, rows = table_rows(next(page.find_id("checks").iter("table")))
+        by_label = {cells[0]: cells[1:] for _, cells in rows}
+        for kind, column in (("production", 0), ("refit", 1)):
+            check = m["audit"][kind]
+            if check is None:
+                assert by_label["Status"][column].startswith("not run")
+                continue
+            assert by_label["Status"][column].startswith(check["status"])
+            if check["status"] != "ok":
+                continue
+            assert int(by_label["Residuals n"][column]) == check["n"]
+            assert int(by_label["Cells s"][column]) == check["cells"]
+            assert by_label["Ljung-Box"][column].startswith("Q ") and f"on {check['ljung_box']['lags']} lags, df {check['ljung_box']['df']}" in by_label["Ljung-Box"][column]
+            for label, field in CHECK_FIELDS.items():
+                assert printed_matches(by_label[label][column], check[field]), (m["id"], kind, label, by_label[label][column], check[field])
+                compared += 1
+    assert compared >= 40
+
+
+def test_map_tables_match_the_scaled_grid(doc, dom):
+    maps = 0
+    for m in doc["models"]:
+        for kind in ("production", "refit"):
+            check = (m["audit"] or {}).get(kind)
+            if not check or check["status"] != "ok":
+                continue
+            fig = dom[f"models/{m['safe_id']}.html"].find_id(f"figure-map-{kind}")
+            table = next(fig.iter("table"))
+            bold = sum(1 for td in table.iter("td") if "fail" in td.classes())
+            infinite = sum(1 for td in table.iter("td") if td.text() == "∞")
+            grid, inf_mask = check["scaled_grid"], check["map"]["infinite"]
+            assert bold == sum(1 for row, mask in zip(grid, inf_mask) for v, i in zip(row, mask) if v is not None and not i and v > 1)
+            assert infinite == sum(map(sum, inf_mask))
+            _, rows = table_rows(table)
+            top_alpha = rows[0][1][0]
+            assert printed_matches(top_alpha, check["map"]["alphas"][-1])  # rows run from the largest alpha down
+            svg = next(fig.iter("svg"))
+            assert sum(1 for r in svg.iter("rect")) == len(grid) * len(grid[0])
+            assert (sum(1 for p in svg.iter("path") if p.attrs.get("class") == "edge") == 1) == (bold > 0)  # the boundary is drawn iff a point fails
+            assert sum(1 for c in svg.iter("circle") if c.attrs.get("class") == "mem") == 5  # the five classical members
+            assert sum(1 for p in svg.iter("path") if p.attrs.get("class") == "mx") == 1  # the maximum
+            maps += 1
+    assert maps >= 6
+
+
+# ----------------------------------------------------------------------------------------------
+# escaping and hostile input
+# ----------------------------------------------------------------------------------------------
+def test_hostile_strings_render_harmlessly(doc, pages, dom):
+    for name, data in pages.items():
+        text = data.decode("utf-8")
+        assert HOSTILE not in text and "<img src" not in text, name
+        assert RLO not in text, name  # direction overrides are shown, never applied
+        for node in dom[name].iter():
+            assert not any(a.startswith("on") for a in node.attrs), name
+    run = pages["index.html"].decode("utf-8")
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in run
+    respecify = next(m for m in doc["models"] if m["verdict"] == "respecify")
+    page = dom[f"models/{respecify['safe_id']}.html"]
+    identity = page.find_id("identity").text()
+    assert "[U+202E]reversed " + LONG in identity  # the 10,000-character description, in full
+    assert ATTRIBUTE_BREAKER in identity
+    candidates = page.find_id("candidates").text()
+    assert "ARIMA(0,1,1)" + HOSTILE in candidates  # escaped in the markup, intact as text
+    hostile_page = dom["models/entry-7.html"]
+    assert HOSTILE in next(hostile_page.iter("h1")).text()
+    assert HOSTILE in next(hostile_page.iter("title")).text()
+
+
+def test_long_values_are_cut_on_the_run_page_only(doc):
+    long_doc = copy.deepcopy(doc)
+    target = next(m for m in long_doc["models"] if m["verdict"] == "refit")
+    target["id"] = "z" * 10_000
+    target["owner"] = "o" * 10_000
+    pages = render_run(long_doc, META)
+    run = pages["index.html"].decode("utf-8")
+    assert "z" * 10_000 not in run and "z" * 160 + "… (+9840 characters)" in run
+    model = pages[f"models/{target['safe_id']}.html"].decode("utf-8")
+    assert "z" * 10_000 in model and "o" * 10_000 in model
+
+
+@pytest.mark.parametrize("safe_id", ["../escape", "a/b", "", ".hidden", "x" * 200, "semi;colon"])
+def test_unsafe_file_names_are_refused(doc, safe_id):
+    bad = copy.deepcopy(doc)
+    bad["models"][0]["safe_id"] = safe_id
+    with pytest.raises(InputError, match="not a safe file name"):
+        render_run(bad, META)
+
+
+def test_duplicate_file_names_and_missing_metadata_are_refused(doc):
+    bad = copy.deepcopy(doc)
+    bad["models"][1]["safe_id"] = bad["models"][0]["safe_id"].upper()
+    with pytest.raises(InputError, match="share the file name"):
+        render_run(bad, META)
+    with pytest.raises(InputError, match="meta lacks code_commit"):
+        render_run(doc, {k: v for k, v in META.items() if k != "code_commit"})
+
+
+def test_environment_escapes_and_is_strict():
+    env = environment()
+    assert env is environment()  # cached
+    assert env.get_template("run.html.j2").environment.autoescape("run.html.j2") is True
+    assert env.from_string("{{ x }}").render(x="<b>") == "&lt;b&gt;"
+    with pytest.raises(jinja2.UndefinedError, match="'missing' is undefined"):
+        env.from_string("{{ missing }}").render()
+
+
+# ----------------------------------------------------------------------------------------------
+# structure, method page, footer, sizes
+# ----------------------------------------------------------------------------------------------
+def _headings(root: Node, tag: str = "h2") -> list[str]:
+    return [h.text().strip() for h in root.iter(tag)]
+
+
+def test_page_structure(doc, pages, dom):
+    n_exceptions = sum(m["verdict"] != "pass" for m in doc["models"])
+    assert _headings(dom["index.html"]) == [
+        "Summary", f"Exceptions ({n_exceptions})", "Movement since the previous audit", "All models: status over the last 8 audits",
+    ]
+    run = pages["index.html"].decode("utf-8")
+    assert run.index('id="counts"') < run.index('id="false-flags"') < run.index('id="exceptions"') < run.index('id="movement"') < run.index('id="trail"')
+    audited = next(m for m in doc["models"] if m["verdict"] == "respecify")
+    assert _headings(dom[f"models/{audited['safe_id']}.html"]) == [
+        "Verdict and reasons", "Production check and refit check", "Divergence map", "Residual diagnostics",
+        "Parameters: production versus refit", "Change point", "Candidate specifications", "History of the standardised maximum",
+        "Data lineage", "Settings used",
+    ]
+    assert _headings(dom["models/entry-7.html"]) == [
+        "Verdict and reasons", "No audit ran", "Candidate specifications", "History of the standardised maximum", "Data lineage", "Settings used",
+    ]
+    for kind in ("production", "refit"):
+        for fig in ("map", "hist", "qq", "acf"):
+            assert dom[f"models/{audited['safe_id']}.html"].find_id(f"figure-{fig}-{kind}") is not None
+    assert render_run(doc, META) == pages  # deterministic
+
+
+def test_change_point_and_parameters_are_shown(doc, dom):
+    m = next(m for m in doc["models"] if m["audit"] and m["audit"]["change"])
+    section = dom[f"models/{m['safe_id']}.html"].find_id("change")
+    assert f"position {m['audit']['change']['index']} of the series" in section.text()
+    header, rows = table_rows(next(dom[f"models/{m['safe_id']}.html"].find_id("parameters").iter("table")))
+    by_name = {cells[0]: cells for _, cells in rows}
+    for name, value in m["audit"]["production_params"].items():
+        assert printed_matches(by_name[name][header.index("Production")], value)
+        assert printed_matches(by_name[name][header.index("Refit")], m["audit"]["fitted"]["params"][name])
+
+
+def test_method_page_explains_with_formulas_references_and_cautions(dom):
+    method = dom["method.html"].text()
+    for ref in ("Stummer, W. and Vajda, I. (2012)", "Cressie, N. and Read, T. R. C. (1984)", "Ljung, G. M. and Box, G. E. P. (1978)",
+                "McLeod, A. I. and Li, W. K. (1983)", "Nikulin, M. S. (1973)", "Rao, K. C. and Robson, D. S. (1974)",
+                "Benjamini, Y. and Hochberg, Y. (1995)"):
+        assert ref in method
+    for formula in ("Q(h) = n (n + 2)", "R = maxg Tg / cg", "T = 2 n Bφα(P, Q | Mβ)", "p = ( 1 + #{ b : R*b ≥ R } ) / ( B + 1 )"):
+        assert formula in method, formula
+    assert "statistical evidence, not proof that a model is fit for its use" in method
+    policy = dom["method.html"].find_id("policy").text()
+    assert "model-risk committee" in policy and "fdr_q" in policy
+
+
+def test_every_page_carries_the_caution_in_its_footer(dom):
+    for name, root in dom.items():
+        footer = next(root.iter("footer")).text()
+        assert "A passing audit is statistical evidence, not proof that a model is fit for its use." in footer, name
+        assert "model-risk policy, applicable regulation and the judgement of qualified reviewers" in footer, name
+
+
+def test_model_pages_stay_under_150_kb(pages):
+    sizes = {k: len(v) for k, v in pages.items() if k.startswith("models/")}
+    assert max(sizes.values()) <= 150_000, sizes  # source: issue 6 (a model page at most 150 KB)
+
+
+@pytest.mark.slow
+def test_a_thousand_model_run_page_stays_under_2_mb(doc):
+    audited = [m for m in doc["models"] if m["audit"]]
+    records = []
+    for k in range(1000):
+        record = copy.deepcopy(audited[k % len(audited)])
+        record["id"] = record["safe_id"] = f"fleet-{k:04d}-{record['id']}"
+        records.append(record)
+    fleet = build_results(as_of=AS_OF, registry={"path": "registry.yaml", "sha256": "ef" * 32}, policy=POLICY, records=records, tool_version="0.1.0")
+    pages = render_run(json.loads(json.dumps(fleet)), META)
+    assert len(pages) == 1002
+    assert len(pages["index.html"]) <= 2_000_000  # source: issue 6 (the run page for 1,000 models at most 2 MB)
+    assert max(len(v) for k, v in pages.items() if k.startswith("models/")) <= 150_000  # source: issue 6
+    run = parse(pages["index.html"])
+    assert len(list(next(run.find_id("trail").iter("tbody")).iter("tr"))) == 1000
+
+
+# ----------------------------------------------------------------------------------------------
+# archive index
+# ----------------------------------------------------------------------------------------------
+def test_archive_index_lists_published_runs(tmp_path, doc):
+    root = tmp_path / "archive"
+    run_ids = []
+    for k, as_of in enumerate((dt.date(2026, 11, 23), dt.date(2026, 11, 30))):
+        run_id = archive.new_run_id(as_of, dt.datetime(2026, 12, 1, 1, 0, k, tzinfo=dt.timezone.utc))
+        meta = dict(META, run_id=run_id)
+        with archive.open_run(root, run_id, as_of.year) as run:
+            for name, data in render_run(doc, meta).items():
+                run.write_bytes(name, data)
+            run.finish({"counts": {k: doc["summary"][k] for k in ("registered", "audited", *STATUS)}})
+        run_ids.append(run_id)
+    runs = archive.list_runs(root)
+    runs.append({"run_id": HOSTILE, "path": "../../etc", "as_of": "2026-12-07", "time": "t", "seq": 99, "counts": None, "purged": False, "signoffs": [], "manifest_sha256": "0" * 64})
+    page = render_archive_index(runs)
+    text = page.decode("utf-8")
+    root_node = parse(page)
+    _check_self_contained("index.html", root_node, text, {}, archive_links=True)
+    header, rows = table_rows(table_by_caption(root_node, "Audit runs"))
+    assert [cells[header.index("Run")] for _, cells in rows] == [HOSTILE] + run_ids[::-1]  # newest first
+    links = [a.attrs["href"] for a in root_node.iter("a") if a.attrs["href"].startswith("runs/")]
+    assert links == [f"runs/2026/{r}/index.html" for r in run_ids[::-1]]
+    assert all((root / link).is_file() for link in links)
+    for _, cells in rows[1:]:
+        assert int(cells[header.index("Registered")]) == doc["summary"]["registered"]
+        for verdict, (symbol, word) in STATUS.items():
+            assert int(cells[header.index(f"{symbol} {word}")]) == doc["summary"][verdict]
+    assert HOSTILE not in text and "A passing audit is statistical evidence" in text
