@@ -90,6 +90,19 @@ def _workers() -> int:
     return int(kwargs.get("n_workers", 1))
 
 
+def _report_progress(futures, staged) -> None:
+    """One line on standard error per finished batch: models done out of the total."""
+    import sys
+
+    from prefect.futures import as_completed
+
+    sizes = {id(f): len(b.model_ids) for f, b in zip(futures, staged.batches)}
+    total, done = sum(sizes.values()), 0
+    for i, fut in enumerate(as_completed(list(futures)), start=1):
+        done += sizes.get(id(fut), 0)
+        print(f"fitaudit: audited {done}/{total} models ({i}/{len(sizes)} batches)", file=sys.stderr, flush=True)
+
+
 def _runner_name() -> str:
     from prefect.context import FlowRunContext
 
@@ -106,6 +119,7 @@ def audit_flow(
     batch_size: int = 0,
     trigger_refits: bool = False,
     search_candidates: bool = True,
+    progress: bool = False,
 ) -> dict:
     """Audit every model of a registry at an as-of date and archive the report.
 
@@ -124,6 +138,8 @@ def audit_flow(
     search_candidates : bool
         Score neighbouring specifications for ``respecify`` models and list passing ones in the
         report (default True).
+    progress : bool
+        Print a line to standard error as each batch finishes (the command line turns it on).
     trigger_refits : bool
         Start the refit flow for models with a ``refit`` or ``respecify`` verdict right away (works
         on the embedded server); otherwise an automation listening to the events can do it.
@@ -160,6 +176,8 @@ def audit_flow(
     timings["calibration_s"] = time.perf_counter() - t0
     t0 = time.perf_counter()
     futures = audit_batch_task.map([b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache))
+    if progress:
+        _report_progress(futures, staged)
     outcomes = [o for batch in futures.result() for o in batch]
     outcomes += [rejected_outcome(r) for r in reg.rejected if models is None or r.id in set(models)]
     timings["audit_s"] = time.perf_counter() - t0

@@ -201,7 +201,10 @@ def _cmd_run(args) -> int:
 
         flow_fn = _with_runner(audit_flow, args.dask)
         try:
-            result = flow_fn(registry=args.registry, as_of=args.as_of, archive=args.archive, models=args.models, batch_size=args.batch_size, trigger_refits=args.refit)
+            result = flow_fn(
+                registry=args.registry, as_of=args.as_of, archive=args.archive, models=args.models,
+                batch_size=args.batch_size, trigger_refits=args.refit, progress=not args.quiet,
+            )
         except RegistryError as exc:
             print(str(exc), file=sys.stderr)
             return EXIT_USAGE
