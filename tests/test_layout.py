@@ -76,3 +76,20 @@ def test_tests_import_fitaudit_namespace_only(path):
     tree = ast.parse(path.read_text(), filename=str(path))
     for module, line in _imports(tree):
         assert module.split(".")[0] not in TOP, f"{path}:{line} imports {module}; import fitaudit.{module} instead"
+
+
+@pytest.mark.slow
+def test_wheel_holds_only_the_fitaudit_namespace(tmp_path):
+    """A built wheel puts fitaudit/ and its dist-info at the top, nothing named core/tasks/flows/tests."""
+    import subprocess
+    import zipfile
+
+    out = subprocess.run([sys.executable, "-m", "pip", "wheel", str(REPO), "--no-deps", "-q", "-w", str(tmp_path)], capture_output=True, text=True, timeout=600)
+    assert out.returncode == 0, out.stderr
+    wheel = next(tmp_path.glob("fitaudit-*.whl"))
+    names = zipfile.ZipFile(wheel).namelist()
+    tops = {n.split("/", 1)[0] for n in names}
+    assert tops == {"fitaudit", next(t for t in tops if t.endswith(".dist-info"))}
+    assert "fitaudit/__init__.py" not in names  # an implicit namespace
+    for sub in ("core/divergence.py", "tasks/archive.py", "flows/cli.py", "templates/run.html.j2", "templates/report.css", "flows/prefect.yaml"):
+        assert f"fitaudit/{sub}" in names, sub
