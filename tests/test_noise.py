@@ -251,7 +251,9 @@ def test_fit_is_location_scale_equivariant(seed, a, b, name):
     assert q.loc == pytest.approx(a * p.loc + b, abs=1e-7 * a * p.scale)
     assert q.scale == pytest.approx(a * p.scale, rel=1e-7)
     if law.has_shape:
-        assert q.shape == pytest.approx(p.shape, rel=1e-6)
+        # the likelihood is nearly flat in df when df is large (df ~ 50 from 40 points), so the
+        # iteration's stopping rule leaves relative differences of order 1e-6 there
+        assert q.shape == pytest.approx(p.shape, rel=1e-5)
 
 
 # --------------------------------------------------------------------------------------------

@@ -629,7 +629,8 @@ class ExpSmoothing(ForecastModel):
         names = self.param_names()
         params = {name: float(v) for name, v in zip(names[:-1], vec)} | {"sigma2": sigma2}
         aic, bic = information_criteria(loglik, len(names), n)
-        if not res.success:
+        converged = bool(res.success) or self._stalled_at_optimum(res)
+        if not converged:
             warnings.warn(
                 f"{self.describe()}: the optimiser stopped without converging ({res.message}); check the series for "
                 "level shifts or outliers, or choose a simpler trend or season.",
@@ -645,11 +646,29 @@ class ExpSmoothing(ForecastModel):
             bic=bic,
             nobs=n,
             residuals=residuals,
-            converged=bool(res.success),
-            message=str(res.message),
+            converged=converged,
+            message=str(res.message) or ("converged" if converged else "stopped"),
             iterations=int(res.nfev),
             extras={"bse": self._standard_errors(y, vec, sigma2), "at_bound": self._at_bound(vec)},
         )
+
+    def _stalled_at_optimum(self, res) -> bool:
+        """True when L-BFGS-B stopped in its line search at a stationary point.
+
+        With ``ftol=1e-13`` the line search can fail to find a decrease once the objective is
+        flat to rounding ("ABNORMAL" termination) although the point is a maximum; the projected
+        gradient (components pushing against an active bound removed) then is negligible.
+        """
+        jac = getattr(res, "jac", None)
+        if jac is None or "ABNORMAL" not in str(res.message).upper():
+            return False
+        bounds = self._bounds()[: len(jac)]
+        pg = np.array(jac, dtype=float)
+        for i, (lo, hi) in enumerate(bounds):
+            x = res.x[i]
+            if (lo is not None and x <= lo + 1e-10 and pg[i] > 0) or (hi is not None and x >= hi - 1e-10 and pg[i] < 0):
+                pg[i] = 0.0
+        return bool(np.max(np.abs(pg)) <= 1e-4 * max(1.0, abs(float(res.fun))))
 
     def _standard_errors(self, y: np.ndarray, vec: np.ndarray, sigma2: float) -> dict[str, float]:
         """sqrt of diag(sigma2 (J'J)^-1), J the central-difference Jacobian of the errors."""
