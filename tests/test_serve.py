@@ -31,7 +31,7 @@ def served(prefect_server, tmp_path_factory):
     log = open(root / "serve.log", "wb")
     proc = subprocess.Popen([sys.executable, "-c", code, demo["registry"], demo["archive"]], env=env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
     try:
-        _wait_for_deployments(["fitaudit-audit/weekly", "fitaudit-refit/refit"], proc)
+        _wait_for_deployments(["fitaudit-audit/weekly", "fitaudit-refit/refit"], demo["registry"], proc)
         yield demo
     finally:
         os.killpg(proc.pid, signal.SIGTERM)
@@ -42,15 +42,26 @@ def served(prefect_server, tmp_path_factory):
         log.close()
 
 
-def _wait_for_deployments(names: list[str], proc: subprocess.Popen, timeout: float = 120) -> None:
+def _wait_for_deployments(names: list[str], registry: str, proc: subprocess.Popen, timeout: float = 120) -> None:
+    """Wait until this process has (re)registered every deployment for ``registry``.
+
+    A server that keeps its database between sessions still holds the same deployments from an
+    earlier session, pointing at that session's (deleted) registry: existence alone is not enough.
+    """
     from prefect.client.orchestration import get_client
 
     async def found() -> bool:
         async with get_client() as client:
             for name in names:
                 try:
-                    await client.read_deployment_by_name(name)
+                    deployment = await client.read_deployment_by_name(name)
                 except Exception:
+                    return False
+                if name.endswith("/weekly") and deployment.parameters.get("registry") != registry:
+                    return False
+                if name.endswith("/refit") and not any(
+                    getattr(t, "parameters", None) and t.parameters.get("registry") == registry for t in await _triggers(client, deployment.id)
+                ):
                     return False
             return True
 
@@ -61,6 +72,12 @@ def _wait_for_deployments(names: list[str], proc: subprocess.Popen, timeout: flo
             return
         time.sleep(1)
     raise AssertionError(f"deployments {names} did not appear within {timeout} s")
+
+
+async def _triggers(client, deployment_id) -> list:
+    """The run-deployment actions of the automations attached to a deployment."""
+    automations = await client.read_resource_related_automations(f"prefect.deployment.{deployment_id}")
+    return [action for automation in automations for action in automation.actions]
 
 
 def _events(prefix: str, since, want: int, timeout: float = 60) -> list:
@@ -113,7 +130,8 @@ def test_served_audit_runs_through_the_api_with_artifacts_events_and_triggered_r
     deadline = time.monotonic() + 180
     runs = []
     while time.monotonic() < deadline:
-        runs = [r for r in asyncio.run(refit_runs()) if r.parameters.get("model_ids") == ["demand-d-07"]]
+        # runs of this session only: a kept server database also holds earlier sessions' runs
+        runs = [r for r in asyncio.run(refit_runs()) if r.parameters.get("model_ids") == ["demand-d-07"] and r.parameters.get("registry") == served["registry"]]
         if runs and runs[0].state is not None and runs[0].state.is_final():
             break
         time.sleep(2)
