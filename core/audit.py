@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import dataclasses
 import hashlib
+import math
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -35,6 +36,7 @@ from .calibration import (
     CalibrationCache,
     NullTable,
     describe_key,
+    independence_table,
     standardised_maximum,
     bootstrap_table,
     chi2_critical_value,
@@ -335,12 +337,14 @@ def _plain(v: Any) -> Any:
     if isinstance(v, (list, tuple)):
         return [_plain(x) for x in v]
     if isinstance(v, np.ndarray):
+        if v.dtype.kind in "biu" or (v.dtype.kind == "f" and np.isfinite(v).all()):
+            return v.tolist()  # already plain: Python ints, bools or finite floats
         return _plain(v.tolist())
     if isinstance(v, (np.floating, float)):
         f = float(v)
-        if np.isnan(f):
+        if math.isnan(f):
             return None
-        if np.isinf(f):
+        if math.isinf(f):
             return "inf" if f > 0 else "-inf"
         return f
     if isinstance(v, (np.integer,)):
@@ -427,6 +431,7 @@ def _score(
     settings: AuditSettings,
     table_for: Any,
     window: dict,
+    cache: CalibrationCache | None = None,
 ) -> CheckResult:
     """Score residuals ``e`` with PIT values ``u``: cells, map, calibration, independence."""
     n = e.size
@@ -470,7 +475,13 @@ def _score(
     ml = mcleod_li(e, lags)
     r = acf(e, lags)
     effect_acf = float(np.max(np.abs(r[1:]))) if lags >= 1 else float("nan")
+    lb_dict = lb.to_dict()
     p_ind = lb.p_value
+    if kind == "production" and settings.calibration != "asymptotic" and not law.discrete:
+        # frozen parameters: the errors are i.i.d. under the null, so the statistic's exact null is simulated
+        table_lb = independence_table(n, lags, settings.replicates, settings.seed, cache)
+        p_ind = table_lb.p_value(lb.statistic)
+        lb_dict = dict(lb_dict, p_value=p_ind, p_value_chi2=lb.p_value, reference=f"simulated (R={table_lb.replicates})")
     p_comb = float(min(1.0, 2.0 * min(p_dist, p_ind)))
     members = {}
     for name, value in dmap.members.items():
@@ -494,7 +505,7 @@ def _score(
         p_distribution=float(p_dist),
         calibration=calib,
         members=members,
-        ljung_box=lb.to_dict(),
+        ljung_box=lb_dict,
         mcleod_li=ml.to_dict(),
         p_independence=float(p_ind),
         p_value=p_comb,
@@ -508,12 +519,40 @@ def _score(
     )
 
 
-def _failed_check(kind: str, exc: BaseException, window: dict | None = None) -> CheckResult:
+def _failed_check(kind: str, exc: BaseException, window: dict | None = None, label: str | None = None) -> CheckResult:
     status = "insufficient" if isinstance(exc, InsufficientDataError) else "error"
     msg = str(exc) or type(exc).__name__
     if not isinstance(exc, FitauditError):
         msg = f"{type(exc).__name__}: {msg}"
+    if label and label not in msg:  # messages raised by a model or law name the spec, not the model entry
+        msg = f"{label}: {msg}"
     return CheckResult(kind=kind, status=status, message=msg, window=window or {})
+
+
+#: Magnitudes the fits accept: squares (and sums of squares) outside this range overflow or underflow float64.
+MAGNITUDE_RANGE = (1e-150, 1e150)
+
+
+def _check_inputs(y: np.ndarray, exog: Mapping[str, np.ndarray] | None, law: NoiseLaw, label: str) -> None:
+    """Refuse data the numerics cannot handle, with the fix: magnitudes outside :data:`MAGNITUDE_RANGE`, non-counts under a count law."""
+    low, high = MAGNITUDE_RANGE
+    columns = [("the series", y)] + [(f"exogenous column {k!r}", np.asarray(v, dtype=float)) for k, v in (exog or {}).items()]
+    for i, (name, values) in enumerate(columns):
+        big = float(np.max(np.abs(values))) if values.size else 0.0
+        if big > high or (i == 0 and 0.0 < big < low):
+            side = f"as large as {big:.3g}; above {high:g}" if big > high else f"no larger than {big:.3g}; below {low:g}"
+            raise InputError(
+                f"{label}: {name} holds values {side} their squares leave the range of double precision and no fit "
+                "can run. Rescale the column in the extract (e.g. record thousands, millions or millionths of the unit)."
+            )
+    if law.discrete:
+        bad = np.flatnonzero((y < 0) | (y != np.round(y)))
+        if bad.size:
+            raise InputError(
+                f"{label}: the {law.name} noise law needs counts (non-negative integers), but {bad.size} value(s) are not, "
+                f"first at position {int(bad[0])} ({y[bad[0]]:g}). Register a continuous noise law (normal, student-t, "
+                "laplace, logistic) for this series, or correct the extract."
+            )
 
 
 # --------------------------------------------------------------------------------------------
@@ -543,16 +582,22 @@ def _production_check(model, y, exog, params, law_prod: NoiseLaw, settings, cach
             nparams = law_prod.fit_counts(y[-w:], mean) if law_prod.has_shape and law_prod.shape is None else law_prod.fit_counts(y[-w:], mean)
             u = law_prod.randomized_pit(y[-w:], mean, nparams, key_rng(settings.seed, "pit", "production", _digest(y)))
         else:
-            nparams = law_prod.from_variance(float(params["sigma2"]))
+            sigma2 = float(params["sigma2"])
+            if not (np.isfinite(sigma2) and sigma2 > 0):
+                raise InputError(
+                    f"{label}: the production parameter version's sigma2 = {sigma2:g} is not a positive variance; "
+                    "refit the model and promote a new parameter version."
+                )
+            nparams = law_prod.from_variance(sigma2)
             u = law_prod.cdf(tail, nparams)
         table_for = None
         if settings.calibration != "asymptotic":
             def table_for(n, s):
                 return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache)
-        check = _score("production", tail, u, law_prod, nparams, 0, 0, model.seasonal_period(), settings, table_for, window)
+        check = _score("production", tail, u, law_prod, nparams, 0, 0, model.seasonal_period(), settings, table_for, window, cache)
         return check, np.asarray(errors, dtype=float), nparams
     except (FitauditError, ValueError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError) as exc:
-        return _failed_check("production", exc, window), None, None
+        return _failed_check("production", exc, window, label), None, None
 
 
 def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label) -> tuple[CheckResult, Any]:
@@ -565,11 +610,11 @@ def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label) -> tuple
     try:
         yf = y[sl]
         xf = _slice_exog(exog, sl)
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always", ConvergenceWarning)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ConvergenceWarning)  # reported through fit.converged below
             fit = model.fit(yf, xf)
         if not fit.converged:
-            detail = "; ".join(str(w.message) for w in caught if issubclass(w.category, ConvergenceWarning)) or fit.message
+            detail = fit.message or "no message from the optimiser"
             raise FitauditError(
                 f"{label}: the refit of {model.describe()} did not converge ({detail}). "
                 "Check the series for level shifts or outliers, or simplify the orders."
@@ -604,7 +649,7 @@ def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label) -> tuple
         check = _score("refit", e, u, law, nparams, k, model.n_dynamic_params(), model.seasonal_period(), settings, table_for, window)
         return check, fit
     except (FitauditError, ValueError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError) as exc:
-        return _failed_check("refit", exc, window), fit
+        return _failed_check("refit", exc, window, label), fit
 
 
 def _bootstrap(model, fit, law: NoiseLaw, nparams: NoiseParams, yf, xf, n: int, s: int, location: bool, settings: AuditSettings, reference: np.ndarray) -> NullTable:
@@ -748,8 +793,9 @@ def audit_series(
         if exog is not None:
             exog_matrix(exog, y_arr.size, label)  # validates lengths and values
             exog = {k: np.asarray(v, dtype=float) for k, v in dict(exog).items()}
+        _check_inputs(y_arr, exog, law, label)
     except (FitauditError, ValueError, TypeError) as exc:
-        check = _failed_check("refit", exc)
+        check = _failed_check("refit", exc, label=label)
         return AuditResult(
             verdict=check.status, reasons=(f"The audit could not start: {check.message}",), production=None, refit=check,
             spec=_plain(spec_dict), noise=str(noise_name), timings={"total_s": time.perf_counter() - t_start},
@@ -769,7 +815,7 @@ def audit_series(
                 )
             prod_check, prod_errors, prod_noise = _production_check(model, y_arr, exog, dict(production), law_prod, settings, cache, label)
         except FitauditError as exc:
-            prod_check = _failed_check("production", exc)
+            prod_check = _failed_check("production", exc, label=label)
         timings["production_s"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()

@@ -68,6 +68,7 @@ _FIXED_STEPS = {
 }
 _CALENDAR_STEPS = {"MS": (1, "start"), "M": (1, "end"), "QS": (3, "start"), "Q": (3, "end")}
 _NS = np.dtype("datetime64[ns]")
+_IO_FAILURE = "could not be read"  # reason of a file whose bytes failed to load (OSError)
 _NULL_KEY = "\x00null"  # stands for a null key; registry keys cannot contain NUL
 
 
@@ -198,6 +199,7 @@ class _Location:
     fs: pafs.FileSystem
     path: str  # path inside ``fs``
     is_dir: bool
+    raise_io: bool = False  # OSError while reading propagates (retried by the caller) instead of skipping the file
 
     def fail(self, what: str, fix: str) -> ExtractError:
         """An ExtractError naming the source, its URI and the resolved path."""
@@ -205,7 +207,14 @@ class _Location:
         return ExtractError(f"source {src.name!r} (uri {src.uri!r}, resolved to {self.path!r}): {what}. Fix: {fix}.")
 
 
-def _locate(source: SourceEntry, base_dir: str | os.PathLike | None) -> _Location:
+def _check_io_errors(io_errors: str) -> bool:
+    if io_errors not in ("skip", "raise"):
+        raise InputError(f"io_errors={io_errors!r}; expected 'skip' or 'raise'")
+    return io_errors == "raise"
+
+
+def _locate(source: SourceEntry, base_dir: str | os.PathLike | None, io_errors: str = "skip") -> _Location:
+    raise_io = _check_io_errors(io_errors)
     uri = source.uri
     if "://" in uri:
         try:
@@ -223,10 +232,12 @@ def _locate(source: SourceEntry, base_dir: str | os.PathLike | None) -> _Locatio
     try:
         info = fs.get_file_info(path)
     except (pa.ArrowException, OSError) as exc:
+        if raise_io and isinstance(exc, OSError):
+            raise
         raise _Location(source, fs, path, False).fail(
             f"cannot be inspected ({exc})", "check the path and permissions"
         ) from None
-    location = _Location(source, fs, path, info.type == pafs.FileType.Directory)
+    location = _Location(source, fs, path, info.type == pafs.FileType.Directory, raise_io)
     if info.type == pafs.FileType.NotFound:
         raise location.fail(
             "does not exist", f"correct sources.{source.name}.uri in the registry, or write the extract there"
@@ -297,16 +308,24 @@ def _inspect_files(loc: _Location) -> list[_File]:
             meta = pq.read_metadata(path, filesystem=loc.fs)
             schema = meta.schema.to_arrow_schema()
         except (pa.ArrowException, OSError, ValueError) as exc:
-            reason = "empty file (0 bytes)" if size == 0 else f"not readable as Parquet ({str(exc).splitlines()[0]})"
+            if loc.raise_io and isinstance(exc, OSError):
+                raise
+            detail = (str(exc).splitlines() or [type(exc).__name__])[0]
+            if size == 0:
+                reason = "empty file (0 bytes)"
+            elif isinstance(exc, OSError):  # an I/O failure (or a footer pyarrow cannot even deserialise)
+                reason = f"{_IO_FAILURE} ({detail})"
+            else:
+                reason = f"not readable as Parquet ({detail})"
             files.append(_File(path, size, None, 0, reason))
             continue
         files.append(_File(path, size, schema, meta.num_rows, ""))
     readable = [f for f in files if f.schema is not None]
     if not readable:
         listing = "; ".join(f"{_relative(loc, f.path)}: {f.reason}" for f in files[:_SHOW])
-        raise loc.fail(
-            f"no file can be read ({listing})", "rewrite the extract as Parquet (pyarrow.parquet.write_table)"
-        )
+        io_only = all(f.reason.startswith(_IO_FAILURE) for f in files)
+        fix = "check that the storage is reachable and the files readable, then rerun" if io_only else "rewrite the extract as Parquet (pyarrow.parquet.write_table)"
+        raise loc.fail(f"no file can be read ({listing})", fix)
     if loc.source.partitioning == "hive":
         partition_types = _hive_types(loc, [f.path for f in readable])
         files = [_with_partitions(loc, f, partition_types) for f in files]
@@ -416,6 +435,7 @@ def _filter(schema: pa.Schema, src: SourceEntry, keys: list[str], start, end) ->
         if scalar is None:
             continue
         term = pc.field(src.time) <= scalar if upper else pc.field(src.time) >= scalar
+        term = term | pc.field(src.time).is_null()  # rows without a timestamp reach validation (null-time)
         expr = term if expr is None else expr & term
     return expr
 
@@ -522,6 +542,7 @@ def read_series(
     start: Any = None,
     end: Any = None,
     base_dir: str | os.PathLike | None = None,
+    io_errors: str = "skip",
 ) -> dict[str, SeriesData]:
     """Read the series ``keys`` of a source in one scan and validate each.
 
@@ -537,6 +558,11 @@ def read_series(
         Inclusive time range (UTC; aware datetimes are converted).
     base_dir : path-like, optional
         Folder that a relative ``source.uri`` resolves against (the registry's folder).
+    io_errors : {"skip", "raise"}
+        What an ``OSError`` while reading a file does: ``"skip"`` names the file as unreadable and
+        goes on with the others; ``"raise"`` lets it propagate, so that a caller can retry a
+        transient failure (a network file system, an object store).  Corrupt files that pyarrow
+        reports as invalid data are always skipped and named.
 
     Returns
     -------
@@ -549,12 +575,14 @@ def read_series(
     ExtractError
         When the source as a whole cannot be read (path missing, no readable Parquet file, key or
         time column absent from every file).
+    OSError
+        With ``io_errors="raise"``, when a file of the source cannot be read.
     """
     src = source
     keys = [str(k) for k in dict.fromkeys(keys)]
     columns = [c for c in dict.fromkeys(columns) if c not in (src.key, src.time)]
     start_ns, end_ns = _as_ns(start, "start"), _as_ns(end, "end")
-    loc = _locate(src, base_dir)
+    loc = _locate(src, base_dir, io_errors)
     files = _inspect_files(loc)
     readable = [f for f in files if f.schema is not None]
     skipped = [(_relative(loc, f.path), f.reason) for f in files if f.schema is None]
@@ -575,7 +603,9 @@ def read_series(
     if _agree(readable, needed):
         try:
             chunks = _scan_unified(loc, readable, src, keys, columns, start_ns, end_ns)
-        except (pa.ArrowException, OSError):
+        except (pa.ArrowException, OSError) as exc:
+            if loc.raise_io and isinstance(exc, OSError):
+                raise
             chunks = None  # a file that looked fine fails mid-read: fall back to file by file
     if chunks is None:
         chunks, more_skipped = _scan_file_by_file(loc, readable, src, keys, columns, start_ns, end_ns)
@@ -591,6 +621,8 @@ def _scan_file_by_file(loc, readable, src, keys, columns, start, end) -> tuple[l
         try:
             chunk = _scan_file(loc, f, src, keys, columns, start, end)
         except (pa.ArrowException, OSError) as exc:
+            if loc.raise_io and isinstance(exc, OSError):
+                raise
             skipped.append((_relative(loc, f.path), f"failed while reading ({str(exc).splitlines()[0]})"))
             continue
         if chunk is not None:
@@ -722,7 +754,9 @@ def _present_keys(loc: _Location, readable: list[_File], src: SourceEntry) -> li
             continue
         try:
             keys = _to_keys(_dataset(loc, [f.path]).to_table(columns=[src.key])[src.key])
-        except (pa.ArrowException, OSError):
+        except (pa.ArrowException, OSError) as exc:
+            if loc.raise_io and isinstance(exc, OSError):
+                raise
             continue
         found.update(k for k in keys if k != _NULL_KEY)
     return sorted(found)
@@ -953,7 +987,7 @@ def _non_finite(time: np.ndarray, values: np.ndarray, name: str, exogenous: bool
 # --------------------------------------------------------------------------------------------
 # fingerprint
 # --------------------------------------------------------------------------------------------
-def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None = None) -> ExtractFingerprint:
+def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None = None, *, io_errors: str = "skip") -> ExtractFingerprint:
     """Hash every file of a source and summarise what it holds (for the manifest).
 
     Parameters
@@ -962,6 +996,9 @@ def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None =
         The registry's source entry.
     base_dir : path-like, optional
         Folder that a relative ``source.uri`` resolves against.
+    io_errors : {"skip", "raise"}
+        As in :func:`read_series` (``"skip"``: a file whose bytes cannot be read is listed as
+        unreadable).
 
     Returns
     -------
@@ -972,13 +1009,15 @@ def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None =
     ExtractError
         When the path does not exist, the folder is empty, or no file is readable Parquet.
     """
-    loc = _locate(source, base_dir)
+    loc = _locate(source, base_dir, io_errors)
     files = _inspect_files(loc)
     prints, listing, unreadable = [], [], []
     for f in files:
         try:
             digest = _hash_file(loc, f.path)
         except OSError:
+            if loc.raise_io:
+                raise
             digest = ""  # the bytes cannot even be read
         prints.append(FileFingerprint(f.path, f.size, digest))
         listing.append([_relative(loc, f.path), f.size, digest])
@@ -1010,7 +1049,9 @@ def _time_range(
             continue
         try:
             t, _, why = _to_time(_dataset(loc, [f.path]).to_table(columns=[time_column])[time_column])
-        except (pa.ArrowException, OSError):
+        except (pa.ArrowException, OSError) as exc:
+            if loc.raise_io and isinstance(exc, OSError):
+                raise
             failed.append(f.path)
             continue
         if t is None or why:

@@ -50,6 +50,7 @@ from ._io import json_ready, sha256_bytes
 
 __all__ = [
     "SAFE_ID",
+    "MAX_ID_LENGTH",
     "FREQUENCIES",
     "is_safe_id",
     "RegistryProblem",
@@ -67,6 +68,9 @@ __all__ = [
 #: Model ids and source names usable as file names: a letter or digit, then up to 127 letters,
 #: digits, ``_``, ``.`` or ``-``.  ``\Z`` (not ``$``) so that a trailing newline never matches.
 SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,127}\Z")
+
+#: Longest model id: its report page ``<id>.html`` must itself be a :data:`SAFE_ID` name.
+MAX_ID_LENGTH = 128 - len(".html")
 
 #: Frequency codes a source may declare, with their meaning (gaps are checked against them).
 FREQUENCIES: dict[str, str] = {
@@ -598,20 +602,25 @@ def _compose(text: str, reader: _Reader) -> tuple[yaml.Node | None, list[Registr
         ]
 
 
-def _tag_problems(root: yaml.Node, reader: _Reader) -> list[RegistryProblem]:
-    """Refuse non-standard tags anywhere, and documents that expand beyond :data:`_MAX_NODES`."""
+def _tag_problems(root: yaml.Node, reader: _Reader, limit: int = _MAX_NODES) -> list[RegistryProblem]:
+    """Refuse non-standard tags anywhere, and documents that expand beyond ``limit`` values.
+
+    The caller passes the larger of :data:`_MAX_NODES` and the text's length: without aliases every
+    value takes at least one character, so only aliases can exceed it (a registry of 10,000 models
+    holds about 250,000 values in 800,000 characters).
+    """
     problems = []
     stack = [root]
     visited = 0
     while stack:
         node = stack.pop()
         visited += 1
-        if visited > _MAX_NODES:
+        if visited > limit:
             problems.append(
                 reader.problem(
                     root,
                     "",
-                    f"the document expands to more than {_MAX_NODES} values through aliases "
+                    f"the document expands to more than {limit} values through aliases "
                     "(or an alias refers to itself); write the registry without such anchors",
                 )
             )
@@ -1051,12 +1060,12 @@ class _Entries:
         value = self.reader.text(node, f"{field_}.id", problems)
         if value is BAD:
             return raw, None
-        if not is_safe_id(value):
+        if not is_safe_id(value) or len(value) > MAX_ID_LENGTH:
             problems.append(
                 self.reader.problem(
                     node,
                     f"{field_}.id",
-                    f"id {value[:_SHOW]!r} is not allowed; use 1-128 letters, digits, "
+                    f"id {value[:_SHOW]!r} is not allowed; use 1-{MAX_ID_LENGTH} letters, digits, "
                     "'_', '.' or '-', starting with a letter or digit (ids become file names)",
                 )
             )
@@ -1189,7 +1198,7 @@ def _analyse(
             [],
             None,
         )
-    problems = _tag_problems(root, reader)
+    problems = _tag_problems(root, reader, max(_MAX_NODES, len(text)))
     if problems:
         return problems, [], None
     top = reader.mapping(root, "", problems, "a mapping with 'version', 'policy', 'sources' and 'models'")

@@ -104,7 +104,7 @@ def resolve_function(path: str, owner: str = "NonlinearAR") -> Callable:
             f"{owner}: cannot import module {module_name!r} named in function={path!r} ({exc}); install the "
             "package on the audit workers or correct the path."
         ) from exc
-    except Exception as exc:  # the module's own top-level code failed
+    except (Exception, SystemExit) as exc:  # the module's own top-level code failed (sys.exit included)
         raise SpecificationError(
             f"{owner}: importing module {module_name!r} (function={path!r}) raised {type(exc).__name__}: {exc}."
         ) from exc
@@ -272,7 +272,7 @@ class NonlinearAR(ForecastModel):
         try:
             with np.errstate(all="ignore"):  # non-finite output is checked by the callers
                 out = np.asarray(f(theta, lags, X), dtype=float)
-        except Exception as exc:  # user code: any failure becomes this model's error
+        except (Exception, SystemExit) as exc:  # user code: any failure, sys.exit included, is this model's error
             raise SpecificationError(
                 f"{self.describe()}: the mean function {self.function!r} raised {type(exc).__name__}: {exc}. "
                 f"It is called as f(theta, lags, exog) with theta of length {theta.size}, lags of shape "
