@@ -9,27 +9,44 @@ from __future__ import annotations
 
 import datetime as dt
 import pathlib
+import pickle
 import shutil
 import time
 from prefect import flow, get_run_logger, task, unmapped
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
+from prefect.utilities.annotations import quote
 
 from fitaudit.tasks.archive import new_run_id, recover
-from fitaudit.tasks.audit import Outcome, audit_batch_task, calibration_task, candidates_task, finalize, records, rejected_outcome, with_candidates
+from fitaudit.tasks.audit import (
+    Outcome,
+    audit_batch_task,
+    calibration_task,
+    candidate_jobs,
+    candidate_tables,
+    candidates_task,
+    finalize,
+    rejected_outcome,
+    spill_path,
+    tables_task,
+    with_candidates,
+)
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.events import emit_run_event, emit_verdict_events, publish_artifacts
 from fitaudit.tasks.publish import (
+    StagedRecord,
     code_commit,
     load_history,
     operator_identity,
     package_versions,
-    publish_run,
+    publish_staged,
     render_archive_index_file,
+    render_outcomes_task,
 )
 from fitaudit.tasks.registry import Registry, load_registry_task
-from fitaudit.tasks.results import build_results
+from fitaudit.tasks.results import results_head, results_summary
 from fitaudit.tasks.settings import get_settings
+from fitaudit.tasks.workers import default_processes, local_workers
 
 __all__ = ["audit_flow", "run_audit"]
 
@@ -57,12 +74,9 @@ def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
 
 
 @task(name="publish-run", cache_policy=NO_CACHE, persist_result=False, retries=1, retry_delay_seconds=2)
-def publish_task(archive: str, doc: dict, meta: dict, manifest: dict, run_id: str) -> dict:
-    """Render the pages, write the run folder atomically, refresh the archive index."""
-    from fitaudit.tasks.report import render_run
-
-    pages = render_run(doc, meta)
-    published = publish_run(archive, doc, pages, manifest, run_id=run_id)
+def publish_task(archive: str, head: dict, summary: dict, staged: list[StagedRecord], meta: dict, manifest: dict, run_id: str) -> dict:
+    """Write the run folder atomically from the staged records and pages, refresh the archive index."""
+    published = publish_staged(archive, head, summary, staged, meta, manifest, run_id=run_id)
     render_archive_index_file(archive)
     return {"run_id": published.run_id, "path": str(pathlib.Path(archive) / published.path), "manifest_sha256": published.manifest_sha256}
 
@@ -103,6 +117,40 @@ def _report_progress(futures, staged) -> None:
         print(f"fitaudit: audited {done}/{total} models ({i}/{len(sizes)} batches)", file=sys.stderr, flush=True)
 
 
+#: Below this many models the automatic choice computes in the task threads: starting worker
+#: processes (about a second of imports each) would cost more than they save.
+AUTO_PROCESSES_MIN_MODELS = 100
+
+
+def _local_processes(requested: int, batches: int, models: int) -> int:
+    """Worker processes for the batches under the default (thread) task runner: ``requested``, or
+    for 0 every CPU when the run has at least :data:`AUTO_PROCESSES_MIN_MODELS` models; at most one
+    per batch.  None under other runners (Dask workers are processes already)."""
+    if _runner_name() != "ThreadPoolTaskRunner" or batches < 2:
+        return 0
+    if requested == 0:
+        requested = default_processes() if models >= AUTO_PROCESSES_MIN_MODELS else 1
+    return min(requested, batches)
+
+
+def _render_inputs(final: list, batches: list, staged) -> tuple[list[bytes], list[str], list[str | None]]:
+    """Per batch: its final (light) outcomes pickled, a part name and the file of its full outcomes.
+
+    ``batches`` are the batch tasks' outcome lists plus the rejected entries' last; ``final`` keeps
+    their order.  Pickled, because Prefect walks lists of dataclasses among task inputs and
+    prefect-dask reshapes ``quote``-wrapped ones; bytes pass through both untouched.
+    """
+    parcels, names, spills, start = [], [], [], 0
+    for i, batch in enumerate(batches):
+        if batch:
+            batch_path = staged.batches[i].path if i < len(staged.batches) else None
+            parcels.append(pickle.dumps(final[start : start + len(batch)], protocol=pickle.HIGHEST_PROTOCOL))
+            names.append(pathlib.Path(batch_path).name if batch_path else "rejected")
+            spills.append(spill_path(batch_path) if batch_path else None)
+        start += len(batch)
+    return parcels, names, spills
+
+
 def _runner_name() -> str:
     from prefect.context import FlowRunContext
 
@@ -110,7 +158,8 @@ def _runner_name() -> str:
     return type(getattr(ctx, "task_runner", None)).__name__
 
 
-@flow(name="fitaudit-audit", persist_result=False, log_prints=False, task_runner=ThreadPoolTaskRunner(max_workers=2))
+# one task thread per CPU (at least two): each batch task waits on one local worker process
+@flow(name="fitaudit-audit", persist_result=False, log_prints=False, task_runner=ThreadPoolTaskRunner(max_workers=max(2, default_processes())))
 def audit_flow(
     registry: str,
     as_of: dt.date | None = None,
@@ -160,56 +209,71 @@ def audit_flow(
     reg = load_registry_task(registry)
     recovered = recover_task(archive)
     run_id = new_run_id(as_of)
-    ids = [m.id for m in reg.models if models is None or m.id in set(models)]
-    history = history_task(archive, as_of, ids)
+    wanted = None if models is None else set(models)
+    ids = [m.id for m in reg.models if wanted is None or m.id in wanted]
+    history = history_task(archive, as_of, quote(ids))
     work = pathlib.Path(archive) / ".work" / run_id
     t0 = time.perf_counter()
-    stage_args = dict(archive_root=archive, histories=history, model_ids=ids, batch_size=batch_size or settings.batch_size, workers=_workers())
+    # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
+    # them (twice per task call) looking for futures, which costs seconds on a big fleet
+    stage_args = dict(archive_root=archive, histories=quote(history), model_ids=quote(ids), batch_size=batch_size or settings.batch_size, workers=_workers())
     try:
-        staged = stage_inputs_task(reg, as_of, str(work), **stage_args)
+        staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
     except OSError:
-        staged = stage_inputs_task(reg, as_of, str(work), os_errors="record", **stage_args)
+        staged = stage_inputs_task(quote(reg), as_of, str(work), os_errors="record", **stage_args)
     timings["stage_s"] = time.perf_counter() - t0
 
-    t0 = time.perf_counter()
-    cache = calibration_task([b.path for b in staged.batches], reg.policy)
-    timings["calibration_s"] = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    futures = audit_batch_task.map([b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache))
-    if progress:
-        _report_progress(futures, staged)
-    outcomes = [o for batch in futures.result() for o in batch]
-    outcomes += [rejected_outcome(r) for r in reg.rejected if models is None or r.id in set(models)]
-    timings["audit_s"] = time.perf_counter() - t0
-    timings["core_s"] = sum(o.timings.get("total_s", 0.0) for o in outcomes)
-
-    final = finalize_task(outcomes, reg)
-    if search_candidates:
+    with local_workers(_local_processes(settings.processes, len(staged.batches), len(ids))) as workers:
         t0 = time.perf_counter()
-        todo = {o.model_id for o in final if o.verdict == "respecify"}
-        jobs = [(b.path, [m for m in b.model_ids if m in todo]) for b in staged.batches if todo.intersection(b.model_ids)]
-        if jobs:
-            found = candidates_task.map([j[0] for j in jobs], [j[1] for j in jobs], unmapped(reg.policy), unmapped(cache))
-            final = with_candidates(final, {k: v for part in found.result() for k, v in part.items()})
-        timings["candidates_s"] = time.perf_counter() - t0
-    recs = records(final, as_of.isoformat())
-    doc = build_results(
-        as_of=as_of.isoformat(),
-        registry={"path": pathlib.Path(reg.path).name, "sha256": reg.sha256},
-        policy=reg.policy.to_dict(),
-        records=recs,
-        tool_version=package_versions()["fitaudit"] or "unknown",
-    )
-    t0 = time.perf_counter()
-    meta = {
-        "run_id": run_id,
-        "started_utc": started,
-        "finished_utc": _utc(),
-        "operator": operator_identity(settings.operator),
-        "tool_version": doc["run"]["tool_version"],
-        "code_commit": code_commit(),
-        "prefect_version": package_versions()["prefect"],
-    }
+        cache = calibration_task([b.path for b in staged.batches], reg.policy)
+        timings["calibration_s"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        futures = audit_batch_task.map([b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache), unmapped(workers))
+        if progress:
+            _report_progress(futures, staged)
+        batches = list(futures.result())
+        batches.append([rejected_outcome(r) for r in reg.rejected if wanted is None or r.id in wanted])
+        outcomes = [o for batch in batches for o in batch]
+        timings["audit_s"] = time.perf_counter() - t0
+        timings["core_s"] = sum(o.timings.get("total_s", 0.0) for o in outcomes)
+
+        final = finalize_task(quote(outcomes), quote(reg))
+        if search_candidates:
+            t0 = time.perf_counter()
+            todo = {o.model_id for o in final if o.verdict == "respecify"}
+            jobs = candidate_jobs(staged.batches, todo, groups=2 * _workers())
+            if jobs:
+                shared = candidate_tables(jobs, reg.policy)  # built once each, in parallel, before the searches
+                if shared:
+                    for tables in tables_task.map(shared, unmapped(cache), unmapped(workers)).result():
+                        cache.merge(tables)
+                found = candidates_task.map(jobs, unmapped(reg.policy), unmapped(cache), unmapped(workers))
+                final = with_candidates(final, {k: v for part in found.result() for k, v in part.items()})
+            timings["candidates_s"] = time.perf_counter() - t0
+        head = results_head(
+            as_of=as_of.isoformat(),
+            registry={"path": pathlib.Path(reg.path).name, "sha256": reg.sha256},
+            policy=reg.policy.to_dict(),
+            tool_version=package_versions()["fitaudit"] or "unknown",
+        )
+        t0 = time.perf_counter()
+        meta = {
+            "run_id": run_id,
+            "started_utc": started,
+            "finished_utc": _utc(),
+            "operator": operator_identity(settings.operator),
+            "tool_version": head["run"]["tool_version"],
+            "code_commit": code_commit(),
+            "prefect_version": package_versions()["prefect"],
+        }
+        parcels, names, spills = _render_inputs(final, batches, staged)
+        rendered = render_outcomes_task.map(parcels, unmapped(head), unmapped(meta), unmapped(str(work / "publish")), names, spills, unmapped(workers))
+        staged_records = [r for part in rendered.result() for r in part]
+        timings["render_s"] = time.perf_counter() - t0
+    per_model = {o.model_id: o.timings for o in final}
+    del outcomes, final, batches, parcels, futures, rendered  # the full results now live in the work folder
+    recs = [r.light for r in staged_records]
+    summary = results_summary(recs, head["run"]["policy"])
     manifest = {
         **{k: meta[k] for k in ("started_utc", "operator", "tool_version", "code_commit")},
         "packages": package_versions(),
@@ -218,20 +282,20 @@ def audit_flow(
         "source_errors": staged.source_errors,
         "policy": reg.policy.to_dict(),
         "seeds": {"policy_seed": reg.policy.seed},
-        "counts": {k: doc["summary"][k] for k in ("registered", "audited", "pass", "refit", "respecify", "insufficient", "error")},
+        "counts": {k: summary[k] for k in ("registered", "audited", "pass", "refit", "respecify", "insufficient", "error")},
         "batches": len(staged.batches),
         "calibration_tables": len(cache),
         "recovered": recovered,
         "task_runner": _runner_name(),
     }
     timings["total_s"] = time.perf_counter() - t_start
-    manifest["timings"] = {**timings, "per_model": {o.model_id: o.timings for o in final}}
+    manifest["timings"] = {**timings, "per_model": per_model}
     manifest["finished_utc"] = meta["finished_utc"]
-    published = publish_task(archive, doc, meta, manifest, run_id)
+    published = publish_task(archive, head, summary, quote(staged_records), meta, quote(manifest), run_id)
     timings["publish_s"] = time.perf_counter() - t0
     report = str(pathlib.Path(published["path"]) / "index.html")
     run = {"run_id": run_id, "as_of": as_of.isoformat(), "report_path": report}
-    events_task(recs, doc["summary"], run)
+    events_task(quote(recs), summary, run)
     counts = manifest["counts"]
     logger.info("audit %s as of %s: %s; report %s", run_id, as_of, counts, report)
 

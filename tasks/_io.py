@@ -9,9 +9,9 @@ import math
 import os
 import pathlib
 import tempfile
-from typing import Any
+from typing import Any, Iterable
 
-__all__ = ["canonical_json", "sha256_bytes", "sha256_file", "write_once", "utc_now", "json_ready"]
+__all__ = ["canonical_json", "sha256_bytes", "sha256_file", "write_once", "write_once_chunks", "utc_now", "json_ready"]
 
 _CHUNK = 1 << 20
 
@@ -22,13 +22,7 @@ def json_ready(obj: Any) -> Any:
     Non-finite floats become the strings ``"inf"``, ``"-inf"`` and ``"nan"`` so that files stay
     strict JSON (``allow_nan=False``) and round-trip without loss of meaning.
     """
-    if isinstance(obj, dict):
-        return {str(k): json_ready(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [json_ready(v) for v in obj]
-    if hasattr(obj, "tolist") and not isinstance(obj, (str, bytes)):
-        return json_ready(obj.tolist())
-    if isinstance(obj, bool) or obj is None or isinstance(obj, (int, str)):
+    if isinstance(obj, (str, int)) or obj is None:  # the commonest leaves first (bool is an int)
         return obj
     if isinstance(obj, float):
         if math.isnan(obj):
@@ -36,6 +30,12 @@ def json_ready(obj: Any) -> Any:
         if math.isinf(obj):
             return "inf" if obj > 0 else "-inf"
         return obj
+    if isinstance(obj, dict):
+        return {str(k): json_ready(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_ready(v) for v in obj]
+    if hasattr(obj, "tolist") and not isinstance(obj, bytes):
+        return json_ready(obj.tolist())
     if isinstance(obj, pathlib.PurePath):
         return obj.as_posix()
     if isinstance(obj, (_dt.date, _dt.datetime)):
@@ -90,6 +90,27 @@ def write_once(path: str | os.PathLike, data: bytes) -> None:
         os.link(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)
+
+
+def write_once_chunks(path: str | os.PathLike, chunks: Iterable[bytes]) -> tuple[str, int]:
+    """:func:`write_once` for data given in pieces (never all in memory); returns (SHA-256, size)."""
+    path = pathlib.Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    tmp = pathlib.Path(tmp_name)
+    digest, size = hashlib.sha256(), 0
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            for chunk in chunks:
+                fh.write(chunk)
+                digest.update(chunk)
+                size += len(chunk)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.link(tmp, path)
+    finally:
+        tmp.unlink(missing_ok=True)
+    return digest.hexdigest(), size
 
 
 def utc_now() -> str:

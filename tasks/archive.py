@@ -48,7 +48,7 @@ from typing import Any, Callable, Iterator
 
 from fitaudit.core.exceptions import FitauditError, InputError
 
-from ._io import canonical_json, sha256_bytes, sha256_file, utc_now, write_once
+from ._io import canonical_json, sha256_bytes, sha256_file, utc_now, write_once, write_once_chunks
 from .params import ParameterStoreError, list_versions, verify_params
 from .registry import SAFE_ID
 
@@ -918,23 +918,36 @@ class RunWriter:
             Unsafe path (absolute, ``..``, NUL, segments not matching ``SAFE_NAME``), ``manifest.json``,
             a path already written, or data that is not bytes.
         """
+        parts = self._claim(relpath)
+        key = "/".join(parts)
+        if not isinstance(data, (bytes, bytearray, memoryview)):
+            raise InputError(f"data for {key!r} must be bytes; use write_text or write_json for {type(data).__name__}")
+        data = bytes(data)
+        write_once(self._staging.joinpath(*parts), data)
+        self._files[key] = {"sha256": sha256_bytes(data), "size": len(data)}
+        _step("file-written")
+
+    def write_chunks(self, relpath: str, chunks) -> None:
+        """Write one file from an iterable of bytes pieces, never holding it whole (see :meth:`write_bytes`)."""
+        parts = self._claim(relpath)
+        sha, size = write_once_chunks(self._staging.joinpath(*parts), (bytes(c) for c in chunks))
+        self._files["/".join(parts)] = {"sha256": sha, "size": size}
+        _step("file-written")
+
+    def _claim(self, relpath: str) -> tuple[str, ...]:
+        """The checked path segments of a file about to be written (see :meth:`write_bytes`)."""
         self._check_open()
         parts = _split_relpath(relpath)
         key = "/".join(parts)
         if key == _MANIFEST:
             raise InputError(f"{_MANIFEST} is written by finish(); pass the manifest's fields there")
-        if not isinstance(data, (bytes, bytearray, memoryview)):
-            raise InputError(f"data for {key!r} must be bytes; use write_text or write_json for {type(data).__name__}")
         clash = [p for p in ("/".join(parts[:k]) for k in range(1, len(parts) + 1)) if p in self._files]
         if clash or any(name.startswith(key + "/") for name in self._files):
             raise InputError(
                 f"{key!r} in run {self.run_id} was already written (or clashes with a file or folder of that name); "
                 "files are never overwritten"
             )
-        data = bytes(data)
-        write_once(self._staging.joinpath(*parts), data)
-        self._files[key] = {"sha256": sha256_bytes(data), "size": len(data)}
-        _step("file-written")
+        return parts
 
     def write_text(self, relpath: str, text: str) -> None:
         """Write ``text`` encoded as UTF-8 (see :meth:`write_bytes`)."""

@@ -8,6 +8,8 @@ One broken model never sinks a batch: every failure becomes that model's ``error
 from __future__ import annotations
 
 import dataclasses
+import pathlib
+import pickle
 import time
 import traceback
 from dataclasses import dataclass, field
@@ -23,8 +25,9 @@ from fitaudit.core.exceptions import FitauditError
 from .batches import ModelInput, batch_metadata, read_batch
 from .registry import Policy, RejectedEntry
 from .results import model_record
+from .workers import run_local
 
-__all__ = ["Outcome", "settings_for", "audit_input", "audit_inputs", "audit_batch", "finalize", "rejected_outcome", "records", "audit_batch_task", "candidates_for", "candidates_task", "with_candidates", "calibration_for", "calibration_task"]
+__all__ = ["Outcome", "settings_for", "audit_input", "audit_inputs", "audit_batch", "audit_batch_spilled", "light_outcome", "restore_outcomes", "spill_path", "finalize", "rejected_outcome", "records", "audit_batch_task", "candidates_for", "candidate_jobs", "candidate_tables", "tables_task", "candidates_for_jobs", "candidates_task", "with_candidates", "calibration_for", "calibration_task"]
 
 
 @dataclass(frozen=True)
@@ -131,10 +134,78 @@ def audit_batch(path: str, policy: Policy, cache: CalibrationCache | None = None
     return audit_inputs(read_batch(path), policy, cache)
 
 
+#: CheckResult fields that only the records and pages need (the fleet rules use the others).
+_CHECK_DETAIL = {"map": None, "critical_grid": None, "scaled_grid": None, "plots": {}, "members": {}, "counts": (), "mcleod_li": {}, "calibration": {}, "window": {}}
+
+
+def spill_path(batch_path: str) -> str:
+    """Where :func:`audit_batch_spilled` keeps a batch's full outcomes."""
+    return str(batch_path) + ".outcomes.pickle"
+
+
+def light_outcome(outcome: Outcome) -> Outcome:
+    """The outcome without what only its record needs: enough for the fleet rules
+    (:func:`finalize`), the candidate search and the run's timings, at a fraction of the memory.
+
+    Kept: the id, verdict, reasons, history, timings and, of the result, every number the verdict
+    is decided from.  Dropped: the entry's other fields, lineage, settings, and the checks' maps,
+    grids, plots, member statistics and counts, the change location and the fitted parameters.
+    :func:`restore_outcomes` puts them back.
+    """
+    res = outcome.result
+    if res is not None:
+        res = dataclasses.replace(
+            res,
+            production=None if res.production is None else dataclasses.replace(res.production, **_CHECK_DETAIL),
+            refit=dataclasses.replace(res.refit, **_CHECK_DETAIL),
+            change=None,
+            fitted={},
+            production_params=None,
+        )
+    return dataclasses.replace(outcome, entry={"id": outcome.entry.get("id")}, result=res, lineage={}, settings={}, spec_text="")
+
+
+def audit_batch_spilled(path: str, policy: Policy, cache: CalibrationCache | None = None) -> list[Outcome]:
+    """:func:`audit_batch`, keeping the full outcomes in :func:`spill_path` and returning them light
+    (:func:`light_outcome`): the flow process never holds every model's full result."""
+    outcomes = audit_batch(path, policy, cache)
+    target = pathlib.Path(spill_path(path))
+    tmp = target.with_name(target.name + ".tmp")
+    tmp.write_bytes(pickle.dumps(outcomes, protocol=pickle.HIGHEST_PROTOCOL))
+    tmp.replace(target)
+    return [light_outcome(o) for o in outcomes]
+
+
+def restore_outcomes(final: Sequence[Outcome], spilled: str) -> list[Outcome]:
+    """Full outcomes of a batch with the run's final decisions applied.
+
+    ``final`` are the batch's light outcomes after :func:`finalize` and :func:`with_candidates`;
+    ``spilled`` the file :func:`audit_batch_spilled` wrote (the run's own work folder).  The fleet
+    rules change a result's verdict, reasons, escalation and each check's adjusted p-value, and
+    the outcome's verdict, reasons and candidates; exactly these are copied onto the full outcomes.
+    """
+    full = pickle.loads(pathlib.Path(spilled).read_bytes())
+    if [o.model_id for o in full] != [o.model_id for o in final]:
+        raise FitauditError(f"{spilled}: the kept outcomes do not match the batch's models; the run's work folder was changed during the run.")
+    out = []
+    for whole, done in zip(full, final):
+        res = whole.result
+        if res is not None:
+            checks = {
+                kind: dataclasses.replace(getattr(res, kind), p_adjusted=getattr(done.result, kind).p_adjusted)
+                for kind in ("production", "refit")
+                if getattr(res, kind) is not None
+            }
+            res = dataclasses.replace(res, verdict=done.result.verdict, reasons=done.result.reasons, escalated=done.result.escalated, **checks)
+        out.append(dataclasses.replace(whole, verdict=done.verdict, reasons=done.reasons, result=res, candidates=done.candidates))
+    return out
+
+
 def rejected_outcome(entry: RejectedEntry) -> Outcome:
     """A registry entry that failed validation: an ``error`` outcome listing its problems."""
     info = {"id": entry.id, "safe_id": entry.safe_id, "owner": entry.owner, "line": entry.line, "spec": {}}
-    reasons = tuple(f"Registry entry rejected: {p}" for p in entry.problems)
+    # the registry by file name, as in the results document: results do not depend on where the registry lives
+    reasons = tuple(f"Registry entry rejected: {dataclasses.replace(p, file=pathlib.PurePath(p.file).name)}" for p in entry.problems)
     return Outcome(entry=info, verdict="error", reasons=reasons, spec_text="(invalid registry entry)")
 
 
@@ -211,10 +282,15 @@ def calibration_task(batch_paths: list[str], policy: Policy) -> CalibrationCache
 
 
 @task(name="audit-batch", cache_policy=NO_CACHE, persist_result=False)
-def audit_batch_task(path: str, policy: Policy, cache: CalibrationCache | None = None) -> list[Outcome]:
-    """Prefect task: audit one staged batch (a file path in, compact outcomes out)."""
+def audit_batch_task(path: str, policy: Policy, cache: CalibrationCache | None = None, workers: str | None = None) -> list[Outcome]:
+    """Prefect task: audit one staged batch (a file path in, light outcomes out; the full ones
+    wait in :func:`spill_path` for :func:`restore_outcomes`).
+
+    ``workers`` is the token of the flow run's local worker processes
+    (:func:`fitaudit.tasks.workers.local_workers`); the batch is computed there when given.
+    """
     t0 = time.perf_counter()
-    outcomes = audit_batch(path, policy, cache)
+    outcomes = run_local(workers, audit_batch_spilled, path, policy, cache)
     counts: dict[str, int] = {}
     for o in outcomes:
         counts[o.verdict] = counts.get(o.verdict, 0) + 1
@@ -244,7 +320,73 @@ def candidates_for(path: str, model_ids: Sequence[str], policy: Policy, cache: C
     return out
 
 
+def candidate_jobs(batches: Sequence[Any], model_ids: Iterable[str], groups: int) -> list[list[list]]:
+    """The candidate searches of ``model_ids`` split into at most ``groups`` tasks of equal size.
+
+    Round robin in batch order; each group lists ``[batch path, [model ids]]`` pairs (lists, not
+    tuples: prefect-dask hands tuples inside task inputs on in another shape).  The searches'
+    shared null tables are built beforehand (:func:`candidate_tables`); what remains per model is
+    its fits and the table of a law whose shape it estimates.
+    """
+    wanted = set(model_ids)
+    todo = [(batch.path, m) for batch in batches for m in batch.model_ids if m in wanted]
+    buckets: list[dict[str, list[str]]] = [{} for _ in range(min(max(groups, 1), len(todo)))]
+    for i, (path, model_id) in enumerate(todo):
+        buckets[i % len(buckets)].setdefault(path, []).append(model_id)
+    return [[[path, ids] for path, ids in bucket.items()] for bucket in buckets]
+
+
+def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list]]:
+    """The null tables the candidate searches of ``jobs`` share, as :func:`prepare_calibration`
+    entries, one group per table (metadata only, no data read).
+
+    Neighbouring specifications and other noise laws need tables for new (residual count, law)
+    pairs; built once each, in parallel, before the searches, no worker builds one again.  Laws
+    whose shape is estimated are left out: their tables depend on each model's estimate.
+    """
+    from fitaudit.core.candidates import CONTINUOUS_LAWS, neighbour_specs
+
+    tables: dict[tuple, list] = {}
+    for group in jobs:
+        for path, ids in group:
+            wanted = set(ids)
+            for meta in batch_metadata(path):
+                entry = meta["entry"]
+                if entry["id"] not in wanted:
+                    continue
+                settings = settings_for(entry, policy)
+                n_obs = min(int(meta["lineage"]["rows_loaded"]), int(entry["windows"]["fit"]))
+                noise = {"law": entry["noise"]["law"], "shape": entry["noise"].get("shape")}
+                trials = [(spec, noise) for spec in neighbour_specs(dict(entry["spec"]))]
+                trials += [(dict(entry["spec"]), {"law": law, "shape": None}) for law in CONTINUOUS_LAWS if law != noise["law"]]
+                for spec, law in trials:
+                    try:
+                        model = as_model(spec)
+                        key = (law["law"], law["shape"], n_obs - model.presample(), model.has_location(), settings)
+                    except (FitauditError, ValueError, TypeError):
+                        continue  # the search itself reports an unusable candidate
+                    tables.setdefault(key, [[spec, law, settings, n_obs, False]])
+    return list(tables.values())
+
+
+@task(name="prepare-candidate-calibration", cache_policy=NO_CACHE, persist_result=False)
+def tables_task(entries: list, cache: CalibrationCache, workers: str | None = None) -> CalibrationCache:
+    """Prefect task: the null tables of :func:`prepare_calibration` ``entries`` missing from
+    ``cache`` (in the local worker processes named by ``workers``, when given)."""
+    return run_local(workers, prepare_calibration, entries, cache)
+
+
+def candidates_for_jobs(jobs: Sequence[Sequence], policy: Policy, cache: CalibrationCache | None = None) -> dict[str, list[dict]]:
+    """:func:`candidates_for` over several batches with one cache (see :func:`candidate_jobs`)."""
+    cache = cache if cache is not None else CalibrationCache()
+    found: dict[str, list[dict]] = {}
+    for path, ids in jobs:
+        found.update(candidates_for(path, ids, policy, cache))
+    return found
+
+
 @task(name="search-candidates", cache_policy=NO_CACHE, persist_result=False)
-def candidates_task(path: str, model_ids: list[str], policy: Policy, cache: CalibrationCache | None = None) -> dict[str, list[dict]]:
-    """Prefect task: candidate specifications for the ``respecify`` models of one batch."""
-    return candidates_for(path, model_ids, policy, cache)
+def candidates_task(jobs: list, policy: Policy, cache: CalibrationCache | None = None, workers: str | None = None) -> dict[str, list[dict]]:
+    """Prefect task: candidate specifications for one group of ``respecify`` models
+    (:func:`candidate_jobs`), in the local worker processes named by ``workers`` when given."""
+    return run_local(workers, candidates_for_jobs, jobs, policy, cache)

@@ -24,12 +24,17 @@ from prefect.cache_policies import NO_CACHE
 
 from fitaudit.core.models import model_from_dict
 
-from ._io import canonical_json, json_ready
+from ._io import json_ready
 from .extracts import ExtractError, ExtractFingerprint, SeriesProblem, fingerprint_source, read_series, series_problems
 from .params import ParameterStoreError, production_version
 from .registry import ModelEntry, Registry
 
-__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "FREQUENCY_DAYS"]
+__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "FREQUENCY_DAYS", "ROW_KINDS"]
+
+#: Problems about individual rows: re-checked on the model's own window (a flaw before it does not
+#: stop the audit).  Every other problem (a missing or mistyped column, mixed time zones, rows
+#: without a timestamp) concerns the series as a whole and is kept as the reader found it.
+ROW_KINDS = frozenset({"duplicate-time", "unsorted", "off-grid", "gap", "non-finite", "missing-exogenous"})
 
 #: Upper bound of one period of each registry frequency, in days (for the time range to read).
 FREQUENCY_DAYS = {"15min": 1 / 96, "30min": 1 / 48, "H": 1 / 24, "D": 1, "W": 7, "MS": 31, "M": 31, "QS": 92, "Q": 92}
@@ -82,13 +87,16 @@ class StagedRun:
 def batch_size_for(n_models: int, workers: int = 1, requested: int = 0) -> int:
     """Models per task: ``requested`` if set, else enough models that a task does seconds of work.
 
-    Rule (prefect.md section 2): at most a few dozen tasks per run and at least ``2 * workers``
-    tasks when there are enough models; batches of 25 to 200 models.
+    Rule (prefect.md section 2): at most a few dozen tasks per run and at least ``4 * workers``
+    tasks when there are enough models, a multiple of ``workers`` (so that every worker gets the
+    same number of batches: with 5 batches on 2 workers one of them audits 3); batches of 25 to
+    200 models.
     """
     if requested > 0:
         return requested
-    target_tasks = max(2 * workers, math.ceil(n_models / 200))
-    return int(min(200, max(25, math.ceil(n_models / max(target_tasks, 1)))))
+    workers = max(workers, 1)
+    target_tasks = workers * math.ceil(max(4 * workers, math.ceil(n_models / 200)) / workers)
+    return int(min(200, max(25, math.ceil(n_models / target_tasks))))
 
 
 def _end_of_day(as_of: dt.date) -> np.datetime64:
@@ -154,7 +162,10 @@ def _lineage(entry: ModelEntry, fp: ExtractFingerprint | None, time: np.ndarray,
 
 def _write_batch(path: pathlib.Path, inputs: list[dict], arrays: dict[str, np.ndarray]) -> None:
     np.savez(path.with_suffix(".npz"), **arrays)
-    path.with_suffix(".json").write_bytes(canonical_json(inputs, indent=2))
+    # keys keep their order (no canonical sorting): the order of a NonlinearAR spec's ``start``
+    # is the order of theta handed to the user's mean function
+    text = json.dumps(json_ready(inputs), indent=2, ensure_ascii=False, allow_nan=False)
+    path.with_suffix(".json").write_bytes(text.encode("utf-8"))
 
 
 def batch_metadata(path: str | pathlib.Path) -> list[dict]:
@@ -196,6 +207,7 @@ def stage_inputs(
     batch_size: int = 0,
     workers: int = 1,
     os_errors: str = "raise",
+    series_per_scan: int = 1000,
 ) -> StagedRun:
     """Scan every source once and write batch files of per-model inputs.
 
@@ -219,6 +231,10 @@ def stage_inputs(
         object store) is raised by default, so that the Prefect task retries the staging; with
         ``"record"`` it becomes an ``error`` for every model of that source.  Permanent problems
         (``ExtractError``: missing path, corrupt file, missing columns) are always recorded.
+    series_per_scan : int
+        A large source is read in filtered scans of about this many series (whole batches each),
+        so that staging never holds every series of the fleet (a scan of 1,000 daily series of two
+        years raised the resident memory by about 90 MB, most of it pyarrow's read buffers).
     """
     staging = pathlib.Path(staging_dir)
     staging.mkdir(parents=True, exist_ok=True)
@@ -242,20 +258,26 @@ def stage_inputs(
         start = end - np.timedelta64(int(math.ceil(span_days * 86400)), "s")
         columns = sorted({m.value for m in models} | {x for m in models for x in m.exogenous})
         fp = None
-        try:
-            fp = fingerprint_source(source, registry.base_dir)
-            fingerprints[source_name] = fp.to_dict()
-            data = read_series(source, sorted({m.series for m in models}), columns, start=start, end=end, base_dir=registry.base_dir)
-        except ExtractError as exc:
-            source_errors[source_name] = str(exc)
-            data = {}
-        except OSError as exc:
-            if os_errors == "raise":
-                raise
-            source_errors[source_name] = f"reading source {source_name!r} failed after retries ({type(exc).__name__}: {exc}); check that its storage is reachable"
-            data = {}
+        io_errors = "raise" if os_errors == "raise" else "skip"  # raised: the task retries; after retries: files skipped and named
+        group = size * max(1, series_per_scan // size)  # whole batches per scan
         for chunk_start in range(0, len(models), size):
             chunk = models[chunk_start : chunk_start + size]
+            if chunk_start % group == 0:  # the next group of series: one filtered scan
+                data = None
+                try:
+                    if fp is None and source_name not in source_errors:
+                        fp = fingerprint_source(source, registry.base_dir, io_errors=io_errors)
+                        fingerprints[source_name] = fp.to_dict()
+                    if source_name not in source_errors:
+                        wanted = sorted({m.series for m in models[chunk_start : chunk_start + group]})
+                        data = read_series(source, wanted, columns, start=start, end=end, base_dir=registry.base_dir, io_errors=io_errors)
+                except ExtractError as exc:
+                    source_errors[source_name] = str(exc)
+                except OSError as exc:
+                    if os_errors == "raise":
+                        raise
+                    source_errors[source_name] = f"reading source {source_name!r} failed after retries ({type(exc).__name__}: {exc}); check that its storage is reachable"
+                data = data or {}
             metas, arrays = [], {}
             for i, entry in enumerate(chunk):
                 meta, y, t, exog = _model_input(entry, data.get(entry.series), source_errors.get(source_name), fp, archive, source.frequency)
@@ -275,8 +297,9 @@ def stage_inputs(
 def _model_input(entry: ModelEntry, series, source_error: str | None, fp, archive, frequency: str) -> tuple[dict, np.ndarray, np.ndarray, dict]:
     """Cut one model's fit window and collect its problems.
 
-    The reader validated the whole span it loaded; when it found problems, the model's own
-    window is validated again so that a flaw outside the window does not stop the audit.
+    The reader validated the whole span it loaded; when it found problems, the rows of the model's
+    own window are validated again so that a flawed row outside the window does not stop the
+    audit (problems of the whole series, :data:`ROW_KINDS` aside, are kept).
     """
     empty_t = np.array([], dtype="datetime64[ns]")
     problems: list[dict] = []
@@ -295,7 +318,10 @@ def _model_input(entry: ModelEntry, series, source_error: str | None, fp, archiv
     y = np.asarray(series.columns.get(entry.value, np.full(n_loaded, np.nan)), dtype=float)[keep]
     exog = {name: np.asarray(series.columns.get(name, np.full(n_loaded, np.nan)), dtype=float)[keep] for name in entry.exogenous}
     if found and n_loaded:
-        found = list(series_problems(entry.series, t, {entry.value: y, **exog}, frequency, source=entry.source, exogenous=tuple(entry.exogenous)))
+        kept = [p for p in found if p.kind not in ROW_KINDS]  # missing or mistyped columns, time-zone mix, rows without time
+        flagged = {p.column for p in kept if p.column is not None}
+        window = {c: v for c, v in {entry.value: y, **exog}.items() if c not in flagged}
+        found = kept + list(series_problems(entry.series, t, window, frequency, source=entry.source, exogenous=tuple(entry.exogenous)))
     short = series.length_problem(entry.fit_window)
     if short is not None and not any(p.severity == "error" for p in found):
         found.append(short)

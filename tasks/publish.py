@@ -5,6 +5,13 @@
 inputs' fingerprints, versions, seeds, timings) through :class:`~fitaudit.tasks.archive.RunWriter`,
 which makes the run visible only when complete and links it into the hash chain.
 :func:`load_history` reads earlier verdicts back from the archive for trends and persistence.
+
+The audit flow publishes the same files without ever holding the whole document or every page:
+:func:`render_outcomes` (one call per batch, in parallel) turns a batch's outcomes into records,
+writes each record's canonical JSON and its model page to the run's work folder and keeps only a
+:func:`~fitaudit.tasks.results.light_record` per model; :func:`publish_staged` then streams
+``results.json`` from those pieces and renders the run page from the light records.  The files
+are byte for byte those of :func:`publish_run` on the full document.
 """
 
 from __future__ import annotations
@@ -15,19 +22,36 @@ import importlib.metadata
 import io
 import os
 import pathlib
+import pickle
 import platform
 import socket
 import subprocess
-from typing import Any, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any, Iterable, Iterator, Mapping, Sequence
 
 import pyarrow as pa
 import pyarrow.parquet as pq
+from prefect import task
+from prefect.cache_policies import NO_CACHE
 
 from ._io import canonical_json
 from .archive import PublishedRun, list_runs, new_run_id, open_run
-from .results import results_rows
+from .results import light_record, results_json_chunks, results_rows
+from .workers import run_local
 
-__all__ = ["publish_run", "load_history", "package_versions", "code_commit", "render_archive_index_file", "HISTORY_LENGTH"]
+__all__ = [
+    "publish_run",
+    "StagedRecord",
+    "stage_records",
+    "render_outcomes",
+    "render_outcomes_task",
+    "publish_staged",
+    "load_history",
+    "package_versions",
+    "code_commit",
+    "render_archive_index_file",
+    "HISTORY_LENGTH",
+]
 
 HISTORY_LENGTH = 7  # earlier audits kept per model (the report shows these plus the current one)
 
@@ -93,6 +117,123 @@ def publish_run(
         writer.write_bytes("results.parquet", _parquet_bytes(results_rows(doc)))
         for rel, data in sorted(pages.items()):
             writer.write_bytes(rel, data)
+        published = writer.finish(dict(manifest, run_id=run_id, as_of=as_of.isoformat()))
+    return published
+
+
+@dataclass(frozen=True)
+class StagedRecord:
+    """One model's record and page, made and waiting in the run's work folder.
+
+    ``light`` is :func:`~fitaudit.tasks.results.light_record` of the record; the record's canonical
+    JSON is ``length`` bytes at ``offset`` of the file ``part``; ``page`` is its rendered page.
+    """
+
+    light: dict
+    part: str
+    offset: int
+    length: int
+    page: str
+
+
+def stage_records(records: Iterable[Mapping[str, Any]], head: Mapping[str, Any], meta: Mapping[str, Any], folder: str | os.PathLike, name: str) -> list[StagedRecord]:
+    """Write each record's canonical JSON to ``<folder>/<name>.json`` and its model page to
+    ``<folder>/models/``; return the :class:`StagedRecord` of each, in order.
+
+    ``head`` is :func:`~fitaudit.tasks.results.results_head`; ``meta`` as for
+    :func:`~fitaudit.tasks.report.render_run`.  One record is in memory at a time.
+    """
+    from .report import page_context, render_model_page
+
+    folder = pathlib.Path(folder)
+    (folder / "models").mkdir(parents=True, exist_ok=True)
+    context = page_context(head, meta)
+    as_of = head["run"]["as_of"]
+    part = folder / f"{name}.json"
+    staged, offset = [], 0
+    with open(part, "wb") as fh:
+        for rec in records:
+            data = canonical_json(rec)
+            fh.write(data)
+            page = folder / "models" / f"{rec['safe_id']}.html"
+            page.write_bytes(render_model_page(rec, context, as_of))
+            staged.append(StagedRecord(light_record(rec), str(part), offset, len(data), str(page)))
+            offset += len(data)
+    return staged
+
+
+def render_outcomes(outcomes: Sequence[Any], head: Mapping[str, Any], meta: Mapping[str, Any], folder: str, name: str, spilled: str | None = None) -> list[StagedRecord]:
+    """Records of a batch's final outcomes (:func:`fitaudit.tasks.audit.records`), staged with
+    :func:`stage_records`.  With ``spilled``, ``outcomes`` are light and the full ones are read
+    back from that file first (:func:`fitaudit.tasks.audit.restore_outcomes`)."""
+    from .audit import records, restore_outcomes
+
+    if spilled is not None:
+        outcomes = restore_outcomes(outcomes, spilled)
+    return stage_records(records(outcomes, head["run"]["as_of"]), head, meta, folder, name)
+
+
+def _render_pickled(outcomes: bytes, head: Mapping[str, Any], meta: Mapping[str, Any], folder: str, name: str, spilled: str | None) -> list[StagedRecord]:
+    return render_outcomes(pickle.loads(outcomes), head, meta, folder, name, spilled)
+
+
+@task(name="render-pages", cache_policy=NO_CACHE, persist_result=False)
+def render_outcomes_task(outcomes: bytes, head: dict, meta: dict, folder: str, name: str, spilled: str | None = None, workers: str | None = None) -> list[StagedRecord]:
+    """Prefect task: records and model pages of one batch (in the local worker processes named
+    by ``workers``, when given); returns the staged records.
+
+    ``outcomes`` is the pickled list of the batch's final outcomes: Prefect walks lists and
+    dataclasses among task inputs (slow for thousands of results), and prefect-dask reshapes inputs
+    wrapped in ``quote``; bytes pass through both untouched.
+    """
+    return run_local(workers, _render_pickled, outcomes, head, meta, folder, name, spilled)
+
+
+def _record_bytes(staged: Sequence[StagedRecord]) -> Iterator[bytes]:
+    handles: dict[str, Any] = {}
+    try:
+        for item in staged:
+            fh = handles.get(item.part)
+            if fh is None:
+                fh = handles[item.part] = open(item.part, "rb")
+            fh.seek(item.offset)
+            yield fh.read(item.length)
+    finally:
+        for fh in handles.values():
+            fh.close()
+
+
+def publish_staged(
+    archive_root: str | os.PathLike,
+    head: Mapping[str, Any],
+    summary: Mapping[str, Any],
+    staged: Sequence[StagedRecord],
+    meta: Mapping[str, Any],
+    manifest: dict,
+    *,
+    run_id: str,
+) -> PublishedRun:
+    """Publish a run whose records and model pages were staged (:func:`stage_records`).
+
+    Writes the same files as :func:`publish_run` would for the document ``head`` + ``summary`` +
+    the records (sorted by id): ``results.json`` streamed from the staged pieces, ``results.parquet``
+    and the run page from the light records, the staged model pages, ``method.html`` and the
+    manifest.
+    """
+    from .report import page_context, render_index_page, render_method_page
+
+    ordered = sorted(staged, key=lambda r: r.light["id"])
+    doc = {**head, "summary": dict(summary), "models": [r.light for r in ordered]}
+    context = page_context(head, meta)
+    pages = {"index.html": render_index_page(doc, context), "method.html": render_method_page(doc, context)}
+    pages.update({f"models/{r.light['safe_id']}.html": r.page for r in ordered})
+    as_of = dt.date.fromisoformat(head["run"]["as_of"])
+    writer = open_run(archive_root, run_id, as_of.year, as_of=as_of)
+    with writer:
+        writer.write_chunks("results.json", results_json_chunks(head, summary, _record_bytes(ordered)))
+        writer.write_bytes("results.parquet", _parquet_bytes(results_rows(doc)))
+        for rel, data in sorted(pages.items()):
+            writer.write_bytes(rel, data if isinstance(data, bytes) else pathlib.Path(data).read_bytes())
         published = writer.finish(dict(manifest, run_id=run_id, as_of=as_of.isoformat()))
     return published
 

@@ -31,13 +31,14 @@ import unicodedata
 from typing import Any, Iterable, Mapping, Sequence
 
 import jinja2
+import markupsafe
 
 from fitaudit.core.exceptions import InputError
 
 from .registry import SAFE_ID
 from .results import SEVERITY
 
-__all__ = ["STATUS", "HEAT_BINS", "CAUTION", "environment", "render_run", "render_archive_index"]
+__all__ = ["STATUS", "HEAT_BINS", "CAUTION", "environment", "render_run", "page_context", "render_model_page", "render_index_page", "render_method_page", "render_archive_index"]
 
 #: Status symbol and word for each verdict (colour is never the only signal, WCAG 2.1 SC 1.4.1).
 STATUS: dict[str, tuple[str, str]] = {
@@ -152,6 +153,36 @@ def _count(x: Any) -> str:
     return "n/a" if x is None else str(x)
 
 
+def _svg(c: Mapping[str, Any]) -> markupsafe.Markup:
+    """The SVG element of a chart view (Jinja filter ``svg``; geometry computed by the view builders).
+
+    Written out here rather than by a template macro: a model page draws several hundred shapes,
+    and a macro call per attribute made charts most of a page's rendering time.  Every text value
+    is escaped as autoescape would; coordinates pass through :func:`_coord`.
+    """
+    esc, px = markupsafe.escape, _coord
+    cid = esc(c["id"])
+    out = [
+        f'<svg class="chart {esc(c["cls"])}" role="img" aria-labelledby="{cid}-t {cid}-d" viewBox="0 0 {px(c["w"])} {px(c["h"])}" '
+        f'width="{px(c["w"])}" height="{px(c["h"])}">\n<title id="{cid}-t">{esc(c["title"])}</title>\n<desc id="{cid}-d">{esc(c["desc"])}</desc>\n',
+        "".join(f'<line x1="{px(g["x1"])}" y1="{px(g["y1"])}" x2="{px(g["x2"])}" y2="{px(g["y2"])}" class="{esc(g["cls"])}"/>' for g in c["grid"]),
+        "\n",
+        "".join(f'<rect x="{px(r["x"])}" y="{px(r["y"])}" width="{px(r["w"])}" height="{px(r["h"])}" class="{esc(r["cls"])}"/>' for r in c["rects"]),
+        "\n",
+        "".join(f'<line x1="{px(g["x1"])}" y1="{px(g["y1"])}" x2="{px(g["x2"])}" y2="{px(g["y2"])}" class="{esc(g["cls"])}"/>' for g in c["lines"]),
+        "\n",
+        "".join(f'<polyline points="{esc(p["points"])}" class="{esc(p["cls"])}"/>' for p in c["polylines"]),
+        "\n",
+        "".join(f'<path d="{esc(p["d"])}" class="{esc(p["cls"])}"/>' for p in c["paths"]),
+        "\n",
+        "".join(f'<circle cx="{px(o["cx"])}" cy="{px(o["cy"])}" r="{px(o["r"])}" class="{esc(o["cls"])}"/>' for o in c["circles"]),
+        "\n",
+        "".join(f'<text x="{px(t["x"])}" y="{px(t["y"])}" text-anchor="{esc(t["anchor"])}" class="{esc(t["cls"])}">{esc(t["text"])}</text>' for t in c["texts"]),
+        "\n</svg>\n",
+    ]
+    return markupsafe.Markup("".join(out))
+
+
 @functools.lru_cache(maxsize=1)
 def environment() -> jinja2.Environment:
     """The report's Jinja2 environment (built once and cached).
@@ -162,7 +193,7 @@ def environment() -> jinja2.Environment:
         Templates from the ``fitaudit.templates`` package (``PackageLoader``); autoescape on for
         ``.html`` and ``.j2`` names and by default for every other name and string template;
         ``StrictUndefined``, so a missing name raises instead of printing nothing; the filters
-        ``num``, ``p``, ``px`` and ``count``.
+        ``num``, ``p``, ``px``, ``count`` and ``svg``.
     """
     env = jinja2.Environment(
         loader=jinja2.PackageLoader("fitaudit.templates", "."),
@@ -172,7 +203,7 @@ def environment() -> jinja2.Environment:
         lstrip_blocks=True,
         keep_trailing_newline=True,
     )
-    env.filters.update(num=_format_number, p=_format_p, px=_coord, count=_count)
+    env.filters.update(num=_format_number, p=_format_p, px=_coord, count=_count, svg=_svg)
     return env
 
 
@@ -262,7 +293,7 @@ def _kv_rows(mapping: Mapping[str, Any] | None, prefix: str = "", limit: int = 2
 
 
 # ----------------------------------------------------------------------------------------------
-# SVG charts: geometry computed here, drawn by templates/_charts.html.j2
+# SVG charts: geometry computed here, drawn by the ``svg`` filter (_svg)
 # ----------------------------------------------------------------------------------------------
 class _Scale:
     """Linear map from data [lo, hi] to pixels [p0, p1]."""
@@ -940,6 +971,63 @@ def _model_view(m: Mapping[str, Any], as_of: str) -> dict:
 # ----------------------------------------------------------------------------------------------
 # Public entry points
 # ----------------------------------------------------------------------------------------------
+def page_context(doc: Mapping[str, Any], meta: Mapping[str, Any]) -> dict:
+    """What every page of a run shows besides its own content: run metadata, as-of date, registry.
+
+    ``doc`` needs only the document's ``schema``, ``schema_version`` and ``run`` (see
+    :func:`render_run`; :func:`fitaudit.tasks.results.results_head`).
+
+    Raises
+    ------
+    InputError
+        When ``meta`` lacks a field.
+    """
+    return {
+        "meta": _meta_view(meta),
+        "as_of": _text(doc["run"]["as_of"]),
+        "caution": CAUTION,
+        "statuses": [_status(v) for v in STATUS],
+        "registry": {"path": _text((doc["run"].get("registry") or {}).get("path")), "sha256": _text((doc["run"].get("registry") or {}).get("sha256"))},
+        "schema": f"{_text(doc.get('schema'))} v{_text(doc.get('schema_version'))}",
+    }
+
+
+def render_model_page(m: Mapping[str, Any], context: Mapping[str, Any], as_of: str) -> bytes:
+    """``models/<safe_id>.html`` of one model record (``context`` from :func:`page_context`)."""
+    return _render("model.html.j2", {**context, "root": "../", "m": _model_view(m, as_of)})
+
+
+def render_index_page(doc: Mapping[str, Any], context: Mapping[str, Any]) -> bytes:
+    """``index.html``: summary, exceptions, movement and every model's status row.
+
+    ``doc["models"]`` may hold :func:`fitaudit.tasks.results.light_record` views instead of the
+    full records (the page shows only their headline numbers); they are checked as in
+    :func:`render_run`.
+    """
+    models = doc["models"]
+    _check_models(models)
+    as_of = context["as_of"]
+    return _render("run.html.j2", {
+        **context,
+        "root": "",
+        "summary": _summary_view(doc),
+        "exceptions": _exceptions_view(models),
+        "movement": _movement_view(doc, models),
+        "rows": [_status_row(m, as_of) for m in models],
+        "history_cells": _HISTORY_CELLS,
+    })
+
+
+def render_method_page(doc: Mapping[str, Any], context: Mapping[str, Any]) -> bytes:
+    """``method.html``: the statistics explained, with the run's policy."""
+    return _render("method.html.j2", {
+        **context,
+        "root": "",
+        "policy": _kv_rows(doc["run"].get("policy")),
+        "heat_bins": _heat_legend(),
+    })
+
+
 def render_run(doc: dict, meta: dict) -> dict[str, bytes]:
     """Render every page of an audit run.
 
@@ -961,37 +1049,19 @@ def render_run(doc: dict, meta: dict) -> dict[str, bytes]:
     ------
     InputError
         When ``meta`` lacks a field, or a model's ``safe_id`` is not a safe, unique file name.
+
+    Notes
+    -----
+    The audit flow renders the same pages piecewise (:func:`render_model_page` per model as its
+    record is made, :func:`render_index_page` from light records), so that a large run never
+    holds every page or every full record at once.
     """
-    run_meta = _meta_view(meta)
-    models = doc["models"]
-    _check_models(models)
-    as_of = _text(doc["run"]["as_of"])
-    common = {
-        "meta": run_meta,
-        "as_of": as_of,
-        "caution": CAUTION,
-        "statuses": [_status(v) for v in STATUS],
-        "registry": {"path": _text((doc["run"].get("registry") or {}).get("path")), "sha256": _text((doc["run"].get("registry") or {}).get("sha256"))},
-        "schema": f"{_text(doc.get('schema'))} v{_text(doc.get('schema_version'))}",
-    }
+    context = page_context(doc, meta)
     pages: dict[str, bytes] = {}
-    pages["index.html"] = _render("run.html.j2", {
-        **common,
-        "root": "",
-        "summary": _summary_view(doc),
-        "exceptions": _exceptions_view(models),
-        "movement": _movement_view(doc, models),
-        "rows": [_status_row(m, as_of) for m in models],
-        "history_cells": _HISTORY_CELLS,
-    })
-    pages["method.html"] = _render("method.html.j2", {
-        **common,
-        "root": "",
-        "policy": _kv_rows(doc["run"].get("policy")),
-        "heat_bins": _heat_legend(),
-    })
-    for m in models:
-        pages[f"models/{m['safe_id']}.html"] = _render("model.html.j2", {**common, "root": "../", "m": _model_view(m, doc["run"]["as_of"])})
+    pages["index.html"] = render_index_page(doc, context)
+    pages["method.html"] = render_method_page(doc, context)
+    for m in doc["models"]:
+        pages[f"models/{m['safe_id']}.html"] = render_model_page(m, context, doc["run"]["as_of"])
     return pages
 
 

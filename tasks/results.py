@@ -22,7 +22,7 @@ Schema (version 1)::
 
 from __future__ import annotations
 
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any, Iterable, Iterator, Mapping, Sequence
 
 __all__ = [
     "SCHEMA",
@@ -31,6 +31,10 @@ __all__ = [
     "VERDICT_ORDER",
     "model_record",
     "build_results",
+    "results_head",
+    "results_summary",
+    "light_record",
+    "results_json_chunks",
     "results_rows",
     "movement",
 ]
@@ -115,20 +119,28 @@ def model_record(
     }
 
 
-def build_results(
-    *,
-    as_of: str,
-    registry: Mapping[str, Any],
-    policy: Mapping[str, Any],
-    records: Iterable[Mapping[str, Any]],
-    tool_version: str,
-) -> dict:
-    """Assemble the results document; models sorted by id, summary counts reconciled.
+def results_head(*, as_of: str, registry: Mapping[str, Any], policy: Mapping[str, Any], tool_version: str) -> dict:
+    """The document without ``summary`` and ``models``: schema, version and the run's description."""
+    return {
+        "schema": SCHEMA,
+        "schema_version": SCHEMA_VERSION,
+        "run": {
+            "as_of": as_of,
+            "registry": {"path": registry.get("path"), "sha256": registry.get("sha256")},
+            "policy": dict(policy),
+            "tool_version": tool_version,
+        },
+    }
 
-    ``registered`` equals the sum of the five verdict counts by construction: every registry
-    entry, accepted or rejected, has exactly one record.
+
+def results_summary(models: Iterable[Mapping[str, Any]], policy: Mapping[str, Any]) -> dict:
+    """The document's ``summary``: counts per verdict, checks that ran, expected false flags, movement.
+
+    ``models`` are the records (or their :func:`light_record` views).  ``registered`` equals the
+    sum of the five verdict counts by construction: every registry entry, accepted or rejected,
+    has exactly one record.
     """
-    models = sorted((dict(r) for r in records), key=lambda r: r["id"])
+    models = list(models)
     counts = {v: sum(1 for m in models if m["verdict"] == v) for v in VERDICT_ORDER}
     checks = 0
     for m in models:
@@ -154,18 +166,62 @@ def build_results(
     }
     if summary["registered"] != sum(counts.values()):
         raise AssertionError("results document does not reconcile: registered != sum of verdicts")
-    return {
-        "schema": SCHEMA,
-        "schema_version": SCHEMA_VERSION,
-        "run": {
-            "as_of": as_of,
-            "registry": {"path": registry.get("path"), "sha256": registry.get("sha256")},
-            "policy": dict(policy),
-            "tool_version": tool_version,
-        },
-        "summary": summary,
-        "models": models,
-    }
+    return summary
+
+
+def build_results(
+    *,
+    as_of: str,
+    registry: Mapping[str, Any],
+    policy: Mapping[str, Any],
+    records: Iterable[Mapping[str, Any]],
+    tool_version: str,
+) -> dict:
+    """Assemble the results document; models sorted by id, summary counts reconciled
+    (:func:`results_summary`)."""
+    models = sorted((dict(r) for r in records), key=lambda r: r["id"])
+    head = results_head(as_of=as_of, registry=registry, policy=policy, tool_version=tool_version)
+    return {**head, "summary": results_summary(models, policy), "models": models}
+
+
+#: Per-check numbers kept by :func:`light_record` (those of :func:`results_rows`, the report's run
+#: page and the verdict events).
+_CHECK_FIELDS = ("status", "n", "cells", "t_max", "r_max", "alpha_max", "beta_max", "p_distribution", "p_independence", "p_value", "p_adjusted", "effect_divergence", "effect_acf")
+_BULKY = ("audit", "lineage", "settings", "candidates")
+
+
+def light_record(record: Mapping[str, Any]) -> dict:
+    """A model record without its bulky parts: everything but ``lineage``, ``settings`` and
+    ``candidates``, and of ``audit`` only each check's headline numbers (:data:`_CHECK_FIELDS`).
+
+    Enough for :func:`results_summary`, :func:`results_rows`, the run page and the events, at a
+    few per cent of the record's size; the full record goes to ``results.json`` and the model's
+    page as soon as it is made.
+    """
+    out = {k: v for k, v in record.items() if k not in _BULKY}
+    audit = record.get("audit")
+    if audit is not None:
+        audit = {kind: None if audit.get(kind) is None else {f: audit[kind].get(f) for f in _CHECK_FIELDS if f in audit[kind]} for kind in ("production", "refit")}
+    out["audit"] = audit
+    return out
+
+
+def results_json_chunks(head: Mapping[str, Any], summary: Mapping[str, Any], records: Iterable[bytes]) -> Iterator[bytes]:
+    """``canonical_json`` of the document, in pieces, from the models' records already in canonical JSON.
+
+    The bytes joined equal ``canonical_json(doc)`` of the document with those models (in that
+    order): keys are sorted at every level, so the document is its other fields around the
+    ``"models"`` list, and each element of the list is the canonical JSON of its record.
+    """
+    from ._io import canonical_json
+
+    shell = canonical_json({**head, "summary": summary, "models": []})
+    marker = b'"models":['
+    cut = shell.index(marker + b"]") + len(marker)
+    yield shell[:cut]
+    for i, rec in enumerate(records):
+        yield rec if i == 0 else b"," + rec
+    yield shell[cut:]
 
 
 def _num(x: Any) -> float | None:

@@ -5,6 +5,7 @@
     [integrations.fitaudit]
     archive_root = "/srv/archive"
     batch_size = 100
+    processes = 2
 """
 
 from __future__ import annotations
@@ -25,6 +26,7 @@ class FitauditSettings(PrefectBaseSettings):
     archive_root: Path = Field(default=Path("./archive"), description="Folder of the tamper-evident archive.")
     registry_path: Path = Field(default=Path("./registry.yaml"), description="The model registry (YAML).")
     batch_size: int = Field(default=0, ge=0, description="Models per Prefect task; 0 chooses automatically.")
+    processes: int = Field(default=0, ge=0, description="Local worker processes for the batches under the default task runner; 0 uses every CPU, 1 computes in the task threads.")
     operator: str = Field(default="", description="Operator or service account recorded in each manifest.")
 
 

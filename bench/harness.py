@@ -1,0 +1,127 @@
+"""Helpers shared by the benchmarks: child processes, the Prefect environment, work clocks.
+
+Each heavy measurement runs in a fresh child process (``python -m bench.<module> --child ...``)
+so that Prefect's state, memory and imports of one benchmark never leak into another.  A child
+writes its result as JSON to a file named by the parent.
+"""
+
+from __future__ import annotations
+
+import importlib
+import json
+import os
+import pathlib
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from typing import Callable, Sequence
+
+__all__ = ["REPO", "child_env", "run_child", "write_result", "WorkClock", "warm_prefect_home"]
+
+REPO = pathlib.Path(__file__).resolve().parents[1]
+
+
+def child_env(prefect_home: str | os.PathLike, api_url: str | None = None) -> dict:
+    """Environment of a benchmark child: the repository on ``sys.path``, a private Prefect home,
+    the embedded server (or ``api_url``), and fitaudit's quiet settings."""
+    env = {k: v for k, v in os.environ.items() if not k.startswith("PREFECT_")}
+    env["PYTHONPATH"] = str(REPO) + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
+    env["PREFECT_HOME"] = str(prefect_home)
+    if api_url:
+        env["PREFECT_API_URL"] = api_url
+    else:
+        env["PREFECT_SERVER_EPHEMERAL_ENABLED"] = "true"
+    return env
+
+
+def run_child(module: str, args: Sequence[str], env: dict, timeout: float = 7200.0) -> dict:
+    """Run ``python -m module --child ... --result FILE`` and return the JSON it wrote.
+
+    Raises ``RuntimeError`` with the child's output tail when it fails.
+    """
+    with tempfile.TemporaryDirectory(prefix="fitaudit-bench-") as tmp:
+        out = pathlib.Path(tmp) / "result.json"
+        cmd = [sys.executable, "-m", module, "--child", *map(str, args), "--result", str(out)]
+        proc = subprocess.run(cmd, cwd=REPO, env=env, capture_output=True, text=True, timeout=timeout)
+        if proc.returncode != 0 or not out.exists():
+            tail = "\n".join((proc.stdout + proc.stderr).splitlines()[-40:])
+            raise RuntimeError(f"benchmark child {module} {' '.join(map(str, args))} failed with code {proc.returncode}:\n{tail}")
+        return json.loads(out.read_text())
+
+
+def write_result(path: str, result: dict) -> None:
+    """Write a child's result (the parent reads it with :func:`run_child`)."""
+    pathlib.Path(path).write_text(json.dumps(result, indent=2, default=float))
+
+
+def warm_prefect_home(prefect_home: str | os.PathLike) -> None:
+    """Create and migrate the Prefect database of ``prefect_home`` with a one-task flow.
+
+    A user's second run finds a migrated database; timing the first-ever start (migrations)
+    would charge a one-off cost to the benchmark.
+    """
+    code = (
+        "from fitaudit.flows import _env; _env.configure_prefect()\n"
+        "from prefect import flow, task\n"
+        "@task\ndef one(): return 1\n"
+        "@flow\ndef warm(): return one()\n"
+        "warm()\n"
+    )
+    proc = subprocess.run([sys.executable, "-c", code], cwd=REPO, env=child_env(prefect_home), capture_output=True, text=True, timeout=600)
+    if proc.returncode != 0:
+        raise RuntimeError(f"warming the Prefect home {prefect_home} failed:\n{proc.stderr[-3000:]}")
+
+
+class WorkClock:
+    """Wall-clock intervals spent inside chosen plain functions (any thread).
+
+    :meth:`patch` replaces ``module.name`` by a timing wrapper; :meth:`covered` returns the
+    length of the union of the recorded intervals within a window, so overlapping calls (nested,
+    or in two threads at once) count once.
+    """
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self.intervals: list[tuple[float, float, str]] = []
+
+    def patch(self, module_name: str, name: str) -> None:
+        """Time every call of ``module_name.name`` (raises if it does not exist)."""
+        module = importlib.import_module(module_name)
+        original: Callable = getattr(module, name)
+        label = f"{module_name.rsplit('.', 1)[-1]}.{name}"
+
+        def timed(*args, **kwargs):
+            t0 = time.perf_counter()
+            try:
+                return original(*args, **kwargs)
+            finally:
+                with self._lock:
+                    self.intervals.append((t0, time.perf_counter(), label))
+
+        timed.__wrapped__ = original
+        timed.__module__, timed.__qualname__ = module_name, name  # pickled by reference: other processes get the original
+        setattr(module, name, timed)
+
+    def covered(self, start: float, end: float) -> float:
+        """Seconds of ``[start, end]`` inside at least one recorded interval."""
+        spans = sorted((max(a, start), min(b, end)) for a, b, _ in self.intervals if b > start and a < end)
+        total, cur_a, cur_b = 0.0, None, None
+        for a, b in spans:
+            if cur_b is None or a > cur_b:
+                if cur_b is not None:
+                    total += cur_b - cur_a
+                cur_a, cur_b = a, b
+            else:
+                cur_b = max(cur_b, b)
+        if cur_b is not None:
+            total += cur_b - cur_a
+        return total
+
+    def by_label(self) -> dict[str, float]:
+        """Summed seconds per function (nested and concurrent calls each counted)."""
+        out: dict[str, float] = {}
+        for a, b, label in self.intervals:
+            out[label] = out.get(label, 0.0) + (b - a)
+        return out

@@ -1,0 +1,127 @@
+"""Local worker processes for the CPU-bound part of batch tasks.
+
+Prefect's default task runner runs tasks in threads of the flow process, and numpy-heavy Python
+code holds the GIL most of the time, so two batch tasks in two threads use about one core
+(prefect.md section 2).  :func:`local_workers` starts a small pool of processes for one flow run
+and hands out a *token* (a plain string); a task that receives the token runs its plain function
+in the pool with :func:`run_local`, one whole batch per call, and returns the result as usual.
+Tasks run by another runner (a Dask worker, another process) do not find the token and run the
+function in place, so the token is always safe to pass.
+
+Results do not depend on where a batch runs: every computation is seeded by its inputs.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as cf
+import contextlib
+import multiprocessing
+import os
+import sys
+import threading
+import uuid
+from typing import Any, Callable, Iterator, TypeVar
+
+__all__ = ["local_workers", "run_local", "default_processes"]
+
+T = TypeVar("T")
+
+_BLAS_THREADS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+_POOLS: dict[str, cf.ProcessPoolExecutor] = {}
+_POOLS_LOCK = threading.Lock()
+
+
+def default_processes() -> int:
+    """Worker processes for a local run: the CPUs this process may use."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        return os.cpu_count() or 1
+
+
+def _warm() -> int:
+    """Import the audit stack in a fresh worker (so the first batch does not pay for it)."""
+    import fitaudit.tasks.audit  # noqa: F401
+    import fitaudit.tasks.report  # noqa: F401
+
+    return os.getpid()
+
+
+@contextlib.contextmanager
+def _main_module_hidden() -> Iterator[None]:
+    """Start processes without re-running the caller's script in them.
+
+    A ``spawn`` child imports the parent's ``__main__`` module (by file or module name) before it
+    runs anything; a script that calls the audit flow at top level, without an
+    ``if __name__ == "__main__":`` guard, would then start a second audit in every worker.  The
+    workers only run functions of fitaudit's own modules, so they need no ``__main__``: while they
+    start, the main module shows neither a file nor a module spec.
+    """
+    main = sys.modules.get("__main__")
+    saved = {name: main.__dict__[name] for name in ("__file__", "__spec__") if main is not None and name in main.__dict__}
+    try:
+        if main is not None:
+            main.__dict__.pop("__file__", None)
+            main.__dict__["__spec__"] = None
+        yield
+    finally:
+        if main is not None:
+            main.__dict__.update(saved)
+            if "__spec__" not in saved:
+                main.__dict__.pop("__spec__", None)
+
+
+@contextlib.contextmanager
+def _single_threaded_blas() -> Iterator[None]:
+    """Start processes whose BLAS uses one thread (unless the caller chose otherwise).
+
+    The audit runs thousands of small fits; a threaded BLAS only adds contention (an exponential
+    smoothing fit took 7x longer with OpenBLAS's default threads on a 2-core machine).  The
+    variables are read when a worker loads numpy, so they are set while the workers start.
+    """
+    added = [name for name in _BLAS_THREADS if name not in os.environ]
+    try:
+        for name in added:
+            os.environ[name] = "1"
+        yield
+    finally:
+        for name in added:
+            os.environ.pop(name, None)
+
+
+@contextlib.contextmanager
+def local_workers(processes: int) -> Iterator[str | None]:
+    """A pool of ``processes`` worker processes for the duration of the block; yields its token.
+
+    Yields None (run everything in place) when ``processes`` < 2.  The workers are started with
+    ``spawn`` (the flow process has threads, so ``fork`` would be unsafe) and a single-threaded
+    BLAS, begin importing fitaudit right away and are shut down when the block ends, also on error.
+    """
+    if processes < 2:
+        yield None
+        return
+    pool = cf.ProcessPoolExecutor(max_workers=processes, mp_context=multiprocessing.get_context("spawn"))
+    token = f"fitaudit-workers-{uuid.uuid4().hex}"
+    with _POOLS_LOCK:
+        _POOLS[token] = pool
+    try:
+        with _main_module_hidden(), _single_threaded_blas():
+            for _ in range(processes):  # each submit starts one worker while no worker is idle
+                pool.submit(_warm)
+        yield token
+    finally:
+        with _POOLS_LOCK:
+            _POOLS.pop(token, None)
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def run_local(token: str | None, fn: Callable[..., T], *args: Any) -> T:
+    """``fn(*args)`` in the pool named by ``token`` if this process holds it, else in place.
+
+    ``fn`` and ``args`` must be picklable (module-level functions, plain data).
+    """
+    with _POOLS_LOCK:
+        pool = _POOLS.get(token) if token else None
+    if pool is None:
+        return fn(*args)
+    return pool.submit(fn, *args).result()

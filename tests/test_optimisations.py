@@ -1,0 +1,251 @@
+"""The performance work of issue 7 changes no result.
+
+Each optimisation is checked against the unoptimised way of computing the same thing:
+
+* change location: the O(n) permutation maxima against the one-hot split statistics (kept in
+  ``fitaudit.core.change.split_statistics``) and scipy's G-test, and ``locate_change`` against the
+  original permutation loop (kept below);
+* the report's ``svg`` filter against the Jinja macro it replaced (kept below);
+* staging in several filtered scans against one scan per source;
+* light outcomes restored after the fleet rules against the fleet rules on full outcomes;
+* the whole audit flow (local worker processes, outcomes kept on disk, records and pages made per
+  batch, ``results.json`` streamed) against the plain pipeline of the same functions in one
+  process: byte-identical ``results.json``, pages and Parquet rows.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import os
+import pathlib
+import shutil
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+from scipy import stats
+
+from fitaudit.core.calibration import key_rng
+from fitaudit.core.cells import cell_index, number_of_cells
+from fitaudit.core.change import locate_change, permutation_maxima, split_statistics
+from fitaudit.core.noise import get_law
+
+#: The chart macro of templates/_charts.html.j2 before the ``svg`` filter replaced it.
+REFERENCE_SVG_MACRO = """{% macro svg(c) %}
+<svg class="chart {{ c.cls }}" role="img" aria-labelledby="{{ c.id }}-t {{ c.id }}-d" viewBox="0 0 {{ c.w|px }} {{ c.h|px }}" width="{{ c.w|px }}" height="{{ c.h|px }}">
+<title id="{{ c.id }}-t">{{ c.title }}</title>
+<desc id="{{ c.id }}-d">{{ c.desc }}</desc>
+{% for l in c.grid %}<line x1="{{ l.x1|px }}" y1="{{ l.y1|px }}" x2="{{ l.x2|px }}" y2="{{ l.y2|px }}" class="{{ l.cls }}"/>{% endfor %}
+
+{% for r in c.rects %}<rect x="{{ r.x|px }}" y="{{ r.y|px }}" width="{{ r.w|px }}" height="{{ r.h|px }}" class="{{ r.cls }}"/>{% endfor %}
+
+{% for l in c.lines %}<line x1="{{ l.x1|px }}" y1="{{ l.y1|px }}" x2="{{ l.x2|px }}" y2="{{ l.y2|px }}" class="{{ l.cls }}"/>{% endfor %}
+
+{% for p in c.polylines %}<polyline points="{{ p.points }}" class="{{ p.cls }}"/>{% endfor %}
+
+{% for p in c.paths %}<path d="{{ p.d }}" class="{{ p.cls }}"/>{% endfor %}
+
+{% for o in c.circles %}<circle cx="{{ o.cx|px }}" cy="{{ o.cy|px }}" r="{{ o.r|px }}" class="{{ o.cls }}"/>{% endfor %}
+
+{% for t in c.texts %}<text x="{{ t.x|px }}" y="{{ t.y|px }}" text-anchor="{{ t.anchor }}" class="{{ t.cls }}">{{ t.text }}</text>{% endfor %}
+
+</svg>
+{% endmacro %}"""
+
+#: Demo models covering two sources, every verdict, smoothing, threshold AR and a rejected entry.
+DEMO_SUBSET = [
+    "demand-d-02", "demand-d-03", "demand-d-07", "demand-d-11", "demand-d-13", "demand-d-19", "demand-d-22",
+    "demand-d-25", "demand-d-31", "demand-d-32", "demand-d-40-legacy", "energy-pump-01", "energy-pump-02", "leakage-leak-01",
+]
+
+
+def _reference_locate_change(errors: np.ndarray, permutations: int, seed: int) -> tuple[int, float, float]:
+    """locate_change before issue 7: permutations scored by the one-hot split statistics, in chunks."""
+    law = get_law("normal")
+    e = errors[~np.isnan(errors)]
+    n = e.size
+    s = number_of_cells(n, 2)
+    h = max(s, int(np.ceil(0.1 * n)))
+    idx = cell_index(law.cdf(e, law.fit(e, location=True)), s)
+    profile = split_statistics(idx, s, h)
+    t_obs = float(profile.max())
+    rng = key_rng(seed, "change", n, s)
+    exceed, done, chunk = 0, 0, max(1, 2_000_000 // (n * s))
+    while done < permutations:
+        b = min(chunk, permutations - done)
+        perm = np.argsort(rng.random((b, n)), axis=1)
+        t_perm = np.atleast_2d(split_statistics(idx[perm], s, h)).max(axis=1)
+        exceed += int(np.sum(t_perm >= t_obs - 1e-9 * max(1.0, abs(t_obs))))
+        done += b
+    return h + int(np.argmax(profile)), t_obs, (1 + exceed) / (permutations + 1)
+
+
+def test_permutation_maxima_equal_the_g_test_maxima(rng):
+    s, trim = 6, 8
+    base = rng.integers(0, s, size=60)
+    rows = np.stack([base] + [rng.permutation(base) for _ in range(4)])  # rows share their cell totals
+    fast = permutation_maxima(rows, s, trim)
+    for row, value in zip(rows, fast):
+        g = []
+        for k in range(trim, row.size - trim + 1):
+            table = np.vstack([np.bincount(row[:k], minlength=s), np.bincount(row[k:], minlength=s)])
+            keep = table.sum(axis=0) > 0
+            # source: scipy.stats.chi2_contingency with lambda_="log-likelihood" (G-test of homogeneity of the two sides)
+            g.append(stats.chi2_contingency(table[:, keep], correction=False, lambda_="log-likelihood").statistic)
+        assert value == pytest.approx(max(g), rel=1e-10)
+
+
+def test_permutation_maxima_equal_the_one_hot_statistics(rng):
+    for n, s, trim in ((56, 6, 6), (200, 12, 20), (720, 28, 72)):
+        idx = rng.integers(0, s, size=n)
+        rows = idx[np.argsort(rng.random((50, n)), axis=1)]
+        # source: split_statistics (one-hot counts, the formula of the module docstring) is the reference
+        np.testing.assert_allclose(permutation_maxima(rows, s, trim), split_statistics(rows, s, trim).max(axis=1), rtol=1e-11)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_locate_change_matches_the_original_loop(seed):
+    rng = np.random.default_rng(100 + seed)
+    n = int(rng.integers(60, 700))
+    errors = np.r_[rng.normal(size=n // 2), rng.normal(rng.uniform(0, 1.5), rng.uniform(0.7, 2.0), size=n - n // 2)]
+    permutations = 199 if seed % 2 else 499
+    res = locate_change(errors, permutations=permutations, seed=seed)
+    index, statistic, p_value = _reference_locate_change(errors, permutations, seed)
+    # source: the pre-issue-7 implementation above (same seed, same permutations)
+    assert (res.index, res.statistic, res.p_value) == (index, statistic, p_value)
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    from fitaudit.tasks.demo import write_demo
+
+    return write_demo(tmp_path_factory.mktemp("optimisations-demo"))
+
+
+@pytest.fixture(scope="module")
+def registry(demo):
+    from fitaudit.tasks.registry import load_registry
+
+    return load_registry(demo["registry"])
+
+
+def test_staging_in_several_scans_writes_the_same_batches(demo, registry, tmp_path):
+    from fitaudit.tasks.batches import read_batch, stage_inputs
+    from fitaudit.tasks.demo import DEMO_AS_OF
+
+    one = stage_inputs(registry, DEMO_AS_OF, tmp_path / "one", archive_root=demo["archive"], batch_size=4, series_per_scan=10**6)
+    many = stage_inputs(registry, DEMO_AS_OF, tmp_path / "many", archive_root=demo["archive"], batch_size=4, series_per_scan=8)
+    assert [b.model_ids for b in one.batches] == [b.model_ids for b in many.batches]
+    assert one.fingerprints == many.fingerprints and one.source_errors == many.source_errors
+    for a, b in zip(one.batches, many.batches):
+        # source: the single-scan staging (the reference) wrote these files
+        assert pathlib.Path(a.path + ".json").read_bytes() == pathlib.Path(b.path + ".json").read_bytes()
+        for x, y in zip(read_batch(a.path), read_batch(b.path)):
+            assert np.array_equal(x.y, y.y, equal_nan=True) and np.array_equal(x.time, y.time)
+            assert x.exog.keys() == y.exog.keys() and all(np.array_equal(x.exog[k], y.exog[k], equal_nan=True) for k in x.exog)
+
+
+def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo, registry, tmp_path):
+    from fitaudit.tasks.audit import audit_batch, audit_batch_spilled, calibration_for, finalize, records, restore_outcomes, spill_path
+    from fitaudit.tasks.batches import stage_inputs
+    from fitaudit.tasks.demo import DEMO_AS_OF
+
+    wanted = ["demand-d-02", "demand-d-07", "demand-d-13", "demand-d-22", "demand-d-25", "energy-pump-01"]
+    staged = stage_inputs(registry, DEMO_AS_OF, tmp_path, archive_root=demo["archive"], model_ids=wanted, batch_size=3)
+    paths = [b.path for b in staged.batches]
+    cache = calibration_for(paths, registry.policy)
+    full = finalize([o for p in paths for o in audit_batch(p, registry.policy, cache)], registry.policy)
+    light = finalize([o for p in paths for o in audit_batch_spilled(p, registry.policy, cache)], registry.policy)
+    restored, start = [], 0
+    for batch in staged.batches:
+        restored += restore_outcomes(light[start : start + len(batch.model_ids)], spill_path(batch.path))
+        start += len(batch.model_ids)
+    assert {o.verdict for o in full} >= {"pass", "refit", "respecify", "insufficient"}
+    # source: the fleet rules applied to the full outcomes (the unoptimised path)
+    assert records(restored, DEMO_AS_OF.isoformat()) == records(full, DEMO_AS_OF.isoformat())
+
+
+@pytest.mark.slow
+def test_local_workers_run_elsewhere_and_fall_back_in_place():
+    from fitaudit.tasks.workers import local_workers, run_local
+
+    with local_workers(2) as token:
+        assert token is not None
+        assert run_local(token, os.getpid) != os.getpid()
+    assert run_local(token, os.getpid) == os.getpid()  # the pool is gone: computed in place
+    with local_workers(1) as token:
+        assert token is None
+
+
+def _reference_run(demo: dict, registry, archive: pathlib.Path, work: pathlib.Path, meta: dict) -> tuple[bytes, dict, list]:
+    """The plain pipeline: the same stage functions in this process, whole document and pages in memory."""
+    from fitaudit.tasks._io import canonical_json
+    from fitaudit.tasks.audit import audit_batch, calibration_for, candidates_for, finalize, records, rejected_outcome, with_candidates
+    from fitaudit.tasks.batches import stage_inputs
+    from fitaudit.tasks.demo import DEMO_AS_OF
+    from fitaudit.tasks.report import render_run
+    from fitaudit.tasks.results import build_results, results_rows
+
+    staged = stage_inputs(registry, DEMO_AS_OF, work, archive_root=str(archive), model_ids=DEMO_SUBSET, series_per_scan=10**6)
+    cache = calibration_for([b.path for b in staged.batches], registry.policy)
+    outcomes = [o for b in staged.batches for o in audit_batch(b.path, registry.policy, cache)]
+    outcomes += [rejected_outcome(r) for r in registry.rejected if r.id in DEMO_SUBSET]
+    final = finalize(outcomes, registry.policy)
+    todo = {o.model_id for o in final if o.verdict == "respecify"}
+    found = {}
+    for b in staged.batches:
+        if todo.intersection(b.model_ids):
+            found.update(candidates_for(b.path, [m for m in b.model_ids if m in todo], registry.policy, cache))
+    doc = build_results(
+        as_of=DEMO_AS_OF.isoformat(),
+        registry={"path": pathlib.Path(registry.path).name, "sha256": registry.sha256},
+        policy=registry.policy.to_dict(),
+        records=records(with_candidates(final, found), DEMO_AS_OF.isoformat()),
+        tool_version=meta["tool_version"],
+    )
+    return canonical_json(doc), render_run(doc, meta), results_rows(doc)
+
+
+@pytest.mark.slow
+@pytest.mark.server
+def test_audit_flow_matches_the_plain_pipeline(demo, registry, prefect_server, tmp_path, monkeypatch):
+    from fitaudit.flows.audit import audit_flow
+    from fitaudit.tasks.demo import DEMO_AS_OF
+    from fitaudit.tasks.report import environment
+
+    archive = tmp_path / "archive"
+    shutil.copytree(demo["archive"], archive)
+    monkeypatch.setenv("PREFECT_INTEGRATIONS_FITAUDIT_PROCESSES", "2")  # worker processes even for a small run
+    run = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=str(archive), models=DEMO_SUBSET, batch_size=3)
+    folder = pathlib.Path(run["report"]).parent
+    manifest = json.loads((folder / "manifest.json").read_text())
+    assert manifest["batches"] >= 4 and run["counts"]["registered"] == len(DEMO_SUBSET)
+    meta = {k: manifest[k] for k in ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "code_commit")}
+    meta["prefect_version"] = manifest["packages"]["prefect"]
+
+    macro = environment().from_string(REFERENCE_SVG_MACRO).module.svg
+    monkeypatch.setitem(environment().filters, "svg", macro)  # the reference renders charts with the old macro
+    reference_json, reference_pages, reference_rows = _reference_run(demo, registry, archive, tmp_path / "work", meta)
+
+    assert {m["verdict"] for m in json.loads(reference_json)["models"]} == {"pass", "refit", "respecify", "insufficient", "error"}
+    # source: the plain pipeline above (unoptimised reference), byte for byte
+    assert (folder / "results.json").read_bytes() == reference_json
+    written = sorted(str(p.relative_to(folder)) for p in folder.rglob("*.html"))
+    assert written == sorted(reference_pages)
+    for rel, data in reference_pages.items():
+        assert (folder / rel).read_bytes() == data, rel
+    assert pq.read_table(folder / "results.parquet").to_pylist() == reference_rows
+
+
+def test_streamed_results_json_equals_canonical_json():
+    from fitaudit.tasks._io import canonical_json
+    from fitaudit.tasks.results import results_head, results_json_chunks
+
+    head = results_head(as_of="2026-11-30", registry={"path": "r.yaml", "sha256": "ab"}, policy={"level": 0.05, "z": [1, 2]}, tool_version="0")
+    summary = {"registered": 2, "x": float("inf")}
+    models = [{"id": "a", "v": [1.5, None, "é"]}, {"id": "b", "w": {"z": 1, "a": 2}}]
+    streamed = b"".join(results_json_chunks(head, summary, [canonical_json(m) for m in models]))
+    # source: canonical_json of the whole document (the unoptimised writer)
+    assert streamed == canonical_json({**head, "summary": summary, "models": models})
+    assert b"".join(results_json_chunks(head, summary, [])) == canonical_json({**head, "summary": summary, "models": []})
