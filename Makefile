@@ -6,6 +6,7 @@ VENV   ?= .venv
 BIN    := $(VENV)/bin
 PY     := $(BIN)/python
 PYTEST_ARGS ?=
+CALIBRATION_JOBS ?= 2
 
 .PHONY: demo test test-fast bench bench-quick calibration clean help
 
@@ -45,7 +46,7 @@ bench-quick: $(VENV)/.installed-test
 	$(PY) -m bench --quick
 
 calibration: $(VENV)/.installed-test
-	$(PY) bench/calibration.py
+	$(PY) bench/calibration.py --jobs $(CALIBRATION_JOBS)
 
 clean:
 	rm -rf $(VENV) .prefect fitaudit-demo build *.egg-info .pytest_cache
