@@ -10,14 +10,13 @@ from __future__ import annotations
 import datetime as dt
 import pathlib
 import pickle
-import shutil
 import time
 from prefect import flow, get_run_logger, task, unmapped
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
-from fitaudit.tasks.archive import new_run_id, recover
+from fitaudit.tasks.archive import new_run_id, open_work_folder, recover
 from fitaudit.tasks.audit import (
     Outcome,
     audit_batch_task,
@@ -212,101 +211,105 @@ def audit_flow(
     wanted = None if models is None else set(models)
     ids = [m.id for m in reg.models if wanted is None or m.id in wanted]
     history = history_task(archive, as_of, quote(ids))
-    work = pathlib.Path(archive) / ".work" / run_id
-    t0 = time.perf_counter()
-    # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
-    # them (twice per task call) looking for futures, which costs seconds on a big fleet
-    stage_args = dict(archive_root=archive, histories=quote(history), model_ids=quote(ids), batch_size=batch_size or settings.batch_size, workers=_workers())
+    # the run's scratch folder, locked while it runs; recover() removes it if the process dies
+    scratch = open_work_folder(archive, run_id)
+    work = scratch.path
     try:
-        staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
-    except OSError:
-        staged = stage_inputs_task(quote(reg), as_of, str(work), os_errors="record", **stage_args)
-    timings["stage_s"] = time.perf_counter() - t0
-
-    with local_workers(_local_processes(settings.processes, len(staged.batches), len(ids))) as workers:
         t0 = time.perf_counter()
-        cache = calibration_task([b.path for b in staged.batches], reg.policy)
-        timings["calibration_s"] = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        futures = audit_batch_task.map([b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache), unmapped(workers))
-        if progress:
-            _report_progress(futures, staged)
-        batches = list(futures.result())
-        batches.append([rejected_outcome(r) for r in reg.rejected if wanted is None or r.id in wanted])
-        outcomes = [o for batch in batches for o in batch]
-        timings["audit_s"] = time.perf_counter() - t0
-        timings["core_s"] = sum(o.timings.get("total_s", 0.0) for o in outcomes)
+        # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
+        # them (twice per task call) looking for futures, which costs seconds on a big fleet
+        stage_args = dict(archive_root=archive, histories=quote(history), model_ids=quote(ids), batch_size=batch_size or settings.batch_size, workers=_workers())
+        try:
+            staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
+        except OSError:
+            staged = stage_inputs_task(quote(reg), as_of, str(work), os_errors="record", **stage_args)
+        timings["stage_s"] = time.perf_counter() - t0
 
-        final = finalize_task(quote(outcomes), quote(reg))
-        if search_candidates:
+        with local_workers(_local_processes(settings.processes, len(staged.batches), len(ids))) as workers:
             t0 = time.perf_counter()
-            todo = {o.model_id for o in final if o.verdict == "respecify"}
-            jobs = candidate_jobs(staged.batches, todo, groups=2 * _workers())
-            if jobs:
-                shared = candidate_tables(jobs, reg.policy)  # built once each, in parallel, before the searches
-                if shared:
-                    for tables in tables_task.map(shared, unmapped(cache), unmapped(workers)).result():
-                        cache.merge(tables)
-                found = candidates_task.map(jobs, unmapped(reg.policy), unmapped(cache), unmapped(workers))
-                final = with_candidates(final, {k: v for part in found.result() for k, v in part.items()})
-            timings["candidates_s"] = time.perf_counter() - t0
-        head = results_head(
-            as_of=as_of.isoformat(),
-            registry={"path": pathlib.Path(reg.path).name, "sha256": reg.sha256},
-            policy=reg.policy.to_dict(),
-            tool_version=package_versions()["fitaudit"] or "unknown",
-        )
-        t0 = time.perf_counter()
-        meta = {
-            "run_id": run_id,
-            "started_utc": started,
-            "finished_utc": _utc(),
-            "operator": operator_identity(settings.operator),
-            "tool_version": head["run"]["tool_version"],
-            "code_commit": code_commit(),
-            "prefect_version": package_versions()["prefect"],
+            cache = calibration_task([b.path for b in staged.batches], reg.policy)
+            timings["calibration_s"] = time.perf_counter() - t0
+            t0 = time.perf_counter()
+            futures = audit_batch_task.map([b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache), unmapped(workers))
+            if progress:
+                _report_progress(futures, staged)
+            batches = list(futures.result())
+            batches.append([rejected_outcome(r) for r in reg.rejected if wanted is None or r.id in wanted])
+            outcomes = [o for batch in batches for o in batch]
+            timings["audit_s"] = time.perf_counter() - t0
+            timings["core_s"] = sum(o.timings.get("total_s", 0.0) for o in outcomes)
+
+            final = finalize_task(quote(outcomes), quote(reg))
+            if search_candidates:
+                t0 = time.perf_counter()
+                todo = {o.model_id for o in final if o.verdict == "respecify"}
+                jobs = candidate_jobs(staged.batches, todo, groups=2 * _workers())
+                if jobs:
+                    shared = candidate_tables(jobs, reg.policy)  # built once each, in parallel, before the searches
+                    if shared:
+                        for tables in tables_task.map(shared, unmapped(cache), unmapped(workers)).result():
+                            cache.merge(tables)
+                    found = candidates_task.map(jobs, unmapped(reg.policy), unmapped(cache), unmapped(workers))
+                    final = with_candidates(final, {k: v for part in found.result() for k, v in part.items()})
+                timings["candidates_s"] = time.perf_counter() - t0
+            head = results_head(
+                as_of=as_of.isoformat(),
+                registry={"path": pathlib.Path(reg.path).name, "sha256": reg.sha256},
+                policy=reg.policy.to_dict(),
+                tool_version=package_versions()["fitaudit"] or "unknown",
+            )
+            t0 = time.perf_counter()
+            meta = {
+                "run_id": run_id,
+                "started_utc": started,
+                "finished_utc": _utc(),
+                "operator": operator_identity(settings.operator),
+                "tool_version": head["run"]["tool_version"],
+                "code_commit": code_commit(),
+                "prefect_version": package_versions()["prefect"],
+            }
+            parcels, names, spills = _render_inputs(final, batches, staged)
+            rendered = render_outcomes_task.map(parcels, unmapped(head), unmapped(meta), unmapped(str(work / "publish")), names, spills, unmapped(workers))
+            staged_records = [r for part in rendered.result() for r in part]
+            timings["render_s"] = time.perf_counter() - t0
+        per_model = {o.model_id: o.timings for o in final}
+        del outcomes, final, batches, parcels, futures, rendered  # the full results now live in the work folder
+        recs = [r.light for r in staged_records]
+        summary = results_summary(recs, head["run"]["policy"])
+        manifest = {
+            **{k: meta[k] for k in ("started_utc", "operator", "tool_version", "code_commit")},
+            "packages": package_versions(),
+            "registry": {"path": str(pathlib.Path(reg.path).resolve()), "sha256": reg.sha256},
+            "inputs": staged.fingerprints,
+            "source_errors": staged.source_errors,
+            "policy": reg.policy.to_dict(),
+            "seeds": {"policy_seed": reg.policy.seed},
+            "counts": {k: summary[k] for k in ("registered", "audited", "pass", "refit", "respecify", "insufficient", "error")},
+            "batches": len(staged.batches),
+            "calibration_tables": len(cache),
+            "recovered": recovered,
+            "task_runner": _runner_name(),
         }
-        parcels, names, spills = _render_inputs(final, batches, staged)
-        rendered = render_outcomes_task.map(parcels, unmapped(head), unmapped(meta), unmapped(str(work / "publish")), names, spills, unmapped(workers))
-        staged_records = [r for part in rendered.result() for r in part]
-        timings["render_s"] = time.perf_counter() - t0
-    per_model = {o.model_id: o.timings for o in final}
-    del outcomes, final, batches, parcels, futures, rendered  # the full results now live in the work folder
-    recs = [r.light for r in staged_records]
-    summary = results_summary(recs, head["run"]["policy"])
-    manifest = {
-        **{k: meta[k] for k in ("started_utc", "operator", "tool_version", "code_commit")},
-        "packages": package_versions(),
-        "registry": {"path": str(pathlib.Path(reg.path).resolve()), "sha256": reg.sha256},
-        "inputs": staged.fingerprints,
-        "source_errors": staged.source_errors,
-        "policy": reg.policy.to_dict(),
-        "seeds": {"policy_seed": reg.policy.seed},
-        "counts": {k: summary[k] for k in ("registered", "audited", "pass", "refit", "respecify", "insufficient", "error")},
-        "batches": len(staged.batches),
-        "calibration_tables": len(cache),
-        "recovered": recovered,
-        "task_runner": _runner_name(),
-    }
-    timings["total_s"] = time.perf_counter() - t_start
-    manifest["timings"] = {**timings, "per_model": per_model}
-    manifest["finished_utc"] = meta["finished_utc"]
-    published = publish_task(archive, head, summary, quote(staged_records), meta, quote(manifest), run_id)
-    timings["publish_s"] = time.perf_counter() - t0
-    report = str(pathlib.Path(published["path"]) / "index.html")
-    run = {"run_id": run_id, "as_of": as_of.isoformat(), "report_path": report}
-    events_task(quote(recs), summary, run)
-    counts = manifest["counts"]
-    logger.info("audit %s as of %s: %s; report %s", run_id, as_of, counts, report)
+        timings["total_s"] = time.perf_counter() - t_start
+        manifest["timings"] = {**timings, "per_model": per_model}
+        manifest["finished_utc"] = meta["finished_utc"]
+        published = publish_task(archive, head, summary, quote(staged_records), meta, quote(manifest), run_id)
+        timings["publish_s"] = time.perf_counter() - t0
+        report = str(pathlib.Path(published["path"]) / "index.html")
+        run = {"run_id": run_id, "as_of": as_of.isoformat(), "report_path": report}
+        events_task(quote(recs), summary, run)
+        counts = manifest["counts"]
+        logger.info("audit %s as of %s: %s; report %s", run_id, as_of, counts, report)
 
-    refits = None
-    if trigger_refits:
-        from fitaudit.flows.refit import refit_flow
+        refits = None
+        if trigger_refits:
+            from fitaudit.flows.refit import refit_flow
 
-        todo = [r["id"] for r in recs if r["verdict"] in ("refit", "respecify")]
-        if todo:
-            refits = refit_flow(registry=registry, model_ids=todo, archive=archive, as_of=as_of, reason=f"verdicts of audit run {run_id}")
-    shutil.rmtree(work, ignore_errors=True)
+            todo = [r["id"] for r in recs if r["verdict"] in ("refit", "respecify")]
+            if todo:
+                refits = refit_flow(registry=registry, model_ids=todo, archive=archive, as_of=as_of, reason=f"verdicts of audit run {run_id}")
+    finally:
+        scratch.close()
     return {
         "run_id": run_id,
         "as_of": as_of.isoformat(),

@@ -61,6 +61,8 @@ __all__ = [
     "ArchiveProblem",
     "PublishedRun",
     "RunWriter",
+    "WorkFolder",
+    "open_work_folder",
     "new_run_id",
     "open_run",
     "append_chain",
@@ -84,6 +86,7 @@ _PARAMS = "params"
 _STAGING = ".staging"
 _JOURNAL = ".journal"
 _TRASH = ".trash"
+_WORK = ".work"
 _LOCK = ".lock"
 _APPEND_JOURNAL = "append.json"
 _PURGE_JOURNAL = "purge.json"
@@ -1085,6 +1088,57 @@ def open_run(archive_root: str | os.PathLike, run_id: str, year: int, *, as_of: 
     return RunWriter(root, run_id, year, as_of, staging, fd)
 
 
+class WorkFolder:
+    """A run's scratch folder ``<archive>/.work/<run-id>/``, locked while its run lives.
+
+    It holds the staged batch inputs and the full per-batch outcomes until publication.  The
+    folder's directory lock is released when the run ends, or by the kernel when the process dies
+    (SIGKILL included); :func:`recover` deletes work folders nobody holds.  Use as a context
+    manager, or call :meth:`close` once.
+    """
+
+    def __init__(self, path: pathlib.Path, fd: int):
+        self.path = path
+        self._fd: int | None = fd
+
+    def close(self) -> None:
+        """Delete the folder and release its lock (idempotent)."""
+        if self._fd is None:
+            return
+        try:
+            shutil.rmtree(self.path, ignore_errors=True)
+        finally:
+            os.close(self._fd)
+            self._fd = None
+
+    def __enter__(self) -> "WorkFolder":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+def open_work_folder(archive_root: str | os.PathLike, run_id: str) -> WorkFolder:
+    """Create and lock the scratch folder of run ``run_id`` (see :class:`WorkFolder`).
+
+    Raises
+    ------
+    ArchiveError
+        When the run id already has a work folder (run ids are unique: use :func:`new_run_id`).
+    """
+    root = _root(archive_root)
+    _check_name(run_id, "run id")
+    with _archive_lock(root):  # recover() scans .work under this lock: it never sees an unlocked new folder
+        folder = _mkdirs(root, _WORK) / run_id
+        try:
+            folder.mkdir()
+        except FileExistsError:
+            raise ArchiveError(f"run {run_id} already has a work folder {_rel(root, folder)}; start the run with a new id (new_run_id())") from None
+        fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    return WorkFolder(folder, fd)
+
+
 # ----------------------------------------------------------------------------------------------
 # recovery
 
@@ -1144,7 +1198,7 @@ def _recover_purge(root: pathlib.Path, chain: _Chain) -> str:
 
 
 def _in_use(folder: pathlib.Path) -> bool:
-    """True when a live RunWriter holds the staging folder's lock."""
+    """True when a live RunWriter or WorkFolder holds the folder's lock."""
     fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -1156,7 +1210,7 @@ def _in_use(folder: pathlib.Path) -> bool:
 
 
 def _remove_abandoned(root: pathlib.Path) -> list[str]:
-    """Delete abandoned staging folders, half-deleted purged folders and temporary journal files.
+    """Delete abandoned staging and work folders, half-deleted purged folders and temporary journal files.
 
     The caller holds the archive lock, so no new staging folder appears meanwhile.
     """
@@ -1169,6 +1223,14 @@ def _remove_abandoned(root: pathlib.Path) -> list[str]:
         else:
             _remove_tree(path)
         actions.append(f"removed abandoned staging entry {_rel(root, path)}")
+    for path in _children(root / _WORK):
+        if path.is_symlink() or not path.is_dir():
+            path.unlink()
+        elif _in_use(path):
+            continue
+        else:
+            _remove_tree(path)
+        actions.append(f"removed the work folder of an interrupted run {_rel(root, path)}")
     for path in _children(root / _TRASH):
         _remove_tree(path)
         actions.append(f"finished deleting purged folder {_rel(root, path)}")
@@ -1183,8 +1245,8 @@ def recover(archive_root: str | os.PathLike) -> list[str]:
 
     Finishes an interrupted chain append, completes each journaled publication whose folder was
     already renamed into ``runs/`` (appending its chain entry, marked ``"recovered": true``) or rolls
-    it back, finishes or rolls back an interrupted purge, and removes abandoned staging folders
-    (those not locked by a live writer).
+    it back, finishes or rolls back an interrupted purge, and removes abandoned staging and work
+    folders (those not locked by a live writer or run).
 
     Returns
     -------

@@ -338,6 +338,26 @@ def test_recover_keeps_a_live_writers_staging_folder(tmp_path):
     assert archive.verify_archive(root, include_notes=True) == []
 
 
+def test_work_folders_are_kept_while_their_run_lives_and_removed_after(tmp_path):
+    """A live run's scratch folder survives another run's recovery; a dead run's does not."""
+    root = tmp_path / "archive"
+    live = archive.open_work_folder(root, "20260105-T220000Z-abcd")
+    (live.path / "batch-0001.pkl").write_bytes(b"staged")
+    # a run killed by SIGKILL leaves its folder behind with no lock held (the kernel released it)
+    dead = root / ".work" / "20260105-T210000Z-dead"
+    dead.mkdir()
+    (dead / "batch-0001.pkl").write_bytes(b"staged")
+    actions = archive.recover(root)
+    assert actions == ["removed the work folder of an interrupted run .work/20260105-T210000Z-dead"]
+    assert not dead.exists() and (live.path / "batch-0001.pkl").exists()
+    with pytest.raises(ArchiveError, match="already has a work folder"):
+        archive.open_work_folder(root, "20260105-T220000Z-abcd")
+    live.close()
+    live.close()  # idempotent
+    assert not live.path.exists()
+    assert archive.recover(root) == [] and archive.verify_archive(root) == []
+
+
 def test_concurrent_publications_keep_one_chain(tmp_path):
     root = tmp_path / "archive"
     errors = []

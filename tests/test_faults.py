@@ -138,6 +138,8 @@ def test_sigkill_at_20_points_leaves_no_partial_run_and_a_rerun_matches(fleet, p
         assert _start_cli(root, archive, prefect_server, log).wait(timeout=300) == 0
     assert _assert_only_complete_runs(archive, reference) == before + 1
     assert verify_archive(archive, include_notes=True) == []  # the rerun's recovery settled every interrupted publication
+    work = archive / ".work"  # scratch folders of the killed runs: removed by the rerun's recovery, its own at its end
+    assert not (work.exists() and any(work.iterdir())), sorted(p.name for p in work.iterdir())
 
 
 # ------------------------------------------------------------------------------------------
