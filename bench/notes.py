@@ -79,8 +79,8 @@ the implementation it replaced.
 
 ## Reading the goals
 
-Numbers quoted here come from the runs of this page and from one more full run on the same
-machine during development (2026-12-02 00:42 UTC, load average about 2 instead of 3-4).
+Numbers quoted here come from the runs of this page. During the memory runs another job (the
+size/power study) shared the machine, which lengthens their run times but not their peaks.
 
 **Throughput (goal 20x): missed.** The peer is fast once its BLAS is single-threaded: statsmodels
 fits this SARIMAX in 0.2-0.27 s and the ETS model in 0.1-0.16 s, so it audits 4-5.5 series per
@@ -91,8 +91,8 @@ the profile likelihood to tight tolerances) and about 15 ms for the record and t
 that do not shrink with the fleet: the embedded Prefect server's start (8-10 s), the null tables
 (about 2 s), the candidate search for the respecify models (8-10 s: each estimates a student-t
 shape and simulates its own table) and the publication (a few seconds, one fsync per file). At
-1,000 series that is 12 series/s on the loaded machine (3.0x) and 22.5 series/s on the quieter
-one (4.1x). Even with no fixed costs, 45 ms of work per model on two cores caps fitaudit near
+1,000 series that is about 18 series/s (4.1x; 3.0x in an earlier run on a machine loaded by
+another job). Even with no fixed costs, 45 ms of work per model on two cores caps fitaudit near
 45 series/s, 8-11x this peer. What would close the gap: a long-lived Prefect server
 (`PREFECT_API_URL`) removes the start-up; more cores scale the batch work (the worker processes
 use every CPU, the peer is one process); the per-model cost is in the model fits
@@ -100,27 +100,26 @@ use every CPU, the peer is one process); the per-model cost is in the model fits
 vectorised likelihoods) would be the next step. It was not done here because it changes the
 optimiser's path and so the fitted digits, which this issue required to stay identical.
 
-**Orchestration share (goal 10 %): met**, 5-7 % of the flow's wall time at 1,000 series: with
+**Orchestration share (goal 10 %): met**, about 6 % of the flow's wall time at 1,000 series: with
 batches of 100-200 models and large inputs quoted, Prefect's bookkeeping, logs, events and
 artifacts take a few seconds.
 
-**Scale-out (goal 1.7x): missed.** On the quieter machine two Dask workers made the audit stage
-1.73x faster and the whole flow 1.40x (73.5 s to 52.4 s); in this page's run, with the machine's
-load at 3.5 (another session's tests), the second worker found no free core and the ratio is
-about 1. What does not scale: staging, calibration, the fleet rules, publication, events and the
+**Scale-out (goal 1.7x): missed.** Two Dask workers made the whole flow 1.44x faster and the
+audit stage 1.49x (1.73x and 1.40x in an earlier run; about 1x when another job held a core).
+What does not scale: staging, calibration, the fleet rules, publication, events and the
 cluster's start run once (about 10 s together), and the candidate search (15 s there) is
 dominated by one student-t table per respecify model, which the searches now spread evenly over
-the workers, with the tables they share built once beforehand (measured after that change only on
-the loaded machine). On an idle machine with more cores than workers the batch stages scale with
+the workers, with the tables they share built once beforehand. On an idle machine with more cores than workers the batch stages scale with
 the workers; the fixed part is what keeps the flow below 1.7x on 1,000 series.
 
-**Memory (goal 1.5 GB): met for the flow process**, which peaks at 0.9 GB for 10,000 models and
-grows by about 6 MB per 1,000 models, a quarter of the size of the results themselves
+**Memory (goal 1.5 GB): met for the flow process**, which peaks at 0.85 GB for 10,000 models and
+grows by a few MB per 1,000 models (2.6 MB here, 5.7 MB in an earlier run; the peaks vary by
+about 0.1 GB between runs), well below the size of the results themselves
 (`results.json`, 21 MB per 1,000): it holds a light outcome per model until its batch is rendered,
 then a light record for the run page, the events and the Parquet file; the full results live in
 the work folder and the archive, and staging reads at most 1,000 series at a time. Most of its
-0.9 GB is the imports and the 10,000-entry registry, the same in all three runs. The whole process
-tree peaks at 2.0 GB: the Prefect server (about 0.25 GB) and the two worker processes (0.3-0.4 GB
+0.85 GB is the imports and the 10,000-entry registry, the same in all three runs. The whole process
+tree peaks at 1.9 GB: the Prefect server (about 0.25 GB) and the two worker processes (0.3-0.4 GB
 each: every worker imports Prefect, pyarrow and Jinja2 through the task modules, and holds one
 batch). Moving the batches' plain functions into modules that import none of these, or fewer
 worker processes, would bring the tree under 1.5 GB.
