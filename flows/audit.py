@@ -230,7 +230,9 @@ def audit_flow(
             cache = calibration_task([b.path for b in staged.batches], reg.policy)
             timings["calibration_s"] = time.perf_counter() - t0
             t0 = time.perf_counter()
-            futures = audit_batch_task.map([b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache), unmapped(workers))
+            futures = audit_batch_task.map(
+                [b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache), unmapped(workers), unmapped(settings.model_time_limit_s)
+            )
             if progress:
                 _report_progress(futures, staged)
             batches = list(futures.result())

@@ -25,7 +25,7 @@ from fitaudit.core.exceptions import FitauditError
 from .batches import ModelInput, batch_metadata, read_batch
 from .registry import Policy, RejectedEntry
 from .results import model_record
-from .workers import run_local
+from .workers import TimeLimitExceeded, run_local, time_limit
 
 __all__ = ["Outcome", "settings_for", "audit_input", "audit_inputs", "audit_batch", "audit_batch_spilled", "light_outcome", "restore_outcomes", "spill_path", "finalize", "rejected_outcome", "records", "audit_batch_task", "candidates_for", "candidate_jobs", "candidate_tables", "tables_task", "candidates_for_jobs", "candidates_task", "with_candidates", "calibration_for", "calibration_task"]
 
@@ -71,8 +71,12 @@ def _spec_text(entry: Mapping[str, Any]) -> str:
         return str(entry.get("spec"))
 
 
-def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache) -> Outcome:
-    """Audit one staged model; data problems and failures become ``insufficient``/``error``."""
+def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_limit_s: float = 0.0) -> Outcome:
+    """Audit one staged model; data problems and failures become ``insufficient``/``error``.
+
+    ``time_limit_s`` bounds the model's audit where :func:`fitaudit.tasks.workers.time_limit` can
+    (the local worker processes); reaching it gives an ``error`` verdict.
+    """
     entry = item.entry
     base = dict(entry=entry, lineage=item.lineage, history=item.history, spec_text=_spec_text(entry))
     production = item.production
@@ -88,7 +92,16 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache) -> Ou
     t0 = time.perf_counter()
     try:
         settings = settings_for(entry, policy)
-        result = audit_series_for(item, settings, cache)
+        with time_limit(time_limit_s):
+            result = audit_series_for(item, settings, cache)
+    except TimeLimitExceeded as exc:
+        msg = (
+            f"model {item.model_id!r}: the audit did not finish within the time limit of {exc.seconds:g} s per model "
+            "(setting model_time_limit_s). A mean function that never returns, or a much longer series or larger "
+            "model than usual, can cause this: check the model spec and the series, or raise the limit; "
+            "the other models are unaffected."
+        )
+        return Outcome(verdict="error", reasons=(msg,), production=prod_meta, timings={"total_s": time.perf_counter() - t0}, **base)
     except Exception as exc:  # contain anything (e.g. a user's nonlinear function) to this model
         where = traceback.extract_tb(exc.__traceback__)[-1] if exc.__traceback__ else None
         at = f" (at {where.filename.rsplit('/', 1)[-1]}:{where.lineno})" if where else ""
@@ -123,15 +136,15 @@ def audit_series_for(item: ModelInput, settings: AuditSettings, cache: Calibrati
     )
 
 
-def audit_inputs(items: Iterable[ModelInput], policy: Policy, cache: CalibrationCache | None = None) -> list[Outcome]:
-    """Audit staged models with one shared calibration cache."""
+def audit_inputs(items: Iterable[ModelInput], policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0) -> list[Outcome]:
+    """Audit staged models with one shared calibration cache (``time_limit_s`` per model, see :func:`audit_input`)."""
     cache = cache if cache is not None else CalibrationCache()
-    return [audit_input(item, policy, cache) for item in items]
+    return [audit_input(item, policy, cache, time_limit_s) for item in items]
 
 
-def audit_batch(path: str, policy: Policy, cache: CalibrationCache | None = None) -> list[Outcome]:
+def audit_batch(path: str, policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0) -> list[Outcome]:
     """Audit every model of one staged batch file."""
-    return audit_inputs(read_batch(path), policy, cache)
+    return audit_inputs(read_batch(path), policy, cache, time_limit_s)
 
 
 #: CheckResult fields that only the records and pages need (the fleet rules use the others).
@@ -165,10 +178,10 @@ def light_outcome(outcome: Outcome) -> Outcome:
     return dataclasses.replace(outcome, entry={"id": outcome.entry.get("id")}, result=res, lineage={}, settings={}, spec_text="")
 
 
-def audit_batch_spilled(path: str, policy: Policy, cache: CalibrationCache | None = None) -> list[Outcome]:
+def audit_batch_spilled(path: str, policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0) -> list[Outcome]:
     """:func:`audit_batch`, keeping the full outcomes in :func:`spill_path` and returning them light
     (:func:`light_outcome`): the flow process never holds every model's full result."""
-    outcomes = audit_batch(path, policy, cache)
+    outcomes = audit_batch(path, policy, cache, time_limit_s)
     target = pathlib.Path(spill_path(path))
     tmp = target.with_name(target.name + ".tmp")
     tmp.write_bytes(pickle.dumps(outcomes, protocol=pickle.HIGHEST_PROTOCOL))
@@ -282,15 +295,18 @@ def calibration_task(batch_paths: list[str], policy: Policy) -> CalibrationCache
 
 
 @task(name="audit-batch", cache_policy=NO_CACHE, persist_result=False)
-def audit_batch_task(path: str, policy: Policy, cache: CalibrationCache | None = None, workers: str | None = None) -> list[Outcome]:
+def audit_batch_task(
+    path: str, policy: Policy, cache: CalibrationCache | None = None, workers: str | None = None, time_limit_s: float = 0.0
+) -> list[Outcome]:
     """Prefect task: audit one staged batch (a file path in, light outcomes out; the full ones
     wait in :func:`spill_path` for :func:`restore_outcomes`).
 
     ``workers`` is the token of the flow run's local worker processes
-    (:func:`fitaudit.tasks.workers.local_workers`); the batch is computed there when given.
+    (:func:`fitaudit.tasks.workers.local_workers`); the batch is computed there when given, and
+    only there is ``time_limit_s`` per model enforced.
     """
     t0 = time.perf_counter()
-    outcomes = run_local(workers, audit_batch_spilled, path, policy, cache)
+    outcomes = run_local(workers, audit_batch_spilled, path, policy, cache, time_limit_s)
     counts: dict[str, int] = {}
     for o in outcomes:
         counts[o.verdict] = counts.get(o.verdict, 0) + 1

@@ -27,6 +27,11 @@ class FitauditSettings(PrefectBaseSettings):
     registry_path: Path = Field(default=Path("./registry.yaml"), description="The model registry (YAML).")
     batch_size: int = Field(default=0, ge=0, description="Models per Prefect task; 0 chooses automatically.")
     processes: int = Field(default=0, ge=0, description="Local worker processes for the batches under the default task runner; 0 uses every CPU, 1 computes in the task threads.")
+    model_time_limit_s: float = Field(
+        default=900.0,
+        ge=0,
+        description="Wall-clock limit per model audit, enforced in the local worker processes (an error verdict when reached); 0 disables.",
+    )
     operator: str = Field(default="", description="Operator or service account recorded in each manifest.")
 
 

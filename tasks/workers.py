@@ -17,12 +17,13 @@ import concurrent.futures as cf
 import contextlib
 import multiprocessing
 import os
+import signal
 import sys
 import threading
 import uuid
 from typing import Any, Callable, Iterator, TypeVar
 
-__all__ = ["local_workers", "run_local", "default_processes"]
+__all__ = ["local_workers", "run_local", "default_processes", "time_limit", "TimeLimitExceeded", "can_limit_time"]
 
 T = TypeVar("T")
 
@@ -125,3 +126,46 @@ def run_local(token: str | None, fn: Callable[..., T], *args: Any) -> T:
     if pool is None:
         return fn(*args)
     return pool.submit(fn, *args).result()
+
+
+class TimeLimitExceeded(BaseException):
+    """Raised by :func:`time_limit` when its time is up.
+
+    A ``BaseException`` (like ``KeyboardInterrupt``), so that a user's ``except Exception`` inside
+    a mean function cannot swallow it and keep the model running.
+    """
+
+    def __init__(self, seconds: float):
+        super().__init__(f"time limit of {seconds:g} s reached")
+        self.seconds = seconds
+
+
+def can_limit_time() -> bool:
+    """True where :func:`time_limit` is enforced: the main thread of a process on a system with
+    ``SIGALRM`` (a local worker process, or a run in a plain script), not task threads or Dask."""
+    return hasattr(signal, "setitimer") and threading.current_thread() is threading.main_thread()
+
+
+@contextlib.contextmanager
+def time_limit(seconds: float | None) -> Iterator[bool]:
+    """Raise :class:`TimeLimitExceeded` in the block after ``seconds`` of wall time.
+
+    Uses an interval timer (``signal.setitimer``) and a ``SIGALRM`` handler, so it interrupts
+    Python code, including a user's mean function that never returns; C code that never returns
+    to the interpreter is not interrupted.  Enforced only where :func:`can_limit_time`; elsewhere,
+    and for ``seconds`` of 0 or None, the block runs unlimited.  Yields whether the limit is on.
+    """
+    if not seconds or seconds <= 0 or not can_limit_time():
+        yield False
+        return
+
+    def on_alarm(signum, frame):
+        raise TimeLimitExceeded(seconds)
+
+    previous = signal.signal(signal.SIGALRM, on_alarm)
+    signal.setitimer(signal.ITIMER_REAL, seconds)
+    try:
+        yield True
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, previous)

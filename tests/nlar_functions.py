@@ -46,3 +46,14 @@ def wrong_length(theta, lags, exog):
 
 
 NOT_A_FUNCTION = 42
+
+
+def never_returns(theta, lags, exog):
+    """A mean function stuck in an endless loop that even swallows ordinary exceptions."""
+    import time
+
+    while True:
+        try:
+            time.sleep(0.05)
+        except Exception:  # noqa: BLE001 - the point: user code that catches everything it can
+            pass

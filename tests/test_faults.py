@@ -23,6 +23,7 @@ import shutil
 import signal
 import subprocess
 import sys
+import threading
 import time
 
 import fsspec
@@ -309,3 +310,50 @@ def test_crash_in_a_user_mean_function_is_contained_to_its_model(prefect_server,
     ols = np.linalg.lstsq(np.column_stack([np.ones(198), y[1:-1], y[:-2]]), y[2:], rcond=None)[0]
     fitted = records["nlar-ok"]["audit"]["fitted"]["params"]
     np.testing.assert_allclose([fitted["c"], fitted["a1"], fitted["a2"]], ols, rtol=1e-5)
+
+
+# ------------------------------------------------------------------------------------------
+# (d) a user mean function that never returns
+# ------------------------------------------------------------------------------------------
+def test_time_limit_interrupts_python_code_in_the_main_thread_only():
+    from fitaudit.tasks.workers import TimeLimitExceeded, can_limit_time, time_limit
+    from nlar_functions import never_returns
+
+    assert can_limit_time()  # pytest runs tests in the main thread
+    with pytest.raises(TimeLimitExceeded, match="time limit of 0.3 s"):
+        with time_limit(0.3) as on:
+            assert on
+            never_returns(None, None, None)  # catches Exception, not the BaseException of the limit
+    with time_limit(0) as on:  # 0 disables
+        assert not on
+    seen = []
+    worker = threading.Thread(target=lambda: seen.append(time_limit(5).__enter__()))
+    worker.start()
+    worker.join()
+    assert seen == [False]  # not enforced outside the main thread (task threads, Dask workers)
+
+
+def test_model_that_never_returns_gets_an_error_and_the_run_completes(prefect_server, tmp_path, monkeypatch):
+    """In the local worker processes the per-model time limit stops a hanging user function."""
+    from fitaudit.flows.audit import audit_flow
+
+    monkeypatch.setenv("PREFECT_INTEGRATIONS_FITAUDIT_PROCESSES", "2")  # worker processes even for a small run
+    monkeypatch.setenv("PREFECT_INTEGRATIONS_FITAUDIT_MODEL_TIME_LIMIT_S", "4")
+    rng = np.random.default_rng(5)
+    fleet = Fleet(tmp_path)
+    series = {name: {"date": days(), "y": ar1(rng)} for name in ["nlar-hangs", "arima-a", "arima-b"]}
+    write_parquet(tmp_path / "data" / "main.parquet", long_table(series))
+    fleet.source("main", "data/main.parquet")
+    start = {"c": 25.0, "a1": 0.4, "a2": 0.1}
+    fleet.model("nlar-hangs", "main", "nlar-hangs", spec={"family": "nonlinear-ar", "function": "nlar_functions:never_returns", "lags": [1, 2], "start": start})
+    fleet.model("arima-a", "main", "arima-a")
+    fleet.model("arima-b", "main", "arima-b")
+    fleet.write()
+    run = audit_flow(registry=str(tmp_path / "registry.yaml"), as_of=AS_OF, archive=str(tmp_path / "archive"), batch_size=1)
+    records = {m["id"]: m for m in results_of(run)["models"]}
+    message = " ".join(records["nlar-hangs"]["reasons"])
+    assert records["nlar-hangs"]["verdict"] == "error", message
+    # source: the message contract of issue 8 (names the model, the cause and the fix)
+    assert "model 'nlar-hangs'" in message and "time limit of 4 s per model" in message and "raise the limit" in message
+    assert records["arima-a"]["verdict"] in AUDITED and records["arima-b"]["verdict"] in AUDITED
+    assert verify_archive(run["archive"]) == []
