@@ -1212,25 +1212,18 @@ def _in_use(folder: pathlib.Path) -> bool:
 def _remove_abandoned(root: pathlib.Path) -> list[str]:
     """Delete abandoned staging and work folders, half-deleted purged folders and temporary journal files.
 
-    The caller holds the archive lock, so no new staging folder appears meanwhile.
+    The caller holds the archive lock, so no new staging or work folder appears meanwhile.
     """
     actions = []
-    for path in _children(root / _STAGING):
-        if path.is_symlink() or not path.is_dir():
-            path.unlink()
-        elif _in_use(path):
-            continue
-        else:
-            _remove_tree(path)
-        actions.append(f"removed abandoned staging entry {_rel(root, path)}")
-    for path in _children(root / _WORK):
-        if path.is_symlink() or not path.is_dir():
-            path.unlink()
-        elif _in_use(path):
-            continue
-        else:
-            _remove_tree(path)
-        actions.append(f"removed the work folder of an interrupted run {_rel(root, path)}")
+    for folder, what in ((_STAGING, "abandoned staging entry"), (_WORK, "the work folder of an interrupted run")):
+        for path in _children(root / folder):
+            if path.is_symlink() or not path.is_dir():
+                path.unlink()
+            elif _in_use(path):
+                continue
+            else:
+                _remove_tree(path)
+            actions.append(f"removed {what} {_rel(root, path)}")
     for path in _children(root / _TRASH):
         _remove_tree(path)
         actions.append(f"finished deleting purged folder {_rel(root, path)}")
