@@ -579,7 +579,7 @@ def _production_check(model, y, exog, params, law_prod: NoiseLaw, settings, cach
             raise InputError(f"{label}: the production parameters give infinite forecast errors; check the parameter version.")
         if law_prod.discrete:
             mean = y[-w:] - tail
-            nparams = law_prod.fit_counts(y[-w:], mean) if law_prod.has_shape and law_prod.shape is None else law_prod.fit_counts(y[-w:], mean)
+            nparams = law_prod.fit_counts(y[-w:], mean)
             u = law_prod.randomized_pit(y[-w:], mean, nparams, key_rng(settings.seed, "pit", "production", _digest(y)))
         else:
             sigma2 = float(params["sigma2"])

@@ -201,6 +201,12 @@ class _Location:
     is_dir: bool
     raise_io: bool = False  # OSError while reading propagates (retried by the caller) instead of skipping the file
 
+    def pass_io_error(self, exc: BaseException) -> None:
+        """Re-raise ``exc`` when it is an ``OSError`` and I/O errors propagate (``io_errors="raise"``),
+        so that the caller's task retries; otherwise return and let the caller name the file."""
+        if self.raise_io and isinstance(exc, OSError):
+            raise exc
+
     def fail(self, what: str, fix: str) -> ExtractError:
         """An ExtractError naming the source, its URI and the resolved path."""
         src = self.source
@@ -308,8 +314,7 @@ def _inspect_files(loc: _Location) -> list[_File]:
             meta = pq.read_metadata(path, filesystem=loc.fs)
             schema = meta.schema.to_arrow_schema()
         except (pa.ArrowException, OSError, ValueError) as exc:
-            if loc.raise_io and isinstance(exc, OSError):
-                raise
+            loc.pass_io_error(exc)
             detail = (str(exc).splitlines() or [type(exc).__name__])[0]
             if size == 0:
                 reason = "empty file (0 bytes)"
@@ -604,8 +609,7 @@ def read_series(
         try:
             chunks = _scan_unified(loc, readable, src, keys, columns, start_ns, end_ns)
         except (pa.ArrowException, OSError) as exc:
-            if loc.raise_io and isinstance(exc, OSError):
-                raise
+            loc.pass_io_error(exc)
             chunks = None  # a file that looked fine fails mid-read: fall back to file by file
     if chunks is None:
         chunks, more_skipped = _scan_file_by_file(loc, readable, src, keys, columns, start_ns, end_ns)
@@ -621,8 +625,7 @@ def _scan_file_by_file(loc, readable, src, keys, columns, start, end) -> tuple[l
         try:
             chunk = _scan_file(loc, f, src, keys, columns, start, end)
         except (pa.ArrowException, OSError) as exc:
-            if loc.raise_io and isinstance(exc, OSError):
-                raise
+            loc.pass_io_error(exc)
             skipped.append((_relative(loc, f.path), f"failed while reading ({str(exc).splitlines()[0]})"))
             continue
         if chunk is not None:
@@ -755,8 +758,7 @@ def _present_keys(loc: _Location, readable: list[_File], src: SourceEntry) -> li
         try:
             keys = _to_keys(_dataset(loc, [f.path]).to_table(columns=[src.key])[src.key])
         except (pa.ArrowException, OSError) as exc:
-            if loc.raise_io and isinstance(exc, OSError):
-                raise
+            loc.pass_io_error(exc)
             continue
         found.update(k for k in keys if k != _NULL_KEY)
     return sorted(found)
@@ -1015,9 +1017,8 @@ def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None =
     for f in files:
         try:
             digest = _hash_file(loc, f.path)
-        except OSError:
-            if loc.raise_io:
-                raise
+        except OSError as exc:
+            loc.pass_io_error(exc)
             digest = ""  # the bytes cannot even be read
         prints.append(FileFingerprint(f.path, f.size, digest))
         listing.append([_relative(loc, f.path), f.size, digest])
@@ -1050,8 +1051,7 @@ def _time_range(
         try:
             t, _, why = _to_time(_dataset(loc, [f.path]).to_table(columns=[time_column])[time_column])
         except (pa.ArrowException, OSError) as exc:
-            if loc.raise_io and isinstance(exc, OSError):
-                raise
+            loc.pass_io_error(exc)
             failed.append(f.path)
             continue
         if t is None or why:

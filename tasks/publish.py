@@ -1,17 +1,18 @@
 """Publishing a run: results twins, report pages and manifest into the archive; history back out.
 
-:func:`publish_run` writes ``results.json`` (the document, deterministic), ``results.parquet``
-(one row per model), the HTML pages rendered from the document, and ``manifest.json`` (hashes,
-inputs' fingerprints, versions, seeds, timings) through :class:`~fitaudit.tasks.archive.RunWriter`,
+A run folder holds ``results.json`` (the document, deterministic), ``results.parquet`` (one row
+per model), the HTML pages rendered from the document, and ``manifest.json`` (hashes, inputs'
+fingerprints, versions, seeds, timings), written through :class:`~fitaudit.tasks.archive.RunWriter`,
 which makes the run visible only when complete and links it into the hash chain.
 :func:`load_history` reads earlier verdicts back from the archive for trends and persistence.
 
-The audit flow publishes the same files without ever holding the whole document or every page:
-:func:`render_outcomes` (one call per batch, in parallel) turns a batch's outcomes into records,
-writes each record's canonical JSON and its model page to the run's work folder and keeps only a
+The audit flow never holds the whole document or every page: :func:`render_outcomes` (one call
+per batch, in parallel) turns a batch's outcomes into records, writes each record's canonical JSON
+and its model page to the run's work folder and keeps only a
 :func:`~fitaudit.tasks.results.light_record` per model; :func:`publish_staged` then streams
 ``results.json`` from those pieces and renders the run page from the light records.  The files
-are byte for byte those of :func:`publish_run` on the full document.
+are byte for byte ``canonical_json(doc)`` and ``render_run(doc, meta)`` of the full document
+(tests/test_optimisations.py).
 """
 
 from __future__ import annotations
@@ -35,12 +36,11 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from ._io import canonical_json
-from .archive import PublishedRun, list_runs, new_run_id, open_run
+from .archive import PublishedRun, list_runs, open_run
 from .results import light_record, results_json_chunks, results_rows
 from .workers import run_local
 
 __all__ = [
-    "publish_run",
     "StagedRecord",
     "stage_records",
     "render_outcomes",
@@ -93,32 +93,6 @@ def _parquet_bytes(rows: Sequence[Mapping[str, Any]]) -> bytes:
     buf = io.BytesIO()
     pq.write_table(table, buf, compression="zstd")
     return buf.getvalue()
-
-
-def publish_run(
-    archive_root: str | os.PathLike,
-    doc: dict,
-    pages: Mapping[str, bytes],
-    manifest: dict,
-    *,
-    run_id: str | None = None,
-) -> PublishedRun:
-    """Write a complete run folder and link it into the chain (visible only when complete).
-
-    ``doc`` is the results document; ``pages`` maps relative paths (``index.html``,
-    ``models/<safe-id>.html``, ...) to bytes; ``manifest`` holds the caller's run metadata
-    (``finish`` adds every file's SHA-256 and size).
-    """
-    as_of = dt.date.fromisoformat(doc["run"]["as_of"])
-    run_id = run_id or new_run_id(as_of)
-    writer = open_run(archive_root, run_id, as_of.year, as_of=as_of)
-    with writer:
-        writer.write_bytes("results.json", canonical_json(doc))
-        writer.write_bytes("results.parquet", _parquet_bytes(results_rows(doc)))
-        for rel, data in sorted(pages.items()):
-            writer.write_bytes(rel, data)
-        published = writer.finish(dict(manifest, run_id=run_id, as_of=as_of.isoformat()))
-    return published
 
 
 @dataclass(frozen=True)
@@ -215,10 +189,9 @@ def publish_staged(
 ) -> PublishedRun:
     """Publish a run whose records and model pages were staged (:func:`stage_records`).
 
-    Writes the same files as :func:`publish_run` would for the document ``head`` + ``summary`` +
-    the records (sorted by id): ``results.json`` streamed from the staged pieces, ``results.parquet``
-    and the run page from the light records, the staged model pages, ``method.html`` and the
-    manifest.
+    Writes the run folder of the document ``head`` + ``summary`` + the records (sorted by id):
+    ``results.json`` streamed from the staged pieces, ``results.parquet`` and the run page from
+    the light records, the staged model pages, ``method.html`` and the manifest.
     """
     from .report import page_context, render_index_page, render_method_page
 

@@ -162,14 +162,18 @@ def _svg(c: Mapping[str, Any]) -> markupsafe.Markup:
     """
     esc, px = markupsafe.escape, _coord
     cid = esc(c["id"])
+
+    def line(g: Mapping[str, Any]) -> str:
+        return f'<line x1="{px(g["x1"])}" y1="{px(g["y1"])}" x2="{px(g["x2"])}" y2="{px(g["y2"])}" class="{esc(g["cls"])}"/>'
+
     out = [
         f'<svg class="chart {esc(c["cls"])}" role="img" aria-labelledby="{cid}-t {cid}-d" viewBox="0 0 {px(c["w"])} {px(c["h"])}" '
         f'width="{px(c["w"])}" height="{px(c["h"])}">\n<title id="{cid}-t">{esc(c["title"])}</title>\n<desc id="{cid}-d">{esc(c["desc"])}</desc>\n',
-        "".join(f'<line x1="{px(g["x1"])}" y1="{px(g["y1"])}" x2="{px(g["x2"])}" y2="{px(g["y2"])}" class="{esc(g["cls"])}"/>' for g in c["grid"]),
+        "".join(map(line, c["grid"])),
         "\n",
         "".join(f'<rect x="{px(r["x"])}" y="{px(r["y"])}" width="{px(r["w"])}" height="{px(r["h"])}" class="{esc(r["cls"])}"/>' for r in c["rects"]),
         "\n",
-        "".join(f'<line x1="{px(g["x1"])}" y1="{px(g["y1"])}" x2="{px(g["x2"])}" y2="{px(g["y2"])}" class="{esc(g["cls"])}"/>' for g in c["lines"]),
+        "".join(map(line, c["lines"])),
         "\n",
         "".join(f'<polyline points="{esc(p["points"])}" class="{esc(p["cls"])}"/>' for p in c["polylines"]),
         "\n",
