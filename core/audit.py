@@ -519,6 +519,30 @@ def _score(
     )
 
 
+def score_frozen(
+    e: np.ndarray,
+    u: np.ndarray,
+    law: NoiseLaw,
+    nparams: NoiseParams,
+    period: int,
+    settings: AuditSettings,
+    cache: CalibrationCache | None,
+    window: dict,
+    kind: str = "production",
+) -> CheckResult:
+    """Score PIT values ``u`` of errors ``e`` whose law was fixed before the data were seen.
+
+    The production check (frozen parameters) and forecast audits (stated predictive laws) share
+    this path: nothing is estimated from ``u``, so its null is exact (i.i.d. U(0, 1) PIT values,
+    docs/method.md "Calibration") and one table per window length serves a whole run.
+    """
+    table_for = None
+    if settings.calibration != "asymptotic":
+        def table_for(n, s):
+            return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache)
+    return _score(kind, e, u, law, nparams, 0, 0, period, settings, table_for, window, cache)
+
+
 def _failed_check(kind: str, exc: BaseException, window: dict | None = None, label: str | None = None) -> CheckResult:
     status = "insufficient" if isinstance(exc, InsufficientDataError) else "error"
     msg = str(exc) or type(exc).__name__
@@ -590,11 +614,7 @@ def _production_check(model, y, exog, params, law_prod: NoiseLaw, settings, cach
                 )
             nparams = law_prod.from_variance(sigma2)
             u = law_prod.cdf(tail, nparams)
-        table_for = None
-        if settings.calibration != "asymptotic":
-            def table_for(n, s):
-                return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache)
-        check = _score("production", tail, u, law_prod, nparams, 0, 0, model.seasonal_period(), settings, table_for, window, cache)
+        check = score_frozen(tail, u, law_prod, nparams, model.seasonal_period(), settings, cache, window)
         return check, np.asarray(errors, dtype=float), nparams
     except (FitauditError, ValueError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError) as exc:
         return _failed_check("production", exc, window, label), None, None
