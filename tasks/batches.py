@@ -26,18 +26,17 @@ from fitaudit.core.models import model_from_dict
 
 from ._io import json_ready
 from .extracts import ExtractError, ExtractFingerprint, SeriesProblem, fingerprint_source, read_series, series_problems
+from .frequencies import FREQUENCY_DAYS
 from .params import ParameterStoreError, production_version
 from .registry import ModelEntry, Registry
 
-__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "FREQUENCY_DAYS", "ROW_KINDS"]
+__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "ROW_KINDS"]
 
 #: Problems about individual rows: re-checked on the model's own window (a flaw before it does not
 #: stop the audit).  Every other problem (a missing or mistyped column, mixed time zones, rows
 #: without a timestamp) concerns the series as a whole and is kept as the reader found it.
 ROW_KINDS = frozenset({"duplicate-time", "unsorted", "off-grid", "gap", "non-finite", "missing-exogenous"})
 
-#: Upper bound of one period of each registry frequency, in days (for the time range to read).
-FREQUENCY_DAYS = {"15min": 1 / 96, "30min": 1 / 48, "H": 1 / 24, "D": 1, "W": 7, "MS": 31, "M": 31, "QS": 92, "Q": 92}
 
 
 @dataclass(frozen=True)

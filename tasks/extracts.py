@@ -44,7 +44,8 @@ import pyarrow.parquet as pq
 from fitaudit.core.exceptions import FitauditError, InputError
 
 from ._io import canonical_json, sha256_bytes, sha256_file
-from .registry import FREQUENCIES, SourceEntry
+from .frequencies import CALENDAR_STEPS, FIXED_STEPS, FREQUENCIES, SUBDAILY
+from .registry import SourceEntry
 
 __all__ = [
     "ExtractError",
@@ -59,14 +60,6 @@ __all__ = [
 
 _SHOW = 5  # timestamps / keys quoted in one message
 _IGNORED_PREFIXES = (".", "_")  # as pyarrow.dataset: hidden files, _SUCCESS, _metadata
-_FIXED_STEPS = {
-    "15min": np.timedelta64(15, "m"),
-    "30min": np.timedelta64(30, "m"),
-    "H": np.timedelta64(1, "h"),
-    "D": np.timedelta64(1, "D"),
-    "W": np.timedelta64(7, "D"),
-}
-_CALENDAR_STEPS = {"MS": (1, "start"), "M": (1, "end"), "QS": (3, "start"), "Q": (3, "end")}
 _NS = np.dtype("datetime64[ns]")
 _IO_FAILURE = "could not be read"  # reason of a file whose bytes failed to load (OSError)
 _NULL_KEY = "\x00null"  # stands for a null key; registry keys cannot contain NUL
@@ -807,7 +800,7 @@ def series_problems(
     columns : mapping of str to ndarray
         Target and exogenous values aligned with ``time``.
     frequency : str
-        A code of :data:`fitaudit.tasks.registry.FREQUENCIES`.
+        A code of :data:`fitaudit.tasks.frequencies.FREQUENCIES`.
     source : str
         Source name (for messages).
     min_length : int
@@ -891,7 +884,7 @@ def _grid_problems(time: np.ndarray, frequency: str) -> list[tuple[str, str]]:
     if off.size:
         dst = (
             ""
-            if frequency in ("15min", "30min", "H")
+            if frequency in SUBDAILY
             else (
                 " (Time-zone-aware local timestamps shift by an hour in UTC across daylight-saving changes: store daily and "
                 "coarser data as dates.)"
@@ -927,8 +920,8 @@ def _grid_problems(time: np.ndarray, frequency: str) -> list[tuple[str, str]]:
 
 def _grid_index(t: np.ndarray, frequency: str):
     """(grid position of each time, on-grid mask, function from positions back to times)."""
-    if frequency in _FIXED_STEPS:
-        step = _FIXED_STEPS[frequency].astype("timedelta64[ns]").astype(np.int64)
+    if frequency in FIXED_STEPS:
+        step = FIXED_STEPS[frequency].astype("timedelta64[ns]").astype(np.int64)
         ns = t.astype(np.int64)
         residues, counts = np.unique(ns % step, return_counts=True)
         anchor = int(residues[np.argmax(counts)])
@@ -940,7 +933,7 @@ def _grid_index(t: np.ndarray, frequency: str):
             return (base + positions.astype(np.int64) * step).astype(_NS)
 
         return index, on_grid, to_time
-    months_per_step, side = _CALENDAR_STEPS[frequency]
+    months_per_step, side = CALENDAR_STEPS[frequency]
     months = t.astype("datetime64[M]")
     month_number = months.astype(np.int64)  # months since 1970-01
     anchors = _month_anchor(months, side)

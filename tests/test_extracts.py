@@ -32,7 +32,8 @@ from fitaudit.tasks.extracts import (
     read_series,
     series_problems,
 )
-from fitaudit.tasks.registry import FREQUENCIES, SourceEntry
+from fitaudit.tasks.frequencies import FREQUENCY_DAYS, FREQUENCIES, SUBDAILY
+from fitaudit.tasks.registry import SourceEntry
 
 SOURCE = SourceEntry(
     name="demand", uri="demand.parquet", key="district", time="date", value="demand",
@@ -480,6 +481,15 @@ def test_grid_of_every_frequency_against_pandas(frequency, rng):
     for stamp in grid[dropped]:
         ts = pd.Timestamp(stamp)
         assert (ts.strftime("%Y-%m-%d") if ts == ts.normalize() else ts.isoformat()) in gap.message
+
+
+@pytest.mark.parametrize("frequency", list(FREQUENCIES))
+def test_frequency_days_bound_every_period(frequency):
+    # source: pandas.date_range gives the calendar periods of each frequency (leap years included)
+    grid = pd.date_range("1999-12-01", "2031-01-31", freq=_PANDAS_FREQ[frequency])[:20_000]
+    longest = (grid[1:] - grid[:-1]).max() / pd.Timedelta(days=1)
+    assert FREQUENCY_DAYS[frequency] == longest  # the bound is tight: the longest month is 31 days, quarter 92
+    assert (frequency in SUBDAILY) == (longest < 1)
 
 
 @pytest.mark.parametrize("frequency, bad", [("MS", "2020-03-15"), ("M", "2020-03-01"), ("QS", "2020-02-01"), ("Q", "2020-05-31"),
