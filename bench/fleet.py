@@ -22,6 +22,8 @@ import pathlib
 import tempfile
 import time
 
+from fitaudit.core.vocabulary import VERDICTS
+
 from .fleet_data import AS_OF, fleet_series, model_ids, write_fleet
 from .harness import WorkClock, child_env, run_child, warm_prefect_home, write_result
 from .peer import measure_peer
@@ -95,7 +97,7 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
     ratio = ours_rate / peer["series_per_second"]
     share = ours["orchestration_s"] / ours["flow_s"]
     c = ours["counts"]
-    verdicts = ", ".join(f"{c[v]} {v}" for v in ("pass", "refit", "respecify", "insufficient", "error") if c.get(v))
+    verdicts = ", ".join(f"{c[v]} {v}" for v in VERDICTS if c.get(v))
     fam = ", ".join(f"{k} {v:.2f} s" for k, v in sorted(peer["per_family_s"].items()))
     return [
         {

@@ -27,7 +27,7 @@ import math
 import time
 import warnings
 from dataclasses import dataclass, field
-from typing import Any, Literal, Mapping, Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
@@ -54,21 +54,18 @@ from .exceptions import ConvergenceWarning, FitauditError, InputError, Insuffici
 from .fleet import adjust_pvalues, escalate_persistent_refit
 from .models import ForecastModel, check_series, exog_matrix, model_from_dict
 from .noise import NoiseLaw, NoiseParams, get_law
+from .vocabulary import ADJUDICATED_VERDICTS, ADJUSTMENT_LABELS, Calibration
 
 __all__ = [
     "AuditSettings",
     "CheckResult",
     "AuditResult",
-    "VERDICTS",
     "audit_series",
     "apply_fleet_rules",
     "prepare_calibration",
     "as_model",
     "as_noise_law",
 ]
-
-VERDICTS = ("pass", "refit", "respecify", "insufficient", "error")
-Calibration = Literal["asymptotic", "simulated", "bootstrap"]
 
 
 # --------------------------------------------------------------------------------------------
@@ -955,12 +952,12 @@ def apply_fleet_rules(
     out = []
     for i, res in enumerate(results):
         res = dataclasses.replace(res, **updated[i]) if updated[i] else res
-        if res.verdict in ("pass", "refit", "respecify"):
+        if res.verdict in ADJUDICATED_VERDICTS:
             use_adjusted = method != "none"
             threshold = q if use_adjusted else None
             verdict, reasons = decide_verdict(res.production, res.refit, threshold if threshold is not None else res.refit.settings_level, adjusted=use_adjusted)
             if use_adjusted:
-                reasons = reasons + (f"p-values were adjusted across the run's {len(pvals)} checks ({_method_name(method)}, q = {q:g}).",)
+                reasons = reasons + (f"p-values were adjusted across the run's {len(pvals)} checks ({ADJUSTMENT_LABELS.get(method, method)}, q = {q:g}).",)
             escalated = False
             if verdict == "refit" and escalate_persistent_refit(list(histories[i]), verdict, k=k, n=n):
                 verdict, escalated = "respecify", True
@@ -968,7 +965,3 @@ def apply_fleet_rules(
             res = dataclasses.replace(res, verdict=verdict, reasons=reasons, escalated=escalated)
         out.append(res)
     return out
-
-
-def _method_name(method: str) -> str:
-    return {"bh": "Benjamini-Hochberg", "by": "Benjamini-Yekutieli", "bonferroni": "Bonferroni", "none": "no adjustment"}.get(method, method)

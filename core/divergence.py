@@ -49,6 +49,7 @@ from .exceptions import InputError
 __all__ = [
     "SCALINGS",
     "CLASSICAL_MEMBERS",
+    "CLASSICAL_MEMBER_LABELS",
     "DEFAULT_ALPHAS",
     "DEFAULT_BETAS",
     "DivergenceMap",
@@ -69,6 +70,14 @@ CLASSICAL_MEMBERS: dict[str, tuple[float, float, str]] = {
     "cressie-read-2/3": (5.0 / 3.0, 0.0, "model"),
     "freeman-tukey": (0.5, 0.0, "model"),
     "neyman": (-1.0, 0.0, "model"),
+}
+#: How reports and tables name the classical members (Cressie and Read 1984, section 2).
+CLASSICAL_MEMBER_LABELS: dict[str, str] = {
+    "pearson": "Pearson X²",
+    "likelihood-ratio": "G² (likelihood ratio)",
+    "cressie-read-2/3": "Cressie-Read λ = 2/3",
+    "freeman-tukey": "Freeman-Tukey",
+    "neyman": "Neyman",
 }
 
 #: The default grid of design.md section 4: alpha = -1..3 step 0.25, beta = 0..1 step 0.125.

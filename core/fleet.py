@@ -10,22 +10,17 @@ References
 
 from __future__ import annotations
 
-from typing import Literal, Sequence
+from typing import Sequence
 
 import numpy as np
 
 from .exceptions import InputError
+from .vocabulary import ADJUSTMENTS, VERDICTS, Adjustment
 
-__all__ = ["ADJUSTMENTS", "VERDICTS", "adjust_pvalues", "expected_false_flags", "escalate_persistent_refit"]
-
-#: Methods accepted by :func:`adjust_pvalues`.
-ADJUSTMENTS: tuple[str, ...] = ("bh", "by", "bonferroni", "none")
-
-#: The verdict vocabulary of design.md section 2.
-VERDICTS: tuple[str, ...] = ("pass", "refit", "respecify", "insufficient", "error")
+__all__ = ["adjust_pvalues", "expected_false_flags", "escalate_persistent_refit"]
 
 
-def adjust_pvalues(p, method: Literal["bh", "by", "bonferroni", "none"] = "bh") -> np.ndarray:
+def adjust_pvalues(p, method: Adjustment = "bh") -> np.ndarray:
     """Multiplicity-adjusted p-values across the models of an audit run.
 
     With the m non-NaN p-values sorted, ``p_(1) <= ... <= p_(m)``:

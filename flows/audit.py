@@ -11,11 +11,13 @@ import datetime as dt
 import pathlib
 import pickle
 import time
+
 from prefect import flow, get_run_logger, task, unmapped
 from prefect.cache_policies import NO_CACHE
 from prefect.task_runners import ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
+from fitaudit.core.vocabulary import VERDICTS
 from fitaudit.tasks.archive import new_run_id, open_work_folder, recover
 from fitaudit.tasks.audit import (
     Outcome,
@@ -286,7 +288,7 @@ def audit_flow(
             "source_errors": staged.source_errors,
             "policy": reg.policy.to_dict(),
             "seeds": {"policy_seed": reg.policy.seed},
-            "counts": {k: summary[k] for k in ("registered", "audited", "pass", "refit", "respecify", "insufficient", "error")},
+            "counts": {k: summary[k] for k in ("registered", "audited", *VERDICTS)},
             "batches": len(staged.batches),
             "calibration_tables": len(cache),
             "recovered": recovered,

@@ -19,12 +19,13 @@ import pathlib
 import sys
 from typing import Sequence
 
+from fitaudit.core.vocabulary import VERDICTS
+
 from . import _env
 
 __all__ = ["main", "build_parser"]
 
 EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_FAIL_ON, EXIT_VERIFY = 0, 1, 2, 3, 4
-VERDICTS = ("pass", "refit", "respecify", "insufficient", "error")
 
 
 def _date(text: str) -> dt.date:

@@ -14,6 +14,8 @@ from typing import Any, Mapping, Sequence
 from prefect.artifacts import create_link_artifact, create_markdown_artifact, create_table_artifact
 from prefect.events import emit_event
 
+from fitaudit.core.vocabulary import VERDICTS
+
 __all__ = ["EVENT_PREFIX", "verdict_event_name", "emit_verdict_events", "emit_run_event", "publish_artifacts", "artifact_key"]
 
 EVENT_PREFIX = "fitaudit"
@@ -65,7 +67,7 @@ def emit_run_event(run: Mapping[str, Any], summary: Mapping[str, Any]) -> None:
     emit_event(
         event=f"{EVENT_PREFIX}.run.completed",
         resource={"prefect.resource.id": f"{EVENT_PREFIX}.run.{run['run_id']}", "prefect.resource.name": run["run_id"]},
-        payload={"as_of": run["as_of"], "report": run.get("report_path"), **{k: summary.get(k) for k in ("registered", "audited", "pass", "refit", "respecify", "insufficient", "error")}},
+        payload={"as_of": run["as_of"], "report": run.get("report_path"), **{k: summary.get(k) for k in ("registered", "audited", *VERDICTS)}},
     )
 
 
@@ -82,7 +84,7 @@ def publish_artifacts(records: Sequence[Mapping[str, Any]], summary: Mapping[str
         "",
         "| verdict | models |",
         "| --- | --- |",
-        *[f"| {v} | {summary[v]} |" for v in ("pass", "refit", "respecify", "insufficient", "error")],
+        *[f"| {v} | {summary[v]} |" for v in VERDICTS],
         "",
         "Audit results inform people; they do not replace model validation.",
     ]

@@ -33,21 +33,18 @@ from typing import Any, Iterable, Mapping, Sequence
 import jinja2
 import markupsafe
 
+from fitaudit.core.divergence import CLASSICAL_MEMBER_LABELS, CLASSICAL_MEMBERS
 from fitaudit.core.exceptions import InputError
+from fitaudit.core.vocabulary import ADJUSTMENT_LABELS, VERDICTS
 
 from .registry import SAFE_ID
 from .results import SEVERITY
 
 __all__ = ["STATUS", "HEAT_BINS", "CAUTION", "environment", "render_run", "page_context", "render_model_page", "render_index_page", "render_method_page", "render_archive_index"]
 
+_SYMBOLS = {"pass": "✓", "refit": "↻", "respecify": "⚑", "insufficient": "◌", "error": "✕"}
 #: Status symbol and word for each verdict (colour is never the only signal, WCAG 2.1 SC 1.4.1).
-STATUS: dict[str, tuple[str, str]] = {
-    "pass": ("✓", "pass"),
-    "refit": ("↻", "refit"),
-    "respecify": ("⚑", "respecify"),
-    "insufficient": ("◌", "insufficient"),
-    "error": ("✕", "error"),
-}
+STATUS: dict[str, tuple[str, str]] = {v: (_SYMBOLS[v], v) for v in VERDICTS}
 
 #: Upper edges of the heat-map classes of T / critical value (class ``h1`` .. ``h8``); 1 is the gate.
 HEAT_BINS: tuple[float, ...] = (0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 4.0)
@@ -65,21 +62,8 @@ _MOVEMENT = {
     "steady": "still passing",
     "first": "first audit",
 }
-_MEMBER_LABELS = {
-    "pearson": "Pearson X²",
-    "likelihood-ratio": "G² (likelihood ratio)",
-    "cressie-read-2/3": "Cressie-Read λ = 2/3",
-    "freeman-tukey": "Freeman-Tukey",
-    "neyman": "Neyman",
-}
 #: (alpha, beta) of the classical members (model scaling, i.e. beta = 0 on a geometric grid).
-_MEMBER_POINTS = {
-    "pearson": (2.0, 0.0),
-    "likelihood-ratio": (1.0, 0.0),
-    "cressie-read-2/3": (5.0 / 3.0, 0.0),
-    "freeman-tukey": (0.5, 0.0),
-    "neyman": (-1.0, 0.0),
-}
+_MEMBER_POINTS = {name: (alpha, beta) for name, (alpha, beta, _scaling) in CLASSICAL_MEMBERS.items()}
 _HISTORY_CELLS = 8
 _SHORT_TEXT = 160
 _REQUIRED_META = ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "code_commit", "prefect_version")
@@ -440,7 +424,7 @@ def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
             cx = cell_x(0) + cw / 2
             chart["circles"].append({"cx": cx, "cy": cy, "r": 4.5, "cls": "mem"})
             chart["lines"].append({"x1": left - 50, "y1": cy, "x2": left - 38, "y2": cy, "cls": "lead"})
-            chart["texts"].append({"x": left - 53, "y": cy + 3.5, "text": _MEMBER_LABELS[name], "cls": "mt", "anchor": "end"})
+            chart["texts"].append({"x": left - 53, "y": cy + 3.5, "text": CLASSICAL_MEMBER_LABELS[name], "cls": "mt", "anchor": "end"})
             members_marked.append(name)
     a_max, b_max = _float(check.get("alpha_max")), _float(check.get("beta_max"))
     max_point = None
@@ -458,7 +442,7 @@ def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
         "n_points": na * nb,
         "largest": largest,
         "max_point": max_point,
-        "members_marked": [_MEMBER_LABELS[m] for m in members_marked],
+        "members_marked": [CLASSICAL_MEMBER_LABELS[m] for m in members_marked],
         "bins": _heat_legend(),
     }
 
@@ -653,7 +637,7 @@ def _summary_view(doc: Mapping[str, Any]) -> dict:
             segments.append({"x": x0, "w": w, "cls": f"f-{c['key']}", "key": c["key"]})
             x0 += w
     adj = s.get("adjustment") or {}
-    method = {"bh": "Benjamini-Hochberg", "by": "Benjamini-Yekutieli", "bonferroni": "Bonferroni", "none": "no adjustment"}.get(adj.get("method"), _text(adj.get("method")))
+    method = ADJUSTMENT_LABELS.get(adj.get("method"), _text(adj.get("method")))
     bar = _chart("summary-bar", width, 28.0, "Verdicts of the registered models",
                  "Share of each verdict among the registered models: " + "; ".join(f"{c['status']['word']} {c['value']}" for c in counts) + ".")
     bar["cls"] = "stack"
@@ -813,7 +797,7 @@ def _members_rows(check: Mapping[str, Any]) -> list[dict]:
     for name, entry in (check.get("members") or {}).items():
         a, b = _MEMBER_POINTS.get(name, (None, None))
         rows.append({
-            "name": _MEMBER_LABELS.get(name, _text(name)),
+            "name": CLASSICAL_MEMBER_LABELS.get(name, _text(name)),
             "alpha": "5/3" if name == "cressie-read-2/3" else _format_number(a),
             "beta": _format_number(b),
             "statistic": _format_number((entry or {}).get("statistic")),

@@ -24,11 +24,12 @@ from __future__ import annotations
 
 from typing import Any, Iterable, Iterator, Mapping, Sequence
 
+from fitaudit.core.vocabulary import ADJUDICATED_VERDICTS, VERDICTS
+
 __all__ = [
     "SCHEMA",
     "SCHEMA_VERSION",
     "SEVERITY",
-    "VERDICT_ORDER",
     "model_record",
     "build_results",
     "results_head",
@@ -41,7 +42,6 @@ __all__ = [
 
 SCHEMA = "fitaudit.results"
 SCHEMA_VERSION = 1
-VERDICT_ORDER = ("pass", "refit", "respecify", "insufficient", "error")
 #: Exceptions are listed most severe first.
 SEVERITY = {"error": 1, "respecify": 2, "refit": 3, "insufficient": 4, "pass": 5}
 
@@ -141,7 +141,7 @@ def results_summary(models: Iterable[Mapping[str, Any]], policy: Mapping[str, An
     has exactly one record.
     """
     models = list(models)
-    counts = {v: sum(1 for m in models if m["verdict"] == v) for v in VERDICT_ORDER}
+    counts = {v: sum(1 for m in models if m["verdict"] == v) for v in VERDICTS}
     checks = 0
     for m in models:
         audit = m.get("audit") or {}
@@ -153,7 +153,7 @@ def results_summary(models: Iterable[Mapping[str, Any]], policy: Mapping[str, An
     moves = {k: sum(1 for m in models if m["movement"] == k) for k in ("new", "persisting", "resolved", "steady", "first")}
     summary = {
         "registered": len(models),
-        "audited": counts["pass"] + counts["refit"] + counts["respecify"],
+        "audited": sum(counts[v] for v in ADJUDICATED_VERDICTS),
         **counts,
         "checks": checks,
         "expected_false_flags_unadjusted": checks * level,

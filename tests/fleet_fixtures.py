@@ -20,6 +20,7 @@ import yaml
 from scipy.signal import lfilter
 
 from fitaudit.core.models import model_from_dict
+from fitaudit.core.vocabulary import ADJUDICATED_VERDICTS
 from fitaudit.tasks.params import promote, write_version
 
 START = dt.date(2026, 1, 1)
@@ -39,8 +40,7 @@ POLICY = {
     "justification": "test fleet: 5 % per check, Benjamini-Hochberg at q = 0.10",
     "approved_by": "T. Tester, reliability tests",
 }
-VERDICTS = ("pass", "refit", "respecify", "insufficient", "error")
-AUDITED = ("pass", "refit", "respecify")
+AUDITED = ADJUDICATED_VERDICTS
 
 
 def days(n: int = N_DAYS, start: dt.date = START) -> np.ndarray:

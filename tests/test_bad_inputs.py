@@ -29,10 +29,9 @@ sys.path.insert(0, str(pathlib.Path(__file__).resolve().parent))  # tests/: flee
 from fleet_fixtures import (  # noqa: E402
     AR1,
     AS_OF,
-    AUDITED,
     AUDIT,
+    AUDITED,
     N_DAYS,
-    VERDICTS,
     Fleet,
     ar1,
     days,
@@ -42,6 +41,8 @@ from fleet_fixtures import (  # noqa: E402
     results_of,
     write_parquet,
 )
+
+from fitaudit.core.vocabulary import VERDICTS  # noqa: E402
 from fitaudit.tasks.archive import verify_archive  # noqa: E402
 from fitaudit.tasks.registry import RegistryError, check_registry, load_registry  # noqa: E402
 

@@ -27,7 +27,6 @@ from fleet_fixtures import (  # noqa: E402
     AS_OF,
     AUDIT,
     N_DAYS,
-    VERDICTS,
     Fleet,
     ar1,
     days,
@@ -36,6 +35,8 @@ from fleet_fixtures import (  # noqa: E402
     promote_production,
     write_parquet,
 )
+
+from fitaudit.core.vocabulary import VERDICTS  # noqa: E402
 
 pytestmark = pytest.mark.server
 

@@ -38,7 +38,6 @@ from fleet_fixtures import (  # noqa: E402
     AUDIT,
     AUDITED,
     N_DAYS,
-    VERDICTS,
     Fleet,
     ar1,
     days,
@@ -48,6 +47,8 @@ from fleet_fixtures import (  # noqa: E402
     results_of,
     write_parquet,
 )
+
+from fitaudit.core.vocabulary import VERDICTS  # noqa: E402
 from fitaudit.tasks import extracts  # noqa: E402
 from fitaudit.tasks.archive import read_chain, verify_archive  # noqa: E402
 
@@ -316,8 +317,9 @@ def test_crash_in_a_user_mean_function_is_contained_to_its_model(prefect_server,
 # (d) a user mean function that never returns
 # ------------------------------------------------------------------------------------------
 def test_time_limit_interrupts_python_code_in_the_main_thread_only():
-    from fitaudit.tasks.workers import TimeLimitExceeded, can_limit_time, time_limit
     from nlar_functions import never_returns
+
+    from fitaudit.tasks.workers import TimeLimitExceeded, can_limit_time, time_limit
 
     assert can_limit_time()  # pytest runs tests in the main thread
     with pytest.raises(TimeLimitExceeded, match="time limit of 0.3 s"):

@@ -9,6 +9,7 @@ import shutil
 
 import pytest
 
+from fitaudit.core.vocabulary import VERDICTS
 from fitaudit.tasks.archive import verify_archive
 from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
 
@@ -52,7 +53,7 @@ def first_run(demo, prefect_server, tmp_path_factory):
 
 def test_audit_flow_end_to_end(first_run):
     counts = first_run["counts"]
-    assert counts["registered"] == len(SUBSET) == sum(counts[v] for v in ("pass", "refit", "respecify", "insufficient", "error"))
+    assert counts["registered"] == len(SUBSET) == sum(counts[v] for v in VERDICTS)
     doc = json.loads(_results(first_run))
     verdicts = {m["id"]: m["verdict"] for m in doc["models"]}
     assert verdicts["demand-d-25"] == "insufficient"

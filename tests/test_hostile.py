@@ -24,7 +24,9 @@ import pyarrow as pa
 import pytest
 
 sys.path.insert(0, str(pathlib.Path(__file__).resolve().parent))  # tests/: fleet_fixtures
-from fleet_fixtures import AS_OF, AUDITED, VERDICTS, Fleet, ar1, days, write_parquet  # noqa: E402
+from fleet_fixtures import AS_OF, AUDITED, Fleet, ar1, days, write_parquet  # noqa: E402
+
+from fitaudit.core.vocabulary import VERDICTS  # noqa: E402
 from fitaudit.tasks.archive import verify_archive  # noqa: E402
 from fitaudit.tasks.registry import MAX_ID_LENGTH, SAFE_ID, RegistryError, load_registry  # noqa: E402
 

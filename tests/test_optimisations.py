@@ -15,7 +15,6 @@ Each optimisation is checked against the unoptimised way of computing the same t
 
 from __future__ import annotations
 
-import datetime as dt
 import json
 import os
 import pathlib
@@ -30,6 +29,7 @@ from fitaudit.core.calibration import key_rng
 from fitaudit.core.cells import cell_index, number_of_cells
 from fitaudit.core.change import locate_change, permutation_maxima, split_statistics
 from fitaudit.core.noise import get_law
+from fitaudit.core.vocabulary import VERDICTS
 
 #: The chart macro of templates/_charts.html.j2 before the ``svg`` filter replaced it.
 REFERENCE_SVG_MACRO = """{% macro svg(c) %}
@@ -147,7 +147,15 @@ def test_staging_in_several_scans_writes_the_same_batches(demo, registry, tmp_pa
 
 
 def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo, registry, tmp_path):
-    from fitaudit.tasks.audit import audit_batch, audit_batch_spilled, calibration_for, finalize, records, restore_outcomes, spill_path
+    from fitaudit.tasks.audit import (
+        audit_batch,
+        audit_batch_spilled,
+        calibration_for,
+        finalize,
+        records,
+        restore_outcomes,
+        spill_path,
+    )
     from fitaudit.tasks.batches import stage_inputs
     from fitaudit.tasks.demo import DEMO_AS_OF
 
@@ -181,7 +189,15 @@ def test_local_workers_run_elsewhere_and_fall_back_in_place():
 def _reference_run(demo: dict, registry, archive: pathlib.Path, work: pathlib.Path, meta: dict) -> tuple[bytes, dict, list]:
     """The plain pipeline: the same stage functions in this process, whole document and pages in memory."""
     from fitaudit.tasks._io import canonical_json
-    from fitaudit.tasks.audit import audit_batch, calibration_for, candidates_for, finalize, records, rejected_outcome, with_candidates
+    from fitaudit.tasks.audit import (
+        audit_batch,
+        calibration_for,
+        candidates_for,
+        finalize,
+        records,
+        rejected_outcome,
+        with_candidates,
+    )
     from fitaudit.tasks.batches import stage_inputs
     from fitaudit.tasks.demo import DEMO_AS_OF
     from fitaudit.tasks.report import render_run
@@ -228,7 +244,7 @@ def test_audit_flow_matches_the_plain_pipeline(demo, registry, prefect_server, t
     monkeypatch.setitem(environment().filters, "svg", macro)  # the reference renders charts with the old macro
     reference_json, reference_pages, reference_rows = _reference_run(demo, registry, archive, tmp_path / "work", meta)
 
-    assert {m["verdict"] for m in json.loads(reference_json)["models"]} == {"pass", "refit", "respecify", "insufficient", "error"}
+    assert {m["verdict"] for m in json.loads(reference_json)["models"]} == set(VERDICTS)
     # source: the plain pipeline above (unoptimised reference), byte for byte
     assert (folder / "results.json").read_bytes() == reference_json
     written = sorted(str(p.relative_to(folder)) for p in folder.rglob("*.html"))

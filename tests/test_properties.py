@@ -19,13 +19,22 @@ import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from fitaudit.core.audit import VERDICTS, AuditSettings, audit_series
+from fitaudit.core.audit import AuditSettings, audit_series
 from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.divergence import SCALINGS, divergence_map
 from fitaudit.core.models import model_from_dict
 from fitaudit.core.noise import NOISE_LAWS, get_law
+from fitaudit.core.vocabulary import ADJUDICATED_VERDICTS, VERDICTS
 from fitaudit.tasks._io import canonical_json
-from fitaudit.tasks.registry import MAX_ID_LENGTH, SAFE_ID, Registry, RegistryError, check_registry, load_registry, parse_registry
+from fitaudit.tasks.registry import (
+    MAX_ID_LENGTH,
+    SAFE_ID,
+    Registry,
+    RegistryError,
+    check_registry,
+    load_registry,
+    parse_registry,
+)
 
 # ------------------------------------------------------------------------------------------
 # registry: random model entries in a valid document
@@ -178,7 +187,7 @@ def test_random_finite_series_always_get_a_verdict(kind, n, seed, exponent, spec
     assert result.verdict in VERDICTS
     assert result.reasons and all(isinstance(r, str) and r.strip() for r in result.reasons)
     assert not any(re.search(r"(?<![\w'-])nan(?![\w'-])", r) for r in result.reasons), result.reasons
-    if result.verdict in ("pass", "refit", "respecify"):
+    if result.verdict in ADJUDICATED_VERDICTS:
         check = result.deciding_check
         assert check.ok and math.isfinite(check.p_value) and 0.0 <= check.p_value <= 1.0
     canonical_json(result.to_dict())
