@@ -5,8 +5,8 @@ describe what is valid.  Messages read:
 
     The 'alpha' parameter of SimpleExpSmoothing must be a float in the range (0, 1). Got 1.5 instead.
 
-Objects store their constraints in a class attribute ``_parameter_constraints`` so that a
-generic test can generate invalid values for every public object.
+Objects store their constraints in a class attribute ``_parameter_constraints`` and check them
+with :func:`validate_params` or :func:`check_param`.
 """
 
 from __future__ import annotations
@@ -18,7 +18,7 @@ from typing import Any, Iterable
 
 from .exceptions import InputError
 
-__all__ = ["Interval", "Options", "check_param", "validate_params", "as_finite_array"]
+__all__ = ["Interval", "Options", "check_param", "validate_params"]
 
 
 @dataclass(frozen=True)
@@ -78,14 +78,6 @@ class Interval:
             rb = ")"
         return f"{name} in the range {lb}{left}, {right}{rb}"
 
-    def invalid_example(self) -> Any:
-        """A value that violates the constraint (used by generic tests)."""
-        if self.right is not None:
-            return self.right + 1
-        if self.left is not None:
-            return self.left - 1
-        return float("nan")
-
 
 @dataclass(frozen=True)
 class Options:
@@ -106,10 +98,6 @@ class Options:
     def describe(self) -> str:
         """Describe the options, e.g. ``one of {'a', 'b'}``."""
         return "one of {" + ", ".join(repr(v) for v in self.values) + "}"
-
-    def invalid_example(self) -> Any:
-        """A value that is not among the options."""
-        return "__not_an_option__"
 
 
 def check_param(owner: str, name: str, value: Any, *constraints) -> None:
@@ -134,23 +122,3 @@ def validate_params(obj: Any, params: dict[str, Any]) -> None:
     for name, value in params.items():
         if name in constraints:
             check_param(owner, name, value, *constraints[name])
-
-
-def as_finite_array(x: Any, name: str, owner: str, ndim: tuple[int, ...] | None = None):
-    """Convert ``x`` to a float64 array, rejecting NaN/inf with a message naming it."""
-    import numpy as np
-
-    try:
-        a = np.asarray(x, dtype=float)
-    except (TypeError, ValueError) as exc:
-        raise InputError(f"{owner}: {name!r} must be numeric; {exc}.") from None
-    if ndim is not None and a.ndim not in ndim:
-        raise InputError(f"{owner}: {name!r} must have {' or '.join(map(str, ndim))} dimension(s); got shape {a.shape}.")
-    bad = ~np.isfinite(a)
-    if bad.any():
-        idx = np.argwhere(bad)[:5].tolist()
-        raise InputError(
-            f"{owner}: {name!r} contains {int(bad.sum())} NaN or infinite value(s) (first at index {idx}); "
-            "remove or impute them before auditing."
-        )
-    return a

@@ -14,8 +14,6 @@ __all__ = [
     "SpecificationError",
     "FitauditWarning",
     "ConvergenceWarning",
-    "StartingValueWarning",
-    "DataScaleWarning",
 ]
 
 
@@ -47,15 +45,4 @@ class ConvergenceWarning(FitauditWarning):
 
     Fix: check the series for level shifts or outliers, try other starting values, or
     simplify the model orders.
-    """
-
-
-class StartingValueWarning(FitauditWarning):
-    """Starting values had to be replaced (e.g. a non-stationary conditional fit)."""
-
-
-class DataScaleWarning(FitauditWarning):
-    """The data's scale makes the optimisation badly conditioned.
-
-    Fix: rescale the series (for example express it in thousands) before registering it.
     """

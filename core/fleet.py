@@ -17,7 +17,7 @@ import numpy as np
 from .exceptions import InputError
 from .vocabulary import ADJUSTMENTS, VERDICTS, Adjustment
 
-__all__ = ["adjust_pvalues", "expected_false_flags", "escalate_persistent_refit"]
+__all__ = ["adjust_pvalues", "escalate_persistent_refit"]
 
 
 def adjust_pvalues(p, method: Adjustment = "bh") -> np.ndarray:
@@ -77,37 +77,6 @@ def adjust_pvalues(p, method: Adjustment = "bh") -> np.ndarray:
         adjusted[order] = np.minimum(1.0, stepped)
     flat[present] = adjusted
     return flat.reshape(p.shape)
-
-
-def expected_false_flags(n_models: int, level: float) -> float:
-    """Expected number of models flagged by chance if every model were healthy: ``n_models * level``.
-
-    Each healthy model's check rejects with probability ``level`` (a valid p-value is uniform under
-    its null), so by linearity of expectation the count of false flags has mean ``n * level``
-    whatever the dependence between models.  Benjamini-Hochberg adjustment at q keeps the
-    expected proportion of false flags among all flags at or below q instead [1]_.
-
-    Parameters
-    ----------
-    n_models : int
-        Number of models audited, >= 0.
-    level : float
-        Per-model significance level in [0, 1].
-
-    Returns
-    -------
-    float
-
-    Examples
-    --------
-    >>> expected_false_flags(400, 0.05)
-    20.0
-    """
-    if isinstance(n_models, bool) or not isinstance(n_models, (int, np.integer)) or n_models < 0:
-        raise InputError(f"expected_false_flags: n_models must be a non-negative int; got {n_models!r}.")
-    if isinstance(level, bool) or not isinstance(level, (int, float, np.floating)) or not 0 <= level <= 1:
-        raise InputError(f"expected_false_flags: level must be a probability in [0, 1]; got {level!r}.")
-    return float(n_models) * float(level)
 
 
 def escalate_persistent_refit(history: Sequence[str], current: str, k: int = 2, n: int = 3) -> bool:

@@ -49,7 +49,7 @@ from fitaudit.tasks.results import results_head, results_summary
 from fitaudit.tasks.settings import get_settings
 from fitaudit.tasks.workers import default_processes, local_workers
 
-__all__ = ["audit_flow", "run_audit"]
+__all__ = ["audit_flow"]
 
 
 def _utc() -> str:
@@ -323,8 +323,3 @@ def audit_flow(
         "timings": {k: round(v, 3) for k, v in timings.items()},
         "refits": refits,
     }
-
-
-def run_audit(registry: str, **kwargs) -> dict:
-    """Call :func:`audit_flow` (convenience for scripts and the command line)."""
-    return audit_flow(registry=registry, **kwargs)

@@ -42,8 +42,8 @@ __all__ = [
 STATUSES = ("candidate", "promoted")
 _FILE_NAME = re.compile(r"^([1-9][0-9]*)\.json\Z")
 _RETRIES = 100  # version numbers tried by one writer before giving up
-# write_once names its temporary file by process id only, so two threads of one process writing the
-# same version would share it; this lock serialises writers within a process (processes differ by pid).
+# A lost race is safe anywhere (write_once links the file into place only if it does not exist, and the
+# loser retries with the next number); this lock spares the threads of one process those retries.
 _WRITE_LOCK = threading.Lock()
 
 

@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from fitaudit.core.exceptions import InputError
-from fitaudit.core.fleet import adjust_pvalues, escalate_persistent_refit, expected_false_flags
+from fitaudit.core.fleet import adjust_pvalues, escalate_persistent_refit
 
 multitest = pytest.importorskip("statsmodels.stats.multitest")
 
@@ -66,14 +66,6 @@ def test_adjust_pvalues_errors():
         adjust_pvalues([0.1], "holm")
     with pytest.raises(InputError, match=r"\[0, 1\]"):
         adjust_pvalues([0.1, 1.2])
-
-
-def test_expected_false_flags():
-    # source: the brief (n * level if every model were healthy)
-    assert expected_false_flags(400, 0.05) == pytest.approx(20.0)
-    assert expected_false_flags(0, 0.05) == 0.0
-    with pytest.raises(InputError, match="level"):
-        expected_false_flags(10, 5.0)
 
 
 @pytest.mark.parametrize(
