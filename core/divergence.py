@@ -192,8 +192,13 @@ def power_generator(x, alpha):
     --------
     >>> float(power_generator(4.0, 2.0))   # (4 - 1)^2 / 2
     4.5
-    >>> round(float(power_generator(1 + 1e-9, 0.5)), 25)  # ~ (x - 1)^2 / 2
-    5e-19
+
+    Near ``x = 1`` the value is ``d^2/2 (1 + (alpha - 2) d / 3 + ...)`` with ``d = x - 1``; the naive
+    formula returns 0 here (every digit cancels), the stable one keeps the digits:
+
+    >>> d = 2.0**-30  # x - 1, exact in binary floating point (1 + 1e-9 is not)
+    >>> round(float(power_generator(1 + d, 0.5)) / (d * d / 2), 9)
+    1.0
     """
     x = np.asarray(x, dtype=float)
     a = np.asarray(alpha, dtype=float)
