@@ -59,7 +59,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--weeks", type=int, default=3, help="weekly audits to run on the first demo (default 3: two earlier weeks build a history)")
 
     def run_options(sp: argparse.ArgumentParser) -> None:
-        sp.add_argument("registry", help="registry YAML file")
+        sp.add_argument("registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)")
         sp.add_argument("--archive", help="archive folder (default: the archive_root setting, ./archive)")
         sp.add_argument("--as-of", type=_date, help="as-of date YYYY-MM-DD (default: today, UTC)")
         sp.add_argument("--batch-size", type=int, default=0, help="models per Prefect task (default: automatic)")
@@ -86,7 +86,7 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--every", type=int, default=7, help="days between as-of dates (default 7)")
 
     s = sub.add_parser("serve", help="serve the audit (weekly cron) and refit (event-triggered) deployments")
-    s.add_argument("registry", help="registry YAML file")
+    s.add_argument("registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)")
     s.add_argument("--archive", help="archive folder")
     s.add_argument("--cron", default="0 6 * * 1", help="cron schedule of the audit (default Mondays 06:00)")
     s.add_argument("--timezone", default="UTC", help="time zone of the schedule")
@@ -102,7 +102,7 @@ def build_parser() -> argparse.ArgumentParser:
     gsub = g.add_subparsers(dest="registry_command", metavar="SUBCOMMAND")
     gsub.required = True
     gc = gsub.add_parser("check", help="validate a registry and print every problem with file:line")
-    gc.add_argument("file", help="registry YAML file")
+    gc.add_argument("registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)")
 
     pr = sub.add_parser("promote", help="promote a candidate parameter version (writes a new version; never edits one)")
     pr.add_argument("archive", help="archive folder")
@@ -170,9 +170,9 @@ def _print_summary(result: dict, quiet: bool) -> None:
 def _cmd_registry_check(args) -> int:
     from fitaudit.tasks.registry import check_registry
 
-    problems = check_registry(args.file)
+    problems = check_registry(args.registry)
     if not problems:
-        print(f"{args.file}: valid")
+        print(f"{args.registry}: valid")
         return EXIT_OK
     for p in problems:
         print(str(p))
@@ -301,12 +301,33 @@ COMMANDS = {
 }
 
 
+def _default_registry(args: argparse.Namespace) -> str | None:
+    """Fill an omitted registry argument from the ``registry_path`` setting; a message when that file is missing."""
+    if not hasattr(args, "registry") or args.registry is not None:
+        return None
+    from fitaudit.tasks.settings import get_settings
+
+    path = get_settings().registry_path
+    if not path.is_file():
+        return (
+            f"fitaudit {args.command}: no registry given, and the registry_path setting names {str(path)!r}, "
+            "which is not a file. Give the registry file as an argument, or set PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH "
+            "(or registry_path under [integrations.fitaudit] in prefect.toml)."
+        )
+    args.registry = str(path)
+    return None
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``fitaudit`` command."""
     args = build_parser().parse_args(argv)
     _env.configure_prefect()
     from fitaudit.core.exceptions import FitauditError
 
+    missing = _default_registry(args)
+    if missing:
+        print(missing, file=sys.stderr)
+        return EXIT_USAGE
     try:
         return COMMANDS[args.command](args)
     except FitauditError as exc:

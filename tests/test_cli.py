@@ -54,6 +54,20 @@ def test_registry_check_valid(tmp_path, demo, capsys):
     assert "valid" in capsys.readouterr().out
 
 
+def test_registry_defaults_to_the_registry_path_setting(demo, monkeypatch, capsys):
+    monkeypatch.setenv("PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH", demo["registry"])
+    assert main(["registry", "check"]) == EXIT_USAGE  # the same problems as with the file named
+    out = capsys.readouterr().out
+    assert "registry.yaml:" in out and "'gaussian'" in out
+
+
+def test_a_missing_default_registry_is_explained(tmp_path, monkeypatch, capsys):
+    monkeypatch.setenv("PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH", str(tmp_path / "absent.yaml"))
+    assert main(["run", "--as-of", "2026-11-30"]) == EXIT_USAGE
+    err = capsys.readouterr().err
+    assert "no registry given" in err and "absent.yaml" in err and "PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH" in err
+
+
 def test_serve_without_a_server_explains_what_is_needed(demo, monkeypatch, capsys):
     monkeypatch.delenv("PREFECT_API_URL", raising=False)
     assert main(["serve", demo["registry"]]) == EXIT_USAGE
