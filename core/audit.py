@@ -1,4 +1,4 @@
-"""The audit protocol: production check, refit check, verdict (design.md sections 1 and 4).
+"""The audit protocol: production check, refit check, verdict (docs/method.md §1 and §10).
 
 For one series and its model entry, :func:`audit_series`
 
@@ -96,7 +96,7 @@ class AuditSettings:
     fit_window : int or None
         Observations used by the refit (the most recent); None uses the whole series.
     lb_lags : int or None
-        Ljung-Box lag; None applies the rule of design.md section 4.
+        Ljung-Box lag; None applies the rule of docs/method.md §9.2.
     locate_change : bool, default True
         Locate the most likely break of a failing production check.
     change_permutations : int, default 499
@@ -531,7 +531,7 @@ def score_frozen(
 
     The production check (frozen parameters) and forecast audits (stated predictive laws) share
     this path: nothing is estimated from ``u``, so its null is exact (i.i.d. U(0, 1) PIT values,
-    docs/method.md "Calibration") and one table per window length serves a whole run.
+    docs/method.md §7.2) and one table per window length serves a whole run.
     """
     table_for = None
     if settings.calibration != "asymptotic":
@@ -726,7 +726,7 @@ def _summary_pass(check: CheckResult) -> str:
 
 
 def decide_verdict(production: CheckResult | None, refit: CheckResult, threshold: float, adjusted: bool = False) -> tuple[str, tuple]:
-    """Verdict and plain-language reasons from the two checks (design.md section 4).
+    """Verdict and plain-language reasons from the two checks (docs/method.md §10.2).
 
     With a production check: ``pass`` if it passes, else ``refit`` if the refit check passes,
     else ``respecify``; without one, ``pass`` or ``respecify`` from the refit check.  A check

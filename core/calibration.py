@@ -1,12 +1,12 @@
 """Calibration: turning the maximum of a divergence map into a p-value.
 
-Three methods (design.md section 4, method.md 3):
+Three methods (docs/method.md §7; the theory behind them in §5):
 
 ``asymptotic``
     Production check: ``T_max`` against chi-square(s - 1) (every member with ``m(q, q) = q`` is
-    asymptotically Pearson's X2, method.md 3.5).  Refit check: ``T_max`` plus the
-    Nikulin-Rao-Robson quadratic term (method.md 3.4), against chi-square(s - 1).  Fast, liberal
-    at small n (method.md 3.1 table).
+    asymptotically Pearson's X2, docs/method.md §5.6).  Refit check: ``T_max`` plus the
+    Nikulin-Rao-Robson quadratic term (docs/method.md §5.4), against chi-square(s - 1).  Fast, liberal
+    at small n (docs/validation.md).
 ``simulated``
     Production check: counts drawn from multinomial(n, 1/s), the exact null for frozen
     parameters.  Refit check: n i.i.d. draws of the noise law, its parameters re-estimated with
@@ -333,7 +333,7 @@ def bootstrap_table(score_replicate: Callable[[np.random.Generator], np.ndarray 
 
     ``score_replicate(rng)`` must simulate one series from the fitted model, refit it with the
     same procedure and return the replicate's divergence map statistics (shape (A, B)), or None
-    when its refit fails; failed replicates are dropped (method.md 3.5).  ``reference`` are the
+    when its refit fails; failed replicates are dropped (docs/method.md §7.4).  ``reference`` are the
     members' reference values, taken from the matching simulated table (independent of these
     replicates).
     """
@@ -360,7 +360,7 @@ def nrr_term(counts: np.ndarray, information: np.ndarray, gradient: np.ndarray) 
 
     With ``q_j = 1/s``, ``V_j = (N_j - n q_j) / sqrt(n q_j)``, ``B_ji = (dq_j/dtheta_i)/sqrt(q_j)``,
     ``J`` the per-observation Fisher information of the estimated noise parameters and
-    ``J* = B'B``: adding this term to ``X2`` (or to any member of the family, method.md 3.4)
+    ``J* = B'B``: adding this term to ``X2`` (or to any member of the family, docs/method.md §5.4)
     restores the chi-square(s - 1) limit when the parameters are maximum-likelihood estimates
     from the raw residuals (Nikulin 1973; Rao and Robson 1974).
 

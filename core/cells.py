@@ -1,8 +1,8 @@
 """Cells: from residuals to counts in equiprobable cells of the probability-integral scale.
 
 Residuals go through the probability integral transform (PIT) of the noise law, ``u = F(e)``,
-and are counted in ``s`` equiprobable cells ``[(j-1)/s, j/s)`` of [0, 1] (method.md 4.1).  The
-number of cells follows design.md section 4:
+and are counted in ``s`` equiprobable cells ``[(j-1)/s, j/s)`` of [0, 1] (docs/method.md §6.1).  The
+number of cells follows docs/method.md §6.3:
 
     s = clamp(round(2 n^(2/5)), max(k + 3, 4), floor(n / 5)),
 
@@ -24,8 +24,8 @@ __all__ = ["number_of_cells", "minimum_length", "cell_counts", "cell_index"]
 def number_of_cells(n: int, k: int = 0) -> int:
     """Number of equiprobable cells for ``n`` residuals and ``k`` estimated noise parameters.
 
-    ``s = clamp(round(2 n^(2/5)), max(k + 3, 4), floor(n/5))`` (design.md section 4; Moore's
-    ``2 n^(2/5)`` rule with Cochran's minimum expected count of five, method.md 4.2-4.3).
+    ``s = clamp(round(2 n^(2/5)), max(k + 3, 4), floor(n/5))`` (docs/method.md §6.3; Moore's
+    ``2 n^(2/5)`` rule with Cochran's minimum expected count of five).
 
     Raises
     ------

@@ -1,6 +1,6 @@
 """Independence checks on residuals: autocorrelation, Ljung-Box and McLeod-Li.
 
-A cell-count statistic is blind to serial dependence (method.md 5.3), so every check pairs the
+A cell-count statistic is blind to serial dependence (docs/method.md §9.1), so every check pairs the
 divergence map with a portmanteau test on the residuals (the independence gate) and reports one on
 the squared residuals (conditional heteroscedasticity).
 
@@ -307,7 +307,7 @@ def ljung_box_batch(X, lags: int, model_df: int = 0) -> tuple[np.ndarray, np.nda
 
 
 def ljung_box_lags(n: int, period: int = 1, model_df: int = 0) -> int:
-    """Number of lags h for the independence gate (design.md section 4).
+    """Number of lags h for the independence gate (docs/method.md §9.2).
 
     ``h = min(10, n // 5)`` for non-seasonal models (``period <= 1``), ``h = min(2 m, n // 5)``
     for seasonal period m, and at least ``model_df + 3`` so the chi-square keeps three degrees of

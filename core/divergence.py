@@ -80,14 +80,14 @@ CLASSICAL_MEMBER_LABELS: dict[str, str] = {
     "neyman": "Neyman",
 }
 
-#: The default grid of design.md section 4: alpha = -1..3 step 0.25, beta = 0..1 step 0.125.
+#: The map's grid (docs/method.md §2.6): alpha = -1..3 step 0.25, beta = 0..1 step 0.125.
 DEFAULT_ALPHAS: np.ndarray = np.arange(-4, 13) * 0.25
 DEFAULT_BETAS: np.ndarray = np.arange(0, 9) * 0.125
 DEFAULT_ALPHAS.setflags(write=False)
 DEFAULT_BETAS.setflags(write=False)
 
 _EPS = np.finfo(float).eps
-_TIE = 64 * _EPS  # exponent ties in the empty-cell limits (method.md 2.7)
+_TIE = 64 * _EPS  # exponent ties in the empty-cell limits (docs/method.md §4.1)
 _SERIES_RADIUS = 1e-3  # |u| * max(1, |alpha|, |1 - alpha|) below which the series is used
 
 
@@ -95,7 +95,7 @@ _SERIES_RADIUS = 1e-3  # |u| * max(1, |alpha|, |1 - alpha|) below which the seri
 # The power generator
 # --------------------------------------------------------------------------------------------
 def _phi_log_argument(u: np.ndarray, a: np.ndarray) -> np.ndarray:
-    """phi_alpha(exp(u)) by the stable recipe of method.md 1.5 (may overflow to inf)."""
+    """phi_alpha(exp(u)) by the stable recipe of docs/method.md §2.5 (may overflow to inf)."""
     scale = np.maximum(1.0, np.maximum(np.abs(a), np.abs(1.0 - a)))
     small = np.abs(u) * scale < _SERIES_RADIUS
     # series: sum_{k>=2} h_{k-2}(a) u^k / k!, h_j(a) = 1 + a + ... + a^j
@@ -185,7 +185,7 @@ def power_generator(x, alpha):
     -----
     With ``u = log x``: a Taylor series ``sum_k h_{k-2}(alpha) u^k / k!`` near ``x = 1``;
     ``[u exprel(alpha u) - expm1(u)] / (alpha - 1)`` for alpha <= 1/2; and the duality
-    ``phi_alpha(x) = x phi_{1-alpha}(1/x)`` for alpha > 1/2 (method.md 1.5). The naive formula
+    ``phi_alpha(x) = x phi_{1-alpha}(1/x)`` for alpha > 1/2 (docs/method.md §2.5). The naive formula
     loses all relative accuracy near x = 1 and for alpha near 0 or 1; this one does not.
 
     Examples
@@ -216,7 +216,7 @@ def power_generator(x, alpha):
 
 
 # --------------------------------------------------------------------------------------------
-# Boundary limits (method.md 2.7)
+# Boundary limits (docs/method.md §4)
 # --------------------------------------------------------------------------------------------
 def _power_r(scaling: str, r: float | None) -> float | None:
     if scaling == "power" and r is not None and abs(r) < _TIE:
@@ -241,7 +241,7 @@ def _quiet(fn):
 def empty_cell_factor(alpha, beta, scaling: str = "geometric", r: float | None = None) -> np.ndarray:
     """Limit f0 of an empty cell (p = 0 < q): its contribution to B is ``f0 * q``.
 
-    ``f0 = lim_{x -> 0} w(x)^(1 - alpha) phi_alpha(x)`` with ``m = q w(p/q)`` (method.md 2.7):
+    ``f0 = lim_{x -> 0} w(x)^(1 - alpha) phi_alpha(x)`` with ``m = q w(p/q)`` (docs/method.md §4.1):
 
     * model (m = q): ``1/alpha`` for alpha > 0, ``+inf`` for alpha <= 0;
     * data (m = p): 0 for alpha < 1, 1 at alpha = 1, ``+inf`` for alpha > 1;
@@ -289,7 +289,7 @@ def zero_model_cell_factor(alpha, beta, scaling: str = "geometric", r: float | N
     """Limit g0 of a cell the model calls impossible (q = 0 < p): its contribution is ``g0 * p``.
 
     Finite only when m ~ c q with alpha < 1 (``g0 = c^(1 - alpha) / (1 - alpha)``) or m ~ c p with
-    alpha > 1 (``g0 = c^(1 - alpha) / (alpha (alpha - 1))``), method.md 2.7: model (c = 1), data
+    alpha > 1 (``g0 = c^(1 - alpha) / (alpha (alpha - 1))``), docs/method.md §4.2: model (c = 1), data
     (c = 1), power r > 0, beta > 0 (m ~ beta^(1/r) p), power r < 0, beta < 1
     (m ~ (1 - beta)^(1/r) q).  Always ``+inf`` for geometric 0 < beta < 1 and at alpha = 1.
     For unit scaling the contribution is ``p^alpha / (alpha (alpha - 1))`` (alpha > 1); this
@@ -421,7 +421,7 @@ def _cell_terms(p, q, a, b, scaling: str, r: float | None) -> np.ndarray:
 def scaled_bregman(p, q, alpha, beta=0.0, scaling: Scaling = "geometric", r: float | None = None):
     """Scaled Bregman divergence ``B_{phi_alpha}(P, Q | M)`` of probability vectors.
 
-    ``B = sum_j m_j^(1 - alpha) D_alpha(p_j, q_j)`` (method.md 1.3), with ``m`` the scaling mean
+    ``B = sum_j m_j^(1 - alpha) D_alpha(p_j, q_j)`` (docs/method.md §2.3), with ``m`` the scaling mean
     of ``p`` and ``q`` named by ``scaling`` and weighted by ``beta`` (module docstring).
 
     Parameters
@@ -676,9 +676,9 @@ def divergence_map(counts, probs, alphas=DEFAULT_ALPHAS, betas=DEFAULT_BETAS, sc
     Notes
     -----
     Every member with ``m(q, q) = q`` satisfies ``T -> chi2(s - 1)`` under the null for a fixed
-    number of cells (method.md 3.1); the maximum over the grid does not, in finite samples, and
+    number of cells (docs/method.md §5.1); the maximum over the grid does not, in finite samples, and
     is calibrated by simulation (:mod:`fitaudit.core.calibration`).  Points with an infinite
-    boundary limit (method.md 2.7) are flagged in ``infinite`` and excluded from ``t_max``.
+    boundary limit (docs/method.md §4) are flagged in ``infinite`` and excluded from ``t_max``.
     Expected counts below 5 make members with alpha <= 0 or alpha >= 3 unreliable.
 
     Examples

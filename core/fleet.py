@@ -80,7 +80,7 @@ def adjust_pvalues(p, method: Adjustment = "bh") -> np.ndarray:
 
 
 def escalate_persistent_refit(history: Sequence[str], current: str, k: int = 2, n: int = 3) -> bool:
-    """Whether a ``refit`` verdict has persisted long enough to become ``respecify`` (design.md 4).
+    """Whether a ``refit`` verdict has persisted long enough to become ``respecify`` (docs/method.md §10.4).
 
     True when ``current == "refit"`` and ``"refit"`` occurs in at least ``k`` of the last ``n``
     audits counting the current one, i.e. among ``history[-(n - 1):] + [current]``.

@@ -15,10 +15,10 @@ Count laws work with a predictive mean ``mu_t`` per time point: ``poisson`` (var
 ``negative-binomial`` (NB2: variance ``mu + mu^2 / size``, shape = size).
 
 Each law estimates its parameters by maximum likelihood from residuals (the location only when the
-model's intercept or mean makes it effectively estimated, method.md 5.2), supplies the per-observation
+model's intercept or mean makes it effectively estimated, docs/method.md §8.2), supplies the per-observation
 Fisher information of the estimated parameters and the derivatives of equiprobable-cell probabilities
-(both needed by the Nikulin-Rao-Robson correction, method.md 3.4), and simulates.  Count laws supply
-the randomised probability integral transform of method.md 4.4.
+(both needed by the Nikulin-Rao-Robson correction, docs/method.md §5.4), and simulates.  Count laws supply
+the randomised probability integral transform of docs/method.md §6.2.
 
 References
 ----------
@@ -333,7 +333,7 @@ class NoiseLaw:
         return tuple(names)
 
     def n_estimated(self, location: bool) -> int:
-        """k, the number of noise parameters estimated from the residuals (method.md 5.2).
+        """k, the number of noise parameters estimated from the residuals (docs/method.md §8.2).
 
         Parameters
         ----------
@@ -774,7 +774,7 @@ class NormalLaw(_LocationScaleLaw):
 
     Maximum likelihood in closed form: ``loc = mean(x)`` (or 0) and
     ``scale = sqrt(mean((x - loc)^2))`` (denominator n).  Fisher information
-    ``diag(1, 2) / scale^2`` (method.md 3.3).
+    ``diag(1, 2) / scale^2`` (docs/method.md §5.3).
     """
 
     name = "normal"
@@ -1065,7 +1065,7 @@ class StudentTLaw(_NewtonFittedLaw):
 # Count laws
 # --------------------------------------------------------------------------------------------
 class _CountLaw(NoiseLaw):
-    """Count laws with a predictive mean per time point (method.md 4.4)."""
+    """Count laws with a predictive mean per time point (docs/method.md §6.2)."""
 
     discrete = True
 
@@ -1099,7 +1099,7 @@ class _CountLaw(NoiseLaw):
         """Randomised probability integral transform of counts.
 
         ``u_t = F_t(y_t - 1) + V_t P_t(Y = y_t)`` with ``V_t ~ U(0, 1)`` independent (``F_t(-1) = 0``);
-        exactly i.i.d. U(0, 1) when ``y_t`` follows the law with mean ``mean_t`` [4]_ (method.md 4.4).
+        exactly i.i.d. U(0, 1) when ``y_t`` follows the law with mean ``mean_t`` [4]_ (docs/method.md §6.2).
 
         Parameters
         ----------

@@ -44,7 +44,7 @@ VERDICT_MEANINGS: dict[str, str] = {
 ADJUDICATED_VERDICTS: tuple[str, ...] = ("pass", "refit", "respecify")
 
 Calibration = Literal["asymptotic", "simulated", "bootstrap"]
-#: How a divergence map becomes a p-value (docs/method.md, "Calibration").
+#: How a divergence map becomes a p-value (docs/method.md §7).
 CALIBRATIONS: tuple[str, ...] = ("asymptotic", "simulated", "bootstrap")
 
 Adjustment = Literal["bh", "by", "bonferroni", "none"]
