@@ -29,7 +29,7 @@ QUIET_SETTINGS = {
     "MKL_NUM_THREADS": "1",
 }
 
-# loggers that print ERROR lines while the embedded server shuts down (prefect.md 1.3)
+# loggers that print ERROR lines while Prefect's embedded server shuts down
 _SILENCED = ("prefect.server.services.task_run_recorder", "prefect.server.services.telemetry", "sqlalchemy.pool", "docket")
 
 

@@ -1,4 +1,4 @@
-"""Crash-safe, tamper-evident archive of audit runs (design.md section 6; governance.md 1.3, req. 14-16).
+"""Crash-safe, tamper-evident archive of audit runs (docs/architecture.md §3).
 
 Layout under the archive root::
 
@@ -1303,7 +1303,7 @@ def list_runs(archive_root: str | os.PathLike) -> list[dict]:
 
 
 def record_signoff(archive_root: str | os.PathLike, run_id: str, *, name: str, role: str, note: str = "") -> dict:
-    """Record a reviewer's sign-off of a run's report in the chain (governance.md requirement 14).
+    """Record a reviewer's sign-off of a run's report in the chain (docs/architecture.md §3.8).
 
     The run folder is verified first; the entry holds the SHA-256 of the exact ``index.html`` and
     ``manifest.json`` signed, the reviewer's name and role, the note, and (as the entry's ``time``)

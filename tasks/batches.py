@@ -86,7 +86,7 @@ class StagedRun:
 def batch_size_for(n_models: int, workers: int = 1, requested: int = 0) -> int:
     """Models per task: ``requested`` if set, else enough models that a task does seconds of work.
 
-    Rule (prefect.md section 2): at most a few dozen tasks per run and at least ``4 * workers``
+    Rule (docs/architecture.md §5): at most a few dozen tasks per run and at least ``4 * workers``
     tasks when there are enough models, a multiple of ``workers`` (so that every worker gets the
     same number of batches: with 5 batches on 2 workers one of them audits 3); batches of 25 to
     200 models.

@@ -1,4 +1,4 @@
-"""The HTML report of an audit run (design.md section 6; governance.md 3 and requirements 17-25).
+"""The HTML report of an audit run (docs/architecture.md §4).
 
 :func:`render_run` turns the results document (:func:`fitaudit.tasks.results.build_results`, the
 machine-readable twin ``results.json``) and the run's metadata into self-contained pages:

@@ -1,8 +1,8 @@
 """Local worker processes for the CPU-bound part of batch tasks.
 
 Prefect's default task runner runs tasks in threads of the flow process, and numpy-heavy Python
-code holds the GIL most of the time, so two batch tasks in two threads use about one core
-(prefect.md section 2).  :func:`local_workers` starts a small pool of processes for one flow run
+code holds the GIL most of the time, so two batch tasks in two threads use about one core.
+:func:`local_workers` starts a small pool of processes for one flow run
 and hands out a *token* (a plain string); a task that receives the token runs its plain function
 in the pool with :func:`run_local`, one whole batch per call, and returns the result as usual.
 Tasks run by another runner (a Dask worker, another process) do not find the token and run the
