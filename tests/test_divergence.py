@@ -24,9 +24,9 @@ from fitaudit.core.divergence import (
 from fitaudit.core.exceptions import InputError
 
 COUNT_VECTORS = [
-    np.array([315, 108, 101, 32.0]),  # source: Mendel's dihybrid cross (method.md 6.1 fixture 1)
+    np.array([315, 108, 101, 32.0]),  # source: Mendel (1866) dihybrid cross (docs/method.md §13.1)
     np.array([16, 18, 16, 14, 12, 12.0]),  # source: scipy.stats.chisquare docstring example
-    np.array([22, 38, 20, 11.0]),  # source: Yates/Moore/Starnes ex. 14.3 (method.md 6.1 fixture 5)
+    np.array([22, 38, 20, 11.0]),  # source: Yates/Moore/Starnes ex. 14.3 (docs/method.md §13.1)
     np.array([3, 9, 1, 7, 5, 2, 8, 4.0]),  # arbitrary small counts, checked against scipy below
 ]
 PROBS = [
@@ -48,14 +48,14 @@ def pd(counts, probs, lam):
 
 
 # --------------------------------------------------------------------------------------------
-# m = q: the Cressie-Read family (method.md 2.1)
+# m = q: the Cressie-Read family (docs/method.md §3.1)
 # --------------------------------------------------------------------------------------------
 @pytest.mark.parametrize("alpha", [-1.0, -0.5, 0.0, 0.5, 1.0, 5 / 3, 2.0, 3.0])
 @pytest.mark.parametrize("k", range(len(COUNT_VECTORS)))
 def test_model_scaling_equals_scipy_power_divergence(alpha, k):
     counts, probs = COUNT_VECTORS[k], PROBS[k]
     ours = two_n_b(counts, probs, alpha, scaling="model")
-    # source: scipy.stats.power_divergence with lambda_ = alpha - 1 (method.md 2.1, [V:C3])
+    # source: scipy.stats.power_divergence with lambda_ = alpha - 1 (Cressie and Read 1984; docs/method.md §3.1)
     assert ours == pytest.approx(pd(counts, probs, alpha - 1), rel=1e-12, abs=1e-12)
 
 
@@ -70,13 +70,13 @@ def test_map_beta_zero_column_equals_scipy(alpha):
 
 
 # --------------------------------------------------------------------------------------------
-# m = p and geometric scaling as Cressie-Read combinations (method.md 2.2, 2.3)
+# m = p and geometric scaling as Cressie-Read combinations (docs/method.md §3.2, §3.3)
 # --------------------------------------------------------------------------------------------
 @pytest.mark.parametrize("alpha", [-1.0, -0.5, 0.25, 0.5, 1.5, 2.0, 2.75])
 @pytest.mark.parametrize("k", range(len(COUNT_VECTORS)))
 def test_data_scaling_is_cressie_read_combination(alpha, k):
     counts, probs = COUNT_VECTORS[k], PROBS[k]
-    # source: method.md 2.2 [V:C7]: 2nB(P,Q|P) = (alpha-1) PD(lambda=-alpha) + (2-alpha) PD(lambda=1-alpha)
+    # source: docs/method.md §3.2: 2nB(P,Q|P) = (alpha-1) PD(lambda=-alpha) + (2-alpha) PD(lambda=1-alpha)
     ref = (alpha - 1) * pd(counts, probs, -alpha) + (2 - alpha) * pd(counts, probs, 1 - alpha)
     assert two_n_b(counts, probs, alpha, scaling="data") == pytest.approx(ref, rel=1e-10)
 
@@ -90,7 +90,7 @@ def test_geometric_scaling_is_three_term_cressie_read(alpha, beta, k):
     w1 = (alpha + c) * (alpha + c - 1) / (alpha * (alpha - 1))
     w2 = c * (c - 1) / alpha
     w3 = -c * (1 + c) / (alpha - 1)
-    assert w1 + w2 + w3 == pytest.approx(1.0)  # source: method.md 2.3 [V:C8]
+    assert w1 + w2 + w3 == pytest.approx(1.0)  # source: docs/method.md §3.3
     # CR_gamma corresponds to power_divergence with lambda = gamma - 1
     ref = w1 * pd(counts, probs, alpha + c - 1) + w2 * pd(counts, probs, c - 1) + w3 * pd(counts, probs, c)
     assert two_n_b(counts, probs, alpha, beta) == pytest.approx(ref, rel=1e-9)
@@ -99,7 +99,7 @@ def test_geometric_scaling_is_three_term_cressie_read(alpha, beta, k):
 @pytest.mark.parametrize("scaling,beta,r", [("geometric", 0.3, None), ("power", 0.6, 1.0), ("power", 0.4, -2.0), ("data", 0.0, None), ("model", 0.0, None), ("unit", 0.0, None), ("power", 0.5, 0.5)])
 def test_alpha_one_is_kullback_leibler_for_every_scaling(scaling, beta, r):
     p, q = np.array([0.1, 0.2, 0.3, 0.4]), np.array([0.25, 0.25, 0.25, 0.25])
-    # source: method.md 1.3 [V:C5]: m^0 = 1, so B_1 = KL(P||Q) = scipy.stats.entropy(p, q)
+    # source: docs/method.md §2.3: m^0 = 1, so B_1 = KL(P||Q) = scipy.stats.entropy(p, q)
     assert scaled_bregman(p, q, 1.0, beta, scaling, r) == pytest.approx(stats.entropy(p, q), rel=1e-13)
 
 
@@ -113,18 +113,18 @@ def test_alpha_two_is_half_chi_square_over_m(scaling, beta, r):
         "model": q,
         "unit": np.ones(4),
     }[scaling]
-    # source: method.md 1.3 [V:C6]: b_2(p, q, m) = (p - q)^2 / (2 m) for every m
+    # source: docs/method.md §2.3: b_2(p, q, m) = (p - q)^2 / (2 m) for every m
     assert scaled_bregman(p, q, 2.0, beta, scaling, r) == pytest.approx(0.5 * np.sum((p - q) ** 2 / m), rel=1e-12)
 
 
 # --------------------------------------------------------------------------------------------
-# Density power divergence and Lindsay's blended weights (method.md 2.4-2.6)
+# Density power divergence and Lindsay's blended weights (docs/method.md §3.4, §3.5)
 # --------------------------------------------------------------------------------------------
 @pytest.mark.parametrize("a", [0.1, 0.5, 1.0, 2.0])
 def test_density_power_divergence_identity(a):
     g = np.array([0.15, 0.25, 0.35, 0.25])
     f = np.array([0.2, 0.3, 0.3, 0.2])
-    # source: Basu, Harris, Hjort & Jones (1998) DPD; identity d_a = (1+a) B_{1+a}(G,F|1), method.md 2.6 [V:C9]
+    # source: Basu, Harris, Hjort & Jones (1998) DPD; identity d_a = (1+a) B_{1+a}(G,F|1), docs/method.md §3.5
     dpd = np.sum(f ** (1 + a) - (1 + 1 / a) * g * f**a + (1 / a) * g ** (1 + a))
     assert (1 + a) * scaled_bregman(g, f, 1 + a, scaling="unit") == pytest.approx(dpd, rel=1e-12)
 
@@ -133,44 +133,46 @@ def test_density_power_divergence_identity(a):
 def test_blended_weight_chi_square(beta):
     p = np.array([0.05, 0.2, 0.3, 0.45])
     q = np.array([0.25, 0.25, 0.25, 0.25])
-    # source: Lindsay (1994) blended weight chi-square, 1/2 sum (p-q)^2/(beta p + (1-beta) q) (method.md 2.4, normalisation from memory)
+    # source: Lindsay (1994) blended weight chi-square, 1/2 sum (p-q)^2/(beta p + (1-beta) q)
+    # (docs/method.md §3.4; the factor 1/2 relative to Lindsay's normalisation is from memory)
     bwcs = 0.5 * np.sum((p - q) ** 2 / (beta * p + (1 - beta) * q))
     assert scaled_bregman(p, q, 2.0, beta, "power", r=1.0) == pytest.approx(bwcs, rel=1e-12)
-    # source: Lindsay / Basu-Lindsay blended weight Hellinger distance, r = 1/2 (method.md 2.5, normalisation from memory)
+    # source: Lindsay / Basu-Lindsay blended weight Hellinger distance, r = 1/2
+    # (docs/method.md §3.4; normalisation from memory)
     bwhd = 0.5 * np.sum((p - q) ** 2 / (beta * np.sqrt(p) + (1 - beta) * np.sqrt(q)) ** 2)
     assert scaled_bregman(p, q, 2.0, beta, "power", r=0.5) == pytest.approx(bwhd, rel=1e-12)
 
 
 def test_triangular_discrimination():
     p, q = np.array([0.1, 0.6, 0.3]), np.array([0.3, 0.3, 0.4])
-    # source: method.md 2.4 [V:C6c]: alpha = 2, arithmetic beta = 1/2 gives sum (p-q)^2/(p+q)
+    # source: docs/method.md §3.4: alpha = 2, arithmetic beta = 1/2 gives sum (p-q)^2/(p+q)
     assert scaled_bregman(p, q, 2.0, 0.5, "power", r=1.0) == pytest.approx(np.sum((p - q) ** 2 / (p + q)))
 
 
 # --------------------------------------------------------------------------------------------
-# Empty cells and impossible cells (method.md 2.7)
+# Empty cells and impossible cells (docs/method.md §4)
 # --------------------------------------------------------------------------------------------
 @pytest.mark.parametrize(
     "alpha,beta,scaling,r,expected",
     [
-        (-0.5, 0.25, "geometric", None, math.inf),  # source: method.md 2.7 numerical table (C12)
-        (-0.5, 1 / 3, "geometric", None, 4 / 3),  # source: method.md 2.7 (1.333)
-        (-0.5, 0.5, "geometric", None, 0.0),  # source: method.md 2.7
-        (2.0, 0.0, "power", 1.0, 0.5),  # source: method.md 2.7 (alpha = 2 arithmetic)
-        (2.0, 0.25, "power", 1.0, 2 / 3),  # source: method.md 2.7 (0.667)
-        (2.0, 0.5, "power", 1.0, 1.0),  # source: method.md 2.7
-        (2.0, 1.0, "power", 1.0, math.inf),  # source: method.md 2.7
-        (0.5, 0.0, "model", None, 2.0),  # source: method.md 2.7 table, m = q: 1/alpha
-        (0.0, 0.0, "model", None, math.inf),  # source: method.md 2.7 table, m = q, alpha = 0
-        (-1.0, 0.0, "model", None, math.inf),  # source: method.md 2.7 table, m = q, alpha < 0
-        (1.0, 0.7, "geometric", None, 1.0),  # source: method.md 2.7 table, alpha = 1
-        (2.0, 0.5, "geometric", None, math.inf),  # source: method.md 2.7 table, geometric alpha > 1
-        (0.5, 0.5, "geometric", None, 0.0),  # source: method.md 2.7 table, geometric 0 < alpha < 1
-        (0.0, 0.5, "geometric", None, 0.0),  # source: method.md 2.7 table, geometric alpha = 0
-        (1.5, 0.0, "data", None, math.inf),  # source: method.md 2.7 table, m = p alpha > 1
-        (-2.0, 1.0, "data", None, 0.0),  # source: method.md 2.7 table, m = p alpha < 0
-        (0.5, 0.4, "power", -1.0, 0.0),  # source: method.md 2.7 table, r < 0, beta > 0 behaves as m = p
-        (0.0, 0.3, "power", 2.0, math.inf),  # source: method.md 2.7 table, arithmetic-type alpha = 0
+        (-0.5, 0.25, "geometric", None, math.inf),  # source: docs/method.md §4.1 (examples)
+        (-0.5, 1 / 3, "geometric", None, 4 / 3),  # source: docs/method.md §4.1 (1.333)
+        (-0.5, 0.5, "geometric", None, 0.0),  # source: docs/method.md §4.1
+        (2.0, 0.0, "power", 1.0, 0.5),  # source: docs/method.md §4.1 (alpha = 2 arithmetic)
+        (2.0, 0.25, "power", 1.0, 2 / 3),  # source: docs/method.md §4.1 (0.667)
+        (2.0, 0.5, "power", 1.0, 1.0),  # source: docs/method.md §4.1
+        (2.0, 1.0, "power", 1.0, math.inf),  # source: docs/method.md §4.1
+        (0.5, 0.0, "model", None, 2.0),  # source: docs/method.md §4.1 table, m = q: 1/alpha
+        (0.0, 0.0, "model", None, math.inf),  # source: docs/method.md §4.1 table, m = q, alpha = 0
+        (-1.0, 0.0, "model", None, math.inf),  # source: docs/method.md §4.1 table, m = q, alpha < 0
+        (1.0, 0.7, "geometric", None, 1.0),  # source: docs/method.md §4.1 table, alpha = 1
+        (2.0, 0.5, "geometric", None, math.inf),  # source: docs/method.md §4.1 table, geometric alpha > 1
+        (0.5, 0.5, "geometric", None, 0.0),  # source: docs/method.md §4.1 table, geometric 0 < alpha < 1
+        (0.0, 0.5, "geometric", None, 0.0),  # source: docs/method.md §4.1 table, geometric alpha = 0
+        (1.5, 0.0, "data", None, math.inf),  # source: docs/method.md §4.1 table, m = p alpha > 1
+        (-2.0, 1.0, "data", None, 0.0),  # source: docs/method.md §4.1 table, m = p alpha < 0
+        (0.5, 0.4, "power", -1.0, 0.0),  # source: docs/method.md §4.1 table, r < 0, beta > 0 behaves as m = p
+        (0.0, 0.3, "power", 2.0, math.inf),  # source: docs/method.md §4.1 table, arithmetic-type alpha = 0
     ],
 )
 def test_empty_cell_factor_table(alpha, beta, scaling, r, expected):
@@ -196,19 +198,19 @@ def test_empty_cell_limit_matches_high_precision_limit(alpha, beta, scaling, r):
         w = x**b
     else:
         w = (b * x**r + 1 - b) ** (1 / mpmath.mpf(r))
-    ref = float(w ** (1 - a) * phi)  # source: mpmath, 80 digits, definition of f0 (method.md 2.7)
+    ref = float(w ** (1 - a) * phi)  # source: mpmath, 80 digits, definition of f0 (docs/method.md §4.1)
     assert float(empty_cell_factor(alpha, beta, scaling, r)) == pytest.approx(ref, rel=1e-6, abs=1e-12)
 
 
 @pytest.mark.parametrize(
     "alpha,beta,scaling,r,expected",
     [
-        (0.5, 0.0, "model", None, 2.0),  # source: method.md 2.7: m = q, alpha < 1: 1/(1-alpha)
-        (2.0, 0.0, "model", None, math.inf),  # source: method.md 2.7
-        (2.0, 1.0, "data", None, 0.5),  # source: method.md 2.7: m = p, alpha > 1: 1/(alpha(alpha-1))
-        (0.5, 0.5, "geometric", None, math.inf),  # source: method.md 2.7: always inf for geometric 0<beta<1
-        (3.0, 0.5, "power", 1.0, 0.5 ** -2 / 6),  # source: method.md 2.7: c = beta, c^(1-alpha)/(alpha(alpha-1))
-        (1.0, 0.5, "power", 1.0, math.inf),  # source: method.md 2.7: alpha = 1 always inf
+        (0.5, 0.0, "model", None, 2.0),  # source: docs/method.md §4.2: m = q, alpha < 1: 1/(1-alpha)
+        (2.0, 0.0, "model", None, math.inf),  # source: docs/method.md §4.2
+        (2.0, 1.0, "data", None, 0.5),  # source: docs/method.md §4.2: m = p, alpha > 1: 1/(alpha(alpha-1))
+        (0.5, 0.5, "geometric", None, math.inf),  # source: docs/method.md §4.2: always inf for geometric 0<beta<1
+        (3.0, 0.5, "power", 1.0, 0.5 ** -2 / 6),  # source: docs/method.md §4.2: c = beta, c^(1-alpha)/(alpha(alpha-1))
+        (1.0, 0.5, "power", 1.0, math.inf),  # source: docs/method.md §4.2: alpha = 1 always inf
     ],
 )
 def test_zero_model_cell_factor(alpha, beta, scaling, r, expected):
@@ -226,7 +228,7 @@ def test_empty_cells_give_finite_or_inf_never_nan():
 
 def test_impossible_cell_is_infinite_and_flagged():
     m = divergence_map([4, 6, 1], [0.5, 0.5, 0.0], [1.0, 2.0], [0.0, 0.5])
-    # source: method.md 2.7: q = 0 < p is infinite at alpha = 1 and for geometric 0 < beta < 1
+    # source: docs/method.md §4.2: q = 0 < p is infinite at alpha = 1 and for geometric 0 < beta < 1
     assert np.isinf(m.statistic[0]).all() and m.infinite[1, 1]
     assert m.statistic[1, 0] == pytest.approx(math.inf)
     # alpha = 0.5 with m = q is finite: contribution p / (1 - alpha)
@@ -234,12 +236,12 @@ def test_impossible_cell_is_infinite_and_flagged():
     p = np.array([4, 6, 1]) / 11
     q = np.array([0.5, 0.5, 0.0])
     regular = np.sum([(pp**0.5 * qq**0.5 - 0.5 * qq - 0.5 * pp) / (0.5 * -0.5) for pp, qq in zip(p[:2], q[:2])])
-    # source: method.md 2.1 (b = [p^a q^(1-a) + (a-1) q - a p]/(a(a-1))) plus 2.7 (p/(1-alpha))
+    # source: docs/method.md §3.1 (b = [p^a q^(1-a) + (a-1) q - a p]/(a(a-1))) plus §4.2 (p/(1-alpha))
     assert m2.statistic[0, 0] == pytest.approx(2 * 11 * (regular + p[2] / 0.5), rel=1e-12)
 
 
 # --------------------------------------------------------------------------------------------
-# Published worked examples (method.md 6.1)
+# Published worked examples (docs/method.md §13)
 # --------------------------------------------------------------------------------------------
 SBD_POINTS = [(2, 0, 0), (1, 0, 0), (0.5, 0, 0), (0, 0, 0), (2, 0.5, 1), (0, 0.5, 0), (-0.5, 0.5, 0)]
 
@@ -247,9 +249,10 @@ SBD_POINTS = [(2, 0, 0), (1, 0, 0), (0.5, 0, 0), (0, 0, 0), (2, 0.5, 1), (0, 0.5
 @pytest.mark.parametrize(
     "counts,probs,expected",
     [
-        # source: method.md 6.1 fixture 1 (Mendel 315/108/101/32 vs 9:3:3:1; X2 = 0.47 on the NDSU PLSC 431 page)
+        # source: Mendel (1866) counts 315/108/101/32 vs 9:3:3:1; scipy.stats.power_divergence (docs/method.md §13.2)
         ([315, 108, 101, 32], [9 / 16, 3 / 16, 3 / 16, 1 / 16], [0.470024, 0.475445, 0.478266, 0.481162, 0.478153, 0.472661, 0.471324]),
-        # source: method.md 6.1 fixture 5 (grades vs .32/.41/.20/.07; X2 = 5.297 in Yates/Moore/Starnes ex. 14.3)
+        # source: Yates/Moore/Starnes ex. 14.3 (grades vs .32/.41/.20/.07, X2 = 5.297);
+        # scipy.stats.power_divergence (docs/method.md §13.2)
         ([22, 38, 20, 11], [0.32, 0.41, 0.20, 0.07], [5.296952, 4.846776, 4.689174, 4.569381, 4.633893, 5.026720, 5.149734]),
     ],
 )
@@ -262,15 +265,18 @@ def test_published_fixtures_scaled_members(counts, probs, expected):
 
 def test_mendel_classical_members_and_p_value():
     m = divergence_map([315, 108, 101, 32], [9 / 16, 3 / 16, 3 / 16, 1 / 16])
-    assert m.members["pearson"] == pytest.approx(0.470024, abs=5e-7)  # source: method.md 6.1 fixture 1
-    assert m.members["likelihood-ratio"] == pytest.approx(0.475445, abs=5e-7)  # source: method.md 6.1 fixture 1
-    assert m.members["cressie-read-2/3"] == pytest.approx(0.471799, abs=5e-7)  # source: method.md 6.1 fixture 1
-    assert stats.chi2.sf(m.members["pearson"], 3) == pytest.approx(0.925426, abs=5e-7)  # source: method.md 6.1 (p = 0.925426)
+    # source: Mendel (1866) counts; X2 and its p-value by scipy.stats.chisquare, G2 and Cressie-Read 2/3
+    # by scipy.stats.power_divergence (lambda_ = 0, 2/3) (docs/method.md §13.1)
+    assert m.members["pearson"] == pytest.approx(0.470024, abs=5e-7)
+    assert m.members["likelihood-ratio"] == pytest.approx(0.475445, abs=5e-7)
+    assert m.members["cressie-read-2/3"] == pytest.approx(0.471799, abs=5e-7)
+    assert stats.chi2.sf(m.members["pearson"], 3) == pytest.approx(0.925426, abs=5e-7)
 
 
 def test_mendel_against_equal_ratios():
     m = divergence_map([315, 108, 101, 32], [0.25] * 4)
-    assert m.members["pearson"] == pytest.approx(322.517986, abs=1e-6)  # source: method.md 6.1 fixture 2 (322.54 published from rounded terms)
+    # source: scipy.stats.chisquare on Mendel's (1866) counts against equal ratios (docs/method.md §13.1)
+    assert m.members["pearson"] == pytest.approx(322.517986, abs=1e-6)
 
 
 @pytest.mark.parametrize(
@@ -300,7 +306,7 @@ def test_grades_example_p_value():
 
 def test_left_handed_example():
     m = divergence_map([20, 130], [0.1, 0.9])
-    # source: method.md 6.1 fixture 6 (20 of 150 left-handed vs 10 %, X2 = 1.85, p = 0.1737 via R chisq.test)
+    # source: scipy.stats.chisquare([20, 130], [15, 135]): X2 = 1.851852, p = 0.173568 (docs/method.md §13.1)
     assert m.members["pearson"] == pytest.approx(1.851852, abs=5e-7)
     assert stats.chi2.sf(m.members["pearson"], 1) == pytest.approx(0.1736, abs=2e-4)
 
@@ -315,7 +321,7 @@ def test_freeman_tukey_and_neyman_members():
 
 
 # --------------------------------------------------------------------------------------------
-# Numerical stability (method.md 1.5)
+# Numerical stability (docs/method.md §2.5)
 # --------------------------------------------------------------------------------------------
 def _mp_phi(x: float, a: float):
     mpmath.mp.dps = 60
@@ -330,7 +336,7 @@ def _mp_phi(x: float, a: float):
 @pytest.mark.parametrize("x", [1 + 2**-40, 1 - 1e-9, 1 + 1e-7, 1.0001, 0.999, 0.5, 2.0, 1e-5, 1e5, 3.7])
 @pytest.mark.parametrize("alpha", [-1.0, -0.5, 0.0, 1e-9, -1e-9, 0.5, 1 - 1e-9, 1.0, 1 + 1e-9, 5 / 3, 2.0, 3.0])
 def test_power_generator_relative_accuracy(x, alpha):
-    ref = _mp_phi(x, alpha)  # source: mpmath at 60 digits (method.md 1.5 recommends it as the oracle)
+    ref = _mp_phi(x, alpha)  # source: mpmath at 60 digits (docs/method.md §2.5)
     assert abs(power_generator(x, alpha) - ref) <= 1e-12 * abs(ref)
 
 
@@ -346,7 +352,7 @@ def test_extreme_probabilities_stay_finite_where_the_value_is_finite():
     q = np.array([0.5, 0.5])
     # alpha = -1, beta = 1 (m = p): b = q x^2 phi_{-1}(x) ~ q x / 2 -> tiny but finite
     v = scaled_bregman(p, q, -1.0, 1.0, "geometric")
-    direct = 0.5 * np.sum((p - q) ** 2 / p)  # source: method.md 2.2: alpha = 2 with m = p is Neyman/2;
+    direct = 0.5 * np.sum((p - q) ** 2 / p)  # source: docs/method.md §3.2: alpha = 2 with m = p is Neyman/2;
     assert np.isfinite(v)
     assert np.isfinite(scaled_bregman(p, q, 2.0, 1.0, "geometric"))
     assert scaled_bregman(p, q, 2.0, 1.0, "geometric") == pytest.approx(direct, rel=1e-12)
