@@ -12,7 +12,7 @@ CALIBRATION_JOBS ?= 2
 
 help:
 	@echo "make demo        run the weekly audit on the demo fleet (local files, embedded Prefect)"
-	@echo "make test        run the test suite"
+	@echo "make test        lint (ruff) and run the test suite with the doctests"
 	@echo "make test-fast   tests without the slow statistical and server checks"
 	@echo "make bench       benchmarks; writes docs/performance.md"
 	@echo "make bench-quick a small benchmark run"
@@ -34,9 +34,11 @@ demo: $(VENV)/.installed-run
 	$(BIN)/fitaudit demo --out fitaudit-demo
 
 test: $(VENV)/.installed-test
+	$(BIN)/ruff check .
 	$(PY) -m pytest $(PYTEST_ARGS)
 
 test-fast: $(VENV)/.installed-test
+	$(BIN)/ruff check .
 	$(PY) -m pytest -m "not slow and not server" $(PYTEST_ARGS)
 
 bench: $(VENV)/.installed-test

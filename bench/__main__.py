@@ -157,7 +157,7 @@ def main(argv: list[str] | None = None) -> int:
 def _measure(args: argparse.Namespace) -> dict:
     """Run the benchmarks; the rows plus what the page says about the run."""
     command = "python -m bench" + (" --quick" if args.quick else "") + (f" --only {' '.join(args.only)}" if args.only else "")
-    started = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M")
+    started = dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M")
     t0 = time.perf_counter()
     rows: list[dict] = []
     loads: dict[str, tuple] = {}

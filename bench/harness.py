@@ -16,7 +16,7 @@ import sys
 import tempfile
 import threading
 import time
-from typing import Callable, Sequence
+from collections.abc import Callable, Sequence
 
 __all__ = ["REPO", "child_env", "run_child", "write_result", "WorkClock", "warm_prefect_home"]
 

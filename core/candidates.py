@@ -9,8 +9,9 @@ auditing each with the refit check, and listing those that pass, best first: sma
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any
 
 import numpy as np
 
@@ -118,7 +119,7 @@ def search_candidates(
     spec: ForecastModel | Mapping[str, Any],
     noise: str | Mapping[str, Any] = "normal",
     exog=None,
-    settings: AuditSettings = AuditSettings(),
+    settings: AuditSettings | None = None,
     *,
     specs: Sequence[Mapping[str, Any]] | None = None,
     laws: Sequence[str] | None = None,
@@ -130,8 +131,8 @@ def search_candidates(
     ----------
     y, exog : the series and its exogenous inputs (as for :func:`audit_series`).
     spec, noise : the failing specification and its noise law.
-    settings : AuditSettings
-        The refit check's settings (the production check is not run).
+    settings : AuditSettings, optional
+        The refit check's settings (the production check is not run); default ``AuditSettings()``.
     specs : list of dict, optional
         Candidate specifications; default :func:`neighbour_specs` of ``spec``.
     laws : list of str, optional
@@ -145,6 +146,7 @@ def search_candidates(
     model = as_model(spec)
     noise_name = noise if isinstance(noise, str) else str(dict(noise).get("law"))
     cache = cache if cache is not None else CalibrationCache()
+    settings = settings if settings is not None else AuditSettings()
     trials: list[tuple[dict, Any]] = [(s_, noise) for s_ in (specs if specs is not None else neighbour_specs(model))]
     for law in laws if laws is not None else CONTINUOUS_LAWS:
         if law != noise_name:

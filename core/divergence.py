@@ -530,7 +530,7 @@ class DivergenceMap:
         j = np.asarray(self.argmax[1])
         return np.where(j >= 0, self.betas[np.maximum(j, 0)], np.nan)[()]
 
-    def row(self, i: int) -> "DivergenceMap":
+    def row(self, i: int) -> DivergenceMap:
         """The map of the i-th count vector of a batch."""
         if self.statistic.ndim == 2:
             raise InputError("DivergenceMap.row: this map holds a single count vector.")
@@ -598,7 +598,7 @@ def _grid_sums(p: np.ndarray, q: np.ndarray, alphas: np.ndarray, betas: np.ndarr
     one exponential per (row, alpha, beta, cell).
     """
     N, s = p.shape
-    A, B = alphas.size, betas.size
+    B = betas.size  # shapes below: N rows, A alphas, B betas, s cells
     q2 = np.broadcast_to(q, p.shape)
     pos = (p > 0) & (q2 > 0)
     with np.errstate(divide="ignore", invalid="ignore"):

@@ -53,7 +53,7 @@ __all__ = ["audit_flow"]
 
 
 def _utc() -> str:
-    return dt.datetime.now(dt.timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+    return dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat().replace("+00:00", "Z")
 
 
 @task(name="recover-archive", cache_policy=NO_CACHE, persist_result=False)
@@ -203,7 +203,7 @@ def audit_flow(
     started = _utc()
     settings = get_settings()
     archive = str(pathlib.Path(archive or settings.archive_root).resolve())
-    as_of = as_of or dt.datetime.now(dt.timezone.utc).date()
+    as_of = as_of or dt.datetime.now(dt.UTC).date()
     logger = get_run_logger()
     timings: dict[str, float] = {}
 

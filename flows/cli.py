@@ -17,7 +17,7 @@ import json
 import os
 import pathlib
 import sys
-from typing import Sequence
+from collections.abc import Sequence
 
 from fitaudit.core.vocabulary import VERDICTS
 

@@ -77,7 +77,7 @@ def refit_flow(
     """
     settings = get_settings()
     archive = str(pathlib.Path(archive or settings.archive_root).resolve())
-    as_of = as_of or dt.datetime.now(dt.timezone.utc).date()
+    as_of = as_of or dt.datetime.now(dt.UTC).date()
     reg = load_registry_task(registry)
     recover(archive) if pathlib.Path(archive).exists() else None
     run_id = new_run_id(as_of)

@@ -15,7 +15,7 @@ import subprocess
 import sys
 import time
 import urllib.request
-from typing import Iterator
+from collections.abc import Iterator
 
 __all__ = ["local_server", "free_port", "wait_healthy"]
 

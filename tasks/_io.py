@@ -9,7 +9,8 @@ import math
 import os
 import pathlib
 import tempfile
-from typing import Any, Iterable
+from collections.abc import Iterable
+from typing import Any
 
 __all__ = ["canonical_json", "sha256_bytes", "sha256_file", "write_once", "write_once_chunks", "utc_now", "json_ready"]
 
@@ -115,4 +116,4 @@ def write_once_chunks(path: str | os.PathLike, chunks: Iterable[bytes]) -> tuple
 
 def utc_now() -> str:
     """Current UTC time as ISO 8601 with a ``Z`` suffix (seconds precision)."""
-    return _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+    return _dt.datetime.now(_dt.UTC).replace(microsecond=0).isoformat().replace("+00:00", "Z")

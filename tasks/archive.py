@@ -44,7 +44,8 @@ import pathlib
 import re
 import secrets
 import shutil
-from typing import Any, Callable, Iterator
+from collections.abc import Callable, Iterator
+from typing import Any
 
 from fitaudit.core.exceptions import FitauditError, InputError
 
@@ -217,10 +218,10 @@ def new_run_id(as_of: _dt.date, now: _dt.datetime | None = None) -> str:
     """
     as_of = _as_date(as_of, "as_of")
     if now is None:
-        now = _dt.datetime.now(_dt.timezone.utc)
+        now = _dt.datetime.now(_dt.UTC)
     if not isinstance(now, _dt.datetime) or now.tzinfo is None:
         raise InputError(f"now must be a timezone-aware datetime (for example with tzinfo=timezone.utc); got {now!r}")
-    now = now.astimezone(_dt.timezone.utc)
+    now = now.astimezone(_dt.UTC)
     return f"{as_of:%Y%m%d}-T{now:%H%M%S}Z-{secrets.token_hex(2)}"
 
 
@@ -1111,7 +1112,7 @@ class WorkFolder:
             os.close(self._fd)
             self._fd = None
 
-    def __enter__(self) -> "WorkFolder":
+    def __enter__(self) -> WorkFolder:
         return self
 
     def __exit__(self, *exc: object) -> None:

@@ -12,8 +12,9 @@ import pathlib
 import pickle
 import time
 import traceback
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any
 
 from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE

@@ -10,13 +10,12 @@ source's requested rows at a time.
 
 from __future__ import annotations
 
-import dataclasses
 import datetime as dt
 import json
 import math
 import pathlib
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from typing import Any, Iterable, Sequence
 
 import numpy as np
 from prefect import task
@@ -25,7 +24,7 @@ from prefect.cache_policies import NO_CACHE
 from fitaudit.core.models import model_from_dict
 
 from ._io import json_ready
-from .extracts import ExtractError, ExtractFingerprint, SeriesProblem, fingerprint_source, read_series, series_problems
+from .extracts import ExtractError, ExtractFingerprint, fingerprint_source, read_series, series_problems
 from .frequencies import FREQUENCY_DAYS
 from .params import ParameterStoreError, production_version
 from .registry import ModelEntry, Registry

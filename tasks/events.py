@@ -9,7 +9,8 @@ One event per model verdict (``fitaudit.model.pass``, ``.refit``, ``.respecify``
 from __future__ import annotations
 
 import re
-from typing import Any, Mapping, Sequence
+from collections.abc import Mapping, Sequence
+from typing import Any
 
 from prefect.artifacts import create_link_artifact, create_markdown_artifact, create_table_artifact
 from prefect.events import emit_event

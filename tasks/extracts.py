@@ -31,8 +31,9 @@ import datetime as _dt
 import hashlib
 import os
 import pathlib
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
-from typing import Any, Iterable, Mapping
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -448,7 +449,7 @@ def _as_ns(value: Any, name: str) -> np.datetime64 | None:
         except ValueError:
             raise InputError(f"{name}={value!r} is not an ISO 8601 date or time (e.g. 2026-06-30)") from None
     if isinstance(value, _dt.datetime) and value.tzinfo is not None:
-        value = value.astimezone(_dt.timezone.utc).replace(tzinfo=None)
+        value = value.astimezone(_dt.UTC).replace(tzinfo=None)
     return np.datetime64(value, "ns")
 
 

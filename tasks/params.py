@@ -20,8 +20,9 @@ import os
 import pathlib
 import re
 import threading
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Mapping
+from typing import Any
 
 from fitaudit.core.exceptions import FitauditError
 

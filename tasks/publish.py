@@ -27,8 +27,9 @@ import pickle
 import platform
 import socket
 import subprocess
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, Iterable, Iterator, Mapping, Sequence
+from typing import Any
 
 import pyarrow as pa
 import pyarrow.parquet as pq

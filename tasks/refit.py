@@ -11,7 +11,7 @@ fits: the candidate search lists neighbouring specifications and noise laws that
 from __future__ import annotations
 
 import os
-from typing import Any, Sequence
+from typing import Any
 
 from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE

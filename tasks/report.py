@@ -28,7 +28,8 @@ from __future__ import annotations
 import functools
 import math
 import unicodedata
-from typing import Any, Iterable, Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
+from typing import Any
 
 import jinja2
 import markupsafe

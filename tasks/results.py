@@ -22,7 +22,8 @@ Schema (version 1)::
 
 from __future__ import annotations
 
-from typing import Any, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from typing import Any
 
 from fitaudit.core.vocabulary import ADJUDICATED_VERDICTS, VERDICTS
 

@@ -21,7 +21,8 @@ import signal
 import sys
 import threading
 import uuid
-from typing import Any, Callable, Iterator, TypeVar
+from collections.abc import Callable, Iterator
+from typing import Any, TypeVar
 
 __all__ = ["local_workers", "run_local", "default_processes", "time_limit", "TimeLimitExceeded", "can_limit_time"]
 

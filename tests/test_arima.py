@@ -221,9 +221,9 @@ def test_state_covariance_equals_the_covariance_of_lfiltic_states(ar_poly, ma_po
     # joint covariance of (w_{-1..-r}, e_{-1..-r}): gamma(|j - l|) and E[w_{-j} e_{-l}] = psi_{l-j}
     joint = np.eye(2 * r)
     for j in range(r):
-        for l in range(r):
-            joint[j, l] = gamma[abs(j - l)]
-            joint[j, r + l] = joint[r + l, j] = psi[l - j] if l >= j else 0.0
+        for m in range(r):
+            joint[j, m] = gamma[abs(j - m)]
+            joint[j, r + m] = joint[r + m, j] = psi[m - j] if m >= j else 0.0
     basis = np.eye(2 * r)
     mapping = np.column_stack([lfiltic(ar_poly, ma_poly, y=basis[k, r:], x=basis[k, :r]) for k in range(2 * r)])
     expected = mapping @ joint @ mapping.T

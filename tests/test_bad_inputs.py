@@ -19,7 +19,7 @@ import os
 import pathlib
 import re
 import sys
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 import pyarrow as pa

@@ -32,7 +32,7 @@ from fitaudit.tasks.extracts import (
     read_series,
     series_problems,
 )
-from fitaudit.tasks.frequencies import FREQUENCY_DAYS, FREQUENCIES, SUBDAILY
+from fitaudit.tasks.frequencies import FREQUENCIES, FREQUENCY_DAYS, SUBDAILY
 from fitaudit.tasks.registry import SourceEntry
 
 SOURCE = SourceEntry(
@@ -233,7 +233,7 @@ def test_aware_timestamps_become_utc_naive(tmp_path):
     _write(tmp_path / "demand.parquet", _table("north", times))
     out = read_series(_source("demand.parquet", frequency="H"), ["north"], ["demand"], base_dir=tmp_path)
     # source: zoneinfo (IANA tz database) conversion of each local time to UTC
-    expected = np.array([t.astimezone(dt.timezone.utc).replace(tzinfo=None) for t in local], dtype="datetime64[ns]")
+    expected = np.array([t.astimezone(dt.UTC).replace(tzinfo=None) for t in local], dtype="datetime64[ns]")
     np.testing.assert_array_equal(out["north"].time, expected)
     assert out["north"].problems == ()  # hourly in UTC across the clock change: no gap
 

@@ -193,7 +193,7 @@ def test_read_series_raises_io_errors_for_retry_or_names_the_file(fleet, monkeyp
     for mode, failures in (("raise", 1), ("skip", -1)):
         handler = FlakyFiles(failures)
         locate = extracts._locate
-        monkeypatch.setattr(extracts, "_locate", lambda s, b, io_errors="skip": dataclasses.replace(locate(s, b, io_errors), fs=PyFileSystem(handler)))
+        monkeypatch.setattr(extracts, "_locate", lambda s, b, io_errors="skip", locate=locate, handler=handler: dataclasses.replace(locate(s, b, io_errors), fs=PyFileSystem(handler)))
         if mode == "raise":
             with pytest.raises(TimeoutError, match="simulated time-out"):
                 extracts.read_series(source, ["f1"], ["y"], base_dir=root, io_errors="raise")

@@ -122,7 +122,7 @@ def pages(doc) -> dict[str, bytes]:
 
 
 @pytest.fixture(scope="module")
-def dom(pages) -> dict[str, "Node"]:
+def dom(pages) -> dict[str, Node]:
     return {name: parse(data) for name, data in pages.items()}
 
 
@@ -139,7 +139,7 @@ VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "met
 
 
 class Node:
-    def __init__(self, tag: str, attrs: dict, parent: "Node | None"):
+    def __init__(self, tag: str, attrs: dict, parent: Node | None):
         self.tag, self.attrs, self.parent, self.children = tag, attrs, parent, []
 
     def text(self) -> str:
@@ -152,13 +152,13 @@ class Node:
                     yield c
                 yield from c.iter(tag)
 
-    def elements(self) -> list["Node"]:
+    def elements(self) -> list[Node]:
         return [c for c in self.children if isinstance(c, Node)]
 
     def classes(self) -> set[str]:
         return set((self.attrs.get("class") or "").split())
 
-    def find_id(self, ident: str) -> "Node | None":
+    def find_id(self, ident: str) -> Node | None:
         return next((n for n in self.iter() if n.attrs.get("id") == ident), None)
 
 
@@ -731,7 +731,7 @@ def test_archive_index_lists_published_runs(tmp_path, doc):
     root = tmp_path / "archive"
     run_ids = []
     for k, as_of in enumerate((dt.date(2026, 11, 23), dt.date(2026, 11, 30))):
-        run_id = archive.new_run_id(as_of, dt.datetime(2026, 12, 1, 1, 0, k, tzinfo=dt.timezone.utc))
+        run_id = archive.new_run_id(as_of, dt.datetime(2026, 12, 1, 1, 0, k, tzinfo=dt.UTC))
         meta = dict(META, run_id=run_id)
         with archive.open_run(root, run_id, as_of.year) as run:
             for name, data in render_run(doc, meta).items():

@@ -234,7 +234,7 @@ def test_run_page_opens_offline_and_shows_counts_and_exceptions(browser, run_fol
         assert box and box["shown"] and box["w"] > 300 and box["h"] > 20, (selector, box)
     assert seen["#counts"]["top"] < 900  # the counts are on the first screen
     counts_text = seen["#counts"]["text"]
-    for verdict, (symbol, word) in STATUS.items():
+    for symbol, word in STATUS.values():
         assert f"{symbol} {word}" in counts_text
     rendered = browser.evaluate(session, "Array.from(document.querySelectorAll('#counts tbody td')).map(td => td.innerText.trim())")
     assert [int(x) for x in rendered] == [doc["summary"][k] for k in ("registered", "audited", *STATUS)]

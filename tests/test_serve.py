@@ -103,10 +103,15 @@ def test_served_audit_runs_through_the_api_with_artifacts_events_and_triggered_r
     import datetime as dt
 
     from prefect.client.orchestration import get_client
-    from prefect.client.schemas.filters import ArtifactFilter, ArtifactFilterFlowRunId, DeploymentFilter, DeploymentFilterName
+    from prefect.client.schemas.filters import (
+        ArtifactFilter,
+        ArtifactFilterFlowRunId,
+        DeploymentFilter,
+        DeploymentFilterName,
+    )
     from prefect.deployments import run_deployment
 
-    since = dt.datetime.now(dt.timezone.utc) - dt.timedelta(seconds=5)
+    since = dt.datetime.now(dt.UTC) - dt.timedelta(seconds=5)
     run = run_deployment("fitaudit-audit/weekly", parameters={"as_of": DEMO_AS_OF.isoformat(), "models": MODELS}, timeout=600, poll_interval=2)
     assert run.state.is_completed(), run.state
 

@@ -15,8 +15,9 @@ from __future__ import annotations
 import abc
 import copy
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, ClassVar, Mapping
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -54,7 +55,7 @@ class FitResult:
         Function evaluations (or iterations) used.
     """
 
-    spec: "ForecastModel"
+    spec: ForecastModel
     params: dict
     loglik: float
     sigma2: float

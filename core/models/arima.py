@@ -26,8 +26,8 @@ from __future__ import annotations
 import copy
 import math
 import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Mapping
 
 import numpy as np
 from scipy.linalg import lapack

@@ -48,7 +48,8 @@ import importlib
 import math
 import re
 import warnings
-from typing import Any, Callable, Mapping
+from collections.abc import Callable, Mapping
+from typing import Any
 
 import numpy as np
 from scipy.optimize import least_squares

@@ -29,7 +29,7 @@ Two evaluation routes, both without a Python loop over single time points:
 from __future__ import annotations
 
 import warnings
-from typing import Mapping
+from collections.abc import Mapping
 
 import numpy as np
 from scipy.optimize import least_squares, minimize
@@ -782,7 +782,7 @@ class _AdditiveProfile:
     parameter, so their derivatives are exact unit differences of :func:`error_filter`.
     """
 
-    def __init__(self, spec: "ExpSmoothing", y: np.ndarray):
+    def __init__(self, spec: ExpSmoothing, y: np.ndarray):
         self.spec = spec
         self.y = y
         n = y.size
