@@ -31,7 +31,7 @@ def _sha(data: bytes) -> str:
 
 
 def _canonical(obj) -> bytes:
-    """Canonical JSON as the brief defines it: sorted keys, compact separators, UTF-8."""
+    """Canonical JSON as docs/architecture.md §3.9 defines it: sorted keys, compact separators, UTF-8."""
     return json.dumps(obj, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode("utf-8")
 
 
@@ -109,7 +109,7 @@ def test_chain_entries_recompute_with_hashlib(populated):
     root, runs = populated
     entries = [json.loads(line) for line in _chain_lines(root)]
     assert [e["kind"] for e in entries] == ["run", "run", "run", "promotion", "signoff", "purge"]
-    prev = "0" * 64  # genesis value of the brief
+    prev = "0" * 64  # genesis value (docs/architecture.md §3.4)
     for seq, entry in enumerate(entries, start=1):
         body = {k: v for k, v in entry.items() if k != "hash"}
         assert entry["hash"] == _sha(_canonical(body))

@@ -1,4 +1,4 @@
-"""Crash safety of the archive: SIGKILL a publishing process and check what is left (issue 8, faults).
+"""Crash safety of the archive: SIGKILL a publishing process and check what is left.
 
 A worker process (forked from a launcher subprocess) publishes runs in a loop; the test kills it
 with SIGKILL, then checks, with an oracle independent of the archive code, that every run folder

@@ -93,7 +93,7 @@ def _assert_matches_reference(fit, reference, spec, exog_names, atol=1e-3, rtol=
     """Parameters within atol + rtol |value|, log-likelihood within 0.01."""
     ours = _reference_vector(spec, fit.params, exog_names)
     np.testing.assert_allclose(ours, reference.params, atol=atol, rtol=rtol)
-    assert abs(fit.loglik - reference.llf) < 0.01  # source: issue 3 acceptance (loglik within 0.01)
+    assert abs(fit.loglik - reference.llf) < 0.01  # common practice: statsmodels' log-likelihood to 0.01
 
 
 # -- the likelihood kernel against statsmodels' Kalman filter ------------------------------------
@@ -284,7 +284,7 @@ def test_regression_with_ar2_errors_on_consumption_matches_statsmodels(macro):
     approx = ARIMA(y, exog=X, order=(2, 0, 0), trend="c").fit(cov_type="approx").bse
     # source: statsmodels bse from its numerical Hessian (cov_type="approx")
     np.testing.assert_allclose(_reference_vector(spec, fit.extras["bse"], list(exog)), approx, rtol=1e-2)
-    assert list(fit.params) == ["ar1", "ar2", "intercept", "x:income", "x:unemp", "sigma2"]  # source: design.md section 5 naming
+    assert list(fit.params) == ["ar1", "ar2", "intercept", "x:income", "x:unemp", "sigma2"]  # source: docs/architecture.md §6 (parameter names)
 
 
 def test_regression_with_ar2_errors_on_simulated_series_matches_statsmodels():
@@ -406,7 +406,7 @@ def test_errors_of_fitted_parameters_equal_the_residuals(method, macro):
     exog = {"income": macro["income_growth"]}
     spec = Arima(order=(1, 1, 1), trend="t", method=method)
     fit = spec.fit(y, exog=exog)
-    np.testing.assert_array_equal(spec.errors(y, fit.params, exog=exog), fit.residuals)  # source: residual identity (issue 3)
+    np.testing.assert_array_equal(spec.errors(y, fit.params, exog=exog), fit.residuals)  # source: residual identity (errors at the fitted parameters)
     assert fit.residuals.shape == y.shape and np.isnan(fit.residuals[0]) and np.isfinite(fit.residuals[1:]).all()
     if method == "exact":
         # sum v_t^2 / F_t is the quadratic form of the exact likelihood, whose mean is the ML sigma2
@@ -430,7 +430,7 @@ def test_errors_on_a_longer_series_extend_the_fit_residuals(macro):
 def test_description_names_and_protocol():
     spec = Arima(order=(1, 1, 1), seasonal=(0, 0, 1, 7), trend="t")
     assert spec.describe() == "ARIMA(1,1,1)(0,0,1)7 with drift"  # source: brief (describe format)
-    assert spec.param_names(["temp_c"]) == ["ar1", "ma1", "sma1", "drift", "x:temp_c", "sigma2"]  # source: design.md section 5
+    assert spec.param_names(["temp_c"]) == ["ar1", "ma1", "sma1", "drift", "x:temp_c", "sigma2"]  # source: docs/architecture.md §6
     assert spec.n_dynamic_params() == 3  # source: p + q + P + Q
     assert spec.seasonal_period() == 7  # source: the spec's s
     assert Arima(order=(1, 0, 0)).seasonal_period() == 1  # source: ForecastModel.seasonal_period (1 when non-seasonal)

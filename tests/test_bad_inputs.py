@@ -1,4 +1,4 @@
-"""Bad input, table-driven (issue 8): every case gets a clear verdict and message, the rest of the run goes on.
+"""Bad input, table-driven: every case gets a clear verdict and message, the rest of the run goes on.
 
 One audit run covers every entry-, extract- and numeric-level case: each case is its own model
 (and its own series, and its own source when the case is about a source), next to a few healthy

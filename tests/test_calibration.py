@@ -26,12 +26,12 @@ GRID = (DEFAULT_ALPHAS, DEFAULT_BETAS, "geometric", None)
 @pytest.mark.parametrize(
     "df,value",
     [
-        (1, 3.84146),  # source: method.md 6.2, upper 5 % points (Abramowitz & Stegun table 26.8, table number from memory)
-        (2, 5.99146),  # source: method.md 6.2
-        (3, 7.81473),  # source: method.md 6.2
-        (4, 9.48773),  # source: method.md 6.2
-        (5, 11.0705),  # source: method.md 6.2
-        (10, 18.30704),  # source: method.md 6.2
+        (1, 3.84146),  # source: Abramowitz & Stegun (1964) table 26.8, upper 5 % points (table number from memory; docs/method.md §13.3)
+        (2, 5.99146),  # source: Abramowitz & Stegun (1964) table 26.8
+        (3, 7.81473),  # source: Abramowitz & Stegun (1964) table 26.8
+        (4, 9.48773),  # source: Abramowitz & Stegun (1964) table 26.8
+        (5, 11.0705),  # source: Abramowitz & Stegun (1964) table 26.8
+        (10, 18.30704),  # source: Abramowitz & Stegun (1964) table 26.8
     ],
 )
 def test_chi_square_upper_five_percent_points(df, value):
@@ -129,7 +129,7 @@ def test_nrr_term_hand_worked_case():
     sigma = 2.0
     s, n = 4, counts.sum()
     grad = _normal_equiprobable_gradient(s, sigma)
-    info = np.diag([1.0, 2.0]) / sigma**2  # source: per-observation Fisher information of N(mu, sigma^2) (method.md 3.3)
+    info = np.diag([1.0, 2.0]) / sigma**2  # source: per-observation Fisher information of N(mu, sigma^2) (docs/method.md §5.3)
     v = (counts - n / s) / np.sqrt(n / s)
     b = grad * np.sqrt(s)
     by_hand = v @ b @ np.linalg.inv(info - b.T @ b) @ b.T @ v
@@ -143,7 +143,8 @@ def test_nrr_term_hand_worked_case():
 
 
 def test_nrr_restores_chi_square_size(rng):
-    """method.md 3.4: iid normal, n = 500, s = 10, ML (mu, sigma): X2 + NRR has size ~0.0475 at chi2(9)."""
+    """Nikulin (1973), Rao and Robson (1974): ML (mu, sigma) from iid normal data, n = 500, s = 10: X2 + NRR is
+    near its chi2(9) level, X2 alone is conservative (Chernoff and Lehmann 1954; docs/method.md §5.3, §5.4)."""
     law = get_law("normal")
     n, s, reps = 500, 10, 400
     x = rng.standard_normal((reps, n))
@@ -158,6 +159,7 @@ def test_nrr_restores_chi_square_size(rng):
     crit = stats.chi2.isf(0.05, s - 1)
     rate_y2 = np.mean(np.array(y2) > crit)
     rate_x2 = np.mean(x2 > crit)
-    # source: method.md 3.4 simulation: 0.0475 with the correction, 0.0187 for X2 alone
+    # source: Nikulin (1973), Rao and Robson (1974): the corrected statistic tends to chi2(s - 1); X2 alone lies
+    # between chi2(s - 3) and chi2(s - 1) (Chernoff and Lehmann 1954), so it rejects less (docs/method.md §5.3, §5.4)
     assert 0.02 <= rate_y2 <= 0.09
     assert rate_x2 < rate_y2

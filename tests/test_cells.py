@@ -12,14 +12,14 @@ from fitaudit.core.exceptions import InsufficientDataError
 @pytest.mark.parametrize(
     "n,k,expected",
     [
-        # source: method.md 4.2 lists 2 n^(2/5) = 9.6, 12.6, 16.7, 24.0, 31.7, 60.3 for n = 50..5000
+        # source: Moore (1986), docs/method.md §6.3: 2 n^(2/5) = 9.6, 12.6, 16.7, 24.0, 31.7, 60.3 for n = 50..5000
         (50, 0, 10),
         (100, 0, 13),
         (200, 0, 17),
         (500, 0, 24),
         (1000, 0, 32),
         (5000, 0, 60),
-        # common practice: at least k + 3 cells and at least five expected counts per cell (method.md 4.2-4.3)
+        # common practice: at least k + 3 cells and at least five expected counts per cell (Cochran 1952; docs/method.md §6.3)
         (28, 0, 5),
         (20, 0, 4),
         (35, 3, 7),

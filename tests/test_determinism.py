@@ -1,4 +1,4 @@
-"""Determinism (issue 8): the same registry, extract, as-of date and seed give byte-identical ``results.json``.
+"""Determinism: the same registry, extract, as-of date and seed give byte-identical ``results.json``.
 
 One small fleet produces every verdict kind (pass, refit, respecify, insufficient, error and a
 rejected registry entry) with ARIMA, exponential smoothing and SETAR models.  Its ``results.json``

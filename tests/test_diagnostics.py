@@ -68,13 +68,13 @@ def test_acf_band():
 def test_ljung_box_sunspots_published(sunspot_residuals):
     res = ljung_box(sunspot_residuals, 10)
     # source: statsmodels acorr_ljungbox docstring (sunspots, ARMA(1,1), lags=[10]) lb_stat 214.106992
-    # (old ARMA class); method.md 6.3: 214.108693 with the current ARIMA estimator
+    # (old ARMA class); 214.108693 with statsmodels' current ARIMA estimator (docs/method.md §13.4)
     assert res.statistic == pytest.approx(214.106992, rel=1e-4)
     assert res.statistic == pytest.approx(214.108693, rel=1e-6)
-    assert res.p_value == pytest.approx(1.825878e-40, rel=1e-3)  # source: method.md 6.3 (df 10)
+    assert res.p_value == pytest.approx(1.825878e-40, rel=1e-3)  # source: statsmodels, current ARIMA (docs/method.md §13.4, df 10)
     with_df = ljung_box(sunspot_residuals, 10, model_df=2)
     assert with_df.df == 8
-    assert with_df.p_value == pytest.approx(6.757340e-42, rel=1e-3)  # source: method.md 6.3 (model_df = 2)
+    assert with_df.p_value == pytest.approx(6.757340e-42, rel=1e-3)  # source: statsmodels, current ARIMA (docs/method.md §13.4, model_df = 2)
 
 
 @pytest.mark.parametrize("lags,model_df", [(10, 0), (10, 2), (5, 2), (24, 3)])
@@ -143,12 +143,12 @@ def test_ljung_box_lags_match_statsmodels_default(n, period, rng):
     x = rng.standard_normal(n)
     kwargs = {} if period == 1 else {"period": period}
     ref = sm_diagnostic.acorr_ljungbox(x, return_df=True, **kwargs).index.max()  # source: statsmodels acorr_ljungbox default lags
-    expected = max(ref, 3)  # design.md section 4: at least model_df + 3
+    expected = max(ref, 3)  # docs/method.md §9.2: at least model_df + 3
     assert ljung_box_lags(n, period=period) == expected
 
 
 def test_ljung_box_lags_degrees_of_freedom():
-    # source: design.md section 4 (h at least df + 3)
+    # source: docs/method.md §9.2 (h at least df + 3)
     assert ljung_box_lags(40, model_df=7) == 10
     assert ljung_box_lags(200, model_df=2) == 10
     with pytest.raises(InsufficientDataError, match="at least 11 residuals"):

@@ -1,4 +1,4 @@
-"""Faults (issue 8): the audit process killed mid-run, I/O failures reading an extract, crashing user code.
+"""Faults: the audit process killed mid-run, I/O failures reading an extract, crashing user code.
 
 * ``fitaudit run`` is SIGKILLed at 20 seeded points spread over a run's duration (measured once
   first); after every kill only complete, chained runs are visible and ``verify_archive`` is clean,
@@ -355,7 +355,7 @@ def test_model_that_never_returns_gets_an_error_and_the_run_completes(prefect_se
     records = {m["id"]: m for m in results_of(run)["models"]}
     message = " ".join(records["nlar-hangs"]["reasons"])
     assert records["nlar-hangs"]["verdict"] == "error", message
-    # source: the message contract of issue 8 (names the model, the cause and the fix)
+    # source: the message contract of DEVELOPERS.md, "Nothing is lost" (names the model, the cause and the fix)
     assert "model 'nlar-hangs'" in message and "time limit of 4 s per model" in message and "raise the limit" in message
     assert records["arima-a"]["verdict"] in AUDITED and records["arima-b"]["verdict"] in AUDITED
     assert verify_archive(run["archive"]) == []

@@ -1,4 +1,4 @@
-"""Run-level helpers (fitaudit.core.fleet) against statsmodels' multipletests and design.md."""
+"""Run-level helpers (fitaudit.core.fleet) against statsmodels' multipletests and docs/method.md §10."""
 
 from __future__ import annotations
 
@@ -13,7 +13,7 @@ from fitaudit.core.fleet import adjust_pvalues, escalate_persistent_refit
 multitest = pytest.importorskip("statsmodels.stats.multitest")
 
 # source: Benjamini & Hochberg (1995), JRSS B 57:289, section 4 example (15 p-values of a
-# myocardial-infarction study; values from memory via the brief)
+# myocardial-infarction study; values from memory)
 BH_1995 = np.array(
     [0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459, 0.3240, 0.4262, 0.5719, 0.6528, 0.7590, 1.000]
 )
@@ -70,7 +70,7 @@ def test_adjust_pvalues_errors():
 
 @pytest.mark.parametrize(
     "history,current,expected",
-    # source: design.md section 4 (a refit verdict repeated in k of the last N audits, default 2 of 3)
+    # source: docs/method.md §10.4 (a refit verdict repeated in k of the last N audits, default 2 of 3)
     [
         ([], "refit", False),
         (["refit"], "refit", True),
@@ -87,7 +87,7 @@ def test_escalate_persistent_refit_default(history, current, expected):
 
 
 def test_escalate_persistent_refit_custom_window():
-    # source: the brief ("refit" in at least k of the last n audits INCLUDING the current one)
+    # source: docs/method.md §10.4 ("refit" in at least k of the last n audits INCLUDING the current one)
     assert escalate_persistent_refit(["refit", "pass", "pass", "pass"], "refit", k=2, n=5) is True
     assert escalate_persistent_refit(["refit", "pass", "pass", "pass"], "refit", k=2, n=4) is False
     assert escalate_persistent_refit(["pass"], "refit", k=1, n=1) is True

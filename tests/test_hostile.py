@@ -1,4 +1,4 @@
-"""Hostile content (issue 8): markup, direction marks, huge strings and path segments in every user field.
+"""Hostile content: markup, direction marks, huge strings and path segments in every user field.
 
 A registry whose model ids (safe ones, and unsafe ones that must be rejected), owners,
 descriptions, policy text, series keys and column names carry ``<script>``, event-handler

@@ -1,4 +1,4 @@
-"""Packaging and layering rules (design.md section 3, style.md 'Packaging')."""
+"""Packaging and layering rules (docs/architecture.md §1; DEVELOPERS.md, "Layering rules")."""
 
 from __future__ import annotations
 

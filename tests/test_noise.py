@@ -1,4 +1,4 @@
-"""Noise laws (fitaudit.core.noise) checked against scipy.stats and method.md's published figures."""
+"""Noise laws (fitaudit.core.noise) checked against scipy.stats and the published figures of docs/method.md."""
 
 from __future__ import annotations
 
@@ -43,7 +43,7 @@ def all_params(law_name: str, loc=0.7, scale=1.9, df=4.5):
 # Registry and validation
 # --------------------------------------------------------------------------------------------
 def test_registry_names():
-    assert sorted(NOISE_LAWS) == sorted(CONTINUOUS + COUNT)  # source: design.md section 2 (noise law)
+    assert sorted(NOISE_LAWS) == sorted(CONTINUOUS + COUNT)  # source: docs/architecture.md §6 (noise law)
     for name in NOISE_LAWS:
         law = get_law(name)
         assert law.name == name
@@ -62,7 +62,7 @@ def test_invalid_shape(name, shape):
 
 
 def test_n_estimated():
-    # source: method.md 5.2 (k = number of noise-law parameters estimated, location if an intercept is fitted)
+    # source: docs/method.md §8.2 (k = number of noise-law parameters estimated, location if an intercept is fitted)
     assert get_law("normal").n_estimated(location=True) == 2
     assert get_law("normal").n_estimated(location=False) == 1
     assert get_law("student-t").n_estimated(location=True) == 3
@@ -136,7 +136,8 @@ def test_from_variance_has_that_variance(name):
 
 
 def test_from_variance_student_t_formula():
-    # source: the brief (t: scale = sigma * sqrt((df - 2) / df)); df = 5, sigma2 = 4 -> 2 * sqrt(3/5)
+    # common practice: the t law with df degrees of freedom has variance df / (df - 2) times its scale
+    # squared, so scale = sigma * sqrt((df - 2) / df); df = 5, sigma2 = 4 -> 2 * sqrt(3/5)
     p = get_law("student-t").from_variance(4.0, shape=5.0)
     assert p.scale == pytest.approx(2.0 * math.sqrt(0.6), rel=1e-14)
     with pytest.raises(InputError, match="needs its shape"):
@@ -309,7 +310,7 @@ def test_fisher_information_matches_numerical_second_derivatives(name):
 
 
 def test_fisher_information_normal_table():
-    # source: method.md 3.3 (normal (mu, sigma): J = diag(1, 2) / sigma^2)
+    # source: docs/method.md §5.3 (normal (mu, sigma): J = diag(1, 2) / sigma^2)
     p = NoiseParams("normal", 1.0, 2.0, None, ("loc", "scale"))
     np.testing.assert_allclose(get_law("normal").fisher_information(p), np.diag([1.0, 2.0]) / 4.0, rtol=1e-15)
     only_scale = NoiseParams("normal", 0.0, 2.0, None, ("scale",))
@@ -317,7 +318,7 @@ def test_fisher_information_normal_table():
 
 
 def test_grouped_information_normal_ten_cells():
-    # source: method.md 4.1 / 3.3 (J* = diag(0.959, 1.405) / sigma^2 for 10 equiprobable normal cells)
+    # source: docs/method.md §5.3 table (J* = diag(0.959, 1.405) / sigma^2 for 10 equiprobable normal cells)
     sigma = 1.7
     p = NoiseParams("normal", -0.4, sigma, None, ("loc", "scale"))
     B = get_law("normal").cell_probability_gradient(10, p) / math.sqrt(0.1)
@@ -328,7 +329,7 @@ def test_grouped_information_normal_ten_cells():
 
 @pytest.mark.parametrize(
     "s,lam_mu,lam_sigma",
-    # source: method.md 3.3 table (Chernoff-Lehmann lambdas, normal, equiprobable cells)
+    # source: docs/method.md §5.3 table (Chernoff-Lehmann lambdas, normal, equiprobable cells)
     [(4, 0.1394, 0.6325), (5, 0.1030, 0.5317), (6, 0.0806, 0.4588), (8, 0.0550, 0.3606),
      (10, 0.0410, 0.2975), (15, 0.0242, 0.2077), (20, 0.0167, 0.1600), (30, 0.0100, 0.1101)],
 )
@@ -431,7 +432,7 @@ def test_randomized_pit_lies_in_its_interval(name, rng):
     params = NoiseParams(name, 0.0, 1.0, 2.5 if name == "negative-binomial" else None)
     u = get_law(name).randomized_pit(y, mean, params, rng)
     ref = stats.nbinom(2.5, 2.5 / (2.5 + mean)) if name == "negative-binomial" else stats.poisson(mean)
-    # source: method.md 4.4, u_t in [F(y_t - 1), F(y_t)] computed with scipy.stats
+    # source: Dunn and Smyth (1996), docs/method.md §6.2: u_t in [F(y_t - 1), F(y_t)] computed with scipy.stats
     assert np.all(u >= ref.cdf(y - 1) - 1e-12) and np.all(u <= ref.cdf(y) + 1e-12)
 
 
@@ -443,7 +444,7 @@ def test_randomized_pit_is_uniform_under_the_model(name):
     mean = rng.uniform(0.2, 6.0, size=5000)
     y = law.sample_counts(mean, rng, params)
     u = law.randomized_pit(y, mean, params, rng)
-    # source: method.md 4.4 (exactly U(0,1) under H0); scipy.stats.kstest, seeded, wide tolerance
+    # source: Dunn and Smyth (1996), docs/method.md §6.2 (exactly U(0,1) under H0); scipy.stats.kstest, seeded, wide tolerance
     assert stats.kstest(u, "uniform").pvalue > 1e-3
 
 

@@ -1,4 +1,4 @@
-"""The performance work of issue 7 changes no result.
+"""The performance work (faster change location, worker processes, spill files, streaming) changes no result.
 
 Each optimisation is checked against the unoptimised way of computing the same thing:
 
@@ -61,7 +61,7 @@ DEMO_SUBSET = [
 
 
 def _reference_locate_change(errors: np.ndarray, permutations: int, seed: int) -> tuple[int, float, float]:
-    """locate_change before issue 7: permutations scored by the one-hot split statistics, in chunks."""
+    """locate_change before the O(n) rewrite: permutations scored by the one-hot split statistics, in chunks."""
     law = get_law("normal")
     e = errors[~np.isnan(errors)]
     n = e.size

@@ -1,4 +1,4 @@
-"""Property tests (issue 8): random registries, count vectors, grids and series never crash or give NaN.
+"""Property tests: random registries, count vectors, grids and series never crash or give NaN.
 
 Extends tests/test_registry.py (random token soups, random YAML trees and line mutations of a
 valid document, which mostly stop at registry-level checks) with random *model entries* inside a

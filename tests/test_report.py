@@ -288,7 +288,7 @@ def _check_self_contained(name: str, root: Node, raw: str, targets: dict[str, No
 
 
 def test_pages_are_self_contained(pages, dom):
-    # source: governance.md requirement 21 (no external src/href/url() references) and design.md section 6
+    # source: docs/architecture.md §4 (self-contained pages: no external src/href/url() references)
     for name, root in dom.items():
         _check_self_contained(name, root, pages[name].decode("utf-8"), dom)
 
@@ -303,7 +303,7 @@ def test_self_containment_check_can_fail(dom):
 # accessibility: tables, charts, status, contrast
 # ----------------------------------------------------------------------------------------------
 def test_every_table_has_a_caption_and_scoped_headers(dom):
-    # source: WCAG 2.1 SC 1.3.1 Info and Relationships (H39 captions, H63 scope); governance.md req. 22
+    # source: WCAG 2.1 SC 1.3.1 Info and Relationships (H39 captions, H63 scope); docs/architecture.md §4
     count = 0
     for name, root in dom.items():
         for table in root.iter("table"):
@@ -316,7 +316,7 @@ def test_every_table_has_a_caption_and_scoped_headers(dom):
 
 
 def test_every_chart_has_a_text_alternative(dom):
-    # source: WCAG 2.1 SC 1.1.1 Non-text Content; governance.md req. 22 (a data table for each chart)
+    # source: WCAG 2.1 SC 1.1.1 Non-text Content; docs/architecture.md §4 (a data table for each chart)
     svgs = 0
     for name, root in dom.items():
         for svg in root.iter("svg"):
@@ -704,7 +704,7 @@ def test_every_page_carries_the_caution_in_its_footer(dom):
 
 def test_model_pages_stay_under_150_kb(pages):
     sizes = {k: len(v) for k, v in pages.items() if k.startswith("models/")}
-    assert max(sizes.values()) <= 150_000, sizes  # source: issue 6 (a model page at most 150 KB)
+    assert max(sizes.values()) <= 150_000, sizes  # source: docs/architecture.md §4 (a model page at most 150 KB)
 
 
 @pytest.mark.slow
@@ -718,8 +718,8 @@ def test_a_thousand_model_run_page_stays_under_2_mb(doc):
     fleet = build_results(as_of=AS_OF, registry={"path": "registry.yaml", "sha256": "ef" * 32}, policy=POLICY, records=records, tool_version="0.1.0")
     pages = render_run(json.loads(json.dumps(fleet)), META)
     assert len(pages) == 1002
-    assert len(pages["index.html"]) <= 2_000_000  # source: issue 6 (the run page for 1,000 models at most 2 MB)
-    assert max(len(v) for k, v in pages.items() if k.startswith("models/")) <= 150_000  # source: issue 6
+    assert len(pages["index.html"]) <= 2_000_000  # source: docs/architecture.md §4 (the run page for 1,000 models at most 2 MB)
+    assert max(len(v) for k, v in pages.items() if k.startswith("models/")) <= 150_000  # source: docs/architecture.md §4
     run = parse(pages["index.html"])
     assert len(list(next(run.find_id("trail").iter("tbody")).iter("tr"))) == 1000
 

@@ -21,7 +21,7 @@ from fitaudit.core.noise import get_law
 
 pytestmark = pytest.mark.slow
 
-NOMINAL = 0.05  # source: issue 4 / design.md section 4 (nominal level of the gates)
+NOMINAL = 0.05  # common practice: the nominal 5 % level of the gates (docs/method.md §10.1)
 TABLE_SEEDS = 10
 SETTINGS = AuditSettings(replicates=199, locate_change=False)
 AR1 = Arima(order=(1, 0, 0), trend="c")
