@@ -276,8 +276,9 @@ class AuditResult:
         One plain sentence each, with the numbers behind the verdict.
     production : CheckResult or None
         The production check (None without a production version).
-    refit : CheckResult
-        The refit check.
+    refit : CheckResult or None
+        The refit check; None for a forecast audit (:func:`audit_forecasts`), where fitaudit refits
+        nothing and ``production`` holds the check of the stated forecasts.
     spec : dict
         The model spec audited.
     noise : str
@@ -292,12 +293,15 @@ class AuditResult:
         True when a recurring ``refit`` was escalated to ``respecify``.
     timings : dict
         Seconds per stage (kept out of :meth:`to_dict`, so results are reproducible byte for byte).
+    accuracy : dict
+        Accuracy figures of a forecast audit (MASE, CRPS and its skill; reported, never a verdict);
+        empty for fitted models, and then left out of :meth:`to_dict`.
     """
 
     verdict: str
     reasons: tuple
     production: CheckResult | None
-    refit: CheckResult
+    refit: CheckResult | None
     spec: dict
     noise: str
     fitted: dict = field(default_factory=dict)
@@ -305,6 +309,7 @@ class AuditResult:
     change: ChangeResult | None = None
     escalated: bool = False
     timings: dict = field(default_factory=dict)
+    accuracy: dict = field(default_factory=dict)
 
     @property
     def deciding_check(self) -> CheckResult:
@@ -312,12 +317,12 @@ class AuditResult:
         return self.production if self.production is not None else self.refit
 
     def to_dict(self) -> dict:
-        """JSON-ready view without timings."""
-        return {
+        """JSON-ready view without timings (``accuracy`` only when there is one)."""
+        out = {
             "verdict": self.verdict,
             "reasons": list(self.reasons),
             "production": None if self.production is None else self.production.to_dict(),
-            "refit": self.refit.to_dict(),
+            "refit": None if self.refit is None else self.refit.to_dict(),
             "spec": _plain(self.spec),
             "noise": self.noise,
             "fitted": _plain(self.fitted),
@@ -325,6 +330,9 @@ class AuditResult:
             "change": None if self.change is None else self.change.to_dict(),
             "escalated": self.escalated,
         }
+        if self.accuracy:
+            out["accuracy"] = _plain(self.accuracy)
+        return out
 
 
 def _plain(v: Any) -> Any:
@@ -725,13 +733,19 @@ def _summary_pass(check: CheckResult) -> str:
     )
 
 
-def decide_verdict(production: CheckResult | None, refit: CheckResult, threshold: float, adjusted: bool = False) -> tuple[str, tuple]:
+def decide_verdict(production: CheckResult | None, refit: CheckResult | None, threshold: float, adjusted: bool = False) -> tuple[str, tuple]:
     """Verdict and plain-language reasons from the two checks (docs/method.md §10.2).
 
     With a production check: ``pass`` if it passes, else ``refit`` if the refit check passes,
     else ``respecify``; without one, ``pass`` or ``respecify`` from the refit check.  A check
-    that could not run makes the verdict ``insufficient`` or ``error`` with its message.
+    that could not run makes the verdict ``insufficient`` or ``error`` with its message.  Without
+    a refit check (a forecast audit) the verdict is
+    :func:`fitaudit.core.forecasts.forecast_verdict` of the production check.
     """
+    if refit is None:
+        from .forecasts import forecast_verdict
+
+        return forecast_verdict(production, threshold, adjusted)
     if production is not None:
         if not production.ok:
             return production.status, (f"The production check could not run: {production.message}",)
@@ -955,7 +969,7 @@ def apply_fleet_rules(
         if res.verdict in ADJUDICATED_VERDICTS:
             use_adjusted = method != "none"
             threshold = q if use_adjusted else None
-            verdict, reasons = decide_verdict(res.production, res.refit, threshold if threshold is not None else res.refit.settings_level, adjusted=use_adjusted)
+            verdict, reasons = decide_verdict(res.production, res.refit, threshold if threshold is not None else res.deciding_check.settings_level, adjusted=use_adjusted)
             if use_adjusted:
                 reasons = reasons + (f"p-values were adjusted across the run's {len(pvals)} checks ({ADJUSTMENT_LABELS.get(method, method)}, q = {q:g}).",)
             escalated = False
@@ -965,3 +979,13 @@ def apply_fleet_rules(
             res = dataclasses.replace(res, verdict=verdict, reasons=reasons, escalated=escalated)
         out.append(res)
     return out
+
+
+def __getattr__(name: str):
+    """``audit_forecasts`` lives in :mod:`fitaudit.core.forecasts`, which imports this module; it is
+    re-exported here lazily (PEP 562), so either module can be imported first."""
+    if name == "audit_forecasts":
+        from .forecasts import audit_forecasts
+
+        return audit_forecasts
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
