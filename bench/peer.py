@@ -11,9 +11,9 @@ For each series of the benchmark fleet (``bench/fleet_data.py``) the peer
    statsmodels filter (``SARIMAX.filter`` / ``ETSModel.smooth``; both agree with fitaudit's errors
    to 1e-13 on this fleet) over the audit window;
 4. for both checks: the normal PIT, counts in s equiprobable cells (the cell rule of
-   design.md section 4), a loop of ``scipy.stats.power_divergence`` over the beta = 0 column of the
+   docs/method.md §6.3), a loop of ``scipy.stats.power_divergence`` over the beta = 0 column of the
    divergence map (lambda = alpha - 1 for each of the 17 alphas), and ``acorr_ljungbox`` at the
-   lag of design.md section 4.
+   lag of docs/method.md §9.2.
 
 No simulated calibration, no fleet adjustment, no report and no archive: the peer does strictly
 less than the audit.  :func:`measure_peer` times it on a random subset of the fleet and
@@ -42,12 +42,12 @@ SEASON = 7
 
 
 def _cells(n: int, k: int) -> int:
-    """s = clamp(round(2 n^(2/5)), max(k + 3, 4), floor(n / 5)) (design.md section 4)."""
+    """s = clamp(round(2 n^(2/5)), max(k + 3, 4), floor(n / 5)) (docs/method.md §6.3)."""
     return int(min(max(round(2 * n**0.4), max(k + 3, 4)), n // 5))
 
 
 def _ljung_box_lag(n: int, model_df: int) -> int:
-    """h = min(2m, n/5), at least df + 3 (design.md section 4)."""
+    """h = min(2m, n/5), at least df + 3 (docs/method.md §9.2)."""
     return int(min(max(min(2 * SEASON, n // 5), model_df + 3), n - 1))
 
 
