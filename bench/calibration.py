@@ -54,8 +54,8 @@ import scipy  # noqa: E402
 from scipy import stats  # noqa: E402
 
 from fitaudit.core.audit import AuditSettings, as_noise_law, audit_series  # noqa: E402
-from fitaudit.core.calibration import CalibrationCache, production_table, refit_table, standardised_maximum  # noqa: E402
-from fitaudit.core.cells import number_of_cells  # noqa: E402
+from fitaudit.core.calibration import CalibrationCache, Gate, production_table, refit_table, standardised_maximum  # noqa: E402
+from fitaudit.core.cells import make_partitions, number_of_cells  # noqa: E402
 from fitaudit.core.diagnostics import ljung_box, ljung_box_lags  # noqa: E402
 from fitaudit.core.divergence import divergence_map  # noqa: E402
 from fitaudit.core.models import Arima, ExpSmoothing  # noqa: E402
@@ -109,6 +109,12 @@ class Scenario:
     shift: float = 0.0
     check: str = "refit"
     departure: str = "distribution"  # or "none" (a null row) or "dependence"
+    stored: dict | None = None  # the production version audited, when it differs from the truth
+
+    @property
+    def production(self) -> dict:
+        """The parameters the production check runs (the stored version, or the truth)."""
+        return self.stored or self.truth
 
 
 AR1 = Arima(order=(1, 0, 0), trend="c")
@@ -138,7 +144,13 @@ POWER_SCENARIOS = (
     Scenario("student-t(3) noise audited as normal, n=200", AR1, AR1_TRUTH, 200, innovations=("student-t", 3.0)),
     Scenario("skew-normal(a=3) noise audited as normal, n=200", AR1, AR1_TRUTH, 200, innovations=("skew-normal", 3.0)),
     Scenario("no departure (production check), AR(1) n=300", AR1, AR1_TRUTH, 300, check="production", departure="none"),
+    Scenario("contamination: 5 % of errors at +-4 sd, audited as normal, n=200", AR1, AR1_TRUTH, 200, innovations=("contaminated", 0.05, 4.0)),
+    Scenario("bimodal mixture (modes at +-0.8 sd), audited as normal, n=200", AR1, AR1_TRUTH, 200, innovations=("bimodal", 0.8)),
     Scenario("level shift +1 sd over the last 56 (production check), n=300", AR1, AR1_TRUTH, 300, shift=1.0, check="production"),
+    Scenario("variance understated: stored sigma2 0.5, true 1 (production check), n=300", AR1, AR1_TRUTH, 300,
+             check="production", stored=dict(AR1_TRUTH, sigma2=0.5)),
+    Scenario("variance overstated: stored sigma2 2, true 1 (production check), n=300", AR1, AR1_TRUTH, 300,
+             check="production", stored=dict(AR1_TRUTH, sigma2=2.0)),
     Scenario(
         "neglected seasonality: SAR(1)_7 = 0.3 audited as AR(1), n=200", AR1, AR1_TRUTH, 200,
         generator=Arima(order=(1, 0, 0), seasonal=(1, 0, 0, 7), trend="c"),
@@ -147,10 +159,7 @@ POWER_SCENARIOS = (
 )
 
 #: Smaller grids audited on the same power series (same statistic, fewer members).
-REDUCED_GRIDS = (
-    ("beta = 0 row (17 members)", BASE.alphas, (0.0,)),
-    ("Pearson + likelihood-ratio (2 members)", (1.0, 2.0), (0.0,)),
-)
+REDUCED_GRIDS: tuple = ()  # superseded by CANDIDATES (scored on the same PIT values, no re-audit)
 
 
 def innovations(kind: tuple, n: int, sigma2: float, rng: np.random.Generator) -> np.ndarray:
@@ -165,7 +174,19 @@ def innovations(kind: tuple, n: int, sigma2: float, rng: np.random.Generator) ->
         law = stats.skewnorm(kind[1])
         mean, var = law.stats(moments="mv")
         return sd * (law.rvs(size=n, random_state=rng) - mean) / math.sqrt(var)
-    raise ValueError(f"unknown innovation law {kind!r}; use normal, student-t or skew-normal")
+    if kind[0] == "contaminated":
+        # a share of the errors replaced by +-k sd (random sign), rescaled to unit variance
+        share, k = kind[1], kind[2]
+        x = rng.standard_normal(n)
+        hit = rng.random(n) < share
+        x[hit] = k * np.where(rng.random(int(hit.sum())) < 0.5, -1.0, 1.0)
+        return sd * x / math.sqrt(1.0 - share + share * k * k)
+    if kind[0] == "bimodal":
+        # equal mixture of N(-d, 1 - d^2) and N(d, 1 - d^2): unit variance, modes near +-d
+        d = kind[1]
+        sign = np.where(rng.random(n) < 0.5, -1.0, 1.0)
+        return sd * (sign * d + math.sqrt(1.0 - d * d) * rng.standard_normal(n))
+    raise ValueError(f"unknown innovation law {kind!r}; use normal, student-t, skew-normal, contaminated or bimodal")
 
 
 def simulate(scenario: Scenario, index: int) -> np.ndarray:
@@ -192,7 +213,7 @@ class Job:
 
 def _audit(scenario: Scenario, y: np.ndarray, settings: AuditSettings, cache: CalibrationCache, production: bool):
     """``audit_series`` on one series, with the true parameters as production version if asked."""
-    return audit_series(y, scenario.spec, noise=scenario.noise, production=scenario.truth if production else None,
+    return audit_series(y, scenario.spec, noise=scenario.noise, production=scenario.production if production else None,
                         settings=settings, cache=cache)
 
 
@@ -221,9 +242,77 @@ def _null_table(scenario: Scenario, check, settings: AuditSettings, cache: Calib
 def _residuals(scenario: Scenario, y: np.ndarray, res) -> np.ndarray:
     """The residuals the check scored: refit innovations, or the production errors of the window."""
     if scenario.check == "production":
-        return scenario.spec.production_errors(y, scenario.truth)[-WINDOW:]
+        return scenario.spec.production_errors(y, scenario.production)[-WINDOW:]
     e = scenario.spec.errors(y, res.fitted["params"])
     return e[~np.isnan(e)]
+
+
+#: Candidate distribution gates (partitions x members) compared on every power series; the
+#: default of ``AuditSettings`` must be the one with the highest mean power over the
+#: distributional alternatives that is never below Pearson on the equiprobable cells.
+CLASSICAL3 = ((1.0, 0.0), (5.0 / 3.0, 0.0), (2.0, 0.0))
+BETA0_ROW = tuple((float(a), 0.0) for a in BASE.alphas)
+FULL_GRID = None  # every (alpha, beta) of the grid
+CANDIDATES = (
+    ("equiprobable x full grid (before this change)", ("equiprobable",), FULL_GRID),
+    ("equiprobable x G2, CR 2/3, X2", ("equiprobable",), CLASSICAL3),
+    ("terciles + equiprobable + tails x G2, CR 2/3, X2", ("terciles", "equiprobable", "tails"), CLASSICAL3),
+    ("quartiles + equiprobable + tails x G2, CR 2/3, X2", ("quartiles", "equiprobable", "tails"), CLASSICAL3),
+    ("quartiles + tails x G2, CR 2/3, X2", ("quartiles", "tails"), CLASSICAL3),
+    ("terciles + equiprobable + tails x beta = 0 row", ("terciles", "equiprobable", "tails"), BETA0_ROW),
+    ("terciles + equiprobable + tails x full grid", ("terciles", "equiprobable", "tails"), FULL_GRID),
+    ("tails x G2, CR 2/3, X2", ("tails",), CLASSICAL3),
+)
+
+
+def _candidate_gate(partitions: tuple, members, n: int, k: int) -> Gate:
+    if members is None:
+        members = tuple((a, b) for a in BASE.alphas for b in BASE.betas)
+    alphas, betas = zip(*members)
+    return Gate(make_partitions(partitions, n, k), alphas, betas, BASE.scaling, BASE.r)
+
+
+def _pit(scenario: Scenario, e: np.ndarray) -> tuple[np.ndarray, int, bool]:
+    """PIT values of the scored residuals as the audit computes them, with k and the location flag."""
+    law = as_noise_law(scenario.noise)
+    if scenario.check == "production":
+        return law.cdf(e, law.from_variance(scenario.production["sigma2"])), 0, False
+    location = scenario.spec.has_location()
+    return law.cdf(e, law.fit(e, location=location)), law.n_estimated(location), location
+
+
+def _candidate_rejections(scenario: Scenario, e: np.ndarray, settings: AuditSettings, cache: CalibrationCache) -> list[bool]:
+    """Distribution-gate decision (p <= LEVEL) of every candidate gate on the same PIT values."""
+    u, k, location = _pit(scenario, e)
+    n = u.size
+    s = number_of_cells(n, k)
+    law = as_noise_law(scenario.noise)
+    out = []
+    for _, partitions, members in CANDIDATES:
+        gate = _candidate_gate(partitions, members, n, k)
+        grid = (settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed)
+        if scenario.check == "production":
+            table = production_table(n, s, *grid, cache=cache, gate=gate)
+        else:
+            table = refit_table(law, n, s, location, *grid, shape=law.shape, cache=cache, gate=gate)
+        r = float(standardised_maximum(gate.statistics(u), table.gate_reference))
+        out.append(table.gate_p_value(r) <= LEVEL)
+    return out
+
+
+def _anderson_darling_given(u: np.ndarray) -> float:
+    """Anderson-Darling A2 of PIT values under a fully specified law (Anderson and Darling 1954):
+    ``A2 = -n - (1/n) sum_i (2i - 1) [log u_(i) + log(1 - u_(n+1-i))]``."""
+    x = np.clip(np.sort(u), 1e-300, 1 - 1e-16)
+    n = x.size
+    i = np.arange(1, n + 1)
+    return float(-n - np.mean((2 * i - 1) * (np.log(x) + np.log1p(-x[::-1]))))
+
+
+#: 95 % point of A2 for a fully specified law and n = WINDOW, by simulation of uniform samples
+#: (Stephens 1974 tabulates 2.492 for this case, n >= 5, from memory).
+AD_GIVEN_CRITICAL = float(np.quantile(
+    [_anderson_darling_given(u) for u in np.random.default_rng([SEED, 1954]).random((20000, WINDOW))], 0.95))
 
 
 def _power_record(scenario: Scenario, y: np.ndarray, settings: AuditSettings, cache: CalibrationCache) -> dict:
@@ -249,6 +338,8 @@ def _power_record(scenario: Scenario, y: np.ndarray, settings: AuditSettings, ca
         "likelihood-ratio": bool(members[cells["likelihood-ratio"]]),
         "jarque-bera": stats.jarque_bera(e).pvalue <= LEVEL,
         "anderson-darling": stats.anderson(e, dist="norm", method="interpolate").pvalue <= LEVEL,
+        "anderson-darling (given)": (_anderson_darling_given(_pit(scenario, e)[0]) > AD_GIVEN_CRITICAL) if in_production else None,
+        "candidates": _candidate_rejections(scenario, e, settings, cache),
         "independence": check.p_independence <= LEVEL,
         "whole check": check.p_value <= LEVEL,
         "grid": members,
@@ -373,12 +464,23 @@ def power_table(records: dict) -> tuple[list[dict], dict]:
         calibrated = np.all([r["calibrated"] for r in used], axis=0)
         row["grid_range"] = (float(row["grid"][calibrated].min()), float(row["grid"][calibrated].max()), int(calibrated.sum()))
         row["critical"] = float(np.mean([r["critical"] for r in used]))
+        if sc.check == "production":
+            row["anderson-darling (given)"] = rate(recs, "anderson-darling (given)")
+        cand = np.array([r["candidates"] for r in used], dtype=float)
+        row["candidates"] = [{"rate": float(c.mean()), "se": math.sqrt(c.mean() * (1 - c.mean()) / c.size)} for c in cand.T]
         rows.append(row)
     alternatives = [r for r in rows if r["departure"] == "distribution"]
     means = {}
     for f in STATISTICS + tuple(label for label, _, _ in REDUCED_GRIDS):
         vals = [r[f] for r in alternatives]
         means[f] = {"rate": float(np.mean([v["rate"] for v in vals])), "se": math.sqrt(sum(v["se"] ** 2 for v in vals)) / len(vals)}
+    cand_means = [float(np.mean([r["candidates"][i]["rate"] for r in alternatives])) for i in range(len(CANDIDATES))]
+    eligible = [i for i in range(len(CANDIDATES))
+                if all(r["candidates"][i]["rate"] >= r["pearson"]["rate"] for r in alternatives)]
+    chosen = max(eligible or range(len(CANDIDATES)), key=lambda i: cand_means[i])
+    default = next((i for i, (_, parts, members) in enumerate(CANDIDATES)
+                    if tuple(parts) == BASE.partitions and members == BASE.gate_members), None)
+    means["candidates"] = {"means": cand_means, "eligible": eligible, "chosen": chosen, "default": default}
     grid_mean = np.mean([r["grid"] for r in alternatives], axis=0)
     ia, ib = np.unravel_index(int(np.argmax(grid_mean)), grid_mean.shape)
     means["best grid member"] = {"rate": float(grid_mean[ia, ib]), "alpha": BASE.alphas[ia], "beta": BASE.betas[ib]}
@@ -395,19 +497,21 @@ def goals(size_rows: list[dict], power_rows: list[dict], means: dict) -> dict:
             r = row[f]["rate"]
             size.append({"setting": row["setting"], "rate": f, "value": r, "met": lo <= r <= hi})
     alternatives = [r for r in power_rows if r["departure"] == "distribution"]
-    best_member = max(("pearson", "likelihood-ratio"), key=lambda f: means[f]["rate"])
+    best_peer = max(("anderson-darling", "jarque-bera"), key=lambda f: means[f]["rate"])
     below_pearson = [
         {"scenario": r["scenario"], "ours": r["ours"]["rate"], "pearson": r["pearson"]["rate"]}
         for r in alternatives if r["ours"]["rate"] < r["pearson"]["rate"]
     ]
+    cand = means["candidates"]
     return {
         "size": size,
         "size_met": all(s["met"] for s in size),
-        "best_member": best_member,
-        "mean_vs_best": means["ours"]["rate"] - means[best_member]["rate"],
+        "best_peer": best_peer,
+        "mean_vs_peer": means["ours"]["rate"] - means[best_peer]["rate"],
         "mean_vs_pearson": means["ours"]["rate"] - means["pearson"]["rate"],
         "below_pearson": below_pearson,
-        "power_met": means["ours"]["rate"] >= means[best_member]["rate"] and not below_pearson,
+        "power_met": means["ours"]["rate"] >= means[best_peer]["rate"] and not below_pearson,
+        "default_is_choice": cand["default"] is not None and cand["default"] == cand["chosen"],
     }
 
 
@@ -425,13 +529,14 @@ def production_gates_null(plan: Plan) -> dict:
     s = number_of_cells(WINDOW, 0)
     per_table = plan.null_series // plan.table_seeds
     with_ties, strict = [], []
+    gate = BASE.gate(WINDOW, 0)
     for seed in range(plan.table_seeds):
-        table = production_table(WINDOW, s, BASE.alphas, BASE.betas, BASE.scaling, BASE.r, BASE.replicates, seed)
-        counts = rng.multinomial(WINDOW, np.full(s, 1.0 / s), size=per_table).astype(float)
-        r_obs = standardised_maximum(divergence_map(counts, np.full(s, 1.0 / s), BASE.alphas, BASE.betas, BASE.scaling).statistic, table.reference)
-        with_ties += [table.p_value(r) <= LEVEL for r in r_obs]
-        exceed = table.r_max.size - np.searchsorted(table.r_max, r_obs, side="right")
-        strict += list((1 + exceed) / (table.r_max.size + 1) <= LEVEL)
+        table = production_table(WINDOW, s, BASE.alphas, BASE.betas, BASE.scaling, BASE.r, BASE.replicates, seed, gate=gate)
+        u = rng.random((per_table, WINDOW))
+        r_obs = standardised_maximum(gate.statistics(u), table.gate_reference)
+        with_ties += [table.gate_p_value(r) <= LEVEL for r in r_obs]
+        exceed = table.gate_max.size - np.searchsorted(table.gate_max, r_obs, side="right")
+        strict += list((1 + exceed) / (table.gate_max.size + 1) <= LEVEL)
     spread = table.reference / stats.chi2.ppf(1 - LEVEL, s - 1)  # the last table; members' own 95 % points
     ia, ib = np.unravel_index(int(np.nanargmax(np.where(np.isfinite(spread), spread, np.nan))), spread.shape)
     gate = {
@@ -485,6 +590,12 @@ def _versions() -> dict:
     }
 
 
+def _short(scenario: str) -> str:
+    """A column label: the scenario's name up to its first comma or colon."""
+    cut = min((i for i in (scenario.find(","), scenario.find(":")) if i > 0), default=len(scenario))
+    return scenario[:cut]
+
+
 def render(result: dict) -> str:
     """The markdown of docs/validation.md."""
     plan, g, means = result["plan"], result["goals"], result["means"]
@@ -505,17 +616,18 @@ def render(result: dict) -> str:
         f"{v['cpus']} CPUs, {result['workers']} worker process(es).",
         f"- Runtime: size study {result['seconds']['size']:.0f} s, power study {result['seconds']['power']:.0f} s, "
         f"total {result['seconds']['total']:.0f} s.",
-        f"- Audit settings: the defaults (`AuditSettings()`: grid alpha -1..3 step 0.25 x beta 0..1 step 0.125 = 153 members, "
-        f"geometric scaling, R = {BASE.replicates} simulated null data sets per table, audit window {WINDOW}, "
-        "Ljung-Box lags by design.md section 4), change location off (it does not affect the p-values).",
+        f"- Audit settings: the defaults (`AuditSettings()`): distribution gate = standardised maximum of the members "
+        f"{', '.join(f'({a:.4g}, {b:g})' for a, b in BASE.gate_members)} (alpha, beta) on the partitions "
+        f"{', '.join(BASE.partitions)}; the report's map = grid alpha -1..3 step 0.25 x beta 0..1 step 0.125 (153 members) "
+        f"on the equiprobable cells; geometric scaling, R = {BASE.replicates} simulated null data sets per table, audit "
+        f"window {WINDOW}, Ljung-Box lags by the rule of docs/method.md; change location off (it does not affect the p-values).",
         f"- Series: {plan.series} per setting for `simulated` and `asymptotic` (the same series for both); "
         f"`bootstrap`: the first {plan.bootstrap_series} of them, each with {plan.bootstrap_replicates} bootstrap refits "
         f"(`bootstrap_replicates={plan.bootstrap_replicates}`); power: {plan.power_series} series per scenario.",
-        "- The calibrated summary called T_max in issue 4 is the audit's standardised maximum `r_max` = max over the "
-        "finite grid points of T_g / c_g, c_g the member's own simulated 95 % null point (`NullTable.reference`); "
-        "its gate p-value is `p_distribution`. The raw maximum over the default grid was dominated at small n by "
-        "heavy-tailed members (a design-stage measurement, not repeated here: power 0.29 against Pearson's 0.50 at "
-        "n = 60), which is why the calibrated summary standardises each member before taking the maximum.",
+        "- The calibrated summary is the audit's standardised maximum `r_max` = max over the gate's (partition, member) "
+        "pairs of T / c, c the pair's own simulated 95 % null point (`NullTable.gate_reference`); its gate p-value is "
+        "`p_distribution`. Every partition scores the same PIT values, and each null table scores the same simulated "
+        "samples on every partition, so the maximum is calibrated jointly.",
         "",
         "Monte Carlo standard errors are given after ±. They are binomial; for `simulated` rows they also include the "
         f"spread between the {plan.table_seeds} null tables, 0.05·0.95/((R+2)K). Rates count the checks that ran; "
@@ -563,50 +675,61 @@ def render(result: dict) -> str:
         "",
         "AR(1) ar1 0.6, intercept 10, innovation variance 1, audited as AR(1) with intercept and normal noise. "
         "Columns: ours = the audit's distribution gate (`p_distribution <= 0.05`); Pearson and likelihood-ratio = "
-        "the grid members (alpha 2, beta 0) and (alpha 1, beta 0) of the same map (with beta 0 the geometric scaling "
-        "is the model scaling m = q, so these are exactly X2 and G2, checked against `members`), each rejecting when "
-        "it exceeds its own simulated 95 % null point `table.reference` of the table the audit used; Jarque-Bera = "
-        "`scipy.stats.jarque_bera(e).pvalue <= 0.05`; Anderson-Darling = `scipy.stats.anderson(e, 'norm', "
-        "method='interpolate').pvalue <= 0.05` (equivalent to the statistic exceeding its 5 % critical value); "
-        "e = the residuals the check scored (refit innovations, or the production errors of the audit window). "
-        "Skew-normal(a = 3) has skewness "
-        f"{float(stats.skewnorm(3.0).stats(moments='s')):.2f}; the level shift is +1 innovation sd on the last "
-        f"{WINDOW} of 300 values (the one-step errors of the true parameters shift by {1 - AR1_TRUTH['ar1']:g} sd "
-        "after the first).",
+        "the members (alpha 2, beta 0) and (alpha 1, beta 0) of the map on the equiprobable cells (the gate before "
+        "this change used those cells only; with beta 0 the geometric scaling is m = q, so these are exactly X2 and "
+        "G2, checked against `members`), each rejecting when it exceeds its own simulated 95 % null point; "
+        "Jarque-Bera = `scipy.stats.jarque_bera(e).pvalue <= 0.05`; Anderson-Darling = `scipy.stats.anderson(e, "
+        "'norm', method='interpolate').pvalue <= 0.05` (location and scale estimated from e); AD given = "
+        "Anderson-Darling with the production parameters as given (no estimation), the fair peer for the production "
+        f"check, against its simulated 95 % point for n = {WINDOW} ({AD_GIVEN_CRITICAL:.3f}; Stephens 1974 tabulates "
+        "2.492 for this case, from memory); e = the residuals the check scored (refit innovations, or the production "
+        "errors of the audit window). Skew-normal(a = 3) has skewness "
+        f"{float(stats.skewnorm(3.0).stats(moments='s')):.2f}; the contamination replaces 5 % of the innovations by "
+        "+-4 sd (then rescaled to unit variance); the bimodal law is an equal mixture of N(-0.8, 0.36) and N(0.8, "
+        f"0.36); the level shift is +1 innovation sd on the last {WINDOW} of 300 values (the one-step errors of the "
+        f"true parameters shift by {1 - AR1_TRUTH['ar1']:g} sd after the first); the variance rows audit the true "
+        "AR(1) with a stored sigma2 of 0.5 or 2.",
         "",
     ]
-    header = ["scenario", "check", "ours", "Pearson", "likelihood-ratio", "Jarque-Bera", "Anderson-Darling", "independence gate", "whole check"]
+    header = ["scenario", "check", "ours", "Pearson", "likelihood-ratio", "Jarque-Bera", "Anderson-Darling", "AD given", "independence gate", "whole check"]
     rows = [
-        [r["scenario"], r["check"]] + [fmt(r[f]) for f in STATISTICS + ("independence", "whole check")]
+        [r["scenario"], r["check"]] + [fmt(r[f]) for f in STATISTICS]
+        + [fmt(r["anderson-darling (given)"]) if "anderson-darling (given)" in r else ""]
+        + [fmt(r[f]) for f in ("independence", "whole check")]
         for r in power_rows
     ]
-    rows.append(["**mean over the distributional alternatives**", ""] + [f"**{means[f]['rate']:.3f}** ± {means[f]['se']:.3f}" for f in STATISTICS] + ["", ""])
+    rows.append(["**mean over the distributional alternatives**", ""] + [f"**{means[f]['rate']:.3f}** ± {means[f]['se']:.3f}" for f in STATISTICS] + ["", "", ""])
+    out += [md_table(header, rows), ""]
+    n_alt = sum(r["departure"] == "distribution" for r in power_rows)
+    out += [
+        f"The mean is over the {n_alt} distributional alternatives; the neglected seasonality is a dependence "
+        "alternative, for the independence gate, and no cell-count statistic can see it (they are invariant to the "
+        "order of the residuals).",
+        "",
+        "### Which gate: the candidates on the same series",
+        "",
+        "Every candidate gate scores the PIT values of the very residuals the audit scored, each against its own "
+        "simulated table (same table seeds). The default must be the candidate with the highest mean power over the "
+        "distributional alternatives among those never below Pearson on the equiprobable cells in any alternative.",
+        "",
+    ]
+    alt_rows = [r for r in power_rows if r["departure"] != "dependence"]
+    cand = means["candidates"]
+    header = ["candidate gate"] + [_short(r["scenario"]) for r in alt_rows] + ["mean over alternatives", "never below Pearson"]
+    rows = []
+    for i, (label, _, _) in enumerate(CANDIDATES):
+        tag = (" **(default)**" if i == cand["default"] else "") + (" *(study's choice)*" if i == cand["chosen"] else "")
+        rows.append([label + tag] + [f"{r['candidates'][i]['rate']:.3f}" for r in alt_rows]
+                    + [f"{cand['means'][i]:.3f}", "yes" if i in cand["eligible"] else "no"])
+    rows.append(["Pearson, equiprobable cells (single member)"] + [f"{r['pearson']['rate']:.3f}" for r in alt_rows] + [f"{means['pearson']['rate']:.3f}", ""])
     out += [md_table(header, rows), ""]
     best = means["best grid member"]
     out += [
-        "The mean is over the three distributional alternatives (student-t(3), skew-normal, level shift); the "
-        "neglected seasonality is a dependence alternative, for the independence gate, and no cell-count statistic "
-        "can see it (they are invariant to the order of the residuals).",
-        "",
-        "### Same statistic on smaller grids, and the best single member",
-        "",
-        "The audit re-run on the same series with smaller grids (each with its own simulated table), and the single "
-        "grid member with the highest mean power over the three alternatives, chosen after seeing the results (an "
-        "optimistic bound, not a usable test).",
+        "Single members of the map on the equiprobable cells, each against its own 95 % point, chosen after seeing "
+        f"the results (an optimistic bound, not a usable test): the best is alpha {best['alpha']:g}, beta "
+        f"{best['beta']:g}, mean power {best['rate']:.3f}.",
         "",
     ]
-    labels = [label for label, _, _ in REDUCED_GRIDS]
-    header = ["scenario", "default grid (153)"] + labels + ["Pearson alone", "single members: lowest - highest"]
-    rows = [
-        [r["scenario"], fmt(r["ours"])] + [fmt(r[f]) for f in labels] + [fmt(r["pearson"]), "{:.3f} - {:.3f}".format(*r["grid_range"][:2])]
-        for r in power_rows if r["departure"] != "dependence"
-    ]
-    rows.append(["**mean over the alternatives**", f"**{means['ours']['rate']:.3f}**"] + [f"**{means[f]['rate']:.3f}**" for f in labels]
-                + [f"**{means['pearson']['rate']:.3f}**", ""])
-    out += [md_table(header, rows), "",
-            "The last column is the range of the single-member powers over the grid points (each member against its "
-            "own 95 % point; members whose reference is infinite are left out). "
-            f"Best single grid member (after the fact): alpha {best['alpha']:g}, beta {best['beta']:g}, mean power {best['rate']:.3f}.", ""]
 
     lo, hi = SIZE_GOAL
     out += ["## 3. Goals", ""]
@@ -619,12 +742,21 @@ def render(result: dict) -> str:
         + (f"**missed** in {missed}." if missed else "**met** in all cells.")
     )
     out.append(
-        f"- Mean power of ours at least that of the best single member ({g['best_member']}, {means[g['best_member']]['rate']:.3f}): "
-        + ("**met**" if g["mean_vs_best"] >= 0 else f"**missed** by {-g['mean_vs_best']:.3f}")
+        f"- Mean power over the distributional alternatives at least the better of Anderson-Darling and Jarque-Bera "
+        f"({g['best_peer']}, {means[g['best_peer']]['rate']:.3f}): "
+        + ("**met**" if g["mean_vs_peer"] >= 0 else f"**missed** by {-g['mean_vs_peer']:.3f}")
         + f" (ours {means['ours']['rate']:.3f})."
     )
     below = "; ".join(f"{b['scenario']} ({b['ours']:.3f} against {b['pearson']:.3f})" for b in g["below_pearson"])
-    out.append("- Never below Pearson's power: " + (f"**missed** in {below}." if below else "**met**."))
+    out.append("- Never below Pearson on the equiprobable cells in any alternative: " + (f"**missed** in {below}." if below else "**met**."))
+    cand = means["candidates"]
+    out.append(
+        "- The default gate is the study's choice: "
+        + ("**met**" if g["default_is_choice"] else
+           f"**missed**: the study chose {CANDIDATES[cand['chosen']][0]!r}; change `DEFAULT_PARTITIONS` / "
+           "`DEFAULT_GATE_MEMBERS` in core/audit.py and rerun")
+        + "."
+    )
     out += ["", "## 4. Discussion", ""]
     out += discussion(result)
     return "\n".join(out) + "\n"
@@ -701,22 +833,33 @@ def discussion(result: dict) -> list[str]:
            ", and every rate is within two standard errors of 5 %.")
     )
     alt = [r for r in power_rows if r["departure"] == "distribution"]
+    cand = means["candidates"]
+    before = cand["means"][0]
     lines.append(
-        f"- **Power.** Mean power over the three distributional alternatives: ours {means['ours']['rate']:.3f}, "
-        f"Pearson {means['pearson']['rate']:.3f}, likelihood-ratio {means['likelihood-ratio']['rate']:.3f}, "
-        f"Jarque-Bera {means['jarque-bera']['rate']:.3f}, Anderson-Darling {means['anderson-darling']['rate']:.3f}. "
+        f"- **Power.** Mean power over the {len(alt)} distributional alternatives: ours {means['ours']['rate']:.3f}, "
+        f"Pearson on the equiprobable cells {means['pearson']['rate']:.3f}, likelihood-ratio {means['likelihood-ratio']['rate']:.3f}, "
+        f"Jarque-Bera {means['jarque-bera']['rate']:.3f}, Anderson-Darling {means['anderson-darling']['rate']:.3f}; the gate "
+        f"before this change (every grid member on the equiprobable cells) reaches {before:.3f} on the same series. "
         + ("Ours is below Pearson's in " + ", ".join(f"{b['scenario']} by {b['pearson'] - b['ours']:.3f}" for b in g["below_pearson"]) + ". "
-           if g["below_pearson"] else "")
-        + f"The best single grid member, chosen after the fact, reaches {means['best grid member']['rate']:.3f}, "
-        f"{means['best grid member']['rate'] - means['pearson']['rate']:+.3f} against Pearson: no member is much better "
-        "than Pearson for these alternatives, while the standardised maximum must push some member beyond "
-        + " and ".join(f"{r['critical']:.2f} times its own 95 % point ({r['check']} check, {r['scored']} residuals)"
-                       for r in power_rows if r["departure"] == "none")
-        + " (the simultaneous 5 % point of the table, averaged over the table seeds): the price of 153 correlated "
-        "members. The smaller grids pay less: mean power "
-        + ", ".join(f"{means[label]['rate']:.3f} ({label})" for label, _, _ in REDUCED_GRIDS)
-        + f" against Pearson's {means['pearson']['rate']:.3f}."
+           if g["below_pearson"] else "Ours is at least Pearson's in every alternative. ")
+        + "The gain comes from the cells, not the members: the tail-refined cells put one expected observation in "
+        "each outer cell, where heavy tails, contamination and a misstated scale show; the three broad cells see "
+        "smooth departures (a bimodal law, a shifted level); the equiprobable cells sit in between. A maximum over "
+        "a few classical members on these partitions pays a much smaller multiplicity price than 153 correlated "
+        "members on one partition."
     )
+    refit_alt = [r for r in alt if r["check"] == "refit"]
+    if refit_alt:
+        ours_refit = np.mean([r["ours"]["rate"] for r in refit_alt])
+        ad_refit = np.mean([r["anderson-darling"]["rate"] for r in refit_alt])
+        lines.append(
+            f"- **Where Anderson-Darling stays ahead.** On the refit-check alternatives alone (estimated location and "
+            f"scale) Anderson-Darling averages {ad_refit:.3f} against ours {ours_refit:.3f}: an EDF statistic uses "
+            "every order statistic, a cell statistic only counts, and skewness in particular spreads over many "
+            "cells. The production-check alternatives (a shifted level, a misstated variance) are where the audit "
+            "matters most for a model in production, and there the estimated-parameter peers see nothing; "
+            "Anderson-Darling with the production parameters as given is the fair peer there (column AD given)."
+        )
     shift = [r for r in alt if r["check"] == "production"]
     if shift:
         r = shift[0]
@@ -790,7 +933,20 @@ if __name__ == "__main__":
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="CI-sized run (a few minutes)")
     parser.add_argument("--jobs", type=int, default=1, help="worker processes (default 1)")
+    parser.add_argument("--select", type=int, default=0, metavar="N",
+                        help="only the power study with N series per scenario on a separate seed: prints the candidate gates' mean powers")
     parser.add_argument("--out", default=None, help="where to write the report (default: docs/validation.md for the full run, nowhere for --quick)")
     args = parser.parse_args()
+    if args.select:
+        # the power study alone, on its own seed, to choose the default gate before the full run
+        SEED = SEED + 1  # noqa: F811 - a selection run must not reuse the reported series
+        plan = dataclasses.replace(FULL, power_series=args.select)
+        rows, means = power_table(run_all(power_groups(plan), args.jobs))
+        cand = means["candidates"]
+        for i, (label, _, _) in enumerate(CANDIDATES):
+            flag = ("default " if i == cand["default"] else "") + ("chosen" if i == cand["chosen"] else "")
+            print(f"{cand['means'][i]:.3f} {'yes' if i in cand['eligible'] else 'no ':3} {label} {flag}")
+        print(f"{means['pearson']['rate']:.3f}     Pearson, equiprobable cells")
+        sys.exit(0)
     res = main(quick=args.quick, workers=args.jobs, out=args.out, command="python " + " ".join(sys.argv))
     print(res["markdown"])

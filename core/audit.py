@@ -34,6 +34,7 @@ import numpy as np
 from ._validation import Interval, Options, check_param
 from .calibration import (
     CalibrationCache,
+    Gate,
     NullTable,
     describe_key,
     independence_table,
@@ -46,7 +47,7 @@ from .calibration import (
     production_table,
     refit_table,
 )
-from .cells import cell_counts, number_of_cells
+from .cells import cell_counts, make_partitions, number_of_cells
 from .change import ChangeResult, locate_change
 from .diagnostics import acf, acf_band, ljung_box, ljung_box_lags, mcleod_li
 from .divergence import DEFAULT_ALPHAS, DEFAULT_BETAS, SCALINGS, DivergenceMap, divergence_map
@@ -54,7 +55,7 @@ from .exceptions import ConvergenceWarning, FitauditError, InputError, Insuffici
 from .fleet import adjust_pvalues, escalate_persistent_refit
 from .models import ForecastModel, check_series, exog_matrix, model_from_dict
 from .noise import NoiseLaw, NoiseParams, get_law
-from .vocabulary import ADJUDICATED_VERDICTS, ADJUSTMENT_LABELS, Calibration
+from .vocabulary import ADJUDICATED_VERDICTS, ADJUSTMENT_LABELS, PARTITION_KINDS, Calibration
 
 __all__ = [
     "AuditSettings",
@@ -66,6 +67,13 @@ __all__ = [
     "as_model",
     "as_noise_law",
 ]
+
+
+#: Partitions of the distribution gate, as chosen by the validation study (docs/validation.md).
+DEFAULT_PARTITIONS: tuple[str, ...] = ("terciles", "equiprobable", "tails")
+#: Members of the distribution gate: likelihood-ratio G2, Cressie-Read 2/3 and Pearson X2
+#: (alpha 1, 5/3, 2 with the model scaling m = q, i.e. beta = 0 of the geometric mean).
+DEFAULT_GATE_MEMBERS: tuple[tuple[float, float], ...] = ((1.0, 0.0), (5.0 / 3.0, 0.0), (2.0, 0.0))
 
 
 # --------------------------------------------------------------------------------------------
@@ -104,6 +112,14 @@ class AuditSettings:
         Optional effect-size thresholds: a gate is flagged only if its p-value is significant
         *and* its effect (``T_max / 2n``, or the largest absolute residual autocorrelation)
         reaches the threshold.  None (default) flags on the p-value alone.
+    partitions : tuple of str
+        The cell partitions of the distribution gate (kinds of
+        :data:`~fitaudit.core.vocabulary.PARTITION_KINDS`); the default is the set the validation
+        study chose (docs/validation.md).
+    gate_members : tuple of (alpha, beta) pairs, or None
+        The divergences of the distribution gate, scored on every partition; None uses every
+        point of the (alpha, beta) grid.  The full grid is always computed on the equiprobable
+        cells as the report's picture (``CheckResult.map``).
     """
 
     level: float = 0.05
@@ -122,6 +138,8 @@ class AuditSettings:
     change_permutations: int = 499
     practical_divergence: float | None = None
     practical_acf: float | None = None
+    partitions: tuple = DEFAULT_PARTITIONS
+    gate_members: tuple | None = DEFAULT_GATE_MEMBERS
 
     _parameter_constraints = {
         "level": [Interval(float, 0.0, 0.5, "neither")],
@@ -149,10 +167,34 @@ class AuditSettings:
             raise InputError(f"AuditSettings: betas must lie in [0, 1]; got {self.betas}.")
         if (self.scaling == "power") != (self.r is not None):
             raise InputError("AuditSettings: give r exactly when scaling='power'.")
+        parts = tuple(str(p) for p in self.partitions)
+        unknown = [p for p in parts if p not in PARTITION_KINDS]
+        if not parts or unknown or len(set(parts)) != len(parts):
+            raise InputError(
+                f"AuditSettings: partitions must be distinct kinds from {', '.join(PARTITION_KINDS)}; got {self.partitions!r}."
+            )
+        object.__setattr__(self, "partitions", parts)
+        if self.gate_members is not None:
+            try:
+                members = tuple((float(a), float(b)) for a, b in self.gate_members)
+            except (TypeError, ValueError):
+                raise InputError(f"AuditSettings: gate_members must be (alpha, beta) pairs; got {self.gate_members!r}.") from None
+            if not members or any(b < 0 or b > 1 for _, b in members):
+                raise InputError(f"AuditSettings: gate_members must be non-empty (alpha, beta) pairs with beta in [0, 1]; got {self.gate_members!r}.")
+            object.__setattr__(self, "gate_members", members)
+
+    def gate(self, n: int, k: int) -> Gate:
+        """The distribution gate for ``n`` PIT values and ``k`` estimated noise parameters."""
+        if self.gate_members is None:
+            alphas = tuple(a for a in self.alphas for _ in self.betas)
+            betas = tuple(b for _ in self.alphas for b in self.betas)
+        else:
+            alphas, betas = zip(*self.gate_members)
+        return Gate(make_partitions(self.partitions, n, k), alphas, betas, self.scaling, self.r)
 
     def to_dict(self) -> dict:
         """Plain-Python view."""
-        return {f.name: (list(getattr(self, f.name)) if isinstance(getattr(self, f.name), tuple) else getattr(self, f.name)) for f in dataclasses.fields(self)}
+        return {f.name: _plain(getattr(self, f.name)) for f in dataclasses.fields(self)}
 
 
 # --------------------------------------------------------------------------------------------
@@ -201,6 +243,7 @@ class CheckResult:
     effect_divergence: float = float("nan")
     effect_acf: float = float("nan")
     counts: tuple = ()
+    gate: dict = field(default_factory=dict)
     window: dict = field(default_factory=dict)
     plots: dict = field(default_factory=dict)
     settings_level: float = 0.05
@@ -424,6 +467,25 @@ def _plot_data(e: np.ndarray, law: NoiseLaw, params: NoiseParams, lags: int) -> 
     }
 
 
+def _deciding_partition(part, u: np.ndarray) -> dict:
+    """The cell of ``part`` whose count departs most from its expectation, in plain words.
+
+    The departure is measured by the Pearson residual ``(O - E) / sqrt(E)``; the sentence reads
+    e.g. "the lowest 0.5 % of the assumed law holds 6 errors where 1.0 were expected".
+    """
+    obs = part.counts(u)
+    exp = part.probs * obs.sum()
+    j = int(np.argmax(np.abs(obs - exp) / np.sqrt(exp)))
+    return {
+        "kind": part.kind,
+        "cells": part.s,
+        "cell": j,
+        "observed": int(obs[j]),
+        "expected": round(float(exp[j]), 2),
+        "sentence": f"{part.describe_cell(j)} of the assumed law holds {int(obs[j])} errors where {exp[j]:.1f} were expected",
+    }
+
+
 def _score(
     kind: str,
     e: np.ndarray,
@@ -438,42 +500,85 @@ def _score(
     window: dict,
     cache: CalibrationCache | None = None,
 ) -> CheckResult:
-    """Score residuals ``e`` with PIT values ``u``: cells, map, calibration, independence."""
+    """Score residuals ``e`` with PIT values ``u``: partitions, map, calibration, independence.
+
+    The distribution gate is the standardised maximum of the gate's members over its partitions
+    (:meth:`AuditSettings.gate`); the full (alpha, beta) map on the equiprobable cells is the
+    report's picture of where the law fails, with its own simultaneous boundary.
+    """
     n = e.size
     s = number_of_cells(n, k)
     counts = cell_counts(u, s)
     dmap = divergence_map(counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r)
+    gate = settings.gate(n, k)
+    g_obs = gate.statistics(u)  # (P, G)
     t_obs = dmap.t_max
     calib: dict = {"method": settings.calibration}
     half = settings.level / 2
     if settings.calibration == "asymptotic" or table_for is None:
-        extra = 0.0
+        # chi-square(s_p - 1) per partition, with the Nikulin-Rao-Robson term for estimated noise
+        # parameters; Bonferroni over the partitions (a fast screen: liberal, docs/validation.md)
+        extras = np.zeros(len(gate.partitions))
         if kind == "refit" and not law.discrete and k > 0:
-            extra = nrr_term(counts, law.fisher_information(nparams), law.cell_probability_gradient(s, nparams))
-            calib["nrr_term"] = extra
-        df = s - 1
-        c = chi2_critical_value(half, df)
-        p_dist = chi2_p_value(t_obs + extra, df)
+            info = law.fisher_information(nparams)
+            for i, part in enumerate(gate.partitions):
+                grad = law.cell_probability_gradient(np.asarray(part.boundaries) if not part.equiprobable else part.s, nparams)
+                extras[i] = nrr_term(part.counts(u), info, grad, part.probs)
+            calib["nrr_terms"] = [float(x) for x in extras]
+        dfs = np.array([p.s - 1 for p in gate.partitions])
+        crit = np.array([chi2_critical_value(half, int(d)) for d in dfs])
+        with np.errstate(invalid="ignore"):
+            g_tot = g_obs + extras[:, None]
+        gate_reference = np.repeat(crit[:, None], g_obs.shape[1], axis=1)
+        finite = np.where(np.isfinite(g_tot), g_tot, -np.inf).max(axis=1)
+        p_parts = [chi2_p_value(float(t), int(d)) if np.isfinite(t) else 1.0 for t, d in zip(finite, dfs)]
+        p_dist = float(min(1.0, len(p_parts) * min(p_parts)))
+        gate_crit = gate_reference
+        r_obs = float(standardised_maximum(g_tot, gate_reference))
+        map_extra = 0.0
+        if kind == "refit" and not law.discrete and k > 0:
+            map_extra = nrr_term(counts, law.fisher_information(nparams), law.cell_probability_gradient(s, nparams))
+            calib["nrr_term"] = map_extra
+        c = chi2_critical_value(half, s - 1)
         reference = np.full(dmap.statistic.shape, c)
-        crit_grid = reference - extra
-        r_obs = (t_obs + extra) / c
-        calib.update({"method": "asymptotic", "reference": f"chi-square({df})"})
+        crit_grid = reference - map_extra
+        calib.update({"method": "asymptotic", "reference": "chi-square(s - 1) per partition, Bonferroni over partitions"})
+        g_ratio_src = g_tot
     else:
-        table: NullTable = table_for(n, s)
+        table: NullTable = table_for(n, s, gate)
         reference = table.reference
-        r_obs = float(standardised_maximum(dmap.statistic, reference))
-        p_dist = table.p_value(r_obs)
         crit_grid = reference * table.critical_value(half)
+        gate_reference = table.gate_reference
+        r_obs = float(standardised_maximum(g_obs, gate_reference))
+        p_dist = table.gate_p_value(r_obs)
+        gate_crit = gate_reference * table.gate_critical_value(half)
         calib.update({"method": table.method, "replicates": table.replicates, "table": describe_key(table.key)})
+        g_ratio_src = g_obs
     with np.errstate(invalid="ignore", divide="ignore"):
         scaled = np.where(np.isfinite(dmap.statistic) & np.isfinite(crit_grid), dmap.statistic / crit_grid, np.nan)
-        ratio = np.where(np.isfinite(dmap.statistic) & np.isfinite(reference), dmap.statistic / reference, -np.inf)
+        ratio = np.where(np.isfinite(g_ratio_src) & np.isfinite(gate_reference), g_ratio_src / gate_reference, -np.inf)
+    deciding: dict = {}
     if np.isfinite(ratio).any():
-        ia, ib = np.unravel_index(int(np.argmax(ratio)), ratio.shape)
-        a_max, b_max = settings.alphas[ia], settings.betas[ib]
-        t_at, crit_at = float(dmap.statistic[ia, ib]), float(crit_grid[ia, ib])
+        ip, ig = np.unravel_index(int(np.argmax(ratio)), ratio.shape)
+        a_max, b_max = gate.alphas[ig], gate.betas[ig]
+        t_at, crit_at = float(g_obs[ip, ig]), float(gate_crit[ip, ig])
+        deciding = _deciding_partition(gate.partitions[ip], u)
     else:
         a_max = b_max = t_at = crit_at = float("nan")
+    partitions = []
+    for i, part in enumerate(gate.partitions):
+        row = part.to_dict()
+        row["counts"] = [int(c) for c in part.counts(u)]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            row["standardised"] = float(np.max(np.where(np.isfinite(ratio[i]), ratio[i], -np.inf))) if np.isfinite(ratio[i]).any() else None
+        partitions.append(row)
+    gate_info = {
+        "members": [[float(a), float(b)] for a, b in zip(gate.alphas, gate.betas)],
+        "statistics": _rounded(g_obs),
+        "critical": _rounded(gate_crit),
+        "partitions": partitions,
+        "deciding": deciding,
+    }
     lags = settings.lb_lags or ljung_box_lags(n, period, model_df)
     lags = min(lags, n - 1)
     lb = ljung_box(e, lags, model_df=model_df if kind == "refit" else 0)
@@ -517,6 +622,7 @@ def _score(
         effect_divergence=float(t_obs / (2.0 * n)) if np.isfinite(t_obs) else float("inf"),
         effect_acf=effect_acf,
         counts=tuple(int(c) for c in counts),
+        gate=gate_info,
         window=window,
         plots=_plot_data(e, law, nparams, max(lags, min(2 * period, n // 4) if period > 1 else lags)),
         settings_level=settings.level,
@@ -543,8 +649,8 @@ def score_frozen(
     """
     table_for = None
     if settings.calibration != "asymptotic":
-        def table_for(n, s):
-            return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache)
+        def table_for(n, s, gate):
+            return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache, gate=gate)
     return _score(kind, e, u, law, nparams, 0, 0, period, settings, table_for, window, cache)
 
 
@@ -657,27 +763,27 @@ def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label) -> tuple
             u = law.randomized_pit(yf[defined], mean, nparams, key_rng(settings.seed, "pit", "refit", _digest(y)))
             table_for = None
             if settings.calibration != "asymptotic":
-                def table_for(n, s):
-                    return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache)
+                def table_for(n, s, gate):
+                    return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache, gate=gate)
         else:
             nparams = law.fit(e, location=location)
             k = law.n_estimated(location)
             u = law.cdf(e, nparams)
             table_for = None
             if settings.calibration == "simulated":
-                def table_for(n, s):
-                    return refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=nparams.shape, cache=cache)
+                def table_for(n, s, gate):
+                    return refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=nparams.shape, cache=cache, gate=gate)
             elif settings.calibration == "bootstrap":
-                def table_for(n, s):
-                    simulated = refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=nparams.shape, cache=cache)
-                    return _bootstrap(model, fit, law, nparams, yf, xf, n, s, location, settings, simulated.reference)
+                def table_for(n, s, gate):
+                    simulated = refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=nparams.shape, cache=cache, gate=gate)
+                    return _bootstrap(model, fit, law, nparams, yf, xf, n, s, location, settings, simulated, gate)
         check = _score("refit", e, u, law, nparams, k, model.n_dynamic_params(), model.seasonal_period(), settings, table_for, window)
         return check, fit
     except (FitauditError, ValueError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError) as exc:
         return _failed_check("refit", exc, window, label), fit
 
 
-def _bootstrap(model, fit, law: NoiseLaw, nparams: NoiseParams, yf, xf, n: int, s: int, location: bool, settings: AuditSettings, reference: np.ndarray) -> NullTable:
+def _bootstrap(model, fit, law: NoiseLaw, nparams: NoiseParams, yf, xf, n: int, s: int, location: bool, settings: AuditSettings, simulated: NullTable, gate: Gate) -> NullTable:
     """Parametric bootstrap of the refit check: simulate the fitted model, refit, rescore."""
     rng = key_rng(settings.seed, "bootstrap", _digest(yf))
 
@@ -691,12 +797,15 @@ def _bootstrap(model, fit, law: NoiseLaw, nparams: NoiseParams, yf, xf, n: int, 
             e2 = np.asarray(f2.residuals, dtype=float)
             e2 = e2[~np.isnan(e2)]
             p2 = law.fit(e2, location=location)
-            counts = cell_counts(law.cdf(e2, p2), s)
-            return divergence_map(counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r).statistic
+            u2 = law.cdf(e2, p2)
+            counts = cell_counts(u2, s)
+            grid = divergence_map(counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r).statistic
+            return grid, gate.statistics(u2)
         except (FitauditError, ValueError, np.linalg.LinAlgError, ArithmeticError):
             return None
 
-    return bootstrap_table(score, settings.bootstrap_replicates, rng, reference, key=("bootstrap", f"data={_digest(yf)}", f"n={n}", f"s={s}", f"R={settings.bootstrap_replicates}"))
+    key = ("bootstrap", f"data={_digest(yf)}", f"n={n}", f"s={s}", f"R={settings.bootstrap_replicates}", gate.key())
+    return bootstrap_table(score, settings.bootstrap_replicates, rng, simulated.reference, key=key, gate_reference=simulated.gate_reference)
 
 
 # --------------------------------------------------------------------------------------------
@@ -713,9 +822,12 @@ def _why_failed(check: CheckResult, threshold: float, adjusted: bool) -> str:
     parts = []
     if dist:
         where = f" (largest at alpha {check.alpha_max:g}, beta {check.beta_max:g})" if np.isfinite(check.alpha_max) else ""
+        deciding = check.gate.get("deciding") or {}
+        cells = f": {deciding['sentence']}" if deciding.get("sentence") else ""
+        on = f" on the {deciding['kind']} cells" if deciding.get("kind") else ""
         parts.append(
-            f"the residual distribution departs from the assumed {check.noise.get('law', 'noise')} law "
-            f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{where}, p {_fmt_p(check.p_distribution)})"
+            f"the residual distribution departs from the assumed {check.noise.get('law', 'noise')} law{cells} "
+            f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{on}{where}, p {_fmt_p(check.p_distribution)})"
         )
     if ind:
         lb = check.ljung_box
@@ -919,12 +1031,13 @@ def prepare_calibration(
             model, law = as_model(spec), as_noise_law(noise)
             if has_production and n_obs >= settings.audit_window:
                 n = settings.audit_window
-                production_table(n, number_of_cells(n, 0), settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache)
+                production_table(n, number_of_cells(n, 0), settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache, gate=settings.gate(n, 0))
             if settings.calibration == "simulated" and not law.discrete and not (law.has_shape and law.shape is None):
                 n = (settings.fit_window or n_obs) - model.presample()
                 location = model.has_location()
                 s = number_of_cells(n, law.n_estimated(location))
-                refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=law.shape, cache=cache)
+                k = law.n_estimated(location)
+                refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=law.shape, cache=cache, gate=settings.gate(n, k))
         except (FitauditError, ValueError):
             continue  # the model's own audit reports the problem
     return cache

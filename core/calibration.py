@@ -36,11 +36,12 @@ from typing import Callable, Hashable
 import numpy as np
 from scipy import stats
 
-from .cells import cell_counts
+from .cells import Partition, cell_counts
 from .divergence import divergence_map
 from .exceptions import InputError
 
 __all__ = [
+    "Gate",
     "NullTable",
     "CalibrationCache",
     "key_rng",
@@ -72,6 +73,54 @@ REFERENCE_QUANTILE = 0.95
 
 
 @dataclass(frozen=True)
+class Gate:
+    """The members of the distribution gate: divergences at ``(alpha, beta)`` pairs on partitions.
+
+    The gate's statistic is the standardised maximum over every (partition, member) pair, each
+    statistic divided by its own simulated 95 % null point (docs/method.md, "Cells and
+    partitions").  All partitions score the same PIT values, and the null tables score the same
+    simulated samples on every partition, so the maximum's null distribution is the joint one.
+
+    Attributes
+    ----------
+    partitions : tuple of Partition
+    alphas, betas : tuple of float
+        The members as pairs ``(alphas[g], betas[g])``.
+    scaling : str
+    r : float or None
+    """
+
+    partitions: tuple
+    alphas: tuple
+    betas: tuple
+    scaling: str = "geometric"
+    r: float | None = None
+
+    def __post_init__(self):
+        if not self.partitions:
+            raise InputError("Gate: give at least one partition.")
+        if len(self.alphas) != len(self.betas) or not self.alphas:
+            raise InputError("Gate: alphas and betas must be non-empty and of equal length (one pair per member).")
+        object.__setattr__(self, "alphas", tuple(float(a) for a in self.alphas))
+        object.__setattr__(self, "betas", tuple(float(b) for b in self.betas))
+
+    def key(self) -> tuple:
+        """Hashable identity, part of every null table's key."""
+        members = tuple(zip(np.round(self.alphas, 12).tolist(), np.round(self.betas, 12).tolist()))
+        return ("gate", tuple(p.key() for p in self.partitions), members, self.scaling, self.r)
+
+    def statistics(self, u: np.ndarray) -> np.ndarray:
+        """``2 n B`` of every member on every partition, shape (P, G) for u of shape (n,), (R, P, G) for (R, n)."""
+        ua, ia = np.unique(self.alphas, return_inverse=True)
+        ub, ib = np.unique(self.betas, return_inverse=True)
+        out = []
+        for part in self.partitions:
+            grid = divergence_map(part.counts(u), part.probs, ua, ub, self.scaling, self.r).statistic
+            out.append(grid[..., ia, ib])
+        return np.stack(out, axis=-2)
+
+
+@dataclass(frozen=True)
 class NullTable:
     """Simulated null distribution of the standardised maximum of a divergence map.
 
@@ -100,13 +149,41 @@ class NullTable:
     reference: np.ndarray
     r_max: np.ndarray
     method: str = "simulated"
+    gate_reference: np.ndarray | None = None
+    gate_max: np.ndarray | None = None
 
     @classmethod
-    def from_replicates(cls, key: tuple, statistics: np.ndarray, reference: np.ndarray, method: str = "simulated") -> "NullTable":
+    def from_replicates(
+        cls,
+        key: tuple,
+        statistics: np.ndarray,
+        reference: np.ndarray,
+        method: str = "simulated",
+        gate_statistics: np.ndarray | None = None,
+        gate_reference: np.ndarray | None = None,
+    ) -> "NullTable":
         """Build a table from the maps of R simulated data sets, ``statistics`` of shape (R, A, B),
-        and reference values ``c_g`` obtained independently of them (see :func:`reference_values`)."""
+        and reference values ``c_g`` obtained independently of them (see :func:`reference_values`);
+        with a :class:`Gate`, also from its statistics (R, P, G) and their reference values."""
         stats_ = np.asarray(statistics, dtype=float)
-        return cls(tuple(key), np.asarray(reference, dtype=float), np.sort(standardised_maximum(stats_, reference)), method)
+        gate_max = None
+        if gate_statistics is not None:
+            gate_reference = np.asarray(gate_reference, dtype=float)
+            gate_max = np.sort(standardised_maximum(np.asarray(gate_statistics, dtype=float), gate_reference))
+        return cls(tuple(key), np.asarray(reference, dtype=float), np.sort(standardised_maximum(stats_, reference)), method, gate_reference, gate_max)
+
+    @property
+    def has_gate(self) -> bool:
+        """True when the table also calibrates a :class:`Gate`."""
+        return self.gate_max is not None
+
+    def gate_p_value(self, r_obs: float) -> float:
+        """Monte Carlo p-value of the gate's standardised maximum (the distribution gate)."""
+        return monte_carlo_p_value(self.gate_max, r_obs)
+
+    def gate_critical_value(self, level: float) -> float:
+        """Simultaneous critical value of the gate's standardised maximum at ``level``."""
+        return monte_carlo_critical_value(self.gate_max, level)
 
     @property
     def replicates(self) -> int:
@@ -257,7 +334,10 @@ def describe_key(key: tuple) -> str:
     """Readable form of a table key, e.g. ``refit normal n=400 s=22 grid 17x9 geometric R=999``."""
     parts = []
     for item in key:
-        if isinstance(item, tuple) and len(item) == 4 and isinstance(item[0], tuple):
+        if isinstance(item, tuple) and item and item[0] == "gate":
+            _, parts_, members, scaling, _r = item
+            parts.append(f"gate {'+'.join(p[0] for p in parts_)} x {len(members)} member(s) {scaling}")
+        elif isinstance(item, tuple) and len(item) == 4 and isinstance(item[0], tuple):
             alphas, betas, scaling, r = item
             parts.append(f"grid {len(alphas)}x{len(betas)} {scaling}" + (f" r={r:g}" if r is not None else ""))
         else:
@@ -275,19 +355,37 @@ def _map_statistics(counts: np.ndarray, s: int, alphas, betas, scaling, r) -> np
     return m.statistic
 
 
-def production_table(n: int, s: int, alphas, betas, scaling: str, r, replicates: int, seed: int, cache: CalibrationCache | None = None) -> NullTable:
-    """Null table of ``T_max`` for frozen parameters: counts ~ multinomial(n, 1/s).
+def _with_gate(key: tuple, maps: np.ndarray, replicates: int, gate: Gate | None, u: np.ndarray | None) -> NullTable:
+    """A table from 2R simulated maps (first R calibrate, last R give reference values) and, with
+    a gate, the gate's statistics of the same simulated PIT values ``u``."""
+    if gate is None:
+        return NullTable.from_replicates(key, maps[:replicates], reference_values(maps[replicates:]))
+    g = gate.statistics(u)
+    return NullTable.from_replicates(
+        key, maps[:replicates], reference_values(maps[replicates:]),
+        gate_statistics=g[:replicates], gate_reference=reference_values(g[replicates:]),
+    )
 
-    Exact for the production check: with the production parameters fixed, the PIT values of
-    correctly specified one-step errors are i.i.d. U(0, 1).
+
+def production_table(n: int, s: int, alphas, betas, scaling: str, r, replicates: int, seed: int, cache: CalibrationCache | None = None, gate: Gate | None = None) -> NullTable:
+    """Null table for frozen parameters: PIT values i.i.d. U(0, 1).
+
+    Exact for the production check (and for forecast audits): with the law fixed before the data
+    are seen, the PIT values of a correct model are i.i.d. U(0, 1).  Without a ``gate`` the counts
+    are drawn directly from multinomial(n, 1/s); with one, ``2R`` samples of ``n`` uniforms are
+    scored on the map's ``s`` equiprobable cells and on every partition of the gate.
     """
     key = ("production", f"n={int(n)}", f"s={int(s)}", _grid_key(alphas, betas, scaling, r), f"R={int(replicates)}", f"seed={int(seed)}")
+    if gate is not None:
+        key = key + (gate.key(),)
 
     def build() -> NullTable:
         rng = key_rng(seed, *key)
-        counts = rng.multinomial(n, np.full(s, 1.0 / s), size=2 * replicates).astype(float)
-        maps = _map_statistics(counts, s, alphas, betas, scaling, r)
-        return NullTable.from_replicates(key, maps[:replicates], reference_values(maps[replicates:]))
+        if gate is None:
+            counts = rng.multinomial(n, np.full(s, 1.0 / s), size=2 * replicates).astype(float)
+            return _with_gate(key, _map_statistics(counts, s, alphas, betas, scaling, r), replicates, None, None)
+        u = rng.random((2 * replicates, n))
+        return _with_gate(key, _map_statistics(cell_counts(u, s), s, alphas, betas, scaling, r), replicates, gate, u)
 
     return (cache if cache is not None else CalibrationCache()).get(key, build)
 
@@ -299,14 +397,14 @@ def shape_key(shape: float | None) -> float | None:
     return float(f"{shape:.2g}")
 
 
-def refit_table(law, n: int, s: int, location: bool, alphas, betas, scaling: str, r, replicates: int, seed: int, shape: float | None = None, cache: CalibrationCache | None = None) -> NullTable:
-    """Null table of ``T_max`` for residuals whose noise parameters were re-estimated.
+def refit_table(law, n: int, s: int, location: bool, alphas, betas, scaling: str, r, replicates: int, seed: int, shape: float | None = None, cache: CalibrationCache | None = None, gate: Gate | None = None) -> NullTable:
+    """Null table for residuals whose noise parameters were re-estimated.
 
-    Simulates ``replicates`` samples of ``n`` i.i.d. standard draws of ``law`` (at ``shape`` when
-    the law has one), re-estimates location (if ``location``), scale (and the shape, if the law
-    estimates it) with :meth:`NoiseLaw.fit_batch` - the same estimator as for the observed
-    residuals - and scores the PIT values in ``s`` equiprobable cells.  Pivotal for
-    location-scale laws (the table does not depend on the true location and scale).
+    Simulates ``2R`` samples of ``n`` i.i.d. standard draws of ``law`` (at ``shape`` when the law
+    has one), re-estimates location (if ``location``), scale (and the shape, if the law estimates
+    it) with :meth:`NoiseLaw.fit_batch` - the same estimator as for the observed residuals - and
+    scores the PIT values in ``s`` equiprobable cells and, with a ``gate``, on its partitions.
+    Pivotal for location-scale laws (the table does not depend on the true location and scale).
     """
     if law.discrete:
         raise InputError(f"refit_table: the {law.name} law is discrete; count checks use production_table.")
@@ -316,6 +414,8 @@ def refit_table(law, n: int, s: int, location: bool, alphas, betas, scaling: str
         "refit", f"law={law.name}", f"shape={skey}", estimated, f"location={'estimated' if location else 'zero'}",
         f"n={int(n)}", f"s={int(s)}", _grid_key(alphas, betas, scaling, r), f"R={int(replicates)}", f"seed={int(seed)}",
     )
+    if gate is not None:
+        key = key + (gate.key(),)
 
     def build() -> NullTable:
         rng = key_rng(seed, *key)
@@ -323,24 +423,29 @@ def refit_table(law, n: int, s: int, location: bool, alphas, betas, scaling: str
         loc, scale, shp = law.fit_batch(x, location=location)
         u = law.cdf_batch(x, loc, scale, shp)
         maps = _map_statistics(cell_counts(u, s), s, alphas, betas, scaling, r)
-        return NullTable.from_replicates(key, maps[:replicates], reference_values(maps[replicates:]))
+        return _with_gate(key, maps, replicates, gate, u)
 
     return (cache if cache is not None else CalibrationCache()).get(key, build)
 
 
-def bootstrap_table(score_replicate: Callable[[np.random.Generator], np.ndarray | None], replicates: int, rng: np.random.Generator, reference: np.ndarray, key: tuple = ("bootstrap",)) -> NullTable:
+def bootstrap_table(score_replicate: Callable[[np.random.Generator], np.ndarray | tuple | None], replicates: int, rng: np.random.Generator, reference: np.ndarray, key: tuple = ("bootstrap",), gate_reference: np.ndarray | None = None) -> NullTable:
     """Parametric-bootstrap table from ``replicates`` data sets simulated from the fitted model.
 
     ``score_replicate(rng)`` must simulate one series from the fitted model, refit it with the
     same procedure and return the replicate's divergence map statistics (shape (A, B)), or None
     when its refit fails; failed replicates are dropped (docs/method.md §7.4).  ``reference`` are the
     members' reference values, taken from the matching simulated table (independent of these
-    replicates).
+    replicates).  With ``gate_reference`` (the gate's reference values from that table),
+    ``score_replicate`` returns a pair (map statistics, gate statistics of shape (P, G)).
     """
-    maps = [m for m in (score_replicate(rng) for _ in range(replicates)) if m is not None]
-    if not maps:
+    scored = [m for m in (score_replicate(rng) for _ in range(replicates)) if m is not None]
+    if not scored:
         raise InputError("bootstrap_table: every bootstrap refit failed; use calibration='simulated' for this model.")
-    return NullTable.from_replicates(tuple(key), np.stack(maps), reference, method="bootstrap")
+    if gate_reference is None:
+        return NullTable.from_replicates(tuple(key), np.stack(scored), reference, method="bootstrap")
+    maps, gates = zip(*scored)
+    return NullTable.from_replicates(tuple(key), np.stack(maps), reference, method="bootstrap",
+                                     gate_statistics=np.stack(gates), gate_reference=gate_reference)
 
 
 def chi2_p_value(statistic: float, df: int) -> float:
@@ -355,10 +460,10 @@ def chi2_critical_value(level: float, df: int) -> float:
     return float(stats.chi2.isf(level, df))
 
 
-def nrr_term(counts: np.ndarray, information: np.ndarray, gradient: np.ndarray) -> float:
-    """Nikulin-Rao-Robson correction ``V' B (J - J*)^-1 B' V`` for equiprobable cells.
+def nrr_term(counts: np.ndarray, information: np.ndarray, gradient: np.ndarray, probs: np.ndarray | None = None) -> float:
+    """Nikulin-Rao-Robson correction ``V' B (J - J*)^-1 B' V`` for fixed cells.
 
-    With ``q_j = 1/s``, ``V_j = (N_j - n q_j) / sqrt(n q_j)``, ``B_ji = (dq_j/dtheta_i)/sqrt(q_j)``,
+    With cell probabilities ``q_j`` (``1/s`` unless ``probs`` is given), ``V_j = (N_j - n q_j) / sqrt(n q_j)``, ``B_ji = (dq_j/dtheta_i)/sqrt(q_j)``,
     ``J`` the per-observation Fisher information of the estimated noise parameters and
     ``J* = B'B``: adding this term to ``X2`` (or to any member of the family, docs/method.md §5.4)
     restores the chi-square(s - 1) limit when the parameters are maximum-likelihood estimates
@@ -371,15 +476,17 @@ def nrr_term(counts: np.ndarray, information: np.ndarray, gradient: np.ndarray) 
         ``J``.
     gradient : ndarray, shape (s, k)
         ``dq_j/dtheta_i`` at the estimate, cell boundaries held fixed.
+    probs : ndarray, shape (s,), optional
+        Cell probabilities; equiprobable cells when omitted.
     """
     counts = np.asarray(counts, dtype=float)
     s = counts.size
     n = counts.sum()
     if gradient.size == 0:
         return 0.0
-    q = 1.0 / s
+    q = np.full(s, 1.0 / s) if probs is None else np.asarray(probs, dtype=float)
     v = (counts - n * q) / np.sqrt(n * q)
-    b = np.asarray(gradient, dtype=float) / np.sqrt(q)
+    b = np.asarray(gradient, dtype=float) / np.sqrt(q)[:, None]
     j_star = b.T @ b
     bv = b.T @ v
     return float(bv @ np.linalg.solve(np.asarray(information, dtype=float) - j_star, bv))

@@ -13,12 +13,22 @@ number of cells follows docs/method.md §6.3:
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
 from .exceptions import InputError, InsufficientDataError
 
-__all__ = ["number_of_cells", "minimum_length", "cell_counts", "cell_index"]
+__all__ = [
+    "number_of_cells",
+    "minimum_length",
+    "cell_counts",
+    "cell_index",
+    "Partition",
+    "make_partition",
+    "make_partitions",
+    "tail_boundaries",
+]
 
 
 def number_of_cells(n: int, k: int = 0) -> int:
@@ -83,3 +93,138 @@ def cell_counts(u: np.ndarray, s: int) -> np.ndarray:
     rows = idx.shape[0]
     flat = (idx + s * np.arange(rows)[:, None]).ravel()
     return np.bincount(flat, minlength=rows * s).reshape(rows, s).astype(float)
+
+
+# --------------------------------------------------------------------------------------------
+# Partitions: the cells as a recorded dimension of the divergence family
+# --------------------------------------------------------------------------------------------
+#: Expected count of each outermost cell of the tail-refined partition.
+TAIL_EXPECTED = 1.0
+#: Smallest outermost cell probability of the tail-refined partition (reached at n >= 200).
+TAIL_FLOOR = 0.005
+#: Most cells on each side of the median in the tail-refined partition.
+TAIL_STEPS = 5
+
+
+@dataclass(frozen=True)
+class Partition:
+    """A partition of the probability-integral scale [0, 1] into cells.
+
+    Attributes
+    ----------
+    kind : str
+        One of :data:`fitaudit.core.vocabulary.PARTITION_KINDS`.
+    boundaries : tuple of float
+        ``0 = b_0 < b_1 < ... < b_s = 1``; cell ``j`` is ``[b_{j-1}, b_j)`` (the last is closed).
+
+    Notes
+    -----
+    The model probability of cell ``j`` is ``b_j - b_{j-1}`` whatever the noise law, because
+    residuals enter through their PIT values (docs/method.md, "Cells and partitions").
+    """
+
+    kind: str
+    boundaries: tuple
+
+    @property
+    def s(self) -> int:
+        """Number of cells."""
+        return len(self.boundaries) - 1
+
+    @property
+    def probs(self) -> np.ndarray:
+        """Model cell probabilities ``b_j - b_{j-1}``."""
+        return np.diff(np.asarray(self.boundaries, dtype=float))
+
+    @property
+    def equiprobable(self) -> bool:
+        """True when every cell has probability ``1/s`` (counted as :func:`cell_counts` does)."""
+        return self.kind in ("equiprobable", "terciles", "quartiles")
+
+    def counts(self, u: np.ndarray) -> np.ndarray:
+        """Counts of PIT values in the cells, along the last axis: shape (s,) or (R, s)."""
+        if self.equiprobable:
+            return cell_counts(u, self.s)
+        u = np.asarray(u, dtype=float)
+        if np.isnan(u).any():
+            raise InputError("Partition.counts: PIT values contain NaN; the residuals or the noise law are invalid.")
+        idx = np.searchsorted(np.asarray(self.boundaries[1:-1]), np.clip(u, 0.0, 1.0), side="right")
+        if idx.ndim == 1:
+            return np.bincount(idx, minlength=self.s).astype(float)
+        rows = idx.shape[0]
+        flat = (idx + self.s * np.arange(rows)[:, None]).ravel()
+        return np.bincount(flat, minlength=rows * self.s).reshape(rows, self.s).astype(float)
+
+    def describe_cell(self, j: int) -> str:
+        """Plain words for cell ``j`` on the scale of the assumed law, e.g. ``the lowest 0.5 %``.
+
+        >>> p = Partition("tails", (0.0, 0.01, 0.5, 0.99, 1.0))
+        >>> p.describe_cell(0), p.describe_cell(3), p.describe_cell(1)
+        ('the lowest 1 %', 'the highest 1 %', 'between the 1 and 50 % points')
+        """
+        lo, hi = float(self.boundaries[j]), float(self.boundaries[j + 1])
+        if lo == 0.0:
+            return f"the lowest {_percent(hi)}"
+        if hi == 1.0:
+            return f"the highest {_percent(1.0 - lo)}"
+        return f"between the {_percent(lo, unit=False)} and {_percent(hi)} points"
+
+    def key(self) -> tuple:
+        """Hashable identity (kind and boundaries rounded to 12 decimals)."""
+        return (self.kind,) + tuple(round(float(b), 12) for b in self.boundaries)
+
+    def to_dict(self) -> dict:
+        """Plain-Python view."""
+        return {"kind": self.kind, "cells": self.s, "boundaries": [round(float(b), 6) for b in self.boundaries]}
+
+
+def _percent(x: float, unit: bool = True) -> str:
+    text = f"{100 * x:.1f}".rstrip("0").rstrip(".")
+    return f"{text} %" if unit else text
+
+
+def tail_boundaries(n: int) -> tuple:
+    """Boundaries of the tail-refined partition for ``n`` PIT values.
+
+    The outermost cells have probability ``p0 = max(TAIL_FLOOR, TAIL_EXPECTED / n)`` (one
+    expected observation each, never finer than 0.5 %); on each side the boundaries are
+    log-spaced from ``p0`` to 1/2 in ``K = clamp(floor(log2(1 / (2 p0))), 2, TAIL_STEPS)`` steps,
+    so every cell is at least as probable as the one outside it, and mirrored about the median.
+    Heavy tails and a misstated scale move mass into or out of these outer cells, which
+    equiprobable cells merge with the shoulders (Moore 1986; Kallenberg, Oosterhoff and
+    Schriever 1985 on unequal cells against tail alternatives).
+
+    >>> [round(b, 4) for b in tail_boundaries(200)]
+    [0.0, 0.005, 0.0126, 0.0315, 0.0792, 0.1991, 0.5, 0.8009, 0.9208, 0.9685, 0.9874, 0.995, 1.0]
+    """
+    if n < 1:
+        raise InputError(f"tail_boundaries: n must be positive; got {n}.")
+    p0 = max(TAIL_FLOOR, TAIL_EXPECTED / n)
+    steps = int(min(max(math.floor(math.log2(0.5 / p0)), 2), TAIL_STEPS))
+    lower = [p0 * (0.5 / p0) ** (i / steps) for i in range(steps)]
+    return tuple([0.0] + lower + [0.5] + [1.0 - b for b in reversed(lower)] + [1.0])
+
+
+def make_partition(kind: str, n: int, k: int = 0) -> Partition:
+    """The partition of ``kind`` for ``n`` PIT values and ``k`` estimated noise parameters.
+
+    ``equiprobable``: :func:`number_of_cells` cells (raises :class:`InsufficientDataError` as it
+    does); ``terciles`` and ``quartiles``: 3 and 4 equiprobable cells; ``tails``:
+    :func:`tail_boundaries`.
+    """
+    if kind == "equiprobable":
+        s = number_of_cells(n, k)
+    elif kind in ("terciles", "quartiles"):
+        s = 3 if kind == "terciles" else 4
+    elif kind == "tails":
+        return Partition(kind, tail_boundaries(n))
+    else:
+        from .vocabulary import PARTITION_KINDS
+
+        raise InputError(f"make_partition: unknown partition kind {kind!r}; use one of {', '.join(PARTITION_KINDS)}.")
+    return Partition(kind, tuple(j / s for j in range(s + 1)))
+
+
+def make_partitions(kinds, n: int, k: int = 0) -> tuple:
+    """The partitions of ``kinds`` (in that order) for ``n`` PIT values; see :func:`make_partition`."""
+    return tuple(make_partition(kind, n, k) for kind in kinds)

@@ -710,19 +710,21 @@ class _LocationScaleLaw(NoiseLaw):
         return full[np.ix_(idx, idx)]
 
     def cell_probability_gradient(self, s: int, params: NoiseParams) -> np.ndarray:
-        """Derivatives of equiprobable-cell probabilities with respect to the estimated parameters.
+        """Derivatives of cell probabilities with respect to the estimated parameters.
 
-        Cells are ``[c_{j-1}, c_j)`` with ``c_j = F^{-1}(j/s; params)`` held fixed, so
-        ``q_j(theta) = F(c_j; theta) - F(c_{j-1}; theta)`` equals ``1/s`` at ``theta = params``.
-        With ``z_j = F0^{-1}(j/s)``: ``dF(c_j)/dloc = -f0(z_j)/scale``,
+        Cells are ``[c_{j-1}, c_j)`` with ``c_j = F^{-1}(b_j; params)`` held fixed (``b_j = j/s``
+        for equiprobable cells, or given PIT boundaries), so ``q_j(theta) = F(c_j; theta) -
+        F(c_{j-1}; theta)`` equals ``b_j - b_{j-1}`` at ``theta = params``.
+        With ``z_j = F0^{-1}(b_j)``: ``dF(c_j)/dloc = -f0(z_j)/scale``,
         ``dF(c_j)/dscale = -z_j f0(z_j)/scale`` and, for the student-t,
         ``dF(c_j)/dnu = int_0^{z_j} f0(t) d log f0(t)/dnu dt`` (a one-dimensional integral of the
         closed-form score, by adaptive quadrature); derivatives vanish at ``z = +-inf``.
 
         Parameters
         ----------
-        s : int
-            Number of cells, >= 2.
+        s : int or array_like
+            Number of equiprobable cells (>= 2), or the PIT boundaries ``0 = b_0 < ... < b_s = 1``
+            of unequal cells.
         params : NoiseParams
 
         Returns
@@ -732,9 +734,20 @@ class _LocationScaleLaw(NoiseLaw):
             column sums to 0.
         """
         self._check_params(params, "cell_probability_gradient")
-        if isinstance(s, bool) or not isinstance(s, (int, np.integer)) or s < 2:
-            raise InputError(f"{self.name} cell_probability_gradient: s must be an int >= 2; got {s!r}.")
-        z = self._std_ppf(np.arange(1, s) / s, params.shape)  # interior boundaries
+        if isinstance(s, (int, np.integer)) and not isinstance(s, bool):
+            if s < 2:
+                raise InputError(f"{self.name} cell_probability_gradient: s must be an int >= 2; got {s!r}.")
+            interior = np.arange(1, s) / s
+        else:
+            b = np.asarray(s, dtype=float) if not isinstance(s, (bool, str)) else np.array([])
+            if b.ndim != 1 or b.size < 3 or b[0] != 0.0 or b[-1] != 1.0 or np.any(np.diff(b) <= 0):
+                raise InputError(
+                    f"{self.name} cell_probability_gradient: give the number of equiprobable cells (an int >= 2) or "
+                    f"increasing PIT boundaries from 0 to 1; got {s!r}."
+                )
+            interior = b[1:-1]
+            s = b.size - 1
+        z = self._std_ppf(interior, params.shape)  # interior boundaries
         f = np.exp(self._std_logpdf(z, params.shape))
         dF = np.zeros((s + 1, 3))
         dF[1:s, 0] = -f / params.scale

@@ -57,9 +57,11 @@ ADJUSTMENT_LABELS: dict[str, str] = {
     "none": "no adjustment",
 }
 
-PartitionKind = Literal["equiprobable", "coarse", "tails"]
-#: Kinds of cell partitions of the probability-integral scale (fitaudit.core.cells).
-PARTITION_KINDS: tuple[str, ...] = ("equiprobable", "coarse", "tails")
+PartitionKind = Literal["equiprobable", "terciles", "quartiles", "tails"]
+#: Kinds of cell partitions of the probability-integral scale (fitaudit.core.cells.make_partition):
+#: ``equiprobable`` (the number of cells grows with n), ``terciles`` and ``quartiles`` (three and
+#: four equiprobable cells: broad departures), ``tails`` (cells refined toward both ends).
+PARTITION_KINDS: tuple[str, ...] = ("equiprobable", "terciles", "quartiles", "tails")
 
 #: Bounds of the settings a policy or a model entry may set; ``AuditSettings`` and the registry
 #: schema both read them from here.
