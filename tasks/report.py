@@ -757,6 +757,23 @@ def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] |
     def lb_text(d):
         return f"Q {_format_number(d.get('statistic'))} on {d.get('lags')} lags, df {d.get('df')}"
 
+    def gate_text(c):
+        gate = c.get("gate") or {}
+        members = ", ".join(_member_label(a, b) for a, b in gate.get("members") or [])
+        parts = ", ".join(f"{_text(p.get('kind'))} ({p.get('cells')} cells)" for p in gate.get("partitions") or [])
+        return f"{members} on {parts}" if members else "n/a"
+
+    def deciding_text(c):
+        d = (c.get("gate") or {}).get("deciding") or {}
+        if not d:
+            return "n/a"
+        sentence = _text(d.get("sentence"))
+        return f"{sentence[:1].upper()}{sentence[1:]} ({_text(d.get('kind'))} cells)"
+
+    def partition_text(c):
+        rows = (c.get("gate") or {}).get("partitions") or []
+        return "; ".join(f"{_text(p.get('kind'))} {_format_number(p.get('standardised'))}" for p in rows) or "n/a"
+
     def window_text(c):
         w = c.get("window") or {}
         return f"positions {w.get('first')}–{w.get('last')} ({w.get('length')} observations)" if w else "n/a"
@@ -774,8 +791,11 @@ def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] |
         ("Calibration", "calibration", lambda c: _text((c.get("calibration") or {}).get("method"))),
         ("Replicates", "replicates", lambda c: _count((c.get("calibration") or {}).get("replicates"))),
         ("Reference", "reference", lambda c: _text((c.get("calibration") or {}).get("table") or (c.get("calibration") or {}).get("reference") or "n/a")),
-        ("Largest statistic T_max", "t_max", lambda c: _format_number(c.get("t_max"))),
-        ("Standardised maximum R", "r_max", lambda c: _format_number(c.get("r_max"))),
+        ("Distribution gate: members on partitions", "gate", gate_text),
+        ("Largest statistic of the map T_max (equiprobable cells)", "t_max", lambda c: _format_number(c.get("t_max"))),
+        ("Standardised maximum R of the gate", "r_max", lambda c: _format_number(c.get("r_max"))),
+        ("Largest standardised value per partition", "partitions", partition_text),
+        ("Cells that depart most", "deciding", deciding_text),
         ("Deciding point (α, β)", "argmax", lambda c: f"α {_format_number(c.get('alpha_max'))}, β {_format_number(c.get('beta_max'))}"),
         ("T there / its critical value", "t_at_max", lambda c: f"{_format_number(c.get('t_at_max'))} / {_format_number(c.get('critical_value'))}"),
         ("p, distribution gate", "p_distribution", lambda c: _format_p(c.get("p_distribution"))),
@@ -791,6 +811,14 @@ def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] |
     for label, key, fn in specs:
         rows.append({"label": label, "key": key, "cells": [cell(c, fn) for c in checks]})
     return rows
+
+
+def _member_label(alpha: float, beta: float) -> str:
+    """A gate member in words: its classical name when it has one, else its (alpha, beta)."""
+    for name, (a, b, _) in CLASSICAL_MEMBERS.items():
+        if math.isclose(a, alpha, abs_tol=1e-9) and math.isclose(b, beta, abs_tol=1e-9):
+            return CLASSICAL_MEMBER_LABELS.get(name, name)
+    return f"α {_format_number(alpha)}, β {_format_number(beta)}"
 
 
 def _members_rows(check: Mapping[str, Any]) -> list[dict]:

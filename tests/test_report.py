@@ -512,8 +512,8 @@ def test_movement_matches_the_document(doc, dom):
 
 
 CHECK_FIELDS = {
-    "Standardised maximum R": "r_max",
-    "Largest statistic T_max": "t_max",
+    "Standardised maximum R of the gate": "r_max",
+    "Largest statistic of the map T_max (equiprobable cells)": "t_max",
     "p, distribution gate": "p_distribution",
     "p, independence gate (Ljung-Box)": "p_independence",
     "p, check (Bonferroni over the two gates)": "p_value",
