@@ -27,7 +27,7 @@ BENCHMARKS = ("micro", "fleet", "scaleout", "memory")
 
 
 def _micro(quick: bool) -> list[dict]:
-    from . import divergence_map, fit
+    from . import divergence_map, fit, gate_cost
 
     rows = []
     for r in divergence_map.main(quick=quick):
@@ -44,6 +44,7 @@ def _micro(quick: bool) -> list[dict]:
             "measured": f"fitaudit {r['ours_ms']:.1f} ms, {r['peer']} {r['peer_ms']:.1f} ms per fit; largest log-likelihood difference {r['dll_max_abs']:.1e}",
             "ratio": r["ratio"], "ratio_text": f"{r['ratio']:.1f}x", "goal": ">= 10x, log-likelihood not lower by 0.01", "met": r["met"],
         })
+    rows += gate_cost.main(quick=quick)
     return rows
 
 
