@@ -1,7 +1,7 @@
 """The ``fitaudit`` command line.
 
 Commands: ``demo``, ``run``, ``refit``, ``backfill``, ``serve``, ``verify``, ``registry check``,
-``promote`` and ``signoff``; ``fitaudit COMMAND --help`` describes each.
+``promote``, ``params import`` and ``signoff``; ``fitaudit COMMAND --help`` describes each.
 
 Exit codes: 0 success (an audit whose models fail still succeeds, unless ``--fail-on`` names
 their verdicts); 1 unexpected failure; 2 invalid usage or an invalid registry; 3 a verdict named
@@ -110,6 +110,21 @@ def build_parser() -> argparse.ArgumentParser:
     pr.add_argument("version", type=int, help="candidate version to promote")
     pr.add_argument("--by", required=True, help="approver's name and role")
     pr.add_argument("--note", required=True, help="why it is approved")
+
+    pm = sub.add_parser("params", help="parameter commands")
+    pmsub = pm.add_subparsers(dest="params_command", metavar="SUBCOMMAND")
+    pmsub.required = True
+    pi = pmsub.add_parser(
+        "import",
+        help="store parameters estimated elsewhere as a model's production version (checked, then promoted)",
+        description="Check a parameters file (JSON, or YAML for .yaml/.yml: params, noise, date, approved_by; see the README) "
+        "against the registry's model entry and store it as the model's production version.",
+    )
+    pi.add_argument("registry", help="registry YAML file (read only)")
+    pi.add_argument("model", help="model id")
+    pi.add_argument("file", help="parameters file")
+    pi.add_argument("--by", required=True, help="who imports the parameters (name and role)")
+    pi.add_argument("--archive", help="archive folder (default: the archive_root setting, ./archive)")
 
     so = sub.add_parser("signoff", help="record a reviewer's sign-off of an archived run in the hash chain")
     so.add_argument("archive", help="archive folder")
@@ -270,6 +285,24 @@ def _cmd_promote(args) -> int:
     return EXIT_OK
 
 
+def _cmd_params(args) -> int:
+    from fitaudit.tasks.params import ParamsFileError, import_params
+    from fitaudit.tasks.registry import RegistryError
+    from fitaudit.tasks.settings import get_settings
+
+    archive = args.archive or str(get_settings().archive_root)
+    try:
+        version = import_params(args.registry, args.model, args.file, by=args.by, archive_root=archive)
+    except (ParamsFileError, RegistryError) as exc:
+        print(f"fitaudit params import: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    print(
+        f"{args.model}: parameters from {args.file} are in production as version {version.version} "
+        f"(approved by {version.created_by}; {version.note}); archive {archive}"
+    )
+    return EXIT_OK
+
+
 def _cmd_signoff(args) -> int:
     from fitaudit.tasks.archive import record_signoff
 
@@ -297,6 +330,7 @@ COMMANDS = {
     "verify": _cmd_verify,
     "registry": _cmd_registry_check,
     "promote": _cmd_promote,
+    "params": _cmd_params,
     "signoff": _cmd_signoff,
 }
 

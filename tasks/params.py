@@ -14,6 +14,7 @@ version number cannot clobber each other: the file is linked into place only if 
 
 from __future__ import annotations
 
+import datetime as _dt
 import json
 import math
 import os
@@ -22,7 +23,10 @@ import re
 import threading
 from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any
+from typing import Annotated, Any
+
+import yaml
+from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationError
 
 from fitaudit.core.exceptions import FitauditError
 
@@ -38,6 +42,11 @@ __all__ = [
     "production_version",
     "promote",
     "verify_params",
+    "ParamsFileError",
+    "ParamsFile",
+    "read_params_file",
+    "check_imported_params",
+    "import_params",
 ]
 
 STATUSES = ("candidate", "promoted")
@@ -378,3 +387,319 @@ def _verify_model(folder: pathlib.Path) -> list[str]:
                 f"{folder / f'{n}.json'}: promotes version {record.promotes!r}, which is not an earlier stored version"
             )
     return problems
+
+
+# --------------------------------------------------------------------------------------------
+# Onboarding parameters estimated elsewhere
+# --------------------------------------------------------------------------------------------
+class ParamsFileError(ParameterStoreError):
+    """A parameters file to import is unreadable, malformed or does not fit the model entry."""
+
+
+def _finite_number(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise ValueError(f"expected a number, got {value!r}")
+    number = float(value)
+    if not math.isfinite(number):
+        raise ValueError(f"expected a finite number, got {value!r}")
+    return number
+
+
+def _text(value: Any) -> str:
+    if not isinstance(value, str) or not value.strip():
+        raise ValueError("expected non-blank text")
+    return value.strip()
+
+
+class _NoiseFile(BaseModel):
+    """The ``noise`` block of a parameters file."""
+
+    model_config = ConfigDict(extra="forbid")
+    law: str | None = None
+    shape: Annotated[float, BeforeValidator(_finite_number)] | None = None
+    df: Annotated[float, BeforeValidator(_finite_number)] | None = None
+    size: Annotated[float, BeforeValidator(_finite_number)] | None = None
+
+    def fixed_shape(self) -> float | None:
+        given = [v for v in (self.shape, self.df, self.size) if v is not None]
+        if len(given) > 1:
+            raise ValueError("give one of shape, df (student-t) or size (negative-binomial)")
+        return given[0] if given else None
+
+
+class ParamsFile(BaseModel):
+    """A parameters file, as :func:`import_params` reads it (see there for the format)."""
+
+    model_config = ConfigDict(extra="forbid", protected_namespaces=())
+    model_id: str | None = None
+    family: str | None = None
+    params: dict[str, Annotated[float, BeforeValidator(_finite_number)]]
+    noise: _NoiseFile = _NoiseFile()
+    date: _dt.date
+    approved_by: Annotated[str, BeforeValidator(_text)]
+    source: str = ""
+    note: str = ""
+
+
+def read_params_file(path: str | os.PathLike) -> ParamsFile:
+    """Read and validate a parameters file (JSON, or YAML for ``.yaml``/``.yml``).
+
+    Raises
+    ------
+    ParamsFileError
+        Naming the file and every problem found (field: message).
+    """
+    path = pathlib.Path(path)
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise ParamsFileError(f"{path}: cannot be read ({exc.strerror or exc}); check the path") from None
+    try:
+        text = raw.decode("utf-8")
+        data = yaml.safe_load(text) if path.suffix.lower() in (".yaml", ".yml") else json.loads(text)
+    except (UnicodeDecodeError, ValueError, yaml.YAMLError) as exc:
+        kind = "YAML" if path.suffix.lower() in (".yaml", ".yml") else "JSON (name the file .yaml or .yml for YAML)"
+        raise ParamsFileError(f"{path}: not valid {kind}: {exc}") from None
+    if not isinstance(data, dict):
+        raise ParamsFileError(f"{path}: expected a mapping with params, noise, date and approved_by; got {type(data).__name__}")
+    try:
+        parsed = ParamsFile.model_validate(data)
+        parsed.noise.fixed_shape()
+    except ValidationError as exc:
+        lines = []
+        for err in exc.errors():
+            where = ".".join(str(p) for p in err["loc"]) or "(file)"
+            message = err["msg"].removeprefix("Value error, ")
+            if err["type"] == "extra_forbidden":
+                message = f"unknown field; the fields are {', '.join(ParamsFile.model_fields)} (noise: law and shape, df or size)"
+            lines.append(f"{path}: {where}: {message}")
+        raise ParamsFileError("\n".join(lines)) from None
+    except ValueError as exc:
+        raise ParamsFileError(f"{path}: noise: {exc}") from None
+    return parsed
+
+
+def _entry_noise(entry: Any) -> dict:
+    """``{"law", "shape"}`` of a registry entry (dict or validated block)."""
+    as_core = getattr(entry, "noise_law", None)
+    if callable(as_core):
+        return dict(as_core())
+    noise = entry.noise
+    return dict(noise.to_dict() if hasattr(noise, "to_dict") else noise)
+
+
+def check_imported_params(entry: Any, parsed: ParamsFile, source: str = "the parameters file") -> tuple[dict, dict]:
+    """Check parameters from elsewhere against a model entry; returns ``(params, noise)`` to store.
+
+    The checks are those a production version must pass to be run: exactly the family's parameter
+    names (:meth:`~fitaudit.core.models.ForecastModel.param_names`, with ``x:<column>`` for the
+    entry's exogenous inputs), finite values, a positive ``sigma2``, the entry's noise law with a
+    valid shape where the law has one, and a dry run of the family's recursions
+    (:meth:`~fitaudit.core.models.ForecastModel.simulate` then
+    :meth:`~fitaudit.core.models.ForecastModel.errors` on a seeded probe series), which refuses
+    what the family cannot run: ARIMA coefficients that are not stationary or not invertible, a
+    smoothing recursion that overflows, a mean function that fails.
+
+    Raises
+    ------
+    ParamsFileError
+        With the model id, what is wrong and the fix (the expected names when they differ).
+    """
+    from fitaudit.core.audit import as_model, as_noise_law
+    from fitaudit.core.exceptions import FitauditError as CoreError
+
+    model_id = entry.id
+    spec = dict(entry.spec) if getattr(entry, "spec", None) is not None else None
+    if spec is None:
+        raise ParamsFileError(f"model {model_id!r} has no model spec (its forecasts come from outside); there are no parameters to import")
+    if parsed.model_id is not None and parsed.model_id != model_id:
+        raise ParamsFileError(f"{source} is for model {parsed.model_id!r}, not {model_id!r}; import it for its own model or correct model_id")
+    if parsed.family is not None and parsed.family != spec.get("family"):
+        raise ParamsFileError(
+            f"{source} holds {parsed.family!r} parameters but model {model_id!r} is registered as {spec.get('family')!r}; "
+            "import parameters of the registered family, or change the registry entry first"
+        )
+    model = as_model(spec)
+    exog_names = list(getattr(entry, "exogenous", ()) or ())
+    expected = model.param_names(exog_names)
+    given = list(parsed.params)
+    missing = [n for n in expected if n not in parsed.params]
+    unexpected = [n for n in given if n not in expected]
+    if missing or unexpected:
+        raise ParamsFileError(
+            f"model {model_id!r} ({model.describe()}): the parameter names in {source} do not match the family"
+            + (f"; missing {', '.join(missing)}" if missing else "")
+            + (f"; unexpected {', '.join(unexpected)}" if unexpected else "")
+            + f". Expected exactly: {', '.join(expected)}. fitaudit's conventions: AR polynomial 1 - ar1 B - ..., "
+            "MA polynomial 1 + ma1 B + ... (as statsmodels and R), intercept = the mean of the series in levels, "
+            "x:<column> per exogenous input, sigma2 = the innovation variance"
+        )
+    params = {name: float(parsed.params[name]) for name in expected}
+    if not params["sigma2"] > 0:
+        raise ParamsFileError(f"model {model_id!r}: sigma2 = {params['sigma2']:g} in {source} is not a positive variance; give the innovation variance")
+    noise = _entry_noise(entry)
+    law_name = noise.get("law")
+    if parsed.noise.law is not None and parsed.noise.law != law_name:
+        raise ParamsFileError(
+            f"model {model_id!r} is registered with the {law_name!r} noise law but {source} states {parsed.noise.law!r}; "
+            "import parameters for the registered law, or change the registry entry first"
+        )
+    shape = parsed.noise.fixed_shape()
+    try:
+        law = as_noise_law({"law": law_name, "shape": noise.get("shape")})
+        if law.has_shape:
+            if law.shape is not None and shape is not None and not math.isclose(shape, law.shape, rel_tol=1e-12):
+                raise ParamsFileError(
+                    f"model {model_id!r}: the registry fixes the {law_name} shape at {law.shape:g} but {source} gives {shape:g}; "
+                    "drop the shape from the file or change the registry entry"
+                )
+            shape = law.shape if law.shape is not None else shape
+            if shape is None:
+                what = "degrees of freedom (df)" if law_name == "student-t" else "size"
+                raise ParamsFileError(
+                    f"model {model_id!r}: the registry estimates the {law_name} shape, so {source} must give it "
+                    f"(noise: {{{'df' if law_name == 'student-t' else 'size'}: ...}}, the {what} in use)"
+                )
+            as_noise_law({"law": law_name, "shape": shape})  # the law's own bounds (t: df > 2; NB: size > 0)
+        elif shape is not None:
+            raise ParamsFileError(f"model {model_id!r}: the {law_name} noise law has no shape, but {source} gives one; drop it")
+    except CoreError as exc:
+        if isinstance(exc, ParamsFileError):
+            raise
+        raise ParamsFileError(f"model {model_id!r}: {exc}") from None
+    _dry_run(model, params, exog_names, model_id, source)
+    return params, {"law": law_name, "shape": shape}
+
+
+def _dry_run(model: Any, params: dict, exog_names: list[str], model_id: str, source: str) -> None:
+    """Run the family's simulation and one-step errors on a seeded probe series."""
+    import numpy as np
+
+    from fitaudit.core.exceptions import FitauditError as CoreError
+
+    rng = np.random.default_rng(0)
+    n = max(int(model.min_length(len(exog_names))), 50) + int(model.presample())
+    exog = {name: rng.standard_normal(n) for name in exog_names} or None
+    try:
+        with np.errstate(all="ignore"):
+            y = model.simulate(params, n, rng, exog=exog)
+            model.errors(y, params, exog)
+    except (CoreError, ValueError, ArithmeticError, np.linalg.LinAlgError) as exc:
+        raise ParamsFileError(
+            f"model {model_id!r}: {model.describe()} cannot run the parameters in {source}: {exc} "
+            "(if they come from a tool with other sign conventions, convert them: fitaudit writes the AR polynomial "
+            "1 - ar1 B - ... and the MA polynomial 1 + ma1 B + ...)"
+        ) from None
+
+
+def import_params(
+    registry: Any,
+    model_id: str,
+    path: str | os.PathLike,
+    *,
+    by: str,
+    archive_root: str | os.PathLike,
+) -> ParameterVersion:
+    """Store parameters estimated elsewhere as the production version of a registered model.
+
+    For a team whose model already runs in production outside fitaudit: the production check
+    then audits *those* parameters, not fitaudit's own estimate.  The file is read, checked
+    against the model entry (:func:`check_imported_params`), written as a ``candidate`` version
+    (created by ``by``, with the file's SHA-256, date, approver and source in its lineage) and
+    promoted at once (a ``promoted`` version approved by the file's approver, and a
+    ``promotion`` entry in the archive's hash chain), exactly as :func:`promote` does for a refit.
+    Nothing is written unless every check passes.
+
+    File format (JSON; YAML when the name ends in ``.yaml`` or ``.yml``)::
+
+        model_id: north-demand          # optional; must be MODEL_ID when given
+        family: arima                   # optional; must be the registered family when given
+        params:                         # exactly the family's parameter names
+          ar1: 0.62
+          ma1: -0.41
+          intercept: 1520.0             # the mean of the series in levels (trend c)
+          x:temp_c: -3.1                # one per exogenous input of the entry
+          sigma2: 2204.5                # innovation variance, > 0
+        noise:                          # optional; law must be the registered one when given
+          law: student-t
+          df: 6                         # shape: df (student-t) or size (negative-binomial);
+                                        # required when the registry estimates the shape
+        date: 2026-11-02                # when these parameters went into production
+        approved_by: "R. Example, Head of Model Risk"
+        source: "statsmodels 0.14 ARIMA, forecasting notebook, run 2026-11-01"   # optional
+        note: "quarterly re-estimation"                                           # optional
+
+    Parameter names per family: ARIMA ``ar1.., ma1.., sar1.., sma1.., intercept, drift,
+    x:<column>, sigma2`` (AR polynomial ``1 - ar1 B - ...``, MA polynomial ``1 + ma1 B + ...``,
+    the conventions of statsmodels and R); exponential smoothing ``alpha, [beta], [gamma],
+    [phi], l0, [b0], [s0 .. s{m-2}], sigma2``; nonlinear autoregressions their own names then
+    ``sigma2``.  A mismatch lists the expected names.
+
+    Parameters
+    ----------
+    registry : path-like or Registry
+        The registry (read with :func:`fitaudit.tasks.registry.load_registry`; nothing is written to it).
+    model_id : str
+        A model entry of the registry.
+    path : path-like
+        The parameters file.
+    by : str
+        Who imports the file (recorded as the candidate's author and in the chain entry).
+    archive_root : path-like
+        The archive holding the parameter store.
+
+    Returns
+    -------
+    ParameterVersion
+        The ``promoted`` record now in production.
+
+    Raises
+    ------
+    ParamsFileError
+        The file cannot be read, is malformed or does not fit the model (every message names
+        the file or the model and the fix).
+    ParameterStoreError
+        Unknown or rejected model id, blank ``by``, or a store problem.
+    """
+    from .archive import append_chain
+    from .registry import load_registry
+
+    if not isinstance(by, str) or not by.strip():
+        raise ParameterStoreError("importing parameters needs a non-blank --by (who imports them)")
+    reg = load_registry(registry) if isinstance(registry, str | os.PathLike) else registry
+    try:
+        entry = reg.model(model_id)
+    except KeyError as exc:
+        raise ParameterStoreError(str(exc.args[0]) if exc.args else f"no model {model_id!r}") from None
+    path = pathlib.Path(path)
+    parsed = read_params_file(path)
+    params, noise = check_imported_params(entry, parsed, source=str(path))
+    file_sha = sha256_bytes(path.read_bytes())
+    lineage = {
+        "imported_from": path.name,
+        "file_sha256": file_sha,
+        "in_production_since": parsed.date.isoformat(),
+        "approved_by": parsed.approved_by,
+        "source": parsed.source,
+        "registry_sha256": getattr(reg, "sha256", None),
+    }
+    candidate = write_version(
+        archive_root, model_id, spec=dict(entry.spec), noise=noise, params=params, status="candidate",
+        created_by=by.strip(), lineage=lineage,
+        note=f"production parameters estimated outside fitaudit, imported from {path.name}" + (f"; {parsed.note}" if parsed.note else ""),
+    )
+    promoted = promote(
+        archive_root, model_id, candidate.version, approved_by=parsed.approved_by,
+        note=f"in production since {parsed.date.isoformat()}; imported by {by.strip()} from {path.name}",
+    )
+    append_chain(archive_root, "promotion", {
+        "path": f"params/{model_id}/{promoted.version}.json",
+        "sha256": promoted.sha256,
+        "model_id": model_id,
+        "promotes": candidate.version,
+        "approved_by": parsed.approved_by,
+        "imported_by": by.strip(),
+        "imported_from": path.name,
+        "file_sha256": file_sha,
+    })
+    return promoted
