@@ -7,7 +7,6 @@ pandas.date_range for the calendar grids of the declared frequencies.
 
 from __future__ import annotations
 
-import dataclasses
 import datetime as dt
 import hashlib
 import json
@@ -63,7 +62,7 @@ def _write(path, table: pa.Table) -> None:
 
 
 def _source(uri, **changes) -> SourceEntry:
-    return dataclasses.replace(SOURCE, uri=str(uri), **changes)
+    return SourceEntry.model_validate({**SOURCE.model_dump(), "uri": str(uri), **changes})
 
 
 def _kinds(data: SeriesData) -> list[str]:

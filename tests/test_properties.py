@@ -85,7 +85,7 @@ def test_random_model_entries_are_accepted_or_rejected_never_crash(entries):
     for m in reg.models:
         assert SAFE_ID.match(m.id) and len(m.id) <= MAX_ID_LENGTH
         model_from_dict(m.spec)  # an accepted spec builds
-        get_law(m.noise["law"], shape=m.noise["shape"])
+        get_law(m.noise.law, shape=m.noise.shape)
         assert m.fit_window >= m.audit_window >= 1 and m.source == "main"
     safe = [m.id for m in reg.models] + [r.safe_id for r in reg.rejected]
     assert all(SAFE_ID.match(s) for s in safe) and len({s.casefold() for s in safe}) == len(safe)

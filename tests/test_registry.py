@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import pathlib
 import re
 
 import pytest
@@ -27,8 +28,10 @@ from fitaudit.tasks.registry import (
     RegistryProblem,
     RejectedEntry,
     check_registry,
+    entry_from_dict,
     load_registry,
     parse_registry,
+    registry_json_schema,
 )
 
 VALID = """\
@@ -113,13 +116,13 @@ def test_full_document_parses_every_field():
     assert (north.owner, north.tier, north.source, north.series, north.value) == ("Forecasting team", 2, "demand", "north", "demand")
     assert north.exogenous == ("temp_c",)
     assert north.spec == {"family": "arima", "order": (1, 0, 1), "seasonal": (0, 1, 1, 7), "trend": "n"}
-    assert north.noise == {"law": "student-t", "shape": 5.0}
+    assert north.noise_law() == {"law": "student-t", "shape": 5.0}
     assert (north.fit_window, north.audit_window) == (730, 28)
-    assert north.settings == {"replicates": 499, "calibration": "bootstrap"}
+    assert north.settings.to_dict() == {"replicates": 499, "calibration": "bootstrap"}
     assert north.last_validated == "2026-06-30"
     assert north.line == _line(VALID, "- id: north-demand")
     south = reg.model("south-demand")
-    assert south.noise == {"law": "normal", "shape": None} and south.settings == {} and south.last_validated is None
+    assert south.noise_law() == {"law": "normal", "shape": None} and south.settings.to_dict() == {} and south.last_validated is None
     assert south.description == "" and south.exogenous == ()
 
 
@@ -475,6 +478,105 @@ def test_check_registry_reports_registry_and_entry_problems_together(tmp_path):
     with pytest.raises(RegistryError) as info:
         load_registry(path)
     assert {p.field for p in info.value.problems} == {"policy.level"}  # entry problems do not stop the run
+
+
+# ------------------------------------------------------------------------------------------
+# the typed values: settings and noise law built from the entry, JSON Schema, bounds
+# ------------------------------------------------------------------------------------------
+def test_entry_builds_its_audit_settings_and_noise_law():
+    from fitaudit.core.audit import AuditSettings
+
+    reg = parse_registry(VALID, FILE)
+    north, south = reg.model("north-demand"), reg.model("south-demand")
+    # the entry's overrides (replicates 499, bootstrap), the policy's level and seed, the entry's audit window
+    assert north.audit_settings(reg.policy) == AuditSettings(level=0.05, calibration="bootstrap", replicates=499, seed=20261201, audit_window=28)
+    assert south.audit_settings(reg.policy) == AuditSettings(level=0.05, calibration="simulated", replicates=999, seed=20261201, audit_window=28)
+    assert north.noise_law() == {"law": "student-t", "shape": 5.0} and south.noise_law() == {"law": "normal", "shape": None}
+
+
+def test_entry_survives_its_plain_view():
+    """Staging writes ``to_dict()`` into a batch file and reads the typed entry back."""
+    reg = parse_registry(VALID, FILE)
+    for entry in reg.models:
+        back = entry_from_dict(json.loads(canonical_json(entry.to_dict())))
+        assert back == entry and back.to_dict() == entry.to_dict()
+
+
+def test_policy_partitions_reach_the_audit_settings():
+    from fitaudit.core.audit import AuditSettings
+    from fitaudit.core.vocabulary import PARTITION_KINDS
+
+    if "partitions" not in AuditSettings.__dataclass_fields__:
+        pytest.skip("AuditSettings has no partitions field")
+    reg = parse_registry(VALID, FILE)
+    assert reg.model("south-demand").audit_settings(reg.policy).partitions == AuditSettings().partitions
+    assert "partitions" not in reg.policy.to_dict()  # results of registries without it keep their bytes
+    chosen = tuple(PARTITION_KINDS[::-1][:2])
+    text = _edit("  seed: 20261201\n", f"  seed: 20261201\n  partitions: [{', '.join(chosen)}]\n")
+    reg = parse_registry(text, FILE)
+    assert reg.policy.partitions == chosen == reg.model("south-demand").audit_settings(reg.policy).partitions
+    with pytest.raises(RegistryError) as info:
+        parse_registry(_edit("  seed: 20261201\n", f"  seed: 20261201\n  partitions: [{PARTITION_KINDS[0].upper()}]\n"), FILE)
+    (problem,) = info.value.problems
+    assert problem.field == "policy.partitions[0]" and problem.line == _line(VALID, "seed:") + 1
+    assert re.search(rf"expected one of .*got '{PARTITION_KINDS[0].upper()}' \(did you mean '{PARTITION_KINDS[0]}'\?\)", problem.message)
+
+
+def test_setting_bounds_come_from_the_vocabulary():
+    """One bound per setting: the registry refuses just below and accepts at each bound of
+    ``SETTING_BOUNDS`` (policy and per-model settings alike)."""
+    from fitaudit.core.vocabulary import SETTING_BOUNDS
+
+    lowest = SETTING_BOUNDS["replicates"][0].left
+    for where, old, line in (("policy", "  replicates: 999\n", "  replicates: {}\n"),
+                             ("models[0].settings", "replicates: 499,", "replicates: {},")):
+        reg = parse_registry(_edit(old, line.format(lowest)), FILE)
+        assert reg.rejected == ()
+        text = _edit(old, line.format(lowest - 1))
+        problems = check_registry_text(text)
+        assert [p.message for p in problems if p.field == f"{where}.replicates"] == [f"expected an integer >= {lowest}, got {lowest - 1}"]
+    schema = registry_json_schema()["$defs"]
+    assert schema["Policy"]["properties"]["replicates"]["minimum"] == lowest
+    assert schema["ModelSettings"]["properties"]["replicates"]["minimum"] == lowest
+    level = SETTING_BOUNDS["level"][0]
+    assert (schema["Policy"]["properties"]["level"]["exclusiveMinimum"], schema["Policy"]["properties"]["level"]["exclusiveMaximum"]) == (level.left, level.right)
+
+
+def check_registry_text(text: str) -> list[RegistryProblem]:
+    """Every problem of a registry text, registry- and entry-level."""
+    try:
+        reg = parse_registry(text, FILE)
+    except RegistryError as exc:
+        return exc.problems
+    return [p for r in reg.rejected for p in r.problems] + list(reg.source_problems)
+
+
+def test_json_schema_describes_what_the_parser_accepts():
+    import jsonschema
+
+    schema = registry_json_schema()
+    validator = jsonschema.Draft202012Validator(schema)
+    jsonschema.Draft202012Validator.check_schema(schema)
+    valid = json.loads(json.dumps(yaml.safe_load(VALID), default=str))  # dates as ISO text, as an editor sees them
+    assert list(validator.iter_errors(valid)) == []
+    example = (pathlib.Path(__file__).resolve().parents[1] / "examples" / "registry.yaml").read_text()
+    assert list(validator.iter_errors(json.loads(json.dumps(yaml.safe_load(example), default=str)))) == []
+    for old, new, where in (("    tier: 1\n", "    tier: 1\n    windw: 3\n", ["models", 1]),
+                            ("tier: 1", "tier: 5", ["models", 1, "tier"]),
+                            ("frequency: D", "frequency: daily", ["sources", "demand", "frequency"]),
+                            ("  fdr_q: 0.10\n", "  fdr_q: 0.10\n  levle: 0.01\n", ["policy"]),
+                            ("noise: normal", "noise: gauss", ["models", 1, "noise"])):
+        broken = json.loads(json.dumps(yaml.safe_load(_edit(old, new)), default=str))
+        errors = list(validator.iter_errors(broken))
+        assert len(errors) == 1 and list(jsonschema.exceptions.best_match(errors).absolute_path) == where, new
+        assert check_registry_text(_edit(old, new))  # the parser refuses it too
+    assert "line" not in schema["$defs"]["ModelEntry"]["properties"]  # filled in by the loader, never written
+
+
+def test_fields_the_loader_fills_in_are_unknown_keys_in_the_yaml():
+    reg = parse_registry(_edit("    tier: 1\n", "    tier: 1\n    line: 3\n"), FILE)
+    (problem,) = reg.rejected[0].problems
+    assert problem.field == "models[1].line" and problem.message.startswith("unknown key 'line'; valid keys are 'id'")
 
 
 # ------------------------------------------------------------------------------------------
