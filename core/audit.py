@@ -839,9 +839,14 @@ def _why_failed(check: CheckResult, threshold: float, adjusted: bool) -> str:
 
 
 def _summary_pass(check: CheckResult) -> str:
+    deciding = check.gate.get("deciding") or {}
+    on = f" on the {deciding['kind']} cells" if deciding.get("kind") else ""
+    beyond = check.t_at_max > check.critical_value
     return (
-        f"no point of the divergence map exceeds its critical value (largest T {check.t_at_max:.1f} against {check.critical_value:.1f}, p {_fmt_p(check.p_distribution)}) "
-        f"and Ljung-Box finds no autocorrelation (p {_fmt_p(check.p_independence)})"
+        f"the distribution gate finds no departure from the assumed law (largest standardised statistic: T {check.t_at_max:.1f} "
+        f"against a critical value of {check.critical_value:.1f}{on}, p {_fmt_p(check.p_distribution)}"
+        + (", not significant after the adjustment across the run" if beyond else "")
+        + f") and Ljung-Box finds no autocorrelation (p {_fmt_p(check.p_independence)})"
     )
 
 

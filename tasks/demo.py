@@ -11,7 +11,8 @@ Planted so that every verdict appears in the final audit (as of 2026-11-30):
 =========  =====================================================================  ==============
 district   what happened                                                          verdict
 =========  =====================================================================  ==============
-d-07       demand became much more volatile on 20 October 2026                   refit
+d-07       demand became much more volatile on 3 November 2026, after the         refit
+           previous audit (2 November)
 d-22       the same, since 1 March 2026, so refits were needed audit after audit  respecify (escalated)
 d-13       new model (no production version yet) whose shocks are heavy-tailed    respecify
            (student-t, 2.2 df) although it is registered as normal
@@ -88,7 +89,7 @@ def _district(i: int, days: np.ndarray, temp: np.ndarray, rng: np.random.Generat
         spec = dict(STATIONARY)
         params = {"ar1": 0.55, "sar1": 0.35, "intercept": base, "x:temp_c": beta, "sigma2": sigma**2}
         scale = np.full(n, sigma)
-        change = np.datetime64("2026-10-20" if i == 7 else "2026-03-01")
+        change = np.datetime64("2026-11-03" if i == 7 else "2026-03-01")
         scale[days >= change] *= 3.0 if i == 7 else 2.0
         y = _model(spec).simulate(params, n, rng, exog=exog, innovations=rng.normal(0, 1, n) * scale)
     elif i == 19:
