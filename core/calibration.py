@@ -30,15 +30,21 @@ from __future__ import annotations
 
 import hashlib
 import threading
+from collections.abc import Callable, Hashable, Sequence
 from dataclasses import dataclass, field
-from typing import Callable, Hashable
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import stats
 
-from .cells import Partition, cell_counts
+from .cells import cell_counts, number_of_cells
 from .divergence import divergence_map
-from .exceptions import InputError
+from .exceptions import FitauditError, InputError
+from .models import as_model
+from .noise import as_noise_law
+
+if TYPE_CHECKING:  # settings.py imports this module (Gate)
+    from .settings import AuditSettings
 
 __all__ = [
     "Gate",
@@ -59,6 +65,7 @@ __all__ = [
     "chi2_p_value",
     "chi2_critical_value",
     "nrr_term",
+    "prepare_calibration",
 ]
 
 
@@ -161,7 +168,7 @@ class NullTable:
         method: str = "simulated",
         gate_statistics: np.ndarray | None = None,
         gate_reference: np.ndarray | None = None,
-    ) -> "NullTable":
+    ) -> NullTable:
         """Build a table from the maps of R simulated data sets, ``statistics`` of shape (R, A, B),
         and reference values ``c_g`` obtained independently of them (see :func:`reference_values`);
         with a :class:`Gate`, also from its statistics (R, P, G) and their reference values."""
@@ -241,7 +248,7 @@ class StatisticTable:
         return monte_carlo_p_value(self.values, observed)
 
 
-def independence_table(n: int, lags: int, replicates: int, seed: int, cache: "CalibrationCache | None" = None) -> StatisticTable:
+def independence_table(n: int, lags: int, replicates: int, seed: int, cache: CalibrationCache | None = None) -> StatisticTable:
     """Simulated null of the Ljung-Box statistic of ``n`` i.i.d. errors at ``lags`` lags.
 
     With frozen production parameters the one-step errors of a correct model are i.i.d., so this
@@ -321,7 +328,7 @@ class CalibrationCache:
         self.__dict__.update(state)
         self._lock = threading.Lock()
 
-    def merge(self, other: "CalibrationCache") -> None:
+    def merge(self, other: CalibrationCache) -> None:
         """Add the tables of ``other`` that this cache lacks."""
         for k, v in other.tables.items():
             self.tables.setdefault(k, v)
@@ -490,3 +497,36 @@ def nrr_term(counts: np.ndarray, information: np.ndarray, gradient: np.ndarray, 
     j_star = b.T @ b
     bv = b.T @ v
     return float(bv @ np.linalg.solve(np.asarray(information, dtype=float) - j_star, bv))
+
+
+def prepare_calibration(
+    entries: Sequence[tuple[Any, Any, AuditSettings, int, bool]],
+    cache: CalibrationCache | None = None,
+) -> CalibrationCache:
+    """Build, once, the simulated null tables a run's models will need.
+
+    ``entries`` holds ``(spec, noise, settings, n_observations, has_production)`` per model: the
+    production table depends on the audit window only, the refit table on the number of
+    residuals (``n_observations - spec.presample()``), the noise law and whether the location is
+    estimated.  Tables of laws whose shape is estimated are keyed by the estimate and built on
+    demand during the audit; so are bootstrap tables.  The returned cache is passed to every batch
+    (also to other processes), so no table is built twice.
+    """
+    cache = cache if cache is not None else CalibrationCache()
+    for spec, noise, settings, n_obs, has_production in entries:
+        if settings.calibration == "asymptotic":
+            continue
+        try:
+            model, law = as_model(spec), as_noise_law(noise)
+            if has_production and n_obs >= settings.audit_window:
+                n = settings.audit_window
+                production_table(n, number_of_cells(n, 0), settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache, gate=settings.gate(n, 0))
+            if settings.calibration == "simulated" and not law.discrete and not (law.has_shape and law.shape is None):
+                n = (settings.fit_window or n_obs) - model.presample()
+                location = model.has_location()
+                s = number_of_cells(n, law.n_estimated(location))
+                k = law.n_estimated(location)
+                refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=law.shape, cache=cache, gate=settings.gate(n, k))
+        except (FitauditError, ValueError):
+            continue  # the model's own audit reports the problem
+    return cache

@@ -15,9 +15,10 @@ from typing import Any
 
 import numpy as np
 
-from .audit import AuditSettings, as_model, audit_series
+from .audit import audit_series
 from .calibration import CalibrationCache
-from .models import ForecastModel, model_from_dict
+from .models import ForecastModel, as_model, model_from_dict
+from .settings import AuditSettings
 
 __all__ = ["Candidate", "neighbour_specs", "search_candidates"]
 

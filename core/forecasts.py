@@ -67,22 +67,15 @@ import numpy as np
 from scipy import special, stats
 
 from ._validation import Interval, check_param
-from .audit import (
-    AuditResult,
-    AuditSettings,
-    CheckResult,
-    _digest,
-    _failed_check,
-    _fmt_p,
-    _plain,
-    as_noise_law,
-    score_frozen,
-)
 from .calibration import CalibrationCache, key_rng
 from .change import locate_change
+from .checks import _digest, _failed_check, score_frozen
 from .diagnostics import PortmanteauResult, acf, ljung_box_lags
 from .exceptions import FitauditError, InputError, InsufficientDataError
-from .noise import NoiseLaw, NoiseParams, get_law
+from .noise import NoiseLaw, NoiseParams, as_noise_law, get_law
+from .results import AuditResult, CheckResult, _plain
+from .settings import AuditSettings
+from .verdict import _fmt_p
 
 __all__ = [
     "STATEMENTS",

@@ -39,8 +39,9 @@ from __future__ import annotations
 
 import math
 import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import Any, ClassVar
 
 import numpy as np
 from scipy import integrate, special
@@ -61,6 +62,7 @@ __all__ = [
     "PoissonLaw",
     "NegativeBinomialLaw",
     "get_law",
+    "as_noise_law",
 ]
 
 #: Names of the noise parameters, in the order used by ``NoiseParams.estimated``, Fisher
@@ -1319,20 +1321,20 @@ class NegativeBinomialLaw(_CountLaw):
             # Illinois rule: when the same end moves twice, halve the score kept at the other end
             repeat = last_up[todo] == np.where(up, 1, -1)
             last_up[todo] = np.where(up, 1, -1)
-            l, h = np.where(up, e, lo[todo]), np.where(up, hi[todo], e)
+            left, right = np.where(up, e, lo[todo]), np.where(up, hi[todo], e)
             sl = np.where(up, score, np.where(repeat, 0.5, 1.0) * s_lo[todo])
             sh = np.where(up, np.where(repeat, 0.5, 1.0) * s_hi[todo], score)
             d_eta = np.exp(e) * slope  # d score / d eta
             with np.errstate(divide="ignore", invalid="ignore"):
                 newton = e - score / d_eta
-                secant = l - sl * (h - l) / (sh - sl)
-            newton_ok = (d_eta < 0) & (newton > l) & (newton < h)
+                secant = left - sl * (right - left) / (sh - sl)
+            newton_ok = (d_eta < 0) & (newton > left) & (newton < right)
             # the secant of a bracket lies inside it; on an end only when that end is the root to rounding
-            secant_at_end = ~newton_ok & ((secant <= l) | (secant >= h))
-            secant = np.clip(secant, l, h)
-            nxt = np.where(newton_ok, newton, np.where(np.isfinite(secant), secant, 0.5 * (l + h)))
-            lo[todo], hi[todo], s_lo[todo], s_hi[todo], eta[todo] = l, h, sl, sh, nxt
-            finished = (np.abs(nxt - e) < 1e-10) | (h - l < 1e-10) | (score == 0) | secant_at_end
+            secant_at_end = ~newton_ok & ((secant <= left) | (secant >= right))
+            secant = np.clip(secant, left, right)
+            nxt = np.where(newton_ok, newton, np.where(np.isfinite(secant), secant, 0.5 * (left + right)))
+            lo[todo], hi[todo], s_lo[todo], s_hi[todo], eta[todo] = left, right, sl, sh, nxt
+            finished = (np.abs(nxt - e) < 1e-10) | (right - left < 1e-10) | (score == 0) | secant_at_end
             todo = todo[~finished]
         if todo.size:
             warnings.warn(
@@ -1387,3 +1389,29 @@ def get_law(name: str, shape: float | None = None) -> NoiseLaw:
         valid = ", ".join(repr(k) for k in NOISE_LAWS)
         raise InputError(f"Unknown noise law {name!r}; valid noise laws are {valid}.")
     return NOISE_LAWS[name](shape)
+
+
+def as_noise_law(noise: str | Mapping[str, Any] | NoiseLaw, shape: float | None = None) -> NoiseLaw:
+    """A noise law from its name, ``{"law": name, "shape": value}`` or an instance.
+
+    Parameters
+    ----------
+    noise : str, mapping or NoiseLaw
+        ``"normal"``, ``{"law": "student-t", "shape": 5}`` or a law built by :func:`get_law`.
+    shape : float, optional
+        A fixed shape to use when ``noise`` gives none (an instance is rebuilt with it).
+
+    Returns
+    -------
+    NoiseLaw
+
+    Examples
+    --------
+    >>> as_noise_law({"law": "student-t", "shape": 5})
+    get_law('student-t', shape=5.0)
+    """
+    if isinstance(noise, NoiseLaw):
+        return noise if shape is None else get_law(noise.name, shape=shape)
+    if isinstance(noise, Mapping):
+        return get_law(str(noise.get("law")), shape=noise.get("shape", shape))
+    return get_law(str(noise), shape=shape)

@@ -7,7 +7,7 @@ registry names (``arima``, ``smoothing``, ``nonlinear-ar``) to the classes.
 from ._base import FitResult, ForecastModel, check_series, exog_matrix
 from .arima import Arima
 from .nonlinear import NonlinearAR
-from .registry import FAMILIES, get_family, model_from_dict
+from .registry import FAMILIES, as_model, get_family, model_from_dict
 from .smoothing import ExpSmoothing
 
 __all__ = [
@@ -17,6 +17,7 @@ __all__ = [
     "FitResult",
     "ForecastModel",
     "NonlinearAR",
+    "as_model",
     "check_series",
     "exog_matrix",
     "get_family",

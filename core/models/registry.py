@@ -5,10 +5,10 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import Any
 
-from ..exceptions import SpecificationError
+from ..exceptions import InputError, SpecificationError
 from ._base import ForecastModel
 
-__all__ = ["FAMILIES", "get_family", "model_from_dict"]
+__all__ = ["FAMILIES", "get_family", "model_from_dict", "as_model"]
 
 FAMILIES: dict[str, type[ForecastModel]] = {}
 
@@ -38,3 +38,22 @@ def model_from_dict(spec: Mapping[str, Any]) -> ForecastModel:
         return cls(**kwargs)
     except TypeError as exc:
         raise SpecificationError(f"Invalid hyperparameters for family {spec['family']!r}: {exc}.") from None
+
+
+def as_model(spec: ForecastModel | Mapping[str, Any]) -> ForecastModel:
+    """A model spec object from a spec or its dict form (:func:`model_from_dict`).
+
+    Parameters
+    ----------
+    spec : ForecastModel or mapping
+        A spec (returned as is) or ``{"family": name, **hyperparameters}``.
+
+    Returns
+    -------
+    ForecastModel
+    """
+    if isinstance(spec, ForecastModel):
+        return spec
+    if isinstance(spec, Mapping):
+        return model_from_dict(spec)
+    raise InputError(f"audit_series: spec must be a model spec or a dict with a 'family'; got {type(spec).__name__}.")

@@ -1,0 +1,44 @@
+"""Compact data for the report's charts of one check: residual histogram, Q-Q points, autocorrelations.
+
+Pure numpy; the report (``tasks/report.py``) turns these numbers into SVG.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .diagnostics import acf, acf_band
+from .noise import NoiseLaw, NoiseParams
+
+__all__ = ["plot_data"]
+
+
+def plot_data(e: np.ndarray, law: NoiseLaw, params: NoiseParams, lags: int) -> dict:
+    """Compact data for the report: histogram of standardised residuals with the noise density,
+    Q-Q points and autocorrelations with their band."""
+    if law.discrete:
+        z = e / (np.std(e) or 1.0)
+        density = None
+    else:
+        z = (e - params.loc) / params.scale
+    lo, hi = -5.0, 5.0
+    edges = np.linspace(lo, hi, 26)
+    counts, _ = np.histogram(np.clip(z, lo, hi - 1e-9), bins=edges)
+    centres = 0.5 * (edges[1:] + edges[:-1])
+    if not law.discrete:
+        std = NoiseParams(law=params.law, loc=0.0, scale=1.0, shape=params.shape, estimated=())
+        density = law.pdf(centres, std)
+    k = min(z.size, 80)
+    probs = (np.arange(1, k + 1) - 0.5) / k
+    sample_q = np.quantile(z, probs)
+    theory_q = law.ppf(probs, NoiseParams(law=params.law, loc=0.0, scale=1.0, shape=params.shape, estimated=())) if not law.discrete else np.quantile(np.random.default_rng(0).standard_normal(4000), probs)
+    r = acf(e, lags)
+    return {
+        "hist_edges": edges.round(6).tolist(),
+        "hist_counts": counts.astype(int).tolist(),
+        "hist_density": None if density is None else np.asarray(density).round(6).tolist(),
+        "qq_theoretical": np.asarray(theory_q).round(6).tolist(),
+        "qq_sample": np.asarray(sample_q).round(6).tolist(),
+        "acf": np.asarray(r[1:]).round(6).tolist(),
+        "acf_band": float(acf_band(e.size)),
+    }
