@@ -52,9 +52,9 @@ from pydantic.json_schema import SkipJsonSchema
 from pydantic_core import PydanticCustomError
 
 from fitaudit.core._validation import Interval, Options
-from fitaudit.core.audit import AuditSettings
 from fitaudit.core.models import FAMILIES, get_family, model_from_dict
 from fitaudit.core.noise import NOISE_LAWS, get_law
+from fitaudit.core.settings import AuditSettings
 from fitaudit.core.vocabulary import PARTITION_KINDS, SETTING_BOUNDS
 
 from .._io import json_ready

@@ -129,8 +129,11 @@ _CONSTRUCTOR = yaml.constructor.SafeConstructor()
 
 
 def _scalar(node: yaml.ScalarNode) -> Any:
+    """The standard Python value of a scalar node (its text for ``str``, the commonest)."""
+    if node.tag == _TAG + "str":
+        return node.value
     try:
-        return _CONSTRUCTOR.construct_object(node)
+        return _CONSTRUCTOR.yaml_constructors[node.tag](_CONSTRUCTOR, node)
     except Exception:  # noqa: BLE001 - e.g. '!!int ""' raises IndexError inside PyYAML
         return Unreadable(node.value)
 
