@@ -345,8 +345,8 @@ def _default_registry(args: argparse.Namespace) -> str | None:
     if not path.is_file():
         return (
             f"fitaudit {args.command}: no registry given, and the registry_path setting names {str(path)!r}, "
-            "which is not a file. Give the registry file as an argument, or set PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH "
-            "(or registry_path under [integrations.fitaudit] in prefect.toml)."
+            "which is not a file. Give the registry file as an argument, or set "
+            "PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH (or registry_path under [integrations.fitaudit] in prefect.toml)."
         )
     args.registry = str(path)
     return None
