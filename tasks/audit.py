@@ -28,12 +28,16 @@ from .registry import Policy, RejectedEntry
 from .results import model_record
 from .workers import TimeLimitExceeded, run_local, time_limit
 
-__all__ = ["Outcome", "settings_for", "audit_input", "audit_inputs", "audit_batch", "audit_batch_spilled", "light_outcome", "restore_outcomes", "spill_path", "finalize", "rejected_outcome", "records", "audit_batch_task", "candidates_for", "candidate_jobs", "candidate_tables", "tables_task", "candidates_for_jobs", "candidates_task", "with_candidates", "calibration_for", "calibration_task"]
+__all__ = ["Outcome", "audit_input", "audit_inputs", "audit_batch", "audit_batch_spilled", "light_outcome", "restore_outcomes", "spill_path", "finalize", "rejected_outcome", "records", "audit_batch_task", "candidates_for", "candidate_jobs", "candidate_tables", "tables_task", "candidates_for_jobs", "candidates_task", "with_candidates", "calibration_for", "calibration_task"]
 
 
 @dataclass(frozen=True)
 class Outcome:
-    """One model's outcome in a run (before or after the fleet rules)."""
+    """One model's outcome in a run (before or after the fleet rules).
+
+    ``entry`` is the registry entry's plain view (``ModelEntry.to_dict()``, or the fields of a
+    rejected entry), as the results record takes it.
+    """
 
     entry: dict
     verdict: str
@@ -53,23 +57,11 @@ class Outcome:
         return str(self.entry.get("id"))
 
 
-def settings_for(entry: Mapping[str, Any], policy: Policy) -> AuditSettings:
-    """Audit settings of one model: the policy, the entry's overrides, its windows."""
-    over = dict(entry.get("settings") or {})
-    return AuditSettings(
-        level=float(over.get("level", policy.level)),
-        calibration=str(over.get("calibration", policy.calibration)),
-        replicates=int(over.get("replicates", policy.replicates)),
-        seed=int(policy.seed),
-        audit_window=int(entry["windows"]["audit"]),
-    )
-
-
-def _spec_text(entry: Mapping[str, Any]) -> str:
+def _spec_text(spec: Mapping[str, Any]) -> str:
     try:
-        return as_model(dict(entry.get("spec") or {})).describe()
+        return as_model(dict(spec)).describe()
     except (FitauditError, ValueError, TypeError):
-        return str(entry.get("spec"))
+        return str(spec)
 
 
 def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_limit_s: float = 0.0) -> Outcome:
@@ -79,7 +71,7 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
     (the local worker processes); reaching it gives an ``error`` verdict.
     """
     entry = item.entry
-    base = dict(entry=entry, lineage=item.lineage, history=item.history, spec_text=_spec_text(entry))
+    base = dict(entry=entry.to_dict(), lineage=item.lineage, history=item.history, spec_text=_spec_text(entry.spec))
     production = item.production
     prod_meta = None if production is None else {k: production[k] for k in ("version", "sha256", "created_at") if k in production}
     errors = [p["message"] for p in item.problems if p["severity"] == "error"]
@@ -92,7 +84,7 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
         return Outcome(verdict="insufficient", reasons=tuple(short), production=prod_meta, **base)
     t0 = time.perf_counter()
     try:
-        settings = settings_for(entry, policy)
+        settings = entry.audit_settings(policy)
         with time_limit(time_limit_s):
             result = audit_series_for(item, settings, cache)
     except TimeLimitExceeded as exc:
@@ -126,8 +118,8 @@ def audit_series_for(item: ModelInput, settings: AuditSettings, cache: Calibrati
     production = item.production
     return audit_series(
         item.y,
-        dict(item.entry["spec"]),
-        noise={"law": item.entry["noise"]["law"], "shape": item.entry["noise"].get("shape")},
+        dict(item.entry.spec),
+        noise=item.entry.noise_law(),
         exog=item.exog or None,
         production=None if production is None else production["params"],
         production_noise=None if production is None else production.get("noise"),
@@ -281,9 +273,8 @@ def calibration_for(batch_paths: Sequence[str], policy: Policy) -> CalibrationCa
                 continue
             entry = meta["entry"]
             production = meta.get("production")
-            n_obs = min(int(meta["lineage"]["rows_loaded"]), int(entry["windows"]["fit"]))
-            noise = {"law": entry["noise"]["law"], "shape": entry["noise"].get("shape")}
-            entries.append((dict(entry["spec"]), noise, settings_for(entry, policy), n_obs, bool(production and not production.get("error"))))
+            n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
+            entries.append((dict(entry.spec), entry.noise_law(), entry.audit_settings(policy), n_obs, bool(production and not production.get("error"))))
     return prepare_calibration(entries)
 
 
@@ -328,8 +319,8 @@ def candidates_for(path: str, model_ids: Sequence[str], policy: Policy, cache: C
         entry = item.entry
         try:
             found = search_candidates(
-                item.y, dict(entry["spec"]), noise={"law": entry["noise"]["law"], "shape": entry["noise"].get("shape")},
-                exog=item.exog or None, settings=settings_for(entry, policy), cache=cache,
+                item.y, dict(entry.spec), noise=entry.noise_law(),
+                exog=item.exog or None, settings=entry.audit_settings(policy), cache=cache,
             )
             out[item.model_id] = [c.to_dict() for c in found]
         except Exception as exc:  # the search is advice; its failure must not lose the verdict
@@ -369,13 +360,13 @@ def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list
             wanted = set(ids)
             for meta in batch_metadata(path):
                 entry = meta["entry"]
-                if entry["id"] not in wanted:
+                if entry.id not in wanted:
                     continue
-                settings = settings_for(entry, policy)
-                n_obs = min(int(meta["lineage"]["rows_loaded"]), int(entry["windows"]["fit"]))
-                noise = {"law": entry["noise"]["law"], "shape": entry["noise"].get("shape")}
-                trials = [(spec, noise) for spec in neighbour_specs(dict(entry["spec"]))]
-                trials += [(dict(entry["spec"]), {"law": law, "shape": None}) for law in CONTINUOUS_LAWS if law != noise["law"]]
+                settings = entry.audit_settings(policy)
+                n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
+                noise = entry.noise_law()
+                trials = [(spec, noise) for spec in neighbour_specs(dict(entry.spec))]
+                trials += [(dict(entry.spec), {"law": law, "shape": None}) for law in CONTINUOUS_LAWS if law != noise["law"]]
                 for spec, law in trials:
                     try:
                         model = as_model(spec)

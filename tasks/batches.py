@@ -27,7 +27,7 @@ from ._io import json_ready
 from .extracts import ExtractError, ExtractFingerprint, fingerprint_source, read_series, series_problems
 from .frequencies import FREQUENCY_DAYS
 from .params import ParameterStoreError, production_version
-from .registry import ModelEntry, Registry
+from .registry import ModelEntry, Registry, entry_from_dict
 
 __all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "ROW_KINDS"]
 
@@ -40,9 +40,9 @@ ROW_KINDS = frozenset({"duplicate-time", "unsorted", "off-grid", "gap", "non-fin
 
 @dataclass(frozen=True)
 class ModelInput:
-    """Everything one model's audit needs, read back from a batch file."""
+    """Everything one model's audit needs, read back from a batch file (the registry entry typed)."""
 
-    entry: dict
+    entry: ModelEntry
     y: np.ndarray
     time: np.ndarray
     exog: dict
@@ -54,7 +54,7 @@ class ModelInput:
     @property
     def model_id(self) -> str:
         """The model entry's id."""
-        return self.entry["id"]
+        return self.entry.id
 
 
 @dataclass(frozen=True)
@@ -167,8 +167,10 @@ def _write_batch(path: pathlib.Path, inputs: list[dict], arrays: dict[str, np.nd
 
 
 def batch_metadata(path: str | pathlib.Path) -> list[dict]:
-    """The JSON part of a staged batch (entries, production versions, lineage, problems), no data."""
-    return json.loads(pathlib.Path(path).with_suffix(".json").read_text())
+    """The JSON part of a staged batch (entries, production versions, lineage, problems), no data;
+    each ``entry`` is the typed registry entry again (:func:`fitaudit.tasks.registry.entry_from_dict`)."""
+    meta = json.loads(pathlib.Path(path).with_suffix(".json").read_text())
+    return [{**m, "entry": entry_from_dict(m["entry"])} for m in meta]
 
 
 def read_batch(path: str | pathlib.Path) -> list[ModelInput]:

@@ -21,7 +21,7 @@ from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.candidates import search_candidates
 
 from .archive import append_chain
-from .audit import audit_series_for, settings_for
+from .audit import audit_series_for
 from .batches import ModelInput, read_batch
 from .params import promote, write_version
 from .registry import Policy
@@ -58,13 +58,13 @@ def refit_input(
 ) -> dict:
     """Refit one staged model and act on the result; returns a JSON-ready record."""
     entry = item.entry
-    record: dict[str, Any] = {"model_id": item.model_id, "spec": entry.get("spec"), "noise": entry.get("noise")}
+    record: dict[str, Any] = {"model_id": item.model_id, "spec": entry.spec, "noise": entry.noise_law()}
     problems = [p["message"] for p in item.problems]
     if problems:
         record.update(status="not refitted", reasons=problems)
         return record
     cache = cache if cache is not None else CalibrationCache()
-    settings = settings_for(entry, policy)
+    settings = entry.audit_settings(policy)
     result = audit_series_for(item, settings, cache)
     record["before"] = _check_summary(result.production)
     record["after"] = _check_summary(result.refit)
@@ -74,7 +74,7 @@ def refit_input(
         record["status"] = result.refit.status
         return record
     if result.refit.passed():
-        fitted_noise = dict(entry["noise"])
+        fitted_noise = entry.noise_law()
         if fitted_noise.get("shape") is None and result.refit.noise.get("shape") is not None:
             fitted_noise["shape"] = result.refit.noise["shape"]
         lineage = {
@@ -86,7 +86,7 @@ def refit_input(
             "loglik": result.fitted.get("loglik"),
         }
         version = write_version(
-            archive_root, item.model_id, spec=entry["spec"], noise=fitted_noise, params=result.fitted["params"],
+            archive_root, item.model_id, spec=entry.spec, noise=fitted_noise, params=result.fitted["params"],
             status="candidate", created_by=operator, lineage=lineage, note="refitted by fitaudit; the refit check passed",
         )
         record["candidate_version"] = version.version
@@ -106,10 +106,10 @@ def refit_input(
             record["status"] = "awaiting approval"
         return record
     candidates = search_candidates(
-        item.y, dict(entry["spec"]), noise={"law": entry["noise"]["law"], "shape": entry["noise"].get("shape")},
+        item.y, dict(entry.spec), noise=entry.noise_law(),
         exog=item.exog or None, settings=settings, cache=cache,
     )
-    record.update(status="respecify", spec_text=as_model(dict(entry["spec"])).describe(), candidates=[c.to_dict() for c in candidates])
+    record.update(status="respecify", spec_text=as_model(dict(entry.spec)).describe(), candidates=[c.to_dict() for c in candidates])
     return record
 
 
