@@ -135,7 +135,7 @@ def audit_series(
         try:
             shape = (production_noise or {}).get("shape") if law.has_shape else None
             law_prod = as_noise_law(law, shape=shape) if shape is not None else law
-            if law_prod.has_shape and getattr(law_prod, "shape", None) is None and not law_prod.discrete:
+            if law_prod.needs_stored_shape:
                 raise InputError(
                     f"{label}: the {law.name} law's shape is estimated, but the production version stores none; "
                     "fix the shape in the registry (e.g. df: 5) or store it with the parameter version."
@@ -157,7 +157,7 @@ def audit_series(
         and prod_check.ok
         and not prod_check.passed(settings.level)
         and prod_errors is not None
-        and not law.discrete
+        and law.iid_errors
     ):
         try:
             # the errors since the last defined one-step forecast: a break at the start of the

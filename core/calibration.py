@@ -413,8 +413,11 @@ def refit_table(law, n: int, s: int, location: bool, alphas, betas, scaling: str
     scores the PIT values in ``s`` equiprobable cells and, with a ``gate``, on its partitions.
     Pivotal for location-scale laws (the table does not depend on the true location and scale).
     """
-    if law.discrete:
-        raise InputError(f"refit_table: the {law.name} law is discrete; count checks use production_table.")
+    if not law.pivotal:
+        raise InputError(
+            f"refit_table: the {law.name} law has no pivotal null after re-estimation (its law depends on the "
+            "predictive means); count checks use production_table."
+        )
     skey = shape_key(shape)
     estimated = "shape estimated" if (law.has_shape and law.shape is None) else "shape fixed"
     key = (
@@ -521,7 +524,7 @@ def prepare_calibration(
             if has_production and n_obs >= settings.audit_window:
                 n = settings.audit_window
                 production_table(n, number_of_cells(n, 0), settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache, gate=settings.gate(n, 0))
-            if settings.calibration == "simulated" and not law.discrete and not (law.has_shape and law.shape is None):
+            if settings.calibration == "simulated" and law.pivotal and not (law.has_shape and law.shape is None):
                 n = (settings.fit_window or n_obs) - model.presample()
                 location = model.has_location()
                 s = number_of_cells(n, law.n_estimated(location))

@@ -18,11 +18,13 @@ import numpy as np
 from .audit import audit_series
 from .calibration import CalibrationCache
 from .models import ForecastModel, as_model, model_from_dict
+from .noise import NOISE_LAWS
 from .settings import AuditSettings
 
 __all__ = ["Candidate", "neighbour_specs", "search_candidates"]
 
-CONTINUOUS_LAWS = ("normal", "student-t", "laplace", "logistic")
+#: The laws tried by default for a continuous series: every registered law that is not a count law.
+CONTINUOUS_LAWS = tuple(name for name, law in NOISE_LAWS.items() if not law.discrete)
 
 
 @dataclass(frozen=True)

@@ -203,8 +203,8 @@ def locate_change(errors, noise="normal", params=None, permutations: int = 499, 
     h = max(s, int(np.ceil(trim * n)))
     if n < 2 * h + 1:
         raise InsufficientDataError(f"locate_change: {n} errors are too few to compare two samples of at least {h} each.")
-    fitted = params if params is not None else law.fit(e, location=True)
-    idx = cell_index(law.cdf(e, fitted), s)
+    fitted = params if params is not None else law.fit_errors(e, location=True)
+    idx = cell_index(law.pit(e, fitted), s)
     profile_inner = split_statistics(idx, s, h)
     k_best = int(np.argmax(profile_inner))
     t_obs = float(profile_inner[k_best])

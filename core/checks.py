@@ -112,7 +112,7 @@ def _score(
         # chi-square(s_p - 1) per partition, with the Nikulin-Rao-Robson term for estimated noise
         # parameters; Bonferroni over the partitions (a fast screen: liberal, docs/validation.md)
         extras = np.zeros(len(gate.partitions))
-        if kind == "refit" and not law.discrete and k > 0:
+        if kind == "refit" and law.has_fisher_information and k > 0:
             info = law.fisher_information(nparams)
             for i, part in enumerate(gate.partitions):
                 grad = law.cell_probability_gradient(np.asarray(part.boundaries) if not part.equiprobable else part.s, nparams)
@@ -129,7 +129,7 @@ def _score(
         gate_crit = gate_reference
         r_obs = float(standardised_maximum(g_tot, gate_reference))
         map_extra = 0.0
-        if kind == "refit" and not law.discrete and k > 0:
+        if kind == "refit" and law.has_fisher_information and k > 0:
             map_extra = nrr_term(counts, law.fisher_information(nparams), law.cell_probability_gradient(s, nparams))
             calib["nrr_term"] = map_extra
         c = chi2_critical_value(half, s - 1)
@@ -180,7 +180,7 @@ def _score(
     effect_acf = float(np.max(np.abs(r[1:]))) if lags >= 1 else float("nan")
     lb_dict = lb.to_dict()
     p_ind = lb.p_value
-    if kind == "production" and settings.calibration != "asymptotic" and not law.discrete:
+    if kind == "production" and settings.calibration != "asymptotic" and law.iid_errors:
         # frozen parameters: the errors are i.i.d. under the null, so the statistic's exact null is simulated
         table_lb = independence_table(n, lags, settings.replicates, settings.seed, cache)
         p_ind = table_lb.p_value(lb.statistic)
@@ -273,14 +273,7 @@ def _check_inputs(y: np.ndarray, exog: Mapping[str, np.ndarray] | None, law: Noi
                 f"{label}: {name} holds values {side} their squares leave the range of double precision and no fit "
                 "can run. Rescale the column in the extract (e.g. record thousands, millions or millionths of the unit)."
             )
-    if law.discrete:
-        bad = np.flatnonzero((y < 0) | (y != np.round(y)))
-        if bad.size:
-            raise InputError(
-                f"{label}: the {law.name} noise law needs counts (non-negative integers), but {bad.size} value(s) are not, "
-                f"first at position {int(bad[0])} ({y[bad[0]]:g}). Register a continuous noise law (normal, student-t, "
-                "laplace, logistic) for this series, or correct the extract."
-            )
+    law.check_observations(y, label)
 
 
 def _production_check(model, y, exog, params, law_prod: NoiseLaw, settings, cache, label) -> tuple[CheckResult, np.ndarray | None, NoiseParams | None]:
@@ -302,19 +295,9 @@ def _production_check(model, y, exog, params, law_prod: NoiseLaw, settings, cach
             )
         if not np.isfinite(tail).all():
             raise InputError(f"{label}: the production parameters give infinite forecast errors; check the parameter version.")
-        if law_prod.discrete:
-            mean = y[-w:] - tail
-            nparams = law_prod.fit_counts(y[-w:], mean)
-            u = law_prod.randomized_pit(y[-w:], mean, nparams, key_rng(settings.seed, "pit", "production", _digest(y)))
-        else:
-            sigma2 = float(params["sigma2"])
-            if not (np.isfinite(sigma2) and sigma2 > 0):
-                raise InputError(
-                    f"{label}: the production parameter version's sigma2 = {sigma2:g} is not a positive variance; "
-                    "refit the model and promote a new parameter version."
-                )
-            nparams = law_prod.from_variance(sigma2)
-            u = law_prod.cdf(tail, nparams)
+        nparams = law_prod.frozen_params(params, tail, y=y[-w:], label=label)
+        # the generator is used by count laws only (the randomised PIT), seeded by the data
+        u = law_prod.pit(tail, nparams, key_rng(settings.seed, "pit", "production", _digest(y)), y=y[-w:])
         check = score_frozen(tail, u, law_prod, nparams, model.seasonal_period(), settings, cache, window)
         return check, np.asarray(errors, dtype=float), nparams
     except (FitauditError, ValueError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError) as exc:
@@ -346,20 +329,17 @@ def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label) -> tuple
         if not np.isfinite(e).all():
             raise InputError(f"{label}: the refit produced infinite residuals; the series may contain extreme values.")
         location = model.has_location()
-        if law.discrete:
-            mean = yf[defined] - e
-            nparams = law.fit_counts(yf[defined], mean)
-            k = len(nparams.estimated)
-            u = law.randomized_pit(yf[defined], mean, nparams, key_rng(settings.seed, "pit", "refit", _digest(y)))
-            table_for = None
+        nparams = law.fit_errors(e, location, y=yf[defined])
+        k = len(nparams.estimated)
+        u = law.pit(e, nparams, key_rng(settings.seed, "pit", "refit", _digest(y)), y=yf[defined])
+        table_for = None
+        if not law.pivotal:
+            # no pivotal null after re-estimation (a count law's depends on the means): the
+            # randomised PIT values are scored against the exact null of frozen parameters
             if settings.calibration != "asymptotic":
                 def table_for(n, s, gate):
                     return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache, gate=gate)
         else:
-            nparams = law.fit(e, location=location)
-            k = law.n_estimated(location)
-            u = law.cdf(e, nparams)
-            table_for = None
             if settings.calibration == "simulated":
                 def table_for(n, s, gate):
                     return refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=nparams.shape, cache=cache, gate=gate)
@@ -386,8 +366,8 @@ def _bootstrap(model, fit, law: NoiseLaw, nparams: NoiseParams, yf, xf, n: int, 
                 f2 = model.fit(ystar, xf)
             e2 = np.asarray(f2.residuals, dtype=float)
             e2 = e2[~np.isnan(e2)]
-            p2 = law.fit(e2, location=location)
-            u2 = law.cdf(e2, p2)
+            p2 = law.fit_errors(e2, location)
+            u2 = law.pit(e2, p2)
             counts = cell_counts(u2, s)
             grid = divergence_map(counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r).statistic
             return grid, gate.statistics(u2)

@@ -279,24 +279,76 @@ class NoiseLaw:
     name : str
         Registry name (a key of :data:`NOISE_LAWS`).
     discrete : bool
-        True for count laws (``poisson``, ``negative-binomial``).
+        True for count laws (``poisson``, ``negative-binomial``); descriptive only: callers use the
+        protocol below and the capability flags, never this attribute, to decide what to do.
     has_shape : bool
         Whether the law has a shape parameter.
     shape : float or None
         The fixed shape, or None.
+    pivotal : bool
+        The PIT of residuals whose noise parameters were re-estimated has a null distribution that
+        does not depend on the true parameters, simulated from standard draws refitted by the same
+        estimator (:func:`fitaudit.core.calibration.refit_table`, the parametric bootstrap).  False
+        for count laws, whose law depends on a predictive mean per time point.
+    has_fisher_information : bool
+        The per-observation Fisher information and the cell-probability gradients exist (the
+        Nikulin-Rao-Robson term, docs/method.md §5.4).  False for count laws: their cells are
+        cells of the randomised PIT, whose probabilities do not move with the parameters in the
+        way the term assumes.
+    iid_errors : bool
+        The one-step errors of a correct model with frozen parameters are identically distributed,
+        so the Ljung-Box statistic of the errors has a null simulated from i.i.d. draws and a split
+        scan of their PIT values locates a change (:func:`fitaudit.core.change.locate_change`).
+        False for count laws, whose error variance follows the mean.
 
     Notes
     -----
-    Continuous laws implement the location-scale methods (``fit``, ``fit_batch``, ``cdf``,
-    ``ppf``, ``logpdf``, ``pdf``, ``cdf_batch``, ``sample``, ``sample_standard``,
-    ``from_variance``, ``fisher_information``, ``cell_probability_gradient``); count laws
-    implement ``fit_counts``, ``fit_counts_batch``, ``randomized_pit``, ``sample_counts`` and
-    ``logpmf``.  Calling a method of the other kind raises :class:`SpecificationError`.
+    **The protocol.**  Every law implements the methods callers need, with one signature, in terms
+    of the one-step errors ``e_t = y_t - mean_t`` (``y`` the observations, ``mean`` the model's
+    one-step forecasts):
+
+    ``fit_errors(errors, location, y=None)``
+        maximum-likelihood noise parameters from the errors (count laws: given the means);
+    ``frozen_params(production, errors, y=None)``
+        the parameters of a frozen production version (variance ``sigma2`` and stored shape);
+    ``pit(errors, params, rng=None, y=None)``
+        probability integral transform: ``F((e - loc) / scale)`` for location-scale laws, the
+        randomised PIT of docs/method.md §6.2 for count laws;
+    ``simulate(mean, rng, params)``
+        observations with the given one-step means;
+    ``check_observations(y, label)``
+        refuse observations the law cannot describe (non-counts under a count law);
+    ``standardise(errors, params)``, ``reference_quantiles(probs, params)``,
+    ``reference_density(z, params)``
+        the report's residual histogram and Q-Q plot;
+    ``estimated_names(location)``, ``n_estimated(location)``
+        the estimated parameters.
+
+    The errors are passed, and the observations only where a law needs them, so callers use
+    the errors they have as they are (no round trip through ``y - (y - e)``).  Location-scale
+    laws add ``fit``, ``fit_batch``, ``from_variance``, ``cdf``, ``cdf_batch``, ``ppf``,
+    ``logpdf``, ``pdf``, ``sample``, ``sample_standard``, ``fisher_information``,
+    ``cell_probabilities`` and ``cell_probability_gradient``; count laws add ``fit_counts``,
+    ``fit_counts_batch``, ``randomized_pit``, ``sample_counts`` and ``logpmf``.  Asking a law
+    for a method of the other kind raises :class:`SpecificationError` (also an
+    ``AttributeError``, so ``hasattr`` answers False).
     """
 
     name: ClassVar[str] = ""
+    kind: ClassVar[str] = ""
     discrete: ClassVar[bool] = False
     has_shape: ClassVar[bool] = False
+    pivotal: ClassVar[bool] = False
+    has_fisher_information: ClassVar[bool] = False
+    iid_errors: ClassVar[bool] = False
+    #: Methods only one kind of law has, and the hint given when the other kind is asked for them.
+    _KIND_METHODS: ClassVar[dict[str, tuple[str, ...]]] = {
+        "continuous location-scale": (
+            "fit", "fit_batch", "from_variance", "cdf", "cdf_batch", "ppf", "logpdf", "pdf", "sample",
+            "sample_standard", "fisher_information", "cell_probabilities", "cell_probability_gradient",
+        ),
+        "count": ("fit_counts", "fit_counts_batch", "randomized_pit", "sample_counts", "logpmf"),
+    }
 
     def __init__(self, shape: float | None = None):
         if shape is not None:
@@ -315,6 +367,17 @@ class NoiseLaw:
     def __hash__(self) -> int:
         return hash((self.name, self.shape))
 
+    def __getattr__(self, method: str):
+        # only reached for names the law does not have: explain the methods of the other kind
+        for kind, methods in NoiseLaw._KIND_METHODS.items():
+            if method in methods and kind != self.kind:
+                hint = ", ".join(methods)
+                raise _WrongKindError(
+                    f"{method} does not apply to the {self.name!r} noise law, a {self.kind} law; {kind} laws use "
+                    f"{hint}. Every law has fit_errors, frozen_params, pit and simulate."
+                )
+        raise AttributeError(f"{type(self).__name__!r} object has no attribute {method!r}")
+
     def _check_shape(self, shape) -> float:
         raise NotImplementedError  # laws with a shape override this
 
@@ -328,11 +391,12 @@ class NoiseLaw:
         negative-binomial size is estimated.
         """
         names = ["loc"] if location else []
-        if not self.discrete:
-            names.append("scale")
+        names.extend(self._free_scale)
         if self.has_shape and self.shape is None:
             names.append("shape")
         return tuple(names)
+
+    _free_scale: ClassVar[tuple[str, ...]] = ()
 
     def n_estimated(self, location: bool) -> int:
         """k, the number of noise parameters estimated from the residuals (docs/method.md §8.2).
@@ -349,6 +413,17 @@ class NoiseLaw:
         """
         return len(self.estimated_names(location))
 
+    @property
+    def needs_stored_shape(self) -> bool:
+        """True when frozen parameters of this law need a stored shape.
+
+        A location-scale law whose shape is estimated (student-t without fixed degrees of freedom)
+        takes its scale from the production variance and cannot estimate a shape without
+        refitting, so the production version must store it; a count law estimates a missing
+        negative-binomial size from the audit window given the predictive means.
+        """
+        return False
+
     # -- guards ------------------------------------------------------------------------------
     def _check_params(self, params: NoiseParams, owner: str) -> NoiseParams:
         if not isinstance(params, NoiseParams):
@@ -363,83 +438,118 @@ class NoiseLaw:
             raise InputError(f"{self.name} {owner}: the {self.name!r} law has no shape; params carry shape={params.shape!r}.")
         return params
 
-    def _wrong_kind(self, method: str) -> SpecificationError:
-        if self.discrete:
-            hint = "count laws use fit_counts, fit_counts_batch, randomized_pit, sample_counts and logpmf"
-        else:
-            hint = "continuous laws use fit, fit_batch, cdf, ppf, logpdf, pdf, cdf_batch, sample and sample_standard"
-        kind = "count" if self.discrete else "continuous location-scale"
-        return SpecificationError(f"{method} does not apply to the {self.name!r} noise law, a {kind} law; {hint}.")
+    # -- the protocol every law implements ---------------------------------------------------
+    def fit_errors(self, errors, location: bool = True, *, y=None) -> NoiseParams:
+        """Maximum-likelihood noise parameters from one-step errors.
 
-    # -- location-scale interface (continuous laws override) ---------------------------------
-    def fit(self, x, location: bool = True) -> NoiseParams:
-        """Maximum-likelihood fit to residuals (continuous laws); see the subclasses."""
-        raise self._wrong_kind("fit")
+        Parameters
+        ----------
+        errors : array_like, 1-D
+            Finite one-step errors ``e_t = y_t - mean_t``.
+        location : bool, default True
+            Whether the location counts as estimated (the model has an intercept or mean).
+        y : array_like, 1-D, optional
+            The observations; count laws need them (the means are ``y - errors``).
 
-    def fit_batch(self, X, location: bool = True):
-        """Row-wise maximum-likelihood fit (continuous laws); see the subclasses."""
-        raise self._wrong_kind("fit_batch")
+        Returns
+        -------
+        NoiseParams
+            With ``estimated`` naming what was estimated; ``len(estimated)`` is the k of the
+            number-of-cells rule (docs/method.md §8.2).
+        """
+        raise NotImplementedError
 
-    def from_variance(self, sigma2: float, loc: float = 0.0, shape: float | None = None) -> NoiseParams:
-        """Frozen parameters with a given variance (continuous laws); see the subclasses."""
-        raise self._wrong_kind("from_variance")
+    def frozen_params(self, production: Mapping[str, float], errors=None, *, y=None, label: str | None = None) -> NoiseParams:
+        """Noise parameters of a frozen production version, nothing re-estimated that it fixes.
 
-    def cdf(self, x, params: NoiseParams):
-        """Distribution function (continuous laws)."""
-        raise self._wrong_kind("cdf")
+        Location-scale laws: the law with the version's innovation variance ``production["sigma2"]``
+        (:meth:`from_variance`).  Count laws: the law with means ``y - errors``; a negative-binomial
+        size that is not fixed is estimated on the window given the means.
 
-    def ppf(self, u, params: NoiseParams):
-        """Quantile function (continuous laws)."""
-        raise self._wrong_kind("ppf")
+        Parameters
+        ----------
+        production : mapping of str to float
+            The production version's parameters.
+        errors : array_like, 1-D
+            The audit window's one-step errors.
+        y : array_like, 1-D, optional
+            The window's observations (count laws).
+        label : str, optional
+            The model's name, for messages.
 
-    def logpdf(self, x, params: NoiseParams):
-        """Log density (continuous laws)."""
-        raise self._wrong_kind("logpdf")
+        Returns
+        -------
+        NoiseParams
+        """
+        raise NotImplementedError
 
-    def pdf(self, x, params: NoiseParams):
-        """Density (continuous laws)."""
-        raise self._wrong_kind("pdf")
+    def pit(self, errors, params: NoiseParams, rng: np.random.Generator | None = None, *, y=None) -> np.ndarray:
+        """Probability integral transform of one-step errors under the law (docs/method.md §6).
 
-    def cdf_batch(self, X, loc, scale, shape=None):
-        """Row-wise distribution function (continuous laws)."""
-        raise self._wrong_kind("cdf_batch")
+        Location-scale laws: ``u_t = F0((e_t - loc) / scale; shape)``, i.i.d. U(0, 1) under the
+        law; ``rng`` and ``y`` are not used.  Count laws: the randomised PIT
+        ``u_t = F_t(y_t - 1) + V_t P_t(Y = y_t)`` with means ``y - errors`` [4]_, exactly
+        i.i.d. U(0, 1) under the law.
 
-    def sample(self, size, rng: np.random.Generator, params: NoiseParams):
-        """Random draws (continuous laws)."""
-        raise self._wrong_kind("sample")
+        Parameters
+        ----------
+        errors : array_like
+            One-step errors.
+        params : NoiseParams
+        rng : numpy.random.Generator, optional
+            Seeded generator (count laws).
+        y : array_like, optional
+            The observations (count laws).
 
-    def sample_standard(self, size, rng: np.random.Generator, shape: float | None = None):
-        """Draws of the standard law (continuous laws)."""
-        raise self._wrong_kind("sample_standard")
+        Returns
+        -------
+        ndarray
+            Values in [0, 1], shaped like ``errors``.
+        """
+        raise NotImplementedError
 
-    def fisher_information(self, params: NoiseParams):
-        """Per-observation Fisher information (continuous laws)."""
-        raise self._wrong_kind("fisher_information")
+    def simulate(self, mean, rng: np.random.Generator, params: NoiseParams) -> np.ndarray:
+        """Observations ``y_t`` with one-step means ``mean_t`` drawn from the law.
 
-    def cell_probability_gradient(self, s: int, params: NoiseParams):
-        """Derivatives of equiprobable-cell probabilities (continuous laws)."""
-        raise self._wrong_kind("cell_probability_gradient")
+        Location-scale laws: ``mean_t + loc + scale Z_t``; count laws: counts with mean ``mean_t``.
 
-    # -- count interface (count laws override) -----------------------------------------------
-    def fit_counts(self, y, mean) -> NoiseParams:
-        """Maximum-likelihood fit given predictive means (count laws)."""
-        raise self._wrong_kind("fit_counts")
+        Parameters
+        ----------
+        mean : array_like
+            One-step means (positive for count laws), any shape.
+        rng : numpy.random.Generator
+        params : NoiseParams
 
-    def fit_counts_batch(self, Y, mean):
-        """Row-wise fit given predictive means (count laws)."""
-        raise self._wrong_kind("fit_counts_batch")
+        Returns
+        -------
+        ndarray of float
+            Shaped like ``mean``.
+        """
+        raise NotImplementedError
 
-    def randomized_pit(self, y, mean, params: NoiseParams, rng: np.random.Generator):
-        """Randomised probability integral transform (count laws)."""
-        raise self._wrong_kind("randomized_pit")
+    def check_observations(self, y: np.ndarray, label: str) -> None:
+        """Raise :class:`InputError`, naming ``label`` and the fix, for observations the law
+        cannot describe (count laws: values that are not non-negative integers)."""
 
-    def sample_counts(self, mean, rng: np.random.Generator, params: NoiseParams):
-        """Random counts (count laws)."""
-        raise self._wrong_kind("sample_counts")
+    def standardise(self, errors, params: NoiseParams) -> np.ndarray:
+        """Errors on the scale of the standard law, for the report's histogram and Q-Q plot.
 
-    def logpmf(self, y, mean, params: NoiseParams):
-        """Log probability of counts (count laws)."""
-        raise self._wrong_kind("logpmf")
+        Location-scale laws: ``(e - loc) / scale``; count laws: ``e / sd(e)`` (1 when the
+        errors are constant).
+        """
+        raise NotImplementedError
+
+    def reference_quantiles(self, probs, params: NoiseParams) -> np.ndarray:
+        """Quantiles of the reference law of :meth:`standardise` at ``probs`` (the Q-Q plot)."""
+        raise NotImplementedError
+
+    def reference_density(self, z, params: NoiseParams) -> np.ndarray | None:
+        """Density of the reference law of :meth:`standardise` at ``z``; None when there is none."""
+        return None
+
+
+class _WrongKindError(SpecificationError, AttributeError):
+    """A method of the other kind of law (a location-scale method asked of a count law, or back)."""
 
 
 # --------------------------------------------------------------------------------------------
@@ -452,6 +562,61 @@ class _LocationScaleLaw(NoiseLaw):
     ``_std_variance``, ``_std_fisher``, ``_draw_standard``) and the estimator ``_fit_rows``.
     """
 
+    kind = "continuous location-scale"
+    pivotal = True
+    has_fisher_information = True
+    iid_errors = True
+    _free_scale = ("scale",)
+
+    # -- the protocol (see NoiseLaw) ---------------------------------------------------------
+    @property
+    def needs_stored_shape(self) -> bool:
+        """True for a law whose shape is estimated (see :attr:`NoiseLaw.needs_stored_shape`)."""
+        return self.has_shape and self.shape is None
+
+    def fit_errors(self, errors, location: bool = True, *, y=None) -> NoiseParams:
+        """:meth:`fit` of the errors (``y`` is not used); see :meth:`NoiseLaw.fit_errors`."""
+        return self.fit(errors, location=location)
+
+    def frozen_params(self, production: Mapping[str, float], errors=None, *, y=None, label: str | None = None) -> NoiseParams:
+        """The law with the production variance: ``from_variance(production["sigma2"])``.
+
+        See :meth:`NoiseLaw.frozen_params`.  A variance that is not finite and positive is an
+        :class:`InputError` naming ``label`` and the fix.
+        """
+        sigma2 = float(production["sigma2"])
+        if not (np.isfinite(sigma2) and sigma2 > 0):
+            raise InputError(
+                f"{label + ': ' if label else ''}the production parameter version's sigma2 = {sigma2:g} is not a positive variance; "
+                "refit the model and promote a new parameter version."
+            )
+        return self.from_variance(sigma2)
+
+    def pit(self, errors, params: NoiseParams, rng: np.random.Generator | None = None, *, y=None) -> np.ndarray:
+        """``F0((e - loc) / scale; shape)``, i.e. :meth:`cdf` of the errors; see :meth:`NoiseLaw.pit`."""
+        return self.cdf(errors, params)
+
+    def simulate(self, mean, rng: np.random.Generator, params: NoiseParams) -> np.ndarray:
+        """``mean + loc + scale Z`` with ``Z`` from the standard law; see :meth:`NoiseLaw.simulate`."""
+        mean = np.asarray(mean, dtype=float)
+        return mean + self.sample(mean.shape, rng, params)
+
+    def standardise(self, errors, params: NoiseParams) -> np.ndarray:
+        """``(e - loc) / scale``; see :meth:`NoiseLaw.standardise`."""
+        return (errors - params.loc) / params.scale
+
+    def _standard(self, params: NoiseParams) -> NoiseParams:
+        return NoiseParams(law=params.law, loc=0.0, scale=1.0, shape=params.shape, estimated=())
+
+    def reference_quantiles(self, probs, params: NoiseParams) -> np.ndarray:
+        """Quantiles of the standard law at ``params.shape``: ``F0^{-1}(p; shape)``."""
+        return self.ppf(probs, self._standard(params))
+
+    def reference_density(self, z, params: NoiseParams) -> np.ndarray:
+        """Density of the standard law at ``params.shape``: ``f0(z; shape)``."""
+        return self.pdf(z, self._standard(params))
+
+    # -- maximum likelihood ------------------------------------------------------------------
     def fit(self, x, location: bool = True) -> NoiseParams:
         """Maximum-likelihood fit of the law to one residual series.
 
@@ -736,19 +901,8 @@ class _LocationScaleLaw(NoiseLaw):
             column sums to 0.
         """
         self._check_params(params, "cell_probability_gradient")
-        if isinstance(s, (int, np.integer)) and not isinstance(s, bool):
-            if s < 2:
-                raise InputError(f"{self.name} cell_probability_gradient: s must be an int >= 2; got {s!r}.")
-            interior = np.arange(1, s) / s
-        else:
-            b = np.asarray(s, dtype=float) if not isinstance(s, (bool, str)) else np.array([])
-            if b.ndim != 1 or b.size < 3 or b[0] != 0.0 or b[-1] != 1.0 or np.any(np.diff(b) <= 0):
-                raise InputError(
-                    f"{self.name} cell_probability_gradient: give the number of equiprobable cells (an int >= 2) or "
-                    f"increasing PIT boundaries from 0 to 1; got {s!r}."
-                )
-            interior = b[1:-1]
-            s = b.size - 1
+        interior = self._interior_boundaries(s, "cell_probability_gradient")
+        s = interior.size + 1
         z = self._std_ppf(interior, params.shape)  # interior boundaries
         f = np.exp(self._std_logpdf(z, params.shape))
         dF = np.zeros((s + 1, 3))
@@ -758,6 +912,50 @@ class _LocationScaleLaw(NoiseLaw):
             dF[1:s, 2] = self._std_cdf_shape_derivative(z, params.shape)
         dq = np.diff(dF, axis=0)
         return dq[:, self._indices(params)]
+
+    def cell_probabilities(self, s, params: NoiseParams, at: NoiseParams | None = None) -> np.ndarray:
+        """Probabilities under ``at`` of the cells that ``params`` makes equiprobable (or sets).
+
+        The cells are ``[c_{j-1}, c_j)`` with ``c_j = F^{-1}(b_j; params)``; their probabilities
+        under ``at`` are ``q_j = F(c_j; at) - F(c_{j-1}; at)``, equal to ``b_j - b_{j-1}`` when
+        ``at`` is ``params``.  :meth:`cell_probability_gradient` is the derivative of ``q`` in the
+        estimated parameters of ``at``, at ``at = params``.
+
+        Parameters
+        ----------
+        s : int or array_like
+            Number of equiprobable cells (>= 2), or the PIT boundaries ``0 = b_0 < ... < b_s = 1``.
+        params : NoiseParams
+            The parameters that fix the cells.
+        at : NoiseParams, optional
+            The parameters under which the cells are measured; ``params`` when omitted.
+
+        Returns
+        -------
+        ndarray (s,)
+            Non-negative, summing to 1.
+        """
+        self._check_params(params, "cell_probabilities")
+        at = params if at is None else self._check_params(at, "cell_probabilities")
+        interior = self._interior_boundaries(s, "cell_probabilities")
+        c = params.loc + params.scale * self._std_ppf(interior, params.shape)
+        inner = self._std_cdf((c - at.loc) / at.scale, at.shape)
+        return np.diff(np.concatenate([[0.0], np.asarray(inner, dtype=float), [1.0]]))
+
+    def _interior_boundaries(self, s, owner: str) -> np.ndarray:
+        """The interior PIT boundaries ``b_1 < ... < b_{s-1}`` of ``s`` equiprobable cells or of
+        the boundaries ``0 = b_0 < ... < b_s = 1``."""
+        if isinstance(s, (int, np.integer)) and not isinstance(s, bool):
+            if s < 2:
+                raise InputError(f"{self.name} {owner}: s must be an int >= 2; got {s!r}.")
+            return np.arange(1, s) / s
+        b = np.asarray(s, dtype=float) if not isinstance(s, (bool, str)) else np.array([])
+        if b.ndim != 1 or b.size < 3 or b[0] != 0.0 or b[-1] != 1.0 or np.any(np.diff(b) <= 0):
+            raise InputError(
+                f"{self.name} {owner}: give the number of equiprobable cells (an int >= 2) or "
+                f"increasing PIT boundaries from 0 to 1; got {s!r}."
+            )
+        return b[1:-1]
 
     # -- hooks for subclasses ----------------------------------------------------------------
     def _std_cdf(self, z, shape):
@@ -1082,7 +1280,59 @@ class StudentTLaw(_NewtonFittedLaw):
 class _CountLaw(NoiseLaw):
     """Count laws with a predictive mean per time point (docs/method.md §6.2)."""
 
+    kind = "count"
     discrete = True
+
+    # -- the protocol (see NoiseLaw) ---------------------------------------------------------
+    def _observations(self, y, owner: str) -> np.ndarray:
+        if y is None:
+            raise InputError(
+                f"{self.name} {owner}: a count law needs the observations y as well as the errors "
+                "(its law depends on the mean y - errors); pass y=..."
+            )
+        return np.asarray(y, dtype=float)
+
+    def fit_errors(self, errors, location: bool = True, *, y=None) -> NoiseParams:
+        """:meth:`fit_counts` of ``y`` given the means ``y - errors`` (nothing else depends on
+        ``location``); see :meth:`NoiseLaw.fit_errors`."""
+        y = self._observations(y, "fit_errors")
+        return self.fit_counts(y, y - errors)
+
+    def frozen_params(self, production: Mapping[str, float], errors=None, *, y=None, label: str | None = None) -> NoiseParams:
+        """The law at means ``y - errors``: :meth:`fit_counts`, which estimates a size that is not
+        fixed (negative binomial) and nothing else; see :meth:`NoiseLaw.frozen_params`."""
+        y = self._observations(y, "frozen_params")
+        return self.fit_counts(y, y - errors)
+
+    def pit(self, errors, params: NoiseParams, rng: np.random.Generator | None = None, *, y=None) -> np.ndarray:
+        """:meth:`randomized_pit` of ``y`` with means ``y - errors``; see :meth:`NoiseLaw.pit`."""
+        y = self._observations(y, "pit")
+        return self.randomized_pit(y, y - errors, params, rng)
+
+    def simulate(self, mean, rng: np.random.Generator, params: NoiseParams) -> np.ndarray:
+        """:meth:`sample_counts` with the given means; see :meth:`NoiseLaw.simulate`."""
+        return self.sample_counts(mean, rng, params)
+
+    def check_observations(self, y: np.ndarray, label: str) -> None:
+        """Refuse values that are not non-negative integers, naming the first and the fix."""
+        bad = np.flatnonzero((y < 0) | (y != np.round(y)))
+        if bad.size:
+            raise InputError(
+                f"{label}: the {self.name} noise law needs counts (non-negative integers), but {bad.size} value(s) are not, "
+                f"first at position {int(bad[0])} ({y[bad[0]]:g}). Register a continuous noise law (normal, student-t, "
+                "laplace, logistic) for this series, or correct the extract."
+            )
+
+    def standardise(self, errors, params: NoiseParams) -> np.ndarray:
+        """``e / sd(e)`` (1 for constant errors): counts have no standard law of their own."""
+        return errors / (np.std(errors) or 1.0)
+
+    def reference_quantiles(self, probs, params: NoiseParams) -> np.ndarray:
+        """Quantiles of the standard normal reference of :meth:`standardise` (the large-mean
+        limit), as sample quantiles of 4,000 normal draws with seed 0 (a fixed picture)."""
+        return np.quantile(np.random.default_rng(0).standard_normal(4000), probs)
+
+    # -- counts given the means --------------------------------------------------------------
 
     def _count_params(self, params, owner):
         return self._check_params(params, owner)

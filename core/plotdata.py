@@ -16,22 +16,16 @@ __all__ = ["plot_data"]
 def plot_data(e: np.ndarray, law: NoiseLaw, params: NoiseParams, lags: int) -> dict:
     """Compact data for the report: histogram of standardised residuals with the noise density,
     Q-Q points and autocorrelations with their band."""
-    if law.discrete:
-        z = e / (np.std(e) or 1.0)
-        density = None
-    else:
-        z = (e - params.loc) / params.scale
+    z = law.standardise(e, params)
     lo, hi = -5.0, 5.0
     edges = np.linspace(lo, hi, 26)
     counts, _ = np.histogram(np.clip(z, lo, hi - 1e-9), bins=edges)
     centres = 0.5 * (edges[1:] + edges[:-1])
-    if not law.discrete:
-        std = NoiseParams(law=params.law, loc=0.0, scale=1.0, shape=params.shape, estimated=())
-        density = law.pdf(centres, std)
+    density = law.reference_density(centres, params)
     k = min(z.size, 80)
     probs = (np.arange(1, k + 1) - 0.5) / k
     sample_q = np.quantile(z, probs)
-    theory_q = law.ppf(probs, NoiseParams(law=params.law, loc=0.0, scale=1.0, shape=params.shape, estimated=())) if not law.discrete else np.quantile(np.random.default_rng(0).standard_normal(4000), probs)
+    theory_q = law.reference_quantiles(probs, params)
     r = acf(e, lags)
     return {
         "hist_edges": edges.round(6).tolist(),
