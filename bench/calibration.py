@@ -57,7 +57,6 @@ from fitaudit.core.audit import AuditSettings, as_noise_law, audit_series  # noq
 from fitaudit.core.calibration import CalibrationCache, Gate, production_table, refit_table, standardised_maximum  # noqa: E402
 from fitaudit.core.cells import make_partitions, number_of_cells  # noqa: E402
 from fitaudit.core.diagnostics import ljung_box, ljung_box_lags  # noqa: E402
-from fitaudit.core.divergence import divergence_map  # noqa: E402
 from fitaudit.core.models import Arima, ExpSmoothing  # noqa: E402
 
 SEED = 20261204

@@ -20,7 +20,7 @@ from scipy import stats
 
 from fitaudit.core.audit import DEFAULT_GATE_MEMBERS, DEFAULT_PARTITIONS, AuditSettings, audit_series
 from fitaudit.core.calibration import CalibrationCache, Gate, nrr_term
-from fitaudit.core.cells import Partition, make_partition, make_partitions, tail_boundaries
+from fitaudit.core.cells import make_partition, make_partitions, tail_boundaries
 from fitaudit.core.divergence import divergence_map
 from fitaudit.core.exceptions import InputError, InsufficientDataError
 from fitaudit.core.models import Arima
@@ -113,7 +113,6 @@ def test_gradient_on_tail_cells_matches_finite_differences(name):
             return stats.t.cdf(x, th[2], loc=th[0], scale=th[1])
         return frozen[name].cdf(x, loc=th[0], scale=th[1])
     theta0 = np.array([-0.2, 0.8] + ([shape] if shape else []))
-    cuts = cdf_inv = None
     if name == "student-t":
         cuts = stats.t.ppf(b[1:-1], shape, loc=-0.2, scale=0.8)
     else:
@@ -127,7 +126,6 @@ def test_gradient_on_tail_cells_matches_finite_differences(name):
         fu = np.concatenate([[0.0], cdf(cuts, up), [1.0]])
         fd = np.concatenate([[0.0], cdf(cuts, down), [1.0]])
         num[:, i] = np.diff(fu - fd) / (2 * h)
-    del cdf_inv
     np.testing.assert_allclose(G, num, atol=1e-6 if name == "laplace" else 1e-7)
 
 
