@@ -300,7 +300,7 @@ def audit_flow(
         published = publish_task(archive, head, summary, quote(staged_records), meta, quote(manifest), run_id)
         timings["publish_s"] = time.perf_counter() - t0
         report = str(pathlib.Path(published["path"]) / "index.html")
-        run = {"run_id": run_id, "as_of": as_of.isoformat(), "report_path": report}
+        run = {"run_id": run_id, "as_of": as_of.isoformat(), "report_path": report, "registry_sha256": reg.sha256}
         events_task(quote(recs), summary, run)
         counts = manifest["counts"]
         logger.info("audit %s as of %s: %s; report %s", run_id, as_of, counts, report)
@@ -311,7 +311,10 @@ def audit_flow(
 
             todo = [r["id"] for r in recs if r["verdict"] in ("refit", "respecify")]
             if todo:
-                refits = refit_flow(registry=registry, model_ids=todo, archive=archive, as_of=as_of, reason=f"verdicts of audit run {run_id}")
+                refits = refit_flow(
+                    registry=registry, model_ids=todo, archive=archive, as_of=as_of,
+                    reason=f"verdicts of audit run {run_id}", registry_sha256=reg.sha256,
+                )
     finally:
         scratch.close()
     return {

@@ -1,7 +1,8 @@
 """The ``fitaudit`` command line.
 
 Commands: ``demo``, ``run``, ``refit``, ``backfill``, ``serve``, ``verify``, ``registry check``,
-``promote``, ``params import`` and ``signoff``; ``fitaudit COMMAND --help`` describes each.
+``registry schema``, ``promote``, ``params import`` and ``signoff``; ``fitaudit COMMAND --help``
+describes each.
 
 Exit codes: 0 success (an audit whose models fail still succeeds, unless ``--fail-on`` names
 their verdicts); 1 unexpected failure; 2 invalid usage or an invalid registry; 3 a verdict named
@@ -78,6 +79,11 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--model", dest="models", action="append", required=True, metavar="ID", help="model id (repeat for several)")
     f.add_argument("--approve", action="store_true", help="promote passing refits now (records --by as approver)")
     f.add_argument("--by", default="", help="approver's name and role, recorded with the promotion")
+    f.add_argument(
+        "--registry-sha256",
+        metavar="DIGEST",
+        help="refuse the registry unless its SHA-256 is DIGEST (the audit run's manifest records it): refit what was audited",
+    )
 
     b = sub.add_parser("backfill", help="audit a range of past as-of dates so that trends exist from day one")
     run_options(b)
@@ -94,7 +100,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     v = sub.add_parser("verify", help="check every archived file and the hash chain; exit 4 on any problem")
     v.add_argument("archive", help="archive folder")
-    v.add_argument("--head", help="expected hash of the last chain entry (recorded elsewhere), to detect a truncated or rewritten chain")
+    v.add_argument("--head", type=_head, metavar="HEAD", help="a chain head recorded outside the archive, as verify and run print it "
+                   "('head: <sha256> (seq N)', quoted, or the bare SHA-256), to detect a truncated or rewritten chain")
     v.add_argument("--notes", action="store_true", help="also list notes (pending publications, leftovers)")
     v.add_argument("--json", action="store_true", help="print problems as JSON")
 
@@ -103,6 +110,14 @@ def build_parser() -> argparse.ArgumentParser:
     gsub.required = True
     gc = gsub.add_parser("check", help="validate a registry and print every problem with file:line")
     gc.add_argument("registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)")
+    gsub.add_parser(
+        "schema",
+        help="print the registry's JSON Schema, for editors (completion and checks while typing)",
+        description="Print the JSON Schema (draft 2020-12) of a registry file. Save it, e.g. as registry.schema.json, and "
+        "point your editor at it; with the YAML language server a first line "
+        "'# yaml-language-server: $schema=registry.schema.json' in the registry does it. "
+        "`fitaudit registry check` remains the full check (sources declared, spec buildable, ids unique).",
+    )
 
     pr = sub.add_parser("promote", help="promote a candidate parameter version (writes a new version; never edits one)")
     pr.add_argument("archive", help="archive folder")
@@ -125,6 +140,18 @@ def build_parser() -> argparse.ArgumentParser:
     pi.add_argument("file", help="parameters file")
     pi.add_argument("--by", required=True, help="who imports the parameters (name and role)")
     pi.add_argument("--archive", help="archive folder (default: the archive_root setting, ./archive)")
+
+    ak = sub.add_parser(
+        "acknowledge",
+        help="record the archive's damage in the hash chain so that runs can continue (when it cannot be restored)",
+        description="Record every problem `fitaudit verify` finds in an 'acknowledgement' chain entry, with who and why. "
+        "Nothing is deleted or rewritten: a run folder or promoted version whose chain entry was lost is recorded as found, "
+        "a chain line cut short is ended, and verify reports the recorded problems as acknowledged (any new damage is a problem "
+        "again). Restore from a backup instead whenever you can.",
+    )
+    ak.add_argument("archive", help="archive folder")
+    ak.add_argument("--by", required=True, help="who acknowledges the damage (name and role)")
+    ak.add_argument("--note", required=True, help="what happened (the incident) and why the originals cannot be restored")
 
     so = sub.add_parser("signoff", help="record a reviewer's sign-off of an archived run in the hash chain")
     so.add_argument("archive", help="archive folder")
@@ -182,6 +209,17 @@ def _print_summary(result: dict, quiet: bool) -> None:
     print(f"report: {result['report']}")
 
 
+def _cmd_registry(args) -> int:
+    return {"check": _cmd_registry_check, "schema": _cmd_registry_schema}[args.registry_command](args)
+
+
+def _cmd_registry_schema(args) -> int:
+    from fitaudit.tasks.registry import registry_json_schema
+
+    print(json.dumps(registry_json_schema(), indent=2))
+    return EXIT_OK
+
+
 def _cmd_registry_check(args) -> int:
     from fitaudit.tasks.registry import check_registry
 
@@ -195,18 +233,62 @@ def _cmd_registry_check(args) -> int:
     return EXIT_USAGE
 
 
+def _head(text: str) -> str:
+    from fitaudit.tasks.archive import parse_head
+
+    try:
+        parse_head(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+    return text
+
+
+def _print_head(archive: str) -> None:
+    from fitaudit.tasks.archive import chain_head
+
+    head = chain_head(archive)
+    if head is not None:
+        print(f"head: {head[0]} (seq {head[1]})")
+
+
 def _cmd_verify(args) -> int:
     from fitaudit.tasks.archive import verify_archive
 
-    problems = verify_archive(args.archive, include_notes=args.notes, expected_head=args.head)
+    problems = verify_archive(args.archive, include_notes=True, expected_head=args.head)
     real = [p for p in problems if not p.is_note]
+    acknowledged = [p for p in problems if p.kind == "acknowledged"]
+    shown = problems if args.notes else real + acknowledged
     if args.json:
-        print(json.dumps([p.to_dict() for p in problems], indent=2))
-    else:
-        for p in problems:
-            print(("note: " if p.is_note else "problem: ") + str(p))
-        print(f"{args.archive}: {'intact' if not real else f'{len(real)} problem(s)'}")
+        print(json.dumps([p.to_dict() for p in shown], indent=2))
+        return EXIT_VERIFY if real else EXIT_OK
+    for p in shown:
+        print(("note: " if p.is_note else "problem: ") + str(p))
+    state = f"{len(real)} problem(s)" if real else "intact"
+    if acknowledged:
+        state += f" ({len(acknowledged)} acknowledged problem(s), recorded in the chain)"
+    print(f"{args.archive}: {state}")
+    _print_head(args.archive)
     return EXIT_VERIFY if real else EXIT_OK
+
+
+def _cmd_acknowledge(args) -> int:
+    from fitaudit.tasks.archive import acknowledge_damage
+
+    entry = acknowledge_damage(args.archive, by=args.by, note=args.note)
+    payload = entry["payload"]
+    for item in payload["problems"]:
+        print(f"acknowledged: {item['where']}: {item['message']}")
+    for item in payload["runs"]:
+        print(f"recorded as found: run folder {item['path']} (its chain entry was lost)")
+    for item in payload["promotions"]:
+        print(f"recorded as found: promoted version {item['path']} (it had no promotion entry)")
+    if payload.get("terminated_line"):
+        print(f"ended chain line {payload['terminated_line']['line']}, which was cut short")
+    for item in payload.get("journals_removed", []):
+        print(f"moved into the chain entry and removed: {item['path']}")
+    print(f"acknowledgement recorded as chain entry {entry['seq']} by {args.by}")
+    print(f"head: {entry['hash']} (seq {entry['seq']})")
+    return EXIT_OK
 
 
 def _cmd_run(args) -> int:
@@ -231,10 +313,19 @@ def _cmd_run(args) -> int:
 
 
 def _cmd_refit(args) -> int:
+    from fitaudit.tasks.registry import RegistryChangedError, RegistryError
+
     with _server_if_needed(args):
         from .refit import refit_flow
 
-        result = _with_runner(refit_flow, args.dask)(registry=args.registry, model_ids=args.models, archive=args.archive, as_of=args.as_of, approve=args.approve, approved_by=args.by)
+        try:
+            result = _with_runner(refit_flow, args.dask)(
+                registry=args.registry, model_ids=args.models, archive=args.archive, as_of=args.as_of,
+                approve=args.approve, approved_by=args.by, registry_sha256=args.registry_sha256,
+            )
+        except (RegistryError, RegistryChangedError) as exc:
+            print(str(exc), file=sys.stderr)
+            return EXIT_USAGE
     for rec in result["records"]:
         extra = ""
         if rec.get("promoted_version"):
@@ -276,21 +367,24 @@ def _cmd_serve(args) -> int:
 
 
 def _cmd_promote(args) -> int:
-    from fitaudit.tasks.archive import append_chain
+    from fitaudit.tasks.archive import require_intact
     from fitaudit.tasks.params import promote
 
+    require_intact(args.archive)
     version = promote(args.archive, args.model, args.version, approved_by=args.by, note=args.note)
-    append_chain(args.archive, "promotion", {"path": f"params/{args.model}/{version.version}.json", "sha256": version.sha256, "model_id": args.model, "promotes": args.version, "approved_by": args.by})
     print(f"{args.model}: version {version.version} promotes version {args.version} into production")
+    _print_head(args.archive)
     return EXIT_OK
 
 
 def _cmd_params(args) -> int:
+    from fitaudit.tasks.archive import require_intact
     from fitaudit.tasks.params import ParamsFileError, import_params
     from fitaudit.tasks.registry import RegistryError
     from fitaudit.tasks.settings import get_settings
 
     archive = args.archive or str(get_settings().archive_root)
+    require_intact(archive)
     try:
         version = import_params(args.registry, args.model, args.file, by=args.by, archive_root=archive)
     except (ParamsFileError, RegistryError) as exc:
@@ -307,7 +401,8 @@ def _cmd_signoff(args) -> int:
     from fitaudit.tasks.archive import record_signoff
 
     entry = record_signoff(args.archive, args.run_id, name=args.name, role=args.role, note=args.note)
-    print(f"sign-off recorded as chain entry {entry['seq']} (hash {entry['hash'][:16]}...)")
+    print(f"sign-off recorded as chain entry {entry['seq']}")
+    print(f"head: {entry['hash']} (seq {entry['seq']})")
     return EXIT_OK
 
 
@@ -328,10 +423,11 @@ COMMANDS = {
     "backfill": _cmd_backfill,
     "serve": _cmd_serve,
     "verify": _cmd_verify,
-    "registry": _cmd_registry_check,
+    "registry": _cmd_registry,
     "promote": _cmd_promote,
     "params": _cmd_params,
     "signoff": _cmd_signoff,
+    "acknowledge": _cmd_acknowledge,
 }
 
 

@@ -36,6 +36,7 @@ def refit_trigger(registry: str, archive: str | None) -> DeploymentEventTrigger:
             "archive": archive,
             "model_ids": ["{{ event.resource.name }}"],
             "reason": "{{ event.event }} from audit run {{ event.payload.run_id }}",
+            "registry_sha256": "{{ event.payload.registry_sha256 }}",  # the audited file, or the refit refuses
         },
     )
 

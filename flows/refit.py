@@ -15,7 +15,7 @@ from fitaudit.tasks.archive import new_run_id, open_run, recover
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.publish import code_commit, operator_identity, package_versions
 from fitaudit.tasks.refit import refit_batch_task
-from fitaudit.tasks.registry import load_registry_task
+from fitaudit.tasks.registry import load_registry_task, require_digest
 from fitaudit.tasks.settings import get_settings
 
 __all__ = ["refit_flow"]
@@ -56,6 +56,7 @@ def refit_flow(
     approve: bool = False,
     approved_by: str = "",
     reason: str = "",
+    registry_sha256: str | None = None,
 ) -> dict:
     """Refit the named models and store new parameter versions.
 
@@ -74,11 +75,16 @@ def refit_flow(
         ``automatic`` passing refits are promoted anyway.
     reason : str
         Why the refit was started (e.g. the triggering event), recorded in the manifest.
+    registry_sha256 : str, optional
+        SHA-256 of the registry the audit read (its manifest and its verdict events carry it): a
+        registry file that changed since is refused (``RegistryChangedError``) before anything is
+        refitted.  None or empty: the file is used as it is.
     """
     settings = get_settings()
     archive = str(pathlib.Path(archive or settings.archive_root).resolve())
     as_of = as_of or dt.datetime.now(dt.UTC).date()
     reg = load_registry_task(registry)
+    require_digest(reg, registry_sha256)
     recover(archive) if pathlib.Path(archive).exists() else None
     run_id = new_run_id(as_of)
     work = pathlib.Path(archive) / ".work" / run_id

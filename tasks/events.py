@@ -57,6 +57,7 @@ def emit_verdict_events(records: Sequence[Mapping[str, Any]], run: Mapping[str, 
                 "p_adjusted": deciding.get("p_adjusted"),
                 "r_max": deciding.get("r_max"),
                 "report": run.get("report_path"),
+                "registry_sha256": run.get("registry_sha256"),  # a triggered refit refuses a changed registry
             },
         )
         count += 1

@@ -12,7 +12,7 @@ import pytest
 from fitaudit.flows.cli import EXIT_FAIL_ON, EXIT_OK, EXIT_USAGE, EXIT_VERIFY, build_parser, main
 from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
 
-COMMANDS = [["demo"], ["run"], ["refit"], ["backfill"], ["serve"], ["verify"], ["registry", "check"], ["promote"], ["signoff"]]
+COMMANDS = [["demo"], ["run"], ["refit"], ["backfill"], ["serve"], ["verify"], ["registry", "check"], ["registry", "schema"], ["promote"], ["signoff"]]
 
 
 @pytest.mark.parametrize("cmd", COMMANDS, ids=lambda c: " ".join(c))
@@ -52,6 +52,23 @@ def test_registry_check_valid(tmp_path, demo, capsys):
     (tmp_path / "data").symlink_to(pathlib.Path(demo["data"]))
     assert main(["registry", "check", str(good)]) == EXIT_OK
     assert "valid" in capsys.readouterr().out
+
+
+def test_registry_schema_prints_a_json_schema_the_demo_registry_meets(demo, capsys):
+    import json
+
+    import jsonschema
+    import yaml
+
+    assert main(["registry", "schema"]) == EXIT_OK
+    schema = json.loads(capsys.readouterr().out)
+    jsonschema.Draft202012Validator.check_schema(schema)  # source: jsonschema's draft 2020-12 metaschema
+    validator = jsonschema.Draft202012Validator(schema)
+    document = json.loads(json.dumps(yaml.safe_load(pathlib.Path(demo["registry"]).read_text()), default=str))
+    # the demo's one planted bad entry ('gaussian' is no noise law) is the only complaint, as with `registry check`
+    errors = list(validator.iter_errors(document))
+    assert len(errors) == 1 and "'gaussian'" in jsonschema.exceptions.best_match(errors).message
+    assert [m["id"] for m in document["models"]][list(errors[0].absolute_path)[1]] == "demand-d-40-legacy"
 
 
 def test_registry_defaults_to_the_registry_path_setting(demo, monkeypatch, capsys):

@@ -67,6 +67,23 @@ def test_audit_flow_end_to_end(first_run):
     assert manifest["batches"] == 3  # 7 models in batches of 3 from two sources
 
 
+def test_refit_refuses_a_registry_changed_since_the_audit(demo, first_run, tmp_path):
+    from fitaudit.flows.refit import refit_flow
+    from fitaudit.tasks.registry import RegistryChangedError
+
+    manifest = json.loads((pathlib.Path(first_run["report"]).parent / "manifest.json").read_text())
+    audited = manifest["registry"]["sha256"]  # the registry the audit read
+    archive = pathlib.Path(_fresh_archive(demo, tmp_path))
+    files = sorted(str(p.relative_to(archive)) for p in archive.rglob("*"))
+    edited = pathlib.Path(demo["registry"]).with_name("registry-edited.yaml")  # same folder: same data
+    edited.write_text(pathlib.Path(demo["registry"]).read_text() + "# edited after the audit\n")
+    with pytest.raises(RegistryChangedError, match=rf"registry changed since the audit that asked for this refit \(SHA-256 {audited} then"):
+        refit_flow(registry=str(edited), model_ids=["demand-d-07"], archive=str(archive), as_of=DEMO_AS_OF, registry_sha256=audited)
+    assert sorted(str(p.relative_to(archive)) for p in archive.rglob("*")) == files  # nothing refitted or recorded
+    run = refit_flow(registry=demo["registry"], model_ids=["demand-d-07"], archive=str(archive), as_of=DEMO_AS_OF, registry_sha256=audited)
+    assert [(r["model_id"], r["status"]) for r in run["records"]] == [("demand-d-07", "awaiting approval")]  # the audited file: refitted
+
+
 def test_results_do_not_depend_on_batch_size(demo, first_run, tmp_path):
     from fitaudit.flows.audit import audit_flow
 

@@ -573,6 +573,22 @@ def test_json_schema_describes_what_the_parser_accepts():
     assert "line" not in schema["$defs"]["ModelEntry"]["properties"]  # filled in by the loader, never written
 
 
+def test_a_registry_changed_since_its_audit_is_refused(tmp_path):
+    from fitaudit.tasks.registry import RegistryChangedError, require_digest
+
+    path = tmp_path / FILE
+    path.write_text(VALID, encoding="utf-8")
+    audited = load_registry(path).sha256
+    require_digest(load_registry(path), audited)  # the same bytes: accepted
+    require_digest(load_registry(path), None)  # no digest: no check
+    path.write_text(VALID + "# edited\n", encoding="utf-8")
+    changed = load_registry(path)
+    with pytest.raises(RegistryChangedError) as info:
+        require_digest(changed, audited)
+    assert str(info.value).startswith(f"{path}: the registry changed since the audit that asked for this refit")
+    assert audited in str(info.value) and changed.sha256 in str(info.value) and "fitaudit run" in str(info.value)
+
+
 def test_fields_the_loader_fills_in_are_unknown_keys_in_the_yaml():
     reg = parse_registry(_edit("    tier: 1\n", "    tier: 1\n    line: 3\n"), FILE)
     (problem,) = reg.rejected[0].problems

@@ -27,8 +27,16 @@ Schema (version 1)
 
 from __future__ import annotations
 
-from .loader import Registry, RejectedEntry, check_registry, load_registry, load_registry_task, parse_registry
-from .problems import RegistryError, RegistryProblem
+from .loader import (
+    Registry,
+    RejectedEntry,
+    check_registry,
+    load_registry,
+    load_registry_task,
+    parse_registry,
+    require_digest,
+)
+from .problems import RegistryChangedError, RegistryError, RegistryProblem
 from .schema import (
     FREQUENCIES,
     MAX_ID_LENGTH,
@@ -55,6 +63,7 @@ __all__ = [
     "is_safe_id",
     "RegistryProblem",
     "RegistryError",
+    "RegistryChangedError",
     "Policy",
     "Persistence",
     "SourceEntry",
@@ -72,5 +81,6 @@ __all__ = [
     "parse_registry",
     "load_registry",
     "check_registry",
+    "require_digest",
     "load_registry_task",
 ]

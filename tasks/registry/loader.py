@@ -30,7 +30,14 @@ from prefect import task
 from pydantic import TypeAdapter, ValidationError
 
 from .._io import sha256_bytes
-from .problems import RegistryError, RegistryProblem, field_name, from_validation_error, unknown_key_message
+from .problems import (
+    RegistryChangedError,
+    RegistryError,
+    RegistryProblem,
+    field_name,
+    from_validation_error,
+    unknown_key_message,
+)
 from .schema import (
     Block,
     ModelEntry,
@@ -42,7 +49,15 @@ from .schema import (
 )
 from .yaml_safety import SHOW, YamlIssue, compose, node_path, to_plain
 
-__all__ = ["RejectedEntry", "Registry", "parse_registry", "load_registry", "check_registry", "load_registry_task"]
+__all__ = [
+    "RejectedEntry",
+    "Registry",
+    "parse_registry",
+    "load_registry",
+    "check_registry",
+    "require_digest",
+    "load_registry_task",
+]
 
 _ENTRY = TypeAdapter(RegistryEntry)
 
@@ -402,6 +417,23 @@ def check_registry(path: str | os.PathLike) -> list[RegistryProblem]:
     base = os.path.dirname(os.path.abspath(os.fspath(path)))
     problems, entry_problems, _ = _analyse(text, name, base, digest)
     return sorted(problems + entry_problems, key=lambda p: p.line or 0)
+
+
+def require_digest(registry: Registry, audited: str | None, *, by: str = "the audit that asked for this refit") -> None:
+    """Refuse a registry whose bytes are not the ones audited (``audited``: their SHA-256; None
+    or empty: no check).
+
+    Raises
+    ------
+    RegistryChangedError
+        Naming both digests and what to do.
+    """
+    if audited and registry.sha256 != audited:
+        raise RegistryChangedError(
+            f"{registry.path}: the registry changed since {by} (SHA-256 {audited} then, {registry.sha256} now), "
+            "so its entries and policy are not the ones that were audited. Audit the current registry first "
+            "(`fitaudit run`), or start the refit without the audited digest to use the file as it is now."
+        )
 
 
 @task(name="load-registry", retries=2, retry_delay_seconds=2, persist_result=False)

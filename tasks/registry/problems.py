@@ -41,6 +41,7 @@ from .yaml_safety import node_path, show
 __all__ = [
     "RegistryProblem",
     "RegistryError",
+    "RegistryChangedError",
     "field_name",
     "listing",
     "suggest",
@@ -89,6 +90,10 @@ class RegistryError(FitauditError):
         super().__init__(
             f"{file} has {len(self.problems)} problem(s); the audit cannot start until they are fixed:\n{lines}"
         )
+
+
+class RegistryChangedError(FitauditError):
+    """The registry file is not the one that was audited: its SHA-256 differs."""
 
 
 # --------------------------------------------------------------------------------------------
