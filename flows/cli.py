@@ -100,8 +100,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     v = sub.add_parser("verify", help="check every archived file and the hash chain; exit 4 on any problem")
     v.add_argument("archive", help="archive folder")
-    v.add_argument("--head", type=_head, metavar="HEAD", help="a chain head recorded outside the archive, as verify and run print it "
-                   "('head: <sha256> (seq N)', quoted, or the bare SHA-256), to detect a truncated or rewritten chain")
+    v.add_argument("--head", help="expected hash of the last chain entry (recorded elsewhere), to detect a truncated or rewritten chain")
     v.add_argument("--notes", action="store_true", help="also list notes (pending publications, leftovers)")
     v.add_argument("--json", action="store_true", help="print problems as JSON")
 
@@ -140,18 +139,6 @@ def build_parser() -> argparse.ArgumentParser:
     pi.add_argument("file", help="parameters file")
     pi.add_argument("--by", required=True, help="who imports the parameters (name and role)")
     pi.add_argument("--archive", help="archive folder (default: the archive_root setting, ./archive)")
-
-    ak = sub.add_parser(
-        "acknowledge",
-        help="record the archive's damage in the hash chain so that runs can continue (when it cannot be restored)",
-        description="Record every problem `fitaudit verify` finds in an 'acknowledgement' chain entry, with who and why. "
-        "Nothing is deleted or rewritten: a run folder or promoted version whose chain entry was lost is recorded as found, "
-        "a chain line cut short is ended, and verify reports the recorded problems as acknowledged (any new damage is a problem "
-        "again). Restore from a backup instead whenever you can.",
-    )
-    ak.add_argument("archive", help="archive folder")
-    ak.add_argument("--by", required=True, help="who acknowledges the damage (name and role)")
-    ak.add_argument("--note", required=True, help="what happened (the incident) and why the originals cannot be restored")
 
     so = sub.add_parser("signoff", help="record a reviewer's sign-off of an archived run in the hash chain")
     so.add_argument("archive", help="archive folder")
@@ -233,62 +220,18 @@ def _cmd_registry_check(args) -> int:
     return EXIT_USAGE
 
 
-def _head(text: str) -> str:
-    from fitaudit.tasks.archive import parse_head
-
-    try:
-        parse_head(text)
-    except ValueError as exc:
-        raise argparse.ArgumentTypeError(str(exc)) from None
-    return text
-
-
-def _print_head(archive: str) -> None:
-    from fitaudit.tasks.archive import chain_head
-
-    head = chain_head(archive)
-    if head is not None:
-        print(f"head: {head[0]} (seq {head[1]})")
-
-
 def _cmd_verify(args) -> int:
     from fitaudit.tasks.archive import verify_archive
 
-    problems = verify_archive(args.archive, include_notes=True, expected_head=args.head)
+    problems = verify_archive(args.archive, include_notes=args.notes, expected_head=args.head)
     real = [p for p in problems if not p.is_note]
-    acknowledged = [p for p in problems if p.kind == "acknowledged"]
-    shown = problems if args.notes else real + acknowledged
     if args.json:
-        print(json.dumps([p.to_dict() for p in shown], indent=2))
-        return EXIT_VERIFY if real else EXIT_OK
-    for p in shown:
-        print(("note: " if p.is_note else "problem: ") + str(p))
-    state = f"{len(real)} problem(s)" if real else "intact"
-    if acknowledged:
-        state += f" ({len(acknowledged)} acknowledged problem(s), recorded in the chain)"
-    print(f"{args.archive}: {state}")
-    _print_head(args.archive)
+        print(json.dumps([p.to_dict() for p in problems], indent=2))
+    else:
+        for p in problems:
+            print(("note: " if p.is_note else "problem: ") + str(p))
+        print(f"{args.archive}: {'intact' if not real else f'{len(real)} problem(s)'}")
     return EXIT_VERIFY if real else EXIT_OK
-
-
-def _cmd_acknowledge(args) -> int:
-    from fitaudit.tasks.archive import acknowledge_damage
-
-    entry = acknowledge_damage(args.archive, by=args.by, note=args.note)
-    payload = entry["payload"]
-    for item in payload["problems"]:
-        print(f"acknowledged: {item['where']}: {item['message']}")
-    for item in payload["runs"]:
-        print(f"recorded as found: run folder {item['path']} (its chain entry was lost)")
-    for item in payload["promotions"]:
-        print(f"recorded as found: promoted version {item['path']} (it had no promotion entry)")
-    if payload.get("terminated_line"):
-        print(f"ended chain line {payload['terminated_line']['line']}, which was cut short")
-    for item in payload.get("journals_removed", []):
-        print(f"moved into the chain entry and removed: {item['path']}")
-    print(f"acknowledgement recorded as chain entry {entry['seq']} by {args.by}")
-    print(f"head: {entry['hash']} (seq {entry['seq']})")
-    return EXIT_OK
 
 
 def _cmd_run(args) -> int:
@@ -367,24 +310,21 @@ def _cmd_serve(args) -> int:
 
 
 def _cmd_promote(args) -> int:
-    from fitaudit.tasks.archive import require_intact
+    from fitaudit.tasks.archive import append_chain
     from fitaudit.tasks.params import promote
 
-    require_intact(args.archive)
     version = promote(args.archive, args.model, args.version, approved_by=args.by, note=args.note)
+    append_chain(args.archive, "promotion", {"path": f"params/{args.model}/{version.version}.json", "sha256": version.sha256, "model_id": args.model, "promotes": args.version, "approved_by": args.by})
     print(f"{args.model}: version {version.version} promotes version {args.version} into production")
-    _print_head(args.archive)
     return EXIT_OK
 
 
 def _cmd_params(args) -> int:
-    from fitaudit.tasks.archive import require_intact
     from fitaudit.tasks.params import ParamsFileError, import_params
     from fitaudit.tasks.registry import RegistryError
     from fitaudit.tasks.settings import get_settings
 
     archive = args.archive or str(get_settings().archive_root)
-    require_intact(archive)
     try:
         version = import_params(args.registry, args.model, args.file, by=args.by, archive_root=archive)
     except (ParamsFileError, RegistryError) as exc:
@@ -401,8 +341,7 @@ def _cmd_signoff(args) -> int:
     from fitaudit.tasks.archive import record_signoff
 
     entry = record_signoff(args.archive, args.run_id, name=args.name, role=args.role, note=args.note)
-    print(f"sign-off recorded as chain entry {entry['seq']}")
-    print(f"head: {entry['hash']} (seq {entry['seq']})")
+    print(f"sign-off recorded as chain entry {entry['seq']} (hash {entry['hash'][:16]}...)")
     return EXIT_OK
 
 
@@ -427,7 +366,6 @@ COMMANDS = {
     "promote": _cmd_promote,
     "params": _cmd_params,
     "signoff": _cmd_signoff,
-    "acknowledge": _cmd_acknowledge,
 }
 
 
