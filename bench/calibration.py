@@ -753,7 +753,7 @@ def render(result: dict) -> str:
         "- The default gate is the study's choice: "
         + ("**met**" if g["default_is_choice"] else
            f"**missed**: the study chose {CANDIDATES[cand['chosen']][0]!r}; change `DEFAULT_PARTITIONS` / "
-           "`DEFAULT_GATE_MEMBERS` in core/audit.py and rerun")
+           "`DEFAULT_GATE_MEMBERS` in core/settings.py and rerun")
         + "."
     )
     out += ["", "## 4. Discussion", ""]

@@ -513,7 +513,21 @@ def prepare_calibration(
     residuals (``n_observations - spec.presample()``), the noise law and whether the location is
     estimated.  Tables of laws whose shape is estimated are keyed by the estimate and built on
     demand during the audit; so are bootstrap tables.  The returned cache is passed to every batch
-    (also to other processes), so no table is built twice.
+    (also to other processes), so no table is built twice.  Tables are deterministic functions of
+    their key and the seed (docs/method.md §7.7), so planning them changes no result.
+
+    Parameters
+    ----------
+    entries : sequence of (spec, noise, AuditSettings, int, bool)
+        Per model: its spec (or dict), noise law (name, dict or law), settings, number of
+        observations and whether it has a production version.  A model whose spec or law is
+        invalid is skipped (its own audit reports the problem).
+    cache : CalibrationCache, optional
+        Tables to add to; a new cache when omitted.
+
+    Returns
+    -------
+    CalibrationCache
     """
     cache = cache if cache is not None else CalibrationCache()
     for spec, noise, settings, n_obs, has_production in entries:

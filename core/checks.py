@@ -239,6 +239,29 @@ def score_frozen(
     The production check (frozen parameters) and forecast audits (stated predictive laws) share
     this path: nothing is estimated from ``u``, so its null is exact (i.i.d. U(0, 1) PIT values,
     docs/method.md §7.2) and one table per window length serves a whole run.
+
+    Parameters
+    ----------
+    e : ndarray, shape (n,)
+        The errors (for the independence gate, effect sizes and plots).
+    u : ndarray, shape (n,)
+        Their PIT values under the fixed law.
+    law : NoiseLaw
+    nparams : NoiseParams
+        The fixed noise parameters (reported with the check).
+    period : int
+        Seasonal period (Ljung-Box lags, docs/method.md §9.2).
+    settings : AuditSettings
+    cache : CalibrationCache or None
+        Shared null tables.
+    window : dict
+        The window scored (``first``, ``last``, ``length``), reported with the check.
+    kind : str, default "production"
+        The check's name.
+
+    Returns
+    -------
+    CheckResult
     """
     table_for = None
     if settings.calibration != "asymptotic":

@@ -15,7 +15,31 @@ __all__ = ["plot_data"]
 
 def plot_data(e: np.ndarray, law: NoiseLaw, params: NoiseParams, lags: int) -> dict:
     """Compact data for the report: histogram of standardised residuals with the noise density,
-    Q-Q points and autocorrelations with their band."""
+    Q-Q points and autocorrelations with their band.
+
+    The errors are standardised by the law (:meth:`~fitaudit.core.noise.NoiseLaw.standardise`,
+    ``(e - loc) / scale`` for location-scale laws) and binned in 25 cells on [-5, 5] (values
+    beyond are counted in the outer cells); the Q-Q plot pairs ``min(n, 80)`` sample quantiles
+    at ``p_i = (i - 1/2) / k`` with the law's reference quantiles; the autocorrelations are
+    :func:`~fitaudit.core.diagnostics.acf` with the band ``+-1.96 / sqrt(n)``
+    (:func:`~fitaudit.core.diagnostics.acf_band`).
+
+    Parameters
+    ----------
+    e : ndarray, shape (n,)
+        The check's errors (finite).
+    law : NoiseLaw
+    params : NoiseParams
+        The noise parameters the check used.
+    lags : int
+        Autocorrelation lags to report.
+
+    Returns
+    -------
+    dict
+        ``hist_edges``, ``hist_counts``, ``hist_density`` (None for count laws), ``qq_theoretical``,
+        ``qq_sample``, ``acf`` (lags 1..``lags``) and ``acf_band``; numbers rounded to 6 decimals.
+    """
     z = law.standardise(e, params)
     lo, hi = -5.0, 5.0
     edges = np.linspace(lo, hi, 26)

@@ -75,6 +75,24 @@ def decide_verdict(production: CheckResult | None, refit: CheckResult | None, th
     that could not run makes the verdict ``insufficient`` or ``error`` with its message.  Without
     a refit check (a forecast audit) the verdict is
     :func:`fitaudit.core.forecasts.forecast_verdict` of the production check.
+
+    Parameters
+    ----------
+    production, refit : CheckResult or None
+        The two checks (production None without a production version, refit None for a
+        forecast audit).
+    threshold : float
+        The level a check is tested at (each gate at ``threshold / 2``), or with ``adjusted`` the
+        level of the fleet-adjusted p-value.
+    adjusted : bool, default False
+        Decide on the fleet-adjusted p-values (:func:`apply_fleet_rules`).
+
+    Returns
+    -------
+    verdict : str
+        One of :data:`~fitaudit.core.vocabulary.VERDICTS`.
+    reasons : tuple of str
+        One plain sentence each, with the numbers behind the verdict.
     """
     if refit is None:
         from .forecasts import forecast_verdict
@@ -219,7 +237,27 @@ def apply_fleet_rules(
     a check then fails when its adjusted p-value is at most ``q`` (for ``none``: the raw p-value
     at each result's own level).  A ``refit`` verdict that occurs in at least ``k`` of the last
     ``n`` audits (this one included; ``histories[i]`` lists model i's earlier verdicts, oldest
-    first) becomes ``respecify``.  Raw and adjusted p-values are both kept.
+    first) becomes ``respecify`` (:func:`escalate_persistent_refit`).  Raw and adjusted p-values
+    are both kept.
+
+    Parameters
+    ----------
+    results : sequence of AuditResult
+        The run's results, one per model.
+    q : float, default 0.10
+        The level of the adjusted p-values (the false discovery rate for ``bh`` and ``by``).
+    method : {"bh", "by", "bonferroni", "none"}, default "bh"
+        See :func:`adjust_pvalues` [1]_ [2]_.
+    histories : sequence of sequences of str, optional
+        Each model's earlier verdicts, oldest first; none by default.
+    k, n : int, default 2 and 3
+        The persistence rule: ``refit`` in at least k of the last n audits.
+
+    Returns
+    -------
+    list of AuditResult
+        The results with ``p_adjusted`` set on every check that ran, verdicts and reasons
+        re-decided, and ``escalated`` marking escalations.
     """
     histories = histories if histories is not None else [()] * len(results)
     if len(histories) != len(results):
