@@ -4,7 +4,9 @@ and the refit automation fired by the audit's ``fitaudit.model.refit`` events.""
 from __future__ import annotations
 
 import asyncio
+import hashlib
 import os
+import pathlib
 import signal
 import subprocess
 import sys
@@ -142,3 +144,5 @@ def test_served_audit_runs_through_the_api_with_artifacts_events_and_triggered_r
         time.sleep(2)
     assert runs, "no refit run was triggered by the fitaudit.model.refit event"
     assert runs[0].state.is_completed(), runs[0].state
+    # the trigger forwards the audited registry's digest: the refit checks it is the same file
+    assert runs[0].parameters.get("registry_sha256") == hashlib.sha256(pathlib.Path(served["registry"]).read_bytes()).hexdigest()
