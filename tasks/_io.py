@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import hashlib
 import json
@@ -9,7 +10,7 @@ import math
 import os
 import pathlib
 import tempfile
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
 from typing import Any
 
 __all__ = ["canonical_json", "sha256_bytes", "sha256_file", "write_once", "write_once_chunks", "utc_now", "json_ready"]
@@ -73,6 +74,17 @@ def sha256_file(path: str | os.PathLike) -> str:
     return h.hexdigest()
 
 
+@contextlib.contextmanager
+def _naming(path: pathlib.Path) -> Iterator[None]:
+    """Give an ``OSError`` without a file name (a failed ``write`` or ``fsync``: disk full) the path."""
+    try:
+        yield
+    except OSError as exc:
+        if exc.filename is None and exc.errno is not None:
+            raise OSError(exc.errno, exc.strerror, str(path)) from exc
+        raise
+
+
 def write_once(path: str | os.PathLike, data: bytes) -> None:
     """Write ``data`` to a new file; never overwrite an existing one.
 
@@ -84,7 +96,7 @@ def write_once(path: str | os.PathLike, data: bytes) -> None:
     fd, tmp_name = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
     tmp = pathlib.Path(tmp_name)
     try:
-        with os.fdopen(fd, "wb") as fh:
+        with _naming(path), os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
@@ -101,7 +113,7 @@ def write_once_chunks(path: str | os.PathLike, chunks: Iterable[bytes]) -> tuple
     tmp = pathlib.Path(tmp_name)
     digest, size = hashlib.sha256(), 0
     try:
-        with os.fdopen(fd, "wb") as fh:
+        with _naming(path), os.fdopen(fd, "wb") as fh:
             for chunk in chunks:
                 fh.write(chunk)
                 digest.update(chunk)

@@ -28,8 +28,24 @@ ever grows; an interrupted append is finished by writing the rest of the journal
 ``verify_archive`` accepts a run folder that is missing from the chain only when a run journal covers
 it (and the folder matches the journaled manifest hash): such a folder is a *pending* note, not a
 problem.  ``recover`` completes such a publication (appends the entry) or, when the rename had not
-happened, rolls it back; it also finishes interrupted appends and purges and deletes abandoned
-staging folders.
+happened, rolls it back; it also finishes interrupted appends, promotions and purges and deletes
+abandoned staging folders.
+
+Promotion protocol (``record_promotion``)
+-----------------------------------------
+Under the archive lock: ``.journal/promotion-<model>.json`` records the new ``promoted`` parameter
+version (its full record) and the intended chain payload; the version file is written once; the
+``promotion`` entry is appended; the journal is removed.  ``recover`` appends the entry when the file
+was written, or drops the journal when it was not, so a crash leaves both or neither.  A promoted
+version that no chain entry records is a problem for ``verify_archive`` and is refused by the
+production-version lookup (``production_snapshot``).
+
+Damage
+------
+A run refuses to append to an archive that ``verify_archive`` rejects (``require_intact``).  When the
+originals cannot be restored, ``acknowledge_damage`` appends an ``acknowledgement`` entry naming each
+problem (and recording, as found, run folders and promoted versions whose chain entries were lost);
+``verify_archive`` then reports those problems as ``acknowledged`` notes and the archive can continue.
 """
 
 from __future__ import annotations
@@ -50,7 +66,7 @@ from typing import Any
 from fitaudit.core.exceptions import FitauditError, InputError
 
 from ._io import canonical_json, sha256_bytes, sha256_file, utc_now, write_once, write_once_chunks
-from .params import ParameterStoreError, list_versions, verify_params
+from .params import ParameterStoreError, ParameterVersion, list_versions, promotion_fields, verify_params, write_fields
 from .registry import SAFE_ID
 
 __all__ = [
@@ -73,11 +89,19 @@ __all__ = [
     "list_runs",
     "record_signoff",
     "purge_runs",
+    "record_promotion",
+    "ProductionSnapshot",
+    "production_snapshot",
+    "acknowledge_damage",
+    "require_intact",
+    "chain_head",
+    "parse_head",
+    "history_runs",
 ]
 
 SAFE_NAME = SAFE_ID  # run ids and path segments follow the registry's rule for model ids
-CHAIN_KINDS = ("run", "promotion", "purge", "signoff")
-NOTE_KINDS = frozenset({"pending", "leftover"})
+CHAIN_KINDS = ("run", "promotion", "purge", "signoff", "acknowledgement")
+NOTE_KINDS = frozenset({"pending", "leftover", "acknowledged"})
 MANIFEST_SCHEMA_VERSION = 1
 GENESIS = "0" * 64
 
@@ -91,6 +115,7 @@ _WORK = ".work"
 _LOCK = ".lock"
 _APPEND_JOURNAL = "append.json"
 _PURGE_JOURNAL = "purge.json"
+_PROMOTION_PREFIX = "promotion-"  # .journal/promotion-<model-id>.json
 _MANIFEST = "manifest.json"
 _REPORT = "index.html"
 _ENTRY_KEYS = frozenset({"seq", "kind", "time", "payload", "prev", "hash"})
@@ -113,7 +138,8 @@ class ArchiveProblem:
     """One finding of :func:`verify_archive`.
 
     ``kind`` is one of ``chain``, ``missing``, ``added``, ``changed``, ``unrecorded``, ``layout``,
-    ``params``, ``journal`` (problems) or ``pending``, ``leftover`` (notes, see ``NOTE_KINDS``);
+    ``params``, ``journal`` (problems) or ``pending``, ``leftover``, ``acknowledged`` (notes, see
+    ``NOTE_KINDS``; ``acknowledged`` is a problem recorded by an ``acknowledgement`` chain entry);
     ``where`` names the file or chain line, relative to the archive root.
     """
 
@@ -316,6 +342,8 @@ def _append_bytes(path: pathlib.Path, data: bytes) -> None:
         while view:
             view = view[os.write(fd, view):]
         os.fsync(fd)
+    except OSError as exc:  # a failed write names no file: name the chain
+        raise OSError(exc.errno, exc.strerror, str(path)) from exc
     finally:
         os.close(fd)
 
@@ -337,6 +365,7 @@ class _Chain:
     problems: tuple[ArchiveProblem, ...]
     data: bytes
     torn: bytes  # trailing bytes after the last newline (an interrupted append, or damage)
+    last_hash: str | None = None  # the hash the next line's prev must equal (None: not checked)
 
 
 def _entry_hash(entry: dict) -> str:
@@ -379,18 +408,72 @@ def _load_chain(root: pathlib.Path) -> _Chain:
         else:
             entries.append((line_no, entry))
         expected_prev = entry["hash"] if isinstance(entry["hash"], str) else None
-    return _Chain(tuple(entries), tuple(problems), data, torn)
+    return _Chain(tuple(entries), tuple(problems), data, torn, expected_prev)
 
 
-def _intact_chain(root: pathlib.Path) -> _Chain:
+@dataclasses.dataclass
+class _Acks:
+    """What the valid ``acknowledgement`` entries of a chain record."""
+
+    problems: dict[tuple[str, str, str], tuple[int, str]] = dataclasses.field(default_factory=dict)  # -> (line, by)
+    runs: list[tuple[int, dict]] = dataclasses.field(default_factory=list)  # adopted run folders
+    promotions: list[tuple[int, dict]] = dataclasses.field(default_factory=list)  # adopted promoted versions
+
+    def covers(self, problem: ArchiveProblem) -> tuple[int, str] | None:
+        """(line, by) of the acknowledgement naming exactly this problem, else None."""
+        return self.problems.get((problem.kind, problem.where, problem.message))
+
+    def mark(self, problems: list[ArchiveProblem]) -> list[ArchiveProblem]:
+        """``problems`` with each acknowledged one turned into an ``acknowledged`` note."""
+        out = []
+        for p in problems:
+            hit = None if p.is_note else self.covers(p)
+            if hit:
+                p = ArchiveProblem("acknowledged", p.where, f"{p.message} (damage acknowledged at {_CHAIN} line {hit[0]} by {hit[1]})")
+            out.append(p)
+        return out
+
+
+def _line_of(problem: ArchiveProblem) -> int | None:
+    prefix = f"{_CHAIN} line "
+    return int(problem.where[len(prefix):]) if problem.where.startswith(prefix) and problem.where[len(prefix):].isdigit() else None
+
+
+def _acknowledgements(chain: _Chain) -> _Acks:
+    """Collect the records of every well-formed ``acknowledgement`` entry (its own line undamaged)."""
+    acks = _Acks()
+    damaged = {_line_of(p) for p in chain.problems}
+    for line, entry in chain.entries:
+        if entry["kind"] != "acknowledgement" or line in damaged:
+            continue
+        payload = entry["payload"]
+        by = str(payload.get("by", "?"))
+        for item in payload.get("problems") or []:
+            if isinstance(item, dict) and all(isinstance(item.get(k), str) for k in ("kind", "where", "message")):
+                acks.problems.setdefault((item["kind"], item["where"], item["message"]), (line, by))
+        acks.runs += [(line, item) for item in payload.get("runs") or [] if isinstance(item, dict)]
+        acks.promotions += [(line, item) for item in payload.get("promotions") or [] if isinstance(item, dict)]
+    return acks
+
+
+_RESTORE_OR_ACKNOWLEDGE = (
+    "Restore chain.jsonl from a trusted copy (a backup), or, if it cannot be restored, record the damage with "
+    "`fitaudit acknowledge ARCHIVE --by NAME --note TEXT` so that the archive can continue"
+)
+
+
+def _intact_chain(root: pathlib.Path, *, allow_damage: bool = False) -> _Chain:
+    """The chain, refusing damage that no acknowledgement covers (unless ``allow_damage``)."""
     chain = _load_chain(root)
     if chain.torn and not chain.problems and (root / _JOURNAL / _APPEND_JOURNAL).exists():
         raise ArchiveError(f"an append to {_CHAIN} was interrupted; call recover() to complete it")
-    if chain.problems or chain.torn:
-        first = chain.problems[0] if chain.problems else ArchiveProblem("chain", _CHAIN, "ends with an incomplete line")
+    acks = _acknowledgements(chain)
+    open_problems = [p for p in chain.problems if not acks.covers(p)]
+    if (open_problems or chain.torn) and not allow_damage:
+        first = open_problems[0] if open_problems else ArchiveProblem("chain", _CHAIN, "ends with an incomplete line")
         raise ArchiveError(
-            f"{first}; the chain is damaged, so nothing more is appended. Run `fitaudit verify` on the archive "
-            "and restore chain.jsonl from a trusted copy"
+            f"{first}; the chain is damaged, so nothing more is appended (`fitaudit verify` lists every problem). "
+            + _RESTORE_OR_ACKNOWLEDGE
         )
     return chain
 
@@ -422,17 +505,21 @@ def _settle_append(root: pathlib.Path) -> str | None:
     return action
 
 
-def _append_locked(root: pathlib.Path, kind: str, payload: dict) -> dict:
-    """Append one entry; the caller holds the archive lock."""
+def _append_locked(root: pathlib.Path, kind: str, payload: dict, *, allow_damage: bool = False) -> dict:
+    """Append one entry; the caller holds the archive lock.
+
+    ``seq`` is the entry's line number and ``prev`` the hash of the last well-formed entry (after
+    acknowledged damage the two may be more than one line apart).
+    """
     _settle_append(root)
-    chain = _intact_chain(root)
+    chain = _intact_chain(root, allow_damage=allow_damage)
     last = chain.entries[-1][1] if chain.entries else None
     body = {
-        "seq": 1 + (last["seq"] if last else 0),
+        "seq": chain.data.count(b"\n") + 1,
         "kind": kind,
         "time": utc_now(),
         "payload": payload,
-        "prev": last["hash"] if last else GENESIS,
+        "prev": chain.last_hash or (last["hash"] if last else GENESIS),
     }
     line = canonical_json({**body, "hash": _entry_hash(body)}) + b"\n"
     _write_journal(root, _APPEND_JOURNAL, {"offset": len(chain.data), "line": line.decode("utf-8")})
@@ -464,12 +551,14 @@ def append_chain(archive_root: str | os.PathLike, kind: str, payload: dict) -> d
         The archive folder.
     kind : {"promotion"}
         Only promotions are appended directly.  ``run`` entries come from :meth:`RunWriter.finish`,
-        ``purge`` from :func:`purge_runs` and ``signoff`` from :func:`record_signoff`, which check
-        what they record.
+        ``purge`` from :func:`purge_runs`, ``signoff`` from :func:`record_signoff` and
+        ``acknowledgement`` from :func:`acknowledge_damage`, which check what they record.
     payload : dict
-        For a promotion: ``path`` (``"params/<model-id>/<n>.json"``, the ``promoted`` version written by
-        :func:`fitaudit.tasks.params.promote`) and ``sha256`` (that version's ``sha256`` field); any
-        further JSON fields (model id, versions, approver, note) are kept.
+        For a promotion: ``path`` (``"params/<model-id>/<n>.json"``, a ``promoted`` version) and
+        ``sha256`` (that version's ``sha256`` field); any further JSON fields (model id, versions,
+        approver, note) are kept.  :func:`record_promotion` (which
+        :func:`fitaudit.tasks.params.promote` calls) writes the version and this entry together; a
+        promotion it recorded is not recorded twice: the existing entry is returned.
 
     Returns
     -------
@@ -487,7 +576,8 @@ def append_chain(archive_root: str | os.PathLike, kind: str, payload: dict) -> d
     """
     if kind not in CHAIN_KINDS:
         raise InputError(f"chain entry kind {kind!r} is unknown; valid kinds are {list(CHAIN_KINDS)}")
-    helper = {"run": "RunWriter.finish()", "purge": "purge_runs()", "signoff": "record_signoff()"}.get(kind)
+    helper = {"run": "RunWriter.finish()", "purge": "purge_runs()", "signoff": "record_signoff()",
+              "acknowledgement": "acknowledge_damage()"}.get(kind)
     if helper:
         raise InputError(f"{kind!r} chain entries are appended by {helper}, which checks what they record; call it instead")
     root = _root(archive_root)
@@ -496,6 +586,11 @@ def append_chain(archive_root: str | os.PathLike, kind: str, payload: dict) -> d
         problem = _promotion_problem(root, payload)
         if problem:
             raise InputError(f"promotion not recorded: {problem}")
+        _settle_append(root)
+        for _, entry in _intact_chain(root).entries:
+            recorded = entry["payload"]
+            if entry["kind"] == "promotion" and (recorded.get("path"), recorded.get("sha256")) == (payload["path"], payload["sha256"]):
+                return entry
         return _append_locked(root, kind, payload)
 
 
@@ -585,14 +680,27 @@ def _interpret(chain: _Chain) -> tuple[dict[str, _RunRecord], list[ArchiveProble
                 problems.append(ArchiveProblem("chain", where, message))
             else:
                 record.signoffs.append({**payload, "time": entry["time"], "line": line})
+        elif entry["kind"] == "acknowledgement":
+            for item in payload.get("runs") or []:  # run folders found without their chain entry, recorded as found
+                problem = _run_payload_problem(item) if isinstance(item, dict) else "is not an object"
+                if problem:
+                    problems.append(ArchiveProblem("chain", where, f"acknowledged run: {problem}"))
+                elif item["run_id"] in runs:
+                    problems.append(ArchiveProblem("chain", where, f"acknowledges run {item['run_id']}, which is already recorded"))
+                else:
+                    runs[item["run_id"]] = _RunRecord(
+                        item["run_id"], item["path"], item["as_of"], item["manifest_sha256"], item.get("report_sha256"), line, entry["time"],
+                    )
     return runs, problems
 
 
 def _intact_runs(root: pathlib.Path) -> tuple[_Chain, dict[str, _RunRecord]]:
     chain = _intact_chain(root)
     runs, problems = _interpret(chain)
+    acks = _acknowledgements(chain)
+    problems = [p for p in problems if not acks.covers(p)]
     if problems:
-        raise ArchiveError(f"{problems[0]}; run `fitaudit verify` on the archive and restore chain.jsonl from a trusted copy")
+        raise ArchiveError(f"{problems[0]}; `fitaudit verify` lists every problem. {_RESTORE_OR_ACKNOWLEDGE}")
     return chain, runs
 
 
@@ -715,6 +823,17 @@ class _Journals:
     append: dict | None = None
     purge: dict | None = None
     runs: dict[str, dict] = dataclasses.field(default_factory=dict)  # target path -> run journal
+    promotions: dict[str, dict] = dataclasses.field(default_factory=dict)  # params path -> promotion journal
+
+
+def _promotion_journal_path(record: object, name: str) -> str | None:
+    """The params path of a well-formed promotion journal named ``name``, else None."""
+    if not isinstance(record, dict) or not isinstance(record.get("payload"), dict) or not isinstance(record.get("record"), dict):
+        return None
+    match = _PARAMS_PATH.fullmatch(str(record["payload"].get("path")))
+    if not match or name != f"{_PROMOTION_PREFIX}{match['model']}.json" or not _HEX64.fullmatch(str(record["payload"].get("sha256"))):
+        return None
+    return record["payload"]["path"]
 
 
 def _read_journals(root: pathlib.Path, problems: list[ArchiveProblem]) -> _Journals:
@@ -738,6 +857,11 @@ def _read_journals(root: pathlib.Path, problems: list[ArchiveProblem]) -> _Journ
         elif path.name == _PURGE_JOURNAL and isinstance(record.get("payload"), dict):
             journals.purge = record
             problems.append(ArchiveProblem("pending", rel, "a purge was interrupted; recover() finishes or rolls it back"))
+        elif path.name.startswith(_PROMOTION_PREFIX) and _promotion_journal_path(record, path.name):
+            journals.promotions[record["payload"]["path"]] = record
+            problems.append(ArchiveProblem(
+                "pending", rel, f"promotion {record['payload']['path']} was interrupted; recover() completes or rolls it back",
+            ))
         elif path.name == f"run-{_run_id_of(record)}.json" and SAFE_NAME.fullmatch(str(record.get("staging"))):
             journals.runs[record["payload"]["path"]] = record
             problems.append(ArchiveProblem(
@@ -823,12 +947,14 @@ def verify_archive(
     archive_root : path
         The archive folder (only read; verification works on a read-only copy).
     include_notes : bool, default False
-        Also return notes (``kind`` in ``NOTE_KINDS``): publications, appends and purges interrupted
-        after their journal was written, and private leftovers; ``recover()`` settles them.
+        Also return notes (``kind`` in ``NOTE_KINDS``): publications, appends, promotions and purges
+        interrupted after their journal was written, and private leftovers (``recover()`` settles
+        them), and problems that an ``acknowledgement`` chain entry records (``acknowledged``).
     expected_head : str, optional
-        A chain hash recorded elsewhere (for example printed by an earlier verification).  A hash
-        chain alone cannot show that entries were cut from its end, or that it was rewritten
-        wholesale; an outside copy of a later head can.
+        A chain head recorded elsewhere, as ``fitaudit verify`` and ``fitaudit run`` print it
+        (``head: <sha256> (seq N)``, or the bare SHA-256; see :func:`parse_head`).  A hash chain
+        alone cannot show that entries were cut from its end, or that it was rewritten wholesale;
+        an outside copy of a later head can.
 
     Returns
     -------
@@ -844,37 +970,277 @@ def verify_archive(
     folder under ``runs/`` is recorded, or covered by a run journal (a *pending* note); sign-offs and
     purges refer to recorded runs with the same manifest hash; the parameter store passes
     :func:`fitaudit.tasks.params.verify_params`, each parameter file is byte-for-byte the canonical
-    JSON the store writes, and every ``promotion`` entry's ``sha256`` matches the version it names.
+    JSON the store writes, every ``promotion`` entry's ``sha256`` matches the version it names (so
+    a recorded production version that is missing is a problem), and every ``promoted`` version is
+    recorded by a ``promotion`` entry (or an acknowledgement, or a pending promotion journal).
     """
+    head = parse_head(expected_head) if expected_head is not None else None
     root = _root(archive_root)
     if not root.is_dir():
         return [ArchiveProblem("missing", str(root), "archive folder not found")]
     with _archive_lock(root, shared=True):
-        problems: list[ArchiveProblem] = []
-        chain = _load_chain(root)
-        problems += chain.problems
-        journals = _read_journals(root, problems)
-        unjournaled = [f for f in (root / _RUNS).glob("*/*") if _rel(root, f) not in journals.runs]
-        if not (root / _CHAIN).exists() and unjournaled:
-            problems.append(ArchiveProblem("missing", _CHAIN, "is missing although run folders exist (chain deleted)"))
-        problems += _check_chain_tail(chain, journals)
-        runs, meaning = _interpret(chain)
-        problems += meaning
-        problems += _check_recorded_runs(root, runs, journals)
-        problems += _check_run_tree(root, runs, journals)
-        for line, entry in chain.entries:
-            if entry["kind"] == "promotion":
-                problem = _promotion_problem(root, entry["payload"])
-                if problem:
-                    problems.append(ArchiveProblem("params", f"{_CHAIN} line {line}", f"promotion: {problem}"))
-        problems += _check_params(root)
-        problems += _leftovers(root)
-        if expected_head is not None and all(entry["hash"] != expected_head for _, entry in chain.entries):
+        problems = _verify_locked(root, head)
+    return problems if include_notes else [p for p in problems if not p.is_note]
+
+
+def _verify_locked(root: pathlib.Path, head: tuple[str, int | None] | None = None) -> list[ArchiveProblem]:
+    """Every problem and note of :func:`verify_archive`, acknowledged ones marked; the caller holds a lock."""
+    problems: list[ArchiveProblem] = []
+    chain = _load_chain(root)
+    problems += chain.problems
+    journals = _read_journals(root, problems)
+    unjournaled = [f for f in (root / _RUNS).glob("*/*") if _rel(root, f) not in journals.runs]
+    if not (root / _CHAIN).exists() and unjournaled:
+        problems.append(ArchiveProblem("missing", _CHAIN, "is missing although run folders exist (chain deleted)"))
+    problems += _check_chain_tail(chain, journals)
+    runs, meaning = _interpret(chain)
+    problems += meaning
+    problems += _check_recorded_runs(root, runs, journals)
+    problems += _check_run_tree(root, runs, journals)
+    acks = _acknowledgements(chain)
+    for line, entry in chain.entries:
+        if entry["kind"] == "promotion":
+            problem = _promotion_problem(root, entry["payload"])
+            if problem:
+                problems.append(ArchiveProblem("params", f"{_CHAIN} line {line}", f"promotion: {problem}"))
+    for line, item in acks.promotions:
+        problem = _promotion_problem(root, item)
+        if problem:
+            problems.append(ArchiveProblem("params", f"{_CHAIN} line {line}", f"acknowledged promotion: {problem}"))
+    problems += _check_promotion_records(root, _recorded_promotions(chain, acks), journals)
+    problems += _check_params(root)
+    problems += _leftovers(root)
+    if head is not None:
+        digest, seq = head
+        found = [line for line, entry in chain.entries if entry["hash"] == digest]
+        if not found or (seq is not None and seq not in found):
+            where = "" if seq is None else f" at seq {seq}"
             problems.append(ArchiveProblem(
                 "chain", _CHAIN,
-                f"does not contain the expected head {expected_head[:12]}... (lines removed from its end, or the chain rewritten)",
+                f"does not contain the expected head {digest[:12]}...{where} (lines removed from its end, or the chain rewritten)",
             ))
-    return problems if include_notes else [p for p in problems if not p.is_note]
+    return acks.mark(problems)
+
+
+# ----------------------------------------------------------------------------------------------
+# promotions: recorded with their chain entry, checked by the production-version lookup
+
+
+def _recorded_promotions(chain: _Chain, acks: _Acks) -> dict[str, tuple[str, int]]:
+    """``params path -> (sha256, line)`` of every promotion the chain records, oldest first.
+
+    Promotion entries on undamaged lines and promoted versions recorded by an acknowledgement; a
+    path recorded again moves to the end (it is newer).
+    """
+    damaged = {_line_of(p) for p in chain.problems}
+    items = [(line, e["payload"]) for line, e in chain.entries if e["kind"] == "promotion" and line not in damaged]
+    out: dict[str, tuple[str, int]] = {}
+    for line, payload in sorted(items + acks.promotions, key=lambda item: item[0]):
+        path, digest = payload.get("path"), payload.get("sha256")
+        if isinstance(path, str) and isinstance(digest, str) and _PARAMS_PATH.fullmatch(path):
+            out.pop(path, None)
+            out[path] = (digest, line)
+    return out
+
+
+def _check_promotion_records(root: pathlib.Path, recorded: dict[str, tuple[str, int]], journals: _Journals) -> list[ArchiveProblem]:
+    """Every ``promoted`` version must be recorded in the chain (or be a pending promotion)."""
+    problems = []
+    for path in sorted((root / _PARAMS).glob("*/*.json")):
+        rel = _rel(root, path)
+        if not _PARAMS_PATH.fullmatch(rel) or path.is_symlink() or not path.is_file():
+            continue
+        try:
+            data = json.loads(path.read_bytes())
+        except (OSError, ValueError):
+            continue  # reported by verify_params
+        if not isinstance(data, dict) or data.get("status") != "promoted":
+            continue
+        pending = journals.promotions.get(rel)
+        if pending is not None:
+            if data.get("sha256") != pending["payload"]["sha256"]:
+                message = "differs from the version its interrupted promotion journal records (file changed after a crash)"
+                problems.append(ArchiveProblem("params", rel, message))
+        elif rel not in recorded:
+            problems.append(ArchiveProblem(
+                "params", rel,
+                "is a promoted parameter version that no promotion entry in chain.jsonl records (written by hand or "
+                "outside `fitaudit promote`); the production-version lookup refuses it",
+            ))
+    return problems
+
+
+def _production_locked(root: pathlib.Path, recorded: dict[str, tuple[str, int]], pending: set[str], model_id: str) -> tuple[ParameterVersion | None, str | None]:
+    """(production version, None) or (None, why it cannot be used); the caller holds a lock."""
+    try:
+        versions = list_versions(root, model_id)
+    except ParameterStoreError as exc:
+        return None, str(exc).replace(f"{root}/", "")
+    by_path = {f"{_PARAMS}/{model_id}/{v.version}.json": v for v in versions}
+    for path, version in by_path.items():
+        if version.status != "promoted":
+            continue
+        record = recorded.get(path)
+        if record is None:
+            why = ("its promotion was interrupted (the next run's recovery settles it)" if path in pending
+                   else "no promotion entry in chain.jsonl records it (written by hand or outside `fitaudit promote`)")
+            return None, (f"model {model_id!r}: {path} is a promoted parameter version, but {why}; it is not used as the "
+                          "production version. Run `fitaudit verify` on the archive")
+        if record[0] != version.sha256:
+            return None, (f"model {model_id!r}: {path} differs from the promotion recorded at {_CHAIN} line {record[1]} "
+                          f"(SHA-256 {version.sha256[:12]}..., recorded {record[0][:12]}...); restore it from a backup")
+    mine = [(path, record) for path, record in recorded.items() if path.startswith(f"{_PARAMS}/{model_id}/")]
+    if not mine:
+        return None, None
+    path, (_digest, line) = mine[-1]
+    if path not in by_path:
+        return None, (f"model {model_id!r}: {path}, the production version recorded at {_CHAIN} line {line}, is missing; "
+                      "restore it from a backup, or promote a version again (`fitaudit promote`)")
+    return by_path[path], None
+
+
+@dataclasses.dataclass(frozen=True)
+class ProductionSnapshot:
+    """The production versions of a set of models, read together under the archive lock.
+
+    ``versions`` maps each model id to its production :class:`~fitaudit.tasks.params.ParameterVersion`
+    (None: never promoted); ``errors`` maps a model id to why its parameter store cannot be used;
+    ``seq`` and ``head`` are the chain's length and last hash when the snapshot was taken.
+    """
+
+    versions: dict
+    errors: dict
+    seq: int
+    head: str | None
+
+    def to_dict(self) -> dict:
+        """The manifest's record: chain position and, per model, version and SHA-256 (or the error)."""
+        out: dict[str, Any] = {}
+        for model_id in sorted(set(self.versions) | set(self.errors)):
+            version = self.versions.get(model_id)
+            if model_id in self.errors:
+                out[model_id] = {"error": self.errors[model_id]}
+            else:
+                out[model_id] = None if version is None else {"version": version.version, "sha256": version.sha256}
+        return {"chain_seq": self.seq, "chain_head": self.head, "versions": out}
+
+
+def production_snapshot(archive_root: str | os.PathLike, model_ids) -> ProductionSnapshot:
+    """The production versions of ``model_ids``, all read at one moment of the archive.
+
+    Read under the archive's shared lock, so a promotion (which holds the exclusive lock while it
+    writes its version and its chain entry) is seen whole or not at all, and one audit run uses one
+    state of the parameter store.  A model whose production version cannot be used (a ``promoted``
+    version with no matching chain entry, a recorded production version that is missing, an
+    altered file) gets an entry in ``errors`` naming the file and the fix.
+
+    Raises
+    ------
+    ArchiveError
+        When the chain is damaged (and the damage not acknowledged).
+    """
+    ids = list(dict.fromkeys(model_ids))
+    root = _root(archive_root)
+    if not root.is_dir():
+        return ProductionSnapshot({m: None for m in ids}, {}, 0, None)
+    with _archive_lock(root, shared=True):
+        chain = _intact_chain(root)
+        recorded = _recorded_promotions(chain, _acknowledgements(chain))
+        pending = set(_read_journals(root, []).promotions)
+        versions, errors = {}, {}
+        for model_id in ids:
+            version, error = _production_locked(root, recorded, pending, model_id)
+            versions[model_id] = version
+            if error:
+                errors[model_id] = error
+        last = chain.entries[-1][1]["hash"] if chain.entries else None
+        return ProductionSnapshot(versions, errors, chain.data.count(b"\n"), last)
+
+
+def record_promotion(
+    archive_root: str | os.PathLike,
+    model_id: str,
+    version: int,
+    *,
+    approved_by: str,
+    note: str,
+    details: dict | None = None,
+) -> ParameterVersion:
+    """Promote ``version`` of ``model_id``: a new ``promoted`` version and its chain entry, together.
+
+    Under the archive lock, ``.journal/promotion-<model>.json`` records the new version and the
+    chain payload, the version file is written once, the ``promotion`` entry appended and the
+    journal removed; :func:`recover` finishes or rolls back an interrupted promotion, so a crash
+    leaves both or neither.  The entry's payload holds the version's path and SHA-256, the model
+    id, the promoted version, the approver and ``details``.
+
+    Returns
+    -------
+    ParameterVersion
+        The new ``promoted`` version.
+
+    Raises
+    ------
+    ParameterStoreError
+        As :func:`fitaudit.tasks.params.promotion_fields` (unknown version, already in production,
+        blank approver or note).
+    ArchiveError
+        The chain is damaged.
+    """
+    extra = _payload_json("promotion", dict(details or {}))
+    root = _root(archive_root)
+    with _archive_lock(root):
+        _settle_append(root)
+        chain = _intact_chain(root)
+        for journal_path in sorted((root / _JOURNAL).glob(f"{_PROMOTION_PREFIX}*.json")):
+            _recover_promotion(root, journal_path)
+            chain = _intact_chain(root)
+        recorded = _recorded_promotions(chain, _acknowledgements(chain))
+        current, _ = _production_locked(root, recorded, set(), model_id)
+        fields = promotion_fields(root, model_id, version, approved_by=approved_by, note=note, current=current)
+        journal = f"{_PROMOTION_PREFIX}{model_id}.json"
+        claimed: dict[str, Any] = {}
+
+        def claim(record: ParameterVersion) -> None:
+            if claimed:
+                _remove_journal(root, journal)
+            claimed["payload"] = {**extra, "path": f"{_PARAMS}/{model_id}/{record.version}.json", "sha256": record.sha256,
+                                  "model_id": model_id, "promotes": version, "approved_by": approved_by}
+            _write_journal(root, journal, {"payload": claimed["payload"], "record": record.to_dict()})
+            _step("promotion-journal-written")
+
+        record = write_fields(root, fields, on_claim=claim)
+        _step("promotion-written")
+        _append_locked(root, "promotion", claimed["payload"])
+        _step("promotion-appended")
+        _remove_journal(root, journal)
+        return record
+
+
+def _recover_promotion(root: pathlib.Path, journal_path: pathlib.Path) -> str:
+    """Finish (append the entry) or roll back (drop the journal) an interrupted promotion."""
+    try:
+        record = _read_json(journal_path)
+    except ValueError:
+        record = None
+    path = _promotion_journal_path(record, journal_path.name)
+    if path is None:
+        raise ArchiveError(f"{_rel(root, journal_path)} is not a journal this archive writes; run `fitaudit verify` and investigate")
+    payload, target = record["payload"], root / path
+    chain = _intact_chain(root)
+    done = any(e["kind"] == "promotion" and (e["payload"].get("path"), e["payload"].get("sha256")) == (path, payload["sha256"])
+               for _, e in chain.entries)
+    if done:
+        action = f"promotion {path}: had finished; removed its journal"
+    elif target.exists():
+        if target.read_bytes() != canonical_json(record["record"], indent=2):
+            raise ArchiveError(f"cannot complete the interrupted promotion {path}: the file differs from its journal; investigate before recovering")
+        _append_locked(root, "promotion", {**payload, "recovered": True})
+        action = f"promotion {path}: completed interrupted promotion (appended its chain entry)"
+    else:
+        action = f"promotion {path}: rolled back interrupted promotion (the version was not written)"
+    _remove_journal(root, journal_path.name)
+    return action
 
 
 # ----------------------------------------------------------------------------------------------
@@ -1239,8 +1605,9 @@ def recover(archive_root: str | os.PathLike) -> list[str]:
 
     Finishes an interrupted chain append, completes each journaled publication whose folder was
     already renamed into ``runs/`` (appending its chain entry, marked ``"recovered": true``) or rolls
-    it back, finishes or rolls back an interrupted purge, and removes abandoned staging and work
-    folders (those not locked by a live writer or run).
+    it back, does the same for an interrupted promotion (entry appended when its version file was
+    written, journal dropped when not), finishes or rolls back an interrupted purge, and removes
+    abandoned staging and work folders (those not locked by a live writer or run).
 
     Returns
     -------
@@ -1262,6 +1629,8 @@ def recover(archive_root: str | os.PathLike) -> list[str]:
         _, runs = _intact_runs(root)
         for journal_path in sorted((root / _JOURNAL).glob("run-*.json")):
             actions.append(_recover_run(root, journal_path, runs))
+        for journal_path in sorted((root / _JOURNAL).glob(f"{_PROMOTION_PREFIX}*.json")):
+            actions.append(_recover_promotion(root, journal_path))
         if (root / _JOURNAL / _PURGE_JOURNAL).exists():
             actions.append(_recover_purge(root, _intact_chain(root)))
         actions += _remove_abandoned(root)
@@ -1382,3 +1751,236 @@ def purge_runs(archive_root: str | os.PathLike, *, before: _dt.date, reason: str
         _delete_run_folders(root, items)
         _remove_journal(root, _PURGE_JOURNAL)
         return entry
+
+
+# ----------------------------------------------------------------------------------------------
+# the chain's head, refusing damaged archives, acknowledging damage
+
+
+_HEAD = re.compile(r"^\s*(?:head:\s*)?(?P<hash>[0-9a-fA-F]{64})\s*(?:\(\s*seq\s+(?P<seq>[0-9]+)\s*\))?\s*$")
+
+
+def parse_head(text: str) -> tuple[str, int | None]:
+    """Read a chain head as ``fitaudit verify`` and ``fitaudit run`` print it.
+
+    Accepts ``head: <sha256> (seq N)``, ``<sha256> (seq N)`` or the bare 64-digit SHA-256;
+    returns ``(sha256, N or None)``.
+
+    Raises
+    ------
+    InputError
+        For anything else (a shortened hash included: it would prove little).
+    """
+    match = _HEAD.fullmatch(text) if isinstance(text, str) else None
+    if match is None:
+        raise InputError(
+            f"expected a chain head as `fitaudit verify` prints it, 'head: <64 hex digits> (seq N)', or the 64 hex "
+            f"digits alone; got {text!r}"
+        )
+    return match["hash"].lower(), int(match["seq"]) if match["seq"] else None
+
+
+def chain_head(archive_root: str | os.PathLike) -> tuple[str, int] | None:
+    """``(hash, seq)`` of the chain's last well-formed entry, or None for an empty archive.
+
+    Printed as ``head: <hash> (seq N)``; kept outside the archive, it lets ``fitaudit verify --head``
+    detect entries cut from the end of the chain or a chain rewritten wholesale.
+    """
+    root = _root(archive_root)
+    if not (root / _CHAIN).exists():
+        return None
+    with _archive_lock(root, shared=True):
+        chain = _load_chain(root)
+    if not chain.entries:
+        return None
+    line, entry = chain.entries[-1]
+    return entry["hash"], line
+
+
+_ADVICE = {
+    "chain": "restore chain.jsonl from a backup (lines cut from its end can be put back only while nothing else was appended)",
+    "unrecorded": "a run folder without its chain entry: restore chain.jsonl from a backup, or move the folder out of runs/ if it does not belong there",
+    "changed": "restore the named files from a backup of the archive",
+    "missing": "restore the named files or folders from a backup of the archive",
+    "added": "remove what was added to the run folders",
+    "params": "restore the named parameter files from a backup (versions are never edited; promote with `fitaudit promote`)",
+    "journal": "move the named journal files out of the archive",
+    "layout": "move the named entries out of runs/",
+}
+
+
+def _refusal(root: pathlib.Path, problems: list[ArchiveProblem]) -> str:
+    shown = "; ".join(str(p) for p in problems[:3]) + (f"; and {len(problems) - 3} more" if len(problems) > 3 else "")
+    advice = list(dict.fromkeys(_ADVICE.get(p.kind, _ADVICE["missing"]) for p in problems))
+    return (
+        f"the archive {root} fails verification, so nothing is added to it: {shown} (`fitaudit verify {root}` lists every "
+        f"problem). To go on: {'; '.join(advice)}. If the originals cannot be restored, record the damage in the chain "
+        f"with `fitaudit acknowledge {root} --by NAME --note TEXT` and run again"
+    )
+
+
+def require_intact(archive_root: str | os.PathLike) -> list[ArchiveProblem]:
+    """Refuse to add to an archive that :func:`verify_archive` rejects (call after :func:`recover`).
+
+    Returns
+    -------
+    list of ArchiveProblem
+        The ``acknowledged`` notes (damage an ``acknowledgement`` entry records), for the manifest.
+
+    Raises
+    ------
+    ArchiveError
+        Naming the first problems, what to restore, and how to record the damage when the originals
+        are lost (:func:`acknowledge_damage`).
+    """
+    root = _root(archive_root)
+    if not root.is_dir():
+        return []
+    with _archive_lock(root, shared=True):
+        found = _verify_locked(root)
+    problems = [p for p in found if not p.is_note]
+    if problems:
+        raise ArchiveError(_refusal(root, problems))
+    return [p for p in found if p.kind == "acknowledged"]
+
+
+def _adoptable_run(root: pathlib.Path, rel: str) -> dict | None:
+    """The run payload of an unrecorded run folder whose manifest names it, else None."""
+    match = _RUN_PATH.fullmatch(rel)
+    manifest_path = root / rel / _MANIFEST
+    if not match or manifest_path.is_symlink() or not manifest_path.is_file():
+        return None
+    data = manifest_path.read_bytes()
+    try:
+        manifest = json.loads(data)
+        files = manifest["files"]
+        payload = {"run_id": manifest["run_id"], "path": rel, "as_of": manifest["as_of"], "manifest_sha256": sha256_bytes(data),
+                   "report_sha256": files.get(_REPORT, {}).get("sha256")}
+    except (ValueError, KeyError, TypeError, AttributeError):
+        return None
+    return payload if payload["run_id"] == match["run_id"] and _run_payload_problem(payload) is None else None
+
+
+def _self_hash(path: pathlib.Path) -> str | None:
+    """The ``sha256`` field of a parameter version whose content matches it, else None."""
+    try:
+        data = json.loads(path.read_bytes())
+        stored = data.pop("sha256")
+    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        return None
+    return stored if isinstance(stored, str) and sha256_bytes(canonical_json(data)) == stored else None
+
+
+def acknowledge_damage(archive_root: str | os.PathLike, *, by: str, note: str) -> dict:
+    """Record the archive's current damage in an ``acknowledgement`` chain entry, so it can continue.
+
+    For damage that cannot be repaired from a backup.  Nothing recorded is deleted or rewritten:
+
+    * a chain line cut short (no final newline, no append journal) is ended with a newline; the
+      entry records its line number, size and SHA-256;
+    * journal files that verification rejects are moved into the entry (path, SHA-256, text) and
+      removed from ``.journal/``;
+    * a run folder found without its chain entry, whose ``manifest.json`` names it, is recorded as
+      found (run id, path, as-of date, manifest SHA-256): from then on it is checked like any run;
+    * a ``promoted`` parameter version with no promotion entry, intact by its own hash, is recorded
+      as found (path and SHA-256): the production-version lookup then accepts it;
+    * every other problem is listed (kind, where, message); :func:`verify_archive` then reports
+      exactly those as ``acknowledged`` notes; any new or different damage is a problem again.
+
+    Parameters
+    ----------
+    by, note : str
+        Who acknowledges the damage, and what happened (both non-blank; both in the entry).
+
+    Returns
+    -------
+    dict
+        The chain entry.
+
+    Raises
+    ------
+    ArchiveError
+        When verification finds nothing to acknowledge.
+    """
+    by, note = _text(by, "by"), _text(note, "note")
+    root = _root(archive_root)
+    if not root.is_dir():
+        raise ArchiveError(f"archive folder {root} not found")
+    with _archive_lock(root):
+        with contextlib.suppress(ArchiveError):  # a journal that does not match the chain is moved aside below
+            _settle_append(root)
+        removed = []
+        for problem in _verify_locked(root):
+            path = root / problem.where
+            if problem.kind == "journal" and problem.where.startswith(f"{_JOURNAL}/") and path.is_file():
+                data = path.read_bytes()
+                removed.append({"path": problem.where, "sha256": sha256_bytes(data), "size": len(data),
+                                "text": data[:65536].decode("utf-8", "replace"), "message": problem.message})
+                path.unlink()
+        if removed:
+            _fsync_dir(root / _JOURNAL)
+        chain = _load_chain(root)
+        terminated = None
+        if chain.torn:
+            terminated = {"line": chain.data.count(b"\n") + 1, "size": len(chain.torn), "sha256": sha256_bytes(chain.torn)}
+            _append_bytes(root / _CHAIN, b"\n")
+            chain = _load_chain(root)
+        own_line = chain.data.count(b"\n") + 1
+        source = f"{_CHAIN} line {own_line}"  # the acknowledgement's own line
+        runs, promotions, problems = [], [], []
+        for problem in _verify_locked(root):
+            if problem.is_note:
+                continue
+            if problem.kind == "unrecorded" and problem.message.startswith("is not recorded in chain.jsonl"):
+                adopted = _adoptable_run(root, problem.where)
+                if adopted is not None:
+                    runs.append(adopted)
+                    problems += _check_run_folder(root, problem.where, adopted["run_id"], adopted["manifest_sha256"], source)
+                    continue
+            if problem.kind == "params" and _PARAMS_PATH.fullmatch(problem.where) and "no promotion entry" in problem.message:
+                digest = _self_hash(root / problem.where)
+                if digest is not None:
+                    promotions.append({"path": problem.where, "sha256": digest})
+                    continue
+            problems.append(problem)
+        if not (problems or runs or promotions or terminated or removed):
+            raise ArchiveError(f"`fitaudit verify` finds no problem in {root}; there is no damage to acknowledge")
+        payload = {"by": by, "note": note, "problems": [p.to_dict() for p in problems], "runs": runs, "promotions": promotions}
+        if terminated:
+            payload["terminated_line"] = terminated
+        if removed:
+            payload["journals_removed"] = removed
+        return _append_locked(root, "acknowledgement", payload, allow_damage=True)
+
+
+def history_runs(archive_root: str | os.PathLike, before: _dt.date) -> list[dict]:
+    """The published, unpurged runs with an as-of date before ``before``, in chain order.
+
+    Each is ``{"run_id", "path", "as_of", "seq", "manifest", "problem"}``: ``manifest`` is the run's
+    manifest when it matches the chain's record of it, else None and ``problem`` says why.
+    """
+    before = _as_date(before, "before")
+    root = _root(archive_root)
+    if not (root / _CHAIN).exists():
+        return []
+    out = []
+    with _archive_lock(root, shared=True):
+        _, runs = _intact_runs(root)
+        for record in runs.values():
+            if record.purged_line is not None or _dt.date.fromisoformat(record.as_of) >= before:
+                continue
+            item = {"run_id": record.run_id, "path": record.path, "as_of": record.as_of, "seq": record.line, "manifest": None, "problem": None}
+            try:
+                data = (root / record.path / _MANIFEST).read_bytes()
+            except OSError as exc:
+                item["problem"] = f"{record.path}/{_MANIFEST} cannot be read ({exc.strerror or exc})"
+            else:
+                if sha256_bytes(data) != record.manifest_sha256:
+                    item["problem"] = f"{record.path}/{_MANIFEST} differs from its record at {_CHAIN} line {record.line}"
+                else:
+                    try:
+                        item["manifest"] = json.loads(data)
+                    except ValueError:
+                        item["problem"] = f"{record.path}/{_MANIFEST} is not valid JSON"
+            out.append(item)
+    return out

@@ -2,8 +2,9 @@
 
 Layout: ``<archive>/params/<model-id>/<version>.json`` with versions 1, 2, 3, ... .  A file is
 written once and never changed: promotion writes a *new* version (status ``promoted``, with
-``promotes`` naming the version it puts into production) and never edits an old one.  The newest
-version with status ``promoted`` is the production version.
+``promotes`` naming the version it puts into production) and never edits an old one, and records
+it in the archive's hash chain in the same step (:func:`promote`).  The newest ``promoted`` version
+that the chain records is the production version.
 
 Every file holds the canonical JSON of a :class:`ParameterVersion`; its ``sha256`` is the SHA-256
 of the canonical JSON of every other field, so any edit to a stored file is detected when it is
@@ -21,7 +22,7 @@ import os
 import pathlib
 import re
 import threading
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Annotated, Any
 
@@ -41,6 +42,9 @@ __all__ = [
     "list_versions",
     "production_version",
     "promote",
+    "promotion_fields",
+    "version_fields",
+    "write_fields",
     "verify_params",
     "ParamsFileError",
     "ParamsFile",
@@ -181,6 +185,9 @@ def write_version(
 ) -> ParameterVersion:
     """Write the next parameter version of ``model_id`` (never overwriting an existing file).
 
+    For candidates.  A ``promoted`` version written here has no ``promotion`` chain entry, so the
+    production-version lookup and ``fitaudit verify`` refuse it: promote with :func:`promote`.
+
     Parameters
     ----------
     archive_root : path-like
@@ -203,7 +210,34 @@ def write_version(
         Unsafe id, unknown status, non-finite parameter, blank ``created_by``, or no free version
         number after many concurrent attempts.
     """
-    folder = _model_dir(archive_root, model_id)
+    fields = version_fields(
+        model_id, spec=spec, noise=noise, params=params, status=status, created_by=created_by,
+        lineage=lineage, note=note, promotes=promotes, created_at=created_at,
+    )
+    return write_fields(archive_root, fields)
+
+
+def version_fields(
+    model_id: str,
+    *,
+    spec: Mapping[str, Any],
+    noise: Mapping[str, Any],
+    params: Mapping[str, float],
+    status: str,
+    created_by: str,
+    lineage: Mapping[str, Any],
+    note: str = "",
+    promotes: int | None = None,
+    created_at: str | None = None,
+) -> dict:
+    """The checked, JSON-ready fields of a new version (all but ``version`` and ``sha256``).
+
+    Raises
+    ------
+    ParameterStoreError
+        As :func:`write_version`.
+    """
+    _model_dir(".", model_id)  # the id check
     if status not in STATUSES:
         raise ParameterStoreError(
             f"model {model_id!r}: status {status!r} is not one of {', '.join(map(repr, STATUSES))}"
@@ -216,7 +250,7 @@ def write_version(
         raise ParameterStoreError(
             f"model {model_id!r}: promotes={promotes!r} must be a version number (1, 2, ...) or None"
         )
-    fields = json_ready(
+    return json_ready(
         {
             "model_id": model_id,
             "status": status,
@@ -230,15 +264,36 @@ def write_version(
             "note": note,
         }
     )
+
+
+def write_fields(
+    archive_root: str | os.PathLike,
+    fields: Mapping[str, Any],
+    *,
+    on_claim: Callable[[ParameterVersion], None] | None = None,
+    on_lost: Callable[[ParameterVersion], None] | None = None,
+) -> ParameterVersion:
+    """Write ``fields`` (from :func:`version_fields`) as the next free version number.
+
+    ``on_claim(record)`` runs before the file is written and ``on_lost(record)`` when another writer
+    took that number first (the next number is then tried); the archive's promotion journal uses
+    them (:func:`fitaudit.tasks.archive.record_promotion`).
+    """
+    model_id = fields["model_id"]
+    folder = _model_dir(archive_root, model_id)
     with _WRITE_LOCK:
         numbers = _version_numbers(folder)
         version = (numbers[-1] if numbers else 0) + 1
         for _ in range(_RETRIES):
             content = {**fields, "version": version}
             record = ParameterVersion(**content, sha256=_digest(content))
+            if on_claim is not None:
+                on_claim(record)
             try:
                 write_once(folder / f"{version}.json", canonical_json(record.to_dict(), indent=2))
             except FileExistsError:
+                if on_lost is not None:
+                    on_lost(record)
                 version += 1  # another process took this number first
                 continue
             return record
@@ -290,19 +345,48 @@ def list_versions(archive_root: str | os.PathLike, model_id: str) -> list[Parame
 
 
 def production_version(archive_root: str | os.PathLike, model_id: str) -> ParameterVersion | None:
-    """The newest version with status ``promoted`` (None when nothing was promoted yet)."""
-    promoted = [v for v in list_versions(archive_root, model_id) if v.status == "promoted"]
-    return promoted[-1] if promoted else None
+    """The production version: the newest ``promoted`` version that the archive's chain records.
+
+    A ``promoted`` version that no ``promotion`` chain entry records (written by hand, or by a
+    promotion interrupted before its entry), one that differs from its entry, or a recorded
+    production version that is missing is refused, never skipped
+    (:func:`fitaudit.tasks.archive.production_snapshot`).
+
+    Returns
+    -------
+    ParameterVersion or None
+        None when nothing was promoted yet.
+
+    Raises
+    ------
+    ParameterStoreError
+        Naming the file and what to do.
+    """
+    from .archive import ArchiveError, production_snapshot
+
+    try:
+        snapshot = production_snapshot(archive_root, [model_id])
+    except ArchiveError as exc:
+        raise ParameterStoreError(str(exc)) from None
+    if model_id in snapshot.errors:
+        raise ParameterStoreError(snapshot.errors[model_id])
+    return snapshot.versions[model_id]
 
 
-def promote(
-    archive_root: str | os.PathLike, model_id: str, version: int, *, approved_by: str, note: str
-) -> ParameterVersion:
-    """Put ``version``'s parameters into production by writing a new ``promoted`` version.
+def promotion_fields(
+    archive_root: str | os.PathLike,
+    model_id: str,
+    version: int,
+    *,
+    approved_by: str,
+    note: str,
+    current: ParameterVersion | None,
+) -> dict:
+    """The fields of the ``promoted`` version that puts ``version`` into production.
 
-    The new record copies the spec, noise law and parameters of ``version``, records
-    ``promotes=version``, the approver as ``created_by``, the note, and a lineage pointing at the
-    promoted record and its hash.  Nothing existing is changed.
+    ``current`` is the production version now (or None).  The record copies the spec, noise law
+    and parameters of ``version``, records ``promotes=version``, the approver as ``created_by``, the
+    note, and a lineage pointing at the promoted record and its hash.
 
     Raises
     ------
@@ -318,15 +402,13 @@ def promote(
     if version not in versions:
         known = ", ".join(map(str, sorted(versions))) or "none"
         raise ParameterStoreError(f"model {model_id!r} has no parameter version {version}; stored versions: {known}")
-    current = production_version(archive_root, model_id)
     if current is not None and version in (current.version, current.promotes):
         raise ParameterStoreError(
             f"model {model_id!r}: version {version} is already the production version "
             f"(record {current.version}); nothing to promote"
         )
     source = versions[version]
-    return write_version(
-        archive_root,
+    return version_fields(
         model_id,
         spec=source.spec,
         noise=source.noise,
@@ -337,6 +419,32 @@ def promote(
         promotes=version,
         lineage={"promoted_from": version, "promoted_sha256": source.sha256, "source_lineage": source.lineage},
     )
+
+
+def promote(
+    archive_root: str | os.PathLike,
+    model_id: str,
+    version: int,
+    *,
+    approved_by: str,
+    note: str,
+    details: Mapping[str, Any] | None = None,
+) -> ParameterVersion:
+    """Put ``version``'s parameters into production: a new ``promoted`` version and its chain entry.
+
+    Both are written under the archive lock with a journal
+    (:func:`fitaudit.tasks.archive.record_promotion`), so a crash leaves both or neither; nothing
+    existing is changed.  ``details`` are extra JSON fields for the ``promotion`` chain entry (for
+    example where imported parameters came from).
+
+    Raises
+    ------
+    ParameterStoreError
+        When ``version`` does not exist, is already in production, or the approver or note is blank.
+    """
+    from .archive import record_promotion
+
+    return record_promotion(archive_root, model_id, version, approved_by=approved_by, note=note, details=details)
 
 
 def verify_params(archive_root: str | os.PathLike) -> list[str]:
@@ -661,7 +769,6 @@ def import_params(
     ParameterStoreError
         Unknown or rejected model id, blank ``by``, or a store problem.
     """
-    from .archive import append_chain
     from .registry import load_registry
 
     if not isinstance(by, str) or not by.strip():
@@ -688,18 +795,8 @@ def import_params(
         created_by=by.strip(), lineage=lineage,
         note=f"production parameters estimated outside fitaudit, imported from {path.name}" + (f"; {parsed.note}" if parsed.note else ""),
     )
-    promoted = promote(
+    return promote(
         archive_root, model_id, candidate.version, approved_by=parsed.approved_by,
         note=f"in production since {parsed.date.isoformat()}; imported by {by.strip()} from {path.name}",
+        details={"imported_by": by.strip(), "imported_from": path.name, "file_sha256": file_sha},
     )
-    append_chain(archive_root, "promotion", {
-        "path": f"params/{model_id}/{promoted.version}.json",
-        "sha256": promoted.sha256,
-        "model_id": model_id,
-        "promotes": candidate.version,
-        "approved_by": parsed.approved_by,
-        "imported_by": by.strip(),
-        "imported_from": path.name,
-        "file_sha256": file_sha,
-    })
-    return promoted

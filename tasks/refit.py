@@ -3,7 +3,8 @@
 For each model: the staged series is refitted and audited (with the production version, when
 there is one, so the record shows the check before and after).  When the refit check passes, the
 fitted parameters are written as a ``candidate`` parameter version, and promoted (a new
-``promoted`` version plus a ``promotion`` entry in the hash chain) when the policy is
+``promoted`` version plus a ``promotion`` entry in the hash chain, written together under the
+archive lock: :func:`fitaudit.tasks.archive.record_promotion`) when the policy is
 ``automatic`` or a person approved it.  When the refit check fails, the model class no longer
 fits: the candidate search lists neighbouring specifications and noise laws that pass.
 """
@@ -20,7 +21,6 @@ from fitaudit.core.audit import as_model
 from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.candidates import search_candidates
 
-from .archive import append_chain
 from .audit import audit_series_for
 from .batches import ModelInput, read_batch
 from .params import promote, write_version
@@ -93,14 +93,7 @@ def refit_input(
         if policy.refit_policy == "automatic" or approve:
             who = approved_by or (f"{operator} (automatic policy)" if policy.refit_policy == "automatic" else operator)
             note = "promoted automatically: the refit check passed" if not approve else "promotion approved"
-            promoted = promote(archive_root, item.model_id, version.version, approved_by=who, note=note)
-            append_chain(archive_root, "promotion", {
-                "path": f"params/{item.model_id}/{promoted.version}.json",
-                "sha256": promoted.sha256,
-                "model_id": item.model_id,
-                "promotes": version.version,
-                "approved_by": who,
-            })
+            promoted = promote(archive_root, item.model_id, version.version, approved_by=who, note=note, details={"run_id": run_id})
             record.update(status="promoted", promoted_version=promoted.version)
         else:
             record["status"] = "awaiting approval"
