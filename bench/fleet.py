@@ -39,6 +39,7 @@ GOAL_SHARE = 0.10
 WORK_FUNCTIONS = (
     ("fitaudit.tasks.registry", "load_registry"),
     ("fitaudit.flows.audit", "recover"),
+    ("fitaudit.flows.audit", "require_intact"),
     ("fitaudit.flows.audit", "load_history"),
     ("fitaudit.tasks.batches", "stage_inputs"),
     ("fitaudit.tasks.audit", "calibration_for"),

@@ -18,7 +18,7 @@ from prefect.task_runners import ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
 from fitaudit.core.vocabulary import VERDICTS
-from fitaudit.tasks.archive import new_run_id, open_work_folder, recover
+from fitaudit.tasks.archive import new_run_id, open_work_folder, recover, require_intact
 from fitaudit.tasks.audit import (
     Outcome,
     audit_batch_task,
@@ -35,6 +35,7 @@ from fitaudit.tasks.audit import (
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.events import emit_run_event, emit_verdict_events, publish_artifacts
 from fitaudit.tasks.publish import (
+    History,
     StagedRecord,
     code_commit,
     load_history,
@@ -62,9 +63,15 @@ def recover_task(archive: str) -> list[str]:
     return recover(archive) if pathlib.Path(archive).exists() else []
 
 
+@task(name="check-archive", cache_policy=NO_CACHE, persist_result=False)
+def check_archive_task(archive: str) -> list[str]:
+    """Refuse to add to an archive that ``fitaudit verify`` rejects; returns the acknowledged damage."""
+    return [str(p) for p in require_intact(archive)]
+
+
 @task(name="load-history", cache_policy=NO_CACHE, persist_result=False)
-def history_task(archive: str, as_of: dt.date, model_ids: list[str]) -> dict:
-    """Earlier verdicts per model from the archive."""
+def history_task(archive: str, as_of: dt.date, model_ids: list[str]) -> History:
+    """Earlier audits per model from the archive's audit runs, each checked against its manifest."""
     return load_history(archive, as_of, model_ids)
 
 
@@ -74,7 +81,9 @@ def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
     return finalize(outcomes, registry.policy)
 
 
-@task(name="publish-run", cache_policy=NO_CACHE, persist_result=False, retries=1, retry_delay_seconds=2)
+# never retried: a failure after the run folder's rename would be retried as "already published";
+# recover() settles an interrupted publication instead, and the original error is what the user sees
+@task(name="publish-run", cache_policy=NO_CACHE, persist_result=False)
 def publish_task(archive: str, head: dict, summary: dict, staged: list[StagedRecord], meta: dict, manifest: dict, run_id: str) -> dict:
     """Write the run folder atomically from the staged records and pages, refresh the archive index."""
     published = publish_staged(archive, head, summary, staged, meta, manifest, run_id=run_id)
@@ -209,6 +218,7 @@ def audit_flow(
 
     reg = load_registry_task(registry)
     recovered = recover_task(archive)
+    acknowledged = check_archive_task(archive)
     run_id = new_run_id(as_of)
     wanted = None if models is None else set(models)
     ids = [m.id for m in reg.models if wanted is None or m.id in wanted]
@@ -220,7 +230,7 @@ def audit_flow(
         t0 = time.perf_counter()
         # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
         # them (twice per task call) looking for futures, which costs seconds on a big fleet
-        stage_args = dict(archive_root=archive, histories=quote(history), model_ids=quote(ids), batch_size=batch_size or settings.batch_size, workers=_workers())
+        stage_args = dict(archive_root=archive, histories=quote(history.records), model_ids=quote(ids), batch_size=batch_size or settings.batch_size, workers=_workers())
         try:
             staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
         except OSError:
@@ -281,6 +291,7 @@ def audit_flow(
         recs = [r.light for r in staged_records]
         summary = results_summary(recs, head["run"]["policy"])
         manifest = {
+            "kind": "audit",
             **{k: meta[k] for k in ("started_utc", "operator", "tool_version", "code_commit")},
             "packages": package_versions(),
             "registry": {"path": str(pathlib.Path(reg.path).resolve()), "sha256": reg.sha256},
@@ -292,6 +303,9 @@ def audit_flow(
             "batches": len(staged.batches),
             "calibration_tables": len(cache),
             "recovered": recovered,
+            "acknowledged_damage": acknowledged,
+            "history": history.to_manifest(),
+            "production": staged.production,
             "task_runner": _runner_name(),
         }
         timings["total_s"] = time.perf_counter() - t_start

@@ -4,14 +4,13 @@ from __future__ import annotations
 
 import datetime as dt
 import pathlib
-import shutil
 
 from prefect import flow, get_run_logger, task, unmapped
 from prefect.cache_policies import NO_CACHE
 from prefect.events import emit_event
 
 from fitaudit.core.calibration import CalibrationCache
-from fitaudit.tasks.archive import new_run_id, open_run, recover
+from fitaudit.tasks.archive import new_run_id, open_run, open_work_folder, recover, require_intact
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.publish import code_commit, operator_identity, package_versions
 from fitaudit.tasks.refit import refit_batch_task
@@ -85,33 +84,41 @@ def refit_flow(
     as_of = as_of or dt.datetime.now(dt.UTC).date()
     reg = load_registry_task(registry)
     require_digest(reg, registry_sha256)
-    recover(archive) if pathlib.Path(archive).exists() else None
+    recovered = recover(archive) if pathlib.Path(archive).exists() else []
+    acknowledged = [str(p) for p in require_intact(archive)]  # nothing is added to an archive that verify rejects
     run_id = new_run_id(as_of)
-    work = pathlib.Path(archive) / ".work" / run_id
-    known = {m.id for m in reg.models}
-    unknown = [m for m in model_ids if m not in known]
-    staged = stage_inputs_task(reg, as_of, str(work), archive_root=archive, model_ids=[m for m in model_ids if m in known], batch_size=settings.batch_size)
-    operator = operator_identity(settings.operator)
-    futures = refit_batch_task.map(
-        [b.path for b in staged.batches], unmapped(reg.policy), unmapped(archive), unmapped(run_id), unmapped(operator),
-        unmapped(approve), unmapped(approved_by), unmapped(CalibrationCache()),
-    )
-    records = [r for batch in futures.result() for r in batch]
-    records += [{"model_id": m, "status": "error", "reasons": [f"model {m!r} is not an accepted entry of the registry"]} for m in unknown]
-    manifest = {
-        "kind": "refit",
-        "operator": operator,
-        "tool_version": package_versions()["fitaudit"],
-        "code_commit": code_commit(),
-        "packages": package_versions(),
-        "registry": {"path": str(pathlib.Path(reg.path).resolve()), "sha256": reg.sha256},
-        "inputs": staged.fingerprints,
-        "reason": reason,
-        "policy": reg.policy.to_dict(),
-        "counts": {s: sum(1 for r in records if r.get("status") == s) for s in sorted({r.get("status") for r in records})},
-    }
-    path = record_task(archive, run_id, as_of, records, manifest)
-    shutil.rmtree(work, ignore_errors=True)
+    # the refit's scratch folder, locked while it runs (another run's recovery leaves it alone)
+    scratch = open_work_folder(archive, run_id)
+    work = scratch.path
+    try:
+        known = {m.id for m in reg.models}
+        unknown = [m for m in model_ids if m not in known]
+        staged = stage_inputs_task(reg, as_of, str(work), archive_root=archive, model_ids=[m for m in model_ids if m in known], batch_size=settings.batch_size)
+        operator = operator_identity(settings.operator)
+        futures = refit_batch_task.map(
+            [b.path for b in staged.batches], unmapped(reg.policy), unmapped(archive), unmapped(run_id), unmapped(operator),
+            unmapped(approve), unmapped(approved_by), unmapped(CalibrationCache()),
+        )
+        records = [r for batch in futures.result() for r in batch]
+        records += [{"model_id": m, "status": "error", "reasons": [f"model {m!r} is not an accepted entry of the registry"]} for m in unknown]
+        manifest = {
+            "kind": "refit",
+            "operator": operator,
+            "tool_version": package_versions()["fitaudit"],
+            "code_commit": code_commit(),
+            "packages": package_versions(),
+            "registry": {"path": str(pathlib.Path(reg.path).resolve()), "sha256": reg.sha256},
+            "inputs": staged.fingerprints,
+            "reason": reason,
+            "policy": reg.policy.to_dict(),
+            "production": staged.production,
+            "recovered": recovered,
+            "acknowledged_damage": acknowledged,
+            "counts": {s: sum(1 for r in records if r.get("status") == s) for s in sorted({r.get("status") for r in records})},
+        }
+        path = record_task(archive, run_id, as_of, records, manifest)
+    finally:
+        scratch.close()
     refit_events_task(records, run_id)
     get_run_logger().info("refit %s: %s", run_id, manifest["counts"])
     return {"run_id": run_id, "path": path, "records": records}

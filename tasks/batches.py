@@ -24,6 +24,7 @@ from prefect.cache_policies import NO_CACHE
 from fitaudit.core.models import model_from_dict
 
 from ._io import json_ready
+from .archive import ProductionSnapshot, production_snapshot
 from .extracts import ExtractError, ExtractFingerprint, fingerprint_source, read_series, series_problems
 from .frequencies import FREQUENCY_DAYS
 from .params import ParameterStoreError, production_version
@@ -72,6 +73,7 @@ class StagedRun:
     batches: tuple
     fingerprints: dict
     source_errors: dict = field(default_factory=dict)
+    production: dict = field(default_factory=dict)  # ProductionSnapshot.to_dict(): the versions staged, for the manifest
 
     def to_dict(self) -> dict:
         """JSON-ready view."""
@@ -79,6 +81,7 @@ class StagedRun:
             "batches": [{"path": b.path, "model_ids": list(b.model_ids)} for b in self.batches],
             "fingerprints": {k: v for k, v in self.fingerprints.items()},
             "source_errors": dict(self.source_errors),
+            "production": dict(self.production),
         }
 
 
@@ -101,12 +104,17 @@ def _end_of_day(as_of: dt.date) -> np.datetime64:
     return np.datetime64(as_of + dt.timedelta(days=1), "ns") - np.timedelta64(1, "ns")
 
 
-def _production(archive_root: pathlib.Path | None, entry: ModelEntry) -> dict | None:
-    """The production parameter version, or an ``error`` note when it cannot be used."""
+def _production(archive_root: pathlib.Path | None, entry: ModelEntry, snapshot: ProductionSnapshot | None = None) -> dict | None:
+    """The production parameter version (from the run's ``snapshot``), or an ``error`` note when it cannot be used."""
     if archive_root is None:
         return None
     try:
-        version = production_version(archive_root, entry.id)
+        if snapshot is None:
+            version = production_version(archive_root, entry.id)
+        elif entry.id in snapshot.errors:
+            raise ParameterStoreError(snapshot.errors[entry.id])
+        else:
+            version = snapshot.versions.get(entry.id)
     except (ParameterStoreError, OSError, ValueError) as exc:
         return {"error": f"model {entry.id!r}: its parameter store cannot be read ({exc}); run `fitaudit verify` on the archive."}
     if version is None:
@@ -244,6 +252,8 @@ def stage_inputs(
     size = batch_size_for(len(entries), workers, batch_size)
     end = _end_of_day(as_of)
     histories = histories or {}
+    # one snapshot of the production versions for the whole run, read under the archive lock
+    snapshot = production_snapshot(archive, [e.id for e in entries]) if archive is not None else None
     by_source: dict[str, list[ModelEntry]] = {}
     for e in sorted(entries, key=lambda e: e.id):
         by_source.setdefault(e.source, []).append(e)
@@ -280,7 +290,7 @@ def stage_inputs(
                 data = data or {}
             metas, arrays = [], {}
             for i, entry in enumerate(chunk):
-                meta, y, t, exog = _model_input(entry, data.get(entry.series), source_errors.get(source_name), fp, archive, source.frequency)
+                meta, y, t, exog = _model_input(entry, data.get(entry.series), source_errors.get(source_name), fp, archive, source.frequency, snapshot)
                 meta["history"] = [dict(h) for h in histories.get(entry.id, ())]
                 arrays[f"{i}/y"] = y
                 arrays[f"{i}/t"] = t
@@ -291,10 +301,10 @@ def stage_inputs(
             _write_batch(path, metas, arrays)
             batches.append(BatchRef(str(path), tuple(e.id for e in chunk)))
         del data
-    return StagedRun(tuple(batches), fingerprints, source_errors)
+    return StagedRun(tuple(batches), fingerprints, source_errors, snapshot.to_dict() if snapshot is not None else {})
 
 
-def _model_input(entry: ModelEntry, series, source_error: str | None, fp, archive, frequency: str) -> tuple[dict, np.ndarray, np.ndarray, dict]:
+def _model_input(entry: ModelEntry, series, source_error: str | None, fp, archive, frequency: str, snapshot=None) -> tuple[dict, np.ndarray, np.ndarray, dict]:
     """Cut one model's fit window and collect its problems.
 
     The reader validated the whole span it loaded; when it found problems, the rows of the model's
@@ -303,7 +313,7 @@ def _model_input(entry: ModelEntry, series, source_error: str | None, fp, archiv
     """
     empty_t = np.array([], dtype="datetime64[ns]")
     problems: list[dict] = []
-    production = _production(archive, entry)
+    production = _production(archive, entry, snapshot)
     if source_error is not None:
         problems.append({"kind": "unreadable-source", "severity": "error", "message": f"model {entry.id!r}: {source_error}"})
     if series is None:

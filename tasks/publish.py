@@ -36,8 +36,8 @@ import pyarrow.parquet as pq
 from prefect import task
 from prefect.cache_policies import NO_CACHE
 
-from ._io import canonical_json
-from .archive import PublishedRun, list_runs, open_run
+from ._io import canonical_json, sha256_bytes
+from .archive import PublishedRun, history_runs, list_runs, open_run
 from .results import light_record, results_json_chunks, results_rows
 from .workers import run_local
 
@@ -48,6 +48,7 @@ __all__ = [
     "render_outcomes_task",
     "publish_staged",
     "load_history",
+    "History",
     "package_versions",
     "code_commit",
     "render_archive_index_file",
@@ -212,44 +213,99 @@ def publish_staged(
     return published
 
 
-def load_history(archive_root: str | os.PathLike, before: dt.date, model_ids: Sequence[str] | None = None, limit: int = HISTORY_LENGTH) -> dict[str, list[dict]]:
-    """Earlier verdicts per model (oldest first), from the runs with an as-of date before ``before``.
+@dataclass(frozen=True)
+class History:
+    """Earlier audit records per model and the runs that could not be used.
 
-    For each as-of date only the newest run counts (a rerun supersedes).  Reads each run's
-    ``results.parquet`` (a few columns).
+    ``records`` maps a model id to its earlier audits, oldest first, each ``{"as_of", "verdict",
+    "r_max", "p_value", "run_id"}``; ``runs`` lists the run ids read; ``problems`` names every
+    earlier audit run that was skipped and why (``{"run_id", "path", "as_of", "problem"}``): a
+    missing, unreadable or altered history file never drops a date silently.
+    """
+
+    records: dict
+    runs: tuple = ()
+    problems: tuple = ()
+
+    def to_manifest(self) -> dict:
+        """The manifest's record of where the history came from."""
+        return {"runs": list(self.runs), "problems": [dict(p) for p in self.problems]}
+
+
+_HISTORY_COLUMNS = ["model_id", "verdict", "production_r_max", "refit_r_max", "production_p_value", "refit_p_value"]
+
+
+def _audit_results(run: Mapping[str, Any], root: pathlib.Path) -> tuple[list[dict] | None, str | None]:
+    """The rows of an earlier run's ``results.parquet``, checked against its manifest.
+
+    Returns ``(None, None)`` for a run that is not an audit (a refit run), ``(None, problem)`` when
+    the file cannot be used.
+    """
+    if run["problem"]:
+        return None, run["problem"]
+    manifest = run["manifest"]
+    files = manifest.get("files") if isinstance(manifest, dict) else None
+    if not isinstance(files, dict):
+        return None, f"{run['path']}/manifest.json lists no files"
+    if manifest.get("kind", "audit") != "audit" or ("results.parquet" not in files and "refit.json" in files):
+        return None, None  # a refit run records refits, not audits
+    listed = files.get("results.parquet")
+    if not isinstance(listed, dict):
+        return None, f"{run['path']}/manifest.json lists no results.parquet"
+    path = root / run["path"] / "results.parquet"
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        return None, f"{run['path']}/results.parquet cannot be read ({exc.strerror or exc})"
+    digest = sha256_bytes(data)
+    if digest != listed.get("sha256"):
+        return None, (f"{run['path']}/results.parquet differs from its manifest (SHA-256 {digest[:12]}..., recorded "
+                      f"{str(listed.get('sha256'))[:12]}...); not used")
+    try:
+        return pq.read_table(pa.BufferReader(data), columns=_HISTORY_COLUMNS).to_pylist(), None
+    except (OSError, pa.ArrowInvalid, KeyError) as exc:
+        return None, f"{run['path']}/results.parquet cannot be read as a results table ({exc})"
+
+
+def load_history(archive_root: str | os.PathLike, before: dt.date, model_ids: Sequence[str] | None = None, limit: int = HISTORY_LENGTH) -> History:
+    """Earlier audits per model (oldest first, at most ``limit``) from the runs before ``before``.
+
+    Only audit runs count (a refit run at the same as-of date holds no verdicts).  For each model
+    and as-of date the newest audit run that audited the model counts, so a rerun of some models
+    (``--models``) supersedes their records only.  Each ``results.parquet`` read is checked
+    against its run's manifest (itself checked against the hash chain) before use; a run whose file
+    is missing, unreadable or altered is skipped and named in :attr:`History.problems`.  Runs are
+    read newest first until every model of ``model_ids`` has ``limit`` records.
     """
     root = pathlib.Path(archive_root)
-    if not (root / "chain.jsonl").exists():
-        return {}
-    newest: dict[str, dict] = {}
-    for run in list_runs(root):
-        if run["purged"] or not run["as_of"] or dt.date.fromisoformat(run["as_of"]) >= before:
-            continue
-        newest[run["as_of"]] = run  # oldest first in the chain, so the last wins
     wanted = set(model_ids) if model_ids is not None else None
-    history: dict[str, list[dict]] = {}
-    cols = ["model_id", "verdict", "production_r_max", "refit_r_max", "production_p_value", "refit_p_value"]
-    for as_of in sorted(newest)[-limit:]:
-        path = root / newest[as_of]["path"] / "results.parquet"
-        try:
-            table = pq.read_table(path, columns=cols).to_pylist()
-        except (OSError, pa.ArrowInvalid, KeyError):
+    seen: dict[str, dict[str, dict]] = {}
+    used, problems = [], []
+    runs = sorted(history_runs(root, before), key=lambda r: (r["as_of"], r["seq"]), reverse=True)
+    for run in runs:
+        if wanted is not None and all(len(seen.get(m, ())) >= limit for m in wanted):
+            break
+        rows, problem = _audit_results(run, root)
+        if problem:
+            problems.append({"run_id": run["run_id"], "path": run["path"], "as_of": run["as_of"], "problem": problem})
             continue
-        for row in table:
+        if rows is None:
+            continue
+        used.append(run["run_id"])
+        for row in rows:
             mid = row["model_id"]
-            if wanted is not None and mid not in wanted:
+            if (wanted is not None and mid not in wanted) or run["as_of"] in seen.get(mid, {}) or len(seen.get(mid, ())) >= limit:
                 continue
             use_prod = row.get("production_r_max") is not None
-            history.setdefault(mid, []).append(
-                {
-                    "as_of": as_of,
-                    "verdict": row["verdict"],
-                    "r_max": row["production_r_max"] if use_prod else row.get("refit_r_max"),
-                    "p_value": row["production_p_value"] if use_prod else row.get("refit_p_value"),
-                    "run_id": newest[as_of]["run_id"],
-                }
-            )
-    return history
+            seen.setdefault(mid, {})[run["as_of"]] = {
+                "as_of": run["as_of"],
+                "verdict": row["verdict"],
+                "r_max": row["production_r_max"] if use_prod else row.get("refit_r_max"),
+                "p_value": row["production_p_value"] if use_prod else row.get("refit_p_value"),
+                "run_id": run["run_id"],
+            }
+    records = {mid: [by_date[d] for d in sorted(by_date)] for mid, by_date in sorted(seen.items())}
+    return History(records, tuple(used), tuple(problems))
 
 
 def render_archive_index_file(archive_root: str | os.PathLike) -> pathlib.Path:
