@@ -1,8 +1,14 @@
 """The ``fitaudit`` command line.
 
 Commands: ``demo``, ``run``, ``refit``, ``backfill``, ``serve``, ``verify``, ``registry check``,
-``registry schema``, ``promote``, ``params import`` and ``signoff``; ``fitaudit COMMAND --help``
-describes each.
+``registry schema``, ``promote``, ``params import``, ``signoff`` and ``acknowledge``;
+``fitaudit COMMAND --help`` describes each.
+
+A failure prints one line naming what failed (for a file system error: the path, the cause and what
+to do) and exits 1.  SIGTERM (what ``timeout`` and service managers send) stops the command cleanly:
+the batches' worker processes and the Prefect server it started are stopped, and the next run's
+recovery settles the interrupted run.  After SIGKILL nothing can be stopped; the next ``fitaudit``
+command stops the server the killed one left running (``fitaudit.flows.server.reap_stale_servers``).
 
 Exit codes: 0 success (an audit whose models fail still succeeds, unless ``--fail-on`` names
 their verdicts); 1 unexpected failure; 2 invalid usage or an invalid registry; 3 a verdict named
@@ -14,10 +20,14 @@ from __future__ import annotations
 import argparse
 import contextlib
 import datetime as dt
+import errno
 import json
 import os
 import pathlib
+import re
+import signal
 import sys
+import threading
 from collections.abc import Sequence
 
 from fitaudit.core.vocabulary import VERDICTS
@@ -100,7 +110,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     v = sub.add_parser("verify", help="check every archived file and the hash chain; exit 4 on any problem")
     v.add_argument("archive", help="archive folder")
-    v.add_argument("--head", help="expected hash of the last chain entry (recorded elsewhere), to detect a truncated or rewritten chain")
+    v.add_argument("--head", type=_head, metavar="HEAD", help="a chain head recorded outside the archive, as verify and run print it "
+                   "('head: <sha256> (seq N)', quoted, or the bare SHA-256), to detect a truncated or rewritten chain")
     v.add_argument("--notes", action="store_true", help="also list notes (pending publications, leftovers)")
     v.add_argument("--json", action="store_true", help="print problems as JSON")
 
@@ -140,6 +151,18 @@ def build_parser() -> argparse.ArgumentParser:
     pi.add_argument("--by", required=True, help="who imports the parameters (name and role)")
     pi.add_argument("--archive", help="archive folder (default: the archive_root setting, ./archive)")
 
+    ak = sub.add_parser(
+        "acknowledge",
+        help="record the archive's damage in the hash chain so that runs can continue (when it cannot be restored)",
+        description="Record every problem `fitaudit verify` finds in an 'acknowledgement' chain entry, with who and why. "
+        "Nothing is deleted or rewritten: a run folder or promoted version whose chain entry was lost is recorded as found, "
+        "a chain line cut short is ended, and verify reports the recorded problems as acknowledged (any new damage is a problem "
+        "again). Restore from a backup instead whenever you can.",
+    )
+    ak.add_argument("archive", help="archive folder")
+    ak.add_argument("--by", required=True, help="who acknowledges the damage (name and role)")
+    ak.add_argument("--note", required=True, help="what happened (the incident) and why the originals cannot be restored")
+
     so = sub.add_parser("signoff", help="record a reviewer's sign-off of an archived run in the hash chain")
     so.add_argument("archive", help="archive folder")
     so.add_argument("run_id", help="run id")
@@ -167,7 +190,10 @@ def _server_if_needed(args: argparse.Namespace):
             print(f"fitaudit: started a local Prefect server at {url} (log {log})", file=sys.stderr)
             yield url
     else:
-        yield os.environ.get("PREFECT_API_URL")
+        from .server import start_embedded_server
+
+        # started now rather than by the first flow, so that it is recorded and can be reaped after a SIGKILL
+        yield os.environ.get("PREFECT_API_URL") or start_embedded_server()
 
 
 def _with_runner(flow_fn, dask: str | None):
@@ -220,18 +246,62 @@ def _cmd_registry_check(args) -> int:
     return EXIT_USAGE
 
 
+def _head(text: str) -> str:
+    from fitaudit.tasks.archive import parse_head
+
+    try:
+        parse_head(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+    return text
+
+
+def _print_head(archive: str) -> None:
+    from fitaudit.tasks.archive import chain_head
+
+    head = chain_head(archive)
+    if head is not None:
+        print(f"head: {head[0]} (seq {head[1]})")
+
+
 def _cmd_verify(args) -> int:
     from fitaudit.tasks.archive import verify_archive
 
-    problems = verify_archive(args.archive, include_notes=args.notes, expected_head=args.head)
+    problems = verify_archive(args.archive, include_notes=True, expected_head=args.head)
     real = [p for p in problems if not p.is_note]
+    acknowledged = [p for p in problems if p.kind == "acknowledged"]
+    shown = problems if args.notes else real + acknowledged
     if args.json:
-        print(json.dumps([p.to_dict() for p in problems], indent=2))
-    else:
-        for p in problems:
-            print(("note: " if p.is_note else "problem: ") + str(p))
-        print(f"{args.archive}: {'intact' if not real else f'{len(real)} problem(s)'}")
+        print(json.dumps([p.to_dict() for p in shown], indent=2))
+        return EXIT_VERIFY if real else EXIT_OK
+    for p in shown:
+        print(("note: " if p.is_note else "problem: ") + str(p))
+    state = f"{len(real)} problem(s)" if real else "intact"
+    if acknowledged:
+        state += f" ({len(acknowledged)} acknowledged problem(s), recorded in the chain)"
+    print(f"{args.archive}: {state}")
+    _print_head(args.archive)
     return EXIT_VERIFY if real else EXIT_OK
+
+
+def _cmd_acknowledge(args) -> int:
+    from fitaudit.tasks.archive import acknowledge_damage
+
+    entry = acknowledge_damage(args.archive, by=args.by, note=args.note)
+    payload = entry["payload"]
+    for item in payload["problems"]:
+        print(f"acknowledged: {item['where']}: {item['message']}")
+    for item in payload["runs"]:
+        print(f"recorded as found: run folder {item['path']} (its chain entry was lost)")
+    for item in payload["promotions"]:
+        print(f"recorded as found: promoted version {item['path']} (it had no promotion entry)")
+    if payload.get("terminated_line"):
+        print(f"ended chain line {payload['terminated_line']['line']}, which was cut short")
+    for item in payload.get("journals_removed", []):
+        print(f"moved into the chain entry and removed: {item['path']}")
+    print(f"acknowledgement recorded as chain entry {entry['seq']} by {args.by}")
+    print(f"head: {entry['hash']} (seq {entry['seq']})")
+    return EXIT_OK
 
 
 def _cmd_run(args) -> int:
@@ -250,6 +320,8 @@ def _cmd_run(args) -> int:
             print(str(exc), file=sys.stderr)
             return EXIT_USAGE
     _print_summary(result, args.quiet)
+    if not args.quiet:
+        _print_head(result["archive"])
     if args.fail_on and any(result["counts"][v] for v in args.fail_on):
         return EXIT_FAIL_ON
     return EXIT_OK
@@ -310,21 +382,24 @@ def _cmd_serve(args) -> int:
 
 
 def _cmd_promote(args) -> int:
-    from fitaudit.tasks.archive import append_chain
+    from fitaudit.tasks.archive import require_intact
     from fitaudit.tasks.params import promote
 
+    require_intact(args.archive)
     version = promote(args.archive, args.model, args.version, approved_by=args.by, note=args.note)
-    append_chain(args.archive, "promotion", {"path": f"params/{args.model}/{version.version}.json", "sha256": version.sha256, "model_id": args.model, "promotes": args.version, "approved_by": args.by})
     print(f"{args.model}: version {version.version} promotes version {args.version} into production")
+    _print_head(args.archive)
     return EXIT_OK
 
 
 def _cmd_params(args) -> int:
+    from fitaudit.tasks.archive import require_intact
     from fitaudit.tasks.params import ParamsFileError, import_params
     from fitaudit.tasks.registry import RegistryError
     from fitaudit.tasks.settings import get_settings
 
     archive = args.archive or str(get_settings().archive_root)
+    require_intact(archive)
     try:
         version = import_params(args.registry, args.model, args.file, by=args.by, archive_root=archive)
     except (ParamsFileError, RegistryError) as exc:
@@ -341,7 +416,8 @@ def _cmd_signoff(args) -> int:
     from fitaudit.tasks.archive import record_signoff
 
     entry = record_signoff(args.archive, args.run_id, name=args.name, role=args.role, note=args.note)
-    print(f"sign-off recorded as chain entry {entry['seq']} (hash {entry['hash'][:16]}...)")
+    print(f"sign-off recorded as chain entry {entry['seq']}")
+    print(f"head: {entry['hash']} (seq {entry['seq']})")
     return EXIT_OK
 
 
@@ -366,6 +442,7 @@ COMMANDS = {
     "promote": _cmd_promote,
     "params": _cmd_params,
     "signoff": _cmd_signoff,
+    "acknowledge": _cmd_acknowledge,
 }
 
 
@@ -386,24 +463,101 @@ def _default_registry(args: argparse.Namespace) -> str | None:
     return None
 
 
+class Terminated(BaseException):
+    """Raised in the main thread on SIGTERM, so that the command unwinds and exits cleanly.
+
+    Unwinding stops the local worker processes (``tasks.workers.local_workers``) and a server
+    started with ``--start-server``; Prefect's embedded server is stopped by Prefect's exit handler.
+    A ``BaseException``, like ``KeyboardInterrupt``: no ``except Exception`` swallows it.
+    """
+
+
+_TERMINATING = threading.Event()
+
+
+def _on_sigterm(signum, frame) -> None:
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)  # one clean shutdown; a second SIGTERM does not cut it short
+    _TERMINATING.set()  # the batches stopped on the way out fail noisily in Prefect's log; the command says why
+    raise Terminated()
+
+
+_OS_HINTS = {
+    errno.ENOSPC: "free space on that file system and run again; the next run settles the interrupted one",
+    errno.EDQUOT: "free space (disk quota) and run again; the next run settles the interrupted one",
+    errno.EROFS: "the file system is mounted read-only; give an archive on a writable file system",
+    errno.EACCES: "this user may not write there; fix the permissions or run as the archive's owner",
+    errno.EPERM: "this user may not write there; fix the permissions or run as the archive's owner",
+}
+
+
+def _os_error_line(exc: OSError) -> str:
+    """One line for an operating-system error: the path, the cause and what to do."""
+    where = exc.filename if exc.filename is not None else "(the operating system named no file)"
+    also = f" -> {exc.filename2}" if exc.filename2 is not None else ""
+    code = f" [{errno.errorcode[exc.errno]}]" if exc.errno in errno.errorcode else ""
+    hint = _OS_HINTS.get(exc.errno)
+    return f"{where}{also}: {exc.strerror or exc}{code}" + (f"; {hint}" if hint else "")
+
+
+def _quiet_prefect_tracebacks() -> None:
+    """Leave expected failures to the command's one-line message: Prefect would log their tracebacks first."""
+    import logging
+
+    from fitaudit.core.exceptions import FitauditError
+
+    kinds = (OSError, FitauditError, Terminated)
+
+    def names(cls: type) -> set[str]:
+        return {cls.__name__}.union(*(names(sub) for sub in cls.__subclasses__()))
+
+    def expected(record: logging.LogRecord) -> bool:
+        if _TERMINATING.is_set():
+            return record.levelno < logging.ERROR
+        exc = record.exc_info[1] if record.exc_info else None
+        if exc is not None:
+            return not isinstance(exc, kinds)
+        failed = re.search(r"encountered an exception (\w+)", record.getMessage()) if record.levelno >= logging.ERROR else None
+        return failed is None or failed.group(1) not in set().union(*(names(k) for k in kinds))
+
+    for name in ("prefect.flow_runs", "prefect.task_runs", "prefect.flow_engine", "prefect.task_engine"):
+        logger = logging.getLogger(name)
+        if not any(getattr(f, "__name__", "") == "expected" for f in logger.filters):  # once per process
+            logger.addFilter(expected)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``fitaudit`` command."""
     args = build_parser().parse_args(argv)
     _env.configure_prefect()
     from fitaudit.core.exceptions import FitauditError
 
+    from .server import reap_stale_servers
+
+    for line in reap_stale_servers():
+        print(f"fitaudit: {line}", file=sys.stderr)
     missing = _default_registry(args)
     if missing:
         print(missing, file=sys.stderr)
         return EXIT_USAGE
+    previous = signal.signal(signal.SIGTERM, _on_sigterm) if threading.current_thread() is threading.main_thread() else None
+    _quiet_prefect_tracebacks()
     try:
         return COMMANDS[args.command](args)
     except FitauditError as exc:
         print(f"fitaudit {args.command}: {exc}", file=sys.stderr)
         return EXIT_ERROR
+    except OSError as exc:
+        print(f"fitaudit {args.command}: {_os_error_line(exc)}", file=sys.stderr)
+        return EXIT_ERROR
     except KeyboardInterrupt:
         print("fitaudit: interrupted", file=sys.stderr)
         return EXIT_ERROR
+    except Terminated:
+        print("fitaudit: terminated (SIGTERM); the next run settles the interrupted one", file=sys.stderr)
+        return 128 + signal.SIGTERM
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
 
 
 if __name__ == "__main__":

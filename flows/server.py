@@ -1,15 +1,29 @@
-"""Starting a local Prefect server for features the embedded server cannot provide.
+"""Prefect servers that ``fitaudit`` starts for one command: started, tracked, stopped, reaped.
 
 Schedules, event-triggered refits and Dask workers need a long-lived Prefect API (the embedded,
 ephemeral server runs no scheduler and every worker process would start its own).  When the user
-has no server, ``fitaudit`` can start one on a loopback port for the duration of a command.
+has no server, ``fitaudit`` can start one on a loopback port for the duration of a command
+(:func:`local_server`); otherwise a run uses Prefect's embedded server, a ``uvicorn`` child
+process that Prefect stops when the command's process exits normally
+(:func:`start_embedded_server`).
+
+A process killed by SIGKILL cannot stop anything, so every server a command starts is recorded in
+``<PREFECT_HOME>/fitaudit-servers/<pid>.json`` (its pid and start time, and those of the command
+that owns it) and the record is removed when the server stops.  The next ``fitaudit`` command
+*reaps* what a killed command left (:func:`reap_stale_servers`): a server whose owner is gone is
+stopped (SIGTERM, then SIGKILL after 5 s), identified by pid *and* start time so that a reused pid
+is never signalled.  Start times are read from ``/proc`` (Linux); elsewhere nothing is reaped.
 """
 
 from __future__ import annotations
 
+import atexit
 import contextlib
+import json
 import os
+import pathlib
 import shutil
+import signal
 import socket
 import subprocess
 import sys
@@ -17,7 +31,9 @@ import time
 import urllib.request
 from collections.abc import Iterator
 
-__all__ = ["local_server", "free_port", "wait_healthy"]
+__all__ = ["local_server", "free_port", "wait_healthy", "start_embedded_server", "reap_stale_servers", "tracked_servers"]
+
+_RECORDS = "fitaudit-servers"
 
 
 def free_port() -> int:
@@ -59,6 +75,7 @@ def local_server(port: int | None = None, log_path: str | None = None, timeout: 
     env.setdefault("PREFECT_SERVER_UI_ENABLED", "false")
     log = open(log_path, "ab") if log_path else subprocess.DEVNULL
     proc = subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT, env=env, start_new_session=True)
+    record = _track(proc.pid, "prefect server start", port, group=True)
     previous = os.environ.get("PREFECT_API_URL")
     try:
         wait_healthy(api_url, timeout, proc)
@@ -69,10 +86,130 @@ def local_server(port: int | None = None, log_path: str | None = None, timeout: 
             os.environ.pop("PREFECT_API_URL", None)
         else:
             os.environ["PREFECT_API_URL"] = previous
-        proc.terminate()
+        _stop_group(proc.pid)
         try:
             proc.wait(timeout=20)
         except subprocess.TimeoutExpired:
-            proc.kill()
+            with contextlib.suppress(ProcessLookupError):
+                os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait(timeout=20)
+        _untrack(record)
         if log_path:
             log.close()
+
+
+def _stop_group(pgid: int) -> None:
+    """SIGTERM to a server's process group (it runs in its own session)."""
+    with contextlib.suppress(ProcessLookupError, PermissionError):
+        os.killpg(pgid, signal.SIGTERM)
+
+
+# ----------------------------------------------------------------------------------------------
+# the embedded server and the records of started servers
+
+
+def start_embedded_server() -> str | None:
+    """Start Prefect's embedded (ephemeral) server now, recorded for reaping; returns its API URL.
+
+    None, and nothing started, when a Prefect API is configured or the embedded server is
+    disabled.  Prefect stops the server when this process exits (its ``atexit`` handler), also
+    after SIGTERM when the command line turned it into a clean exit; the record is removed after
+    that, or left for :func:`reap_stale_servers` when the process was killed.
+    """
+    from prefect.settings import PREFECT_API_URL, PREFECT_SERVER_EPHEMERAL_ENABLED
+
+    if PREFECT_API_URL.value() or not PREFECT_SERVER_EPHEMERAL_ENABLED.value():
+        return None
+    from prefect.server.api.server import SubprocessASGIServer
+
+    holder: dict = {}
+    atexit.register(lambda: _untrack(holder.get("record")))  # registered first, so it runs after Prefect's stop
+    server = SubprocessASGIServer()  # the instance Prefect's client uses (one per process)
+    server.start()
+    if server.server_process is not None:
+        holder["record"] = _track(server.server_process.pid, "embedded", server.port)
+    return server.api_url
+
+
+def _records_dir() -> pathlib.Path:
+    home = os.environ.get("PREFECT_HOME") or str(pathlib.Path.home() / ".prefect")
+    return pathlib.Path(home) / _RECORDS
+
+
+def _start_time(pid: int) -> str | None:
+    """The process's start time in clock ticks since boot (``/proc/<pid>/stat`` field 22), or None."""
+    try:
+        stat = pathlib.Path(f"/proc/{pid}/stat").read_text()
+    except OSError:
+        return None
+    fields = stat[stat.rfind(")") + 2 :].split()
+    return fields[19] if len(fields) > 19 and fields[0] != "Z" else None
+
+
+def _track(pid: int, kind: str, port: int | None, group: bool = False) -> pathlib.Path | None:
+    """Record a started server (best effort: an unwritable Prefect home only loses the record)."""
+    start = _start_time(pid)
+    if start is None:
+        return None
+    record = {"pid": pid, "start": start, "group": group, "kind": kind, "port": port,
+              "owner_pid": os.getpid(), "owner_start": _start_time(os.getpid())}
+    path = _records_dir() / f"{pid}.json"
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(json.dumps(record))
+    except OSError:
+        return None
+    return path
+
+
+def _untrack(path: pathlib.Path | None) -> None:
+    """Remove a record once its server is gone (kept, for reaping, while it still runs)."""
+    if path is None:
+        return
+    with contextlib.suppress(OSError, ValueError):
+        record = json.loads(path.read_text())
+        if _start_time(record["pid"]) != record["start"]:
+            path.unlink()
+
+
+def tracked_servers() -> list[dict]:
+    """The recorded servers (each with ``path`` added), for tests and diagnostics."""
+    out = []
+    for path in sorted(_records_dir().glob("*.json")):
+        with contextlib.suppress(OSError, ValueError):
+            out.append({**json.loads(path.read_text()), "path": str(path)})
+    return out
+
+
+def reap_stale_servers(grace: float = 5.0) -> list[str]:
+    """Stop the servers left by ``fitaudit`` commands that were killed; returns one line per server.
+
+    A recorded server is stopped when the command that started it is no longer running (its pid
+    gone, or reused by another process) while the server itself still runs with its recorded start
+    time; records of servers that are gone are removed.  Servers of live commands are left alone.
+    """
+    actions = []
+    for record in tracked_servers():
+        path = pathlib.Path(record["path"])
+        try:
+            pid, start = int(record["pid"]), str(record["start"])
+            owner_alive = _start_time(int(record["owner_pid"])) == record.get("owner_start")
+        except (KeyError, TypeError, ValueError):
+            path.unlink(missing_ok=True)
+            continue
+        if _start_time(pid) != start:
+            path.unlink(missing_ok=True)  # already gone
+            continue
+        if owner_alive:
+            continue
+        send = os.killpg if record.get("group") else os.kill  # a started `prefect server` has its own process group
+        with contextlib.suppress(ProcessLookupError, PermissionError):
+            send(pid, signal.SIGTERM)
+            deadline = time.monotonic() + grace
+            while _start_time(pid) == start and time.monotonic() < deadline:
+                time.sleep(0.1)
+            if _start_time(pid) == start:
+                send(pid, signal.SIGKILL)
+        path.unlink(missing_ok=True)
+        actions.append(f"stopped a Prefect server left running by an interrupted fitaudit command (pid {pid}, port {record.get('port')})")
+    return actions

@@ -22,15 +22,23 @@ import sys
 import threading
 import uuid
 from collections.abc import Callable, Iterator
+from concurrent.futures.process import BrokenProcessPool
 from typing import Any, TypeVar
 
-__all__ = ["local_workers", "run_local", "default_processes", "time_limit", "TimeLimitExceeded", "can_limit_time"]
+from fitaudit.core.exceptions import FitauditError
+
+__all__ = ["local_workers", "run_local", "WorkersStopped", "default_processes", "time_limit", "TimeLimitExceeded", "can_limit_time"]
 
 T = TypeVar("T")
 
 _BLAS_THREADS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 _POOLS: dict[str, cf.ProcessPoolExecutor] = {}
 _POOLS_LOCK = threading.Lock()
+_STOPPED: set[str] = set()  # tokens of pools stopped because their run was interrupted
+
+
+class WorkersStopped(FitauditError):
+    """A batch could not finish because its run was interrupted and the worker processes stopped."""
 
 
 def default_processes() -> int:
@@ -111,6 +119,13 @@ def local_workers(processes: int) -> Iterator[str | None]:
             for _ in range(processes):  # each submit starts one worker while no worker is idle
                 pool.submit(_warm)
         yield token
+    except BaseException as exc:
+        if not isinstance(exc, Exception):  # interrupted (SIGTERM, Ctrl-C): stop the batches now rather than finish them
+            with _POOLS_LOCK:
+                _STOPPED.add(token)
+            for process in list((getattr(pool, "_processes", None) or {}).values()):
+                process.terminate()
+        raise
     finally:
         with _POOLS_LOCK:
             _POOLS.pop(token, None)
@@ -124,9 +139,17 @@ def run_local(token: str | None, fn: Callable[..., T], *args: Any) -> T:
     """
     with _POOLS_LOCK:
         pool = _POOLS.get(token) if token else None
+        stopped = token in _STOPPED
+    if stopped:
+        raise WorkersStopped("the run was interrupted; its worker processes were stopped")
     if pool is None:
         return fn(*args)
-    return pool.submit(fn, *args).result()
+    try:
+        return pool.submit(fn, *args).result()
+    except BrokenProcessPool:
+        if token in _STOPPED:
+            raise WorkersStopped("the run was interrupted; its worker processes were stopped") from None
+        raise
 
 
 class TimeLimitExceeded(BaseException):
