@@ -191,6 +191,15 @@ _CHECK_FIELDS = ("status", "n", "cells", "t_max", "r_max", "alpha_max", "beta_ma
 _BULKY = ("audit", "lineage", "settings", "candidates")
 
 
+def _light_check(check: Mapping[str, Any]) -> dict:
+    """A check's headline numbers, and of its gate only the deciding partition's kind."""
+    out = {f: check.get(f) for f in _CHECK_FIELDS if f in check}
+    deciding = (check.get("gate") or {}).get("deciding") or {}
+    if "gate" in check:
+        out["gate"] = {"deciding": {"kind": deciding["kind"]} if "kind" in deciding else {}}
+    return out
+
+
 def light_record(record: Mapping[str, Any]) -> dict:
     """A model record without its bulky parts: everything but ``lineage``, ``settings`` and
     ``candidates``, and of ``audit`` only each check's headline numbers (:data:`_CHECK_FIELDS`).
@@ -202,7 +211,7 @@ def light_record(record: Mapping[str, Any]) -> dict:
     out = {k: v for k, v in record.items() if k not in _BULKY}
     audit = record.get("audit")
     if audit is not None:
-        audit = {kind: None if audit.get(kind) is None else {f: audit[kind].get(f) for f in _CHECK_FIELDS if f in audit[kind]} for kind in ("production", "refit")}
+        audit = {kind: None if audit.get(kind) is None else _light_check(audit[kind]) for kind in ("production", "refit")}
     out["audit"] = audit
     return out
 
