@@ -9,13 +9,13 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass
 
-from ._validation import Interval, Options, check_param
+from ._validation import Options, check_param
 from .calibration import Gate
 from .cells import make_partitions
 from .divergence import DEFAULT_ALPHAS, DEFAULT_BETAS, SCALINGS
 from .exceptions import InputError
 from .results import _plain
-from .vocabulary import PARTITION_KINDS, Calibration
+from .vocabulary import PARTITION_KINDS, SETTING_BOUNDS, Calibration
 
 __all__ = ["AuditSettings", "DEFAULT_PARTITIONS", "DEFAULT_GATE_MEMBERS"]
 
@@ -89,19 +89,13 @@ class AuditSettings:
     partitions: tuple = DEFAULT_PARTITIONS
     gate_members: tuple | None = DEFAULT_GATE_MEMBERS
 
+    #: Bounds shared with the registry schema (one home: :data:`~fitaudit.core.vocabulary.SETTING_BOUNDS`).
     _parameter_constraints = {
-        "level": [Interval(float, 0.0, 0.5, "neither")],
-        "calibration": [Options(("asymptotic", "simulated", "bootstrap"))],
+        **{name: SETTING_BOUNDS[name] for name in (
+            "level", "calibration", "replicates", "bootstrap_replicates", "seed", "audit_window", "fit_window",
+            "lb_lags", "change_permutations", "practical_divergence", "practical_acf",
+        )},
         "scaling": [Options(SCALINGS)],
-        "replicates": [Interval(int, 19, None)],
-        "bootstrap_replicates": [Interval(int, 19, None)],
-        "seed": [Interval(int, 0, None)],
-        "audit_window": [Interval(int, 1, None)],
-        "fit_window": [Interval(int, 1, None), None],
-        "lb_lags": [Interval(int, 1, None), None],
-        "change_permutations": [Interval(int, 19, None)],
-        "practical_divergence": [Interval(float, 0.0, None), None],
-        "practical_acf": [Interval(float, 0.0, 1.0), None],
     }
 
     def __post_init__(self):

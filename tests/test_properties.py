@@ -182,7 +182,7 @@ def test_random_finite_series_always_get_a_verdict(kind, n, seed, exponent, spec
     if production is not None:  # a production version with every parameter of the spec (possibly non-stationary)
         params = {name: production for name in model.param_names()}
         params["sigma2"] = abs(production) + 0.1
-    settings_ = AuditSettings(calibration=calibration, replicates=19, change_permutations=19, audit_window=window, seed=seed % 1000)
+    settings_ = AuditSettings(calibration=calibration, replicates=99, change_permutations=19, audit_window=window, seed=seed % 1000)
     result = audit_series(y, spec, noise=law, production=params, settings=settings_, cache=_CACHE, label="model 'prop'")
     assert result.verdict in VERDICTS
     assert result.reasons and all(isinstance(r, str) and r.strip() for r in result.reasons)
