@@ -516,7 +516,7 @@ def _quiet_prefect_tracebacks() -> None:
         exc = record.exc_info[1] if record.exc_info else None
         if exc is not None:
             return not isinstance(exc, kinds)
-        failed = re.search(r"encountered an exception (\w+)", record.getMessage()) if record.levelno >= logging.ERROR else None
+        failed = re.search(r"encountered an exception:? (\w+)", record.getMessage()) if record.levelno >= logging.ERROR else None
         return failed is None or failed.group(1) not in set().union(*(names(k) for k in kinds))
 
     for name in ("prefect.flow_runs", "prefect.task_runs", "prefect.flow_engine", "prefect.task_engine"):
