@@ -57,6 +57,9 @@ def work(root, mode, kill_step, kill_at, delay):
         publish("20260105-crash")
     elif mode == "purge":
         archive.purge_runs(root, before=dt.date(2026, 1, 1), reason="crash test", approved_by="tester")
+    elif mode == "promote":
+        from fitaudit.tasks import params
+        params.promote(root, "m1", 1, approved_by="tester", note="crash test")
 
 print("ready", flush=True)
 for line in sys.stdin:
@@ -209,3 +212,26 @@ def test_sigkill_at_each_purge_step(tmp_path, launcher, step):
     assert (root / "runs/2025/20251229-old").exists() != purged
     assert any(e["kind"] == "purge" for e in archive.read_chain(root)) == purged
     assert (root / "runs/2026/20260105-new/manifest.json").is_file()
+
+
+# Steps of record_promotion in protocol order; the promotion is recorded from "chain-appended" on.
+PROMOTE_STEPS = ["promotion-journal-written", "promotion-written", "append-journal-written", "chain-appended", "promotion-appended"]
+
+
+@pytest.mark.parametrize("step", PROMOTE_STEPS)
+def test_sigkill_at_each_promotion_step(tmp_path, launcher, step):
+    from fitaudit.tasks import params
+
+    root = tmp_path / "archive"
+    params.write_version(root, "m1", spec={"family": "arima", "order": [1, 0, 0]}, noise={"law": "normal"},
+                         params={"ar1": 0.5, "sigma2": 1.0}, status="candidate", created_by="test", lineage={})
+    pid = launcher.start(root, "promote", step)
+    assert launcher.wait(pid) == -signal.SIGKILL, f"the worker never reached step {step}"
+
+    assert archive.verify_archive(root) == []  # pending, not a problem
+    archive.recover(root)
+    assert archive.verify_archive(root, include_notes=True) == []
+    promoted = (root / "params/m1/2.json").exists()
+    recorded = [e for e in archive.read_chain(root) if e["kind"] == "promotion"] if (root / "chain.jsonl").exists() else []
+    assert promoted == (len(recorded) == 1) == (PROMOTE_STEPS.index(step) >= PROMOTE_STEPS.index("promotion-written"))
+    assert (params.production_version(root, "m1") is not None) == promoted
