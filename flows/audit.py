@@ -44,6 +44,7 @@ from fitaudit.tasks.publish import (
     publish_staged,
     render_archive_index_file,
     render_outcomes_task,
+    run_context,
 )
 from fitaudit.tasks.registry import Registry, load_registry_task
 from fitaudit.tasks.results import results_head, results_summary
@@ -69,6 +70,12 @@ def check_archive_task(archive: str) -> list[str]:
     return [str(p) for p in require_intact(archive)]
 
 
+@task(name="read-archive-context", cache_policy=NO_CACHE, persist_result=False)
+def context_task(archive: str, as_of: dt.date) -> dict:
+    """The chain head this run extends, the previous audit run and the fleet's pass-share trend."""
+    return run_context(archive, as_of)
+
+
 @task(name="load-history", cache_policy=NO_CACHE, persist_result=False)
 def history_task(archive: str, as_of: dt.date, model_ids: list[str]) -> History:
     """Earlier audits per model from the archive's audit runs, each checked against its manifest."""
@@ -88,7 +95,7 @@ def publish_task(archive: str, head: dict, summary: dict, staged: list[StagedRec
     """Write the run folder atomically from the staged records and pages, refresh the archive index."""
     published = publish_staged(archive, head, summary, staged, meta, manifest, run_id=run_id)
     render_archive_index_file(archive)
-    return {"run_id": published.run_id, "path": str(pathlib.Path(archive) / published.path), "manifest_sha256": published.manifest_sha256}
+    return {"run_id": published.run_id, "path": str(pathlib.Path(archive) / published.path), "manifest_sha256": published.manifest_sha256, "seq": published.seq}
 
 
 @task(name="publish-events", cache_policy=NO_CACHE, persist_result=False)
@@ -219,6 +226,7 @@ def audit_flow(
     reg = load_registry_task(registry)
     recovered = recover_task(archive)
     acknowledged = check_archive_task(archive)
+    extends = context_task(archive, as_of)
     run_id = new_run_id(as_of)
     wanted = None if models is None else set(models)
     ids = [m.id for m in reg.models if wanted is None or m.id in wanted]
@@ -281,6 +289,7 @@ def audit_flow(
                 "tool_version": head["run"]["tool_version"],
                 "code_commit": code_commit(),
                 "prefect_version": package_versions()["prefect"],
+                **{k: extends[k] for k in ("archive_head", "previous_run_id", "previous_as_of", "fleet_trend")},
             }
             parcels, names, spills = _render_inputs(final, batches, staged)
             rendered = render_outcomes_task.map(parcels, unmapped(head), unmapped(meta), unmapped(str(work / "publish")), names, spills, unmapped(workers))
@@ -305,6 +314,9 @@ def audit_flow(
             "recovered": recovered,
             "acknowledged_damage": acknowledged,
             "history": history.to_manifest(),
+            "extends": {k: extends[k] for k in ("chain_head", "chain_seq", "previous_run_id", "previous_as_of")},
+            "fleet_trend": extends["fleet_trend"],
+            "scope": {"models_requested": sorted(wanted) if wanted is not None else None},
             "production": staged.production,
             "task_runner": _runner_name(),
         }
@@ -314,6 +326,11 @@ def audit_flow(
         published = publish_task(archive, head, summary, quote(staged_records), meta, quote(manifest), run_id)
         timings["publish_s"] = time.perf_counter() - t0
         report = str(pathlib.Path(published["path"]) / "index.html")
+        if published["seq"] != extends["chain_seq"] + 1:
+            logger.warning(
+                "run %s: %d chain entries were appended while it ran; its page names the head before them (seq %s), its own entry is seq %d",
+                run_id, published["seq"] - extends["chain_seq"] - 1, extends["chain_seq"], published["seq"],
+            )
         run = {"run_id": run_id, "as_of": as_of.isoformat(), "report_path": report, "registry_sha256": reg.sha256}
         events_task(quote(recs), summary, run)
         counts = manifest["counts"]

@@ -37,7 +37,7 @@ from prefect import task
 from prefect.cache_policies import NO_CACHE
 
 from ._io import canonical_json, sha256_bytes
-from .archive import PublishedRun, history_runs, list_runs, open_run
+from .archive import PublishedRun, chain_head, history_runs, list_runs, open_run
 from .results import light_record, results_json_chunks, results_rows
 from .workers import run_local
 
@@ -52,10 +52,13 @@ __all__ = [
     "package_versions",
     "code_commit",
     "render_archive_index_file",
+    "run_context",
     "HISTORY_LENGTH",
+    "TREND_LENGTH",
 ]
 
 HISTORY_LENGTH = 7  # earlier audits kept per model (the report shows these plus the current one)
+TREND_LENGTH = 7  # earlier full audits in the run page's fleet trend (plus the current one)
 
 
 def package_versions() -> dict:
@@ -306,6 +309,50 @@ def load_history(archive_root: str | os.PathLike, before: dt.date, model_ids: Se
             }
     records = {mid: [by_date[d] for d in sorted(by_date)] for mid, by_date in sorted(seen.items())}
     return History(records, tuple(used), tuple(problems))
+
+
+def run_context(archive_root: str | os.PathLike, as_of: dt.date, *, trend_length: int = TREND_LENGTH) -> dict:
+    """What a new audit run states about the archive it extends (docs/architecture.md §3.4).
+
+    Read before the run is written: the hash chain's head (the entry the run's own entry will
+    follow, unless another entry is appended meanwhile; the audit flow checks that after
+    publication), the audit run published last, and the share of passing models at each of the
+    last ``trend_length`` as-of dates before ``as_of`` (the newest full audit run of each date;
+    runs of some models only, ``--models``, are left out).  Earlier runs come from
+    :func:`fitaudit.tasks.archive.history_runs`: manifests checked against the chain.
+
+    Returns
+    -------
+    dict
+        ``archive_head`` (``"<sha256> (seq N)"``, or None for an empty chain), ``chain_head``,
+        ``chain_seq``, ``previous_run_id`` and ``previous_as_of`` (None before the first audit run)
+        and ``fleet_trend``: ``[{"as_of", "passed", "registered"}, ...]``, oldest first.
+    """
+    root = pathlib.Path(archive_root)
+    head = chain_head(root) if root.exists() else None
+    audits = []
+    for run in history_runs(root, dt.date.max) if root.exists() else []:
+        manifest = run["manifest"]
+        if not isinstance(manifest, dict) or manifest.get("kind", "audit") != "audit" or "results.json" not in (manifest.get("files") or {}):
+            continue
+        audits.append((run, manifest))
+    audits.sort(key=lambda item: item[0]["seq"])
+    previous = audits[-1][0] if audits else None
+    newest: dict[str, dict] = {}
+    for run, manifest in audits:
+        counts = manifest.get("counts") or {}
+        full = not (manifest.get("scope") or {}).get("models_requested")
+        if full and run["as_of"] < as_of.isoformat() and isinstance(counts.get("registered"), int) and counts["registered"] > 0:
+            newest[run["as_of"]] = {"as_of": run["as_of"], "passed": int(counts.get("pass") or 0), "registered": int(counts["registered"])}
+    trend = [newest[d] for d in sorted(newest)][-trend_length:] if trend_length > 0 else []
+    return {
+        "archive_head": f"{head[0]} (seq {head[1]})" if head else None,
+        "chain_head": head[0] if head else None,
+        "chain_seq": head[1] if head else 0,
+        "previous_run_id": previous["run_id"] if previous else None,
+        "previous_as_of": previous["as_of"] if previous else None,
+        "fleet_trend": trend,
+    }
 
 
 def render_archive_index_file(archive_root: str | os.PathLike) -> pathlib.Path:

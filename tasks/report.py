@@ -602,6 +602,11 @@ def _meta_view(meta: Mapping[str, Any]) -> dict:
     view = {k: _text(meta[k], _SHORT_TEXT) for k in _REQUIRED_META}
     view["archive_head"] = _text(meta.get("archive_head")) or None
     view["previous_run_id"] = _text(meta.get("previous_run_id")) or None
+    view["previous_as_of"] = _text(meta.get("previous_as_of")) or None
+    view["fleet_trend"] = [
+        {"as_of": _text(t.get("as_of")), "passed": int(t["passed"]), "registered": int(t["registered"])}
+        for t in meta.get("fleet_trend") or () if isinstance(t, Mapping) and isinstance(t.get("passed"), int) and isinstance(t.get("registered"), int) and t["registered"] > 0
+    ]
     return view
 
 

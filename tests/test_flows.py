@@ -114,3 +114,30 @@ def test_dask_runner_gives_the_same_results(demo, first_run, tmp_path):
     run = audit_flow.with_options(task_runner=runner)(registry=demo["registry"], as_of=DEMO_AS_OF, archive=_fresh_archive(demo, tmp_path), models=SUBSET, batch_size=3)
     assert run["counts"] == first_run["counts"]
     assert _results(run) == _results(first_run)
+
+
+def test_a_second_run_names_the_first_run_and_the_chain_head_it_extends(demo, prefect_server, tmp_path):
+    import datetime as dt
+
+    from fitaudit.flows.audit import audit_flow
+    from fitaudit.tasks.archive import chain_head, read_chain
+
+    archive = _fresh_archive(demo, tmp_path)
+    before = chain_head(archive)  # the demo's initial promotions are chained
+    first = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF - dt.timedelta(days=28), archive=archive, models=["demand-d-02"], search_candidates=False)
+    after_first = chain_head(archive)
+    second = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=archive, models=["demand-d-02"], search_candidates=False)
+    entry = read_chain(archive)[after_first[1] - 1]
+    assert entry["kind"] == "run" and entry["payload"]["run_id"] == first["run_id"] and entry["hash"] == after_first[0]
+
+    page1 = pathlib.Path(first["report"]).read_text(encoding="utf-8")
+    assert f"{before[0]} (seq {before[1]})" in page1
+    assert "none: the first audit run in this archive" in page1
+    page2 = pathlib.Path(second["report"]).read_text(encoding="utf-8")
+    assert f"{after_first[0]} (seq {after_first[1]})" in page2  # the first run's own chain entry
+    assert f"{first['run_id']}</span> (as of {first['as_of']})" in page2
+    assert "none (first run)" not in page2
+    manifest = json.loads((pathlib.Path(second["report"]).parent / "manifest.json").read_text())
+    assert manifest["extends"] == {"chain_head": after_first[0], "chain_seq": after_first[1], "previous_run_id": first["run_id"], "previous_as_of": first["as_of"]}
+    assert manifest["scope"] == {"models_requested": ["demand-d-02"]}
+    assert chain_head(archive)[1] == after_first[1] + 1  # the second run's entry follows the head its page names

@@ -239,6 +239,9 @@ def test_audit_flow_matches_the_plain_pipeline(demo, registry, prefect_server, t
     assert manifest["batches"] >= 4 and run["counts"]["registered"] == len(DEMO_SUBSET)
     meta = {k: manifest[k] for k in ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "code_commit")}
     meta["prefect_version"] = manifest["packages"]["prefect"]
+    extends = manifest["extends"]
+    meta.update(archive_head=f"{extends['chain_head']} (seq {extends['chain_seq']})" if extends["chain_head"] else None,
+                previous_run_id=extends["previous_run_id"], previous_as_of=extends["previous_as_of"], fleet_trend=manifest["fleet_trend"])
 
     macro = environment().from_string(REFERENCE_SVG_MACRO).module.svg
     monkeypatch.setitem(environment().filters, "svg", macro)  # the reference renders charts with the old macro

@@ -754,3 +754,45 @@ def test_archive_index_lists_published_runs(tmp_path, doc):
         for verdict, (symbol, word) in STATUS.items():
             assert int(cells[header.index(f"{symbol} {word}")]) == doc["summary"][verdict]
     assert HOSTILE not in text and "A passing audit is statistical evidence" in text
+
+
+def test_run_context_names_the_chain_head_the_previous_audit_and_the_trend(tmp_path):
+    from fitaudit.tasks.publish import run_context
+
+    root = tmp_path / "archive"
+    empty = run_context(root, dt.date(2026, 11, 30))
+    assert empty == {"archive_head": None, "chain_head": None, "chain_seq": 0, "previous_run_id": None, "previous_as_of": None, "fleet_trend": []}
+    published = []
+    plan = [  # (as_of, kind, passed, registered, models requested)
+        (dt.date(2026, 11, 2), "audit", 8, 10, None),
+        (dt.date(2026, 11, 9), "audit", 9, 10, None),
+        (dt.date(2026, 11, 9), "audit", 1, 1, ["m-1"]),  # a partial rerun: not in the trend, but the previous run
+        (dt.date(2026, 11, 9), "refit", None, None, None),  # a refit run is never the previous audit
+        (dt.date(2026, 12, 7), "audit", 10, 10, None),  # after the new run's as-of date: not in its trend
+    ]
+    for k, (as_of, kind, passed, registered, requested) in enumerate(plan):
+        run_id = archive.new_run_id(as_of, dt.datetime(2026, 12, 1, 1, 0, k, tzinfo=dt.UTC))
+        with archive.open_run(root, run_id, as_of.year) as run:
+            if kind == "audit":
+                run.write_bytes("results.json", b"{}")
+                manifest = {"kind": "audit", "counts": {"registered": registered, "pass": passed}, "scope": {"models_requested": requested}}
+            else:
+                run.write_bytes("refit.json", b"{}")
+                manifest = {"kind": "refit", "counts": {"promoted": 1}}
+            published.append(run.finish(manifest))
+    context = run_context(root, dt.date(2026, 11, 30))
+    head, seq = archive.chain_head(root)
+    assert context["archive_head"] == f"{head} (seq {seq})" and context["chain_seq"] == seq == len(plan)
+    assert context["previous_run_id"] == published[4].run_id and context["previous_as_of"] == "2026-12-07"  # the audit published last
+    assert context["fleet_trend"] == [{"as_of": "2026-11-02", "passed": 8, "registered": 10}, {"as_of": "2026-11-09", "passed": 9, "registered": 10}]
+    assert run_context(root, dt.date(2026, 11, 30), trend_length=1)["fleet_trend"] == [{"as_of": "2026-11-09", "passed": 9, "registered": 10}]
+
+
+def test_run_page_names_the_chain_head_and_the_previous_run(doc):
+    head = "ab" * 32 + " (seq 12)"
+    page = parse(render_run(doc, dict(META, archive_head=head, previous_run_id="20261123-T010203Z-0a0b", previous_as_of="2026-11-23"))["index.html"])
+    facts = next(page.iter("dl")).text()
+    assert head in facts and "20261123-T010203Z-0a0b (as of 2026-11-23)" in facts
+    first = parse(render_run(doc, META)["index.html"])
+    facts = next(first.iter("dl")).text()
+    assert "none: this is the first entry of the archive’s hash chain" in facts and "none: the first audit run in this archive" in facts
