@@ -44,6 +44,7 @@ from .exceptions import FitauditError, InputError
 from .forecasts import audit_forecasts
 from .models import as_model, check_series, exog_matrix
 from .noise import as_noise_law
+from .plotdata import error_effects, iso_date
 from .results import AuditResult, CheckResult, _plain
 from .settings import DEFAULT_GATE_MEMBERS, DEFAULT_PARTITIONS, AuditSettings
 from .verdict import apply_fleet_rules, decide_verdict
@@ -77,6 +78,7 @@ def audit_series(
     production_noise: Mapping[str, Any] | None = None,
     cache: CalibrationCache | None = None,
     label: str | None = None,
+    timestamps=None,
 ) -> AuditResult:
     """Audit one series: production check, refit check, verdict.
 
@@ -100,6 +102,9 @@ def audit_series(
         Shared null tables (one per run); a private cache is used when omitted.
     label : str, optional
         Name used in messages (the model id).
+    timestamps : array_like, shape (n,), optional
+        Timestamps of ``y``; used only to name dates (windows, a located change) in the results
+        and reasons (:func:`~fitaudit.core.plotdata.error_effects`).
 
     Returns
     -------
@@ -149,7 +154,6 @@ def audit_series(
     refit_check, fit = _refit_check(model, y_arr, exog, law, settings, cache, label)
     timings["refit_s"] = time.perf_counter() - t0
 
-    verdict, reasons = decide_verdict(prod_check, refit_check, settings.level)
     change = None
     if (
         settings.locate_change
@@ -167,6 +171,16 @@ def audit_series(
             change = dataclasses.replace(change, index=change.index + first)
         except (FitauditError, ValueError):
             change = None
+    times = None if timestamps is None or np.shape(timestamps) != y_arr.shape else np.asarray(timestamps)
+    if prod_check is not None and prod_check.ok and prod_errors is not None:
+        sigma2 = (production or {}).get("sigma2")
+        effects = error_effects(prod_errors, y_arr, prod_check.window["first"], sigma2=None if sigma2 is None else float(sigma2),
+                                change=None if change is None else change.index, times=times)
+        prod_check = dataclasses.replace(prod_check, effects=effects)
+    if refit_check.ok and times is not None and refit_check.window:
+        w = refit_check.window
+        refit_check = dataclasses.replace(refit_check, effects={"n": w["length"], "start": iso_date(times[w["first"]]), "end": iso_date(times[w["last"]])})
+    verdict, reasons = decide_verdict(prod_check, refit_check, settings.level)
     fitted = {}
     if fit is not None:
         fitted = {

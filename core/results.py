@@ -32,7 +32,8 @@ class CheckResult:
     when any point exceeds 1); the calibrated p-value of the distribution gate, the independence gate (Ljung-Box) with McLeod-Li
     reported, the Bonferroni-combined ``p_value`` (``p_adjusted`` after fleet adjustment), effect
     sizes, cell counts and the noise parameters; ``plots`` holds compact data for the report
-    (standardised-residual histogram, Q-Q points, autocorrelations).
+    (standardised-residual histogram, Q-Q points, autocorrelations); ``effects`` holds the
+    errors' sizes in plain units and the window's dates (:func:`~fitaudit.core.plotdata.error_effects`).
     """
 
     kind: str
@@ -65,6 +66,7 @@ class CheckResult:
     gate: dict = field(default_factory=dict)
     window: dict = field(default_factory=dict)
     plots: dict = field(default_factory=dict)
+    effects: dict = field(default_factory=dict)
     settings_level: float = 0.05
     practical: tuple = (None, None)
 

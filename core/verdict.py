@@ -1,7 +1,9 @@
 """Verdicts and their reasons, and the rules applied across a run (docs/method.md §10).
 
 * :func:`decide_verdict`: ``pass``, ``refit`` or ``respecify`` from the two checks, with one
-  plain sentence per reason; ``insufficient`` or ``error`` when a check could not run;
+  plain sentence per reason, the reason for the verdict first; ``insufficient`` or ``error`` when
+  a check could not run;
+* :func:`owner_action`: what the model's owner should do after a verdict, and by when;
 * the fleet rules: :func:`adjust_pvalues` (multiplicity adjustment across the checks of a run),
   :func:`escalate_persistent_refit` (a recurring ``refit`` becomes ``respecify``) and
   :func:`apply_fleet_rules`, which applies both to a run's results and re-decides their verdicts.
@@ -17,15 +19,17 @@ References
 from __future__ import annotations
 
 import dataclasses
+import datetime as dt
 from collections.abc import Sequence
 
 import numpy as np
 
+from .divergence import CLASSICAL_MEMBER_LABELS
 from .exceptions import InputError
 from .results import AuditResult, CheckResult
 from .vocabulary import ADJUDICATED_VERDICTS, ADJUSTMENT_LABELS, ADJUSTMENTS, VERDICTS, Adjustment
 
-__all__ = ["decide_verdict", "apply_fleet_rules", "adjust_pvalues", "escalate_persistent_refit"]
+__all__ = ["decide_verdict", "owner_action", "apply_fleet_rules", "adjust_pvalues", "escalate_persistent_refit"]
 
 
 def _fmt_p(p: float) -> str:
@@ -34,17 +38,104 @@ def _fmt_p(p: float) -> str:
     return "< 0.001" if p < 0.001 else f"= {p:.3f}"
 
 
+#: A passing check is *narrow* when its largest standardised statistic is within this share of its
+#: critical value (T / critical value at least 0.9).
+NARROW_SHARE = 0.10
+#: A classical member's own chi-square p-value below this is worth a mention on a passing check.
+CLASSICAL_NOTE_P = 0.02
+#: A McLeod-Li p-value below this is strong evidence of changing variance (reported only).
+MCLEOD_LI_NOTE_P = 0.001
+#: A spread ratio outside [1 / SPREAD_NOTE, SPREAD_NOTE] or a bias of BIAS_NOTE_SD standard
+#: deviations is put into words when a production check fails.
+SPREAD_NOTE = 1.25
+BIAS_NOTE_SD = 0.2
+
+
+def _floor(check: CheckResult) -> tuple[float, int] | None:
+    """The smallest p-value a simulated calibration can give, ``1 / (B + 1)``, and ``B``."""
+    cal = check.calibration or {}
+    b = cal.get("replicates")
+    if cal.get("method") in ("simulated", "bootstrap") and isinstance(b, int) and not isinstance(b, bool) and b > 0:
+        return 1.0 / (b + 1), b
+    return None
+
+
+def _p_gate(check: CheckResult) -> str:
+    """The distribution gate's p-value; at the simulation's floor ``p <= 0.002 (the smallest ...)``."""
+    p = check.p_distribution
+    floor = _floor(check)
+    if floor is not None and p is not None and np.isfinite(p) and p <= floor[0] * (1 + 1e-9):
+        return f"p ≤ {floor[0]:.3g} (the smallest possible with {floor[1]} simulations)"
+    return f"p {_fmt_p(p)}"
+
+
+def _rule(check: CheckResult, threshold: float, adjusted: bool) -> str:
+    """The check's p-value beside the rule that decided it."""
+    if adjusted and check.p_adjusted is not None:
+        side = "at or below" if check.p_adjusted <= threshold else "above"
+        return f"check p {_fmt_p(check.p_value)}, adjusted across the run {_fmt_p(check.p_adjusted)}, {side} q = {threshold:g}"
+    return f"check p {_fmt_p(check.p_value)}; each gate fails at p ≤ {threshold / 2:g} (level {threshold:g} split over the two gates)"
+
+
+def _window_words(check: CheckResult) -> str:
+    eff = check.effects or {}
+    n = eff.get("n") or check.window.get("length") or check.n
+    if eff.get("start") and eff.get("end"):
+        return f"the {n} observations from {eff['start']} to {eff['end']}"
+    return f"the last {n} observations" if check.kind == "production" else f"the {n} observations of the fit window"
+
+
+def _bias_words(sizes: dict, since: str | None) -> str | None:
+    bias_sd, pct = sizes.get("bias_sd"), sizes.get("bias_pct")
+    if bias_sd is None or abs(bias_sd) < BIAS_NOTE_SD:
+        return None
+    when = f" since {since}" if since else ""
+    side = "high" if bias_sd < 0 else "low"  # e = y - forecast: negative errors are forecasts above the data
+    if pct is not None and abs(pct) >= 0.5:
+        return f"the forecasts ran {abs(pct):.0f} % {side}{when} ({abs(bias_sd):.1f} standard deviations of the assumed error)"
+    return f"the forecasts ran {abs(bias_sd):.1f} standard deviations of the assumed error too {side}{when}"
+
+
+def _plain_failure(check: CheckResult, threshold: float, adjusted: bool) -> str:
+    """One sentence a reader without statistics understands, with a number and its unit."""
+    dist, ind = check.gate_flags(threshold, adjusted)
+    eff = check.effects or {}
+    noun = "errors" if check.kind == "production" else "residuals"
+    parts = []
+    since = eff.get("since") or {}
+    bias = (_bias_words(since, since.get("date")) if since.get("date") else None) or _bias_words(eff, None)
+    if dist and bias:
+        parts.append(bias)
+    ratio = eff.get("variance_ratio")
+    if dist and ratio is not None and (ratio >= SPREAD_NOTE or ratio <= 1 / SPREAD_NOTE):
+        if ratio >= 1:
+            parts.append(f"the {noun} are {ratio:.1f} times as variable as the model assumes")
+        else:
+            parts.append(f"the {noun} are only {ratio:.2f} times as variable as the model assumes (it overstates its uncertainty)")
+    if dist and not parts:
+        deciding = check.gate.get("deciding") or {}
+        sentence = f": {deciding['sentence']}" if deciding.get("sentence") else ""
+        parts.append(f"the {noun} are not distributed as the model assumes{sentence}")
+    if ind:
+        parts.append(
+            f"consecutive {noun} are correlated (largest autocorrelation {check.effect_acf:.2f}), so the forecasts leave predictable "
+            "structure unused"
+        )
+    return "; ".join(parts) if parts else "no gate was flagged"
+
+
 def _why_failed(check: CheckResult, threshold: float, adjusted: bool) -> str:
+    """The statistics behind a failing check, with the thresholds that decided it."""
     dist, ind = check.gate_flags(threshold, adjusted)
     parts = []
     if dist:
-        where = f" (largest at alpha {check.alpha_max:g}, beta {check.beta_max:g})" if np.isfinite(check.alpha_max) else ""
+        where = f", at α {check.alpha_max:g}, β {check.beta_max:g}" if np.isfinite(check.alpha_max) else ""
         deciding = check.gate.get("deciding") or {}
         cells = f": {deciding['sentence']}" if deciding.get("sentence") else ""
         on = f" on the {deciding['kind']} cells" if deciding.get("kind") else ""
         parts.append(
             f"the residual distribution departs from the assumed {check.noise.get('law', 'noise')} law{cells} "
-            f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{on}{where}, p {_fmt_p(check.p_distribution)})"
+            f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{on}{where}; distribution gate {_p_gate(check)})"
         )
     if ind:
         lb = check.ljung_box
@@ -52,19 +143,52 @@ def _why_failed(check: CheckResult, threshold: float, adjusted: bool) -> str:
             f"the residuals are autocorrelated (Ljung-Box Q {lb.get('statistic', float('nan')):.1f} on {lb.get('lags')} lags, "
             f"p {_fmt_p(check.p_independence)}; largest |autocorrelation| {check.effect_acf:.2f})"
         )
-    return " and ".join(parts) if parts else "no gate was flagged"
+    text = " and ".join(parts) if parts else "no gate was flagged"
+    return f"{text}; {_rule(check, threshold, adjusted)}"
 
 
-def _summary_pass(check: CheckResult) -> str:
+def _summary_pass(check: CheckResult, threshold: float, adjusted: bool) -> str:
     deciding = check.gate.get("deciding") or {}
     on = f" on the {deciding['kind']} cells" if deciding.get("kind") else ""
     beyond = check.t_at_max > check.critical_value
     return (
         f"the distribution gate finds no departure from the assumed law (largest standardised statistic: T {check.t_at_max:.1f} "
-        f"against a critical value of {check.critical_value:.1f}{on}, p {_fmt_p(check.p_distribution)}"
+        f"against a critical value of {check.critical_value:.1f}{on}, {_p_gate(check)}"
         + (", not significant after the adjustment across the run" if beyond else "")
-        + f") and Ljung-Box finds no autocorrelation (p {_fmt_p(check.p_independence)})"
+        + f") and Ljung-Box finds no autocorrelation (p {_fmt_p(check.p_independence)}); {_rule(check, threshold, adjusted)}"
     )
+
+
+def _cautions(check: CheckResult) -> list[str]:
+    """What a passing check's numbers say beyond the verdict: a narrow pass, strong reported-only diagnostics."""
+    out = []
+    share = check.t_at_max / check.critical_value if check.critical_value and np.isfinite(check.critical_value) else float("nan")
+    if np.isfinite(share) and 1 - NARROW_SHARE <= share <= 1:
+        out.append(
+            f"it passes narrowly: its largest standardised statistic is {share:.2f} of its critical value "
+            f"(within {100 * NARROW_SHARE:.0f} % of failing)"
+        )
+    low = {name: m.get("p_value_chi2") for name, m in (check.members or {}).items()
+           if isinstance(m, dict) and m.get("p_value_chi2") is not None and np.isfinite(m["p_value_chi2"]) and m["p_value_chi2"] < CLASSICAL_NOTE_P}
+    if low:
+        names = ", ".join(CLASSICAL_MEMBER_LABELS.get(n, n) for n in low)
+        lo, hi = min(low.values()), max(low.values())
+        span = f"p {_fmt_p(lo)}" if lo == hi else f"p from {lo:.3f} to {hi:.3f}" if lo >= 0.001 else f"p from < 0.001 to {hi:.3f}"
+        out.append(
+            f"the classical statistics {names} would reject on their own ({span} against chi-square; reported only: "
+            "the calibrated gate over all members decides)"
+        )
+    ml = (check.mcleod_li or {}).get("p_value")
+    if ml is not None and np.isfinite(ml) and ml < MCLEOD_LI_NOTE_P:
+        out.append(
+            f"there is strong evidence of changing variance (McLeod-Li on squared residuals, p {_fmt_p(ml)}; reported only, "
+            "it does not decide the verdict)"
+        )
+    return out
+
+
+def _caution_reasons(check: CheckResult, which: str) -> list[str]:
+    return [f"Caution, {which}: {c}." for c in _cautions(check)]
 
 
 def decide_verdict(production: CheckResult | None, refit: CheckResult | None, threshold: float, adjusted: bool = False) -> tuple[str, tuple]:
@@ -75,6 +199,14 @@ def decide_verdict(production: CheckResult | None, refit: CheckResult | None, th
     that could not run makes the verdict ``insufficient`` or ``error`` with its message.  Without
     a refit check (a forecast audit) the verdict is
     :func:`fitaudit.core.forecasts.forecast_verdict` of the production check.
+
+    The first reason says why the verdict is what it is, in plain words with a number and its
+    unit (the errors' spread against the assumed variance, the forecasts' bias since a located
+    change, :func:`~fitaudit.core.plotdata.error_effects`); the next give the statistics of each
+    check beside the rule that decided it, with a simulation's floor named when a p-value sits on
+    it; a passing check that passes narrowly or whose reported-only diagnostics are strong
+    carries a caution.  Reasons give no advice: what to do follows from the verdict
+    (:func:`owner_action`).
 
     Parameters
     ----------
@@ -92,7 +224,7 @@ def decide_verdict(production: CheckResult | None, refit: CheckResult | None, th
     verdict : str
         One of :data:`~fitaudit.core.vocabulary.VERDICTS`.
     reasons : tuple of str
-        One plain sentence each, with the numbers behind the verdict.
+        One plain sentence each, the reason for the verdict first.
     """
     if refit is None:
         from .forecasts import forecast_verdict
@@ -101,22 +233,98 @@ def decide_verdict(production: CheckResult | None, refit: CheckResult | None, th
     if production is not None:
         if not production.ok:
             return production.status, (f"The production check could not run: {production.message}",)
+        window = _window_words(production)
         if production.passed(threshold, adjusted):
-            reasons = [f"The production parameters still describe the audit window of {production.n} observations: {_summary_pass(production)}."]
+            reasons = [
+                f"Pass: the production parameters still describe {window}.",
+                f"Production check: {_summary_pass(production, threshold, adjusted)}.",
+                *_caution_reasons(production, "production check"),
+            ]
             if not refit.ok:
                 reasons.append(f"The refit check could not run ({refit.status}): {refit.message}")
             return "pass", tuple(reasons)
-        first = f"The production parameters no longer fit the audit window of {production.n} observations: {_why_failed(production, threshold, adjusted)}."
+        plain = _plain_failure(production, threshold, adjusted)
+        stats = f"Production check: {_why_failed(production, threshold, adjusted)}."
         if not refit.ok:
-            return refit.status, (first, f"The refit check could not run: {refit.message}")
+            return refit.status, (
+                f"The refit check could not run, so the failing production check cannot be told apart from a model that no longer fits: {refit.message}",
+                f"The production parameters no longer fit {window}: {plain}.",
+                stats,
+            )
         if refit.passed(threshold, adjusted):
-            return "refit", (first, f"Re-estimating the same model fixes it: {_summary_pass(refit)}; promote the refitted parameters.")
-        return "respecify", (first, f"Refitting does not help: {_why_failed(refit, threshold, adjusted)}; the model class no longer describes the series and needs a person to choose a new specification.")
+            return "refit", (
+                f"Refit: the production parameters no longer fit {window}, while the same model re-estimated does: {plain}.",
+                stats,
+                f"Refit check ({_window_words(refit)}): {_summary_pass(refit, threshold, adjusted)}.",
+                *_caution_reasons(refit, "refit check"),
+            )
+        return "respecify", (
+            f"Respecify: re-estimated on {_window_words(refit)}, the model still does not describe the series, so the model class "
+            f"no longer fits: {_plain_failure(refit, threshold, adjusted)}.",
+            f"Refit check ({_window_words(refit)}): {_why_failed(refit, threshold, adjusted)}.",
+            f"The production parameters also fail on {window}: {plain}.",
+            stats,
+        )
     if not refit.ok:
         return refit.status, (f"The refit check could not run: {refit.message}",)
+    window = _window_words(refit)
     if refit.passed(threshold, adjusted):
-        return "pass", (f"The refitted model describes the series ({refit.n} residuals): {_summary_pass(refit)}.",)
-    return "respecify", (f"The refitted model does not describe the series: {_why_failed(refit, threshold, adjusted)}; the model class needs a person to choose a new specification.",)
+        return "pass", (
+            f"Pass: the model re-estimated on {window} describes the series (no production version was checked).",
+            f"Refit check: {_summary_pass(refit, threshold, adjusted)}.",
+            *_caution_reasons(refit, "refit check"),
+        )
+    return "respecify", (
+        f"Respecify: the model re-estimated on {window} does not describe the series: {_plain_failure(refit, threshold, adjusted)}.",
+        f"Refit check: {_why_failed(refit, threshold, adjusted)}.",
+    )
+
+
+def owner_action(verdict: str, *, escalated: bool = False, as_of: dt.date | str | None = None, days: int | None = None,
+                 refit_policy: str = "approval") -> dict:
+    """What a model's owner should do after a verdict, and by when (docs/method.md §10.2).
+
+    The deadline is ``as_of + days`` (the policy's days to act for the model's tier).
+
+    * ``refit``: check the refitted parameters and approve their promotion (with ``refit_policy``
+      ``automatic`` they are promoted when they pass: confirm the promotion);
+    * ``respecify`` (escalated or not): choose a new specification, helped by the candidates,
+      and have it validated; an escalated model is not to be refitted once more;
+    * ``insufficient``: provide the data the reason names (or shorten the windows);
+    * ``error``: fix the problem the reason names;
+    * ``pass``: nothing.
+
+    Returns
+    -------
+    dict
+        ``action`` (one sentence), ``due`` (``YYYY-MM-DD`` or None) and ``days``.
+
+    Examples
+    --------
+    >>> owner_action("refit", as_of="2026-11-30", days=14)["due"]
+    '2026-12-14'
+    """
+    if verdict not in VERDICTS:
+        raise InputError(f"owner_action: unknown verdict {verdict!r}; valid verdicts are {', '.join(repr(v) for v in VERDICTS)}.")
+    if verdict == "pass":
+        return {"action": "None: the model passed.", "due": None, "days": None}
+    texts = {
+        "refit": (
+            "Check the refitted parameters and approve their promotion (fitaudit promote), or say why not."
+            if refit_policy != "automatic" else "Confirm the automatic promotion of the refitted parameters (see the refit run)."
+        ),
+        "respecify": (
+            "Refits keep recurring: do not refit again; choose a new specification (see the candidates) and have it validated."
+            if escalated else "Choose a new specification (see the candidates) and have it validated."
+        ),
+        "insufficient": "Provide the data the reason names (or shorten the windows in the registry) so the model can be audited.",
+        "error": "Fix the problem the reason names so the model can be audited.",
+    }
+    due = None
+    if as_of is not None and days is not None:
+        start = as_of if isinstance(as_of, dt.date) else dt.date.fromisoformat(str(as_of))
+        due = (start + dt.timedelta(days=int(days))).isoformat()
+    return {"action": texts[verdict], "due": due, "days": None if days is None else int(days)}
 
 
 def adjust_pvalues(p, method: Adjustment = "bh") -> np.ndarray:
@@ -286,7 +494,15 @@ def apply_fleet_rules(
             escalated = False
             if verdict == "refit" and escalate_persistent_refit(list(histories[i]), verdict, k=k, n=n):
                 verdict, escalated = "respecify", True
-                reasons = reasons + (f"A refit was also needed in earlier audits ({k} of the last {n} including this one), so the model is escalated for respecification.",)
+                recent = [*list(histories[i])[-(n - 1):], "refit"] if n > 1 else ["refit"]
+                lead = reasons[0].removeprefix("Refit: ")
+                reasons = (
+                    f"Respecify (escalated): a refit was needed in {recent.count('refit')} of the last {len(recent)} audits, this one "
+                    f"included (the policy escalates {k} in {n}), so re-estimating no longer keeps the model fit and its "
+                    "specification needs review.",
+                    f"On its own, this audit would call for a refit: {lead[:1].lower()}{lead[1:]}",
+                    *reasons[1:],
+                )
             res = dataclasses.replace(res, verdict=verdict, reasons=reasons, escalated=escalated)
         out.append(res)
     return out

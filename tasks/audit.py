@@ -126,6 +126,7 @@ def audit_series_for(item: ModelInput, settings: AuditSettings, cache: Calibrati
         settings=settings,
         cache=cache,
         label=f"model {item.model_id!r}",
+        timestamps=item.time,
     )
 
 

@@ -69,7 +69,8 @@ def test_drifted_parameters_give_refit(cache):
         res = audit_series(ar1_series(np.random.default_rng(seed)), AR1, production=stale, settings=settings, cache=cache)
         verdicts.append(res.verdict)
         if res.verdict == "refit":
-            assert "Re-estimating the same model fixes it" in res.reasons[1]
+            assert res.reasons[0].startswith("Refit: the production parameters no longer fit") and "re-estimated does" in res.reasons[0]
+            assert res.reasons[2].startswith("Refit check") and "promote" not in " ".join(res.reasons)
     assert verdicts.count("refit") >= 4, verdicts
 
 
@@ -79,7 +80,7 @@ def test_neglected_seasonality_is_respecify_and_candidates_find_it(cache):
     y = seasonal.simulate({"ar1": 0.5, "sar1": 0.6, "intercept": 10.0, "sigma2": 1.0}, 400, rng)
     res = audit_series(y, AR1, settings=FAST, cache=cache)
     assert res.verdict == "respecify"
-    assert "autocorrelated" in res.reasons[0]
+    assert res.reasons[0].startswith("Respecify:") and "correlated" in res.reasons[0] and "autocorrelated" in res.reasons[1]
     cands = search_candidates(y, AR1, settings=FAST, cache=cache, specs=[seasonal.to_dict(), {"family": "arima", "order": [2, 0, 0], "trend": "c"}], laws=[])
     assert [c.spec["seasonal"] for c in cands] == [[1, 0, 0, 7]]
     assert cands[0].passed and cands[0].spec_text.startswith("ARIMA(1,0,0)(1,0,0)7")
@@ -175,7 +176,7 @@ def test_fleet_adjustment_matches_statsmodels_and_persistence_escalates(cache):
     assert np.allclose(adj, multipletests(raw, alpha=0.10, method="fdr_bh")[1], rtol=1e-12)
     for r, h in zip(out, histories):
         if r.escalated:
-            assert r.verdict == "respecify" and "refit" in h and "escalated" in r.reasons[-1]
+            assert r.verdict == "respecify" and "refit" in h and r.reasons[0].startswith("Respecify (escalated)")
     assert out[0].escalated or out[0].verdict != "refit"
 
 

@@ -232,7 +232,9 @@ def test_failing_gate_names_the_cell_in_words():
     res = audit_series(y, AR1, production=stored, settings=FAST)
     deciding = res.production.gate["deciding"]
     assert deciding["kind"] in DEFAULT_PARTITIONS
-    assert "of the assumed law holds" in res.reasons[0] and "were expected" in res.reasons[0]
+    stats = next(r for r in res.reasons if r.startswith("Production check"))
+    assert "of the assumed law holds" in stats and "were expected" in stats
+    assert "times as variable as the model assumes" in res.reasons[0]  # the plain sentence leads
     assert [p["kind"] for p in res.production.gate["partitions"]] == list(DEFAULT_PARTITIONS)
     assert sum(res.production.gate["partitions"][0]["counts"]) == 56
 
