@@ -60,14 +60,15 @@ from __future__ import annotations
 import dataclasses
 import math
 import time
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
 from scipy import special, stats
 
 from ._validation import Interval, check_param
-from .calibration import CalibrationCache, key_rng
+from .calibration import CalibrationCache, key_rng, production_table
+from .cells import number_of_cells
 from .change import locate_change
 from .checks import _digest, _failed_check, score_frozen
 from .diagnostics import PortmanteauResult, acf, ljung_box_lags
@@ -94,6 +95,8 @@ __all__ = [
     "check_forecast_timing",
     "audit_forecasts",
     "forecast_verdict",
+    "forecast_table_lengths",
+    "prepare_forecast_calibration",
 ]
 
 #: The ways a predictive distribution can be stated (``spec["statement"]`` of a forecast audit).
@@ -1307,3 +1310,76 @@ def audit_forecasts(
         accuracy=_plain(accuracy),
         timings=timings,
     )
+
+
+# --------------------------------------------------------------------------------------------
+# Calibration planning
+# --------------------------------------------------------------------------------------------
+def forecast_table_lengths(audit_window: int, horizon: int = 1) -> tuple[int, ...]:
+    """Lengths of the PIT sequences a forecast audit scores, each needing one null table.
+
+    One-step forecasts score the whole window, ``w`` values.  ``h``-step forecasts score the
+    ``h`` interleaved subsequences of every h-th forecast (:func:`audit_forecasts`), of lengths
+    ``ceil(w / h)`` (the first ``w mod h``) and ``floor(w / h)`` (Diebold, Gunther and Tay 1998
+    [2]_).
+
+    Parameters
+    ----------
+    audit_window : int
+        ``w``, observations of the audit window.
+    horizon : int, default 1
+        ``h``, steps ahead.
+
+    Returns
+    -------
+    tuple of int
+        The distinct lengths, longest first.
+
+    Examples
+    --------
+    >>> forecast_table_lengths(56), forecast_table_lengths(62, 3), forecast_table_lengths(60, 3)
+    ((56,), (21, 20), (20,))
+    """
+    w, h = int(audit_window), int(horizon)
+    return tuple(sorted({-(-w // h), w // h}, reverse=True))
+
+
+def prepare_forecast_calibration(
+    entries: Sequence[tuple[AuditSettings, int]],
+    cache: CalibrationCache | None = None,
+) -> CalibrationCache:
+    """Build, once, the null tables of a run's forecast audits.
+
+    A stated predictive law is fixed before the data, so the distribution gate's null is the
+    production check's: i.i.d. U(0, 1) PIT values, one table per sequence length
+    (:func:`forecast_table_lengths`) and settings, built by
+    :func:`fitaudit.core.calibration.production_table` exactly as :func:`score_frozen` asks for
+    it (``s = number_of_cells(n, 0)``, the gate of ``settings.gate(n, 0)``), and shared with the
+    production checks of fitted models of the same length.  Tables are seeded by their key
+    (docs/method.md §7.7), so planning them changes no result.  The independence gate's tables
+    are built on demand, as for the production check.
+
+    Parameters
+    ----------
+    entries : sequence of (AuditSettings, int)
+        Per forecast entry: its settings (``audit_window`` is the window) and its horizon.
+    cache : CalibrationCache, optional
+        Tables to add to; a new cache when omitted.
+
+    Returns
+    -------
+    CalibrationCache
+    """
+    cache = cache if cache is not None else CalibrationCache()
+    for settings, horizon in entries:
+        if settings.calibration == "asymptotic":
+            continue
+        for n in forecast_table_lengths(settings.audit_window, horizon):
+            try:
+                production_table(
+                    n, number_of_cells(n, 0), settings.alphas, settings.betas, settings.scaling, settings.r,
+                    settings.replicates, settings.seed, cache, gate=settings.gate(n, 0),
+                )
+            except (FitauditError, ValueError):
+                continue  # too short: the audit itself reports it
+    return cache

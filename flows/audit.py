@@ -30,6 +30,7 @@ from fitaudit.tasks.audit import (
     rejected_outcome,
     spill_path,
     tables_task,
+    wants_candidates,
     with_candidates,
 )
 from fitaudit.tasks.batches import stage_inputs_task
@@ -209,6 +210,7 @@ def audit_flow(
     trigger_refits : bool
         Start the refit flow for models with a ``refit`` or ``respecify`` verdict right away (works
         on the embedded server); otherwise an automation listening to the events can do it.
+        Forecast entries are never refitted by fitaudit (their owners re-estimate).
 
     Returns
     -------
@@ -264,7 +266,7 @@ def audit_flow(
             final = finalize_task(quote(outcomes), quote(reg))
             if search_candidates:
                 t0 = time.perf_counter()
-                todo = {o.model_id for o in final if o.verdict == "respecify"}
+                todo = {o.model_id for o in final if wants_candidates(o)}
                 jobs = candidate_jobs(staged.batches, todo, groups=2 * _workers())
                 if jobs:
                     shared = candidate_tables(jobs, reg.policy)  # built once each, in parallel, before the searches
@@ -339,8 +341,9 @@ def audit_flow(
         refits = None
         if trigger_refits:
             from fitaudit.flows.refit import refit_flow
+            from fitaudit.tasks.refit import refit_targets
 
-            todo = [r["id"] for r in recs if r["verdict"] in ("refit", "respecify")]
+            todo = refit_targets(recs)  # forecast entries are re-estimated by their owners
             if todo:
                 refits = refit_flow(
                     registry=registry, model_ids=todo, archive=archive, as_of=as_of,

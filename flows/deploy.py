@@ -5,9 +5,12 @@ process with Prefect's serve mechanism (no work pool needed).  Both need a real 
 the embedded one runs no scheduler.  Teams with workers can use ``flows/prefect.yaml`` instead.
 
 The refit deployment carries the automation: a Prefect event trigger that starts a refit run for
-every ``fitaudit.model.refit`` event, with the model id taken from the event's resource name::
+every ``fitaudit.model.refit`` event of a model fitaudit fits (resource label
+``fitaudit.entry: model``; a forecast entry's refit verdict asks its owner to re-estimate), with
+the model id taken from the event's resource name::
 
-    DeploymentEventTrigger(expect={"fitaudit.model.refit"}, match={"prefect.resource.id": "fitaudit.model.*"},
+    DeploymentEventTrigger(expect={"fitaudit.model.refit"},
+                           match={"prefect.resource.id": "fitaudit.model.*", "fitaudit.entry": "model"},
                            parameters={"model_ids": ["{{ event.resource.name }}"], ...})
 """
 
@@ -16,6 +19,8 @@ from __future__ import annotations
 from prefect import serve
 from prefect.events.schemas.deployment_triggers import DeploymentEventTrigger
 from prefect.schedules import Cron
+
+from fitaudit.tasks.events import ENTRY_LABEL
 
 from .audit import audit_flow
 from .refit import refit_flow
@@ -26,11 +31,12 @@ REFIT_EVENT = "fitaudit.model.refit"
 
 
 def refit_trigger(registry: str, archive: str | None) -> DeploymentEventTrigger:
-    """The event trigger that starts one refit run per ``fitaudit.model.refit`` event."""
+    """The event trigger that starts one refit run per ``fitaudit.model.refit`` event of a model
+    fitaudit fits (never for forecasts made elsewhere: label ``fitaudit.entry`` = ``model``)."""
     return DeploymentEventTrigger(
         name="refit-on-verdict",
         expect={REFIT_EVENT},
-        match={"prefect.resource.id": "fitaudit.model.*"},
+        match={"prefect.resource.id": "fitaudit.model.*", ENTRY_LABEL: "model"},
         parameters={
             "registry": registry,
             "archive": archive,

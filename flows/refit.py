@@ -13,7 +13,7 @@ from fitaudit.core.calibration import CalibrationCache
 from fitaudit.tasks.archive import new_run_id, open_run, open_work_folder, recover, require_intact
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.publish import code_commit, operator_identity, package_versions
-from fitaudit.tasks.refit import refit_batch_task
+from fitaudit.tasks.refit import refit_batch_task, refuse_forecast_entries
 from fitaudit.tasks.registry import load_registry_task, require_digest
 from fitaudit.tasks.settings import get_settings
 
@@ -64,7 +64,8 @@ def refit_flow(
     registry : str
         Registry YAML path.
     model_ids : list of str
-        Models to refit (e.g. those with a ``refit`` or ``respecify`` verdict).
+        Models to refit (e.g. those with a ``refit`` or ``respecify`` verdict).  A forecast entry
+        (forecasts made elsewhere) is refused with ``NotRefittableError`` before anything is done.
     archive : str, optional
         Archive folder (parameter store and chain); default the ``archive_root`` setting.
     as_of : date, optional
@@ -84,6 +85,7 @@ def refit_flow(
     as_of = as_of or dt.datetime.now(dt.UTC).date()
     reg = load_registry_task(registry)
     require_digest(reg, registry_sha256)
+    refuse_forecast_entries(reg, model_ids)  # forecasts made elsewhere: their owners re-estimate
     recovered = recover(archive) if pathlib.Path(archive).exists() else []
     acknowledged = [str(p) for p in require_intact(archive)]  # nothing is added to an archive that verify rejects
     run_id = new_run_id(as_of)

@@ -1,5 +1,9 @@
 """The audit stage: run :func:`fitaudit.core.audit.audit_series` over staged batches.
 
+A forecast entry (forecasts made elsewhere) is audited by
+:func:`fitaudit.core.forecasts.audit_forecasts` instead, after its issue times are checked; its
+result has no refit check (``refit`` is None) and it gets no candidate search.
+
 Plain functions do the work (testable without Prefect); the thin ``@task`` wrapper adds logging.
 One broken model never sinks a batch: every failure becomes that model's ``error`` (or
 ``insufficient``) outcome with a plain message, and the others go on.
@@ -16,6 +20,7 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+import numpy as np
 from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 
@@ -24,11 +29,11 @@ from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.exceptions import FitauditError
 
 from .batches import ModelInput, batch_metadata, read_batch
-from .registry import Policy, RejectedEntry
+from .registry import ForecastEntry, Policy, RejectedEntry
 from .results import model_record
 from .workers import TimeLimitExceeded, run_local, time_limit
 
-__all__ = ["Outcome", "audit_input", "audit_inputs", "audit_batch", "audit_batch_spilled", "light_outcome", "restore_outcomes", "spill_path", "finalize", "rejected_outcome", "records", "audit_batch_task", "candidates_for", "candidate_jobs", "candidate_tables", "tables_task", "candidates_for_jobs", "candidates_task", "with_candidates", "calibration_for", "calibration_task"]
+__all__ = ["Outcome", "audit_input", "audit_inputs", "audit_batch", "audit_batch_spilled", "light_outcome", "restore_outcomes", "spill_path", "finalize", "rejected_outcome", "records", "audit_batch_task", "audit_forecasts_for", "forecast_timing_problems", "wants_candidates", "candidates_for", "candidate_jobs", "candidate_tables", "tables_task", "candidates_for_jobs", "candidates_task", "with_candidates", "calibration_for", "calibration_task"]
 
 
 @dataclass(frozen=True)
@@ -71,7 +76,9 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
     (the local worker processes); reaching it gives an ``error`` verdict.
     """
     entry = item.entry
-    base = dict(entry=entry.to_dict(), lineage=item.lineage, history=item.history, spec_text=_spec_text(entry.spec))
+    forecast = isinstance(entry, ForecastEntry)
+    spec_text = entry.describe() if forecast else _spec_text(entry.spec)
+    base = dict(entry=entry.to_dict(), lineage=item.lineage, history=item.history, spec_text=spec_text)
     production = item.production
     prod_meta = None if production is None else {k: production[k] for k in ("version", "sha256", "created_at") if k in production}
     errors = [p["message"] for p in item.problems if p["severity"] == "error"]
@@ -82,11 +89,15 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
     short = [p["message"] for p in item.problems if p["severity"] == "insufficient"]
     if short:
         return Outcome(verdict="insufficient", reasons=tuple(short), production=prod_meta, **base)
+    if forecast:
+        late = forecast_timing_problems(item)
+        if late:
+            return Outcome(verdict="error", reasons=tuple(late), production=prod_meta, **base)
     t0 = time.perf_counter()
     try:
         settings = entry.audit_settings(policy)
         with time_limit(time_limit_s):
-            result = audit_series_for(item, settings, cache)
+            result = audit_forecasts_for(item, settings, cache) if forecast else audit_series_for(item, settings, cache)
     except TimeLimitExceeded as exc:
         msg = (
             f"model {item.model_id!r}: the audit did not finish within the time limit of {exc.seconds:g} s per model "
@@ -130,6 +141,57 @@ def audit_series_for(item: ModelInput, settings: AuditSettings, cache: Calibrati
     )
 
 
+def _forecast_label(item: ModelInput) -> str:
+    entry = item.entry
+    return f"model {entry.id!r} (source {entry.source!r}, series {entry.series!r})"
+
+
+def forecast_timing_problems(item: ModelInput) -> list[str]:
+    """Problems with the issue times of a forecast entry's audited forecasts (empty when none,
+    or when the entry states no ``issued`` column).
+
+    Each forecast of the audit window must have been issued strictly before the time stamp of
+    the observation it predicts, as stored in the extract
+    (:func:`fitaudit.core.forecasts.check_forecast_timing`).
+    """
+    from fitaudit.core.forecasts import check_forecast_timing
+
+    entry = item.entry
+    column = entry.forecasts.issued
+    if column is None or item.y.size == 0:
+        return []
+    w = min(entry.audit_window, item.y.size)
+    seconds = np.asarray(item.forecasts[column], dtype=float)[-w:]
+    issued = np.full(seconds.size, np.datetime64("NaT"), dtype="datetime64[s]")
+    known = np.isfinite(seconds)
+    issued[known] = np.round(seconds[known]).astype("int64").astype("datetime64[s]")
+    target = np.asarray(item.time)[-w:].astype("datetime64[s]")
+    label = f"{_forecast_label(item)}, column {column!r}"
+    problems = check_forecast_timing(issued, target, label=label)
+    if any("issued at or after" in p for p in problems):
+        problems.insert(0, f"model {entry.id!r}: forecasts issued after the observation they predict cannot be audited.")
+    return problems
+
+
+def audit_forecasts_for(item: ModelInput, settings: AuditSettings, cache: CalibrationCache) -> AuditResult:
+    """Call :func:`fitaudit.core.forecasts.audit_forecasts` with a staged forecast entry's actuals
+    and its stated forecasts (the registry's ``forecasts`` block)."""
+    from fitaudit.core.forecasts import audit_forecasts
+
+    stated = item.entry.forecasts
+    columns = item.forecasts
+    if stated.quantiles is not None:
+        kwargs = {"quantiles": {level: columns[name] for level, name in stated.levels().items()}}
+    else:
+        kwargs = {"mean": columns[stated.mean], "noise": stated.law()}
+        if stated.scale is not None:
+            kwargs["scale"] = columns[stated.scale] if isinstance(stated.scale, str) else stated.scale
+    return audit_forecasts(
+        item.y, horizon=stated.horizon, period=stated.period, settings=settings, cache=cache,
+        label=_forecast_label(item), **kwargs,
+    )
+
+
 def audit_inputs(items: Iterable[ModelInput], policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0) -> list[Outcome]:
     """Audit staged models with one shared calibration cache (``time_limit_s`` per model, see :func:`audit_input`)."""
     cache = cache if cache is not None else CalibrationCache()
@@ -164,7 +226,7 @@ def light_outcome(outcome: Outcome) -> Outcome:
         res = dataclasses.replace(
             res,
             production=None if res.production is None else dataclasses.replace(res.production, **_CHECK_DETAIL),
-            refit=dataclasses.replace(res.refit, **_CHECK_DETAIL),
+            refit=None if res.refit is None else dataclasses.replace(res.refit, **_CHECK_DETAIL),
             change=None,
             fitted={},
             production_params=None,
@@ -235,6 +297,12 @@ def finalize(outcomes: Sequence[Outcome], policy: Policy) -> list[Outcome]:
     return out
 
 
+def wants_candidates(outcome: Outcome) -> bool:
+    """Whether the candidate search runs for an outcome: a ``respecify`` verdict of a model
+    fitaudit fits (a forecast audit has no refit check, and no specification to vary)."""
+    return outcome.verdict == "respecify" and outcome.result is not None and outcome.result.refit is not None
+
+
 def with_candidates(outcomes: Sequence[Outcome], found: Mapping[str, list[dict]]) -> list[Outcome]:
     """Attach candidate lists to the outcomes they belong to."""
     return [dataclasses.replace(o, candidates=tuple(found[o.model_id])) if o.model_id in found else o for o in outcomes]
@@ -266,17 +334,26 @@ def records(outcomes: Sequence[Outcome], as_of: str) -> list[dict]:
 
 
 def calibration_for(batch_paths: Sequence[str], policy: Policy) -> CalibrationCache:
-    """Build the run's shared null tables from the staged batches' metadata (no data read)."""
-    entries = []
+    """Build the run's shared null tables from the staged batches' metadata (no data read):
+    :func:`fitaudit.core.audit.prepare_calibration` for fitted models and
+    :func:`fitaudit.core.forecasts.prepare_forecast_calibration` for forecast entries (the
+    window, or for h-step forecasts the lengths of their subsequences)."""
+    from fitaudit.core.forecasts import prepare_forecast_calibration
+
+    entries, forecasts = [], []
     for path in batch_paths:
         for meta in batch_metadata(path):
             if any(p["severity"] == "error" for p in meta["problems"]) or meta["lineage"].get("rows_loaded", 0) == 0:
                 continue
             entry = meta["entry"]
+            if isinstance(entry, ForecastEntry):
+                forecasts.append((entry.audit_settings(policy), entry.forecasts.horizon))
+                continue
             production = meta.get("production")
             n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
             entries.append((dict(entry.spec), entry.noise_law(), entry.audit_settings(policy), n_obs, bool(production and not production.get("error"))))
-    return prepare_calibration(entries)
+    cache = prepare_calibration(entries)
+    return prepare_forecast_calibration(forecasts, cache) if forecasts else cache
 
 
 @task(name="prepare-calibration", cache_policy=NO_CACHE, persist_result=False)
@@ -315,8 +392,8 @@ def candidates_for(path: str, model_ids: Sequence[str], policy: Policy, cache: C
     cache = cache if cache is not None else CalibrationCache()
     out: dict[str, list[dict]] = {}
     for item in read_batch(path):
-        if item.model_id not in wanted:
-            continue
+        if item.model_id not in wanted or isinstance(item.entry, ForecastEntry):
+            continue  # forecasts made elsewhere: fitaudit has no specification to vary
         entry = item.entry
         try:
             found = search_candidates(
@@ -361,7 +438,7 @@ def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list
             wanted = set(ids)
             for meta in batch_metadata(path):
                 entry = meta["entry"]
-                if entry.id not in wanted:
+                if entry.id not in wanted or isinstance(entry, ForecastEntry):
                     continue
                 settings = entry.audit_settings(policy)
                 n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)

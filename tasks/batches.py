@@ -28,7 +28,7 @@ from .archive import ProductionSnapshot, production_snapshot
 from .extracts import ExtractError, ExtractFingerprint, fingerprint_source, read_series, series_problems
 from .frequencies import FREQUENCY_DAYS
 from .params import ParameterStoreError, production_version
-from .registry import ModelEntry, Registry, entry_from_dict
+from .registry import EntryBase, ForecastEntry, ModelEntry, Registry, entry_from_dict
 
 __all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "ROW_KINDS"]
 
@@ -37,13 +37,21 @@ __all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_
 #: without a timestamp) concerns the series as a whole and is kept as the reader found it.
 ROW_KINDS = frozenset({"duplicate-time", "unsorted", "off-grid", "gap", "non-finite", "missing-exogenous"})
 
+#: A forecast entry's stated forecast missing for an observation of the audit window.
+MISSING_FORECAST = "missing-forecast"
+
 
 
 @dataclass(frozen=True)
 class ModelInput:
-    """Everything one model's audit needs, read back from a batch file (the registry entry typed)."""
+    """Everything one model's audit needs, read back from a batch file (the registry entry typed).
 
-    entry: ModelEntry
+    ``forecasts`` holds a forecast entry's stated columns by name, aligned with ``y`` (NaN where
+    no forecast was stored; issue times as seconds since 1970-01-01 UTC); empty for a model
+    fitaudit fits.
+    """
+
+    entry: EntryBase
     y: np.ndarray
     time: np.ndarray
     exog: dict
@@ -51,6 +59,7 @@ class ModelInput:
     lineage: dict
     problems: tuple
     history: tuple
+    forecasts: dict = field(default_factory=dict)
 
     @property
     def model_id(self) -> str:
@@ -104,9 +113,10 @@ def _end_of_day(as_of: dt.date) -> np.datetime64:
     return np.datetime64(as_of + dt.timedelta(days=1), "ns") - np.timedelta64(1, "ns")
 
 
-def _production(archive_root: pathlib.Path | None, entry: ModelEntry, snapshot: ProductionSnapshot | None = None) -> dict | None:
-    """The production parameter version (from the run's ``snapshot``), or an ``error`` note when it cannot be used."""
-    if archive_root is None:
+def _production(archive_root: pathlib.Path | None, entry: EntryBase, snapshot: ProductionSnapshot | None = None) -> dict | None:
+    """The production parameter version (from the run's ``snapshot``), or an ``error`` note when it
+    cannot be used; None for a forecast entry (fitaudit holds no parameters of it)."""
+    if archive_root is None or isinstance(entry, ForecastEntry):
         return None
     try:
         if snapshot is None:
@@ -145,10 +155,26 @@ def _same_spec(a: dict, b: dict) -> bool:
         return False
 
 
-def _lineage(entry: ModelEntry, fp: ExtractFingerprint | None, time: np.ndarray, n_loaded: int) -> dict:
+def _lineage(entry: EntryBase, fp: ExtractFingerprint | None, time: np.ndarray, n_loaded: int) -> dict:
     def iso(t):
         return str(np.datetime_as_string(t, unit="s")) if t is not None else None
 
+    if isinstance(entry, ForecastEntry):
+        return {
+            "source": entry.source,
+            "series": entry.series,
+            "value": entry.value,
+            "forecast_columns": entry.forecasts.columns(),
+            "extract_digest": fp.digest if fp is not None else None,
+            "extract_rows": fp.rows if fp is not None else None,
+            "extract_files": len(fp.files) if fp is not None else None,
+            "rows_loaded": int(n_loaded),
+            "first": iso(time[0]) if time.size else None,
+            "last": iso(time[-1]) if time.size else None,
+            "history_window": entry.staged_window - entry.audit_window,
+            "audit_window": entry.audit_window,
+            "audit_first": iso(time[-entry.audit_window]) if time.size >= entry.audit_window else None,
+        }
     return {
         "source": entry.source,
         "series": entry.series,
@@ -189,6 +215,7 @@ def read_batch(path: str | pathlib.Path) -> list[ModelInput]:
         out = []
         for i, m in enumerate(meta):
             exog = {name: data[f"{i}/x/{j}"] for j, name in enumerate(m["exog_names"])}
+            stated = {name: data[f"{i}/f/{j}"] for j, name in enumerate(m.get("forecast_names", ()))}
             out.append(
                 ModelInput(
                     entry=m["entry"],
@@ -199,6 +226,7 @@ def read_batch(path: str | pathlib.Path) -> list[ModelInput]:
                     lineage=m["lineage"],
                     problems=tuple(m["problems"]),
                     history=tuple(m["history"]),
+                    forecasts=stated,
                 )
             )
     return out
@@ -253,8 +281,10 @@ def stage_inputs(
     end = _end_of_day(as_of)
     histories = histories or {}
     # one snapshot of the production versions for the whole run, read under the archive lock
-    snapshot = production_snapshot(archive, [e.id for e in entries]) if archive is not None else None
-    by_source: dict[str, list[ModelEntry]] = {}
+    # (forecast entries have no parameters: fitaudit fits nothing of them)
+    fitted = [e.id for e in entries if isinstance(e, ModelEntry)]
+    snapshot = production_snapshot(archive, fitted) if archive is not None else None
+    by_source: dict[str, list[EntryBase]] = {}
     for e in sorted(entries, key=lambda e: e.id):
         by_source.setdefault(e.source, []).append(e)
 
@@ -264,9 +294,11 @@ def stage_inputs(
     for source_name in sorted(by_source):
         source = registry.sources[source_name]
         models = by_source[source_name]
-        span_days = FREQUENCY_DAYS.get(source.frequency, 31) * (max(m.fit_window for m in models) + 2) + 2
+        span_days = FREQUENCY_DAYS.get(source.frequency, 31) * (max(m.staged_window for m in models) + 2) + 2
         start = end - np.timedelta64(int(math.ceil(span_days * 86400)), "s")
-        columns = sorted({m.value for m in models} | {x for m in models for x in m.exogenous})
+        stated = [m.forecasts.columns() for m in models if isinstance(m, ForecastEntry)]
+        columns = sorted({m.value for m in models} | {x for m in models for x in m.exogenous} | {c for cols in stated for c in cols.values()})
+        times = sorted({cols["issued"] for cols in stated if "issued" in cols})
         fp = None
         io_errors = "raise" if os_errors == "raise" else "skip"  # raised: the task retries; after retries: files skipped and named
         group = size * max(1, series_per_scan // size)  # whole batches per scan
@@ -280,7 +312,7 @@ def stage_inputs(
                         fingerprints[source_name] = fp.to_dict()
                     if source_name not in source_errors:
                         wanted = sorted({m.series for m in models[chunk_start : chunk_start + group]})
-                        data = read_series(source, wanted, columns, start=start, end=end, base_dir=registry.base_dir, io_errors=io_errors)
+                        data = read_series(source, wanted, columns, start=start, end=end, base_dir=registry.base_dir, io_errors=io_errors, times=times)
                 except ExtractError as exc:
                     source_errors[source_name] = str(exc)
                 except OSError as exc:
@@ -296,6 +328,8 @@ def stage_inputs(
                 arrays[f"{i}/t"] = t
                 for j, name in enumerate(meta["exog_names"]):
                     arrays[f"{i}/x/{j}"] = exog[name]
+                for j, name in enumerate(meta.get("forecast_names", ())):
+                    arrays[f"{i}/f/{j}"] = exog[name]
                 metas.append(meta)
             path = staging / f"batch-{len(batches) + 1:04d}"
             _write_batch(path, metas, arrays)
@@ -304,7 +338,7 @@ def stage_inputs(
     return StagedRun(tuple(batches), fingerprints, source_errors, snapshot.to_dict() if snapshot is not None else {})
 
 
-def _model_input(entry: ModelEntry, series, source_error: str | None, fp, archive, frequency: str, snapshot=None) -> tuple[dict, np.ndarray, np.ndarray, dict]:
+def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive, frequency: str, snapshot=None) -> tuple[dict, np.ndarray, np.ndarray, dict]:
     """Cut one model's fit window and collect its problems.
 
     The reader validated the whole span it loaded; when it found problems, the rows of the model's
@@ -319,24 +353,29 @@ def _model_input(entry: ModelEntry, series, source_error: str | None, fp, archiv
     if series is None:
         meta = {"entry": entry.to_dict(), "exog_names": [], "production": production, "problems": problems, "lineage": _lineage(entry, fp, empty_t, 0)}
         return meta, np.array([]), empty_t, {}
-    columns = [entry.value, *entry.exogenous]
+    stated = entry.forecasts.columns() if isinstance(entry, ForecastEntry) else {}
+    columns = [entry.value, *entry.exogenous, *dict.fromkeys(stated.values())]
     found = list(series.problems_for(columns))
     time = series.time
     n_loaded = time.size
-    keep = slice(max(0, n_loaded - entry.fit_window), n_loaded)
+    keep = slice(max(0, n_loaded - entry.staged_window), n_loaded)
     t = time[keep]
     y = np.asarray(series.columns.get(entry.value, np.full(n_loaded, np.nan)), dtype=float)[keep]
     exog = {name: np.asarray(series.columns.get(name, np.full(n_loaded, np.nan)), dtype=float)[keep] for name in entry.exogenous}
+    forecast_arrays = {name: np.asarray(series.columns.get(name, np.full(n_loaded, np.nan)), dtype=float)[keep] for name in dict.fromkeys(stated.values())}
     if found and n_loaded:
         kept = [p for p in found if p.kind not in ROW_KINDS]  # missing or mistyped columns, time-zone mix, rows without time
         flagged = {p.column for p in kept if p.column is not None}
         window = {c: v for c, v in {entry.value: y, **exog}.items() if c not in flagged}
         found = kept + list(series_problems(entry.series, t, window, frequency, source=entry.source, exogenous=tuple(entry.exogenous)))
-    short = series.length_problem(entry.fit_window)
+    short = series.length_problem(entry.audit_window if stated else entry.staged_window)
     if short is not None and not any(p.severity == "error" for p in found):
         found.append(short)
     for p in found:
         problems.append({"kind": p.kind, "severity": p.severity, "message": f"model {entry.id!r}: {p.message}"})
+    if stated:
+        flagged = {p.column for p in found if p.column is not None}
+        problems += _missing_forecasts(entry, t, forecast_arrays, stated, flagged)
     if n_loaded == 0 and not problems:
         problems.append({"kind": "no-data", "severity": "insufficient", "message": f"model {entry.id!r}: no observations of series {entry.series!r} in source {entry.source!r} on or before the as-of date."})
     meta = {
@@ -346,7 +385,37 @@ def _model_input(entry: ModelEntry, series, source_error: str | None, fp, archiv
         "problems": problems,
         "lineage": _lineage(entry, fp, t, n_loaded),
     }
+    if stated:
+        meta["forecast_names"] = list(forecast_arrays)
+        exog = {**exog, **forecast_arrays}
     return meta, y, t, exog
+
+
+def _missing_forecasts(entry: ForecastEntry, t: np.ndarray, arrays: dict, stated: dict, flagged: set) -> list[dict]:
+    """An ``error`` problem for each stated column with no forecast (NaN or infinite) for an
+    observation of the audit window; issue times are checked by the audit (they may be missing
+    only where the forecasts are).  Columns already reported (missing, mistyped) are skipped."""
+    out = []
+    w = entry.audit_window
+    if t.size < w:
+        return out  # too short: the length problem says so
+    for what, column in stated.items():
+        if what == "issued" or column in flagged:
+            continue
+        bad = np.flatnonzero(~np.isfinite(arrays[column][-w:]))
+        if bad.size:
+            first = str(np.datetime_as_string(t[-w:][bad[0]], unit="s"))
+            out.append({
+                "kind": MISSING_FORECAST,
+                "severity": "error",
+                "message": (
+                    f"model {entry.id!r}: source {entry.source!r}, series {entry.series!r}: column {column!r} (the "
+                    f"{what}) has no forecast for {bad.size} of the {w} observations of the audit window, first "
+                    f"{first}; every audited observation needs the forecast issued before it. Fix: fill the forecast "
+                    "store for those times, or shorten the audit window to the stretch that has forecasts."
+                ),
+            })
+    return out
 
 
 

@@ -4,6 +4,11 @@ One event per model verdict (``fitaudit.model.pass``, ``.refit``, ``.respecify``
 ``.insufficient``, ``.error``; resource ``fitaudit.model.<id>``) and one per run
 (``fitaudit.run.completed``).  An automation or a deployment trigger can listen for
 ``fitaudit.model.refit`` and start the refit flow (see :mod:`fitaudit.flows.deploy`).
+
+Each verdict event's resource carries the label ``fitaudit.entry``: ``model`` for a model
+fitaudit fits, ``forecasts`` for forecasts made elsewhere, whose ``refit`` verdict asks the owner
+to re-estimate (fitaudit cannot refit them; the refit deployment's trigger matches ``model``
+only).
 """
 
 from __future__ import annotations
@@ -17,9 +22,13 @@ from prefect.events import emit_event
 
 from fitaudit.core.vocabulary import VERDICTS
 
-__all__ = ["EVENT_PREFIX", "verdict_event_name", "emit_verdict_events", "emit_run_event", "publish_artifacts", "artifact_key"]
+from .results import is_forecast_record
+
+__all__ = ["EVENT_PREFIX", "ENTRY_LABEL", "verdict_event_name", "emit_verdict_events", "emit_run_event", "publish_artifacts", "artifact_key"]
 
 EVENT_PREFIX = "fitaudit"
+#: Resource label of a verdict event naming the entry's kind: ``model`` or ``forecasts``.
+ENTRY_LABEL = "fitaudit.entry"
 
 
 def verdict_event_name(verdict: str) -> str:
@@ -43,9 +52,15 @@ def emit_verdict_events(records: Sequence[Mapping[str, Any]], run: Mapping[str, 
     for rec in records:
         audit = rec.get("audit") or {}
         deciding = audit.get("production") or audit.get("refit") or {}
+        kind = "forecasts" if is_forecast_record(rec) else "model"
         emit_event(
             event=verdict_event_name(rec["verdict"]),
-            resource={"prefect.resource.id": _resource_id(rec["safe_id"]), "prefect.resource.name": rec["safe_id"], "fitaudit.owner": str(rec.get("owner") or "")},
+            resource={
+                "prefect.resource.id": _resource_id(rec["safe_id"]),
+                "prefect.resource.name": rec["safe_id"],
+                "fitaudit.owner": str(rec.get("owner") or ""),
+                ENTRY_LABEL: kind,
+            },
             related=[{"prefect.resource.id": f"{EVENT_PREFIX}.run.{run['run_id']}", "prefect.resource.role": "audit-run"}],
             payload={
                 "model_id": rec["id"],
@@ -58,6 +73,7 @@ def emit_verdict_events(records: Sequence[Mapping[str, Any]], run: Mapping[str, 
                 "r_max": deciding.get("r_max"),
                 "report": run.get("report_path"),
                 "registry_sha256": run.get("registry_sha256"),  # a triggered refit refuses a changed registry
+                "entry": kind,
             },
         )
         count += 1

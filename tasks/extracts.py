@@ -383,6 +383,19 @@ def _to_float(column: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray | None, st
     return None, f"has type {t}; expected a numeric column (integer or floating point)"
 
 
+def _to_seconds(column: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray | None, str]:
+    """(seconds since 1970-01-01 UTC as float64 with NaN for nulls, or None and the reason)."""
+    t = _plain_type(column.type)
+    if pa.types.is_null(t):
+        return np.full(len(column), np.nan), ""
+    stamps, _kind, why = _to_time(column)
+    if stamps is None:
+        return None, why
+    seconds = stamps.astype("int64") / 1e9
+    seconds[np.isnat(stamps)] = np.nan
+    return seconds, ""
+
+
 def _to_keys(column: pa.ChunkedArray | pa.Array) -> np.ndarray:
     """Keys as text; a null key becomes :data:`_NULL_KEY` (never a registered series)."""
     t = _plain_type(column.type)
@@ -468,7 +481,7 @@ class _Chunk:
     problems: list  # (column, kind, message) applying to every key in the chunk
 
 
-def _normalise(table: pa.Table, src: SourceEntry, columns: list[str], file: str, where: str) -> _Chunk:
+def _normalise(table: pa.Table, src: SourceEntry, columns: list[str], file: str, where: str, times: frozenset = frozenset()) -> _Chunk:
     keys = _to_keys(table[src.key])
     time, kind, why = _to_time(table[src.time])
     problems = []
@@ -487,7 +500,7 @@ def _normalise(table: pa.Table, src: SourceEntry, columns: list[str], file: str,
                 )
             )
             continue
-        array, why = _to_float(table[name])
+        array, why = _to_seconds(table[name]) if name in times else _to_float(table[name])
         values[name] = array
         if why:
             problems.append((name, "column-type", f"column {name!r} {why}{where}"))
@@ -507,24 +520,24 @@ def _agree(files: list[_File], needed: list[str]) -> bool:
     return True
 
 
-def _scan_unified(loc: _Location, files: list[_File], src: SourceEntry, keys, columns, start, end) -> list[_Chunk]:
+def _scan_unified(loc: _Location, files: list[_File], src: SourceEntry, keys, columns, start, end, times: frozenset = frozenset()) -> list[_Chunk]:
     needed = [src.key, src.time] + [c for c in columns if c not in (src.key, src.time)]
     dataset = _dataset(loc, [f.path for f in files])
     table = dataset.to_table(
         columns=needed + ["__fragment_index", "__batch_index"], filter=_filter(files[0].schema, src, keys, start, end)
     )
     order = pc.sort_indices(table, sort_keys=[("__fragment_index", "ascending"), ("__batch_index", "ascending")])
-    return [_normalise(table.take(order), src, columns, "", "")]
+    return [_normalise(table.take(order), src, columns, "", "", times)]
 
 
-def _scan_file(loc: _Location, f: _File, src: SourceEntry, keys, columns, start, end) -> _Chunk | None:
+def _scan_file(loc: _Location, f: _File, src: SourceEntry, keys, columns, start, end, times: frozenset = frozenset()) -> _Chunk | None:
     """Read one file on its own (None when it lacks the key or time column)."""
     if src.key not in f.schema.names or src.time not in f.schema.names:
         return None  # reported by the caller as a file whose rows cannot be attributed
     rel = _relative(loc, f.path)
     present = [c for c in dict.fromkeys([src.key, src.time, *columns]) if c in f.schema.names]
     table = _dataset(loc, [f.path]).to_table(columns=present, filter=_filter(f.schema, src, keys, start, end))
-    return _normalise(table, src, columns, rel, f" in file {rel!r}")
+    return _normalise(table, src, columns, rel, f" in file {rel!r}", times)
 
 
 def _dataset(loc: _Location, paths: list[str]) -> ds.Dataset:
@@ -542,6 +555,7 @@ def read_series(
     end: Any = None,
     base_dir: str | os.PathLike | None = None,
     io_errors: str = "skip",
+    times: Iterable[str] = (),
 ) -> dict[str, SeriesData]:
     """Read the series ``keys`` of a source in one scan and validate each.
 
@@ -562,6 +576,10 @@ def read_series(
         goes on with the others; ``"raise"`` lets it propagate, so that a caller can retry a
         transient failure (a network file system, an object store).  Corrupt files that pyarrow
         reports as invalid data are always skipped and named.
+    times : iterable of str
+        Columns of ``columns`` that hold time stamps (the issue times of forecasts): read as
+        seconds since 1970-01-01 UTC (float64, NaN for a missing time; time-zone-aware stamps
+        converted to UTC, naive ones taken as UTC); any other type is a ``column-type`` problem.
 
     Returns
     -------
@@ -580,6 +598,7 @@ def read_series(
     src = source
     keys = [str(k) for k in dict.fromkeys(keys)]
     columns = [c for c in dict.fromkeys(columns) if c not in (src.key, src.time)]
+    times = frozenset(times)
     start_ns, end_ns = _as_ns(start, "start"), _as_ns(end, "end")
     loc = _locate(src, base_dir, io_errors)
     files = _inspect_files(loc)
@@ -601,23 +620,23 @@ def read_series(
     chunks = None
     if _agree(readable, needed):
         try:
-            chunks = _scan_unified(loc, readable, src, keys, columns, start_ns, end_ns)
+            chunks = _scan_unified(loc, readable, src, keys, columns, start_ns, end_ns, times)
         except (pa.ArrowException, OSError) as exc:
             loc.pass_io_error(exc)
             chunks = None  # a file that looked fine fails mid-read: fall back to file by file
     if chunks is None:
-        chunks, more_skipped = _scan_file_by_file(loc, readable, src, keys, columns, start_ns, end_ns)
+        chunks, more_skipped = _scan_file_by_file(loc, readable, src, keys, columns, start_ns, end_ns, times)
         skipped += more_skipped
     missing_everywhere = [c for c in columns if not any(c in f.schema.names for f in readable)]
     return _assemble(src, loc, readable, chunks, keys, columns, start_ns, end_ns, skipped, missing_everywhere)
 
 
-def _scan_file_by_file(loc, readable, src, keys, columns, start, end) -> tuple[list[_Chunk], list[tuple[str, str]]]:
+def _scan_file_by_file(loc, readable, src, keys, columns, start, end, times: frozenset = frozenset()) -> tuple[list[_Chunk], list[tuple[str, str]]]:
     """Chunks of the files read one by one, and the files that failed while being read."""
     chunks, skipped = [], []
     for f in readable:
         try:
-            chunk = _scan_file(loc, f, src, keys, columns, start, end)
+            chunk = _scan_file(loc, f, src, keys, columns, start, end, times)
         except (pa.ArrowException, OSError) as exc:
             loc.pass_io_error(exc)
             skipped.append((_relative(loc, f.path), f"failed while reading ({str(exc).splitlines()[0]})"))

@@ -7,11 +7,17 @@ fitted parameters are written as a ``candidate`` parameter version, and promoted
 archive lock: :func:`fitaudit.tasks.archive.record_promotion`) when the policy is
 ``automatic`` or a person approved it.  When the refit check fails, the model class no longer
 fits: the candidate search lists neighbouring specifications and noise laws that pass.
+
+Forecast entries (forecasts made elsewhere) are never refitted: fitaudit holds no model of them,
+and their ``refit`` verdict asks their owner to re-estimate.  :func:`refuse_forecast_entries`
+refuses them before anything is staged, and :func:`refit_targets` leaves them out of the refits
+an audit starts.
 """
 
 from __future__ import annotations
 
 import os
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 from prefect import get_run_logger, task
@@ -20,13 +26,50 @@ from prefect.cache_policies import NO_CACHE
 from fitaudit.core.audit import as_model
 from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.candidates import search_candidates
+from fitaudit.core.exceptions import FitauditError
 
 from .audit import audit_series_for
 from .batches import ModelInput, read_batch
 from .params import promote, write_version
-from .registry import Policy
+from .registry import ForecastEntry, Policy, Registry
+from .results import is_forecast_record
 
-__all__ = ["refit_input", "refit_batch", "refit_batch_task"]
+__all__ = ["NotRefittableError", "REFIT_VERDICTS", "refuse_forecast_entries", "refit_targets", "refit_input", "refit_batch", "refit_batch_task"]
+
+#: Verdicts after which the audit may start the refit flow (a model fitaudit fits only).
+REFIT_VERDICTS = ("refit", "respecify")
+
+
+class NotRefittableError(FitauditError):
+    """A refit was asked for an entry fitaudit cannot refit (forecasts made elsewhere)."""
+
+
+def refuse_forecast_entries(registry: Registry, model_ids: Sequence[str]) -> None:
+    """Refuse a refit that names forecast entries, before anything is staged or written.
+
+    Raises
+    ------
+    NotRefittableError
+        Naming each forecast entry, why fitaudit cannot refit it, and what to do.
+    """
+    forecasts = [m.id for m in registry.models if isinstance(m, ForecastEntry) and m.id in set(model_ids)]
+    if not forecasts:
+        return
+    names = ", ".join(repr(m) for m in forecasts)
+    others = [m for m in model_ids if m not in forecasts]
+    raise NotRefittableError(
+        f"{registry.path}: {names} {'is a forecast entry' if len(forecasts) == 1 else 'are forecast entries'}: "
+        "fitaudit audits the forecasts its owner states and holds no model to refit. A 'refit' verdict there means "
+        "the forecasts no longer match their stated uncertainty and the owner should re-estimate the model that "
+        "issues them; the next audit checks the new forecasts. Nothing was refitted"
+        + (f"; refit the other models alone ({', '.join(repr(m) for m in others)})." if others else ".")
+    )
+
+
+def refit_targets(records: Sequence[Mapping[str, Any]]) -> list[str]:
+    """The ids of an audit's records whose verdict asks for a refit (:data:`REFIT_VERDICTS`) and
+    that fitaudit can refit: forecast entries are left out (their owners re-estimate)."""
+    return [r["id"] for r in records if r["verdict"] in REFIT_VERDICTS and not is_forecast_record(r)]
 
 
 def _check_summary(check: Any) -> dict | None:

@@ -17,7 +17,13 @@ Schema (version 1)::
                  "production_version": {"version", "sha256", "created_at"} | null,
                  "lineage": {...}, "settings": {...}, "audit": AuditResult.to_dict() | null,
                  "history": [{"as_of", "verdict", "r_max", "p_value"}, ...],
-                 "candidates": [...] | null}, ...]}
+                 "candidates": [...] | null,
+                 "forecasts": {...}  (forecast entries only: the statement audited)}, ...]}
+
+A forecast entry (forecasts made elsewhere, :class:`~fitaudit.tasks.registry.ForecastEntry`) has
+``spec`` ``{}``, ``spec_text`` like ``forecasts (quantiles 0.05..0.95), 1-step``, ``audit.refit``
+null (fitaudit refits nothing) and ``audit.accuracy`` (MASE, CRPS and its skill; reported, never
+a verdict); ``results.parquet`` gives it null ``refit_*`` columns.
 """
 
 from __future__ import annotations
@@ -36,6 +42,7 @@ __all__ = [
     "results_head",
     "results_summary",
     "light_record",
+    "is_forecast_record",
     "results_json_chunks",
     "results_rows",
     "movement",
@@ -90,10 +97,12 @@ def model_record(
     ``entry`` is the registry entry (``ModelEntry.to_dict()`` or a rejected entry's fields:
     ``id``, ``safe_id``, ``owner``, ...); ``audit`` is ``AuditResult.to_dict()`` or None when the
     model never reached the audit (registry or extract problems).  ``history`` lists earlier
-    audits, oldest first.
+    audits, oldest first.  A forecast entry's record (``ForecastEntry.to_dict()``) also holds
+    ``forecasts``, the statement audited, and its ``noise`` is the stated law (None for
+    quantiles); its ``audit`` has ``refit`` None and an ``accuracy`` block.
     """
     previous = history[-1]["verdict"] if history else None
-    return {
+    record = {
         "id": str(entry.get("id")),
         "safe_id": str(entry.get("safe_id") or entry.get("id")),
         "owner": entry.get("owner"),
@@ -118,6 +127,16 @@ def model_record(
         "history": [dict(h) for h in history],
         "candidates": [dict(c) for c in candidates] if candidates is not None else None,
     }
+    if entry.get("forecasts") is not None:  # forecasts made elsewhere: the statement audited, and its law
+        record["forecasts"] = dict(entry["forecasts"])
+        record["noise"] = entry["forecasts"].get("noise")
+    return record
+
+
+def is_forecast_record(record: Mapping[str, Any]) -> bool:
+    """Whether a record (or its :func:`light_record` view) is a forecast entry's: forecasts made
+    elsewhere, audited against their stated uncertainty and never refitted by fitaudit."""
+    return record.get("forecasts") is not None
 
 
 def results_head(*, as_of: str, registry: Mapping[str, Any], policy: Mapping[str, Any], tool_version: str) -> dict:

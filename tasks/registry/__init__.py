@@ -20,9 +20,11 @@ Schema (version 1)
 ------------------
 ``version: 1``; ``policy`` (thresholds fixed before the run, with ``justification`` and
 ``approved_by``); ``sources`` (name -> ``uri``, ``key``, ``time``, ``value``, ``exogenous``,
-``frequency``, ``partitioning``); ``models`` (a list of entries with ``id``, ``owner``, ``tier``,
+``forecasts``, ``frequency``, ``partitioning``); ``models`` (a list of entries with ``id``, ``owner``, ``tier``,
 ``description``, ``source``, ``series``, ``value``, ``exogenous``, ``spec``, ``noise``,
-``windows``, ``settings``, ``last_validated``).  :data:`FREQUENCIES` lists the frequency codes.
+``windows``, ``settings``, ``last_validated``; or, for forecasts made elsewhere, ``forecasts``
+and ``windows: {audit, history}`` instead of ``exogenous``, ``spec`` and ``noise``: a
+:class:`ForecastEntry`).  :data:`FREQUENCIES` lists the frequency codes.
 """
 
 from __future__ import annotations
@@ -42,6 +44,9 @@ from .schema import (
     MAX_ID_LENGTH,
     SAFE_ID,
     EntryBase,
+    ForecastEntry,
+    Forecasts,
+    ForecastWindows,
     ModelEntry,
     ModelSettings,
     Noise,
@@ -72,6 +77,9 @@ __all__ = [
     "ModelSettings",
     "EntryBase",
     "ModelEntry",
+    "Forecasts",
+    "ForecastWindows",
+    "ForecastEntry",
     "RegistryEntry",
     "RegistryDocument",
     "RejectedEntry",

@@ -40,11 +40,14 @@ from .problems import (
 )
 from .schema import (
     Block,
+    EntryBase,
+    ForecastEntry,
     ModelEntry,
     Policy,
     RegistryDocument,
     RegistryEntry,
     SourceEntry,
+    entry_kind,
     is_safe_id,
 )
 from .yaml_safety import SHOW, YamlIssue, compose, node_path, to_plain
@@ -101,12 +104,12 @@ class Registry:
     version: int
     policy: Policy
     sources: dict[str, SourceEntry]
-    models: tuple[ModelEntry, ...]
+    models: tuple[EntryBase, ...]  # ModelEntry or ForecastEntry
     rejected: tuple[RejectedEntry, ...]
     sha256: str
     source_problems: tuple[RegistryProblem, ...] = ()
 
-    def model(self, id: str) -> ModelEntry:
+    def model(self, id: str) -> EntryBase:
         """The accepted model entry ``id``; a KeyError says whether it was rejected or unknown."""
         for entry in self.models:
             if entry.id == id:
@@ -227,18 +230,19 @@ class _Reading:
         return good, dropped
 
     # -- model entries ----------------------------------------------------------------------
-    def models(self, sources: dict, dropped: dict) -> tuple[list[ModelEntry], list[RejectedEntry]]:
+    def models(self, sources: dict, dropped: dict) -> tuple[list[EntryBase], list[RejectedEntry]]:
         raw = self.data.get("models") if isinstance(self.data, dict) else None
         if not isinstance(raw, tuple):
             return [], []
         context = {"sources": sources, "dropped": dropped}
         first_line: dict[str, tuple[str, int]] = {}  # case-folded id -> (id, line)
-        results: list[ModelEntry | RejectedEntry] = []
+        results: list[EntryBase | RejectedEntry] = []
         for index, data in enumerate(raw):
             path = ("models", index)
             problems = list(self.by_entry.get(path, ()))
             line = self.line(path)
-            data = self.with_internal(ModelEntry, data, path, problems, line=line)
+            kind = ForecastEntry if entry_kind(data) == "forecasts" else ModelEntry
+            data = self.with_internal(kind, data, path, problems, line=line)
             entry = self.validate(RegistryEntry, data, path, problems, context)
             raw_id, safe = self._id(data, path, problems, first_line)
             if entry is not None and not problems:
@@ -248,7 +252,7 @@ class _Reading:
             owner_ok = isinstance(owner, str) and not any(p.field == field_name(path + ("owner",)) for p in problems)
             problems.sort(key=lambda p: p.line or 0)
             results.append(RejectedEntry(raw_id, safe or "", line, owner if owner_ok else None, tuple(problems)))
-        models = [r for r in results if isinstance(r, ModelEntry)]
+        models = [r for r in results if isinstance(r, EntryBase)]
         taken = {m.id.casefold() for m in models}
         rejected = []
         for index, result in enumerate(results):

@@ -166,13 +166,13 @@ def _step(tp: Any, part: str | int) -> tuple[Any, bool]:
     while True:
         if typing.get_origin(tp) is typing.Annotated:
             if _tag_of(tp) == part:
-                return tp, True
+                return typing.get_args(tp)[0], True  # the member itself: a field named as its tag is a field
             tp = typing.get_args(tp)[0]
         elif _is_union(tp):
             members = [m for m in typing.get_args(tp) if m is not type(None)]
             tagged = [m for m in members if _tag_of(m) == part]
             if tagged:
-                return tagged[0], True
+                return typing.get_args(tagged[0])[0], True
             tp = next((m for m in members if _model_class(m) is not None), members[0])
         else:
             break

@@ -19,17 +19,17 @@ message); ``ctx["at"]`` points below the failing value.
 
 Entry variants
 --------------
-:data:`RegistryEntry` is a union of entry kinds told apart by :func:`entry_kind`, with one member
-today, :class:`ModelEntry` (fitaudit fits the model: ``spec`` and ``noise``).  An entry kind whose
-forecasts come from outside (a ``forecasts`` block naming the mean, scale or quantile columns and
-a horizon, instead of a ``spec``) is a subclass of :class:`EntryBase` with that block, tagged
-``Tag("forecasts")`` in :data:`RegistryEntry`, and chosen by :func:`entry_kind` when the entry has
-a ``forecasts`` key.
+:data:`RegistryEntry` is a union of entry kinds told apart by :func:`entry_kind`:
+:class:`ModelEntry` (fitaudit fits the model: ``spec``, ``noise``, ``windows.fit``) and
+:class:`ForecastEntry` (the forecasts come from elsewhere: a ``forecasts`` block naming the
+columns of the source that state each predictive distribution, and ``windows.audit`` only).
+An entry with a ``forecasts`` key is a forecast entry.  Both share :class:`EntryBase`.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import math
 import re
 from typing import Annotated, Any, ClassVar, Literal
 
@@ -40,6 +40,7 @@ from pydantic import (
     ConfigDict,
     Discriminator,
     Field,
+    PlainValidator,
     Tag,
     TypeAdapter,
     ValidationError,
@@ -52,6 +53,7 @@ from pydantic.json_schema import SkipJsonSchema
 from pydantic_core import PydanticCustomError
 
 from fitaudit.core._validation import Interval, Options
+from fitaudit.core.cells import minimum_length
 from fitaudit.core.models import FAMILIES, get_family, model_from_dict
 from fitaudit.core.noise import NOISE_LAWS, get_law
 from fitaudit.core.settings import AuditSettings
@@ -75,6 +77,9 @@ __all__ = [
     "ModelSettings",
     "EntryBase",
     "ModelEntry",
+    "Forecasts",
+    "ForecastWindows",
+    "ForecastEntry",
     "RegistryEntry",
     "entry_kind",
     "entry_from_dict",
@@ -436,6 +441,11 @@ class SourceEntry(Block):
     time: Text = Field(description="The timestamp column.")
     value: Text = Field(description="The target column (a model entry may name another).")
     exogenous: Columns = Field((), description="Input columns models of this source may use.")
+    forecasts: Columns = Field(
+        (),
+        description="Columns holding forecasts issued elsewhere (means, scales, quantiles, issue times), "
+        "one per row of the observation they predict; forecast entries name them.",
+    )
     frequency: choice(tuple(FREQUENCIES)) = Field(
         description="; ".join(f"{code}: {meaning}" for code, meaning in FREQUENCIES.items())
     )
@@ -453,6 +463,29 @@ class SourceEntry(Block):
             if role is not None:
                 raise invalid(f"column {column!r} is already the source's {role} column")
         return columns
+
+    @field_validator("forecasts")
+    @classmethod
+    def _forecasts_not_a_role(cls, columns: tuple, info: ValidationInfo) -> tuple:
+        roles = {r: info.data[r] for r in ("key", "time", "value") if r in info.data}
+        exogenous = info.data.get("exogenous") or ()
+        for i, column in enumerate(columns):
+            role = next((r for r, c in roles.items() if c == column), None)
+            if role is not None:
+                raise invalid(f"column {column!r} is already the source's {role} column", at=(i,))
+            if column in exogenous:
+                raise invalid(
+                    f"column {column!r} is already an exogenous column; a column holds inputs or forecasts, not both",
+                    at=(i,),
+                )
+        return columns
+
+    def to_dict(self) -> dict:
+        """Plain-Python view (``forecasts`` only when the source declares forecast columns)."""
+        out = super().to_dict()
+        if not self.forecasts:
+            del out["forecasts"]
+        return out
 
     @model_validator(mode="after")
     def _three_roles(self) -> SourceEntry:
@@ -636,9 +669,13 @@ def _declared_exogenous(column: str, info: ValidationInfo) -> str:
 
 class EntryBase(Block):
     """What every registry entry says, whatever states its forecasts: who owns it, which series
-    of which source it audits, over which windows, with which overrides of the policy."""
+    of which source it audits, with which overrides of the policy.  Its kinds add how the
+    forecasts are stated and the windows (:class:`ModelEntry`, :class:`ForecastEntry`)."""
 
-    shape_hint = "a mapping with id, owner, tier, source, series, spec, noise and windows"
+    shape_hint = (
+        "a mapping with id, owner, tier, source, series and windows, and either spec and noise (a model "
+        "fitaudit fits) or forecasts (forecasts made elsewhere)"
+    )
     missing_hints = {"*": "required in every model entry ({required})"}
     internal_fields = ("line",)
 
@@ -649,12 +686,6 @@ class EntryBase(Block):
     source: Text = Field(description="The name of a source under `sources`.")
     series: SeriesKey = Field(description="The series' key in the source's key column.")
     value: Text = Field(None, description="The target column; default the source's value column.")
-    exogenous: Annotated[
-        tuple[Annotated[Text, AfterValidator(_declared_exogenous)], ...],
-        AfterValidator(_distinct),
-        expect("a list of column names, e.g. [temp_c]"),
-    ] = Field((), description="Input columns, declared by the source.")
-    windows: Windows
     settings: ModelSettings = Field(
         default_factory=ModelSettings, description="Overrides of the policy for this model."
     )
@@ -698,13 +729,8 @@ class EntryBase(Block):
         return value
 
     @property
-    def fit_window(self) -> int:
-        """Observations the refit uses."""
-        return self.windows.fit
-
-    @property
     def audit_window(self) -> int:
-        """Observations the production check scores."""
+        """Observations the audit scores (the most recent)."""
         return self.windows.audit
 
     def audit_settings(self, policy: Policy) -> AuditSettings:
@@ -727,27 +753,382 @@ class EntryBase(Block):
 
 class ModelEntry(EntryBase):
     """An entry whose model fitaudit fits: a ``spec`` (family and hyperparameters, ready for
-    :func:`fitaudit.core.models.model_from_dict`) and a ``noise`` law."""
+    :func:`fitaudit.core.models.model_from_dict`), a ``noise`` law, and fit and audit windows."""
 
-    key_order = ("id", "owner", "tier", "description", "source", "series", "value", "exogenous", "spec", "noise")
+    key_order = (
+        "id", "owner", "tier", "description", "source", "series", "value", "exogenous", "spec", "noise", "windows",
+        "settings", "last_validated",
+    )
+    missing_hints = {
+        "*": "required in every model entry ({required})",
+        "spec": "a model fitaudit fits needs a spec, e.g. {family: arima, order: [1, 0, 1]}; for forecasts made "
+        "elsewhere, give a 'forecasts' block instead of spec and noise",
+    }
 
+    exogenous: Annotated[
+        tuple[Annotated[Text, AfterValidator(_declared_exogenous)], ...],
+        AfterValidator(_distinct),
+        expect("a list of column names, e.g. [temp_c]"),
+    ] = Field((), description="Input columns, declared by the source.")
     spec: Spec = Field(description="The model: its family and the family's hyperparameters.")
     noise: Annotated[Noise, BeforeValidator(_law_alone, json_schema_input_type=LawName | Noise)] = Field(
         description="The law of the innovations: its name, or a mapping with a fixed shape."
     )
+    windows: Windows
+
+    @property
+    def fit_window(self) -> int:
+        """Observations the refit uses."""
+        return self.windows.fit
+
+    @property
+    def staged_window(self) -> int:
+        """Observations staged for the audit (the fit window)."""
+        return self.windows.fit
 
     def noise_law(self) -> dict:
         """The noise law as the core's audit functions take it: ``{"law": name, "shape": value or None}``."""
         return self.noise.to_dict()
 
 
+# --------------------------------------------------------------------------------------------
+# forecast entries
+# --------------------------------------------------------------------------------------------
+def _column_or_positive(value: Any) -> Any:
+    """A column name (text) or one positive, finite number (not a boolean)."""
+    if isinstance(value, str):
+        return _text(value)
+    if isinstance(value, int | float) and not isinstance(value, bool) and math.isfinite(value) and value > 0:
+        return float(value)
+    raise PydanticCustomError(
+        "expected", "expected {what}", {"what": "a column name or a positive number", "options": None}
+    )
+
+
+#: A column of predictive standard deviations, or one fixed positive value.
+ColumnOrNumber = Annotated[str | float, PlainValidator(_column_or_positive, json_schema_input_type=str | float)]
+
+
+def quantile_level(key: str) -> float | None:
+    """The level a quantile key states (``"0.05"`` -> 0.05), or None when it is not a probability in (0, 1)."""
+    try:
+        level = float(key)
+    except (TypeError, ValueError):
+        return None
+    return level if 0.0 < level < 1.0 else None
+
+
+def _quantile_columns(columns: dict) -> dict:
+    seen: dict[float, str] = {}
+    for key in columns:
+        level = quantile_level(key)
+        if level is None:
+            raise invalid(
+                f"quantile level {key[:_SHOW]!r} is not a probability strictly between 0 and 1; name each column by "
+                'its level, e.g. "0.05": q05 for the 5 % quantile (quoted: registry keys are text)',
+                at=(key,),
+                on_key=True,
+            )
+        if level in seen:
+            raise invalid(f"quantile level {key!r} is the level of {seen[level]!r} again; keep one column per level", at=(key,), on_key=True)
+        seen[level] = key
+    if len(seen) < 2:
+        raise invalid(
+            'state at least two quantile levels (e.g. {"0.05": q05, "0.5": q50, "0.95": q95}): the predictive '
+            "distribution between and beyond them is interpolated from their spread"
+        )
+    names = tuple(columns.values())
+    for i, name in enumerate(names):
+        if name in names[:i]:
+            raise invalid(f"column {name!r} is given for two levels; each level needs its own column", at=(list(columns)[i],))
+    return columns
+
+
+#: Predictive quantile columns by level (the level as text: registry keys are text).
+QuantileColumns = Annotated[
+    dict[str, Text],
+    AfterValidator(_quantile_columns),
+    expect('a mapping of quantile levels to column names, e.g. {"0.05": q05, "0.5": q50, "0.95": q95}'),
+]
+
+
+class Forecasts(Block):
+    """How a forecast entry states each predictive distribution: columns of its source, one row
+    per observation predicted.
+
+    One of three ways: ``mean`` and ``scale`` (a column of predictive standard deviations or one
+    number) under a continuous ``noise`` law (default normal; a student-t needs its ``df``);
+    ``mean`` under a count law (``poisson``, or ``negative-binomial`` with its ``size``); or
+    ``quantiles``, a mapping of levels to columns.  ``horizon`` is the number of steps ahead the
+    forecasts were issued, ``period`` the seasonal period of the naive benchmark and of the
+    Ljung-Box lags, ``issued`` the column of the times the forecasts were issued.
+    """
+
+    shape_hint = 'a mapping like {quantiles: {"0.05": q05, "0.5": q50, "0.95": q95}} or {mean: fc_mean, scale: fc_sd}'
+    key_order = ("mean", "scale", "noise", "quantiles", "horizon", "period", "issued")
+
+    mean: Text = Field(
+        None, description="Column of the predictive means (with 'scale' for a continuous law; alone for a count law)."
+    )
+    scale: ColumnOrNumber = Field(
+        None, description="Column of the predictive standard deviations, or one fixed positive value."
+    )
+    noise: Annotated[Noise, BeforeValidator(_law_alone, json_schema_input_type=LawName | Noise)] = Field(
+        None, description="The predictive law around 'mean' (default normal); a shape (df, size) must be given."
+    )
+    quantiles: QuantileColumns = Field(
+        None,
+        description="Predictive quantile columns by level, e.g. {\"0.05\": q05, \"0.95\": q95}: at least two levels "
+        "strictly between 0 and 1 (instead of mean, scale and noise).",
+    )
+    horizon: bounded(Interval(int, 1, None)) = Field(1, description="Steps ahead the forecasts were issued.")
+    period: bounded(Interval(int, 1, None)) = Field(
+        1, description="Seasonal period: the naive benchmark y(t - period) and the Ljung-Box lags."
+    )
+    issued: Text = Field(
+        None, description="Column of the times the forecasts were issued (timestamps), each before its observation."
+    )
+
+    @model_validator(mode="after")
+    def _one_statement(self) -> Forecasts:
+        if self.quantiles is not None:
+            if self.mean is not None:
+                raise invalid(
+                    "state each predictive distribution one way: 'quantiles', or 'mean' (with 'scale' for a "
+                    "continuous law); drop one of them",
+                    at=("mean",),
+                    on_key=True,
+                )
+            for key in ("scale", "noise"):
+                if getattr(self, key) is not None:
+                    raise invalid(
+                        f"{key!r} belongs to a law stated by its mean; quantiles state the whole predictive "
+                        f"distribution, so drop {key!r}",
+                        at=(key,),
+                        on_key=True,
+                    )
+            return self
+        if self.mean is None:
+            raise invalid(
+                "no predictive distribution stated: give 'quantiles' (level: column, e.g. "
+                '{"0.05": q05, "0.5": q50, "0.95": q95}), or \'mean\' (a column) with \'scale\' (a column or a '
+                "number) for a continuous law, or 'mean' with a count law (noise: poisson)"
+            )
+        law = get_law(self.law()["law"], self.law()["shape"])  # the Noise block checked both
+        if law.discrete:
+            if self.scale is not None:
+                raise invalid(
+                    f"the {law.name} law takes no scale: its spread follows from the mean"
+                    + (" and its size" if law.has_shape else "")
+                    + "; drop 'scale'",
+                    at=("scale",),
+                    on_key=True,
+                )
+        elif self.scale is None:
+            raise invalid(
+                f"a {law.name} predictive law needs 'scale': the column of predictive standard deviations, or one "
+                "fixed positive value (e.g. scale: fc_sd or scale: 1.5)"
+            )
+        if law.has_shape and law.shape is None:
+            key = next((k for k, owner in SHAPE_KEYS.items() if owner == law.name), "shape")
+            raise invalid(
+                f"a stated {law.name} law needs its {key} (e.g. noise: {{law: {law.name}, {key}: 5}}): nothing is "
+                "estimated from the actuals in a forecast audit",
+                at=("noise",),
+            )
+        return self
+
+    @property
+    def statement(self) -> str:
+        """``quantiles``, ``mean-scale`` or ``mean-count``
+        (:data:`fitaudit.core.forecasts.STATEMENTS`)."""
+        if self.quantiles is not None:
+            return "quantiles"
+        return "mean-count" if get_law(self.law()["law"], self.law()["shape"]).discrete else "mean-scale"
+
+    def law(self) -> dict:
+        """The stated law around the mean, ``{"law", "shape"}`` (normal when none is given)."""
+        return self.noise.to_dict() if self.noise is not None else {"law": "normal", "shape": None}
+
+    def levels(self) -> dict[float, str]:
+        """Quantile columns by level (a float), lowest first; empty for a mean statement."""
+        return dict(sorted((quantile_level(k), c) for k, c in (self.quantiles or {}).items()))
+
+    def columns(self) -> dict[str, str]:
+        """Every column the statement names, by what it holds (``mean``, ``scale``, ``quantile
+        0.05``, ``issued``)."""
+        out = {}
+        if self.mean is not None:
+            out["mean"] = self.mean
+        if isinstance(self.scale, str):
+            out["scale"] = self.scale
+        for level, column in self.levels().items():
+            out[f"quantile {level:g}"] = column
+        if self.issued is not None:
+            out["issued"] = self.issued
+        return out
+
+    def describe(self) -> str:
+        """One line, e.g. ``forecasts (quantiles 0.05..0.95), 1-step``."""
+        if self.quantiles is not None:
+            levels = list(self.levels())
+            what = f"quantiles {levels[0]:g}..{levels[-1]:g}" if len(levels) > 2 else "quantiles " + ", ".join(f"{x:g}" for x in levels)
+        else:
+            law = self.law()
+            name = law["law"] if law["shape"] is None else f"{law['law']}({law['shape']:g})"
+            if isinstance(self.scale, float):
+                what = f"mean, {name} with scale {self.scale:g}"
+            elif self.scale is not None:
+                what = f"mean and scale, {name}"
+            else:
+                what = f"mean, {name}"
+        return f"forecasts ({what}), {self.horizon}-step" + (f", period {self.period}" if self.period > 1 else "")
+
+    def to_dict(self) -> dict:
+        """Plain-Python view (the keys given; ``noise`` as ``{"law", "shape"}``)."""
+        out = super().to_dict()
+        return {k: v for k, v in out.items() if v is not None}
+
+
+class ForecastWindows(Block):
+    """Numbers of observations of a forecast entry: the audit scores the last ``audit``; ``history``
+    more before them (default as many) give the naive benchmark its scale."""
+
+    shape_hint = "a mapping like {audit: 56} (numbers of observations)"
+    missing_hints = {"*": "a forecast entry's windows need the audit length in observations, e.g. {audit: 56}"}
+
+    audit: setting("audit_window") = Field(description="Observations whose forecasts are scored (the most recent).")
+    history: bounded(Interval(int, 0, None)) = Field(
+        None, description="Observations before the audit window for the naive benchmark (default: the audit length)."
+    )
+
+    @model_validator(mode="before")
+    @classmethod
+    def _no_fit(cls, data: Any) -> Any:
+        if isinstance(data, dict) and "fit" in data:
+            raise invalid(
+                "a forecast entry has no fit window: fitaudit fits nothing, it scores the stated forecasts; "
+                "give windows: {audit: N} (and optionally history: N)",
+                at=("fit",),
+                on_key=True,
+            )
+        return data
+
+    def to_dict(self) -> dict:
+        """The keys given."""
+        return {k: v for k, v in super().to_dict().items() if v is not None}
+
+
+class ForecastEntry(EntryBase):
+    """An entry whose forecasts are made elsewhere (another library, a notebook, a vendor): its
+    source holds, beside each actual, the forecast issued before it, stated as a predictive
+    distribution (:class:`Forecasts`).  fitaudit audits the forecasts against their stated
+    uncertainty (:func:`fitaudit.core.forecasts.audit_forecasts`) and never refits the model."""
+
+    key_order = (
+        "id", "owner", "tier", "description", "source", "series", "value", "forecasts", "windows", "settings",
+        "last_validated",
+    )
+
+    forecasts: Forecasts = Field(description="The source's columns that state each predictive distribution.")
+    windows: ForecastWindows
+
+    @model_validator(mode="before")
+    @classmethod
+    def _nothing_to_fit(cls, data: Any) -> Any:
+        if isinstance(data, dict):
+            for key in ("spec", "noise", "exogenous"):
+                if key in data:
+                    where = "forecasts.noise" if key == "noise" else key
+                    raise invalid(
+                        f"a forecast entry has no {key!r}: fitaudit audits the forecasts its source states and fits "
+                        f"nothing; drop {key!r}"
+                        + (f" (the predictive law goes under {where})" if key == "noise" else "")
+                        + ", or drop 'forecasts' to have fitaudit fit the model",
+                        at=(key,),
+                        on_key=True,
+                    )
+        return data
+
+    @model_validator(mode="after")
+    def _declared_and_long_enough(self, info: ValidationInfo) -> ForecastEntry:
+        need = minimum_length(0) * self.forecasts.horizon
+        if self.windows.audit < need:
+            h = self.forecasts.horizon
+            per = (
+                f"each of the {h} interleaved subsequences of {h}-step forecasts needs {minimum_length(0)} observations"
+                if h > 1 else f"the cells of the distribution gate need {minimum_length(0)} observations"
+            )
+            raise invalid(f"the audit window ({self.windows.audit}) is too short: {per}, so give audit >= {need}", at=("windows", "audit"))
+        sources = _context(info).get("sources")
+        source = sources.get(self.source) if isinstance(sources, dict) else None
+        if source is None:
+            return self
+        for what, column in self.forecasts.columns().items():
+            at = _column_at(what)
+            if column == self.value:
+                raise invalid(f"column {column!r} is the model's target; the {what} must be its own column", at=at)
+            if column not in source.forecasts:
+                declared = listing(source.forecasts) or "none"
+                raise invalid(
+                    f"column {column!r} is not declared by source {source.name!r}{suggest(column, source.forecasts)}; "
+                    f"its forecast columns are {declared} (declare it under sources.{source.name}.forecasts)",
+                    at=at,
+                )
+        return self
+
+    @property
+    def exogenous(self) -> tuple:
+        """No inputs: the forecasts come ready made."""
+        return ()
+
+    @property
+    def staged_window(self) -> int:
+        """Observations staged for the audit: the audit window and the history before it."""
+        history = self.windows.history if self.windows.history is not None else self.windows.audit
+        return self.windows.audit + history
+
+    def describe(self) -> str:
+        """The statement in one line (:meth:`Forecasts.describe`)."""
+        return self.forecasts.describe()
+
+
+def _column_at(what: str) -> tuple:
+    """Where in the entry the column stated for ``what`` (``mean``, ``quantile 0.05``, ...) is written."""
+    if what.startswith("quantile "):
+        return ("forecasts", "quantiles")
+    return ("forecasts", what)
+
+
 def entry_kind(data: Any) -> str:
-    """Which kind of entry ``data`` is (the tag of its member of :data:`RegistryEntry`)."""
+    """Which kind of entry ``data`` is (the tag of its member of :data:`RegistryEntry`):
+    ``forecasts`` when it has a ``forecasts`` block, else ``model``."""
+    if isinstance(data, ForecastEntry) or (isinstance(data, dict) and "forecasts" in data):
+        return "forecasts"
     return "model"
 
 
+class _ByEntryKind:
+    """JSON Schema of :data:`RegistryEntry` as :func:`entry_kind` decides: a forecast entry when
+    the mapping has ``forecasts``, a model entry otherwise (``if``/``then``/``else``), so that an
+    editor reports the problems of the kind meant rather than of both."""
+
+    def __get_pydantic_json_schema__(self, core_schema: Any, handler: Any) -> dict:
+        schema = handler(core_schema)
+        members = schema.get("oneOf") or []
+        forecast = [m for m in members if "ForecastEntry" in m.get("$ref", "")]
+        model = [m for m in members if "ModelEntry" in m.get("$ref", "")]
+        if len(members) != 2 or len(forecast) != 1 or len(model) != 1:
+            return schema
+        return {"if": {"type": "object", "required": ["forecasts"]}, "then": forecast[0], "else": model[0]}
+
+
 #: Any registry entry, its kind chosen by :func:`entry_kind`.
-RegistryEntry = Annotated[Annotated[ModelEntry, Tag("model")], Discriminator(entry_kind)]
+RegistryEntry = Annotated[
+    Annotated[ModelEntry, Tag("model")] | Annotated[ForecastEntry, Tag("forecasts")],
+    Discriminator(entry_kind),
+    _ByEntryKind(),
+]
 
 _ENTRY = TypeAdapter(RegistryEntry)
 
@@ -760,7 +1141,7 @@ def _tuples(value: Any) -> Any:
     return value
 
 
-def entry_from_dict(data: dict) -> ModelEntry:
+def entry_from_dict(data: dict) -> ModelEntry | ForecastEntry:
     """An entry back from its :meth:`~Block.to_dict` view (e.g. read from a staged batch file)."""
     return _ENTRY.validate_python(_tuples(data))
 
