@@ -840,10 +840,10 @@ def _members_rows(check: Mapping[str, Any]) -> list[dict]:
     return rows
 
 
-def _check_view(check: Mapping[str, Any] | None, kind: str) -> dict | None:
+def _check_view(check: Mapping[str, Any] | None, kind: str, label: str | None = None) -> dict | None:
     if not _ok(check):
         return None
-    label = {"production": "Production check", "refit": "Refit check"}[kind]
+    label = label or {"production": "Production check", "refit": "Refit check"}[kind]
     n = check.get("n") or 0
     s = check.get("cells") or 0
     counts = check.get("counts") or []
@@ -946,6 +946,120 @@ def _noise_text(noise: Any) -> str:
     return _text(noise)
 
 
+#: What a forecast entry's page says first: fitaudit audited stated forecasts and refitted nothing.
+NOT_REFITTED_PAGE = (
+    "This model was not refitted by fitaudit; its forecasts were audited against their stated uncertainty."
+)
+_FORECAST_CHECK = "Forecast check"
+#: What the owner of forecasts made elsewhere should do after a failing audit (fitaudit refits nothing).
+FORECAST_ACTIONS = {
+    "refit": "Re-estimate the model that issues these forecasts so that they match their stated uncertainty again "
+    "(fitaudit does not refit it); the next audit checks the new forecasts.",
+    "respecify": "The forecasts failed audit after audit: review how they are made (the method, not only its parameters) "
+    "and have the change validated.",
+}
+_FORECAST_RESIDUALS = (
+    "normal scores of the PIT values: each actual of the audit window under the predictive distribution stated "
+    "for it before it was observed"
+)
+
+
+def _accuracy_rows(acc: Mapping[str, Any]) -> list[dict]:
+    """A forecast audit's accuracy figures in words (reported beside calibration, never a verdict)."""
+    if not acc:
+        return []
+    rows = []
+    if acc.get("error"):
+        rows.append({"key": "Accuracy", "value": _text(acc["error"], 600)})
+    if "mase" in acc:
+        value = _format_number(acc.get("mase")) if acc.get("mase") is not None else f"n/a ({_text(acc.get('mase_note'), 400)})"
+        rows.append({"key": "Mean absolute scaled error (MASE)", "value": (
+            f"{value}: mean absolute error of the point forecast ({_text(acc.get('point'))}) over that of the one-step "
+            f"seasonal naive forecast in the {_text(acc.get('mase_scale_from'))}; below 1 is better than the naive forecast "
+            "(Hyndman and Koehler 2006)")})
+    if "mae" in acc:
+        rows.append({"key": "Mean absolute error", "value": _format_number(acc.get("mae"), 4)})
+    if "crps" in acc:
+        rows.append({"key": "Continuous ranked probability score (CRPS, mean)", "value": (
+            f"{_format_number(acc.get('crps'), 4)} ({_text(acc.get('crps_method'))}; smaller is better, in the units of the series)")})
+    if "crps_naive" in acc:
+        rows.append({"key": "CRPS of the naive forecast", "value": (
+            f"{_format_number(acc.get('crps_naive'), 4)} ({_text(acc.get('naive'), 600)})" if acc.get("crps_naive") is not None
+            else f"n/a ({_text(acc.get('naive'), 600)})")})
+    if "crps_skill" in acc:
+        rows.append({"key": "CRPS skill", "value": (
+            f"{_format_number(acc.get('crps_skill'))} (1 − CRPS / CRPS of the naive forecast: above 0 the stated distributions "
+            "beat the naive one, 0 ties, below 0 loses)")})
+    return rows
+
+
+def _forecast_rows(check: Mapping[str, Any]) -> dict[str, str]:
+    """What some rows of the checks table mean for a forecast check, by row key."""
+    noise = check.get("noise") or {}
+    mean, sd = _float(noise.get("score_mean")), _float(noise.get("score_sd"))
+    scores = (
+        f"mean {_format_number(mean, 2)} and standard deviation {_format_number(sd, 2)} (0 and 1 when the stated laws are "
+        "right: a positive mean means forecasts too low, a standard deviation above 1 a stated uncertainty too narrow)"
+        if mean is not None and sd is not None else "n/a"
+    )
+    cal = check.get("calibration") or {}
+    return {
+        "residual_type": _FORECAST_RESIDUALS,
+        "plain": f"the normal scores have {scores}",
+        "k": "0 (nothing is estimated: the predictive laws were stated before the data)",
+        "noise": f"standard normal scores of the PIT values (stated: {_text(noise.get('stated'))})",
+        "reference": (
+            f"{_count(cal.get('replicates'))} simulated sets of {check.get('n')} independent uniform PIT values (the stated laws "
+            "are fixed before the data, so this null is exact)" if cal.get("method") == "simulated" else _text(cal.get("method"))
+        ),
+    }
+
+
+def _forecast_view(m: Mapping[str, Any], view: dict) -> dict | None:
+    """A forecast entry's page (forecasts made elsewhere): the statement audited, the accuracy, one
+    check in place of two, and what the model's identity rows mean for it; None for a fitted model.
+
+    Adjusts ``view`` (from :func:`_model_view`) in place: the identity rows name the statement and
+    the stated law, the checks table has one column, the charts are labelled as the forecast check.
+    """
+    stated = m.get("forecasts")
+    if stated is None:
+        return None
+    audit = m.get("audit") or {}
+    levels = sorted(float(k) for k in (stated.get("quantiles") or {}))
+    law = (
+        "predictive quantiles at levels " + ", ".join(_format_number(x) for x in levels)
+        if levels else _noise_text(stated.get("noise") or {"law": "normal", "shape": None})
+    )
+    replace = {
+        "Model spec": ("Forecasts stated", _text(m.get("spec_text"))),
+        "Noise law": ("Stated predictive law", law),
+        "Production version": ("Production version", "none: the forecasts are made elsewhere and fitaudit holds no parameters of the model"),
+    }
+    view["identity"] = [
+        {"key": replace[r["key"]][0], "value": replace[r["key"]][1]} if r["key"] in replace else r for r in view["identity"]
+    ]
+    if view.get("audit"):
+        production = audit.get("production")
+        said = _forecast_rows(production) if _ok(production) else {}
+        rows = []
+        for r in view["audit"]["check_rows"]:
+            cells = r["cells"][:1]
+            if r["key"] in said:
+                cells = [said[r["key"]]]
+            rows.append({**r, "cells": cells})
+        view["audit"]["check_rows"] = rows
+        view["audit"]["checks"] = [c for c in (_check_view(production, "production", _FORECAST_CHECK),) if c]
+    if view.get("action") and m.get("verdict") in FORECAST_ACTIONS:  # never "promote the refit": nothing was refitted
+        view["action"] = {**view["action"], "action": FORECAST_ACTIONS[m["verdict"]]}
+    return {
+        "note": NOT_REFITTED_PAGE,
+        "statement": _kv_rows(stated),
+        "accuracy": _accuracy_rows(audit.get("accuracy") or {}),
+        "label": _FORECAST_CHECK,
+    }
+
+
 def _model_view(m: Mapping[str, Any], as_of: str) -> dict:
     audit = m.get("audit")
     pv = m.get("production_version")
@@ -987,6 +1101,7 @@ def _model_view(m: Mapping[str, Any], as_of: str) -> dict:
             "fit_message": _text((audit.get("fitted") or {}).get("message")).rstrip("."),
             "change": _change_view(audit),
         }
+    view["forecast"] = _forecast_view(m, view)
     return view
 
 
