@@ -29,7 +29,7 @@ from .exceptions import InputError
 from .results import AuditResult, CheckResult
 from .vocabulary import ADJUDICATED_VERDICTS, ADJUSTMENT_LABELS, ADJUSTMENTS, VERDICTS, Adjustment
 
-__all__ = ["decide_verdict", "owner_action", "apply_fleet_rules", "adjust_pvalues", "escalate_persistent_refit"]
+__all__ = ["CAUTION_PREFIX", "decide_verdict", "owner_action", "apply_fleet_rules", "adjust_pvalues", "escalate_persistent_refit"]
 
 
 def _fmt_p(p: float) -> str:
@@ -55,8 +55,8 @@ def _floor(check: CheckResult) -> tuple[float, int] | None:
     """The smallest p-value a simulated calibration can give, ``1 / (B + 1)``, and ``B``."""
     cal = check.calibration or {}
     b = cal.get("replicates")
-    if cal.get("method") in ("simulated", "bootstrap") and isinstance(b, int) and not isinstance(b, bool) and b > 0:
-        return 1.0 / (b + 1), b
+    if cal.get("method") in ("simulated", "bootstrap") and isinstance(b, (int, np.integer)) and not isinstance(b, bool) and b > 0:
+        return 1.0 / (int(b) + 1), int(b)
     return None
 
 
@@ -73,7 +73,8 @@ def _rule(check: CheckResult, threshold: float, adjusted: bool) -> str:
     """The check's p-value beside the rule that decided it."""
     if adjusted and check.p_adjusted is not None:
         side = "at or below" if check.p_adjusted <= threshold else "above"
-        return f"check p {_fmt_p(check.p_value)}, adjusted across the run {_fmt_p(check.p_adjusted)}, {side} q = {threshold:g}"
+        adj = "< 0.001" if check.p_adjusted < 0.001 else f"{check.p_adjusted:.3f}"
+        return f"check p {_fmt_p(check.p_value)}, adjusted across the run to {adj}, {side} q = {threshold:g}"
     return f"check p {_fmt_p(check.p_value)}; each gate fails at p ≤ {threshold / 2:g} (level {threshold:g} split over the two gates)"
 
 
@@ -104,14 +105,18 @@ def _plain_failure(check: CheckResult, threshold: float, adjusted: bool) -> str:
     parts = []
     since = eff.get("since") or {}
     bias = (_bias_words(since, since.get("date")) if since.get("date") else None) or _bias_words(eff, None)
-    if dist and bias:
-        parts.append(bias)
     ratio = eff.get("variance_ratio")
+    spread = None
     if dist and ratio is not None and (ratio >= SPREAD_NOTE or ratio <= 1 / SPREAD_NOTE):
         if ratio >= 1:
-            parts.append(f"the {noun} are {ratio:.1f} times as variable as the model assumes")
+            spread = f"the {noun} are {ratio:.1f} times as variable as the model assumes"
         else:
-            parts.append(f"the {noun} are only {ratio:.2f} times as variable as the model assumes (it overstates its uncertainty)")
+            spread = f"the {noun} are only {ratio:.2f} times as variable as the model assumes (it overstates its uncertainty)"
+    # the larger departure first: a bias of half a standard deviation or more outweighs the spread
+    big_bias = abs((since if since.get("date") and since.get("bias_sd") is not None else eff).get("bias_sd") or 0.0) >= 0.5
+    for text in ((bias, spread) if big_bias else (spread, bias)):
+        if dist and text:
+            parts.append(text)
     if dist and not parts:
         deciding = check.gate.get("deciding") or {}
         sentence = f": {deciding['sentence']}" if deciding.get("sentence") else ""
@@ -187,8 +192,12 @@ def _cautions(check: CheckResult) -> list[str]:
     return out
 
 
+#: How a reason that adds a caution to a passing check begins (the report lists such passes).
+CAUTION_PREFIX = "Caution, "
+
+
 def _caution_reasons(check: CheckResult, which: str) -> list[str]:
-    return [f"Caution, {which}: {c}." for c in _cautions(check)]
+    return [f"{CAUTION_PREFIX}{which}: {c}." for c in _cautions(check)]
 
 
 def decide_verdict(production: CheckResult | None, refit: CheckResult | None, threshold: float, adjusted: bool = False) -> tuple[str, tuple]:

@@ -79,4 +79,5 @@ SETTING_BOUNDS: dict[str, list] = {
     "change_permutations": [Interval(int, 19, None)],
     "practical_divergence": [Interval(float, 0.0, None), None],
     "practical_acf": [Interval(float, 0.0, 1.0), None],
+    "days_to_act": [Interval(int, 1, 366)],
 }

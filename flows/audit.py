@@ -292,6 +292,12 @@ def audit_flow(
                 "code_commit": code_commit(),
                 "prefect_version": package_versions()["prefect"],
                 **{k: extends[k] for k in ("archive_head", "previous_run_id", "previous_as_of", "fleet_trend")},
+                # p-values adjusted over a partial run: the run page says so
+                "scope": {
+                    "models_requested": None if wanted is None else len(ids) + sum(1 for r in reg.rejected if r.id in wanted),
+                    "registry_models": len(reg.models) + len(reg.rejected),
+                    "unreadable_sources": sorted(staged.source_errors),
+                },
             }
             parcels, names, spills = _render_inputs(final, batches, staged)
             rendered = render_outcomes_task.map(parcels, unmapped(head), unmapped(meta), unmapped(str(work / "publish")), names, spills, unmapped(workers))
@@ -318,7 +324,7 @@ def audit_flow(
             "history": history.to_manifest(),
             "extends": {k: extends[k] for k in ("chain_head", "chain_seq", "previous_run_id", "previous_as_of")},
             "fleet_trend": extends["fleet_trend"],
-            "scope": {"models_requested": sorted(wanted) if wanted is not None else None},
+            "scope": {**meta["scope"], "models_requested": sorted(wanted) if wanted is not None else None},
             "production": staged.production,
             "task_runner": _runner_name(),
         }

@@ -143,6 +143,7 @@ def _registry_text(entries: list[dict]) -> str:
           replicates: 499
           seed: 20261130
           refit_policy: approval
+          days_to_act: {tier_1: 7, tier_2: 14, tier_3: 28}
           justification: >-
             5 % per check with Benjamini-Hochberg at q = 0.10 across the fleet keeps false alarms rare
             in weekly audits of about fifty models; two refits in three audits escalate to a review.

@@ -36,12 +36,14 @@ import markupsafe
 
 from fitaudit.core.divergence import CLASSICAL_MEMBER_LABELS, CLASSICAL_MEMBERS
 from fitaudit.core.exceptions import InputError
+from fitaudit.core.verdict import CAUTION_PREFIX, owner_action
 from fitaudit.core.vocabulary import ADJUSTMENT_LABELS, VERDICTS
 
 from .registry import SAFE_ID
+from .registry.schema import DaysToAct
 from .results import SEVERITY
 
-__all__ = ["STATUS", "HEAT_BINS", "CAUTION", "environment", "render_run", "page_context", "render_model_page", "render_index_page", "render_method_page", "render_archive_index"]
+__all__ = ["STATUS", "HEAT_BINS", "CAUTION", "environment", "render_run", "page_context", "render_model_page", "render_index_page", "render_method_page", "render_archive_index", "record_action", "days_to_act"]
 
 _SYMBOLS = {"pass": "✓", "refit": "↻", "respecify": "⚑", "insufficient": "◌", "error": "✕"}
 #: Status symbol and word for each verdict (colour is never the only signal, WCAG 2.1 SC 1.4.1).
@@ -603,6 +605,12 @@ def _meta_view(meta: Mapping[str, Any]) -> dict:
     view["archive_head"] = _text(meta.get("archive_head")) or None
     view["previous_run_id"] = _text(meta.get("previous_run_id")) or None
     view["previous_as_of"] = _text(meta.get("previous_as_of")) or None
+    scope = meta.get("scope") if isinstance(meta.get("scope"), Mapping) else {}
+    view["scope"] = {
+        "models_requested": scope.get("models_requested") if isinstance(scope.get("models_requested"), int) else None,
+        "registry_models": scope.get("registry_models") if isinstance(scope.get("registry_models"), int) else None,
+        "unreadable_sources": [str(u) for u in scope.get("unreadable_sources") or ()],
+    }
     view["fleet_trend"] = [
         {"as_of": _text(t.get("as_of")), "passed": int(t["passed"]), "registered": int(t["registered"])}
         for t in meta.get("fleet_trend") or () if isinstance(t, Mapping) and isinstance(t.get("passed"), int) and isinstance(t.get("registered"), int) and t["registered"] > 0
@@ -684,11 +692,49 @@ def _false_flag_sentence(checks: int, expected: float | None, level: float | Non
     return text
 
 
-def _exceptions_view(models: Sequence[Mapping[str, Any]]) -> list[dict]:
+def days_to_act(policy: Mapping[str, Any] | None) -> DaysToAct:
+    """The policy's days to act per tier (the schema's defaults for a policy written without them)."""
+    given = (policy or {}).get("days_to_act")
+    try:
+        return DaysToAct.model_validate(dict(given)) if isinstance(given, Mapping) else DaysToAct()
+    except ValueError:
+        return DaysToAct()
+
+
+def record_action(m: Mapping[str, Any], policy: Mapping[str, Any] | None, as_of: str) -> dict:
+    """What the owner of a model record should do, and by when (:func:`fitaudit.core.verdict.owner_action`).
+
+    The deadline is the as-of date plus the policy's days to act for the model's tier; a refit
+    whose check passes with a caution (narrow, or strong reported-only diagnostics) asks for a
+    review before approval.
+    """
+    policy = policy or {}
+    action = owner_action(
+        m["verdict"], escalated=bool(m.get("escalated")), as_of=as_of, days=days_to_act(policy).for_tier(m.get("tier")),
+        refit_policy=str(policy.get("refit_policy", "approval")),
+    )
+    if m["verdict"] == "refit" and any(str(r).startswith(CAUTION_PREFIX) for r in m.get("reasons") or ()):
+        action["action"] += " The refit check passes with a caution (see the reasons): review it before approving."
+    return action
+
+
+def _tier_legend(policy: Mapping[str, Any] | None) -> str:
+    days = days_to_act(policy)
+    return (
+        "Tier is the model's materiality under the policy, from 1 (most material) to 3. The owner has "
+        f"{days.tier_1} days to act on an exception of a tier-1 model, {days.tier_2} of tier 2 and {days.tier_3} of tier 3, "
+        "counted from the as-of date; an entry the registry rejected (no tier) gets the shortest."
+    )
+
+
+def _exceptions_view(models: Sequence[Mapping[str, Any]], policy: Mapping[str, Any] | None = None, as_of: str = "") -> list[dict]:
     rows = []
     for m in sorted((m for m in models if m["verdict"] != "pass"), key=lambda m: (m.get("severity", SEVERITY[m["verdict"]]), m["id"])):
         exc = m.get("exception") or {}
+        action = record_action(m, policy, as_of) if as_of else {"action": "", "due": None}
         rows.append({
+            "action": _text(action["action"]),
+            "due": _text(action["due"]) or None,
             "link": _model_link(m),
             "status": _status(m["verdict"]),
             "owner": _text(m.get("owner"), _SHORT_TEXT),
@@ -700,6 +746,57 @@ def _exceptions_view(models: Sequence[Mapping[str, Any]]) -> list[dict]:
             "reason": _text(m["reasons"][0], 600) if m.get("reasons") else "No reason was recorded.",
         })
     return rows
+
+
+def _watch_view(models: Sequence[Mapping[str, Any]]) -> list[dict]:
+    """Passing models whose reasons carry a caution (a narrow pass, strong reported-only diagnostics)."""
+    rows = []
+    for m in models:
+        notes = [str(r) for r in m.get("reasons") or () if str(r).startswith(CAUTION_PREFIX)]
+        if m["verdict"] == "pass" and notes:
+            rows.append({"link": _model_link(m), "owner": _text(m.get("owner"), _SHORT_TEXT), "notes": [_text(n, 600) for n in notes]})
+    return rows
+
+
+def _trend_view(trend: Sequence[Mapping[str, Any]], summary: Mapping[str, Any], as_of: str) -> dict | None:
+    """The share of passing models at the last audits and now, as one line of text and a small chart."""
+    registered = summary.get("registered") or 0
+    points = [dict(t) for t in trend] + ([{"as_of": as_of, "passed": summary.get("pass", 0), "registered": registered}] if registered else [])
+    if len(points) < 2:
+        return None
+    for p in points:
+        p["share"] = 100.0 * p["passed"] / p["registered"]
+    text = " → ".join(f"{p['as_of']} {p['share']:.0f} %" for p in points)
+    width, height, pad = 180.0, 28.0, 4.0
+    x = _Scale(0, len(points) - 1, pad, width - pad)
+    y = _Scale(0.0, 100.0, height - pad, pad)
+    chart = _chart("fleet-trend", width, height, "Share of passing models over the last audits",
+                   "Share of the registered models that passed, per audit: " + "; ".join(f"{p['as_of']}: {p['passed']} of {p['registered']} ({p['share']:.0f} %)" for p in points) + ".")
+    chart["cls"] = "spark"
+    chart["lines"].append({"x1": pad, "y1": y(100.0), "x2": width - pad, "y2": y(100.0), "cls": "gl"})
+    chart["polylines"].append({"points": " ".join(f"{_coord(x(k))},{_coord(y(p['share']))}" for k, p in enumerate(points)), "cls": "line"})
+    chart["circles"].extend({"cx": x(k), "cy": y(p["share"]), "r": 2.2, "cls": "pt"} for k, p in enumerate(points))
+    first, last = points[0], points[-1]
+    change = last["share"] - first["share"]
+    direction = "unchanged" if abs(change) < 0.5 else f"{'up' if change > 0 else 'down'} {abs(change):.0f} percentage points"
+    return {"text": text, "chart": chart, "summary": f"{direction} since {first['as_of']}", "count": len(points)}
+
+
+def _scope_view(meta: Mapping[str, Any], summary: Mapping[str, Any]) -> str | None:
+    """A sentence when p-values were adjusted over a partial run (some models only, or unreadable sources)."""
+    scope = meta.get("scope") or {}
+    requested, total, unreadable = scope.get("models_requested"), scope.get("registry_models"), list(scope.get("unreadable_sources") or ())
+    if not requested and not unreadable:
+        return None
+    parts = []
+    if requested:
+        parts.append(f"only {requested} of the registry's {total} models were audited (--models)" if total else f"only {requested} models were audited (--models)")
+    if unreadable:
+        parts.append("the models of the source(s) " + ", ".join(_text(u, 80) for u in unreadable) + " have no checks, because the sources could not be read")
+    return (
+        f"This is a partial run: {' and '.join(parts)}. The p-values were adjusted over the {summary.get('checks', 0)} checks that ran, "
+        "not over a full run's, so the same model can pass in the full run and be flagged in this one (or the reverse)."
+    )
 
 
 def _movement_view(doc: Mapping[str, Any], models: Sequence[Mapping[str, Any]]) -> dict:
@@ -739,9 +836,61 @@ _RESIDUAL_TYPE = {
 }
 
 
-def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] | None) -> list[dict]:
+def _rule_view(policy: Mapping[str, Any] | None) -> dict:
+    """The run's decision rule in words: how p-values become verdicts under the policy."""
+    policy = policy or {}
+    method = policy.get("multiple_testing", "bh")
+    q = _float(policy.get("fdr_q"))
+    return {"method": method, "label": ADJUSTMENT_LABELS.get(method, _text(method)), "q": q, "adjusted": method != "none"}
+
+
+def _floor_text(c: Mapping[str, Any]) -> str | None:
+    cal = c.get("calibration") or {}
+    b = cal.get("replicates")
+    if cal.get("method") in ("simulated", "bootstrap") and isinstance(b, int) and b > 0:
+        return f"p ≥ {_format_number(1 / (b + 1))} (1 / ({b} + 1): the smallest possible with {b} simulations)"
+    return None
+
+
+def _p_with_floor(c: Mapping[str, Any]) -> str:
+    p = _float(c.get("p_distribution"))
+    cal = c.get("calibration") or {}
+    b = cal.get("replicates")
+    if p is not None and cal.get("method") in ("simulated", "bootstrap") and isinstance(b, int) and b > 0 and p <= (1 / (b + 1)) * (1 + 1e-9):
+        return f"{_format_p(p)} (the smallest possible with {b} simulations: the true p-value may be smaller)"
+    return _format_p(p)
+
+
+def _gate_threshold(c: Mapping[str, Any]) -> str:
+    level = _float(c.get("settings_level"))
+    return "n/a" if level is None else f"fails at p ≤ {_format_number(level / 2)} (level {_format_number(level)} split over the two gates)"
+
+
+def _plain_effects(c: Mapping[str, Any]) -> str:
+    """The errors' sizes in plain units (production check)."""
+    e = c.get("effects") or {}
+    parts = []
+    ratio = _float(e.get("variance_ratio"))
+    if ratio is not None:
+        parts.append(f"errors {_format_number(ratio, 2)} times as variable as the production model assumes (variance ratio)")
+    for sizes, when in ((e, ""), (e.get("since") or {}, (e.get("since") or {}).get("date"))):
+        pct, sd = _float(sizes.get("bias_pct")), _float(sizes.get("bias_sd"))
+        if pct is None and sd is None:
+            continue
+        since = f" since {_text(when)}" if when else " over the window"
+        if pct is not None:
+            side = "high" if pct > 0 else "low"
+            parts.append(f"forecasts {_format_number(abs(pct), 2)} % too {side}{since}" + (f" ({_format_number(abs(sd), 2)} standard deviations)" if sd is not None else ""))
+        else:
+            side = "high" if sd < 0 else "low"
+            parts.append(f"forecasts {_format_number(abs(sd), 2)} standard deviations too {side}{since}")
+    return "; ".join(parts) or "n/a"
+
+
+def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] | None, policy: Mapping[str, Any] | None = None) -> list[dict]:
     """The side-by-side table of the two checks: one row per quantity, one cell per check."""
     checks = [production, refit]
+    rule = _rule_view(policy)
 
     def cell(check, fn):
         if check is None:
@@ -780,22 +929,52 @@ def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] |
         return "; ".join(f"{_text(p.get('kind'))} {_format_number(p.get('standardised'))}" for p in rows) or "n/a"
 
     def window_text(c):
-        w = c.get("window") or {}
-        return f"positions {w.get('first')}–{w.get('last')} ({w.get('length')} observations)" if w else "n/a"
+        w, e = c.get("window") or {}, c.get("effects") or {}
+        if e.get("start") and e.get("end"):
+            return f"{_text(e['start'])} to {_text(e['end'])} ({w.get('length', c.get('n'))} observations)"
+        return f"observations {w.get('first')}–{w.get('last')} of the series ({w.get('length')} observations)" if w else "n/a"
+
+    def reference_text(c):
+        cal = c.get("calibration") or {}
+        method, b = cal.get("method"), cal.get("replicates")
+        law = _text((c.get("noise") or {}).get("law"))
+        if method == "simulated":
+            how = "with its noise parameters re-estimated in each" if c.get("kind") == "refit" else "with the frozen production parameters"
+            return f"{_count(b)} simulated data sets of {c.get('n')} residuals from the {law} law, {how}"
+        if method == "bootstrap":
+            return f"{_count(b)} parametric bootstrap series of the fitted model, each refitted and rescored"
+        return f"chi-square({_count(c.get('cells'))} − 1) limits (asymptotic screen)"
+
+    def adjusted_text(c):
+        if not rule["adjusted"]:
+            return "not adjusted (the run's rule: each gate on its own level)"
+        p = _float(c.get("p_adjusted"))
+        if p is None or rule["q"] is None:
+            return _format_p(p)
+        verdict = "fails" if p <= rule["q"] else "passes"
+        return f"{_format_p(p)} (the run's rule: the check fails at ≤ q = {_format_number(rule['q'])}, {rule['label']}; it {verdict})"
+
+    def status_text(c):
+        if c is None:
+            return "not run (no production version)"
+        if c.get("status") == "ok":
+            return "ran"
+        return _text(c.get("status", "n/a")) + (f": {_text(c.get('message'))}" if c.get("message") else "")
 
     rows = [
-        {"label": "Status", "key": "status", "cells": [("not run (no production version)" if c is None else (c.get("status", "n/a") + (f": {_text(c.get('message'))}" if c.get("message") else ""))) for c in checks]},
+        {"label": "Status", "key": "status", "cells": [status_text(c) for c in checks]},
         {"label": "Residual type", "key": "residual_type", "cells": [("—" if c is None else _RESIDUAL_TYPE.get(c.get("kind"), "n/a")) for c in checks]},
     ]
     specs = [
         ("Window", "window", window_text),
+        ("In plain words", "plain", lambda c: _plain_effects(c) if c.get("kind") == "production" else "residuals of the model refitted to these data"),
         ("Residuals n", "n", lambda c: str(c["n"])),
         ("Cells s", "cells", lambda c: str(c["cells"])),
         ("Estimated noise parameters k", "k", lambda c: str(c["k"])),
         ("Noise law", "noise", noise_text),
         ("Calibration", "calibration", lambda c: _text((c.get("calibration") or {}).get("method"))),
         ("Replicates", "replicates", lambda c: _count((c.get("calibration") or {}).get("replicates"))),
-        ("Reference", "reference", lambda c: _text((c.get("calibration") or {}).get("table") or (c.get("calibration") or {}).get("reference") or "n/a")),
+        ("Null reference", "reference", reference_text),
         ("Distribution gate: members on partitions", "gate", gate_text),
         ("Largest statistic of the map T_max (equiprobable cells)", "t_max", lambda c: _format_number(c.get("t_max"))),
         ("Standardised maximum R of the gate", "r_max", lambda c: _format_number(c.get("r_max"))),
@@ -803,15 +982,16 @@ def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] |
         ("Cells that depart most", "deciding", deciding_text),
         ("Deciding point (α, β)", "argmax", lambda c: f"α {_format_number(c.get('alpha_max'))}, β {_format_number(c.get('beta_max'))}"),
         ("T there / its critical value", "t_at_max", lambda c: f"{_format_number(c.get('t_at_max'))} / {_format_number(c.get('critical_value'))}"),
-        ("p, distribution gate", "p_distribution", lambda c: _format_p(c.get("p_distribution"))),
+        ("p, distribution gate", "p_distribution", _p_with_floor),
+        ("Smallest possible p of the distribution gate", "floor", lambda c: _floor_text(c) or "none: the p-value is not simulated"),
         ("Ljung-Box", "ljung_box", lambda c: lb_text(c.get("ljung_box") or {})),
         ("p, independence gate (Ljung-Box)", "p_independence", lambda c: _format_p(c.get("p_independence"))),
+        ("Threshold of each gate (unadjusted)", "gate_threshold", _gate_threshold),
         ("McLeod-Li (squared residuals, reported)", "mcleod_li", lambda c: lb_text(c.get("mcleod_li") or {}) + f", p {_format_p((c.get('mcleod_li') or {}).get('p_value'))}"),
         ("p, check (Bonferroni over the two gates)", "p_value", lambda c: _format_p(c.get("p_value"))),
-        ("p, adjusted across the run", "p_adjusted", lambda c: _format_p(c.get("p_adjusted"))),
+        ("p, adjusted across the run", "p_adjusted", adjusted_text),
         ("Effect: T_max / 2n", "effect_divergence", lambda c: _format_number(c.get("effect_divergence"))),
         ("Effect: largest |autocorrelation|", "effect_acf", lambda c: _format_number(c.get("effect_acf"))),
-        ("Ljung-Box convention", "lb_convention", lambda c: _text((c.get("ljung_box") or {}).get("convention") or "n/a")),
     ]
     for label, key, fn in specs:
         rows.append({"label": label, "key": key, "cells": [cell(c, fn) for c in checks]})
@@ -888,6 +1068,8 @@ def _change_view(audit: Mapping[str, Any]) -> dict | None:
         "permutations": change.get("permutations"),
         "cells": change.get("cells"),
         "window": production.get("window") or {},
+        "date": _text(((production.get("effects") or {}).get("since") or {}).get("date")) or None,
+        "window_dates": (_text((production.get("effects") or {}).get("start")) or None, _text((production.get("effects") or {}).get("end")) or None),
         "rows": [{"cell": k + 1, "before": _format_number(b), "after": _format_number(a)} for k, (b, a) in enumerate(zip(before, after))],
     }
 
@@ -944,6 +1126,81 @@ def _noise_text(noise: Any) -> str:
         shape = noise.get("shape")
         return _text(noise.get("law")) + ("" if shape is None else f" (shape {_format_number(shape, 4)})")
     return _text(noise)
+
+
+_LINEAGE_LABELS = {
+    "source": "Source",
+    "series": "Series key",
+    "value": "Target column",
+    "exogenous": "Input columns",
+    "extract_digest": "Extract SHA-256 (all files read)",
+    "extract_rows": "Rows in the extract",
+    "extract_files": "Files in the extract",
+    "rows_loaded": "Observations of this series loaded",
+    "first": "First observation used",
+    "last": "Last observation used",
+    "fit_window": "Fit window (observations)",
+    "audit_window": "Audit window (observations)",
+    "audit_first": "First observation of the audit window",
+}
+_SETTING_LABELS = {
+    "level": "Level of each check",
+    "calibration": "Calibration",
+    "replicates": "Simulated data sets per null table",
+    "bootstrap_replicates": "Bootstrap replicates",
+    "seed": "Seed of every simulation",
+    "audit_window": "Audit window (observations)",
+    "fit_window": "Fit window (observations)",
+    "lb_lags": "Ljung-Box lags",
+    "change_permutations": "Permutations of the change search",
+    "locate_change": "Locate a change when the production check fails",
+    "practical_divergence": "Practical threshold of T_max / 2n",
+    "practical_acf": "Practical threshold of the largest |autocorrelation|",
+    "alphas": "α grid of the map",
+    "betas": "β grid of the map",
+    "scaling": "Scaling mean",
+    "partitions": "Partitions of the distribution gate",
+    "gate_members": "Members of the distribution gate",
+    "r": "Critical value r of the standardised maximum",
+    "days_to_act": "Days to act on an exception",
+    "persistence": "Escalation: refits in the last audits",
+    "multiple_testing": "p-value adjustment across the run",
+    "fdr_q": "Level q of the adjusted p-values",
+    "refit_policy": "Promotion of refitted parameters",
+    "justification": "Justification",
+    "approved_by": "Approved by",
+}
+_NONE_MEANS = {"fit_window": "the whole series loaded", "lb_lags": "automatic (min(10, n/5), or twice the season)", "r": "simulated for each table",
+               "practical_divergence": "none", "practical_acf": "none"}
+
+
+def _labelled_rows(mapping: Mapping[str, Any] | None, labels: Mapping[str, str], skip: Sequence[str] = ()) -> list[dict]:
+    """Key-value rows for a reviewer: known keys in words, registry bookkeeping (line numbers) left out."""
+    rows = []
+    for key, value in (mapping or {}).items():
+        if key in skip or key == "line":
+            continue
+        label = labels.get(key) or _text(str(key).replace("_", " "), 80).capitalize()
+        if key == "gate_members" and isinstance(value, (list, tuple)):
+            shown = ", ".join(_member_label(float(a), float(b)) for a, b in value)
+        elif key == "persistence" and isinstance(value, Mapping):
+            shown = f"{value.get('k')} of the last {value.get('n')} audits with a refit escalate to respecify"
+        elif key == "days_to_act" and isinstance(value, Mapping):
+            shown = ", ".join(f"tier {str(t).rsplit('_', 1)[-1]}: {d} days" for t, d in value.items())
+        elif key == "multiple_testing":
+            shown = ADJUSTMENT_LABELS.get(value, _text(value))
+        elif value is None and key in _NONE_MEANS:
+            shown = _NONE_MEANS[key]
+        else:
+            shown = _value_text(value)
+        rows.append({"key": label, "value": shown})
+    return rows
+
+
+def _tier_text(tier: Any) -> str:
+    if isinstance(tier, int) and not isinstance(tier, bool):
+        return f"{tier} (materiality: 1 most material, 3 least)"
+    return "not recorded"
 
 
 #: What a forecast entry's page says first: fitaudit audited stated forecasts and refitted nothing.
@@ -1060,7 +1317,7 @@ def _forecast_view(m: Mapping[str, Any], view: dict) -> dict | None:
     }
 
 
-def _model_view(m: Mapping[str, Any], as_of: str) -> dict:
+def _model_view(m: Mapping[str, Any], as_of: str, policy: Mapping[str, Any] | None = None) -> dict:
     audit = m.get("audit")
     pv = m.get("production_version")
     exc = m.get("exception")
@@ -1076,7 +1333,7 @@ def _model_view(m: Mapping[str, Any], as_of: str) -> dict:
         "identity": [
             {"key": "Model id", "value": _text(m["id"])},
             {"key": "Owner", "value": _text(m.get("owner"))},
-            {"key": "Tier", "value": _value_text(m.get("tier"))},
+            {"key": "Tier", "value": _tier_text(m.get("tier"))},
             {"key": "Description", "value": _text(m.get("description"))},
             {"key": "Source / series", "value": f"{_text(m.get('source'))} / {_text(m.get('series'))}"},
             {"key": "Model spec", "value": _text(m.get("spec_text"))},
@@ -1084,8 +1341,9 @@ def _model_view(m: Mapping[str, Any], as_of: str) -> dict:
             {"key": "Production version", "value": (f"{_text(pv.get('version'))} (SHA-256 {_text(pv.get('sha256'))}, created {_text(pv.get('created_at'))})" if pv else "none")},
             {"key": "Last validated", "value": _text(m.get("last_validated")) or "—"},
         ],
-        "lineage": _kv_rows(m.get("lineage")),
-        "settings": _kv_rows(m.get("settings")),
+        "action": record_action(m, policy, as_of) if m["verdict"] != "pass" else None,
+        "lineage": _labelled_rows(m.get("lineage"), _LINEAGE_LABELS),
+        "settings": _labelled_rows(m.get("settings"), _SETTING_LABELS),
         "history": _history_view(m, as_of),
         "candidates": _candidates_view(m.get("candidates")),
         "audit": None,
@@ -1094,7 +1352,7 @@ def _model_view(m: Mapping[str, Any], as_of: str) -> dict:
         production, refit = audit.get("production"), audit.get("refit")
         view["audit"] = {
             "has_production": production is not None,
-            "check_rows": _check_rows(production, refit),
+            "check_rows": _check_rows(production, refit, policy),
             "checks": [c for c in (_check_view(production, "production"), _check_view(refit, "refit")) if c],
             "params": _params_rows(audit),
             "fitted": {k: (audit.get("fitted") or {}).get(k) for k in ("loglik", "aic", "bic", "nobs", "converged")},
@@ -1126,12 +1384,13 @@ def page_context(doc: Mapping[str, Any], meta: Mapping[str, Any]) -> dict:
         "statuses": [_status(v) for v in STATUS],
         "registry": {"path": _text((doc["run"].get("registry") or {}).get("path")), "sha256": _text((doc["run"].get("registry") or {}).get("sha256"))},
         "schema": f"{_text(doc.get('schema'))} v{_text(doc.get('schema_version'))}",
+        "policy_doc": dict(doc["run"].get("policy") or {}),
     }
 
 
 def render_model_page(m: Mapping[str, Any], context: Mapping[str, Any], as_of: str) -> bytes:
     """``models/<safe_id>.html`` of one model record (``context`` from :func:`page_context`)."""
-    return _render("model.html.j2", {**context, "root": "../", "m": _model_view(m, as_of)})
+    return _render("model.html.j2", {**context, "root": "../", "m": _model_view(m, as_of, context.get("policy_doc"))})
 
 
 def render_index_page(doc: Mapping[str, Any], context: Mapping[str, Any]) -> bytes:
@@ -1148,7 +1407,11 @@ def render_index_page(doc: Mapping[str, Any], context: Mapping[str, Any]) -> byt
         **context,
         "root": "",
         "summary": _summary_view(doc),
-        "exceptions": _exceptions_view(models),
+        "scope": _scope_view(context["meta"], doc["summary"]),
+        "exceptions": _exceptions_view(models, doc["run"].get("policy"), as_of),
+        "tier_legend": _tier_legend(doc["run"].get("policy")),
+        "watch": _watch_view(models),
+        "trend": _trend_view(context["meta"]["fleet_trend"], doc["summary"], as_of),
         "movement": _movement_view(doc, models),
         "rows": [_status_row(m, as_of) for m in models],
         "history_cells": _HISTORY_CELLS,
@@ -1160,7 +1423,7 @@ def render_method_page(doc: Mapping[str, Any], context: Mapping[str, Any]) -> by
     return _render("method.html.j2", {
         **context,
         "root": "",
-        "policy": _kv_rows(doc["run"].get("policy")),
+        "policy": _labelled_rows(doc["run"].get("policy"), _SETTING_LABELS),
         "heat_bins": _heat_legend(),
     })
 

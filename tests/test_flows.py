@@ -139,5 +139,6 @@ def test_a_second_run_names_the_first_run_and_the_chain_head_it_extends(demo, pr
     assert "none (first run)" not in page2
     manifest = json.loads((pathlib.Path(second["report"]).parent / "manifest.json").read_text())
     assert manifest["extends"] == {"chain_head": after_first[0], "chain_seq": after_first[1], "previous_run_id": first["run_id"], "previous_as_of": first["as_of"]}
-    assert manifest["scope"] == {"models_requested": ["demand-d-02"]}
+    assert manifest["scope"] == {"models_requested": ["demand-d-02"], "registry_models": 45, "unreadable_sources": []}
+    assert "This is a partial run: only 1 of the registry's 45 models were audited (--models)" in page2
     assert chain_head(archive)[1] == after_first[1] + 1  # the second run's entry follows the head its page names

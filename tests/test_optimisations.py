@@ -241,7 +241,8 @@ def test_audit_flow_matches_the_plain_pipeline(demo, registry, prefect_server, t
     meta["prefect_version"] = manifest["packages"]["prefect"]
     extends = manifest["extends"]
     meta.update(archive_head=f"{extends['chain_head']} (seq {extends['chain_seq']})" if extends["chain_head"] else None,
-                previous_run_id=extends["previous_run_id"], previous_as_of=extends["previous_as_of"], fleet_trend=manifest["fleet_trend"])
+                previous_run_id=extends["previous_run_id"], previous_as_of=extends["previous_as_of"], fleet_trend=manifest["fleet_trend"],
+                scope=dict(manifest["scope"], models_requested=len(manifest["scope"]["models_requested"] or ()) or None))
 
     macro = environment().from_string(REFERENCE_SVG_MACRO).module.svg
     monkeypatch.setitem(environment().filters, "svg", macro)  # the reference renders charts with the old macro

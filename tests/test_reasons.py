@@ -129,8 +129,8 @@ def test_p_values_stand_beside_their_thresholds_and_floors():
     assert "check p = 0.004; each gate fails at p ≤ 0.025 (level 0.05 split over the two gates)" in stats
     adjusted = dataclasses.replace(failing_production(), p_adjusted=0.054)
     _, reasons = decide_verdict(adjusted, dataclasses.replace(check("refit", n=180), p_adjusted=1.0), 0.1, adjusted=True)
-    assert "check p = 0.004, adjusted across the run = 0.054, at or below q = 0.1" in reasons[1]
-    assert "adjusted across the run = 1.000, above q = 0.1" in reasons[2]
+    assert "check p = 0.004, adjusted across the run to 0.054, at or below q = 0.1" in reasons[1]
+    assert "adjusted across the run to 1.000, above q = 0.1" in reasons[2]
     off_floor = dataclasses.replace(failing_production(), p_distribution=0.004)
     assert "distribution gate p = 0.004)" in decide_verdict(off_floor, check("refit"), 0.05)[1][1]  # 2 / 500 is not the floor
     asymptotic = dataclasses.replace(failing_production(), calibration={"method": "asymptotic"}, p_distribution=0.002)

@@ -85,7 +85,8 @@ def build_fixture_document() -> dict:
     if ExpSmoothing is not None:
         trend = np.cumsum(rng.standard_normal(200)) + 0.1 * np.arange(200)
         cases.append(("trend-ets", trend, ExpSmoothing(trend="add"), None, _history(*["pass"] * 9)))
-    results = [audit_series(series, spec, production=prod, settings=settings, label=name) for name, series, spec, prod, _ in cases]
+    days = lambda n: np.arange(np.datetime64("2026-11-30") - n + 1, np.datetime64("2026-11-30") + 1)  # noqa: E731 (daily, ending at the as-of date)
+    results = [audit_series(series, spec, production=prod, settings=settings, label=name, timestamps=days(len(series))) for name, series, spec, prod, _ in cases]
     results = apply_fleet_rules(results, q=POLICY["fdr_q"], histories=[[h["verdict"] for h in hist] for *_, hist in cases])
     records = []
     for (name, series, spec, prod, hist), res in zip(cases, results):
@@ -542,14 +543,15 @@ def test_model_pages_match_the_document(doc, dom):
             if check is None:
                 assert by_label["Status"][column].startswith("not run")
                 continue
-            assert by_label["Status"][column].startswith(check["status"])
+            assert by_label["Status"][column].startswith("ran" if check["status"] == "ok" else check["status"])
             if check["status"] != "ok":
                 continue
             assert int(by_label["Residuals n"][column]) == check["n"]
             assert int(by_label["Cells s"][column]) == check["cells"]
             assert by_label["Ljung-Box"][column].startswith("Q ") and f"on {check['ljung_box']['lags']} lags, df {check['ljung_box']['df']}" in by_label["Ljung-Box"][column]
             for label, field in CHECK_FIELDS.items():
-                assert printed_matches(by_label[label][column], check[field]), (m["id"], kind, label, by_label[label][column], check[field])
+                shown = by_label[label][column].split(" (")[0]  # a threshold or floor may follow in parentheses
+                assert printed_matches(shown, check[field]), (m["id"], kind, label, by_label[label][column], check[field])
                 compared += 1
     assert compared >= 40
 
@@ -674,7 +676,11 @@ def test_page_structure(doc, pages, dom):
 def test_change_point_and_parameters_are_shown(doc, dom):
     m = next(m for m in doc["models"] if m["audit"] and m["audit"]["change"])
     section = dom[f"models/{m['safe_id']}.html"].find_id("change")
-    assert f"position {m['audit']['change']['index']} of the series" in section.text()
+    # dates, not positions: the change's first error, counted back from the as-of date of a daily series
+    n = m["lineage"]["extract"]["rows"]
+    date = (dt.date(2026, 11, 30) - dt.timedelta(days=n - 1 - m["audit"]["change"]["index"])).isoformat()
+    assert f"falls near {date} (the first error after it)" in section.text()
+    assert "position" not in section.text()
     header, rows = table_rows(next(dom[f"models/{m['safe_id']}.html"].find_id("parameters").iter("table")))
     by_name = {cells[0]: cells for _, cells in rows}
     for name, value in m["audit"]["production_params"].items():
@@ -692,7 +698,8 @@ def test_method_page_explains_with_formulas_references_and_cautions(dom):
         assert formula in method, formula
     assert "statistical evidence, not proof that a model is fit for its use" in method
     policy = dom["method.html"].find_id("policy").text()
-    assert "model-risk committee" in policy and "fdr_q" in policy
+    assert "model-risk committee" in policy and "Level q of the adjusted p-values0.1" in policy
+    assert "fdr_q" not in policy and "multiple_testing" not in policy  # words, not the registry's keys
 
 
 def test_every_page_carries_the_caution_in_its_footer(dom):
@@ -796,3 +803,97 @@ def test_run_page_names_the_chain_head_and_the_previous_run(doc):
     first = parse(render_run(doc, META)["index.html"])
     facts = next(first.iter("dl")).text()
     assert "none: this is the first entry of the archive’s hash chain" in facts and "none: the first audit run in this archive" in facts
+
+
+# ----------------------------------------------------------------------------------------------
+# the reviewer's view: actions, thresholds, plain words, partial runs, the fleet's trend
+# ----------------------------------------------------------------------------------------------
+def test_exceptions_say_what_to_do_and_by_when(doc, dom):
+    from fitaudit.core.verdict import owner_action
+
+    table = next(dom["index.html"].find_id("exceptions").iter("table"))
+    header, rows = table_rows(table)
+    expected = sorted((m for m in doc["models"] if m["verdict"] != "pass"), key=lambda m: (m["severity"], m["id"]))
+    defaults = {1: 7, 2: 14, 3: 28}  # source: the registry schema's default days to act per tier (tasks/registry/schema.py DaysToAct)
+    for (_, cells), m in zip(rows, expected):
+        days = defaults.get(m["tier"], 7)  # an entry without a tier gets the shortest
+        due = (dt.date(2026, 11, 30) + dt.timedelta(days=days)).isoformat()
+        action = cells[header.index("Action")]
+        assert action.startswith(owner_action(m["verdict"], escalated=m["escalated"])["action"]) and action.endswith(f"By {due}.")
+        assert "promot" not in action or (m["verdict"] == "refit" and not m["escalated"])
+    legend = dom["index.html"].find_id("tier-legend").text()
+    assert "from 1 (most material) to 3" in legend and "7 days to act on an exception of a tier-1 model, 14 of tier 2 and 28 of tier 3" in legend
+    refit = next(m for m in doc["models"] if m["verdict"] == "refit")
+    box = dom[f"models/{refit['safe_id']}.html"].find_id("action").text()
+    assert "approve their promotion" in box and "By 2026-12-14 (14 days after the as-of date" in box
+
+
+def test_days_to_act_come_from_the_policy(doc):
+    strict = copy.deepcopy(doc)
+    strict["run"]["policy"]["days_to_act"] = {"tier_1": 3, "tier_2": 5, "tier_3": 9}
+    page = parse(render_run(strict, META)["index.html"])
+    header, rows = table_rows(next(page.find_id("exceptions").iter("table")))
+    tier2 = [cells for _, cells in rows if cells[header.index("Tier")] == "2"]
+    assert tier2 and all(c[header.index("Action")].endswith("By 2026-12-05.") for c in tier2)  # 30 November + 5 days
+    assert "3 days to act on an exception of a tier-1 model, 5 of tier 2 and 9 of tier 3" in page.find_id("tier-legend").text()
+
+
+def test_check_table_puts_thresholds_and_floors_beside_the_p_values(doc, dom):
+    shown = 0
+    for m in doc["models"]:
+        for kind, column in (("production", 0), ("refit", 1)):
+            check = (m["audit"] or {}).get(kind)
+            if not check or check["status"] != "ok":
+                continue
+            _, rows = table_rows(next(dom[f"models/{m['safe_id']}.html"].find_id("checks").iter("table")))
+            cell = {cells[0]: cells[1:][column] for _, cells in rows}
+            floor = 1 / (check["calibration"]["replicates"] + 1)  # source: docs/method.md §7 (p = (1 + #{R* >= R}) / (B + 1))
+            assert cell["Smallest possible p of the distribution gate"].startswith(f"p ≥ {floor:g} (1 / (199 + 1)")
+            at_floor = check["p_distribution"] <= floor * (1 + 1e-9)
+            assert ("(the smallest possible with 199 simulations" in cell["p, distribution gate"]) == at_floor
+            assert cell["Threshold of each gate (unadjusted)"] == "fails at p ≤ 0.025 (level 0.05 split over the two gates)"
+            verdict = "fails" if check["p_adjusted"] <= POLICY["fdr_q"] else "passes"
+            assert cell["p, adjusted across the run"].endswith(f"(the run's rule: the check fails at ≤ q = 0.1, Benjamini-Hochberg; it {verdict})")
+            assert cell["Window"].endswith(f"to 2026-11-30 ({check['window']['length']} observations)")  # dates, not positions
+            shown += 1
+    assert shown >= 6
+
+
+def test_reviewer_pages_show_words_not_internals(pages, dom):
+    internals = re.compile(r"\b(?!T_max\b)[A-Za-z0-9]+_[A-Za-z0-9_]+\b|\bNone\b|\bTrue\b|\bFalse\b|shape=|\{'|\[\[|'line'")
+    for name, root in dom.items():
+        text = next(root.iter("main")).text()
+        found = internals.findall(text)
+        assert not found, (name, found[:5])  # no registry keys, Python reprs or table keys
+    policy = [tr for tr, _ in table_rows(dom["method.html"].find_id("policy"))[1]]
+    assert not any(tr.elements()[0].text().strip().lower() == "line" for tr in policy)  # the registry's line number is bookkeeping
+    assert internals.search("fit_window None") and internals.search("{'a': 1}")  # the pattern does catch internals
+
+
+def test_partial_runs_say_their_p_values_were_adjusted_over_fewer_checks(doc):
+    full = parse(render_run(doc, META)["index.html"])
+    assert full.find_id("partial-run") is None
+    partial = parse(render_run(doc, dict(META, scope={"models_requested": 7, "registry_models": 45, "unreadable_sources": ["sensors"]}))["index.html"])
+    text = partial.find_id("partial-run").text()
+    assert "only 7 of the registry's 45 models were audited (--models)" in text and "the source(s) sensors" in text
+    assert f"adjusted over the {doc['summary']['checks']} checks that ran" in text and "the same model can pass in the full run and be flagged in this one" in text
+
+
+def test_run_page_has_a_one_line_fleet_trend(doc):
+    trend = [{"as_of": "2026-11-16", "passed": 4, "registered": 8}, {"as_of": "2026-11-23", "passed": 6, "registered": 8}]
+    page = parse(render_run(doc, dict(META, fleet_trend=trend))["index.html"])
+    line = page.find_id("fleet-trend")
+    now = 100 * doc["summary"]["pass"] / doc["summary"]["registered"]
+    assert f"2026-11-16 50 % → 2026-11-23 75 % → 2026-11-30 {now:.0f} %" in line.text()  # 4 / 8, 6 / 8
+    svg = next(line.iter("svg"))
+    assert "2026-11-23: 6 of 8 (75 %)" in svg.find_id("fleet-trend-d").text() and len(list(svg.iter("circle"))) == 3
+    assert parse(render_run(doc, META)["index.html"]).find_id("fleet-trend") is None  # a first audit has no trend
+
+
+def test_passes_with_a_caution_are_listed_to_watch(doc):
+    watched = copy.deepcopy(doc)
+    target = next(m for m in watched["models"] if m["verdict"] == "pass")
+    target["reasons"].append("Caution, production check: it passes narrowly: its largest standardised statistic is 0.97 of its critical value (within 10 % of failing).")
+    page = parse(render_run(watched, META)["index.html"])
+    items = [li.text() for li in next(page.find_id("exceptions").iter("ul")).iter("li")]
+    assert len(items) == 1 and items[0].startswith(target["id"]) and "0.97 of its critical value" in items[0]

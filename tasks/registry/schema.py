@@ -70,6 +70,7 @@ __all__ = [
     "REFIT_POLICIES",
     "is_safe_id",
     "Persistence",
+    "DaysToAct",
     "Policy",
     "SourceEntry",
     "Noise",
@@ -368,11 +369,31 @@ class Persistence(Block):
         return self
 
 
+class DaysToAct(Block):
+    """Days a model's owner has to act on an exception, by tier (1 the most material).
+
+    The run page's action column gives each exception a deadline: the run's as-of date plus the
+    days of the model's tier.
+    """
+
+    shape_hint = "a mapping like {tier_1: 7, tier_2: 14, tier_3: 28}"
+
+    tier_1: setting("days_to_act") = Field(7, description="Days to act on an exception of a tier-1 model.")
+    tier_2: setting("days_to_act") = Field(14, description="Days to act on an exception of a tier-2 model.")
+    tier_3: setting("days_to_act") = Field(28, description="Days to act on an exception of a tier-3 model.")
+
+    def for_tier(self, tier: int | None) -> int:
+        """The days of ``tier``; for an unknown tier (an entry the registry rejected) the shortest."""
+        days = {1: self.tier_1, 2: self.tier_2, 3: self.tier_3}
+        return days.get(tier, min(days.values())) if isinstance(tier, int) and not isinstance(tier, bool) else min(days.values())
+
+
 class Policy(Block):
     """Thresholds fixed before the run, with their justification and approver.
 
     ``persistence`` escalates repeated ``refit`` verdicts; ``refit_policy`` says whether refitted
-    parameters are promoted automatically or need approval; ``partitions`` chooses the cell
+    parameters are promoted automatically or need approval; ``days_to_act`` gives each tier's
+    deadline for acting on an exception; ``partitions`` chooses the cell
     partitions of the distribution gate (null: the audit's default).
     """
 
@@ -398,6 +419,9 @@ class Policy(Block):
     seed: setting("seed") = Field(0, description="Seed of every simulation: reruns reproduce every number.")
     refit_policy: choice(REFIT_POLICIES) = Field(
         "approval", description="approval: refits wait for `fitaudit promote`; automatic: promoted when they pass."
+    )
+    days_to_act: DaysToAct = Field(
+        DaysToAct(), description="Days an owner has to act on an exception, by the model's tier."
     )
     partitions: Partitions = Field(
         None,
