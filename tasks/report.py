@@ -403,6 +403,8 @@ def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
                 segments.append(f"M{_coord(x0)} {_coord(y0)}V{_coord(y0 + ch)}")
             if j + 1 >= nb or not fail[i][j + 1]:
                 segments.append(f"M{_coord(x0 + cw)} {_coord(y0)}V{_coord(y0 + ch)}")
+    # a frame around the grid: the lightest cells need no contrast with the page to be seen as part of the map
+    chart["paths"].append({"d": f"M{_coord(left)} {_coord(top)}H{_coord(left + nb * cw)}V{_coord(top + na * ch)}H{_coord(left)}Z", "cls": "frame"})
     if segments:
         chart["paths"].append({"d": "".join(segments), "cls": "edge"})
     # axes: alpha ticks on the left, beta ticks below
@@ -447,6 +449,7 @@ def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
         "max_point": max_point,
         "members_marked": [CLASSICAL_MEMBER_LABELS[m] for m in members_marked],
         "bins": _heat_legend(),
+        "scale_words": HEAT_SCALE_WORDS,
     }
 
 
@@ -463,6 +466,13 @@ def _heat_legend() -> list[dict]:
             text = f"{_format_number(lo)} – {_format_number(hi)}"
         out.append({"cls": f"h{k + 1}", "text": text, "fails": lo is not None and lo >= 1.0})
     return out
+
+
+#: How the heat map's colours read, for its legend.
+HEAT_SCALE_WORDS = (
+    "Blues below the critical value, orange to red above it; the further from the critical value, the darker "
+    "(in greyscale too), and the heavy outline marks where the check fails."
+)
 
 
 def _histogram(check: Mapping[str, Any], chart_id: str, label: str) -> dict | None:
@@ -1425,6 +1435,7 @@ def render_method_page(doc: Mapping[str, Any], context: Mapping[str, Any]) -> by
         "root": "",
         "policy": _labelled_rows(doc["run"].get("policy"), _SETTING_LABELS),
         "heat_bins": _heat_legend(),
+        "heat_words": HEAT_SCALE_WORDS,
     })
 
 

@@ -25,7 +25,7 @@ from fitaudit.core.audit import AuditSettings, apply_fleet_rules, audit_series
 from fitaudit.core.exceptions import InputError
 from fitaudit.core.models.arima import Arima
 from fitaudit.tasks import archive
-from fitaudit.tasks.report import STATUS, environment, render_archive_index, render_run
+from fitaudit.tasks.report import HEAT_BINS, STATUS, environment, render_archive_index, render_run
 from fitaudit.tasks.results import build_results, model_record
 
 try:
@@ -392,7 +392,10 @@ def test_palette_contrast_meets_wcag_aa():
     bgs, inks, marks, heats, overs = group("bg-"), group("ink-"), group("mark-"), group("heat-"), group("over-")
     assert len(bgs) >= 5 and len(inks) >= 2 and len(marks) >= 5 and len(heats) >= 8 and overs
     failures = []
-    for fg_group, bg_group, need in ((inks, bgs, 4.5), (marks, bgs, 3.0), (heats, bgs, 3.0), (overs, heats, 3.0)):
+    # the scale's cells sit inside a framed map (see report.css); the grey cells must stand out from the page
+    symbol_cells = {k: v for k, v in heats.items() if k in ("heat-inf", "heat-na")}
+    ink = {"over-ink": palette["over-ink"]}
+    for fg_group, bg_group, need in ((inks, bgs, 4.5), (marks, bgs, 3.0), (symbol_cells, bgs, 3.0), (ink, heats, 3.0), (ink, {"over-halo": palette["over-halo"]}, 4.5)):
         for f, fc in fg_group.items():
             for b, bc in bg_group.items():
                 if _contrast(fc, bc) < need:
@@ -401,6 +404,61 @@ def test_palette_contrast_meets_wcag_aa():
         if _contrast(palette["over-ink"], palette[symbol_cell]) < 4.5:
             failures.append(f"--over-ink on --{symbol_cell}")
     assert not failures, failures
+
+
+def _lab(hex_colour: str, simulate: np.ndarray | None = None) -> np.ndarray:
+    """CIELAB (D65) of an sRGB colour, optionally as seen with a colour-vision deficiency."""
+    # source: IEC 61966-2-1 (sRGB transfer function and matrix to XYZ); CIE 15:2004 (L*a*b*, white D65)
+    c = np.array([int(hex_colour[i : i + 2], 16) / 255 for i in (1, 3, 5)])
+    lin = np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+    if simulate is not None:
+        lin = np.clip(simulate @ lin, 0.0, 1.0)
+    xyz = np.array([[0.4124, 0.3576, 0.1805], [0.2126, 0.7152, 0.0722], [0.0193, 0.1192, 0.9505]]) @ lin / np.array([0.95047, 1.0, 1.08883])
+    f = np.where(xyz > (6 / 29) ** 3, np.cbrt(xyz), xyz / (3 * (6 / 29) ** 2) + 4 / 29)
+    return np.array([116 * f[1] - 16, 500 * (f[0] - f[1]), 200 * (f[1] - f[2])])
+
+
+# from memory: Machado, Oliveira and Fernandes (2009), "A physiologically-based model for simulation of
+# color vision deficiency", IEEE TVCG 15(6), the matrices for severity 1.0 (applied to linear RGB)
+CVD = {
+    "protanopia": np.array([[0.152286, 1.052583, -0.204868], [0.114503, 0.786281, 0.099216], [-0.003882, -0.048116, 1.051998]]),
+    "deuteranopia": np.array([[0.367322, 0.860646, -0.227968], [0.280085, 0.672501, 0.047413], [-0.011820, 0.042940, 0.968881]]),
+    "tritanopia": np.array([[1.255528, -0.076749, -0.178779], [-0.078411, 0.930809, 0.147602], [0.004733, 0.691367, 0.303900]]),
+}
+
+
+def test_lab_conversion_matches_published_values():
+    assert _lab("#ffffff") == pytest.approx([100.0, 0.0, 0.0], abs=0.05)  # source: CIE 15:2004, the reference white
+    assert _lab("#000000") == pytest.approx([0.0, 0.0, 0.0], abs=1e-9)
+    assert _lab("#ff0000") == pytest.approx([53.24, 80.09, 67.20], abs=0.1)  # from memory: sRGB red in CIELAB D65
+    assert _lab("#777777", CVD["deuteranopia"])[0] == pytest.approx(_lab("#777777")[0], abs=0.5)  # greys stay grey
+
+
+def test_divergence_map_scale_is_ordered_and_reads_without_colour():
+    palette = _palette(_stylesheet())
+    below = [palette[f"heat-{k}"] for k in (4, 3, 2, 1)]  # from the critical value down (0.75-1 ... <= 0.25)
+    above = [palette[f"heat-{k}"] for k in (5, 6, 7, 8)]  # from the critical value up (1-1.5 ... > 4)
+    assert HEAT_BINS[3] == 1.0  # h1..h4 are below the critical value, h5..h8 above
+    lightness = lambda side: [_lab(c)[0] for c in side]  # noqa: E731
+    for side in (below, above):
+        steps = np.diff(lightness(side))
+        assert (steps <= -8).all(), steps  # darker with distance from the critical value, visibly so in greyscale
+    all_l = sorted(lightness(below) + lightness(above))
+    assert min(np.diff(all_l)) >= 4  # no two classes share a grey
+    assert lightness(above)[0] <= lightness(below)[0] - 10  # crossing the critical value darkens the cell
+    hue = lambda c: np.degrees(np.arctan2(_lab(c)[2], _lab(c)[1])) % 360  # noqa: E731
+    for side in (below, above):
+        hues = [hue(c) for c in side]
+        assert max(hues) - min(hues) <= 35, hues  # one hue family per side
+    gap = abs(np.mean([hue(c) for c in below]) - np.mean([hue(c) for c in above]))
+    assert min(gap, 360 - gap) >= 120  # two clearly different families
+    for name, matrix in {"normal vision": None, **CVD}.items():
+        seen_below = [_lab(c, matrix) for c in below]
+        seen_above = [_lab(c, matrix) for c in above]
+        cross = min(np.linalg.norm(a - b) for a in seen_below for b in seen_above)
+        assert cross >= 25, (name, cross)  # CIE76 difference: the families stay apart
+        for side in (seen_below, seen_above):
+            assert min(np.linalg.norm(a - b) for a, b in zip(side, side[1:])) >= 8, name  # neighbouring classes too
 
 
 def test_stylesheet_uses_only_palette_colours_in_their_roles():

@@ -7,6 +7,10 @@ a PDF print are saved under the test's temporary folder.
 
 Without ``/usr/bin/chromium`` (Debian package ``chromium``) these tests skip, unless the environment
 variable ``FITAUDIT_REQUIRE_BROWSER=1`` is set (CI), in which case they fail.
+
+The screenshots of the run page and of an exception's model page are saved to the folder named by
+``FITAUDIT_SCREENSHOTS`` (default: ``screenshots/`` under pytest's base temporary folder); their
+paths are printed (``pytest -s``) and recorded as the tests' ``screenshot`` properties.
 """
 
 from __future__ import annotations
@@ -42,6 +46,10 @@ META = {
     "tool_version": "0.1.0",
     "code_commit": "292b527",
     "prefect_version": "3.9.0",
+    "archive_head": "5f" * 32 + " (seq 41)",
+    "previous_run_id": "20261123-T010203Z-a1a1",
+    "previous_as_of": "2026-11-23",
+    "fleet_trend": [{"as_of": "2026-11-09", "passed": 3, "registered": 3}, {"as_of": "2026-11-23", "passed": 2, "registered": 3}],
 }
 A4_POINTS = (595.28, 841.89)  # source: ISO 216 A4 = 210 mm x 297 mm; 1 pt = 1/72 inch = 0.3528 mm
 
@@ -203,6 +211,14 @@ def run_folder(tmp_path_factory) -> tuple[pathlib.Path, dict]:
     return folder, doc
 
 
+@pytest.fixture(scope="module")
+def shots(tmp_path_factory) -> pathlib.Path:
+    """Where the screenshots go (``FITAUDIT_SCREENSHOTS`` or pytest's base temporary folder)."""
+    folder = pathlib.Path(os.environ.get("FITAUDIT_SCREENSHOTS") or tmp_path_factory.getbasetemp() / "screenshots")
+    folder.mkdir(parents=True, exist_ok=True)
+    return folder
+
+
 def _allowed_urls(folder: pathlib.Path) -> set[str]:
     return {p.as_uri() for p in folder.rglob("*.html")}
 
@@ -220,7 +236,7 @@ VISIBLE = """(() => {
 })()"""
 
 
-def test_run_page_opens_offline_and_shows_counts_and_exceptions(browser, run_folder, tmp_path):
+def test_run_page_opens_offline_and_shows_counts_and_exceptions(browser, run_folder, shots, record_property):
     folder, doc = run_folder
     session = browser.open_tab()
     url = (folder / "index.html").as_uri()
@@ -239,11 +255,23 @@ def test_run_page_opens_offline_and_shows_counts_and_exceptions(browser, run_fol
     rendered = browser.evaluate(session, "Array.from(document.querySelectorAll('#counts tbody td')).map(td => td.innerText.trim())")
     assert [int(x) for x in rendered] == [doc["summary"][k] for k in ("registered", "audited", *STATUS)]
     assert "<script>alert(1)</script>" in seen["#exceptions table"]["text"]  # shown as text, not run
-    png = browser.screenshot(session, tmp_path / "run-page.png")
+    facts = browser.evaluate(session, "document.querySelector('.facts').innerText")
+    assert "5f" * 32 + " (seq 41)" in facts and "20261123-T010203Z-a1a1 (as of 2026-11-23)" in facts  # the chain head and the previous run
+    columns = browser.evaluate(session, "Array.from(document.querySelectorAll('#exceptions thead th')).map(th => th.innerText.trim())")
+    assert columns[-2:] == ["Reason", "Action"]
+    actions = browser.evaluate(session, "Array.from(document.querySelectorAll('#exceptions td.action')).map(td => td.innerText)")
+    assert actions and all(re.search(r"By 2026-12-\d\d\.$", a) for a in actions)
+    table_box = browser.evaluate(session, "(() => { const t = document.querySelector('#exceptions table').getBoundingClientRect(); return t.right; })()")
+    assert table_box <= 1280  # the action column fits the page width, no sideways scrolling
+    assert "→" in browser.evaluate(session, "document.querySelector('#fleet-trend').innerText")
+    path = shots / "run-page.png"
+    png = browser.screenshot(session, path)
     assert png.startswith(b"\x89PNG\r\n\x1a\n") and len(png) > 20_000
+    print(f"run page screenshot: {path}")
+    record_property("screenshot", str(path))
 
 
-def test_model_page_shows_the_divergence_map(browser, run_folder, tmp_path):
+def test_model_page_shows_the_divergence_map(browser, run_folder, shots, record_property):
     folder, doc = run_folder
     model = next(m for m in doc["models"] if m["verdict"] == "respecify")
     session = browser.open_tab()
@@ -264,7 +292,25 @@ def test_model_page_shows_the_divergence_map(browser, run_folder, tmp_path):
     })()""")
     assert marks["cells"] == 17 * 9 and marks["edge"] == 1 and marks["members"] == 5 and marks["max"] == 1
     assert marks["fill"].startswith("rgb(")  # the inline stylesheet coloured the cells
-    browser.screenshot(session, tmp_path / "model-page.png")
+    classes = browser.evaluate(session, """(() => {
+      const hex = h => { const v = h.trim(); return `rgb(${parseInt(v.slice(1, 3), 16)}, ${parseInt(v.slice(3, 5), 16)}, ${parseInt(v.slice(5, 7), 16)})`; };
+      const root = getComputedStyle(document.documentElement), out = {};
+      for (const r of document.querySelectorAll('svg.heat rect')) {
+        const cls = r.getAttribute('class'), name = cls === 'hinf' ? '--heat-inf' : cls === 'hna' ? '--heat-na' : `--heat-${cls.slice(1)}`;
+        out[cls] = [getComputedStyle(r).fill, hex(root.getPropertyValue(name))];
+      }
+      return out;
+    })()""")
+    assert {"h7", "h8"} <= set(classes)  # the walk fails far beyond the critical value
+    for cls, (fill, expected) in classes.items():
+        assert fill == expected, cls  # each class drawn in its palette colour (checked for order and contrast in test_report.py)
+    assert browser.evaluate(session, "document.querySelectorAll('#figure-map-production svg path.frame').length") == 1
+    action = browser.evaluate(session, "document.querySelector('#action').innerText")
+    assert "What the owner should do." in action and "By 2026-12-" in action
+    path = shots / f"model-page-{model['safe_id']}.png"
+    browser.screenshot(session, path)
+    print(f"model page screenshot ({model['verdict']}): {path}")
+    record_property("screenshot", str(path))
 
 
 def test_recorder_catches_requests_and_console_errors(browser, tmp_path):
