@@ -4,6 +4,8 @@ The public surface for notebooks and scripts:
 
 * :func:`audit_series` and :class:`AuditSettings`: audit one series against its model entry
   (production and refit checks, verdict);
+* :func:`audit_forecasts`: audit forecasts made elsewhere against their stated predictive
+  distributions (mean and scale, a count law, or quantiles; no refit check);
 * :func:`divergence_map` and :func:`scaled_bregman`: the family of scaled Bregman divergences
   that scores the checks;
 * :func:`locate_change`: the most likely break in a series of forecast errors;
@@ -25,13 +27,15 @@ if TYPE_CHECKING:
     from fitaudit.core.audit import AuditSettings, audit_series
     from fitaudit.core.change import locate_change
     from fitaudit.core.divergence import divergence_map, scaled_bregman
+    from fitaudit.core.forecasts import audit_forecasts
     from fitaudit.tasks.frames import load_results
 
-__all__ = ["audit_series", "AuditSettings", "divergence_map", "scaled_bregman", "locate_change", "load_results"]
+__all__ = ["audit_series", "audit_forecasts", "AuditSettings", "divergence_map", "scaled_bregman", "locate_change", "load_results"]
 
 #: Where each public name is defined.
 _HOMES = {
     "audit_series": "fitaudit.core.audit",
+    "audit_forecasts": "fitaudit.core.forecasts",
     "AuditSettings": "fitaudit.core.audit",
     "divergence_map": "fitaudit.core.divergence",
     "scaled_bregman": "fitaudit.core.divergence",

@@ -35,6 +35,7 @@ from fitaudit.core.vocabulary import VERDICTS  # noqa: E402
 
 PUBLIC = {
     "audit_series": "fitaudit.core.audit",
+    "audit_forecasts": "fitaudit.core.forecasts",
     "AuditSettings": "fitaudit.core.audit",
     "divergence_map": "fitaudit.core.divergence",
     "scaled_bregman": "fitaudit.core.divergence",
@@ -66,6 +67,21 @@ def test_the_core_functions_work_through_the_public_names():
     n = observed.sum()
     b = fitaudit.scaled_bregman(observed / n, expected / n, alpha=2.0, scaling="model")
     assert 2 * n * b == pytest.approx(np.sum((observed - expected) ** 2 / expected))
+
+
+def test_forecasts_made_elsewhere_are_audited_through_the_public_name():
+    from scipy import stats
+
+    rng = np.random.default_rng(3)
+    mean = np.cumsum(rng.normal(0, 0.3, 120))
+    y = mean + rng.normal(0, 1.0, 120)
+    quantiles = {lv: mean + stats.norm.ppf(lv) for lv in (0.1, 0.5, 0.9)}
+    result = fitaudit.audit_forecasts(y, quantiles=quantiles, settings=fitaudit.AuditSettings(audit_window=56, replicates=99))
+    assert result.refit is None and result.production.n == 56 and result.spec["statement"] == "quantiles"
+    assert "The model was not refitted by fitaudit" in " ".join(result.reasons)
+    # source: Hyndman and Koehler (2006), section 3.4: MASE = mean |y - point| / mean |y_t - y_(t-1)| over the history
+    expected = np.mean(np.abs(y[64:] - mean[64:])) / np.mean(np.abs(np.diff(y[:64])))
+    assert result.accuracy["mase"] == pytest.approx(expected, rel=1e-12)
 
 
 def test_a_folder_that_is_not_a_run_is_refused_with_the_fix(tmp_path):
