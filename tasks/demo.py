@@ -6,6 +6,13 @@ daily pumping energy of 6 pumping stations and a leakage index of 2 network sect
 of daily data end on 30 November 2026 (early summer in the valley).  Production parameter versions
 were fitted on data up to 31 October 2025 and promoted on 1 November 2025.
 
+Some forecasts come from outside and are audited as stated (forecast entries: fitaudit refits
+nothing of them).  An energy supplier (Northgrid Forecasting, fictional) sends day-ahead quantile
+forecasts (5, 25, 50, 75 and 95 %) of the energy of pumping stations 1 to 3, issued at 18:00 the
+evening before (``data/supplier.parquet``, with the actuals); the network team's notebook states
+one-step mean forecasts of sector 1's leakage index with a fixed standard deviation of 0.5
+(``data/notebook.parquet``).
+
 Planted so that every verdict appears in the final audit (as of 2026-11-30):
 
 =========  =====================================================================  ==============
@@ -21,7 +28,11 @@ d-25       connected on 1 June 2026: too short for its fit window               
 d-31       a meter failure left a missing reading on 20 November 2026            error
 d-32       the extract holds 18 November 2026 twice                               error
 d-40       registry entry names an unknown noise law                              error
+supplier   pump-02: the supplier's stated quantiles are half as wide as they      refit (the owner
+pump-02    should be since 4 November 2026 (after the previous audit)             re-estimates)
 =========  =====================================================================  ==============
+
+The other forecast entries (the supplier's pumps 1 and 3, the notebook's leakage forecasts) pass.
 
 Everything is generated from a fixed seed, so the demo is byte-for-byte reproducible.
 """
@@ -35,6 +46,7 @@ import textwrap
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
+from scipy import stats
 
 from fitaudit.core.models import ForecastModel, model_from_dict
 
@@ -113,19 +125,105 @@ def _district(i: int, days: np.ndarray, temp: np.ndarray, rng: np.random.Generat
     return np.round(y, 3), spec, noise
 
 
-def _station(j: int, n: int, rng: np.random.Generator) -> tuple[np.ndarray, dict]:
+def _station(j: int, n: int, rng: np.random.Generator) -> tuple[np.ndarray, dict, dict]:
     spec = {"family": "smoothing", "trend": "add", "damped": True, "seasonal": "add", "period": 7}
     season = np.array([0.5, 0.4, 0.3, 0.2, 0.1, -0.7, -0.8]) * (1 + rng.random())
     params = {"alpha": 0.3, "beta": 0.02, "gamma": 0.1, "phi": 0.9, "l0": 40 + 10 * rng.random(), "b0": 0.01,
               **{f"s{k}": float(season[k]) for k in range(6)}, "sigma2": 0.5 + 0.3 * rng.random()}
-    return np.round(_model(spec).simulate(params, n, rng), 3), spec
+    return np.round(_model(spec).simulate(params, n, rng), 3), spec, params
+
+
+LEAK_SPEC = {"family": "nonlinear-ar", "function": "setar", "lags": [1, 2], "delay": 1}
+LEAK_PARAMS = {"c1": 1.0, "ar1_1": 0.6, "ar1_2": 0.1, "c2": 3.0, "ar2_1": 0.3, "ar2_2": -0.1, "threshold": 3.5, "delay": 1.0, "sigma2": 0.25}
+LEAK_LEVEL = 2.0  # the index is the simulated threshold process shifted by this much
 
 
 def _leakage(n: int, rng: np.random.Generator) -> tuple[np.ndarray, dict]:
-    spec = {"family": "nonlinear-ar", "function": "setar", "lags": [1, 2], "delay": 1}
+    spec = dict(LEAK_SPEC)
     model = _model(spec)
-    params = {"c1": 1.0, "ar1_1": 0.6, "ar1_2": 0.1, "c2": 3.0, "ar2_1": 0.3, "ar2_2": -0.1, "threshold": 3.5, "delay": 1.0, "sigma2": 0.25}
-    return np.round(model.simulate(params, n, rng) + 2.0, 3), spec
+    return np.round(model.simulate(LEAK_PARAMS, n, rng) + LEAK_LEVEL, 3), spec
+
+
+#: The supplier's quantile levels and their columns; its forecasts start here.
+SUPPLIER_LEVELS = {"q05": 0.05, "q25": 0.25, "q50": 0.5, "q75": 0.75, "q95": 0.95}
+OUTSIDE_START = np.datetime64("2026-03-01")
+#: From this day the supplier's stated spread is half the true one (planted: pump-02).
+NARROW_FROM = np.datetime64("2026-11-04")
+
+
+def _supplier(days: np.ndarray, stations: dict) -> dict:
+    """The supplier's day-ahead quantile forecasts of stations 1 to 3: the one-step predictive
+    law of the true model (mean y_t - e_t, standard deviation sigma), issued at 18:00 the day
+    before; from :data:`NARROW_FROM` on the spread it states for pump-02 is half the true one."""
+    keep = days >= OUTSIDE_START
+    cols = {"asset": [], "date": [], "energy_mwh": [], **{c: [] for c in SUPPLIER_LEVELS}, "issued_at": []}
+    for name in ("pump-01", "pump-02", "pump-03"):
+        y, spec, params = stations[name]
+        mean = y - _model(spec).errors(y, params)
+        sd = np.full(y.size, float(np.sqrt(params["sigma2"])))
+        if name == "pump-02":
+            sd[days >= NARROW_FROM] *= 0.5
+        cols["asset"] += [name] * int(keep.sum())
+        cols["date"] += list(days[keep])
+        cols["energy_mwh"] += list(y[keep])
+        for c, level in SUPPLIER_LEVELS.items():
+            cols[c] += list(np.round(mean + sd * float(stats.norm.ppf(level)), 3)[keep])
+        cols["issued_at"] += list(days[keep].astype("datetime64[s]") - np.timedelta64(6, "h"))
+    return cols
+
+
+def _notebook(days: np.ndarray, leak: np.ndarray) -> dict:
+    """The network team's one-step mean forecasts of sector 1's leakage index (the true threshold
+    model's conditional mean); the notebook states a fixed standard deviation of 0.5."""
+    keep = days >= OUTSIDE_START
+    mean = leak - _model(LEAK_SPEC).errors(leak - LEAK_LEVEL, LEAK_PARAMS)
+    return {"sector": ["leak-01"] * int(keep.sum()), "date": list(days[keep]), "leakage": list(leak[keep]),
+            "fc_mean": list(np.round(mean, 3)[keep])}
+
+
+OUTSIDE_ENTRIES = """\
+  - id: supplier-pump-01
+    owner: "Energy trading (supplier forecasts, T. Lindqvist)"
+    tier: 3
+    description: "Northgrid's day-ahead quantile forecasts of the energy of station pump-01, MWh"
+    source: supplier
+    series: pump-01
+    forecasts:
+      quantiles: {"0.05": q05, "0.25": q25, "0.5": q50, "0.75": q75, "0.95": q95}
+      issued: issued_at
+      period: 7
+    windows: {audit: 56}
+  - id: supplier-pump-02
+    owner: "Energy trading (supplier forecasts, T. Lindqvist)"
+    tier: 3
+    description: "Northgrid's day-ahead quantile forecasts of the energy of station pump-02, MWh"
+    source: supplier
+    series: pump-02
+    forecasts:
+      quantiles: {"0.05": q05, "0.25": q25, "0.5": q50, "0.75": q75, "0.95": q95}
+      issued: issued_at
+      period: 7
+    windows: {audit: 56}
+  - id: supplier-pump-03
+    owner: "Energy trading (supplier forecasts, T. Lindqvist)"
+    tier: 3
+    description: "Northgrid's day-ahead quantile forecasts of the energy of station pump-03, MWh"
+    source: supplier
+    series: pump-03
+    forecasts:
+      quantiles: {"0.05": q05, "0.25": q25, "0.5": q50, "0.75": q75, "0.95": q95}
+      issued: issued_at
+      period: 7
+    windows: {audit: 56}
+  - id: notebook-leak-01
+    owner: "Network operations (K. Mbeki)"
+    tier: 2
+    description: "The network notebook's one-step forecasts of sector 1's leakage index"
+    source: notebook
+    series: leak-01
+    forecasts: {mean: fc_mean, scale: 0.5}
+    windows: {audit: 56}
+"""
 
 
 def _registry_text(entries: list[dict]) -> str:
@@ -162,6 +260,20 @@ def _registry_text(entries: list[dict]) -> str:
             time: date
             value: reading
             frequency: D
+          supplier:
+            uri: data/supplier.parquet
+            key: asset
+            time: date
+            value: energy_mwh
+            forecasts: [q05, q25, q50, q75, q95, issued_at]
+            frequency: D
+          notebook:
+            uri: data/notebook.parquet
+            key: sector
+            time: date
+            value: leakage
+            forecasts: [fc_mean]
+            frequency: D
         models:
         """
     )
@@ -179,7 +291,7 @@ def _registry_text(entries: list[dict]) -> str:
         lines.append(f"    noise: {noise['law']}\n" if len(noise) == 1 else f"    noise: {{{', '.join(f'{k}: {_yaml_value(v)}' for k, v in noise.items())}}}\n")
         lines.append(f"    windows: {{fit: {e['fit']}, audit: {e['audit']}}}\n")
         lines.append(f"    last_validated: {e['last_validated']}\n")
-    return "".join(lines)
+    return "".join(lines) + OUTSIDE_ENTRIES
 
 
 def _yaml_value(v) -> str:
@@ -241,17 +353,21 @@ def write_demo(out: str | pathlib.Path) -> dict:
         table = pa.table({"district": cols["district"], "date": pa.array(np.array(cols["date"], dtype="datetime64[D]")), "demand_ml": cols["demand_ml"], "temp_c": cols["temp_c"]})
         pq.write_table(table, data / "demand" / f"zone={zone}.parquet")
     net = {"asset": [], "date": [], "reading": []}
+    stations: dict[str, tuple] = {}
     for j in range(1, 7):
-        y, spec = _station(j, n, rng)
+        y, spec, params = _station(j, n, rng)
         name = f"pump-{j:02d}"
+        stations[name] = (y, spec, params)
         net["asset"] += [name] * n
         net["date"] += list(days)
         net["reading"] += list(y)
         entries.append({"id": f"energy-{name}", "owner": "Network operations (K. Mbeki)", "tier": 3, "description": f"Daily pumping energy of station {name}, MWh",
                         "source": "network", "series": name, "exogenous": [], "spec": spec, "noise": {"law": "normal"}, "fit": 365, "audit": 56, "last_validated": "2025-11-01"})
         fits[f"energy-{name}"] = (days, y, {})
+    leaks = {}
     for k in (1, 2):
         y, spec = _leakage(n, rng)
+        leaks[k] = y
         name = f"leak-{k:02d}"
         net["asset"] += [name] * n
         net["date"] += list(days)
@@ -262,6 +378,11 @@ def write_demo(out: str | pathlib.Path) -> dict:
     pq.write_table(pa.table({"asset": net["asset"], "date": pa.array(np.array(net["date"], dtype="datetime64[D]")), "reading": net["reading"]}), data / "network.parquet")
     legacy = {"id": "demand-d-40-legacy", "owner": "West zone forecasting (S. Iwu)", "tier": 3, "description": "Retired district kept in the registry by mistake",
               "source": "demand", "series": "d-40", "exogenous": ["temp_c"], "spec": dict(SEASONAL), "noise": {"law": "gaussian"}, "fit": 365, "audit": 56, "last_validated": "2024-05-01"}
+    supplier = _supplier(days, stations)
+    pq.write_table(pa.table({**supplier, "date": pa.array(np.array(supplier["date"], dtype="datetime64[D]")),
+                             "issued_at": pa.array(np.array(supplier["issued_at"], dtype="datetime64[s]"))}), data / "supplier.parquet")
+    notebook = _notebook(days, leaks[1])
+    pq.write_table(pa.table({**notebook, "date": pa.array(np.array(notebook["date"], dtype="datetime64[D]"))}), data / "notebook.parquet")
     registry = out / "registry.yaml"
     registry.write_text(_registry_text(entries + [legacy]))
     archive = out / "archive"
