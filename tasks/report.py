@@ -41,7 +41,7 @@ from fitaudit.core.vocabulary import ADJUSTMENT_LABELS, VERDICTS
 
 from .registry import SAFE_ID
 from .registry.schema import DaysToAct
-from .results import SEVERITY
+from .results import SEVERITY, is_forecast_record
 
 __all__ = ["STATUS", "HEAT_BINS", "CAUTION", "environment", "render_run", "page_context", "render_model_page", "render_index_page", "render_method_page", "render_archive_index", "record_action", "days_to_act"]
 
@@ -716,13 +716,16 @@ def record_action(m: Mapping[str, Any], policy: Mapping[str, Any] | None, as_of:
 
     The deadline is the as-of date plus the policy's days to act for the model's tier; a refit
     whose check passes with a caution (narrow, or strong reported-only diagnostics) asks for a
-    review before approval.
+    review before approval.  Forecasts made elsewhere (:data:`FORECAST_ACTIONS`) are re-estimated by
+    their owner: fitaudit refitted nothing to approve.
     """
     policy = policy or {}
     action = owner_action(
         m["verdict"], escalated=bool(m.get("escalated")), as_of=as_of, days=days_to_act(policy).for_tier(m.get("tier")),
         refit_policy=str(policy.get("refit_policy", "approval")),
     )
+    if is_forecast_record(m) and m["verdict"] in FORECAST_ACTIONS:  # forecasts made elsewhere: nothing was refitted
+        return {**action, "action": FORECAST_ACTIONS[m["verdict"]]}
     if m["verdict"] == "refit" and any(str(r).startswith(CAUTION_PREFIX) for r in m.get("reasons") or ()):
         action["action"] += " The refit check passes with a caution (see the reasons): review it before approving."
     return action
@@ -1317,8 +1320,6 @@ def _forecast_view(m: Mapping[str, Any], view: dict) -> dict | None:
             rows.append({**r, "cells": cells})
         view["audit"]["check_rows"] = rows
         view["audit"]["checks"] = [c for c in (_check_view(production, "production", _FORECAST_CHECK),) if c]
-    if view.get("action") and m.get("verdict") in FORECAST_ACTIONS:  # never "promote the refit": nothing was refitted
-        view["action"] = {**view["action"], "action": FORECAST_ACTIONS[m["verdict"]]}
     return {
         "note": NOT_REFITTED_PAGE,
         "statement": _kv_rows(stated),

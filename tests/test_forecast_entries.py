@@ -456,6 +456,18 @@ def test_the_model_page_says_the_model_was_not_refitted(run):
     assert NOT_REFITTED_PAGE not in fitted and '<h2 id="checks-h">Production check and refit check</h2>' in fitted
 
 
+def test_the_owner_of_failing_forecasts_is_asked_to_re_estimate(run):
+    from fitaudit.tasks.report import FORECAST_ACTIONS, record_action
+
+    policy = run["doc"]["run"]["policy"]
+    for verdict in ("refit", "respecify"):
+        action = record_action(dict(run["by_id"]["fq-good"], verdict=verdict), policy, AS_OF.isoformat())
+        assert action["action"] == FORECAST_ACTIONS[verdict] and action["due"] == "2026-12-14"  # tier 2: 14 days by default
+    assert "Re-estimate the model that issues these forecasts" in FORECAST_ACTIONS["refit"]
+    fitted = record_action(dict(run["by_id"]["fit-good"], verdict="refit"), policy, AS_OF.isoformat())
+    assert "approve their promotion" in fitted["action"]  # a fitted model's refit is promoted, as before
+
+
 def test_verdict_events_name_the_entry_kind(run, monkeypatch):
     from fitaudit.flows.deploy import refit_trigger
     from fitaudit.tasks import events
@@ -485,3 +497,71 @@ def test_refits_refuse_forecast_entries(run):
     refuse_forecast_entries(reg, ["fit-good"])  # fitted models go ahead
     recs = [dict(light_record(m), verdict="refit") for m in run["doc"]["models"]]
     assert refit_targets(recs) == ["fit-good"]
+
+
+# ------------------------------------------------------------------------------------------
+# the flows, on the demo: forecasts from outside beside fitted models
+# ------------------------------------------------------------------------------------------
+FLOW_MODELS = ["supplier-pump-01", "supplier-pump-02", "notebook-leak-01", "energy-pump-01", "demand-d-31"]
+
+
+@pytest.fixture(scope="module")
+def flow_run(prefect_server, tmp_path_factory):
+    from fitaudit.flows.audit import audit_flow
+    from fitaudit.tasks import events
+    from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
+
+    demo = write_demo(tmp_path_factory.mktemp("forecast-flow"))
+    sent = []
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(events, "emit_event", lambda **kw: sent.append(kw))
+        run = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=demo["archive"], models=FLOW_MODELS,
+                         batch_size=2, trigger_refits=True, search_candidates=True)
+    return {"demo": demo, "run": run, "events": sent, "folder": pathlib.Path(run["report"]).parent}
+
+
+@pytest.mark.server
+def test_the_audit_flow_publishes_forecast_entries_like_any_model(flow_run):
+    from fitaudit.tasks.archive import verify_archive
+    from fitaudit.tasks.frames import load_results
+
+    folder, run = flow_run["folder"], flow_run["run"]
+    doc = json.loads((folder / "results.json").read_text())
+    verdicts = {m["id"]: m["verdict"] for m in doc["models"]}
+    # the demo plants pump-02's narrow quantiles (refit: the owner re-estimates) and d-31's missing reading
+    assert verdicts == {"supplier-pump-01": "pass", "supplier-pump-02": "refit", "notebook-leak-01": "pass",
+                        "energy-pump-01": "pass", "demand-d-31": "error"}
+    rec = next(m for m in doc["models"] if m["id"] == "supplier-pump-02")
+    assert rec["audit"]["refit"] is None and rec["audit"]["accuracy"]["crps_skill"] is not None and rec["candidates"] is None
+    assert run["refits"] is None  # --refit leaves forecast entries to their owners (and no fitted model needed one)
+    frames = load_results(folder)
+    checks = frames.checks.query("model_id == 'supplier-pump-02'")
+    assert list(checks["check"]) == ["production"]  # the forecast check; no refit check was attempted
+    assert frames.verdicts.set_index("model_id").loc["supplier-pump-02", "verdict"] == "refit"
+    page = (folder / "models" / "supplier-pump-02.html").read_text()
+    assert "This model was not refitted by fitaudit; its forecasts were audited against their stated uncertainty." in page
+    assert "Check the refitted parameters" not in page  # nothing was refitted, so nothing is to be promoted
+    parquet = {r["model_id"]: r for r in pq.read_table(folder / "results.parquet").to_pylist()}
+    assert parquet["supplier-pump-02"]["verdict"] == "refit" and parquet["supplier-pump-02"]["refit_status"] is None
+    assert not [p for p in verify_archive(run["archive"]) if not p.is_note]  # in the archive's chain like any run
+    kinds = {e["payload"]["model_id"]: (e["event"], e["resource"]["fitaudit.entry"]) for e in flow_run["events"] if "model_id" in e["payload"]}
+    assert kinds["supplier-pump-02"] == ("fitaudit.model.refit", "forecasts")
+    assert kinds["energy-pump-01"] == ("fitaudit.model.pass", "model")
+
+
+@pytest.mark.server
+def test_fitaudit_refit_refuses_a_forecast_entry(flow_run, capsys):
+    from fitaudit.flows.cli import EXIT_ERROR, main
+    from fitaudit.flows.refit import refit_flow
+    from fitaudit.tasks.demo import DEMO_AS_OF
+    from fitaudit.tasks.refit import NotRefittableError
+
+    demo = flow_run["demo"]
+    runs = sorted((pathlib.Path(demo["archive"]) / "runs").rglob("manifest.json"))
+    with pytest.raises(NotRefittableError, match=r"'supplier-pump-02' is a forecast entry"):
+        refit_flow(registry=demo["registry"], model_ids=["supplier-pump-02"], archive=demo["archive"], as_of=DEMO_AS_OF)
+    code = main(["refit", demo["registry"], "--model", "supplier-pump-02", "--archive", demo["archive"], "--as-of", DEMO_AS_OF.isoformat()])
+    err = capsys.readouterr().err
+    assert code == EXIT_ERROR and "fitaudit refit:" in err and "'supplier-pump-02' is a forecast entry" in err
+    assert "the owner should re-estimate the model that issues them" in err
+    assert sorted((pathlib.Path(demo["archive"]) / "runs").rglob("manifest.json")) == runs  # nothing was written

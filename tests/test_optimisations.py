@@ -53,10 +53,12 @@ REFERENCE_SVG_MACRO = """{% macro svg(c) %}
 </svg>
 {% endmacro %}"""
 
-#: Demo models covering two sources, every verdict, smoothing, threshold AR and a rejected entry.
+#: Demo models covering four sources, every verdict, smoothing, threshold AR, a rejected entry and
+#: forecasts made elsewhere (quantiles failing, a mean with a fixed scale passing).
 DEMO_SUBSET = [
     "demand-d-02", "demand-d-03", "demand-d-07", "demand-d-11", "demand-d-13", "demand-d-19", "demand-d-22",
     "demand-d-25", "demand-d-31", "demand-d-32", "demand-d-40-legacy", "energy-pump-01", "energy-pump-02", "leakage-leak-01",
+    "supplier-pump-02", "notebook-leak-01",
 ]
 
 
@@ -196,6 +198,7 @@ def _reference_run(demo: dict, registry, archive: pathlib.Path, work: pathlib.Pa
         finalize,
         records,
         rejected_outcome,
+        wants_candidates,
         with_candidates,
     )
     from fitaudit.tasks.batches import stage_inputs
@@ -208,7 +211,7 @@ def _reference_run(demo: dict, registry, archive: pathlib.Path, work: pathlib.Pa
     outcomes = [o for b in staged.batches for o in audit_batch(b.path, registry.policy, cache)]
     outcomes += [rejected_outcome(r) for r in registry.rejected if r.id in DEMO_SUBSET]
     final = finalize(outcomes, registry.policy)
-    todo = {o.model_id for o in final if o.verdict == "respecify"}
+    todo = {o.model_id for o in final if wants_candidates(o)}
     found = {}
     for b in staged.batches:
         if todo.intersection(b.model_ids):
