@@ -469,7 +469,6 @@ def test_the_owner_of_failing_forecasts_is_asked_to_re_estimate(run):
 
 
 def test_verdict_events_name_the_entry_kind(run, monkeypatch):
-    from fitaudit.flows.deploy import refit_trigger
     from fitaudit.tasks import events
     from fitaudit.tasks.results import light_record
 
@@ -480,11 +479,11 @@ def test_verdict_events_name_the_entry_kind(run, monkeypatch):
     kinds = {e["payload"]["model_id"]: e["resource"][events.ENTRY_LABEL] for e in sent}
     assert kinds["fq-good"] == "forecasts" and kinds["fit-good"] == "model"
     assert all(e["payload"]["entry"] == kinds[e["payload"]["model_id"]] for e in sent)
-    # the refit deployment listens to refit events of models fitaudit fits only
-    from prefect.events.schemas.events import Resource
+    # an automation can tell them apart: Prefect matches the label like any resource label
+    from prefect.events.schemas.events import Resource, ResourceSpecification
 
-    match = refit_trigger("r.yaml", None).match
-    assert [match.matches(Resource(e["resource"])) for e in sent if e["payload"]["model_id"] in ("fit-good", "fq-good")] == [True, False]
+    fitted_only = ResourceSpecification({"prefect.resource.id": "fitaudit.model.*", events.ENTRY_LABEL: "model"})
+    assert [fitted_only.matches(Resource(e["resource"])) for e in sent if e["payload"]["model_id"] in ("fit-good", "fq-good")] == [True, False]
 
 
 def test_refits_refuse_forecast_entries(run):
