@@ -203,8 +203,11 @@ def audit_batch(path: str, policy: Policy, cache: CalibrationCache | None = None
     return audit_inputs(read_batch(path), policy, cache, time_limit_s)
 
 
-#: CheckResult fields that only the records and pages need (the fleet rules use the others).
-_CHECK_DETAIL = {"map": None, "critical_grid": None, "scaled_grid": None, "plots": {}, "members": {}, "counts": (), "mcleod_li": {}, "calibration": {}, "window": {}}
+#: CheckResult fields that only the records and pages need (the fleet rules use the others: the
+#: reasons they rewrite name the classical members, McLeod-Li, the simulation's floor and, for a
+#: forecast audit, the window's length, so ``members``, ``mcleod_li``, ``calibration`` and
+#: ``window`` stay).
+_CHECK_DETAIL = {"map": None, "critical_grid": None, "scaled_grid": None, "plots": {}, "counts": ()}
 
 
 def spill_path(batch_path: str) -> str:
@@ -217,8 +220,9 @@ def light_outcome(outcome: Outcome) -> Outcome:
     (:func:`finalize`), the candidate search and the run's timings, at a fraction of the memory.
 
     Kept: the id, verdict, reasons, history, timings and, of the result, every number the verdict
-    is decided from.  Dropped: the entry's other fields, lineage, settings, and the checks' maps,
-    grids, plots, member statistics and counts, the change location and the fitted parameters.
+    is decided from and every figure its reasons quote.  Dropped: the entry's other fields,
+    lineage, settings, and the checks' maps, grids, plots and counts, the change location and the
+    fitted parameters.
     :func:`restore_outcomes` puts them back.
     """
     res = outcome.result

@@ -376,6 +376,9 @@ def test_the_stated_columns_reach_the_core_audit_aligned_with_the_actuals(run):
         assert record["accuracy"] == json.loads(json.dumps(direct.to_dict()["accuracy"]))
         assert record["production"]["p_distribution"] == direct.production.p_distribution
         assert record["refit"] is None and record["spec"]["family"] == "forecasts"
+        # the fleet rules re-decide the verdict on the light outcome: its reasons still speak of the whole window
+        assert direct.reasons[0].split(":")[0] in run["by_id"][mid]["reasons"][0], (direct.reasons[0], run["by_id"][mid]["reasons"][0])
+        assert f"the {entry.audit_window} actuals of the audit window" in run["by_id"][mid]["reasons"][0]
     counts = run["by_id"]["fc-counts"]["audit"]
     assert counts["spec"]["statement"] == "mean-count" and counts["production"]["status"] == "ok"
 
