@@ -322,7 +322,8 @@ def stage_inputs(
                 data = data or {}
             metas, arrays = [], {}
             for i, entry in enumerate(chunk):
-                meta, y, t, exog = _model_input(entry, data.get(entry.series), source_errors.get(source_name), fp, archive, source.frequency, snapshot)
+                meta, y, t, exog = _model_input(entry, data.get(entry.series), source_errors.get(source_name), fp, archive, source.frequency, snapshot,
+                                                holidays=source.holidays)
                 meta["history"] = [dict(h) for h in histories.get(entry.id, ())]
                 arrays[f"{i}/y"] = y
                 arrays[f"{i}/t"] = t
@@ -338,7 +339,8 @@ def stage_inputs(
     return StagedRun(tuple(batches), fingerprints, source_errors, snapshot.to_dict() if snapshot is not None else {})
 
 
-def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive, frequency: str, snapshot=None) -> tuple[dict, np.ndarray, np.ndarray, dict]:
+def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive, frequency: str, snapshot=None,
+                 holidays: tuple = ()) -> tuple[dict, np.ndarray, np.ndarray, dict]:
     """Cut one model's fit window and collect its problems.
 
     The reader validated the whole span it loaded; when it found problems, the rows of the model's
@@ -367,7 +369,8 @@ def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive
         kept = [p for p in found if p.kind not in ROW_KINDS]  # missing or mistyped columns, time-zone mix, rows without time
         flagged = {p.column for p in kept if p.column is not None}
         window = {c: v for c, v in {entry.value: y, **exog}.items() if c not in flagged}
-        found = kept + list(series_problems(entry.series, t, window, frequency, source=entry.source, exogenous=tuple(entry.exogenous)))
+        found = kept + list(series_problems(entry.series, t, window, frequency, source=entry.source, exogenous=tuple(entry.exogenous),
+                                                holidays=holidays))
     short = series.length_problem(entry.audit_window if stated else entry.staged_window)
     if short is not None and not any(p.severity == "error" for p in found):
         found.append(short)

@@ -45,7 +45,7 @@ import pyarrow.parquet as pq
 from fitaudit.core.exceptions import FitauditError, InputError
 
 from ._io import canonical_json, sha256_bytes, sha256_file
-from .frequencies import CALENDAR_STEPS, FIXED_STEPS, FREQUENCIES, SUBDAILY
+from .frequencies import FIXED_STEPS, FREQUENCIES, SUBDAILY, calendar_offset, canonical_frequency
 from .registry import SourceEntry
 
 __all__ = [
@@ -752,7 +752,8 @@ def _series_from_chunks(src, key, parts, columns, exogenous, start, end, missing
         data.pop(c, None)
     flagged = {p.column for p in problems if p.column is not None}  # rows already explained
     clean = {c: v for c, v in data.items() if c not in flagged}
-    problems += series_problems(key, time, clean, src.frequency, source=src.name, exogenous=exogenous)
+    problems += series_problems(key, time, clean, src.frequency, source=src.name, exogenous=exogenous,
+                                holidays=src.holidays)
     return SeriesData(src.name, key, time, data, tuple(problems))
 
 
@@ -808,6 +809,7 @@ def series_problems(
     source: str,
     min_length: int = 0,
     exogenous: Iterable[str] = (),
+    holidays: Iterable[str] = (),
 ) -> list[SeriesProblem]:
     """Validate one series; every problem names the rows concerned and the fix.
 
@@ -820,13 +822,16 @@ def series_problems(
     columns : mapping of str to ndarray
         Target and exogenous values aligned with ``time``.
     frequency : str
-        A code of :data:`fitaudit.tasks.frequencies.FREQUENCIES`.
+        A code of :data:`fitaudit.tasks.frequencies.FREQUENCIES` (or an alias of
+        :data:`~fitaudit.tasks.frequencies.ALIASES`).
     source : str
         Source name (for messages).
     min_length : int
         Fewest observations a model needs; fewer gives an ``insufficient`` problem.
     exogenous : iterable of str
         Columns that are exogenous inputs (their missing values are reported as such).
+    holidays : iterable of str
+        ISO dates business days (``B``) skip, as the source declares them.
 
     Returns
     -------
@@ -834,6 +839,7 @@ def series_problems(
         Kinds: ``too-short`` (insufficient), ``duplicate-time``, ``unsorted``, ``off-grid``,
         ``gap``, ``non-finite``, ``missing-exogenous`` (errors).
     """
+    frequency = canonical_frequency(frequency)
     if frequency not in FREQUENCIES:
         raise InputError(f"frequency {frequency!r} is not one of {_listing(FREQUENCIES)}")
     time = np.asarray(time).astype(_NS)
@@ -842,7 +848,7 @@ def series_problems(
     short = _too_short(key, source, time.size, min_length)
     if short is not None:
         problems.append(short)
-    checks = (_duplicates(time), _unsorted(time), *_grid_problems(time, frequency))
+    checks = (_duplicates(time), _unsorted(time), *_grid_problems(time, frequency, tuple(holidays)))
     problems += [SeriesProblem(key, kind, "error", prefix + message) for kind, message in checks if message]
     exogenous = set(exogenous)
     for name, values in columns.items():
@@ -892,13 +898,15 @@ def _unsorted(time: np.ndarray) -> tuple[str, str]:
     )
 
 
-def _grid_problems(time: np.ndarray, frequency: str) -> list[tuple[str, str]]:
+def _grid_problems(time: np.ndarray, frequency: str, holidays: tuple = ()) -> list[tuple[str, str]]:
     """Off-grid timestamps and gaps against the declared frequency (on the sorted distinct times)."""
     t = np.unique(time[~np.isnat(time)])
     if t.size < 2:
         return []
-    index, on_grid, to_time = _grid_index(t, frequency)
-    name = f"frequency {frequency!r} ({FREQUENCIES[frequency]})"
+    index, on_grid, to_time = _grid_index(t, frequency, holidays)
+    name = f"frequency {frequency!r} ({FREQUENCIES[frequency]}" + (
+        f"; {len(holidays)} holiday(s) declared)" if holidays else ")"
+    )
     out = []
     off = t[~on_grid]
     if off.size:
@@ -938,7 +946,7 @@ def _grid_problems(time: np.ndarray, frequency: str) -> list[tuple[str, str]]:
     return out
 
 
-def _grid_index(t: np.ndarray, frequency: str):
+def _grid_index(t: np.ndarray, frequency: str, holidays: tuple = ()):
     """(grid position of each time, on-grid mask, function from positions back to times)."""
     if frequency in FIXED_STEPS:
         step = FIXED_STEPS[frequency].astype("timedelta64[ns]").astype(np.int64)
@@ -953,30 +961,22 @@ def _grid_index(t: np.ndarray, frequency: str):
             return (base + positions.astype(np.int64) * step).astype(_NS)
 
         return index, on_grid, to_time
-    months_per_step, side = CALENDAR_STEPS[frequency]
-    months = t.astype("datetime64[M]")
-    month_number = months.astype(np.int64)  # months since 1970-01
-    anchors = _month_anchor(months, side)
-    on_grid = (t == anchors) & (
-        (month_number % 12) % months_per_step == (0 if side == "start" else months_per_step - 1)
-    )
-    index = month_number // months_per_step
+    # a calendar: pandas' own grid (business days with holidays, anchored weeks, month, quarter and
+    # year starts or ends) from the first grid date on or after the first timestamp to the last
+    import pandas as pd
+
+    offset = calendar_offset(frequency, holidays)
+    first = offset.rollforward(pd.Timestamp(t[0]).normalize())
+    grid = pd.date_range(first, pd.Timestamp(t[-1]), freq=offset).as_unit("ns").to_numpy().astype(_NS)
+    if not grid.size:
+        return np.zeros(t.size, dtype=np.int64), np.zeros(t.size, dtype=bool), lambda positions: grid[positions]
+    index = np.searchsorted(grid, t)
+    on_grid = grid[np.minimum(index, grid.size - 1)] == t
 
     def to_time(positions):
-        return _month_anchor(
-            (positions.astype(np.int64) * months_per_step + (0 if side == "start" else months_per_step - 1)).astype(
-                "datetime64[M]"
-            ),
-            side,
-        )
+        return grid[positions.astype(np.int64)]
 
     return index, on_grid, to_time
-
-
-def _month_anchor(months: np.ndarray, side: str) -> np.ndarray:
-    if side == "start":
-        return months.astype(_NS)
-    return ((months + 1).astype("datetime64[D]") - np.timedelta64(1, "D")).astype(_NS)
 
 
 def _non_finite(time: np.ndarray, values: np.ndarray, name: str, exogenous: bool) -> str:

@@ -31,7 +31,7 @@ from fitaudit.tasks.extracts import (
     read_series,
     series_problems,
 )
-from fitaudit.tasks.frequencies import FREQUENCIES, FREQUENCY_DAYS, SUBDAILY
+from fitaudit.tasks.frequencies import ALIASES, FREQUENCIES, FREQUENCY_DAYS, SUBDAILY
 from fitaudit.tasks.registry import SourceEntry
 
 SOURCE = SourceEntry(
@@ -465,12 +465,15 @@ def test_too_short():
     assert data.length_problem(758) == problem and data.length_problem(20) is None
 
 
-_PANDAS_FREQ = {"15min": "15min", "30min": "30min", "H": "h", "D": "D", "W": "7D", "MS": "MS", "M": "ME", "QS": "QS-JAN", "Q": "QE-DEC"}
+# The reference grid of each code: pandas' own offset (pandas 3.1.1 in the venv these checks were
+# written with; the spellings are those of pandas >= 2.2).  "W" is every 7 days on any weekday, so its
+# reference is "7D"; every other code is pandas' alias of the same name.
+_PANDAS_FREQ = {code: ("7D" if code == "W" else code) for code in FREQUENCIES}
 
 
 @pytest.mark.parametrize("frequency", list(FREQUENCIES))
 def test_grid_of_every_frequency_against_pandas(frequency, rng):
-    # source: pandas.date_range builds the reference calendar grid of each frequency
+    # source: pandas.date_range (pandas 3.1.1) builds the reference calendar grid of each frequency
     grid = pd.date_range("2019-12-30", periods=48, freq=_PANDAS_FREQ[frequency]).to_numpy()
     assert series_problems("k", grid, {}, frequency, source="s") == []
     dropped = np.sort(rng.choice(np.arange(1, 47), size=4, replace=False))
@@ -484,15 +487,51 @@ def test_grid_of_every_frequency_against_pandas(frequency, rng):
 
 @pytest.mark.parametrize("frequency", list(FREQUENCIES))
 def test_frequency_days_bound_every_period(frequency):
-    # source: pandas.date_range gives the calendar periods of each frequency (leap years included)
+    # source: pandas.date_range (pandas 3.1.1) gives the calendar periods of each frequency (leap years included)
     grid = pd.date_range("1999-12-01", "2031-01-31", freq=_PANDAS_FREQ[frequency])[:20_000]
-    longest = (grid[1:] - grid[:-1]).max() / pd.Timedelta(days=1)
-    assert FREQUENCY_DAYS[frequency] == longest  # the bound is tight: the longest month is 31 days, quarter 92
+    gaps = (grid[1:] - grid[:-1]) / pd.Timedelta(days=1)
+    longest = gaps.max()
+    if frequency == "B":
+        # a business day's period is 1 or 3 days; the bound is per observation over a run: 7 days per
+        # 5 observations, with room for holidays (10 a year: 1.4 * 260 / 250 = 1.456)  # common practice
+        assert longest == 3 and 7 / 5 * 260 / 250 < FREQUENCY_DAYS[frequency] < 3
+    else:
+        assert FREQUENCY_DAYS[frequency] == longest  # the bound is tight: the longest month is 31 days, quarter 92
     assert (frequency in SUBDAILY) == (longest < 1)
 
 
-@pytest.mark.parametrize("frequency, bad", [("MS", "2020-03-15"), ("M", "2020-03-01"), ("QS", "2020-02-01"), ("Q", "2020-05-31"),
-                                            ("W", "2020-01-08T06:00")])
+@pytest.mark.parametrize("old, new", [("H", "h"), ("M", "ME"), ("Q", "QE"), ("A", "YE"), ("AS", "YS"), ("15T", "15min")])
+def test_old_pandas_spellings_are_aliases(old, new):
+    # source: pandas 2.2 release notes deprecate H, T, M, Q, A in favour of h, min, ME, QE, YE
+    assert ALIASES[old] == new
+    grid = pd.date_range("2019-12-30", periods=30, freq=_PANDAS_FREQ[new]).to_numpy()
+    assert series_problems("k", grid, {}, old, source="s") == []
+    (gap,) = series_problems("k", np.delete(grid, [5]), {}, old, source="s")
+    assert gap.kind == "gap" and f"frequency {new!r}" in gap.message
+
+
+def test_business_days_skip_weekends_and_holidays():
+    # source: pandas.bdate_range (pandas 3.1.1) with the same holidays
+    holidays = ("2024-12-25", "2024-12-26", "2025-01-01")
+    grid = pd.bdate_range("2024-12-02", "2025-01-31", freq="C", holidays=list(holidays)).to_numpy()
+    assert not np.isin(pd.to_datetime(list(holidays)).to_numpy(), grid).any()
+    assert series_problems("k", grid, {}, "B", source="s", holidays=holidays) == []
+    # without the holidays declared, the three holidays are gaps (and only they)
+    (gap,) = series_problems("k", grid, {}, "B", source="s")
+    assert gap.kind == "gap" and "3 timestamp(s) missing" in gap.message
+    assert all(day in gap.message for day in holidays)
+    # a weekend day is off the business-day grid
+    weekend = np.sort(np.append(grid, np.datetime64("2024-12-07", "ns")))  # a Saturday  # common practice
+    (off,) = series_problems("k", weekend, {}, "B", source="s", holidays=holidays)
+    assert off.kind == "off-grid" and "2024-12-07" in off.message
+    # a weekday-only series declared daily reports every weekend as a gap
+    (daily_gap,) = series_problems("k", grid[:10], {}, "D", source="s")
+    assert daily_gap.kind == "gap"
+
+
+@pytest.mark.parametrize("frequency, bad", [("MS", "2020-03-15"), ("ME", "2020-03-01"), ("QS", "2020-02-01"), ("QE", "2020-05-31"),
+                                            ("W", "2020-01-08T06:00"), ("W-MON", "2020-01-08"), ("YS", "2021-06-01"),
+                                            ("YE", "2021-01-01"), ("B", "2020-01-04")])
 def test_calendar_anchor_is_checked(frequency, bad):
     grid = pd.date_range("2019-12-30", periods=12, freq=_PANDAS_FREQ[frequency]).to_numpy()
     times = np.sort(np.append(grid, np.datetime64(bad, "ns")))

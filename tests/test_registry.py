@@ -178,7 +178,41 @@ def test_safe_id_pattern():
 
 
 def test_frequency_set_is_documented():
-    assert set(FREQUENCIES) == {"15min", "30min", "H", "D", "W", "MS", "M", "QS", "Q"}
+    # source: pandas >= 2.2 offset aliases (h, min, B, W-MON ... W-SUN, MS, ME, QS, QE, YS, YE)
+    weekly = {f"W-{d}" for d in ("MON", "TUE", "WED", "THU", "FRI", "SAT", "SUN")}
+    assert set(FREQUENCIES) == {"15min", "30min", "h", "D", "B", "W", "MS", "ME", "QS", "QE", "YS", "YE"} | weekly
+
+
+@pytest.mark.parametrize("old, new", [("H", "h"), ("M", "ME"), ("Q", "QE"), ("A", "YE"), ("YS", "YS"), ("W-FRI", "W-FRI")])
+def test_old_frequency_spellings_read_as_todays(old, new):
+    # source: pandas 2.2 release notes (H, M, Q, A deprecated for h, ME, QE, YE)
+    reg = parse_registry(_edit("frequency: D", f"frequency: {old}"), FILE)
+    assert reg.source_problems == ()
+    assert reg.sources["demand"].frequency == new
+    assert reg.sources["demand"].to_dict()["frequency"] == new
+
+
+def test_business_day_holidays():
+    text = _edit("frequency: D", "frequency: B\n    holidays: [2026-12-25, 2026-01-01, '2026-12-26']")
+    reg = parse_registry(text, FILE)
+    assert reg.source_problems == ()
+    assert reg.sources["demand"].holidays == ("2026-01-01", "2026-12-25", "2026-12-26")
+    assert reg.sources["demand"].to_dict()["holidays"] == ["2026-01-01", "2026-12-25", "2026-12-26"]
+    assert "holidays" not in parse_registry(VALID, FILE).sources["demand"].to_dict()
+
+
+@pytest.mark.parametrize("frequency, holidays, message", [
+    ("D", "[2026-12-25]", r"holidays apply to business days \(frequency B\) only, not to 'D'"),
+    ("B", "[2026-13-01]", r"expected a date like 2026-12-25"),
+    ("B", "2026-12-25", r"expected a list of dates"),
+])
+def test_bad_holidays_are_source_problems(frequency, holidays, message):
+    text = _edit("frequency: D", f"frequency: {frequency}\n    holidays: {holidays}")
+    reg = parse_registry(text, FILE)
+    (problem,) = reg.source_problems
+    assert problem.field.startswith("sources.demand.holidays"), str(problem)
+    assert re.search(message, problem.message), str(problem)
+    assert problem.line == _line(text, "holidays:")
 
 
 # ------------------------------------------------------------------------------------------

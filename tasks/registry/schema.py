@@ -60,7 +60,7 @@ from fitaudit.core.settings import AuditSettings
 from fitaudit.core.vocabulary import PARTITION_KINDS, SETTING_BOUNDS
 
 from .._io import json_ready
-from ..frequencies import FREQUENCIES
+from ..frequencies import ALIASES, FREQUENCIES, canonical_frequency
 from .problems import listing, suggest
 
 __all__ = [
@@ -265,6 +265,8 @@ SeriesKey = Annotated[
 IsoDate = Annotated[
     str | None, BeforeValidator(_iso_date, json_schema_input_type=dt.date | None), expect("a date like 2026-06-30")
 ]
+#: A calendar date, kept as ``YYYY-MM-DD``.
+HolidayDate = Annotated[str, BeforeValidator(_iso_date, json_schema_input_type=dt.date), expect("a date like 2026-12-25")]
 PositiveNumber = bounded(Interval(float, 0.0, None, "neither"), "a positive number")
 Tier = bounded(Interval(int, 1, 3))
 Version = Annotated[Literal[1], BeforeValidator(_not_bool), expect("1 (the only registry version this fitaudit reads)")]
@@ -470,8 +472,14 @@ class SourceEntry(Block):
         description="Columns holding forecasts issued elsewhere (means, scales, quantiles, issue times), "
         "one per row of the observation they predict; forecast entries name them.",
     )
-    frequency: choice(tuple(FREQUENCIES)) = Field(
+    frequency: Annotated[choice(tuple(FREQUENCIES)), BeforeValidator(canonical_frequency)] = Field(
         description="; ".join(f"{code}: {meaning}" for code, meaning in FREQUENCIES.items())
+        + "; older pandas spellings are read as today's ("
+        + ", ".join(f"{old} as {new}" for old, new in ALIASES.items())
+        + ")"
+    )
+    holidays: Annotated[tuple[HolidayDate, ...], expect("a list of dates like [2026-12-25, 2026-12-26]")] = Field(
+        (), description="Dates business-day sources (frequency B) have no observation for."
     )
     partitioning: Annotated[
         Literal[PARTITIONINGS] | None, expect(f"one of {listing(PARTITIONINGS)}", PARTITIONINGS)
@@ -504,11 +512,20 @@ class SourceEntry(Block):
                 )
         return columns
 
+    @field_validator("holidays")
+    @classmethod
+    def _holidays_of_business_days(cls, days: tuple, info: ValidationInfo) -> tuple:
+        if days and info.data.get("frequency") not in (None, "B"):
+            raise invalid(f"holidays apply to business days (frequency B) only, not to {info.data['frequency']!r}")
+        return tuple(sorted(set(days)))
+
     def to_dict(self) -> dict:
-        """Plain-Python view (``forecasts`` only when the source declares forecast columns)."""
+        """Plain-Python view (``forecasts`` and ``holidays`` only when the source declares them)."""
         out = super().to_dict()
         if not self.forecasts:
             del out["forecasts"]
+        if not self.holidays:
+            del out["holidays"]
         return out
 
     @model_validator(mode="after")
