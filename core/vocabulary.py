@@ -80,4 +80,5 @@ SETTING_BOUNDS: dict[str, list] = {
     "practical_divergence": [Interval(float, 0.0, None), None],
     "practical_acf": [Interval(float, 0.0, 1.0), None],
     "days_to_act": [Interval(int, 1, 366)],
+    "flow_timeout_minutes": [Interval(int, 1, 10080)],
 }

@@ -2,8 +2,12 @@
 
 Must run before anything imports prefect.  Unless the user configured Prefect (``PREFECT_API_URL``,
 ``PREFECT_HOME`` or ``PREFECT_PROFILE`` set), Prefect's home and database live in ``./.prefect``
-and runs use the embedded (ephemeral) server.  Server-side shutdown noise is silenced with a
-``logging.yml`` derived from Prefect's own default configuration.
+and runs use the embedded (ephemeral) server.  The ``logging.yml`` written to Prefect's home is
+Prefect's own default configuration with three changes: the logs of flow and task runs are kept
+at INFO, so they reach the Prefect API (the UI shows what each run did); the console shows only
+what ``PREFECT_LOGGING_LEVEL`` lets through (WARNING by default: the command prints its own
+progress lines); and the loggers that print errors while Prefect's embedded server shuts down are
+silenced.
 """
 
 from __future__ import annotations
@@ -12,7 +16,7 @@ import importlib.util
 import os
 import pathlib
 
-__all__ = ["configure_prefect", "QUIET_SETTINGS"]
+__all__ = ["configure_prefect", "logging_config", "QUIET_SETTINGS", "RUN_LOG_LEVEL"]
 
 QUIET_SETTINGS = {
     "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
@@ -33,21 +37,38 @@ QUIET_SETTINGS = {
 _SILENCED = ("prefect.server.services.task_run_recorder", "prefect.server.services.telemetry", "sqlalchemy.pool", "docket")
 
 
-def _write_logging_config(home: pathlib.Path) -> pathlib.Path:
-    """Prefect's default logging.yml plus CRITICAL level for the shutdown-noise loggers."""
+#: Loggers of flow and task runs: kept at this level, so that their records reach the Prefect API.
+RUN_LOG_LEVEL = "INFO"
+
+
+def logging_config() -> dict:
+    """Prefect's default logging configuration with fitaudit's changes (see the module's text)."""
     import yaml
 
-    target = home / "logging.yml"
-    if target.exists():
-        return target
     spec = importlib.util.find_spec("prefect")
     base = pathlib.Path(next(iter(spec.submodule_search_locations))) / "logging" / "logging.yml"
     config = yaml.safe_load(base.read_text())
+    loggers = config.setdefault("loggers", {})
+    for name in ("prefect.flow_runs", "prefect.task_runs"):
+        loggers[name] = {**loggers.get(name, {}), "level": RUN_LOG_LEVEL, "handlers": ["api"]}
+    # the console prints what PREFECT_LOGGING_LEVEL lets through; the API handler takes every run record
+    config.setdefault("handlers", {}).setdefault("console", {})["level"] = "${PREFECT_LOGGING_LEVEL}"
     for name in _SILENCED:
-        config.setdefault("loggers", {})[name] = {"level": "CRITICAL"}
+        loggers[name] = {"level": "CRITICAL"}
+    return config
+
+
+def _write_logging_config(home: pathlib.Path) -> pathlib.Path:
+    """Write :func:`logging_config` to ``<home>/logging.yml`` (rewritten when it differs)."""
+    import yaml
+
+    target = home / "logging.yml"
+    text = yaml.safe_dump(logging_config(), sort_keys=False)
+    if target.exists() and target.read_text() == text:
+        return target
     home.mkdir(parents=True, exist_ok=True)
-    tmp = target.with_suffix(".tmp")
-    tmp.write_text(yaml.safe_dump(config, sort_keys=False))
+    tmp = target.with_name(f"logging.yml.{os.getpid()}.tmp")
+    tmp.write_text(text)
     os.replace(tmp, target)
     return target
 

@@ -18,7 +18,7 @@ from prefect.task_runners import ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
 from fitaudit.core.vocabulary import VERDICTS
-from fitaudit.tasks.archive import new_run_id, open_work_folder, recover, require_intact
+from fitaudit.tasks.archive import new_run_id, open_work_folder, read_chain, recover, require_intact
 from fitaudit.tasks.audit import (
     Outcome,
     audit_batch_task,
@@ -96,7 +96,10 @@ def publish_task(archive: str, head: dict, summary: dict, staged: list[StagedRec
     """Write the run folder atomically from the staged records and pages, refresh the archive index."""
     published = publish_staged(archive, head, summary, staged, meta, manifest, run_id=run_id)
     render_archive_index_file(archive)
-    return {"run_id": published.run_id, "path": str(pathlib.Path(archive) / published.path), "manifest_sha256": published.manifest_sha256, "seq": published.seq}
+    entry = read_chain(archive)[published.seq - 1]  # the run's own chain entry: the head it made
+    get_run_logger().info("published run %s: manifest SHA-256 %s; chain head %s (seq %d)", published.run_id, published.manifest_sha256, entry["hash"], published.seq)
+    return {"run_id": published.run_id, "path": str(pathlib.Path(archive) / published.path), "manifest_sha256": published.manifest_sha256,
+            "seq": published.seq, "chain_head": {"hash": entry["hash"], "seq": published.seq}}
 
 
 @task(name="publish-events", cache_policy=NO_CACHE, persist_result=False)
@@ -176,8 +179,21 @@ def _runner_name() -> str:
     return type(getattr(ctx, "task_runner", None)).__name__
 
 
-# one task thread per CPU (at least two): each batch task waits on one local worker process
-@flow(name="fitaudit-audit", persist_result=False, log_prints=False, task_runner=ThreadPoolTaskRunner(max_workers=max(2, default_processes())))
+def _run_name() -> str:
+    """The flow run's name in the Prefect UI: ``audit 2026-11-30 registry.yaml`` (``, 3 models`` for --models)."""
+    from prefect.runtime import flow_run
+
+    params = flow_run.parameters or {}
+    as_of = params.get("as_of") or dt.datetime.now(dt.UTC).date()
+    some = params.get("models")
+    some = f", {len(some)} model{'s' if len(some) != 1 else ''}" if some else ""
+    return f"audit {str(as_of)[:10]} {pathlib.Path(str(params.get('registry'))).name}{some}"
+
+
+# one task thread per CPU (at least two): each batch task waits on one local worker process; the
+# command line and the deployments set the timeout from the policy (flow_timeout_minutes)
+@flow(name="fitaudit-audit", flow_run_name=_run_name, persist_result=False, log_prints=False,
+      task_runner=ThreadPoolTaskRunner(max_workers=max(2, default_processes())))
 def audit_flow(
     registry: str,
     as_of: dt.date | None = None,
@@ -208,8 +224,10 @@ def audit_flow(
     progress : bool
         Print a line to standard error as each batch finishes (the command line turns it on).
     trigger_refits : bool
-        Start the refit flow for models with a ``refit`` or ``respecify`` verdict right away (works
-        on the embedded server); otherwise an automation listening to the events can do it.
+        Start one refit flow run for all models with a ``refit`` or ``respecify`` verdict right away
+        (works on the embedded server; respecify models get their candidates listed, nothing is
+        promoted for them); otherwise the refit deployment's trigger does the same from the
+        ``fitaudit.run.completed`` event (its ``refit_models``).
         Forecast entries are never refitted by fitaudit (their owners re-estimate).
 
     Returns
@@ -339,7 +357,14 @@ def audit_flow(
                 "run %s: %d chain entries were appended while it ran; its page names the head before them (seq %s), its own entry is seq %d",
                 run_id, published["seq"] - extends["chain_seq"] - 1, extends["chain_seq"], published["seq"],
             )
-        run = {"run_id": run_id, "as_of": as_of.isoformat(), "report_path": report, "registry_sha256": reg.sha256}
+        from fitaudit.tasks.refit import refit_targets
+
+        todo = refit_targets(recs)  # refit and respecify verdicts; forecast entries are re-estimated by their owners
+        run = {
+            "run_id": run_id, "as_of": as_of.isoformat(), "report_path": report, "registry_sha256": reg.sha256, "archive": archive,
+            "report_base_url": settings.report_base_url, "policy": head["run"]["policy"], "manifest_sha256": published["manifest_sha256"],
+            "chain_head": published["chain_head"], "refit_models": todo,
+        }
         events_task(quote(recs), summary, run)
         counts = manifest["counts"]
         logger.info("audit %s as of %s: %s; report %s", run_id, as_of, counts, report)
@@ -347,9 +372,7 @@ def audit_flow(
         refits = None
         if trigger_refits:
             from fitaudit.flows.refit import refit_flow
-            from fitaudit.tasks.refit import refit_targets
 
-            todo = refit_targets(recs)  # forecast entries are re-estimated by their owners
             if todo:
                 refits = refit_flow(
                     registry=registry, model_ids=todo, archive=archive, as_of=as_of,
@@ -365,4 +388,7 @@ def audit_flow(
         "counts": counts,
         "timings": {k: round(v, 3) for k, v in timings.items()},
         "refits": refits,
+        "refit_models": todo,
+        "manifest_sha256": published["manifest_sha256"],
+        "chain_head": published["chain_head"],
     }

@@ -220,6 +220,10 @@ def _print_summary(result: dict, quiet: bool) -> None:
     if t:
         print(f"  {t.get('total_s', 0):.1f} s in the flow; {t.get('core_s', 0):.1f} s in the audit computations")
     print(f"report: {result['report']}")
+    refits = result.get("refits")
+    if refits:
+        statuses = ", ".join(f"{r['model_id']} {r['status']}" for r in refits.get("records") or [])
+        print(f"refit run {refits['run_id']} for {len(refits.get('records') or [])} flagged model(s): {statuses}; record {refits['path']}")
 
 
 def _cmd_registry(args) -> int:
@@ -304,13 +308,36 @@ def _cmd_acknowledge(args) -> int:
     return EXIT_OK
 
 
+def _checked_registry(args):
+    """The registry, validated before any flow (or server) starts; None after printing its problems.
+
+    A registry-level problem prints the clean ``file:line`` message and the command exits 2: no
+    flow run is started, so nothing is retried and Prefect prints no traceback.
+    """
+    from fitaudit.tasks.registry import RegistryError, load_registry
+
+    try:
+        return load_registry(args.registry)
+    except RegistryError as exc:
+        print(str(exc), file=sys.stderr)
+        return None
+
+
+def _timeout(flow_fn, registry, scale: int = 1):
+    """The flow with the policy's timeout (``flow_timeout_minutes``, times ``scale`` runs)."""
+    return flow_fn.with_options(timeout_seconds=60.0 * registry.policy.flow_timeout_minutes * max(scale, 1))
+
+
 def _cmd_run(args) -> int:
     from fitaudit.tasks.registry import RegistryError
 
+    reg = _checked_registry(args)
+    if reg is None:
+        return EXIT_USAGE
     with _server_if_needed(args):
         from .audit import audit_flow
 
-        flow_fn = _with_runner(audit_flow, args.dask)
+        flow_fn = _with_runner(_timeout(audit_flow, reg), args.dask)
         try:
             result = flow_fn(
                 registry=args.registry, as_of=args.as_of, archive=args.archive, models=args.models,
@@ -330,11 +357,14 @@ def _cmd_run(args) -> int:
 def _cmd_refit(args) -> int:
     from fitaudit.tasks.registry import RegistryChangedError, RegistryError
 
+    reg = _checked_registry(args)
+    if reg is None:
+        return EXIT_USAGE
     with _server_if_needed(args):
         from .refit import refit_flow
 
         try:
-            result = _with_runner(refit_flow, args.dask)(
+            result = _with_runner(_timeout(refit_flow, reg), args.dask)(
                 registry=args.registry, model_ids=args.models, archive=args.archive, as_of=args.as_of,
                 approve=args.approve, approved_by=args.by, registry_sha256=args.registry_sha256,
             )
@@ -355,10 +385,14 @@ def _cmd_refit(args) -> int:
 
 
 def _cmd_backfill(args) -> int:
+    reg = _checked_registry(args)
+    if reg is None:
+        return EXIT_USAGE
+    dates = max(1, (args.end - args.start).days // max(args.every, 1) + 1)
     with _server_if_needed(args):
         from .backfill import backfill_flow
 
-        results = _with_runner(backfill_flow, args.dask)(registry=args.registry, start=args.start, end=args.end, every_days=args.every, archive=args.archive)
+        results = _with_runner(_timeout(backfill_flow, reg, dates), args.dask)(registry=args.registry, start=args.start, end=args.end, every_days=args.every, archive=args.archive)
     for r in results:
         _print_summary(r, True)
     return EXIT_OK
@@ -373,6 +407,8 @@ def _cmd_serve(args) -> int:
             "or run `fitaudit serve ... --start-server`. A single audit works without a server: `fitaudit run`.",
             file=sys.stderr,
         )
+        return EXIT_USAGE
+    if _checked_registry(args) is None:
         return EXIT_USAGE
     with _server_if_needed(args):
         from .deploy import serve_all
@@ -425,7 +461,7 @@ def _cmd_demo(args) -> int:
     with _server_if_needed(args):
         from .demo import run_demo
 
-        result = run_demo(args.out, fresh=args.fresh, weeks=args.weeks)
+        result = run_demo(args.out, fresh=args.fresh, weeks=args.weeks, progress=lambda line: print(f"fitaudit demo: {line}", file=sys.stderr, flush=True))
     _print_summary(result, False)
     print(f"verify the archive with: fitaudit verify {result['archive']}")
     return EXIT_OK

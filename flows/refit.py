@@ -46,7 +46,17 @@ def refit_events_task(records: list[dict], run_id: str) -> None:
             )
 
 
-@flow(name="fitaudit-refit", persist_result=False, log_prints=False)
+def _run_name() -> str:
+    """The flow run's name in the Prefect UI: ``refit 2026-11-30 registry.yaml, 3 models``."""
+    from prefect.runtime import flow_run
+
+    params = flow_run.parameters or {}
+    as_of = params.get("as_of") or dt.datetime.now(dt.UTC).date()
+    ids = params.get("model_ids") or []
+    return f"refit {str(as_of)[:10]} {pathlib.Path(str(params.get('registry'))).name}, {len(ids)} model{'s' if len(ids) != 1 else ''}"
+
+
+@flow(name="fitaudit-refit", flow_run_name=_run_name, persist_result=False, log_prints=False)
 def refit_flow(
     registry: str,
     model_ids: list[str],

@@ -6,6 +6,7 @@
     archive_root = "/srv/archive"
     batch_size = 100
     processes = 2
+    report_base_url = "https://audit.example.org/fitaudit/"
 """
 
 from __future__ import annotations
@@ -33,6 +34,13 @@ class FitauditSettings(PrefectBaseSettings):
         description="Wall-clock limit per model audit, enforced in the local worker processes (an error verdict when reached); 0 disables.",
     )
     operator: str = Field(default="", description="Operator or service account recorded in each manifest.")
+    report_base_url: str = Field(
+        default="",
+        pattern=r"^(https?://\S+)?$",
+        description="Where the archive is served or synced (http or https, e.g. https://audit.example.org/fitaudit/): report "
+        "links in Prefect's artifacts, events and notifications become <base>/runs/<YYYY>/<run-id>/index.html instead of file:// "
+        "links, which do not open from Prefect's UI. Empty: file:// links.",
+    )
 
 
 def get_settings() -> FitauditSettings:

@@ -109,3 +109,79 @@ def test_run_and_verify_through_the_command(demo, prefect_server, tmp_path):
     manifest.chmod(0o644)
     manifest.write_bytes(manifest.read_bytes().replace(b'"operator"', b'"0perator"', 1))
     assert main(["verify", archive]) == EXIT_VERIFY
+
+
+def _bad_registry(demo, tmp_path) -> pathlib.Path:
+    """The demo registry without the policy's justification (a registry-level problem), next to the demo's data."""
+    text = pathlib.Path(demo["registry"]).read_text()
+    bad = tmp_path / "registry.yaml"
+    bad.write_text(text.replace("  justification: >-", "  justificatio: >-", 1))
+    (tmp_path / "data").symlink_to(pathlib.Path(demo["data"]))
+    return bad
+
+
+def test_a_bad_registry_exits_2_before_any_flow_starts(demo, tmp_path, monkeypatch, capsys):
+    import fitaudit.flows.cli as cli
+
+    bad = _bad_registry(demo, tmp_path)
+
+    def no_server(args):
+        raise AssertionError("a Prefect server (and so a flow run) was started for a registry that cannot be used")
+
+    monkeypatch.setattr(cli, "_server_if_needed", no_server)
+    for command in (["run", str(bad)], ["refit", str(bad), "--model", "demand-d-07"], ["backfill", str(bad), "--start", "2026-11-02", "--end", "2026-11-30"]):
+        assert main([*command, "--archive", str(tmp_path / "archive")]) == EXIT_USAGE
+        err = capsys.readouterr().err
+        assert f"{bad}:" in err and "policy.justification: missing" in err and "Traceback" not in err
+    # the whole output of the command: a few lines, no traceback
+    done = subprocess.run([sys.executable, "-m", "fitaudit.flows.cli", "run", str(bad), "--archive", str(tmp_path / "archive")],
+                          env=dict(os.environ, PREFECT_HOME=str(tmp_path / "prefect")), capture_output=True, text=True, timeout=300)
+    assert done.returncode == EXIT_USAGE and "Traceback" not in done.stderr and len(done.stderr.splitlines()) <= 4, done.stderr
+    assert not (tmp_path / "archive").exists()  # nothing was started
+
+
+def test_a_registry_problem_is_never_retried():
+    from prefect.states import Failed
+
+    from fitaudit.tasks.registry import RegistryError, load_registry_task
+    from fitaudit.tasks.registry.loader import _transient
+
+    assert load_registry_task.retry_condition_fn is _transient and load_registry_task.retries == 2
+    assert _transient(load_registry_task, None, Failed(data=RegistryError([]))) is False  # a registry problem fails at once
+    assert _transient(load_registry_task, None, Failed(data=OSError(5, "Input/output error"))) is True  # a file share that hiccups
+
+
+@pytest.mark.server
+def test_run_logs_reach_the_prefect_api_under_a_telling_name(demo, prefect_server, tmp_path):
+    import asyncio
+
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import FlowRunFilter, FlowRunFilterName, LogFilter, LogFilterFlowRunId
+    from prefect.client.schemas.sorting import FlowRunSort
+
+    env = dict(os.environ, PREFECT_API_URL=prefect_server, PREFECT_HOME=str(tmp_path / "prefect"))  # a fresh home: fitaudit writes its logging.yml
+    env.pop("PREFECT_LOGGING_CONFIG_PATH", None)
+    archive = tmp_path / "archive"
+    import shutil
+
+    shutil.copytree(demo["archive"], archive)
+    cmd = [sys.executable, "-m", "fitaudit.flows.cli", "run", demo["registry"], "--archive", str(archive), "--as-of", DEMO_AS_OF.isoformat(), "--models", "demand-d-02"]
+    done = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=600)
+    assert done.returncode == EXIT_OK, done.stderr
+    assert " INFO " not in done.stderr  # the console stays quiet: INFO goes to the API only
+    run_id = done.stdout.split()[1]
+    name = f"audit {DEMO_AS_OF.isoformat()} registry.yaml, 1 model"  # a run of some models says so
+
+    async def read():
+        async with get_client() as client:
+            runs = await client.read_flow_runs(flow_run_filter=FlowRunFilter(name=FlowRunFilterName(any_=[name])), sort=FlowRunSort.START_TIME_DESC, limit=1)
+            logs = await client.read_logs(log_filter=LogFilter(flow_run_id=LogFilterFlowRunId(any_=[runs[0].id])), limit=200)
+            return runs[0], logs
+
+    flow_run, logs = asyncio.run(read())
+    assert flow_run.state.is_completed()
+    messages = [(log.level, log.message, log.task_run_id) for log in logs]
+    assert all(level >= 20 for level, _, _ in messages)  # INFO and above (logging.INFO = 20)
+    assert any(f"audit {run_id} as of {DEMO_AS_OF.isoformat()}" in m for _, m, _ in messages)  # the flow's own summary line
+    assert any(task is not None and "batch " in m for _, m, task in messages)  # a task run's line
+    assert any("chain head" in m for _, m, _ in messages)  # the publication names the head it made

@@ -1,5 +1,6 @@
 """Served deployments on a real Prefect server: trigger through the API, check run, artifacts, events,
-and the refit automation fired by the audit's ``fitaudit.model.refit`` events."""
+and the refit automation fired by the audit's ``fitaudit.run.completed`` event (one refit run for
+every model the audit flagged)."""
 
 from __future__ import annotations
 
@@ -82,13 +83,17 @@ async def _triggers(client, deployment_id) -> list:
     return [action for automation in automations for action in automation.actions]
 
 
-def _events(prefix: str, since, want: int, timeout: float = 60) -> list:
+def _events(prefix: str, since, want: int, timeout: float = 60, flow_run=None) -> list:
+    """Events named ``prefix...`` since ``since``; with ``flow_run``, only those emitted by that flow run
+    (a server database shared with other test sessions holds their events too)."""
     from prefect.client.orchestration import get_client
-    from prefect.events.filters import EventFilter, EventNameFilter, EventOccurredFilter
+    from prefect.events.filters import EventFilter, EventNameFilter, EventOccurredFilter, EventRelatedFilter
+
+    related = EventRelatedFilter(id=[f"prefect.flow-run.{flow_run}"]) if flow_run is not None else None
 
     async def read():
         async with get_client() as client:
-            page = await client.read_events(filter=EventFilter(event=EventNameFilter(prefix=[prefix]), occurred=EventOccurredFilter(since=since)), limit=50)
+            page = await client.read_events(filter=EventFilter(event=EventNameFilter(prefix=[prefix]), occurred=EventOccurredFilter(since=since), related=related), limit=50)
             return page.events
 
     deadline = time.monotonic() + timeout
@@ -124,12 +129,13 @@ def test_served_audit_runs_through_the_api_with_artifacts_events_and_triggered_r
 
     assert {"fitaudit-verdicts", "fitaudit-summary", "fitaudit-report"} <= asyncio.run(artifacts())
 
-    verdict_events = _events("fitaudit.model.", since, want=len(MODELS))
+    verdict_events = _events("fitaudit.model.", since, want=len(MODELS), flow_run=run.id)
     names = {e.event for e in verdict_events}
-    assert len(verdict_events) >= len(MODELS) and "fitaudit.model.refit" in names
-    assert _events("fitaudit.run.completed", since, want=1)
+    assert len(verdict_events) == len(MODELS) and "fitaudit.model.refit" in names
+    (completed,) = _events("fitaudit.run.completed", since, want=1, flow_run=run.id)
+    assert completed.payload["refit_models"] == ["demand-d-07"] and len(completed.payload["manifest_sha256"]) == 64
 
-    # the refit deployment's trigger turns the refit event into a refit flow run for that model
+    # the refit deployment's trigger turns the run event into one refit flow run for the flagged models
     async def refit_runs():
         async with get_client() as client:
             return await client.read_flow_runs(deployment_filter=DeploymentFilter(name=DeploymentFilterName(any_=["refit"])))
@@ -142,7 +148,8 @@ def test_served_audit_runs_through_the_api_with_artifacts_events_and_triggered_r
         if runs and runs[0].state is not None and runs[0].state.is_final():
             break
         time.sleep(2)
-    assert runs, "no refit run was triggered by the fitaudit.model.refit event"
-    assert runs[0].state.is_completed(), runs[0].state
+    assert runs, "no refit run was triggered by the fitaudit.run.completed event"
+    assert len(runs) == 1 and runs[0].state.is_completed(), runs  # one refit run per audit
+    assert runs[0].name == f"refit {DEMO_AS_OF.isoformat()} registry.yaml, 1 model"  # the audit's as-of date, not today's
     # the trigger forwards the audited registry's digest: the refit checks it is the same file
     assert runs[0].parameters.get("registry_sha256") == hashlib.sha256(pathlib.Path(served["registry"]).read_bytes()).hexdigest()

@@ -440,11 +440,24 @@ def require_digest(registry: Registry, audited: str | None, *, by: str = "the au
         )
 
 
-@task(name="load-registry", retries=2, retry_delay_seconds=2, persist_result=False)
+def _transient(task, task_run, state) -> bool:
+    """Retry only operating-system errors (a file share that hiccups), never a registry's problems."""
+    try:
+        state.result()
+    except RegistryError:
+        return False
+    except OSError:
+        return True
+    except Exception:
+        return False
+    return False
+
+
+@task(name="load-registry", retries=2, retry_delay_seconds=2, retry_condition_fn=_transient, persist_result=False)
 def load_registry_task(path: str) -> Registry:
-    """Prefect task: read and validate the registry (retried for transient I/O errors).
+    """Prefect task: read and validate the registry (retried for transient I/O errors only).
 
     Registry-level problems raise :class:`RegistryError` and fail the run before any model is
-    audited; entry-level problems come back in ``Registry.rejected``.
+    audited, without a retry; entry-level problems come back in ``Registry.rejected``.
     """
     return load_registry(path)

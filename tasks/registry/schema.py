@@ -60,7 +60,7 @@ from fitaudit.core.settings import AuditSettings
 from fitaudit.core.vocabulary import PARTITION_KINDS, SETTING_BOUNDS
 
 from .._io import json_ready
-from ..frequencies import ALIASES, FREQUENCIES, canonical_frequency
+from ..frequencies import ALIASES, FREQUENCIES, canonical_frequency, default_staleness
 from .problems import listing, suggest
 
 __all__ = [
@@ -71,6 +71,7 @@ __all__ = [
     "is_safe_id",
     "Persistence",
     "DaysToAct",
+    "OwnerNotice",
     "Policy",
     "SourceEntry",
     "Noise",
@@ -348,6 +349,8 @@ class Block(BaseModel):
 
 
 def _plain(value: Any) -> Any:
+    if isinstance(value, tuple) and value and all(isinstance(v, Block) for v in value):
+        return [v.to_dict() for v in value]
     return value.to_dict() if isinstance(value, Block) else value
 
 
@@ -390,12 +393,26 @@ class DaysToAct(Block):
         return days.get(tier, min(days.values())) if isinstance(tier, int) and not isinstance(tier, bool) else min(days.values())
 
 
+class OwnerNotice(Block):
+    """Where an owner hears about their exceptions: a Prefect notification block."""
+
+    shape_hint = "a mapping like {owner: 'South zone forecasting (P. Nair)', block: 'slack-webhook/south-zone'}"
+    missing_hints = {"*": "a notice needs both owner and block, e.g. {owner: ..., block: slack-webhook/south-zone}"}
+
+    owner: Text = Field(description="The owner, exactly as the model entries write it.")
+    block: Annotated[str, Field(pattern=r"^[a-z0-9-]+/[A-Za-z0-9_.-]+$"), AfterValidator(_text),
+                     expect("a Prefect block as 'block-type/block-name', e.g. slack-webhook/south-zone")] = Field(
+        description="The Prefect notification block that reaches the owner, as 'block-type/block-name'."
+    )
+
+
 class Policy(Block):
     """Thresholds fixed before the run, with their justification and approver.
 
     ``persistence`` escalates repeated ``refit`` verdicts; ``refit_policy`` says whether refitted
     parameters are promoted automatically or need approval; ``days_to_act`` gives each tier's
-    deadline for acting on an exception; ``partitions`` chooses the cell
+    deadline for acting on an exception; ``flow_timeout_minutes`` bounds a run's time;
+    ``notify`` names the notification block of each owner who wants their exceptions sent; ``partitions`` chooses the cell
     partitions of the distribution gate (null: the audit's default).
     """
 
@@ -425,6 +442,12 @@ class Policy(Block):
     days_to_act: DaysToAct = Field(
         DaysToAct(), description="Days an owner has to act on an exception, by the model's tier."
     )
+    flow_timeout_minutes: setting("flow_timeout_minutes") = Field(
+        240, description="Prefect stops an audit or refit run that takes longer (minutes)."
+    )
+    notify: Annotated[tuple[OwnerNotice, ...], expect("a list of {owner, block} mappings")] = Field(
+        (), description="Owners told of their exceptions by `fitaudit serve`'s notification automations."
+    )
     partitions: Partitions = Field(
         None,
         description="Cell partitions of the distribution gate; null uses the audit's default"
@@ -449,6 +472,8 @@ class Policy(Block):
         out = super().to_dict()
         if self.partitions is None:
             del out["partitions"]
+        if not self.notify:
+            del out["notify"]
         return out
 
 
@@ -480,6 +505,13 @@ class SourceEntry(Block):
     )
     holidays: Annotated[tuple[HolidayDate, ...], expect("a list of dates like [2026-12-25, 2026-12-26]")] = Field(
         (), description="Dates business-day sources (frequency B) have no observation for."
+    )
+    max_staleness: Annotated[
+        Annotated[int, Field(ge=0)] | None, expect("a whole number of periods (0 or more), or null for the default")
+    ] = Field(
+        None,
+        description="Periods of the source's frequency its last observation may lag behind the as-of date before "
+        "its models are judged insufficient (default: one period; one day's worth for frequencies finer than a day).",
     )
     partitioning: Annotated[
         Literal[PARTITIONINGS] | None, expect(f"one of {listing(PARTITIONINGS)}", PARTITIONINGS)
@@ -520,13 +552,20 @@ class SourceEntry(Block):
         return tuple(sorted(set(days)))
 
     def to_dict(self) -> dict:
-        """Plain-Python view (``forecasts`` and ``holidays`` only when the source declares them)."""
+        """Plain-Python view (``forecasts``, ``holidays`` and ``max_staleness`` only when the source declares them)."""
         out = super().to_dict()
         if not self.forecasts:
             del out["forecasts"]
         if not self.holidays:
             del out["holidays"]
+        if self.max_staleness is None:
+            del out["max_staleness"]
         return out
+
+    @property
+    def staleness_allowed(self) -> int:
+        """``max_staleness``, or the frequency's default (:func:`~fitaudit.tasks.frequencies.default_staleness`)."""
+        return default_staleness(self.frequency) if self.max_staleness is None else self.max_staleness
 
     @model_validator(mode="after")
     def _three_roles(self) -> SourceEntry:
