@@ -166,19 +166,28 @@ def _webhook_receiver():
     return server, received
 
 
-def test_owner_automation_sends_each_owner_their_exceptions(prefect_server, tmp_path):
+def test_owner_automation_sends_each_owner_their_exceptions(demo, prefect_server, tmp_path):
     import time
     import uuid
 
+    from prefect.automations import Automation
     from prefect.blocks.notifications import CustomWebhookNotificationBlock
 
-    from fitaudit.tasks.events import emit_verdict_events, owner_automation
+    from fitaudit.flows.deploy import install_owner_notifications
+    from fitaudit.tasks.events import emit_verdict_events
 
     server, received = _webhook_receiver()
     owner, other = f"Zone {uuid.uuid4().hex[:8]} (A. Owner)", f"Zone {uuid.uuid4().hex[:8]} (B. Other)"
     block = CustomWebhookNotificationBlock(name="fitaudit test", url=f"http://127.0.0.1:{server.server_port}/hook", json_data={"subject": "{{subject}}", "body": "{{body}}"})
-    block_id = block.save(f"fitaudit-test-{uuid.uuid4().hex[:8]}", overwrite=True)
-    automation = owner_automation(owner, block_id).create()
+    slug = f"fitaudit-test-{uuid.uuid4().hex[:8]}"
+    block.save(slug, overwrite=True)
+    # the registry setting `fitaudit serve` installs from: the policy's notify
+    registry = pathlib.Path(demo["registry"]).with_name(f"registry-{slug}.yaml")
+    registry.write_text(pathlib.Path(demo["registry"]).read_text().replace(
+        "  refit_policy: approval\n", f"  refit_policy: approval\n  notify:\n    - {{owner: '{owner}', block: 'custom-webhook/{slug}'}}\n", 1))
+    assert install_owner_notifications(str(registry)) == [f"fitaudit: exceptions for {owner}"]
+    assert install_owner_notifications(str(registry)) == [f"fitaudit: exceptions for {owner}"]  # installing again replaces it
+    automation = Automation.read(name=f"fitaudit: exceptions for {owner}")
     try:
         time.sleep(3)  # the server's trigger service loads new automations
         folder = tmp_path / "archive" / "runs" / "2026" / "r1"
