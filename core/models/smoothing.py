@@ -51,6 +51,13 @@ PHI_RANGE = (0.8, 0.98)
 _DIFF_STEP = 6e-6
 #: Number of local searches (from the best points of the starting grid); the likelihood can be multimodal.
 _LOCAL_SEARCHES = 3
+#: Starting grid of the local searches, in optimiser coordinates (alpha, beta/alpha, gamma/(1 - alpha), phi).
+#: It reaches near the bounds on purpose: maxima with gamma/(1 - alpha), beta/alpha or phi at a bound
+#: (AirPassengers ETS(A,N,A) and ETS(A,Ad,N), austourists ETS(A,A,N)) and a small-alpha maximum beside a
+#: local one at the lower bound (nottem ETS(A,N,A), alpha 0.031) are missed from interior points alone
+#: (tests/test_smoothing.py compares every spec with statsmodels' ETSModel on packaged series).
+_START_AXES = {"alpha": (0.01, 0.03, 0.1, 0.3, 0.6, 0.9), "beta": (0.01, 0.1, 0.5, 0.9), "gamma": (0.01, 0.1, 0.5, 0.9),
+               "phi": (0.8, 0.9, 0.98)}
 #: Stand-in for non-finite one-step errors during the multiplicative-season search (series scaled to mean 1).
 _NONFINITE_PENALTY = 1e6
 
@@ -555,7 +562,7 @@ class ExpSmoothing(ForecastModel):
 
     def _start_grid(self) -> list[np.ndarray]:
         """Starting points (optimiser coordinates) for the smoothing parameters."""
-        axes = {"alpha": (0.05, 0.2, 0.5, 0.8), "beta": (0.01, 0.1, 0.4), "gamma": (0.01, 0.1, 0.4), "phi": (0.85, 0.95)}
+        axes = _START_AXES
         grids = np.meshgrid(*[axes[name] for name in self._smoothing_names()], indexing="ij")
         return list(np.stack([g.ravel() for g in grids], axis=1))
 
