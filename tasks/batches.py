@@ -26,16 +26,20 @@ from fitaudit.core.models import model_from_dict
 from ._io import json_ready
 from .archive import ProductionSnapshot, production_snapshot
 from .extracts import ExtractError, ExtractFingerprint, fingerprint_source, read_series, series_problems
-from .frequencies import FREQUENCY_DAYS
+from .frequencies import FREQUENCY_DAYS, periods_after
 from .params import ParameterStoreError, production_version
 from .registry import EntryBase, ForecastEntry, ModelEntry, Registry, entry_from_dict
 
-__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "ROW_KINDS"]
+__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "ROW_KINDS", "STALE"]
 
 #: Problems about individual rows: re-checked on the model's own window (a flaw before it does not
 #: stop the audit).  Every other problem (a missing or mistyped column, mixed time zones, rows
 #: without a timestamp) concerns the series as a whole and is kept as the reader found it.
 ROW_KINDS = frozenset({"duplicate-time", "unsorted", "off-grid", "gap", "non-finite", "missing-exogenous"})
+
+#: A series (or a whole source) whose last observation lags the as-of date by more than its
+#: source's ``max_staleness`` periods.
+STALE = "stale"
 
 #: A forecast entry's stated forecast missing for an observation of the audit window.
 MISSING_FORECAST = "missing-forecast"
@@ -294,7 +298,8 @@ def stage_inputs(
     for source_name in sorted(by_source):
         source = registry.sources[source_name]
         models = by_source[source_name]
-        span_days = FREQUENCY_DAYS.get(source.frequency, 31) * (max(m.staged_window for m in models) + 2) + 2
+        # the windows, plus the periods the source may lag behind the as-of date
+        span_days = FREQUENCY_DAYS.get(source.frequency, 31) * (max(m.staged_window for m in models) + 2 + source.staleness_allowed) + 2
         start = end - np.timedelta64(int(math.ceil(span_days * 86400)), "s")
         stated = [m.forecasts.columns() for m in models if isinstance(m, ForecastEntry)]
         columns = sorted({m.value for m in models} | {x for m in models for x in m.exogenous} | {c for cols in stated for c in cols.values()})
@@ -323,7 +328,7 @@ def stage_inputs(
             metas, arrays = [], {}
             for i, entry in enumerate(chunk):
                 meta, y, t, exog = _model_input(entry, data.get(entry.series), source_errors.get(source_name), fp, archive, source.frequency, snapshot,
-                                                holidays=source.holidays)
+                                                holidays=source.holidays, end=end, max_staleness=source.staleness_allowed)
                 meta["history"] = [dict(h) for h in histories.get(entry.id, ())]
                 arrays[f"{i}/y"] = y
                 arrays[f"{i}/t"] = t
@@ -340,18 +345,29 @@ def stage_inputs(
 
 
 def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive, frequency: str, snapshot=None,
-                 holidays: tuple = ()) -> tuple[dict, np.ndarray, np.ndarray, dict]:
+                 holidays: tuple = (), end: np.datetime64 | None = None, max_staleness: int | None = None) -> tuple[dict, np.ndarray, np.ndarray, dict]:
     """Cut one model's fit window and collect its problems.
 
     The reader validated the whole span it loaded; when it found problems, the rows of the model's
     own window are validated again so that a flawed row outside the window does not stop the
-    audit (problems of the whole series, :data:`ROW_KINDS` aside, are kept).
+    audit (problems of the whole series, :data:`ROW_KINDS` aside, are kept).  A series whose last
+    observation lags the as-of date (``end``, its last instant) by more than ``max_staleness``
+    periods of ``frequency`` gets a ``stale`` (insufficient) problem instead of a length problem.
     """
     empty_t = np.array([], dtype="datetime64[ns]")
     problems: list[dict] = []
     production = _production(archive, entry, snapshot)
     if source_error is not None:
         problems.append({"kind": "unreadable-source", "severity": "error", "message": f"model {entry.id!r}: {source_error}"})
+    if source_error is None and end is not None and max_staleness is not None:
+        if series is not None and series.time.size:
+            last, whose = series.time[-1], f"series {entry.series!r}"
+        else:  # nothing in the span read: the source's own last timestamp
+            last, whose = (np.datetime64(fp.time_max, "ns") if fp is not None and fp.time_max else None), "the source"
+        stale = None if last is None else _stale(entry, last, whose, end, frequency, holidays, max_staleness)
+        if stale is not None:
+            problems.append(stale)
+            series = None  # the length and gap checks of the stale span would only repeat it
     if series is None:
         meta = {"entry": entry.to_dict(), "exog_names": [], "production": production, "problems": problems, "lineage": _lineage(entry, fp, empty_t, 0)}
         return meta, np.array([]), empty_t, {}
@@ -392,6 +408,26 @@ def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive
         meta["forecast_names"] = list(forecast_arrays)
         exog = {**exog, **forecast_arrays}
     return meta, y, t, exog
+
+
+def _stale(entry: EntryBase, last: np.datetime64, whose: str, end: np.datetime64, frequency: str, holidays: tuple, allowed: int) -> dict | None:
+    """The ``stale`` problem of a last observation more than ``allowed`` periods before ``end``."""
+    late = periods_after(frequency, last, end, holidays)
+    if late <= allowed:
+        return None
+    as_of = str(np.datetime64(end, "D"))
+    stamp = np.datetime64(last, "s")
+    shown = str(np.datetime64(last, "D")) if stamp == np.datetime64(last, "D") else str(stamp)
+    return {
+        "kind": STALE,
+        "severity": "insufficient",
+        "message": (
+            f"model {entry.id!r}: source {entry.source!r} is stale: the last observation of {whose} is {shown}, "
+            f"{late} period(s) of frequency {frequency!r} before the as-of date {as_of} (at most {allowed} allowed by "
+            "max_staleness). Fix: refresh the extract up to the as-of date, audit at an earlier as-of date (--as-of), "
+            "or raise the source's max_staleness."
+        ),
+    }
 
 
 def _missing_forecasts(entry: ForecastEntry, t: np.ndarray, arrays: dict, stated: dict, flagged: set) -> list[dict]:

@@ -29,6 +29,8 @@ __all__ = [
     "SEASONS",
     "canonical_frequency",
     "calendar_offset",
+    "default_staleness",
+    "periods_after",
 ]
 
 
@@ -139,3 +141,34 @@ def calendar_offset(code: str, holidays: Iterable[str] = ()):
     if holidays:
         return pd.offsets.CustomBusinessDay(holidays=list(holidays))
     return pd.tseries.frequencies.to_offset(code)
+
+
+def default_staleness(code: str) -> int:
+    """Periods a source may lag behind the as-of date when it sets no ``max_staleness``.
+
+    One period of the calendar (the as-of day's own observation may still be on its way), and
+    for grids finer than a day one day's worth of periods (96 for ``15min``, 24 for ``h``).
+    """
+    step = FIXED_STEPS.get(canonical_frequency(code))
+    if step is not None and step < np.timedelta64(1, "D"):
+        return int(np.timedelta64(1, "D") // step)
+    return 1
+
+
+def periods_after(code: str, last: np.datetime64, end: np.datetime64, holidays: Iterable[str] = ()) -> int:
+    """Grid periods of ``code`` after the timestamp ``last``, up to and including ``end``.
+
+    For a fixed step, ``floor((end - last) / step)``; for a calendar, the dates of pandas'
+    ``date_range`` from the day after ``last`` to ``end`` (weekends and the source's holidays
+    skipped for business days).  Zero when ``last`` is at or after ``end``.
+    """
+    code = canonical_frequency(code)
+    last, end = np.datetime64(last, "ns"), np.datetime64(end, "ns")
+    if last >= end:
+        return 0
+    if code in FIXED_STEPS:
+        return int((end - last) // FIXED_STEPS[code].astype("timedelta64[ns]"))
+    import pandas as pd
+
+    start = pd.Timestamp(last).normalize() + pd.Timedelta(days=1)
+    return int(pd.date_range(start, pd.Timestamp(end), freq=calendar_offset(code, holidays)).size)

@@ -201,6 +201,20 @@ def test_business_day_holidays():
     assert "holidays" not in parse_registry(VALID, FILE).sources["demand"].to_dict()
 
 
+def test_max_staleness_is_a_source_setting():
+    reg = parse_registry(_edit("frequency: D", "frequency: D\n    max_staleness: 3"), FILE)
+    assert reg.source_problems == () and reg.sources["demand"].staleness_allowed == 3
+    assert reg.sources["demand"].to_dict()["max_staleness"] == 3
+    default = parse_registry(VALID, FILE).sources["demand"]
+    assert default.max_staleness is None and default.staleness_allowed == 1 and "max_staleness" not in default.to_dict()
+    hourly = parse_registry(_edit("frequency: D", "frequency: h"), FILE).sources["demand"]
+    assert hourly.staleness_allowed == 24  # one day of hourly periods  # common practice
+    text = _edit("frequency: D", "frequency: D\n    max_staleness: -1")
+    (problem,) = parse_registry(text, FILE).source_problems
+    assert problem.field == "sources.demand.max_staleness" and "expected a whole number of periods" in problem.message
+    assert problem.line == _line(text, "max_staleness")
+
+
 @pytest.mark.parametrize("frequency, holidays, message", [
     ("D", "[2026-12-25]", r"holidays apply to business days \(frequency B\) only, not to 'D'"),
     ("B", "[2026-13-01]", r"expected a date like 2026-12-25"),

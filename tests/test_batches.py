@@ -1,0 +1,82 @@
+"""Staging (fitaudit.tasks.batches): stale extracts.
+
+A source whose last observation lags the as-of date by more than its ``max_staleness`` periods
+gives its models an ``insufficient`` problem naming the last timestamp, the as-of date and the
+fix, instead of a length problem; the periods are counted on the source's calendar (pandas'
+business-day offset for ``B``).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import sys
+
+import numpy as np
+import pandas as pd
+import pytest
+
+sys.path.insert(0, __import__("os").path.dirname(__file__))
+from fleet_fixtures import AS_OF, Fleet, ar1, days, long_table, write_parquet  # noqa: E402
+
+from fitaudit.tasks import batches  # noqa: E402
+from fitaudit.tasks.registry import load_registry  # noqa: E402
+
+
+def _stage(tmp_path, series: dict, as_of: dt.date, **source_extra):
+    fleet = Fleet(tmp_path)
+    write_parquet(tmp_path / "data" / "x.parquet", long_table(series))
+    fleet.source("x", "data/x.parquet", **source_extra)
+    for k in series:
+        fleet.model(f"m-{k}", "x", k)
+    reg = load_registry(fleet.write())
+    staged = batches.stage_inputs(reg, as_of, tmp_path / "work")
+    return {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+
+
+def _stale(item) -> list[dict]:
+    return [p for p in item.problems if p["kind"] == batches.STALE]
+
+
+def test_a_week_stale_extract_names_the_staleness_not_the_history(tmp_path):
+    rng = np.random.default_rng(5)
+    items = _stage(tmp_path, {"a": {"date": days(), "y": ar1(rng)}}, AS_OF + dt.timedelta(days=7))
+    (problem,) = items["m-a"].problems  # the staleness alone, no "extend the extract's history"
+    assert problem["kind"] == batches.STALE and problem["severity"] == "insufficient"
+    last = str(AS_OF)  # the fixture's last day of data
+    as_of = str(AS_OF + dt.timedelta(days=7))
+    assert f"last observation of series 'a' is {last}" in problem["message"]
+    assert f"7 period(s) of frequency 'D' before the as-of date {as_of}" in problem["message"]  # 7 days  # common practice
+    assert "Fix: refresh the extract" in problem["message"] and "max_staleness" in problem["message"]
+
+
+@pytest.mark.parametrize("lag, stale", [(0, False), (1, False), (2, True)])
+def test_default_allows_one_period(tmp_path, lag, stale):
+    rng = np.random.default_rng(6)
+    items = _stage(tmp_path, {"a": {"date": days(), "y": ar1(rng)}}, AS_OF + dt.timedelta(days=lag))
+    assert bool(_stale(items["m-a"])) == stale
+
+
+def test_max_staleness_is_the_sources_setting(tmp_path):
+    rng = np.random.default_rng(7)
+    items = _stage(tmp_path, {"a": {"date": days(), "y": ar1(rng)}}, AS_OF + dt.timedelta(days=7), max_staleness=7)
+    assert _stale(items["m-a"]) == [] and items["m-a"].problems == ()
+
+
+def test_business_days_count_no_weekend_as_late(tmp_path):
+    # source: pandas.bdate_range (pandas 3.1.1): 240 business days ending on a Friday
+    grid = pd.bdate_range(end="2026-08-28", periods=240)  # 2026-08-28 is a Friday  # common practice
+    assert grid[-1].day_name() == "Friday"
+    series = {"a": {"date": grid.to_numpy().astype("datetime64[us]"), "y": ar1(np.random.default_rng(8), n=240)}}
+    monday = dt.date(2026, 8, 31)
+    assert _stale(_stage(tmp_path / "mon", series, monday, frequency="B")["m-a"]) == []  # Sat, Sun skipped; Monday's row may lag
+    (problem,) = _stale(_stage(tmp_path / "tue", series, monday + dt.timedelta(days=1), frequency="B")["m-a"])
+    assert "is 2026-08-28, 2 period(s) of frequency 'B' before the as-of date 2026-09-01" in problem["message"]
+    # a holiday on the Monday is not a period either
+    assert _stale(_stage(tmp_path / "hol", series, monday + dt.timedelta(days=1), frequency="B", holidays=["2026-08-31"])["m-a"]) == []
+
+
+def test_a_source_stale_beyond_the_span_read_names_its_own_last_timestamp(tmp_path):
+    rng = np.random.default_rng(9)
+    items = _stage(tmp_path, {"a": {"date": days(), "y": ar1(rng)}}, AS_OF + dt.timedelta(days=2000))
+    (problem,) = _stale(items["m-a"])
+    assert f"last observation of the source is {AS_OF}" in problem["message"]
