@@ -290,15 +290,16 @@ def decide_verdict(production: CheckResult | None, refit: CheckResult | None, th
 
 
 def owner_action(verdict: str, *, escalated: bool = False, as_of: dt.date | str | None = None, days: int | None = None,
-                 refit_policy: str = "approval") -> dict:
+                 refit_policy: str = "approval", refittable: bool = True) -> dict:
     """What a model's owner should do after a verdict, and by when (docs/method.md §10.2).
 
     The deadline is ``as_of + days`` (the policy's days to act for the model's tier).
 
     * ``refit``: check the refitted parameters and approve their promotion (with ``refit_policy``
-      ``automatic`` they are promoted when they pass: confirm the promotion);
+      ``automatic`` they are promoted when they pass: confirm the promotion); for forecasts made
+      elsewhere (``refittable`` False) re-estimate the model that issues them;
     * ``respecify`` (escalated or not): choose a new specification, helped by the candidates,
-      and have it validated; an escalated model is not to be refitted once more;
+      and have it validated; for an escalated model, rather than approving another refit;
     * ``insufficient``: provide the data the reason names (or shorten the windows);
     * ``error``: fix the problem the reason names;
     * ``pass``: nothing.
@@ -317,13 +318,16 @@ def owner_action(verdict: str, *, escalated: bool = False, as_of: dt.date | str 
         raise InputError(f"owner_action: unknown verdict {verdict!r}; valid verdicts are {', '.join(repr(v) for v in VERDICTS)}.")
     if verdict == "pass":
         return {"action": "None: the model passed.", "due": None, "days": None}
+    if not refittable:
+        refit = "Re-estimate the model that issues these forecasts (fitaudit does not refit it) and restate their uncertainty."
+    elif refit_policy != "automatic":
+        refit = "Check the refitted parameters and approve their promotion (fitaudit promote), or say why not."
+    else:
+        refit = "Confirm the automatic promotion of the refitted parameters (see the refit run)."
     texts = {
-        "refit": (
-            "Check the refitted parameters and approve their promotion (fitaudit promote), or say why not."
-            if refit_policy != "automatic" else "Confirm the automatic promotion of the refitted parameters (see the refit run)."
-        ),
+        "refit": refit,
         "respecify": (
-            "Refits keep recurring: do not refit again; choose a new specification (see the candidates) and have it validated."
+            "Refits keep recurring: choose a new specification (see the candidates) and have it validated, rather than approving another refit."
             if escalated else "Choose a new specification (see the candidates) and have it validated."
         ),
         "insufficient": "Provide the data the reason names (or shorten the windows in the registry) so the model can be audited.",

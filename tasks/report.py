@@ -41,7 +41,7 @@ from fitaudit.core.vocabulary import ADJUSTMENT_LABELS, VERDICTS
 
 from .registry import SAFE_ID
 from .registry.schema import DaysToAct
-from .results import SEVERITY, is_forecast_record
+from .results import SEVERITY, is_forecast_record, is_forecast_record
 
 __all__ = ["STATUS", "HEAT_BINS", "CAUTION", "environment", "render_run", "page_context", "render_model_page", "render_index_page", "render_method_page", "render_archive_index", "record_action", "days_to_act"]
 
@@ -722,7 +722,7 @@ def record_action(m: Mapping[str, Any], policy: Mapping[str, Any] | None, as_of:
     policy = policy or {}
     action = owner_action(
         m["verdict"], escalated=bool(m.get("escalated")), as_of=as_of, days=days_to_act(policy).for_tier(m.get("tier")),
-        refit_policy=str(policy.get("refit_policy", "approval")),
+        refit_policy=str(policy.get("refit_policy", "approval")), refittable=not is_forecast_record(m),
     )
     if is_forecast_record(m) and m["verdict"] in FORECAST_ACTIONS:  # forecasts made elsewhere: nothing was refitted
         return {**action, "action": FORECAST_ACTIONS[m["verdict"]]}

@@ -145,18 +145,20 @@ def test_p_values_stand_beside_their_thresholds_and_floors():
     [
         ("refit", False, "approval", "approve their promotion"),
         ("refit", False, "automatic", "Confirm the automatic promotion"),
+        ("refit", False, "forecasts", "Re-estimate the model that issues these forecasts"),
         ("respecify", False, "approval", "choose a new specification"),
-        ("respecify", True, "approval", "do not refit again"),
+        ("respecify", True, "approval", "rather than approving another refit"),
         ("insufficient", False, "approval", "Provide the data"),
         ("error", False, "approval", "Fix the problem"),
     ],
 )
 def test_actions_follow_the_verdict_with_a_deadline(verdict, escalated, policy, words):
-    action = owner_action(verdict, escalated=escalated, as_of="2026-11-30", days=14, refit_policy=policy)
+    forecasts = policy == "forecasts"  # forecasts made elsewhere: fitaudit refits nothing
+    action = owner_action(verdict, escalated=escalated, as_of="2026-11-30", days=14, refit_policy="approval" if forecasts else policy, refittable=not forecasts)
     assert words.lower() in action["action"].lower()
     assert action["due"] == "2026-12-14" and action["days"] == 14  # 30 November + 14 days
     if escalated:
-        assert "approve" not in action["action"] and "promot" not in action["action"]
+        assert "approve their promotion" not in action["action"] and "promot" not in action["action"]
 
 
 def test_pass_needs_no_action_and_unknown_verdicts_are_refused():
