@@ -143,3 +143,102 @@ def test_a_second_run_names_the_first_run_and_the_chain_head_it_extends(demo, pr
     assert manifest["scope"] == {"models_requested": ["demand-d-02"], "registry_models": 49, "unreadable_sources": []}
     assert "This is a partial run: only 1 of the registry's 49 models were audited (--models)" in page2
     assert chain_head(archive)[1] == after_first[1] + 1  # the second run's entry follows the head its page names
+
+
+def _webhook_receiver():
+    """A local HTTP server that keeps the JSON bodies POSTed to it (a stand-in for a chat or mail service)."""
+    import http.server
+    import threading
+
+    received: list[dict] = []
+
+    class Hook(http.server.BaseHTTPRequestHandler):
+        def do_POST(self):  # noqa: N802 (the standard library's name)
+            received.append(json.loads(self.rfile.read(int(self.headers.get("Content-Length", 0)))))
+            self.send_response(204)
+            self.end_headers()
+
+        def log_message(self, *args):
+            pass
+
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Hook)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    return server, received
+
+
+def test_owner_automation_sends_each_owner_their_exceptions(demo, prefect_server, tmp_path):
+    import time
+    import uuid
+
+    from prefect.automations import Automation
+    from prefect.blocks.notifications import CustomWebhookNotificationBlock
+
+    from fitaudit.flows.deploy import install_owner_notifications
+    from fitaudit.tasks.events import emit_verdict_events
+
+    server, received = _webhook_receiver()
+    owner, other = f"Zone {uuid.uuid4().hex[:8]} (A. Owner)", f"Zone {uuid.uuid4().hex[:8]} (B. Other)"
+    block = CustomWebhookNotificationBlock(name="fitaudit test", url=f"http://127.0.0.1:{server.server_port}/hook", json_data={"subject": "{{subject}}", "body": "{{body}}"})
+    slug = f"fitaudit-test-{uuid.uuid4().hex[:8]}"
+    block.save(slug, overwrite=True)
+    # the registry setting `fitaudit serve` installs from: the policy's notify
+    registry = pathlib.Path(demo["registry"]).with_name(f"registry-{slug}.yaml")
+    registry.write_text(pathlib.Path(demo["registry"]).read_text().replace(
+        "  refit_policy: approval\n", f"  refit_policy: approval\n  notify:\n    - {{owner: '{owner}', block: 'custom-webhook/{slug}'}}\n", 1))
+    assert install_owner_notifications(str(registry)) == [f"fitaudit: exceptions for {owner}"]
+    assert install_owner_notifications(str(registry)) == [f"fitaudit: exceptions for {owner}"]  # installing again replaces it
+    automation = Automation.read(name=f"fitaudit: exceptions for {owner}")
+    try:
+        time.sleep(3)  # the server's trigger service loads new automations
+        folder = tmp_path / "archive" / "runs" / "2026" / "r1"
+        run = {"run_id": "20261130-T060000Z-abcd", "as_of": "2026-11-30", "report_path": str(folder / "index.html"), "archive": str(tmp_path / "archive"),
+               "report_base_url": "https://audit.example.org/fitaudit", "policy": {"days_to_act": {"tier_1": 7, "tier_2": 10, "tier_3": 28}}}
+        records = [
+            {"id": "m-refit", "safe_id": "m-refit", "owner": owner, "tier": 2, "verdict": "refit", "escalated": False, "reasons": ["Refit: the production parameters no longer fit."], "audit": None},
+            {"id": "m-pass", "safe_id": "m-pass", "owner": owner, "tier": 2, "verdict": "pass", "escalated": False, "reasons": ["Pass."], "audit": None},
+            {"id": "m-error", "safe_id": "m-error", "owner": other, "tier": 1, "verdict": "error", "escalated": False, "reasons": ["model 'm-error': no data."], "audit": None},
+        ]
+        assert emit_verdict_events(records, run) == 3
+        deadline = time.monotonic() + 90
+        while time.monotonic() < deadline and not received:
+            time.sleep(1)
+        time.sleep(5)  # anything else (a pass, another owner's exception) would arrive by now
+    finally:
+        automation.delete()
+        server.shutdown()
+    assert len(received) == 1, received  # the owner's one exception; not their pass, not the other owner's error
+    subject, body = received[0]["subject"], received[0]["body"]
+    assert subject == "fitaudit: m-refit needs refit (as of 2026-11-30)"
+    assert "Why: Refit: the production parameters no longer fit." in body
+    assert "approve their promotion" in body and "By 2026-12-10." in body  # tier 2: 30 November + 10 days
+    assert "Model page: https://audit.example.org/fitaudit/runs/2026/r1/models/m-refit.html" in body
+    assert "Run report: https://audit.example.org/fitaudit/runs/2026/r1/index.html" in body
+
+
+def test_the_run_event_carries_the_manifest_digest_the_chain_head_and_the_models_to_refit(first_run):
+    import asyncio
+    import time
+
+    from prefect.client.orchestration import get_client
+    from prefect.events.filters import EventFilter, EventNameFilter, EventResourceFilter
+
+    async def read():
+        async with get_client() as client:
+            page = await client.read_events(filter=EventFilter(event=EventNameFilter(name=["fitaudit.run.completed"]),
+                                                               resource=EventResourceFilter(id=[f"fitaudit.run.{first_run['run_id']}"])), limit=5)
+            return page.events
+
+    deadline, events = time.monotonic() + 60, []
+    while time.monotonic() < deadline and not events:
+        events = asyncio.run(read())
+        time.sleep(0 if events else 1)
+    assert len(events) == 1
+    payload, resource = events[0].payload, events[0].resource
+    manifest = (pathlib.Path(first_run["report"]).parent / "manifest.json").read_bytes()
+    import hashlib
+
+    assert payload["manifest_sha256"] == hashlib.sha256(manifest).hexdigest() == first_run["manifest_sha256"]
+    assert payload["chain_head"] == first_run["chain_head"] and len(payload["chain_head"]["hash"]) == 64
+    assert sorted(payload["refit_models"]) == ["demand-d-07", "demand-d-13"]  # refit and respecify alike, as `run --refit`
+    assert resource.get("fitaudit.refits-needed") == "yes"
+    assert payload["report_url"] == pathlib.Path(first_run["report"]).as_uri()  # no report_base_url: a file:// link
