@@ -24,7 +24,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from .divergence import CLASSICAL_MEMBER_LABELS
+from .divergence import CLASSICAL_MEMBER_LABELS, CLASSICAL_MEMBERS
 from .exceptions import InputError
 from .results import AuditResult, CheckResult
 from .vocabulary import ADJUDICATED_VERDICTS, ADJUSTMENT_LABELS, ADJUSTMENTS, VERDICTS, Adjustment
@@ -41,7 +41,8 @@ def _fmt_p(p: float) -> str:
 #: A passing check is *narrow* when its largest standardised statistic is within this share of its
 #: critical value (T / critical value at least 0.9).
 NARROW_SHARE = 0.10
-#: A classical member's own chi-square p-value below this is worth a mention on a passing check.
+#: A classical member's own chi-square p-value below this is worth a mention on a passing check
+#: (members with alpha from 1 to 2 only: G², Cressie-Read 2/3 and Pearson).
 CLASSICAL_NOTE_P = 0.02
 #: A McLeod-Li p-value below this is strong evidence of changing variance (reported only).
 MCLEOD_LI_NOTE_P = 0.001
@@ -173,8 +174,12 @@ def _cautions(check: CheckResult) -> list[str]:
             f"it passes narrowly: its largest standardised statistic is {share:.2f} of its critical value "
             f"(within {100 * NARROW_SHARE:.0f} % of failing)"
         )
+    # only members whose chi-square approximation holds at audit-window sizes: Cressie-Read lambda = alpha - 1 in
+    # [0, 1] (G², Cressie-Read 2/3, Pearson); Neyman and Freeman-Tukey reject spuriously when cells are nearly empty
+    # (from memory: Read and Cressie 1988, ch. 5, on the small-sample accuracy of the chi-square approximation)
     low = {name: m.get("p_value_chi2") for name, m in (check.members or {}).items()
-           if isinstance(m, dict) and m.get("p_value_chi2") is not None and np.isfinite(m["p_value_chi2"]) and m["p_value_chi2"] < CLASSICAL_NOTE_P}
+           if name in CLASSICAL_MEMBERS and 1.0 <= CLASSICAL_MEMBERS[name][0] <= 2.0
+           and isinstance(m, dict) and m.get("p_value_chi2") is not None and np.isfinite(m["p_value_chi2"]) and m["p_value_chi2"] < CLASSICAL_NOTE_P}
     if low:
         names = ", ".join(CLASSICAL_MEMBER_LABELS.get(n, n) for n in low)
         lo, hi = min(low.values()), max(low.values())

@@ -109,7 +109,8 @@ def test_pass_without_notes_and_a_check_that_could_not_run():
 
 
 def test_narrow_passes_and_strong_reported_diagnostics_are_said():
-    members = {"pearson": {"p_value_chi2": 0.009}, "likelihood-ratio": {"p_value_chi2": 0.019}, "neyman": {"p_value_chi2": 0.3}}
+    # Neyman's chi-square p-value is not trusted with nearly empty cells: never a caution on its own
+    members = {"pearson": {"p_value_chi2": 0.009}, "likelihood-ratio": {"p_value_chi2": 0.019}, "neyman": {"p_value_chi2": 0.0001}}
     narrow = check("refit", n=180, ratio=0.97, members=members, mcleod_li={"p_value": 0.0004})
     verdict, reasons = decide_verdict(failing_production(), narrow, 0.05)
     assert verdict == "refit"
