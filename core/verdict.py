@@ -88,8 +88,14 @@ def _window_words(check: CheckResult) -> str:
 
 
 def _bias_words(sizes: dict, since: str | None) -> str | None:
+    """The bias in words when it is large (BIAS_NOTE_SD) and clear of its own noise: the mean error at
+    least two standard errors from 0, ``|ebar| / (s / sqrt(m)) >= 2`` (common practice)."""
     bias_sd, pct = sizes.get("bias_sd"), sizes.get("bias_pct")
     if bias_sd is None or abs(bias_sd) < BIAS_NOTE_SD:
+        return None
+    n, ratio = sizes.get("n") or 0, sizes.get("variance_ratio")
+    spread = np.sqrt(ratio) if ratio is not None and ratio > 0 else 1.0
+    if n < 2 or abs(bias_sd) * np.sqrt(n) / spread < 2:
         return None
     when = f" since {since}" if since else ""
     side = "high" if bias_sd < 0 else "low"  # e = y - forecast: negative errors are forecasts above the data
@@ -113,9 +119,10 @@ def _plain_failure(check: CheckResult, threshold: float, adjusted: bool) -> str:
             spread = f"the {noun} are {ratio:.1f} times as variable as the model assumes"
         else:
             spread = f"the {noun} are only {ratio:.2f} times as variable as the model assumes (it overstates its uncertainty)"
-    # the larger departure first: a bias of half a standard deviation or more outweighs the spread
-    big_bias = abs((since if since.get("date") and since.get("bias_sd") is not None else eff).get("bias_sd") or 0.0) >= 0.5
-    for text in ((bias, spread) if big_bias else (spread, bias)):
+    # the larger departure first: the bias in standard deviations against the excess of the spread, |sqrt(ratio) - 1|
+    shown = since if since.get("date") and since.get("bias_sd") is not None else eff
+    excess = abs(np.sqrt(ratio) - 1) if ratio is not None and ratio > 0 else 0.0
+    for text in ((bias, spread) if abs(shown.get("bias_sd") or 0.0) > excess else (spread, bias)):
         if dist and text:
             parts.append(text)
     if dist and not parts:

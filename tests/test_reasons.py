@@ -167,3 +167,17 @@ def test_pass_needs_no_action_and_unknown_verdicts_are_refused():
     assert owner_action("refit")["due"] is None
     with pytest.raises(Exception, match="unknown verdict 'stale'"):
         owner_action("stale")
+
+
+def test_a_bias_is_said_only_when_clear_of_its_noise_and_the_larger_departure_leads():
+    lead = decide_verdict(failing_production(), check("refit"), 0.05)[1][0]
+    # bias 0.5 sd over 48 errors with spread ratio 1.9: 0.5 * sqrt(48) / sqrt(1.9) = 2.5 standard errors (common practice: at least 2)
+    assert lead.index("the forecasts ran 6 % high") < lead.index("1.8 times as variable")  # 0.5 sd > sqrt(1.8) - 1 = 0.34
+    few = failing_production()
+    few = dataclasses.replace(few, effects={**few.effects, "since": {**few.effects["since"], "n": 6}})
+    lead = decide_verdict(few, check("refit"), 0.05)[1][0]
+    assert "ran" not in lead and "1.8 times as variable" in lead  # 0.5 * sqrt(6) / sqrt(1.9) = 0.9 standard errors: noise
+    wide = failing_production()
+    wide = dataclasses.replace(wide, effects={**wide.effects, "variance_ratio": 4.2})
+    lead = decide_verdict(wide, check("refit"), 0.05)[1][0]
+    assert lead.index("4.2 times as variable") < lead.index("the forecasts ran 6 % high")  # sqrt(4.2) - 1 = 1.05 > 0.5 sd
