@@ -1,6 +1,6 @@
 """``python -m bench [--quick] [--only NAME ...] [--out PATH]``: every benchmark, one table.
 
-Runs the micro-benchmarks (divergence map, model fits), the fleet audit against the by-hand peer
+Runs the micro-benchmarks (divergence map, model fits, command start-up), the fleet audit against the by-hand peer
 (throughput and orchestration share), the Dask scale-out and the memory benchmark; prints one
 table and writes it, with the machine description and the command, to ``docs/performance.md``.
 """
@@ -27,7 +27,7 @@ BENCHMARKS = ("micro", "fleet", "scaleout", "memory")
 
 
 def _micro(quick: bool) -> list[dict]:
-    from . import divergence_map, fit, gate_cost
+    from . import divergence_map, fit, gate_cost, startup
 
     rows = []
     for r in divergence_map.main(quick=quick):
@@ -45,6 +45,7 @@ def _micro(quick: bool) -> list[dict]:
             "ratio": r["ratio"], "ratio_text": f"{r['ratio']:.1f}x", "goal": ">= 10x, log-likelihood not lower by 0.01", "met": r["met"],
         })
     rows += gate_cost.main(quick=quick)
+    rows += startup.main(quick=quick)
     return rows
 
 

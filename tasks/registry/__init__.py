@@ -34,7 +34,6 @@ from .loader import (
     RejectedEntry,
     check_registry,
     load_registry,
-    load_registry_task,
     parse_registry,
     require_digest,
 )
@@ -92,3 +91,13 @@ __all__ = [
     "require_digest",
     "load_registry_task",
 ]
+
+
+def __getattr__(name: str):
+    """``load_registry_task`` on first use: its module imports Prefect, which checking a registry does not need."""
+    if name == "load_registry_task":
+        from .task import load_registry_task
+
+        globals()[name] = load_registry_task
+        return load_registry_task
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

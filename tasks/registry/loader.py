@@ -26,7 +26,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import yaml
-from prefect import task
 from pydantic import TypeAdapter, ValidationError
 
 from .._io import sha256_bytes
@@ -59,7 +58,6 @@ __all__ = [
     "load_registry",
     "check_registry",
     "require_digest",
-    "load_registry_task",
 ]
 
 _ENTRY = TypeAdapter(RegistryEntry)
@@ -452,12 +450,3 @@ def _transient(task, task_run, state) -> bool:
         return False
     return False
 
-
-@task(name="load-registry", retries=2, retry_delay_seconds=2, retry_condition_fn=_transient, persist_result=False)
-def load_registry_task(path: str) -> Registry:
-    """Prefect task: read and validate the registry (retried for transient I/O errors only).
-
-    Registry-level problems raise :class:`RegistryError` and fail the run before any model is
-    audited, without a retry; entry-level problems come back in ``Registry.rejected``.
-    """
-    return load_registry(path)
