@@ -296,7 +296,8 @@ def stage_inputs(
     fingerprints: dict[str, dict] = {}
     source_errors: dict[str, str] = {}
     for source_name in sorted(by_source):
-        source = registry.sources[source_name]
+        template = registry.sources[source_name]
+        source = template.for_as_of(as_of)  # a dated export: the as-of date's folder or file
         models = by_source[source_name]
         # the windows, plus the periods the source may lag behind the as-of date
         span_days = FREQUENCY_DAYS.get(source.frequency, 31) * (max(m.staged_window for m in models) + 2 + source.staleness_allowed) + 2
@@ -315,6 +316,8 @@ def stage_inputs(
                     if fp is None and source_name not in source_errors:
                         fp = fingerprint_source(source, registry.base_dir, io_errors=io_errors)
                         fingerprints[source_name] = fp.to_dict()
+                        if source is not template:  # the manifest keeps the template beside the resolved uri
+                            fingerprints[source_name]["uri_template"] = template.uri
                     if source_name not in source_errors:
                         wanted = sorted({m.series for m in models[chunk_start : chunk_start + group]})
                         data = read_series(source, wanted, columns, start=start, end=end, base_dir=registry.base_dir, io_errors=io_errors, times=times)

@@ -46,6 +46,7 @@ from fitaudit.core.exceptions import FitauditError, InputError
 
 from ._io import canonical_json, sha256_bytes, sha256_file
 from .frequencies import FIXED_STEPS, FREQUENCIES, SUBDAILY, calendar_offset, canonical_frequency
+from .uris import filter_expression
 from .registry import SourceEntry
 
 __all__ = [
@@ -435,10 +436,11 @@ def _time_bound(t: pa.DataType, bound: np.datetime64, upper: bool) -> pa.Scalar 
 
 
 def _filter(schema: pa.Schema, src: SourceEntry, keys: list[str], start, end) -> ds.Expression | None:
-    expr = None
+    expr = filter_expression(src.filter)  # the source's own row filter (None: every row)
     values = _key_values(schema.field(src.key).type, keys)
     if values is not None:
-        expr = pc.field(src.key).isin(values)
+        term = pc.field(src.key).isin(values)
+        expr = term if expr is None else expr & term
     time_type = _plain_type(schema.field(src.time).type)
     for bound, upper in ((start, False), (end, True)):
         if bound is None:
@@ -616,6 +618,7 @@ def read_series(
             skipped.append(
                 (_relative(loc, f.path), f"has no {src.key!r} or {src.time!r} column, so its rows cannot be attributed")
             )
+    _check_row_filter(loc, readable)
     needed = [src.key, src.time] + columns
     chunks = None
     if _agree(readable, needed):
@@ -629,6 +632,28 @@ def read_series(
         skipped += more_skipped
     missing_everywhere = [c for c in columns if not any(c in f.schema.names for f in readable)]
     return _assemble(src, loc, readable, chunks, keys, columns, start_ns, end_ns, skipped, missing_everywhere)
+
+
+def _check_row_filter(loc: _Location, readable: list[_File]) -> None:
+    """Refuse a row filter that names a column no file has or compares a column with a value of
+    another type (an :class:`ExtractError` naming the term and the fix)."""
+    src = loc.source
+    for column, op, value in src.filter:
+        files = [f for f in readable if column in f.schema.names]
+        if not files:
+            available = _listing(dict.fromkeys(n for f in readable for n in f.schema.names))
+            raise loc.fail(
+                f"the filter column {column!r} is in none of the files (available columns: {available})",
+                f"correct sources.{src.name}.filter in the registry",
+            )
+        try:
+            ds.dataset([], schema=files[0].schema).scanner(filter=filter_expression([(column, op, value)]), columns=[])
+        except (pa.ArrowException, TypeError, ValueError) as exc:
+            raise loc.fail(
+                f"the filter term [{column}, {op}, {value!r}] does not apply to column {column!r} of type "
+                f"{files[0].schema.field(column).type} ({exc})",
+                f"give sources.{src.name}.filter a value of the column's type",
+            ) from None
 
 
 def _scan_file_by_file(loc, readable, src, keys, columns, start, end, times: frozenset = frozenset()) -> tuple[list[_Chunk], list[tuple[str, str]]]:

@@ -1,4 +1,4 @@
-"""Staging (fitaudit.tasks.batches): stale extracts.
+"""Staging (fitaudit.tasks.batches): stale extracts, dated exports and row filters.
 
 A source whose last observation lags the as-of date by more than its ``max_staleness`` periods
 gives its models an ``insufficient`` problem naming the last timestamp, the as-of date and the
@@ -9,6 +9,7 @@ business-day offset for ``B``).
 from __future__ import annotations
 
 import datetime as dt
+import pathlib
 import sys
 
 import numpy as np
@@ -80,3 +81,69 @@ def test_a_source_stale_beyond_the_span_read_names_its_own_last_timestamp(tmp_pa
     items = _stage(tmp_path, {"a": {"date": days(), "y": ar1(rng)}}, AS_OF + dt.timedelta(days=2000))
     (problem,) = _stale(items["m-a"])
     assert f"last observation of the source is {AS_OF}" in problem["message"]
+
+
+# ------------------------------------------------------------------------------------------
+# dated exports: an as-of template in the uri, a declarative row filter
+
+
+def _dated_fleet(tmp_path, uri: str, **source_extra):
+    """Two dated export folders, each holding series a and b up to its own date."""
+    rng = np.random.default_rng(11)
+    full = {k: {"date": days(), "y": ar1(rng), "region": np.array(["north" if k == "a" else "south"] * 240, dtype=object)} for k in ("a", "b")}
+    for lag in (0, 1):
+        day = AS_OF - dt.timedelta(days=lag)
+        n = 240 - lag
+        cut = {k: {c: v[:n] for c, v in cols.items()} for k, cols in full.items()}
+        write_parquet(tmp_path / "exports" / day.strftime("%Y%m%d") / "sales.parquet", long_table(cut))
+    fleet = Fleet(tmp_path)
+    fleet.source("x", uri, **source_extra)
+    for k in ("a", "b"):
+        fleet.model(f"m-{k}", "x", k)
+    return load_registry(fleet.write())
+
+
+def test_a_dated_uri_reads_the_as_of_folder_and_the_manifest_names_it(tmp_path):
+    reg = _dated_fleet(tmp_path, "exports/{as_of:%Y%m%d}/sales.parquet")
+    for as_of, rows in ((AS_OF, 240), (AS_OF - dt.timedelta(days=1), 239)):
+        staged = batches.stage_inputs(reg, as_of, tmp_path / f"work-{as_of}")
+        fp = staged.fingerprints["x"]
+        assert fp["uri"] == f"exports/{as_of:%Y%m%d}/sales.parquet"  # the resolved uri
+        assert fp["uri_template"] == "exports/{as_of:%Y%m%d}/sales.parquet"
+        assert [pathlib.Path(f["path"]).parent.name for f in fp["files"]] == [f"{as_of:%Y%m%d}"]
+        assert fp["rows"] == 2 * rows
+        items = {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+        assert items["m-a"].problems == () and str(items["m-a"].time[-1])[:10] == str(as_of)
+    # no folder for the date: every model of the source gets an error naming the resolved uri
+    late = AS_OF + dt.timedelta(days=1)
+    staged = batches.stage_inputs(reg, late, tmp_path / "work-late")
+    items = {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+    (problem,) = items["m-b"].problems
+    assert problem["severity"] == "error"
+    assert f"uri 'exports/{late:%Y%m%d}/sales.parquet'" in problem["message"] and "does not exist" in problem["message"]
+
+
+def test_a_plain_uri_records_no_template(tmp_path):
+    reg = _dated_fleet(tmp_path, f"exports/{AS_OF:%Y%m%d}/sales.parquet")
+    fp = batches.stage_inputs(reg, AS_OF, tmp_path / "work").fingerprints["x"]
+    assert "uri_template" not in fp and fp["uri"] == f"exports/{AS_OF:%Y%m%d}/sales.parquet"
+
+
+def test_a_row_filter_keeps_only_its_rows(tmp_path):
+    reg = _dated_fleet(tmp_path, "exports/{as_of:%Y%m%d}/sales.parquet", filter=[["region", "in", ["north"]]])
+    items = {i.model_id: i for b in batches.stage_inputs(reg, AS_OF, tmp_path / "work").batches for i in batches.read_batch(b.path)}
+    assert items["m-a"].problems == () and items["m-a"].y.size == 200
+    assert items["m-b"].y.size == 0  # the filter dropped series b: reported as absent, not audited
+    assert items["m-b"].problems and all(p["severity"] in ("error", "insufficient") for p in items["m-b"].problems)
+
+
+@pytest.mark.parametrize("term, needle", [
+    (["colour", "=", "red"], "the filter column 'colour' is in none of the files"),
+    (["y", ">=", "high"], "the filter term [y, >=, 'high'] does not apply to column 'y' of type double"),
+])
+def test_a_broken_row_filter_is_a_per_source_error(tmp_path, term, needle):
+    reg = _dated_fleet(tmp_path, "exports/{as_of:%Y%m%d}/sales.parquet", filter=[term])
+    staged = batches.stage_inputs(reg, AS_OF, tmp_path / "work")
+    assert needle in staged.source_errors["x"] and "Fix: " in staged.source_errors["x"]
+    items = {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+    assert all(any(needle in p["message"] for p in items[m].problems) for m in ("m-a", "m-b"))

@@ -201,6 +201,34 @@ def test_business_day_holidays():
     assert "holidays" not in parse_registry(VALID, FILE).sources["demand"].to_dict()
 
 
+def test_dated_uri_and_row_filter():
+    import datetime as dt
+
+    text = _edit("uri: data/demand.parquet", "uri: 'exports/{as_of:%Y-%m-%d}/demand.parquet'")
+    text = _edit("    partitioning: null\n", "    partitioning: null\n    filter: [[region, in, [n, s]], [x, '>=', 3]]\n", text)
+    reg = parse_registry(text, FILE)
+    assert reg.source_problems == ()
+    source = reg.sources["demand"]
+    assert source.for_as_of(dt.date(2026, 12, 3)).uri == "exports/2026-12-03/demand.parquet"
+    assert parse_registry(VALID, FILE).sources["demand"].for_as_of(dt.date(2026, 12, 3)).uri == "data/demand.parquet"
+    assert source.filter == (("region", "in", ("n", "s")), ("x", ">=", 3))
+    assert source.to_dict()["filter"] == [["region", "in", ["n", "s"]], ["x", ">=", 3]]
+    assert "filter" not in parse_registry(VALID, FILE).sources["demand"].to_dict()
+
+
+@pytest.mark.parametrize("old, new, field, message", [
+    ("uri: data/demand.parquet", "uri: 'x/{date}/a.parquet'", "sources.demand.uri", r"may hold only \{as_of\}"),
+    ("uri: data/demand.parquet", "uri: 'x/{as_of/a.parquet'", "sources.demand.uri", r"braces are not a valid template"),
+    ("    partitioning: null\n", "    partitioning: null\n    filter: [[a, '~', 1]]\n", "sources.demand.filter[0]", r"operator '~' is not one of"),
+    ("    partitioning: null\n", "    partitioning: null\n    filter: [[a, in, 3]]\n", "sources.demand.filter[0]", r"must be a non-empty list"),
+    ("    partitioning: null\n", "    partitioning: null\n    filter: [[a, '=']]\n", "sources.demand.filter[0]", r"a list of three"),
+    ("    partitioning: null\n", "    partitioning: null\n    filter: a\n", "sources.demand.filter", r"expected a list of \[column, op, value\] terms"),
+])
+def test_bad_dated_uri_or_filter(old, new, field, message):
+    (problem,) = parse_registry(_edit(old, new), FILE).source_problems
+    assert problem.field == field and re.search(message, problem.message), str(problem)
+
+
 def test_max_staleness_is_a_source_setting():
     reg = parse_registry(_edit("frequency: D", "frequency: D\n    max_staleness: 3"), FILE)
     assert reg.source_problems == () and reg.sources["demand"].staleness_allowed == 3

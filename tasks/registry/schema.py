@@ -61,6 +61,7 @@ from fitaudit.core.vocabulary import PARTITION_KINDS, SETTING_BOUNDS
 
 from .._io import json_ready
 from ..frequencies import ALIASES, FREQUENCIES, canonical_frequency, default_staleness
+from ..uris import FILTER_OPS, filter_term_problem, resolve_uri, uri_template_problem
 from .problems import listing, suggest
 
 __all__ = [
@@ -266,6 +267,23 @@ SeriesKey = Annotated[
 IsoDate = Annotated[
     str | None, BeforeValidator(_iso_date, json_schema_input_type=dt.date | None), expect("a date like 2026-06-30")
 ]
+def _uri_template(value: str) -> str:
+    problem = uri_template_problem(value)
+    if problem:
+        raise invalid(problem)
+    return value
+
+
+def _filter_term(value: Any) -> tuple:
+    problem = filter_term_problem(value)
+    if problem:
+        raise invalid(problem)
+    column, op, v = value
+    return (column, op, tuple(v) if isinstance(v, list) else v)
+
+
+#: One row-filter term ``[column, op, value]`` (see :mod:`fitaudit.tasks.uris`).
+FilterTerm = Annotated[Any, AfterValidator(_filter_term)]
 #: A calendar date, kept as ``YYYY-MM-DD``.
 HolidayDate = Annotated[str, BeforeValidator(_iso_date, json_schema_input_type=dt.date), expect("a date like 2026-12-25")]
 PositiveNumber = bounded(Interval(float, 0.0, None, "neither"), "a positive number")
@@ -485,8 +503,10 @@ class SourceEntry(Block):
     internal_fields = ("name", "line")
 
     name: SkipJsonSchema[str] = ""
-    uri: Text = Field(
-        description="A Parquet file, a folder of them, or a URI (s3://..., gs://...); relative to the registry's folder."
+    uri: Annotated[Text, AfterValidator(_uri_template)] = Field(
+        description="A Parquet file, a folder of them, or a URI (s3://..., gs://...); relative to the registry's folder. "
+        "It may hold the run's as-of date, e.g. exports/{as_of:%Y-%m-%d}/sales.parquet (strftime codes; a literal "
+        "brace is doubled); the manifest records the resolved URI."
     )
     key: Text = Field(description="The series key column.")
     time: Text = Field(description="The timestamp column.")
@@ -505,6 +525,12 @@ class SourceEntry(Block):
     )
     holidays: Annotated[tuple[HolidayDate, ...], expect("a list of dates like [2026-12-25, 2026-12-26]")] = Field(
         (), description="Dates business-day sources (frequency B) have no observation for."
+    )
+    filter: Annotated[tuple[FilterTerm, ...], expect("a list of [column, op, value] terms, e.g. [[region, in, [north, south]]]")] = Field(
+        (),
+        description="Rows to keep, every term holding: [column, op, value] with op one of "
+        + ", ".join(FILTER_OPS)
+        + " (pyarrow's dataset filter terms; a list value for in and not in).",
     )
     max_staleness: Annotated[
         Annotated[int, Field(ge=0)] | None, expect("a whole number of periods (0 or more), or null for the default")
@@ -552,15 +578,24 @@ class SourceEntry(Block):
         return tuple(sorted(set(days)))
 
     def to_dict(self) -> dict:
-        """Plain-Python view (``forecasts``, ``holidays`` and ``max_staleness`` only when the source declares them)."""
+        """Plain-Python view (``forecasts``, ``holidays``, ``filter`` and ``max_staleness`` only when the source declares them)."""
         out = super().to_dict()
         if not self.forecasts:
             del out["forecasts"]
         if not self.holidays:
             del out["holidays"]
+        if not self.filter:
+            del out["filter"]
+        else:
+            out["filter"] = [[c, op, list(v) if isinstance(v, tuple) else v] for c, op, v in self.filter]
         if self.max_staleness is None:
             del out["max_staleness"]
         return out
+
+    def for_as_of(self, as_of: dt.date) -> SourceEntry:
+        """This source with its URI's as-of template filled in (itself when the URI has none)."""
+        resolved = resolve_uri(self.uri, as_of)
+        return self if resolved == self.uri else self.model_copy(update={"uri": resolved})
 
     @property
     def staleness_allowed(self) -> int:
