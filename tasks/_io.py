@@ -9,11 +9,18 @@ import json
 import math
 import os
 import pathlib
+import re
 import tempfile
 from collections.abc import Iterable, Iterator
 from typing import Any
 
-__all__ = ["canonical_json", "sha256_bytes", "sha256_file", "write_once", "write_once_chunks", "utc_now", "json_ready"]
+__all__ = ["SAFE_ID", "canonical_json", "sha256_bytes", "sha256_file", "write_once", "write_once_chunks", "utc_now", "json_ready"]
+
+#: Model ids, source names, run ids and other path segments usable as file names: a letter or
+#: digit, then up to 127 letters, digits, ``_``, ``.`` or ``-``.  ``\Z`` (not ``$``) so that a
+#: trailing newline never matches.  Re-exported as ``fitaudit.tasks.registry.SAFE_ID``; it lives
+#: here so that the archive and the parameter store use it without loading the registry schema.
+SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,127}\Z")
 
 _CHUNK = 1 << 20
 

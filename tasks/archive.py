@@ -65,9 +65,8 @@ from typing import Any
 
 from fitaudit.core.exceptions import FitauditError, InputError
 
-from ._io import canonical_json, sha256_bytes, sha256_file, utc_now, write_once, write_once_chunks
+from ._io import SAFE_ID, canonical_json, sha256_bytes, sha256_file, utc_now, write_once, write_once_chunks
 from .params import ParameterStoreError, ParameterVersion, list_versions, promotion_fields, verify_params, write_fields
-from .registry import SAFE_ID
 
 __all__ = [
     "SAFE_NAME",

@@ -31,8 +31,7 @@ from pydantic import BaseModel, BeforeValidator, ConfigDict, ValidationError
 
 from fitaudit.core.exceptions import FitauditError
 
-from ._io import canonical_json, json_ready, sha256_bytes, utc_now, write_once
-from .registry import SAFE_ID
+from ._io import SAFE_ID, canonical_json, json_ready, sha256_bytes, utc_now, write_once
 
 __all__ = [
     "STATUSES",

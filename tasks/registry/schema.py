@@ -59,7 +59,7 @@ from fitaudit.core.noise import NOISE_LAWS, get_law
 from fitaudit.core.settings import AuditSettings
 from fitaudit.core.vocabulary import PARTITION_KINDS, SETTING_BOUNDS
 
-from .._io import json_ready
+from .._io import SAFE_ID, json_ready  # SAFE_ID: model ids and source names usable as file names
 from ..frequencies import ALIASES, FREQUENCIES, canonical_frequency, default_staleness
 from ..uris import FILTER_OPS, filter_term_problem, resolve_uri, uri_template_problem
 from .problems import listing, suggest
@@ -89,10 +89,6 @@ __all__ = [
     "RegistryDocument",
     "registry_json_schema",
 ]
-
-#: Model ids and source names usable as file names: a letter or digit, then up to 127 letters,
-#: digits, ``_``, ``.`` or ``-``.  ``\Z`` (not ``$``) so that a trailing newline never matches.
-SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,127}\Z")
 
 #: Longest model id: its report page ``<id>.html`` must itself be a :data:`SAFE_ID` name.
 MAX_ID_LENGTH = 128 - len(".html")
