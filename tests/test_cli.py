@@ -152,7 +152,7 @@ def test_a_registry_problem_is_never_retried():
 
 
 @pytest.mark.server
-def test_run_logs_reach_the_prefect_api_under_a_telling_name(demo, prefect_server, tmp_path):
+def test_run_logs_reach_the_prefect_api_under_a_telling_name(prefect_server, tmp_path):
     import asyncio
 
     from prefect.client.orchestration import get_client
@@ -161,11 +161,8 @@ def test_run_logs_reach_the_prefect_api_under_a_telling_name(demo, prefect_serve
 
     env = dict(os.environ, PREFECT_API_URL=prefect_server, PREFECT_HOME=str(tmp_path / "prefect"))  # a fresh home: fitaudit writes its logging.yml
     env.pop("PREFECT_LOGGING_CONFIG_PATH", None)
-    archive = tmp_path / "archive"
-    import shutil
-
-    shutil.copytree(demo["archive"], archive)
-    cmd = [sys.executable, "-m", "fitaudit.flows.cli", "run", demo["registry"], "--archive", str(archive), "--as-of", DEMO_AS_OF.isoformat(), "--models", "demand-d-02"]
+    own = write_demo(tmp_path / "demo")  # the module's demo archive is altered on purpose by the verify test
+    cmd = [sys.executable, "-m", "fitaudit.flows.cli", "run", own["registry"], "--archive", own["archive"], "--as-of", DEMO_AS_OF.isoformat(), "--models", "demand-d-02"]
     done = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=600)
     assert done.returncode == EXIT_OK, done.stderr
     assert " INFO " not in done.stderr  # the console stays quiet: INFO goes to the API only

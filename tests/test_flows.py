@@ -118,6 +118,7 @@ def test_dask_runner_gives_the_same_results(demo, first_run, tmp_path):
 
 def test_a_second_run_names_the_first_run_and_the_chain_head_it_extends(demo, prefect_server, tmp_path):
     import datetime as dt
+    import html
 
     from fitaudit.flows.audit import audit_flow
     from fitaudit.tasks.archive import chain_head, read_chain
@@ -141,7 +142,7 @@ def test_a_second_run_names_the_first_run_and_the_chain_head_it_extends(demo, pr
     assert manifest["extends"] == {"chain_head": after_first[0], "chain_seq": after_first[1], "previous_run_id": first["run_id"], "previous_as_of": first["as_of"]}
     # the demo registers 45 models fitted here (one entry rejected) and 4 forecast entries
     assert manifest["scope"] == {"models_requested": ["demand-d-02"], "registry_models": 49, "unreadable_sources": []}
-    assert "This is a partial run: only 1 of the registry's 49 models were audited (--models)" in page2
+    assert "This is a partial run: only 1 of the registry's 49 models were audited (--models)" in html.unescape(page2)
     assert chain_head(archive)[1] == after_first[1] + 1  # the second run's entry follows the head its page names
 
 
