@@ -120,6 +120,12 @@ def build_parser() -> argparse.ArgumentParser:
     gsub.required = True
     gc = gsub.add_parser("check", help="validate a registry and print every problem with file:line")
     gc.add_argument("registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)")
+    gc.add_argument(
+        "--deep", action="store_true",
+        help="also open every source (files, columns, filter, a sample of series against the calendar) and import "
+        "every user mean function",
+    )
+    gc.add_argument("--as-of", type=_date, default=None, help="with --deep: the date dated uris are resolved for (default: today)")
     gsub.add_parser(
         "schema",
         help="print the registry's JSON Schema, for editors (completion and checks while typing)",
@@ -240,9 +246,14 @@ def _cmd_registry_schema(args) -> int:
 def _cmd_registry_check(args) -> int:
     from fitaudit.tasks.registry import check_registry
 
-    problems = check_registry(args.registry)
+    if args.deep:
+        from fitaudit.tasks.deepcheck import deep_check
+
+        problems = deep_check(args.registry, as_of=args.as_of)
+    else:
+        problems = check_registry(args.registry)
     if not problems:
-        print(f"{args.registry}: valid")
+        print(f"{args.registry}: valid" + (" (sources opened, mean functions imported)" if args.deep else ""))
         return EXIT_OK
     for p in problems:
         print(str(p))

@@ -46,8 +46,8 @@ from fitaudit.core.exceptions import FitauditError, InputError
 
 from ._io import canonical_json, sha256_bytes, sha256_file
 from .frequencies import FIXED_STEPS, FREQUENCIES, SUBDAILY, calendar_offset, canonical_frequency
-from .uris import filter_expression
 from .registry import SourceEntry
+from .uris import filter_expression
 
 __all__ = [
     "ExtractError",
