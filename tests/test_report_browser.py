@@ -193,8 +193,9 @@ def run_folder(tmp_path_factory) -> tuple[pathlib.Path, dict]:
     walk = np.cumsum(rng.standard_t(2, size=300))
     settings = AuditSettings(replicates=99, audit_window=60, change_permutations=99)
     cases = [("steady-demand", y), ("wandering-demand", walk)]
-    results = apply_fleet_rules([audit_series(s, arima, production=production, settings=settings, label=n) for n, s in cases], q=0.1)
-    records = [model_record({"id": n, "safe_id": n, "owner": "team <b>a</b>"}, as_of="2026-11-30", verdict=r.verdict, reasons=r.reasons,
+    days = np.arange(np.datetime64("2026-11-30") - 299, np.datetime64("2026-11-30") + 1)  # daily, ending at the as-of date
+    results = apply_fleet_rules([audit_series(s, arima, production=production, settings=settings, label=n, timestamps=days) for n, s in cases], q=0.1)
+    records = [model_record({"id": n, "safe_id": n, "owner": "team <b>a</b>", "tier": 2}, as_of="2026-11-30", verdict=r.verdict, reasons=r.reasons,
                             audit=r.to_dict(), spec_text=arima.describe(), settings=settings.to_dict(),
                             history=[{"as_of": "2026-11-23", "verdict": "refit", "r_max": 1.2, "p_value": 0.01}])
                for (n, _), r in zip(cases, results)]
