@@ -56,8 +56,7 @@ _LOCAL_SEARCHES = 3
 #: (AirPassengers ETS(A,N,A) and ETS(A,Ad,N), austourists ETS(A,A,N)) and a small-alpha maximum beside a
 #: local one at the lower bound (nottem ETS(A,N,A), alpha 0.031) are missed from interior points alone
 #: (tests/test_smoothing.py compares every spec with statsmodels' ETSModel on packaged series).
-_START_AXES = {"alpha": (0.01, 0.03, 0.1, 0.3, 0.6, 0.9), "beta": (0.01, 0.1, 0.5, 0.9), "gamma": (0.01, 0.1, 0.5, 0.9),
-               "phi": (0.8, 0.9, 0.98)}
+_START_AXES = {"alpha": (0.01, 0.03, 0.1, 0.3, 0.9), "beta": (0.01, 0.1, 0.9), "gamma": (0.01, 0.2, 0.9), "phi": (0.8, 0.98)}
 #: Stand-in for non-finite one-step errors during the multiplicative-season search (series scaled to mean 1).
 _NONFINITE_PENALTY = 1e6
 
