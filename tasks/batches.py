@@ -25,7 +25,14 @@ from fitaudit.core.models import model_from_dict
 
 from ._io import json_ready
 from .archive import ProductionSnapshot, production_snapshot
-from .extracts import ExtractError, ExtractFingerprint, fingerprint_source, read_series, series_problems
+from .extracts import (
+    ExtractError,
+    ExtractFingerprint,
+    FingerprintCache,
+    fingerprint_source,
+    read_series,
+    series_problems,
+)
 from .frequencies import FREQUENCY_DAYS, periods_after
 from .params import ParameterStoreError, production_version
 from .registry import EntryBase, ForecastEntry, ModelEntry, Registry, entry_from_dict
@@ -36,6 +43,9 @@ __all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_
 #: stop the audit).  Every other problem (a missing or mistyped column, mixed time zones, rows
 #: without a timestamp) concerns the series as a whole and is kept as the reader found it.
 ROW_KINDS = frozenset({"duplicate-time", "unsorted", "off-grid", "gap", "non-finite", "missing-exogenous"})
+
+#: The fingerprint cache of an archive (private, like ``.staging``; never part of a run).
+FINGERPRINT_CACHE = ".fingerprints/cache.json"
 
 #: A series (or a whole source) whose last observation lags the as-of date by more than its
 #: source's ``max_staleness`` periods.
@@ -294,6 +304,8 @@ def stage_inputs(
 
     batches: list[BatchRef] = []
     fingerprints: dict[str, dict] = {}
+    # digests of source files already hashed, by version (path, size, modification time)
+    cache = FingerprintCache(archive / FINGERPRINT_CACHE) if archive is not None else None
     source_errors: dict[str, str] = {}
     for source_name in sorted(by_source):
         template = registry.sources[source_name]
@@ -314,7 +326,7 @@ def stage_inputs(
                 data = None
                 try:
                     if fp is None and source_name not in source_errors:
-                        fp = fingerprint_source(source, registry.base_dir, io_errors=io_errors)
+                        fp = fingerprint_source(source, registry.base_dir, io_errors=io_errors, cache=cache)
                         fingerprints[source_name] = fp.to_dict()
                         if source is not template:  # the manifest keeps the template beside the resolved uri
                             fingerprints[source_name]["uri_template"] = template.uri
@@ -344,6 +356,8 @@ def stage_inputs(
             _write_batch(path, metas, arrays)
             batches.append(BatchRef(str(path), tuple(e.id for e in chunk)))
         del data
+        if cache is not None:
+            cache.save()
     return StagedRun(tuple(batches), fingerprints, source_errors, snapshot.to_dict() if snapshot is not None else {})
 
 

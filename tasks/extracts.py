@@ -22,15 +22,21 @@ fix; ``error`` problems become that model's ``error`` verdict, ``insufficient`` 
 ``insufficient`` verdict.  Large finite values (1e300) pass: the numerics deal with scale.
 
 :func:`fingerprint_source` records what was read for the manifest: every file's path, size and
-SHA-256, the rows, the time range, the columns, and the unreadable files.
+SHA-256, the rows, the time range, the columns, and the unreadable files.  With a
+:class:`FingerprintCache` (staging keeps one in the archive) a file's SHA-256 is computed once per
+version, the version being its path, size and modification time; a file modified within
+:data:`RACY_SECONDS` of its hashing is hashed again next time (its timestamp cannot tell a later
+write in the same tick apart).
 """
 
 from __future__ import annotations
 
 import datetime as _dt
 import hashlib
+import json
 import os
 import pathlib
+import time as _time
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -56,6 +62,8 @@ __all__ = [
     "SeriesProblem",
     "SeriesData",
     "fingerprint_source",
+    "FingerprintCache",
+    "RACY_SECONDS",
     "read_series",
     "series_problems",
 ]
@@ -271,6 +279,77 @@ def _relative(loc: _Location, path: str) -> str:
         return pathlib.PurePosixPath(path.replace(os.sep, "/")).name
     root = loc.path.replace(os.sep, "/").rstrip("/")
     return path.replace(os.sep, "/")[len(root) + 1 :]
+
+
+#: A file whose modification time is this close to the moment it was hashed is not cached.
+RACY_SECONDS = 2.0
+
+
+class FingerprintCache:
+    """SHA-256 digests of source files by version (path, size, modification time), in one JSON file.
+
+    Parameters
+    ----------
+    path : path-like
+        The cache file (staging uses ``<archive>/.fingerprints/cache.json``); created by
+        :meth:`save`.  A missing or unreadable file is an empty cache: the cache only saves
+        work, it never decides what the manifest says about bytes it has not seen.
+
+    Notes
+    -----
+    The same trade as ``make`` and ``rsync``: a file rewritten with the same size and
+    modification time keeps its old digest.  ``hits`` and ``misses`` count lookups.
+    """
+
+    def __init__(self, path: str | os.PathLike):
+        self.path = pathlib.Path(path)
+        self.hits = 0
+        self.misses = 0
+        self._changed = False
+        try:
+            data = json.loads(self.path.read_text(encoding="utf-8"))
+            self._entries = {k: v for k, v in data.get("files", {}).items() if isinstance(v, dict)}
+        except (OSError, ValueError, AttributeError):
+            self._entries = {}
+
+    @staticmethod
+    def _key(fs: pafs.FileSystem, path: str) -> str:
+        return f"{fs.type_name}:{path}"
+
+    def get(self, fs: pafs.FileSystem, path: str, size: int, mtime_ns: int | None) -> str | None:
+        """The cached digest of this version of the file, or None."""
+        entry = self._entries.get(self._key(fs, path))
+        if mtime_ns is not None and entry and entry.get("size") == size and entry.get("mtime_ns") == mtime_ns:
+            self.hits += 1
+            return entry.get("sha256")
+        self.misses += 1
+        return None
+
+    def put(self, fs: pafs.FileSystem, path: str, size: int, mtime_ns: int | None, sha256: str, hashed_at: float) -> None:
+        """Remember a digest (not for a file without a modification time or modified too recently)."""
+        if mtime_ns is None or not sha256 or hashed_at - mtime_ns / 1e9 < RACY_SECONDS:
+            return
+        self._entries[self._key(fs, path)] = {"size": size, "mtime_ns": mtime_ns, "sha256": sha256}
+        self._changed = True
+
+    def save(self) -> None:
+        """Write the cache (atomically: a temporary file renamed over it) when it changed."""
+        if not self._changed:
+            return
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = self.path.with_name(f".{self.path.name}.{os.getpid()}.tmp")
+        tmp.write_bytes(canonical_json({"files": self._entries}))
+        os.replace(tmp, self.path)
+        self._changed = False
+
+
+def _mtimes(loc: _Location, paths: list[str]) -> dict[str, int | None]:
+    """Modification time (ns) of each file, None where the file system gives none."""
+    try:
+        infos = loc.fs.get_file_info(paths)
+    except (pa.ArrowException, OSError):
+        return dict.fromkeys(paths)
+    return {p: (None if i.mtime_ns is None else int(i.mtime_ns)) for p, i in zip(paths, infos)}
 
 
 def _hash_file(loc: _Location, path: str) -> str:
@@ -1027,7 +1106,8 @@ def _non_finite(time: np.ndarray, values: np.ndarray, name: str, exogenous: bool
 # --------------------------------------------------------------------------------------------
 # fingerprint
 # --------------------------------------------------------------------------------------------
-def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None = None, *, io_errors: str = "skip") -> ExtractFingerprint:
+def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None = None, *, io_errors: str = "skip",
+                       cache: FingerprintCache | None = None) -> ExtractFingerprint:
     """Hash every file of a source and summarise what it holds (for the manifest).
 
     Parameters
@@ -1039,6 +1119,8 @@ def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None =
     io_errors : {"skip", "raise"}
         As in :func:`read_series` (``"skip"``: a file whose bytes cannot be read is listed as
         unreadable).
+    cache : FingerprintCache, optional
+        Digests of file versions already hashed (reused; new ones added; the caller saves it).
 
     Returns
     -------
@@ -1051,13 +1133,19 @@ def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None =
     """
     loc = _locate(source, base_dir, io_errors)
     files = _inspect_files(loc)
+    mtimes = _mtimes(loc, [f.path for f in files]) if cache is not None else {}
     prints, listing, unreadable = [], [], []
     for f in files:
-        try:
-            digest = _hash_file(loc, f.path)
-        except OSError as exc:
-            loc.pass_io_error(exc)
-            digest = ""  # the bytes cannot even be read
+        digest = cache.get(loc.fs, f.path, f.size, mtimes.get(f.path)) if cache is not None else None
+        if digest is None:
+            try:
+                hashed_at = _time.time()
+                digest = _hash_file(loc, f.path)
+                if cache is not None:
+                    cache.put(loc.fs, f.path, f.size, mtimes.get(f.path), digest, hashed_at)
+            except OSError as exc:
+                loc.pass_io_error(exc)
+                digest = ""  # the bytes cannot even be read
         prints.append(FileFingerprint(f.path, f.size, digest))
         listing.append([_relative(loc, f.path), f.size, digest])
         if f.schema is None or not digest:

@@ -9,6 +9,7 @@ business-day offset for ``B``).
 from __future__ import annotations
 
 import datetime as dt
+import os
 import pathlib
 import sys
 
@@ -147,3 +148,21 @@ def test_a_broken_row_filter_is_a_per_source_error(tmp_path, term, needle):
     assert needle in staged.source_errors["x"] and "Fix: " in staged.source_errors["x"]
     items = {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
     assert all(any(needle in p["message"] for p in items[m].problems) for m in ("m-a", "m-b"))
+
+
+def test_staging_keeps_the_fingerprint_cache_in_the_archive(tmp_path, monkeypatch):
+    from fitaudit.tasks import extracts
+
+    reg = _dated_fleet(tmp_path, f"exports/{AS_OF:%Y%m%d}/sales.parquet")
+    data = tmp_path / "exports" / f"{AS_OF:%Y%m%d}" / "sales.parquet"
+    st = data.stat()
+    os.utime(data, ns=(st.st_atime_ns, st.st_mtime_ns - 3_600_000_000_000))  # an hour old: past the racy window
+    archive = tmp_path / "archive"
+    first = batches.stage_inputs(reg, AS_OF, tmp_path / "w1", archive_root=archive)
+    assert (archive / batches.FINGERPRINT_CACHE).is_file()
+    hashed = []
+    real = extracts._hash_file
+    monkeypatch.setattr(extracts, "_hash_file", lambda loc, path: hashed.append(path) or real(loc, path))
+    second = batches.stage_inputs(reg, AS_OF, tmp_path / "w2", archive_root=archive, model_ids=["m-a"])  # a one-model refit
+    assert hashed == []  # the digest came from the cache
+    assert second.fingerprints["x"] == first.fingerprints["x"]  # the manifest's record is the same

@@ -568,3 +568,61 @@ def test_fingerprint_sizes_and_hashes(tmp_path):
     assert fingerprint_source(_source(moved), tmp_path).digest == fp.digest  # content, not location
     _write(moved / "south.parquet", _table("south", _days("2024-01-01", 30)))
     assert fingerprint_source(_source(moved), tmp_path).digest != fp.digest
+
+
+# ------------------------------------------------------------------------------------------
+# fingerprint cache: a file's digest computed once per version (path, size, modification time)
+# ------------------------------------------------------------------------------------------
+def _age(path, seconds: float = 3600.0) -> None:
+    """Set a file's modification time ``seconds`` into the past (past the racy window)."""
+    st = os.stat(path)
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns - int(seconds * 1e9)))
+
+
+def test_fingerprint_cache_reuses_digests_of_unchanged_files(tmp_path, monkeypatch):
+    for key in ("north", "south"):
+        _write(tmp_path / "x" / f"{key}.parquet", _table(key, _days("2024-01-01", 31)))
+        _age(tmp_path / "x" / f"{key}.parquet")
+    cache_file = tmp_path / "archive" / ".fingerprints" / "cache.json"
+    cache = extracts.FingerprintCache(cache_file)
+    first = fingerprint_source(_source("x"), tmp_path, cache=cache)
+    assert (cache.hits, cache.misses) == (0, 2)
+    cache.save()
+    assert cache_file.is_file()
+
+    hashed = []
+    real = extracts._hash_file
+    monkeypatch.setattr(extracts, "_hash_file", lambda loc, path: hashed.append(path) or real(loc, path))
+    again = extracts.FingerprintCache(cache_file)  # a later run: read back from the archive
+    second = fingerprint_source(_source("x"), tmp_path, cache=again)
+    assert hashed == [] and (again.hits, again.misses) == (2, 0)
+    assert second.to_dict() == first.to_dict()
+    for f in second.files:
+        with open(f.path, "rb") as fh:
+            assert f.sha256 == hashlib.sha256(fh.read()).hexdigest()  # source: hashlib
+
+    # a new version of one file (other bytes, other modification time) is hashed again
+    _write(tmp_path / "x" / "south.parquet", _table("south", _days("2024-01-01", 30)))
+    _age(tmp_path / "x" / "south.parquet", 60.0)
+    third = fingerprint_source(_source("x"), tmp_path, cache=again)
+    assert [os.path.basename(p) for p in hashed] == ["south.parquet"]
+    assert third.digest != first.digest
+    with open(tmp_path / "x" / "south.parquet", "rb") as fh:
+        assert third.files[1].sha256 == hashlib.sha256(fh.read()).hexdigest()  # source: hashlib
+
+
+def test_a_file_modified_just_now_is_not_cached(tmp_path):
+    _write(tmp_path / "x" / "north.parquet", _table("north", _days("2024-01-01", 31)))  # mtime: now
+    cache = extracts.FingerprintCache(tmp_path / "cache.json")
+    fingerprint_source(_source("x"), tmp_path, cache=cache)
+    fingerprint_source(_source("x"), tmp_path, cache=cache)
+    assert (cache.hits, cache.misses) == (0, 2)  # within RACY_SECONDS of hashing: never trusted
+
+
+def test_an_unreadable_cache_is_an_empty_one(tmp_path):
+    _write(tmp_path / "x" / "north.parquet", _table("north", _days("2024-01-01", 31)))
+    _age(tmp_path / "x" / "north.parquet")
+    (tmp_path / "cache.json").write_text("{not json")
+    cache = extracts.FingerprintCache(tmp_path / "cache.json")
+    fp = fingerprint_source(_source("x"), tmp_path, cache=cache)
+    assert cache.misses == 1 and fp.files[0].sha256 == hashlib.sha256((tmp_path / "x" / "north.parquet").read_bytes()).hexdigest()
