@@ -182,3 +182,15 @@ def test_run_logs_reach_the_prefect_api_under_a_telling_name(prefect_server, tmp
     assert any(f"audit {run_id} as of {DEMO_AS_OF.isoformat()}" in m for _, m, _ in messages)  # the flow's own summary line
     assert any(task is not None and "batch " in m for _, m, task in messages)  # a task run's line
     assert any("chain head" in m for _, m, _ in messages)  # the publication names the head it made
+
+
+def test_flows_stop_after_the_policys_timeout(demo):
+    from fitaudit.flows.audit import audit_flow
+    from fitaudit.flows.cli import _timeout
+    from fitaudit.tasks.registry import load_registry
+
+    reg = load_registry(demo["registry"])
+    assert reg.policy.flow_timeout_minutes == 240  # source: the registry schema's default (tasks/registry/schema.py Policy)
+    assert _timeout(audit_flow, reg).timeout_seconds == 240 * 60
+    assert _timeout(audit_flow, reg, scale=5).timeout_seconds == 5 * 240 * 60  # a backfill of five dates
+    assert audit_flow.timeout_seconds is None  # the decorated flow itself is left as it is
