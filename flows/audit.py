@@ -92,14 +92,27 @@ def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
 # never retried: a failure after the run folder's rename would be retried as "already published";
 # recover() settles an interrupted publication instead, and the original error is what the user sees
 @task(name="publish-run", cache_policy=NO_CACHE, persist_result=False)
-def publish_task(archive: str, head: dict, summary: dict, staged: list[StagedRecord], meta: dict, manifest: dict, run_id: str) -> dict:
+def publish_task(
+    archive: str, head: dict, summary: dict, staged: list[StagedRecord], meta: dict, manifest: dict, run_id: str
+) -> dict:
     """Write the run folder atomically from the staged records and pages, refresh the archive index."""
     published = publish_staged(archive, head, summary, staged, meta, manifest, run_id=run_id)
     render_archive_index_file(archive)
     entry = read_chain(archive)[published.seq - 1]  # the run's own chain entry: the head it made
-    get_run_logger().info("published run %s: manifest SHA-256 %s; chain head %s (seq %d)", published.run_id, published.manifest_sha256, entry["hash"], published.seq)
-    return {"run_id": published.run_id, "path": str(pathlib.Path(archive) / published.path), "manifest_sha256": published.manifest_sha256,
-            "seq": published.seq, "chain_head": {"hash": entry["hash"], "seq": published.seq}}
+    get_run_logger().info(
+        "published run %s: manifest SHA-256 %s; chain head %s (seq %d)",
+        published.run_id,
+        published.manifest_sha256,
+        entry["hash"],
+        published.seq,
+    )
+    return {
+        "run_id": published.run_id,
+        "path": str(pathlib.Path(archive) / published.path),
+        "manifest_sha256": published.manifest_sha256,
+        "seq": published.seq,
+        "chain_head": {"hash": entry["hash"], "seq": published.seq},
+    }
 
 
 @task(name="publish-events", cache_policy=NO_CACHE, persist_result=False)
@@ -192,8 +205,13 @@ def _run_name() -> str:
 
 # one task thread per CPU (at least two): each batch task waits on one local worker process; the
 # command line and the deployments set the timeout from the policy (flow_timeout_minutes)
-@flow(name="fitaudit-audit", flow_run_name=_run_name, persist_result=False, log_prints=False,
-      task_runner=ThreadPoolTaskRunner(max_workers=max(2, default_processes())))
+@flow(
+    name="fitaudit-audit",
+    flow_run_name=_run_name,
+    persist_result=False,
+    log_prints=False,
+    task_runner=ThreadPoolTaskRunner(max_workers=max(2, default_processes())),
+)
 def audit_flow(
     registry: str,
     as_of: dt.date | None = None,
@@ -258,7 +276,13 @@ def audit_flow(
         t0 = time.perf_counter()
         # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
         # them (twice per task call) looking for futures, which costs seconds on a big fleet
-        stage_args = dict(archive_root=archive, histories=quote(history.records), model_ids=quote(ids), batch_size=batch_size or settings.batch_size, workers=_workers())
+        stage_args = dict(
+            archive_root=archive,
+            histories=quote(history.records),
+            model_ids=quote(ids),
+            batch_size=batch_size or settings.batch_size,
+            workers=_workers(),
+        )
         try:
             staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
         except OSError:
@@ -271,7 +295,11 @@ def audit_flow(
             timings["calibration_s"] = time.perf_counter() - t0
             t0 = time.perf_counter()
             futures = audit_batch_task.map(
-                [b.path for b in staged.batches], unmapped(reg.policy), unmapped(cache), unmapped(workers), unmapped(settings.model_time_limit_s)
+                [b.path for b in staged.batches],
+                unmapped(reg.policy),
+                unmapped(cache),
+                unmapped(workers),
+                unmapped(settings.model_time_limit_s),
             )
             if progress:
                 _report_progress(futures, staged)
@@ -310,15 +338,27 @@ def audit_flow(
                 "code_commit": code_commit(),
                 "prefect_version": package_versions()["prefect"],
                 **{k: extends[k] for k in ("archive_head", "previous_run_id", "previous_as_of", "fleet_trend")},
+                # earlier audits whose results could not be used as history: the run page names them
+                "history_problems": [dict(p) for p in history.problems],
                 # p-values adjusted over a partial run: the run page says so
                 "scope": {
-                    "models_requested": None if wanted is None else len(ids) + sum(1 for r in reg.rejected if r.id in wanted),
+                    "models_requested": None
+                    if wanted is None
+                    else len(ids) + sum(1 for r in reg.rejected if r.id in wanted),
                     "registry_models": len(reg.models) + len(reg.rejected),
                     "unreadable_sources": sorted(staged.source_errors),
                 },
             }
             parcels, names, spills = _render_inputs(final, batches, staged)
-            rendered = render_outcomes_task.map(parcels, unmapped(head), unmapped(meta), unmapped(str(work / "publish")), names, spills, unmapped(workers))
+            rendered = render_outcomes_task.map(
+                parcels,
+                unmapped(head),
+                unmapped(meta),
+                unmapped(str(work / "publish")),
+                names,
+                spills,
+                unmapped(workers),
+            )
             staged_records = [r for part in rendered.result() for r in part]
             timings["render_s"] = time.perf_counter() - t0
         per_model = {o.model_id: o.timings for o in final}
@@ -355,15 +395,25 @@ def audit_flow(
         if published["seq"] != extends["chain_seq"] + 1:
             logger.warning(
                 "run %s: %d chain entries were appended while it ran; its page names the head before them (seq %s), its own entry is seq %d",
-                run_id, published["seq"] - extends["chain_seq"] - 1, extends["chain_seq"], published["seq"],
+                run_id,
+                published["seq"] - extends["chain_seq"] - 1,
+                extends["chain_seq"],
+                published["seq"],
             )
         from fitaudit.tasks.refit import refit_targets
 
         todo = refit_targets(recs)  # refit and respecify verdicts; forecast entries are re-estimated by their owners
         run = {
-            "run_id": run_id, "as_of": as_of.isoformat(), "report_path": report, "registry_sha256": reg.sha256, "archive": archive,
-            "report_base_url": settings.report_base_url, "policy": head["run"]["policy"], "manifest_sha256": published["manifest_sha256"],
-            "chain_head": published["chain_head"], "refit_models": todo,
+            "run_id": run_id,
+            "as_of": as_of.isoformat(),
+            "report_path": report,
+            "registry_sha256": reg.sha256,
+            "archive": archive,
+            "report_base_url": settings.report_base_url,
+            "policy": head["run"]["policy"],
+            "manifest_sha256": published["manifest_sha256"],
+            "chain_head": published["chain_head"],
+            "refit_models": todo,
         }
         events_task(quote(recs), summary, run)
         counts = manifest["counts"]
@@ -375,8 +425,12 @@ def audit_flow(
 
             if todo:
                 refits = refit_flow(
-                    registry=registry, model_ids=todo, archive=archive, as_of=as_of,
-                    reason=f"verdicts of audit run {run_id}", registry_sha256=reg.sha256,
+                    registry=registry,
+                    model_ids=todo,
+                    archive=archive,
+                    as_of=as_of,
+                    reason=f"verdicts of audit run {run_id}",
+                    registry_sha256=reg.sha256,
                 )
     finally:
         scratch.close()

@@ -41,9 +41,22 @@ from fitaudit.core.vocabulary import ADJUSTMENT_LABELS, VERDICTS
 
 from .registry import SAFE_ID
 from .registry.schema import DaysToAct
-from .results import SEVERITY, is_forecast_record, is_forecast_record
+from .results import SEVERITY, is_forecast_record
 
-__all__ = ["STATUS", "HEAT_BINS", "CAUTION", "environment", "render_run", "page_context", "render_model_page", "render_index_page", "render_method_page", "render_archive_index", "record_action", "days_to_act"]
+__all__ = [
+    "STATUS",
+    "HEAT_BINS",
+    "CAUTION",
+    "environment",
+    "render_run",
+    "page_context",
+    "render_model_page",
+    "render_index_page",
+    "render_method_page",
+    "render_archive_index",
+    "record_action",
+    "days_to_act",
+]
 
 _SYMBOLS = {"pass": "✓", "refit": "↻", "respecify": "⚑", "insufficient": "◌", "error": "✕"}
 #: Status symbol and word for each verdict (colour is never the only signal, WCAG 2.1 SC 1.4.1).
@@ -158,7 +171,10 @@ def _svg(c: Mapping[str, Any]) -> markupsafe.Markup:
         f'width="{px(c["w"])}" height="{px(c["h"])}">\n<title id="{cid}-t">{esc(c["title"])}</title>\n<desc id="{cid}-d">{esc(c["desc"])}</desc>\n',
         "".join(map(line, c["grid"])),
         "\n",
-        "".join(f'<rect x="{px(r["x"])}" y="{px(r["y"])}" width="{px(r["w"])}" height="{px(r["h"])}" class="{esc(r["cls"])}"/>' for r in c["rects"]),
+        "".join(
+            f'<rect x="{px(r["x"])}" y="{px(r["y"])}" width="{px(r["w"])}" height="{px(r["h"])}" class="{esc(r["cls"])}"/>'
+            for r in c["rects"]
+        ),
         "\n",
         "".join(map(line, c["lines"])),
         "\n",
@@ -166,9 +182,15 @@ def _svg(c: Mapping[str, Any]) -> markupsafe.Markup:
         "\n",
         "".join(f'<path d="{esc(p["d"])}" class="{esc(p["cls"])}"/>' for p in c["paths"]),
         "\n",
-        "".join(f'<circle cx="{px(o["cx"])}" cy="{px(o["cy"])}" r="{px(o["r"])}" class="{esc(o["cls"])}"/>' for o in c["circles"]),
+        "".join(
+            f'<circle cx="{px(o["cx"])}" cy="{px(o["cy"])}" r="{px(o["r"])}" class="{esc(o["cls"])}"/>'
+            for o in c["circles"]
+        ),
         "\n",
-        "".join(f'<text x="{px(t["x"])}" y="{px(t["y"])}" text-anchor="{esc(t["anchor"])}" class="{esc(t["cls"])}">{esc(t["text"])}</text>' for t in c["texts"]),
+        "".join(
+            f'<text x="{px(t["x"])}" y="{px(t["y"])}" text-anchor="{esc(t["anchor"])}" class="{esc(t["cls"])}">{esc(t["text"])}</text>'
+            for t in c["texts"]
+        ),
         "\n</svg>\n",
     ]
     return markupsafe.Markup("".join(out))
@@ -257,7 +279,9 @@ def _value_text(value: Any) -> str:
             return "none"
         if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value) and len(value) > 8:
             return f"{len(value)} values from {_format_number(value[0], 4)} to {_format_number(value[-1], 4)}"
-        return ", ".join(_value_text(v) for v in value[:20]) + (f", … ({len(value) - 20} more)" if len(value) > 20 else "")
+        return ", ".join(_value_text(v) for v in value[:20]) + (
+            f", … ({len(value) - 20} more)" if len(value) > 20 else ""
+        )
     if isinstance(value, Mapping):
         return "; ".join(f"{_text(k)}: {_value_text(v)}" for k, v in value.items())
     return _text(value)
@@ -315,21 +339,40 @@ def _nice_ticks(lo: float, hi: float, count: int = 5) -> list[float]:
 
 
 def _chart(chart_id: str, width: float, height: float, title: str, desc: str) -> dict:
-    return {"id": chart_id, "cls": "plot", "w": width, "h": height, "title": title, "desc": desc,
-            "grid": [], "rects": [], "lines": [], "polylines": [], "paths": [], "circles": [], "texts": []}
+    return {
+        "id": chart_id,
+        "cls": "plot",
+        "w": width,
+        "h": height,
+        "title": title,
+        "desc": desc,
+        "grid": [],
+        "rects": [],
+        "lines": [],
+        "polylines": [],
+        "paths": [],
+        "circles": [],
+        "texts": [],
+    }
 
 
-def _axes(chart: dict, x: _Scale, y: _Scale, xticks: Sequence[float], yticks: Sequence[float], xlabel: str, ylabel: str) -> None:
+def _axes(
+    chart: dict, x: _Scale, y: _Scale, xticks: Sequence[float], yticks: Sequence[float], xlabel: str, ylabel: str
+) -> None:
     """Frame, ticks, gridlines and axis titles."""
     left, right, bottom, top = x.p0, x.p1, y.p0, y.p1
     for t in yticks:
         py = y(t)
         chart["grid"].append({"x1": left, "y1": py, "x2": right, "y2": py, "cls": "gl"})
-        chart["texts"].append({"x": left - 4, "y": py + 3.5, "text": _format_number(t, 2), "cls": "tk", "anchor": "end"})
+        chart["texts"].append(
+            {"x": left - 4, "y": py + 3.5, "text": _format_number(t, 2), "cls": "tk", "anchor": "end"}
+        )
     for t in xticks:
         px = x(t)
         chart["lines"].append({"x1": px, "y1": bottom, "x2": px, "y2": bottom + 4, "cls": "ax"})
-        chart["texts"].append({"x": px, "y": bottom + 15, "text": _format_number(t, 2), "cls": "tk", "anchor": "middle"})
+        chart["texts"].append(
+            {"x": px, "y": bottom + 15, "text": _format_number(t, 2), "cls": "tk", "anchor": "middle"}
+        )
     chart["lines"].append({"x1": left, "y1": bottom, "x2": right, "y2": bottom, "cls": "ax"})
     chart["lines"].append({"x1": left, "y1": bottom, "x2": left, "y2": top, "cls": "ax"})
     chart["texts"].append({"x": (left + right) / 2, "y": bottom + 30, "text": xlabel, "cls": "lb", "anchor": "middle"})
@@ -351,7 +394,10 @@ def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     cw, ch, left, top = 40.0, 18.0, 178.0, 16.0
     width, height = left + nb * cw + 12, top + na * ch + 46
     values = [[_float(grid[i][j]) for j in range(nb)] for i in range(na)]
-    fail = [[v is not None and not bool(infinite[i][j]) and v > 1.0 for j, v in enumerate(row)] for i, row in enumerate(values)]
+    fail = [
+        [v is not None and not bool(infinite[i][j]) and v > 1.0 for j, v in enumerate(row)]
+        for i, row in enumerate(values)
+    ]
 
     def cell_x(j: int) -> float:
         return left + j * cw
@@ -379,10 +425,14 @@ def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
             x0, y0 = cell_x(j), cell_y(i)
             if infinite[i][j]:
                 cls, shown = "hinf", "∞"
-                chart["texts"].append({"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "∞", "cls": "sym", "anchor": "middle"})
+                chart["texts"].append(
+                    {"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "∞", "cls": "sym", "anchor": "middle"}
+                )
             elif v is None:
                 cls, shown = "hna", "n/a"
-                chart["texts"].append({"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "–", "cls": "sym", "anchor": "middle"})
+                chart["texts"].append(
+                    {"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "–", "cls": "sym", "anchor": "middle"}
+                )
             else:
                 cls, shown = _heat_class(v), _format_number(v)
             chart["rects"].append({"x": x0, "y": y0, "w": cw, "h": ch, "cls": cls})
@@ -404,17 +454,40 @@ def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
             if j + 1 >= nb or not fail[i][j + 1]:
                 segments.append(f"M{_coord(x0 + cw)} {_coord(y0)}V{_coord(y0 + ch)}")
     # a frame around the grid: the lightest cells need no contrast with the page to be seen as part of the map
-    chart["paths"].append({"d": f"M{_coord(left)} {_coord(top)}H{_coord(left + nb * cw)}V{_coord(top + na * ch)}H{_coord(left)}Z", "cls": "frame"})
+    chart["paths"].append(
+        {
+            "d": f"M{_coord(left)} {_coord(top)}H{_coord(left + nb * cw)}V{_coord(top + na * ch)}H{_coord(left)}Z",
+            "cls": "frame",
+        }
+    )
     if segments:
         chart["paths"].append({"d": "".join(segments), "cls": "edge"})
     # axes: alpha ticks on the left, beta ticks below
     for i, a in enumerate(alphas):
         if i % 2 == 0 or na <= 9:
-            chart["texts"].append({"x": left - 5, "y": cell_y(i) + ch / 2 + 4, "text": _format_number(a), "cls": "tk", "anchor": "end"})
+            chart["texts"].append(
+                {"x": left - 5, "y": cell_y(i) + ch / 2 + 4, "text": _format_number(a), "cls": "tk", "anchor": "end"}
+            )
     for j, b in enumerate(betas):
         if j % 2 == 0 or nb <= 5:
-            chart["texts"].append({"x": cell_x(j) + cw / 2, "y": top + na * ch + 14, "text": _format_number(b), "cls": "tk", "anchor": "middle"})
-    chart["texts"].append({"x": left + nb * cw / 2, "y": top + na * ch + 32, "text": "β (weight of the data in the scaling mean)", "cls": "lb", "anchor": "middle"})
+            chart["texts"].append(
+                {
+                    "x": cell_x(j) + cw / 2,
+                    "y": top + na * ch + 14,
+                    "text": _format_number(b),
+                    "cls": "tk",
+                    "anchor": "middle",
+                }
+            )
+    chart["texts"].append(
+        {
+            "x": left + nb * cw / 2,
+            "y": top + na * ch + 32,
+            "text": "β (weight of the data in the scaling mean)",
+            "cls": "lb",
+            "anchor": "middle",
+        }
+    )
     chart["texts"].append({"x": left - 30, "y": top - 4, "text": "α", "cls": "lb", "anchor": "middle"})
     # classical members (model scaling = beta 0 of a geometric or power grid) and the maximum
     members_marked = []
@@ -429,7 +502,9 @@ def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
             cx = cell_x(0) + cw / 2
             chart["circles"].append({"cx": cx, "cy": cy, "r": 4.5, "cls": "mem"})
             chart["lines"].append({"x1": left - 50, "y1": cy, "x2": left - 38, "y2": cy, "cls": "lead"})
-            chart["texts"].append({"x": left - 53, "y": cy + 3.5, "text": CLASSICAL_MEMBER_LABELS[name], "cls": "mt", "anchor": "end"})
+            chart["texts"].append(
+                {"x": left - 53, "y": cy + 3.5, "text": CLASSICAL_MEMBER_LABELS[name], "cls": "mt", "anchor": "end"}
+            )
             members_marked.append(name)
     a_max, b_max = _float(check.get("alpha_max")), _float(check.get("beta_max"))
     max_point = None
@@ -437,7 +512,12 @@ def _heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
         i = min(range(na), key=lambda k: abs(alphas[k] - a_max))
         j = min(range(nb), key=lambda k: abs(betas[k] - b_max))
         cx, cy = cell_x(j) + cw / 2, cell_y(i) + ch / 2
-        chart["paths"].append({"d": f"M{_coord(cx)} {_coord(cy - 7)}L{_coord(cx + 7)} {_coord(cy)}L{_coord(cx)} {_coord(cy + 7)}L{_coord(cx - 7)} {_coord(cy)}Z", "cls": "mx"})
+        chart["paths"].append(
+            {
+                "d": f"M{_coord(cx)} {_coord(cy - 7)}L{_coord(cx + 7)} {_coord(cy)}L{_coord(cx)} {_coord(cy + 7)}L{_coord(cx - 7)} {_coord(cy)}Z",
+                "cls": "mx",
+            }
+        )
         max_point = {"alpha": _format_number(a_max), "beta": _format_number(b_max)}
     return {
         "chart": chart,
@@ -491,21 +571,42 @@ def _histogram(check: Mapping[str, Any], chart_id: str, label: str) -> dict | No
     desc = (
         f"{label}: observed density of the {total} standardised residuals in {len(counts)} bins from "
         f"{_format_number(edges[0])} to {_format_number(edges[-1])}"
-        + (", with the density of the noise law as a line." if theory else "; the noise law is discrete, so no density is drawn.")
+        + (
+            ", with the density of the noise law as a line."
+            if theory
+            else "; the noise law is discrete, so no density is drawn."
+        )
     )
     chart = _chart(chart_id, width, height, f"Residual histogram of the {label.lower()}", desc)
-    _axes(chart, x, y, _nice_ticks(edges[0], edges[-1], 6), _nice_ticks(0.0, top_value, 4), "standardised residual", "density")
+    _axes(
+        chart,
+        x,
+        y,
+        _nice_ticks(edges[0], edges[-1], 6),
+        _nice_ticks(0.0, top_value, 4),
+        "standardised residual",
+        "density",
+    )
     for k, d in enumerate(observed):
         if d > 0:
             x0, x1 = x(edges[k]), x(edges[k + 1])
-            chart["rects"].append({"x": x0 + 0.5, "y": y(d), "w": max(x1 - x0 - 1, 0.5), "h": y(0) - y(d), "cls": "bar"})
+            chart["rects"].append(
+                {"x": x0 + 0.5, "y": y(d), "w": max(x1 - x0 - 1, 0.5), "h": y(0) - y(d), "cls": "bar"}
+            )
     centres = [(edges[k] + edges[k + 1]) / 2 for k in range(len(counts))]
     if theory:
-        chart["polylines"].append({"points": " ".join(f"{_coord(x(c))},{_coord(y(d))}" for c, d in zip(centres, theory)), "cls": "ref"})
+        chart["polylines"].append(
+            {"points": " ".join(f"{_coord(x(c))},{_coord(y(d))}" for c, d in zip(centres, theory)), "cls": "ref"}
+        )
     rows = [
-        {"bin": f"{_format_number(edges[k])} to {_format_number(edges[k + 1])}", "count": counts[k],
-         "observed": _format_number(observed[k]), "noise": _format_number(theory[k]) if theory else "n/a"}
-        for k in range(len(counts)) if counts[k] or (theory and theory[k] > 1e-3)
+        {
+            "bin": f"{_format_number(edges[k])} to {_format_number(edges[k + 1])}",
+            "count": counts[k],
+            "observed": _format_number(observed[k]),
+            "noise": _format_number(theory[k]) if theory else "n/a",
+        }
+        for k in range(len(counts))
+        if counts[k] or (theory and theory[k] > 1e-3)
     ]
     return {"chart": chart, "rows": rows, "has_density": bool(theory)}
 
@@ -515,7 +616,11 @@ def _qq(check: Mapping[str, Any], chart_id: str, label: str) -> dict | None:
     theo, samp = plots.get("qq_theoretical"), plots.get("qq_sample")
     if not theo or not samp:
         return None
-    pairs = [(a, b) for a, b in zip((_float(t) for t in theo), (_float(s) for s in samp)) if a is not None and b is not None and math.isfinite(a) and math.isfinite(b)]
+    pairs = [
+        (a, b)
+        for a, b in zip((_float(t) for t in theo), (_float(s) for s in samp))
+        if a is not None and b is not None and math.isfinite(a) and math.isfinite(b)
+    ]
     if not pairs:
         return None
     lo = min(min(p) for p in pairs)
@@ -548,9 +653,10 @@ def _acf(check: Mapping[str, Any], chart_id: str, label: str) -> dict | None:
     x = _Scale(0.0, lags + 1.0, 48, width - 12)
     y = _Scale(-lim, lim, height - 42, 18)
     outside = sum(1 for v in values if v is not None and band is not None and abs(v) > band)
-    desc = (
-        f"{label}: autocorrelations of the residuals at lags 1 to {lags}"
-        + (f"; dashed lines at ±{_format_number(band)} (approximate 95 % band). {outside} of {lags} lags fall outside it." if band else ".")
+    desc = f"{label}: autocorrelations of the residuals at lags 1 to {lags}" + (
+        f"; dashed lines at ±{_format_number(band)} (approximate 95 % band). {outside} of {lags} lags fall outside it."
+        if band
+        else "."
     )
     chart = _chart(chart_id, width, height, f"Residual autocorrelations of the {label.lower()}", desc)
     _axes(chart, x, y, _nice_ticks(1.0, float(lags), 6), _nice_ticks(-lim, lim, 5), "lag", "autocorrelation")
@@ -596,7 +702,9 @@ def _history_chart(points: Sequence[dict], chart_id: str) -> dict | None:
             run = []
             continue
         run.append(f"{_coord(x(k))},{_coord(y(p['r']))}")
-        chart["texts"].append({"x": x(k), "y": y(p["r"]) + 5, "text": p["status"]["symbol"], "cls": "glyph", "anchor": "middle"})
+        chart["texts"].append(
+            {"x": x(k), "y": y(p["r"]) + 5, "text": p["status"]["symbol"], "cls": "glyph", "anchor": "middle"}
+        )
     if len(run) > 1:
         chart["polylines"].insert(0, {"points": " ".join(run), "cls": "line"})
     return {"chart": chart}
@@ -610,7 +718,9 @@ def _meta_view(meta: Mapping[str, Any]) -> dict:
         raise InputError(f"render_run: meta must be a dict of run metadata; got {type(meta).__name__}")
     missing = [k for k in _REQUIRED_META if meta.get(k) in (None, "")]
     if missing:
-        raise InputError(f"render_run: meta lacks {', '.join(missing)}; pass every one of {', '.join(_REQUIRED_META)} (archive_head and previous_run_id are optional)")
+        raise InputError(
+            f"render_run: meta lacks {', '.join(missing)}; pass every one of {', '.join(_REQUIRED_META)} (archive_head and previous_run_id are optional)"
+        )
     view = {k: _text(meta[k], _SHORT_TEXT) for k in _REQUIRED_META}
     view["archive_head"] = _text(meta.get("archive_head")) or None
     view["previous_run_id"] = _text(meta.get("previous_run_id")) or None
@@ -623,7 +733,11 @@ def _meta_view(meta: Mapping[str, Any]) -> dict:
     }
     view["fleet_trend"] = [
         {"as_of": _text(t.get("as_of")), "passed": int(t["passed"]), "registered": int(t["registered"])}
-        for t in meta.get("fleet_trend") or () if isinstance(t, Mapping) and isinstance(t.get("passed"), int) and isinstance(t.get("registered"), int) and t["registered"] > 0
+        for t in meta.get("fleet_trend") or ()
+        if isinstance(t, Mapping)
+        and isinstance(t.get("passed"), int)
+        and isinstance(t.get("registered"), int)
+        and t["registered"] > 0
     ]
     return view
 
@@ -638,9 +752,13 @@ def _check_models(models: Sequence[Mapping[str, Any]]) -> None:
                 f"(pattern {SAFE_ID.pattern}); build the record with fitaudit.tasks.results.model_record from the registry's safe_id"
             )
         if safe.lower() in seen:
-            raise InputError(f"render_run: models {seen[safe.lower()]!r} and {str(m.get('id'))[:80]!r} share the file name {safe!r} (case-insensitively); safe ids must be unique")
+            raise InputError(
+                f"render_run: models {seen[safe.lower()]!r} and {str(m.get('id'))[:80]!r} share the file name {safe!r} (case-insensitively); safe ids must be unique"
+            )
         if m.get("verdict") not in STATUS:
-            raise InputError(f"render_run: model {str(m.get('id'))[:80]!r} has verdict {m.get('verdict')!r}; expected one of {', '.join(STATUS)}")
+            raise InputError(
+                f"render_run: model {str(m.get('id'))[:80]!r} has verdict {m.get('verdict')!r}; expected one of {', '.join(STATUS)}"
+            )
         seen[safe.lower()] = str(m.get("id"))[:80]
 
 
@@ -662,13 +780,27 @@ def _summary_view(doc: Mapping[str, Any]) -> dict:
             x0 += w
     adj = s.get("adjustment") or {}
     method = ADJUSTMENT_LABELS.get(adj.get("method"), _text(adj.get("method")))
-    bar = _chart("summary-bar", width, 28.0, "Verdicts of the registered models",
-                 "Share of each verdict among the registered models: " + "; ".join(f"{c['status']['word']} {c['value']}" for c in counts) + ".")
+    bar = _chart(
+        "summary-bar",
+        width,
+        28.0,
+        "Verdicts of the registered models",
+        "Share of each verdict among the registered models: "
+        + "; ".join(f"{c['status']['word']} {c['value']}" for c in counts)
+        + ".",
+    )
     bar["cls"] = "stack"
     for seg in segments:
         bar["rects"].append({"x": seg["x"], "y": 2.0, "w": max(seg["w"] - 1.5, 0.5), "h": 24.0, "cls": seg["cls"]})
     return {
-        "false_flags": _false_flag_sentence(s["checks"], _float(s.get("expected_false_flags_unadjusted")), _float(adj.get("level")), adj.get("method"), method, _float(adj.get("q"))),
+        "false_flags": _false_flag_sentence(
+            s["checks"],
+            _float(s.get("expected_false_flags_unadjusted")),
+            _float(adj.get("level")),
+            adj.get("method"),
+            method,
+            _float(adj.get("q")),
+        ),
         "counts": counts,
         "registered": registered,
         "audited": s["audited"],
@@ -683,7 +815,9 @@ def _summary_view(doc: Mapping[str, Any]) -> dict:
     }
 
 
-def _false_flag_sentence(checks: int, expected: float | None, level: float | None, key: str | None, method: str, q: float | None) -> str:
+def _false_flag_sentence(
+    checks: int, expected: float | None, level: float | None, key: str | None, method: str, q: float | None
+) -> str:
     """The expected number of false flags if every model were healthy, and what the adjustment does."""
     text = (
         f"This run scored {checks} checks (the production and refit checks that ran). If every model were healthy, "
@@ -693,12 +827,18 @@ def _false_flag_sentence(checks: int, expected: float | None, level: float | Non
         text += (
             f" Verdicts use p-values adjusted across the run with the {method} procedure at q = {_format_number(q)}, which keeps the "
             f"expected share of false flags among the flagged checks at or below {_format_number(None if q is None else 100 * q)} %"
-            + (", whatever the dependence between the tests." if key == "by" else " (for independent or positively dependent tests).")
+            + (
+                ", whatever the dependence between the tests."
+                if key == "by"
+                else " (for independent or positively dependent tests)."
+            )
         )
     elif key == "bonferroni":
         text += f" Verdicts use Bonferroni-adjusted p-values at {_format_number(q)}, which keeps the chance of any false flag in the run at or below {_format_number(q)}."
     else:
-        text += " Verdicts use unadjusted p-values, so about that many false flags are to be expected among the exceptions."
+        text += (
+            " Verdicts use unadjusted p-values, so about that many false flags are to be expected among the exceptions."
+        )
     return text
 
 
@@ -721,8 +861,12 @@ def record_action(m: Mapping[str, Any], policy: Mapping[str, Any] | None, as_of:
     """
     policy = policy or {}
     action = owner_action(
-        m["verdict"], escalated=bool(m.get("escalated")), as_of=as_of, days=days_to_act(policy).for_tier(m.get("tier")),
-        refit_policy=str(policy.get("refit_policy", "approval")), refittable=not is_forecast_record(m),
+        m["verdict"],
+        escalated=bool(m.get("escalated")),
+        as_of=as_of,
+        days=days_to_act(policy).for_tier(m.get("tier")),
+        refit_policy=str(policy.get("refit_policy", "approval")),
+        refittable=not is_forecast_record(m),
     )
     if is_forecast_record(m) and m["verdict"] in FORECAST_ACTIONS:  # forecasts made elsewhere: nothing was refitted
         return {**action, "action": FORECAST_ACTIONS[m["verdict"]]}
@@ -740,24 +884,31 @@ def _tier_legend(policy: Mapping[str, Any] | None) -> str:
     )
 
 
-def _exceptions_view(models: Sequence[Mapping[str, Any]], policy: Mapping[str, Any] | None = None, as_of: str = "") -> list[dict]:
+def _exceptions_view(
+    models: Sequence[Mapping[str, Any]], policy: Mapping[str, Any] | None = None, as_of: str = ""
+) -> list[dict]:
     rows = []
-    for m in sorted((m for m in models if m["verdict"] != "pass"), key=lambda m: (m.get("severity", SEVERITY[m["verdict"]]), m["id"])):
+    for m in sorted(
+        (m for m in models if m["verdict"] != "pass"),
+        key=lambda m: (m.get("severity", SEVERITY[m["verdict"]]), m["id"]),
+    ):
         exc = m.get("exception") or {}
         action = record_action(m, policy, as_of) if as_of else {"action": "", "due": None}
-        rows.append({
-            "action": _text(action["action"]),
-            "due": _text(action["due"]) or None,
-            "link": _model_link(m),
-            "status": _status(m["verdict"]),
-            "owner": _text(m.get("owner"), _SHORT_TEXT),
-            "tier": _text(m.get("tier")),
-            "since": _text(exc.get("first_seen")),
-            "consecutive": exc.get("consecutive"),
-            "movement": _MOVEMENT.get(m.get("movement"), _text(m.get("movement"))),
-            "escalated": bool(m.get("escalated")),
-            "reason": _text(m["reasons"][0], 600) if m.get("reasons") else "No reason was recorded.",
-        })
+        rows.append(
+            {
+                "action": _text(action["action"]),
+                "due": _text(action["due"]) or None,
+                "link": _model_link(m),
+                "status": _status(m["verdict"]),
+                "owner": _text(m.get("owner"), _SHORT_TEXT),
+                "tier": _text(m.get("tier")),
+                "since": _text(exc.get("first_seen")),
+                "consecutive": exc.get("consecutive"),
+                "movement": _MOVEMENT.get(m.get("movement"), _text(m.get("movement"))),
+                "escalated": bool(m.get("escalated")),
+                "reason": _text(m["reasons"][0], 600) if m.get("reasons") else "No reason was recorded.",
+            }
+        )
     return rows
 
 
@@ -767,14 +918,22 @@ def _watch_view(models: Sequence[Mapping[str, Any]]) -> list[dict]:
     for m in models:
         notes = [str(r) for r in m.get("reasons") or () if str(r).startswith(CAUTION_PREFIX)]
         if m["verdict"] == "pass" and notes:
-            rows.append({"link": _model_link(m), "owner": _text(m.get("owner"), _SHORT_TEXT), "notes": [_text(n, 600) for n in notes]})
+            rows.append(
+                {
+                    "link": _model_link(m),
+                    "owner": _text(m.get("owner"), _SHORT_TEXT),
+                    "notes": [_text(n, 600) for n in notes],
+                }
+            )
     return rows
 
 
 def _trend_view(trend: Sequence[Mapping[str, Any]], summary: Mapping[str, Any], as_of: str) -> dict | None:
     """The share of passing models at the last audits and now, as one line of text and a small chart."""
     registered = summary.get("registered") or 0
-    points = [dict(t) for t in trend] + ([{"as_of": as_of, "passed": summary.get("pass", 0), "registered": registered}] if registered else [])
+    points = [dict(t) for t in trend] + (
+        [{"as_of": as_of, "passed": summary.get("pass", 0), "registered": registered}] if registered else []
+    )
     if len(points) < 2:
         return None
     for p in points:
@@ -783,33 +942,68 @@ def _trend_view(trend: Sequence[Mapping[str, Any]], summary: Mapping[str, Any], 
     width, height, pad = 180.0, 28.0, 4.0
     x = _Scale(0, len(points) - 1, pad, width - pad)
     y = _Scale(0.0, 100.0, height - pad, pad)
-    chart = _chart("fleet-trend", width, height, "Share of passing models over the last audits",
-                   "Share of the registered models that passed, per audit: " + "; ".join(f"{p['as_of']}: {p['passed']} of {p['registered']} ({p['share']:.0f} %)" for p in points) + ".")
+    chart = _chart(
+        "fleet-trend",
+        width,
+        height,
+        "Share of passing models over the last audits",
+        "Share of the registered models that passed, per audit: "
+        + "; ".join(f"{p['as_of']}: {p['passed']} of {p['registered']} ({p['share']:.0f} %)" for p in points)
+        + ".",
+    )
     chart["cls"] = "spark"
     chart["lines"].append({"x1": pad, "y1": y(100.0), "x2": width - pad, "y2": y(100.0), "cls": "gl"})
-    chart["polylines"].append({"points": " ".join(f"{_coord(x(k))},{_coord(y(p['share']))}" for k, p in enumerate(points)), "cls": "line"})
+    chart["polylines"].append(
+        {"points": " ".join(f"{_coord(x(k))},{_coord(y(p['share']))}" for k, p in enumerate(points)), "cls": "line"}
+    )
     chart["circles"].extend({"cx": x(k), "cy": y(p["share"]), "r": 2.2, "cls": "pt"} for k, p in enumerate(points))
     first, last = points[0], points[-1]
     change = last["share"] - first["share"]
-    direction = "unchanged" if abs(change) < 0.5 else f"{'up' if change > 0 else 'down'} {abs(change):.0f} percentage points"
+    direction = (
+        "unchanged" if abs(change) < 0.5 else f"{'up' if change > 0 else 'down'} {abs(change):.0f} percentage points"
+    )
     return {"text": text, "chart": chart, "summary": f"{direction} since {first['as_of']}", "count": len(points)}
 
 
 def _scope_view(meta: Mapping[str, Any], summary: Mapping[str, Any]) -> str | None:
     """A sentence when p-values were adjusted over a partial run (some models only, or unreadable sources)."""
     scope = meta.get("scope") or {}
-    requested, total, unreadable = scope.get("models_requested"), scope.get("registry_models"), list(scope.get("unreadable_sources") or ())
+    requested, total, unreadable = (
+        scope.get("models_requested"),
+        scope.get("registry_models"),
+        list(scope.get("unreadable_sources") or ()),
+    )
     if not requested and not unreadable:
         return None
     parts = []
     if requested:
-        parts.append(f"only {requested} of the registry's {total} models were audited (--models)" if total else f"only {requested} models were audited (--models)")
+        parts.append(
+            f"only {requested} of the registry's {total} models were audited (--models)"
+            if total
+            else f"only {requested} models were audited (--models)"
+        )
     if unreadable:
-        parts.append("the models of the source(s) " + ", ".join(_text(u, 80) for u in unreadable) + " have no checks, because the sources could not be read")
+        parts.append(
+            "the models of the source(s) "
+            + ", ".join(_text(u, 80) for u in unreadable)
+            + " have no checks, because the sources could not be read"
+        )
     return (
         f"This is a partial run: {' and '.join(parts)}. The p-values were adjusted over the {summary.get('checks', 0)} checks that ran, "
         "not over a full run's, so the same model can pass in the full run and be flagged in this one (or the reverse)."
     )
+
+
+def _history_problems_view(meta: Mapping[str, Any]) -> list[str]:
+    """One sentence per earlier audit run whose results could not be used as history."""
+    out = []
+    for p in meta.get("history_problems") or ():
+        if isinstance(p, Mapping):
+            out.append(
+                f"The audit of {_text(p.get('as_of'), 40)} (run {_text(p.get('run_id'), 80)}) was left out of the models' "
+                f"history: {_text(p.get('problem'), 300)}"
+            )
+    return out
 
 
 def _movement_view(doc: Mapping[str, Any], models: Sequence[Mapping[str, Any]]) -> dict:
@@ -822,7 +1016,7 @@ def _movement_view(doc: Mapping[str, Any], models: Sequence[Mapping[str, Any]]) 
 
 
 def _status_row(m: Mapping[str, Any], as_of: str) -> dict:
-    past = [h for h in (m.get("history") or []) if h.get("verdict") in STATUS][-(_HISTORY_CELLS - 1):]
+    past = [h for h in (m.get("history") or []) if h.get("verdict") in STATUS][-(_HISTORY_CELLS - 1) :]
     cells = [None] * (_HISTORY_CELLS - 1 - len(past))
     cells += [{"status": _status(h["verdict"]), "as_of": _text(h.get("as_of"))} for h in past]
     cells.append({"status": _status(m["verdict"]), "as_of": _text(as_of)})
@@ -854,7 +1048,12 @@ def _rule_view(policy: Mapping[str, Any] | None) -> dict:
     policy = policy or {}
     method = policy.get("multiple_testing", "bh")
     q = _float(policy.get("fdr_q"))
-    return {"method": method, "label": ADJUSTMENT_LABELS.get(method, _text(method)), "q": q, "adjusted": method != "none"}
+    return {
+        "method": method,
+        "label": ADJUSTMENT_LABELS.get(method, _text(method)),
+        "q": q,
+        "adjusted": method != "none",
+    }
 
 
 def _floor_text(c: Mapping[str, Any]) -> str | None:
@@ -869,14 +1068,24 @@ def _p_with_floor(c: Mapping[str, Any]) -> str:
     p = _float(c.get("p_distribution"))
     cal = c.get("calibration") or {}
     b = cal.get("replicates")
-    if p is not None and cal.get("method") in ("simulated", "bootstrap") and isinstance(b, int) and b > 0 and p <= (1 / (b + 1)) * (1 + 1e-9):
+    if (
+        p is not None
+        and cal.get("method") in ("simulated", "bootstrap")
+        and isinstance(b, int)
+        and b > 0
+        and p <= (1 / (b + 1)) * (1 + 1e-9)
+    ):
         return f"{_format_p(p)} (the smallest possible with {b} simulations: the true p-value may be smaller)"
     return _format_p(p)
 
 
 def _gate_threshold(c: Mapping[str, Any]) -> str:
     level = _float(c.get("settings_level"))
-    return "n/a" if level is None else f"fails at p ≤ {_format_number(level / 2)} (level {_format_number(level)} split over the two gates)"
+    return (
+        "n/a"
+        if level is None
+        else f"fails at p ≤ {_format_number(level / 2)} (level {_format_number(level)} split over the two gates)"
+    )
 
 
 def _plain_effects(c: Mapping[str, Any]) -> str:
@@ -885,7 +1094,9 @@ def _plain_effects(c: Mapping[str, Any]) -> str:
     parts = []
     ratio = _float(e.get("variance_ratio"))
     if ratio is not None:
-        parts.append(f"errors {_format_number(ratio, 2)} times as variable as the production model assumes (variance ratio)")
+        parts.append(
+            f"errors {_format_number(ratio, 2)} times as variable as the production model assumes (variance ratio)"
+        )
     for sizes, when in ((e, ""), (e.get("since") or {}, (e.get("since") or {}).get("date"))):
         pct, sd = _float(sizes.get("bias_pct")), _float(sizes.get("bias_sd"))
         if pct is None and sd is None:
@@ -893,14 +1104,19 @@ def _plain_effects(c: Mapping[str, Any]) -> str:
         since = f" since {_text(when)}" if when else " over the window"
         if pct is not None:
             side = "high" if pct > 0 else "low"
-            parts.append(f"forecasts {_format_number(abs(pct), 2)} % too {side}{since}" + (f" ({_format_number(abs(sd), 2)} standard deviations)" if sd is not None else ""))
+            parts.append(
+                f"forecasts {_format_number(abs(pct), 2)} % too {side}{since}"
+                + (f" ({_format_number(abs(sd), 2)} standard deviations)" if sd is not None else "")
+            )
         else:
             side = "high" if sd < 0 else "low"
             parts.append(f"forecasts {_format_number(abs(sd), 2)} standard deviations too {side}{since}")
     return "; ".join(parts) or "n/a"
 
 
-def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] | None, policy: Mapping[str, Any] | None = None) -> list[dict]:
+def _check_rows(
+    production: Mapping[str, Any] | None, refit: Mapping[str, Any] | None, policy: Mapping[str, Any] | None = None
+) -> list[dict]:
     """The side-by-side table of the two checks: one row per quantity, one cell per check."""
     checks = [production, refit]
     rule = _rule_view(policy)
@@ -917,9 +1133,15 @@ def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] |
 
     def noise_text(c):
         noise = c.get("noise") or {}
-        parts = [f"{k} {_format_number(noise.get(k), 4)}" for k in ("loc", "scale", "shape") if noise.get(k) is not None]
+        parts = [
+            f"{k} {_format_number(noise.get(k), 4)}" for k in ("loc", "scale", "shape") if noise.get(k) is not None
+        ]
         est = noise.get("estimated") or []
-        return f"{_text(noise.get('law'))}: " + ", ".join(parts) + (f" (estimated: {', '.join(map(str, est))})" if est else " (fixed)")
+        return (
+            f"{_text(noise.get('law'))}: "
+            + ", ".join(parts)
+            + (f" (estimated: {', '.join(map(str, est))})" if est else " (fixed)")
+        )
 
     def lb_text(d):
         return f"Q {_format_number(d.get('statistic'))} on {d.get('lags')} lags, df {d.get('df')}"
@@ -945,14 +1167,22 @@ def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] |
         w, e = c.get("window") or {}, c.get("effects") or {}
         if e.get("start") and e.get("end"):
             return f"{_text(e['start'])} to {_text(e['end'])} ({w.get('length', c.get('n'))} observations)"
-        return f"observations {w.get('first')}–{w.get('last')} of the series ({w.get('length')} observations)" if w else "n/a"
+        return (
+            f"observations {w.get('first')}–{w.get('last')} of the series ({w.get('length')} observations)"
+            if w
+            else "n/a"
+        )
 
     def reference_text(c):
         cal = c.get("calibration") or {}
         method, b = cal.get("method"), cal.get("replicates")
         law = _text((c.get("noise") or {}).get("law"))
         if method == "simulated":
-            how = "with its noise parameters re-estimated in each" if c.get("kind") == "refit" else "with the frozen production parameters"
+            how = (
+                "with its noise parameters re-estimated in each"
+                if c.get("kind") == "refit"
+                else "with the frozen production parameters"
+            )
             return f"{_count(b)} simulated data sets of {c.get('n')} residuals from the {law} law, {how}"
         if method == "bootstrap":
             return f"{_count(b)} parametric bootstrap series of the fitted model, each refitted and rescored"
@@ -976,11 +1206,21 @@ def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] |
 
     rows = [
         {"label": "Status", "key": "status", "cells": [status_text(c) for c in checks]},
-        {"label": "Residual type", "key": "residual_type", "cells": [("—" if c is None else _RESIDUAL_TYPE.get(c.get("kind"), "n/a")) for c in checks]},
+        {
+            "label": "Residual type",
+            "key": "residual_type",
+            "cells": [("—" if c is None else _RESIDUAL_TYPE.get(c.get("kind"), "n/a")) for c in checks],
+        },
     ]
     specs = [
         ("Window", "window", window_text),
-        ("In plain words", "plain", lambda c: _plain_effects(c) if c.get("kind") == "production" else "residuals of the model refitted to these data"),
+        (
+            "In plain words",
+            "plain",
+            lambda c: (
+                _plain_effects(c) if c.get("kind") == "production" else "residuals of the model refitted to these data"
+            ),
+        ),
         ("Residuals n", "n", lambda c: str(c["n"])),
         ("Cells s", "cells", lambda c: str(c["cells"])),
         ("Estimated noise parameters k", "k", lambda c: str(c["k"])),
@@ -993,14 +1233,30 @@ def _check_rows(production: Mapping[str, Any] | None, refit: Mapping[str, Any] |
         ("Standardised maximum R of the gate", "r_max", lambda c: _format_number(c.get("r_max"))),
         ("Largest standardised value per partition", "partitions", partition_text),
         ("Cells that depart most", "deciding", deciding_text),
-        ("Deciding point (α, β)", "argmax", lambda c: f"α {_format_number(c.get('alpha_max'))}, β {_format_number(c.get('beta_max'))}"),
-        ("T there / its critical value", "t_at_max", lambda c: f"{_format_number(c.get('t_at_max'))} / {_format_number(c.get('critical_value'))}"),
+        (
+            "Deciding point (α, β)",
+            "argmax",
+            lambda c: f"α {_format_number(c.get('alpha_max'))}, β {_format_number(c.get('beta_max'))}",
+        ),
+        (
+            "T there / its critical value",
+            "t_at_max",
+            lambda c: f"{_format_number(c.get('t_at_max'))} / {_format_number(c.get('critical_value'))}",
+        ),
         ("p, distribution gate", "p_distribution", _p_with_floor),
-        ("Smallest possible p of the distribution gate", "floor", lambda c: _floor_text(c) or "none: the p-value is not simulated"),
+        (
+            "Smallest possible p of the distribution gate",
+            "floor",
+            lambda c: _floor_text(c) or "none: the p-value is not simulated",
+        ),
         ("Ljung-Box", "ljung_box", lambda c: lb_text(c.get("ljung_box") or {})),
         ("p, independence gate (Ljung-Box)", "p_independence", lambda c: _format_p(c.get("p_independence"))),
         ("Threshold of each gate (unadjusted)", "gate_threshold", _gate_threshold),
-        ("McLeod-Li (squared residuals, reported)", "mcleod_li", lambda c: lb_text(c.get("mcleod_li") or {}) + f", p {_format_p((c.get('mcleod_li') or {}).get('p_value'))}"),
+        (
+            "McLeod-Li (squared residuals, reported)",
+            "mcleod_li",
+            lambda c: lb_text(c.get("mcleod_li") or {}) + f", p {_format_p((c.get('mcleod_li') or {}).get('p_value'))}",
+        ),
         ("p, check (Bonferroni over the two gates)", "p_value", lambda c: _format_p(c.get("p_value"))),
         ("p, adjusted across the run", "p_adjusted", adjusted_text),
         ("Effect: T_max / 2n", "effect_divergence", lambda c: _format_number(c.get("effect_divergence"))),
@@ -1023,13 +1279,15 @@ def _members_rows(check: Mapping[str, Any]) -> list[dict]:
     rows = []
     for name, entry in (check.get("members") or {}).items():
         a, b = _MEMBER_POINTS.get(name, (None, None))
-        rows.append({
-            "name": CLASSICAL_MEMBER_LABELS.get(name, _text(name)),
-            "alpha": "5/3" if name == "cressie-read-2/3" else _format_number(a),
-            "beta": _format_number(b),
-            "statistic": _format_number((entry or {}).get("statistic")),
-            "p": _format_p((entry or {}).get("p_value_chi2")),
-        })
+        rows.append(
+            {
+                "name": CLASSICAL_MEMBER_LABELS.get(name, _text(name)),
+                "alpha": "5/3" if name == "cressie-read-2/3" else _format_number(a),
+                "beta": _format_number(b),
+                "statistic": _format_number((entry or {}).get("statistic")),
+                "p": _format_p((entry or {}).get("p_value_chi2")),
+            }
+        )
     return rows
 
 
@@ -1048,7 +1306,10 @@ def _check_view(check: Mapping[str, Any] | None, kind: str, label: str | None = 
         "qq": _qq(check, f"qq-{kind}", label),
         "acf": _acf(check, f"acf-{kind}", label),
         "members": _members_rows(check),
-        "cells": [{"cell": k + 1, "observed": c, "expected": _format_number(n / s if s else None)} for k, c in enumerate(counts)],
+        "cells": [
+            {"cell": k + 1, "observed": c, "expected": _format_number(n / s if s else None)}
+            for k, c in enumerate(counts)
+        ],
     }
 
 
@@ -1059,12 +1320,16 @@ def _params_rows(audit: Mapping[str, Any]) -> list[dict]:
     rows = []
     for name in names:
         a, b = _float(prod.get(name)), _float(fitted.get(name))
-        rows.append({
-            "name": _text(name, _SHORT_TEXT),
-            "production": _format_number(a, 4) if name in prod else "—",
-            "refit": _format_number(b, 4) if name in fitted else "—",
-            "change": _format_number(b - a, 3) if a is not None and b is not None and math.isfinite(a) and math.isfinite(b) else "—",
-        })
+        rows.append(
+            {
+                "name": _text(name, _SHORT_TEXT),
+                "production": _format_number(a, 4) if name in prod else "—",
+                "refit": _format_number(b, 4) if name in fitted else "—",
+                "change": _format_number(b - a, 3)
+                if a is not None and b is not None and math.isfinite(a) and math.isfinite(b)
+                else "—",
+            }
+        )
     return rows
 
 
@@ -1082,8 +1347,14 @@ def _change_view(audit: Mapping[str, Any]) -> dict | None:
         "cells": change.get("cells"),
         "window": production.get("window") or {},
         "date": _text(((production.get("effects") or {}).get("since") or {}).get("date")) or None,
-        "window_dates": (_text((production.get("effects") or {}).get("start")) or None, _text((production.get("effects") or {}).get("end")) or None),
-        "rows": [{"cell": k + 1, "before": _format_number(b), "after": _format_number(a)} for k, (b, a) in enumerate(zip(before, after))],
+        "window_dates": (
+            _text((production.get("effects") or {}).get("start")) or None,
+            _text((production.get("effects") or {}).get("end")) or None,
+        ),
+        "rows": [
+            {"cell": k + 1, "before": _format_number(b), "after": _format_number(a)}
+            for k, (b, a) in enumerate(zip(before, after))
+        ],
     }
 
 
@@ -1125,11 +1396,26 @@ def _history_view(m: Mapping[str, Any], as_of: str) -> dict:
     points = []
     for h in m.get("history") or []:
         if h.get("verdict") in STATUS:
-            points.append({"as_of": _text(h.get("as_of")), "status": _status(h["verdict"]), "r": _float(h.get("r_max")), "p": h.get("p_value"), "current": False})
+            points.append(
+                {
+                    "as_of": _text(h.get("as_of")),
+                    "status": _status(h["verdict"]),
+                    "r": _float(h.get("r_max")),
+                    "p": h.get("p_value"),
+                    "current": False,
+                }
+            )
     check = _deciding_check(m.get("audit"))
     ok = _ok(check)
-    points.append({"as_of": _text(as_of), "status": _status(m["verdict"]), "r": _float(check.get("r_max")) if ok else None,
-                   "p": check.get("p_value") if ok else None, "current": True})
+    points.append(
+        {
+            "as_of": _text(as_of),
+            "status": _status(m["verdict"]),
+            "r": _float(check.get("r_max")) if ok else None,
+            "p": check.get("p_value") if ok else None,
+            "current": True,
+        }
+    )
     return {"points": points, "chart": _history_chart(points, "history-r")}
 
 
@@ -1183,11 +1469,18 @@ _SETTING_LABELS = {
     "justification": "Justification",
     "approved_by": "Approved by",
 }
-_NONE_MEANS = {"fit_window": "the whole series loaded", "lb_lags": "automatic (min(10, n/5), or twice the season)", "r": "simulated for each table",
-               "practical_divergence": "none", "practical_acf": "none"}
+_NONE_MEANS = {
+    "fit_window": "the whole series loaded",
+    "lb_lags": "automatic (min(10, n/5), or twice the season)",
+    "r": "simulated for each table",
+    "practical_divergence": "none",
+    "practical_acf": "none",
+}
 
 
-def _labelled_rows(mapping: Mapping[str, Any] | None, labels: Mapping[str, str], skip: Sequence[str] = ()) -> list[dict]:
+def _labelled_rows(
+    mapping: Mapping[str, Any] | None, labels: Mapping[str, str], skip: Sequence[str] = ()
+) -> list[dict]:
     """Key-value rows for a reviewer: known keys in words, registry bookkeeping (line numbers) left out."""
     rows = []
     for key, value in (mapping or {}).items():
@@ -1242,24 +1535,53 @@ def _accuracy_rows(acc: Mapping[str, Any]) -> list[dict]:
     if acc.get("error"):
         rows.append({"key": "Accuracy", "value": _text(acc["error"], 600)})
     if "mase" in acc:
-        value = _format_number(acc.get("mase")) if acc.get("mase") is not None else f"n/a ({_text(acc.get('mase_note'), 400)})"
-        rows.append({"key": "Mean absolute scaled error (MASE)", "value": (
-            f"{value}: mean absolute error of the point forecast ({_text(acc.get('point'))}) over that of the one-step "
-            f"seasonal naive forecast in the {_text(acc.get('mase_scale_from'))}; below 1 is better than the naive forecast "
-            "(Hyndman and Koehler 2006)")})
+        value = (
+            _format_number(acc.get("mase"))
+            if acc.get("mase") is not None
+            else f"n/a ({_text(acc.get('mase_note'), 400)})"
+        )
+        rows.append(
+            {
+                "key": "Mean absolute scaled error (MASE)",
+                "value": (
+                    f"{value}: mean absolute error of the point forecast ({_text(acc.get('point'))}) over that of the one-step "
+                    f"seasonal naive forecast in the {_text(acc.get('mase_scale_from'))}; below 1 is better than the naive forecast "
+                    "(Hyndman and Koehler 2006)"
+                ),
+            }
+        )
     if "mae" in acc:
         rows.append({"key": "Mean absolute error", "value": _format_number(acc.get("mae"), 4)})
     if "crps" in acc:
-        rows.append({"key": "Continuous ranked probability score (CRPS, mean)", "value": (
-            f"{_format_number(acc.get('crps'), 4)} ({_text(acc.get('crps_method'))}; smaller is better, in the units of the series)")})
+        rows.append(
+            {
+                "key": "Continuous ranked probability score (CRPS, mean)",
+                "value": (
+                    f"{_format_number(acc.get('crps'), 4)} ({_text(acc.get('crps_method'))}; smaller is better, in the units of the series)"
+                ),
+            }
+        )
     if "crps_naive" in acc:
-        rows.append({"key": "CRPS of the naive forecast", "value": (
-            f"{_format_number(acc.get('crps_naive'), 4)} ({_text(acc.get('naive'), 600)})" if acc.get("crps_naive") is not None
-            else f"n/a ({_text(acc.get('naive'), 600)})")})
+        rows.append(
+            {
+                "key": "CRPS of the naive forecast",
+                "value": (
+                    f"{_format_number(acc.get('crps_naive'), 4)} ({_text(acc.get('naive'), 600)})"
+                    if acc.get("crps_naive") is not None
+                    else f"n/a ({_text(acc.get('naive'), 600)})"
+                ),
+            }
+        )
     if "crps_skill" in acc:
-        rows.append({"key": "CRPS skill", "value": (
-            f"{_format_number(acc.get('crps_skill'))} (1 − CRPS / CRPS of the naive forecast: above 0 the stated distributions "
-            "beat the naive one, 0 ties, below 0 loses)")})
+        rows.append(
+            {
+                "key": "CRPS skill",
+                "value": (
+                    f"{_format_number(acc.get('crps_skill'))} (1 − CRPS / CRPS of the naive forecast: above 0 the stated distributions "
+                    "beat the naive one, 0 ties, below 0 loses)"
+                ),
+            }
+        )
     return rows
 
 
@@ -1270,7 +1592,8 @@ def _forecast_rows(check: Mapping[str, Any]) -> dict[str, str]:
     scores = (
         f"mean {_format_number(mean, 2)} and standard deviation {_format_number(sd, 2)} (0 and 1 when the stated laws are "
         "right: a positive mean means forecasts too low, a standard deviation above 1 a stated uncertainty too narrow)"
-        if mean is not None and sd is not None else "n/a"
+        if mean is not None and sd is not None
+        else "n/a"
     )
     cal = check.get("calibration") or {}
     return {
@@ -1280,7 +1603,9 @@ def _forecast_rows(check: Mapping[str, Any]) -> dict[str, str]:
         "noise": f"standard normal scores of the PIT values (stated: {_text(noise.get('stated'))})",
         "reference": (
             f"{_count(cal.get('replicates'))} simulated sets of {check.get('n')} independent uniform PIT values (the stated laws "
-            "are fixed before the data, so this null is exact)" if cal.get("method") == "simulated" else _text(cal.get("method"))
+            "are fixed before the data, so this null is exact)"
+            if cal.get("method") == "simulated"
+            else _text(cal.get("method"))
         ),
     }
 
@@ -1299,15 +1624,20 @@ def _forecast_view(m: Mapping[str, Any], view: dict) -> dict | None:
     levels = sorted(float(k) for k in (stated.get("quantiles") or {}))
     law = (
         "predictive quantiles at levels " + ", ".join(_format_number(x) for x in levels)
-        if levels else _noise_text(stated.get("noise") or {"law": "normal", "shape": None})
+        if levels
+        else _noise_text(stated.get("noise") or {"law": "normal", "shape": None})
     )
     replace = {
         "Model spec": ("Forecasts stated", _text(m.get("spec_text"))),
         "Noise law": ("Stated predictive law", law),
-        "Production version": ("Production version", "none: the forecasts are made elsewhere and fitaudit holds no parameters of the model"),
+        "Production version": (
+            "Production version",
+            "none: the forecasts are made elsewhere and fitaudit holds no parameters of the model",
+        ),
     }
     view["identity"] = [
-        {"key": replace[r["key"]][0], "value": replace[r["key"]][1]} if r["key"] in replace else r for r in view["identity"]
+        {"key": replace[r["key"]][0], "value": replace[r["key"]][1]} if r["key"] in replace else r
+        for r in view["identity"]
     ]
     if view.get("audit"):
         production = audit.get("production")
@@ -1340,7 +1670,9 @@ def _model_view(m: Mapping[str, Any], as_of: str, policy: Mapping[str, Any] | No
         "reasons": [_text(r, 4000) for r in m.get("reasons") or []],
         "escalated": bool(m.get("escalated")),
         "movement": _MOVEMENT.get(m.get("movement"), _text(m.get("movement"))),
-        "exception": {"first_seen": _text(exc.get("first_seen")), "consecutive": exc.get("consecutive")} if exc else None,
+        "exception": {"first_seen": _text(exc.get("first_seen")), "consecutive": exc.get("consecutive")}
+        if exc
+        else None,
         "identity": [
             {"key": "Model id", "value": _text(m["id"])},
             {"key": "Owner", "value": _text(m.get("owner"))},
@@ -1349,7 +1681,14 @@ def _model_view(m: Mapping[str, Any], as_of: str, policy: Mapping[str, Any] | No
             {"key": "Source / series", "value": f"{_text(m.get('source'))} / {_text(m.get('series'))}"},
             {"key": "Model spec", "value": _text(m.get("spec_text"))},
             {"key": "Noise law", "value": _noise_text(m.get("noise"))},
-            {"key": "Production version", "value": (f"{_text(pv.get('version'))} (SHA-256 {_text(pv.get('sha256'))}, created {_text(pv.get('created_at'))})" if pv else "none")},
+            {
+                "key": "Production version",
+                "value": (
+                    f"{_text(pv.get('version'))} (SHA-256 {_text(pv.get('sha256'))}, created {_text(pv.get('created_at'))})"
+                    if pv
+                    else "none"
+                ),
+            },
             {"key": "Last validated", "value": _text(m.get("last_validated")) or "—"},
         ],
         "action": record_action(m, policy, as_of) if m["verdict"] != "pass" else None,
@@ -1393,7 +1732,10 @@ def page_context(doc: Mapping[str, Any], meta: Mapping[str, Any]) -> dict:
         "as_of": _text(doc["run"]["as_of"]),
         "caution": CAUTION,
         "statuses": [_status(v) for v in STATUS],
-        "registry": {"path": _text((doc["run"].get("registry") or {}).get("path")), "sha256": _text((doc["run"].get("registry") or {}).get("sha256"))},
+        "registry": {
+            "path": _text((doc["run"].get("registry") or {}).get("path")),
+            "sha256": _text((doc["run"].get("registry") or {}).get("sha256")),
+        },
         "schema": f"{_text(doc.get('schema'))} v{_text(doc.get('schema_version'))}",
         "policy_doc": dict(doc["run"].get("policy") or {}),
     }
@@ -1414,30 +1756,37 @@ def render_index_page(doc: Mapping[str, Any], context: Mapping[str, Any]) -> byt
     models = doc["models"]
     _check_models(models)
     as_of = context["as_of"]
-    return _render("run.html.j2", {
-        **context,
-        "root": "",
-        "summary": _summary_view(doc),
-        "scope": _scope_view(context["meta"], doc["summary"]),
-        "exceptions": _exceptions_view(models, doc["run"].get("policy"), as_of),
-        "tier_legend": _tier_legend(doc["run"].get("policy")),
-        "watch": _watch_view(models),
-        "trend": _trend_view(context["meta"]["fleet_trend"], doc["summary"], as_of),
-        "movement": _movement_view(doc, models),
-        "rows": [_status_row(m, as_of) for m in models],
-        "history_cells": _HISTORY_CELLS,
-    })
+    return _render(
+        "run.html.j2",
+        {
+            **context,
+            "root": "",
+            "summary": _summary_view(doc),
+            "scope": _scope_view(context["meta"], doc["summary"]),
+            "history_problems": _history_problems_view(context["meta"]),
+            "exceptions": _exceptions_view(models, doc["run"].get("policy"), as_of),
+            "tier_legend": _tier_legend(doc["run"].get("policy")),
+            "watch": _watch_view(models),
+            "trend": _trend_view(context["meta"]["fleet_trend"], doc["summary"], as_of),
+            "movement": _movement_view(doc, models),
+            "rows": [_status_row(m, as_of) for m in models],
+            "history_cells": _HISTORY_CELLS,
+        },
+    )
 
 
 def render_method_page(doc: Mapping[str, Any], context: Mapping[str, Any]) -> bytes:
     """``method.html``: the statistics explained, with the run's policy."""
-    return _render("method.html.j2", {
-        **context,
-        "root": "",
-        "policy": _labelled_rows(doc["run"].get("policy"), _SETTING_LABELS),
-        "heat_bins": _heat_legend(),
-        "heat_words": HEAT_SCALE_WORDS,
-    })
+    return _render(
+        "method.html.j2",
+        {
+            **context,
+            "root": "",
+            "policy": _labelled_rows(doc["run"].get("policy"), _SETTING_LABELS),
+            "heat_bins": _heat_legend(),
+            "heat_words": HEAT_SCALE_WORDS,
+        },
+    )
 
 
 def render_run(doc: dict, meta: dict) -> dict[str, bytes]:
@@ -1495,21 +1844,35 @@ def render_archive_index(runs: Iterable[Mapping[str, Any]]) -> bytes:
         runs and paths not of that form get no link.
     """
     rows = []
-    for r in sorted(runs, key=lambda r: (r.get("seq") or 0), reverse=True):
+    for r in sorted(runs, key=lambda r: r.get("seq") or 0, reverse=True):
         path = str(r.get("path") or "")
         parts = path.split("/")
-        linkable = (len(parts) == 3 and parts[0] == "runs" and len(parts[1]) == 4 and parts[1].isdigit()
-                    and bool(SAFE_ID.match(parts[2])) and not r.get("purged"))
+        linkable = (
+            len(parts) == 3
+            and parts[0] == "runs"
+            and len(parts[1]) == 4
+            and parts[1].isdigit()
+            and bool(SAFE_ID.match(parts[2]))
+            and not r.get("purged")
+        )
         counts = r.get("counts") if isinstance(r.get("counts"), Mapping) else {}
-        rows.append({
-            "run_id": _text(r.get("run_id"), _SHORT_TEXT),
-            "href": f"{path}/index.html" if linkable else None,
-            "as_of": _text(r.get("as_of")),
-            "time": _text(r.get("time")),
-            "registered": counts.get("registered"),
-            "counts": [counts.get(v) for v in STATUS],
-            "purged": bool(r.get("purged")),
-            "signoffs": [f"{_text(s.get('name'), 80)} ({_text(s.get('role'), 80)}, {_text(s.get('time'))})" for s in r.get("signoffs") or []],
-            "manifest": _text(r.get("manifest_sha256"))[:16],
-        })
-    return _render("archive_index.html.j2", {"runs": rows, "caution": CAUTION, "statuses": [_status(v) for v in STATUS], "root": ""})
+        rows.append(
+            {
+                "run_id": _text(r.get("run_id"), _SHORT_TEXT),
+                "href": f"{path}/index.html" if linkable else None,
+                "as_of": _text(r.get("as_of")),
+                "time": _text(r.get("time")),
+                "registered": counts.get("registered"),
+                "counts": [counts.get(v) for v in STATUS],
+                "purged": bool(r.get("purged")),
+                "signoffs": [
+                    f"{_text(s.get('name'), 80)} ({_text(s.get('role'), 80)}, {_text(s.get('time'))})"
+                    for s in r.get("signoffs") or []
+                ],
+                "manifest": _text(r.get("manifest_sha256"))[:16],
+            }
+        )
+    return _render(
+        "archive_index.html.j2",
+        {"runs": rows, "caution": CAUTION, "statuses": [_status(v) for v in STATUS], "root": ""},
+    )

@@ -62,8 +62,16 @@ def _canonical(obj) -> bytes:
 
 
 def _candidate(root, model="m1", ar1=0.5) -> int:
-    return param_store.write_version(root, model, spec=SPEC, noise={"law": "normal"}, params={"ar1": ar1, "intercept": 0.0, "sigma2": 1.0},
-                                     status="candidate", created_by="svc-audit", lineage={"run_id": "r1"}).version
+    return param_store.write_version(
+        root,
+        model,
+        spec=SPEC,
+        noise={"law": "normal"},
+        params={"ar1": ar1, "intercept": 0.0, "sigma2": 1.0},
+        status="candidate",
+        created_by="svc-audit",
+        lineage={"run_id": "r1"},
+    ).version
 
 
 def _chain(root) -> list[dict]:
@@ -74,14 +82,26 @@ def _set_chain(root, lines: list[bytes]) -> None:
     (root / "chain.jsonl").write_bytes(b"".join(lines))
 
 
-def _publish(root, run_id: str, as_of: dt.date, rows: list[dict] | None = None, kind: str = "audit", flip: bool = False):
+def _publish(
+    root, run_id: str, as_of: dt.date, rows: list[dict] | None = None, kind: str = "audit", flip: bool = False
+):
     """A run folder as the flows write them: an audit run (results.parquet) or a refit run (refit.json)."""
     with archive.open_run(root, run_id, as_of.year, as_of=as_of) as run:
         run.write_text("index.html", f"<p>{run_id}</p>")
         if kind == "audit":
-            table = pa.Table.from_pylist(rows or [], schema=pa.schema([
-                ("model_id", pa.string()), ("verdict", pa.string()), ("production_r_max", pa.float64()),
-                ("refit_r_max", pa.float64()), ("production_p_value", pa.float64()), ("refit_p_value", pa.float64())]))
+            table = pa.Table.from_pylist(
+                rows or [],
+                schema=pa.schema(
+                    [
+                        ("model_id", pa.string()),
+                        ("verdict", pa.string()),
+                        ("production_r_max", pa.float64()),
+                        ("refit_r_max", pa.float64()),
+                        ("production_p_value", pa.float64()),
+                        ("refit_p_value", pa.float64()),
+                    ]
+                ),
+            )
             buf = pa.BufferOutputStream()
             pq.write_table(table, buf)
             run.write_bytes("results.parquet", buf.getvalue().to_pybytes())
@@ -91,7 +111,14 @@ def _publish(root, run_id: str, as_of: dt.date, rows: list[dict] | None = None, 
 
 
 def _row(model: str, verdict: str, r: float = 1.0) -> dict:
-    return {"model_id": model, "verdict": verdict, "production_r_max": r, "refit_r_max": 0.5, "production_p_value": 0.01, "refit_p_value": 0.4}
+    return {
+        "model_id": model,
+        "verdict": verdict,
+        "production_r_max": r,
+        "refit_r_max": 0.5,
+        "production_p_value": 0.01,
+        "refit_p_value": 0.4,
+    }
 
 
 # ------------------------------------------------------------------------------------------
@@ -100,15 +127,27 @@ def _row(model: str, verdict: str, r: float = 1.0) -> dict:
 
 def test_promotion_writes_the_version_and_its_chain_entry(tmp_path):
     _candidate(tmp_path)
-    promoted = param_store.promote(tmp_path, "m1", 1, approved_by="A. Approver", note="validated", details={"run_id": "r9"})
+    promoted = param_store.promote(
+        tmp_path, "m1", 1, approved_by="A. Approver", note="validated", details={"run_id": "r9"}
+    )
     (entry,) = _chain(tmp_path)
     data = (tmp_path / "params/m1/2.json").read_bytes()
     assert entry["kind"] == "promotion" and entry["payload"]["path"] == "params/m1/2.json"
-    assert entry["payload"]["sha256"] == promoted.sha256 == _sha(_canonical({k: v for k, v in json.loads(data).items() if k != "sha256"}))
-    assert (entry["payload"]["approved_by"], entry["payload"]["promotes"], entry["payload"]["run_id"]) == ("A. Approver", 1, "r9")
+    assert (
+        entry["payload"]["sha256"]
+        == promoted.sha256
+        == _sha(_canonical({k: v for k, v in json.loads(data).items() if k != "sha256"}))
+    )
+    assert (entry["payload"]["approved_by"], entry["payload"]["promotes"], entry["payload"]["run_id"]) == (
+        "A. Approver",
+        1,
+        "r9",
+    )
     assert param_store.production_version(tmp_path, "m1") == promoted
     assert archive.verify_archive(tmp_path, include_notes=True) == []
-    assert archive.append_chain(tmp_path, "promotion", {"path": "params/m1/2.json", "sha256": promoted.sha256}) == entry  # recorded once
+    assert (
+        archive.append_chain(tmp_path, "promotion", {"path": "params/m1/2.json", "sha256": promoted.sha256}) == entry
+    )  # recorded once
 
 
 class SimulatedCrash(BaseException):
@@ -116,7 +155,13 @@ class SimulatedCrash(BaseException):
 
 
 # steps of record_promotion in protocol order; the chain entry exists from "chain-appended" on
-PROMOTION_STEPS = ["promotion-journal-written", "promotion-written", "append-journal-written", "chain-appended", "promotion-appended"]
+PROMOTION_STEPS = [
+    "promotion-journal-written",
+    "promotion-written",
+    "append-journal-written",
+    "chain-appended",
+    "promotion-appended",
+]
 
 
 @pytest.mark.parametrize("step", PROMOTION_STEPS)
@@ -137,7 +182,9 @@ def test_an_interrupted_promotion_leaves_both_or_neither(tmp_path, monkeypatch, 
     assert archive.verify_archive(tmp_path, include_notes=True) == []
     written = (tmp_path / "params/m1/2.json").exists()
     recorded = [e for e in _chain(tmp_path) if e["kind"] == "promotion"] if (tmp_path / "chain.jsonl").exists() else []
-    assert written == (len(recorded) == 1) == (PROMOTION_STEPS.index(step) >= PROMOTION_STEPS.index("promotion-written"))
+    assert (
+        written == (len(recorded) == 1) == (PROMOTION_STEPS.index(step) >= PROMOTION_STEPS.index("promotion-written"))
+    )
     assert (param_store.production_version(tmp_path, "m1") is not None) == written
 
 
@@ -147,22 +194,37 @@ def _forge(root, rel_from: str, rel_to: str, **changes) -> None:
     record.update(changes)
     record.pop("sha256")
     record["sha256"] = _sha(_canonical(record))
-    (root / rel_to).write_text(json.dumps(record, sort_keys=True, ensure_ascii=False, indent=2, separators=(",", ": ")) + "\n")
+    (root / rel_to).write_text(
+        json.dumps(record, sort_keys=True, ensure_ascii=False, indent=2, separators=(",", ": ")) + "\n"
+    )
 
 
 def _unrecorded(root):
-    param_store.write_version(root, "m1", spec=SPEC, noise={"law": "normal"}, params={"ar1": 0.9, "intercept": 0.0, "sigma2": 1.0},
-                              status="promoted", created_by="someone", lineage={}, promotes=1)
+    param_store.write_version(
+        root,
+        "m1",
+        spec=SPEC,
+        noise={"law": "normal"},
+        params={"ar1": 0.9, "intercept": 0.0, "sigma2": 1.0},
+        status="promoted",
+        created_by="someone",
+        lineage={},
+        promotes=1,
+    )
     return "params/m1/3.json", "params/m1/3.json"
 
 
 def _forged(root):
-    _forge(root, "params/m1/2.json", "params/m1/3.json", version=3, params={"ar1": 0.9, "intercept": 0.0, "sigma2": 1.0})
+    _forge(
+        root, "params/m1/2.json", "params/m1/3.json", version=3, params={"ar1": 0.9, "intercept": 0.0, "sigma2": 1.0}
+    )
     return "params/m1/3.json", "params/m1/3.json"
 
 
 def _deleted(root):
-    param_store.promote(root, "m1", _candidate(root, ar1=0.7), approved_by="B. Approver", note="refit")  # versions 3 and 4
+    param_store.promote(
+        root, "m1", _candidate(root, ar1=0.7), approved_by="B. Approver", note="refit"
+    )  # versions 3 and 4
     (root / "params/m1/4.json").unlink()  # the newest promoted version
     return "chain.jsonl line 2", "params/m1/4.json"
 
@@ -188,11 +250,25 @@ def test_an_acknowledged_unrecorded_promotion_is_recorded_as_found(tmp_path, cap
     _candidate(tmp_path)
     param_store.promote(tmp_path, "m1", 1, approved_by="A. Approver", note="validated")
     _unrecorded(tmp_path)
-    assert main(["acknowledge", str(tmp_path), "--by", "C. Officer, model risk", "--note", "version 3 was written by hand during an outage"]) == EXIT_OK
+    assert (
+        main(
+            [
+                "acknowledge",
+                str(tmp_path),
+                "--by",
+                "C. Officer, model risk",
+                "--note",
+                "version 3 was written by hand during an outage",
+            ]
+        )
+        == EXIT_OK
+    )
     assert "recorded as found: promoted version params/m1/3.json" in capsys.readouterr().out
     assert archive.verify_archive(tmp_path, include_notes=True) == []
     assert param_store.production_version(tmp_path, "m1").version == 3
-    _forge(tmp_path, "params/m1/3.json", "params/m1/3.json", note="changed afterwards")  # the recorded hash still binds it
+    _forge(
+        tmp_path, "params/m1/3.json", "params/m1/3.json", note="changed afterwards"
+    )  # the recorded hash still binds it
     assert [p.where for p in archive.verify_archive(tmp_path)] == ["chain.jsonl line 2"]
 
 
@@ -222,7 +298,19 @@ def test_a_truncated_chain_is_refused_until_restored_or_acknowledged(tmp_path, c
         archive.acknowledge_damage(tmp_path, by="x", note="y")
 
     _set_chain(tmp_path, lines[:-1])
-    assert main(["acknowledge", str(tmp_path), "--by", "C. Officer, records", "--note", "chain.jsonl restored from a stale backup"]) == EXIT_OK
+    assert (
+        main(
+            [
+                "acknowledge",
+                str(tmp_path),
+                "--by",
+                "C. Officer, records",
+                "--note",
+                "chain.jsonl restored from a stale backup",
+            ]
+        )
+        == EXIT_OK
+    )
     out = capsys.readouterr().out
     assert "recorded as found: run folder runs/2026/20260828-T060000Z-bbbb" in out and HEAD_LINE.search(out)
     assert archive.verify_archive(tmp_path, include_notes=True) == []
@@ -231,7 +319,10 @@ def test_a_truncated_chain_is_refused_until_restored_or_acknowledged(tmp_path, c
     assert ack["payload"]["by"] == "C. Officer, records" and ack["seq"] == 2
     _publish(tmp_path, "20260904-T060000Z-cccc", dt.date(2026, 9, 4), [_row("m1", "pass")])  # the archive continues
     assert archive.verify_archive(tmp_path, include_notes=True) == []
-    assert [r["run_id"] for r in archive.list_runs(tmp_path)][-2:] == ["20260828-T060000Z-bbbb", "20260904-T060000Z-cccc"]
+    assert [r["run_id"] for r in archive.list_runs(tmp_path)][-2:] == [
+        "20260828-T060000Z-bbbb",
+        "20260904-T060000Z-cccc",
+    ]
     (second.path / "index.html").write_text("<p>edited</p>")  # the folder recorded as found is checked like any run
     assert [p.where for p in archive.verify_archive(tmp_path)] == ["runs/2026/20260828-T060000Z-bbbb/index.html"]
 
@@ -271,7 +362,7 @@ def test_acknowledged_damage_is_shown_and_new_damage_is_a_problem_again(tmp_path
 def test_head_round_trip(tmp_path, capsys):
     _, second = _two_runs(tmp_path)
     assert main(["verify", str(tmp_path)]) == EXIT_OK
-    (digest, seq), = HEAD_LINE.findall(capsys.readouterr().out)
+    ((digest, seq),) = HEAD_LINE.findall(capsys.readouterr().out)
     assert digest == _chain(tmp_path)[-1]["hash"] and seq == "2"
     line = f"head: {digest} (seq {seq})"
     assert main(["verify", str(tmp_path), "--head", line]) == EXIT_OK
@@ -282,7 +373,7 @@ def test_head_round_trip(tmp_path, capsys):
         main(["verify", str(tmp_path), "--head", digest[:16]])  # what signoff used to print
     assert usage.value.code == 2 and "64 hex digits" in capsys.readouterr().err
     assert main(["signoff", str(tmp_path), second.run_id, "--name", "B. Chair", "--role", "committee chair"]) == EXIT_OK
-    (signed, _), = HEAD_LINE.findall(capsys.readouterr().out)
+    ((signed, _),) = HEAD_LINE.findall(capsys.readouterr().out)
     _set_chain(tmp_path, (tmp_path / "chain.jsonl").read_bytes().splitlines(keepends=True)[:-1])  # the sign-off cut off
     assert main(["verify", str(tmp_path)]) == EXIT_OK  # the limit of a bare hash chain
     assert main(["verify", str(tmp_path), "--head", f"head: {signed} (seq 3)"]) == EXIT_VERIFY
@@ -306,11 +397,18 @@ def test_history_ignores_refit_runs_and_merges_partial_reruns(tmp_path):
     _publish(tmp_path, "20260821-T070000Z-dddd", d2, [_row("m2", "pass", 0.4)])  # a rerun of m2 only
     history = load_history(tmp_path, dt.date(2026, 8, 28), ["m1", "m2"])
     assert [(h["as_of"], h["verdict"], h["run_id"]) for h in history.records["m1"]] == [
-        ("2026-08-14", "refit", "20260814-T060000Z-aaaa"), ("2026-08-21", "refit", "20260821-T060000Z-cccc")]
+        ("2026-08-14", "refit", "20260814-T060000Z-aaaa"),
+        ("2026-08-21", "refit", "20260821-T060000Z-cccc"),
+    ]
     assert [(h["as_of"], h["verdict"], h["run_id"]) for h in history.records["m2"]] == [
-        ("2026-08-14", "pass", "20260814-T060000Z-aaaa"), ("2026-08-21", "pass", "20260821-T070000Z-dddd")]
+        ("2026-08-14", "pass", "20260814-T060000Z-aaaa"),
+        ("2026-08-21", "pass", "20260821-T070000Z-dddd"),
+    ]
     assert history.problems == () and "20260814-T070000Z-bbbb" not in history.runs
-    assert [len(v) for v in load_history(tmp_path, dt.date(2026, 8, 28), ["m1", "m2"], limit=1).records.values()] == [1, 1]
+    assert [len(v) for v in load_history(tmp_path, dt.date(2026, 8, 28), ["m1", "m2"], limit=1).records.values()] == [
+        1,
+        1,
+    ]
 
 
 @pytest.mark.parametrize("damage", ["tampered", "deleted"])
@@ -327,7 +425,9 @@ def test_a_tampered_or_missing_history_file_is_named_not_used(tmp_path, damage):
     history = load_history(tmp_path, dt.date(2026, 8, 28), ["m1"])
     assert [h["as_of"] for h in history.records["m1"]] == ["2026-08-21"]
     (problem,) = history.problems
-    assert problem["run_id"] == first.run_id and "runs/2026/20260814-T060000Z-aaaa/results.parquet" in problem["problem"]
+    assert (
+        problem["run_id"] == first.run_id and "runs/2026/20260814-T060000Z-aaaa/results.parquet" in problem["problem"]
+    )
     assert history.to_manifest()["problems"] == [problem]
 
 
@@ -355,8 +455,16 @@ def test_staging_uses_one_snapshot_of_the_production_versions(tmp_path, monkeypa
 
     def promotion_meanwhile(entry, *args):  # `fitaudit promote` for m-b while m-a is being staged
         if entry.id == "m-a":
-            v = param_store.write_version(store, "m-b", spec=dict(AR1), noise={"law": "normal", "shape": None}, params={"ar1": 0.1, "intercept": 50.0, "sigma2": 1.0},
-                                          status="candidate", created_by="refit", lineage={})
+            v = param_store.write_version(
+                store,
+                "m-b",
+                spec=dict(AR1),
+                noise={"law": "normal", "shape": None},
+                params={"ar1": 0.1, "intercept": 50.0, "sigma2": 1.0},
+                status="candidate",
+                created_by="refit",
+                lineage={},
+            )
             param_store.promote(store, "m-b", v.version, approved_by="A. Approver", note="meanwhile")
         return real(entry, *args)
 
@@ -390,7 +498,9 @@ def fleet(tmp_path_factory):
     template = root / "archive-template"
     good = fitted_params(AR1, series["s1"]["y"][: N_DAYS - AUDIT])
     promote_production(template, "m-s1", dict(AR1), good)
-    promote_production(template, "m-s2", dict(AR1), {**good, "intercept": good["intercept"] + 3.0})  # 3 innovation sd off
+    promote_production(
+        template, "m-s2", dict(AR1), {**good, "intercept": good["intercept"] + 3.0}
+    )  # 3 innovation sd off
     return root, fleet.write()
 
 
@@ -434,11 +544,17 @@ def test_a_same_date_refit_and_a_partial_rerun_keep_the_history(fleet, after_d1,
     assert _verdicts(control, D2)["m-s2"] == "respecify"  # refit twice in a row: escalated by the persistence rule
 
     refitted = _copy(after_d1, tmp_path / "refitted")
-    assert main(["refit", str(registry), "--archive", str(refitted), "--as-of", D1.isoformat(), "--model", "m-s2"]) == EXIT_OK
+    assert (
+        main(["refit", str(registry), "--archive", str(refitted), "--as-of", D1.isoformat(), "--model", "m-s2"])
+        == EXIT_OK
+    )
     assert _run(registry, refitted, D2) == EXIT_OK
     assert _verdicts(refitted, D2)["m-s2"] == "respecify"
     history = _manifest(refitted, D2)["history"]
-    assert history == {"runs": [archive.list_runs(refitted)[0]["run_id"]], "problems": []}  # the audit at D1, not the refit
+    assert history == {
+        "runs": [archive.list_runs(refitted)[0]["run_id"]],
+        "problems": [],
+    }  # the audit at D1, not the refit
 
     partial = _copy(after_d1, tmp_path / "partial")
     assert _run(registry, partial, D1, "--models", "m-s1") == EXIT_OK
@@ -466,12 +582,18 @@ def test_a_tampered_history_file_is_refused_then_named(fleet, after_d1, tmp_path
     assert f"{d1_run['path']}/results.parquet" in err and "fitaudit acknowledge" in err and "Traceback" not in err
     assert (store / "chain.jsonl").read_bytes() == chain_before  # nothing appended
 
-    assert main(["acknowledge", str(store), "--by", "C. Officer", "--note", "results.parquet edited; no backup"]) == EXIT_OK
+    assert (
+        main(["acknowledge", str(store), "--by", "C. Officer", "--note", "results.parquet edited; no backup"])
+        == EXIT_OK
+    )
     assert _run(registry, store, D2) == EXIT_OK
     (problem,) = _manifest(store, D2)["history"]["problems"]
     assert problem["run_id"] == d1_run["run_id"] and "results.parquet differs from its manifest" in problem["problem"]
     assert _verdicts(store, D2)["m-s2"] == "refit"  # the D1 record is not used: no escalation on edited evidence
     assert archive.verify_archive(store) == []
+    (d2_run,) = [r for r in archive.list_runs(store) if r["as_of"] == D2.isoformat()]
+    page = (store / d2_run["path"] / "index.html").read_text()
+    assert "History incomplete." in page and d1_run["run_id"] in page  # the run page names the left-out audit
 
 
 @pytest.mark.server
@@ -517,7 +639,14 @@ def test_a_refit_racing_a_run_keeps_its_work_folder_and_promotion(fleet, after_d
         return real(path, *args, **kwargs)
 
     monkeypatch.setattr(refit_module, "refit_batch", a_run_starts_meanwhile)
-    result = refit_flow(registry=str(registry), model_ids=["m-s2"], archive=str(store), as_of=D1, approve=True, approved_by="A. Approver")
+    result = refit_flow(
+        registry=str(registry),
+        model_ids=["m-s2"],
+        archive=str(store),
+        as_of=D1,
+        approve=True,
+        approved_by="A. Approver",
+    )
     assert seen == {"recovered": [], "folder": True}
     (record,) = result["records"]
     assert record["status"] == "promoted"
@@ -528,7 +657,9 @@ def test_a_refit_racing_a_run_keeps_its_work_folder_and_promotion(fleet, after_d
 
 
 @pytest.mark.server
-def test_disk_full_at_publication_prints_the_cause_and_the_next_run_recovers(fleet, after_d1, tmp_path, monkeypatch, capsys):
+def test_disk_full_at_publication_prints_the_cause_and_the_next_run_recovers(
+    fleet, after_d1, tmp_path, monkeypatch, capsys
+):
     _, registry = fleet
     store = _copy(after_d1, tmp_path)
     real_write = archive.write_once
@@ -555,7 +686,11 @@ def test_disk_full_at_publication_prints_the_cause_and_the_next_run_recovers(fle
     monkeypatch.setattr(archive, "_append_bytes", full_after_rename)
     assert _run(registry, store, D2) == EXIT_ERROR
     err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and "was published but its chain entry could not be appended" in err[0] and "No space left on device" in err[0], err
+    assert (
+        len(err) == 1
+        and "was published but its chain entry could not be appended" in err[0]
+        and "No space left on device" in err[0]
+    ), err
     assert len(calls) == 1  # not retried
     monkeypatch.setattr(archive, "_append_bytes", real_append)
     assert archive.verify_archive(store) == []  # the renamed run is pending, not a problem
@@ -588,11 +723,15 @@ def test_a_read_only_archive_fails_in_one_line(fleet, after_d1, tmp_path, monkey
     capsys.readouterr()
     assert _run(registry, store, D2) == EXIT_ERROR
     err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and f"{store}/.lock: Read-only file system [EROFS]" in err[0] and "writable file system" in err[0], err
+    assert (
+        len(err) == 1 and f"{store}/.lock: Read-only file system [EROFS]" in err[0] and "writable file system" in err[0]
+    ), err
 
 
 @pytest.mark.server
-@pytest.mark.skipif(os.geteuid() == 0, reason="root writes through chmod; the read-only mount is simulated in the test above")
+@pytest.mark.skipif(
+    os.geteuid() == 0, reason="root writes through chmod; the read-only mount is simulated in the test above"
+)
 def test_a_chmod_read_only_archive_fails_in_one_line(fleet, after_d1, tmp_path, capsys):
     _, registry = fleet
     store = _copy(after_d1, tmp_path)
@@ -627,9 +766,15 @@ def signal_fleet(tmp_path_factory):
 
 
 def _cli(home: pathlib.Path, log, *args) -> subprocess.Popen:
-    env = {k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"}  # the embedded server, as a plain `fitaudit run`
-    env.update(PREFECT_HOME=str(home), PREFECT_SERVER_EPHEMERAL_ENABLED="true", PREFECT_INTEGRATIONS_FITAUDIT_PROCESSES="2")
-    return subprocess.Popen([sys.executable, "-m", "fitaudit.flows.cli", *args], env=env, stdout=log, stderr=subprocess.STDOUT)
+    env = {
+        k: v for k, v in os.environ.items() if k != "PREFECT_API_URL"
+    }  # the embedded server, as a plain `fitaudit run`
+    env.update(
+        PREFECT_HOME=str(home), PREFECT_SERVER_EPHEMERAL_ENABLED="true", PREFECT_INTEGRATIONS_FITAUDIT_PROCESSES="2"
+    )
+    return subprocess.Popen(
+        [sys.executable, "-m", "fitaudit.flows.cli", *args], env=env, stdout=log, stderr=subprocess.STDOUT
+    )
 
 
 def _wait_for(predicate, proc: subprocess.Popen, what: str, timeout: float = 240.0) -> None:
@@ -667,12 +812,25 @@ def test_sigterm_stops_the_embedded_server_and_the_workers(signal_fleet, tmp_pat
     root, registry, home = signal_fleet
     log_path = tmp_path / "run.log"
     with open(log_path, "wb") as log:
-        proc = _cli(home, log, "run", str(registry), "--archive", str(tmp_path / "archive"), "--as-of", AS_OF.isoformat(), "--batch-size", "4")
+        proc = _cli(
+            home,
+            log,
+            "run",
+            str(registry),
+            "--archive",
+            str(tmp_path / "archive"),
+            "--as-of",
+            AS_OF.isoformat(),
+            "--batch-size",
+            "4",
+        )
         try:
             _wait_for(lambda: b"fitaudit: audited" in log_path.read_bytes(), proc, "a finished batch")
             (record,) = _records(home)
             children = psutil.Process(proc.pid).children(recursive=True)
-            assert record["pid"] in {c.pid for c in children} and len(children) >= 3  # the server and 2 workers at least
+            assert (
+                record["pid"] in {c.pid for c in children} and len(children) >= 3
+            )  # the server and 2 workers at least
             proc.send_signal(signal.SIGTERM)
             assert proc.wait(timeout=120) == 128 + signal.SIGTERM
         finally:
@@ -692,7 +850,18 @@ def test_after_sigkill_the_next_command_reaps_the_server(signal_fleet, tmp_path)
     root, registry, home = signal_fleet
     log_path = tmp_path / "run.log"
     with open(log_path, "wb") as log:
-        proc = _cli(home, log, "run", str(registry), "--archive", str(tmp_path / "archive"), "--as-of", AS_OF.isoformat(), "--batch-size", "4")
+        proc = _cli(
+            home,
+            log,
+            "run",
+            str(registry),
+            "--archive",
+            str(tmp_path / "archive"),
+            "--as-of",
+            AS_OF.isoformat(),
+            "--batch-size",
+            "4",
+        )
         try:
             _wait_for(lambda: len(_records(home)) == 1, proc, "the embedded server")
             (record,) = _records(home)
@@ -704,8 +873,16 @@ def test_after_sigkill_the_next_command_reaps_the_server(signal_fleet, tmp_path)
                 proc.kill()
     server = psutil.Process(record["pid"])
     assert server.is_running() and server.status() != psutil.STATUS_ZOMBIE  # left behind, as the limit of SIGKILL
-    reaped = subprocess.run([sys.executable, "-m", "fitaudit.flows.cli", "verify", str(tmp_path / "archive")],
-                            env={**os.environ, "PREFECT_HOME": str(home)}, capture_output=True, text=True, timeout=120)
-    assert f"stopped a Prefect server left running by an interrupted fitaudit command (pid {record['pid']}" in reaped.stderr
+    reaped = subprocess.run(
+        [sys.executable, "-m", "fitaudit.flows.cli", "verify", str(tmp_path / "archive")],
+        env={**os.environ, "PREFECT_HOME": str(home)},
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert (
+        f"stopped a Prefect server left running by an interrupted fitaudit command (pid {record['pid']}"
+        in reaped.stderr
+    )
     assert _gone([server, *children]) == []
     assert _records(home) == []
