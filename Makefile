@@ -34,10 +34,12 @@ demo: $(VENV)/.installed-run
 	$(BIN)/fitaudit demo --out fitaudit-demo
 
 test: $(VENV)/.installed-test
+	$(BIN)/ruff format --check .
 	$(BIN)/ruff check .
 	$(PY) -m pytest $(PYTEST_ARGS)
 
 test-fast: $(VENV)/.installed-test
+	$(BIN)/ruff format --check .
 	$(BIN)/ruff check .
 	$(PY) -m pytest -m "not slow and not server" $(PYTEST_ARGS)
 

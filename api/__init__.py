@@ -30,7 +30,15 @@ if TYPE_CHECKING:
     from fitaudit.core.forecasts import audit_forecasts
     from fitaudit.tasks.frames import load_results
 
-__all__ = ["audit_series", "audit_forecasts", "AuditSettings", "divergence_map", "scaled_bregman", "locate_change", "load_results"]
+__all__ = [
+    "audit_series",
+    "audit_forecasts",
+    "AuditSettings",
+    "divergence_map",
+    "scaled_bregman",
+    "locate_change",
+    "load_results",
+]
 
 #: Where each public name is defined.
 _HOMES = {

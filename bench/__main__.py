@@ -31,19 +31,29 @@ def _micro(quick: bool) -> list[dict]:
 
     rows = []
     for r in divergence_map.main(quick=quick):
-        rows.append({
-            "benchmark": "Divergence map (micro)",
-            "size": r["size"],
-            "measured": f"fitaudit {r['ours_us_per_member']:.3f} us/member, scipy power_divergence loop {r['peer_us_per_member']:.2f} us/member",
-            "ratio": r["ratio"], "ratio_text": f"{r['ratio']:.0f}x", "goal": r["goal"], "met": r["met"],
-        })
+        rows.append(
+            {
+                "benchmark": "Divergence map (micro)",
+                "size": r["size"],
+                "measured": f"fitaudit {r['ours_us_per_member']:.3f} us/member, scipy power_divergence loop {r['peer_us_per_member']:.2f} us/member",
+                "ratio": r["ratio"],
+                "ratio_text": f"{r['ratio']:.0f}x",
+                "goal": r["goal"],
+                "met": r["met"],
+            }
+        )
     for r in fit.main(quick=quick):
-        rows.append({
-            "benchmark": "Model fit (micro)",
-            "size": f"{r['case']} ({r['fits']} fits)",
-            "measured": f"fitaudit {r['ours_ms']:.1f} ms, {r['peer']} {r['peer_ms']:.1f} ms per fit; largest log-likelihood difference {r['dll_max_abs']:.1e}",
-            "ratio": r["ratio"], "ratio_text": f"{r['ratio']:.1f}x", "goal": ">= 10x, log-likelihood not lower by 0.01", "met": r["met"],
-        })
+        rows.append(
+            {
+                "benchmark": "Model fit (micro)",
+                "size": f"{r['case']} ({r['fits']} fits)",
+                "measured": f"fitaudit {r['ours_ms']:.1f} ms, {r['peer']} {r['peer_ms']:.1f} ms per fit; largest log-likelihood difference {r['dll_max_abs']:.1e}",
+                "ratio": r["ratio"],
+                "ratio_text": f"{r['ratio']:.1f}x",
+                "goal": ">= 10x, log-likelihood not lower by 0.01",
+                "met": r["met"],
+            }
+        )
     rows += gate_cost.main(quick=quick)
     rows += startup.main(quick=quick)
     return rows
@@ -94,26 +104,38 @@ def _details(rows: list[dict]) -> str:
                 "records and model pages of every batch; publish: from the start of render to the end of the archive "
                 "writing). Work summed per function (two batches at a time, so the sum can exceed the wall time): {}. "
                 "Flow wall time outside them: {:.1f} s. Peer per family: {}; subset {} ({}); extract read {:.2f} s.".format(
-                    ours["server_start_s"], ours["flow_s"], _seconds(ours["flow_timings"], stages),
-                    ", ".join(f"{_LABELS.get(k, k)} {v:.1f} s" for k, v in work if v >= 0.05), ours["orchestration_s"],
-                    ", ".join(f"{k} {v:.3f} s" for k, v in sorted(peer["per_family_s"].items())), peer["subset"],
-                    ", ".join(f"{k} {v}" for k, v in sorted(peer["subset_counts"].items())), peer["read_s"],
+                    ours["server_start_s"],
+                    ours["flow_s"],
+                    _seconds(ours["flow_timings"], stages),
+                    ", ".join(f"{_LABELS.get(k, k)} {v:.1f} s" for k, v in work if v >= 0.05),
+                    ours["orchestration_s"],
+                    ", ".join(f"{k} {v:.3f} s" for k, v in sorted(peer["per_family_s"].items())),
+                    peer["subset"],
+                    ", ".join(f"{k} {v}" for k, v in sorted(peer["subset_counts"].items())),
+                    peer["read_s"],
                 )
             )
         if "one_worker" in d:
             stages = ("stage_s", "calibration_s", "audit_s", "candidates_s", "render_s", "publish_s")
             out.append(
                 "**Scale-out runs.** 1 worker: flow {:.1f} s ({}); 2 workers: flow {:.1f} s ({}).".format(
-                    d["one_worker"]["flow_s"], _seconds(d["one_worker"]["flow_timings"], stages),
-                    d["two_workers"]["flow_s"], _seconds(d["two_workers"]["flow_timings"], stages),
+                    d["one_worker"]["flow_s"],
+                    _seconds(d["one_worker"]["flow_timings"], stages),
+                    d["two_workers"]["flow_s"],
+                    _seconds(d["two_workers"]["flow_timings"], stages),
                 )
             )
         if "runs" in d:
             mib = 2**20
-            lines = ["| models | flow process peak | process tree peak | results.json | run time |", "| --- | --- | --- | --- | --- |"]
+            lines = [
+                "| models | flow process peak | process tree peak | results.json | run time |",
+                "| --- | --- | --- | --- | --- |",
+            ]
             for run in d["runs"]:
-                lines.append(f"| {run['models']:,} | {run['process'] / mib:,.0f} MiB | {run['tree'] / mib:,.0f} MiB | "
-                             f"{run['results_json_bytes'] / mib:,.1f} MiB | {run['seconds']:.0f} s |")
+                lines.append(
+                    f"| {run['models']:,} | {run['process'] / mib:,.0f} MiB | {run['tree'] / mib:,.0f} MiB | "
+                    f"{run['results_json_bytes'] / mib:,.1f} MiB | {run['seconds']:.0f} s |"
+                )
             out.append("**Memory runs.**\n\n" + "\n".join(lines))
     return "\n\n".join(out)
 
@@ -138,7 +160,11 @@ def main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(prog="python -m bench", description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true", help="small sizes (a few minutes)")
     p.add_argument("--only", nargs="+", choices=BENCHMARKS, help="run only these benchmarks")
-    p.add_argument("--out", default=str(REPO / "docs" / "performance.md"), help="where to write the table (default docs/performance.md)")
+    p.add_argument(
+        "--out",
+        default=str(REPO / "docs" / "performance.md"),
+        help="where to write the table (default docs/performance.md)",
+    )
     p.add_argument("--json", help="also write the raw results (and the run's description) as JSON here")
     p.add_argument("--from-json", metavar="PATH", help="write the page from a saved --json file instead of measuring")
     args = p.parse_args(argv)
@@ -158,7 +184,9 @@ def main(argv: list[str] | None = None) -> int:
 
 def _measure(args: argparse.Namespace) -> dict:
     """Run the benchmarks; the rows plus what the page says about the run."""
-    command = "python -m bench" + (" --quick" if args.quick else "") + (f" --only {' '.join(args.only)}" if args.only else "")
+    command = (
+        "python -m bench" + (" --quick" if args.quick else "") + (f" --only {' '.join(args.only)}" if args.only else "")
+    )
     started = dt.datetime.now(dt.UTC).strftime("%Y-%m-%d %H:%M")
     t0 = time.perf_counter()
     rows: list[dict] = []
@@ -170,11 +198,27 @@ def _measure(args: argparse.Namespace) -> dict:
             rows += _run(name, args.quick)
         except Exception as exc:  # one broken benchmark must not lose the others' numbers
             traceback.print_exc()
-            rows.append({"benchmark": name, "size": "", "measured": f"failed: {type(exc).__name__}: {str(exc).splitlines()[0][:200]}",
-                         "ratio": float("nan"), "ratio_text": "n/a", "goal": "", "met": False})
+            rows.append(
+                {
+                    "benchmark": name,
+                    "size": "",
+                    "measured": f"failed: {type(exc).__name__}: {str(exc).splitlines()[0][:200]}",
+                    "ratio": float("nan"),
+                    "ratio_text": "n/a",
+                    "goal": "",
+                    "met": False,
+                }
+            )
         after = machine.load_average()
         loads[name] = (f"{before[0]:.1f}" if before else "n/a", f"{after[0]:.1f}" if after else "n/a")
-    return {"rows": rows, "machine": machine.describe(), "command": command, "loads": loads, "started": started, "elapsed": time.perf_counter() - t0}
+    return {
+        "rows": rows,
+        "machine": machine.describe(),
+        "command": command,
+        "loads": loads,
+        "started": started,
+        "elapsed": time.perf_counter() - t0,
+    }
 
 
 if __name__ == "__main__":

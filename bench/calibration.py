@@ -83,8 +83,12 @@ class Plan:
     null_series: int  # exact-null audit windows for each production gate alone
 
 
-QUICK = Plan(series=200, bootstrap_series=10, bootstrap_replicates=39, power_series=300, table_seeds=5, null_series=2000)
-FULL = Plan(series=4000, bootstrap_series=500, bootstrap_replicates=99, power_series=2000, table_seeds=25, null_series=20000)
+QUICK = Plan(
+    series=200, bootstrap_series=10, bootstrap_replicates=39, power_series=300, table_seeds=5, null_series=2000
+)
+FULL = Plan(
+    series=4000, bootstrap_series=500, bootstrap_replicates=99, power_series=2000, table_seeds=25, null_series=20000
+)
 
 
 @dataclass(frozen=True)
@@ -123,18 +127,32 @@ HW_SEASON = (3.0, 1.0, -0.5, -1.0, -2.0, -1.5)
 SIZE_SCENARIOS = (
     Scenario("AR(1), normal, n=200", AR1, AR1_TRUTH, 200),
     Scenario(
-        "ARMA(1,1), student-t(5) fixed, n=500", Arima(order=(1, 0, 1), trend="c"),
-        {"ar1": 0.5, "ma1": 0.3, "intercept": 2.0, "sigma2": 1.0}, 500,
-        noise={"law": "student-t", "shape": 5}, innovations=("student-t", 5.0),
+        "ARMA(1,1), student-t(5) fixed, n=500",
+        Arima(order=(1, 0, 1), trend="c"),
+        {"ar1": 0.5, "ma1": 0.3, "intercept": 2.0, "sigma2": 1.0},
+        500,
+        noise={"law": "student-t", "shape": 5},
+        innovations=("student-t", 5.0),
     ),
     Scenario(
-        "airline (0,1,1)(0,1,1)12, normal, n=144", Arima(order=(0, 1, 1), seasonal=(0, 1, 1, 12)),
-        {"ma1": -0.4, "sma1": -0.6, "sigma2": 1.0}, 144,
+        "airline (0,1,1)(0,1,1)12, normal, n=144",
+        Arima(order=(0, 1, 1), seasonal=(0, 1, 1, 12)),
+        {"ma1": -0.4, "sma1": -0.6, "sigma2": 1.0},
+        144,
     ),
     Scenario(
-        "Holt-Winters ETS(A,A,A) m=7, normal, n=365", ExpSmoothing(trend="add", seasonal="add", period=7),
-        {"alpha": 0.3, "beta": 0.02, "gamma": 0.1, "l0": 100.0, "b0": 0.05,
-         **{f"s{k}": v for k, v in enumerate(HW_SEASON)}, "sigma2": 1.0}, 365,
+        "Holt-Winters ETS(A,A,A) m=7, normal, n=365",
+        ExpSmoothing(trend="add", seasonal="add", period=7),
+        {
+            "alpha": 0.3,
+            "beta": 0.02,
+            "gamma": 0.1,
+            "l0": 100.0,
+            "b0": 0.05,
+            **{f"s{k}": v for k, v in enumerate(HW_SEASON)},
+            "sigma2": 1.0,
+        },
+        365,
     ),
 )
 
@@ -143,17 +161,52 @@ POWER_SCENARIOS = (
     Scenario("student-t(3) noise audited as normal, n=200", AR1, AR1_TRUTH, 200, innovations=("student-t", 3.0)),
     Scenario("skew-normal(a=3) noise audited as normal, n=200", AR1, AR1_TRUTH, 200, innovations=("skew-normal", 3.0)),
     Scenario("no departure (production check), AR(1) n=300", AR1, AR1_TRUTH, 300, check="production", departure="none"),
-    Scenario("contamination: 5 % of errors at +-4 sd, audited as normal, n=200", AR1, AR1_TRUTH, 200, innovations=("contaminated", 0.05, 4.0)),
-    Scenario("bimodal mixture (modes at +-0.8 sd), audited as normal, n=200", AR1, AR1_TRUTH, 200, innovations=("bimodal", 0.8)),
-    Scenario("level shift +1 sd over the last 56 (production check), n=300", AR1, AR1_TRUTH, 300, shift=1.0, check="production"),
-    Scenario("variance understated: stored sigma2 0.5, true 1 (production check), n=300", AR1, AR1_TRUTH, 300,
-             check="production", stored=dict(AR1_TRUTH, sigma2=0.5)),
-    Scenario("variance overstated: stored sigma2 2, true 1 (production check), n=300", AR1, AR1_TRUTH, 300,
-             check="production", stored=dict(AR1_TRUTH, sigma2=2.0)),
     Scenario(
-        "neglected seasonality: SAR(1)_7 = 0.3 audited as AR(1), n=200", AR1, AR1_TRUTH, 200,
+        "contamination: 5 % of errors at +-4 sd, audited as normal, n=200",
+        AR1,
+        AR1_TRUTH,
+        200,
+        innovations=("contaminated", 0.05, 4.0),
+    ),
+    Scenario(
+        "bimodal mixture (modes at +-0.8 sd), audited as normal, n=200",
+        AR1,
+        AR1_TRUTH,
+        200,
+        innovations=("bimodal", 0.8),
+    ),
+    Scenario(
+        "level shift +1 sd over the last 56 (production check), n=300",
+        AR1,
+        AR1_TRUTH,
+        300,
+        shift=1.0,
+        check="production",
+    ),
+    Scenario(
+        "variance understated: stored sigma2 0.5, true 1 (production check), n=300",
+        AR1,
+        AR1_TRUTH,
+        300,
+        check="production",
+        stored=dict(AR1_TRUTH, sigma2=0.5),
+    ),
+    Scenario(
+        "variance overstated: stored sigma2 2, true 1 (production check), n=300",
+        AR1,
+        AR1_TRUTH,
+        300,
+        check="production",
+        stored=dict(AR1_TRUTH, sigma2=2.0),
+    ),
+    Scenario(
+        "neglected seasonality: SAR(1)_7 = 0.3 audited as AR(1), n=200",
+        AR1,
+        AR1_TRUTH,
+        200,
         generator=Arima(order=(1, 0, 0), seasonal=(1, 0, 0, 7), trend="c"),
-        generator_truth={"ar1": 0.6, "sar1": 0.3, "intercept": 10.0, "sigma2": 1.0}, departure="dependence",
+        generator_truth={"ar1": 0.6, "sar1": 0.3, "intercept": 10.0, "sigma2": 1.0},
+        departure="dependence",
     ),
 )
 
@@ -193,7 +246,9 @@ def simulate(scenario: Scenario, index: int) -> np.ndarray:
     rng = np.random.default_rng([SEED, zlib.crc32(scenario.name.encode()), index])
     model = scenario.generator or scenario.spec
     truth = scenario.generator_truth or scenario.truth
-    y = model.simulate(truth, scenario.n, rng, innovations=innovations(scenario.innovations, scenario.n, truth["sigma2"], rng))
+    y = model.simulate(
+        truth, scenario.n, rng, innovations=innovations(scenario.innovations, scenario.n, truth["sigma2"], rng)
+    )
     if scenario.shift:
         y[-WINDOW:] += scenario.shift * math.sqrt(truth["sigma2"])
     return y
@@ -212,8 +267,14 @@ class Job:
 
 def _audit(scenario: Scenario, y: np.ndarray, settings: AuditSettings, cache: CalibrationCache, production: bool):
     """``audit_series`` on one series, with the true parameters as production version if asked."""
-    return audit_series(y, scenario.spec, noise=scenario.noise, production=scenario.production if production else None,
-                        settings=settings, cache=cache)
+    return audit_series(
+        y,
+        scenario.spec,
+        noise=scenario.noise,
+        production=scenario.production if production else None,
+        settings=settings,
+        cache=cache,
+    )
 
 
 def _size_record(res) -> dict:
@@ -280,7 +341,9 @@ def _pit(scenario: Scenario, e: np.ndarray) -> tuple[np.ndarray, int, bool]:
     return law.cdf(e, law.fit(e, location=location)), law.n_estimated(location), location
 
 
-def _candidate_rejections(scenario: Scenario, e: np.ndarray, settings: AuditSettings, cache: CalibrationCache) -> list[bool]:
+def _candidate_rejections(
+    scenario: Scenario, e: np.ndarray, settings: AuditSettings, cache: CalibrationCache
+) -> list[bool]:
     """Distribution-gate decision (p <= LEVEL) of every candidate gate on the same PIT values."""
     u, k, location = _pit(scenario, e)
     n = u.size
@@ -310,8 +373,9 @@ def _anderson_darling_given(u: np.ndarray) -> float:
 
 #: 95 % point of A2 for a fully specified law and n = WINDOW, by simulation of uniform samples
 #: (Stephens 1974 tabulates 2.492 for this case, n >= 5, from memory).
-AD_GIVEN_CRITICAL = float(np.quantile(
-    [_anderson_darling_given(u) for u in np.random.default_rng([SEED, 1954]).random((20000, WINDOW))], 0.95))
+AD_GIVEN_CRITICAL = float(
+    np.quantile([_anderson_darling_given(u) for u in np.random.default_rng([SEED, 1954]).random((20000, WINDOW))], 0.95)
+)
 
 
 def _power_record(scenario: Scenario, y: np.ndarray, settings: AuditSettings, cache: CalibrationCache) -> dict:
@@ -337,7 +401,9 @@ def _power_record(scenario: Scenario, y: np.ndarray, settings: AuditSettings, ca
         "likelihood-ratio": bool(members[cells["likelihood-ratio"]]),
         "jarque-bera": stats.jarque_bera(e).pvalue <= LEVEL,
         "anderson-darling": stats.anderson(e, dist="norm", method="interpolate").pvalue <= LEVEL,
-        "anderson-darling (given)": (_anderson_darling_given(_pit(scenario, e)[0]) > AD_GIVEN_CRITICAL) if in_production else None,
+        "anderson-darling (given)": (_anderson_darling_given(_pit(scenario, e)[0]) > AD_GIVEN_CRITICAL)
+        if in_production
+        else None,
         "candidates": _candidate_rejections(scenario, e, settings, cache),
         "independence": check.p_independence <= LEVEL,
         "whole check": check.p_value <= LEVEL,
@@ -432,7 +498,10 @@ def size_groups(plan: Plan) -> dict[tuple, list[Job]]:
 
 
 def power_groups(plan: Plan) -> dict[tuple, list[Job]]:
-    return {("power", sc.name, "simulated"): _jobs("power", sc, BASE, plan.power_series, plan.table_seeds) for sc in POWER_SCENARIOS}
+    return {
+        ("power", sc.name, "simulated"): _jobs("power", sc, BASE, plan.power_series, plan.table_seeds)
+        for sc in POWER_SCENARIOS
+    }
 
 
 def size_table(records: dict, plan: Plan) -> list[dict]:
@@ -444,7 +513,9 @@ def size_table(records: dict, plan: Plan) -> list[dict]:
             row = {"setting": sc.name, "calibration": cal, "series": len(recs)}
             for f in SIZE_FIELDS + INDEPENDENCE_FIELDS:
                 kind = f.split("_")[0]
-                row[f] = rate(recs, f, ok=f"{kind}_ok", tables=tables if f in SIZE_FIELDS else 0, replicates=BASE.replicates)
+                row[f] = rate(
+                    recs, f, ok=f"{kind}_ok", tables=tables if f in SIZE_FIELDS else 0, replicates=BASE.replicates
+                )
                 row[f"{kind}_messages"] = sorted({r[f"{kind}_message"] for r in recs if not r[f"{kind}_ok"]})
             rows.append(row)
     return rows
@@ -454,31 +525,53 @@ def power_table(records: dict) -> tuple[list[dict], dict]:
     rows = []
     for sc in POWER_SCENARIOS:
         recs = records[("power", sc.name, "simulated")]
-        row = {"scenario": sc.name, "departure": sc.departure, "check": sc.check,
-               "scored": WINDOW if sc.check == "production" else sc.n}
+        row = {
+            "scenario": sc.name,
+            "departure": sc.departure,
+            "check": sc.check,
+            "scored": WINDOW if sc.check == "production" else sc.n,
+        }
         for f in STATISTICS + tuple(label for label, _, _ in REDUCED_GRIDS) + ("independence", "whole check"):
             row[f] = rate(recs, f)
         used = [r for r in recs if r["ok"]]
         row["grid"] = np.mean([r["grid"] for r in used], axis=0)
         calibrated = np.all([r["calibrated"] for r in used], axis=0)
-        row["grid_range"] = (float(row["grid"][calibrated].min()), float(row["grid"][calibrated].max()), int(calibrated.sum()))
+        row["grid_range"] = (
+            float(row["grid"][calibrated].min()),
+            float(row["grid"][calibrated].max()),
+            int(calibrated.sum()),
+        )
         row["critical"] = float(np.mean([r["critical"] for r in used]))
         if sc.check == "production":
             row["anderson-darling (given)"] = rate(recs, "anderson-darling (given)")
         cand = np.array([r["candidates"] for r in used], dtype=float)
-        row["candidates"] = [{"rate": float(c.mean()), "se": math.sqrt(c.mean() * (1 - c.mean()) / c.size)} for c in cand.T]
+        row["candidates"] = [
+            {"rate": float(c.mean()), "se": math.sqrt(c.mean() * (1 - c.mean()) / c.size)} for c in cand.T
+        ]
         rows.append(row)
     alternatives = [r for r in rows if r["departure"] == "distribution"]
     means = {}
     for f in STATISTICS + tuple(label for label, _, _ in REDUCED_GRIDS):
         vals = [r[f] for r in alternatives]
-        means[f] = {"rate": float(np.mean([v["rate"] for v in vals])), "se": math.sqrt(sum(v["se"] ** 2 for v in vals)) / len(vals)}
+        means[f] = {
+            "rate": float(np.mean([v["rate"] for v in vals])),
+            "se": math.sqrt(sum(v["se"] ** 2 for v in vals)) / len(vals),
+        }
     cand_means = [float(np.mean([r["candidates"][i]["rate"] for r in alternatives])) for i in range(len(CANDIDATES))]
-    eligible = [i for i in range(len(CANDIDATES))
-                if all(r["candidates"][i]["rate"] >= r["pearson"]["rate"] for r in alternatives)]
+    eligible = [
+        i
+        for i in range(len(CANDIDATES))
+        if all(r["candidates"][i]["rate"] >= r["pearson"]["rate"] for r in alternatives)
+    ]
     chosen = max(eligible or range(len(CANDIDATES)), key=lambda i: cand_means[i])
-    default = next((i for i, (_, parts, members) in enumerate(CANDIDATES)
-                    if tuple(parts) == BASE.partitions and members == BASE.gate_members), None)
+    default = next(
+        (
+            i
+            for i, (_, parts, members) in enumerate(CANDIDATES)
+            if tuple(parts) == BASE.partitions and members == BASE.gate_members
+        ),
+        None,
+    )
     means["candidates"] = {"means": cand_means, "eligible": eligible, "chosen": chosen, "default": default}
     grid_mean = np.mean([r["grid"] for r in alternatives], axis=0)
     ia, ib = np.unravel_index(int(np.argmax(grid_mean)), grid_mean.shape)
@@ -499,7 +592,8 @@ def goals(size_rows: list[dict], power_rows: list[dict], means: dict) -> dict:
     best_peer = max(("anderson-darling", "jarque-bera"), key=lambda f: means[f]["rate"])
     below_pearson = [
         {"scenario": r["scenario"], "ours": r["ours"]["rate"], "pearson": r["pearson"]["rate"]}
-        for r in alternatives if r["ours"]["rate"] < r["pearson"]["rate"]
+        for r in alternatives
+        if r["ours"]["rate"] < r["pearson"]["rate"]
     ]
     cand = means["candidates"]
     return {
@@ -530,7 +624,9 @@ def production_gates_null(plan: Plan) -> dict:
     with_ties, strict = [], []
     gate = BASE.gate(WINDOW, 0)
     for seed in range(plan.table_seeds):
-        table = production_table(WINDOW, s, BASE.alphas, BASE.betas, BASE.scaling, BASE.r, BASE.replicates, seed, gate=gate)
+        table = production_table(
+            WINDOW, s, BASE.alphas, BASE.betas, BASE.scaling, BASE.r, BASE.replicates, seed, gate=gate
+        )
         u = rng.random((per_table, WINDOW))
         r_obs = standardised_maximum(gate.statistics(u), table.gate_reference)
         with_ties += [table.gate_p_value(r) <= LEVEL for r in r_obs]
@@ -541,14 +637,23 @@ def production_gates_null(plan: Plan) -> dict:
     gate = {
         "cells": s,
         "reference_spread": (float(np.nanmin(spread)), float(spread[ia, ib]), BASE.alphas[ia], BASE.betas[ib]),
-        "ties": rate([{"ok": True, "x": v} for v in with_ties], "x", tables=plan.table_seeds, replicates=BASE.replicates),
-        "strict": rate([{"ok": True, "x": v} for v in strict], "x", tables=plan.table_seeds, replicates=BASE.replicates),
+        "ties": rate(
+            [{"ok": True, "x": v} for v in with_ties], "x", tables=plan.table_seeds, replicates=BASE.replicates
+        ),
+        "strict": rate(
+            [{"ok": True, "x": v} for v in strict], "x", tables=plan.table_seeds, replicates=BASE.replicates
+        ),
     }
     ljung = []
     for lags in sorted({ljung_box_lags(WINDOW, sc.spec.seasonal_period(), 0) for sc in SIZE_SCENARIOS}):
         p = np.array([ljung_box(rng.standard_normal(WINDOW), lags).p_value for _ in range(plan.null_series)])
-        ljung.append({"lags": lags, "half": rate([{"ok": True, "x": v <= LEVEL / 2} for v in p], "x"),
-                      "full": rate([{"ok": True, "x": v <= LEVEL} for v in p], "x")})
+        ljung.append(
+            {
+                "lags": lags,
+                "half": rate([{"ok": True, "x": v <= LEVEL / 2} for v in p], "x"),
+                "full": rate([{"ok": True, "x": v <= LEVEL} for v in p], "x"),
+            }
+        )
     return {"distribution": gate, "ljung_box": ljung}
 
 
@@ -573,8 +678,12 @@ def _core_digest() -> str:
 def _versions() -> dict:
     """Interpreter, library and code versions, read when the run starts."""
     try:
-        commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=REPO, capture_output=True, text=True, check=True).stdout.strip()
-        dirty = subprocess.run(["git", "status", "--porcelain", "--", "core"], cwd=REPO, capture_output=True, text=True, check=True).stdout.strip()
+        commit = subprocess.run(
+            ["git", "rev-parse", "--short", "HEAD"], cwd=REPO, capture_output=True, text=True, check=True
+        ).stdout.strip()
+        dirty = subprocess.run(
+            ["git", "status", "--porcelain", "--", "core"], cwd=REPO, capture_output=True, text=True, check=True
+        ).stdout.strip()
         commit += " (core/ has uncommitted changes)" if dirty else ""
     except (OSError, subprocess.CalledProcessError):
         commit = "unknown"
@@ -607,7 +716,8 @@ def render(result: dict) -> str:
         "",
         "## What was run",
         "",
-        f"- Command: `{result['command']}`" + (" (the CI-sized quick mode: too few series for firm conclusions)" if result["quick"] else ""),
+        f"- Command: `{result['command']}`"
+        + (" (the CI-sized quick mode: too few series for firm conclusions)" if result["quick"] else ""),
         f"- Seed {SEED} (series); null tables seeded by the audit's own rule, with table seeds 0..{plan.table_seeds - 1} "
         f"(series i uses `AuditSettings(seed=i mod {plan.table_seeds})`).",
         f"- Versions: Python {v['python']}, numpy {v['numpy']}, scipy {v['scipy']}, fitaudit {v['fitaudit']}, commit {v['commit']}, "
@@ -643,16 +753,38 @@ def render(result: dict) -> str:
         "(Holt-Winters re-estimates its initial states on the series, its documented production rule).",
         "",
     ]
-    header = ["setting", "calibration", "series", "refit gate", "refit LB gate", "refit check", "production gate",
-              "production LB gate", "production check", "failed (refit / production)"]
+    header = [
+        "setting",
+        "calibration",
+        "series",
+        "refit gate",
+        "refit LB gate",
+        "refit check",
+        "production gate",
+        "production LB gate",
+        "production check",
+        "failed (refit / production)",
+    ]
     rows = []
     for r in size_rows:
-        cells = [r[f] for f in ("refit_gate", "refit_independence", "refit_check", "production_gate", "production_independence", "production_check")]
+        cells = [
+            r[f]
+            for f in (
+                "refit_gate",
+                "refit_independence",
+                "refit_check",
+                "production_gate",
+                "production_independence",
+                "production_check",
+            )
+        ]
         failed = f"{r['refit_gate']['failed']} / {r['production_gate']['failed']}"
         rows.append([r["setting"], r["calibration"], str(r["series"])] + [fmt(c) for c in cells] + [failed])
     out += [md_table(header, rows), ""]
-    messages = sorted({(r["setting"], m) for r in size_rows for kind in ("refit", "production") for m in r[f"{kind}_messages"]})
-    out += [f"Checks that could not run, {setting}: \"{message}\"" for setting, message in messages]
+    messages = sorted(
+        {(r["setting"], m) for r in size_rows for kind in ("refit", "production") for m in r[f"{kind}_messages"]}
+    )
+    out += [f'Checks that could not run, {setting}: "{message}"' for setting, message in messages]
     nulls = result["production_nulls"]
     out += [
         "",
@@ -665,10 +797,22 @@ def render(result: dict) -> str:
         f"{plan.table_seeds} production tables; independence gate: i.i.d. normal errors, chi-square(h) reference as in "
         "the asymptotic calibration, h by docs/method.md §9.2):",
         "",
-        md_table(["gate", f"rejection at {LEVEL / 2:g}", f"rejection at {LEVEL:g}"],
-                 [["distribution gate, as the audit rejects (ties count as exceedances)", "", fmt(nulls["distribution"]["ties"])],
-                  ["distribution gate, ties not counted (strictly larger only)", "", fmt(nulls["distribution"]["strict"])]]
-                 + [[f"Ljung-Box, h = {r['lags']}", fmt(r["half"]), fmt(r["full"])] for r in nulls["ljung_box"]]),
+        md_table(
+            ["gate", f"rejection at {LEVEL / 2:g}", f"rejection at {LEVEL:g}"],
+            [
+                [
+                    "distribution gate, as the audit rejects (ties count as exceedances)",
+                    "",
+                    fmt(nulls["distribution"]["ties"]),
+                ],
+                [
+                    "distribution gate, ties not counted (strictly larger only)",
+                    "",
+                    fmt(nulls["distribution"]["strict"]),
+                ],
+            ]
+            + [[f"Ljung-Box, h = {r['lags']}", fmt(r["half"]), fmt(r["full"])] for r in nulls["ljung_box"]],
+        ),
         "",
         "## 2. Power (simulated calibration)",
         "",
@@ -690,14 +834,30 @@ def render(result: dict) -> str:
         "AR(1) with a stored sigma2 of 0.5 or 2.",
         "",
     ]
-    header = ["scenario", "check", "ours", "Pearson", "likelihood-ratio", "Jarque-Bera", "Anderson-Darling", "AD given", "independence gate", "whole check"]
+    header = [
+        "scenario",
+        "check",
+        "ours",
+        "Pearson",
+        "likelihood-ratio",
+        "Jarque-Bera",
+        "Anderson-Darling",
+        "AD given",
+        "independence gate",
+        "whole check",
+    ]
     rows = [
-        [r["scenario"], r["check"]] + [fmt(r[f]) for f in STATISTICS]
+        [r["scenario"], r["check"]]
+        + [fmt(r[f]) for f in STATISTICS]
         + [fmt(r["anderson-darling (given)"]) if "anderson-darling (given)" in r else ""]
         + [fmt(r[f]) for f in ("independence", "whole check")]
         for r in power_rows
     ]
-    rows.append(["**mean over the distributional alternatives**", ""] + [f"**{means[f]['rate']:.3f}** ± {means[f]['se']:.3f}" for f in STATISTICS] + ["", "", ""])
+    rows.append(
+        ["**mean over the distributional alternatives**", ""]
+        + [f"**{means[f]['rate']:.3f}** ± {means[f]['se']:.3f}" for f in STATISTICS]
+        + ["", "", ""]
+    )
     out += [md_table(header, rows), ""]
     n_alt = sum(r["departure"] == "distribution" for r in power_rows)
     out += [
@@ -714,13 +874,26 @@ def render(result: dict) -> str:
     ]
     alt_rows = [r for r in power_rows if r["departure"] != "dependence"]
     cand = means["candidates"]
-    header = ["candidate gate"] + [_short(r["scenario"]) for r in alt_rows] + ["mean over alternatives", "never below Pearson"]
+    header = (
+        ["candidate gate"]
+        + [_short(r["scenario"]) for r in alt_rows]
+        + ["mean over alternatives", "never below Pearson"]
+    )
     rows = []
     for i, (label, _, _) in enumerate(CANDIDATES):
-        tag = (" **(default)**" if i == cand["default"] else "") + (" *(study's choice)*" if i == cand["chosen"] else "")
-        rows.append([label + tag] + [f"{r['candidates'][i]['rate']:.3f}" for r in alt_rows]
-                    + [f"{cand['means'][i]:.3f}", "yes" if i in cand["eligible"] else "no"])
-    rows.append(["Pearson, equiprobable cells (single member)"] + [f"{r['pearson']['rate']:.3f}" for r in alt_rows] + [f"{means['pearson']['rate']:.3f}", ""])
+        tag = (" **(default)**" if i == cand["default"] else "") + (
+            " *(study's choice)*" if i == cand["chosen"] else ""
+        )
+        rows.append(
+            [label + tag]
+            + [f"{r['candidates'][i]['rate']:.3f}" for r in alt_rows]
+            + [f"{cand['means'][i]:.3f}", "yes" if i in cand["eligible"] else "no"]
+        )
+    rows.append(
+        ["Pearson, equiprobable cells (single member)"]
+        + [f"{r['pearson']['rate']:.3f}" for r in alt_rows]
+        + [f"{means['pearson']['rate']:.3f}", ""]
+    )
     out += [md_table(header, rows), ""]
     best = means["best grid member"]
     out += [
@@ -733,9 +906,14 @@ def render(result: dict) -> str:
     lo, hi = SIZE_GOAL
     out += ["## 3. Goals", ""]
     if result["quick"]:
-        out += ["Quick mode: with a few hundred series the standard errors (about 0.015 at 5 %) are too large for these "
-                "verdicts to mean much; the full run decides.", ""]
-    missed = "; ".join(f"{s['setting']}, {s['rate'].replace('_', ' ')} = {s['value']:.3f}" for s in g["size"] if not s["met"])
+        out += [
+            "Quick mode: with a few hundred series the standard errors (about 0.015 at 5 %) are too large for these "
+            "verdicts to mean much; the full run decides.",
+            "",
+        ]
+    missed = "; ".join(
+        f"{s['setting']}, {s['rate'].replace('_', ' ')} = {s['value']:.3f}" for s in g["size"] if not s["met"]
+    )
     out.append(
         f"- `simulated` size within [{lo}, {hi}] in every setting (gate and whole check, refit and production): "
         + (f"**missed** in {missed}." if missed else "**met** in all cells.")
@@ -747,13 +925,19 @@ def render(result: dict) -> str:
         + f" (ours {means['ours']['rate']:.3f})."
     )
     below = "; ".join(f"{b['scenario']} ({b['ours']:.3f} against {b['pearson']:.3f})" for b in g["below_pearson"])
-    out.append("- Never below Pearson on the equiprobable cells in any alternative: " + (f"**missed** in {below}." if below else "**met**."))
+    out.append(
+        "- Never below Pearson on the equiprobable cells in any alternative: "
+        + (f"**missed** in {below}." if below else "**met**.")
+    )
     cand = means["candidates"]
     out.append(
         "- The default gate is the study's choice: "
-        + ("**met**" if g["default_is_choice"] else
-           f"**missed**: the study chose {CANDIDATES[cand['chosen']][0]!r}; change `DEFAULT_PARTITIONS` / "
-           "`DEFAULT_GATE_MEMBERS` in core/settings.py and rerun")
+        + (
+            "**met**"
+            if g["default_is_choice"]
+            else f"**missed**: the study chose {CANDIDATES[cand['chosen']][0]!r}; change `DEFAULT_PARTITIONS` / "
+            "`DEFAULT_GATE_MEMBERS` in core/settings.py and rerun"
+        )
         + "."
     )
     out += ["", "## 4. Discussion", ""]
@@ -786,20 +970,27 @@ def discussion(result: dict) -> list[str]:
         f"- **Asymptotic calibration.** The production gate (each partition's largest member against chi-square(s - 1), "
         f"Bonferroni over the partitions, on {WINDOW} errors) rejects at {prod} in the four settings, the refit gate (the "
         f"same with each partition's Nikulin-Rao-Robson term) at {refit}. "
-        + ("Both are far above 5 %: every member is asymptotically chi-square(s - 1), but in finite samples the "
-           "members' own 95 % points differ widely (for the production table, {:.2f} to {:.2f} times the "
-           "chi-square(s - 1) point, the largest at alpha {:g}, beta {:g}), so the maximum over 153 members is "
-           "stochastically much larger than chi-square (docs/method.md §5.1 and §5.6). The asymptotic method is liberal "
-           "for the grid maximum at these sample sizes and should serve only as a fast screen.".format(*result["production_nulls"]["distribution"]["reference_spread"])
-           if liberal else "Above 5 % where the table shows it: each partition's maximum over its members is "
-           "stochastically larger than one chi-square(s - 1) variable in finite samples, and Bonferroni over the "
-           "partitions only partly offsets it (docs/method.md §5.1 and §5.6); `asymptotic` stays a fast screen and "
-           "`simulated` the default.")
+        + (
+            "Both are far above 5 %: every member is asymptotically chi-square(s - 1), but in finite samples the "
+            "members' own 95 % points differ widely (for the production table, {:.2f} to {:.2f} times the "
+            "chi-square(s - 1) point, the largest at alpha {:g}, beta {:g}), so the maximum over 153 members is "
+            "stochastically much larger than chi-square (docs/method.md §5.1 and §5.6). The asymptotic method is liberal "
+            "for the grid maximum at these sample sizes and should serve only as a fast screen.".format(
+                *result["production_nulls"]["distribution"]["reference_spread"]
+            )
+            if liberal
+            else "Above 5 % where the table shows it: each partition's maximum over its members is "
+            "stochastically larger than one chi-square(s - 1) variable in finite samples, and Bonferroni over the "
+            "partitions only partly offsets it (docs/method.md §5.1 and §5.6); `asymptotic` stays a fast screen and "
+            "`simulated` the default."
+        )
     )
     sim = [by[(s.name, "simulated")] for s in SIZE_SCENARIOS]
     lines.append(
         "- **Simulated calibration.** Distribution-gate sizes "
-        + ", ".join(f"{r['refit_gate']['rate']:.3f} (refit) / {r['production_gate']['rate']:.3f} (production)" for r in sim)
+        + ", ".join(
+            f"{r['refit_gate']['rate']:.3f} (refit) / {r['production_gate']['rate']:.3f} (production)" for r in sim
+        )
         + " in the four settings. The refit table is exact for i.i.d. location-scale noise and relies on the "
         "asymptotic negligibility of the estimated dynamic parameters for model residuals (docs/method.md §8.1-§8.2); the "
         "production table is exact for frozen parameters."
@@ -812,13 +1003,17 @@ def discussion(result: dict) -> list[str]:
         "production table depends only on the window length, cells, grid and seed), so their production-gate sizes "
         "should agree with it up to binomial error; counting only strictly larger simulated values it would reject at "
         f"{strict['rate']:.3f}. "
-        + ("The gap is the discreteness of cell counts of 56 values: the standardised maximum ties simulated values "
-           "often, ties count against the observed data in p = (1 + #{R* >= r}) / (R + 1), and the gate is "
-           "slightly conservative, which is what the production-gate sizes of the model settings show."
-           if strict["rate"] - ties["rate"] > 2 * ties["se"] else "Ties between simulated and observed values matter little here.")
+        + (
+            "The gap is the discreteness of cell counts of 56 values: the standardised maximum ties simulated values "
+            "often, ties count against the observed data in p = (1 + #{R* >= r}) / (R + 1), and the gate is "
+            "slightly conservative, which is what the production-gate sizes of the model settings show."
+            if strict["rate"] - ties["rate"] > 2 * ties["se"]
+            else "Ties between simulated and observed values matter little here."
+        )
     )
     lb = ", ".join(f"{r['half']['rate']:.3f} (h = {r['lags']})" for r in nulls["ljung_box"])
     liberal_lb = all(r["half"]["rate"] > LEVEL / 2 + 3 * r["half"]["se"] for r in nulls["ljung_box"])
+
     def lb_rates(cal: str, kind: str) -> str:
         return ", ".join(f"{by[(sc.name, cal)][f'{kind}_independence']['rate']:.3f}" for sc in SIZE_SCENARIOS)
 
@@ -841,9 +1036,12 @@ def discussion(result: dict) -> list[str]:
         f"{result['plan'].bootstrap_replicates} refits each): refit-gate sizes "
         + ", ".join(f"{r['refit_gate']['rate']:.3f}" for r in boot)
         + f"; a true 5 % rate has a standard error of {se:.3f} here"
-        + (f", so {', '.join(high)} lies more than two standard errors above 5 % (the bootstrap draws from the "
-           "fitted, not the true, parameters, so it is only approximately exact)." if high else
-           ", and every rate is within two standard errors of 5 %.")
+        + (
+            f", so {', '.join(high)} lies more than two standard errors above 5 % (the bootstrap draws from the "
+            "fitted, not the true, parameters, so it is only approximately exact)."
+            if high
+            else ", and every rate is within two standard errors of 5 %."
+        )
     )
     alt = [r for r in power_rows if r["departure"] == "distribution"]
     cand = means["candidates"]
@@ -853,8 +1051,13 @@ def discussion(result: dict) -> list[str]:
         f"Pearson on the equiprobable cells {means['pearson']['rate']:.3f}, likelihood-ratio {means['likelihood-ratio']['rate']:.3f}, "
         f"Jarque-Bera {means['jarque-bera']['rate']:.3f}, Anderson-Darling {means['anderson-darling']['rate']:.3f}; the gate "
         f"before this change (every grid member on the equiprobable cells) reaches {before:.3f} on the same series. "
-        + ("Ours is below Pearson's in " + ", ".join(f"{b['scenario']} by {b['pearson'] - b['ours']:.3f}" for b in g["below_pearson"]) + ". "
-           if g["below_pearson"] else "Ours is at least Pearson's in every alternative. ")
+        + (
+            "Ours is below Pearson's in "
+            + ", ".join(f"{b['scenario']} by {b['pearson'] - b['ours']:.3f}" for b in g["below_pearson"])
+            + ". "
+            if g["below_pearson"]
+            else "Ours is at least Pearson's in every alternative. "
+        )
         + "The gain comes from the cells, not the members: the tail-refined cells put one expected observation in "
         "each outer cell, where heavy tails, contamination and a misstated scale show; the three broad cells see "
         "smooth departures (a bimodal law, a shifted level); the equiprobable cells sit in between. A maximum over "
@@ -879,14 +1082,28 @@ def discussion(result: dict) -> list[str]:
     if ahead or beaten:
         lines.append(
             "- **Where a single peer is stronger.** "
-            + ("Anderson-Darling with the production parameters as given beats ours in "
-               + ", ".join(f"{_short(r['scenario'])} ({r['anderson-darling (given)']['rate']:.3f} against {r['ours']['rate']:.3f})" for r in ahead)
-               + ": it compares every error with the stated law, while cells lose resolution in the body of the "
-               "law at 56 errors. " if ahead else "")
-            + ("The likelihood-ratio member on the equiprobable cells beats ours in "
-               + ", ".join(f"{_short(r['scenario'])} ({r['likelihood-ratio']['rate']:.3f} against {r['ours']['rate']:.3f})" for r in beaten)
-               + ": an overstated variance thins the outer cells and crowds the centre, which many narrow cells and "
-               "G2 see directly, while the gate pays for its maximum over nine (partition, member) pairs. " if beaten else "")
+            + (
+                "Anderson-Darling with the production parameters as given beats ours in "
+                + ", ".join(
+                    f"{_short(r['scenario'])} ({r['anderson-darling (given)']['rate']:.3f} against {r['ours']['rate']:.3f})"
+                    for r in ahead
+                )
+                + ": it compares every error with the stated law, while cells lose resolution in the body of the "
+                "law at 56 errors. "
+                if ahead
+                else ""
+            )
+            + (
+                "The likelihood-ratio member on the equiprobable cells beats ours in "
+                + ", ".join(
+                    f"{_short(r['scenario'])} ({r['likelihood-ratio']['rate']:.3f} against {r['ours']['rate']:.3f})"
+                    for r in beaten
+                )
+                + ": an overstated variance thins the outer cells and crowds the centre, which many narrow cells and "
+                "G2 see directly, while the gate pays for its maximum over nine (partition, member) pairs. "
+                if beaten
+                else ""
+            )
             + "These are the alternatives to improve next."
         )
     shift = [r for r in alt if r["check"] == "production"]
@@ -911,7 +1128,9 @@ def discussion(result: dict) -> list[str]:
 # ---------------------------------------------------------------------------------------------
 # Entry point
 # ---------------------------------------------------------------------------------------------
-def main(quick: bool = False, workers: int = 1, out: pathlib.Path | str | None = None, command: str | None = None) -> dict:
+def main(
+    quick: bool = False, workers: int = 1, out: pathlib.Path | str | None = None, command: str | None = None
+) -> dict:
     """Run the size and power studies and write the report.
 
     ``out`` is where the markdown goes; by default the full study writes ``docs/validation.md``
@@ -941,7 +1160,12 @@ def main(quick: bool = False, workers: int = 1, out: pathlib.Path | str | None =
         "quick": quick,
         "plan": plan,
         "workers": workers,
-        "command": command or ("python bench/calibration.py" + (" --quick" if quick else "") + (f" --jobs {workers}" if workers > 1 else "")),
+        "command": command
+        or (
+            "python bench/calibration.py"
+            + (" --quick" if quick else "")
+            + (f" --jobs {workers}" if workers > 1 else "")
+        ),
         "versions": versions,
         "seconds": {"size": t1 - t0 + t4 - t3, "power": t2 - t1, "total": t4 - t0},
         "production_nulls": nulls,
@@ -964,9 +1188,18 @@ if __name__ == "__main__":
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="CI-sized run (a few minutes)")
     parser.add_argument("--jobs", type=int, default=1, help="worker processes (default 1)")
-    parser.add_argument("--select", type=int, default=0, metavar="N",
-                        help="only the power study with N series per scenario on a separate seed: prints the candidate gates' mean powers")
-    parser.add_argument("--out", default=None, help="where to write the report (default: docs/validation.md for the full run, nowhere for --quick)")
+    parser.add_argument(
+        "--select",
+        type=int,
+        default=0,
+        metavar="N",
+        help="only the power study with N series per scenario on a separate seed: prints the candidate gates' mean powers",
+    )
+    parser.add_argument(
+        "--out",
+        default=None,
+        help="where to write the report (default: docs/validation.md for the full run, nowhere for --quick)",
+    )
     args = parser.parse_args()
     if args.select:
         # the power study alone, on its own seed, to choose the default gate before the full run

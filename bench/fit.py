@@ -50,17 +50,31 @@ def _cases(quick: bool) -> list[dict]:
         regression_series.append((regression.simulate(regression_truth, 1000, rng, exog=exog), exog))
 
     return [
-        {"name": "ARMA(1,1) with intercept, n=500", "spec": arma, "series": arma_series,
-         "peer": "statsmodels ARIMA",
-         "fit_peer": lambda y, exog: ARIMA(y, order=(1, 0, 1), trend="c").fit()},
-        {"name": "airline (0,1,1)(0,1,1)12, monthly CO2, n=526", "spec": Arima(order=(0, 1, 1), seasonal=(0, 1, 1, 12)),
-         "series": [(_monthly_co2(), None)], "peer": "statsmodels SARIMAX(simple_differencing=True)",
-         "fit_peer": lambda y, exog: SARIMAX(y, order=(0, 1, 1), seasonal_order=(0, 1, 1, 12),
-                                             simple_differencing=True).fit(disp=0)},
-        {"name": "AR(2) + intercept + 2 exog, n=1000", "spec": regression, "series": regression_series,
-         "peer": "statsmodels ARIMA with exog",
-         "fit_peer": lambda y, exog: ARIMA(y, exog=np.column_stack(list(exog.values())), order=(2, 0, 0),
-                                           trend="c").fit()},
+        {
+            "name": "ARMA(1,1) with intercept, n=500",
+            "spec": arma,
+            "series": arma_series,
+            "peer": "statsmodels ARIMA",
+            "fit_peer": lambda y, exog: ARIMA(y, order=(1, 0, 1), trend="c").fit(),
+        },
+        {
+            "name": "airline (0,1,1)(0,1,1)12, monthly CO2, n=526",
+            "spec": Arima(order=(0, 1, 1), seasonal=(0, 1, 1, 12)),
+            "series": [(_monthly_co2(), None)],
+            "peer": "statsmodels SARIMAX(simple_differencing=True)",
+            "fit_peer": lambda y, exog: SARIMAX(
+                y, order=(0, 1, 1), seasonal_order=(0, 1, 1, 12), simple_differencing=True
+            ).fit(disp=0),
+        },
+        {
+            "name": "AR(2) + intercept + 2 exog, n=1000",
+            "spec": regression,
+            "series": regression_series,
+            "peer": "statsmodels ARIMA with exog",
+            "fit_peer": lambda y, exog: ARIMA(
+                y, exog=np.column_stack(list(exog.values())), order=(2, 0, 0), trend="c"
+            ).fit(),
+        },
     ]
 
 
@@ -89,30 +103,38 @@ def main(quick: bool = False) -> list[dict]:
                 peer_times.append(t)
             dll = np.array([a.loglik - b.llf for a, b in zip(ours_results, peer_results)])
             ours_ms, peer_ms = 1e3 * min(ours_times), 1e3 * min(peer_times)
-            rows.append({
-                "case": case["name"],
-                "peer": case["peer"],
-                "fits": len(series),
-                "ours_ms": ours_ms,
-                "peer_ms": peer_ms,
-                "ratio": peer_ms / ours_ms,
-                "dll_max_abs": float(np.max(np.abs(dll))),
-                "dll_min": float(np.min(dll)),
-                "ours_converged": all(r.converged for r in ours_results),
-                "met": bool(peer_ms / ours_ms >= GOAL_RATIO and np.min(dll) > -GOAL_LOGLIK),
-            })
+            rows.append(
+                {
+                    "case": case["name"],
+                    "peer": case["peer"],
+                    "fits": len(series),
+                    "ours_ms": ours_ms,
+                    "peer_ms": peer_ms,
+                    "ratio": peer_ms / ours_ms,
+                    "dll_max_abs": float(np.max(np.abs(dll))),
+                    "dll_min": float(np.min(dll)),
+                    "ours_converged": all(r.converged for r in ours_results),
+                    "met": bool(peer_ms / ours_ms >= GOAL_RATIO and np.min(dll) > -GOAL_LOGLIK),
+                }
+            )
     return rows
 
 
 def _print_table(rows: list[dict]) -> None:
-    header = f"{'case':<46} {'fits':>4} {'fitaudit ms':>11} {'statsmodels ms':>14} {'ratio':>7} {'max|dll|':>9} {'goal':>5}"
+    header = (
+        f"{'case':<46} {'fits':>4} {'fitaudit ms':>11} {'statsmodels ms':>14} {'ratio':>7} {'max|dll|':>9} {'goal':>5}"
+    )
     print(header)
     print("-" * len(header))
     for r in rows:
-        print(f"{r['case']:<46} {r['fits']:>4} {r['ours_ms']:>11.2f} {r['peer_ms']:>14.2f} {r['ratio']:>6.1f}x "
-              f"{r['dll_max_abs']:>9.1e} {'met' if r['met'] else 'NOT':>5}")
-    print(f"goal: >= {GOAL_RATIO:.0f}x faster per fit with log-likelihood not lower than statsmodels' by "
-          f"{GOAL_LOGLIK}; dll = ours - statsmodels; peers: " + "; ".join(r["peer"] for r in rows))
+        print(
+            f"{r['case']:<46} {r['fits']:>4} {r['ours_ms']:>11.2f} {r['peer_ms']:>14.2f} {r['ratio']:>6.1f}x "
+            f"{r['dll_max_abs']:>9.1e} {'met' if r['met'] else 'NOT':>5}"
+        )
+    print(
+        f"goal: >= {GOAL_RATIO:.0f}x faster per fit with log-likelihood not lower than statsmodels' by "
+        f"{GOAL_LOGLIK}; dll = ours - statsmodels; peers: " + "; ".join(r["peer"] for r in rows)
+    )
 
 
 if __name__ == "__main__":

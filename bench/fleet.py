@@ -71,7 +71,15 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
     if dask_workers:
         from prefect_dask import DaskTaskRunner
 
-        runner = DaskTaskRunner(cluster_class="distributed.LocalCluster", cluster_kwargs={"n_workers": dask_workers, "threads_per_worker": 1, "processes": True, "dashboard_address": None})
+        runner = DaskTaskRunner(
+            cluster_class="distributed.LocalCluster",
+            cluster_kwargs={
+                "n_workers": dask_workers,
+                "threads_per_worker": 1,
+                "processes": True,
+                "dashboard_address": None,
+            },
+        )
         flow_fn = audit_flow.with_options(task_runner=runner)
     t0 = time.perf_counter()
     with get_client(sync_client=True) as client:  # starts the embedded server (or reaches the real one)
@@ -105,8 +113,8 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
             "benchmark": "Fleet throughput",
             "size": f"{n} series x 730 days ({verdicts})",
             "measured": f"fitaudit {ours_rate:.2f} series/s ({ours_s:.1f} s incl. {ours['server_start_s']:.1f} s server start); "
-                        f"peer {peer['series_per_second']:.3f} series/s ({peer['seconds_per_series']:.2f} s/series: {fam}; "
-                        f"{peer['subset']} random series, extrapolated)",
+            f"peer {peer['series_per_second']:.3f} series/s ({peer['seconds_per_series']:.2f} s/series: {fam}; "
+            f"{peer['subset']} random series, extrapolated)",
             "ratio": ratio,
             "ratio_text": f"{ratio:.1f}x",
             "goal": f">= {GOAL_RATIO:.0f}x the peer's series/s",
@@ -117,7 +125,7 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
             "benchmark": "Orchestration share",
             "size": f"the same {n}-series flow run",
             "measured": f"{ours['orchestration_s']:.1f} s of {ours['flow_s']:.1f} s flow wall time outside fitaudit's work functions "
-                        f"(server start-up {ours['server_start_s']:.1f} s not included)",
+            f"(server start-up {ours['server_start_s']:.1f} s not included)",
             "ratio": share,
             "ratio_text": f"{100 * share:.1f} %",
             "goal": f"<= {100 * GOAL_SHARE:.0f} %",

@@ -34,7 +34,18 @@ import pyarrow.parquet as pq
 from fitaudit.core.models import model_from_dict
 from fitaudit.tasks.params import promote, write_version
 
-__all__ = ["AS_OF", "N_DAYS", "AUDIT_WINDOW", "ARIMA_SPEC", "SMOOTHING_SPEC", "FleetPaths", "FleetSeries", "model_ids", "fleet_series", "write_fleet"]
+__all__ = [
+    "AS_OF",
+    "N_DAYS",
+    "AUDIT_WINDOW",
+    "ARIMA_SPEC",
+    "SMOOTHING_SPEC",
+    "FleetPaths",
+    "FleetSeries",
+    "model_ids",
+    "fleet_series",
+    "write_fleet",
+]
 
 AS_OF = dt.date(2026, 11, 30)
 N_DAYS = 730
@@ -92,7 +103,11 @@ def _arima_series(rng: np.random.Generator, temp: np.ndarray, scale: np.ndarray)
         "sigma2": float((0.6 + 0.6 * rng.random()) ** 2),
     }
     innovations = rng.standard_normal(N_DAYS) * np.sqrt(params["sigma2"]) * scale
-    y = 40.0 + 20.0 * rng.random() + model_from_dict(ARIMA_SPEC).simulate(params, N_DAYS, rng, exog={"temp_c": temp}, innovations=innovations)
+    y = (
+        40.0
+        + 20.0 * rng.random()
+        + model_from_dict(ARIMA_SPEC).simulate(params, N_DAYS, rng, exog={"temp_c": temp}, innovations=innovations)
+    )
     return y, params
 
 
@@ -140,8 +155,12 @@ def fleet_series(n: int, seed: int = SEED) -> list[FleetSeries]:
             spec, exog = SMOOTHING_SPEC, {}
         if i % 50 == 6:
             ramp = np.clip((np.arange(N_DAYS) - (N_DAYS - 365)) / 200.0, 0.0, 1.0)
-            y = y + 2.0 * np.sqrt(params["sigma2"]) * ramp * weekly[np.arange(N_DAYS) % 7] * np.cos(np.arange(N_DAYS) / 30.0)
-        out.append(FleetSeries(model_id=f"m-{key}", key=key, spec=dict(spec), y=np.round(y, 3), exog=exog, params=params))
+            y = y + 2.0 * np.sqrt(params["sigma2"]) * ramp * weekly[np.arange(N_DAYS) % 7] * np.cos(
+                np.arange(N_DAYS) / 30.0
+            )
+        out.append(
+            FleetSeries(model_id=f"m-{key}", key=key, spec=dict(spec), y=np.round(y, 3), exog=exog, params=params)
+        )
     return out
 
 
@@ -230,8 +249,21 @@ def write_fleet(out: str | pathlib.Path, n: int, *, replicates: int = 999) -> Fl
     archive = root / "archive"
     for s in series:
         v = write_version(
-            archive, s.model_id, spec=model_from_dict(s.spec).to_dict(), noise={"law": "normal", "shape": None}, params=s.params,
-            status="candidate", created_by="bench/fleet.py", lineage={"note": "generating parameters"}, created_at="2025-11-01T09:00:00Z",
+            archive,
+            s.model_id,
+            spec=model_from_dict(s.spec).to_dict(),
+            noise={"law": "normal", "shape": None},
+            params=s.params,
+            status="candidate",
+            created_by="bench/fleet.py",
+            lineage={"note": "generating parameters"},
+            created_at="2025-11-01T09:00:00Z",
         )
         promote(archive, s.model_id, v.version, approved_by="bench/fleet.py", note="benchmark production version")
-    return FleetPaths(root=str(root), registry=str(registry), archive=str(archive), data=str(root / "data"), model_ids=tuple(s.model_id for s in series))
+    return FleetPaths(
+        root=str(root),
+        registry=str(registry),
+        archive=str(archive),
+        data=str(root / "data"),
+        model_ids=tuple(s.model_id for s in series),
+    )

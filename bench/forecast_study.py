@@ -113,7 +113,12 @@ def simulate(setting: Setting, index: int) -> tuple[np.ndarray, dict]:
     if setting.statement == "student-t":
         nu = 5.0
         y = level + sd * math.sqrt((nu - 2) / nu) * rng.standard_t(nu, n)
-        return y, {"mean": level + bias * sd, "scale": scale_factor * sd, "noise": {"law": "student-t", "shape": nu}, "period": 7}
+        return y, {
+            "mean": level + bias * sd,
+            "scale": scale_factor * sd,
+            "noise": {"law": "student-t", "shape": nu},
+            "period": 7,
+        }
     if setting.statement == "poisson":
         mu = 4.0 + 2.0 * np.sin(2 * np.pi * t / 7) + rng.uniform(0, 3)
         y = rng.poisson(mu).astype(float)
@@ -142,7 +147,9 @@ def run_job(job: Job) -> list[dict]:
     out = []
     for i in range(job.start, job.stop):
         y, kwargs = simulate(job.setting, i)
-        settings = AuditSettings(audit_window=job.setting.window, replicates=job.replicates, seed=i % TABLE_SEEDS, locate_change=False)
+        settings = AuditSettings(
+            audit_window=job.setting.window, replicates=job.replicates, seed=i % TABLE_SEEDS, locate_change=False
+        )
         res = audit_forecasts(y, settings=settings, cache=cache, **kwargs)
         p = res.production
         if not p.ok:
@@ -197,7 +204,9 @@ def _fmt(r: tuple[float, float, float, int]) -> str:
 
 
 def _table(header: list[str], rows: list[list[str]]) -> list[str]:
-    return ["| " + " | ".join(header) + " |", "|" + "|".join("---" for _ in header) + "|"] + ["| " + " | ".join(r) + " |" for r in rows]
+    return ["| " + " | ".join(header) + " |", "|" + "|".join("---" for _ in header) + "|"] + [
+        "| " + " | ".join(r) + " |" for r in rows
+    ]
 
 
 def run(quick: bool = False, workers: int = 1) -> list[str]:
@@ -228,18 +237,47 @@ def run(quick: bool = False, workers: int = 1) -> list[str]:
         recs = size[s]
         n_ok = _rate(recs, "whole")[3]
         if n_ok < len(recs):
-            failures.append(f"{s.name}: {len(recs) - n_ok} of {len(recs)} audits did not run ({next(r['message'] for r in recs if not r['ok'])})")
+            failures.append(
+                f"{s.name}: {len(recs) - n_ok} of {len(recs)} audits did not run ({next(r['message'] for r in recs if not r['ok'])})"
+            )
         chi2 = _fmt(_rate(recs, "independence_chi2")) if s.statement == "3-step" else "as simulated"
-        rows.append([s.name, str(s.window), str(n_ok), _fmt(_rate(recs, "distribution")), _fmt(_rate(recs, "independence")), chi2, _fmt(_rate(recs, "whole"))])
+        rows.append(
+            [
+                s.name,
+                str(s.window),
+                str(n_ok),
+                _fmt(_rate(recs, "distribution")),
+                _fmt(_rate(recs, "independence")),
+                chi2,
+                _fmt(_rate(recs, "whole")),
+            ]
+        )
     lines += _table(
-        ["setting", "window", "series", "distribution gate (2.5 %)", "independence gate (2.5 %)", "independence, chi-square limit", "whole check (5 %)"],
+        [
+            "setting",
+            "window",
+            "series",
+            "distribution gate (2.5 %)",
+            "independence gate (2.5 %)",
+            "independence, chi-square limit",
+            "whole check (5 %)",
+        ],
         rows,
     )
     lines += ["", "### Power: one stated ingredient wrong", ""]
     rows = []
     for s in POWER_SETTINGS:
         recs = power[s]
-        rows.append([s.name, ALTERNATIVES[s.alternative], str(_rate(recs, "whole")[3]), _fmt(_rate(recs, "distribution")), _fmt(_rate(recs, "independence")), _fmt(_rate(recs, "whole"))])
+        rows.append(
+            [
+                s.name,
+                ALTERNATIVES[s.alternative],
+                str(_rate(recs, "whole")[3]),
+                _fmt(_rate(recs, "distribution")),
+                _fmt(_rate(recs, "independence")),
+                _fmt(_rate(recs, "whole")),
+            ]
+        )
     lines += _table(["setting", "alternative", "series", "distribution gate", "independence gate", "whole check"], rows)
     skills = [r["crps_skill"] for r in size[SIZE_SETTINGS[0]] if r["ok"] and r["crps_skill"] is not None]
     lines += [
@@ -249,7 +287,9 @@ def run(quick: bool = False, workers: int = 1) -> list[str]:
         "tests lags 3 to 12 only, Bartlett-corrected for the MA(2) overlap of 3-step errors, against a simulated MA(2) "
         "null at the estimated autocorrelations. The chi-square column shows how liberal that statistic's limit "
         "is at this window length. Accuracy is reported, never a verdict: under the true one-step normal laws the "
-        f"median CRPS skill against the seasonal naive forecast is {np.median(skills):.2f}." if skills else "",
+        f"median CRPS skill against the seasonal naive forecast is {np.median(skills):.2f}."
+        if skills
+        else "",
     ]
     if quick:
         step = 1.0 / (replicates + 1)

@@ -48,14 +48,21 @@ def main(quick: bool = False) -> list[dict]:
             per_model[name].append(_time_audits(series, settings, caches[name]))
     new, old = statistics.median(per_model["new"]), statistics.median(per_model["old"])
     ratio = new / old
-    return [{
-        "benchmark": "Distribution gate cost per model audit",
-        "size": f"{n_series} AR(1) series of {n}, both checks, simulated calibration, median of {repeats}",
-        "measured": (f"gate over {'+'.join(NEW.partitions)} x {len(NEW.gate_members)} members {1e3 * new:.2f} ms, "
-                     f"replaced gate (153 members on the equiprobable cells) {1e3 * old:.2f} ms per model; "
-                     f"tables built once per run: {build['new']:.1f} s against {build['old']:.1f} s"),
-        "ratio": ratio, "ratio_text": f"{ratio:.2f}x", "goal": f"<= {GOAL}x the replaced gate", "met": ratio <= GOAL,
-    }]
+    return [
+        {
+            "benchmark": "Distribution gate cost per model audit",
+            "size": f"{n_series} AR(1) series of {n}, both checks, simulated calibration, median of {repeats}",
+            "measured": (
+                f"gate over {'+'.join(NEW.partitions)} x {len(NEW.gate_members)} members {1e3 * new:.2f} ms, "
+                f"replaced gate (153 members on the equiprobable cells) {1e3 * old:.2f} ms per model; "
+                f"tables built once per run: {build['new']:.1f} s against {build['old']:.1f} s"
+            ),
+            "ratio": ratio,
+            "ratio_text": f"{ratio:.2f}x",
+            "goal": f"<= {GOAL}x the replaced gate",
+            "met": ratio <= GOAL,
+        }
+    ]
 
 
 if __name__ == "__main__":

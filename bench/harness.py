@@ -47,7 +47,9 @@ def run_child(module: str, args: Sequence[str], env: dict, timeout: float = 7200
         proc = subprocess.run(cmd, cwd=REPO, env=env, capture_output=True, text=True, timeout=timeout)
         if proc.returncode != 0 or not out.exists():
             tail = "\n".join((proc.stdout + proc.stderr).splitlines()[-40:])
-            raise RuntimeError(f"benchmark child {module} {' '.join(map(str, args))} failed with code {proc.returncode}:\n{tail}")
+            raise RuntimeError(
+                f"benchmark child {module} {' '.join(map(str, args))} failed with code {proc.returncode}:\n{tail}"
+            )
         return json.loads(out.read_text())
 
 
@@ -69,7 +71,9 @@ def warm_prefect_home(prefect_home: str | os.PathLike) -> None:
         "@flow\ndef warm(): return one()\n"
         "warm()\n"
     )
-    proc = subprocess.run([sys.executable, "-c", code], cwd=REPO, env=child_env(prefect_home), capture_output=True, text=True, timeout=600)
+    proc = subprocess.run(
+        [sys.executable, "-c", code], cwd=REPO, env=child_env(prefect_home), capture_output=True, text=True, timeout=600
+    )
     if proc.returncode != 0:
         raise RuntimeError(f"warming the Prefect home {prefect_home} failed:\n{proc.stderr[-3000:]}")
 
@@ -101,7 +105,10 @@ class WorkClock:
                     self.intervals.append((t0, time.perf_counter(), label))
 
         timed.__wrapped__ = original
-        timed.__module__, timed.__qualname__ = module_name, name  # pickled by reference: other processes get the original
+        timed.__module__, timed.__qualname__ = (
+            module_name,
+            name,
+        )  # pickled by reference: other processes get the original
         setattr(module, name, timed)
 
     def covered(self, start: float, end: float) -> float:

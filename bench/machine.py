@@ -55,5 +55,8 @@ def describe() -> dict:
         "ram": f"{ram:.1f} GiB" if ram is not None else "unknown",
         "os": f"{platform.system()} {platform.release()}",
         "python": platform.python_version(),
-        **{name: _version(name) for name in ("numpy", "scipy", "statsmodels", "pyarrow", "prefect", "prefect-dask", "distributed", "jinja2")},
+        **{
+            name: _version(name)
+            for name in ("numpy", "scipy", "statsmodels", "pyarrow", "prefect", "prefect-dask", "distributed", "jinja2")
+        },
     }

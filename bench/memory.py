@@ -77,7 +77,20 @@ def main(quick: bool = False) -> list[dict]:
             archive = root / f"archive-{n}"
             _copy_params(pathlib.Path(paths.archive), archive)
             out = root / f"result-{n}.json"
-            cmd = [sys.executable, "-m", "bench.fleet", "--child", "--registry", paths.registry, "--archive", str(archive), "--models", str(n), "--result", str(out)]
+            cmd = [
+                sys.executable,
+                "-m",
+                "bench.fleet",
+                "--child",
+                "--registry",
+                paths.registry,
+                "--archive",
+                str(archive),
+                "--models",
+                str(n),
+                "--result",
+                str(out),
+            ]
             t0 = time.perf_counter()
             peaks = peak_rss(cmd, child_env(home))
             results_size = _results_size(archive)
@@ -103,7 +116,9 @@ def _row(runs: list[dict], total: int) -> dict:
     growth = (last["process"] - first["process"]) / (last["models"] - first["models"]) * 1000
     results_per_1000 = last["results_json_bytes"] / last["models"] * 1000
     peak = last["process"]
-    text = "; ".join(f"{r['models']:,} models: {r['process'] / mib:,.0f} MiB (tree {r['tree'] / mib:,.0f} MiB)" for r in runs)
+    text = "; ".join(
+        f"{r['models']:,} models: {r['process'] / mib:,.0f} MiB (tree {r['tree'] / mib:,.0f} MiB)" for r in runs
+    )
     return {
         "benchmark": "Peak memory",
         "size": f"{total:,}-series extract; runs of " + ", ".join(f"{r['models']:,}" for r in runs) + " models",

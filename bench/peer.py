@@ -84,7 +84,9 @@ def _smoothing(y: np.ndarray, params: dict) -> dict:
     model = ETSModel(y, error="add", trend="add", damped_trend=True, seasonal="add", seasonal_periods=SEASON)
     fit = model.fit(disp=0)
     free = [params[f"s{k}"] for k in range(SEASON - 1)]
-    frozen = np.r_[params["alpha"], params["beta"], params["gamma"], params["phi"], params["l0"], params["b0"], free, -sum(free)]
+    frozen = np.r_[
+        params["alpha"], params["beta"], params["gamma"], params["phi"], params["l0"], params["b0"], free, -sum(free)
+    ]
     errors = np.asarray(model.smooth(frozen).resid, dtype=float)[-AUDIT_WINDOW:]
     refit = np.asarray(fit.resid, dtype=float)
     return {
@@ -134,7 +136,10 @@ def measure_peer(series: list[FleetSeries], data_folder: str, subset: int, seed:
         t0 = time.perf_counter()
         peer_audit(y, x, s.spec, s.params)
         times.setdefault(s.spec["family"], []).append(time.perf_counter() - t0)
-    share = {fam: sum(1 for s in series if s.spec["family"] == fam) / len(series) for fam in {s.spec["family"] for s in series}}
+    share = {
+        fam: sum(1 for s in series if s.spec["family"] == fam) / len(series)
+        for fam in {s.spec["family"] for s in series}
+    }
     per_family = {fam: float(np.mean(times.get(fam, [np.nan]))) for fam in share}
     per_series = sum(share[f] * per_family[f] for f in share) + read_s / len(chosen)
     return {

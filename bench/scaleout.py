@@ -40,7 +40,11 @@ def main(quick: bool = False) -> list[dict]:
                 for workers in (1, 2):
                     archive = root / f"archive-{workers}"
                     shutil.copytree(pathlib.Path(paths.archive) / "params", archive / "params")
-                    runs[workers] = run_child("bench.fleet", ["--registry", paths.registry, "--archive", str(archive), "--dask", str(workers)], child_env(home, api_url))
+                    runs[workers] = run_child(
+                        "bench.fleet",
+                        ["--registry", paths.registry, "--archive", str(archive), "--dask", str(workers)],
+                        child_env(home, api_url),
+                    )
         finally:
             if previous is None:
                 os.environ.pop("PREFECT_HOME", None)
@@ -49,14 +53,16 @@ def main(quick: bool = False) -> list[dict]:
     one, two = runs[1], runs[2]
     speedup = one["flow_s"] / two["flow_s"]
     audit_speedup = one["flow_timings"]["audit_s"] / two["flow_timings"]["audit_s"]
-    return [{
-        "benchmark": "Scale-out (Dask)",
-        "size": f"{n} series, LocalCluster 1 vs 2 worker processes, real Prefect server",
-        "measured": f"1 worker {one['flow_s']:.1f} s, 2 workers {two['flow_s']:.1f} s (flow wall time); "
-                    f"audit stage {one['flow_timings']['audit_s']:.1f} s vs {two['flow_timings']['audit_s']:.1f} s ({audit_speedup:.2f}x)",
-        "ratio": speedup,
-        "ratio_text": f"{speedup:.2f}x",
-        "goal": f">= {GOAL}x",
-        "met": speedup >= GOAL,
-        "details": {"one_worker": one, "two_workers": two},
-    }]
+    return [
+        {
+            "benchmark": "Scale-out (Dask)",
+            "size": f"{n} series, LocalCluster 1 vs 2 worker processes, real Prefect server",
+            "measured": f"1 worker {one['flow_s']:.1f} s, 2 workers {two['flow_s']:.1f} s (flow wall time); "
+            f"audit stage {one['flow_timings']['audit_s']:.1f} s vs {two['flow_timings']['audit_s']:.1f} s ({audit_speedup:.2f}x)",
+            "ratio": speedup,
+            "ratio_text": f"{speedup:.2f}x",
+            "goal": f">= {GOAL}x",
+            "met": speedup >= GOAL,
+            "details": {"one_worker": one, "two_workers": two},
+        }
+    ]

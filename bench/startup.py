@@ -61,20 +61,33 @@ def measure(repeats: int = 5) -> list[dict]:
                 python.append(_wall([sys.executable, "-c", "pass"], str(work)))
                 times[name].append(_wall([sys.executable, "-c", _ENTRY, *args], str(work)))
     base = statistics.median(python)
-    return [{"command": name, "seconds": statistics.median(t), "python_seconds": base,
-             "ratio": statistics.median(t) / base, "met": statistics.median(t) < GOAL_S} for name, t in times.items()]
+    return [
+        {
+            "command": name,
+            "seconds": statistics.median(t),
+            "python_seconds": base,
+            "ratio": statistics.median(t) / base,
+            "met": statistics.median(t) < GOAL_S,
+        }
+        for name, t in times.items()
+    ]
 
 
 def main(quick: bool = False) -> list[dict]:
     """Rows for the benchmark table (``python -m bench``)."""
     rows = []
     for r in measure(repeats=3 if quick else 7):
-        rows.append({
-            "benchmark": "Command start-up",
-            "size": r["command"],
-            "measured": f"{r['seconds']:.2f} s wall; python -c pass {r['python_seconds']:.3f} s (median, alternating)",
-            "ratio": r["ratio"], "ratio_text": f"{r['ratio']:.1f}x Python's start-up", "goal": f"< {GOAL_S} s", "met": r["met"],
-        })
+        rows.append(
+            {
+                "benchmark": "Command start-up",
+                "size": r["command"],
+                "measured": f"{r['seconds']:.2f} s wall; python -c pass {r['python_seconds']:.3f} s (median, alternating)",
+                "ratio": r["ratio"],
+                "ratio_text": f"{r['ratio']:.1f}x Python's start-up",
+                "goal": f"< {GOAL_S} s",
+                "met": r["met"],
+            }
+        )
     return rows
 
 
@@ -84,4 +97,6 @@ if __name__ == "__main__":
     n = parser.parse_args().repeats
     print(f"{'command':28s} {'wall s':>8s} {'python s':>9s} {'ratio':>7s}  goal < {GOAL_S} s")
     for r in measure(repeats=n):
-        print(f"{r['command']:28s} {r['seconds']:8.3f} {r['python_seconds']:9.3f} {r['ratio']:7.1f}  {'met' if r['met'] else 'missed'}")
+        print(
+            f"{r['command']:28s} {r['seconds']:8.3f} {r['python_seconds']:9.3f} {r['ratio']:7.1f}  {'met' if r['met'] else 'missed'}"
+        )

@@ -115,7 +115,11 @@ def audit_series(
     t_start = time.perf_counter()
     cache = cache if cache is not None else CalibrationCache()
     spec_dict: dict = dict(spec) if isinstance(spec, Mapping) else {}
-    noise_name = noise if isinstance(noise, str) else (noise.get("law") if isinstance(noise, Mapping) else getattr(noise, "name", str(noise)))
+    noise_name = (
+        noise
+        if isinstance(noise, str)
+        else (noise.get("law") if isinstance(noise, Mapping) else getattr(noise, "name", str(noise)))
+    )
     try:
         model = as_model(spec)
         spec_dict = model.to_dict()
@@ -129,8 +133,13 @@ def audit_series(
     except (FitauditError, ValueError, TypeError) as exc:
         check = _failed_check("refit", exc, label=label)
         return AuditResult(
-            verdict=check.status, reasons=(f"The audit could not start: {check.message}",), production=None, refit=check,
-            spec=_plain(spec_dict), noise=str(noise_name), timings={"total_s": time.perf_counter() - t_start},
+            verdict=check.status,
+            reasons=(f"The audit could not start: {check.message}",),
+            production=None,
+            refit=check,
+            spec=_plain(spec_dict),
+            noise=str(noise_name),
+            timings={"total_s": time.perf_counter() - t_start},
         )
 
     timings = {}
@@ -145,7 +154,9 @@ def audit_series(
                     f"{label}: the {law.name} law's shape is estimated, but the production version stores none; "
                     "fix the shape in the registry (e.g. df: 5) or store it with the parameter version."
                 )
-            prod_check, prod_errors, prod_noise = _production_check(model, y_arr, exog, dict(production), law_prod, settings, cache, label)
+            prod_check, prod_errors, prod_noise = _production_check(
+                model, y_arr, exog, dict(production), law_prod, settings, cache, label
+            )
         except FitauditError as exc:
             prod_check = _failed_check("production", exc, label=label)
         timings["production_s"] = time.perf_counter() - t0
@@ -167,19 +178,30 @@ def audit_series(
             # the errors since the last defined one-step forecast: a break at the start of the
             # audit window is then locatable too (index is a position in the series)
             first = int(np.argmax(~np.isnan(prod_errors)))
-            change = locate_change(prod_errors[first:], noise=law_prod, permutations=settings.change_permutations, seed=settings.seed)
+            change = locate_change(
+                prod_errors[first:], noise=law_prod, permutations=settings.change_permutations, seed=settings.seed
+            )
             change = dataclasses.replace(change, index=change.index + first)
         except (FitauditError, ValueError):
             change = None
     times = None if timestamps is None or np.shape(timestamps) != y_arr.shape else np.asarray(timestamps)
     if prod_check is not None and prod_check.ok and prod_errors is not None:
         sigma2 = (production or {}).get("sigma2")
-        effects = error_effects(prod_errors, y_arr, prod_check.window["first"], sigma2=None if sigma2 is None else float(sigma2),
-                                change=None if change is None else change.index, times=times)
+        effects = error_effects(
+            prod_errors,
+            y_arr,
+            prod_check.window["first"],
+            sigma2=None if sigma2 is None else float(sigma2),
+            change=None if change is None else change.index,
+            times=times,
+        )
         prod_check = dataclasses.replace(prod_check, effects=effects)
     if refit_check.ok and times is not None and refit_check.window:
         w = refit_check.window
-        refit_check = dataclasses.replace(refit_check, effects={"n": w["length"], "start": iso_date(times[w["first"]]), "end": iso_date(times[w["last"]])})
+        refit_check = dataclasses.replace(
+            refit_check,
+            effects={"n": w["length"], "start": iso_date(times[w["first"]]), "end": iso_date(times[w["last"]])},
+        )
     verdict, reasons = decide_verdict(prod_check, refit_check, settings.level)
     fitted = {}
     if fit is not None:

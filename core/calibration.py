@@ -177,7 +177,14 @@ class NullTable:
         if gate_statistics is not None:
             gate_reference = np.asarray(gate_reference, dtype=float)
             gate_max = np.sort(standardised_maximum(np.asarray(gate_statistics, dtype=float), gate_reference))
-        return cls(tuple(key), np.asarray(reference, dtype=float), np.sort(standardised_maximum(stats_, reference)), method, gate_reference, gate_max)
+        return cls(
+            tuple(key),
+            np.asarray(reference, dtype=float),
+            np.sort(standardised_maximum(stats_, reference)),
+            method,
+            gate_reference,
+            gate_max,
+        )
 
     @property
     def has_gate(self) -> bool:
@@ -248,7 +255,9 @@ class StatisticTable:
         return monte_carlo_p_value(self.values, observed)
 
 
-def independence_table(n: int, lags: int, replicates: int, seed: int, cache: CalibrationCache | None = None) -> StatisticTable:
+def independence_table(
+    n: int, lags: int, replicates: int, seed: int, cache: CalibrationCache | None = None
+) -> StatisticTable:
     """Simulated null of the Ljung-Box statistic of ``n`` i.i.d. errors at ``lags`` lags.
 
     With frozen production parameters the one-step errors of a correct model are i.i.d., so this
@@ -353,7 +362,12 @@ def describe_key(key: tuple) -> str:
 
 
 def _grid_key(alphas, betas, scaling: str, r) -> tuple:
-    return (tuple(float(a) for a in np.round(np.asarray(alphas, float), 12)), tuple(float(b) for b in np.round(np.asarray(betas, float), 12)), scaling, r)
+    return (
+        tuple(float(a) for a in np.round(np.asarray(alphas, float), 12)),
+        tuple(float(b) for b in np.round(np.asarray(betas, float), 12)),
+        scaling,
+        r,
+    )
 
 
 def _map_statistics(counts: np.ndarray, s: int, alphas, betas, scaling, r) -> np.ndarray:
@@ -369,12 +383,26 @@ def _with_gate(key: tuple, maps: np.ndarray, replicates: int, gate: Gate | None,
         return NullTable.from_replicates(key, maps[:replicates], reference_values(maps[replicates:]))
     g = gate.statistics(u)
     return NullTable.from_replicates(
-        key, maps[:replicates], reference_values(maps[replicates:]),
-        gate_statistics=g[:replicates], gate_reference=reference_values(g[replicates:]),
+        key,
+        maps[:replicates],
+        reference_values(maps[replicates:]),
+        gate_statistics=g[:replicates],
+        gate_reference=reference_values(g[replicates:]),
     )
 
 
-def production_table(n: int, s: int, alphas, betas, scaling: str, r, replicates: int, seed: int, cache: CalibrationCache | None = None, gate: Gate | None = None) -> NullTable:
+def production_table(
+    n: int,
+    s: int,
+    alphas,
+    betas,
+    scaling: str,
+    r,
+    replicates: int,
+    seed: int,
+    cache: CalibrationCache | None = None,
+    gate: Gate | None = None,
+) -> NullTable:
     """Null table for frozen parameters: PIT values i.i.d. U(0, 1).
 
     Exact for the production check (and for forecast audits): with the law fixed before the data
@@ -382,7 +410,14 @@ def production_table(n: int, s: int, alphas, betas, scaling: str, r, replicates:
     are drawn directly from multinomial(n, 1/s); with one, ``2R`` samples of ``n`` uniforms are
     scored on the map's ``s`` equiprobable cells and on every partition of the gate.
     """
-    key = ("production", f"n={int(n)}", f"s={int(s)}", _grid_key(alphas, betas, scaling, r), f"R={int(replicates)}", f"seed={int(seed)}")
+    key = (
+        "production",
+        f"n={int(n)}",
+        f"s={int(s)}",
+        _grid_key(alphas, betas, scaling, r),
+        f"R={int(replicates)}",
+        f"seed={int(seed)}",
+    )
     if gate is not None:
         key = key + (gate.key(),)
 
@@ -404,7 +439,21 @@ def shape_key(shape: float | None) -> float | None:
     return float(f"{shape:.2g}")
 
 
-def refit_table(law, n: int, s: int, location: bool, alphas, betas, scaling: str, r, replicates: int, seed: int, shape: float | None = None, cache: CalibrationCache | None = None, gate: Gate | None = None) -> NullTable:
+def refit_table(
+    law,
+    n: int,
+    s: int,
+    location: bool,
+    alphas,
+    betas,
+    scaling: str,
+    r,
+    replicates: int,
+    seed: int,
+    shape: float | None = None,
+    cache: CalibrationCache | None = None,
+    gate: Gate | None = None,
+) -> NullTable:
     """Null table for residuals whose noise parameters were re-estimated.
 
     Simulates ``2R`` samples of ``n`` i.i.d. standard draws of ``law`` (at ``shape`` when the law
@@ -421,8 +470,16 @@ def refit_table(law, n: int, s: int, location: bool, alphas, betas, scaling: str
     skey = shape_key(shape)
     estimated = "shape estimated" if (law.has_shape and law.shape is None) else "shape fixed"
     key = (
-        "refit", f"law={law.name}", f"shape={skey}", estimated, f"location={'estimated' if location else 'zero'}",
-        f"n={int(n)}", f"s={int(s)}", _grid_key(alphas, betas, scaling, r), f"R={int(replicates)}", f"seed={int(seed)}",
+        "refit",
+        f"law={law.name}",
+        f"shape={skey}",
+        estimated,
+        f"location={'estimated' if location else 'zero'}",
+        f"n={int(n)}",
+        f"s={int(s)}",
+        _grid_key(alphas, betas, scaling, r),
+        f"R={int(replicates)}",
+        f"seed={int(seed)}",
     )
     if gate is not None:
         key = key + (gate.key(),)
@@ -438,7 +495,14 @@ def refit_table(law, n: int, s: int, location: bool, alphas, betas, scaling: str
     return (cache if cache is not None else CalibrationCache()).get(key, build)
 
 
-def bootstrap_table(score_replicate: Callable[[np.random.Generator], np.ndarray | tuple | None], replicates: int, rng: np.random.Generator, reference: np.ndarray, key: tuple = ("bootstrap",), gate_reference: np.ndarray | None = None) -> NullTable:
+def bootstrap_table(
+    score_replicate: Callable[[np.random.Generator], np.ndarray | tuple | None],
+    replicates: int,
+    rng: np.random.Generator,
+    reference: np.ndarray,
+    key: tuple = ("bootstrap",),
+    gate_reference: np.ndarray | None = None,
+) -> NullTable:
     """Parametric-bootstrap table from ``replicates`` data sets simulated from the fitted model.
 
     ``score_replicate(rng)`` must simulate one series from the fitted model, refit it with the
@@ -454,8 +518,14 @@ def bootstrap_table(score_replicate: Callable[[np.random.Generator], np.ndarray 
     if gate_reference is None:
         return NullTable.from_replicates(tuple(key), np.stack(scored), reference, method="bootstrap")
     maps, gates = zip(*scored)
-    return NullTable.from_replicates(tuple(key), np.stack(maps), reference, method="bootstrap",
-                                     gate_statistics=np.stack(gates), gate_reference=gate_reference)
+    return NullTable.from_replicates(
+        tuple(key),
+        np.stack(maps),
+        reference,
+        method="bootstrap",
+        gate_statistics=np.stack(gates),
+        gate_reference=gate_reference,
+    )
 
 
 def chi2_p_value(statistic: float, df: int) -> float:
@@ -470,7 +540,9 @@ def chi2_critical_value(level: float, df: int) -> float:
     return float(stats.chi2.isf(level, df))
 
 
-def nrr_term(counts: np.ndarray, information: np.ndarray, gradient: np.ndarray, probs: np.ndarray | None = None) -> float:
+def nrr_term(
+    counts: np.ndarray, information: np.ndarray, gradient: np.ndarray, probs: np.ndarray | None = None
+) -> float:
     """Nikulin-Rao-Robson correction ``V' B (J - J*)^-1 B' V`` for fixed cells.
 
     With cell probabilities ``q_j`` (``1/s`` unless ``probs`` is given), ``V_j = (N_j - n q_j) / sqrt(n q_j)``, ``B_ji = (dq_j/dtheta_i)/sqrt(q_j)``,
@@ -537,13 +609,38 @@ def prepare_calibration(
             model, law = as_model(spec), as_noise_law(noise)
             if has_production and n_obs >= settings.audit_window:
                 n = settings.audit_window
-                production_table(n, number_of_cells(n, 0), settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache, gate=settings.gate(n, 0))
+                production_table(
+                    n,
+                    number_of_cells(n, 0),
+                    settings.alphas,
+                    settings.betas,
+                    settings.scaling,
+                    settings.r,
+                    settings.replicates,
+                    settings.seed,
+                    cache,
+                    gate=settings.gate(n, 0),
+                )
             if settings.calibration == "simulated" and law.pivotal and not (law.has_shape and law.shape is None):
                 n = (settings.fit_window or n_obs) - model.presample()
                 location = model.has_location()
                 s = number_of_cells(n, law.n_estimated(location))
                 k = law.n_estimated(location)
-                refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=law.shape, cache=cache, gate=settings.gate(n, k))
+                refit_table(
+                    law,
+                    n,
+                    s,
+                    location,
+                    settings.alphas,
+                    settings.betas,
+                    settings.scaling,
+                    settings.r,
+                    settings.replicates,
+                    settings.seed,
+                    shape=law.shape,
+                    cache=cache,
+                    gate=settings.gate(n, k),
+                )
         except (FitauditError, ValueError):
             continue  # the model's own audit reports the problem
     return cache

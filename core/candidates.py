@@ -67,7 +67,11 @@ def _arima_neighbours(d: dict) -> Iterable[dict]:
             if P + dP >= 0 and Q + dQ >= 0 and P + dP <= 2 and Q + dQ <= 2:
                 yield {**d, "seasonal": [P + dP, D, Q + dQ, m]}
         if D == 0:
-            yield {**d, "seasonal": [P, 1, Q if Q else 1, m], "trend": "n" if d.get("trend") in ("c", "n", None) else d.get("trend")}
+            yield {
+                **d,
+                "seasonal": [P, 1, Q if Q else 1, m],
+                "trend": "n" if d.get("trend") in ("c", "n", None) else d.get("trend"),
+            }
 
 
 def _smoothing_neighbours(d: dict) -> Iterable[dict]:
@@ -101,7 +105,9 @@ def neighbour_specs(spec: ForecastModel | Mapping[str, Any]) -> list[dict]:
     model = as_model(spec)
     base = model.to_dict()
     family = base["family"]
-    gen = {"arima": _arima_neighbours, "smoothing": _smoothing_neighbours, "nonlinear-ar": _nonlinear_neighbours}.get(family)
+    gen = {"arima": _arima_neighbours, "smoothing": _smoothing_neighbours, "nonlinear-ar": _nonlinear_neighbours}.get(
+        family
+    )
     out: list[dict] = []
     seen = {repr(sorted(base.items()))}
     for cand in gen(dict(base)) if gen else ():
@@ -156,9 +162,15 @@ def search_candidates(
             trials.append((model.to_dict(), law))
     scored = []
     for cand_spec, cand_noise in trials:
-        res = audit_series(y, dict(cand_spec), noise=cand_noise, exog=exog, production=None, settings=settings, cache=cache)
+        res = audit_series(
+            y, dict(cand_spec), noise=cand_noise, exog=exog, production=None, settings=settings, cache=cache
+        )
         chk = res.refit
-        scaled = float(np.nanmax(chk.scaled_grid)) if chk.ok and chk.scaled_grid is not None and np.isfinite(chk.scaled_grid).any() else float("inf")
+        scaled = (
+            float(np.nanmax(chk.scaled_grid))
+            if chk.ok and chk.scaled_grid is not None and np.isfinite(chk.scaled_grid).any()
+            else float("inf")
+        )
         cand_model = as_model(cand_spec)
         scored.append(
             Candidate(

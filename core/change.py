@@ -103,7 +103,10 @@ def split_statistics(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     e1 = k * pooled
     e2 = (n - k) * pooled
     with np.errstate(divide="ignore", invalid="ignore"):
-        t = 2.0 * (special.xlogy(before, before / np.where(e1 > 0, e1, 1.0)) + special.xlogy(after, after / np.where(e2 > 0, e2, 1.0)))
+        t = 2.0 * (
+            special.xlogy(before, before / np.where(e1 > 0, e1, 1.0))
+            + special.xlogy(after, after / np.where(e2 > 0, e2, 1.0))
+        )
     out = t.sum(axis=2)
     return out[0] if out.shape[0] == 1 else out
 
@@ -139,7 +142,9 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     B, n = idx.shape
     totals = np.bincount(idx[0], minlength=s)
     f = special.xlogy(np.arange(n + 1.0), np.arange(n + 1.0))
-    small = idx.astype(np.int16) if s <= np.iinfo(np.int16).max else idx  # 16-bit keys: numpy's stable sort is a radix sort
+    small = (
+        idx.astype(np.int16) if s <= np.iinfo(np.int16).max else idx
+    )  # 16-bit keys: numpy's stable sort is a radix sort
     order = np.argsort(small, axis=1, kind="stable")
     group_start = np.cumsum(totals) - totals
     sorted_cells = np.take_along_axis(idx, order, axis=1)
@@ -154,7 +159,9 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     return t.max(axis=1)
 
 
-def locate_change(errors, noise="normal", params=None, permutations: int = 499, seed: int = 0, trim: float = 0.1) -> ChangeResult:
+def locate_change(
+    errors, noise="normal", params=None, permutations: int = 499, seed: int = 0, trim: float = 0.1
+) -> ChangeResult:
     """Locate the most likely break in one-step errors and test it by permutation.
 
     Parameters
@@ -202,7 +209,9 @@ def locate_change(errors, noise="normal", params=None, permutations: int = 499, 
     s = number_of_cells(n, 2)
     h = max(s, int(np.ceil(trim * n)))
     if n < 2 * h + 1:
-        raise InsufficientDataError(f"locate_change: {n} errors are too few to compare two samples of at least {h} each.")
+        raise InsufficientDataError(
+            f"locate_change: {n} errors are too few to compare two samples of at least {h} each."
+        )
     fitted = params if params is not None else law.fit_errors(e, location=True)
     idx = cell_index(law.pit(e, fitted), s)
     profile_inner = split_statistics(idx, s, h)

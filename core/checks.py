@@ -115,7 +115,9 @@ def _score(
         if kind == "refit" and law.has_fisher_information and k > 0:
             info = law.fisher_information(nparams)
             for i, part in enumerate(gate.partitions):
-                grad = law.cell_probability_gradient(np.asarray(part.boundaries) if not part.equiprobable else part.s, nparams)
+                grad = law.cell_probability_gradient(
+                    np.asarray(part.boundaries) if not part.equiprobable else part.s, nparams
+                )
                 extras[i] = nrr_term(part.counts(u), info, grad, part.probs)
             calib["nrr_terms"] = [float(x) for x in extras]
         dfs = np.array([p.s - 1 for p in gate.partitions])
@@ -135,7 +137,9 @@ def _score(
         c = chi2_critical_value(half, s - 1)
         reference = np.full(dmap.statistic.shape, c)
         crit_grid = reference - map_extra
-        calib.update({"method": "asymptotic", "reference": "chi-square(s - 1) per partition, Bonferroni over partitions"})
+        calib.update(
+            {"method": "asymptotic", "reference": "chi-square(s - 1) per partition, Bonferroni over partitions"}
+        )
         g_ratio_src = g_tot
     else:
         table: NullTable = table_for(n, s, gate)
@@ -163,7 +167,11 @@ def _score(
         row = part.to_dict()
         row["counts"] = [int(c) for c in part.counts(u)]
         with np.errstate(invalid="ignore", divide="ignore"):
-            row["standardised"] = float(np.max(np.where(np.isfinite(ratio[i]), ratio[i], -np.inf))) if np.isfinite(ratio[i]).any() else None
+            row["standardised"] = (
+                float(np.max(np.where(np.isfinite(ratio[i]), ratio[i], -np.inf)))
+                if np.isfinite(ratio[i]).any()
+                else None
+            )
         partitions.append(row)
     gate_info = {
         "members": [[float(a), float(b)] for a, b in zip(gate.alphas, gate.betas)],
@@ -184,7 +192,9 @@ def _score(
         # frozen parameters: the errors are i.i.d. under the null, so the statistic's exact null is simulated
         table_lb = independence_table(n, lags, settings.replicates, settings.seed, cache)
         p_ind = table_lb.p_value(lb.statistic)
-        lb_dict = dict(lb_dict, p_value=p_ind, p_value_chi2=lb.p_value, reference=f"simulated (R={table_lb.replicates})")
+        lb_dict = dict(
+            lb_dict, p_value=p_ind, p_value_chi2=lb.p_value, reference=f"simulated (R={table_lb.replicates})"
+        )
     p_comb = float(min(1.0, 2.0 * min(p_dist, p_ind)))
     members = {}
     for name, value in dmap.members.items():
@@ -265,8 +275,21 @@ def score_frozen(
     """
     table_for = None
     if settings.calibration != "asymptotic":
+
         def table_for(n, s, gate):
-            return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache, gate=gate)
+            return production_table(
+                n,
+                s,
+                settings.alphas,
+                settings.betas,
+                settings.scaling,
+                settings.r,
+                settings.replicates,
+                settings.seed,
+                cache,
+                gate=gate,
+            )
+
     return _score(kind, e, u, law, nparams, 0, 0, period, settings, table_for, window, cache)
 
 
@@ -287,11 +310,15 @@ MAGNITUDE_RANGE = (1e-150, 1e150)
 def _check_inputs(y: np.ndarray, exog: Mapping[str, np.ndarray] | None, law: NoiseLaw, label: str) -> None:
     """Refuse data the numerics cannot handle, with the fix: magnitudes outside :data:`MAGNITUDE_RANGE`, non-counts under a count law."""
     low, high = MAGNITUDE_RANGE
-    columns = [("the series", y)] + [(f"exogenous column {k!r}", np.asarray(v, dtype=float)) for k, v in (exog or {}).items()]
+    columns = [("the series", y)] + [
+        (f"exogenous column {k!r}", np.asarray(v, dtype=float)) for k, v in (exog or {}).items()
+    ]
     for i, (name, values) in enumerate(columns):
         big = float(np.max(np.abs(values))) if values.size else 0.0
         if big > high or (i == 0 and 0.0 < big < low):
-            side = f"as large as {big:.3g}; above {high:g}" if big > high else f"no larger than {big:.3g}; below {low:g}"
+            side = (
+                f"as large as {big:.3g}; above {high:g}" if big > high else f"no larger than {big:.3g}; below {low:g}"
+            )
             raise InputError(
                 f"{label}: {name} holds values {side} their squares leave the range of double precision and no fit "
                 "can run. Rescale the column in the extract (e.g. record thousands, millions or millionths of the unit)."
@@ -299,7 +326,9 @@ def _check_inputs(y: np.ndarray, exog: Mapping[str, np.ndarray] | None, law: Noi
     law.check_observations(y, label)
 
 
-def _production_check(model, y, exog, params, law_prod: NoiseLaw, settings, cache, label) -> tuple[CheckResult, np.ndarray | None, NoiseParams | None]:
+def _production_check(
+    model, y, exog, params, law_prod: NoiseLaw, settings, cache, label
+) -> tuple[CheckResult, np.ndarray | None, NoiseParams | None]:
     n_all = y.size
     w = settings.audit_window
     window = {"first": n_all - w, "last": n_all - 1, "length": w}
@@ -317,7 +346,9 @@ def _production_check(model, y, exog, params, law_prod: NoiseLaw, settings, cach
                 "(lost to differencing or lags); load more history before the audit window."
             )
         if not np.isfinite(tail).all():
-            raise InputError(f"{label}: the production parameters give infinite forecast errors; check the parameter version.")
+            raise InputError(
+                f"{label}: the production parameters give infinite forecast errors; check the parameter version."
+            )
         nparams = law_prod.frozen_params(params, tail, y=y[-w:], label=label)
         # the generator is used by count laws only (the randomised PIT), seeded by the data
         u = law_prod.pit(tail, nparams, key_rng(settings.seed, "pit", "production", _digest(y)), y=y[-w:])
@@ -360,23 +391,91 @@ def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label) -> tuple
             # no pivotal null after re-estimation (a count law's depends on the means): the
             # randomised PIT values are scored against the exact null of frozen parameters
             if settings.calibration != "asymptotic":
+
                 def table_for(n, s, gate):
-                    return production_table(n, s, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, cache, gate=gate)
+                    return production_table(
+                        n,
+                        s,
+                        settings.alphas,
+                        settings.betas,
+                        settings.scaling,
+                        settings.r,
+                        settings.replicates,
+                        settings.seed,
+                        cache,
+                        gate=gate,
+                    )
         else:
             if settings.calibration == "simulated":
+
                 def table_for(n, s, gate):
-                    return refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=nparams.shape, cache=cache, gate=gate)
+                    return refit_table(
+                        law,
+                        n,
+                        s,
+                        location,
+                        settings.alphas,
+                        settings.betas,
+                        settings.scaling,
+                        settings.r,
+                        settings.replicates,
+                        settings.seed,
+                        shape=nparams.shape,
+                        cache=cache,
+                        gate=gate,
+                    )
             elif settings.calibration == "bootstrap":
+
                 def table_for(n, s, gate):
-                    simulated = refit_table(law, n, s, location, settings.alphas, settings.betas, settings.scaling, settings.r, settings.replicates, settings.seed, shape=nparams.shape, cache=cache, gate=gate)
+                    simulated = refit_table(
+                        law,
+                        n,
+                        s,
+                        location,
+                        settings.alphas,
+                        settings.betas,
+                        settings.scaling,
+                        settings.r,
+                        settings.replicates,
+                        settings.seed,
+                        shape=nparams.shape,
+                        cache=cache,
+                        gate=gate,
+                    )
                     return _bootstrap(model, fit, law, nparams, yf, xf, n, s, location, settings, simulated, gate)
-        check = _score("refit", e, u, law, nparams, k, model.n_dynamic_params(), model.seasonal_period(), settings, table_for, window)
+
+        check = _score(
+            "refit",
+            e,
+            u,
+            law,
+            nparams,
+            k,
+            model.n_dynamic_params(),
+            model.seasonal_period(),
+            settings,
+            table_for,
+            window,
+        )
         return check, fit
     except (FitauditError, ValueError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError) as exc:
         return _failed_check("refit", exc, window, label), fit
 
 
-def _bootstrap(model, fit, law: NoiseLaw, nparams: NoiseParams, yf, xf, n: int, s: int, location: bool, settings: AuditSettings, simulated: NullTable, gate: Gate) -> NullTable:
+def _bootstrap(
+    model,
+    fit,
+    law: NoiseLaw,
+    nparams: NoiseParams,
+    yf,
+    xf,
+    n: int,
+    s: int,
+    location: bool,
+    settings: AuditSettings,
+    simulated: NullTable,
+    gate: Gate,
+) -> NullTable:
     """Parametric bootstrap of the refit check: simulate the fitted model, refit, rescore."""
     rng = key_rng(settings.seed, "bootstrap", _digest(yf))
 
@@ -392,10 +491,14 @@ def _bootstrap(model, fit, law: NoiseLaw, nparams: NoiseParams, yf, xf, n: int, 
             p2 = law.fit_errors(e2, location)
             u2 = law.pit(e2, p2)
             counts = cell_counts(u2, s)
-            grid = divergence_map(counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r).statistic
+            grid = divergence_map(
+                counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r
+            ).statistic
             return grid, gate.statistics(u2)
         except (FitauditError, ValueError, np.linalg.LinAlgError, ArithmeticError):
             return None
 
     key = ("bootstrap", f"data={_digest(yf)}", f"n={n}", f"s={s}", f"R={settings.bootstrap_replicates}", gate.key())
-    return bootstrap_table(score, settings.bootstrap_replicates, rng, simulated.reference, key=key, gate_reference=simulated.gate_reference)
+    return bootstrap_table(
+        score, settings.bootstrap_replicates, rng, simulated.reference, key=key, gate_reference=simulated.gate_reference
+    )

@@ -45,8 +45,7 @@ _LJUNG_BOX_CONVENTION = (
     "p-value from chi-square(h - model_df)"
 )
 _MCLEOD_LI_CONVENTION = (
-    "Ljung-Box Q on the squared residuals (mean of the squares removed, denominator n); "
-    "p-value from chi-square(h)"
+    "Ljung-Box Q on the squared residuals (mean of the squares removed, denominator n); p-value from chi-square(h)"
 )
 
 

@@ -319,9 +319,7 @@ def zero_model_cell_factor(alpha, beta, scaling: str = "geometric", r: float | N
 # Validation
 # --------------------------------------------------------------------------------------------
 def _unknown_scaling(scaling) -> InputError:
-    return InputError(
-        f"Unknown scaling {scaling!r}; valid scalings are {', '.join(repr(s) for s in SCALINGS)}."
-    )
+    return InputError(f"Unknown scaling {scaling!r}; valid scalings are {', '.join(repr(s) for s in SCALINGS)}.")
 
 
 def _check_scaling(scaling, r, owner: str) -> float | None:
@@ -345,7 +343,9 @@ def _check_probabilities(q: np.ndarray, name: str, owner: str) -> None:
     if np.isnan(q).any() or np.isinf(q).any():
         raise InputError(f"{owner}: {name!r} contains NaN or infinite values.")
     if (q < 0).any():
-        raise InputError(f"{owner}: {name!r} has negative entries (smallest {q.min():.6g}); probabilities must be >= 0.")
+        raise InputError(
+            f"{owner}: {name!r} has negative entries (smallest {q.min():.6g}); probabilities must be >= 0."
+        )
     tol = np.sqrt(_EPS) * max(1.0, q.shape[-1] ** 0.5)
     sums = q.sum(axis=-1)
     worst = np.max(np.abs(sums - 1.0))
@@ -646,7 +646,9 @@ def _grid_sums(p: np.ndarray, q: np.ndarray, alphas: np.ndarray, betas: np.ndarr
     return total
 
 
-def divergence_map(counts, probs, alphas=DEFAULT_ALPHAS, betas=DEFAULT_BETAS, scaling: Scaling = "geometric", r: float | None = None) -> DivergenceMap:
+def divergence_map(
+    counts, probs, alphas=DEFAULT_ALPHAS, betas=DEFAULT_BETAS, scaling: Scaling = "geometric", r: float | None = None
+) -> DivergenceMap:
     """The divergence map: ``T = 2 n B(P_n, Q | M)`` for every (alpha, beta) on a grid.
 
     Parameters
@@ -713,7 +715,9 @@ def divergence_map(counts, probs, alphas=DEFAULT_ALPHAS, betas=DEFAULT_BETAS, sc
     members_alpha = np.array([v[0] for v in CLASSICAL_MEMBERS.values()])
     with np.errstate(over="ignore"):
         stat = _chunked(
-            lambda rows: 2.0 * n[rows, None, None] * _grid_sums(p[rows], q if q.ndim == 1 else q[rows], a, b, scaling, r),
+            lambda rows: (
+                2.0 * n[rows, None, None] * _grid_sums(p[rows], q if q.ndim == 1 else q[rows], a, b, scaling, r)
+            ),
             len(n),
             a.size * b.size * c.shape[-1],
         )
@@ -731,13 +735,30 @@ def divergence_map(counts, probs, alphas=DEFAULT_ALPHAS, betas=DEFAULT_BETAS, sc
     members = {name: mem[:, k] for k, name in enumerate(CLASSICAL_MEMBERS)}
     if single:
         return DivergenceMap(
-            statistic=stat[0], n=int(n[0]) if float(n[0]).is_integer() else float(n[0]), cells=c.shape[-1],
-            alphas=a, betas=b, scaling=scaling, r=r, infinite=infinite[0], t_max=float(tmax[0]),
-            argmax=(int(ai[0]), int(bi[0])), members={k: float(v[0]) for k, v in members.items()},
+            statistic=stat[0],
+            n=int(n[0]) if float(n[0]).is_integer() else float(n[0]),
+            cells=c.shape[-1],
+            alphas=a,
+            betas=b,
+            scaling=scaling,
+            r=r,
+            infinite=infinite[0],
+            t_max=float(tmax[0]),
+            argmax=(int(ai[0]), int(bi[0])),
+            members={k: float(v[0]) for k, v in members.items()},
         )
     return DivergenceMap(
-        statistic=stat, n=n, cells=c.shape[-1], alphas=a, betas=b, scaling=scaling, r=r,
-        infinite=infinite, t_max=tmax, argmax=(ai, bi), members=members,
+        statistic=stat,
+        n=n,
+        cells=c.shape[-1],
+        alphas=a,
+        betas=b,
+        scaling=scaling,
+        r=r,
+        infinite=infinite,
+        t_max=tmax,
+        argmax=(ai, bi),
+        members=members,
     )
 
 

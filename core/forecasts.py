@@ -174,7 +174,9 @@ def _positive(a: np.ndarray, name: str, owner: str, offset: int = 0) -> np.ndarr
 def _continuous_law(noise, owner: str) -> NoiseLaw:
     law = as_noise_law(noise)
     if law.discrete:
-        raise InputError(f"{owner}: the {law.name} law is a count law; state count forecasts with pit_counts (a mean, no scale).")
+        raise InputError(
+            f"{owner}: the {law.name} law is a count law; state count forecasts with pit_counts (a mean, no scale)."
+        )
     if law.has_shape and law.shape is None:
         raise InputError(
             f"{owner}: a stated {law.name} predictive law needs its shape (degrees of freedom), e.g. "
@@ -186,7 +188,9 @@ def _continuous_law(noise, owner: str) -> NoiseLaw:
 def _count_law(noise, owner: str) -> NoiseLaw:
     law = as_noise_law(noise)
     if not law.discrete:
-        raise InputError(f"{owner}: the {law.name} law is continuous; count forecasts need 'poisson' or 'negative-binomial'.")
+        raise InputError(
+            f"{owner}: the {law.name} law is continuous; count forecasts need 'poisson' or 'negative-binomial'."
+        )
     if law.has_shape and law.shape is None:
         raise InputError(
             f"{owner}: a stated negative-binomial predictive law needs its size, e.g. "
@@ -237,7 +241,9 @@ def _pit_location_scale(y, mean, scale, noise, owner: str, offset: int = 0) -> n
     y = _numeric(y, "the actuals", owner)
     n = y.size
     mean = _aligned(mean, n, "the predictive mean", owner, offset)
-    sd = _positive(_aligned(scale, n, "the predictive scale", owner, offset, scalar_ok=True), "the predictive scale", owner, offset)
+    sd = _positive(
+        _aligned(scale, n, "the predictive scale", owner, offset, scalar_ok=True), "the predictive scale", owner, offset
+    )
     s = sd * _unit_scale(law)
     return np.asarray(law.cdf_batch(y[:, None], mean, s, None if not law.has_shape else law.shape)[:, 0], dtype=float)
 
@@ -288,7 +294,8 @@ def _quantile_table(quantiles, n: int, owner: str, offset: int = 0) -> tuple[np.
         raise InputError(
             f"{owner}: quantiles must be a mapping from level to values with at least two levels "
             f"(e.g. {{0.05: q05, 0.5: q50, 0.95: q95}}); got {type(quantiles).__name__}"
-            + (f" with {len(quantiles)} level(s)" if isinstance(quantiles, Mapping) else "") + "."
+            + (f" with {len(quantiles)} level(s)" if isinstance(quantiles, Mapping) else "")
+            + "."
         )
     levels, columns = [], []
     for key, values in quantiles.items():
@@ -564,7 +571,9 @@ def lagged_ljung_box(x, start: int, lags: int) -> PortmanteauResult:
         if start > 1
         else "Q = n(n+2) sum_{k=1..h} r_k^2/(n-k); p-value from chi-square(h)"
     )
-    return PortmanteauResult("ljung-box", q, int(lags), int(lags), float(stats.chi2.sf(q, lags)), convention, int(a.size))
+    return PortmanteauResult(
+        "ljung-box", q, int(lags), int(lags), float(stats.chi2.sf(q, lags)), convention, int(a.size)
+    )
 
 
 def _lagged_input(x, start: int, lags: int) -> np.ndarray:
@@ -661,7 +670,11 @@ def crps_normal(y, mean, sd) -> np.ndarray:
     if (sd <= 0).any() or not np.isfinite(sd).all():
         raise InputError("crps_normal: sd must be finite and positive.")
     z = (y - mean) / sd
-    return sd * (z * (2.0 * special.ndtr(z) - 1.0) + 2.0 * np.exp(-0.5 * z * z) / math.sqrt(2.0 * math.pi) - 1.0 / math.sqrt(math.pi))
+    return sd * (
+        z * (2.0 * special.ndtr(z) - 1.0)
+        + 2.0 * np.exp(-0.5 * z * z) / math.sqrt(2.0 * math.pi)
+        - 1.0 / math.sqrt(math.pi)
+    )
 
 
 def crps_location_scale(y, mean, sd, noise="normal") -> np.ndarray:
@@ -701,7 +714,9 @@ def crps_location_scale(y, mean, sd, noise="normal") -> np.ndarray:
     if law.name == "logistic":
         return s * (z + 2.0 * np.logaddexp(0.0, -z) - 1.0)  # -2 log F(z) = 2 log(1 + e^-z)
     nu = float(law.shape)
-    term = 2.0 * math.sqrt(nu) * math.exp(special.betaln(0.5, nu - 0.5) - 2.0 * special.betaln(0.5, nu / 2.0)) / (nu - 1.0)
+    term = (
+        2.0 * math.sqrt(nu) * math.exp(special.betaln(0.5, nu - 0.5) - 2.0 * special.betaln(0.5, nu / 2.0)) / (nu - 1.0)
+    )
     return s * (z * (2.0 * special.stdtr(nu, z) - 1.0) + 2.0 * stats.t.pdf(z, nu) * (nu + z * z) / (nu - 1.0) - term)
 
 
@@ -814,7 +829,9 @@ def mase(y, point, period: int = 1, history=None) -> float:
     point = _aligned(point, y.size, "the point forecasts", "mase")
     x = y if history is None else _numeric(history, "history", "mase")
     if x.size <= period:
-        raise InputError(f"mase: the in-sample series needs more than {period} values for a seasonal naive scale; got {x.size}.")
+        raise InputError(
+            f"mase: the in-sample series needs more than {period} values for a seasonal naive scale; got {x.size}."
+        )
     scale = float(np.mean(np.abs(x[period:] - x[:-period])))
     if not scale > 0:
         raise InputError(f"mase: the in-sample series does not change at lag {period}, so the naive scale is 0.")
@@ -861,7 +878,9 @@ def check_forecast_timing(issued, target, label: str | None = None) -> list[str]
     if iss.shape != tgt.shape or iss.ndim != 1:
         return [f"{who}{iss.size} issue time(s) for {tgt.size} target time(s); state one issue time per forecast."]
     if (iss.dtype.kind == "M") != (tgt.dtype.kind == "M"):
-        return [f"{who}issue times ({iss.dtype}) and target times ({tgt.dtype}) are not on one clock; store both as time stamps."]
+        return [
+            f"{who}issue times ({iss.dtype}) and target times ({tgt.dtype}) are not on one clock; store both as time stamps."
+        ]
     problems = []
     missing = np.isnat(iss) if iss.dtype.kind == "M" else ~np.isfinite(iss.astype(float))
     if missing.any():
@@ -890,7 +909,9 @@ def _gate_text(check: CheckResult, threshold: float, adjusted: bool) -> str:
     scores = check.noise
     parts = []
     if dist:
-        where = f" (largest at alpha {check.alpha_max:g}, beta {check.beta_max:g})" if np.isfinite(check.alpha_max) else ""
+        where = (
+            f" (largest at alpha {check.alpha_max:g}, beta {check.beta_max:g})" if np.isfinite(check.alpha_max) else ""
+        )
         parts.append(
             "the PIT values of the actuals are not uniform "
             f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{where}, p {_fmt_p(check.p_distribution)})"
@@ -976,7 +997,8 @@ def _statement(mean, scale, quantiles, noise, owner: str) -> tuple[str, NoiseLaw
         if scale is not None:
             raise InputError(
                 f"{owner}: the {law.name} law takes no scale column (its spread follows from the mean"
-                + (" and the size given as the noise shape" if law.has_shape else "") + "); drop the scale."
+                + (" and the size given as the noise shape" if law.has_shape else "")
+                + "); drop the scale."
             )
         _count_law(law, owner)
         return "mean-count", law
@@ -1013,7 +1035,10 @@ def _naive_benchmark(y: np.ndarray, first: int, period: int, horizon: int) -> di
     n = y.size
     k = period * math.ceil(horizon / period)
     if first < k:
-        return {"available": False, "note": f"the seasonal naive forecast needs {k} observations before the audit window; there are {first}"}
+        return {
+            "available": False,
+            "note": f"the seasonal naive forecast needs {k} observations before the audit window; there are {first}",
+        }
     pairs_before = first - k
     if pairs_before >= _MIN_NAIVE_PAIRS:
         d = y[k:first] - y[: first - k]
@@ -1023,11 +1048,16 @@ def _naive_benchmark(y: np.ndarray, first: int, period: int, horizon: int) -> di
         source = "whole series (too little history before the audit window)"
     sd = float(np.sqrt(np.mean(d * d)))
     if not sd > 0:
-        return {"available": False, "note": f"the series does not change at lag {k}, so the naive predictive law has no spread"}
+        return {
+            "available": False,
+            "note": f"the series does not change at lag {k}, so the naive predictive law has no spread",
+        }
     return {"available": True, "lag": k, "point": y[first - k : n - k], "sd": sd, "sd_from": source}
 
 
-def _accuracy(y: np.ndarray, first: int, period: int, horizon: int, statement: str, law, mean, scale, levels, Q) -> dict:
+def _accuracy(
+    y: np.ndarray, first: int, period: int, horizon: int, statement: str, law, mean, scale, levels, Q
+) -> dict:
     """MASE, CRPS and CRPS skill against the seasonal naive forecast (reported, never a verdict)."""
     yw = y[first:]
     out: dict[str, Any] = {}
@@ -1035,7 +1065,9 @@ def _accuracy(y: np.ndarray, first: int, period: int, horizon: int, statement: s
         point = _quantile_at(levels, Q, 0.5, "accuracy")
         out["point"] = "median (the 0.5 quantile, interpolated when not stated)"
         crps = crps_quantiles(yw, dict(zip(levels.tolist(), Q.T)))
-        out["crps_method"] = f"twice the mean pinball loss over the {levels.size} stated levels (Berrisch and Ziel 2023)"
+        out["crps_method"] = (
+            f"twice the mean pinball loss over the {levels.size} stated levels (Berrisch and Ziel 2023)"
+        )
     else:
         point = mean
         out["point"] = "mean"
@@ -1049,7 +1081,11 @@ def _accuracy(y: np.ndarray, first: int, period: int, horizon: int, statement: s
     out["crps"] = float(np.mean(crps))
     m = period
     history = y[:first] if first - m >= _MIN_NAIVE_PAIRS else y
-    out["mase_scale_from"] = "history before the audit window" if history is not y else "whole series (too little history before the audit window)"
+    out["mase_scale_from"] = (
+        "history before the audit window"
+        if history is not y
+        else "whole series (too little history before the audit window)"
+    )
     try:
         out["mase"] = mase(yw, point, m, history)
     except InputError as exc:
@@ -1073,14 +1109,18 @@ def _accuracy(y: np.ndarray, first: int, period: int, horizon: int, statement: s
     return out
 
 
-def _subsequence_check(u: np.ndarray, z: np.ndarray, h: int, period: int, settings: AuditSettings, cache, window: dict) -> CheckResult:
+def _subsequence_check(
+    u: np.ndarray, z: np.ndarray, h: int, period: int, settings: AuditSettings, cache, window: dict
+) -> CheckResult:
     """Distribution gate of h-step forecasts: h interleaved subsequences (each i.i.d. under the
     null), Bonferroni over them (Diebold, Gunther and Tay 1998 [2]_); independence beyond lag h-1."""
     w = u.size
     checks = []
     for j in range(h):
         idx = np.arange(w - 1 - j, -1, -h)[::-1]  # subsequence j ends j steps before the window's last observation
-        checks.append(score_frozen(z[idx], u[idx], get_law("normal"), _STANDARD_NORMAL, period, settings, cache, window))
+        checks.append(
+            score_frozen(z[idx], u[idx], get_law("normal"), _STANDARD_NORMAL, period, settings, cache, window)
+        )
     p_sub = [c.p_distribution for c in checks]
     best = int(np.argmin(p_sub))
     p_dist = float(min(1.0, h * p_sub[best]))
@@ -1096,7 +1136,10 @@ def _subsequence_check(u: np.ndarray, z: np.ndarray, h: int, period: int, settin
         rng = key_rng(settings.seed, "independence", "lagged", f"h={h}", f"H={lags}", _digest(z))
         simulated = simulate_lagged_ljung_box(z, h, lags, settings.replicates, rng)
         p_ind = float((1 + np.sum(simulated >= lb.statistic)) / (simulated.size + 1))
-        lb_dict.update(p_value=p_ind, reference=f"simulated MA({h - 1}) null with the estimated autocorrelations (R={simulated.size})")
+        lb_dict.update(
+            p_value=p_ind,
+            reference=f"simulated MA({h - 1}) null with the estimated autocorrelations (R={simulated.size})",
+        )
     calibration = dict(
         checks[best].calibration,
         subsequences=[{"n": int(c.n), "p_distribution": float(c.p_distribution)} for c in checks],
@@ -1212,7 +1255,15 @@ def audit_forecasts(
     cache = cache if cache is not None else CalibrationCache()
     owner = label or "forecasts"
     spec: dict[str, Any] = {"family": "forecasts", "horizon": horizon, "period": period}
-    noise_name = "quantiles" if quantiles is not None else (noise if isinstance(noise, str) else getattr(noise, "name", None) or (noise.get("law") if isinstance(noise, Mapping) else str(noise)))
+    noise_name = (
+        "quantiles"
+        if quantiles is not None
+        else (
+            noise
+            if isinstance(noise, str)
+            else getattr(noise, "name", None) or (noise.get("law") if isinstance(noise, Mapping) else str(noise))
+        )
+    )
     w = settings.audit_window
     window: dict[str, Any] = {}
     accuracy: dict = {}
@@ -1237,8 +1288,12 @@ def audit_forecasts(
         yw = y_all[first:]
         if statement == "quantiles":
             if not isinstance(quantiles, Mapping):
-                raise InputError(f"{owner}: quantiles must be a mapping from level to values; got {type(quantiles).__name__}.")
-            qw = {lv: _window_slice(v, first, n, f"the {_level_name(lv)} quantile", owner) for lv, v in quantiles.items()}
+                raise InputError(
+                    f"{owner}: quantiles must be a mapping from level to values; got {type(quantiles).__name__}."
+                )
+            qw = {
+                lv: _window_slice(v, first, n, f"the {_level_name(lv)} quantile", owner) for lv, v in quantiles.items()
+            }
             levels, Q = _quantile_table(qw, w, owner, first)
             spec["levels"] = levels.tolist()
             rng = key_rng(settings.seed, "pit", "forecast", "quantiles", _digest(yw, Q.ravel()))
@@ -1246,10 +1301,17 @@ def audit_forecasts(
             mw = sw = None
         else:
             levels = Q = None
-            mw = _aligned(_window_slice(mean, first, n, "the predictive mean", owner), w, "the predictive mean", owner, first)
+            mw = _aligned(
+                _window_slice(mean, first, n, "the predictive mean", owner), w, "the predictive mean", owner, first
+            )
             if statement == "mean-scale":
                 sw = _window_slice(scale, first, n, "the predictive scale", owner)
-                sw = _positive(_aligned(sw, w, "the predictive scale", owner, first, scalar_ok=True), "the predictive scale", owner, first)
+                sw = _positive(
+                    _aligned(sw, w, "the predictive scale", owner, first, scalar_ok=True),
+                    "the predictive scale",
+                    owner,
+                    first,
+                )
                 u = _pit_location_scale(yw, mw, sw, law, owner, first)
             else:
                 sw = None
@@ -1260,7 +1322,12 @@ def audit_forecasts(
         check = _failed_check("production", exc, window, label=label)
         verdict, reasons = forecast_verdict(check, settings.level)
         return AuditResult(
-            verdict=verdict, reasons=reasons, production=check, refit=None, spec=_plain(spec), noise=str(noise_name),
+            verdict=verdict,
+            reasons=reasons,
+            production=check,
+            refit=None,
+            spec=_plain(spec),
+            noise=str(noise_name),
             timings={"total_s": time.perf_counter() - t_start},
         )
 
@@ -1294,7 +1361,13 @@ def audit_forecasts(
     verdict, reasons = forecast_verdict(check, settings.level)
     if settings.locate_change and horizon == 1 and check.ok and not check.passed(settings.level):
         try:
-            change = locate_change(z, noise="normal", params=_STANDARD_NORMAL, permutations=settings.change_permutations, seed=settings.seed)
+            change = locate_change(
+                z,
+                noise="normal",
+                params=_STANDARD_NORMAL,
+                permutations=settings.change_permutations,
+                seed=settings.seed,
+            )
             change = dataclasses.replace(change, index=change.index + first)
         except (FitauditError, ValueError):
             change = None
@@ -1377,8 +1450,16 @@ def prepare_forecast_calibration(
         for n in forecast_table_lengths(settings.audit_window, horizon):
             try:
                 production_table(
-                    n, number_of_cells(n, 0), settings.alphas, settings.betas, settings.scaling, settings.r,
-                    settings.replicates, settings.seed, cache, gate=settings.gate(n, 0),
+                    n,
+                    number_of_cells(n, 0),
+                    settings.alphas,
+                    settings.betas,
+                    settings.scaling,
+                    settings.r,
+                    settings.replicates,
+                    settings.seed,
+                    cache,
+                    gate=settings.gate(n, 0),
                 )
             except (FitauditError, ValueError):
                 continue  # too short: the audit itself reports it

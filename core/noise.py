@@ -121,7 +121,9 @@ class NoiseParams:
                 f"got loc={self.loc!r}, scale={self.scale!r}."
             )
         if self.shape is not None and not (math.isfinite(self.shape) and self.shape > 0):
-            raise InputError(f"NoiseParams for the {self.law!r} law: shape must be finite and positive; got {self.shape!r}.")
+            raise InputError(
+                f"NoiseParams for the {self.law!r} law: shape must be finite and positive; got {self.shape!r}."
+            )
         order = [PARAMETER_NAMES.index(e) if e in PARAMETER_NAMES else -1 for e in estimated]
         if -1 in order or order != sorted(set(order)):
             raise InputError(
@@ -153,7 +155,9 @@ def _as_rows(x, owner: str, name: str) -> np.ndarray:
     if a.ndim == 1:
         a = a[None, :]
     if a.ndim != 2 or a.shape[1] == 0:
-        raise InputError(f"{owner}: {name!r} must be a non-empty 1-D series or a 2-D array (replicates, n); got shape {a.shape}.")
+        raise InputError(
+            f"{owner}: {name!r} must be a non-empty 1-D series or a 2-D array (replicates, n); got shape {a.shape}."
+        )
     bad = ~np.isfinite(a)
     if bad.any():
         first = np.argwhere(bad)[0].tolist()
@@ -173,7 +177,9 @@ def _as_counts(y, owner: str) -> np.ndarray:
         raise InputError(f"{owner}: the counts are empty.")
     bad = ~np.isfinite(a) | (a < 0) | (a != np.round(a))
     if bad.any():
-        raise InputError(f"{owner}: counts must be finite non-negative integers; got values such as {a[bad][:3].tolist()}.")
+        raise InputError(
+            f"{owner}: counts must be finite non-negative integers; got values such as {a[bad][:3].tolist()}."
+        )
     return a
 
 
@@ -185,7 +191,9 @@ def _as_means(mean, shape: tuple[int, ...], owner: str) -> np.ndarray:
     try:
         m = np.broadcast_to(m, shape)
     except ValueError:
-        raise InputError(f"{owner}: the predictive means have shape {m.shape}, which does not match the counts' shape {shape}.") from None
+        raise InputError(
+            f"{owner}: the predictive means have shape {m.shape}, which does not match the counts' shape {shape}."
+        ) from None
     if not np.isfinite(m).all() or (m <= 0).any():
         raise InputError(f"{owner}: predictive means must be finite and positive; the smallest is {np.min(m)!r}.")
     return m
@@ -193,7 +201,9 @@ def _as_means(mean, shape: tuple[int, ...], owner: str) -> np.ndarray:
 
 def _check_rng(rng, owner: str) -> np.random.Generator:
     if not isinstance(rng, np.random.Generator):
-        raise InputError(f"{owner}: rng must be a numpy.random.Generator (np.random.default_rng(seed)); got {type(rng).__name__}.")
+        raise InputError(
+            f"{owner}: rng must be a numpy.random.Generator (np.random.default_rng(seed)); got {type(rng).__name__}."
+        )
     return rng
 
 
@@ -344,8 +354,19 @@ class NoiseLaw:
     #: Methods only one kind of law has, and the hint given when the other kind is asked for them.
     _KIND_METHODS: ClassVar[dict[str, tuple[str, ...]]] = {
         "continuous location-scale": (
-            "fit", "fit_batch", "from_variance", "cdf", "cdf_batch", "ppf", "logpdf", "pdf", "sample",
-            "sample_standard", "fisher_information", "cell_probabilities", "cell_probability_gradient",
+            "fit",
+            "fit_batch",
+            "from_variance",
+            "cdf",
+            "cdf_batch",
+            "ppf",
+            "logpdf",
+            "pdf",
+            "sample",
+            "sample_standard",
+            "fisher_information",
+            "cell_probabilities",
+            "cell_probability_gradient",
         ),
         "count": ("fit_counts", "fit_counts_batch", "randomized_pit", "sample_counts", "logpmf"),
     }
@@ -435,7 +456,9 @@ class NoiseLaw:
                 raise InputError(f"{self.name} {owner}: params carry no shape; the {self.name!r} law needs one.")
             self._check_shape(params.shape)
         elif params.shape is not None:
-            raise InputError(f"{self.name} {owner}: the {self.name!r} law has no shape; params carry shape={params.shape!r}.")
+            raise InputError(
+                f"{self.name} {owner}: the {self.name!r} law has no shape; params carry shape={params.shape!r}."
+            )
         return params
 
     # -- the protocol every law implements ---------------------------------------------------
@@ -459,7 +482,9 @@ class NoiseLaw:
         """
         raise NotImplementedError
 
-    def frozen_params(self, production: Mapping[str, float], errors=None, *, y=None, label: str | None = None) -> NoiseParams:
+    def frozen_params(
+        self, production: Mapping[str, float], errors=None, *, y=None, label: str | None = None
+    ) -> NoiseParams:
         """Noise parameters of a frozen production version, nothing re-estimated that it fixes.
 
         Location-scale laws: the law with the version's innovation variance ``production["sigma2"]``
@@ -578,7 +603,9 @@ class _LocationScaleLaw(NoiseLaw):
         """:meth:`fit` of the errors (``y`` is not used); see :meth:`NoiseLaw.fit_errors`."""
         return self.fit(errors, location=location)
 
-    def frozen_params(self, production: Mapping[str, float], errors=None, *, y=None, label: str | None = None) -> NoiseParams:
+    def frozen_params(
+        self, production: Mapping[str, float], errors=None, *, y=None, label: str | None = None
+    ) -> NoiseParams:
         """The law with the production variance: ``from_variance(production["sigma2"])``.
 
         See :meth:`NoiseLaw.frozen_params`.  A variance that is not finite and positive is an
@@ -636,7 +663,9 @@ class _LocationScaleLaw(NoiseLaw):
             With ``estimated = self.estimated_names(location)``.
         """
         if np.ndim(x) != 1:
-            raise InputError(f"{self.name} fit: the residuals must be 1-D; got shape {np.shape(x)}. Use fit_batch for many rows.")
+            raise InputError(
+                f"{self.name} fit: the residuals must be 1-D; got shape {np.shape(x)}. Use fit_batch for many rows."
+            )
         loc, scale, shape = self.fit_batch(np.asarray(x)[None, :], location)
         return NoiseParams(
             law=self.name,
@@ -804,7 +833,9 @@ class _LocationScaleLaw(NoiseLaw):
             return None
         if shape is None:
             if self.shape is None:
-                raise InputError(f"{self.name} {owner}: pass the per-row shape (the law's shape is estimated, not fixed).")
+                raise InputError(
+                    f"{self.name} {owner}: pass the per-row shape (the law's shape is estimated, not fixed)."
+                )
             return self.shape
         shape = np.broadcast_to(np.asarray(shape, dtype=float), (R,))
         if not (np.isfinite(shape).all() and (shape > 2).all()):
@@ -1298,7 +1329,9 @@ class _CountLaw(NoiseLaw):
         y = self._observations(y, "fit_errors")
         return self.fit_counts(y, y - errors)
 
-    def frozen_params(self, production: Mapping[str, float], errors=None, *, y=None, label: str | None = None) -> NoiseParams:
+    def frozen_params(
+        self, production: Mapping[str, float], errors=None, *, y=None, label: str | None = None
+    ) -> NoiseParams:
         """The law at means ``y - errors``: :meth:`fit_counts`, which estimates a size that is not
         fixed (negative binomial) and nothing else; see :meth:`NoiseLaw.frozen_params`."""
         y = self._observations(y, "frozen_params")
@@ -1431,7 +1464,9 @@ class _CountLaw(NoiseLaw):
         """
         y = _as_counts(y, f"{self.name} fit_counts")
         if y.ndim != 1:
-            raise InputError(f"{self.name} fit_counts: the counts must be 1-D; got shape {y.shape}. Use fit_counts_batch.")
+            raise InputError(
+                f"{self.name} fit_counts: the counts must be 1-D; got shape {y.shape}. Use fit_counts_batch."
+            )
         mean = _as_means(mean, y.shape, f"{self.name} fit_counts")
         shape = self.fit_counts_batch(y[None, :], mean[None, :])
         estimated = ("shape",) if self.has_shape and self.shape is None else ()
@@ -1502,7 +1537,9 @@ class NegativeBinomialLaw(_CountLaw):
         except (TypeError, ValueError):
             value = float("nan")
         if isinstance(shape, bool) or not (math.isfinite(value) and value > 0):
-            raise InputError(f"The shape (size) of the 'negative-binomial' noise law must be a finite number > 0; got {shape!r}.")
+            raise InputError(
+                f"The shape (size) of the 'negative-binomial' noise law must be a finite number > 0; got {shape!r}."
+            )
         return value
 
     def _logpmf(self, y, mean, r):
@@ -1527,7 +1564,10 @@ class NegativeBinomialLaw(_CountLaw):
         r = np.exp(eta)[:, None]
         score = (special.digamma(Y + r) - special.digamma(r) - np.log1p(mean / r) + (mean - Y) / (r + mean)).sum(axis=1)
         slope = (
-            special.polygamma(1, Y + r) - special.polygamma(1, r) + mean / (r * (r + mean)) - (mean - Y) / (r + mean) ** 2
+            special.polygamma(1, Y + r)
+            - special.polygamma(1, r)
+            + mean / (r * (r + mean))
+            - (mean - Y) / (r + mean) ** 2
         ).sum(axis=1)
         return score, slope
 

@@ -91,10 +91,22 @@ class AuditSettings:
 
     #: Bounds shared with the registry schema (one home: :data:`~fitaudit.core.vocabulary.SETTING_BOUNDS`).
     _parameter_constraints = {
-        **{name: SETTING_BOUNDS[name] for name in (
-            "level", "calibration", "replicates", "bootstrap_replicates", "seed", "audit_window", "fit_window",
-            "lb_lags", "change_permutations", "practical_divergence", "practical_acf",
-        )},
+        **{
+            name: SETTING_BOUNDS[name]
+            for name in (
+                "level",
+                "calibration",
+                "replicates",
+                "bootstrap_replicates",
+                "seed",
+                "audit_window",
+                "fit_window",
+                "lb_lags",
+                "change_permutations",
+                "practical_divergence",
+                "practical_acf",
+            )
+        },
         "scaling": [Options(SCALINGS)],
     }
 
@@ -120,9 +132,13 @@ class AuditSettings:
             try:
                 members = tuple((float(a), float(b)) for a, b in self.gate_members)
             except (TypeError, ValueError):
-                raise InputError(f"AuditSettings: gate_members must be (alpha, beta) pairs; got {self.gate_members!r}.") from None
+                raise InputError(
+                    f"AuditSettings: gate_members must be (alpha, beta) pairs; got {self.gate_members!r}."
+                ) from None
             if not members or any(b < 0 or b > 1 for _, b in members):
-                raise InputError(f"AuditSettings: gate_members must be non-empty (alpha, beta) pairs with beta in [0, 1]; got {self.gate_members!r}.")
+                raise InputError(
+                    f"AuditSettings: gate_members must be non-empty (alpha, beta) pairs with beta in [0, 1]; got {self.gate_members!r}."
+                )
             object.__setattr__(self, "gate_members", members)
 
     def gate(self, n: int, k: int) -> Gate:

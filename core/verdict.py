@@ -29,7 +29,14 @@ from .exceptions import InputError
 from .results import AuditResult, CheckResult
 from .vocabulary import ADJUDICATED_VERDICTS, ADJUSTMENT_LABELS, ADJUSTMENTS, VERDICTS, Adjustment
 
-__all__ = ["CAUTION_PREFIX", "decide_verdict", "owner_action", "apply_fleet_rules", "adjust_pvalues", "escalate_persistent_refit"]
+__all__ = [
+    "CAUTION_PREFIX",
+    "decide_verdict",
+    "owner_action",
+    "apply_fleet_rules",
+    "adjust_pvalues",
+    "escalate_persistent_refit",
+]
 
 
 def _fmt_p(p: float) -> str:
@@ -56,7 +63,12 @@ def _floor(check: CheckResult) -> tuple[float, int] | None:
     """The smallest p-value a simulated calibration can give, ``1 / (B + 1)``, and ``B``."""
     cal = check.calibration or {}
     b = cal.get("replicates")
-    if cal.get("method") in ("simulated", "bootstrap") and isinstance(b, (int, np.integer)) and not isinstance(b, bool) and b > 0:
+    if (
+        cal.get("method") in ("simulated", "bootstrap")
+        and isinstance(b, (int, np.integer))
+        and not isinstance(b, bool)
+        and b > 0
+    ):
         return 1.0 / (int(b) + 1), int(b)
     return None
 
@@ -122,7 +134,7 @@ def _plain_failure(check: CheckResult, threshold: float, adjusted: bool) -> str:
     # the larger departure first: the bias in standard deviations against the excess of the spread, |sqrt(ratio) - 1|
     shown = since if since.get("date") and since.get("bias_sd") is not None else eff
     excess = abs(np.sqrt(ratio) - 1) if ratio is not None and ratio > 0 else 0.0
-    for text in ((bias, spread) if abs(shown.get("bias_sd") or 0.0) > excess else (spread, bias)):
+    for text in (bias, spread) if abs(shown.get("bias_sd") or 0.0) > excess else (spread, bias):
         if dist and text:
             parts.append(text)
     if dist and not parts:
@@ -175,7 +187,11 @@ def _summary_pass(check: CheckResult, threshold: float, adjusted: bool) -> str:
 def _cautions(check: CheckResult) -> list[str]:
     """What a passing check's numbers say beyond the verdict: a narrow pass, strong reported-only diagnostics."""
     out = []
-    share = check.t_at_max / check.critical_value if check.critical_value and np.isfinite(check.critical_value) else float("nan")
+    share = (
+        check.t_at_max / check.critical_value
+        if check.critical_value and np.isfinite(check.critical_value)
+        else float("nan")
+    )
     if np.isfinite(share) and 1 - NARROW_SHARE <= share <= 1:
         out.append(
             f"it passes narrowly: its largest standardised statistic is {share:.2f} of its critical value "
@@ -184,13 +200,26 @@ def _cautions(check: CheckResult) -> list[str]:
     # only members whose chi-square approximation holds at audit-window sizes: Cressie-Read lambda = alpha - 1 in
     # [0, 1] (G², Cressie-Read 2/3, Pearson); Neyman and Freeman-Tukey reject spuriously when cells are nearly empty
     # (from memory: Read and Cressie 1988, ch. 5, on the small-sample accuracy of the chi-square approximation)
-    low = {name: m.get("p_value_chi2") for name, m in (check.members or {}).items()
-           if name in CLASSICAL_MEMBERS and 1.0 <= CLASSICAL_MEMBERS[name][0] <= 2.0
-           and isinstance(m, dict) and m.get("p_value_chi2") is not None and np.isfinite(m["p_value_chi2"]) and m["p_value_chi2"] < CLASSICAL_NOTE_P}
+    low = {
+        name: m.get("p_value_chi2")
+        for name, m in (check.members or {}).items()
+        if name in CLASSICAL_MEMBERS
+        and 1.0 <= CLASSICAL_MEMBERS[name][0] <= 2.0
+        and isinstance(m, dict)
+        and m.get("p_value_chi2") is not None
+        and np.isfinite(m["p_value_chi2"])
+        and m["p_value_chi2"] < CLASSICAL_NOTE_P
+    }
     if low:
         names = ", ".join(CLASSICAL_MEMBER_LABELS.get(n, n) for n in low)
         lo, hi = min(low.values()), max(low.values())
-        span = f"p {_fmt_p(lo)}" if lo == hi else f"p from {lo:.3f} to {hi:.3f}" if lo >= 0.001 else f"p from < 0.001 to {hi:.3f}"
+        span = (
+            f"p {_fmt_p(lo)}"
+            if lo == hi
+            else f"p from {lo:.3f} to {hi:.3f}"
+            if lo >= 0.001
+            else f"p from < 0.001 to {hi:.3f}"
+        )
         out.append(
             f"the classical statistics {names} would reject on their own ({span} against chi-square; reported only: "
             "the calibrated gate over all members decides)"
@@ -212,7 +241,9 @@ def _caution_reasons(check: CheckResult, which: str) -> list[str]:
     return [f"{CAUTION_PREFIX}{which}: {c}." for c in _cautions(check)]
 
 
-def decide_verdict(production: CheckResult | None, refit: CheckResult | None, threshold: float, adjusted: bool = False) -> tuple[str, tuple]:
+def decide_verdict(
+    production: CheckResult | None, refit: CheckResult | None, threshold: float, adjusted: bool = False
+) -> tuple[str, tuple]:
     """Verdict and plain-language reasons from the two checks (docs/method.md §10.2).
 
     With a production check: ``pass`` if it passes, else ``refit`` if the refit check passes,
@@ -301,8 +332,15 @@ def decide_verdict(production: CheckResult | None, refit: CheckResult | None, th
     )
 
 
-def owner_action(verdict: str, *, escalated: bool = False, as_of: dt.date | str | None = None, days: int | None = None,
-                 refit_policy: str = "approval", refittable: bool = True) -> dict:
+def owner_action(
+    verdict: str,
+    *,
+    escalated: bool = False,
+    as_of: dt.date | str | None = None,
+    days: int | None = None,
+    refit_policy: str = "approval",
+    refittable: bool = True,
+) -> dict:
     """What a model's owner should do after a verdict, and by when (docs/method.md §10.2).
 
     The deadline is ``as_of + days`` (the policy's days to act for the model's tier).
@@ -327,7 +365,9 @@ def owner_action(verdict: str, *, escalated: bool = False, as_of: dt.date | str 
     '2026-12-14'
     """
     if verdict not in VERDICTS:
-        raise InputError(f"owner_action: unknown verdict {verdict!r}; valid verdicts are {', '.join(repr(v) for v in VERDICTS)}.")
+        raise InputError(
+            f"owner_action: unknown verdict {verdict!r}; valid verdicts are {', '.join(repr(v) for v in VERDICTS)}."
+        )
     if verdict == "pass":
         return {"action": "None: the model passed.", "due": None, "days": None}
     if not refittable:
@@ -340,7 +380,8 @@ def owner_action(verdict: str, *, escalated: bool = False, as_of: dt.date | str 
         "refit": refit,
         "respecify": (
             "Refits keep recurring: choose a new specification (see the candidates) and have it validated, rather than approving another refit."
-            if escalated else "Choose a new specification (see the candidates) and have it validated."
+            if escalated
+            else "Choose a new specification (see the candidates) and have it validated."
         ),
         "insufficient": "Provide the data the reason names (or shorten the windows in the registry) so the model can be audited.",
         "error": "Fix the problem the reason names so the model can be audited.",
@@ -384,7 +425,9 @@ def adjust_pvalues(p, method: Adjustment = "bh") -> np.ndarray:
     [0.03, 0.04, nan, 0.04]
     """
     if method not in ADJUSTMENTS:
-        raise InputError(f"Unknown p-value adjustment {method!r}; valid methods are {', '.join(repr(m) for m in ADJUSTMENTS)}.")
+        raise InputError(
+            f"Unknown p-value adjustment {method!r}; valid methods are {', '.join(repr(m) for m in ADJUSTMENTS)}."
+        )
     try:
         p = np.array(p, dtype=float)
     except (TypeError, ValueError) as exc:
@@ -513,13 +556,20 @@ def apply_fleet_rules(
         if res.verdict in ADJUDICATED_VERDICTS:
             use_adjusted = method != "none"
             threshold = q if use_adjusted else None
-            verdict, reasons = decide_verdict(res.production, res.refit, threshold if threshold is not None else res.deciding_check.settings_level, adjusted=use_adjusted)
+            verdict, reasons = decide_verdict(
+                res.production,
+                res.refit,
+                threshold if threshold is not None else res.deciding_check.settings_level,
+                adjusted=use_adjusted,
+            )
             if use_adjusted:
-                reasons = reasons + (f"p-values were adjusted across the run's {len(pvals)} checks ({ADJUSTMENT_LABELS.get(method, method)}, q = {q:g}).",)
+                reasons = reasons + (
+                    f"p-values were adjusted across the run's {len(pvals)} checks ({ADJUSTMENT_LABELS.get(method, method)}, q = {q:g}).",
+                )
             escalated = False
             if verdict == "refit" and escalate_persistent_refit(list(histories[i]), verdict, k=k, n=n):
                 verdict, escalated = "respecify", True
-                recent = [*list(histories[i])[-(n - 1):], "refit"] if n > 1 else ["refit"]
+                recent = [*list(histories[i])[-(n - 1) :], "refit"] if n > 1 else ["refit"]
                 lead = reasons[0].removeprefix("Refit: ")
                 reasons = (
                     f"Respecify (escalated): a refit was needed in {recent.count('refit')} of the last {len(recent)} audits, this one "

@@ -34,7 +34,12 @@ QUIET_SETTINGS = {
 }
 
 # loggers that print ERROR lines while Prefect's embedded server shuts down
-_SILENCED = ("prefect.server.services.task_run_recorder", "prefect.server.services.telemetry", "sqlalchemy.pool", "docket")
+_SILENCED = (
+    "prefect.server.services.task_run_recorder",
+    "prefect.server.services.telemetry",
+    "sqlalchemy.pool",
+    "docket",
+)
 
 
 #: Loggers of flow and task runs: kept at this level, so that their records reach the Prefect API.

@@ -25,10 +25,15 @@ def as_of_dates(start: dt.date, end: dt.date, every_days: int = 7) -> list[dt.da
 
 
 @flow(name="fitaudit-backfill", persist_result=False, log_prints=False)
-def backfill_flow(registry: str, start: dt.date, end: dt.date, every_days: int = 7, archive: str | None = None, batch_size: int = 0) -> list[dict]:
+def backfill_flow(
+    registry: str, start: dt.date, end: dt.date, every_days: int = 7, archive: str | None = None, batch_size: int = 0
+) -> list[dict]:
     """Run :func:`audit_flow` for each as-of date from ``start`` to ``end``, oldest first.
 
     Each audit sees the verdicts of the earlier ones (history, movement, persistence), exactly as
     weekly runs would have.
     """
-    return [audit_flow(registry=registry, as_of=day, archive=archive, batch_size=batch_size) for day in as_of_dates(start, end, every_days)]
+    return [
+        audit_flow(registry=registry, as_of=day, archive=archive, batch_size=batch_size)
+        for day in as_of_dates(start, end, every_days)
+    ]

@@ -67,26 +67,49 @@ def build_parser() -> argparse.ArgumentParser:
     d = sub.add_parser("demo", help="write the demo extract, registry and archive, audit them, print the report path")
     d.add_argument("--out", default="fitaudit-demo", help="folder for the demo (default ./fitaudit-demo)")
     d.add_argument("--fresh", action="store_true", help="delete the demo folder first")
-    d.add_argument("--weeks", type=int, default=3, help="weekly audits to run on the first demo (default 3: two earlier weeks build a history)")
+    d.add_argument(
+        "--weeks",
+        type=int,
+        default=3,
+        help="weekly audits to run on the first demo (default 3: two earlier weeks build a history)",
+    )
 
     def run_options(sp: argparse.ArgumentParser) -> None:
-        sp.add_argument("registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)")
+        sp.add_argument(
+            "registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)"
+        )
         sp.add_argument("--archive", help="archive folder (default: the archive_root setting, ./archive)")
         sp.add_argument("--as-of", type=_date, help="as-of date YYYY-MM-DD (default: today, UTC)")
         sp.add_argument("--batch-size", type=int, default=0, help="models per Prefect task (default: automatic)")
-        sp.add_argument("--dask", metavar="ADDRESS", help="run batches on Dask: a scheduler address, or local:N for a local cluster of N processes")
-        sp.add_argument("--start-server", action="store_true", help="start a local Prefect server for this command (needed by --dask when PREFECT_API_URL is unset)")
+        sp.add_argument(
+            "--dask",
+            metavar="ADDRESS",
+            help="run batches on Dask: a scheduler address, or local:N for a local cluster of N processes",
+        )
+        sp.add_argument(
+            "--start-server",
+            action="store_true",
+            help="start a local Prefect server for this command (needed by --dask when PREFECT_API_URL is unset)",
+        )
         sp.add_argument("--quiet", action="store_true", help="print only the report path")
 
     r = sub.add_parser("run", help="audit every model of a registry once")
     run_options(r)
     r.add_argument("--models", nargs="+", metavar="ID", help="audit only these model ids")
     r.add_argument("--refit", action="store_true", help="start the refit flow right away for refit/respecify verdicts")
-    r.add_argument("--fail-on", type=_verdicts, default=(), metavar="VERDICTS", help="exit 3 if any model gets one of these verdicts (comma-separated)")
+    r.add_argument(
+        "--fail-on",
+        type=_verdicts,
+        default=(),
+        metavar="VERDICTS",
+        help="exit 3 if any model gets one of these verdicts (comma-separated)",
+    )
 
     f = sub.add_parser("refit", help="refit models, store parameter versions, promote or list candidates")
     run_options(f)
-    f.add_argument("--model", dest="models", action="append", required=True, metavar="ID", help="model id (repeat for several)")
+    f.add_argument(
+        "--model", dest="models", action="append", required=True, metavar="ID", help="model id (repeat for several)"
+    )
     f.add_argument("--approve", action="store_true", help="promote passing refits now (records --by as approver)")
     f.add_argument("--by", default="", help="approver's name and role, recorded with the promotion")
     f.add_argument(
@@ -102,16 +125,25 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--every", type=int, default=7, help="days between as-of dates (default 7)")
 
     s = sub.add_parser("serve", help="serve the audit (weekly cron) and refit (event-triggered) deployments")
-    s.add_argument("registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)")
+    s.add_argument(
+        "registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)"
+    )
     s.add_argument("--archive", help="archive folder")
     s.add_argument("--cron", default="0 6 * * 1", help="cron schedule of the audit (default Mondays 06:00)")
     s.add_argument("--timezone", default="UTC", help="time zone of the schedule")
-    s.add_argument("--start-server", action="store_true", help="start a local Prefect server if PREFECT_API_URL is unset")
+    s.add_argument(
+        "--start-server", action="store_true", help="start a local Prefect server if PREFECT_API_URL is unset"
+    )
 
     v = sub.add_parser("verify", help="check every archived file and the hash chain; exit 4 on any problem")
     v.add_argument("archive", help="archive folder")
-    v.add_argument("--head", type=_head, metavar="HEAD", help="a chain head recorded outside the archive, as verify and run print it "
-                   "('head: <sha256> (seq N)', quoted, or the bare SHA-256), to detect a truncated or rewritten chain")
+    v.add_argument(
+        "--head",
+        type=_head,
+        metavar="HEAD",
+        help="a chain head recorded outside the archive, as verify and run print it "
+        "('head: <sha256> (seq N)', quoted, or the bare SHA-256), to detect a truncated or rewritten chain",
+    )
     v.add_argument("--notes", action="store_true", help="also list notes (pending publications, leftovers)")
     v.add_argument("--json", action="store_true", help="print problems as JSON")
 
@@ -119,13 +151,18 @@ def build_parser() -> argparse.ArgumentParser:
     gsub = g.add_subparsers(dest="registry_command", metavar="SUBCOMMAND")
     gsub.required = True
     gc = gsub.add_parser("check", help="validate a registry and print every problem with file:line")
-    gc.add_argument("registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)")
     gc.add_argument(
-        "--deep", action="store_true",
+        "registry", nargs="?", help="registry YAML file (default: the registry_path setting, ./registry.yaml)"
+    )
+    gc.add_argument(
+        "--deep",
+        action="store_true",
         help="also open every source (files, columns, filter, a sample of series against the calendar) and import "
         "every user mean function",
     )
-    gc.add_argument("--as-of", type=_date, default=None, help="with --deep: the date dated uris are resolved for (default: today)")
+    gc.add_argument(
+        "--as-of", type=_date, default=None, help="with --deep: the date dated uris are resolved for (default: today)"
+    )
     gsub.add_parser(
         "schema",
         help="print the registry's JSON Schema, for editors (completion and checks while typing)",
@@ -167,7 +204,9 @@ def build_parser() -> argparse.ArgumentParser:
     )
     ak.add_argument("archive", help="archive folder")
     ak.add_argument("--by", required=True, help="who acknowledges the damage (name and role)")
-    ak.add_argument("--note", required=True, help="what happened (the incident) and why the originals cannot be restored")
+    ak.add_argument(
+        "--note", required=True, help="what happened (the incident) and why the originals cannot be restored"
+    )
 
     so = sub.add_parser("signoff", help="record a reviewer's sign-off of an archived run in the hash chain")
     so.add_argument("archive", help="archive folder")
@@ -181,7 +220,9 @@ def build_parser() -> argparse.ArgumentParser:
 @contextlib.contextmanager
 def _server_if_needed(args: argparse.Namespace):
     """Start a local Prefect server when asked, or when Dask is requested without one."""
-    wants = getattr(args, "start_server", False) or (getattr(args, "dask", None) and "PREFECT_API_URL" not in os.environ)
+    wants = getattr(args, "start_server", False) or (
+        getattr(args, "dask", None) and "PREFECT_API_URL" not in os.environ
+    )
     if wants and "PREFECT_API_URL" not in os.environ:
         if getattr(args, "dask", None) and not args.start_server:
             raise SystemExit(
@@ -209,7 +250,10 @@ def _with_runner(flow_fn, dask: str | None):
 
     if dask.startswith("local:"):
         n = int(dask.split(":", 1)[1] or 2)
-        runner = DaskTaskRunner(cluster_class="distributed.LocalCluster", cluster_kwargs={"n_workers": n, "threads_per_worker": 1, "processes": True, "dashboard_address": None})
+        runner = DaskTaskRunner(
+            cluster_class="distributed.LocalCluster",
+            cluster_kwargs={"n_workers": n, "threads_per_worker": 1, "processes": True, "dashboard_address": None},
+        )
     else:
         runner = DaskTaskRunner(address=dask)
     return flow_fn.with_options(task_runner=runner)
@@ -229,7 +273,9 @@ def _print_summary(result: dict, quiet: bool) -> None:
     refits = result.get("refits")
     if refits:
         statuses = ", ".join(f"{r['model_id']} {r['status']}" for r in refits.get("records") or [])
-        print(f"refit run {refits['run_id']} for {len(refits.get('records') or [])} flagged model(s): {statuses}; record {refits['path']}")
+        print(
+            f"refit run {refits['run_id']} for {len(refits.get('records') or [])} flagged model(s): {statuses}; record {refits['path']}"
+        )
 
 
 def _cmd_registry(args) -> int:
@@ -351,8 +397,13 @@ def _cmd_run(args) -> int:
         flow_fn = _with_runner(_timeout(audit_flow, reg), args.dask)
         try:
             result = flow_fn(
-                registry=args.registry, as_of=args.as_of, archive=args.archive, models=args.models,
-                batch_size=args.batch_size, trigger_refits=args.refit, progress=not args.quiet,
+                registry=args.registry,
+                as_of=args.as_of,
+                archive=args.archive,
+                models=args.models,
+                batch_size=args.batch_size,
+                trigger_refits=args.refit,
+                progress=not args.quiet,
             )
         except RegistryError as exc:
             print(str(exc), file=sys.stderr)
@@ -376,8 +427,13 @@ def _cmd_refit(args) -> int:
 
         try:
             result = _with_runner(_timeout(refit_flow, reg), args.dask)(
-                registry=args.registry, model_ids=args.models, archive=args.archive, as_of=args.as_of,
-                approve=args.approve, approved_by=args.by, registry_sha256=args.registry_sha256,
+                registry=args.registry,
+                model_ids=args.models,
+                archive=args.archive,
+                as_of=args.as_of,
+                approve=args.approve,
+                approved_by=args.by,
+                registry_sha256=args.registry_sha256,
             )
         except (RegistryError, RegistryChangedError) as exc:
             print(str(exc), file=sys.stderr)
@@ -403,7 +459,9 @@ def _cmd_backfill(args) -> int:
     with _server_if_needed(args):
         from .backfill import backfill_flow
 
-        results = _with_runner(_timeout(backfill_flow, reg, dates), args.dask)(registry=args.registry, start=args.start, end=args.end, every_days=args.every, archive=args.archive)
+        results = _with_runner(_timeout(backfill_flow, reg, dates), args.dask)(
+            registry=args.registry, start=args.start, end=args.end, every_days=args.every, archive=args.archive
+        )
     for r in results:
         _print_summary(r, True)
     return EXIT_OK
@@ -424,7 +482,12 @@ def _cmd_serve(args) -> int:
     with _server_if_needed(args):
         from .deploy import serve_all
 
-        serve_all(registry=str(pathlib.Path(args.registry).resolve()), archive=args.archive, cron=args.cron, timezone=args.timezone)
+        serve_all(
+            registry=str(pathlib.Path(args.registry).resolve()),
+            archive=args.archive,
+            cron=args.cron,
+            timezone=args.timezone,
+        )
     return EXIT_OK
 
 
@@ -472,7 +535,12 @@ def _cmd_demo(args) -> int:
     with _server_if_needed(args):
         from .demo import run_demo
 
-        result = run_demo(args.out, fresh=args.fresh, weeks=args.weeks, progress=lambda line: print(f"fitaudit demo: {line}", file=sys.stderr, flush=True))
+        result = run_demo(
+            args.out,
+            fresh=args.fresh,
+            weeks=args.weeks,
+            progress=lambda line: print(f"fitaudit demo: {line}", file=sys.stderr, flush=True),
+        )
     _print_summary(result, False)
     print(f"verify the archive with: fitaudit verify {result['archive']}")
     return EXIT_OK
@@ -563,7 +631,11 @@ def _quiet_prefect_tracebacks() -> None:
         exc = record.exc_info[1] if record.exc_info else None
         if exc is not None:
             return not isinstance(exc, kinds)
-        failed = re.search(r"encountered an exception:? (\w+)", record.getMessage()) if record.levelno >= logging.ERROR else None
+        failed = (
+            re.search(r"encountered an exception:? (\w+)", record.getMessage())
+            if record.levelno >= logging.ERROR
+            else None
+        )
         return failed is None or failed.group(1) not in set().union(*(names(k) for k in kinds))
 
     for name in ("prefect.flow_runs", "prefect.task_runs", "prefect.flow_engine", "prefect.task_engine"):
@@ -586,7 +658,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     if missing:
         print(missing, file=sys.stderr)
         return EXIT_USAGE
-    previous = signal.signal(signal.SIGTERM, _on_sigterm) if threading.current_thread() is threading.main_thread() else None
+    previous = (
+        signal.signal(signal.SIGTERM, _on_sigterm) if threading.current_thread() is threading.main_thread() else None
+    )
     _quiet_prefect_tracebacks()
     try:
         return COMMANDS[args.command](args)

@@ -58,7 +58,13 @@ def refit_trigger(registry: str, archive: str | None) -> DeploymentEventTrigger:
     )
 
 
-def deployments(registry: str, archive: str | None = None, cron: str = "0 6 * * 1", timezone: str = "UTC", interval: float | None = None) -> list:
+def deployments(
+    registry: str,
+    archive: str | None = None,
+    cron: str = "0 6 * * 1",
+    timezone: str = "UTC",
+    interval: float | None = None,
+) -> list:
     """The audit deployment (cron, or ``interval`` seconds for tests) and the refit deployment.
 
     The registry is read once here: its policy's ``flow_timeout_minutes`` becomes both flows'
@@ -67,8 +73,12 @@ def deployments(registry: str, archive: str | None = None, cron: str = "0 6 * * 
     timeout = 60.0 * load_registry(registry).policy.flow_timeout_minutes
     params = {"registry": registry, "archive": archive}
     schedule = {"interval": interval} if interval else {"schedules": [Cron(cron, timezone=timezone)]}
-    weekly = audit_flow.with_options(timeout_seconds=timeout).to_deployment(name="weekly", parameters=params, tags=["fitaudit"], **schedule)
-    refit = refit_flow.with_options(timeout_seconds=timeout).to_deployment(name="refit", triggers=[refit_trigger(registry, archive)], tags=["fitaudit"])
+    weekly = audit_flow.with_options(timeout_seconds=timeout).to_deployment(
+        name="weekly", parameters=params, tags=["fitaudit"], **schedule
+    )
+    refit = refit_flow.with_options(timeout_seconds=timeout).to_deployment(
+        name="refit", triggers=[refit_trigger(registry, archive)], tags=["fitaudit"]
+    )
     return [weekly, refit]
 
 
@@ -96,7 +106,13 @@ def install_owner_notifications(registry: str) -> list[str]:
     return installed
 
 
-def serve_all(registry: str, archive: str | None = None, cron: str = "0 6 * * 1", timezone: str = "UTC", interval: float | None = None) -> None:
+def serve_all(
+    registry: str,
+    archive: str | None = None,
+    cron: str = "0 6 * * 1",
+    timezone: str = "UTC",
+    interval: float | None = None,
+) -> None:
     """Install the owners' notification automations, then serve both deployments until interrupted."""
     for name in install_owner_notifications(registry):
         print(f"fitaudit serve: automation {name!r} installed")

@@ -25,7 +25,10 @@ def record_task(archive: str, run_id: str, as_of: dt.date, records: list[dict], 
     """Archive the refit records as a run folder (``refit.json``), linked into the chain."""
     writer = open_run(archive, run_id, as_of.year, as_of=as_of)
     with writer:
-        writer.write_json("refit.json", {"schema": "fitaudit.refit", "schema_version": 1, "as_of": as_of.isoformat(), "records": records})
+        writer.write_json(
+            "refit.json",
+            {"schema": "fitaudit.refit", "schema_version": 1, "as_of": as_of.isoformat(), "records": records},
+        )
         published = writer.finish(manifest)
     return str(pathlib.Path(archive) / published.path)
 
@@ -33,15 +36,24 @@ def record_task(archive: str, run_id: str, as_of: dt.date, records: list[dict], 
 @task(name="refit-events", cache_policy=NO_CACHE, persist_result=False)
 def refit_events_task(records: list[dict], run_id: str) -> None:
     """``fitaudit.model.promoted`` / ``.refit-awaiting-approval`` / ``.respecify-candidates`` events."""
-    names = {"promoted": "promoted", "awaiting approval": "refit-awaiting-approval", "respecify": "respecify-candidates"}
+    names = {
+        "promoted": "promoted",
+        "awaiting approval": "refit-awaiting-approval",
+        "respecify": "respecify-candidates",
+    }
     for rec in records:
         name = names.get(rec.get("status"))
         if name:
             emit_event(
                 event=f"fitaudit.model.{name}",
-                resource={"prefect.resource.id": f"fitaudit.model.{rec['model_id']}", "prefect.resource.name": rec["model_id"]},
+                resource={
+                    "prefect.resource.id": f"fitaudit.model.{rec['model_id']}",
+                    "prefect.resource.name": rec["model_id"],
+                },
                 related=[{"prefect.resource.id": f"fitaudit.refit.{run_id}", "prefect.resource.role": "refit-run"}],
-                payload={k: rec.get(k) for k in ("status", "candidate_version", "promoted_version") if rec.get(k) is not None}
+                payload={
+                    k: rec.get(k) for k in ("status", "candidate_version", "promoted_version") if rec.get(k) is not None
+                }
                 | {"candidates": len(rec.get("candidates") or [])},
             )
 
@@ -105,14 +117,30 @@ def refit_flow(
     try:
         known = {m.id for m in reg.models}
         unknown = [m for m in model_ids if m not in known]
-        staged = stage_inputs_task(reg, as_of, str(work), archive_root=archive, model_ids=[m for m in model_ids if m in known], batch_size=settings.batch_size)
+        staged = stage_inputs_task(
+            reg,
+            as_of,
+            str(work),
+            archive_root=archive,
+            model_ids=[m for m in model_ids if m in known],
+            batch_size=settings.batch_size,
+        )
         operator = operator_identity(settings.operator)
         futures = refit_batch_task.map(
-            [b.path for b in staged.batches], unmapped(reg.policy), unmapped(archive), unmapped(run_id), unmapped(operator),
-            unmapped(approve), unmapped(approved_by), unmapped(CalibrationCache()),
+            [b.path for b in staged.batches],
+            unmapped(reg.policy),
+            unmapped(archive),
+            unmapped(run_id),
+            unmapped(operator),
+            unmapped(approve),
+            unmapped(approved_by),
+            unmapped(CalibrationCache()),
         )
         records = [r for batch in futures.result() for r in batch]
-        records += [{"model_id": m, "status": "error", "reasons": [f"model {m!r} is not an accepted entry of the registry"]} for m in unknown]
+        records += [
+            {"model_id": m, "status": "error", "reasons": [f"model {m!r} is not an accepted entry of the registry"]}
+            for m in unknown
+        ]
         manifest = {
             "kind": "refit",
             "operator": operator,
@@ -126,7 +154,9 @@ def refit_flow(
             "production": staged.production,
             "recovered": recovered,
             "acknowledged_damage": acknowledged,
-            "counts": {s: sum(1 for r in records if r.get("status") == s) for s in sorted({r.get("status") for r in records})},
+            "counts": {
+                s: sum(1 for r in records if r.get("status") == s) for s in sorted({r.get("status") for r in records})
+            },
         }
         path = record_task(archive, run_id, as_of, records, manifest)
     finally:

@@ -31,7 +31,14 @@ import time
 import urllib.request
 from collections.abc import Iterator
 
-__all__ = ["local_server", "free_port", "wait_healthy", "start_embedded_server", "reap_stale_servers", "tracked_servers"]
+__all__ = [
+    "local_server",
+    "free_port",
+    "wait_healthy",
+    "start_embedded_server",
+    "reap_stale_servers",
+    "tracked_servers",
+]
 
 _RECORDS = "fitaudit-servers"
 
@@ -68,7 +75,11 @@ def local_server(port: int | None = None, log_path: str | None = None, timeout: 
     port = port or free_port()
     api_url = f"http://127.0.0.1:{port}/api"
     prefect_bin = shutil.which("prefect", path=os.path.dirname(sys.executable)) or shutil.which("prefect")
-    cmd = [prefect_bin, "server", "start", "--host", "127.0.0.1", "--port", str(port), "--no-ui", "--analytics-off"] if prefect_bin else [sys.executable, "-m", "prefect", "server", "start", "--host", "127.0.0.1", "--port", str(port)]
+    cmd = (
+        [prefect_bin, "server", "start", "--host", "127.0.0.1", "--port", str(port), "--no-ui", "--analytics-off"]
+        if prefect_bin
+        else [sys.executable, "-m", "prefect", "server", "start", "--host", "127.0.0.1", "--port", str(port)]
+    )
     env = dict(os.environ)
     env.pop("PREFECT_API_URL", None)
     env.setdefault("PREFECT_SERVER_ANALYTICS_ENABLED", "false")
@@ -151,8 +162,15 @@ def _track(pid: int, kind: str, port: int | None, group: bool = False) -> pathli
     start = _start_time(pid)
     if start is None:
         return None
-    record = {"pid": pid, "start": start, "group": group, "kind": kind, "port": port,
-              "owner_pid": os.getpid(), "owner_start": _start_time(os.getpid())}
+    record = {
+        "pid": pid,
+        "start": start,
+        "group": group,
+        "kind": kind,
+        "port": port,
+        "owner_pid": os.getpid(),
+        "owner_start": _start_time(os.getpid()),
+    }
     path = _records_dir() / f"{pid}.json"
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
@@ -211,5 +229,7 @@ def reap_stale_servers(grace: float = 5.0) -> list[str]:
             if _start_time(pid) == start:
                 send(pid, signal.SIGKILL)
         path.unlink(missing_ok=True)
-        actions.append(f"stopped a Prefect server left running by an interrupted fitaudit command (pid {pid}, port {record.get('port')})")
+        actions.append(
+            f"stopped a Prefect server left running by an interrupted fitaudit command (pid {pid}, port {record.get('port')})"
+        )
     return actions

@@ -14,7 +14,16 @@ import tempfile
 from collections.abc import Iterable, Iterator
 from typing import Any
 
-__all__ = ["SAFE_ID", "canonical_json", "sha256_bytes", "sha256_file", "write_once", "write_once_chunks", "utc_now", "json_ready"]
+__all__ = [
+    "SAFE_ID",
+    "canonical_json",
+    "sha256_bytes",
+    "sha256_file",
+    "write_once",
+    "write_once_chunks",
+    "utc_now",
+    "json_ready",
+]
 
 #: Model ids, source names, run ids and other path segments usable as file names: a letter or
 #: digit, then up to 127 letters, digits, ``_``, ``.`` or ``-``.  ``\Z`` (not ``$``) so that a

@@ -340,7 +340,7 @@ def _append_bytes(path: pathlib.Path, data: bytes) -> None:
     try:
         view = memoryview(data)
         while view:
-            view = view[os.write(fd, view):]
+            view = view[os.write(fd, view) :]
         os.fsync(fd)
     except OSError as exc:  # a failed write names no file: name the chain
         raise OSError(exc.errno, exc.strerror, str(path)) from exc
@@ -402,7 +402,10 @@ def _load_chain(root: pathlib.Path) -> _Chain:
         if entry["seq"] != line_no:
             bad(line_no, f"has seq {entry['seq']!r} but is line {line_no} (lines dropped, duplicated or reordered)")
         if expected_prev is not None and entry["prev"] != expected_prev:
-            bad(line_no, f"prev does not equal the hash of line {line_no - 1} (a line was dropped, inserted or reordered)")
+            bad(
+                line_no,
+                f"prev does not equal the hash of line {line_no - 1} (a line was dropped, inserted or reordered)",
+            )
         if entry["kind"] not in CHAIN_KINDS or not isinstance(entry["payload"], dict):
             bad(line_no, f"has unknown kind {entry['kind']!r} or a payload that is not an object")
         else:
@@ -429,14 +432,20 @@ class _Acks:
         for p in problems:
             hit = None if p.is_note else self.covers(p)
             if hit:
-                p = ArchiveProblem("acknowledged", p.where, f"{p.message} (damage acknowledged at {_CHAIN} line {hit[0]} by {hit[1]})")
+                p = ArchiveProblem(
+                    "acknowledged", p.where, f"{p.message} (damage acknowledged at {_CHAIN} line {hit[0]} by {hit[1]})"
+                )
             out.append(p)
         return out
 
 
 def _line_of(problem: ArchiveProblem) -> int | None:
     prefix = f"{_CHAIN} line "
-    return int(problem.where[len(prefix):]) if problem.where.startswith(prefix) and problem.where[len(prefix):].isdigit() else None
+    return (
+        int(problem.where[len(prefix) :])
+        if problem.where.startswith(prefix) and problem.where[len(prefix) :].isdigit()
+        else None
+    )
 
 
 def _acknowledgements(chain: _Chain) -> _Acks:
@@ -487,7 +496,9 @@ def _settle_append(root: pathlib.Path) -> str | None:
         intent = _read_json(journal)
         line, offset = intent["line"].encode("utf-8"), int(intent["offset"])
     except (ValueError, KeyError, TypeError, AttributeError) as exc:
-        raise ArchiveError(f"{_JOURNAL}/{_APPEND_JOURNAL} is damaged ({exc}); run `fitaudit verify` and investigate") from exc
+        raise ArchiveError(
+            f"{_JOURNAL}/{_APPEND_JOURNAL} is damaged ({exc}); run `fitaudit verify` and investigate"
+        ) from exc
     chain_path = root / _CHAIN
     data = chain_path.read_bytes() if chain_path.exists() else b""
     tail = data[offset:]
@@ -499,7 +510,7 @@ def _settle_append(root: pathlib.Path) -> str | None:
     seq = json.loads(line)["seq"]
     action = f"confirmed chain entry {seq}"
     if len(tail) < len(line):
-        _append_bytes(chain_path, line[len(tail):])
+        _append_bytes(chain_path, line[len(tail) :])
         action = f"completed interrupted append of chain entry {seq}"
     _remove_journal(root, _APPEND_JOURNAL)
     return action
@@ -576,10 +587,16 @@ def append_chain(archive_root: str | os.PathLike, kind: str, payload: dict) -> d
     """
     if kind not in CHAIN_KINDS:
         raise InputError(f"chain entry kind {kind!r} is unknown; valid kinds are {list(CHAIN_KINDS)}")
-    helper = {"run": "RunWriter.finish()", "purge": "purge_runs()", "signoff": "record_signoff()",
-              "acknowledgement": "acknowledge_damage()"}.get(kind)
+    helper = {
+        "run": "RunWriter.finish()",
+        "purge": "purge_runs()",
+        "signoff": "record_signoff()",
+        "acknowledgement": "acknowledge_damage()",
+    }.get(kind)
     if helper:
-        raise InputError(f"{kind!r} chain entries are appended by {helper}, which checks what they record; call it instead")
+        raise InputError(
+            f"{kind!r} chain entries are appended by {helper}, which checks what they record; call it instead"
+        )
     root = _root(archive_root)
     payload = _payload_json(kind, payload)
     with _archive_lock(root):
@@ -589,7 +606,10 @@ def append_chain(archive_root: str | os.PathLike, kind: str, payload: dict) -> d
         _settle_append(root)
         for _, entry in _intact_chain(root).entries:
             recorded = entry["payload"]
-            if entry["kind"] == "promotion" and (recorded.get("path"), recorded.get("sha256")) == (payload["path"], payload["sha256"]):
+            if entry["kind"] == "promotion" and (recorded.get("path"), recorded.get("sha256")) == (
+                payload["path"],
+                payload["sha256"],
+            ):
                 return entry
         return _append_locked(root, kind, payload)
 
@@ -651,11 +671,18 @@ def _interpret(chain: _Chain) -> tuple[dict[str, _RunRecord], list[ArchiveProble
                 problems.append(ArchiveProblem("chain", where, problem))
             elif payload["run_id"] in runs:
                 first = runs[payload["run_id"]].line
-                problems.append(ArchiveProblem("chain", where, f"records run {payload['run_id']} again (first at line {first})"))
+                problems.append(
+                    ArchiveProblem("chain", where, f"records run {payload['run_id']} again (first at line {first})")
+                )
             else:
                 runs[payload["run_id"]] = _RunRecord(
-                    payload["run_id"], payload["path"], payload["as_of"], payload["manifest_sha256"],
-                    payload.get("report_sha256"), line, entry["time"],
+                    payload["run_id"],
+                    payload["path"],
+                    payload["as_of"],
+                    payload["manifest_sha256"],
+                    payload.get("report_sha256"),
+                    line,
+                    entry["time"],
                 )
         elif entry["kind"] == "purge":
             items = payload.get("runs")
@@ -665,9 +692,15 @@ def _interpret(chain: _Chain) -> tuple[dict[str, _RunRecord], list[ArchiveProble
             for item in items:
                 record = runs.get(item.get("run_id")) if isinstance(item, dict) else None
                 if record is None or record.purged_line is not None:
-                    problems.append(ArchiveProblem("chain", where, f"purges {item!r}, which is not a published, unpurged run"))
+                    problems.append(
+                        ArchiveProblem("chain", where, f"purges {item!r}, which is not a published, unpurged run")
+                    )
                 elif item.get("manifest_sha256") != record.manifest_sha256 or item.get("path") != record.path:
-                    problems.append(ArchiveProblem("chain", where, f"purge of run {record.run_id} does not match line {record.line}"))
+                    problems.append(
+                        ArchiveProblem(
+                            "chain", where, f"purge of run {record.run_id} does not match line {record.line}"
+                        )
+                    )
                 else:
                     record.purged_line = line
         elif entry["kind"] == "signoff":
@@ -686,10 +719,18 @@ def _interpret(chain: _Chain) -> tuple[dict[str, _RunRecord], list[ArchiveProble
                 if problem:
                     problems.append(ArchiveProblem("chain", where, f"acknowledged run: {problem}"))
                 elif item["run_id"] in runs:
-                    problems.append(ArchiveProblem("chain", where, f"acknowledges run {item['run_id']}, which is already recorded"))
+                    problems.append(
+                        ArchiveProblem("chain", where, f"acknowledges run {item['run_id']}, which is already recorded")
+                    )
                 else:
                     runs[item["run_id"]] = _RunRecord(
-                        item["run_id"], item["path"], item["as_of"], item["manifest_sha256"], item.get("report_sha256"), line, entry["time"],
+                        item["run_id"],
+                        item["path"],
+                        item["as_of"],
+                        item["manifest_sha256"],
+                        item.get("report_sha256"),
+                        line,
+                        entry["time"],
                     )
     return runs, problems
 
@@ -727,7 +768,9 @@ def _scan_folder(folder: pathlib.Path) -> tuple[dict[str, pathlib.Path], list[st
     return files, dirs, odd
 
 
-def _check_run_folder(root: pathlib.Path, rel: str, run_id: str, manifest_sha256: str, source: str) -> list[ArchiveProblem]:
+def _check_run_folder(
+    root: pathlib.Path, rel: str, run_id: str, manifest_sha256: str, source: str
+) -> list[ArchiveProblem]:
     """Compare a run folder with its manifest and the manifest with the hash recorded at ``source``."""
     folder = root / rel
     if folder.is_symlink() or not folder.is_dir():
@@ -738,10 +781,13 @@ def _check_run_folder(root: pathlib.Path, rel: str, run_id: str, manifest_sha256
     problems = []
     data = manifest_path.read_bytes()
     if sha256_bytes(data) != manifest_sha256:
-        problems.append(ArchiveProblem(
-            "changed", f"{rel}/{_MANIFEST}",
-            f"content changed: its SHA-256 {sha256_bytes(data)[:12]}... differs from {manifest_sha256[:12]}... recorded at {source}",
-        ))
+        problems.append(
+            ArchiveProblem(
+                "changed",
+                f"{rel}/{_MANIFEST}",
+                f"content changed: its SHA-256 {sha256_bytes(data)[:12]}... differs from {manifest_sha256[:12]}... recorded at {source}",
+            )
+        )
     try:
         manifest = json.loads(data)
         listed = manifest["files"]
@@ -752,18 +798,26 @@ def _check_run_folder(root: pathlib.Path, rel: str, run_id: str, manifest_sha256
     files, dirs, odd = _scan_folder(folder)
     files.pop(_MANIFEST)
     for name in odd:
-        problems.append(ArchiveProblem("added", f"{rel}/{name}", "is not a regular file or folder (link or device added)"))
+        problems.append(
+            ArchiveProblem("added", f"{rel}/{name}", "is not a regular file or folder (link or device added)")
+        )
     for name in sorted(set(listed) - set(files)):
-        problems.append(ArchiveProblem("missing", f"{rel}/{name}", "is listed in manifest.json but missing (file deleted)"))
+        problems.append(
+            ArchiveProblem("missing", f"{rel}/{name}", "is listed in manifest.json but missing (file deleted)")
+        )
     for name in sorted(set(files) - set(listed)):
         problems.append(ArchiveProblem("added", f"{rel}/{name}", "is not listed in manifest.json (file added)"))
     for name in sorted(set(files) & set(listed)):
         digest, size = sha256_file(files[name]), files[name].stat().st_size
         expected = listed[name] if isinstance(listed[name], dict) else {}
         if digest != expected.get("sha256") or size != expected.get("size"):
-            problems.append(ArchiveProblem(
-                "changed", f"{rel}/{name}", f"content changed: SHA-256 {digest[:12]}... ({size} bytes) differs from manifest.json",
-            ))
+            problems.append(
+                ArchiveProblem(
+                    "changed",
+                    f"{rel}/{name}",
+                    f"content changed: SHA-256 {digest[:12]}... ({size} bytes) differs from manifest.json",
+                )
+            )
     needed = {"/".join(name.split("/")[:k]) for name in listed for k in range(1, name.count("/") + 1)}
     for name in sorted(set(dirs) - needed):
         problems.append(ArchiveProblem("added", f"{rel}/{name}", "folder is not part of the run (folder added)"))
@@ -828,10 +882,18 @@ class _Journals:
 
 def _promotion_journal_path(record: object, name: str) -> str | None:
     """The params path of a well-formed promotion journal named ``name``, else None."""
-    if not isinstance(record, dict) or not isinstance(record.get("payload"), dict) or not isinstance(record.get("record"), dict):
+    if (
+        not isinstance(record, dict)
+        or not isinstance(record.get("payload"), dict)
+        or not isinstance(record.get("record"), dict)
+    ):
         return None
     match = _PARAMS_PATH.fullmatch(str(record["payload"].get("path")))
-    if not match or name != f"{_PROMOTION_PREFIX}{match['model']}.json" or not _HEX64.fullmatch(str(record["payload"].get("sha256"))):
+    if (
+        not match
+        or name != f"{_PROMOTION_PREFIX}{match['model']}.json"
+        or not _HEX64.fullmatch(str(record["payload"].get("sha256")))
+    ):
         return None
     return record["payload"]["path"]
 
@@ -852,21 +914,36 @@ def _read_journals(root: pathlib.Path, problems: list[ArchiveProblem]) -> _Journ
         if not isinstance(record, dict):
             record = {}
         offset = record.get("offset")
-        if path.name == _APPEND_JOURNAL and isinstance(record.get("line"), str) and isinstance(offset, int) and offset >= 0:
+        if (
+            path.name == _APPEND_JOURNAL
+            and isinstance(record.get("line"), str)
+            and isinstance(offset, int)
+            and offset >= 0
+        ):
             journals.append = record  # its note comes from _check_chain_tail
         elif path.name == _PURGE_JOURNAL and isinstance(record.get("payload"), dict):
             journals.purge = record
-            problems.append(ArchiveProblem("pending", rel, "a purge was interrupted; recover() finishes or rolls it back"))
+            problems.append(
+                ArchiveProblem("pending", rel, "a purge was interrupted; recover() finishes or rolls it back")
+            )
         elif path.name.startswith(_PROMOTION_PREFIX) and _promotion_journal_path(record, path.name):
             journals.promotions[record["payload"]["path"]] = record
-            problems.append(ArchiveProblem(
-                "pending", rel, f"promotion {record['payload']['path']} was interrupted; recover() completes or rolls it back",
-            ))
+            problems.append(
+                ArchiveProblem(
+                    "pending",
+                    rel,
+                    f"promotion {record['payload']['path']} was interrupted; recover() completes or rolls it back",
+                )
+            )
         elif path.name == f"run-{_run_id_of(record)}.json" and SAFE_NAME.fullmatch(str(record.get("staging"))):
             journals.runs[record["payload"]["path"]] = record
-            problems.append(ArchiveProblem(
-                "pending", rel, f"publication of run {_run_id_of(record)} was interrupted; recover() completes or rolls it back",
-            ))
+            problems.append(
+                ArchiveProblem(
+                    "pending",
+                    rel,
+                    f"publication of run {_run_id_of(record)} was interrupted; recover() completes or rolls it back",
+                )
+            )
         else:
             problems.append(ArchiveProblem("journal", rel, "is not a journal this archive writes (file added)"))
     return journals
@@ -884,7 +961,11 @@ def _check_chain_tail(chain: _Chain, journals: _Journals) -> list[ArchiveProblem
     tail = chain.data[offset:]
     if offset <= len(chain.data) and line.startswith(tail):  # tail is the torn line, empty, or the whole line
         state = "finished; its journal is not yet removed" if tail == line else "was interrupted"
-        return [ArchiveProblem("pending", f"{_JOURNAL}/{_APPEND_JOURNAL}", f"append of a chain entry {state}; recover() settles it")]
+        return [
+            ArchiveProblem(
+                "pending", f"{_JOURNAL}/{_APPEND_JOURNAL}", f"append of a chain entry {state}; recover() settles it"
+            )
+        ]
     message = f"does not match the end of {_CHAIN} (chain changed after an interrupted append)"
     return [ArchiveProblem("journal", f"{_JOURNAL}/{_APPEND_JOURNAL}", message)]
 
@@ -911,7 +992,9 @@ def _check_run_tree(root: pathlib.Path, runs: dict[str, _RunRecord], journals: _
     top = root / _RUNS
     for year_dir in _children(top):
         if year_dir.is_symlink() or not year_dir.is_dir() or not re.fullmatch(r"[0-9]{4}", year_dir.name):
-            problems.append(ArchiveProblem("layout", _rel(root, year_dir), "is not a year folder runs/<YYYY>/ (entry added)"))
+            problems.append(
+                ArchiveProblem("layout", _rel(root, year_dir), "is not a year folder runs/<YYYY>/ (entry added)")
+            )
             continue
         for folder in sorted(year_dir.iterdir()):
             rel = _rel(root, folder)
@@ -919,13 +1002,18 @@ def _check_run_tree(root: pathlib.Path, runs: dict[str, _RunRecord], journals: _
                 continue
             journal = journals.runs.get(rel)
             if journal is None:
-                problems.append(ArchiveProblem(
-                    "unrecorded", rel,
-                    "is not recorded in chain.jsonl and no publication journal covers it (chain line removed, or folder added)",
-                ))
+                problems.append(
+                    ArchiveProblem(
+                        "unrecorded",
+                        rel,
+                        "is not recorded in chain.jsonl and no publication journal covers it (chain line removed, or folder added)",
+                    )
+                )
                 continue
             payload = journal["payload"]
-            problems += _check_run_folder(root, rel, payload["run_id"], payload["manifest_sha256"], "its publication journal")
+            problems += _check_run_folder(
+                root, rel, payload["run_id"], payload["manifest_sha256"], "its publication journal"
+            )
     return problems
 
 
@@ -933,7 +1021,11 @@ def _leftovers(root: pathlib.Path) -> list[ArchiveProblem]:
     notes = []
     for private in (_STAGING, _TRASH):
         for path in _children(root / private):
-            notes.append(ArchiveProblem("leftover", _rel(root, path), "private working folder; recover() removes it when abandoned"))
+            notes.append(
+                ArchiveProblem(
+                    "leftover", _rel(root, path), "private working folder; recover() removes it when abandoned"
+                )
+            )
     return notes
 
 
@@ -1015,10 +1107,13 @@ def _verify_locked(root: pathlib.Path, head: tuple[str, int | None] | None = Non
         found = [line for line, entry in chain.entries if entry["hash"] == digest]
         if not found or (seq is not None and seq not in found):
             where = "" if seq is None else f" at seq {seq}"
-            problems.append(ArchiveProblem(
-                "chain", _CHAIN,
-                f"does not contain the expected head {digest[:12]}...{where} (lines removed from its end, or the chain rewritten)",
-            ))
+            problems.append(
+                ArchiveProblem(
+                    "chain",
+                    _CHAIN,
+                    f"does not contain the expected head {digest[:12]}...{where} (lines removed from its end, or the chain rewritten)",
+                )
+            )
     return acks.mark(problems)
 
 
@@ -1043,7 +1138,9 @@ def _recorded_promotions(chain: _Chain, acks: _Acks) -> dict[str, tuple[str, int
     return out
 
 
-def _check_promotion_records(root: pathlib.Path, recorded: dict[str, tuple[str, int]], journals: _Journals) -> list[ArchiveProblem]:
+def _check_promotion_records(
+    root: pathlib.Path, recorded: dict[str, tuple[str, int]], journals: _Journals
+) -> list[ArchiveProblem]:
     """Every ``promoted`` version must be recorded in the chain (or be a pending promotion)."""
     problems = []
     for path in sorted((root / _PARAMS).glob("*/*.json")):
@@ -1059,18 +1156,25 @@ def _check_promotion_records(root: pathlib.Path, recorded: dict[str, tuple[str, 
         pending = journals.promotions.get(rel)
         if pending is not None:
             if data.get("sha256") != pending["payload"]["sha256"]:
-                message = "differs from the version its interrupted promotion journal records (file changed after a crash)"
+                message = (
+                    "differs from the version its interrupted promotion journal records (file changed after a crash)"
+                )
                 problems.append(ArchiveProblem("params", rel, message))
         elif rel not in recorded:
-            problems.append(ArchiveProblem(
-                "params", rel,
-                "is a promoted parameter version that no promotion entry in chain.jsonl records (written by hand or "
-                "outside `fitaudit promote`); the production-version lookup refuses it",
-            ))
+            problems.append(
+                ArchiveProblem(
+                    "params",
+                    rel,
+                    "is a promoted parameter version that no promotion entry in chain.jsonl records (written by hand or "
+                    "outside `fitaudit promote`); the production-version lookup refuses it",
+                )
+            )
     return problems
 
 
-def _production_locked(root: pathlib.Path, recorded: dict[str, tuple[str, int]], pending: set[str], model_id: str) -> tuple[ParameterVersion | None, str | None]:
+def _production_locked(
+    root: pathlib.Path, recorded: dict[str, tuple[str, int]], pending: set[str], model_id: str
+) -> tuple[ParameterVersion | None, str | None]:
     """(production version, None) or (None, why it cannot be used); the caller holds a lock."""
     try:
         versions = list_versions(root, model_id)
@@ -1082,20 +1186,29 @@ def _production_locked(root: pathlib.Path, recorded: dict[str, tuple[str, int]],
             continue
         record = recorded.get(path)
         if record is None:
-            why = ("its promotion was interrupted (the next run's recovery settles it)" if path in pending
-                   else "no promotion entry in chain.jsonl records it (written by hand or outside `fitaudit promote`)")
-            return None, (f"model {model_id!r}: {path} is a promoted parameter version, but {why}; it is not used as the "
-                          "production version. Run `fitaudit verify` on the archive")
+            why = (
+                "its promotion was interrupted (the next run's recovery settles it)"
+                if path in pending
+                else "no promotion entry in chain.jsonl records it (written by hand or outside `fitaudit promote`)"
+            )
+            return None, (
+                f"model {model_id!r}: {path} is a promoted parameter version, but {why}; it is not used as the "
+                "production version. Run `fitaudit verify` on the archive"
+            )
         if record[0] != version.sha256:
-            return None, (f"model {model_id!r}: {path} differs from the promotion recorded at {_CHAIN} line {record[1]} "
-                          f"(SHA-256 {version.sha256[:12]}..., recorded {record[0][:12]}...); restore it from a backup")
+            return None, (
+                f"model {model_id!r}: {path} differs from the promotion recorded at {_CHAIN} line {record[1]} "
+                f"(SHA-256 {version.sha256[:12]}..., recorded {record[0][:12]}...); restore it from a backup"
+            )
     mine = [(path, record) for path, record in recorded.items() if path.startswith(f"{_PARAMS}/{model_id}/")]
     if not mine:
         return None, None
     path, (_digest, line) = mine[-1]
     if path not in by_path:
-        return None, (f"model {model_id!r}: {path}, the production version recorded at {_CHAIN} line {line}, is missing; "
-                      "restore it from a backup, or promote a version again (`fitaudit promote`)")
+        return None, (
+            f"model {model_id!r}: {path}, the production version recorded at {_CHAIN} line {line}, is missing; "
+            "restore it from a backup, or promote a version again (`fitaudit promote`)"
+        )
     return by_path[path], None
 
 
@@ -1204,8 +1317,14 @@ def record_promotion(
         def claim(record: ParameterVersion) -> None:
             if claimed:
                 _remove_journal(root, journal)
-            claimed["payload"] = {**extra, "path": f"{_PARAMS}/{model_id}/{record.version}.json", "sha256": record.sha256,
-                                  "model_id": model_id, "promotes": version, "approved_by": approved_by}
+            claimed["payload"] = {
+                **extra,
+                "path": f"{_PARAMS}/{model_id}/{record.version}.json",
+                "sha256": record.sha256,
+                "model_id": model_id,
+                "promotes": version,
+                "approved_by": approved_by,
+            }
             _write_journal(root, journal, {"payload": claimed["payload"], "record": record.to_dict()})
             _step("promotion-journal-written")
 
@@ -1225,16 +1344,22 @@ def _recover_promotion(root: pathlib.Path, journal_path: pathlib.Path) -> str:
         record = None
     path = _promotion_journal_path(record, journal_path.name)
     if path is None:
-        raise ArchiveError(f"{_rel(root, journal_path)} is not a journal this archive writes; run `fitaudit verify` and investigate")
+        raise ArchiveError(
+            f"{_rel(root, journal_path)} is not a journal this archive writes; run `fitaudit verify` and investigate"
+        )
     payload, target = record["payload"], root / path
     chain = _intact_chain(root)
-    done = any(e["kind"] == "promotion" and (e["payload"].get("path"), e["payload"].get("sha256")) == (path, payload["sha256"])
-               for _, e in chain.entries)
+    done = any(
+        e["kind"] == "promotion" and (e["payload"].get("path"), e["payload"].get("sha256")) == (path, payload["sha256"])
+        for _, e in chain.entries
+    )
     if done:
         action = f"promotion {path}: had finished; removed its journal"
     elif target.exists():
         if target.read_bytes() != canonical_json(record["record"], indent=2):
-            raise ArchiveError(f"cannot complete the interrupted promotion {path}: the file differs from its journal; investigate before recovering")
+            raise ArchiveError(
+                f"cannot complete the interrupted promotion {path}: the file differs from its journal; investigate before recovering"
+            )
         _append_locked(root, "promotion", {**payload, "recovered": True})
         action = f"promotion {path}: completed interrupted promotion (appended its chain entry)"
     else:
@@ -1254,7 +1379,9 @@ class RunWriter:
     (or with an exception) discards the staging folder.  Files are written once and never replaced.
     """
 
-    def __init__(self, root: pathlib.Path, run_id: str, year: int, as_of: _dt.date, staging: pathlib.Path, lock_fd: int):
+    def __init__(
+        self, root: pathlib.Path, run_id: str, year: int, as_of: _dt.date, staging: pathlib.Path, lock_fd: int
+    ):
         self.run_id = run_id
         self.as_of = as_of
         self.path = root / _RUNS / f"{year:04d}" / run_id
@@ -1369,8 +1496,13 @@ class RunWriter:
         for key, value in (("run_id", self.run_id), ("as_of", self.as_of.isoformat())):
             if key in manifest and manifest[key] != value:
                 raise InputError(f"manifest {key} {manifest[key]!r} differs from the run's {value!r}")
-        full = {**manifest, "run_id": self.run_id, "as_of": self.as_of.isoformat(),
-                "schema_version": MANIFEST_SCHEMA_VERSION, "files": dict(sorted(self._files.items()))}
+        full = {
+            **manifest,
+            "run_id": self.run_id,
+            "as_of": self.as_of.isoformat(),
+            "schema_version": MANIFEST_SCHEMA_VERSION,
+            "files": dict(sorted(self._files.items())),
+        }
         try:
             data = canonical_json(full, indent=2)
         except (TypeError, ValueError) as exc:
@@ -1500,7 +1632,9 @@ def open_work_folder(archive_root: str | os.PathLike, run_id: str) -> WorkFolder
         try:
             folder.mkdir()
         except FileExistsError:
-            raise ArchiveError(f"run {run_id} already has a work folder {_rel(root, folder)}; start the run with a new id (new_run_id())") from None
+            raise ArchiveError(
+                f"run {run_id} already has a work folder {_rel(root, folder)}; start the run with a new id (new_run_id())"
+            ) from None
         fd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     return WorkFolder(folder, fd)
@@ -1516,14 +1650,22 @@ def _recover_run(root: pathlib.Path, journal_path: pathlib.Path, runs: dict[str,
     except ValueError:
         record = {}
     run_id = _run_id_of(record) if isinstance(record, dict) else None
-    if run_id is None or journal_path.name != f"run-{run_id}.json" or not SAFE_NAME.fullmatch(str(record.get("staging"))):
-        raise ArchiveError(f"{_rel(root, journal_path)} is not a journal this archive writes; run `fitaudit verify` and investigate")
+    if (
+        run_id is None
+        or journal_path.name != f"run-{run_id}.json"
+        or not SAFE_NAME.fullmatch(str(record.get("staging")))
+    ):
+        raise ArchiveError(
+            f"{_rel(root, journal_path)} is not a journal this archive writes; run `fitaudit verify` and investigate"
+        )
     payload, target = record["payload"], root / record["payload"]["path"]
     staging = root / _STAGING / record["staging"]
     if run_id in runs:
         action = f"run {run_id}: publication had finished; removed its journal"
     elif target.exists():
-        problems = _check_run_folder(root, payload["path"], run_id, payload["manifest_sha256"], "its publication journal")
+        problems = _check_run_folder(
+            root, payload["path"], run_id, payload["manifest_sha256"], "its publication journal"
+        )
         if problems:
             raise ArchiveError(
                 f"cannot complete the interrupted publication of run {run_id}: {problems[0]}; investigate before recovering"
@@ -1554,7 +1696,9 @@ def _delete_run_folders(root: pathlib.Path, items: list[dict]) -> list[str]:
 
 def _recover_purge(root: pathlib.Path, chain: _Chain) -> str:
     payload = _read_json(root / _JOURNAL / _PURGE_JOURNAL)["payload"]
-    logged = any(e["kind"] == "purge" and canonical_json(e["payload"]) == canonical_json(payload) for _, e in chain.entries)
+    logged = any(
+        e["kind"] == "purge" and canonical_json(e["payload"]) == canonical_json(payload) for _, e in chain.entries
+    )
     if logged:
         removed = _delete_run_folders(root, payload["runs"])
         action = f"completed interrupted purge (removed {len(removed)} remaining run folders)"
@@ -1661,14 +1805,27 @@ def list_runs(archive_root: str | os.PathLike) -> list[dict]:
             if record.purged_line is None:
                 data = (root / record.path / _MANIFEST).read_bytes()
                 if sha256_bytes(data) != record.manifest_sha256:
-                    raise ArchiveError(f"{record.path}/{_MANIFEST} differs from {_CHAIN} line {record.line}; run `fitaudit verify`")
+                    raise ArchiveError(
+                        f"{record.path}/{_MANIFEST} differs from {_CHAIN} line {record.line}; run `fitaudit verify`"
+                    )
                 counts = json.loads(data).get("counts")
-            listing.append({
-                "run_id": record.run_id, "path": record.path, "as_of": record.as_of, "time": record.time,
-                "seq": record.line, "manifest_sha256": record.manifest_sha256, "report_sha256": record.report_sha256,
-                "counts": counts, "purged": record.purged_line is not None,
-                "signoffs": [{k: s.get(k) for k in ("name", "role", "time", "note", "report_sha256")} for s in record.signoffs],
-            })
+            listing.append(
+                {
+                    "run_id": record.run_id,
+                    "path": record.path,
+                    "as_of": record.as_of,
+                    "time": record.time,
+                    "seq": record.line,
+                    "manifest_sha256": record.manifest_sha256,
+                    "report_sha256": record.report_sha256,
+                    "counts": counts,
+                    "purged": record.purged_line is not None,
+                    "signoffs": [
+                        {k: s.get(k) for k in ("name", "role", "time", "note", "report_sha256")}
+                        for s in record.signoffs
+                    ],
+                }
+            )
     return listing
 
 
@@ -1700,8 +1857,16 @@ def record_signoff(archive_root: str | os.PathLike, run_id: str, *, name: str, r
         files = _read_json(root / record.path / _MANIFEST)["files"]
         if _REPORT not in files:
             raise ArchiveError(f"run {run_id} has no {_REPORT} to sign")
-        payload = {"run_id": run_id, "path": record.path, "report": _REPORT, "report_sha256": files[_REPORT]["sha256"],
-                   "manifest_sha256": record.manifest_sha256, "name": name, "role": role, "note": note}
+        payload = {
+            "run_id": run_id,
+            "path": record.path,
+            "report": _REPORT,
+            "report_sha256": files[_REPORT]["sha256"],
+            "manifest_sha256": record.manifest_sha256,
+            "name": name,
+            "role": role,
+            "note": note,
+        }
         return _append_locked(root, "signoff", payload)
 
 
@@ -1736,7 +1901,9 @@ def purge_runs(archive_root: str | os.PathLike, *, before: _dt.date, reason: str
         if not victims:
             return None
         for record in victims:
-            problems = _check_run_folder(root, record.path, record.run_id, record.manifest_sha256, f"{_CHAIN} line {record.line}")
+            problems = _check_run_folder(
+                root, record.path, record.run_id, record.manifest_sha256, f"{_CHAIN} line {record.line}"
+            )
             if problems:
                 raise ArchiveError(
                     f"run {record.run_id} fails verification ({problems[0]}); purging it would destroy the evidence, "
@@ -1854,8 +2021,13 @@ def _adoptable_run(root: pathlib.Path, rel: str) -> dict | None:
     try:
         manifest = json.loads(data)
         files = manifest["files"]
-        payload = {"run_id": manifest["run_id"], "path": rel, "as_of": manifest["as_of"], "manifest_sha256": sha256_bytes(data),
-                   "report_sha256": files.get(_REPORT, {}).get("sha256")}
+        payload = {
+            "run_id": manifest["run_id"],
+            "path": rel,
+            "as_of": manifest["as_of"],
+            "manifest_sha256": sha256_bytes(data),
+            "report_sha256": files.get(_REPORT, {}).get("sha256"),
+        }
     except (ValueError, KeyError, TypeError, AttributeError):
         return None
     return payload if payload["run_id"] == match["run_id"] and _run_payload_problem(payload) is None else None
@@ -1914,15 +2086,26 @@ def acknowledge_damage(archive_root: str | os.PathLike, *, by: str, note: str) -
             path = root / problem.where
             if problem.kind == "journal" and problem.where.startswith(f"{_JOURNAL}/") and path.is_file():
                 data = path.read_bytes()
-                removed.append({"path": problem.where, "sha256": sha256_bytes(data), "size": len(data),
-                                "text": data[:65536].decode("utf-8", "replace"), "message": problem.message})
+                removed.append(
+                    {
+                        "path": problem.where,
+                        "sha256": sha256_bytes(data),
+                        "size": len(data),
+                        "text": data[:65536].decode("utf-8", "replace"),
+                        "message": problem.message,
+                    }
+                )
                 path.unlink()
         if removed:
             _fsync_dir(root / _JOURNAL)
         chain = _load_chain(root)
         terminated = None
         if chain.torn:
-            terminated = {"line": chain.data.count(b"\n") + 1, "size": len(chain.torn), "sha256": sha256_bytes(chain.torn)}
+            terminated = {
+                "line": chain.data.count(b"\n") + 1,
+                "size": len(chain.torn),
+                "sha256": sha256_bytes(chain.torn),
+            }
             _append_bytes(root / _CHAIN, b"\n")
             chain = _load_chain(root)
         own_line = chain.data.count(b"\n") + 1
@@ -1935,9 +2118,15 @@ def acknowledge_damage(archive_root: str | os.PathLike, *, by: str, note: str) -
                 adopted = _adoptable_run(root, problem.where)
                 if adopted is not None:
                     runs.append(adopted)
-                    problems += _check_run_folder(root, problem.where, adopted["run_id"], adopted["manifest_sha256"], source)
+                    problems += _check_run_folder(
+                        root, problem.where, adopted["run_id"], adopted["manifest_sha256"], source
+                    )
                     continue
-            if problem.kind == "params" and _PARAMS_PATH.fullmatch(problem.where) and "no promotion entry" in problem.message:
+            if (
+                problem.kind == "params"
+                and _PARAMS_PATH.fullmatch(problem.where)
+                and "no promotion entry" in problem.message
+            ):
                 digest = _self_hash(root / problem.where)
                 if digest is not None:
                     promotions.append({"path": problem.where, "sha256": digest})
@@ -1945,7 +2134,13 @@ def acknowledge_damage(archive_root: str | os.PathLike, *, by: str, note: str) -
             problems.append(problem)
         if not (problems or runs or promotions or terminated or removed):
             raise ArchiveError(f"`fitaudit verify` finds no problem in {root}; there is no damage to acknowledge")
-        payload = {"by": by, "note": note, "problems": [p.to_dict() for p in problems], "runs": runs, "promotions": promotions}
+        payload = {
+            "by": by,
+            "note": note,
+            "problems": [p.to_dict() for p in problems],
+            "runs": runs,
+            "promotions": promotions,
+        }
         if terminated:
             payload["terminated_line"] = terminated
         if removed:
@@ -1969,14 +2164,23 @@ def history_runs(archive_root: str | os.PathLike, before: _dt.date) -> list[dict
         for record in runs.values():
             if record.purged_line is not None or _dt.date.fromisoformat(record.as_of) >= before:
                 continue
-            item = {"run_id": record.run_id, "path": record.path, "as_of": record.as_of, "seq": record.line, "manifest": None, "problem": None}
+            item = {
+                "run_id": record.run_id,
+                "path": record.path,
+                "as_of": record.as_of,
+                "seq": record.line,
+                "manifest": None,
+                "problem": None,
+            }
             try:
                 data = (root / record.path / _MANIFEST).read_bytes()
             except OSError as exc:
                 item["problem"] = f"{record.path}/{_MANIFEST} cannot be read ({exc.strerror or exc})"
             else:
                 if sha256_bytes(data) != record.manifest_sha256:
-                    item["problem"] = f"{record.path}/{_MANIFEST} differs from its record at {_CHAIN} line {record.line}"
+                    item["problem"] = (
+                        f"{record.path}/{_MANIFEST} differs from its record at {_CHAIN} line {record.line}"
+                    )
                 else:
                     try:
                         item["manifest"] = json.loads(data)

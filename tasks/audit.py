@@ -33,7 +33,32 @@ from .registry import ForecastEntry, Policy, RejectedEntry
 from .results import model_record
 from .workers import TimeLimitExceeded, run_local, time_limit
 
-__all__ = ["Outcome", "audit_input", "audit_inputs", "audit_batch", "audit_batch_spilled", "light_outcome", "restore_outcomes", "spill_path", "finalize", "rejected_outcome", "records", "audit_batch_task", "audit_forecasts_for", "forecast_timing_problems", "wants_candidates", "candidates_for", "candidate_jobs", "candidate_tables", "tables_task", "candidates_for_jobs", "candidates_task", "with_candidates", "calibration_for", "calibration_task"]
+__all__ = [
+    "Outcome",
+    "audit_input",
+    "audit_inputs",
+    "audit_batch",
+    "audit_batch_spilled",
+    "light_outcome",
+    "restore_outcomes",
+    "spill_path",
+    "finalize",
+    "rejected_outcome",
+    "records",
+    "audit_batch_task",
+    "audit_forecasts_for",
+    "forecast_timing_problems",
+    "wants_candidates",
+    "candidates_for",
+    "candidate_jobs",
+    "candidate_tables",
+    "tables_task",
+    "candidates_for_jobs",
+    "candidates_task",
+    "with_candidates",
+    "calibration_for",
+    "calibration_task",
+]
 
 
 @dataclass(frozen=True)
@@ -80,7 +105,11 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
     spec_text = entry.describe() if forecast else _spec_text(entry.spec)
     base = dict(entry=entry.to_dict(), lineage=item.lineage, history=item.history, spec_text=spec_text)
     production = item.production
-    prod_meta = None if production is None else {k: production[k] for k in ("version", "sha256", "created_at") if k in production}
+    prod_meta = (
+        None
+        if production is None
+        else {k: production[k] for k in ("version", "sha256", "created_at") if k in production}
+    )
     errors = [p["message"] for p in item.problems if p["severity"] == "error"]
     if production is not None and production.get("error"):
         errors.append(production["error"])
@@ -105,12 +134,16 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
             "model than usual, can cause this: check the model spec and the series, or raise the limit; "
             "the other models are unaffected."
         )
-        return Outcome(verdict="error", reasons=(msg,), production=prod_meta, timings={"total_s": time.perf_counter() - t0}, **base)
+        return Outcome(
+            verdict="error", reasons=(msg,), production=prod_meta, timings={"total_s": time.perf_counter() - t0}, **base
+        )
     except Exception as exc:  # contain anything (e.g. a user's nonlinear function) to this model
         where = traceback.extract_tb(exc.__traceback__)[-1] if exc.__traceback__ else None
         at = f" (at {where.filename.rsplit('/', 1)[-1]}:{where.lineno})" if where else ""
         msg = f"model {item.model_id!r}: the audit failed with {type(exc).__name__}: {exc}{at}. Check the model spec and the series; the other models are unaffected."
-        return Outcome(verdict="error", reasons=(msg,), production=prod_meta, timings={"total_s": time.perf_counter() - t0}, **base)
+        return Outcome(
+            verdict="error", reasons=(msg,), production=prod_meta, timings={"total_s": time.perf_counter() - t0}, **base
+        )
     return Outcome(
         verdict=result.verdict,
         reasons=result.reasons,
@@ -169,7 +202,9 @@ def forecast_timing_problems(item: ModelInput) -> list[str]:
     label = f"{_forecast_label(item)}, column {column!r}"
     problems = check_forecast_timing(issued, target, label=label)
     if any("issued at or after" in p for p in problems):
-        problems.insert(0, f"model {entry.id!r}: forecasts issued after the observation they predict cannot be audited.")
+        problems.insert(
+            0, f"model {entry.id!r}: forecasts issued after the observation they predict cannot be audited."
+        )
     return problems
 
 
@@ -187,18 +222,27 @@ def audit_forecasts_for(item: ModelInput, settings: AuditSettings, cache: Calibr
         if stated.scale is not None:
             kwargs["scale"] = columns[stated.scale] if isinstance(stated.scale, str) else stated.scale
     return audit_forecasts(
-        item.y, horizon=stated.horizon, period=stated.period, settings=settings, cache=cache,
-        label=_forecast_label(item), **kwargs,
+        item.y,
+        horizon=stated.horizon,
+        period=stated.period,
+        settings=settings,
+        cache=cache,
+        label=_forecast_label(item),
+        **kwargs,
     )
 
 
-def audit_inputs(items: Iterable[ModelInput], policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0) -> list[Outcome]:
+def audit_inputs(
+    items: Iterable[ModelInput], policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0
+) -> list[Outcome]:
     """Audit staged models with one shared calibration cache (``time_limit_s`` per model, see :func:`audit_input`)."""
     cache = cache if cache is not None else CalibrationCache()
     return [audit_input(item, policy, cache, time_limit_s) for item in items]
 
 
-def audit_batch(path: str, policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0) -> list[Outcome]:
+def audit_batch(
+    path: str, policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0
+) -> list[Outcome]:
     """Audit every model of one staged batch file."""
     return audit_inputs(read_batch(path), policy, cache, time_limit_s)
 
@@ -235,10 +279,14 @@ def light_outcome(outcome: Outcome) -> Outcome:
             fitted={},
             production_params=None,
         )
-    return dataclasses.replace(outcome, entry={"id": outcome.entry.get("id")}, result=res, lineage={}, settings={}, spec_text="")
+    return dataclasses.replace(
+        outcome, entry={"id": outcome.entry.get("id")}, result=res, lineage={}, settings={}, spec_text=""
+    )
 
 
-def audit_batch_spilled(path: str, policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0) -> list[Outcome]:
+def audit_batch_spilled(
+    path: str, policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0
+) -> list[Outcome]:
     """:func:`audit_batch`, keeping the full outcomes in :func:`spill_path` and returning them light
     (:func:`light_outcome`): the flow process never holds every model's full result."""
     outcomes = audit_batch(path, policy, cache, time_limit_s)
@@ -259,7 +307,9 @@ def restore_outcomes(final: Sequence[Outcome], spilled: str) -> list[Outcome]:
     """
     full = pickle.loads(pathlib.Path(spilled).read_bytes())
     if [o.model_id for o in full] != [o.model_id for o in final]:
-        raise FitauditError(f"{spilled}: the kept outcomes do not match the batch's models; the run's work folder was changed during the run.")
+        raise FitauditError(
+            f"{spilled}: the kept outcomes do not match the batch's models; the run's work folder was changed during the run."
+        )
     out = []
     for whole, done in zip(full, final):
         res = whole.result
@@ -269,8 +319,14 @@ def restore_outcomes(final: Sequence[Outcome], spilled: str) -> list[Outcome]:
                 for kind in ("production", "refit")
                 if getattr(res, kind) is not None
             }
-            res = dataclasses.replace(res, verdict=done.result.verdict, reasons=done.result.reasons, escalated=done.result.escalated, **checks)
-        out.append(dataclasses.replace(whole, verdict=done.verdict, reasons=done.reasons, result=res, candidates=done.candidates))
+            res = dataclasses.replace(
+                res, verdict=done.result.verdict, reasons=done.result.reasons, escalated=done.result.escalated, **checks
+            )
+        out.append(
+            dataclasses.replace(
+                whole, verdict=done.verdict, reasons=done.reasons, result=res, candidates=done.candidates
+            )
+        )
     return out
 
 
@@ -278,7 +334,9 @@ def rejected_outcome(entry: RejectedEntry) -> Outcome:
     """A registry entry that failed validation: an ``error`` outcome listing its problems."""
     info = {"id": entry.id, "safe_id": entry.safe_id, "owner": entry.owner, "line": entry.line, "spec": {}}
     # the registry by file name, as in the results document: results do not depend on where the registry lives
-    reasons = tuple(f"Registry entry rejected: {dataclasses.replace(p, file=pathlib.PurePath(p.file).name)}" for p in entry.problems)
+    reasons = tuple(
+        f"Registry entry rejected: {dataclasses.replace(p, file=pathlib.PurePath(p.file).name)}" for p in entry.problems
+    )
     return Outcome(entry=info, verdict="error", reasons=reasons, spec_text="(invalid registry entry)")
 
 
@@ -355,7 +413,15 @@ def calibration_for(batch_paths: Sequence[str], policy: Policy) -> CalibrationCa
                 continue
             production = meta.get("production")
             n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
-            entries.append((dict(entry.spec), entry.noise_law(), entry.audit_settings(policy), n_obs, bool(production and not production.get("error"))))
+            entries.append(
+                (
+                    dict(entry.spec),
+                    entry.noise_law(),
+                    entry.audit_settings(policy),
+                    n_obs,
+                    bool(production and not production.get("error")),
+                )
+            )
     cache = prepare_calibration(entries)
     return prepare_forecast_calibration(forecasts, cache) if forecasts else cache
 
@@ -370,7 +436,11 @@ def calibration_task(batch_paths: list[str], policy: Policy) -> CalibrationCache
 
 @task(name="audit-batch", cache_policy=NO_CACHE, persist_result=False)
 def audit_batch_task(
-    path: str, policy: Policy, cache: CalibrationCache | None = None, workers: str | None = None, time_limit_s: float = 0.0
+    path: str,
+    policy: Policy,
+    cache: CalibrationCache | None = None,
+    workers: str | None = None,
+    time_limit_s: float = 0.0,
 ) -> list[Outcome]:
     """Prefect task: audit one staged batch (a file path in, light outcomes out; the full ones
     wait in :func:`spill_path` for :func:`restore_outcomes`).
@@ -384,11 +454,15 @@ def audit_batch_task(
     counts: dict[str, int] = {}
     for o in outcomes:
         counts[o.verdict] = counts.get(o.verdict, 0) + 1
-    get_run_logger().info("batch %s: %d models in %.1f s %s", path.rsplit("/", 1)[-1], len(outcomes), time.perf_counter() - t0, counts)
+    get_run_logger().info(
+        "batch %s: %d models in %.1f s %s", path.rsplit("/", 1)[-1], len(outcomes), time.perf_counter() - t0, counts
+    )
     return outcomes
 
 
-def candidates_for(path: str, model_ids: Sequence[str], policy: Policy, cache: CalibrationCache | None = None) -> dict[str, list[dict]]:
+def candidates_for(
+    path: str, model_ids: Sequence[str], policy: Policy, cache: CalibrationCache | None = None
+) -> dict[str, list[dict]]:
     """Candidate search (:func:`fitaudit.core.candidates.search_candidates`) for models of a batch."""
     from fitaudit.core.candidates import search_candidates
 
@@ -401,8 +475,12 @@ def candidates_for(path: str, model_ids: Sequence[str], policy: Policy, cache: C
         entry = item.entry
         try:
             found = search_candidates(
-                item.y, dict(entry.spec), noise=entry.noise_law(),
-                exog=item.exog or None, settings=entry.audit_settings(policy), cache=cache,
+                item.y,
+                dict(entry.spec),
+                noise=entry.noise_law(),
+                exog=item.exog or None,
+                settings=entry.audit_settings(policy),
+                cache=cache,
             )
             out[item.model_id] = [c.to_dict() for c in found]
         except Exception as exc:  # the search is advice; its failure must not lose the verdict
@@ -448,7 +526,9 @@ def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list
                 n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
                 noise = entry.noise_law()
                 trials = [(spec, noise) for spec in neighbour_specs(dict(entry.spec))]
-                trials += [(dict(entry.spec), {"law": law, "shape": None}) for law in CONTINUOUS_LAWS if law != noise["law"]]
+                trials += [
+                    (dict(entry.spec), {"law": law, "shape": None}) for law in CONTINUOUS_LAWS if law != noise["law"]
+                ]
                 for spec, law in trials:
                     try:
                         model = as_model(spec)
@@ -466,7 +546,9 @@ def tables_task(entries: list, cache: CalibrationCache, workers: str | None = No
     return run_local(workers, prepare_calibration, entries, cache)
 
 
-def candidates_for_jobs(jobs: Sequence[Sequence], policy: Policy, cache: CalibrationCache | None = None) -> dict[str, list[dict]]:
+def candidates_for_jobs(
+    jobs: Sequence[Sequence], policy: Policy, cache: CalibrationCache | None = None
+) -> dict[str, list[dict]]:
     """:func:`candidates_for` over several batches with one cache (see :func:`candidate_jobs`)."""
     cache = cache if cache is not None else CalibrationCache()
     found: dict[str, list[dict]] = {}
@@ -476,7 +558,9 @@ def candidates_for_jobs(jobs: Sequence[Sequence], policy: Policy, cache: Calibra
 
 
 @task(name="search-candidates", cache_policy=NO_CACHE, persist_result=False)
-def candidates_task(jobs: list, policy: Policy, cache: CalibrationCache | None = None, workers: str | None = None) -> dict[str, list[dict]]:
+def candidates_task(
+    jobs: list, policy: Policy, cache: CalibrationCache | None = None, workers: str | None = None
+) -> dict[str, list[dict]]:
     """Prefect task: candidate specifications for one group of ``respecify`` models
     (:func:`candidate_jobs`), in the local worker processes named by ``workers`` when given."""
     return run_local(workers, candidates_for_jobs, jobs, policy, cache)

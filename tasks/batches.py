@@ -37,7 +37,18 @@ from .frequencies import FREQUENCY_DAYS, periods_after
 from .params import ParameterStoreError, production_version
 from .registry import EntryBase, ForecastEntry, ModelEntry, Registry, entry_from_dict
 
-__all__ = ["ModelInput", "BatchRef", "StagedRun", "stage_inputs", "stage_inputs_task", "read_batch", "batch_metadata", "batch_size_for", "ROW_KINDS", "STALE"]
+__all__ = [
+    "ModelInput",
+    "BatchRef",
+    "StagedRun",
+    "stage_inputs",
+    "stage_inputs_task",
+    "read_batch",
+    "batch_metadata",
+    "batch_size_for",
+    "ROW_KINDS",
+    "STALE",
+]
 
 #: Problems about individual rows: re-checked on the model's own window (a flaw before it does not
 #: stop the audit).  Every other problem (a missing or mistyped column, mixed time zones, rows
@@ -53,7 +64,6 @@ STALE = "stale"
 
 #: A forecast entry's stated forecast missing for an observation of the audit window.
 MISSING_FORECAST = "missing-forecast"
-
 
 
 @dataclass(frozen=True)
@@ -96,7 +106,9 @@ class StagedRun:
     batches: tuple
     fingerprints: dict
     source_errors: dict = field(default_factory=dict)
-    production: dict = field(default_factory=dict)  # ProductionSnapshot.to_dict(): the versions staged, for the manifest
+    production: dict = field(
+        default_factory=dict
+    )  # ProductionSnapshot.to_dict(): the versions staged, for the manifest
 
     def to_dict(self) -> dict:
         """JSON-ready view."""
@@ -127,7 +139,9 @@ def _end_of_day(as_of: dt.date) -> np.datetime64:
     return np.datetime64(as_of + dt.timedelta(days=1), "ns") - np.timedelta64(1, "ns")
 
 
-def _production(archive_root: pathlib.Path | None, entry: EntryBase, snapshot: ProductionSnapshot | None = None) -> dict | None:
+def _production(
+    archive_root: pathlib.Path | None, entry: EntryBase, snapshot: ProductionSnapshot | None = None
+) -> dict | None:
     """The production parameter version (from the run's ``snapshot``), or an ``error`` note when it
     cannot be used; None for a forecast entry (fitaudit holds no parameters of it)."""
     if archive_root is None or isinstance(entry, ForecastEntry):
@@ -140,7 +154,9 @@ def _production(archive_root: pathlib.Path | None, entry: EntryBase, snapshot: P
         else:
             version = snapshot.versions.get(entry.id)
     except (ParameterStoreError, OSError, ValueError) as exc:
-        return {"error": f"model {entry.id!r}: its parameter store cannot be read ({exc}); run `fitaudit verify` on the archive."}
+        return {
+            "error": f"model {entry.id!r}: its parameter store cannot be read ({exc}); run `fitaudit verify` on the archive."
+        }
     if version is None:
         return None
     out = {
@@ -312,13 +328,23 @@ def stage_inputs(
         source = template.for_as_of(as_of)  # a dated export: the as-of date's folder or file
         models = by_source[source_name]
         # the windows, plus the periods the source may lag behind the as-of date
-        span_days = FREQUENCY_DAYS.get(source.frequency, 31) * (max(m.staged_window for m in models) + 2 + source.staleness_allowed) + 2
+        span_days = (
+            FREQUENCY_DAYS.get(source.frequency, 31)
+            * (max(m.staged_window for m in models) + 2 + source.staleness_allowed)
+            + 2
+        )
         start = end - np.timedelta64(int(math.ceil(span_days * 86400)), "s")
         stated = [m.forecasts.columns() for m in models if isinstance(m, ForecastEntry)]
-        columns = sorted({m.value for m in models} | {x for m in models for x in m.exogenous} | {c for cols in stated for c in cols.values()})
+        columns = sorted(
+            {m.value for m in models}
+            | {x for m in models for x in m.exogenous}
+            | {c for cols in stated for c in cols.values()}
+        )
         times = sorted({cols["issued"] for cols in stated if "issued" in cols})
         fp = None
-        io_errors = "raise" if os_errors == "raise" else "skip"  # raised: the task retries; after retries: files skipped and named
+        io_errors = (
+            "raise" if os_errors == "raise" else "skip"
+        )  # raised: the task retries; after retries: files skipped and named
         group = size * max(1, series_per_scan // size)  # whole batches per scan
         for chunk_start in range(0, len(models), size):
             chunk = models[chunk_start : chunk_start + size]
@@ -332,18 +358,39 @@ def stage_inputs(
                             fingerprints[source_name]["uri_template"] = template.uri
                     if source_name not in source_errors:
                         wanted = sorted({m.series for m in models[chunk_start : chunk_start + group]})
-                        data = read_series(source, wanted, columns, start=start, end=end, base_dir=registry.base_dir, io_errors=io_errors, times=times)
+                        data = read_series(
+                            source,
+                            wanted,
+                            columns,
+                            start=start,
+                            end=end,
+                            base_dir=registry.base_dir,
+                            io_errors=io_errors,
+                            times=times,
+                        )
                 except ExtractError as exc:
                     source_errors[source_name] = str(exc)
                 except OSError as exc:
                     if os_errors == "raise":
                         raise
-                    source_errors[source_name] = f"reading source {source_name!r} failed after retries ({type(exc).__name__}: {exc}); check that its storage is reachable"
+                    source_errors[source_name] = (
+                        f"reading source {source_name!r} failed after retries ({type(exc).__name__}: {exc}); check that its storage is reachable"
+                    )
                 data = data or {}
             metas, arrays = [], {}
             for i, entry in enumerate(chunk):
-                meta, y, t, exog = _model_input(entry, data.get(entry.series), source_errors.get(source_name), fp, archive, source.frequency, snapshot,
-                                                holidays=source.holidays, end=end, max_staleness=source.staleness_allowed)
+                meta, y, t, exog = _model_input(
+                    entry,
+                    data.get(entry.series),
+                    source_errors.get(source_name),
+                    fp,
+                    archive,
+                    source.frequency,
+                    snapshot,
+                    holidays=source.holidays,
+                    end=end,
+                    max_staleness=source.staleness_allowed,
+                )
                 meta["history"] = [dict(h) for h in histories.get(entry.id, ())]
                 arrays[f"{i}/y"] = y
                 arrays[f"{i}/t"] = t
@@ -361,8 +408,18 @@ def stage_inputs(
     return StagedRun(tuple(batches), fingerprints, source_errors, snapshot.to_dict() if snapshot is not None else {})
 
 
-def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive, frequency: str, snapshot=None,
-                 holidays: tuple = (), end: np.datetime64 | None = None, max_staleness: int | None = None) -> tuple[dict, np.ndarray, np.ndarray, dict]:
+def _model_input(
+    entry: EntryBase,
+    series,
+    source_error: str | None,
+    fp,
+    archive,
+    frequency: str,
+    snapshot=None,
+    holidays: tuple = (),
+    end: np.datetime64 | None = None,
+    max_staleness: int | None = None,
+) -> tuple[dict, np.ndarray, np.ndarray, dict]:
     """Cut one model's fit window and collect its problems.
 
     The reader validated the whole span it loaded; when it found problems, the rows of the model's
@@ -375,7 +432,9 @@ def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive
     problems: list[dict] = []
     production = _production(archive, entry, snapshot)
     if source_error is not None:
-        problems.append({"kind": "unreadable-source", "severity": "error", "message": f"model {entry.id!r}: {source_error}"})
+        problems.append(
+            {"kind": "unreadable-source", "severity": "error", "message": f"model {entry.id!r}: {source_error}"}
+        )
     if source_error is None and end is not None and max_staleness is not None:
         if series is not None and series.time.size:
             last, whose = series.time[-1], f"series {entry.series!r}"
@@ -386,7 +445,13 @@ def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive
             problems.append(stale)
             series = None  # the length and gap checks of the stale span would only repeat it
     if series is None:
-        meta = {"entry": entry.to_dict(), "exog_names": [], "production": production, "problems": problems, "lineage": _lineage(entry, fp, empty_t, 0)}
+        meta = {
+            "entry": entry.to_dict(),
+            "exog_names": [],
+            "production": production,
+            "problems": problems,
+            "lineage": _lineage(entry, fp, empty_t, 0),
+        }
         return meta, np.array([]), empty_t, {}
     stated = entry.forecasts.columns() if isinstance(entry, ForecastEntry) else {}
     columns = [entry.value, *entry.exogenous, *dict.fromkeys(stated.values())]
@@ -396,14 +461,31 @@ def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive
     keep = slice(max(0, n_loaded - entry.staged_window), n_loaded)
     t = time[keep]
     y = np.asarray(series.columns.get(entry.value, np.full(n_loaded, np.nan)), dtype=float)[keep]
-    exog = {name: np.asarray(series.columns.get(name, np.full(n_loaded, np.nan)), dtype=float)[keep] for name in entry.exogenous}
-    forecast_arrays = {name: np.asarray(series.columns.get(name, np.full(n_loaded, np.nan)), dtype=float)[keep] for name in dict.fromkeys(stated.values())}
+    exog = {
+        name: np.asarray(series.columns.get(name, np.full(n_loaded, np.nan)), dtype=float)[keep]
+        for name in entry.exogenous
+    }
+    forecast_arrays = {
+        name: np.asarray(series.columns.get(name, np.full(n_loaded, np.nan)), dtype=float)[keep]
+        for name in dict.fromkeys(stated.values())
+    }
     if found and n_loaded:
-        kept = [p for p in found if p.kind not in ROW_KINDS]  # missing or mistyped columns, time-zone mix, rows without time
+        kept = [
+            p for p in found if p.kind not in ROW_KINDS
+        ]  # missing or mistyped columns, time-zone mix, rows without time
         flagged = {p.column for p in kept if p.column is not None}
         window = {c: v for c, v in {entry.value: y, **exog}.items() if c not in flagged}
-        found = kept + list(series_problems(entry.series, t, window, frequency, source=entry.source, exogenous=tuple(entry.exogenous),
-                                                holidays=holidays))
+        found = kept + list(
+            series_problems(
+                entry.series,
+                t,
+                window,
+                frequency,
+                source=entry.source,
+                exogenous=tuple(entry.exogenous),
+                holidays=holidays,
+            )
+        )
     short = series.length_problem(entry.audit_window if stated else entry.staged_window)
     if short is not None and not any(p.severity == "error" for p in found):
         found.append(short)
@@ -413,7 +495,13 @@ def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive
         flagged = {p.column for p in found if p.column is not None}
         problems += _missing_forecasts(entry, t, forecast_arrays, stated, flagged)
     if n_loaded == 0 and not problems:
-        problems.append({"kind": "no-data", "severity": "insufficient", "message": f"model {entry.id!r}: no observations of series {entry.series!r} in source {entry.source!r} on or before the as-of date."})
+        problems.append(
+            {
+                "kind": "no-data",
+                "severity": "insufficient",
+                "message": f"model {entry.id!r}: no observations of series {entry.series!r} in source {entry.source!r} on or before the as-of date.",
+            }
+        )
     meta = {
         "entry": entry.to_dict(),
         "exog_names": list(entry.exogenous),
@@ -427,7 +515,9 @@ def _model_input(entry: EntryBase, series, source_error: str | None, fp, archive
     return meta, y, t, exog
 
 
-def _stale(entry: EntryBase, last: np.datetime64, whose: str, end: np.datetime64, frequency: str, holidays: tuple, allowed: int) -> dict | None:
+def _stale(
+    entry: EntryBase, last: np.datetime64, whose: str, end: np.datetime64, frequency: str, holidays: tuple, allowed: int
+) -> dict | None:
     """The ``stale`` problem of a last observation more than ``allowed`` periods before ``end``."""
     late = periods_after(frequency, last, end, holidays)
     if late <= allowed:
@@ -461,18 +551,19 @@ def _missing_forecasts(entry: ForecastEntry, t: np.ndarray, arrays: dict, stated
         bad = np.flatnonzero(~np.isfinite(arrays[column][-w:]))
         if bad.size:
             first = str(np.datetime_as_string(t[-w:][bad[0]], unit="s"))
-            out.append({
-                "kind": MISSING_FORECAST,
-                "severity": "error",
-                "message": (
-                    f"model {entry.id!r}: source {entry.source!r}, series {entry.series!r}: column {column!r} (the "
-                    f"{what}) has no forecast for {bad.size} of the {w} observations of the audit window, first "
-                    f"{first}; every audited observation needs the forecast issued before it. Fix: fill the forecast "
-                    "store for those times, or shorten the audit window to the stretch that has forecasts."
-                ),
-            })
+            out.append(
+                {
+                    "kind": MISSING_FORECAST,
+                    "severity": "error",
+                    "message": (
+                        f"model {entry.id!r}: source {entry.source!r}, series {entry.series!r}: column {column!r} (the "
+                        f"{what}) has no forecast for {bad.size} of the {w} observations of the audit window, first "
+                        f"{first}; every audited observation needs the forecast issued before it. Fix: fill the forecast "
+                        "store for those times, or shorten the audit window to the stretch that has forecasts."
+                    ),
+                }
+            )
     return out
-
 
 
 def _retry_transient(task, task_run, state) -> bool:
@@ -486,7 +577,14 @@ def _retry_transient(task, task_run, state) -> bool:
     return False
 
 
-@task(name="stage-extracts", retries=2, retry_delay_seconds=3, retry_condition_fn=_retry_transient, cache_policy=NO_CACHE, persist_result=False)
+@task(
+    name="stage-extracts",
+    retries=2,
+    retry_delay_seconds=3,
+    retry_condition_fn=_retry_transient,
+    cache_policy=NO_CACHE,
+    persist_result=False,
+)
 def stage_inputs_task(registry: Registry, as_of: dt.date, staging_dir: str, **kwargs) -> StagedRun:
     """Prefect task: one scan per source, batch files out (retried for transient I/O errors)."""
     return stage_inputs(registry, as_of, staging_dir, **kwargs)

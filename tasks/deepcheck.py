@@ -59,7 +59,9 @@ def deep_check(path: str | os.PathLike, as_of: dt.date | None = None, sample: in
     for name in sorted(reg.sources):
         source = reg.sources[name]
         models = sorted((m for m in reg.models if m.source == name), key=lambda m: m.id)
-        problems += _source_problems(file, reg.base_dir, source.for_as_of(as_of), source.line, models, index, as_of, sample)
+        problems += _source_problems(
+            file, reg.base_dir, source.for_as_of(as_of), source.line, models, index, as_of, sample
+        )
     for m in reg.models:
         function = (m.spec or {}).get("function") if not isinstance(m, ForecastEntry) else None
         if function and ":" in function:  # a user function ("module:attribute"); "setar" is built in
@@ -70,16 +72,32 @@ def deep_check(path: str | os.PathLike, as_of: dt.date | None = None, sample: in
 def _source_problems(file, base_dir, source, line, models, index, as_of, sample) -> list[RegistryProblem]:
     where = f"sources.{source.name}"
     keys = list(dict.fromkeys(m.series for m in models))[:sample] or ["__no_model__"]
-    columns = list(dict.fromkeys([source.value, *source.exogenous, *source.forecasts,
-                                  *(m.value for m in models), *(x for m in models for x in m.exogenous)]))
+    columns = list(
+        dict.fromkeys(
+            [
+                source.value,
+                *source.exogenous,
+                *source.forecasts,
+                *(m.value for m in models),
+                *(x for m in models for x in m.exogenous),
+            ]
+        )
+    )
     end = np.datetime64(as_of + dt.timedelta(days=1), "ns") - np.timedelta64(1, "ns")
     try:
         data = read_series(source, keys, columns, end=end, base_dir=base_dir)
     except ExtractError as exc:
         return [RegistryProblem(file, line, f"{where}.uri", str(exc))]
     except OSError as exc:
-        return [RegistryProblem(file, line, f"{where}.uri", f"source {source.name!r}: reading {source.uri!r} failed "
-                                f"({type(exc).__name__}: {exc}); check that its storage is reachable")]
+        return [
+            RegistryProblem(
+                file,
+                line,
+                f"{where}.uri",
+                f"source {source.name!r}: reading {source.uri!r} failed "
+                f"({type(exc).__name__}: {exc}); check that its storage is reachable",
+            )
+        ]
     out = []
     by_series = {m.series: m for m in models}
     seen = set()
@@ -92,13 +110,19 @@ def _source_problems(file, base_dir, source, line, models, index, as_of, sample)
                 out.append(RegistryProblem(file, model.line, f"models[{index.get(model.line)}].series", p.message))
                 continue
             field = (
-                f"{where}.frequency" if p.kind in _CALENDAR_KINDS
-                else f"{where}.value" if p.column == source.value
-                else f"{where}.exogenous" if p.column in source.exogenous
-                else f"{where}.forecasts" if p.column in source.forecasts
+                f"{where}.frequency"
+                if p.kind in _CALENDAR_KINDS
+                else f"{where}.value"
+                if p.column == source.value
+                else f"{where}.exogenous"
+                if p.column in source.exogenous
+                else f"{where}.forecasts"
+                if p.column in source.forecasts
                 else where
             )
-            text = f"{p.message} (series {key!r} of the sample read)" if p.kind not in ("missing-column",) else p.message
+            text = (
+                f"{p.message} (series {key!r} of the sample read)" if p.kind not in ("missing-column",) else p.message
+            )
             if (field, p.kind, p.column) in seen and p.kind not in _CALENDAR_KINDS:
                 continue  # one message per column problem, not one per series
             seen.add((field, p.kind, p.column))

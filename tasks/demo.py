@@ -113,7 +113,13 @@ def _district(i: int, days: np.ndarray, temp: np.ndarray, rng: np.random.Generat
         y = y + 1.6 * sigma * ramp * weekly[(days.astype(int) + 3) % 7]
     else:
         spec = dict(SEASONAL)
-        params = {"ar1": 0.45 + 0.2 * rng.random(), "ma1": -0.2, "sma1": -0.55 - 0.2 * rng.random(), "x:temp_c": beta, "sigma2": sigma**2}
+        params = {
+            "ar1": 0.45 + 0.2 * rng.random(),
+            "ma1": -0.2,
+            "sma1": -0.55 - 0.2 * rng.random(),
+            "x:temp_c": beta,
+            "sigma2": sigma**2,
+        }
         innovations = None
         if i in (3, 11, 13):
             df = 5.0 if i != 13 else 2.2
@@ -128,13 +134,31 @@ def _district(i: int, days: np.ndarray, temp: np.ndarray, rng: np.random.Generat
 def _station(j: int, n: int, rng: np.random.Generator) -> tuple[np.ndarray, dict, dict]:
     spec = {"family": "smoothing", "trend": "add", "damped": True, "seasonal": "add", "period": 7}
     season = np.array([0.5, 0.4, 0.3, 0.2, 0.1, -0.7, -0.8]) * (1 + rng.random())
-    params = {"alpha": 0.3, "beta": 0.02, "gamma": 0.1, "phi": 0.9, "l0": 40 + 10 * rng.random(), "b0": 0.01,
-              **{f"s{k}": float(season[k]) for k in range(6)}, "sigma2": 0.5 + 0.3 * rng.random()}
+    params = {
+        "alpha": 0.3,
+        "beta": 0.02,
+        "gamma": 0.1,
+        "phi": 0.9,
+        "l0": 40 + 10 * rng.random(),
+        "b0": 0.01,
+        **{f"s{k}": float(season[k]) for k in range(6)},
+        "sigma2": 0.5 + 0.3 * rng.random(),
+    }
     return np.round(_model(spec).simulate(params, n, rng), 3), spec, params
 
 
 LEAK_SPEC = {"family": "nonlinear-ar", "function": "setar", "lags": [1, 2], "delay": 1}
-LEAK_PARAMS = {"c1": 1.0, "ar1_1": 0.6, "ar1_2": 0.1, "c2": 3.0, "ar2_1": 0.3, "ar2_2": -0.1, "threshold": 3.5, "delay": 1.0, "sigma2": 0.25}
+LEAK_PARAMS = {
+    "c1": 1.0,
+    "ar1_1": 0.6,
+    "ar1_2": 0.1,
+    "c2": 3.0,
+    "ar2_1": 0.3,
+    "ar2_2": -0.1,
+    "threshold": 3.5,
+    "delay": 1.0,
+    "sigma2": 0.25,
+}
 LEAK_LEVEL = 2.0  # the index is the simulated threshold process shifted by this much
 
 
@@ -177,8 +201,12 @@ def _notebook(days: np.ndarray, leak: np.ndarray) -> dict:
     model's conditional mean); the notebook states a fixed standard deviation of 0.5."""
     keep = days >= OUTSIDE_START
     mean = leak - _model(LEAK_SPEC).errors(leak - LEAK_LEVEL, LEAK_PARAMS)
-    return {"sector": ["leak-01"] * int(keep.sum()), "date": list(days[keep]), "leakage": list(leak[keep]),
-            "fc_mean": list(np.round(mean, 3)[keep])}
+    return {
+        "sector": ["leak-01"] * int(keep.sum()),
+        "date": list(days[keep]),
+        "leakage": list(leak[keep]),
+        "fc_mean": list(np.round(mean, 3)[keep]),
+    }
 
 
 OUTSIDE_ENTRIES = """\
@@ -288,7 +316,11 @@ def _registry_text(entries: list[dict]) -> str:
         spec = ", ".join(f"{k}: {_yaml_value(v)}" for k, v in e["spec"].items())
         lines.append(f"    spec: {{{spec}}}\n")
         noise = e["noise"]
-        lines.append(f"    noise: {noise['law']}\n" if len(noise) == 1 else f"    noise: {{{', '.join(f'{k}: {_yaml_value(v)}' for k, v in noise.items())}}}\n")
+        lines.append(
+            f"    noise: {noise['law']}\n"
+            if len(noise) == 1
+            else f"    noise: {{{', '.join(f'{k}: {_yaml_value(v)}' for k, v in noise.items())}}}\n"
+        )
         lines.append(f"    windows: {{fit: {e['fit']}, audit: {e['audit']}}}\n")
         lines.append(f"    last_validated: {e['last_validated']}\n")
     return "".join(lines) + OUTSIDE_ENTRIES
@@ -319,7 +351,12 @@ def write_demo(out: str | pathlib.Path) -> dict:
     (data / "demand").mkdir(parents=True, exist_ok=True)
     entries: list[dict] = []
     fits: dict[str, tuple] = {}
-    owners = {"north": "North zone forecasting (R. Okafor)", "east": "East zone forecasting (L. Brandt)", "south": "South zone forecasting (P. Nair)", "west": "West zone forecasting (S. Iwu)"}
+    owners = {
+        "north": "North zone forecasting (R. Okafor)",
+        "east": "East zone forecasting (L. Brandt)",
+        "south": "South zone forecasting (P. Nair)",
+        "west": "West zone forecasting (S. Iwu)",
+    }
     for z, (zone, ids) in enumerate(ZONES.items()):
         temp = _temperature(days, rng, offset=z - 1.5)
         cols = {"district": [], "date": [], "demand_ml": [], "temp_c": []}
@@ -343,14 +380,31 @@ def write_demo(out: str | pathlib.Path) -> dict:
             cols["demand_ml"] += list(y)
             cols["temp_c"] += list(t_temp)
             fit = 180 if i == 22 else 365
-            entries.append({
-                "id": f"demand-{name}", "owner": owners[zone], "tier": 1 if i % 9 == 1 else 2,
-                "description": f"Daily demand of supply district {name} ({zone} zone), megalitres per day",
-                "source": "demand", "series": name, "exogenous": ["temp_c"], "spec": spec, "noise": noise,
-                "fit": fit, "audit": 56, "last_validated": "2025-11-01",
-            })
+            entries.append(
+                {
+                    "id": f"demand-{name}",
+                    "owner": owners[zone],
+                    "tier": 1 if i % 9 == 1 else 2,
+                    "description": f"Daily demand of supply district {name} ({zone} zone), megalitres per day",
+                    "source": "demand",
+                    "series": name,
+                    "exogenous": ["temp_c"],
+                    "spec": spec,
+                    "noise": noise,
+                    "fit": fit,
+                    "audit": 56,
+                    "last_validated": "2025-11-01",
+                }
+            )
             fits[f"demand-{name}"] = (days, y if i not in (13, 25, 31, 32) else None, {"temp_c": temp})
-        table = pa.table({"district": cols["district"], "date": pa.array(np.array(cols["date"], dtype="datetime64[D]")), "demand_ml": cols["demand_ml"], "temp_c": cols["temp_c"]})
+        table = pa.table(
+            {
+                "district": cols["district"],
+                "date": pa.array(np.array(cols["date"], dtype="datetime64[D]")),
+                "demand_ml": cols["demand_ml"],
+                "temp_c": cols["temp_c"],
+            }
+        )
         pq.write_table(table, data / "demand" / f"zone={zone}.parquet")
     net = {"asset": [], "date": [], "reading": []}
     stations: dict[str, tuple] = {}
@@ -361,8 +415,22 @@ def write_demo(out: str | pathlib.Path) -> dict:
         net["asset"] += [name] * n
         net["date"] += list(days)
         net["reading"] += list(y)
-        entries.append({"id": f"energy-{name}", "owner": "Network operations (K. Mbeki)", "tier": 3, "description": f"Daily pumping energy of station {name}, MWh",
-                        "source": "network", "series": name, "exogenous": [], "spec": spec, "noise": {"law": "normal"}, "fit": 365, "audit": 56, "last_validated": "2025-11-01"})
+        entries.append(
+            {
+                "id": f"energy-{name}",
+                "owner": "Network operations (K. Mbeki)",
+                "tier": 3,
+                "description": f"Daily pumping energy of station {name}, MWh",
+                "source": "network",
+                "series": name,
+                "exogenous": [],
+                "spec": spec,
+                "noise": {"law": "normal"},
+                "fit": 365,
+                "audit": 56,
+                "last_validated": "2025-11-01",
+            }
+        )
         fits[f"energy-{name}"] = (days, y, {})
     leaks = {}
     for k in (1, 2):
@@ -372,17 +440,63 @@ def write_demo(out: str | pathlib.Path) -> dict:
         net["asset"] += [name] * n
         net["date"] += list(days)
         net["reading"] += list(y)
-        entries.append({"id": f"leakage-{name}", "owner": "Network operations (K. Mbeki)", "tier": 2, "description": f"Leakage index of network sector {k}",
-                        "source": "network", "series": name, "exogenous": [], "spec": spec, "noise": {"law": "normal"}, "fit": 365, "audit": 56, "last_validated": "2025-11-01"})
+        entries.append(
+            {
+                "id": f"leakage-{name}",
+                "owner": "Network operations (K. Mbeki)",
+                "tier": 2,
+                "description": f"Leakage index of network sector {k}",
+                "source": "network",
+                "series": name,
+                "exogenous": [],
+                "spec": spec,
+                "noise": {"law": "normal"},
+                "fit": 365,
+                "audit": 56,
+                "last_validated": "2025-11-01",
+            }
+        )
         fits[f"leakage-{name}"] = (days, y, {})
-    pq.write_table(pa.table({"asset": net["asset"], "date": pa.array(np.array(net["date"], dtype="datetime64[D]")), "reading": net["reading"]}), data / "network.parquet")
-    legacy = {"id": "demand-d-40-legacy", "owner": "West zone forecasting (S. Iwu)", "tier": 3, "description": "Retired district kept in the registry by mistake",
-              "source": "demand", "series": "d-40", "exogenous": ["temp_c"], "spec": dict(SEASONAL), "noise": {"law": "gaussian"}, "fit": 365, "audit": 56, "last_validated": "2024-05-01"}
+    pq.write_table(
+        pa.table(
+            {
+                "asset": net["asset"],
+                "date": pa.array(np.array(net["date"], dtype="datetime64[D]")),
+                "reading": net["reading"],
+            }
+        ),
+        data / "network.parquet",
+    )
+    legacy = {
+        "id": "demand-d-40-legacy",
+        "owner": "West zone forecasting (S. Iwu)",
+        "tier": 3,
+        "description": "Retired district kept in the registry by mistake",
+        "source": "demand",
+        "series": "d-40",
+        "exogenous": ["temp_c"],
+        "spec": dict(SEASONAL),
+        "noise": {"law": "gaussian"},
+        "fit": 365,
+        "audit": 56,
+        "last_validated": "2024-05-01",
+    }
     supplier = _supplier(days, stations)
-    pq.write_table(pa.table({**supplier, "date": pa.array(np.array(supplier["date"], dtype="datetime64[D]")),
-                             "issued_at": pa.array(np.array(supplier["issued_at"], dtype="datetime64[s]"))}), data / "supplier.parquet")
+    pq.write_table(
+        pa.table(
+            {
+                **supplier,
+                "date": pa.array(np.array(supplier["date"], dtype="datetime64[D]")),
+                "issued_at": pa.array(np.array(supplier["issued_at"], dtype="datetime64[s]")),
+            }
+        ),
+        data / "supplier.parquet",
+    )
     notebook = _notebook(days, leaks[1])
-    pq.write_table(pa.table({**notebook, "date": pa.array(np.array(notebook["date"], dtype="datetime64[D]"))}), data / "notebook.parquet")
+    pq.write_table(
+        pa.table({**notebook, "date": pa.array(np.array(notebook["date"], dtype="datetime64[D]"))}),
+        data / "notebook.parquet",
+    )
     registry = out / "registry.yaml"
     registry.write_text(_registry_text(entries + [legacy]))
     archive = out / "archive"
@@ -398,11 +512,26 @@ def _production_versions(archive: pathlib.Path, entries: list[dict], fits: dict)
         if y is None:
             continue  # no production version: never validated (too short) or audited from refits only
         mask = days <= end
-        sel = np.nonzero(mask)[0][-e["fit"]:]
+        sel = np.nonzero(mask)[0][-e["fit"] :]
         model = _model(e["spec"])
         fit = model.fit(y[sel], {k: v[sel] for k, v in exog.items()} or None)
         noise = {"law": e["noise"]["law"], "shape": float(e["noise"]["df"]) if "df" in e["noise"] else None}
-        v = write_version(archive, e["id"], spec=model.to_dict(), noise=noise, params=fit.params, status="candidate",
-                          created_by="R. Okafor, forecasting lead (fictional)", lineage={"fit_last": str(PRODUCTION_FIT_END), "fit_window": e["fit"], "note": "demo setup"},
-                          note="initial fit for the demo", created_at="2025-11-01T09:00:00Z")
-        promote(archive, e["id"], v.version, approved_by="M. Achterberg, Head of Model Risk (fictional)", note="validated and approved for production (demo setup)")
+        v = write_version(
+            archive,
+            e["id"],
+            spec=model.to_dict(),
+            noise=noise,
+            params=fit.params,
+            status="candidate",
+            created_by="R. Okafor, forecasting lead (fictional)",
+            lineage={"fit_last": str(PRODUCTION_FIT_END), "fit_window": e["fit"], "note": "demo setup"},
+            note="initial fit for the demo",
+            created_at="2025-11-01T09:00:00Z",
+        )
+        promote(
+            archive,
+            e["id"],
+            v.version,
+            approved_by="M. Achterberg, Head of Model Risk (fictional)",
+            note="validated and approved for production (demo setup)",
+        )

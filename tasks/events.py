@@ -34,8 +34,19 @@ from fitaudit.core.vocabulary import VERDICTS
 from .results import is_forecast_record
 
 __all__ = [
-    "EVENT_PREFIX", "ENTRY_LABEL", "OWNER_LABEL", "EXCEPTION_EVENTS", "RUN_EVENT", "REFITS_LABEL", "verdict_event_name", "report_url",
-    "emit_verdict_events", "emit_run_event", "publish_artifacts", "artifact_key", "owner_automation",
+    "EVENT_PREFIX",
+    "ENTRY_LABEL",
+    "OWNER_LABEL",
+    "EXCEPTION_EVENTS",
+    "RUN_EVENT",
+    "REFITS_LABEL",
+    "verdict_event_name",
+    "report_url",
+    "emit_verdict_events",
+    "emit_run_event",
+    "publish_artifacts",
+    "artifact_key",
+    "owner_automation",
 ]
 
 EVENT_PREFIX = "fitaudit"
@@ -119,7 +130,9 @@ def emit_verdict_events(records: Sequence[Mapping[str, Any]], run: Mapping[str, 
                 OWNER_LABEL: str(rec.get("owner") or ""),
                 ENTRY_LABEL: kind,
             },
-            related=[{"prefect.resource.id": f"{EVENT_PREFIX}.run.{run['run_id']}", "prefect.resource.role": "audit-run"}],
+            related=[
+                {"prefect.resource.id": f"{EVENT_PREFIX}.run.{run['run_id']}", "prefect.resource.role": "audit-run"}
+            ],
             payload={
                 "model_id": rec["id"],
                 "verdict": rec["verdict"],
@@ -150,7 +163,11 @@ def emit_run_event(run: Mapping[str, Any], summary: Mapping[str, Any]) -> None:
     refits = list(run.get("refit_models") or ())
     emit_event(
         event=RUN_EVENT,
-        resource={"prefect.resource.id": f"{EVENT_PREFIX}.run.{run['run_id']}", "prefect.resource.name": run["run_id"], REFITS_LABEL: "yes" if refits else "no"},
+        resource={
+            "prefect.resource.id": f"{EVENT_PREFIX}.run.{run['run_id']}",
+            "prefect.resource.name": run["run_id"],
+            REFITS_LABEL: "yes" if refits else "no",
+        },
         payload={
             "as_of": run["as_of"],
             "run_id": run["run_id"],
@@ -168,10 +185,20 @@ def emit_run_event(run: Mapping[str, Any], summary: Mapping[str, Any]) -> None:
 def publish_artifacts(records: Sequence[Mapping[str, Any]], summary: Mapping[str, Any], run: Mapping[str, Any]) -> None:
     """A table artifact of verdicts, a markdown summary and a link to the report."""
     rows = [
-        {"model": r["id"], "owner": r.get("owner") or "", "verdict": r["verdict"], "movement": r["movement"], "reason": (r["reasons"][0] if r["reasons"] else "")[:300]}
+        {
+            "model": r["id"],
+            "owner": r.get("owner") or "",
+            "verdict": r["verdict"],
+            "movement": r["movement"],
+            "reason": (r["reasons"][0] if r["reasons"] else "")[:300],
+        }
         for r in sorted(records, key=lambda r: (r["severity"], r["id"]))
     ]
-    create_table_artifact(rows, key=artifact_key("fitaudit-verdicts"), description=f"Verdicts of audit run {run['run_id']} (as of {run['as_of']})")
+    create_table_artifact(
+        rows,
+        key=artifact_key("fitaudit-verdicts"),
+        description=f"Verdicts of audit run {run['run_id']} (as of {run['as_of']})",
+    )
     lines = [
         f"# fitaudit run {run['run_id']}",
         f"As of **{run['as_of']}**: {summary['registered']} registered, {summary['audited']} audited.",
@@ -182,10 +209,17 @@ def publish_artifacts(records: Sequence[Mapping[str, Any]], summary: Mapping[str
         "",
         "Audit results inform people; they do not replace model validation.",
     ]
-    create_markdown_artifact("\n".join(lines), key=artifact_key("fitaudit-summary"), description="Summary of the latest audit run")
+    create_markdown_artifact(
+        "\n".join(lines), key=artifact_key("fitaudit-summary"), description="Summary of the latest audit run"
+    )
     if run.get("report_path"):
         link = report_url(run["report_path"], run.get("archive"), run.get("report_base_url") or "")
-        create_link_artifact(link, link_text="Audit report", key=artifact_key("fitaudit-report"), description="Report of the latest audit run")
+        create_link_artifact(
+            link,
+            link_text="Audit report",
+            key=artifact_key("fitaudit-report"),
+            description="Report of the latest audit run",
+        )
 
 
 def owner_automation(owner: str, block_document_id, *, name: str | None = None, within: dt.timedelta = dt.timedelta(0)):
@@ -222,9 +256,11 @@ def owner_automation(owner: str, block_document_id, *, name: str | None = None, 
             threshold=1,
             within=within,
         ),
-        actions=[SendNotification(
-            block_document_id=block_document_id,
-            subject="fitaudit: {{ event.payload.model_id }} needs {{ event.payload.verdict }} (as of {{ event.payload.as_of }})",
-            body=body,
-        )],
+        actions=[
+            SendNotification(
+                block_document_id=block_document_id,
+                subject="fitaudit: {{ event.payload.model_id }} needs {{ event.payload.verdict }} (as of {{ event.payload.as_of }})",
+                body=body,
+            )
+        ],
     )

@@ -325,7 +325,9 @@ class FingerprintCache:
         self.misses += 1
         return None
 
-    def put(self, fs: pafs.FileSystem, path: str, size: int, mtime_ns: int | None, sha256: str, hashed_at: float) -> None:
+    def put(
+        self, fs: pafs.FileSystem, path: str, size: int, mtime_ns: int | None, sha256: str, hashed_at: float
+    ) -> None:
         """Remember a digest (not for a file without a modification time or modified too recently)."""
         if mtime_ns is None or not sha256 or hashed_at - mtime_ns / 1e9 < RACY_SECONDS:
             return
@@ -403,7 +405,11 @@ def _inspect_files(loc: _Location) -> list[_File]:
     if not readable:
         listing = "; ".join(f"{_relative(loc, f.path)}: {f.reason}" for f in files[:_SHOW])
         io_only = all(f.reason.startswith(_IO_FAILURE) for f in files)
-        fix = "check that the storage is reachable and the files readable, then rerun" if io_only else "rewrite the extract as Parquet (pyarrow.parquet.write_table)"
+        fix = (
+            "check that the storage is reachable and the files readable, then rerun"
+            if io_only
+            else "rewrite the extract as Parquet (pyarrow.parquet.write_table)"
+        )
         raise loc.fail(f"no file can be read ({listing})", fix)
     if loc.source.partitioning == "hive":
         partition_types = _hive_types(loc, [f.path for f in readable])
@@ -562,7 +568,9 @@ class _Chunk:
     problems: list  # (column, kind, message) applying to every key in the chunk
 
 
-def _normalise(table: pa.Table, src: SourceEntry, columns: list[str], file: str, where: str, times: frozenset = frozenset()) -> _Chunk:
+def _normalise(
+    table: pa.Table, src: SourceEntry, columns: list[str], file: str, where: str, times: frozenset = frozenset()
+) -> _Chunk:
     keys = _to_keys(table[src.key])
     time, kind, why = _to_time(table[src.time])
     problems = []
@@ -601,7 +609,9 @@ def _agree(files: list[_File], needed: list[str]) -> bool:
     return True
 
 
-def _scan_unified(loc: _Location, files: list[_File], src: SourceEntry, keys, columns, start, end, times: frozenset = frozenset()) -> list[_Chunk]:
+def _scan_unified(
+    loc: _Location, files: list[_File], src: SourceEntry, keys, columns, start, end, times: frozenset = frozenset()
+) -> list[_Chunk]:
     needed = [src.key, src.time] + [c for c in columns if c not in (src.key, src.time)]
     dataset = _dataset(loc, [f.path for f in files])
     table = dataset.to_table(
@@ -611,7 +621,9 @@ def _scan_unified(loc: _Location, files: list[_File], src: SourceEntry, keys, co
     return [_normalise(table.take(order), src, columns, "", "", times)]
 
 
-def _scan_file(loc: _Location, f: _File, src: SourceEntry, keys, columns, start, end, times: frozenset = frozenset()) -> _Chunk | None:
+def _scan_file(
+    loc: _Location, f: _File, src: SourceEntry, keys, columns, start, end, times: frozenset = frozenset()
+) -> _Chunk | None:
     """Read one file on its own (None when it lacks the key or time column)."""
     if src.key not in f.schema.names or src.time not in f.schema.names:
         return None  # reported by the caller as a file whose rows cannot be attributed
@@ -735,7 +747,9 @@ def _check_row_filter(loc: _Location, readable: list[_File]) -> None:
             ) from None
 
 
-def _scan_file_by_file(loc, readable, src, keys, columns, start, end, times: frozenset = frozenset()) -> tuple[list[_Chunk], list[tuple[str, str]]]:
+def _scan_file_by_file(
+    loc, readable, src, keys, columns, start, end, times: frozenset = frozenset()
+) -> tuple[list[_Chunk], list[tuple[str, str]]]:
     """Chunks of the files read one by one, and the files that failed while being read."""
     chunks, skipped = [], []
     for f in readable:
@@ -856,8 +870,9 @@ def _series_from_chunks(src, key, parts, columns, exogenous, start, end, missing
         data.pop(c, None)
     flagged = {p.column for p in problems if p.column is not None}  # rows already explained
     clean = {c: v for c, v in data.items() if c not in flagged}
-    problems += series_problems(key, time, clean, src.frequency, source=src.name, exogenous=exogenous,
-                                holidays=src.holidays)
+    problems += series_problems(
+        key, time, clean, src.frequency, source=src.name, exogenous=exogenous, holidays=src.holidays
+    )
     return SeriesData(src.name, key, time, data, tuple(problems))
 
 
@@ -1106,8 +1121,13 @@ def _non_finite(time: np.ndarray, values: np.ndarray, name: str, exogenous: bool
 # --------------------------------------------------------------------------------------------
 # fingerprint
 # --------------------------------------------------------------------------------------------
-def fingerprint_source(source: SourceEntry, base_dir: str | os.PathLike | None = None, *, io_errors: str = "skip",
-                       cache: FingerprintCache | None = None) -> ExtractFingerprint:
+def fingerprint_source(
+    source: SourceEntry,
+    base_dir: str | os.PathLike | None = None,
+    *,
+    io_errors: str = "skip",
+    cache: FingerprintCache | None = None,
+) -> ExtractFingerprint:
     """Hash every file of a source and summarise what it holds (for the manifest).
 
     Parameters

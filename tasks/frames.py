@@ -121,11 +121,15 @@ def load_results(run_folder: str | os.PathLike) -> RunResults:
     if parts:
         checks = pd.concat(parts, ignore_index=True)
         order = {kind: i for i, kind in enumerate(CHECKS)}
-        checks = checks.sort_values(["model_id", "check"], key=lambda s: s.map(order) if s.name == "check" else s, kind="stable")
+        checks = checks.sort_values(
+            ["model_id", "check"], key=lambda s: s.map(order) if s.name == "check" else s, kind="stable"
+        )
         checks = checks.reset_index(drop=True)
         for name in _COUNTS:
             if name in checks:
                 checks[name] = checks[name].astype("Int64")
     else:
-        checks = pd.DataFrame({"model_id": pd.Series(dtype=object), "check": pd.Series(dtype=object), "status": pd.Series(dtype=object)})
+        checks = pd.DataFrame(
+            {"model_id": pd.Series(dtype=object), "check": pd.Series(dtype=object), "status": pd.Series(dtype=object)}
+        )
     return RunResults(verdicts=verdicts, checks=checks, manifest=manifest)

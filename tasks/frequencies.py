@@ -86,9 +86,21 @@ FREQUENCY_TABLE: dict[str, Frequency] = {
 
 #: Older pandas spellings accepted for today's codes (pandas 2.2 deprecated them).
 ALIASES: dict[str, str] = {
-    "H": "h", "15T": "15min", "30T": "30min", "M": "ME", "Q": "QE", "A": "YE", "Y": "YE",
-    "AS": "YS", "QS-JAN": "QS", "Q-DEC": "QE", "QE-DEC": "QE", "A-DEC": "YE", "YE-DEC": "YE",
-    "AS-JAN": "YS", "YS-JAN": "YS",
+    "H": "h",
+    "15T": "15min",
+    "30T": "30min",
+    "M": "ME",
+    "Q": "QE",
+    "A": "YE",
+    "Y": "YE",
+    "AS": "YS",
+    "QS-JAN": "QS",
+    "Q-DEC": "QE",
+    "QE-DEC": "QE",
+    "A-DEC": "YE",
+    "YE-DEC": "YE",
+    "AS-JAN": "YS",
+    "YS-JAN": "YS",
 }
 
 #: Frequency codes a source may declare, with their meaning (gaps are checked against them).

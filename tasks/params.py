@@ -210,8 +210,16 @@ def write_version(
         number after many concurrent attempts.
     """
     fields = version_fields(
-        model_id, spec=spec, noise=noise, params=params, status=status, created_by=created_by,
-        lineage=lineage, note=note, promotes=promotes, created_at=created_at,
+        model_id,
+        spec=spec,
+        noise=noise,
+        params=params,
+        status=status,
+        created_by=created_by,
+        lineage=lineage,
+        note=note,
+        promotes=promotes,
+        created_at=created_at,
     )
     return write_fields(archive_root, fields)
 
@@ -568,7 +576,9 @@ def read_params_file(path: str | os.PathLike) -> ParamsFile:
         kind = "YAML" if path.suffix.lower() in (".yaml", ".yml") else "JSON (name the file .yaml or .yml for YAML)"
         raise ParamsFileError(f"{path}: not valid {kind}: {exc}") from None
     if not isinstance(data, dict):
-        raise ParamsFileError(f"{path}: expected a mapping with params, noise, date and approved_by; got {type(data).__name__}")
+        raise ParamsFileError(
+            f"{path}: expected a mapping with params, noise, date and approved_by; got {type(data).__name__}"
+        )
     try:
         parsed = ParamsFile.model_validate(data)
         parsed.noise.fixed_shape()
@@ -618,9 +628,13 @@ def check_imported_params(entry: Any, parsed: ParamsFile, source: str = "the par
     model_id = entry.id
     spec = dict(entry.spec) if getattr(entry, "spec", None) is not None else None
     if spec is None:
-        raise ParamsFileError(f"model {model_id!r} has no model spec (its forecasts come from outside); there are no parameters to import")
+        raise ParamsFileError(
+            f"model {model_id!r} has no model spec (its forecasts come from outside); there are no parameters to import"
+        )
     if parsed.model_id is not None and parsed.model_id != model_id:
-        raise ParamsFileError(f"{source} is for model {parsed.model_id!r}, not {model_id!r}; import it for its own model or correct model_id")
+        raise ParamsFileError(
+            f"{source} is for model {parsed.model_id!r}, not {model_id!r}; import it for its own model or correct model_id"
+        )
     if parsed.family is not None and parsed.family != spec.get("family"):
         raise ParamsFileError(
             f"{source} holds {parsed.family!r} parameters but model {model_id!r} is registered as {spec.get('family')!r}; "
@@ -643,7 +657,9 @@ def check_imported_params(entry: Any, parsed: ParamsFile, source: str = "the par
         )
     params = {name: float(parsed.params[name]) for name in expected}
     if not params["sigma2"] > 0:
-        raise ParamsFileError(f"model {model_id!r}: sigma2 = {params['sigma2']:g} in {source} is not a positive variance; give the innovation variance")
+        raise ParamsFileError(
+            f"model {model_id!r}: sigma2 = {params['sigma2']:g} in {source} is not a positive variance; give the innovation variance"
+        )
     noise = _entry_noise(entry)
     law_name = noise.get("law")
     if parsed.noise.law is not None and parsed.noise.law != law_name:
@@ -669,7 +685,9 @@ def check_imported_params(entry: Any, parsed: ParamsFile, source: str = "the par
                 )
             as_noise_law({"law": law_name, "shape": shape})  # the law's own bounds (t: df > 2; NB: size > 0)
         elif shape is not None:
-            raise ParamsFileError(f"model {model_id!r}: the {law_name} noise law has no shape, but {source} gives one; drop it")
+            raise ParamsFileError(
+                f"model {model_id!r}: the {law_name} noise law has no shape, but {source} gives one; drop it"
+            )
     except CoreError as exc:
         if isinstance(exc, ParamsFileError):
             raise
@@ -790,12 +808,22 @@ def import_params(
         "registry_sha256": getattr(reg, "sha256", None),
     }
     candidate = write_version(
-        archive_root, model_id, spec=dict(entry.spec), noise=noise, params=params, status="candidate",
-        created_by=by.strip(), lineage=lineage,
-        note=f"production parameters estimated outside fitaudit, imported from {path.name}" + (f"; {parsed.note}" if parsed.note else ""),
+        archive_root,
+        model_id,
+        spec=dict(entry.spec),
+        noise=noise,
+        params=params,
+        status="candidate",
+        created_by=by.strip(),
+        lineage=lineage,
+        note=f"production parameters estimated outside fitaudit, imported from {path.name}"
+        + (f"; {parsed.note}" if parsed.note else ""),
     )
     return promote(
-        archive_root, model_id, candidate.version, approved_by=parsed.approved_by,
+        archive_root,
+        model_id,
+        candidate.version,
+        approved_by=parsed.approved_by,
         note=f"in production since {parsed.date.isoformat()}; imported by {by.strip()} from {path.name}",
         details={"imported_by": by.strip(), "imported_from": path.name, "file_sha256": file_sha},
     )

@@ -76,7 +76,9 @@ def code_commit() -> str | None:
     """The git commit of the installed source tree, when it is a checkout (editable install)."""
     here = pathlib.Path(__file__).resolve().parent
     try:
-        out = subprocess.run(["git", "-C", str(here), "rev-parse", "HEAD"], capture_output=True, text=True, timeout=5, check=False)
+        out = subprocess.run(
+            ["git", "-C", str(here), "rev-parse", "HEAD"], capture_output=True, text=True, timeout=5, check=False
+        )
     except (OSError, subprocess.SubprocessError):
         return None
     return out.stdout.strip() or None if out.returncode == 0 else None
@@ -115,7 +117,13 @@ class StagedRecord:
     page: str
 
 
-def stage_records(records: Iterable[Mapping[str, Any]], head: Mapping[str, Any], meta: Mapping[str, Any], folder: str | os.PathLike, name: str) -> list[StagedRecord]:
+def stage_records(
+    records: Iterable[Mapping[str, Any]],
+    head: Mapping[str, Any],
+    meta: Mapping[str, Any],
+    folder: str | os.PathLike,
+    name: str,
+) -> list[StagedRecord]:
     """Write each record's canonical JSON to ``<folder>/<name>.json`` and its model page to
     ``<folder>/models/``; return the :class:`StagedRecord` of each, in order.
 
@@ -141,7 +149,14 @@ def stage_records(records: Iterable[Mapping[str, Any]], head: Mapping[str, Any],
     return staged
 
 
-def render_outcomes(outcomes: Sequence[Any], head: Mapping[str, Any], meta: Mapping[str, Any], folder: str, name: str, spilled: str | None = None) -> list[StagedRecord]:
+def render_outcomes(
+    outcomes: Sequence[Any],
+    head: Mapping[str, Any],
+    meta: Mapping[str, Any],
+    folder: str,
+    name: str,
+    spilled: str | None = None,
+) -> list[StagedRecord]:
     """Records of a batch's final outcomes (:func:`fitaudit.tasks.audit.records`), staged with
     :func:`stage_records`.  With ``spilled``, ``outcomes`` are light and the full ones are read
     back from that file first (:func:`fitaudit.tasks.audit.restore_outcomes`)."""
@@ -152,12 +167,22 @@ def render_outcomes(outcomes: Sequence[Any], head: Mapping[str, Any], meta: Mapp
     return stage_records(records(outcomes, head["run"]["as_of"]), head, meta, folder, name)
 
 
-def _render_pickled(outcomes: bytes, head: Mapping[str, Any], meta: Mapping[str, Any], folder: str, name: str, spilled: str | None) -> list[StagedRecord]:
+def _render_pickled(
+    outcomes: bytes, head: Mapping[str, Any], meta: Mapping[str, Any], folder: str, name: str, spilled: str | None
+) -> list[StagedRecord]:
     return render_outcomes(pickle.loads(outcomes), head, meta, folder, name, spilled)
 
 
 @task(name="render-pages", cache_policy=NO_CACHE, persist_result=False)
-def render_outcomes_task(outcomes: bytes, head: dict, meta: dict, folder: str, name: str, spilled: str | None = None, workers: str | None = None) -> list[StagedRecord]:
+def render_outcomes_task(
+    outcomes: bytes,
+    head: dict,
+    meta: dict,
+    folder: str,
+    name: str,
+    spilled: str | None = None,
+    workers: str | None = None,
+) -> list[StagedRecord]:
     """Prefect task: records and model pages of one batch (in the local worker processes named
     by ``workers``, when given); returns the staged records.
 
@@ -262,15 +287,22 @@ def _audit_results(run: Mapping[str, Any], root: pathlib.Path) -> tuple[list[dic
         return None, f"{run['path']}/results.parquet cannot be read ({exc.strerror or exc})"
     digest = sha256_bytes(data)
     if digest != listed.get("sha256"):
-        return None, (f"{run['path']}/results.parquet differs from its manifest (SHA-256 {digest[:12]}..., recorded "
-                      f"{str(listed.get('sha256'))[:12]}...); not used")
+        return None, (
+            f"{run['path']}/results.parquet differs from its manifest (SHA-256 {digest[:12]}..., recorded "
+            f"{str(listed.get('sha256'))[:12]}...); not used"
+        )
     try:
         return pq.read_table(pa.BufferReader(data), columns=_HISTORY_COLUMNS).to_pylist(), None
     except (OSError, pa.ArrowInvalid, KeyError) as exc:
         return None, f"{run['path']}/results.parquet cannot be read as a results table ({exc})"
 
 
-def load_history(archive_root: str | os.PathLike, before: dt.date, model_ids: Sequence[str] | None = None, limit: int = HISTORY_LENGTH) -> History:
+def load_history(
+    archive_root: str | os.PathLike,
+    before: dt.date,
+    model_ids: Sequence[str] | None = None,
+    limit: int = HISTORY_LENGTH,
+) -> History:
     """Earlier audits per model (oldest first, at most ``limit``) from the runs before ``before``.
 
     Only audit runs count (a refit run at the same as-of date holds no verdicts).  For each model
@@ -297,7 +329,11 @@ def load_history(archive_root: str | os.PathLike, before: dt.date, model_ids: Se
         used.append(run["run_id"])
         for row in rows:
             mid = row["model_id"]
-            if (wanted is not None and mid not in wanted) or run["as_of"] in seen.get(mid, {}) or len(seen.get(mid, ())) >= limit:
+            if (
+                (wanted is not None and mid not in wanted)
+                or run["as_of"] in seen.get(mid, {})
+                or len(seen.get(mid, ())) >= limit
+            ):
                 continue
             use_prod = row.get("production_r_max") is not None
             seen.setdefault(mid, {})[run["as_of"]] = {
@@ -333,7 +369,11 @@ def run_context(archive_root: str | os.PathLike, as_of: dt.date, *, trend_length
     audits = []
     for run in history_runs(root, dt.date.max) if root.exists() else []:
         manifest = run["manifest"]
-        if not isinstance(manifest, dict) or manifest.get("kind", "audit") != "audit" or "results.json" not in (manifest.get("files") or {}):
+        if (
+            not isinstance(manifest, dict)
+            or manifest.get("kind", "audit") != "audit"
+            or "results.json" not in (manifest.get("files") or {})
+        ):
             continue
         audits.append((run, manifest))
     audits.sort(key=lambda item: item[0]["seq"])
@@ -342,8 +382,17 @@ def run_context(archive_root: str | os.PathLike, as_of: dt.date, *, trend_length
     for run, manifest in audits:
         counts = manifest.get("counts") or {}
         full = not (manifest.get("scope") or {}).get("models_requested")
-        if full and run["as_of"] < as_of.isoformat() and isinstance(counts.get("registered"), int) and counts["registered"] > 0:
-            newest[run["as_of"]] = {"as_of": run["as_of"], "passed": int(counts.get("pass") or 0), "registered": int(counts["registered"])}
+        if (
+            full
+            and run["as_of"] < as_of.isoformat()
+            and isinstance(counts.get("registered"), int)
+            and counts["registered"] > 0
+        ):
+            newest[run["as_of"]] = {
+                "as_of": run["as_of"],
+                "passed": int(counts.get("pass") or 0),
+                "registered": int(counts["registered"]),
+            }
     trend = [newest[d] for d in sorted(newest)][-trend_length:] if trend_length > 0 else []
     return {
         "archive_head": f"{head[0]} (seq {head[1]})" if head else None,

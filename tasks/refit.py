@@ -34,7 +34,15 @@ from .params import promote, write_version
 from .registry import ForecastEntry, Policy, Registry
 from .results import is_forecast_record
 
-__all__ = ["NotRefittableError", "REFIT_VERDICTS", "refuse_forecast_entries", "refit_targets", "refit_input", "refit_batch", "refit_batch_task"]
+__all__ = [
+    "NotRefittableError",
+    "REFIT_VERDICTS",
+    "refuse_forecast_entries",
+    "refit_targets",
+    "refit_input",
+    "refit_batch",
+    "refit_batch_task",
+]
 
 #: Verdicts after which the audit may start the refit flow (a model fitaudit fits only).
 REFIT_VERDICTS = ("refit", "respecify")
@@ -129,23 +137,40 @@ def refit_input(
             "loglik": result.fitted.get("loglik"),
         }
         version = write_version(
-            archive_root, item.model_id, spec=entry.spec, noise=fitted_noise, params=result.fitted["params"],
-            status="candidate", created_by=operator, lineage=lineage, note="refitted by fitaudit; the refit check passed",
+            archive_root,
+            item.model_id,
+            spec=entry.spec,
+            noise=fitted_noise,
+            params=result.fitted["params"],
+            status="candidate",
+            created_by=operator,
+            lineage=lineage,
+            note="refitted by fitaudit; the refit check passed",
         )
         record["candidate_version"] = version.version
         if policy.refit_policy == "automatic" or approve:
             who = approved_by or (f"{operator} (automatic policy)" if policy.refit_policy == "automatic" else operator)
             note = "promoted automatically: the refit check passed" if not approve else "promotion approved"
-            promoted = promote(archive_root, item.model_id, version.version, approved_by=who, note=note, details={"run_id": run_id})
+            promoted = promote(
+                archive_root, item.model_id, version.version, approved_by=who, note=note, details={"run_id": run_id}
+            )
             record.update(status="promoted", promoted_version=promoted.version)
         else:
             record["status"] = "awaiting approval"
         return record
     candidates = search_candidates(
-        item.y, dict(entry.spec), noise=entry.noise_law(),
-        exog=item.exog or None, settings=settings, cache=cache,
+        item.y,
+        dict(entry.spec),
+        noise=entry.noise_law(),
+        exog=item.exog or None,
+        settings=settings,
+        cache=cache,
     )
-    record.update(status="respecify", spec_text=as_model(dict(entry.spec)).describe(), candidates=[c.to_dict() for c in candidates])
+    record.update(
+        status="respecify",
+        spec_text=as_model(dict(entry.spec)).describe(),
+        candidates=[c.to_dict() for c in candidates],
+    )
     return record
 
 
@@ -156,13 +181,37 @@ def refit_batch(path: str, policy: Policy, archive_root: str, **kwargs) -> list[
         try:
             out.append(refit_input(item, policy, archive_root, **kwargs))
         except Exception as exc:  # contain the failure to this model
-            out.append({"model_id": item.model_id, "status": "error", "reasons": [f"model {item.model_id!r}: refit failed with {type(exc).__name__}: {exc}"]})
+            out.append(
+                {
+                    "model_id": item.model_id,
+                    "status": "error",
+                    "reasons": [f"model {item.model_id!r}: refit failed with {type(exc).__name__}: {exc}"],
+                }
+            )
     return out
 
 
 @task(name="refit-batch", cache_policy=NO_CACHE, persist_result=False)
-def refit_batch_task(path: str, policy: Policy, archive_root: str, run_id: str, operator: str, approve: bool = False, approved_by: str = "", cache: CalibrationCache | None = None) -> list[dict]:
+def refit_batch_task(
+    path: str,
+    policy: Policy,
+    archive_root: str,
+    run_id: str,
+    operator: str,
+    approve: bool = False,
+    approved_by: str = "",
+    cache: CalibrationCache | None = None,
+) -> list[dict]:
     """Prefect task: refit one staged batch."""
-    out = refit_batch(path, policy, archive_root, run_id=run_id, operator=operator, approve=approve, approved_by=approved_by, cache=cache)
+    out = refit_batch(
+        path,
+        policy,
+        archive_root,
+        run_id=run_id,
+        operator=operator,
+        approve=approve,
+        approved_by=approved_by,
+        cache=cache,
+    )
     get_run_logger().info("refit batch %s: %s", path.rsplit("/", 1)[-1], {r["model_id"]: r["status"] for r in out})
     return out

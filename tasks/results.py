@@ -170,7 +170,9 @@ def results_summary(models: Iterable[Mapping[str, Any]], policy: Mapping[str, An
             if chk and chk.get("status") == "ok":
                 checks += 1
     level = float(policy.get("level", 0.05))
-    moves = {k: sum(1 for m in models if m["movement"] == k) for k in ("new", "persisting", "resolved", "steady", "first")}
+    moves = {
+        k: sum(1 for m in models if m["movement"] == k) for k in ("new", "persisting", "resolved", "steady", "first")
+    }
     summary = {
         "registered": len(models),
         "audited": sum(counts[v] for v in ADJUDICATED_VERDICTS),
@@ -206,7 +208,21 @@ def build_results(
 
 #: Per-check numbers kept by :func:`light_record` (those of :func:`results_rows`, the report's run
 #: page and the verdict events).
-_CHECK_FIELDS = ("status", "n", "cells", "t_max", "r_max", "alpha_max", "beta_max", "p_distribution", "p_independence", "p_value", "p_adjusted", "effect_divergence", "effect_acf")
+_CHECK_FIELDS = (
+    "status",
+    "n",
+    "cells",
+    "t_max",
+    "r_max",
+    "alpha_max",
+    "beta_max",
+    "p_distribution",
+    "p_independence",
+    "p_value",
+    "p_adjusted",
+    "effect_divergence",
+    "effect_acf",
+)
 _BULKY = ("audit", "lineage", "settings", "candidates")
 
 
@@ -230,12 +246,16 @@ def light_record(record: Mapping[str, Any]) -> dict:
     out = {k: v for k, v in record.items() if k not in _BULKY}
     audit = record.get("audit")
     if audit is not None:
-        audit = {kind: None if audit.get(kind) is None else _light_check(audit[kind]) for kind in ("production", "refit")}
+        audit = {
+            kind: None if audit.get(kind) is None else _light_check(audit[kind]) for kind in ("production", "refit")
+        }
     out["audit"] = audit
     return out
 
 
-def results_json_chunks(head: Mapping[str, Any], summary: Mapping[str, Any], records: Iterable[bytes]) -> Iterator[bytes]:
+def results_json_chunks(
+    head: Mapping[str, Any], summary: Mapping[str, Any], records: Iterable[bytes]
+) -> Iterator[bytes]:
     """``canonical_json`` of the document, in pieces, from the models' records already in canonical JSON.
 
     The bytes joined equal ``canonical_json(doc)`` of the document with those models (in that
@@ -283,7 +303,20 @@ def results_rows(doc: Mapping[str, Any]) -> list[dict]:
             ok = chk.get("status") == "ok"
             row[f"{kind}_status"] = chk.get("status")
             row[f"{kind}_partition"] = ((chk.get("gate") or {}).get("deciding") or {}).get("kind") if ok else None
-            for field in ("n", "cells", "t_max", "r_max", "alpha_max", "beta_max", "p_distribution", "p_independence", "p_value", "p_adjusted", "effect_divergence", "effect_acf"):
+            for field in (
+                "n",
+                "cells",
+                "t_max",
+                "r_max",
+                "alpha_max",
+                "beta_max",
+                "p_distribution",
+                "p_independence",
+                "p_value",
+                "p_adjusted",
+                "effect_divergence",
+                "effect_acf",
+            ):
                 row[f"{kind}_{field}"] = _num(chk.get(field)) if ok else None
         rows.append(row)
     return rows

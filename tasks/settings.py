@@ -27,7 +27,11 @@ class FitauditSettings(PrefectBaseSettings):
     archive_root: Path = Field(default=Path("./archive"), description="Folder of the tamper-evident archive.")
     registry_path: Path = Field(default=Path("./registry.yaml"), description="The model registry (YAML).")
     batch_size: int = Field(default=0, ge=0, description="Models per Prefect task; 0 chooses automatically.")
-    processes: int = Field(default=0, ge=0, description="Local worker processes for the batches under the default task runner; 0 uses every CPU, 1 computes in the task threads.")
+    processes: int = Field(
+        default=0,
+        ge=0,
+        description="Local worker processes for the batches under the default task runner; 0 uses every CPU, 1 computes in the task threads.",
+    )
     model_time_limit_s: float = Field(
         default=900.0,
         ge=0,

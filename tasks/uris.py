@@ -19,7 +19,15 @@ import string
 from collections.abc import Sequence
 from typing import Any
 
-__all__ = ["FILTER_OPS", "LIST_OPS", "uri_template_problem", "is_templated", "resolve_uri", "filter_term_problem", "filter_expression"]
+__all__ = [
+    "FILTER_OPS",
+    "LIST_OPS",
+    "uri_template_problem",
+    "is_templated",
+    "resolve_uri",
+    "filter_term_problem",
+    "filter_expression",
+]
 
 #: Comparison operators a row filter term may use (pyarrow.parquet.filters_to_expression's).
 FILTER_OPS: tuple[str, ...] = ("=", "==", "!=", "<", "<=", ">", ">=", "in", "not in")

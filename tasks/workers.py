@@ -27,7 +27,15 @@ from typing import Any, TypeVar
 
 from fitaudit.core.exceptions import FitauditError
 
-__all__ = ["local_workers", "run_local", "WorkersStopped", "default_processes", "time_limit", "TimeLimitExceeded", "can_limit_time"]
+__all__ = [
+    "local_workers",
+    "run_local",
+    "WorkersStopped",
+    "default_processes",
+    "time_limit",
+    "TimeLimitExceeded",
+    "can_limit_time",
+]
 
 T = TypeVar("T")
 
@@ -68,7 +76,9 @@ def _main_module_hidden() -> Iterator[None]:
     start, the main module shows neither a file nor a module spec.
     """
     main = sys.modules.get("__main__")
-    saved = {name: main.__dict__[name] for name in ("__file__", "__spec__") if main is not None and name in main.__dict__}
+    saved = {
+        name: main.__dict__[name] for name in ("__file__", "__spec__") if main is not None and name in main.__dict__
+    }
     try:
         if main is not None:
             main.__dict__.pop("__file__", None)
@@ -120,7 +130,9 @@ def local_workers(processes: int) -> Iterator[str | None]:
                 pool.submit(_warm)
         yield token
     except BaseException as exc:
-        if not isinstance(exc, Exception):  # interrupted (SIGTERM, Ctrl-C): stop the batches now rather than finish them
+        if not isinstance(
+            exc, Exception
+        ):  # interrupted (SIGTERM, Ctrl-C): stop the batches now rather than finish them
             with _POOLS_LOCK:
                 _STOPPED.add(token)
             for process in list((getattr(pool, "_processes", None) or {}).values()):

@@ -48,7 +48,9 @@ def days(n: int = N_DAYS, start: dt.date = START) -> np.ndarray:
     return (np.datetime64(start.isoformat(), "D") + np.arange(n)).astype("datetime64[us]")
 
 
-def ar1(rng: np.random.Generator, n: int = N_DAYS, phi: float = 0.5, mu: float = 50.0, sigma: float = 1.0) -> np.ndarray:
+def ar1(
+    rng: np.random.Generator, n: int = N_DAYS, phi: float = 0.5, mu: float = 50.0, sigma: float = 1.0
+) -> np.ndarray:
     """A stationary Gaussian AR(1) path around ``mu`` (100 burn-in values dropped), rounded to 1e-3."""
     shocks = rng.normal(0.0, sigma, n + 100)
     return np.round(mu + lfilter([1.0], [1.0, -phi], shocks)[100:], 3)
@@ -80,13 +82,25 @@ def write_parquet(path: pathlib.Path, table: pa.Table) -> pathlib.Path:
     return path
 
 
-def promote_production(archive: pathlib.Path, model_id: str, spec: dict, params: dict, noise: dict | None = None) -> int:
+def promote_production(
+    archive: pathlib.Path, model_id: str, spec: dict, params: dict, noise: dict | None = None
+) -> int:
     """Write a candidate parameter version and promote it; returns the production version number."""
     noise = noise or {"law": "normal", "shape": None}
-    v = write_version(archive, model_id, spec=spec, noise=noise, params=params, status="candidate",
-                      created_by="T. Tester, reliability tests", lineage={"note": "test fixture"},
-                      created_at="2025-12-31T09:00:00Z")
-    return promote(archive, model_id, v.version, approved_by="T. Approver, reliability tests", note="test fixture").version
+    v = write_version(
+        archive,
+        model_id,
+        spec=spec,
+        noise=noise,
+        params=params,
+        status="candidate",
+        created_by="T. Tester, reliability tests",
+        lineage={"note": "test fixture"},
+        created_at="2025-12-31T09:00:00Z",
+    )
+    return promote(
+        archive, model_id, v.version, approved_by="T. Approver, reliability tests", note="test fixture"
+    ).version
 
 
 def fitted_params(spec: dict, y: np.ndarray, exog: dict | None = None) -> dict:
@@ -104,19 +118,50 @@ class Fleet:
     models: list = field(default_factory=list)
     policy: dict = field(default_factory=lambda: dict(POLICY))
 
-    def source(self, name: str, uri: str, *, key: str = "series", time: str = "date", value: str = "y",
-               exogenous: tuple = (), frequency: str = "D", **extra) -> None:
+    def source(
+        self,
+        name: str,
+        uri: str,
+        *,
+        key: str = "series",
+        time: str = "date",
+        value: str = "y",
+        exogenous: tuple = (),
+        frequency: str = "D",
+        **extra,
+    ) -> None:
         """Declare an extract source (``extra`` keys go into the entry as given)."""
         entry = {"uri": uri, "key": key, "time": time, "value": value, "frequency": frequency}
         if exogenous:
             entry["exogenous"] = list(exogenous)
         self.sources[name] = {**entry, **extra}
 
-    def model(self, id, source: str, series, *, spec: dict | None = None, noise="normal", fit: int = FIT,
-              audit: int = AUDIT, owner="Reliability tests", tier=2, **extra) -> dict:
+    def model(
+        self,
+        id,
+        source: str,
+        series,
+        *,
+        spec: dict | None = None,
+        noise="normal",
+        fit: int = FIT,
+        audit: int = AUDIT,
+        owner="Reliability tests",
+        tier=2,
+        **extra,
+    ) -> dict:
         """Register a model entry (``extra`` keys go into the entry as given, unknown ones included)."""
-        entry = {"id": id, "owner": owner, "tier": tier, "source": source, "series": series,
-                 "spec": dict(spec or AR1), "noise": noise, "windows": {"fit": fit, "audit": audit}, **extra}
+        entry = {
+            "id": id,
+            "owner": owner,
+            "tier": tier,
+            "source": source,
+            "series": series,
+            "spec": dict(spec or AR1),
+            "noise": noise,
+            "windows": {"fit": fit, "audit": audit},
+            **extra,
+        }
         self.models.append(entry)
         return entry
 

@@ -76,7 +76,9 @@ def test_forecasts_made_elsewhere_are_audited_through_the_public_name():
     mean = np.cumsum(rng.normal(0, 0.3, 120))
     y = mean + rng.normal(0, 1.0, 120)
     quantiles = {lv: mean + stats.norm.ppf(lv) for lv in (0.1, 0.5, 0.9)}
-    result = fitaudit.audit_forecasts(y, quantiles=quantiles, settings=fitaudit.AuditSettings(audit_window=56, replicates=99))
+    result = fitaudit.audit_forecasts(
+        y, quantiles=quantiles, settings=fitaudit.AuditSettings(audit_window=56, replicates=99)
+    )
     assert result.refit is None and result.production.n == 56 and result.spec["statement"] == "quantiles"
     assert "The model was not refitted by fitaudit" in " ".join(result.reasons)
     # source: Hyndman and Koehler (2006), section 3.4: MASE = mean |y - point| / mean |y_t - y_(t-1)| over the history
@@ -85,7 +87,10 @@ def test_forecasts_made_elsewhere_are_audited_through_the_public_name():
 
 
 def test_a_folder_that_is_not_a_run_is_refused_with_the_fix(tmp_path):
-    with pytest.raises(FileNotFoundError, match=r"not a published run folder.*results\.parquet and manifest\.json.*runs/<year>/<run-id>"):
+    with pytest.raises(
+        FileNotFoundError,
+        match=r"not a published run folder.*results\.parquet and manifest\.json.*runs/<year>/<run-id>",
+    ):
         fitaudit.load_results(tmp_path)
 
 
@@ -100,7 +105,9 @@ def run_folder(tmp_path_factory, prefect_server) -> pathlib.Path:
     series = {"pass": ar1(rng), "refit": ar1(rng), "short": ar1(rng)[-50:], "error": ar1(rng)}
     series["error"][N_DAYS - 3] = np.nan
     t = days()
-    write_parquet(root / "data" / "fleet.parquet", long_table({k: {"date": t[-len(y):], "y": y} for k, y in series.items()}))
+    write_parquet(
+        root / "data" / "fleet.parquet", long_table({k: {"date": t[-len(y) :], "y": y} for k, y in series.items()})
+    )
     fleet = Fleet(root)
     fleet.source("fleet", "data/fleet.parquet")
     for name in series:
@@ -135,22 +142,44 @@ def test_load_results_says_what_results_json_says(run_folder):
     for row in run.verdicts.itertuples():
         m = models[row.model_id]
         assert (row.verdict, row.movement, row.escalated, row.owner, row.as_of) == (
-            m["verdict"], m["movement"], m["escalated"], m["owner"], doc["run"]["as_of"])
+            m["verdict"],
+            m["movement"],
+            m["escalated"],
+            m["owner"],
+            doc["run"]["as_of"],
+        )
         assert row.reason == (m["reasons"][0] if m["reasons"] else "")
         assert pd.isna(row.tier) if m["tier"] is None else row.tier == m["tier"]
     assert list(run.verdicts["verdict"].cat.categories) == list(VERDICTS)
     counts = run.verdicts["verdict"].value_counts()
     assert {v: int(counts[v]) for v in VERDICTS} == {v: doc["summary"][v] for v in VERDICTS}
 
-    expected_checks = [(mid, kind) for mid in sorted(models) for kind in ("production", "refit")
-                       if (models[mid].get("audit") or {}).get(kind)]
+    expected_checks = [
+        (mid, kind)
+        for mid in sorted(models)
+        for kind in ("production", "refit")
+        if (models[mid].get("audit") or {}).get(kind)
+    ]
     assert list(zip(run.checks["model_id"], run.checks["check"])) == expected_checks
     for row in run.checks.to_dict("records"):
         check = models[row["model_id"]]["audit"][row["check"]]
         assert row["status"] == check["status"]
-        for field in ("t_max", "r_max", "alpha_max", "beta_max", "p_distribution", "p_independence", "p_value", "p_adjusted",
-                      "effect_divergence", "effect_acf"):
-            assert _same(row[field], check.get(field)) if check["status"] == "ok" else pd.isna(row[field]), (row["model_id"], field)
+        for field in (
+            "t_max",
+            "r_max",
+            "alpha_max",
+            "beta_max",
+            "p_distribution",
+            "p_independence",
+            "p_value",
+            "p_adjusted",
+            "effect_divergence",
+            "effect_acf",
+        ):
+            assert _same(row[field], check.get(field)) if check["status"] == "ok" else pd.isna(row[field]), (
+                row["model_id"],
+                field,
+            )
         if check["status"] == "ok":
             assert (row["n"], row["cells"]) == (check["n"], check["cells"])
     assert (run.checks["status"] == "ok").sum() == doc["summary"]["checks"]

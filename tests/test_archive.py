@@ -23,7 +23,9 @@ from fitaudit.tasks import archive
 from fitaudit.tasks import params as param_store
 from fitaudit.tasks.archive import ArchiveError
 
-SHA256_ABC = "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"  # source: FIPS 180-2 Appendix B.1 ("abc")
+SHA256_ABC = (
+    "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"  # source: FIPS 180-2 Appendix B.1 ("abc")
+)
 
 
 def _sha(data: bytes) -> str:
@@ -49,8 +51,16 @@ def _publish(root, run_id: str, as_of: dt.date, extra: dict[str, bytes] | None =
 
 def _write_params(root: pathlib.Path, model: str, values: dict) -> tuple[str, str]:
     """A candidate version and its promotion, through the parameter store; returns the promotion's path and hash."""
-    param_store.write_version(root, model, spec={"family": "arima", "order": [1, 0, 0]}, noise={"law": "normal"},
-                              params=values, status="candidate", created_by="svc-audit", lineage={"run_id": "r1"})
+    param_store.write_version(
+        root,
+        model,
+        spec={"family": "arima", "order": [1, 0, 0]},
+        noise={"law": "normal"},
+        params=values,
+        status="candidate",
+        created_by="svc-audit",
+        lineage={"run_id": "r1"},
+    )
     promoted = param_store.promote(root, model, 1, approved_by="Head of model risk", note="validated")
     return f"params/{model}/{promoted.version}.json", promoted.sha256
 
@@ -61,7 +71,9 @@ def _rewrite_params(root: pathlib.Path, rel: str, **changes) -> None:
     record.update(changes)
     record.pop("sha256")
     record["sha256"] = _sha(_canonical(record))
-    (root / rel).write_text(json.dumps(record, sort_keys=True, ensure_ascii=False, indent=2, separators=(",", ": ")) + "\n")
+    (root / rel).write_text(
+        json.dumps(record, sort_keys=True, ensure_ascii=False, indent=2, separators=(",", ": ")) + "\n"
+    )
 
 
 @pytest.fixture
@@ -74,7 +86,9 @@ def populated(tmp_path):
         "new": _publish(root, "20260112-T220000Z-cccc", dt.date(2026, 1, 12)),
     }
     rel, digest = _write_params(root, "arima-sales", {"phi": 0.5, "sigma": 1.25})
-    archive.append_chain(root, "promotion", {"path": rel, "sha256": digest, "model_id": "arima-sales", "version": 2, "promotes": 1})
+    archive.append_chain(
+        root, "promotion", {"path": rel, "sha256": digest, "model_id": "arima-sales", "version": 2, "promotes": 1}
+    )
     archive.record_signoff(root, runs["mid"].run_id, name="A. Reviewer", role="model validator", note="checked")
     archive.purge_runs(root, before=dt.date(2026, 1, 1), reason="retention: one year", approved_by="Records officer")
     return root, runs
@@ -115,10 +129,18 @@ def test_chain_entries_recompute_with_hashlib(populated):
         assert entry["hash"] == _sha(_canonical(body))
         assert entry["prev"] == prev and entry["seq"] == seq
         prev = entry["hash"]
-    assert entries[1]["payload"]["manifest_sha256"] == _sha((runs["mid"].path / "manifest.json").read_bytes()) == runs["mid"].manifest_sha256
+    assert (
+        entries[1]["payload"]["manifest_sha256"]
+        == _sha((runs["mid"].path / "manifest.json").read_bytes())
+        == runs["mid"].manifest_sha256
+    )
     assert archive.read_chain(root) == entries
     promoted = json.loads((root / entries[3]["payload"]["path"]).read_bytes())
-    assert entries[3]["payload"]["sha256"] == promoted["sha256"] == _sha(_canonical({k: v for k, v in promoted.items() if k != "sha256"}))
+    assert (
+        entries[3]["payload"]["sha256"]
+        == promoted["sha256"]
+        == _sha(_canonical({k: v for k, v in promoted.items() if k != "sha256"}))
+    )
 
 
 def test_manifest_lists_every_file_with_hashlib_digests(tmp_path):
@@ -153,7 +175,11 @@ def test_purge_logs_one_entry_and_removes_the_folders(populated):
     purge = archive.read_chain(root)[-1]
     assert purge["kind"] == "purge"
     assert purge["payload"]["runs"] == [
-        {"run_id": runs["old"].run_id, "path": f"runs/2025/{runs['old'].run_id}", "manifest_sha256": runs["old"].manifest_sha256}
+        {
+            "run_id": runs["old"].run_id,
+            "path": f"runs/2025/{runs['old'].run_id}",
+            "manifest_sha256": runs["old"].manifest_sha256,
+        }
     ]
     assert purge["payload"]["approved_by"] == "Records officer" and purge["payload"]["before"] == "2026-01-01"
     assert not runs["old"].path.exists() and runs["mid"].path.exists()
@@ -171,30 +197,121 @@ def _new_run_then_drop_last_line(root, runs):
 
 
 TAMPERING = {
-    "byte changed in index.html": (lambda root, runs: _flip_byte(runs["mid"].path / "index.html"), "changed", "{mid}/index.html"),
-    "byte changed in nested page": (lambda root, runs: _flip_byte(runs["new"].path / "models" / "m2.html"), "changed", "{new}/models/m2.html"),
-    "byte changed in results.parquet": (lambda root, runs: _flip_byte(runs["new"].path / "results.parquet", 0), "changed", "{new}/results.parquet"),
-    "byte changed in manifest.json": (lambda root, runs: _flip_byte(runs["new"].path / "manifest.json", 30), "changed", "{new}/manifest.json"),
-    "file deleted": (lambda root, runs: (runs["mid"].path / "models" / "m1.html").unlink(), "missing", "{mid}/models/m1.html"),
-    "manifest deleted": (lambda root, runs: (runs["mid"].path / "manifest.json").unlink(), "missing", "{mid}/manifest.json"),
-    "file added": (lambda root, runs: (runs["new"].path / "extra.html").write_text("<p>x</p>"), "added", "{new}/extra.html"),
-    "hidden file added": (lambda root, runs: (runs["new"].path / "models" / ".x").write_text("x"), "added", "{new}/models/.x"),
+    "byte changed in index.html": (
+        lambda root, runs: _flip_byte(runs["mid"].path / "index.html"),
+        "changed",
+        "{mid}/index.html",
+    ),
+    "byte changed in nested page": (
+        lambda root, runs: _flip_byte(runs["new"].path / "models" / "m2.html"),
+        "changed",
+        "{new}/models/m2.html",
+    ),
+    "byte changed in results.parquet": (
+        lambda root, runs: _flip_byte(runs["new"].path / "results.parquet", 0),
+        "changed",
+        "{new}/results.parquet",
+    ),
+    "byte changed in manifest.json": (
+        lambda root, runs: _flip_byte(runs["new"].path / "manifest.json", 30),
+        "changed",
+        "{new}/manifest.json",
+    ),
+    "file deleted": (
+        lambda root, runs: (runs["mid"].path / "models" / "m1.html").unlink(),
+        "missing",
+        "{mid}/models/m1.html",
+    ),
+    "manifest deleted": (
+        lambda root, runs: (runs["mid"].path / "manifest.json").unlink(),
+        "missing",
+        "{mid}/manifest.json",
+    ),
+    "file added": (
+        lambda root, runs: (runs["new"].path / "extra.html").write_text("<p>x</p>"),
+        "added",
+        "{new}/extra.html",
+    ),
+    "hidden file added": (
+        lambda root, runs: (runs["new"].path / "models" / ".x").write_text("x"),
+        "added",
+        "{new}/models/.x",
+    ),
     "folder added": (lambda root, runs: (runs["new"].path / "notes").mkdir(), "added", "{new}/notes"),
-    "symlink added": (lambda root, runs: (runs["new"].path / "link.html").symlink_to(runs["new"].path / "index.html"), "added", "{new}/link.html"),
+    "symlink added": (
+        lambda root, runs: (runs["new"].path / "link.html").symlink_to(runs["new"].path / "index.html"),
+        "added",
+        "{new}/link.html",
+    ),
     "whole run folder deleted": (lambda root, runs: shutil.rmtree(runs["mid"].path), "missing", "{mid}"),
-    "run folder added": (lambda root, runs: shutil.copytree(runs["new"].path, runs["new"].path.with_name("20260113-T000000Z-ffff")), "unrecorded", "20260113-T000000Z-ffff"),
-    "purged run restored": (lambda root, runs: shutil.copytree(runs["mid"].path, runs["old"].path), "unrecorded", "{old}"),
-    "chain line edited": (lambda root, runs: _set_chain_lines(root, [line.replace(b'"time":"2', b'"time":"1') if i == 1 else line for i, line in enumerate(_chain_lines(root))]), "chain", "chain.jsonl line 2"),
-    "chain lines reordered": (lambda root, runs: _set_chain_lines(root, [_chain_lines(root)[i] for i in (0, 2, 1, 3, 4, 5)]), "chain", "chain.jsonl line 2"),
-    "chain line dropped": (lambda root, runs: _set_chain_lines(root, [line for i, line in enumerate(_chain_lines(root)) if i != 1]), "chain", "chain.jsonl line 2"),
-    "chain line duplicated": (lambda root, runs: _set_chain_lines(root, _chain_lines(root)[:3] + _chain_lines(root)[2:]), "chain", "chain.jsonl line 4"),
+    "run folder added": (
+        lambda root, runs: shutil.copytree(runs["new"].path, runs["new"].path.with_name("20260113-T000000Z-ffff")),
+        "unrecorded",
+        "20260113-T000000Z-ffff",
+    ),
+    "purged run restored": (
+        lambda root, runs: shutil.copytree(runs["mid"].path, runs["old"].path),
+        "unrecorded",
+        "{old}",
+    ),
+    "chain line edited": (
+        lambda root, runs: _set_chain_lines(
+            root,
+            [line.replace(b'"time":"2', b'"time":"1') if i == 1 else line for i, line in enumerate(_chain_lines(root))],
+        ),
+        "chain",
+        "chain.jsonl line 2",
+    ),
+    "chain lines reordered": (
+        lambda root, runs: _set_chain_lines(root, [_chain_lines(root)[i] for i in (0, 2, 1, 3, 4, 5)]),
+        "chain",
+        "chain.jsonl line 2",
+    ),
+    "chain line dropped": (
+        lambda root, runs: _set_chain_lines(root, [line for i, line in enumerate(_chain_lines(root)) if i != 1]),
+        "chain",
+        "chain.jsonl line 2",
+    ),
+    "chain line duplicated": (
+        lambda root, runs: _set_chain_lines(root, _chain_lines(root)[:3] + _chain_lines(root)[2:]),
+        "chain",
+        "chain.jsonl line 4",
+    ),
     "last chain line removed": (_new_run_then_drop_last_line, "unrecorded", "runs/2026/20260119-T220000Z-eeee"),
-    "chain cut mid-line": (lambda root, runs: (root / "chain.jsonl").write_bytes((root / "chain.jsonl").read_bytes()[:-40]), "chain", "chain.jsonl line 6"),
-    "params value edited": (lambda root, runs: (root / "params/arima-sales/1.json").write_text((root / "params/arima-sales/1.json").read_text().replace("0.5", "0.6")), "params", "params/arima-sales/1.json"),
-    "params whitespace edited": (lambda root, runs: (root / "params/arima-sales/2.json").write_text((root / "params/arima-sales/2.json").read_text().replace("\n", " \n", 1)), "params", "params/arima-sales/2.json"),
-    "promoted params rewritten with a fresh hash": (lambda root, runs: _rewrite_params(root, "params/arima-sales/2.json", note="never approved"), "params", "chain.jsonl line 4"),
-    "promoted params file deleted": (lambda root, runs: (root / "params/arima-sales/2.json").unlink(), "params", "chain.jsonl line 4"),
-    "earlier params version deleted": (lambda root, runs: (root / "params/arima-sales/1.json").unlink(), "params", "params/arima-sales"),
+    "chain cut mid-line": (
+        lambda root, runs: (root / "chain.jsonl").write_bytes((root / "chain.jsonl").read_bytes()[:-40]),
+        "chain",
+        "chain.jsonl line 6",
+    ),
+    "params value edited": (
+        lambda root, runs: (root / "params/arima-sales/1.json").write_text(
+            (root / "params/arima-sales/1.json").read_text().replace("0.5", "0.6")
+        ),
+        "params",
+        "params/arima-sales/1.json",
+    ),
+    "params whitespace edited": (
+        lambda root, runs: (root / "params/arima-sales/2.json").write_text(
+            (root / "params/arima-sales/2.json").read_text().replace("\n", " \n", 1)
+        ),
+        "params",
+        "params/arima-sales/2.json",
+    ),
+    "promoted params rewritten with a fresh hash": (
+        lambda root, runs: _rewrite_params(root, "params/arima-sales/2.json", note="never approved"),
+        "params",
+        "chain.jsonl line 4",
+    ),
+    "promoted params file deleted": (
+        lambda root, runs: (root / "params/arima-sales/2.json").unlink(),
+        "params",
+        "chain.jsonl line 4",
+    ),
+    "earlier params version deleted": (
+        lambda root, runs: (root / "params/arima-sales/1.json").unlink(),
+        "params",
+        "params/arima-sales",
+    ),
     "chain deleted": (lambda root, runs: (root / "chain.jsonl").unlink(), "missing", "chain.jsonl"),
 }
 
@@ -207,7 +324,10 @@ def test_tampering_is_detected_and_named(populated, case):
     tamper(root, runs)
     problems = archive.verify_archive(root)
     assert problems, f"{case}: not detected"
-    assert any(p.kind == kind and p.where.endswith(where) and p.message for p in problems), (case, [str(p) for p in problems])
+    assert any(p.kind == kind and p.where.endswith(where) and p.message for p in problems), (
+        case,
+        [str(p) for p in problems],
+    )
     assert all(not p.is_note for p in problems)
 
 
@@ -391,6 +511,7 @@ def _crash_at(step: str):
     def hook(name: str) -> None:
         if name == step:
             raise SimulatedCrash(step)
+
     return hook
 
 
@@ -414,7 +535,10 @@ def test_torn_chain_append_is_pending_then_completed(tmp_path, monkeypatch):
     actions = archive.recover(root)
     assert any("completed interrupted append" in a for a in actions)
     assert archive.verify_archive(root, include_notes=True) == []
-    assert [e["payload"]["run_id"] for e in archive.read_chain(root)] == ["20251229-T220000Z-aaaa", "20260105-T220000Z-bbbb"]
+    assert [e["payload"]["run_id"] for e in archive.read_chain(root)] == [
+        "20251229-T220000Z-aaaa",
+        "20260105-T220000Z-bbbb",
+    ]
 
 
 def test_renamed_run_without_chain_entry_is_pending_then_recorded(tmp_path, monkeypatch):
@@ -442,8 +566,15 @@ def test_renamed_run_without_chain_entry_is_pending_then_recorded(tmp_path, monk
 def test_journal_of_another_run_does_not_excuse_a_missing_chain_line(populated):
     root, runs = populated
     _new_run_then_drop_last_line(root, runs)
-    journal = {"staging": "x", "payload": {"run_id": runs["new"].run_id, "path": f"runs/2026/{runs['new'].run_id}",
-                                           "as_of": "2026-01-12", "manifest_sha256": runs["new"].manifest_sha256}}
+    journal = {
+        "staging": "x",
+        "payload": {
+            "run_id": runs["new"].run_id,
+            "path": f"runs/2026/{runs['new'].run_id}",
+            "as_of": "2026-01-12",
+            "manifest_sha256": runs["new"].manifest_sha256,
+        },
+    }
     (root / ".journal" / f"run-{runs['new'].run_id}.json").write_bytes(_canonical(journal))
     problems = archive.verify_archive(root)
     assert [p.where for p in problems] == ["runs/2026/20260119-T220000Z-eeee"]

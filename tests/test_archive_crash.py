@@ -87,7 +87,10 @@ class Launcher:
 
     def __init__(self) -> None:
         self.proc = subprocess.Popen(
-            [sys.executable, "-c", LAUNCHER], stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True,
+            [sys.executable, "-c", LAUNCHER],
+            stdin=subprocess.PIPE,
+            stdout=subprocess.PIPE,
+            text=True,
         )
         assert self.proc.stdout.readline() == "ready\n", "launcher failed to start"
 
@@ -168,8 +171,14 @@ def test_sigkill_at_20_random_points(tmp_path, launcher):
 
 # Steps of RunWriter.finish in protocol order; the run is visible from "renamed" on.
 PUBLISH_STEPS = [
-    ("file-written", 3), ("staged", 1), ("journal-written", 1), ("renamed", 1),
-    ("append-journal-written", 1), ("chain-appended", 1), ("run-appended", 1), ("journal-removed", 1),
+    ("file-written", 3),
+    ("staged", 1),
+    ("journal-written", 1),
+    ("renamed", 1),
+    ("append-journal-written", 1),
+    ("chain-appended", 1),
+    ("run-appended", 1),
+    ("journal-removed", 1),
 ]
 
 
@@ -215,7 +224,13 @@ def test_sigkill_at_each_purge_step(tmp_path, launcher, step):
 
 
 # Steps of record_promotion in protocol order; the promotion is recorded from "chain-appended" on.
-PROMOTE_STEPS = ["promotion-journal-written", "promotion-written", "append-journal-written", "chain-appended", "promotion-appended"]
+PROMOTE_STEPS = [
+    "promotion-journal-written",
+    "promotion-written",
+    "append-journal-written",
+    "chain-appended",
+    "promotion-appended",
+]
 
 
 @pytest.mark.parametrize("step", PROMOTE_STEPS)
@@ -223,8 +238,16 @@ def test_sigkill_at_each_promotion_step(tmp_path, launcher, step):
     from fitaudit.tasks import params
 
     root = tmp_path / "archive"
-    params.write_version(root, "m1", spec={"family": "arima", "order": [1, 0, 0]}, noise={"law": "normal"},
-                         params={"ar1": 0.5, "sigma2": 1.0}, status="candidate", created_by="test", lineage={})
+    params.write_version(
+        root,
+        "m1",
+        spec={"family": "arima", "order": [1, 0, 0]},
+        noise={"law": "normal"},
+        params={"ar1": 0.5, "sigma2": 1.0},
+        status="candidate",
+        created_by="test",
+        lineage={},
+    )
     pid = launcher.start(root, "promote", step)
     assert launcher.wait(pid) == -signal.SIGKILL, f"the worker never reached step {step}"
 
@@ -232,6 +255,8 @@ def test_sigkill_at_each_promotion_step(tmp_path, launcher, step):
     archive.recover(root)
     assert archive.verify_archive(root, include_notes=True) == []
     promoted = (root / "params/m1/2.json").exists()
-    recorded = [e for e in archive.read_chain(root) if e["kind"] == "promotion"] if (root / "chain.jsonl").exists() else []
+    recorded = (
+        [e for e in archive.read_chain(root) if e["kind"] == "promotion"] if (root / "chain.jsonl").exists() else []
+    )
     assert promoted == (len(recorded) == 1) == (PROMOTE_STEPS.index(step) >= PROMOTE_STEPS.index("promotion-written"))
     assert (params.production_version(root, "m1") is not None) == promoted

@@ -76,9 +76,13 @@ def _statsmodels_exog(spec: Arima, n: int, exog: dict | None = None) -> np.ndarr
 
 def _reference_model(spec: Arima, y: np.ndarray, exog: dict | None = None) -> SARIMAX:
     """statsmodels' SARIMAX with the same differenced-series likelihood (test-only reference)."""
-    return SARIMAX(y, exog=_statsmodels_exog(spec, y.size, exog), order=spec.order,
-                   seasonal_order=spec.seasonal if any(spec.seasonal[:3]) else (0, 0, 0, 0),
-                   simple_differencing=True)
+    return SARIMAX(
+        y,
+        exog=_statsmodels_exog(spec, y.size, exog),
+        order=spec.order,
+        seasonal_order=spec.seasonal if any(spec.seasonal[:3]) else (0, 0, 0, 0),
+        simple_differencing=True,
+    )
 
 
 def _reference_vector(spec: Arima, params: dict, exog_names: list[str]) -> np.ndarray:
@@ -121,7 +125,9 @@ def test_exact_likelihood_and_innovations_equal_the_kalman_filter(order, seasona
     y = rng.normal(size=n).cumsum() * 0.2 + rng.normal(size=n)
     names = spec.param_names(list(exog))
     params = dict(zip([nm for nm in names if nm.startswith(("ar", "ma", "sar", "sma"))], arma))
-    params.update({nm: 0.5 + 0.1 * i for i, nm in enumerate(names) if nm in ("intercept", "drift") or nm.startswith("x:")})
+    params.update(
+        {nm: 0.5 + 0.1 * i for i, nm in enumerate(names) if nm in ("intercept", "drift") or nm.startswith("x:")}
+    )
     params["sigma2"] = 1.7
     params = {nm: params[nm] for nm in names}
 
@@ -133,7 +139,7 @@ def test_exact_likelihood_and_innovations_equal_the_kalman_filter(order, seasona
 
     data = spec._prepare(y, exog or None, fitting=False)
     layout_coefs = np.array([params[nm] for nm in names if nm.startswith(("ar", "ma", "sar", "sma"))])
-    beta = np.array([params[nm] for nm in names[len(layout_coefs):-1]])
+    beta = np.array([params[nm] for nm in names[len(layout_coefs) : -1]])
     ar_poly, ma_poly = _polynomials(spec, layout_coefs)
     r = max(len(ar_poly), len(ma_poly)) - 1
     system = _arma.ExactLikelihood(data.rows, r).system(ar_poly, ma_poly)
@@ -177,7 +183,9 @@ def test_likelihood_convention_is_the_differenced_series(nile_series):
     levels = ARIMA(nile_series, order=(0, 1, 1)).loglike(np.array([-0.73, 20600.0]))
     expected = differenced.loglike(np.array([-0.73, 20600.0]))  # source: statsmodels SARIMAX(simple_differencing=True)
     assert ours == pytest.approx(expected, abs=1e-8)
-    assert abs(ours - levels) > 1e-3  # source: statsmodels ARIMA with d = 1 (approximate diffuse prior): about 0.008 apart here
+    assert (
+        abs(ours - levels) > 1e-3
+    )  # source: statsmodels ARIMA with d = 1 (approximate diffuse prior): about 0.008 apart here
 
 
 def _exact_loglik(spec: Arima, y: np.ndarray, params: dict) -> float:
@@ -192,6 +200,7 @@ def _exact_loglik(spec: Arima, y: np.ndarray, params: dict) -> float:
 
 # -- kernel pieces ------------------------------------------------------------------------------
 
+
 def test_autocovariances_match_statsmodels():
     ar_poly = np.array([1.0, -0.5, 0.3, -0.1])
     ma_poly = np.array([1.0, 0.4, -0.2])
@@ -203,15 +212,23 @@ def test_autocovariances_match_statsmodels():
 def test_pacf_transform_gives_stationary_polynomials_and_inverts(pacf):
     phi = _arma.pacf_to_coefficients(np.array(pacf))
     roots = np.roots(np.r_[1.0, -phi][::-1])
-    assert np.all(np.abs(roots) > 1.0)  # source: stationarity = roots outside the unit circle (Box et al. 2015, sect. 3.2)
+    assert np.all(
+        np.abs(roots) > 1.0
+    )  # source: stationarity = roots outside the unit circle (Box et al. 2015, sect. 3.2)
     # source: the Durbin-Levinson step-down inverts the recursion (Brockwell & Davis 1991, sect. 5.2)
     np.testing.assert_allclose(_arma.coefficients_to_pacf(phi), pacf, atol=1e-12)
     assert _arma.is_stationary(phi)
     assert not _arma.is_stationary(np.r_[phi[:-1], 1.0])  # source: |r_p| = phi_p = 1 lies on the boundary
 
 
-@pytest.mark.parametrize("ar_poly, ma_poly", [([1.0, -0.6], [1.0, 0.3]), ([1.0, -0.5, 0.3], [1.0, 0.4, 0.0]),
-                                               ([1.0, -0.2, 0.1, -0.3, 0.05], [1.0, 0.5, 0.1, 0.0, 0.2])])
+@pytest.mark.parametrize(
+    "ar_poly, ma_poly",
+    [
+        ([1.0, -0.6], [1.0, 0.3]),
+        ([1.0, -0.5, 0.3], [1.0, 0.4, 0.0]),
+        ([1.0, -0.2, 0.1, -0.3, 0.05], [1.0, 0.5, 0.1, 0.0, 0.2]),
+    ],
+)
 def test_state_covariance_equals_the_covariance_of_lfiltic_states(ar_poly, ma_poly):
     """Pz against the definition: the lfiltic state of the inverse filter from exact pre-sample moments."""
     ar_poly, ma_poly = np.array(ar_poly), np.array(ma_poly)
@@ -232,6 +249,7 @@ def test_state_covariance_equals_the_covariance_of_lfiltic_states(ar_poly, ma_po
 
 
 # -- fits against statsmodels ----------------------------------------------------------------------
+
 
 def test_arma11_with_intercept_on_inflation_matches_statsmodels(macro):
     y = macro["inflation"]
@@ -270,7 +288,9 @@ def test_airline_model_on_equipment_turnover_matches_statsmodels(equipment_log):
     # statsmodels' default tolerance stops about 0.012 short of the maximum here; a tight BFGS run reaches it
     reference = _reference_model(spec, equipment_log).fit(disp=0, method="bfgs", gtol=1e-8, maxiter=1000)
     _assert_matches_reference(fit, reference, spec, [])  # source: statsmodels SARIMAX(simple_differencing=True) fit
-    assert np.isnan(fit.residuals[:13]).all() and not np.isnan(fit.residuals[13:]).any()  # source: d + sD = 13 values lost
+    assert (
+        np.isnan(fit.residuals[:13]).all() and not np.isnan(fit.residuals[13:]).any()
+    )  # source: d + sD = 13 values lost
 
 
 def test_regression_with_ar2_errors_on_consumption_matches_statsmodels(macro):
@@ -284,7 +304,14 @@ def test_regression_with_ar2_errors_on_consumption_matches_statsmodels(macro):
     approx = ARIMA(y, exog=X, order=(2, 0, 0), trend="c").fit(cov_type="approx").bse
     # source: statsmodels bse from its numerical Hessian (cov_type="approx")
     np.testing.assert_allclose(_reference_vector(spec, fit.extras["bse"], list(exog)), approx, rtol=1e-2)
-    assert list(fit.params) == ["ar1", "ar2", "intercept", "x:income", "x:unemp", "sigma2"]  # source: docs/architecture.md §6 (parameter names)
+    assert list(fit.params) == [
+        "ar1",
+        "ar2",
+        "intercept",
+        "x:income",
+        "x:unemp",
+        "sigma2",
+    ]  # source: docs/architecture.md §6 (parameter names)
 
 
 def test_regression_with_ar2_errors_on_simulated_series_matches_statsmodels():
@@ -301,13 +328,24 @@ def test_regression_with_ar2_errors_on_simulated_series_matches_statsmodels():
 
 # -- published fits ------------------------------------------------------------------------------
 
-@pytest.mark.parametrize("p, published", [
-    # source: statsmodels documentation example "Autoregressive Moving Average (ARMA): Sunspots data"
-    # (examples/notebooks/tsa_arma_0), output of sm.tsa.ARMA(dta, (p, 0)).fit(): const, ar.L1.., aic, bic
-    (2, {"intercept": 49.659542, "ar": [1.390656, -0.688571], "aic": 2622.636338065809, "bic": 2637.5697031734}),
-    (3, {"intercept": 49.749936, "ar": [1.300810, -0.508093, -0.129650], "aic": 2619.4036286964474,
-         "bic": 2638.0703350809363}),
-])
+
+@pytest.mark.parametrize(
+    "p, published",
+    [
+        # source: statsmodels documentation example "Autoregressive Moving Average (ARMA): Sunspots data"
+        # (examples/notebooks/tsa_arma_0), output of sm.tsa.ARMA(dta, (p, 0)).fit(): const, ar.L1.., aic, bic
+        (2, {"intercept": 49.659542, "ar": [1.390656, -0.688571], "aic": 2622.636338065809, "bic": 2637.5697031734}),
+        (
+            3,
+            {
+                "intercept": 49.749936,
+                "ar": [1.300810, -0.508093, -0.129650],
+                "aic": 2619.4036286964474,
+                "bic": 2638.0703350809363,
+            },
+        ),
+    ],
+)
 def test_sunspot_autoregressions_reproduce_the_statsmodels_documentation(sunspot_series, p, published):
     fit = Arima(order=(p, 0, 0), trend="c").fit(sunspot_series)
     ar = [fit.params[f"ar{i + 1}"] for i in range(p)]
@@ -332,7 +370,9 @@ def test_nile_arima011_is_the_durbin_koopman_local_level_fit(nile_series):
     # that statsmodels' diffuse log-likelihood keeps for the first observation
     local_level = UnobservedComponents(nile_series, "llevel", use_exact_diffuse=True)
     value = local_level.loglike(np.array([-theta * sigma2, (1.0 + theta) ** 2 * sigma2]))
-    assert fit.loglik == pytest.approx(value + 0.5 * np.log(2 * np.pi), abs=1e-6)  # source: statsmodels UnobservedComponents
+    assert fit.loglik == pytest.approx(
+        value + 0.5 * np.log(2 * np.pi), abs=1e-6
+    )  # source: statsmodels UnobservedComponents
 
 
 def test_css_autoregression_is_conditional_least_squares(sunspot_series):
@@ -353,7 +393,11 @@ ROUND_TRIPS = [
     (Arima(order=(1, 0, 1), trend="c"), {"ar1": 0.6, "ma1": 0.3, "intercept": 5.0, "sigma2": 2.0}, None),
     (Arima(order=(1, 1, 1), trend="t"), {"ar1": 0.4, "ma1": -0.3, "drift": 0.2, "sigma2": 1.0}, None),
     (Arima(order=(0, 1, 1), seasonal=(0, 1, 1, 12)), {"ma1": -0.4, "sma1": -0.6, "sigma2": 0.5}, None),
-    (Arima(order=(2, 0, 0), trend="c"), {"ar1": 0.5, "ar2": -0.3, "intercept": 1.0, "x:a": 2.0, "x:b": -1.0, "sigma2": 1.0}, 2),
+    (
+        Arima(order=(2, 0, 0), trend="c"),
+        {"ar1": 0.5, "ar2": -0.3, "intercept": 1.0, "x:a": 2.0, "x:b": -1.0, "sigma2": 1.0},
+        2,
+    ),
 ]
 
 
@@ -368,7 +412,12 @@ def test_simulation_round_trip_recovers_parameters_within_three_standard_errors(
     for name, value in truth.items():
         se = fit.extras["bse"][name]
         assert np.isfinite(se) and se > 0
-        assert abs(fit.params[name] - value) < 3.0 * se, (name, fit.params[name], value, se)  # source: asymptotic normality of the MLE
+        assert abs(fit.params[name] - value) < 3.0 * se, (
+            name,
+            fit.params[name],
+            value,
+            se,
+        )  # source: asymptotic normality of the MLE
 
 
 @pytest.mark.parametrize("phi, theta", [(0.9, 0.0), (0.7, 0.5)])
@@ -377,8 +426,12 @@ def test_simulation_starts_in_the_stationary_law(phi, theta):
     spec = Arima(order=(1, 0, 1))
     rng = np.random.default_rng(12)
     first = np.array([spec.simulate({"ar1": phi, "ma1": theta, "sigma2": 2.0}, 1, rng)[0] for _ in range(4000)])
-    gamma0 = 2.0 * (1.0 + 2.0 * phi * theta + theta**2) / (1.0 - phi**2)  # source: Box et al. (2015), ARMA(1,1) variance, sect. 3.4
-    assert first.var() == pytest.approx(gamma0, rel=0.07)  # 4000 draws: relative s.e. of a variance is sqrt(2/4000) = 2.2%
+    gamma0 = (
+        2.0 * (1.0 + 2.0 * phi * theta + theta**2) / (1.0 - phi**2)
+    )  # source: Box et al. (2015), ARMA(1,1) variance, sect. 3.4
+    assert first.var() == pytest.approx(
+        gamma0, rel=0.07
+    )  # 4000 draws: relative s.e. of a variance is sqrt(2/4000) = 2.2%
 
 
 def test_simulate_uses_given_innovations():
@@ -394,11 +447,16 @@ def test_simulate_integrates_and_adds_drift_and_exog():
     spec = Arima(order=(0, 1, 0), trend="t")
     x = np.linspace(0.0, 3.0, 40)
     e = np.random.default_rng(3).normal(size=40)
-    y = spec.simulate({"drift": 0.5, "x:x": 2.0, "sigma2": 1.0}, 40, np.random.default_rng(4), exog={"x": x}, innovations=e)
-    np.testing.assert_allclose(np.diff(y), 0.5 + 2.0 * np.diff(x) + e[1:], atol=1e-12)  # source: the random-walk recursion
+    y = spec.simulate(
+        {"drift": 0.5, "x:x": 2.0, "sigma2": 1.0}, 40, np.random.default_rng(4), exog={"x": x}, innovations=e
+    )
+    np.testing.assert_allclose(
+        np.diff(y), 0.5 + 2.0 * np.diff(x) + e[1:], atol=1e-12
+    )  # source: the random-walk recursion
 
 
 # -- residual identities ---------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("method", ["exact", "css"])
 def test_errors_of_fitted_parameters_equal_the_residuals(method, macro):
@@ -406,7 +464,9 @@ def test_errors_of_fitted_parameters_equal_the_residuals(method, macro):
     exog = {"income": macro["income_growth"]}
     spec = Arima(order=(1, 1, 1), trend="t", method=method)
     fit = spec.fit(y, exog=exog)
-    np.testing.assert_array_equal(spec.errors(y, fit.params, exog=exog), fit.residuals)  # source: residual identity (errors at the fitted parameters)
+    np.testing.assert_array_equal(
+        spec.errors(y, fit.params, exog=exog), fit.residuals
+    )  # source: residual identity (errors at the fitted parameters)
     assert fit.residuals.shape == y.shape and np.isnan(fit.residuals[0]) and np.isfinite(fit.residuals[1:]).all()
     if method == "exact":
         # sum v_t^2 / F_t is the quadratic form of the exact likelihood, whose mean is the ML sigma2
@@ -427,10 +487,18 @@ def test_errors_on_a_longer_series_extend_the_fit_residuals(macro):
 
 # -- specification, protocol and registry ------------------------------------------------------
 
+
 def test_description_names_and_protocol():
     spec = Arima(order=(1, 1, 1), seasonal=(0, 0, 1, 7), trend="t")
     assert spec.describe() == "ARIMA(1,1,1)(0,0,1)7 with drift"  # source: brief (describe format)
-    assert spec.param_names(["temp_c"]) == ["ar1", "ma1", "sma1", "drift", "x:temp_c", "sigma2"]  # source: docs/architecture.md §6
+    assert spec.param_names(["temp_c"]) == [
+        "ar1",
+        "ma1",
+        "sma1",
+        "drift",
+        "x:temp_c",
+        "sigma2",
+    ]  # source: docs/architecture.md §6
     assert spec.n_dynamic_params() == 3  # source: p + q + P + Q
     assert spec.seasonal_period() == 7  # source: the spec's s
     assert Arima(order=(1, 0, 0)).seasonal_period() == 1  # source: ForecastModel.seasonal_period (1 when non-seasonal)
@@ -452,21 +520,25 @@ def test_registry_and_round_trip_through_dict():
     assert fit.to_dict()["params"].keys() == fit.params.keys()
 
 
-@pytest.mark.parametrize("kwargs, match", [
-    ({"order": (1, 1, 0), "trend": "c"}, "intercept .* removed by the differencing .* Use trend='t' for a drift"),
-    ({"order": (0, 1, 1), "seasonal": (0, 1, 1, 12), "trend": "t"}, r"drift .* removed by the differencing"),
-    ({"seasonal": (1, 0, 0, 1)}, "need a period s >= 2"),
-    ({"order": (1, 0)}, "must be 3 non-negative integers"),
-    ({"order": (1, -1, 0)}, "must be 3 non-negative integers"),
-    ({"trend": "linear"}, "The 'trend' parameter of Arima must be one of"),
-    ({"method": "mle"}, "The 'method' parameter of Arima"),
-])
+@pytest.mark.parametrize(
+    "kwargs, match",
+    [
+        ({"order": (1, 1, 0), "trend": "c"}, "intercept .* removed by the differencing .* Use trend='t' for a drift"),
+        ({"order": (0, 1, 1), "seasonal": (0, 1, 1, 12), "trend": "t"}, r"drift .* removed by the differencing"),
+        ({"seasonal": (1, 0, 0, 1)}, "need a period s >= 2"),
+        ({"order": (1, 0)}, "must be 3 non-negative integers"),
+        ({"order": (1, -1, 0)}, "must be 3 non-negative integers"),
+        ({"trend": "linear"}, "The 'trend' parameter of Arima must be one of"),
+        ({"method": "mle"}, "The 'method' parameter of Arima"),
+    ],
+)
 def test_invalid_specifications_are_rejected(kwargs, match):
     with pytest.raises((SpecificationError, InputError), match=match):
         Arima(**kwargs)
 
 
 # -- bad input --------------------------------------------------------------------------------------
+
 
 def test_bad_series_raise_clear_errors():
     spec = Arima(order=(1, 0, 1), trend="c")
@@ -512,7 +584,9 @@ def test_errors_reject_mismatched_or_invalid_parameters():
         spec.errors(y, {"ar1": 0.5, "intercept": 0.0, "sigma2": 1.0})
     with pytest.raises(SpecificationError, match=r"unexpected \['x:temp'\]"):
         spec.errors(y, {"ar1": 0.5, "ma1": 0.1, "intercept": 0.0, "x:temp": 1.0, "sigma2": 1.0})
-    with pytest.raises(SpecificationError, match="AR \\(ar\\*\\) coefficients \\[1.02\\] are not stationary.*add a difference"):
+    with pytest.raises(
+        SpecificationError, match="AR \\(ar\\*\\) coefficients \\[1.02\\] are not stationary.*add a difference"
+    ):
         spec.errors(y, {"ar1": 1.02, "ma1": 0.1, "intercept": 0.0, "sigma2": 1.0})
     with pytest.raises(SpecificationError, match="MA \\(ma\\*\\) coefficients \\[-1.0\\] are not invertible.*Refit"):
         spec.errors(y, {"ar1": 0.5, "ma1": -1.0, "intercept": 0.0, "sigma2": 1.0})

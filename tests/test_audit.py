@@ -66,10 +66,15 @@ def test_drifted_parameters_give_refit(cache):
         # one table per series: with R = 199 a single table's own false-alarm rate varies between
         # about 2 % and 8 % (seed 3's is 8 % here); the 5 % holds on average over tables
         settings = dataclasses.replace(FAST, seed=seed)
-        res = audit_series(ar1_series(np.random.default_rng(seed)), AR1, production=stale, settings=settings, cache=cache)
+        res = audit_series(
+            ar1_series(np.random.default_rng(seed)), AR1, production=stale, settings=settings, cache=cache
+        )
         verdicts.append(res.verdict)
         if res.verdict == "refit":
-            assert res.reasons[0].startswith("Refit: the production parameters no longer fit") and "re-estimated does" in res.reasons[0]
+            assert (
+                res.reasons[0].startswith("Refit: the production parameters no longer fit")
+                and "re-estimated does" in res.reasons[0]
+            )
             assert res.reasons[2].startswith("Refit check") and "promote" not in " ".join(res.reasons)
     assert verdicts.count("refit") >= 4, verdicts
 
@@ -80,8 +85,19 @@ def test_neglected_seasonality_is_respecify_and_candidates_find_it(cache):
     y = seasonal.simulate({"ar1": 0.5, "sar1": 0.6, "intercept": 10.0, "sigma2": 1.0}, 400, rng)
     res = audit_series(y, AR1, settings=FAST, cache=cache)
     assert res.verdict == "respecify"
-    assert res.reasons[0].startswith("Respecify:") and "correlated" in res.reasons[0] and "autocorrelated" in res.reasons[1]
-    cands = search_candidates(y, AR1, settings=FAST, cache=cache, specs=[seasonal.to_dict(), {"family": "arima", "order": [2, 0, 0], "trend": "c"}], laws=[])
+    assert (
+        res.reasons[0].startswith("Respecify:")
+        and "correlated" in res.reasons[0]
+        and "autocorrelated" in res.reasons[1]
+    )
+    cands = search_candidates(
+        y,
+        AR1,
+        settings=FAST,
+        cache=cache,
+        specs=[seasonal.to_dict(), {"family": "arima", "order": [2, 0, 0], "trend": "c"}],
+        laws=[],
+    )
     assert [c.spec["seasonal"] for c in cands] == [[1, 0, 0, 7]]
     assert cands[0].passed and cands[0].spec_text.startswith("ARIMA(1,0,0)(1,0,0)7")
 
@@ -125,7 +141,10 @@ def test_results_are_deterministic_and_json_ready(cache):
     y = ar1_series(np.random.default_rng(5))
     a = audit_series(y, AR1, production=TRUE, settings=FAST)
     b = audit_series(y, AR1, production=TRUE, settings=FAST, cache=cache)
-    ja, jb = json.dumps(a.to_dict(), sort_keys=True, allow_nan=False), json.dumps(b.to_dict(), sort_keys=True, allow_nan=False)
+    ja, jb = (
+        json.dumps(a.to_dict(), sort_keys=True, allow_nan=False),
+        json.dumps(b.to_dict(), sort_keys=True, allow_nan=False),
+    )
     assert ja == jb
     assert "timings" not in a.to_dict() and a.timings["total_s"] > 0
 
@@ -144,7 +163,15 @@ def test_other_calibrations_run(calibration):
 def test_every_family_runs_through_audit_series(cache):
     rng = np.random.default_rng(7)
     hw = ExpSmoothing(trend="add", seasonal="add", period=7)
-    params = {"alpha": 0.3, "beta": 0.02, "gamma": 0.1, "l0": 20.0, "b0": 0.05, **{f"s{k}": v for k, v in enumerate([1.0, 0.5, 0.0, -0.5, -1.0, 0.8])}, "sigma2": 0.5}
+    params = {
+        "alpha": 0.3,
+        "beta": 0.02,
+        "gamma": 0.1,
+        "l0": 20.0,
+        "b0": 0.05,
+        **{f"s{k}": v for k, v in enumerate([1.0, 0.5, 0.0, -0.5, -1.0, 0.8])},
+        "sigma2": 0.5,
+    }
     y = hw.simulate(params, 400, rng)
     res = audit_series(y, hw, production=params, settings=FAST, cache=cache)
     assert res.verdict in ("pass", "refit") and res.refit.ok and res.production.ok
@@ -181,7 +208,10 @@ def test_fleet_adjustment_matches_statsmodels_and_persistence_escalates(cache):
 
 
 def test_settings_errors_have_one_shape():
-    with pytest.raises(InputError, match=r"The 'level' parameter of AuditSettings must be a float in the range \(0, 0.5\)\. Got 0.7 instead\."):
+    with pytest.raises(
+        InputError,
+        match=r"The 'level' parameter of AuditSettings must be a float in the range \(0, 0.5\)\. Got 0.7 instead\.",
+    ):
         AuditSettings(level=0.7)
     with pytest.raises(InputError, match=r"'calibration' parameter of AuditSettings must be one of"):
         AuditSettings(calibration="exact")
@@ -194,7 +224,9 @@ def test_refit_check_size_under_the_null(cache):
     rejections = 0
     reps = 120
     for _ in range(reps):
-        res = audit_series(ar1_series(rng, n=200), AR1, settings=AuditSettings(replicates=199, seed=5, audit_window=60), cache=cache)
+        res = audit_series(
+            ar1_series(rng, n=200), AR1, settings=AuditSettings(replicates=199, seed=5, audit_window=60), cache=cache
+        )
         rejections += not res.refit.passed()
     # common practice: binomial(120, 0.05) has sd ~0.02; generous band for a fast test
     assert rejections / reps <= 0.12

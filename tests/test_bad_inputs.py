@@ -144,8 +144,9 @@ def _missing_value_column(c: Ctx, case: Case):
 
 def _extra_columns(c: Ctx, case: Case):
     t = days()
-    table = c.one_series_table(notes=pa.array(["<b>n</b>"] * len(t)), flag=pa.array([True] * len(t)),
-                               other=pa.array(np.arange(len(t))))
+    table = c.one_series_table(
+        notes=pa.array(["<b>n</b>"] * len(t)), flag=pa.array([True] * len(t)), other=pa.array(np.arange(len(t)))
+    )
     c.fleet.model(case.id, c.file_source("extra", table), "s")
 
 
@@ -191,7 +192,10 @@ def _mixed_time_zones(c: Ctx, case: Case):
     half = len(t) // 2
     aware = pa.array(t[:half], pa.timestamp("us", tz="UTC"))
     write_parquet(folder / "2026-h1.parquet", pa.table({"series": ["s"] * half, "date": aware, "y": y[:half]}))
-    write_parquet(folder / "2026-h2.parquet", pa.table({"series": ["s"] * (len(t) - half), "date": pa.array(t[half:]), "y": y[half:]}))
+    write_parquet(
+        folder / "2026-h2.parquet",
+        pa.table({"series": ["s"] * (len(t) - half), "date": pa.array(t[half:]), "y": y[half:]}),
+    )
     c.fleet.source("mixedtz", "data/mixedtz")
     c.fleet.model(case.id, "mixedtz", "s")
 
@@ -308,130 +312,430 @@ ERROR, SHORT = "error", "insufficient"
 
 CASES = [
     # -- registry entries (the entry is rejected; the rest of the registry is audited) ------------
-    Case("reg-unknown-key", "unknown key in a model entry", ERROR,
-         (FILE, r"models\[\d+\]\.colour", r"unknown key 'colour'", r"valid keys are"), _registry_entry(colour="teal")),
-    Case("dup-id", "duplicate model id (the second entry)", ERROR,
-         (FILE, r"models\[\d+\]\.id", r"duplicate id 'dup-id': already used on line \d+", r"give every model entry its own id"),
-         _duplicate_id),
-    Case("reg-unknown-family", "unknown model family", ERROR,
-         (FILE, r"models\[\d+\]\.spec\.family", r"prophet", r"arima"), _registry_entry(spec={"family": "prophet"})),
-    Case("reg-unknown-noise", "unknown noise law", ERROR,
-         (FILE, r"models\[\d+\]\.noise", r"gaussian", r"normal"), _registry_entry(noise="gaussian")),
-    Case("reg-unknown-hyperparameter", "misspelt spec key", ERROR,
-         (FILE, r"models\[\d+\]\.spec\.ordr", r"unknown hyperparameter 'ordr'", r"did you mean 'order'"),
-         _registry_entry(spec={"family": "arima", "ordr": [1, 0, 0]})),
-    Case("reg-missing-series", "required key missing from a model entry", ERROR,
-         (FILE, r"models\[\d+\]\.series", r"missing; required in every model entry"), _missing_key("series")),
-    Case("reg-tier-text", "wrong type (text for an integer field)", ERROR,
-         (FILE, r"models\[\d+\]\.tier", r"expected an integer from 1 to 3, got 'high'"), _registry_entry(tier="high")),
-    Case("reg-audit-longer-than-fit", "audit window longer than the fit window", ERROR,
-         (FILE, r"models\[\d+\]\.windows\.audit", r"audit window \(60\) is longer than the fit window \(30\)"),
-         _registry_entry(windows={"fit": 30, "audit": 60})),
-    Case("reg-unknown-source", "model names an undeclared source", ERROR,
-         (FILE, r"models\[\d+\]\.source", r"unknown source 'nowhere'", r"declared sources are"), _unknown_source),
-    Case("reg-undeclared-exog", "exogenous column not declared by the source", ERROR,
-         (FILE, r"models\[\d+\]\.exogenous\[0\]", r"'rain_mm' is not declared by source 'main'", r"sources\.main\.exogenous"),
-         _undeclared_exog),
-    Case("reg-bad-source", "source with an unknown frequency", ERROR,
-         (FILE, r"source 'fortnightly' has 1 problem\(s\) and was dropped", r"sources\.fortnightly\.frequency", r"Fix the source entry"),
-         _bad_source_entry),
+    Case(
+        "reg-unknown-key",
+        "unknown key in a model entry",
+        ERROR,
+        (FILE, r"models\[\d+\]\.colour", r"unknown key 'colour'", r"valid keys are"),
+        _registry_entry(colour="teal"),
+    ),
+    Case(
+        "dup-id",
+        "duplicate model id (the second entry)",
+        ERROR,
+        (
+            FILE,
+            r"models\[\d+\]\.id",
+            r"duplicate id 'dup-id': already used on line \d+",
+            r"give every model entry its own id",
+        ),
+        _duplicate_id,
+    ),
+    Case(
+        "reg-unknown-family",
+        "unknown model family",
+        ERROR,
+        (FILE, r"models\[\d+\]\.spec\.family", r"prophet", r"arima"),
+        _registry_entry(spec={"family": "prophet"}),
+    ),
+    Case(
+        "reg-unknown-noise",
+        "unknown noise law",
+        ERROR,
+        (FILE, r"models\[\d+\]\.noise", r"gaussian", r"normal"),
+        _registry_entry(noise="gaussian"),
+    ),
+    Case(
+        "reg-unknown-hyperparameter",
+        "misspelt spec key",
+        ERROR,
+        (FILE, r"models\[\d+\]\.spec\.ordr", r"unknown hyperparameter 'ordr'", r"did you mean 'order'"),
+        _registry_entry(spec={"family": "arima", "ordr": [1, 0, 0]}),
+    ),
+    Case(
+        "reg-missing-series",
+        "required key missing from a model entry",
+        ERROR,
+        (FILE, r"models\[\d+\]\.series", r"missing; required in every model entry"),
+        _missing_key("series"),
+    ),
+    Case(
+        "reg-tier-text",
+        "wrong type (text for an integer field)",
+        ERROR,
+        (FILE, r"models\[\d+\]\.tier", r"expected an integer from 1 to 3, got 'high'"),
+        _registry_entry(tier="high"),
+    ),
+    Case(
+        "reg-audit-longer-than-fit",
+        "audit window longer than the fit window",
+        ERROR,
+        (FILE, r"models\[\d+\]\.windows\.audit", r"audit window \(60\) is longer than the fit window \(30\)"),
+        _registry_entry(windows={"fit": 30, "audit": 60}),
+    ),
+    Case(
+        "reg-unknown-source",
+        "model names an undeclared source",
+        ERROR,
+        (FILE, r"models\[\d+\]\.source", r"unknown source 'nowhere'", r"declared sources are"),
+        _unknown_source,
+    ),
+    Case(
+        "reg-undeclared-exog",
+        "exogenous column not declared by the source",
+        ERROR,
+        (
+            FILE,
+            r"models\[\d+\]\.exogenous\[0\]",
+            r"'rain_mm' is not declared by source 'main'",
+            r"sources\.main\.exogenous",
+        ),
+        _undeclared_exog,
+    ),
+    Case(
+        "reg-bad-source",
+        "source with an unknown frequency",
+        ERROR,
+        (
+            FILE,
+            r"source 'fortnightly' has 1 problem\(s\) and was dropped",
+            r"sources\.fortnightly\.frequency",
+            r"Fix the source entry",
+        ),
+        _bad_source_entry,
+    ),
     # -- extracts -----------------------------------------------------------------------------
-    Case("x-missing-value-column", "value column missing from the extract", ERROR,
-         (r"model 'x-missing-value-column'", r"source 'novalue'", r"column 'y' is in none of the files", r"available columns: .*'load'", r"Fix:"),
-         _missing_value_column),
+    Case(
+        "x-missing-value-column",
+        "value column missing from the extract",
+        ERROR,
+        (
+            r"model 'x-missing-value-column'",
+            r"source 'novalue'",
+            r"column 'y' is in none of the files",
+            r"available columns: .*'load'",
+            r"Fix:",
+        ),
+        _missing_value_column,
+    ),
     Case("x-extra-columns", "extra columns in the extract (ignored)", AUDITED, (), _extra_columns),
-    Case("x-value-as-text", "value column of the wrong type (text)", ERROR,
-         (r"model 'x-value-as-text'", r"source 'textvalue'", r"column 'y' has type string; expected a numeric column", r"Fix: write the column with a numeric"),
-         _value_as_text),
-    Case("x-time-as-text", "time column of the wrong type (text)", ERROR,
-         (r"model 'x-time-as-text'", r"source 'texttime'", r"time column 'date' has type string; expected a timestamp", r"Fix:"),
-         _time_as_text),
-    Case("x-empty-file", "empty (0-byte) extract file", ERROR,
-         (r"model 'x-empty-file'", r"source 'emptyfile'", r"emptyfile\.parquet: empty file \(0 bytes\)", r"Fix: rewrite the extract as Parquet"),
-         _empty_file),
-    Case("x-corrupt-file", "corrupt Parquet bytes", ERROR,
-         (r"model 'x-corrupt-file'", r"source 'corrupt'", r"corrupt\.parquet: not readable as Parquet", r"Fix: rewrite the extract"),
-         _corrupt_file),
-    Case("x-folder-unreadable-file", "folder with one unreadable file among good ones", ERROR,
-         (r"model 'x-folder-unreadable-file'", r"source 'folder'", r"series 'c'", r"could not be read and may hold it: part-c\.parquet: not readable as Parquet", r"Fix: repair or rewrite the unreadable files"),
-         _folder_with_bad_file),
-    Case("x-missing-path", "source path does not exist", ERROR,
-         (r"model 'x-missing-path'", r"source 'gone'", r"never-written\.parquet", r"does not exist", r"Fix: correct sources\.gone\.uri"),
-         _missing_path),
-    Case("x-mixed-time-zones", "time-zone-aware and naive timestamps in one series", ERROR,
-         (r"model 'x-mixed-time-zones'", r"source 'mixedtz'", r"time-zone-aware timestamps \('2026-h1\.parquet'\)", r"naive timestamps \('2026-h2\.parquet'\)", r"Fix: write every file with UTC timestamps"),
-         _mixed_time_zones),
-    Case("x-series-absent", "series key absent from the source", ERROR,
-         (r"model 'x-series-absent'", r"source 'main'", r"series 'no-such-series'", r"is not in source 'main'", r"keys present: ", r"Fix: correct the model's 'series'"),
-         _series_absent),
+    Case(
+        "x-value-as-text",
+        "value column of the wrong type (text)",
+        ERROR,
+        (
+            r"model 'x-value-as-text'",
+            r"source 'textvalue'",
+            r"column 'y' has type string; expected a numeric column",
+            r"Fix: write the column with a numeric",
+        ),
+        _value_as_text,
+    ),
+    Case(
+        "x-time-as-text",
+        "time column of the wrong type (text)",
+        ERROR,
+        (
+            r"model 'x-time-as-text'",
+            r"source 'texttime'",
+            r"time column 'date' has type string; expected a timestamp",
+            r"Fix:",
+        ),
+        _time_as_text,
+    ),
+    Case(
+        "x-empty-file",
+        "empty (0-byte) extract file",
+        ERROR,
+        (
+            r"model 'x-empty-file'",
+            r"source 'emptyfile'",
+            r"emptyfile\.parquet: empty file \(0 bytes\)",
+            r"Fix: rewrite the extract as Parquet",
+        ),
+        _empty_file,
+    ),
+    Case(
+        "x-corrupt-file",
+        "corrupt Parquet bytes",
+        ERROR,
+        (
+            r"model 'x-corrupt-file'",
+            r"source 'corrupt'",
+            r"corrupt\.parquet: not readable as Parquet",
+            r"Fix: rewrite the extract",
+        ),
+        _corrupt_file,
+    ),
+    Case(
+        "x-folder-unreadable-file",
+        "folder with one unreadable file among good ones",
+        ERROR,
+        (
+            r"model 'x-folder-unreadable-file'",
+            r"source 'folder'",
+            r"series 'c'",
+            r"could not be read and may hold it: part-c\.parquet: not readable as Parquet",
+            r"Fix: repair or rewrite the unreadable files",
+        ),
+        _folder_with_bad_file,
+    ),
+    Case(
+        "x-missing-path",
+        "source path does not exist",
+        ERROR,
+        (
+            r"model 'x-missing-path'",
+            r"source 'gone'",
+            r"never-written\.parquet",
+            r"does not exist",
+            r"Fix: correct sources\.gone\.uri",
+        ),
+        _missing_path,
+    ),
+    Case(
+        "x-mixed-time-zones",
+        "time-zone-aware and naive timestamps in one series",
+        ERROR,
+        (
+            r"model 'x-mixed-time-zones'",
+            r"source 'mixedtz'",
+            r"time-zone-aware timestamps \('2026-h1\.parquet'\)",
+            r"naive timestamps \('2026-h2\.parquet'\)",
+            r"Fix: write every file with UTC timestamps",
+        ),
+        _mixed_time_zones,
+    ),
+    Case(
+        "x-series-absent",
+        "series key absent from the source",
+        ERROR,
+        (
+            r"model 'x-series-absent'",
+            r"source 'main'",
+            r"series 'no-such-series'",
+            r"is not in source 'main'",
+            r"keys present: ",
+            r"Fix: correct the model's 'series'",
+        ),
+        _series_absent,
+    ),
     # -- rows of a series -----------------------------------------------------------------------
-    Case("d-duplicate-time", "duplicate timestamps", ERROR,
-         (r"model 'd-duplicate-time'", r"source 'main'", r"2026-08-19 \(rows \d+, \d+\)", r"appear more than once", r"Fix: keep one row per series and timestamp"),
-         _main_with(_duplicate_time)),
-    Case("d-unsorted", "rows out of time order", ERROR,
-         (r"model 'd-unsorted'", r"source 'main'", r"row \d+ \(2026-08-09\) follows row \d+ \(2026-08-10\)", r"Fix: sort the extract"),
-         _main_with(_swap)),
-    Case("d-off-grid", "irregular timestamp (off the daily grid)", ERROR,
-         (r"model 'd-off-grid'", r"source 'main'", r"off the grid of frequency 'D'", r"2026-08-24T12:00:00", r"Fix: align the timestamps"),
-         _main_with(_off_grid)),
-    Case("d-gap", "missing days (gap against the frequency)", ERROR,
-         (r"model 'd-gap'", r"source 'main'", r"5 timestamp\(s\) missing against frequency 'D'", r"first: 2026-07-30", r"Fix: fill the gaps"),
-         _main_with(_gap)),
-    Case("d-null-time", "a row without a timestamp", ERROR,
-         (r"model 'd-null-time'", r"source 'main'", r"1 row\(s\) have no timestamp", r"every row needs a timestamp"),
-         _main_with(_null_time)),
-    Case("d-nan", "NaN value", ERROR,
-         (r"model 'd-nan'", r"source 'main'", r"column 'y' has 1 missing or NaN value\(s\) at 2026-08-08 \(rows \d+\)", r"Fix: impute or remove these rows"),
-         _main_with(_set(N_DAYS - 21, np.nan))),
-    Case("d-inf", "infinite value", ERROR,
-         (r"model 'd-inf'", r"source 'main'", r"column 'y' has 1 infinite value\(s\) at 2026-08-27", r"Fix:"),
-         _main_with(_set(N_DAYS - 2, np.inf))),
-    Case("d-nan-before-window", "NaN before the fit window (does not stop the audit)", AUDITED, (),
-         _main_with(_set(5, np.nan))),
-    Case("d-too-short", "series shorter than the fit window", SHORT,
-         (r"model 'd-too-short'", r"source 'main'", r"series 'd-too-short'", r"60 observation\(s\), but at least 200 are needed", r"Fix: extend the extract's history, or shorten the windows"),
-         _main_with(_last(60))),
-    Case("d-window-longer-than-data", "fit window longer than all the data", SHORT,
-         (r"model 'd-window-longer-than-data'", r"source 'main'", r"240 observation\(s\), but at least 400 are needed", r"Fix:"),
-         _main_with(lambda t, y, rng: (t, y), fit=400)),
-    Case("d-before-as-of", "as-of date before all of the series' data", ERROR,
-         (r"model 'd-before-as-of'", r"source 'main'", r"series 'd-before-as-of': has no rows between \S+ and 2026-08-28T23:59:59", r"Fix: check the as-of date and the windows"),
-         _main_with(_after_as_of)),
-    Case("d-short-for-orders", "series shorter than the model orders need", SHORT,
-         (r"model 'd-short-for-orders'", r"observations", r"(history|window|longer)"),
-         _main_with(lambda t, y, rng: (t, y), fit=40, audit=20,
-                    spec={"family": "arima", "order": [2, 1, 1], "seasonal": [1, 1, 1, 30], "trend": "n"})),
+    Case(
+        "d-duplicate-time",
+        "duplicate timestamps",
+        ERROR,
+        (
+            r"model 'd-duplicate-time'",
+            r"source 'main'",
+            r"2026-08-19 \(rows \d+, \d+\)",
+            r"appear more than once",
+            r"Fix: keep one row per series and timestamp",
+        ),
+        _main_with(_duplicate_time),
+    ),
+    Case(
+        "d-unsorted",
+        "rows out of time order",
+        ERROR,
+        (
+            r"model 'd-unsorted'",
+            r"source 'main'",
+            r"row \d+ \(2026-08-09\) follows row \d+ \(2026-08-10\)",
+            r"Fix: sort the extract",
+        ),
+        _main_with(_swap),
+    ),
+    Case(
+        "d-off-grid",
+        "irregular timestamp (off the daily grid)",
+        ERROR,
+        (
+            r"model 'd-off-grid'",
+            r"source 'main'",
+            r"off the grid of frequency 'D'",
+            r"2026-08-24T12:00:00",
+            r"Fix: align the timestamps",
+        ),
+        _main_with(_off_grid),
+    ),
+    Case(
+        "d-gap",
+        "missing days (gap against the frequency)",
+        ERROR,
+        (
+            r"model 'd-gap'",
+            r"source 'main'",
+            r"5 timestamp\(s\) missing against frequency 'D'",
+            r"first: 2026-07-30",
+            r"Fix: fill the gaps",
+        ),
+        _main_with(_gap),
+    ),
+    Case(
+        "d-null-time",
+        "a row without a timestamp",
+        ERROR,
+        (r"model 'd-null-time'", r"source 'main'", r"1 row\(s\) have no timestamp", r"every row needs a timestamp"),
+        _main_with(_null_time),
+    ),
+    Case(
+        "d-nan",
+        "NaN value",
+        ERROR,
+        (
+            r"model 'd-nan'",
+            r"source 'main'",
+            r"column 'y' has 1 missing or NaN value\(s\) at 2026-08-08 \(rows \d+\)",
+            r"Fix: impute or remove these rows",
+        ),
+        _main_with(_set(N_DAYS - 21, np.nan)),
+    ),
+    Case(
+        "d-inf",
+        "infinite value",
+        ERROR,
+        (r"model 'd-inf'", r"source 'main'", r"column 'y' has 1 infinite value\(s\) at 2026-08-27", r"Fix:"),
+        _main_with(_set(N_DAYS - 2, np.inf)),
+    ),
+    Case(
+        "d-nan-before-window",
+        "NaN before the fit window (does not stop the audit)",
+        AUDITED,
+        (),
+        _main_with(_set(5, np.nan)),
+    ),
+    Case(
+        "d-too-short",
+        "series shorter than the fit window",
+        SHORT,
+        (
+            r"model 'd-too-short'",
+            r"source 'main'",
+            r"series 'd-too-short'",
+            r"60 observation\(s\), but at least 200 are needed",
+            r"Fix: extend the extract's history, or shorten the windows",
+        ),
+        _main_with(_last(60)),
+    ),
+    Case(
+        "d-window-longer-than-data",
+        "fit window longer than all the data",
+        SHORT,
+        (
+            r"model 'd-window-longer-than-data'",
+            r"source 'main'",
+            r"240 observation\(s\), but at least 400 are needed",
+            r"Fix:",
+        ),
+        _main_with(lambda t, y, rng: (t, y), fit=400),
+    ),
+    Case(
+        "d-before-as-of",
+        "as-of date before all of the series' data",
+        ERROR,
+        (
+            r"model 'd-before-as-of'",
+            r"source 'main'",
+            r"series 'd-before-as-of': has no rows between \S+ and 2026-08-28T23:59:59",
+            r"Fix: check the as-of date and the windows",
+        ),
+        _main_with(_after_as_of),
+    ),
+    Case(
+        "d-short-for-orders",
+        "series shorter than the model orders need",
+        SHORT,
+        (r"model 'd-short-for-orders'", r"observations", r"(history|window|longer)"),
+        _main_with(
+            lambda t, y, rng: (t, y),
+            fit=40,
+            audit=20,
+            spec={"family": "arima", "order": [2, 1, 1], "seasonal": [1, 1, 1, 30], "trend": "n"},
+        ),
+    ),
     Case("d-huge-values", "values of 1e300", (ERROR,) + AUDITED, (), _main_with(_huge)),
     Case("d-tiny-values", "values of 1e-300", (ERROR,) + AUDITED, (), _main_with(lambda t, y, rng: (t, y * 1e-302))),
     Case("d-constant", "constant series", (ERROR, SHORT), (r"model 'd-constant'",), _main_with(_constant)),
-    Case("d-negative-multiplicative", "negative values under a multiplicative season", ERROR,
-         (r"model 'd-negative-multiplicative'", r"(positive|negative)"),
-         _main_with(_negative, spec={"family": "smoothing", "seasonal": "mul", "period": 7})),
-    Case("d-poisson-on-real-values", "a count noise law on negative, non-integer values", ERROR,
-         (r"model 'd-poisson-on-real-values'", r"(count|integer|negative)"),
-         _main_with(_negative, noise="poisson")),
-    Case("d-exog-missing-in-audit-window", "exogenous input missing in the audit window", ERROR,
-         (r"model 'd-exog-missing-in-audit-window'", r"source 'main'", r"exogenous column 'x' has 1 missing or NaN value\(s\) at 2026-08-22", r"Fix: fill them in the extract, or remove the column"),
-         _exog_gap),
-    Case("d-exog-not-in-extract", "exogenous column declared but absent from the extract", ERROR,
-         (r"model 'd-exog-not-in-extract'", r"source 'main'", r"column 'x_absent' is in none of the files", r"Fix: correct the column name in the registry or add the column"),
-         _exog_not_in_extract),
-    Case("d-no-convergence", "optimiser that does not converge (maxiter 1)", ERROR,
-         (r"model 'd-no-convergence'", r"did not converge", r"raise maxiter|simplify the orders"),
-         _main_with(lambda t, y, rng: (t, y), spec={**AR1, "order": [2, 0, 2], "maxiter": 1})),
+    Case(
+        "d-negative-multiplicative",
+        "negative values under a multiplicative season",
+        ERROR,
+        (r"model 'd-negative-multiplicative'", r"(positive|negative)"),
+        _main_with(_negative, spec={"family": "smoothing", "seasonal": "mul", "period": 7}),
+    ),
+    Case(
+        "d-poisson-on-real-values",
+        "a count noise law on negative, non-integer values",
+        ERROR,
+        (r"model 'd-poisson-on-real-values'", r"(count|integer|negative)"),
+        _main_with(_negative, noise="poisson"),
+    ),
+    Case(
+        "d-exog-missing-in-audit-window",
+        "exogenous input missing in the audit window",
+        ERROR,
+        (
+            r"model 'd-exog-missing-in-audit-window'",
+            r"source 'main'",
+            r"exogenous column 'x' has 1 missing or NaN value\(s\) at 2026-08-22",
+            r"Fix: fill them in the extract, or remove the column",
+        ),
+        _exog_gap,
+    ),
+    Case(
+        "d-exog-not-in-extract",
+        "exogenous column declared but absent from the extract",
+        ERROR,
+        (
+            r"model 'd-exog-not-in-extract'",
+            r"source 'main'",
+            r"column 'x_absent' is in none of the files",
+            r"Fix: correct the column name in the registry or add the column",
+        ),
+        _exog_not_in_extract,
+    ),
+    Case(
+        "d-no-convergence",
+        "optimiser that does not converge (maxiter 1)",
+        ERROR,
+        (r"model 'd-no-convergence'", r"did not converge", r"raise maxiter|simplify the orders"),
+        _main_with(lambda t, y, rng: (t, y), spec={**AR1, "order": [2, 0, 2], "maxiter": 1}),
+    ),
     # -- production parameter versions ----------------------------------------------------------
-    Case("p-non-stationary", "production version with a non-stationary AR coefficient", ERROR,
-         (r"model 'p-non-stationary'", r"(stationar|explosive|unit)"),
-         _production({"ar1": 1.6, "intercept": 50.0, "sigma2": 1.0})),
-    Case("p-other-spec", "production version fitted for another spec", ERROR,
-         (r"model 'p-other-spec'", r"production parameter version 2 was fitted for spec", r"\[2, 0, 0\]", r"fitaudit refit --model p-other-spec"),
-         _production({"ar1": 0.4, "ar2": 0.1, "intercept": 50.0, "sigma2": 1.0}, spec={**AR1, "order": [2, 0, 0]})),
-    Case("p-wrong-parameter-names", "production version lacking a parameter of the spec", ERROR,
-         (r"model 'p-wrong-parameter-names'", r"ar1"),
-         _production({"intercept": 50.0, "sigma2": 1.0})),
-    Case("p-negative-variance", "production version with a negative noise variance", ERROR,
-         (r"model 'p-negative-variance'", r"sigma2"),
-         _production({"ar1": 0.5, "intercept": 50.0, "sigma2": -1.0})),
+    Case(
+        "p-non-stationary",
+        "production version with a non-stationary AR coefficient",
+        ERROR,
+        (r"model 'p-non-stationary'", r"(stationar|explosive|unit)"),
+        _production({"ar1": 1.6, "intercept": 50.0, "sigma2": 1.0}),
+    ),
+    Case(
+        "p-other-spec",
+        "production version fitted for another spec",
+        ERROR,
+        (
+            r"model 'p-other-spec'",
+            r"production parameter version 2 was fitted for spec",
+            r"\[2, 0, 0\]",
+            r"fitaudit refit --model p-other-spec",
+        ),
+        _production({"ar1": 0.4, "ar2": 0.1, "intercept": 50.0, "sigma2": 1.0}, spec={**AR1, "order": [2, 0, 0]}),
+    ),
+    Case(
+        "p-wrong-parameter-names",
+        "production version lacking a parameter of the spec",
+        ERROR,
+        (r"model 'p-wrong-parameter-names'", r"ar1"),
+        _production({"intercept": 50.0, "sigma2": 1.0}),
+    ),
+    Case(
+        "p-negative-variance",
+        "production version with a negative noise variance",
+        ERROR,
+        (r"model 'p-negative-variance'", r"sigma2"),
+        _production({"ar1": 0.5, "intercept": 50.0, "sigma2": -1.0}),
+    ),
     # -- healthy models --------------------------------------------------------------------------
     Case("ok-plain", "healthy AR(1)", AUDITED, (), _healthy),
     Case("ok-production", "healthy AR(1) with a production version", AUDITED, (), _healthy_with_production),
@@ -533,8 +837,11 @@ def test_as_of_date_before_all_data_still_completes_the_run(fleet_run):
     doc = results_of(run)
     assert doc["summary"]["registered"] == len(fleet.models) == doc["summary"]["error"] + doc["summary"]["insufficient"]
     plain = _case_record(doc, "ok-plain")
-    assert re.search(r"model 'ok-plain': source 'main', series 'ok-plain': has no rows between \S+ and 2025-08-28T23:59:59\. "
-                     r"Fix: check the as-of date", plain["reasons"][0])
+    assert re.search(
+        r"model 'ok-plain': source 'main', series 'ok-plain': has no rows between \S+ and 2025-08-28T23:59:59\. "
+        r"Fix: check the as-of date",
+        plain["reasons"][0],
+    )
     assert verify_archive(run["archive"]) == []
 
 
@@ -543,21 +850,48 @@ def test_as_of_date_before_all_data_still_completes_the_run(fleet_run):
 # ------------------------------------------------------------------------------------------
 GOOD_HEAD = "version: 1\npolicy: {justification: fixed in advance, approved_by: 'T. Approver, tests'}\n"
 GOOD_SOURCES = "sources:\n  main: {uri: data/main.parquet, key: series, time: date, value: y, frequency: D}\n"
-GOOD_MODELS = ("models:\n  - {id: m1, owner: tests, tier: 2, source: main, series: s, spec: {family: arima, order: [1, 0, 0]},"
-               " noise: normal, windows: {fit: 100, audit: 20}}\n")
+GOOD_MODELS = (
+    "models:\n  - {id: m1, owner: tests, tier: 2, source: main, series: s, spec: {family: arima, order: [1, 0, 0]},"
+    " noise: normal, windows: {fit: 100, audit: 20}}\n"
+)
 
 FATAL = [
     ("yaml-syntax", GOOD_HEAD + GOOD_SOURCES + "models:\n  - id: [m1\n", r"registry\.yaml:\d+: YAML syntax error"),
-    ("object-tag", GOOD_HEAD + GOOD_SOURCES + GOOD_MODELS + "extra: !!python/object/apply:os.system ['touch pwned']\n",
-     r"registry\.yaml:7: the tag 'tag:yaml\.org,2002:python/object/apply:os\.system' is refused"),
-    ("unknown-top-key", GOOD_HEAD + GOOD_SOURCES + GOOD_MODELS + "modles: []\n", r"registry\.yaml:7: modles: unknown key 'modles' \(did you mean 'models'\?\)"),
-    ("version", GOOD_HEAD.replace("version: 1", "version: 2") + GOOD_SOURCES + GOOD_MODELS, r"registry\.yaml:1: version: expected 1"),
-    ("no-approver", GOOD_HEAD.replace(", approved_by: 'T. Approver, tests'", "") + GOOD_SOURCES + GOOD_MODELS,
-     r"registry\.yaml:2: policy\.approved_by: missing; every threshold needs a written justification and an approver"),
-    ("models-not-a-list", GOOD_HEAD + GOOD_SOURCES + "models: {id: m1}\n", r"registry\.yaml:5: models: expected a list of model entries"),
-    ("sources-not-a-mapping", GOOD_HEAD + "sources: [main]\n" + GOOD_MODELS, r"registry\.yaml:3: sources: expected a mapping of source names"),
-    ("level-out-of-range", GOOD_HEAD.replace("{justification", "{level: 5, justification") + GOOD_SOURCES + GOOD_MODELS,
-     r"registry\.yaml:2: policy\.level: expected a number in the open interval \(0, 0\.5\), got 5"),
+    (
+        "object-tag",
+        GOOD_HEAD + GOOD_SOURCES + GOOD_MODELS + "extra: !!python/object/apply:os.system ['touch pwned']\n",
+        r"registry\.yaml:7: the tag 'tag:yaml\.org,2002:python/object/apply:os\.system' is refused",
+    ),
+    (
+        "unknown-top-key",
+        GOOD_HEAD + GOOD_SOURCES + GOOD_MODELS + "modles: []\n",
+        r"registry\.yaml:7: modles: unknown key 'modles' \(did you mean 'models'\?\)",
+    ),
+    (
+        "version",
+        GOOD_HEAD.replace("version: 1", "version: 2") + GOOD_SOURCES + GOOD_MODELS,
+        r"registry\.yaml:1: version: expected 1",
+    ),
+    (
+        "no-approver",
+        GOOD_HEAD.replace(", approved_by: 'T. Approver, tests'", "") + GOOD_SOURCES + GOOD_MODELS,
+        r"registry\.yaml:2: policy\.approved_by: missing; every threshold needs a written justification and an approver",
+    ),
+    (
+        "models-not-a-list",
+        GOOD_HEAD + GOOD_SOURCES + "models: {id: m1}\n",
+        r"registry\.yaml:5: models: expected a list of model entries",
+    ),
+    (
+        "sources-not-a-mapping",
+        GOOD_HEAD + "sources: [main]\n" + GOOD_MODELS,
+        r"registry\.yaml:3: sources: expected a mapping of source names",
+    ),
+    (
+        "level-out-of-range",
+        GOOD_HEAD.replace("{justification", "{level: 5, justification") + GOOD_SOURCES + GOOD_MODELS,
+        r"registry\.yaml:2: policy\.level: expected a number in the open interval \(0, 0\.5\), got 5",
+    ),
     ("empty-file", "", r"registry\.yaml:1: the registry is empty"),
 ]
 
@@ -570,7 +904,9 @@ def test_registry_level_problem_refuses_the_run(tmp_path, text, pattern):
         load_registry(path)
     assert any(re.search(pattern, str(p)) for p in info.value.problems), [str(p) for p in info.value.problems]
     assert not (tmp_path / "pwned").exists()
-    assert {str(p) for p in info.value.problems} <= {str(p) for p in check_registry(path)}  # check adds entry-level ones
+    assert {str(p) for p in info.value.problems} <= {
+        str(p) for p in check_registry(path)
+    }  # check adds entry-level ones
 
 
 @pytest.fixture
@@ -585,17 +921,25 @@ def restored_environ():
 def test_refused_run_exits_2_lists_every_problem_and_writes_nothing(prefect_server, tmp_path, capsys, restored_environ):
     from fitaudit.flows.cli import main
 
-    text = (GOOD_HEAD.replace("version: 1", "version: 3").replace("{justification", "{level: 5, justification")
-            + "colour: teal\n" + "sources: [main]\n" + "models: {id: m1}\n")
+    text = (
+        GOOD_HEAD.replace("version: 1", "version: 3").replace("{justification", "{level: 5, justification")
+        + "colour: teal\n"
+        + "sources: [main]\n"
+        + "models: {id: m1}\n"
+    )
     path = tmp_path / "registry.yaml"
     path.write_text(text)
     archive = tmp_path / "archive"
     code = main(["run", str(path), "--archive", str(archive), "--as-of", AS_OF.isoformat(), "--quiet"])
     err = capsys.readouterr().err
     assert code == 2
-    expected = [r"registry\.yaml:1: version: expected 1", r"registry\.yaml:2: policy\.level: expected a number",
-                r"registry\.yaml:3: colour: unknown key 'colour'", r"registry\.yaml:4: sources: expected a mapping",
-                r"registry\.yaml:5: models: expected a list"]
+    expected = [
+        r"registry\.yaml:1: version: expected 1",
+        r"registry\.yaml:2: policy\.level: expected a number",
+        r"registry\.yaml:3: colour: unknown key 'colour'",
+        r"registry\.yaml:4: sources: expected a mapping",
+        r"registry\.yaml:5: models: expected a list",
+    ]
     for pattern in expected:
         assert re.search(pattern, err), (pattern, err)
     assert re.search(r"has 5 problem\(s\); the audit cannot start until they are fixed", err)

@@ -47,7 +47,9 @@ def test_a_week_stale_extract_names_the_staleness_not_the_history(tmp_path):
     last = str(AS_OF)  # the fixture's last day of data
     as_of = str(AS_OF + dt.timedelta(days=7))
     assert f"last observation of series 'a' is {last}" in problem["message"]
-    assert f"7 period(s) of frequency 'D' before the as-of date {as_of}" in problem["message"]  # 7 days  # common practice
+    assert (
+        f"7 period(s) of frequency 'D' before the as-of date {as_of}" in problem["message"]
+    )  # 7 days  # common practice
     assert "Fix: refresh the extract" in problem["message"] and "max_staleness" in problem["message"]
 
 
@@ -70,11 +72,20 @@ def test_business_days_count_no_weekend_as_late(tmp_path):
     assert grid[-1].day_name() == "Friday"
     series = {"a": {"date": grid.to_numpy().astype("datetime64[us]"), "y": ar1(np.random.default_rng(8), n=240)}}
     monday = dt.date(2026, 8, 31)
-    assert _stale(_stage(tmp_path / "mon", series, monday, frequency="B")["m-a"]) == []  # Sat, Sun skipped; Monday's row may lag
+    assert (
+        _stale(_stage(tmp_path / "mon", series, monday, frequency="B")["m-a"]) == []
+    )  # Sat, Sun skipped; Monday's row may lag
     (problem,) = _stale(_stage(tmp_path / "tue", series, monday + dt.timedelta(days=1), frequency="B")["m-a"])
     assert "is 2026-08-28, 2 period(s) of frequency 'B' before the as-of date 2026-09-01" in problem["message"]
     # a holiday on the Monday is not a period either
-    assert _stale(_stage(tmp_path / "hol", series, monday + dt.timedelta(days=1), frequency="B", holidays=["2026-08-31"])["m-a"]) == []
+    assert (
+        _stale(
+            _stage(tmp_path / "hol", series, monday + dt.timedelta(days=1), frequency="B", holidays=["2026-08-31"])[
+                "m-a"
+            ]
+        )
+        == []
+    )
 
 
 def test_a_source_stale_beyond_the_span_read_names_its_own_last_timestamp(tmp_path):
@@ -91,7 +102,10 @@ def test_a_source_stale_beyond_the_span_read_names_its_own_last_timestamp(tmp_pa
 def _dated_fleet(tmp_path, uri: str, **source_extra):
     """Two dated export folders, each holding series a and b up to its own date."""
     rng = np.random.default_rng(11)
-    full = {k: {"date": days(), "y": ar1(rng), "region": np.array(["north" if k == "a" else "south"] * 240, dtype=object)} for k in ("a", "b")}
+    full = {
+        k: {"date": days(), "y": ar1(rng), "region": np.array(["north" if k == "a" else "south"] * 240, dtype=object)}
+        for k in ("a", "b")
+    }
     for lag in (0, 1):
         day = AS_OF - dt.timedelta(days=lag)
         n = 240 - lag
@@ -132,16 +146,23 @@ def test_a_plain_uri_records_no_template(tmp_path):
 
 def test_a_row_filter_keeps_only_its_rows(tmp_path):
     reg = _dated_fleet(tmp_path, "exports/{as_of:%Y%m%d}/sales.parquet", filter=[["region", "in", ["north"]]])
-    items = {i.model_id: i for b in batches.stage_inputs(reg, AS_OF, tmp_path / "work").batches for i in batches.read_batch(b.path)}
+    items = {
+        i.model_id: i
+        for b in batches.stage_inputs(reg, AS_OF, tmp_path / "work").batches
+        for i in batches.read_batch(b.path)
+    }
     assert items["m-a"].problems == () and items["m-a"].y.size == 200
     assert items["m-b"].y.size == 0  # the filter dropped series b: reported as absent, not audited
     assert items["m-b"].problems and all(p["severity"] in ("error", "insufficient") for p in items["m-b"].problems)
 
 
-@pytest.mark.parametrize("term, needle", [
-    (["colour", "=", "red"], "the filter column 'colour' is in none of the files"),
-    (["y", ">=", "high"], "the filter term [y, >=, 'high'] does not apply to column 'y' of type double"),
-])
+@pytest.mark.parametrize(
+    "term, needle",
+    [
+        (["colour", "=", "red"], "the filter column 'colour' is in none of the files"),
+        (["y", ">=", "high"], "the filter term [y, >=, 'high'] does not apply to column 'y' of type double"),
+    ],
+)
 def test_a_broken_row_filter_is_a_per_source_error(tmp_path, term, needle):
     reg = _dated_fleet(tmp_path, "exports/{as_of:%Y%m%d}/sales.parquet", filter=[term])
     staged = batches.stage_inputs(reg, AS_OF, tmp_path / "work")
@@ -163,6 +184,8 @@ def test_staging_keeps_the_fingerprint_cache_in_the_archive(tmp_path, monkeypatc
     hashed = []
     real = extracts._hash_file
     monkeypatch.setattr(extracts, "_hash_file", lambda loc, path: hashed.append(path) or real(loc, path))
-    second = batches.stage_inputs(reg, AS_OF, tmp_path / "w2", archive_root=archive, model_ids=["m-a"])  # a one-model refit
+    second = batches.stage_inputs(
+        reg, AS_OF, tmp_path / "w2", archive_root=archive, model_ids=["m-a"]
+    )  # a one-model refit
     assert hashed == []  # the digest came from the cache
     assert second.fingerprints["x"] == first.fingerprints["x"]  # the manifest's record is the same

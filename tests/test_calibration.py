@@ -26,7 +26,10 @@ GRID = (DEFAULT_ALPHAS, DEFAULT_BETAS, "geometric", None)
 @pytest.mark.parametrize(
     "df,value",
     [
-        (1, 3.84146),  # source: Abramowitz & Stegun (1964) table 26.8, upper 5 % points (table number from memory; docs/method.md §13.3)
+        (
+            1,
+            3.84146,
+        ),  # source: Abramowitz & Stegun (1964) table 26.8, upper 5 % points (table number from memory; docs/method.md §13.3)
         (2, 5.99146),  # source: Abramowitz & Stegun (1964) table 26.8
         (3, 7.81473),  # source: Abramowitz & Stegun (1964) table 26.8
         (4, 9.48773),  # source: Abramowitz & Stegun (1964) table 26.8
@@ -129,7 +132,9 @@ def test_nrr_term_hand_worked_case():
     sigma = 2.0
     s, n = 4, counts.sum()
     grad = _normal_equiprobable_gradient(s, sigma)
-    info = np.diag([1.0, 2.0]) / sigma**2  # source: per-observation Fisher information of N(mu, sigma^2) (docs/method.md §5.3)
+    info = (
+        np.diag([1.0, 2.0]) / sigma**2
+    )  # source: per-observation Fisher information of N(mu, sigma^2) (docs/method.md §5.3)
     v = (counts - n / s) / np.sqrt(n / s)
     b = grad * np.sqrt(s)
     by_hand = v @ b @ np.linalg.inv(info - b.T @ b) @ b.T @ v
@@ -138,7 +143,9 @@ def test_nrr_term_hand_worked_case():
     law = get_law("normal")
     params = law.from_variance(sigma**2)
     fitted = type(params)(law="normal", loc=0.0, scale=sigma, shape=None, estimated=("loc", "scale"))
-    assert nrr_term(counts, law.fisher_information(fitted), law.cell_probability_gradient(s, fitted)) == pytest.approx(by_hand, rel=1e-9)
+    assert nrr_term(counts, law.fisher_information(fitted), law.cell_probability_gradient(s, fitted)) == pytest.approx(
+        by_hand, rel=1e-9
+    )
     del params
 
 

@@ -12,7 +12,18 @@ import pytest
 from fitaudit.flows.cli import EXIT_FAIL_ON, EXIT_OK, EXIT_USAGE, EXIT_VERIFY, build_parser, main
 from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
 
-COMMANDS = [["demo"], ["run"], ["refit"], ["backfill"], ["serve"], ["verify"], ["registry", "check"], ["registry", "schema"], ["promote"], ["signoff"]]
+COMMANDS = [
+    ["demo"],
+    ["run"],
+    ["refit"],
+    ["backfill"],
+    ["serve"],
+    ["verify"],
+    ["registry", "check"],
+    ["registry", "schema"],
+    ["promote"],
+    ["signoff"],
+]
 
 
 @pytest.mark.parametrize("cmd", COMMANDS, ids=lambda c: " ".join(c))
@@ -96,12 +107,27 @@ def test_serve_without_a_server_explains_what_is_needed(demo, monkeypatch, capsy
 def test_run_and_verify_through_the_command(demo, prefect_server, tmp_path):
     env = dict(os.environ, PREFECT_API_URL=prefect_server)
     archive = demo["archive"]
-    cmd = [sys.executable, "-m", "fitaudit.flows.cli", "run", demo["registry"], "--archive", archive, "--as-of", DEMO_AS_OF.isoformat(), "--models", "demand-d-02", "demand-d-31"]
+    cmd = [
+        sys.executable,
+        "-m",
+        "fitaudit.flows.cli",
+        "run",
+        demo["registry"],
+        "--archive",
+        archive,
+        "--as-of",
+        DEMO_AS_OF.isoformat(),
+        "--models",
+        "demand-d-02",
+        "demand-d-31",
+    ]
     ok = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=600)
     assert ok.returncode == EXIT_OK, ok.stderr
     assert "report: " in ok.stdout and "error 1" in ok.stdout
     assert "ERROR" not in ok.stderr and "Traceback" not in ok.stderr
-    failing = subprocess.run([*cmd, "--fail-on", "error,respecify", "--quiet"], env=env, capture_output=True, text=True, timeout=600)
+    failing = subprocess.run(
+        [*cmd, "--fail-on", "error,respecify", "--quiet"], env=env, capture_output=True, text=True, timeout=600
+    )
     assert failing.returncode == EXIT_FAIL_ON
     assert failing.stdout.strip().endswith("index.html")
     assert main(["verify", archive]) == EXIT_OK
@@ -129,14 +155,25 @@ def test_a_bad_registry_exits_2_before_any_flow_starts(demo, tmp_path, monkeypat
         raise AssertionError("a Prefect server (and so a flow run) was started for a registry that cannot be used")
 
     monkeypatch.setattr(cli, "_server_if_needed", no_server)
-    for command in (["run", str(bad)], ["refit", str(bad), "--model", "demand-d-07"], ["backfill", str(bad), "--start", "2026-11-02", "--end", "2026-11-30"]):
+    for command in (
+        ["run", str(bad)],
+        ["refit", str(bad), "--model", "demand-d-07"],
+        ["backfill", str(bad), "--start", "2026-11-02", "--end", "2026-11-30"],
+    ):
         assert main([*command, "--archive", str(tmp_path / "archive")]) == EXIT_USAGE
         err = capsys.readouterr().err
         assert f"{bad}:" in err and "policy.justification: missing" in err and "Traceback" not in err
     # the whole output of the command: a few lines, no traceback
-    done = subprocess.run([sys.executable, "-m", "fitaudit.flows.cli", "run", str(bad), "--archive", str(tmp_path / "archive")],
-                          env=dict(os.environ, PREFECT_HOME=str(tmp_path / "prefect")), capture_output=True, text=True, timeout=300)
-    assert done.returncode == EXIT_USAGE and "Traceback" not in done.stderr and len(done.stderr.splitlines()) <= 4, done.stderr
+    done = subprocess.run(
+        [sys.executable, "-m", "fitaudit.flows.cli", "run", str(bad), "--archive", str(tmp_path / "archive")],
+        env=dict(os.environ, PREFECT_HOME=str(tmp_path / "prefect")),
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+    assert done.returncode == EXIT_USAGE and "Traceback" not in done.stderr and len(done.stderr.splitlines()) <= 4, (
+        done.stderr
+    )
     assert not (tmp_path / "archive").exists()  # nothing was started
 
 
@@ -147,8 +184,12 @@ def test_a_registry_problem_is_never_retried():
     from fitaudit.tasks.registry.loader import _transient
 
     assert load_registry_task.retry_condition_fn is _transient and load_registry_task.retries == 2
-    assert _transient(load_registry_task, None, Failed(data=RegistryError([]))) is False  # a registry problem fails at once
-    assert _transient(load_registry_task, None, Failed(data=OSError(5, "Input/output error"))) is True  # a file share that hiccups
+    assert (
+        _transient(load_registry_task, None, Failed(data=RegistryError([]))) is False
+    )  # a registry problem fails at once
+    assert (
+        _transient(load_registry_task, None, Failed(data=OSError(5, "Input/output error"))) is True
+    )  # a file share that hiccups
 
 
 @pytest.mark.server
@@ -159,10 +200,24 @@ def test_run_logs_reach_the_prefect_api_under_a_telling_name(prefect_server, tmp
     from prefect.client.schemas.filters import FlowRunFilter, FlowRunFilterName, LogFilter, LogFilterFlowRunId
     from prefect.client.schemas.sorting import FlowRunSort
 
-    env = dict(os.environ, PREFECT_API_URL=prefect_server, PREFECT_HOME=str(tmp_path / "prefect"))  # a fresh home: fitaudit writes its logging.yml
+    env = dict(
+        os.environ, PREFECT_API_URL=prefect_server, PREFECT_HOME=str(tmp_path / "prefect")
+    )  # a fresh home: fitaudit writes its logging.yml
     env.pop("PREFECT_LOGGING_CONFIG_PATH", None)
     own = write_demo(tmp_path / "demo")  # the module's demo archive is altered on purpose by the verify test
-    cmd = [sys.executable, "-m", "fitaudit.flows.cli", "run", own["registry"], "--archive", own["archive"], "--as-of", DEMO_AS_OF.isoformat(), "--models", "demand-d-02"]
+    cmd = [
+        sys.executable,
+        "-m",
+        "fitaudit.flows.cli",
+        "run",
+        own["registry"],
+        "--archive",
+        own["archive"],
+        "--as-of",
+        DEMO_AS_OF.isoformat(),
+        "--models",
+        "demand-d-02",
+    ]
     done = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=600)
     assert done.returncode == EXIT_OK, done.stderr
     assert " INFO " not in done.stderr  # the console stays quiet: INFO goes to the API only
@@ -171,15 +226,23 @@ def test_run_logs_reach_the_prefect_api_under_a_telling_name(prefect_server, tmp
 
     async def read():
         async with get_client() as client:
-            runs = await client.read_flow_runs(flow_run_filter=FlowRunFilter(name=FlowRunFilterName(any_=[name])), sort=FlowRunSort.START_TIME_DESC, limit=1)
-            logs = await client.read_logs(log_filter=LogFilter(flow_run_id=LogFilterFlowRunId(any_=[runs[0].id])), limit=200)
+            runs = await client.read_flow_runs(
+                flow_run_filter=FlowRunFilter(name=FlowRunFilterName(any_=[name])),
+                sort=FlowRunSort.START_TIME_DESC,
+                limit=1,
+            )
+            logs = await client.read_logs(
+                log_filter=LogFilter(flow_run_id=LogFilterFlowRunId(any_=[runs[0].id])), limit=200
+            )
             return runs[0], logs
 
     flow_run, logs = asyncio.run(read())
     assert flow_run.state.is_completed()
     messages = [(log.level, log.message, log.task_run_id) for log in logs]
     assert all(level >= 20 for level, _, _ in messages)  # INFO and above (logging.INFO = 20)
-    assert any(f"audit {run_id} as of {DEMO_AS_OF.isoformat()}" in m for _, m, _ in messages)  # the flow's own summary line
+    assert any(
+        f"audit {run_id} as of {DEMO_AS_OF.isoformat()}" in m for _, m, _ in messages
+    )  # the flow's own summary line
     assert any(task is not None and "batch " in m for _, m, task in messages)  # a task run's line
     assert any("chain head" in m for _, m, _ in messages)  # the publication names the head it made
 
@@ -190,7 +253,9 @@ def test_flows_stop_after_the_policys_timeout(demo):
     from fitaudit.tasks.registry import load_registry
 
     reg = load_registry(demo["registry"])
-    assert reg.policy.flow_timeout_minutes == 240  # source: the registry schema's default (tasks/registry/schema.py Policy)
+    assert (
+        reg.policy.flow_timeout_minutes == 240
+    )  # source: the registry schema's default (tasks/registry/schema.py Policy)
     assert _timeout(audit_flow, reg).timeout_seconds == 240 * 60
     assert _timeout(audit_flow, reg, scale=5).timeout_seconds == 5 * 240 * 60  # a backfill of five dates
     assert audit_flow.timeout_seconds is None  # the decorated flow itself is left as it is

@@ -80,8 +80,11 @@ def test_fit_converges_with_the_familys_parameter_names(fitted, family):
 def test_errors_are_aligned_and_undefined_exactly_on_the_presample(fitted, family):
     spec, _, _, y, fit = fitted[family]
     p = spec.presample()
-    for name, e in (("residuals", fit.residuals), ("errors", spec.errors(y, fit.params)),
-                    ("production_errors", spec.production_errors(y, fit.params))):
+    for name, e in (
+        ("residuals", fit.residuals),
+        ("errors", spec.errors(y, fit.params)),
+        ("production_errors", spec.production_errors(y, fit.params)),
+    ):
         assert e.shape == y.shape, name  # source: ForecastModel protocol (aligned to y)
         assert np.isnan(e[:p]).all() and np.isfinite(e[p:]).all(), name  # source: ForecastModel.presample
     # source: residual identity (the errors at the fitted parameters are the fit's residuals)
@@ -199,12 +202,21 @@ def test_fit_errors_recovers_the_parameters(case):
         assert fitted.estimated == law.estimated_names(location=True)  # source: NoiseLaw.fit_errors
         values = {"loc": truth.loc, "scale": truth.scale, "shape": truth.shape}
         # standard errors from the law's own per-observation Fisher information
-        cov = np.linalg.inv(law.fisher_information(NoiseParams(law.name, truth.loc, truth.scale, truth.shape, fitted.estimated))) / n
+        cov = (
+            np.linalg.inv(
+                law.fisher_information(NoiseParams(law.name, truth.loc, truth.scale, truth.shape, fitted.estimated))
+            )
+            / n
+        )
     else:
         # count laws estimate the negative-binomial size when it is free, nothing else
-        assert fitted.estimated == (("shape",) if law.has_shape and law.shape is None else ())  # source: NoiseLaw.fit_errors
+        assert fitted.estimated == (
+            ("shape",) if law.has_shape and law.shape is None else ()
+        )  # source: NoiseLaw.fit_errors
         values = {"shape": truth.shape}
-        cov = np.atleast_2d(1.0 / _observed_information_of_size(law, y, mean, truth.shape)) if names else np.zeros((0, 0))
+        cov = (
+            np.atleast_2d(1.0 / _observed_information_of_size(law, y, mean, truth.shape)) if names else np.zeros((0, 0))
+        )
     for i, name in enumerate(names):
         se = float(np.sqrt(cov[i, i]))
         # source: asymptotic normality of the maximum-likelihood estimate; 4 standard errors is common practice
@@ -247,7 +259,9 @@ def test_frozen_params_take_the_production_variance_or_the_means(case):
         if law.has_shape and law.shape is None:
             assert frozen.estimated == ("shape",) and frozen.shape != truth.shape  # estimated, not copied
         else:
-            assert frozen.estimated == () and frozen.shape == truth.shape  # source: the case's fixed size (None for poisson)
+            assert (
+                frozen.estimated == () and frozen.shape == truth.shape
+            )  # source: the case's fixed size (None for poisson)
 
 
 @pytest.mark.parametrize("case", LAWS)
@@ -277,8 +291,18 @@ def test_capability_flags_say_which_methods_a_law_has(case):
     assert hasattr(law, "fisher_information") == hasattr(law, "cell_probability_gradient") == law.has_fisher_information
     assert all(hasattr(law, m) for m in ("fit_batch", "cdf_batch", "sample_standard")) == law.pivotal
     assert hasattr(law, "randomized_pit") == (not law.pivotal)
-    for method in ("fit_errors", "frozen_params", "pit", "simulate", "check_observations", "standardise",
-                   "reference_quantiles", "reference_density", "estimated_names", "n_estimated"):
+    for method in (
+        "fit_errors",
+        "frozen_params",
+        "pit",
+        "simulate",
+        "check_observations",
+        "standardise",
+        "reference_quantiles",
+        "reference_density",
+        "estimated_names",
+        "n_estimated",
+    ):
         assert callable(getattr(law, method)), method
     if not law.has_fisher_information:
         with pytest.raises(SpecificationError, match="does not apply"):
@@ -308,7 +332,9 @@ def test_cell_probabilities_and_their_gradient(case, cells):
     params = NoiseParams(truth.law, truth.loc, truth.scale, truth.shape, law.estimated_names(location=True))
     b = np.linspace(0.0, 1.0, cells + 1) if np.isscalar(cells) else cells
     q = law.cell_probabilities(cells, params)
-    np.testing.assert_allclose(q, np.diff(b), rtol=0, atol=1e-13)  # source: definition of PIT cells at the parameters that fix them
+    np.testing.assert_allclose(
+        q, np.diff(b), rtol=0, atol=1e-13
+    )  # source: definition of PIT cells at the parameters that fix them
     grad = law.cell_probability_gradient(cells, params)
     assert grad.shape == (b.size - 1, len(params.estimated))
     # source: the cell probabilities sum to 1 for every parameter, so each derivative sums to 0
@@ -319,5 +345,7 @@ def test_cell_probabilities_and_their_gradient(case, cells):
         h = 1e-7 * (truth.scale if name != "shape" else truth.shape)
         up = dataclasses.replace(params, **{name: getattr(params, name) + h})
         down = dataclasses.replace(params, **{name: getattr(params, name) - h})
-        numeric = (law.cell_probabilities(cells, params, at=up) - law.cell_probabilities(cells, params, at=down)) / (2 * h)
+        numeric = (law.cell_probabilities(cells, params, at=up) - law.cell_probabilities(cells, params, at=down)) / (
+            2 * h
+        )
         np.testing.assert_allclose(grad[:, j], numeric, rtol=0, atol=1e-7)  # common practice: central differences

@@ -65,16 +65,37 @@ def test_the_example_registry_without_its_data_is_not_valid_when_deep(capsys):
             assert text[int(m["line"]) - 1].strip().rstrip(":") == m["field"].split(".")[1]
 
 
-@pytest.mark.parametrize("old, new, field, message", [
-    ("    frequency: D\n  network:", "    frequency: B\n  network:", "sources.demand.frequency", r"off the grid of frequency 'B'"),
-    ("    exogenous: [temp_c]\n    frequency: D", "    exogenous: [temp_c, rain_mm]\n    frequency: D", "sources.demand.exogenous", r"'rain_mm'"),
-    ("    key: district", "    key: zone", "sources.demand.uri", r"the key column 'zone' is in none of the files"),
-    ("    series: 'd-02'", "    series: 'd-99'", "models[1].series", r"'d-99'"),
-    ("    uri: data/demand\n", "    uri: 'data/{as_of:%Y}/demand'\n", "sources.demand.uri", r"data/2026/demand.*does not exist"),
-    ("    spec: {family: arima, order: [1, 0, 1], seasonal: [0, 1, 1, 7], trend: n}\n    noise: normal\n",
-     "    spec: {family: nonlinear-ar, function: 'fitaudit_no_such_pkg.m:f', lags: [1], start: {a: 0.5, b: 0.1}}\n    noise: normal\n",
-     "models[0].spec.function", r"cannot import module 'fitaudit_no_such_pkg.m'"),
-])
+@pytest.mark.parametrize(
+    "old, new, field, message",
+    [
+        (
+            "    frequency: D\n  network:",
+            "    frequency: B\n  network:",
+            "sources.demand.frequency",
+            r"off the grid of frequency 'B'",
+        ),
+        (
+            "    exogenous: [temp_c]\n    frequency: D",
+            "    exogenous: [temp_c, rain_mm]\n    frequency: D",
+            "sources.demand.exogenous",
+            r"'rain_mm'",
+        ),
+        ("    key: district", "    key: zone", "sources.demand.uri", r"the key column 'zone' is in none of the files"),
+        ("    series: 'd-02'", "    series: 'd-99'", "models[1].series", r"'d-99'"),
+        (
+            "    uri: data/demand\n",
+            "    uri: 'data/{as_of:%Y}/demand'\n",
+            "sources.demand.uri",
+            r"data/2026/demand.*does not exist",
+        ),
+        (
+            "    spec: {family: arima, order: [1, 0, 1], seasonal: [0, 1, 1, 7], trend: n}\n    noise: normal\n",
+            "    spec: {family: nonlinear-ar, function: 'fitaudit_no_such_pkg.m:f', lags: [1], start: {a: 0.5, b: 0.1}}\n    noise: normal\n",
+            "models[0].spec.function",
+            r"cannot import module 'fitaudit_no_such_pkg.m'",
+        ),
+    ],
+)
 def test_a_broken_registry_names_each_problem(good, tmp_path, capsys, old, new, field, message):
     path = _edited(good, tmp_path, old, new)
     assert main(["registry", "check", "--deep", "--as-of", DEMO_AS_OF.isoformat(), str(path)]) == EXIT_USAGE

@@ -62,7 +62,7 @@ def _write_fleet(root: pathlib.Path, seed: int = 8) -> Fleet:
         "error": ar1(rng),
     }
     series["error"][N_DAYS - 3] = np.nan
-    rows = {k: {"date": t[-len(y):], "y": y} for k, y in series.items()}
+    rows = {k: {"date": t[-len(y) :], "y": y} for k, y in series.items()}
     write_parquet(root / "data" / "fleet.parquet", long_table(rows))
     fleet.source("fleet", "data/fleet.parquet")
     fleet.model("det-pass", "fleet", "pass")
@@ -112,8 +112,14 @@ def test_the_fleet_shows_every_verdict(reference):
     doc = json.loads(reference[0])
     verdicts = {m["id"]: m["verdict"] for m in doc["models"]}
     assert verdicts == {
-        "det-pass": "pass", "det-refit": "refit", "det-respecify": "respecify", "det-smoothing": "pass",
-        "det-setar": "pass", "det-short": "insufficient", "det-error": "error", "det-rejected": "error",
+        "det-pass": "pass",
+        "det-refit": "refit",
+        "det-respecify": "respecify",
+        "det-smoothing": "pass",
+        "det-setar": "pass",
+        "det-short": "insufficient",
+        "det-error": "error",
+        "det-rejected": "error",
     }
     assert doc["summary"]["registered"] == sum(doc["summary"][v] for v in VERDICTS) == 8
 
@@ -132,11 +138,15 @@ def test_results_carry_no_run_id_clock_time_or_timing(fleet_root, reference):
     assert manifest["timings"]["total_s"] > 0 and manifest["timings"]["per_model"]  # they live in the manifest
 
 
-@pytest.mark.parametrize("options", [
-    {"batch_size": 2},  # the same run again, into another archive
-    {"batch_size": 1},
-    {"batch_size": 0},  # automatic: one batch
-], ids=["rerun", "batch-1", "batch-auto"])
+@pytest.mark.parametrize(
+    "options",
+    [
+        {"batch_size": 2},  # the same run again, into another archive
+        {"batch_size": 1},
+        {"batch_size": 0},  # automatic: one batch
+    ],
+    ids=["rerun", "batch-1", "batch-auto"],
+)
 def test_same_inputs_give_byte_identical_results(fleet_root, reference, options):
     results, manifest = _run(fleet_root, f"archive-{'-'.join(f'{k}{v}' for k, v in options.items())}", **options)
     assert results == reference[0]
@@ -146,7 +156,9 @@ def test_same_inputs_give_byte_identical_results(fleet_root, reference, options)
 def test_one_worker_thread_gives_the_same_results(fleet_root, reference):
     from prefect.task_runners import ThreadPoolTaskRunner
 
-    results, manifest = _run(fleet_root, "archive-one-thread", batch_size=1, task_runner=ThreadPoolTaskRunner(max_workers=1))
+    results, manifest = _run(
+        fleet_root, "archive-one-thread", batch_size=1, task_runner=ThreadPoolTaskRunner(max_workers=1)
+    )
     assert manifest["task_runner"] == "ThreadPoolTaskRunner"
     assert results == reference[0]
 
@@ -155,7 +167,10 @@ def test_a_rerun_into_the_same_archive_gives_the_same_results(fleet_root, refere
     from fitaudit.flows.audit import audit_flow
 
     archive = _archive(fleet_root, "archive-twice")
-    runs = [audit_flow(registry=str(fleet_root / "registry.yaml"), as_of=AS_OF, archive=archive, batch_size=2) for _ in range(2)]
+    runs = [
+        audit_flow(registry=str(fleet_root / "registry.yaml"), as_of=AS_OF, archive=archive, batch_size=2)
+        for _ in range(2)
+    ]
     assert [(pathlib.Path(r["report"]).parent / "results.json").read_bytes() for r in runs] == [reference[0]] * 2
 
 
@@ -171,8 +186,20 @@ def test_another_seed_changes_the_results(tmp_path, reference, prefect_server):
 def test_another_process_and_hash_seed_gives_the_same_results(fleet_root, reference, prefect_server):
     archive = _archive(fleet_root, "archive-subprocess")
     env = {**os.environ, "PREFECT_API_URL": prefect_server, "PYTHONHASHSEED": "12345"}
-    cmd = [sys.executable, "-m", "fitaudit.flows.cli", "run", str(fleet_root / "registry.yaml"), "--archive", archive,
-           "--as-of", AS_OF.isoformat(), "--batch-size", "3", "--quiet"]
+    cmd = [
+        sys.executable,
+        "-m",
+        "fitaudit.flows.cli",
+        "run",
+        str(fleet_root / "registry.yaml"),
+        "--archive",
+        archive,
+        "--as-of",
+        AS_OF.isoformat(),
+        "--batch-size",
+        "3",
+        "--quiet",
+    ]
     out = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
     report = pathlib.Path(out.stdout.strip().splitlines()[-1])

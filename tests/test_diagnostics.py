@@ -71,10 +71,14 @@ def test_ljung_box_sunspots_published(sunspot_residuals):
     # (old ARMA class); 214.108693 with statsmodels' current ARIMA estimator (docs/method.md §13.4)
     assert res.statistic == pytest.approx(214.106992, rel=1e-4)
     assert res.statistic == pytest.approx(214.108693, rel=1e-6)
-    assert res.p_value == pytest.approx(1.825878e-40, rel=1e-3)  # source: statsmodels, current ARIMA (docs/method.md §13.4, df 10)
+    assert res.p_value == pytest.approx(
+        1.825878e-40, rel=1e-3
+    )  # source: statsmodels, current ARIMA (docs/method.md §13.4, df 10)
     with_df = ljung_box(sunspot_residuals, 10, model_df=2)
     assert with_df.df == 8
-    assert with_df.p_value == pytest.approx(6.757340e-42, rel=1e-3)  # source: statsmodels, current ARIMA (docs/method.md §13.4, model_df = 2)
+    assert with_df.p_value == pytest.approx(
+        6.757340e-42, rel=1e-3
+    )  # source: statsmodels, current ARIMA (docs/method.md §13.4, model_df = 2)
 
 
 @pytest.mark.parametrize("lags,model_df", [(10, 0), (10, 2), (5, 2), (24, 3)])
@@ -89,7 +93,9 @@ def test_ljung_box_equals_statsmodels_on_same_vector(sunspot_residuals, lags, mo
 def test_mcleod_li_equals_ljung_box_on_centred_squares(sunspot_residuals):
     res = mcleod_li(sunspot_residuals, 12)
     sq = sunspot_residuals**2
-    ref_stat, ref_p = _statsmodels_lb(sq - sq.mean(), 12)  # source: statsmodels acorr_ljungbox on centred squares (McLeod & Li 1983)
+    ref_stat, ref_p = _statsmodels_lb(
+        sq - sq.mean(), 12
+    )  # source: statsmodels acorr_ljungbox on centred squares (McLeod & Li 1983)
     assert res.statistic == pytest.approx(ref_stat, rel=1e-10)
     assert res.p_value == pytest.approx(ref_p, rel=1e-8)
     assert (res.name, res.df) == ("mcleod-li", 12)
@@ -142,7 +148,9 @@ def test_ljung_box_argument_errors(rng):
 def test_ljung_box_lags_match_statsmodels_default(n, period, rng):
     x = rng.standard_normal(n)
     kwargs = {} if period == 1 else {"period": period}
-    ref = sm_diagnostic.acorr_ljungbox(x, return_df=True, **kwargs).index.max()  # source: statsmodels acorr_ljungbox default lags
+    ref = sm_diagnostic.acorr_ljungbox(
+        x, return_df=True, **kwargs
+    ).index.max()  # source: statsmodels acorr_ljungbox default lags
     expected = max(ref, 3)  # docs/method.md §9.2: at least model_df + 3
     assert ljung_box_lags(n, period=period) == expected
 

@@ -96,14 +96,35 @@ def test_geometric_scaling_is_three_term_cressie_read(alpha, beta, k):
     assert two_n_b(counts, probs, alpha, beta) == pytest.approx(ref, rel=1e-9)
 
 
-@pytest.mark.parametrize("scaling,beta,r", [("geometric", 0.3, None), ("power", 0.6, 1.0), ("power", 0.4, -2.0), ("data", 0.0, None), ("model", 0.0, None), ("unit", 0.0, None), ("power", 0.5, 0.5)])
+@pytest.mark.parametrize(
+    "scaling,beta,r",
+    [
+        ("geometric", 0.3, None),
+        ("power", 0.6, 1.0),
+        ("power", 0.4, -2.0),
+        ("data", 0.0, None),
+        ("model", 0.0, None),
+        ("unit", 0.0, None),
+        ("power", 0.5, 0.5),
+    ],
+)
 def test_alpha_one_is_kullback_leibler_for_every_scaling(scaling, beta, r):
     p, q = np.array([0.1, 0.2, 0.3, 0.4]), np.array([0.25, 0.25, 0.25, 0.25])
     # source: docs/method.md §2.3: m^0 = 1, so B_1 = KL(P||Q) = scipy.stats.entropy(p, q)
     assert scaled_bregman(p, q, 1.0, beta, scaling, r) == pytest.approx(stats.entropy(p, q), rel=1e-13)
 
 
-@pytest.mark.parametrize("scaling,beta,r", [("geometric", 0.3, None), ("power", 0.6, 1.0), ("power", 0.4, -2.0), ("data", 0.0, None), ("model", 0.0, None), ("unit", 0.0, None)])
+@pytest.mark.parametrize(
+    "scaling,beta,r",
+    [
+        ("geometric", 0.3, None),
+        ("power", 0.6, 1.0),
+        ("power", 0.4, -2.0),
+        ("data", 0.0, None),
+        ("model", 0.0, None),
+        ("unit", 0.0, None),
+    ],
+)
 def test_alpha_two_is_half_chi_square_over_m(scaling, beta, r):
     p, q = np.array([0.1, 0.2, 0.3, 0.4]), np.array([0.3, 0.1, 0.2, 0.4])
     m = {
@@ -181,7 +202,14 @@ def test_empty_cell_factor_table(alpha, beta, scaling, r, expected):
 
 @pytest.mark.parametrize(
     "alpha,beta,scaling,r",
-    [(0.5, 0.0, "model", None), (0.5, 0.3, "power", 1.0), (1.0, 0.0, "model", None), (2.0, 0.5, "power", 1.0), (-0.5, 0.5, "geometric", None), (0.25, 0.3, "power", -1.0)],
+    [
+        (0.5, 0.0, "model", None),
+        (0.5, 0.3, "power", 1.0),
+        (1.0, 0.0, "model", None),
+        (2.0, 0.5, "power", 1.0),
+        (-0.5, 0.5, "geometric", None),
+        (0.25, 0.3, "power", -1.0),
+    ],
 )
 def test_empty_cell_limit_matches_high_precision_limit(alpha, beta, scaling, r):
     """The analytic f0 agrees with mpmath evaluated at p = 1e-60 (finite cases converge fast)."""
@@ -209,7 +237,7 @@ def test_empty_cell_limit_matches_high_precision_limit(alpha, beta, scaling, r):
         (2.0, 0.0, "model", None, math.inf),  # source: docs/method.md §4.2
         (2.0, 1.0, "data", None, 0.5),  # source: docs/method.md §4.2: m = p, alpha > 1: 1/(alpha(alpha-1))
         (0.5, 0.5, "geometric", None, math.inf),  # source: docs/method.md §4.2: always inf for geometric 0<beta<1
-        (3.0, 0.5, "power", 1.0, 0.5 ** -2 / 6),  # source: docs/method.md §4.2: c = beta, c^(1-alpha)/(alpha(alpha-1))
+        (3.0, 0.5, "power", 1.0, 0.5**-2 / 6),  # source: docs/method.md §4.2: c = beta, c^(1-alpha)/(alpha(alpha-1))
         (1.0, 0.5, "power", 1.0, math.inf),  # source: docs/method.md §4.2: alpha = 1 always inf
     ],
 )
@@ -219,7 +247,15 @@ def test_zero_model_cell_factor(alpha, beta, scaling, r, expected):
 
 def test_empty_cells_give_finite_or_inf_never_nan():
     counts = np.array([[0, 5, 7, 8], [3, 0, 0, 17]], dtype=float)
-    for scaling, r in [("geometric", None), ("power", 1.0), ("power", -1.0), ("power", 0.5), ("model", None), ("data", None), ("unit", None)]:
+    for scaling, r in [
+        ("geometric", None),
+        ("power", 1.0),
+        ("power", -1.0),
+        ("power", 0.5),
+        ("model", None),
+        ("data", None),
+        ("unit", None),
+    ]:
         m = divergence_map(counts, np.full(4, 0.25), DEFAULT_ALPHAS, DEFAULT_BETAS, scaling, r)
         assert not np.isnan(m.statistic).any(), scaling
         assert (m.statistic >= 0).all()
@@ -250,10 +286,18 @@ SBD_POINTS = [(2, 0, 0), (1, 0, 0), (0.5, 0, 0), (0, 0, 0), (2, 0.5, 1), (0, 0.5
     "counts,probs,expected",
     [
         # source: Mendel (1866) counts 315/108/101/32 vs 9:3:3:1; scipy.stats.power_divergence (docs/method.md §13.2)
-        ([315, 108, 101, 32], [9 / 16, 3 / 16, 3 / 16, 1 / 16], [0.470024, 0.475445, 0.478266, 0.481162, 0.478153, 0.472661, 0.471324]),
+        (
+            [315, 108, 101, 32],
+            [9 / 16, 3 / 16, 3 / 16, 1 / 16],
+            [0.470024, 0.475445, 0.478266, 0.481162, 0.478153, 0.472661, 0.471324],
+        ),
         # source: Yates/Moore/Starnes ex. 14.3 (grades vs .32/.41/.20/.07, X2 = 5.297);
         # scipy.stats.power_divergence (docs/method.md §13.2)
-        ([22, 38, 20, 11], [0.32, 0.41, 0.20, 0.07], [5.296952, 4.846776, 4.689174, 4.569381, 4.633893, 5.026720, 5.149734]),
+        (
+            [22, 38, 20, 11],
+            [0.32, 0.41, 0.20, 0.07],
+            [5.296952, 4.846776, 4.689174, 4.569381, 4.633893, 5.026720, 5.149734],
+        ),
     ],
 )
 def test_published_fixtures_scaled_members(counts, probs, expected):
@@ -284,7 +328,14 @@ def test_mendel_against_equal_ratios():
     [
         # source: scipy.stats.chisquare / power_divergence docstrings
         ([16, 18, 16, 14, 12, 12], None, 2.0, 0.84914503608460956, 2.006573162632538, 0.84823476779463769),
-        ([16, 18, 16, 14, 12, 12], [16, 16, 16, 16, 16, 8], 3.5, 0.62338762774958223, 3.3281031458963746, 0.6495419288047497),
+        (
+            [16, 18, 16, 14, 12, 12],
+            [16, 16, 16, 16, 16, 8],
+            3.5,
+            0.62338762774958223,
+            3.3281031458963746,
+            0.6495419288047497,
+        ),
     ],
 )
 def test_scipy_documented_examples(f_obs, f_exp, x2, p_x2, g2, p_g2):
@@ -315,8 +366,12 @@ def test_freeman_tukey_and_neyman_members():
     counts, probs = COUNT_VECTORS[3], PROBS[3]
     m = divergence_map(counts, probs)
     # source: scipy.stats.power_divergence lambda_ = "freeman-tukey" (-1/2) and "neyman" (-2)
-    assert m.members["freeman-tukey"] == pytest.approx(stats.power_divergence(counts, counts.sum() * probs, lambda_="freeman-tukey").statistic, rel=1e-12)
-    assert m.members["neyman"] == pytest.approx(stats.power_divergence(counts, counts.sum() * probs, lambda_="neyman").statistic, rel=1e-12)
+    assert m.members["freeman-tukey"] == pytest.approx(
+        stats.power_divergence(counts, counts.sum() * probs, lambda_="freeman-tukey").statistic, rel=1e-12
+    )
+    assert m.members["neyman"] == pytest.approx(
+        stats.power_divergence(counts, counts.sum() * probs, lambda_="neyman").statistic, rel=1e-12
+    )
     assert set(m.members) == set(CLASSICAL_MEMBERS)
 
 
@@ -361,7 +416,9 @@ def test_extreme_probabilities_stay_finite_where_the_value_is_finite():
 # --------------------------------------------------------------------------------------------
 # Grid path = element-wise path; batch = loop
 # --------------------------------------------------------------------------------------------
-@pytest.mark.parametrize("scaling,r", [("geometric", None), ("power", 1.0), ("power", -0.5), ("model", None), ("data", None), ("unit", None)])
+@pytest.mark.parametrize(
+    "scaling,r", [("geometric", None), ("power", 1.0), ("power", -0.5), ("model", None), ("data", None), ("unit", None)]
+)
 def test_map_equals_elementwise_definition(scaling, r, rng):
     counts = rng.poisson(3.0, size=(6, 7)).astype(float)
     counts[0, 2] = 0
@@ -415,7 +472,10 @@ def test_error_shape_mismatch():
 
 
 def test_error_unknown_scaling_lists_valid_ones():
-    with pytest.raises(InputError, match=r"Unknown scaling 'harmonic'; valid scalings are 'geometric', 'power', 'model', 'data', 'unit'"):
+    with pytest.raises(
+        InputError,
+        match=r"Unknown scaling 'harmonic'; valid scalings are 'geometric', 'power', 'model', 'data', 'unit'",
+    ):
         divergence_map([1, 2, 3], [0.3, 0.3, 0.4], scaling="harmonic")
 
 
@@ -433,12 +493,27 @@ def test_error_power_needs_r_and_beta_range():
 # --------------------------------------------------------------------------------------------
 # Properties (hypothesis)
 # --------------------------------------------------------------------------------------------
-SCALINGS_R = st.sampled_from([("geometric", None), ("power", 1.0), ("power", -1.0), ("power", 0.5), ("model", None), ("data", None), ("unit", None)])
+SCALINGS_R = st.sampled_from(
+    [
+        ("geometric", None),
+        ("power", 1.0),
+        ("power", -1.0),
+        ("power", 0.5),
+        ("model", None),
+        ("data", None),
+        ("unit", None),
+    ]
+)
 COUNTS = st.lists(st.integers(min_value=0, max_value=500), min_size=2, max_size=12).filter(lambda c: sum(c) > 0)
 
 
 @settings(max_examples=150, deadline=None)
-@given(counts=COUNTS, sr=SCALINGS_R, alphas=st.lists(st.floats(-3, 4, allow_nan=False), min_size=1, max_size=4), betas=st.lists(st.floats(0, 1), min_size=1, max_size=3))
+@given(
+    counts=COUNTS,
+    sr=SCALINGS_R,
+    alphas=st.lists(st.floats(-3, 4, allow_nan=False), min_size=1, max_size=4),
+    betas=st.lists(st.floats(0, 1), min_size=1, max_size=3),
+)
 def test_property_non_negative_never_nan(counts, sr, alphas, betas):
     s = len(counts)
     m = divergence_map(counts, np.full(s, 1 / s), alphas, betas, *sr)
@@ -448,7 +523,12 @@ def test_property_non_negative_never_nan(counts, sr, alphas, betas):
 
 
 @settings(max_examples=100, deadline=None)
-@given(q=st.lists(st.integers(1, 50), min_size=2, max_size=10), sr=SCALINGS_R, alpha=st.floats(-2, 3.5), beta=st.floats(0, 1))
+@given(
+    q=st.lists(st.integers(1, 50), min_size=2, max_size=10),
+    sr=SCALINGS_R,
+    alpha=st.floats(-2, 3.5),
+    beta=st.floats(0, 1),
+)
 def test_property_zero_iff_equal(q, sr, alpha, beta):
     q = np.asarray(q, float) / np.sum(q)
     assert scaled_bregman(q, q, alpha, beta, *sr) == 0.0
@@ -477,5 +557,7 @@ def test_property_batch_equals_loop(rows, sr):
     batch = divergence_map(np.array(rows), probs, DEFAULT_ALPHAS, DEFAULT_BETAS, *sr)
     for i, row in enumerate(rows):
         single = divergence_map(row, probs, DEFAULT_ALPHAS, DEFAULT_BETAS, *sr)
-        assert np.allclose(batch.statistic[i], single.statistic, rtol=1e-13, atol=0) or np.array_equal(batch.statistic[i], single.statistic)
+        assert np.allclose(batch.statistic[i], single.statistic, rtol=1e-13, atol=0) or np.array_equal(
+            batch.statistic[i], single.statistic
+        )
         assert batch.t_max[i] == pytest.approx(single.t_max)

@@ -35,8 +35,15 @@ from fitaudit.tasks.frequencies import ALIASES, FREQUENCIES, FREQUENCY_DAYS, SUB
 from fitaudit.tasks.registry import SourceEntry
 
 SOURCE = SourceEntry(
-    name="demand", uri="demand.parquet", key="district", time="date", value="demand",
-    exogenous=("temp_c",), frequency="D", partitioning=None, line=1,
+    name="demand",
+    uri="demand.parquet",
+    key="district",
+    time="date",
+    value="demand",
+    exogenous=("temp_c",),
+    frequency="D",
+    partitioning=None,
+    line=1,
 )
 
 
@@ -71,8 +78,13 @@ def _kinds(data: SeriesData) -> list[str]:
 
 @pytest.fixture
 def one_file(tmp_path):
-    table = pa.concat_tables([_table("north", _days("2024-01-01", 60)), _table("south", _days("2024-01-01", 60)),
-                              _table("east", _days("2024-01-01", 60))])
+    table = pa.concat_tables(
+        [
+            _table("north", _days("2024-01-01", 60)),
+            _table("south", _days("2024-01-01", 60)),
+            _table("east", _days("2024-01-01", 60)),
+        ]
+    )
     _write(tmp_path / "demand.parquet", table)
     return tmp_path
 
@@ -89,8 +101,15 @@ def test_single_file_reads_the_requested_series(one_file):
     np.testing.assert_array_equal(north.time, _days("2024-01-01", 60))
     np.testing.assert_array_equal(north.columns["demand"], np.arange(60, dtype=float) + 100.0)
     assert north.columns["temp_c"].dtype == np.float64
-    assert north.to_dict() == {"source": "demand", "key": "north", "rows": 60, "first": "2024-01-01",
-                               "last": "2024-02-29", "columns": ["demand", "temp_c"], "problems": []}
+    assert north.to_dict() == {
+        "source": "demand",
+        "key": "north",
+        "rows": 60,
+        "first": "2024-01-01",
+        "last": "2024-02-29",
+        "columns": ["demand", "temp_c"],
+        "problems": [],
+    }
 
 
 def test_folder_of_files(tmp_path):
@@ -151,8 +170,14 @@ class _Spy:
 def test_filter_push_down_and_one_scan_for_all_series(one_file, monkeypatch):
     spy = _Spy()
     monkeypatch.setattr(extracts, "_dataset", spy)
-    out = read_series(_source("demand.parquet"), ["north", "east"], ["demand", "temp_c"], start="2024-01-10",
-                      end="2024-01-19", base_dir=one_file)
+    out = read_series(
+        _source("demand.parquet"),
+        ["north", "east"],
+        ["demand", "temp_c"],
+        start="2024-01-10",
+        end="2024-01-19",
+        base_dir=one_file,
+    )
     assert len(spy.scans) == 1  # one scan serves every series of the source
     scan = spy.scans[0]
     expression = str(scan["filter"])
@@ -174,8 +199,14 @@ def test_only_needed_columns_are_read(tmp_path, monkeypatch):
 
 
 def test_integer_key_column_matches_text_keys(tmp_path):
-    table = pa.table({"district": [101] * 5 + [202] * 5, "date": np.concatenate([_days("2024-01-01", 5)] * 2),
-                      "demand": np.arange(10.0), "temp_c": np.zeros(10)})
+    table = pa.table(
+        {
+            "district": [101] * 5 + [202] * 5,
+            "date": np.concatenate([_days("2024-01-01", 5)] * 2),
+            "demand": np.arange(10.0),
+            "temp_c": np.zeros(10),
+        }
+    )
     _write(tmp_path / "demand.parquet", table)
     out = read_series(_source("demand.parquet"), ["202"], ["demand"], base_dir=tmp_path)
     np.testing.assert_array_equal(out["202"].columns["demand"], np.arange(5.0, 10.0))
@@ -194,7 +225,10 @@ def test_interleaved_rows_and_null_keys(tmp_path):
 
 def test_hive_partition_with_numeric_values(tmp_path):
     for key in (101, 202):
-        _write(tmp_path / "hive" / f"district={key}" / "part-0.parquet", _table(key, _days("2024-01-01", 5)).drop(["district"]))
+        _write(
+            tmp_path / "hive" / f"district={key}" / "part-0.parquet",
+            _table(key, _days("2024-01-01", 5)).drop(["district"]),
+        )
     out = read_series(_source("hive", partitioning="hive"), [202, "101"], ["demand"], base_dir=tmp_path)
     assert list(out) == ["202", "101"] and all(d.time.size == 5 and d.problems == () for d in out.values())
 
@@ -211,8 +245,9 @@ def test_bad_bounds_are_refused(one_file):
 def test_time_range_on_a_date_column(tmp_path):
     dates = pa.array(_days("2024-01-01", 30).astype("datetime64[D]"), pa.date32())  # no push-down for dates
     _write(tmp_path / "demand.parquet", _table("north", dates))
-    out = read_series(_source("demand.parquet"), ["north"], ["demand"], start="2024-01-05", end="2024-01-08T12:00",
-                      base_dir=tmp_path)
+    out = read_series(
+        _source("demand.parquet"), ["north"], ["demand"], start="2024-01-05", end="2024-01-08T12:00", base_dir=tmp_path
+    )
     np.testing.assert_array_equal(out["north"].time, _days("2024-01-05", 4))
 
 
@@ -240,20 +275,27 @@ def test_aware_timestamps_become_utc_naive(tmp_path):
 def test_mixed_aware_and_naive_files_are_reported_not_crashed(tmp_path):
     aware = pa.array(_days("2024-01-01", 5), type=pa.timestamp("ns")).cast(pa.timestamp("ns", tz="UTC"))
     _write(tmp_path / "x" / "a.parquet", _table("north", aware))
-    _write(tmp_path / "x" / "b.parquet", pa.concat_tables([_table("north", _days("2024-01-06", 5)),
-                                                           _table("south", _days("2024-01-01", 10))]))
+    _write(
+        tmp_path / "x" / "b.parquet",
+        pa.concat_tables([_table("north", _days("2024-01-06", 5)), _table("south", _days("2024-01-01", 10))]),
+    )
     out = read_series(_source("x"), ["north", "south"], ["demand"], base_dir=tmp_path)
     north = out["north"]
     assert north.time.size == 10
     problem = next(p for p in north.problems if p.kind == "mixed-timezones")
     assert problem.severity == "error"
-    assert re.search(r"time-zone-aware timestamps \('a\.parquet'\) and from files with naive timestamps \('b\.parquet'\)",
-                     problem.message)
+    assert re.search(
+        r"time-zone-aware timestamps \('a\.parquet'\) and from files with naive timestamps \('b\.parquet'\)",
+        problem.message,
+    )
     assert out["south"].problems == ()  # a series read from naive files only is fine
 
 
 def test_different_time_types_across_files_are_unified(tmp_path):
-    _write(tmp_path / "x" / "a.parquet", _table("north", pa.array(_days("2024-01-01", 3).astype("datetime64[D]"), pa.date32())))
+    _write(
+        tmp_path / "x" / "a.parquet",
+        _table("north", pa.array(_days("2024-01-01", 3).astype("datetime64[D]"), pa.date32())),
+    )
     _write(tmp_path / "x" / "b.parquet", _table("north", pa.array(_days("2024-01-04", 3).astype("datetime64[us]"))))
     _write(tmp_path / "x" / "c.parquet", _table("north", _days("2024-01-07", 3)))
     out = read_series(_source("x"), ["north"], ["demand"], base_dir=tmp_path)
@@ -266,15 +308,21 @@ def test_text_time_column_in_one_file(tmp_path):
     _write(tmp_path / "x" / "b.parquet", _table("north", [str(d)[:10] for d in _days("2024-01-04", 3)]))
     out = read_series(_source("x"), ["north"], ["demand"], base_dir=tmp_path)
     problem = next(p for p in out["north"].problems if p.kind == "column-type")
-    assert re.search(r"time column 'date' has type string; expected a timestamp or date column.* in file 'b\.parquet'", problem.message)
+    assert re.search(
+        r"time column 'date' has type string; expected a timestamp or date column.* in file 'b\.parquet'",
+        problem.message,
+    )
 
 
 # ------------------------------------------------------------------------------------------
 # bad files
 # ------------------------------------------------------------------------------------------
 def test_missing_path(tmp_path):
-    with pytest.raises(ExtractError, match=r"source 'demand' \(uri 'nowhere\.parquet', resolved to '.*nowhere\.parquet'\): "
-                                           r"does not exist\. Fix: correct sources\.demand\.uri in the registry"):
+    with pytest.raises(
+        ExtractError,
+        match=r"source 'demand' \(uri 'nowhere\.parquet', resolved to '.*nowhere\.parquet'\): "
+        r"does not exist\. Fix: correct sources\.demand\.uri in the registry",
+    ):
         read_series(_source("nowhere.parquet"), ["north"], ["demand"], base_dir=tmp_path)
     with pytest.raises(ExtractError, match="does not exist"):
         fingerprint_source(_source("nowhere.parquet"), tmp_path)
@@ -288,7 +336,9 @@ def test_empty_folder(tmp_path):
 
 def test_empty_file(tmp_path):
     (tmp_path / "demand.parquet").write_bytes(b"")
-    with pytest.raises(ExtractError, match=r"no file can be read \(demand\.parquet: empty file \(0 bytes\)\)\. Fix: rewrite"):
+    with pytest.raises(
+        ExtractError, match=r"no file can be read \(demand\.parquet: empty file \(0 bytes\)\)\. Fix: rewrite"
+    ):
         read_series(_source("demand.parquet"), ["north"], ["demand"], base_dir=tmp_path)
 
 
@@ -306,8 +356,11 @@ def test_one_unreadable_file_among_good_ones(tmp_path):
     assert out["north"].problems == () and out["north"].time.size == 15  # the others go on
     (problem,) = out["west"].problems
     assert problem.kind == "missing-series" and problem.severity == "error"
-    assert re.search(r"series 'west': is not in source 'demand' \(x\); keys present: 'north', 'south'; these files could "
-                     r"not be read and may hold it: west\.parquet: not readable as Parquet", problem.message)
+    assert re.search(
+        r"series 'west': is not in source 'demand' \(x\); keys present: 'north', 'south'; these files could "
+        r"not be read and may hold it: west\.parquet: not readable as Parquet",
+        problem.message,
+    )
     fp = fingerprint_source(_source("x"), tmp_path)
     assert fp.unreadable == (str(tmp_path / "x" / "west.parquet"),)
     assert fp.rows == 30 and len(fp.files) == 3
@@ -317,11 +370,14 @@ def test_file_corrupt_after_a_valid_footer(tmp_path):
     rng = np.random.default_rng(7)
     for key in ("north", "south"):
         n = 60
-        _write(tmp_path / "x" / f"{key}.parquet", _table(key, _days("2024-01-01", n), demand=rng.normal(size=n), temp=rng.normal(size=n)))
+        _write(
+            tmp_path / "x" / f"{key}.parquet",
+            _table(key, _days("2024-01-01", n), demand=rng.normal(size=n), temp=rng.normal(size=n)),
+        )
     path = tmp_path / "x" / "south.parquet"
     data = bytearray(path.read_bytes())
     start = pq.read_metadata(path).row_group(0).column(2).data_page_offset
-    data[start + 5: start + 120] = b"\xab" * 115  # the page header and values, not the footer
+    data[start + 5 : start + 120] = b"\xab" * 115  # the page header and values, not the footer
     path.write_bytes(bytes(data))
     out = read_series(_source("x"), ["north", "south"], ["demand"], base_dir=tmp_path)
     assert out["north"].problems == () and out["north"].time.size == 60
@@ -329,8 +385,11 @@ def test_file_corrupt_after_a_valid_footer(tmp_path):
 
 
 def test_missing_key_column_everywhere(one_file):
-    with pytest.raises(ExtractError, match=r"the key column 'region' is in none of the files \(available columns: 'district', "
-                                           r"'date', 'demand', 'temp_c'\)\. Fix: set sources\.demand\.key"):
+    with pytest.raises(
+        ExtractError,
+        match=r"the key column 'region' is in none of the files \(available columns: 'district', "
+        r"'date', 'demand', 'temp_c'\)\. Fix: set sources\.demand\.key",
+    ):
         read_series(_source("demand.parquet", key="region"), ["north"], ["demand"], base_dir=one_file)
 
 
@@ -338,8 +397,10 @@ def test_missing_value_column(one_file):
     out = read_series(_source("demand.parquet"), ["north"], ["load"], base_dir=one_file)
     (problem,) = out["north"].problems
     assert problem.kind == "missing-column" and problem.column == "load"
-    assert re.search(r"column 'load' is in none of the files; available columns: 'district', 'date', 'demand', 'temp_c'",
-                     problem.message)
+    assert re.search(
+        r"column 'load' is in none of the files; available columns: 'district', 'date', 'demand', 'temp_c'",
+        problem.message,
+    )
     assert out["north"].problems_for(["demand"]) == ()  # a model not using the column is unaffected
 
 
@@ -349,8 +410,13 @@ def test_column_missing_in_one_file(tmp_path):
     out = read_series(_source("x"), ["north"], ["demand", "temp_c"], base_dir=tmp_path)
     (problem,) = out["north"].problems
     assert (problem.kind, problem.column) == ("missing-column", "temp_c")
-    assert re.search(r"column 'temp_c' is missing in file 'b\.parquet'; available columns: 'district', 'date', 'demand'", problem.message)
-    np.testing.assert_array_equal(out["north"].columns["demand"], np.concatenate([np.arange(5.0), np.arange(5.0)]) + 100)
+    assert re.search(
+        r"column 'temp_c' is missing in file 'b\.parquet'; available columns: 'district', 'date', 'demand'",
+        problem.message,
+    )
+    np.testing.assert_array_equal(
+        out["north"].columns["demand"], np.concatenate([np.arange(5.0), np.arange(5.0)]) + 100
+    )
 
 
 @pytest.mark.parametrize("values, type_name", [(["a", "b", "c"], "string"), ([True, False, True], "bool")])
@@ -373,7 +439,10 @@ def test_series_not_in_source(one_file):
 
 def test_series_outside_the_time_range(one_file):
     out = read_series(_source("demand.parquet"), ["north"], ["demand"], end="2023-06-30", base_dir=one_file)
-    assert re.search(r"has no rows between the first row and 2023-06-30\. Fix: check the as-of date", out["north"].problems[0].message)
+    assert re.search(
+        r"has no rows between the first row and 2023-06-30\. Fix: check the as-of date",
+        out["north"].problems[0].message,
+    )
 
 
 def test_row_without_timestamp(tmp_path):
@@ -390,7 +459,9 @@ def test_row_without_timestamp(tmp_path):
 # ------------------------------------------------------------------------------------------
 def _read_one(tmp_path, table, frequency="D", columns=("demand", "temp_c")):
     _write(tmp_path / "demand.parquet", table)
-    return read_series(_source("demand.parquet", frequency=frequency), ["north"], list(columns), base_dir=tmp_path)["north"]
+    return read_series(_source("demand.parquet", frequency=frequency), ["north"], list(columns), base_dir=tmp_path)[
+        "north"
+    ]
 
 
 def test_duplicate_timestamps(tmp_path):
@@ -399,7 +470,9 @@ def test_duplicate_timestamps(tmp_path):
     data = _read_one(tmp_path, _table("north", times))
     (problem,) = data.problems
     assert problem.kind == "duplicate-time"
-    assert re.search(r"1 timestamp\(s\) appear more than once: 2024-01-04 \(rows 3, 4\)\. Fix: keep one row", problem.message)
+    assert re.search(
+        r"1 timestamp\(s\) appear more than once: 2024-01-04 \(rows 3, 4\)\. Fix: keep one row", problem.message
+    )
 
 
 def test_rows_out_of_time_order(tmp_path):
@@ -408,7 +481,9 @@ def test_rows_out_of_time_order(tmp_path):
     data = _read_one(tmp_path, _table("north", times))
     (problem,) = data.problems
     assert problem.kind == "unsorted"
-    assert re.search(r"1 row\(s\) out of time order: row 6 \(2024-01-06\) follows row 5 \(2024-01-07\)\. Fix: sort", problem.message)
+    assert re.search(
+        r"1 row\(s\) out of time order: row 6 \(2024-01-06\) follows row 5 \(2024-01-07\)\. Fix: sort", problem.message
+    )
 
 
 def test_gaps_are_counted_and_named(tmp_path):
@@ -416,8 +491,10 @@ def test_gaps_are_counted_and_named(tmp_path):
     data = _read_one(tmp_path, _table("north", times))
     (problem,) = data.problems
     assert problem.kind == "gap"
-    assert re.search(r"3 timestamp\(s\) missing against frequency 'D' \(daily\), first: 2024-01-05, 2024-01-06, 2024-01-21\.",
-                     problem.message)
+    assert re.search(
+        r"3 timestamp\(s\) missing against frequency 'D' \(daily\), first: 2024-01-05, 2024-01-06, 2024-01-21\.",
+        problem.message,
+    )
 
 
 def test_off_grid_timestamps(tmp_path):
@@ -434,8 +511,11 @@ def test_nan_inf_and_null_values(tmp_path):
     data = _read_one(tmp_path, _table("north", _days("2024-01-01", 6), demand=demand))
     (problem,) = data.problems
     assert (problem.kind, problem.column) == ("non-finite", "demand")
-    assert re.search(r"column 'demand' has 2 missing or NaN and 1 infinite value\(s\) at 2024-01-02, 2024-01-04, 2024-01-05 "
-                     r"\(rows 1, 3, 4\)\. Fix: impute or remove", problem.message)
+    assert re.search(
+        r"column 'demand' has 2 missing or NaN and 1 infinite value\(s\) at 2024-01-02, 2024-01-04, 2024-01-05 "
+        r"\(rows 1, 3, 4\)\. Fix: impute or remove",
+        problem.message,
+    )
 
 
 def test_missing_exogenous_values(tmp_path):
@@ -500,7 +580,9 @@ def test_frequency_days_bound_every_period(frequency):
     assert (frequency in SUBDAILY) == (longest < 1)
 
 
-@pytest.mark.parametrize("old, new", [("H", "h"), ("M", "ME"), ("Q", "QE"), ("A", "YE"), ("AS", "YS"), ("15T", "15min")])
+@pytest.mark.parametrize(
+    "old, new", [("H", "h"), ("M", "ME"), ("Q", "QE"), ("A", "YE"), ("AS", "YS"), ("15T", "15min")]
+)
 def test_old_pandas_spellings_are_aliases(old, new):
     # source: pandas 2.2 release notes deprecate H, T, M, Q, A in favour of h, min, ME, QE, YE
     assert ALIASES[old] == new
@@ -529,9 +611,20 @@ def test_business_days_skip_weekends_and_holidays():
     assert daily_gap.kind == "gap"
 
 
-@pytest.mark.parametrize("frequency, bad", [("MS", "2020-03-15"), ("ME", "2020-03-01"), ("QS", "2020-02-01"), ("QE", "2020-05-31"),
-                                            ("W", "2020-01-08T06:00"), ("W-MON", "2020-01-08"), ("YS", "2021-06-01"),
-                                            ("YE", "2021-01-01"), ("B", "2020-01-04")])
+@pytest.mark.parametrize(
+    "frequency, bad",
+    [
+        ("MS", "2020-03-15"),
+        ("ME", "2020-03-01"),
+        ("QS", "2020-02-01"),
+        ("QE", "2020-05-31"),
+        ("W", "2020-01-08T06:00"),
+        ("W-MON", "2020-01-08"),
+        ("YS", "2021-06-01"),
+        ("YE", "2021-01-01"),
+        ("B", "2020-01-04"),
+    ],
+)
 def test_calendar_anchor_is_checked(frequency, bad):
     grid = pd.date_range("2019-12-30", periods=12, freq=_PANDAS_FREQ[frequency]).to_numpy()
     times = np.sort(np.append(grid, np.datetime64(bad, "ns")))
@@ -541,8 +634,13 @@ def test_calendar_anchor_is_checked(frequency, bad):
 
 def test_problem_records_serialise():
     problem = SeriesProblem("north", "gap", "error", "text", None)
-    assert json.loads(canonical_json(problem.to_dict())) == {"key": "north", "kind": "gap", "severity": "error",
-                                                              "message": "text", "column": None}
+    assert json.loads(canonical_json(problem.to_dict())) == {
+        "key": "north",
+        "kind": "gap",
+        "severity": "error",
+        "message": "text",
+        "column": None,
+    }
 
 
 # ------------------------------------------------------------------------------------------
@@ -625,4 +723,7 @@ def test_an_unreadable_cache_is_an_empty_one(tmp_path):
     (tmp_path / "cache.json").write_text("{not json")
     cache = extracts.FingerprintCache(tmp_path / "cache.json")
     fp = fingerprint_source(_source("x"), tmp_path, cache=cache)
-    assert cache.misses == 1 and fp.files[0].sha256 == hashlib.sha256((tmp_path / "x" / "north.parquet").read_bytes()).hexdigest()
+    assert (
+        cache.misses == 1
+        and fp.files[0].sha256 == hashlib.sha256((tmp_path / "x" / "north.parquet").read_bytes()).hexdigest()
+    )

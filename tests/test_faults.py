@@ -62,7 +62,9 @@ def _write_fleet(root: pathlib.Path, archive: pathlib.Path) -> Fleet:
     steady = {f"s{i}": {"date": days(), "y": ar1(rng)} for i in range(1, 4)}
     steady["s3"]["y"][N_DAYS - 4] = np.nan  # one bad row: an error verdict in every run
     write_parquet(root / "data" / "steady.parquet", long_table(steady))
-    write_parquet(root / "data" / "flaky.parquet", long_table({f"f{i}": {"date": days(), "y": ar1(rng)} for i in (1, 2)}))
+    write_parquet(
+        root / "data" / "flaky.parquet", long_table({f"f{i}": {"date": days(), "y": ar1(rng)} for i in (1, 2)})
+    )
     fleet.source("steady", "data/steady.parquet")
     fleet.source("flaky", "data/flaky.parquet")
     for key in steady:
@@ -92,8 +94,18 @@ def _archive(root: pathlib.Path, name: str) -> pathlib.Path:
 # ------------------------------------------------------------------------------------------
 def _start_cli(root: pathlib.Path, archive: pathlib.Path, server: str, log) -> subprocess.Popen:
     env = {**os.environ, "PREFECT_API_URL": server}
-    cmd = [sys.executable, "-m", "fitaudit.flows.cli", "run", str(root / "registry.yaml"), "--archive", str(archive),
-           "--as-of", AS_OF.isoformat(), "--quiet"]
+    cmd = [
+        sys.executable,
+        "-m",
+        "fitaudit.flows.cli",
+        "run",
+        str(root / "registry.yaml"),
+        "--archive",
+        str(archive),
+        "--as-of",
+        AS_OF.isoformat(),
+        "--quiet",
+    ]
     return subprocess.Popen(cmd, env=env, stdout=log, stderr=log, start_new_session=True)
 
 
@@ -105,8 +117,12 @@ def _assert_only_complete_runs(archive: pathlib.Path, reference: bytes) -> int:
     for folder in visible:
         assert folder.relative_to(archive).as_posix() in chained, f"unchained run visible: {folder}"
         manifest = json.loads((folder / "manifest.json").read_bytes())
-        assert {p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file()} == set(manifest["files"]) | {"manifest.json"}
-        assert (folder / "results.json").read_bytes() == reference, f"{folder}: results differ from the uninterrupted run"
+        assert {p.relative_to(folder).as_posix() for p in folder.rglob("*") if p.is_file()} == set(
+            manifest["files"]
+        ) | {"manifest.json"}
+        assert (folder / "results.json").read_bytes() == reference, (
+            f"{folder}: results differ from the uninterrupted run"
+        )
     return len(visible)
 
 
@@ -116,7 +132,9 @@ def test_sigkill_at_20_points_leaves_no_partial_run_and_a_rerun_matches(fleet, p
     with open(tmp_path / "cli.log", "ab") as log:
         reference_archive = _archive(root, "archive-reference")
         t0 = time.monotonic()
-        assert _start_cli(root, reference_archive, prefect_server, log).wait(timeout=300) == 0, (tmp_path / "cli.log").read_text()
+        assert _start_cli(root, reference_archive, prefect_server, log).wait(timeout=300) == 0, (
+            tmp_path / "cli.log"
+        ).read_text()
         duration = time.monotonic() - t0
         (reference_run,) = sorted((reference_archive / "runs").glob("*/*"))
         reference = (reference_run / "results.json").read_bytes()
@@ -139,7 +157,9 @@ def test_sigkill_at_20_points_leaves_no_partial_run_and_a_rerun_matches(fleet, p
         before = _assert_only_complete_runs(archive, reference)
         assert _start_cli(root, archive, prefect_server, log).wait(timeout=300) == 0
     assert _assert_only_complete_runs(archive, reference) == before + 1
-    assert verify_archive(archive, include_notes=True) == []  # the rerun's recovery settled every interrupted publication
+    assert (
+        verify_archive(archive, include_notes=True) == []
+    )  # the rerun's recovery settled every interrupted publication
     work = archive / ".work"  # scratch folders of the killed runs: removed by the rerun's recovery, its own at its end
     assert not (work.exists() and any(work.iterdir())), sorted(p.name for p in work.iterdir())
 
@@ -193,13 +213,24 @@ def test_read_series_raises_io_errors_for_retry_or_names_the_file(fleet, monkeyp
     for mode, failures in (("raise", 1), ("skip", -1)):
         handler = FlakyFiles(failures)
         locate = extracts._locate
-        monkeypatch.setattr(extracts, "_locate", lambda s, b, io_errors="skip", locate=locate, handler=handler: dataclasses.replace(locate(s, b, io_errors), fs=PyFileSystem(handler)))
+        monkeypatch.setattr(
+            extracts,
+            "_locate",
+            lambda s, b, io_errors="skip", locate=locate, handler=handler: dataclasses.replace(
+                locate(s, b, io_errors), fs=PyFileSystem(handler)
+            ),
+        )
         if mode == "raise":
             with pytest.raises(TimeoutError, match="simulated time-out"):
                 extracts.read_series(source, ["f1"], ["y"], base_dir=root, io_errors="raise")
-            assert extracts.read_series(source, ["f1"], ["y"], base_dir=root, io_errors="raise")["f1"].time.size == N_DAYS
+            assert (
+                extracts.read_series(source, ["f1"], ["y"], base_dir=root, io_errors="raise")["f1"].time.size == N_DAYS
+            )
         else:
-            with pytest.raises(extracts.ExtractError, match=r"flaky\.parquet: could not be read .*Fix: check that the storage is reachable"):
+            with pytest.raises(
+                extracts.ExtractError,
+                match=r"flaky\.parquet: could not be read .*Fix: check that the storage is reachable",
+            ):
                 extracts.read_series(source, ["f1"], ["y"], base_dir=root, io_errors="skip")
         monkeypatch.undo()
 
@@ -212,8 +243,10 @@ def _stage_task_runs(flow_run_id) -> list:
 
     async def read():
         async with get_client() as client:
-            runs = await client.read_task_runs(flow_run_filter=FlowRunFilter(id=FlowRunFilterId(any_=[flow_run_id])),
-                                               sort=TaskRunSort.EXPECTED_START_TIME_ASC)
+            runs = await client.read_task_runs(
+                flow_run_filter=FlowRunFilter(id=FlowRunFilterId(any_=[flow_run_id])),
+                sort=TaskRunSort.EXPECTED_START_TIME_ASC,
+            )
             return [r for r in runs if r.name.startswith("stage-extracts")]
 
     for _ in range(60):
@@ -240,7 +273,9 @@ def test_transient_read_failure_is_retried_and_the_run_succeeds(fleet, prefect_s
     assert verdicts["flaky-f1"] in AUDITED and verdicts["flaky-f2"] in AUDITED
     assert handler.failures == 0 and handler.opened > 1  # it failed once, then was read
     (stage,) = _stage_task_runs(flow_run_id)
-    assert stage.run_count == 2 and stage.state.is_completed()  # source: one failure, then one retry (stage_inputs_task retries=2)
+    assert (
+        stage.run_count == 2 and stage.state.is_completed()
+    )  # source: one failure, then one retry (stage_inputs_task retries=2)
     manifest = json.loads((pathlib.Path(run["report"]).parent / "manifest.json").read_text())
     assert manifest["source_errors"] == {} and "flaky" in manifest["inputs"]
     assert verify_archive(run["archive"]) == []
@@ -254,12 +289,17 @@ def test_persistent_read_failure_is_reported_on_the_source_models_only(fleet, pr
         message = " ".join(records[model_id]["reasons"])
         assert records[model_id]["verdict"] == "error"
         assert re.search(rf"model '{model_id}': source 'flaky' \(uri 'data/flaky\.parquet'", message), message
-        assert re.search(r"flaky\.parquet: could not be read \(\[Errno 110\] simulated time-out of the object store", message), message
+        assert re.search(
+            r"flaky\.parquet: could not be read \(\[Errno 110\] simulated time-out of the object store", message
+        ), message
         assert "check that the storage is reachable" in message
     assert records["steady-s1"]["verdict"] in AUDITED and records["steady-s2"]["verdict"] in AUDITED
     assert records["steady-s3"]["verdict"] == "error"  # its own bad row, as in every run
     runs = _stage_task_runs(flow_run_id)
-    assert [r.run_count for r in runs] == [3, 1]  # source: stage_inputs_task retries=2, then audit_flow stages once with os_errors="record"
+    assert [r.run_count for r in runs] == [
+        3,
+        1,
+    ]  # source: stage_inputs_task retries=2, then audit_flow stages once with os_errors="record"
     assert runs[0].state.is_failed() and runs[1].state.is_completed()
     assert handler.opened >= 4
     assert doc["summary"]["registered"] == sum(doc["summary"][v] for v in VERDICTS) == 5
@@ -272,7 +312,10 @@ def test_persistent_read_failure_is_reported_on_the_source_models_only(fleet, pr
 # (c) a crash inside one model's fit
 # ------------------------------------------------------------------------------------------
 CRASHES = {
-    "nlar-raises": ("nlar_functions:broken", r"the mean function 'nlar_functions:broken' raised ValueError: division by the wrong column"),
+    "nlar-raises": (
+        "nlar_functions:broken",
+        r"the mean function 'nlar_functions:broken' raised ValueError: division by the wrong column",
+    ),
     "nlar-exits": ("fleet_fixtures:mean_exits", r"the mean function 'fleet_fixtures:mean_exits' raised SystemExit: 3"),
     "nlar-divides-by-zero": ("fleet_fixtures:mean_divides_by_zero", r"raised ZeroDivisionError"),
     "nlar-not-finite": ("fleet_fixtures:mean_not_finite", r"(not finite|non-finite|NaN)"),
@@ -291,14 +334,27 @@ def test_crash_in_a_user_mean_function_is_contained_to_its_model(prefect_server,
     fleet.source("main", "data/main.parquet")
     start = {"c": 25.0, "a1": 0.4, "a2": 0.1}
     for model_id, (function, _) in CRASHES.items():
-        fleet.model(model_id, "main", model_id, spec={"family": "nonlinear-ar", "function": function, "lags": [1, 2], "start": start})
-    fleet.model("nlar-ok", "main", "nlar-ok", spec={"family": "nonlinear-ar", "function": "nlar_functions:linear_ar2", "lags": [1, 2], "start": start})
+        fleet.model(
+            model_id,
+            "main",
+            model_id,
+            spec={"family": "nonlinear-ar", "function": function, "lags": [1, 2], "start": start},
+        )
+    fleet.model(
+        "nlar-ok",
+        "main",
+        "nlar-ok",
+        spec={"family": "nonlinear-ar", "function": "nlar_functions:linear_ar2", "lags": [1, 2], "start": start},
+    )
     fleet.model("arima-ok", "main", "arima-ok")
     fleet.write()
     run = audit_flow(registry=str(tmp_path / "registry.yaml"), as_of=AS_OF, archive=str(tmp_path / "archive"))
     doc = results_of(run)
     records = {m["id"]: m for m in doc["models"]}
-    assert run["timings"] and json.loads((pathlib.Path(run["report"]).parent / "manifest.json").read_text())["batches"] == 1
+    assert (
+        run["timings"]
+        and json.loads((pathlib.Path(run["report"]).parent / "manifest.json").read_text())["batches"] == 1
+    )
     for model_id, (_, pattern) in CRASHES.items():
         message = " ".join(records[model_id]["reasons"])
         assert records[model_id]["verdict"] == "error", (model_id, message)
@@ -347,11 +403,18 @@ def test_model_that_never_returns_gets_an_error_and_the_run_completes(prefect_se
     write_parquet(tmp_path / "data" / "main.parquet", long_table(series))
     fleet.source("main", "data/main.parquet")
     start = {"c": 25.0, "a1": 0.4, "a2": 0.1}
-    fleet.model("nlar-hangs", "main", "nlar-hangs", spec={"family": "nonlinear-ar", "function": "nlar_functions:never_returns", "lags": [1, 2], "start": start})
+    fleet.model(
+        "nlar-hangs",
+        "main",
+        "nlar-hangs",
+        spec={"family": "nonlinear-ar", "function": "nlar_functions:never_returns", "lags": [1, 2], "start": start},
+    )
     fleet.model("arima-a", "main", "arima-a")
     fleet.model("arima-b", "main", "arima-b")
     fleet.write()
-    run = audit_flow(registry=str(tmp_path / "registry.yaml"), as_of=AS_OF, archive=str(tmp_path / "archive"), batch_size=1)
+    run = audit_flow(
+        registry=str(tmp_path / "registry.yaml"), as_of=AS_OF, archive=str(tmp_path / "archive"), batch_size=1
+    )
     records = {m["id"]: m for m in results_of(run)["models"]}
     message = " ".join(records["nlar-hangs"]["reasons"])
     assert records["nlar-hangs"]["verdict"] == "error", message

@@ -15,7 +15,23 @@ multitest = pytest.importorskip("statsmodels.stats.multitest")
 # source: Benjamini & Hochberg (1995), JRSS B 57:289, section 4 example (15 p-values of a
 # myocardial-infarction study; values from memory)
 BH_1995 = np.array(
-    [0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459, 0.3240, 0.4262, 0.5719, 0.6528, 0.7590, 1.000]
+    [
+        0.0001,
+        0.0004,
+        0.0019,
+        0.0095,
+        0.0201,
+        0.0278,
+        0.0298,
+        0.0344,
+        0.0459,
+        0.3240,
+        0.4262,
+        0.5719,
+        0.6528,
+        0.7590,
+        1.000,
+    ]
 )
 STATSMODELS_METHOD = {"bh": "fdr_bh", "by": "fdr_by", "bonferroni": "bonferroni"}
 
@@ -32,7 +48,9 @@ def test_benjamini_hochberg_1995_example():
 
 @pytest.mark.parametrize("method", ["bh", "by", "bonferroni"])
 def test_matches_statsmodels_on_published_example(method):
-    ref = multitest.multipletests(BH_1995, alpha=0.05, method=STATSMODELS_METHOD[method])[1]  # source: statsmodels multipletests
+    ref = multitest.multipletests(BH_1995, alpha=0.05, method=STATSMODELS_METHOD[method])[
+        1
+    ]  # source: statsmodels multipletests
     np.testing.assert_allclose(adjust_pvalues(BH_1995, method), ref, rtol=1e-14)
 
 
@@ -55,7 +73,9 @@ def test_nan_passes_through_and_is_not_counted():
     p = np.array([0.01, np.nan, 0.04, 0.03, np.nan])
     out = adjust_pvalues(p, "bh")
     assert np.isnan(out[[1, 4]]).all()
-    ref = multitest.multipletests(p[[0, 2, 3]], method="fdr_bh")[1]  # source: statsmodels multipletests on the 3 finite values
+    ref = multitest.multipletests(p[[0, 2, 3]], method="fdr_bh")[
+        1
+    ]  # source: statsmodels multipletests on the 3 finite values
     np.testing.assert_allclose(out[[0, 2, 3]], ref, rtol=1e-14)
     np.testing.assert_array_equal(adjust_pvalues(p, "none"), p)
     assert np.isnan(adjust_pvalues([np.nan, np.nan])).all()

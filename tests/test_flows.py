@@ -62,7 +62,19 @@ def test_audit_flow_end_to_end(first_run):
     assert verdicts["demand-d-07"] == "refit"
     assert not [p for p in verify_archive(first_run["archive"]) if not p.is_note]
     manifest = json.loads((pathlib.Path(first_run["report"]).parent / "manifest.json").read_text())
-    for key in ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "packages", "registry", "inputs", "seeds", "timings", "files"):
+    for key in (
+        "run_id",
+        "started_utc",
+        "finished_utc",
+        "operator",
+        "tool_version",
+        "packages",
+        "registry",
+        "inputs",
+        "seeds",
+        "timings",
+        "files",
+    ):
         assert manifest.get(key), key
     assert manifest["batches"] == 3  # 7 models in batches of 3 from two sources
 
@@ -77,17 +89,36 @@ def test_refit_refuses_a_registry_changed_since_the_audit(demo, first_run, tmp_p
     files = sorted(str(p.relative_to(archive)) for p in archive.rglob("*"))
     edited = pathlib.Path(demo["registry"]).with_name("registry-edited.yaml")  # same folder: same data
     edited.write_text(pathlib.Path(demo["registry"]).read_text() + "# edited after the audit\n")
-    with pytest.raises(RegistryChangedError, match=rf"registry changed since the audit that asked for this refit \(SHA-256 {audited} then"):
-        refit_flow(registry=str(edited), model_ids=["demand-d-07"], archive=str(archive), as_of=DEMO_AS_OF, registry_sha256=audited)
+    with pytest.raises(
+        RegistryChangedError,
+        match=rf"registry changed since the audit that asked for this refit \(SHA-256 {audited} then",
+    ):
+        refit_flow(
+            registry=str(edited),
+            model_ids=["demand-d-07"],
+            archive=str(archive),
+            as_of=DEMO_AS_OF,
+            registry_sha256=audited,
+        )
     assert sorted(str(p.relative_to(archive)) for p in archive.rglob("*")) == files  # nothing refitted or recorded
-    run = refit_flow(registry=demo["registry"], model_ids=["demand-d-07"], archive=str(archive), as_of=DEMO_AS_OF, registry_sha256=audited)
-    assert [(r["model_id"], r["status"]) for r in run["records"]] == [("demand-d-07", "awaiting approval")]  # the audited file: refitted
+    run = refit_flow(
+        registry=demo["registry"],
+        model_ids=["demand-d-07"],
+        archive=str(archive),
+        as_of=DEMO_AS_OF,
+        registry_sha256=audited,
+    )
+    assert [(r["model_id"], r["status"]) for r in run["records"]] == [
+        ("demand-d-07", "awaiting approval")
+    ]  # the audited file: refitted
 
 
 def test_results_do_not_depend_on_batch_size(demo, first_run, tmp_path):
     from fitaudit.flows.audit import audit_flow
 
-    other = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=_fresh_archive(demo, tmp_path), models=SUBSET, batch_size=1)
+    other = audit_flow(
+        registry=demo["registry"], as_of=DEMO_AS_OF, archive=_fresh_archive(demo, tmp_path), models=SUBSET, batch_size=1
+    )
     assert _results(other) == _results(first_run)
 
 
@@ -97,7 +128,11 @@ def test_events_and_artifacts_exist(first_run):
 
     async def read():
         async with get_client() as client:
-            arts = await client.read_artifacts(artifact_filter=ArtifactFilter(key=ArtifactFilterKey(any_=["fitaudit-verdicts", "fitaudit-summary", "fitaudit-report"])))
+            arts = await client.read_artifacts(
+                artifact_filter=ArtifactFilter(
+                    key=ArtifactFilterKey(any_=["fitaudit-verdicts", "fitaudit-summary", "fitaudit-report"])
+                )
+            )
             return {a.key for a in arts}
 
     assert {"fitaudit-verdicts", "fitaudit-summary", "fitaudit-report"} <= asyncio.run(read())
@@ -110,8 +145,13 @@ def test_dask_runner_gives_the_same_results(demo, first_run, tmp_path):
 
     from fitaudit.flows.audit import audit_flow
 
-    runner = DaskTaskRunner(cluster_class="distributed.LocalCluster", cluster_kwargs={"n_workers": 2, "threads_per_worker": 1, "processes": True, "dashboard_address": None})
-    run = audit_flow.with_options(task_runner=runner)(registry=demo["registry"], as_of=DEMO_AS_OF, archive=_fresh_archive(demo, tmp_path), models=SUBSET, batch_size=3)
+    runner = DaskTaskRunner(
+        cluster_class="distributed.LocalCluster",
+        cluster_kwargs={"n_workers": 2, "threads_per_worker": 1, "processes": True, "dashboard_address": None},
+    )
+    run = audit_flow.with_options(task_runner=runner)(
+        registry=demo["registry"], as_of=DEMO_AS_OF, archive=_fresh_archive(demo, tmp_path), models=SUBSET, batch_size=3
+    )
     assert run["counts"] == first_run["counts"]
     assert _results(run) == _results(first_run)
 
@@ -125,9 +165,17 @@ def test_a_second_run_names_the_first_run_and_the_chain_head_it_extends(demo, pr
 
     archive = _fresh_archive(demo, tmp_path)
     before = chain_head(archive)  # the demo's initial promotions are chained
-    first = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF - dt.timedelta(days=28), archive=archive, models=["demand-d-02"], search_candidates=False)
+    first = audit_flow(
+        registry=demo["registry"],
+        as_of=DEMO_AS_OF - dt.timedelta(days=28),
+        archive=archive,
+        models=["demand-d-02"],
+        search_candidates=False,
+    )
     after_first = chain_head(archive)
-    second = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=archive, models=["demand-d-02"], search_candidates=False)
+    second = audit_flow(
+        registry=demo["registry"], as_of=DEMO_AS_OF, archive=archive, models=["demand-d-02"], search_candidates=False
+    )
     entry = read_chain(archive)[after_first[1] - 1]
     assert entry["kind"] == "run" and entry["payload"]["run_id"] == first["run_id"] and entry["hash"] == after_first[0]
 
@@ -139,7 +187,12 @@ def test_a_second_run_names_the_first_run_and_the_chain_head_it_extends(demo, pr
     assert f"{first['run_id']}</span> (as of {first['as_of']})" in page2
     assert "none (first run)" not in page2
     manifest = json.loads((pathlib.Path(second["report"]).parent / "manifest.json").read_text())
-    assert manifest["extends"] == {"chain_head": after_first[0], "chain_seq": after_first[1], "previous_run_id": first["run_id"], "previous_as_of": first["as_of"]}
+    assert manifest["extends"] == {
+        "chain_head": after_first[0],
+        "chain_seq": after_first[1],
+        "previous_run_id": first["run_id"],
+        "previous_as_of": first["as_of"],
+    }
     # the demo registers 45 models fitted here (one entry rejected) and 4 forecast entries
     assert manifest["scope"] == {"models_requested": ["demand-d-02"], "registry_models": 49, "unreadable_sources": []}
     assert "This is a partial run: only 1 of the registry's 49 models were audited (--models)" in html.unescape(page2)
@@ -179,25 +232,71 @@ def test_owner_automation_sends_each_owner_their_exceptions(demo, prefect_server
 
     server, received = _webhook_receiver()
     owner, other = f"Zone {uuid.uuid4().hex[:8]} (A. Owner)", f"Zone {uuid.uuid4().hex[:8]} (B. Other)"
-    block = CustomWebhookNotificationBlock(name="fitaudit test", url=f"http://127.0.0.1:{server.server_port}/hook", json_data={"subject": "{{subject}}", "body": "{{body}}"})
+    block = CustomWebhookNotificationBlock(
+        name="fitaudit test",
+        url=f"http://127.0.0.1:{server.server_port}/hook",
+        json_data={"subject": "{{subject}}", "body": "{{body}}"},
+    )
     slug = f"fitaudit-test-{uuid.uuid4().hex[:8]}"
     block.save(slug, overwrite=True)
     # the registry setting `fitaudit serve` installs from: the policy's notify
     registry = pathlib.Path(demo["registry"]).with_name(f"registry-{slug}.yaml")
-    registry.write_text(pathlib.Path(demo["registry"]).read_text().replace(
-        "  refit_policy: approval\n", f"  refit_policy: approval\n  notify:\n    - {{owner: '{owner}', block: 'custom-webhook/{slug}'}}\n", 1))
+    registry.write_text(
+        pathlib.Path(demo["registry"])
+        .read_text()
+        .replace(
+            "  refit_policy: approval\n",
+            f"  refit_policy: approval\n  notify:\n    - {{owner: '{owner}', block: 'custom-webhook/{slug}'}}\n",
+            1,
+        )
+    )
     assert install_owner_notifications(str(registry)) == [f"fitaudit: exceptions for {owner}"]
-    assert install_owner_notifications(str(registry)) == [f"fitaudit: exceptions for {owner}"]  # installing again replaces it
+    assert install_owner_notifications(str(registry)) == [
+        f"fitaudit: exceptions for {owner}"
+    ]  # installing again replaces it
     automation = Automation.read(name=f"fitaudit: exceptions for {owner}")
     try:
         time.sleep(3)  # the server's trigger service loads new automations
         folder = tmp_path / "archive" / "runs" / "2026" / "r1"
-        run = {"run_id": "20261130-T060000Z-abcd", "as_of": "2026-11-30", "report_path": str(folder / "index.html"), "archive": str(tmp_path / "archive"),
-               "report_base_url": "https://audit.example.org/fitaudit", "policy": {"days_to_act": {"tier_1": 7, "tier_2": 10, "tier_3": 28}}}
+        run = {
+            "run_id": "20261130-T060000Z-abcd",
+            "as_of": "2026-11-30",
+            "report_path": str(folder / "index.html"),
+            "archive": str(tmp_path / "archive"),
+            "report_base_url": "https://audit.example.org/fitaudit",
+            "policy": {"days_to_act": {"tier_1": 7, "tier_2": 10, "tier_3": 28}},
+        }
         records = [
-            {"id": "m-refit", "safe_id": "m-refit", "owner": owner, "tier": 2, "verdict": "refit", "escalated": False, "reasons": ["Refit: the production parameters no longer fit."], "audit": None},
-            {"id": "m-pass", "safe_id": "m-pass", "owner": owner, "tier": 2, "verdict": "pass", "escalated": False, "reasons": ["Pass."], "audit": None},
-            {"id": "m-error", "safe_id": "m-error", "owner": other, "tier": 1, "verdict": "error", "escalated": False, "reasons": ["model 'm-error': no data."], "audit": None},
+            {
+                "id": "m-refit",
+                "safe_id": "m-refit",
+                "owner": owner,
+                "tier": 2,
+                "verdict": "refit",
+                "escalated": False,
+                "reasons": ["Refit: the production parameters no longer fit."],
+                "audit": None,
+            },
+            {
+                "id": "m-pass",
+                "safe_id": "m-pass",
+                "owner": owner,
+                "tier": 2,
+                "verdict": "pass",
+                "escalated": False,
+                "reasons": ["Pass."],
+                "audit": None,
+            },
+            {
+                "id": "m-error",
+                "safe_id": "m-error",
+                "owner": other,
+                "tier": 1,
+                "verdict": "error",
+                "escalated": False,
+                "reasons": ["model 'm-error': no data."],
+                "audit": None,
+            },
         ]
         assert emit_verdict_events(records, run) == 3
         deadline = time.monotonic() + 90
@@ -225,8 +324,13 @@ def test_the_run_event_carries_the_manifest_digest_the_chain_head_and_the_models
 
     async def read():
         async with get_client() as client:
-            page = await client.read_events(filter=EventFilter(event=EventNameFilter(name=["fitaudit.run.completed"]),
-                                                               resource=EventResourceFilter(id=[f"fitaudit.run.{first_run['run_id']}"])), limit=5)
+            page = await client.read_events(
+                filter=EventFilter(
+                    event=EventNameFilter(name=["fitaudit.run.completed"]),
+                    resource=EventResourceFilter(id=[f"fitaudit.run.{first_run['run_id']}"]),
+                ),
+                limit=5,
+            )
             return page.events
 
     deadline, events = time.monotonic() + 60, []
@@ -240,6 +344,9 @@ def test_the_run_event_carries_the_manifest_digest_the_chain_head_and_the_models
 
     assert payload["manifest_sha256"] == hashlib.sha256(manifest).hexdigest() == first_run["manifest_sha256"]
     assert payload["chain_head"] == first_run["chain_head"] and len(payload["chain_head"]["hash"]) == 64
-    assert sorted(payload["refit_models"]) == ["demand-d-07", "demand-d-13"]  # refit and respecify alike, as `run --refit`
+    assert sorted(payload["refit_models"]) == [
+        "demand-d-07",
+        "demand-d-13",
+    ]  # refit and respecify alike, as `run --refit`
     assert resource.get("fitaudit.refits-needed") == "yes"
     assert payload["report_url"] == pathlib.Path(first_run["report"]).as_uri()  # no report_base_url: a file:// link

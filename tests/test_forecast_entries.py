@@ -134,13 +134,24 @@ def test_each_kind_of_entry_parses():
     assert fq.describe() == "forecasts (quantiles 0.05..0.95), 1-step, period 7"
     assert (fq.audit_window, fq.staged_window, fq.exogenous) == (56, 112, ())
     fm = reg.model("fm-good")
-    assert (fm.forecasts.statement, fm.forecasts.law(), fm.staged_window) == ("mean-scale", {"law": "normal", "shape": None}, 116)
+    assert (fm.forecasts.statement, fm.forecasts.law(), fm.staged_window) == (
+        "mean-scale",
+        {"law": "normal", "shape": None},
+        116,
+    )
     assert fm.describe() == "forecasts (mean and scale, normal), 1-step"
     assert reg.model("ft-good").forecasts.law() == {"law": "student-t", "shape": 30.0}
     h2 = reg.model("fs-h2")
-    assert (h2.forecasts.scale, h2.forecasts.horizon, h2.describe()) == (1.5, 2, "forecasts (mean, normal with scale 1.5), 2-step")
+    assert (h2.forecasts.scale, h2.forecasts.horizon, h2.describe()) == (
+        1.5,
+        2,
+        "forecasts (mean, normal with scale 1.5), 2-step",
+    )
     counts = reg.model("fc-counts")
-    assert counts.forecasts.statement == "mean-count" and counts.describe() == "forecasts (mean, negative-binomial(1000)), 1-step"
+    assert (
+        counts.forecasts.statement == "mean-count"
+        and counts.describe() == "forecasts (mean, negative-binomial(1000)), 1-step"
+    )
     assert fq.audit_settings(reg.policy).audit_window == 56
     for m in reg.models:
         assert entry_from_dict(json.loads(json.dumps(m.to_dict()))) == m  # through a batch file's JSON and back
@@ -154,48 +165,153 @@ BAD = "  - id: bad\n    owner: o\n    tier: 2\n    source: supplier\n    series:
 
 ENTRY_CASES = [
     # (case, the entry's remaining lines, needle on the reported line, field, message pattern)
-    ("one-level", '    forecasts:\n      quantiles: {"0.5": q50}\n    windows: {audit: 56}\n', "quantiles:",
-     "models[1].forecasts.quantiles", r"state at least two quantile levels"),
-    ("level-out-of-range", '    forecasts:\n      quantiles: {"0.05": q05, "95": q95}\n    windows: {audit: 56}\n', "quantiles:",
-     r"models[1].forecasts.quantiles.95", r"quantile level '95' is not a probability strictly between 0 and 1"),
-    ("level-unquoted", "    forecasts:\n      quantiles: {0.05: q05, 0.95: q95}\n    windows: {audit: 56}\n", "quantiles:",
-     "models[1].forecasts.quantiles.<key>", r"keys must be text, got 0.05; quote the key"),
-    ("level-twice", '    forecasts:\n      quantiles: {"0.05": q05, "0.050": q25}\n    windows: {audit: 56}\n', "quantiles:",
-     "models[1].forecasts.quantiles.0.050", r"is the level of '0.05' again"),
-    ("column-twice", '    forecasts:\n      quantiles: {"0.05": q05, "0.95": q05}\n    windows: {audit: 56}\n', "quantiles:",
-     "models[1].forecasts.quantiles.0.95", r"column 'q05' is given for two levels"),
-    ("undeclared-column", '    forecasts:\n      quantiles: {"0.05": q5, "0.95": q95}\n    windows: {audit: 56}\n', "quantiles:",
-     "models[1].forecasts.quantiles", r"column 'q5' is not declared by source 'supplier' \(did you mean 'q\d5'\?\); its forecast columns are 'q05'"),
-    ("no-statement", "    forecasts: {horizon: 1}\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts", r"no predictive distribution stated: give 'quantiles'"),
-    ("two-statements", '    forecasts: {mean: fc_mean, scale: fc_sd, quantiles: {"0.05": q05, "0.95": q95}}\n    windows: {audit: 56}\n',
-     "forecasts:", "models[1].forecasts.mean", r"state each predictive distribution one way"),
-    ("scale-missing", "    forecasts: {mean: fc_mean}\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts", r"a normal predictive law needs 'scale'"),
-    ("scale-not-positive", "    forecasts: {mean: fc_mean, scale: 0}\n    windows: {audit: 56}\n", "scale: 0",
-     "models[1].forecasts.scale", r"expected a column name or a positive number, got 0"),
-    ("scale-for-counts", "    forecasts: {mean: fc_mean, scale: fc_sd, noise: poisson}\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts.scale", r"the poisson law takes no scale"),
-    ("t-without-df", "    forecasts: {mean: fc_mean, scale: fc_sd, noise: student-t}\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts.noise", r"a stated student-t law needs its df \(e\.g\. noise: \{law: student-t, df: 5\}\)"),
-    ("nb-without-size", "    forecasts: {mean: fc_mean, noise: negative-binomial}\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts.noise", r"a stated negative-binomial law needs its size"),
-    ("unknown-law", "    forecasts: {mean: fc_mean, scale: fc_sd, noise: gauss}\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts.noise", r"Unknown noise law 'gauss'"),
-    ("mean-is-target", "    forecasts: {mean: energy, scale: 2}\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts.mean", r"column 'energy' is the model's target"),
-    ("undeclared-issued", "    forecasts: {mean: fc_mean, scale: 2, issued: made_at}\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts.issued", r"column 'made_at' is not declared by source 'supplier'"),
-    ("window-too-short", "    forecasts: {mean: fc_mean, scale: 2, horizon: 3}\n    windows: {audit: 56}\n", "audit: 56",
-     "models[1].windows.audit", r"each of the 3 interleaved subsequences of 3-step forecasts needs 20 observations, so give audit >= 60"),
-    ("fit-window", "    forecasts: {mean: fc_mean, scale: 2}\n    windows: {fit: 365, audit: 56}\n", "windows:",
-     "models[1].windows.fit", r"a forecast entry has no fit window"),
-    ("spec-too", "    forecasts: {mean: fc_mean, scale: 2}\n    spec: {family: arima, order: [1, 0, 0]}\n    windows: {audit: 56}\n",
-     "spec:", "models[1].spec", r"a forecast entry has no 'spec': fitaudit audits the forecasts its source states and fits nothing"),
-    ("unknown-key", "    forecasts: {mean: fc_mean, scale: 2, horizn: 2}\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts.horizn", r"unknown key 'horizn' \(did you mean 'horizon'\?\); valid keys are 'mean', 'scale'"),
-    ("forecasts-not-a-mapping", "    forecasts: [q05, q95]\n    windows: {audit: 56}\n", "forecasts:",
-     "models[1].forecasts", r"expected a mapping like \{quantiles: "),
+    (
+        "one-level",
+        '    forecasts:\n      quantiles: {"0.5": q50}\n    windows: {audit: 56}\n',
+        "quantiles:",
+        "models[1].forecasts.quantiles",
+        r"state at least two quantile levels",
+    ),
+    (
+        "level-out-of-range",
+        '    forecasts:\n      quantiles: {"0.05": q05, "95": q95}\n    windows: {audit: 56}\n',
+        "quantiles:",
+        r"models[1].forecasts.quantiles.95",
+        r"quantile level '95' is not a probability strictly between 0 and 1",
+    ),
+    (
+        "level-unquoted",
+        "    forecasts:\n      quantiles: {0.05: q05, 0.95: q95}\n    windows: {audit: 56}\n",
+        "quantiles:",
+        "models[1].forecasts.quantiles.<key>",
+        r"keys must be text, got 0.05; quote the key",
+    ),
+    (
+        "level-twice",
+        '    forecasts:\n      quantiles: {"0.05": q05, "0.050": q25}\n    windows: {audit: 56}\n',
+        "quantiles:",
+        "models[1].forecasts.quantiles.0.050",
+        r"is the level of '0.05' again",
+    ),
+    (
+        "column-twice",
+        '    forecasts:\n      quantiles: {"0.05": q05, "0.95": q05}\n    windows: {audit: 56}\n',
+        "quantiles:",
+        "models[1].forecasts.quantiles.0.95",
+        r"column 'q05' is given for two levels",
+    ),
+    (
+        "undeclared-column",
+        '    forecasts:\n      quantiles: {"0.05": q5, "0.95": q95}\n    windows: {audit: 56}\n',
+        "quantiles:",
+        "models[1].forecasts.quantiles",
+        r"column 'q5' is not declared by source 'supplier' \(did you mean 'q\d5'\?\); its forecast columns are 'q05'",
+    ),
+    (
+        "no-statement",
+        "    forecasts: {horizon: 1}\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts",
+        r"no predictive distribution stated: give 'quantiles'",
+    ),
+    (
+        "two-statements",
+        '    forecasts: {mean: fc_mean, scale: fc_sd, quantiles: {"0.05": q05, "0.95": q95}}\n    windows: {audit: 56}\n',
+        "forecasts:",
+        "models[1].forecasts.mean",
+        r"state each predictive distribution one way",
+    ),
+    (
+        "scale-missing",
+        "    forecasts: {mean: fc_mean}\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts",
+        r"a normal predictive law needs 'scale'",
+    ),
+    (
+        "scale-not-positive",
+        "    forecasts: {mean: fc_mean, scale: 0}\n    windows: {audit: 56}\n",
+        "scale: 0",
+        "models[1].forecasts.scale",
+        r"expected a column name or a positive number, got 0",
+    ),
+    (
+        "scale-for-counts",
+        "    forecasts: {mean: fc_mean, scale: fc_sd, noise: poisson}\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts.scale",
+        r"the poisson law takes no scale",
+    ),
+    (
+        "t-without-df",
+        "    forecasts: {mean: fc_mean, scale: fc_sd, noise: student-t}\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts.noise",
+        r"a stated student-t law needs its df \(e\.g\. noise: \{law: student-t, df: 5\}\)",
+    ),
+    (
+        "nb-without-size",
+        "    forecasts: {mean: fc_mean, noise: negative-binomial}\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts.noise",
+        r"a stated negative-binomial law needs its size",
+    ),
+    (
+        "unknown-law",
+        "    forecasts: {mean: fc_mean, scale: fc_sd, noise: gauss}\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts.noise",
+        r"Unknown noise law 'gauss'",
+    ),
+    (
+        "mean-is-target",
+        "    forecasts: {mean: energy, scale: 2}\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts.mean",
+        r"column 'energy' is the model's target",
+    ),
+    (
+        "undeclared-issued",
+        "    forecasts: {mean: fc_mean, scale: 2, issued: made_at}\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts.issued",
+        r"column 'made_at' is not declared by source 'supplier'",
+    ),
+    (
+        "window-too-short",
+        "    forecasts: {mean: fc_mean, scale: 2, horizon: 3}\n    windows: {audit: 56}\n",
+        "audit: 56",
+        "models[1].windows.audit",
+        r"each of the 3 interleaved subsequences of 3-step forecasts needs 20 observations, so give audit >= 60",
+    ),
+    (
+        "fit-window",
+        "    forecasts: {mean: fc_mean, scale: 2}\n    windows: {fit: 365, audit: 56}\n",
+        "windows:",
+        "models[1].windows.fit",
+        r"a forecast entry has no fit window",
+    ),
+    (
+        "spec-too",
+        "    forecasts: {mean: fc_mean, scale: 2}\n    spec: {family: arima, order: [1, 0, 0]}\n    windows: {audit: 56}\n",
+        "spec:",
+        "models[1].spec",
+        r"a forecast entry has no 'spec': fitaudit audits the forecasts its source states and fits nothing",
+    ),
+    (
+        "unknown-key",
+        "    forecasts: {mean: fc_mean, scale: 2, horizn: 2}\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts.horizn",
+        r"unknown key 'horizn' \(did you mean 'horizon'\?\); valid keys are 'mean', 'scale'",
+    ),
+    (
+        "forecasts-not-a-mapping",
+        "    forecasts: [q05, q95]\n    windows: {audit: 56}\n",
+        "forecasts:",
+        "models[1].forecasts",
+        r"expected a mapping like \{quantiles: ",
+    ),
 ]
 
 
@@ -214,18 +330,28 @@ def test_forecast_entry_problem(case, rest, needle, field, message):
 def test_a_model_entry_without_spec_is_told_about_forecasts():
     text = _with(BAD + "    noise: normal\n    windows: {fit: 100, audit: 28}\n")
     problems = [str(p) for p in parse_registry(text, FILE).rejected[0].problems]
-    assert any("models[1].spec: missing; a model fitaudit fits needs a spec" in p and "give a 'forecasts' block" in p for p in problems), problems
+    assert any(
+        "models[1].spec: missing; a model fitaudit fits needs a spec" in p and "give a 'forecasts' block" in p
+        for p in problems
+    ), problems
 
 
-@pytest.mark.parametrize("old, new, message", [
-    ("forecasts: [q05,", "forecasts: [energy, q05,", r"column 'energy' is already the source's value column"),
-    ("forecasts: [q05,", "forecasts: [temp_c, q05,", r"column 'temp_c' is already an exogenous column"),
-    ("forecasts: [q05,", "forecasts: [q05, q05,", r"column 'q05' is listed twice"),
-])
+@pytest.mark.parametrize(
+    "old, new, message",
+    [
+        ("forecasts: [q05,", "forecasts: [energy, q05,", r"column 'energy' is already the source's value column"),
+        ("forecasts: [q05,", "forecasts: [temp_c, q05,", r"column 'temp_c' is already an exogenous column"),
+        ("forecasts: [q05,", "forecasts: [q05, q05,", r"column 'q05' is listed twice"),
+    ],
+)
 def test_source_forecast_columns_have_one_role(old, new, message):
     text = VALID.replace(old, new, 1)
     reg = parse_registry(text, FILE)
-    matches = [p for p in reg.source_problems if p.field.startswith("sources.supplier.forecasts") and re.search(message, p.message)]
+    matches = [
+        p
+        for p in reg.source_problems
+        if p.field.startswith("sources.supplier.forecasts") and re.search(message, p.message)
+    ]
     assert matches, [str(p) for p in reg.source_problems]
     assert matches[0].line == _line(text, "forecasts: [")
     assert reg.models == ()  # every model of the dropped source is rejected
@@ -236,11 +362,15 @@ def test_json_schema_tells_the_two_kinds_apart():
 
     validator = jsonschema.Draft202012Validator(registry_json_schema())
     assert list(validator.iter_errors(json.loads(json.dumps(yaml.safe_load(VALID), default=str)))) == []
-    for old, new, where in (('"0.95": q95}', '"0.95": 3}', ["models", 0, "forecasts", "quantiles", "0.95"]),
-                            ("tier: 3\n    source: supplier\n    series: good\n    forecasts: {mean: fc_mean, scale: fc_sd}",
-                             "tier: 3\n    source: supplier\n    series: good\n    forecasts: {mean: fc_mean, scale: fc_sd, horizn: 2}",
-                             ["models", 1, "forecasts"]),
-                            ("windows: {fit: 120, audit: 28}", "windows: {audit: 28}", ["models", 5, "windows"])):
+    for old, new, where in (
+        ('"0.95": q95}', '"0.95": 3}', ["models", 0, "forecasts", "quantiles", "0.95"]),
+        (
+            "tier: 3\n    source: supplier\n    series: good\n    forecasts: {mean: fc_mean, scale: fc_sd}",
+            "tier: 3\n    source: supplier\n    series: good\n    forecasts: {mean: fc_mean, scale: fc_sd, horizn: 2}",
+            ["models", 1, "forecasts"],
+        ),
+        ("windows: {fit: 120, audit: 28}", "windows: {audit: 28}", ["models", 5, "windows"]),
+    ):
         broken = json.loads(json.dumps(yaml.safe_load(VALID.replace(old, new, 1)), default=str))
         errors = list(validator.iter_errors(broken))
         # one error, in the kind the entry is (a forecast entry is never judged as a model entry)
@@ -271,7 +401,13 @@ def _extract(path: pathlib.Path) -> dict[str, dict]:
     issued = days.astype("datetime64[s]") - np.timedelta64(6, "h")
     data = {}
     mu = 40 + np.cumsum(rng.normal(0, 0.4, N))
-    base = {"energy": mu + rng.normal(0, SD, N), "fc_mean": mu, "fc_sd": np.full(N, SD), "issued_at": issued, "temp_c": rng.normal(20, 3, N)}
+    base = {
+        "energy": mu + rng.normal(0, SD, N),
+        "fc_mean": mu,
+        "fc_sd": np.full(N, SD),
+        "issued_at": issued,
+        "temp_c": rng.normal(20, 3, N),
+    }
     base.update({c: mu + SD * stats.norm.ppf(lv) for c, lv in LEVELS.items()})
     base["fc_mean"][:20] = np.nan  # no forecasts stored before the history used: allowed
     data["good"] = base
@@ -294,12 +430,17 @@ def _extract(path: pathlib.Path) -> dict[str, dict]:
         table["issued_at"].append(cols["issued_at"])
         for c in columns:
             table[c].append(cols[c])
-    pq.write_table(pa.table({
-        "asset": table["asset"],
-        "date": pa.array(np.concatenate(table["date"])),
-        "issued_at": pa.array(np.concatenate(table["issued_at"])),
-        **{c: np.concatenate(table[c]) for c in columns},
-    }), path)
+    pq.write_table(
+        pa.table(
+            {
+                "asset": table["asset"],
+                "date": pa.array(np.concatenate(table["date"])),
+                "issued_at": pa.array(np.concatenate(table["issued_at"])),
+                **{c: np.concatenate(table[c]) for c in columns},
+            }
+        ),
+        path,
+    )
     return {k: {**v, "days": days} for k, v in data.items()}
 
 
@@ -339,12 +480,34 @@ def run(tmp_path_factory):
     for b in staged.batches:
         full += restore_outcomes(final[start : start + len(b.model_ids)], spill_path(b.path))
         start += len(b.model_ids)
-    doc = build_results(as_of=AS_OF.isoformat(), registry={"path": FILE, "sha256": reg.sha256}, policy=reg.policy.to_dict(),
-                        records=records(full, AS_OF.isoformat()), tool_version="test")
-    meta = {"run_id": "r", "started_utc": "s", "finished_utc": "f", "operator": "o", "tool_version": "t", "code_commit": "c", "prefect_version": "p"}
+    doc = build_results(
+        as_of=AS_OF.isoformat(),
+        registry={"path": FILE, "sha256": reg.sha256},
+        policy=reg.policy.to_dict(),
+        records=records(full, AS_OF.isoformat()),
+        tool_version="test",
+    )
+    meta = {
+        "run_id": "r",
+        "started_utc": "s",
+        "finished_utc": "f",
+        "operator": "o",
+        "tool_version": "t",
+        "code_commit": "c",
+        "prefect_version": "p",
+    }
     return {
-        "root": root, "data": data, "registry": reg, "staged": staged, "cache": cache, "planned": planned, "light": final,
-        "doc": doc, "by_id": {m["id"]: m for m in doc["models"]}, "pages": render_run(doc, meta), "rows": results_rows(doc),
+        "root": root,
+        "data": data,
+        "registry": reg,
+        "staged": staged,
+        "cache": cache,
+        "planned": planned,
+        "light": final,
+        "doc": doc,
+        "by_id": {m["id"]: m for m in doc["models"]},
+        "pages": render_run(doc, meta),
+        "rows": results_rows(doc),
     }
 
 
@@ -354,7 +517,9 @@ def test_every_model_gets_its_record(run):
     verdicts = {k: m["verdict"] for k, m in run["by_id"].items()}
     assert all(verdicts[k] == "error" for k in BAD_ENTRIES), verdicts
     assert all(verdicts[k] in ("pass", "refit") for k in GOOD if k != "fit-good"), verdicts
-    assert run["by_id"]["fit-good"]["audit"]["refit"]["status"] == "ok"  # the fitted model beside them is audited as before
+    assert (
+        run["by_id"]["fit-good"]["audit"]["refit"]["status"] == "ok"
+    )  # the fitted model beside them is audited as before
 
 
 def test_the_stated_columns_reach_the_core_audit_aligned_with_the_actuals(run):
@@ -369,15 +534,30 @@ def test_the_stated_columns_reach_the_core_audit_aligned_with_the_actuals(run):
     ):
         entry = reg.model(mid)
         n = entry.staged_window
-        cut = {k: ({lv: a[-n:] for lv, a in v.items()} if isinstance(v, dict) and k == "quantiles" else (v[-n:] if isinstance(v, np.ndarray) else v)) for k, v in kwargs.items()}
-        direct = audit_forecasts(data["energy"][-n:], settings=entry.audit_settings(reg.policy), label=f"model {mid!r} (source 'supplier', series 'good')", **cut)
+        cut = {
+            k: (
+                {lv: a[-n:] for lv, a in v.items()}
+                if isinstance(v, dict) and k == "quantiles"
+                else (v[-n:] if isinstance(v, np.ndarray) else v)
+            )
+            for k, v in kwargs.items()
+        }
+        direct = audit_forecasts(
+            data["energy"][-n:],
+            settings=entry.audit_settings(reg.policy),
+            label=f"model {mid!r} (source 'supplier', series 'good')",
+            **cut,
+        )
         record = run["by_id"][mid]["audit"]
         # source: fitaudit.core.forecasts.audit_forecasts on the arrays written to the extract (the last n rows)
         assert record["accuracy"] == json.loads(json.dumps(direct.to_dict()["accuracy"]))
         assert record["production"]["p_distribution"] == direct.production.p_distribution
         assert record["refit"] is None and record["spec"]["family"] == "forecasts"
         # the fleet rules re-decide the verdict on the light outcome: its reasons still speak of the whole window
-        assert direct.reasons[0].split(":")[0] in run["by_id"][mid]["reasons"][0], (direct.reasons[0], run["by_id"][mid]["reasons"][0])
+        assert direct.reasons[0].split(":")[0] in run["by_id"][mid]["reasons"][0], (
+            direct.reasons[0],
+            run["by_id"][mid]["reasons"][0],
+        )
         assert f"the {entry.audit_window} actuals of the audit window" in run["by_id"][mid]["reasons"][0]
     counts = run["by_id"]["fc-counts"]["audit"]
     assert counts["spec"]["statement"] == "mean-count" and counts["production"]["status"] == "ok"
@@ -387,7 +567,9 @@ def test_forecast_records_in_results_json_and_parquet(run):
     rec = run["by_id"]["fq-good"]
     assert rec["spec_text"] == "forecasts (quantiles 0.05..0.95), 1-step, period 7" and rec["spec"] == {}
     assert rec["forecasts"]["quantiles"] == {"0.05": "q05", "0.25": "q25", "0.5": "q50", "0.75": "q75", "0.95": "q95"}
-    assert rec["noise"] is None and run["by_id"]["fm-good"]["noise"] is None  # quantiles state no law; fm-good's is the default
+    assert (
+        rec["noise"] is None and run["by_id"]["fm-good"]["noise"] is None
+    )  # quantiles state no law; fm-good's is the default
     assert run["by_id"]["ft-good"]["noise"] == {"law": "student-t", "shape": 30.0}
     assert {"mase", "crps", "crps_naive", "crps_skill"} <= set(rec["audit"]["accuracy"])
     assert rec["production_version"] is None and rec["candidates"] is None
@@ -399,19 +581,40 @@ def test_forecast_records_in_results_json_and_parquet(run):
     pq.write_table(pa.Table.from_pylist(run["rows"]), run["root"] / "rows.parquet")  # the twin's rows are one table
 
 
-@pytest.mark.parametrize("model_id, pattern", [
-    ("fq-missing", r"model 'fq-missing': source 'supplier', series 'good': column 'q99' is in none of the files; .* Fix: "),
-    ("fq-cross", r"model 'fq-cross' \(source 'supplier', series 'cross'\).*the stated quantiles cross at 1 observation\(s\).*the 0\.5 quantile .* is below the 0\.25 quantile .*correct the forecast store"),
-    ("fm-negsd", r"model 'fm-negsd' \(source 'supplier', series 'negsd'\).*the predictive scale must be positive, but 1 value\(s\) are not.*Correct the forecast store"),
-    ("fq-late", r"model 'fq-late' \(source 'supplier', series 'late'\), column 'issued_at': 1 forecast\(s\) were issued at or after the observation they predict, first the forecast for 2026-11-25T00:00:00 issued at 2026-11-25T02:00:00"),
-    ("fq-gap", r"model 'fq-gap': source 'supplier', series 'gap': column 'q95' \(the quantile 0\.95\) has no forecast for 1 of the 56 observations of the audit window, first 2026-11-20T00:00:00.*Fix: "),
-])
+@pytest.mark.parametrize(
+    "model_id, pattern",
+    [
+        (
+            "fq-missing",
+            r"model 'fq-missing': source 'supplier', series 'good': column 'q99' is in none of the files; .* Fix: ",
+        ),
+        (
+            "fq-cross",
+            r"model 'fq-cross' \(source 'supplier', series 'cross'\).*the stated quantiles cross at 1 observation\(s\).*the 0\.5 quantile .* is below the 0\.25 quantile .*correct the forecast store",
+        ),
+        (
+            "fm-negsd",
+            r"model 'fm-negsd' \(source 'supplier', series 'negsd'\).*the predictive scale must be positive, but 1 value\(s\) are not.*Correct the forecast store",
+        ),
+        (
+            "fq-late",
+            r"model 'fq-late' \(source 'supplier', series 'late'\), column 'issued_at': 1 forecast\(s\) were issued at or after the observation they predict, first the forecast for 2026-11-25T00:00:00 issued at 2026-11-25T02:00:00",
+        ),
+        (
+            "fq-gap",
+            r"model 'fq-gap': source 'supplier', series 'gap': column 'q95' \(the quantile 0\.95\) has no forecast for 1 of the 56 observations of the audit window, first 2026-11-20T00:00:00.*Fix: ",
+        ),
+    ],
+)
 def test_bad_forecasts_are_that_models_error(run, model_id, pattern):
     rec = run["by_id"][model_id]
     assert rec["verdict"] == "error"
     assert any(re.search(pattern, r) for r in rec["reasons"]), rec["reasons"]
     if model_id == "fq-late":
-        assert rec["reasons"][0] == "model 'fq-late': forecasts issued after the observation they predict cannot be audited."
+        assert (
+            rec["reasons"][0]
+            == "model 'fq-late': forecasts issued after the observation they predict cannot be audited."
+        )
 
 
 def test_the_forecast_tables_are_built_before_the_audits(run):
@@ -429,9 +632,13 @@ def test_light_outcomes_of_forecast_audits(run):
     assert light["fq-good"].result.refit is None and light["fq-good"].result.production.map is None
     again = light_outcome(light["fq-good"])  # idempotent on a result without a refit check
     assert again.result.production.p_value == light["fq-good"].result.production.p_value
-    respecify = dataclasses.replace(light["fq-good"], verdict="respecify", result=dataclasses.replace(light["fq-good"].result, verdict="respecify"))
+    respecify = dataclasses.replace(
+        light["fq-good"], verdict="respecify", result=dataclasses.replace(light["fq-good"].result, verdict="respecify")
+    )
     assert not wants_candidates(respecify)  # no candidate search for forecasts made elsewhere
-    assert wants_candidates(dataclasses.replace(light["fit-good"], verdict="respecify"))  # a fitted model's respecify does
+    assert wants_candidates(
+        dataclasses.replace(light["fit-good"], verdict="respecify")
+    )  # a fitted model's respecify does
 
 
 def test_candidate_search_skips_forecast_entries(run):
@@ -465,7 +672,9 @@ def test_the_owner_of_failing_forecasts_is_asked_to_re_estimate(run):
     policy = run["doc"]["run"]["policy"]
     for verdict in ("refit", "respecify"):
         action = record_action(dict(run["by_id"]["fq-good"], verdict=verdict), policy, AS_OF.isoformat())
-        assert action["action"] == FORECAST_ACTIONS[verdict] and action["due"] == "2026-12-14"  # tier 2: 14 days by default
+        assert (
+            action["action"] == FORECAST_ACTIONS[verdict] and action["due"] == "2026-12-14"
+        )  # tier 2: 14 days by default
     assert "Re-estimate the model that issues these forecasts" in FORECAST_ACTIONS["refit"]
     fitted = record_action(dict(run["by_id"]["fit-good"], verdict="refit"), policy, AS_OF.isoformat())
     assert "approve their promotion" in fitted["action"]  # a fitted model's refit is promoted, as before
@@ -486,7 +695,11 @@ def test_verdict_events_name_the_entry_kind(run, monkeypatch):
     from prefect.events.schemas.events import Resource, ResourceSpecification
 
     fitted_only = ResourceSpecification({"prefect.resource.id": "fitaudit.model.*", events.ENTRY_LABEL: "model"})
-    assert [fitted_only.matches(Resource(e["resource"])) for e in sent if e["payload"]["model_id"] in ("fit-good", "fq-good")] == [True, False]
+    assert [
+        fitted_only.matches(Resource(e["resource"]))
+        for e in sent
+        if e["payload"]["model_id"] in ("fit-good", "fq-good")
+    ] == [True, False]
 
 
 def test_refits_refuse_forecast_entries(run):
@@ -494,7 +707,10 @@ def test_refits_refuse_forecast_entries(run):
     from fitaudit.tasks.results import light_record
 
     reg = run["registry"]
-    with pytest.raises(NotRefittableError, match=r"'fq-good' is a forecast entry: fitaudit audits the forecasts its owner states and holds no model to refit.*the owner should re-estimate the model that issues them.*Nothing was refitted; refit the other models alone \('fit-good'\)"):
+    with pytest.raises(
+        NotRefittableError,
+        match=r"'fq-good' is a forecast entry: fitaudit audits the forecasts its owner states and holds no model to refit.*the owner should re-estimate the model that issues them.*Nothing was refitted; refit the other models alone \('fit-good'\)",
+    ):
         refuse_forecast_entries(reg, ["fq-good", "fit-good"])
     refuse_forecast_entries(reg, ["fit-good"])  # fitted models go ahead
     recs = [dict(light_record(m), verdict="refit") for m in run["doc"]["models"]]
@@ -517,8 +733,15 @@ def flow_run(prefect_server, tmp_path_factory):
     sent = []
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(events, "emit_event", lambda **kw: sent.append(kw))
-        run = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=demo["archive"], models=FLOW_MODELS,
-                         batch_size=2, trigger_refits=True, search_candidates=True)
+        run = audit_flow(
+            registry=demo["registry"],
+            as_of=DEMO_AS_OF,
+            archive=demo["archive"],
+            models=FLOW_MODELS,
+            batch_size=2,
+            trigger_refits=True,
+            search_candidates=True,
+        )
     return {"demo": demo, "run": run, "events": sent, "folder": pathlib.Path(run["report"]).parent}
 
 
@@ -531,22 +754,37 @@ def test_the_audit_flow_publishes_forecast_entries_like_any_model(flow_run):
     doc = json.loads((folder / "results.json").read_text())
     verdicts = {m["id"]: m["verdict"] for m in doc["models"]}
     # the demo plants pump-02's narrow quantiles (refit: the owner re-estimates) and d-31's missing reading
-    assert verdicts == {"supplier-pump-01": "pass", "supplier-pump-02": "refit", "notebook-leak-01": "pass",
-                        "energy-pump-01": "pass", "demand-d-31": "error"}
+    assert verdicts == {
+        "supplier-pump-01": "pass",
+        "supplier-pump-02": "refit",
+        "notebook-leak-01": "pass",
+        "energy-pump-01": "pass",
+        "demand-d-31": "error",
+    }
     rec = next(m for m in doc["models"] if m["id"] == "supplier-pump-02")
-    assert rec["audit"]["refit"] is None and rec["audit"]["accuracy"]["crps_skill"] is not None and rec["candidates"] is None
+    assert (
+        rec["audit"]["refit"] is None
+        and rec["audit"]["accuracy"]["crps_skill"] is not None
+        and rec["candidates"] is None
+    )
     assert run["refits"] is None  # --refit leaves forecast entries to their owners (and no fitted model needed one)
     frames = load_results(folder)
     checks = frames.checks.query("model_id == 'supplier-pump-02'")
     assert list(checks["check"]) == ["production"]  # the forecast check; no refit check was attempted
     assert frames.verdicts.set_index("model_id").loc["supplier-pump-02", "verdict"] == "refit"
     page = (folder / "models" / "supplier-pump-02.html").read_text()
-    assert "This model was not refitted by fitaudit; its forecasts were audited against their stated uncertainty." in page
+    assert (
+        "This model was not refitted by fitaudit; its forecasts were audited against their stated uncertainty." in page
+    )
     assert "Check the refitted parameters" not in page  # nothing was refitted, so nothing is to be promoted
     parquet = {r["model_id"]: r for r in pq.read_table(folder / "results.parquet").to_pylist()}
     assert parquet["supplier-pump-02"]["verdict"] == "refit" and parquet["supplier-pump-02"]["refit_status"] is None
     assert not [p for p in verify_archive(run["archive"]) if not p.is_note]  # in the archive's chain like any run
-    kinds = {e["payload"]["model_id"]: (e["event"], e["resource"]["fitaudit.entry"]) for e in flow_run["events"] if "model_id" in e["payload"]}
+    kinds = {
+        e["payload"]["model_id"]: (e["event"], e["resource"]["fitaudit.entry"])
+        for e in flow_run["events"]
+        if "model_id" in e["payload"]
+    }
     assert kinds["supplier-pump-02"] == ("fitaudit.model.refit", "forecasts")
     assert kinds["energy-pump-01"] == ("fitaudit.model.pass", "model")
 
@@ -562,7 +800,18 @@ def test_fitaudit_refit_refuses_a_forecast_entry(flow_run, capsys):
     runs = sorted((pathlib.Path(demo["archive"]) / "runs").rglob("manifest.json"))
     with pytest.raises(NotRefittableError, match=r"'supplier-pump-02' is a forecast entry"):
         refit_flow(registry=demo["registry"], model_ids=["supplier-pump-02"], archive=demo["archive"], as_of=DEMO_AS_OF)
-    code = main(["refit", demo["registry"], "--model", "supplier-pump-02", "--archive", demo["archive"], "--as-of", DEMO_AS_OF.isoformat()])
+    code = main(
+        [
+            "refit",
+            demo["registry"],
+            "--model",
+            "supplier-pump-02",
+            "--archive",
+            demo["archive"],
+            "--as-of",
+            DEMO_AS_OF.isoformat(),
+        ]
+    )
     err = capsys.readouterr().err
     assert code == EXIT_ERROR and "fitaudit refit:" in err and "'supplier-pump-02' is a forecast entry" in err
     assert "the owner should re-estimate the model that issues them" in err

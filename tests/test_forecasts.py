@@ -59,7 +59,9 @@ def test_pit_normal_hand_worked():
 
 def test_pit_student_t_hand_worked():
     # standard deviation sqrt(5/3) is a t(5) scale of 1, so the t table applies directly
-    u = pit_location_scale([2.015, -3.365], mean=[0.0, 0.0], scale=math.sqrt(5 / 3), noise={"law": "student-t", "shape": 5})
+    u = pit_location_scale(
+        [2.015, -3.365], mean=[0.0, 0.0], scale=math.sqrt(5 / 3), noise={"law": "student-t", "shape": 5}
+    )
     # source: Student's t table, 5 d.f.: t(0.95) = 2.015, t(0.99) = 3.365 (Abramowitz and Stegun 1964, table 26.10)
     np.testing.assert_allclose(u, [0.95, 0.01], atol=2e-4)
     np.testing.assert_allclose(u, stats.t.cdf([2.015, -3.365], 5), rtol=1e-12)  # source: scipy.stats.t
@@ -68,8 +70,14 @@ def test_pit_student_t_hand_worked():
 @pytest.mark.parametrize(
     "law, ref",
     [
-        ("laplace", lambda y, m, sd: stats.laplace.cdf(y, m, sd / math.sqrt(2))),  # source: scipy.stats.laplace, var = 2 b^2
-        ("logistic", lambda y, m, sd: stats.logistic.cdf(y, m, sd * math.sqrt(3) / math.pi)),  # source: scipy, var = pi^2 s^2 / 3
+        (
+            "laplace",
+            lambda y, m, sd: stats.laplace.cdf(y, m, sd / math.sqrt(2)),
+        ),  # source: scipy.stats.laplace, var = 2 b^2
+        (
+            "logistic",
+            lambda y, m, sd: stats.logistic.cdf(y, m, sd * math.sqrt(3) / math.pi),
+        ),  # source: scipy, var = pi^2 s^2 / 3
     ],
 )
 def test_pit_other_location_scale_laws_match_scipy(law, ref):
@@ -97,7 +105,9 @@ def test_pit_negative_binomial_matches_scipy():
     size = 3.0
     u = pit_counts(y, mean, {"law": "negative-binomial", "shape": size}, np.random.default_rng(3))
     p = size / (size + mean)
-    lo = np.where(y > 0, stats.nbinom.cdf(y - 1, size, p), 0.0)  # source: scipy.stats.nbinom (n = size, p = size / (size + mean))
+    lo = np.where(
+        y > 0, stats.nbinom.cdf(y - 1, size, p), 0.0
+    )  # source: scipy.stats.nbinom (n = size, p = size / (size + mean))
     hi = stats.nbinom.cdf(y, size, p)
     assert np.all((lo - 1e-12 <= u) & (u <= hi + 1e-12))
 
@@ -236,7 +246,9 @@ def test_mase_hand_worked():
     # hand-worked from the definition of Hyndman and Koehler (2006, section 3.4), not a published number:
     # history 10, 12, 11, 13, 12: naive absolute errors 2, 1, 2, 1 -> Q = 1.5;
     # actuals 14, 13 with forecasts 13, 13.5: absolute errors 1, 0.5 -> MAE 0.75 -> MASE 0.5
-    assert mase([14.0, 13.0], [13.0, 13.5], period=1, history=[10.0, 12.0, 11.0, 13.0, 12.0]) == pytest.approx(0.5, rel=1e-14)
+    assert mase([14.0, 13.0], [13.0, 13.5], period=1, history=[10.0, 12.0, 11.0, 13.0, 12.0]) == pytest.approx(
+        0.5, rel=1e-14
+    )
     # seasonal, m = 2: history 10, 20, 12, 21, 11, 23: |12-10|, |21-20|, |11-12|, |23-21| -> Q = 1.5;
     # one actual 14 forecast as 11 -> MASE 2
     assert mase([14.0], [11.0], period=2, history=[10.0, 20.0, 12.0, 21.0, 11.0, 23.0]) == pytest.approx(2.0, rel=1e-14)
@@ -322,7 +334,13 @@ def test_audit_result_shape_and_json():
     res = audit_forecasts(y, mean=mean, scale=sd, period=7, settings=FAST, label="supplier-north")
     assert isinstance(res, AuditResult) and res.refit is None and res.production.ok
     assert res.verdict == "pass" and NOT_REFITTED in res.reasons
-    assert res.spec == {"family": "forecasts", "horizon": 1, "period": 7, "statement": "mean-scale", "noise": {"law": "normal", "shape": None}}
+    assert res.spec == {
+        "family": "forecasts",
+        "horizon": 1,
+        "period": 7,
+        "statement": "mean-scale",
+        "noise": {"law": "normal", "shape": None},
+    }
     assert res.production.window == {"first": 150 - 56, "last": 149, "length": 56, "horizon": 1}
     p = res.production
     assert p.p_value == pytest.approx(min(1.0, 2 * min(p.p_distribution, p.p_independence)))
@@ -366,7 +384,9 @@ def test_reruns_reproduce_every_number_including_randomised_pits():
 
 def test_understated_scale_fails_with_a_plain_reason():
     y, mean, _ = _normal_case(2, n=200)
-    res = audit_forecasts(y, mean=mean, scale=0.4, settings=dataclasses.replace(FAST, locate_change=True), label="vendor-east")
+    res = audit_forecasts(
+        y, mean=mean, scale=0.4, settings=dataclasses.replace(FAST, locate_change=True), label="vendor-east"
+    )
     assert res.verdict == "refit"
     assert "no longer match their stated uncertainty" in res.reasons[0] and "should re-estimate" in res.reasons[0]
     assert "standard deviation" in res.reasons[0] and res.production.noise["score_sd"] > 1.5
@@ -391,7 +411,9 @@ def test_three_step_forecasts_use_subsequences_and_lags_beyond_the_horizon():
     e = rng.standard_normal(n + 2)
     mean = np.full(n, 5.0)
     y = mean + e[2:] + e[1:-1] + e[:-2]  # correct 3-step errors of a random walk: MA(2), variance 3
-    res = audit_forecasts(y, mean=mean, scale=math.sqrt(3.0), horizon=3, settings=dataclasses.replace(FAST, audit_window=90))
+    res = audit_forecasts(
+        y, mean=mean, scale=math.sqrt(3.0), horizon=3, settings=dataclasses.replace(FAST, audit_window=90)
+    )
     assert res.production.ok, res.reasons
     lb = res.production.ljung_box
     assert lb["first_lag"] == 3 and lb["lags"] == 10 and "Bartlett" in lb["convention"]
@@ -417,13 +439,22 @@ def _quantiles(changes=None, n=100):
     "kwargs, words",
     [
         (dict(quantiles=_quantiles({0.5: None})), ["0.5 quantile column is missing", "state it"]),
-        (dict(quantiles=_quantiles({0.5: np.r_[np.full(99, 10.0), np.nan]})), ["0.5 quantile is missing", "position 99", "Fill the forecast store"]),
-        (dict(quantiles=_quantiles({0.5: np.full(100, 20.0)})), ["quantiles cross", "0.9 quantile", "below the 0.5 quantile"]),
+        (
+            dict(quantiles=_quantiles({0.5: np.r_[np.full(99, 10.0), np.nan]})),
+            ["0.5 quantile is missing", "position 99", "Fill the forecast store"],
+        ),
+        (
+            dict(quantiles=_quantiles({0.5: np.full(100, 20.0)})),
+            ["quantiles cross", "0.9 quantile", "below the 0.5 quantile"],
+        ),
         (dict(quantiles=_quantiles({5: np.full(100, 10.0)})), ["level 5", "between 0 and 1"]),
         (dict(quantiles=_quantiles({0.5: np.full(80, 10.0)})), ["shape (80,)", "100 values"]),
         (dict(quantiles={0.5: np.full(100, 10.0)}), ["at least two levels"]),
         (dict(mean=np.full(100, 10.0), scale=0.0), ["predictive scale must be positive", "position 44"]),
-        (dict(mean=np.full(100, 10.0), scale=np.r_[np.ones(99), -2.0]), ["predictive scale must be positive", "position 99"]),
+        (
+            dict(mean=np.full(100, 10.0), scale=np.r_[np.ones(99), -2.0]),
+            ["predictive scale must be positive", "position 99"],
+        ),
         (dict(mean=np.full(90, 10.0), scale=1.0), ["predictive mean has shape (90,)"]),
         (dict(mean=np.full(100, 10.0)), ["needs its scale"]),
         (dict(mean=np.full(100, 10.0), scale=1.0, noise="student-t"), ["needs its shape"]),
@@ -448,7 +479,11 @@ def test_bad_forecasts_get_an_error_verdict_naming_the_model_and_the_fix(kwargs,
 def test_counts_under_a_count_law_must_be_counts():
     y = np.r_[np.full(99, 3.0), 2.5]
     res = audit_forecasts(y, mean=np.full(100, 3.0), noise="poisson", settings=FAST, label="calls")
-    assert res.verdict == "error" and "non-negative integers" in res.production.message and "position 99" in res.production.message
+    assert (
+        res.verdict == "error"
+        and "non-negative integers" in res.production.message
+        and "position 99" in res.production.message
+    )
 
 
 def test_short_series_is_insufficient():
@@ -494,7 +529,9 @@ def test_size_under_correct_one_step_laws():
     reps = 200
     for i in range(reps):
         y, mean, sd = _normal_case(1000 + i, n=120)
-        settings = dataclasses.replace(FAST, seed=i % 10)  # spread over table seeds (Monte Carlo size is exact on average)
+        settings = dataclasses.replace(
+            FAST, seed=i % 10
+        )  # spread over table seeds (Monte Carlo size is exact on average)
         res = audit_forecasts(y, mean=mean, scale=sd, settings=settings, cache=cache)
         assert res.production.ok
         rejections += res.production.p_value <= 0.05

@@ -43,7 +43,16 @@ EXOG_COLUMN = "x\"'<>&"
 #: Model ids that are safe file names yet unusual (all audited).
 SAFE_IDS = ["a" * MAX_ID_LENGTH, "x.html", "index", "method", "CON", "a..b", "1-._"]
 #: Unsafe ids: the entries are rejected and get an ``entry-<n>`` file name.
-UNSAFE_IDS = [SCRIPT, "../../escape", ABSOLUTE, "a\x00b", f"evil{RLO}lmth.exe", "b" * (MAX_ID_LENGTH + 1), "tab\there", "line\nbreak"]
+UNSAFE_IDS = [
+    SCRIPT,
+    "../../escape",
+    ABSOLUTE,
+    "a\x00b",
+    f"evil{RLO}lmth.exe",
+    "b" * (MAX_ID_LENGTH + 1),
+    "tab\there",
+    "line\nbreak",
+]
 #: Hostile series keys (in the extract and the registry); audited like any other key.
 KEYS = [SCRIPT, "../../etc/passwd", ABSOLUTE + "/key", f"key{RLO}gpj.exe", "q\"uo'te", "k" * 1000, IMG]
 
@@ -58,24 +67,37 @@ def _write(root: pathlib.Path) -> Fleet:
         times.append(t)
         values.append(ar1(rng))
         exog.append(np.round(rng.normal(20, 3, len(t)), 1))
-    table = pa.table({"series": keys, "date": pa.array(np.concatenate(times)), VALUE_COLUMN: np.concatenate(values),
-                      EXOG_COLUMN: np.concatenate(exog)})
+    table = pa.table(
+        {
+            "series": keys,
+            "date": pa.array(np.concatenate(times)),
+            VALUE_COLUMN: np.concatenate(values),
+            EXOG_COLUMN: np.concatenate(exog),
+        }
+    )
     write_parquet(data / "h.parquet", table)
     fleet = Fleet(root)
     fleet.policy.update(justification=SCRIPT + LONG, approved_by=f"{IMG} {RLO}tsop")
     fleet.source("hostile", "../hostile-data/h.parquet", value=VALUE_COLUMN, exogenous=(EXOG_COLUMN,))
-    owners = [SCRIPT, f"O'Brien & \"Sons\" <i>{RLO}</i>", LONG, "{{ 7 * 7 }} {% raw %}"]
+    owners = [SCRIPT, f'O\'Brien & "Sons" <i>{RLO}</i>', LONG, "{{ 7 * 7 }} {% raw %}"]
     for i, model_id in enumerate(SAFE_IDS):
         fleet.model(model_id, "hostile", "plain", owner=owners[i % len(owners)], description=IMG + LONG)
     for i, key in enumerate(KEYS):
-        fleet.model(f"key-{i}", "hostile", key, exogenous=[EXOG_COLUMN], owner=owners[i % len(owners)], description=SCRIPT)
+        fleet.model(
+            f"key-{i}", "hostile", key, exogenous=[EXOG_COLUMN], owner=owners[i % len(owners)], description=SCRIPT
+        )
     for model_id in UNSAFE_IDS:
         fleet.model(model_id, "hostile", "plain", owner=SCRIPT, description=IMG)
     fleet.model("Case-Twin", "hostile", "plain")
     fleet.model("case-twin", "hostile", "plain")  # differs only in case: would collide as a file name
     fleet.model("nul-owner", "hostile", "plain", owner="a\x00b")
     fleet.model("nul-key", "hostile", "a\x00b")
-    fleet.model("os-system", "hostile", "plain", spec={"family": "nonlinear-ar", "function": "os:system", "lags": [1], "start": {"c": 1.0, "a": 0.5}})
+    fleet.model(
+        "os-system",
+        "hostile",
+        "plain",
+        spec={"family": "nonlinear-ar", "function": "os:system", "lags": [1], "start": {"c": 1.0, "a": 0.5}},
+    )
     fleet.write()
     return fleet
 
@@ -147,9 +169,9 @@ def test_every_file_is_inside_the_archive_under_a_safe_name(hostile_run):
     assert created, "the run wrote nothing"
     for rel in created:
         assert rel.startswith(archive + "/"), f"written outside the archive: {rel}"
-        inside = rel[len(archive) + 1:]
+        inside = rel[len(archive) + 1 :]
         assert inside in ("chain.jsonl", "index.html", ".lock") or rel.startswith(run_folder + "/"), rel
-        for part in rel[len(run_folder) + 1:].split("/") if rel.startswith(run_folder + "/") else []:
+        for part in rel[len(run_folder) + 1 :].split("/") if rel.startswith(run_folder + "/") else []:
             assert SAFE_ID.match(part), f"unsafe file name {part!r}"
     doc = json.loads((outer / run_folder / "results.json").read_bytes())
     pages = {p for p in created if p.startswith(run_folder + "/models/")}
@@ -173,12 +195,15 @@ def test_every_page_escapes_the_hostile_text(hostile_run):
         for tag, name, value in page.attrs:
             assert not name.startswith("on"), f"{path.name}: event attribute {name}={value!r} on <{tag}>"
             if name in ("href", "src", "action", "xlink:href"):
-                assert re.fullmatch(r"(#[\w.-]*|(\.\./)?([A-Za-z0-9][\w.-]*/)*[A-Za-z0-9][\w.-]*\.html(#[\w.-]*)?)", value), \
-                    f"{path.name}: unexpected link {value!r}"
+                assert re.fullmatch(
+                    r"(#[\w.-]*|(\.\./)?([A-Za-z0-9][\w.-]*/)*[A-Za-z0-9][\w.-]*\.html(#[\w.-]*)?)", value
+                ), f"{path.name}: unexpected link {value!r}"
         shown += "".join(page.text)
     assert SCRIPT in shown and "onerror" in shown  # shown as text, escaped in the markup
     assert "[U+202E]" in shown  # the direction mark is made visible instead of reordering the line
-    assert "{{ 7 * 7 }}" in shown and "49" not in re.findall(r"\{\{.*?\}\}", shown)  # data is never evaluated as a template
+    assert "{{ 7 * 7 }}" in shown and "49" not in re.findall(
+        r"\{\{.*?\}\}", shown
+    )  # data is never evaluated as a template
 
 
 def test_registry_loader_refuses_object_constructing_tags_before_running_them(tmp_path):
@@ -193,7 +218,9 @@ def test_registry_loader_refuses_object_constructing_tags_before_running_them(tm
     ]
     for tag in tags:
         path = tmp_path / "registry.yaml"
-        path.write_text("version: 1\npolicy: {justification: j, approved_by: a}\nsources: {}\nmodels: []\nextra: " + tag + "\n")
+        path.write_text(
+            "version: 1\npolicy: {justification: j, approved_by: a}\nsources: {}\nmodels: []\nextra: " + tag + "\n"
+        )
         with pytest.raises(RegistryError, match=r"registry\.yaml:5: the tag .* is refused"):
             load_registry(path)
         assert not marker.exists(), tag

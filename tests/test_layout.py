@@ -31,7 +31,9 @@ def test_every_package_folder_is_listed():
             dotted = "fitaudit." + top + ("" if rel == pathlib.Path(".") else "." + ".".join(rel.parts))
             found.add(dotted)
         assert mapping[f"fitaudit.{top}"] == top
-    assert found == listed, f"folders with __init__.py {sorted(found - listed)} are not listed; listed but missing {sorted(listed - found)}"
+    assert found == listed, (
+        f"folders with __init__.py {sorted(found - listed)} are not listed; listed but missing {sorted(listed - found)}"
+    )
 
 
 def test_installed_under_one_namespace():
@@ -50,7 +52,17 @@ def test_installed_under_one_namespace():
             assert not (pathlib.Path(p) / name / "__init__.py").exists() or "site-packages" not in p, name
 
 
-FORBIDDEN = ("prefect", "jinja2", "pyarrow", "pandas", "yaml", "fitaudit.tasks", "fitaudit.flows", "fitaudit.templates", "statsmodels")
+FORBIDDEN = (
+    "prefect",
+    "jinja2",
+    "pyarrow",
+    "pandas",
+    "yaml",
+    "fitaudit.tasks",
+    "fitaudit.flows",
+    "fitaudit.templates",
+    "statsmodels",
+)
 ALLOWED_THIRD_PARTY = ("numpy", "scipy")
 
 
@@ -76,11 +88,17 @@ def test_core_imports_only_stdlib_numpy_scipy(path):
         )
 
 
-@pytest.mark.parametrize("path", sorted(p for top in ("tests", "bench") for p in (REPO / top).rglob("*.py")), ids=lambda p: str(p.relative_to(REPO)))
+@pytest.mark.parametrize(
+    "path",
+    sorted(p for top in ("tests", "bench") for p in (REPO / top).rglob("*.py")),
+    ids=lambda p: str(p.relative_to(REPO)),
+)
 def test_tests_import_fitaudit_namespace_only(path):
     tree = ast.parse(path.read_text(), filename=str(path))
     for module, line in _imports(tree):
-        assert module.split(".")[0] not in (*TOP, API), f"{path}:{line} imports {module}; import fitaudit.{module} instead"
+        assert module.split(".")[0] not in (*TOP, API), (
+            f"{path}:{line} imports {module}; import fitaudit.{module} instead"
+        )
 
 
 @pytest.mark.slow
@@ -89,12 +107,24 @@ def test_wheel_holds_only_the_fitaudit_namespace(tmp_path):
     import subprocess
     import zipfile
 
-    out = subprocess.run([sys.executable, "-m", "pip", "wheel", str(REPO), "--no-deps", "-q", "-w", str(tmp_path)], capture_output=True, text=True, timeout=600)
+    out = subprocess.run(
+        [sys.executable, "-m", "pip", "wheel", str(REPO), "--no-deps", "-q", "-w", str(tmp_path)],
+        capture_output=True,
+        text=True,
+        timeout=600,
+    )
     assert out.returncode == 0, out.stderr
     wheel = next(tmp_path.glob("fitaudit-*.whl"))
     names = zipfile.ZipFile(wheel).namelist()
     tops = {n.split("/", 1)[0] for n in names}
     assert tops == {"fitaudit", next(t for t in tops if t.endswith(".dist-info"))}
     assert "fitaudit/__init__.py" in names  # the public surface, from api/
-    for sub in ("core/divergence.py", "tasks/archive.py", "flows/cli.py", "templates/run.html.j2", "templates/report.css", "flows/prefect.yaml"):
+    for sub in (
+        "core/divergence.py",
+        "tasks/archive.py",
+        "flows/cli.py",
+        "templates/run.html.j2",
+        "templates/report.css",
+        "flows/prefect.yaml",
+    ):
         assert f"fitaudit/{sub}" in names, sub

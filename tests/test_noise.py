@@ -55,7 +55,9 @@ def test_unknown_law_lists_valid_names():
         get_law("gauss")
 
 
-@pytest.mark.parametrize("name,shape", [("normal", 3.0), ("student-t", 2.0), ("student-t", -1), ("negative-binomial", 0.0)])
+@pytest.mark.parametrize(
+    "name,shape", [("normal", 3.0), ("student-t", 2.0), ("student-t", -1), ("negative-binomial", 0.0)]
+)
 def test_invalid_shape(name, shape):
     with pytest.raises(InputError, match="shape"):
         get_law(name, shape=shape)
@@ -207,9 +209,13 @@ def test_normal_ml_scale_uses_n():
 def test_student_t_df_bounds():
     rng = np.random.default_rng(12)
     normal_data = rng.standard_normal(2000)
-    assert get_law("student-t").fit(normal_data).shape == STUDENT_T_DF_BOUNDS[1]  # common practice: normal data -> df at the cap
+    assert (
+        get_law("student-t").fit(normal_data).shape == STUDENT_T_DF_BOUNDS[1]
+    )  # common practice: normal data -> df at the cap
     cauchy_data = rng.standard_cauchy(300)
-    assert get_law("student-t").fit(cauchy_data).shape == pytest.approx(STUDENT_T_DF_BOUNDS[0])  # common practice: Cauchy -> lowest df
+    assert get_law("student-t").fit(cauchy_data).shape == pytest.approx(
+        STUDENT_T_DF_BOUNDS[0]
+    )  # common practice: Cauchy -> lowest df
 
 
 def test_iteration_budget_exhausted_warns(monkeypatch):
@@ -222,7 +228,9 @@ def test_iteration_budget_exhausted_warns(monkeypatch):
 
 
 @pytest.mark.parametrize("location", [True, False])
-@pytest.mark.parametrize("name,shape", [("normal", None), ("laplace", None), ("logistic", None), ("student-t", None), ("student-t", 7.0)])
+@pytest.mark.parametrize(
+    "name,shape", [("normal", None), ("laplace", None), ("logistic", None), ("student-t", None), ("student-t", 7.0)]
+)
 def test_fit_batch_equals_fit_row_by_row(name, shape, location):
     rng = np.random.default_rng(13)
     X = 2.0 + 3.0 * rng.standard_t(4, size=(12, 60))
@@ -291,8 +299,12 @@ def test_fisher_information_matches_numerical_second_derivatives(name):
         if i == j:
             points += [theta0 + steps[i], theta0 - steps[i]]
         else:
-            points += [theta0 + steps[i] + steps[j], theta0 + steps[i] - steps[j],
-                       theta0 - steps[i] + steps[j], theta0 - steps[i] - steps[j]]
+            points += [
+                theta0 + steps[i] + steps[j],
+                theta0 + steps[i] - steps[j],
+                theta0 - steps[i] + steps[j],
+                theta0 - steps[i] - steps[j],
+            ]
     values = iter(_expected_loglik(params, np.array(points)))
     f0 = next(values)
     num = np.zeros((k, k))
@@ -330,8 +342,16 @@ def test_grouped_information_normal_ten_cells():
 @pytest.mark.parametrize(
     "s,lam_mu,lam_sigma",
     # source: docs/method.md §5.3 table (Chernoff-Lehmann lambdas, normal, equiprobable cells)
-    [(4, 0.1394, 0.6325), (5, 0.1030, 0.5317), (6, 0.0806, 0.4588), (8, 0.0550, 0.3606),
-     (10, 0.0410, 0.2975), (15, 0.0242, 0.2077), (20, 0.0167, 0.1600), (30, 0.0100, 0.1101)],
+    [
+        (4, 0.1394, 0.6325),
+        (5, 0.1030, 0.5317),
+        (6, 0.0806, 0.4588),
+        (8, 0.0550, 0.3606),
+        (10, 0.0410, 0.2975),
+        (15, 0.0242, 0.2077),
+        (20, 0.0167, 0.1600),
+        (30, 0.0100, 0.1101),
+    ],
 )
 def test_chernoff_lehmann_lambdas(s, lam_mu, lam_sigma):
     p = NoiseParams("normal", 0.0, 3.0, None, ("loc", "scale"))
@@ -387,9 +407,13 @@ def test_count_logpmf_matches_scipy(rng):
     y, mean = _count_data(rng, n=50)
     nb = NoiseParams("negative-binomial", 0.0, 1.0, 2.5)
     ours = get_law("negative-binomial").logpmf(y, mean, nb)
-    np.testing.assert_allclose(ours, stats.nbinom.logpmf(y, 2.5, 2.5 / (2.5 + mean)), rtol=1e-12)  # source: scipy.stats.nbinom
+    np.testing.assert_allclose(
+        ours, stats.nbinom.logpmf(y, 2.5, 2.5 / (2.5 + mean)), rtol=1e-12
+    )  # source: scipy.stats.nbinom
     pois = NoiseParams("poisson", 0.0, 1.0, None)
-    np.testing.assert_allclose(get_law("poisson").logpmf(y, mean, pois), stats.poisson.logpmf(y, mean), rtol=1e-12)  # source: scipy.stats.poisson
+    np.testing.assert_allclose(
+        get_law("poisson").logpmf(y, mean, pois), stats.poisson.logpmf(y, mean), rtol=1e-12
+    )  # source: scipy.stats.poisson
 
 
 def test_negative_binomial_size_ml_matches_scipy_optimize(rng):

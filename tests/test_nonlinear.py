@@ -33,8 +33,17 @@ def _user(name: str, start: dict, lags=(1,), **kwargs) -> NonlinearAR:
     return NonlinearAR(function=f"nlar_functions:{name}", lags=lags, start=start, **kwargs)
 
 
-SETAR_TRUTH = {"c1": 1.0, "ar1_1": 0.6, "ar1_2": -0.2, "c2": -1.0, "ar2_1": -0.4, "ar2_2": 0.3,
-               "threshold": 0.5, "delay": 2.0, "sigma2": 1.0}
+SETAR_TRUTH = {
+    "c1": 1.0,
+    "ar1_1": 0.6,
+    "ar1_2": -0.2,
+    "c2": -1.0,
+    "ar2_1": -0.4,
+    "ar2_2": 0.3,
+    "threshold": 0.5,
+    "delay": 2.0,
+    "sigma2": 1.0,
+}
 
 
 # -- user mean functions ------------------------------------------------------------------------
@@ -79,9 +88,18 @@ def test_exogenous_input_matches_least_squares():
 @pytest.mark.parametrize(
     "name,truth,start,seed",
     [
-        ("expar1", {"c": 0.2, "a": 0.3, "b": 0.6, "g": 0.8, "sigma2": 1.0}, {"c": 0.0, "a": 0.5, "b": 0.3, "g": 1.0}, 3),
-        ("lstar1", {"c1": 0.5, "a1": 0.6, "c2": -1.0, "a2": -0.5, "g": 3.0, "r": 0.5, "sigma2": 0.5},
-         {"c1": 0.0, "a1": 0.5, "c2": -0.5, "a2": -0.2, "g": 2.0, "r": 0.3}, 3),
+        (
+            "expar1",
+            {"c": 0.2, "a": 0.3, "b": 0.6, "g": 0.8, "sigma2": 1.0},
+            {"c": 0.0, "a": 0.5, "b": 0.3, "g": 1.0},
+            3,
+        ),
+        (
+            "lstar1",
+            {"c1": 0.5, "a1": 0.6, "c2": -1.0, "a2": -0.5, "g": 3.0, "r": 0.5, "sigma2": 0.5},
+            {"c1": 0.0, "a1": 0.5, "c2": -0.5, "a2": -0.2, "g": 2.0, "r": 0.3},
+            3,
+        ),
     ],
     ids=["EXPAR(1)", "LSTAR(1)"],
 )
@@ -126,7 +144,10 @@ def _brute_force_setar(y: np.ndarray, lags: tuple, delays: list, trim: float):
             lower = z <= r
             if not (low <= r <= high) or min(lower.sum(), (~lower).sum()) < X.shape[1] + 3:
                 continue
-            rss = sum(np.sum((target[m] - X[m] @ np.linalg.lstsq(X[m], target[m], rcond=None)[0]) ** 2) for m in (lower, ~lower))
+            rss = sum(
+                np.sum((target[m] - X[m] @ np.linalg.lstsq(X[m], target[m], rcond=None)[0]) ** 2)
+                for m in (lower, ~lower)
+            )
             if rss < best[0] - 1e-9:
                 best = (rss, d, r)
     return best
@@ -160,7 +181,10 @@ def test_setar_with_fixed_delay_and_simulation_identity():
 def test_a_failing_mean_function_is_contained_with_a_clear_message():
     y = _sunspots()
     spec = _user("broken", {"a": 0.1})
-    with pytest.raises(SpecificationError, match="mean function 'nlar_functions:broken' raised ValueError: division by the wrong column") as info:
+    with pytest.raises(
+        SpecificationError,
+        match="mean function 'nlar_functions:broken' raised ValueError: division by the wrong column",
+    ) as info:
         spec.fit(y)
     assert isinstance(info.value, FitauditError) and isinstance(info.value.__cause__, ValueError)
     assert "NLAR[nlar_functions:broken]" in str(info.value)
@@ -174,7 +198,10 @@ def test_a_failing_mean_function_is_contained_with_a_clear_message():
     "path,match",
     [
         ("no_such_module_fitaudit_test:f", "cannot import module 'no_such_module_fitaudit_test'"),
-        ("nlar_functions:missing", "has no attribute 'missing'.*public callables are: ar1_with_input, broken, expar1, linear_ar2, lstar1, never_returns, wrong_length\\."),
+        (
+            "nlar_functions:missing",
+            "has no attribute 'missing'.*public callables are: ar1_with_input, broken, expar1, linear_ar2, lstar1, never_returns, wrong_length\\.",
+        ),
         ("nlar_functions:NOT_A_FUNCTION", "is a int, not a function"),
     ],
 )

@@ -56,9 +56,22 @@ REFERENCE_SVG_MACRO = """{% macro svg(c) %}
 #: Demo models covering four sources, every verdict, smoothing, threshold AR, a rejected entry and
 #: forecasts made elsewhere (quantiles failing, a mean with a fixed scale passing).
 DEMO_SUBSET = [
-    "demand-d-02", "demand-d-03", "demand-d-07", "demand-d-11", "demand-d-13", "demand-d-19", "demand-d-22",
-    "demand-d-25", "demand-d-31", "demand-d-32", "demand-d-40-legacy", "energy-pump-01", "energy-pump-02", "leakage-leak-01",
-    "supplier-pump-02", "notebook-leak-01",
+    "demand-d-02",
+    "demand-d-03",
+    "demand-d-07",
+    "demand-d-11",
+    "demand-d-13",
+    "demand-d-19",
+    "demand-d-22",
+    "demand-d-25",
+    "demand-d-31",
+    "demand-d-32",
+    "demand-d-40-legacy",
+    "energy-pump-01",
+    "energy-pump-02",
+    "leakage-leak-01",
+    "supplier-pump-02",
+    "notebook-leak-01",
 ]
 
 
@@ -103,7 +116,9 @@ def test_permutation_maxima_equal_the_one_hot_statistics(rng):
         idx = rng.integers(0, s, size=n)
         rows = idx[np.argsort(rng.random((50, n)), axis=1)]
         # source: split_statistics (one-hot counts, the formula of the module docstring) is the reference
-        np.testing.assert_allclose(permutation_maxima(rows, s, trim), split_statistics(rows, s, trim).max(axis=1), rtol=1e-11)
+        np.testing.assert_allclose(
+            permutation_maxima(rows, s, trim), split_statistics(rows, s, trim).max(axis=1), rtol=1e-11
+        )
 
 
 @pytest.mark.parametrize("seed", range(6))
@@ -136,8 +151,12 @@ def test_staging_in_several_scans_writes_the_same_batches(demo, registry, tmp_pa
     from fitaudit.tasks.batches import read_batch, stage_inputs
     from fitaudit.tasks.demo import DEMO_AS_OF
 
-    one = stage_inputs(registry, DEMO_AS_OF, tmp_path / "one", archive_root=demo["archive"], batch_size=4, series_per_scan=10**6)
-    many = stage_inputs(registry, DEMO_AS_OF, tmp_path / "many", archive_root=demo["archive"], batch_size=4, series_per_scan=8)
+    one = stage_inputs(
+        registry, DEMO_AS_OF, tmp_path / "one", archive_root=demo["archive"], batch_size=4, series_per_scan=10**6
+    )
+    many = stage_inputs(
+        registry, DEMO_AS_OF, tmp_path / "many", archive_root=demo["archive"], batch_size=4, series_per_scan=8
+    )
     assert [b.model_ids for b in one.batches] == [b.model_ids for b in many.batches]
     assert one.fingerprints == many.fingerprints and one.source_errors == many.source_errors
     for a, b in zip(one.batches, many.batches):
@@ -145,7 +164,9 @@ def test_staging_in_several_scans_writes_the_same_batches(demo, registry, tmp_pa
         assert pathlib.Path(a.path + ".json").read_bytes() == pathlib.Path(b.path + ".json").read_bytes()
         for x, y in zip(read_batch(a.path), read_batch(b.path)):
             assert np.array_equal(x.y, y.y, equal_nan=True) and np.array_equal(x.time, y.time)
-            assert x.exog.keys() == y.exog.keys() and all(np.array_equal(x.exog[k], y.exog[k], equal_nan=True) for k in x.exog)
+            assert x.exog.keys() == y.exog.keys() and all(
+                np.array_equal(x.exog[k], y.exog[k], equal_nan=True) for k in x.exog
+            )
 
 
 def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo, registry, tmp_path):
@@ -188,7 +209,9 @@ def test_local_workers_run_elsewhere_and_fall_back_in_place():
         assert token is None
 
 
-def _reference_run(demo: dict, registry, archive: pathlib.Path, work: pathlib.Path, meta: dict) -> tuple[bytes, dict, list]:
+def _reference_run(
+    demo: dict, registry, archive: pathlib.Path, work: pathlib.Path, meta: dict
+) -> tuple[bytes, dict, list]:
     """The plain pipeline: the same stage functions in this process, whole document and pages in memory."""
     from fitaudit.tasks._io import canonical_json
     from fitaudit.tasks.audit import (
@@ -206,7 +229,9 @@ def _reference_run(demo: dict, registry, archive: pathlib.Path, work: pathlib.Pa
     from fitaudit.tasks.report import render_run
     from fitaudit.tasks.results import build_results, results_rows
 
-    staged = stage_inputs(registry, DEMO_AS_OF, work, archive_root=str(archive), model_ids=DEMO_SUBSET, series_per_scan=10**6)
+    staged = stage_inputs(
+        registry, DEMO_AS_OF, work, archive_root=str(archive), model_ids=DEMO_SUBSET, series_per_scan=10**6
+    )
     cache = calibration_for([b.path for b in staged.batches], registry.policy)
     outcomes = [o for b in staged.batches for o in audit_batch(b.path, registry.policy, cache)]
     outcomes += [rejected_outcome(r) for r in registry.rejected if r.id in DEMO_SUBSET]
@@ -236,16 +261,24 @@ def test_audit_flow_matches_the_plain_pipeline(demo, registry, prefect_server, t
     archive = tmp_path / "archive"
     shutil.copytree(demo["archive"], archive)
     monkeypatch.setenv("PREFECT_INTEGRATIONS_FITAUDIT_PROCESSES", "2")  # worker processes even for a small run
-    run = audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=str(archive), models=DEMO_SUBSET, batch_size=3)
+    run = audit_flow(
+        registry=demo["registry"], as_of=DEMO_AS_OF, archive=str(archive), models=DEMO_SUBSET, batch_size=3
+    )
     folder = pathlib.Path(run["report"]).parent
     manifest = json.loads((folder / "manifest.json").read_text())
     assert manifest["batches"] >= 4 and run["counts"]["registered"] == len(DEMO_SUBSET)
-    meta = {k: manifest[k] for k in ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "code_commit")}
+    meta = {
+        k: manifest[k] for k in ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "code_commit")
+    }
     meta["prefect_version"] = manifest["packages"]["prefect"]
     extends = manifest["extends"]
-    meta.update(archive_head=f"{extends['chain_head']} (seq {extends['chain_seq']})" if extends["chain_head"] else None,
-                previous_run_id=extends["previous_run_id"], previous_as_of=extends["previous_as_of"], fleet_trend=manifest["fleet_trend"],
-                scope=dict(manifest["scope"], models_requested=len(manifest["scope"]["models_requested"] or ()) or None))
+    meta.update(
+        archive_head=f"{extends['chain_head']} (seq {extends['chain_seq']})" if extends["chain_head"] else None,
+        previous_run_id=extends["previous_run_id"],
+        previous_as_of=extends["previous_as_of"],
+        fleet_trend=manifest["fleet_trend"],
+        scope=dict(manifest["scope"], models_requested=len(manifest["scope"]["models_requested"] or ()) or None),
+    )
 
     macro = environment().from_string(REFERENCE_SVG_MACRO).module.svg
     monkeypatch.setitem(environment().filters, "svg", macro)  # the reference renders charts with the old macro
@@ -265,10 +298,17 @@ def test_streamed_results_json_equals_canonical_json():
     from fitaudit.tasks._io import canonical_json
     from fitaudit.tasks.results import results_head, results_json_chunks
 
-    head = results_head(as_of="2026-11-30", registry={"path": "r.yaml", "sha256": "ab"}, policy={"level": 0.05, "z": [1, 2]}, tool_version="0")
+    head = results_head(
+        as_of="2026-11-30",
+        registry={"path": "r.yaml", "sha256": "ab"},
+        policy={"level": 0.05, "z": [1, 2]},
+        tool_version="0",
+    )
     summary = {"registered": 2, "x": float("inf")}
     models = [{"id": "a", "v": [1.5, None, "é"]}, {"id": "b", "w": {"z": 1, "a": 2}}]
     streamed = b"".join(results_json_chunks(head, summary, [canonical_json(m) for m in models]))
     # source: canonical_json of the whole document (the unoptimised writer)
     assert streamed == canonical_json({**head, "summary": summary, "models": models})
-    assert b"".join(results_json_chunks(head, summary, [])) == canonical_json({**head, "summary": summary, "models": []})
+    assert b"".join(results_json_chunks(head, summary, [])) == canonical_json(
+        {**head, "summary": summary, "models": []}
+    )

@@ -79,7 +79,9 @@ def test_production_and_promotion(tmp_path):
 
     refit = _write(tmp_path, params={**PARAMS, "ar1": 0.5})
     assert production_version(tmp_path, "north-demand") == promoted  # a candidate is not production
-    newer = promote(tmp_path, "north-demand", refit.version, approved_by="A. Reviewer", note="refit cleared the failure")
+    newer = promote(
+        tmp_path, "north-demand", refit.version, approved_by="A. Reviewer", note="refit cleared the failure"
+    )
     assert production_version(tmp_path, "north-demand").params["ar1"] == 0.5
     rollback = promote(tmp_path, "north-demand", 1, approved_by="A. Reviewer", note="roll back")
     assert [v.version for v in list_versions(tmp_path, "north-demand")] == [1, 2, 3, 4, 5]
@@ -115,7 +117,9 @@ def test_promotion_refusals(tmp_path):
 def test_write_refusals(tmp_path, changes, message):
     with pytest.raises(ParameterStoreError, match=message):
         _write(tmp_path, **changes)
-    assert not (tmp_path / "params" / "north-demand").exists() or not any((tmp_path / "params" / "north-demand").iterdir())
+    assert not (tmp_path / "params" / "north-demand").exists() or not any(
+        (tmp_path / "params" / "north-demand").iterdir()
+    )
 
 
 @pytest.mark.parametrize("model_id", ["../escape", "/abs/path", "a/b", "", ".hidden", "x\n", "a\x00b", "<b>"])
@@ -193,7 +197,9 @@ def test_tampering_is_detected(tmp_path):
     path = tmp_path / "params" / "north-demand" / "1.json"
     text = path.read_text(encoding="utf-8")
     path.write_text(text.replace('"ar1": 0.62', '"ar1": 0.63'), encoding="utf-8")
-    with pytest.raises(ParameterStoreError, match=r"1\.json: content does not match its SHA-256 .*the file was altered"):
+    with pytest.raises(
+        ParameterStoreError, match=r"1\.json: content does not match its SHA-256 .*the file was altered"
+    ):
         list_versions(tmp_path, "north-demand")
     problems = verify_params(tmp_path)
     assert len(problems) == 1 and "1.json: content does not match its SHA-256" in problems[0]
@@ -203,7 +209,9 @@ def test_renamed_file_is_detected(tmp_path):
     _write(tmp_path)
     folder = tmp_path / "params" / "north-demand"
     os.rename(folder / "1.json", folder / "2.json")
-    with pytest.raises(ParameterStoreError, match=r"2\.json: records model 'north-demand' version 1 but is stored as .*version 2"):
+    with pytest.raises(
+        ParameterStoreError, match=r"2\.json: records model 'north-demand' version 1 but is stored as .*version 2"
+    ):
         list_versions(tmp_path, "north-demand")
 
 
@@ -218,7 +226,9 @@ def test_verify_reports_names_gaps_and_garbage(tmp_path):
     _write(tmp_path, model_id="south-demand")
     (tmp_path / "params" / "south-demand" / "1.json").write_text("{not json")
     problems = verify_params(tmp_path)
-    assert any(p.endswith("bad name: not a model folder (expected a folder named by a safe model id)") for p in problems)
+    assert any(
+        p.endswith("bad name: not a model folder (expected a folder named by a safe model id)") for p in problems
+    )
     assert any("notes.txt: unexpected name" in p for p in problems)
     assert any("version(s) 2 missing from the numbering" in p for p in problems)
     assert any("south-demand/1.json: cannot be read as JSON" in p for p in problems)

@@ -92,7 +92,13 @@ def registry(tmp_path):
 
 
 def _params_file(tmp_path, params, name="nile.yaml", **extra):
-    doc = {"model_id": "nile-flow", "family": "arima", "params": params, "date": "1940-12-31", "approved_by": "A. Hydrologist, model owner"}
+    doc = {
+        "model_id": "nile-flow",
+        "family": "arima",
+        "params": params,
+        "date": "1940-12-31",
+        "approved_by": "A. Hydrologist, model owner",
+    }
     doc.update(extra)
     path = tmp_path / name
     if name.endswith(".json"):
@@ -119,7 +125,9 @@ def test_imported_statsmodels_parameters_are_the_production_version(tmp_path, re
     assert chain[-1]["kind"] == "promotion" and chain[-1]["payload"]["imported_by"] == "B. Analyst, forecasting"
 
 
-def test_production_check_of_imported_parameters_equals_a_run_of_fitaudits_errors(tmp_path, registry, nile, statsmodels_fit):
+def test_production_check_of_imported_parameters_equals_a_run_of_fitaudits_errors(
+    tmp_path, registry, nile, statsmodels_fit
+):
     """The production check on 1941-1970 of the imported parameters is the score of
     Arima.errors with those parameters, and those errors are statsmodels' own one-step errors."""
     params, res = statsmodels_fit
@@ -129,7 +137,9 @@ def test_production_check_of_imported_parameters_equals_a_run_of_fitaudits_error
     spec = Arima(order=(1, 0, 1), trend="c")
     settings = AuditSettings(audit_window=30, replicates=199, locate_change=False)
     cache = CalibrationCache()
-    audited = audit_series(nile, spec, noise="normal", production=stored, settings=settings, cache=cache, label="nile-flow").production
+    audited = audit_series(
+        nile, spec, noise="normal", production=stored, settings=settings, cache=cache, label="nile-flow"
+    ).production
     assert audited.ok, audited.message
 
     errors = spec.errors(nile, stored)
@@ -153,7 +163,13 @@ def test_production_check_of_imported_parameters_equals_a_run_of_fitaudits_error
 
 def test_json_file_with_a_student_t_shape(tmp_path, registry, statsmodels_fit):
     params, _ = statsmodels_fit
-    path = _params_file(tmp_path, {k: float(v) for k, v in params.items()}, name="nile.json", model_id="nile-flow-t", noise={"law": "student-t", "df": 6})
+    path = _params_file(
+        tmp_path,
+        {k: float(v) for k, v in params.items()},
+        name="nile.json",
+        model_id="nile-flow-t",
+        noise={"law": "student-t", "df": 6},
+    )
     promoted = import_params(registry, "nile-flow-t", path, by="B. Analyst", archive_root=tmp_path / "a")
     assert promoted.noise == {"law": "student-t", "shape": 6.0}
 
@@ -161,11 +177,27 @@ def test_json_file_with_a_student_t_shape(tmp_path, registry, statsmodels_fit):
 @pytest.mark.parametrize(
     "change, model, words",
     [
-        ({"params": {"ar1": 0.5, "theta1": -0.2, "intercept": 900.0, "sigma2": 2e4}}, "nile-flow", ["missing ma1", "unexpected theta1", "Expected exactly: ar1, ma1, intercept, sigma2"]),
-        ({"params": {"ar1": 1.2, "ma1": -0.2, "intercept": 900.0, "sigma2": 2e4}}, "nile-flow", ["not stationary", "1 - ar1 B"]),
+        (
+            {"params": {"ar1": 0.5, "theta1": -0.2, "intercept": 900.0, "sigma2": 2e4}},
+            "nile-flow",
+            ["missing ma1", "unexpected theta1", "Expected exactly: ar1, ma1, intercept, sigma2"],
+        ),
+        (
+            {"params": {"ar1": 1.2, "ma1": -0.2, "intercept": 900.0, "sigma2": 2e4}},
+            "nile-flow",
+            ["not stationary", "1 - ar1 B"],
+        ),
         ({"params": {"ar1": 0.5, "ma1": -1.5, "intercept": 900.0, "sigma2": 2e4}}, "nile-flow", ["not invertible"]),
-        ({"params": {"ar1": 0.5, "ma1": -0.2, "intercept": 900.0, "sigma2": 0.0}}, "nile-flow", ["sigma2 = 0", "positive variance"]),
-        ({"params": {"ar1": 0.5, "ma1": -0.2, "intercept": 900.0, "sigma2": True}}, "nile-flow", ["params.sigma2", "expected a number"]),
+        (
+            {"params": {"ar1": 0.5, "ma1": -0.2, "intercept": 900.0, "sigma2": 0.0}},
+            "nile-flow",
+            ["sigma2 = 0", "positive variance"],
+        ),
+        (
+            {"params": {"ar1": 0.5, "ma1": -0.2, "intercept": 900.0, "sigma2": True}},
+            "nile-flow",
+            ["params.sigma2", "expected a number"],
+        ),
         ({"approved_by": "  "}, "nile-flow", ["approved_by", "non-blank"]),
         ({"date": "last spring"}, "nile-flow", ["date"]),
         ({"reviewer": "X"}, "nile-flow", ["reviewer", "unknown field", "approved_by"]),
@@ -204,11 +236,15 @@ def test_command_line(tmp_path, registry, statsmodels_fit, capsys):
     params, _ = statsmodels_fit
     good = _params_file(tmp_path, {k: float(v) for k, v in params.items()})
     archive = tmp_path / "archive"
-    code = main(["params", "import", str(registry), "nile-flow", str(good), "--by", "B. Analyst", "--archive", str(archive)])
+    code = main(
+        ["params", "import", str(registry), "nile-flow", str(good), "--by", "B. Analyst", "--archive", str(archive)]
+    )
     assert code == EXIT_OK
     assert "in production as version 2" in capsys.readouterr().out
     bad = _params_file(tmp_path, {"ar1": 0.5}, name="bad.yaml")
-    code = main(["params", "import", str(registry), "nile-flow", str(bad), "--by", "B. Analyst", "--archive", str(archive)])
+    code = main(
+        ["params", "import", str(registry), "nile-flow", str(bad), "--by", "B. Analyst", "--archive", str(archive)]
+    )
     assert code == EXIT_USAGE
     assert "missing ma1, intercept, sigma2" in capsys.readouterr().err
     assert len(list_versions(archive, "nile-flow")) == 2  # the refused file wrote nothing

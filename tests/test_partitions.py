@@ -108,10 +108,12 @@ def test_gradient_on_tail_cells_matches_finite_differences(name):
     b = np.asarray(tail_boundaries(150))
     G = law.cell_probability_gradient(b, params)
     frozen = {"normal": stats.norm, "logistic": stats.logistic, "laplace": stats.laplace}
+
     def cdf(x, th):
         if name == "student-t":
             return stats.t.cdf(x, th[2], loc=th[0], scale=th[1])
         return frozen[name].cdf(x, loc=th[0], scale=th[1])
+
     theta0 = np.array([-0.2, 0.8] + ([shape] if shape else []))
     if name == "student-t":
         cuts = stats.t.ppf(b[1:-1], shape, loc=-0.2, scale=0.8)
@@ -145,7 +147,9 @@ def test_nrr_on_tail_cells_restores_the_chi_square_limit():
         u = law.cdf(x[i], p)
         obs = part.counts(u)
         x2 = stats.chisquare(obs, n * part.probs).statistic
-        extra = nrr_term(obs, law.fisher_information(p), law.cell_probability_gradient(np.asarray(part.boundaries), p), part.probs)
+        extra = nrr_term(
+            obs, law.fisher_information(p), law.cell_probability_gradient(np.asarray(part.boundaries), p), part.probs
+        )
         hits += x2 + extra > crit
     # common practice: 1500 replicates, binomial sd 0.0056; 4 sd either side of 0.05
     assert 0.028 <= hits / reps <= 0.072
@@ -157,7 +161,8 @@ def test_nrr_with_equal_probs_equals_the_equiprobable_form(rng):
     counts = np.array([9.0, 14, 11, 6, 10, 10])
     g = law.cell_probability_gradient(6, p)
     assert nrr_term(counts, law.fisher_information(p), g) == pytest.approx(
-        nrr_term(counts, law.fisher_information(p), g, np.full(6, 1 / 6)), rel=1e-12)
+        nrr_term(counts, law.fisher_information(p), g, np.full(6, 1 / 6)), rel=1e-12
+    )
 
 
 # ------------------------------------------------------------------------------------------
@@ -252,7 +257,12 @@ def test_quick_power_heavy_tails_beats_pearson_on_equiprobable_cells():
         y = AR1.simulate(TRUTH, 200, rng, innovations=shocks)
         settings = dataclasses.replace(FAST, seed=i % 5)
         ours += audit_series(y, AR1, settings=settings, cache=cache).refit.p_distribution <= 0.05
-        pearson += audit_series(y, AR1, settings=dataclasses.replace(PEARSON_TODAY, seed=i % 5), cache=cache).refit.p_distribution <= 0.05
+        pearson += (
+            audit_series(
+                y, AR1, settings=dataclasses.replace(PEARSON_TODAY, seed=i % 5), cache=cache
+            ).refit.p_distribution
+            <= 0.05
+        )
     # common practice: 120 series, binomial sd about 0.04 each; the study's gap is 0.16
     assert ours / reps >= 0.80
     assert ours > pearson

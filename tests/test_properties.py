@@ -42,36 +42,106 @@ from fitaudit.tasks.registry import (
 HEAD = {
     "version": 1,
     "policy": {"justification": "fixed before the run", "approved_by": "T. Approver, tests"},
-    "sources": {"main": {"uri": "data/main.parquet", "key": "series", "time": "date", "value": "y", "exogenous": ["x", "z"], "frequency": "D"}},
+    "sources": {
+        "main": {
+            "uri": "data/main.parquet",
+            "key": "series",
+            "time": "date",
+            "value": "y",
+            "exogenous": ["x", "z"],
+            "frequency": "D",
+        }
+    },
 }
-_junk = st.one_of(st.none(), st.booleans(), st.integers(-10**12, 10**12), st.floats(allow_nan=True, allow_infinity=True),
-                  st.text(max_size=20), st.lists(st.integers(-3, 9), max_size=5), st.dictionaries(st.text(max_size=5), st.integers(), max_size=3))
-_names = st.one_of(st.sampled_from(["m1", "M1", "m-2", "a" * MAX_ID_LENGTH, "a" * (MAX_ID_LENGTH + 1), "../x", "<b>", "x\u202e", "a\x00b", ".h", ""]),
-                   st.text(min_size=1, max_size=12), _junk)
+_junk = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(-(10**12), 10**12),
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.text(max_size=20),
+    st.lists(st.integers(-3, 9), max_size=5),
+    st.dictionaries(st.text(max_size=5), st.integers(), max_size=3),
+)
+_names = st.one_of(
+    st.sampled_from(
+        [
+            "m1",
+            "M1",
+            "m-2",
+            "a" * MAX_ID_LENGTH,
+            "a" * (MAX_ID_LENGTH + 1),
+            "../x",
+            "<b>",
+            "x\u202e",
+            "a\x00b",
+            ".h",
+            "",
+        ]
+    ),
+    st.text(min_size=1, max_size=12),
+    _junk,
+)
 _orders = st.one_of(st.lists(st.integers(-1, 4), min_size=0, max_size=5), _junk)
 _specs = st.fixed_dictionaries(
     {"family": st.one_of(st.sampled_from(["arima", "smoothing", "nonlinear-ar", "prophet"]), _junk)},
     optional={
-        "order": _orders, "seasonal": _orders, "trend": st.one_of(st.sampled_from(["n", "c", "t", "ct", "add", "mul", None]), _junk),
-        "damped": st.one_of(st.booleans(), _junk), "period": st.one_of(st.integers(-2, 400), _junk),
+        "order": _orders,
+        "seasonal": _orders,
+        "trend": st.one_of(st.sampled_from(["n", "c", "t", "ct", "add", "mul", None]), _junk),
+        "damped": st.one_of(st.booleans(), _junk),
+        "period": st.one_of(st.integers(-2, 400), _junk),
         "function": st.one_of(st.sampled_from(["setar", "pkg.mod:f", "no colon", "a:b:c"]), _junk),
-        "lags": _orders, "start": st.one_of(st.dictionaries(st.sampled_from(["a", "b", "c"]), st.floats(allow_nan=True), max_size=3), _junk),
-        "delay": _junk, "trim": st.one_of(st.floats(-1, 1), _junk), "maxiter": _junk, "method": st.one_of(st.sampled_from(["exact", "css"]), _junk),
+        "lags": _orders,
+        "start": st.one_of(
+            st.dictionaries(st.sampled_from(["a", "b", "c"]), st.floats(allow_nan=True), max_size=3), _junk
+        ),
+        "delay": _junk,
+        "trim": st.one_of(st.floats(-1, 1), _junk),
+        "maxiter": _junk,
+        "method": st.one_of(st.sampled_from(["exact", "css"]), _junk),
         "ordr": _junk,
     },
 )
-_noise = st.one_of(st.sampled_from([*NOISE_LAWS, "gaussian"]), _junk,
-                   st.fixed_dictionaries({"law": st.sampled_from([*NOISE_LAWS, "cauchy"])}, optional={"df": _junk, "size": _junk, "shape": _junk}))
-_windows = st.one_of(st.fixed_dictionaries({}, optional={"fit": st.one_of(st.integers(-5, 10**6), _junk), "audit": st.one_of(st.integers(-5, 400), _junk), "tail": _junk}), _junk)
+_noise = st.one_of(
+    st.sampled_from([*NOISE_LAWS, "gaussian"]),
+    _junk,
+    st.fixed_dictionaries(
+        {"law": st.sampled_from([*NOISE_LAWS, "cauchy"])}, optional={"df": _junk, "size": _junk, "shape": _junk}
+    ),
+)
+_windows = st.one_of(
+    st.fixed_dictionaries(
+        {},
+        optional={
+            "fit": st.one_of(st.integers(-5, 10**6), _junk),
+            "audit": st.one_of(st.integers(-5, 400), _junk),
+            "tail": _junk,
+        },
+    ),
+    _junk,
+)
 _entries = st.fixed_dictionaries(
     {},
     optional={
-        "id": _names, "owner": _names, "tier": st.one_of(st.integers(0, 4), _junk), "description": _junk,
-        "source": st.one_of(st.sampled_from(["main", "nowhere"]), _junk), "series": _names, "value": st.one_of(st.sampled_from(["y", "x", "series", "date"]), _junk),
+        "id": _names,
+        "owner": _names,
+        "tier": st.one_of(st.integers(0, 4), _junk),
+        "description": _junk,
+        "source": st.one_of(st.sampled_from(["main", "nowhere"]), _junk),
+        "series": _names,
+        "value": st.one_of(st.sampled_from(["y", "x", "series", "date"]), _junk),
         "exogenous": st.one_of(st.lists(st.sampled_from(["x", "z", "y", "w"]), max_size=3), _junk),
-        "spec": st.one_of(_specs, _junk), "noise": _noise, "windows": _windows,
-        "settings": st.one_of(st.fixed_dictionaries({}, optional={"level": _junk, "calibration": _junk, "replicates": _junk, "seed": _junk}), _junk),
-        "last_validated": st.one_of(st.dates().map(str), _junk), "colour": _junk,
+        "spec": st.one_of(_specs, _junk),
+        "noise": _noise,
+        "windows": _windows,
+        "settings": st.one_of(
+            st.fixed_dictionaries(
+                {}, optional={"level": _junk, "calibration": _junk, "replicates": _junk, "seed": _junk}
+            ),
+            _junk,
+        ),
+        "last_validated": st.one_of(st.dates().map(str), _junk),
+        "colour": _junk,
     },
 )
 
@@ -91,7 +161,9 @@ def test_random_model_entries_are_accepted_or_rejected_never_crash(entries):
     assert all(SAFE_ID.match(s) for s in safe) and len({s.casefold() for s in safe}) == len(safe)
     lines = len(re.split("\r\n|[\n\r\x85\u2028\u2029]", text))  # YAML's line breaks (PyYAML counts NEL, LS, PS too)
     for r in reg.rejected:
-        assert r.problems and all(p.field.startswith("models[") and 1 <= p.line <= lines and p.message for p in r.problems)
+        assert r.problems and all(
+            p.field.startswith("models[") and 1 <= p.line <= lines and p.message for p in r.problems
+        )
     canonical_json(reg.to_dict())
 
 
@@ -112,14 +184,23 @@ def test_random_bytes_in_a_registry_file_give_a_clean_answer(tmp_path_factory, d
 # ------------------------------------------------------------------------------------------
 # divergence map: extreme counts, unequal cells, wide grids
 # ------------------------------------------------------------------------------------------
-_counts = st.lists(st.one_of(st.just(0), st.integers(0, 3), st.integers(0, 10**12)), min_size=2, max_size=16).filter(lambda c: sum(c) > 0)
+_counts = st.lists(st.one_of(st.just(0), st.integers(0, 3), st.integers(0, 10**12)), min_size=2, max_size=16).filter(
+    lambda c: sum(c) > 0
+)
 _weights = st.lists(st.floats(1e-12, 1.0), min_size=16, max_size=16)
-_scalings = st.sampled_from([(s, None) for s in SCALINGS if s != "power"] + [("power", r) for r in (-2.0, -1.0, 0.5, 1.0, 3.0)])
+_scalings = st.sampled_from(
+    [(s, None) for s in SCALINGS if s != "power"] + [("power", r) for r in (-2.0, -1.0, 0.5, 1.0, 3.0)]
+)
 
 
 @settings(max_examples=200, deadline=None)
-@given(counts=_counts, weights=_weights, sr=_scalings,
-       alphas=st.lists(st.floats(-8, 8, allow_nan=False), min_size=1, max_size=5), betas=st.lists(st.floats(0, 1), min_size=1, max_size=4))
+@given(
+    counts=_counts,
+    weights=_weights,
+    sr=_scalings,
+    alphas=st.lists(st.floats(-8, 8, allow_nan=False), min_size=1, max_size=5),
+    betas=st.lists(st.floats(0, 1), min_size=1, max_size=4),
+)
 def test_extreme_counts_and_grids_never_give_nan(counts, weights, sr, alphas, betas):
     w = np.asarray(weights[: len(counts)])
     probs = w / w.sum()
@@ -182,7 +263,9 @@ def test_random_finite_series_always_get_a_verdict(kind, n, seed, exponent, spec
     if production is not None:  # a production version with every parameter of the spec (possibly non-stationary)
         params = {name: production for name in model.param_names()}
         params["sigma2"] = abs(production) + 0.1
-    settings_ = AuditSettings(calibration=calibration, replicates=99, change_permutations=19, audit_window=window, seed=seed % 1000)
+    settings_ = AuditSettings(
+        calibration=calibration, replicates=99, change_permutations=19, audit_window=window, seed=seed % 1000
+    )
     result = audit_series(y, spec, noise=law, production=params, settings=settings_, cache=_CACHE, label="model 'prop'")
     assert result.verdict in VERDICTS
     assert result.reasons and all(isinstance(r, str) and r.strip() for r in result.reasons)

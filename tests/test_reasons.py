@@ -17,27 +17,56 @@ from fitaudit.core.audit import AuditResult, CheckResult, apply_fleet_rules, dec
 from fitaudit.core.plotdata import error_effects, iso_date
 from fitaudit.core.verdict import owner_action
 
-GATE = {"deciding": {"kind": "tails", "sentence": "the highest 1.8 % of the assumed law holds 10 errors where 1.0 were expected"}}
+GATE = {
+    "deciding": {
+        "kind": "tails",
+        "sentence": "the highest 1.8 % of the assumed law holds 10 errors where 1.0 were expected",
+    }
+}
 
 
-def check(kind: str = "production", *, fails: bool = False, ratio: float = 0.5, acf_fails: bool = False, **extra) -> CheckResult:
+def check(
+    kind: str = "production", *, fails: bool = False, ratio: float = 0.5, acf_fails: bool = False, **extra
+) -> CheckResult:
     """A check that ran: passing (T / critical = ``ratio``) or failing its distribution gate at the floor of 499 simulations."""
     p_dist = 0.002 if fails else 0.4
     p_ind = 0.0004 if acf_fails else 0.6
     values = dict(
-        kind=kind, status="ok", n=56, cells=10, noise={"law": "normal"}, t_at_max=27.6 * (4.15 if fails else ratio), critical_value=27.6,
-        alpha_max=2.0, beta_max=0.0, p_distribution=p_dist, p_independence=p_ind, p_value=min(1.0, 2 * min(p_dist, p_ind)),
-        calibration={"method": "simulated", "replicates": 499}, gate=GATE, window={"first": 124, "last": 179, "length": 56},
-        ljung_box={"statistic": 33.7 if acf_fails else 6.2, "lags": 11, "df": 11}, mcleod_li={"p_value": 0.5}, effect_acf=0.39 if acf_fails else 0.1,
-        members={"pearson": {"p_value_chi2": 0.4}}, effects={"n": 56, "start": "2026-10-06", "end": "2026-11-30"},
+        kind=kind,
+        status="ok",
+        n=56,
+        cells=10,
+        noise={"law": "normal"},
+        t_at_max=27.6 * (4.15 if fails else ratio),
+        critical_value=27.6,
+        alpha_max=2.0,
+        beta_max=0.0,
+        p_distribution=p_dist,
+        p_independence=p_ind,
+        p_value=min(1.0, 2 * min(p_dist, p_ind)),
+        calibration={"method": "simulated", "replicates": 499},
+        gate=GATE,
+        window={"first": 124, "last": 179, "length": 56},
+        ljung_box={"statistic": 33.7 if acf_fails else 6.2, "lags": 11, "df": 11},
+        mcleod_li={"p_value": 0.5},
+        effect_acf=0.39 if acf_fails else 0.1,
+        members={"pearson": {"p_value_chi2": 0.4}},
+        effects={"n": 56, "start": "2026-10-06", "end": "2026-11-30"},
     )
     values.update(extra)
     return CheckResult(**values)
 
 
 def failing_production(**extra) -> CheckResult:
-    effects = {"n": 56, "start": "2026-10-06", "end": "2026-11-30", "variance_ratio": 1.8, "bias_sd": -0.05, "bias_pct": 0.4,
-               "since": {"date": "2026-10-14", "n": 48, "variance_ratio": 1.9, "bias_sd": -0.5, "bias_pct": 6.2}}
+    effects = {
+        "n": 56,
+        "start": "2026-10-06",
+        "end": "2026-11-30",
+        "variance_ratio": 1.8,
+        "bias_sd": -0.05,
+        "bias_pct": 0.4,
+        "since": {"date": "2026-10-14", "n": 48, "variance_ratio": 1.9, "bias_sd": -0.5, "bias_pct": 6.2},
+    }
     return check("production", fails=True, effects=effects, **extra)
 
 
@@ -72,8 +101,12 @@ def test_refit_leads_with_the_refit_in_plain_words_then_the_statistics():
     verdict, reasons = decide_verdict(failing_production(), check("refit", n=180), 0.05)
     assert verdict == "refit"
     lead = reasons[0]
-    assert lead.startswith("Refit: the production parameters no longer fit the 56 observations from 2026-10-06 to 2026-11-30")
-    assert "the forecasts ran 6 % high since 2026-10-14" in lead and "1.8 times as variable as the model assumes" in lead
+    assert lead.startswith(
+        "Refit: the production parameters no longer fit the 56 observations from 2026-10-06 to 2026-11-30"
+    )
+    assert (
+        "the forecasts ran 6 % high since 2026-10-14" in lead and "1.8 times as variable as the model assumes" in lead
+    )
     assert reasons[1].startswith("Production check:") and "10 errors where 1.0 were expected" in reasons[1]
     assert reasons[2].startswith("Refit check")
     assert not any("promote" in r for r in reasons)  # what to do is the action's job, never a reason's
@@ -82,7 +115,9 @@ def test_refit_leads_with_the_refit_in_plain_words_then_the_statistics():
 def test_respecify_leads_with_why_the_refit_fails():
     verdict, reasons = decide_verdict(failing_production(), check("refit", n=180, acf_fails=True), 0.05)
     assert verdict == "respecify"
-    assert reasons[0].startswith("Respecify: re-estimated on the 56 observations from 2026-10-06 to 2026-11-30, the model still does not describe")
+    assert reasons[0].startswith(
+        "Respecify: re-estimated on the 56 observations from 2026-10-06 to 2026-11-30, the model still does not describe"
+    )
     assert "consecutive residuals are correlated (largest autocorrelation 0.39)" in reasons[0]
     assert reasons[1].startswith("Refit check") and "Ljung-Box Q 33.7 on 11 lags" in reasons[1]
     assert any(r.startswith("The production parameters also fail") for r in reasons)
@@ -93,30 +128,49 @@ def test_an_escalated_refit_leads_with_the_escalation_and_never_says_promote():
     result = AuditResult("refit", (), prod, refit, spec={}, noise="normal")
     (out,) = apply_fleet_rules([result], q=0.1, histories=[["pass", "refit"]], k=2, n=3)
     assert out.verdict == "respecify" and out.escalated
-    assert out.reasons[0].startswith("Respecify (escalated): a refit was needed in 2 of the last 3 audits, this one included")
-    assert out.reasons[1].startswith("On its own, this audit would call for a refit: the production parameters no longer fit")
+    assert out.reasons[0].startswith(
+        "Respecify (escalated): a refit was needed in 2 of the last 3 audits, this one included"
+    )
+    assert out.reasons[1].startswith(
+        "On its own, this audit would call for a refit: the production parameters no longer fit"
+    )
     assert not any(r.startswith("Refit:") or "promote" in r for r in out.reasons)
     assert out.reasons[-1].startswith("p-values were adjusted across the run's 2 checks (Benjamini-Hochberg, q = 0.1)")
 
 
 def test_pass_without_notes_and_a_check_that_could_not_run():
     verdict, reasons = decide_verdict(check("production"), check("refit", n=180), 0.05)
-    assert verdict == "pass" and reasons[0] == "Pass: the production parameters still describe the 56 observations from 2026-10-06 to 2026-11-30."
+    assert (
+        verdict == "pass"
+        and reasons[0]
+        == "Pass: the production parameters still describe the 56 observations from 2026-10-06 to 2026-11-30."
+    )
     assert not any(r.startswith("Caution") for r in reasons)
-    broken = CheckResult(kind="production", status="insufficient", message="model 'm': the audit window is longer than the series")
+    broken = CheckResult(
+        kind="production", status="insufficient", message="model 'm': the audit window is longer than the series"
+    )
     verdict, reasons = decide_verdict(broken, check("refit"), 0.05)
-    assert verdict == "insufficient" and reasons == ("The production check could not run: model 'm': the audit window is longer than the series",)
+    assert verdict == "insufficient" and reasons == (
+        "The production check could not run: model 'm': the audit window is longer than the series",
+    )
 
 
 def test_narrow_passes_and_strong_reported_diagnostics_are_said():
     # Neyman's chi-square p-value is not trusted with nearly empty cells: never a caution on its own
-    members = {"pearson": {"p_value_chi2": 0.009}, "likelihood-ratio": {"p_value_chi2": 0.019}, "neyman": {"p_value_chi2": 0.0001}}
+    members = {
+        "pearson": {"p_value_chi2": 0.009},
+        "likelihood-ratio": {"p_value_chi2": 0.019},
+        "neyman": {"p_value_chi2": 0.0001},
+    }
     narrow = check("refit", n=180, ratio=0.97, members=members, mcleod_li={"p_value": 0.0004})
     verdict, reasons = decide_verdict(failing_production(), narrow, 0.05)
     assert verdict == "refit"
     cautions = [r for r in reasons if r.startswith("Caution, refit check")]
     assert len(cautions) == 3
-    assert "passes narrowly: its largest standardised statistic is 0.97 of its critical value (within 10 % of failing)" in cautions[0]
+    assert (
+        "passes narrowly: its largest standardised statistic is 0.97 of its critical value (within 10 % of failing)"
+        in cautions[0]
+    )
     assert "Pearson X², G² (likelihood ratio) would reject on their own (p from 0.009 to 0.019" in cautions[1]
     assert "strong evidence of changing variance (McLeod-Li on squared residuals, p < 0.001" in cautions[2]
     _, reasons = decide_verdict(check("production", ratio=0.89), check("refit"), 0.05)
@@ -129,11 +183,15 @@ def test_p_values_stand_beside_their_thresholds_and_floors():
     assert "distribution gate p ≤ 0.002 (the smallest possible with 499 simulations)" in stats  # 1 / (499 + 1)
     assert "check p = 0.004; each gate fails at p ≤ 0.025 (level 0.05 split over the two gates)" in stats
     adjusted = dataclasses.replace(failing_production(), p_adjusted=0.054)
-    _, reasons = decide_verdict(adjusted, dataclasses.replace(check("refit", n=180), p_adjusted=1.0), 0.1, adjusted=True)
+    _, reasons = decide_verdict(
+        adjusted, dataclasses.replace(check("refit", n=180), p_adjusted=1.0), 0.1, adjusted=True
+    )
     assert "check p = 0.004, adjusted across the run to 0.054, at or below q = 0.1" in reasons[1]
     assert "adjusted across the run to 1.000, above q = 0.1" in reasons[2]
     off_floor = dataclasses.replace(failing_production(), p_distribution=0.004)
-    assert "distribution gate p = 0.004)" in decide_verdict(off_floor, check("refit"), 0.05)[1][1]  # 2 / 500 is not the floor
+    assert (
+        "distribution gate p = 0.004)" in decide_verdict(off_floor, check("refit"), 0.05)[1][1]
+    )  # 2 / 500 is not the floor
     asymptotic = dataclasses.replace(failing_production(), calibration={"method": "asymptotic"}, p_distribution=0.002)
     assert "smallest possible" not in decide_verdict(asymptotic, check("refit"), 0.05)[1][1]  # no simulation, no floor
 
@@ -155,7 +213,14 @@ def test_p_values_stand_beside_their_thresholds_and_floors():
 )
 def test_actions_follow_the_verdict_with_a_deadline(verdict, escalated, policy, words):
     forecasts = policy == "forecasts"  # forecasts made elsewhere: fitaudit refits nothing
-    action = owner_action(verdict, escalated=escalated, as_of="2026-11-30", days=14, refit_policy="approval" if forecasts else policy, refittable=not forecasts)
+    action = owner_action(
+        verdict,
+        escalated=escalated,
+        as_of="2026-11-30",
+        days=14,
+        refit_policy="approval" if forecasts else policy,
+        refittable=not forecasts,
+    )
     assert words.lower() in action["action"].lower()
     assert action["due"] == "2026-12-14" and action["days"] == 14  # 30 November + 14 days
     if escalated:
@@ -163,7 +228,11 @@ def test_actions_follow_the_verdict_with_a_deadline(verdict, escalated, policy, 
 
 
 def test_pass_needs_no_action_and_unknown_verdicts_are_refused():
-    assert owner_action("pass", as_of="2026-11-30", days=7) == {"action": "None: the model passed.", "due": None, "days": None}
+    assert owner_action("pass", as_of="2026-11-30", days=7) == {
+        "action": "None: the model passed.",
+        "due": None,
+        "days": None,
+    }
     assert owner_action("refit")["due"] is None
     with pytest.raises(Exception, match="unknown verdict 'stale'"):
         owner_action("stale")
@@ -172,12 +241,18 @@ def test_pass_needs_no_action_and_unknown_verdicts_are_refused():
 def test_a_bias_is_said_only_when_clear_of_its_noise_and_the_larger_departure_leads():
     lead = decide_verdict(failing_production(), check("refit"), 0.05)[1][0]
     # bias 0.5 sd over 48 errors with spread ratio 1.9: 0.5 * sqrt(48) / sqrt(1.9) = 2.5 standard errors (common practice: at least 2)
-    assert lead.index("the forecasts ran 6 % high") < lead.index("1.8 times as variable")  # 0.5 sd > sqrt(1.8) - 1 = 0.34
+    assert lead.index("the forecasts ran 6 % high") < lead.index(
+        "1.8 times as variable"
+    )  # 0.5 sd > sqrt(1.8) - 1 = 0.34
     few = failing_production()
     few = dataclasses.replace(few, effects={**few.effects, "since": {**few.effects["since"], "n": 6}})
     lead = decide_verdict(few, check("refit"), 0.05)[1][0]
-    assert "ran" not in lead and "1.8 times as variable" in lead  # 0.5 * sqrt(6) / sqrt(1.9) = 0.9 standard errors: noise
+    assert (
+        "ran" not in lead and "1.8 times as variable" in lead
+    )  # 0.5 * sqrt(6) / sqrt(1.9) = 0.9 standard errors: noise
     wide = failing_production()
     wide = dataclasses.replace(wide, effects={**wide.effects, "variance_ratio": 4.2})
     lead = decide_verdict(wide, check("refit"), 0.05)[1][0]
-    assert lead.index("4.2 times as variable") < lead.index("the forecasts ran 6 % high")  # sqrt(4.2) - 1 = 1.05 > 0.5 sd
+    assert lead.index("4.2 times as variable") < lead.index(
+        "the forecasts ran 6 % high"
+    )  # sqrt(4.2) - 1 = 1.05 > 0.5 sd

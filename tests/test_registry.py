@@ -109,11 +109,23 @@ def test_full_document_parses_every_field():
     assert p.approved_by == "R. Example, Head of Model Risk" and p.justification.startswith("5% per check")
     src = reg.sources["demand"]
     assert (src.uri, src.key, src.time, src.value, src.frequency, src.partitioning) == (
-        "data/demand.parquet", "district", "date", "demand", "D", None)
+        "data/demand.parquet",
+        "district",
+        "date",
+        "demand",
+        "D",
+        None,
+    )
     assert src.exogenous == ("temp_c", "rain_mm")
     north = reg.model("north-demand")
     assert isinstance(north, ModelEntry)
-    assert (north.owner, north.tier, north.source, north.series, north.value) == ("Forecasting team", 2, "demand", "north", "demand")
+    assert (north.owner, north.tier, north.source, north.series, north.value) == (
+        "Forecasting team",
+        2,
+        "demand",
+        "north",
+        "demand",
+    )
     assert north.exogenous == ("temp_c",)
     assert north.spec == {"family": "arima", "order": (1, 0, 1), "seasonal": (0, 1, 1, 7), "trend": "n"}
     assert north.noise_law() == {"law": "student-t", "shape": 5.0}
@@ -122,7 +134,11 @@ def test_full_document_parses_every_field():
     assert north.last_validated == "2026-06-30"
     assert north.line == _line(VALID, "- id: north-demand")
     south = reg.model("south-demand")
-    assert south.noise_law() == {"law": "normal", "shape": None} and south.settings.to_dict() == {} and south.last_validated is None
+    assert (
+        south.noise_law() == {"law": "normal", "shape": None}
+        and south.settings.to_dict() == {}
+        and south.last_validated is None
+    )
     assert south.description == "" and south.exogenous == ()
 
 
@@ -148,8 +164,16 @@ def test_hash_and_to_dict(tmp_path):
 
 def test_policy_defaults_apply_when_keys_are_omitted():
     text = VALID
-    for line in ("  level: 0.05\n", "  multiple_testing: bh\n", "  fdr_q: 0.10\n", "  persistence: {k: 2, n: 3}\n",
-                 "  calibration: simulated\n", "  replicates: 999\n", "  seed: 20261201\n", "  refit_policy: approval\n"):
+    for line in (
+        "  level: 0.05\n",
+        "  multiple_testing: bh\n",
+        "  fdr_q: 0.10\n",
+        "  persistence: {k: 2, n: 3}\n",
+        "  calibration: simulated\n",
+        "  replicates: 999\n",
+        "  seed: 20261201\n",
+        "  refit_policy: approval\n",
+    ):
         text = _edit(line, "", text)
     p = parse_registry(text, FILE).policy
     assert (p.level, p.multiple_testing, p.fdr_q, p.persistence_k, p.persistence_n) == (0.05, "bh", 0.10, 2, 3)
@@ -157,8 +181,13 @@ def test_policy_defaults_apply_when_keys_are_omitted():
 
 
 def test_model_lookup_errors_say_why():
-    reg = parse_registry(_edit("  - id: south-demand\n    owner: Forecasting team\n    tier: 1",
-                               "  - id: south-demand\n    owner: Forecasting team\n    tier: 9"), FILE)
+    reg = parse_registry(
+        _edit(
+            "  - id: south-demand\n    owner: Forecasting team\n    tier: 1",
+            "  - id: south-demand\n    owner: Forecasting team\n    tier: 9",
+        ),
+        FILE,
+    )
     with pytest.raises(KeyError, match="'south-demand' was rejected.*tier"):
         reg.model("south-demand")
     with pytest.raises(KeyError, match="no model 'west'.*'north-demand'"):
@@ -166,7 +195,10 @@ def test_model_lookup_errors_say_why():
 
 
 def test_problem_string_shape():
-    assert str(RegistryProblem("registry.yaml", 14, "models[2].spec.order", "bad")) == "registry.yaml:14: models[2].spec.order: bad"
+    assert (
+        str(RegistryProblem("registry.yaml", 14, "models[2].spec.order", "bad"))
+        == "registry.yaml:14: models[2].spec.order: bad"
+    )
     assert str(RegistryProblem("r.yaml", None, "", "cannot read")) == "r.yaml: cannot read"
 
 
@@ -183,7 +215,9 @@ def test_frequency_set_is_documented():
     assert set(FREQUENCIES) == {"15min", "30min", "h", "D", "B", "W", "MS", "ME", "QS", "QE", "YS", "YE"} | weekly
 
 
-@pytest.mark.parametrize("old, new", [("H", "h"), ("M", "ME"), ("Q", "QE"), ("A", "YE"), ("YS", "YS"), ("W-FRI", "W-FRI")])
+@pytest.mark.parametrize(
+    "old, new", [("H", "h"), ("M", "ME"), ("Q", "QE"), ("A", "YE"), ("YS", "YS"), ("W-FRI", "W-FRI")]
+)
 def test_old_frequency_spellings_read_as_todays(old, new):
     # source: pandas 2.2 release notes (H, M, Q, A deprecated for h, ME, QE, YE)
     reg = parse_registry(_edit("frequency: D", f"frequency: {old}"), FILE)
@@ -205,7 +239,9 @@ def test_dated_uri_and_row_filter():
     import datetime as dt
 
     text = _edit("uri: data/demand.parquet", "uri: 'exports/{as_of:%Y-%m-%d}/demand.parquet'")
-    text = _edit("    partitioning: null\n", "    partitioning: null\n    filter: [[region, in, [n, s]], [x, '>=', 3]]\n", text)
+    text = _edit(
+        "    partitioning: null\n", "    partitioning: null\n    filter: [[region, in, [n, s]], [x, '>=', 3]]\n", text
+    )
     reg = parse_registry(text, FILE)
     assert reg.source_problems == ()
     source = reg.sources["demand"]
@@ -216,14 +252,42 @@ def test_dated_uri_and_row_filter():
     assert "filter" not in parse_registry(VALID, FILE).sources["demand"].to_dict()
 
 
-@pytest.mark.parametrize("old, new, field, message", [
-    ("uri: data/demand.parquet", "uri: 'x/{date}/a.parquet'", "sources.demand.uri", r"may hold only \{as_of\}"),
-    ("uri: data/demand.parquet", "uri: 'x/{as_of/a.parquet'", "sources.demand.uri", r"braces are not a valid template"),
-    ("    partitioning: null\n", "    partitioning: null\n    filter: [[a, '~', 1]]\n", "sources.demand.filter[0]", r"operator '~' is not one of"),
-    ("    partitioning: null\n", "    partitioning: null\n    filter: [[a, in, 3]]\n", "sources.demand.filter[0]", r"must be a non-empty list"),
-    ("    partitioning: null\n", "    partitioning: null\n    filter: [[a, '=']]\n", "sources.demand.filter[0]", r"a list of three"),
-    ("    partitioning: null\n", "    partitioning: null\n    filter: a\n", "sources.demand.filter", r"expected a list of \[column, op, value\] terms"),
-])
+@pytest.mark.parametrize(
+    "old, new, field, message",
+    [
+        ("uri: data/demand.parquet", "uri: 'x/{date}/a.parquet'", "sources.demand.uri", r"may hold only \{as_of\}"),
+        (
+            "uri: data/demand.parquet",
+            "uri: 'x/{as_of/a.parquet'",
+            "sources.demand.uri",
+            r"braces are not a valid template",
+        ),
+        (
+            "    partitioning: null\n",
+            "    partitioning: null\n    filter: [[a, '~', 1]]\n",
+            "sources.demand.filter[0]",
+            r"operator '~' is not one of",
+        ),
+        (
+            "    partitioning: null\n",
+            "    partitioning: null\n    filter: [[a, in, 3]]\n",
+            "sources.demand.filter[0]",
+            r"must be a non-empty list",
+        ),
+        (
+            "    partitioning: null\n",
+            "    partitioning: null\n    filter: [[a, '=']]\n",
+            "sources.demand.filter[0]",
+            r"a list of three",
+        ),
+        (
+            "    partitioning: null\n",
+            "    partitioning: null\n    filter: a\n",
+            "sources.demand.filter",
+            r"expected a list of \[column, op, value\] terms",
+        ),
+    ],
+)
 def test_bad_dated_uri_or_filter(old, new, field, message):
     (problem,) = parse_registry(_edit(old, new), FILE).source_problems
     assert problem.field == field and re.search(message, problem.message), str(problem)
@@ -243,11 +307,14 @@ def test_max_staleness_is_a_source_setting():
     assert problem.line == _line(text, "max_staleness")
 
 
-@pytest.mark.parametrize("frequency, holidays, message", [
-    ("D", "[2026-12-25]", r"holidays apply to business days \(frequency B\) only, not to 'D'"),
-    ("B", "[2026-13-01]", r"expected a date like 2026-12-25"),
-    ("B", "2026-12-25", r"expected a list of dates"),
-])
+@pytest.mark.parametrize(
+    "frequency, holidays, message",
+    [
+        ("D", "[2026-12-25]", r"holidays apply to business days \(frequency B\) only, not to 'D'"),
+        ("B", "[2026-13-01]", r"expected a date like 2026-12-25"),
+        ("B", "2026-12-25", r"expected a list of dates"),
+    ],
+)
 def test_bad_holidays_are_source_problems(frequency, holidays, message):
     text = _edit("frequency: D", f"frequency: {frequency}\n    holidays: {holidays}")
     reg = parse_registry(text, FILE)
@@ -266,29 +333,97 @@ REGISTRY_CASES = [
     ("missing-version", "version: 1\n", "", None, "version", r"missing.*'version: 1'"),
     ("wrong-version", "version: 1\n", "version: 2\n", "version: 2", "version", r"expected 1.*got 2"),
     ("version-as-text", "version: 1\n", "version: '1'\n", "version: '1'", "version", r"expected 1.*got '1'"),
-    ("missing-policy", "policy:\n  level: 0.05\n", "policy_removed:\n  level: 0.05\n", "policy_removed", "policy_removed",
-     r"unknown key 'policy_removed' \(did you mean 'policy'\?\)"),
-    ("blank-justification", 'justification: "5% per check with BH at q = 0.10 bounds false flags across the fleet"',
-     'justification: "  "', "justification", "policy.justification", r"must not be blank"),
-    ("missing-approver", '  approved_by: "R. Example, Head of Model Risk"\n', "", "policy:", "policy.approved_by",
-     r"missing; .*approver"),
-    ("level-out-of-range", "level: 0.05", "level: 0.7", "level: 0.7", "policy.level", r"open interval \(0, 0\.5\), got 0\.7"),
+    (
+        "missing-policy",
+        "policy:\n  level: 0.05\n",
+        "policy_removed:\n  level: 0.05\n",
+        "policy_removed",
+        "policy_removed",
+        r"unknown key 'policy_removed' \(did you mean 'policy'\?\)",
+    ),
+    (
+        "blank-justification",
+        'justification: "5% per check with BH at q = 0.10 bounds false flags across the fleet"',
+        'justification: "  "',
+        "justification",
+        "policy.justification",
+        r"must not be blank",
+    ),
+    (
+        "missing-approver",
+        '  approved_by: "R. Example, Head of Model Risk"\n',
+        "",
+        "policy:",
+        "policy.approved_by",
+        r"missing; .*approver",
+    ),
+    (
+        "level-out-of-range",
+        "level: 0.05",
+        "level: 0.7",
+        "level: 0.7",
+        "policy.level",
+        r"open interval \(0, 0\.5\), got 0\.7",
+    ),
     ("level-nan", "level: 0.05", "level: .nan", "level: .nan", "policy.level", r"open interval \(0, 0\.5\), got nan"),
-    ("unknown-correction", "multiple_testing: bh", "multiple_testing: holm", "holm", "policy.multiple_testing",
-     r"expected one of 'bh', 'by', 'bonferroni', 'none', got 'holm'"),
-    ("persistence-k-above-n", "persistence: {k: 2, n: 3}", "persistence: {k: 4, n: 3}", "persistence", "policy.persistence.k",
-     r"k = 4 exceeds n = 3"),
-    ("too-few-replicates", "replicates: 999", "replicates: 50", "replicates: 50", "policy.replicates", r"integer >= 99, got 50"),
+    (
+        "unknown-correction",
+        "multiple_testing: bh",
+        "multiple_testing: holm",
+        "holm",
+        "policy.multiple_testing",
+        r"expected one of 'bh', 'by', 'bonferroni', 'none', got 'holm'",
+    ),
+    (
+        "persistence-k-above-n",
+        "persistence: {k: 2, n: 3}",
+        "persistence: {k: 4, n: 3}",
+        "persistence",
+        "policy.persistence.k",
+        r"k = 4 exceeds n = 3",
+    ),
+    (
+        "too-few-replicates",
+        "replicates: 999",
+        "replicates: 50",
+        "replicates: 50",
+        "policy.replicates",
+        r"integer >= 99, got 50",
+    ),
     ("negative-seed", "seed: 20261201", "seed: -1", "seed: -1", "policy.seed", r"integer >= 0, got -1"),
-    ("policy-unknown-key", "  fdr_q: 0.10\n", "  fdr_q: 0.10\n  levle: 0.01\n", "levle", "policy.levle",
-     r"unknown key 'levle' \(did you mean 'level'\?\)"),
+    (
+        "policy-unknown-key",
+        "  fdr_q: 0.10\n",
+        "  fdr_q: 0.10\n  levle: 0.01\n",
+        "levle",
+        "policy.levle",
+        r"unknown key 'levle' \(did you mean 'level'\?\)",
+    ),
     ("top-unknown-key", "models:\n", "model:\n", "model:", "model", r"unknown key 'model' \(did you mean 'models'\?\)"),
-    ("models-not-a-list", "models:\n", "models: {first: north-demand}\nold_models:\n", "models:", "models",
-     r"expected a list of model entries"),
-    ("sources-not-a-mapping", "sources:\n  demand:", "sources: [demand]\nunused:\n  demand:", "sources:", "sources",
-     r"expected a mapping of source names"),
-    ("duplicate-top-key", "version: 1\n", "version: 1\nversion: 1\n", "version: 1\nversion", "version",
-     r"duplicate key 'version' \(first given on line 1\)"),
+    (
+        "models-not-a-list",
+        "models:\n",
+        "models: {first: north-demand}\nold_models:\n",
+        "models:",
+        "models",
+        r"expected a list of model entries",
+    ),
+    (
+        "sources-not-a-mapping",
+        "sources:\n  demand:",
+        "sources: [demand]\nunused:\n  demand:",
+        "sources:",
+        "sources",
+        r"expected a mapping of source names",
+    ),
+    (
+        "duplicate-top-key",
+        "version: 1\n",
+        "version: 1\nversion: 1\n",
+        "version: 1\nversion",
+        "version",
+        r"duplicate key 'version' \(first given on line 1\)",
+    ),
 ]
 
 
@@ -402,59 +537,232 @@ NORTH_LINE = _line(VALID, "- id: north-demand")
 
 ENTRY_CASES = [
     # (case id, old (within the south entry), new, needle, field, message pattern)
-    ("unknown-key", "    tier: 1\n", "    tier: 1\n    windw: 3\n", "windw", "models[1].windw",
-     r"unknown key 'windw' \(did you mean 'windows'\?\); valid keys are 'id'"),
-    ("unsafe-id", "id: south-demand", "id: ../../etc/passwd", "../../etc", "models[1].id", r"id '\.\./\.\./etc/passwd' is not allowed"),
-    ("id-with-newline", "id: south-demand", 'id: "south\\n"', 'south\\n', "models[1].id", r"is not allowed"),
-    ("case-duplicate-id", "id: south-demand", "id: North-Demand", "North-Demand", "models[1].id",
-     rf"already used on line {NORTH_LINE} as 'north-demand' \(ids differing only in case"),
-    ("missing-owner", "    owner: Forecasting team\n    tier: 1\n", "    tier: 1\n", "id: south-demand", "models[1].owner",
-     r"missing; required in every model entry"),
+    (
+        "unknown-key",
+        "    tier: 1\n",
+        "    tier: 1\n    windw: 3\n",
+        "windw",
+        "models[1].windw",
+        r"unknown key 'windw' \(did you mean 'windows'\?\); valid keys are 'id'",
+    ),
+    (
+        "unsafe-id",
+        "id: south-demand",
+        "id: ../../etc/passwd",
+        "../../etc",
+        "models[1].id",
+        r"id '\.\./\.\./etc/passwd' is not allowed",
+    ),
+    ("id-with-newline", "id: south-demand", 'id: "south\\n"', "south\\n", "models[1].id", r"is not allowed"),
+    (
+        "case-duplicate-id",
+        "id: south-demand",
+        "id: North-Demand",
+        "North-Demand",
+        "models[1].id",
+        rf"already used on line {NORTH_LINE} as 'north-demand' \(ids differing only in case",
+    ),
+    (
+        "missing-owner",
+        "    owner: Forecasting team\n    tier: 1\n",
+        "    tier: 1\n",
+        "id: south-demand",
+        "models[1].owner",
+        r"missing; required in every model entry",
+    ),
     ("tier-out-of-range", "tier: 1", "tier: 5", "tier: 5", "models[1].tier", r"expected an integer from 1 to 3, got 5"),
-    ("tier-as-text", "tier: 1", "tier: high", "tier: high", "models[1].tier", r"expected an integer from 1 to 3, got 'high'"),
-    ("unknown-source", "source: demand", "source: demnd", "source: demnd", "models[1].source",
-     r"unknown source 'demnd' \(did you mean 'demand'\?\); declared sources are 'demand'"),
-    ("series-boolean", "series: south", "series: NO", "series: NO", "models[1].series",
-     r"got False \(YAML reads the unquoted word 'NO' as a boolean; quote it"),
-    ("unknown-family", "family: arima, order: [0, 1, 1]", "family: prophet", "prophet", "models[1].spec.family",
-     r"Unknown model family 'prophet'; valid families are .*'arima'"),
-    ("missing-family", "{family: arima, order: [0, 1, 1]}", "{order: [0, 1, 1]}", "spec: {order", "models[1].spec.family",
-     r"missing; a spec needs a 'family'"),
-    ("bad-order", "order: [0, 1, 1]", "order: abc", "order: abc", "models[1].spec.order",
-     r"'order' parameter of Arima must be 3 non-negative integers .*Got 'abc'"),
-    ("bad-trend", "order: [0, 1, 1]}", "order: [1, 0, 0], trend: q}", "trend: q", "models[1].spec.trend",
-     r"'trend' parameter of Arima must be one of"),
-    ("unknown-hyperparameter", "order: [0, 1, 1]", "ordr: [0, 1, 1]", "ordr", "models[1].spec.ordr",
-     r"unknown hyperparameter 'ordr' for family 'arima' \(did you mean 'order'\?\)"),
-    ("seasonal-without-period", "order: [0, 1, 1]", "order: [0, 1, 1], seasonal: [1, 0, 0, 1]", "seasonal", "models[1].spec",
-     r"need a period s >= 2"),
-    ("unknown-noise-law", "noise: normal", "noise: gauss", "noise: gauss", "models[1].noise",
-     r"Unknown noise law 'gauss'; valid noise laws are 'normal'"),
-    ("student-t-df-too-small", "noise: normal", "noise: {law: student-t, df: 1}", "student-t", "models[1].noise.law",
-     r"must be a finite number > 2"),
-    ("shape-for-wrong-law", "noise: normal", "noise: {law: normal, df: 5}", "law: normal, df", "models[1].noise.df",
-     r"'df' is the shape of the 'student-t' law, not of 'normal'"),
-    ("noise-unknown-key", "noise: normal", "noise: {law: normal, scale: 2}", "scale", "models[1].noise.scale",
-     r"unknown key 'scale'"),
-    ("undeclared-exogenous", "    series: south\n", "    series: south\n    exogenous: [humidity]\n", "humidity",
-     "models[1].exogenous[0]", r"column 'humidity' is not declared by source 'demand'; its exogenous columns are 'temp_c', 'rain_mm'"),
-    ("audit-longer-than-fit", "windows: {fit: 365, audit: 28}", "windows: {fit: 20, audit: 28}", "fit: 20", "models[1].windows.audit",
-     r"audit window \(28\) is longer than the fit window \(20\); need fit >= audit >= 1"),
-    ("zero-window", "windows: {fit: 365, audit: 28}", "windows: {fit: 365, audit: 0}", "audit: 0", "models[1].windows.audit",
-     r"integer >= 1, got 0"),
-    ("missing-window-key", "windows: {fit: 365, audit: 28}", "windows: {fit: 365}", "windows: {fit: 365}", "models[1].windows.audit",
-     r"missing; windows need fit and audit"),
-    ("settings-unknown-key", "    windows: {fit: 365, audit: 28}\n", "    windows: {fit: 365, audit: 28}\n    settings: {seed: 3}\n",
-     "settings", "models[1].settings.seed", r"unknown key 'seed'; valid keys are 'level', 'calibration', 'replicates'"),
-    ("settings-replicates", "    windows: {fit: 365, audit: 28}\n", "    windows: {fit: 365, audit: 28}\n    settings: {replicates: 10}\n",
-     "settings", "models[1].settings.replicates", r"integer >= 99, got 10"),
-    ("bad-date", "    windows: {fit: 365, audit: 28}\n", "    windows: {fit: 365, audit: 28}\n    last_validated: last week\n",
-     "last_validated", "models[1].last_validated", r"expected a date like 2026-06-30, got 'last week'"),
-    ("value-is-key", "    series: south\n", "    series: south\n    value: district\n", "value: district", "models[1].value",
-     r"'district' is the source's key or time column"),
-    ("entry-not-a-mapping", SOUTH, "  - just a string\n", "just a string", "models[1]", r"expected a mapping with id, owner"),
-    ("merge-key", "    tier: 1\n", "    tier: 1\n    <<: {owner: x}\n", "<<", "models[1].<key>", r"merge keys \('<<'\) are not supported"),
-    ("non-text-key", "    tier: 1\n", "    tier: 1\n    3: x\n", "3: x", "models[1].<key>", r"keys must be text, got 3"),
+    (
+        "tier-as-text",
+        "tier: 1",
+        "tier: high",
+        "tier: high",
+        "models[1].tier",
+        r"expected an integer from 1 to 3, got 'high'",
+    ),
+    (
+        "unknown-source",
+        "source: demand",
+        "source: demnd",
+        "source: demnd",
+        "models[1].source",
+        r"unknown source 'demnd' \(did you mean 'demand'\?\); declared sources are 'demand'",
+    ),
+    (
+        "series-boolean",
+        "series: south",
+        "series: NO",
+        "series: NO",
+        "models[1].series",
+        r"got False \(YAML reads the unquoted word 'NO' as a boolean; quote it",
+    ),
+    (
+        "unknown-family",
+        "family: arima, order: [0, 1, 1]",
+        "family: prophet",
+        "prophet",
+        "models[1].spec.family",
+        r"Unknown model family 'prophet'; valid families are .*'arima'",
+    ),
+    (
+        "missing-family",
+        "{family: arima, order: [0, 1, 1]}",
+        "{order: [0, 1, 1]}",
+        "spec: {order",
+        "models[1].spec.family",
+        r"missing; a spec needs a 'family'",
+    ),
+    (
+        "bad-order",
+        "order: [0, 1, 1]",
+        "order: abc",
+        "order: abc",
+        "models[1].spec.order",
+        r"'order' parameter of Arima must be 3 non-negative integers .*Got 'abc'",
+    ),
+    (
+        "bad-trend",
+        "order: [0, 1, 1]}",
+        "order: [1, 0, 0], trend: q}",
+        "trend: q",
+        "models[1].spec.trend",
+        r"'trend' parameter of Arima must be one of",
+    ),
+    (
+        "unknown-hyperparameter",
+        "order: [0, 1, 1]",
+        "ordr: [0, 1, 1]",
+        "ordr",
+        "models[1].spec.ordr",
+        r"unknown hyperparameter 'ordr' for family 'arima' \(did you mean 'order'\?\)",
+    ),
+    (
+        "seasonal-without-period",
+        "order: [0, 1, 1]",
+        "order: [0, 1, 1], seasonal: [1, 0, 0, 1]",
+        "seasonal",
+        "models[1].spec",
+        r"need a period s >= 2",
+    ),
+    (
+        "unknown-noise-law",
+        "noise: normal",
+        "noise: gauss",
+        "noise: gauss",
+        "models[1].noise",
+        r"Unknown noise law 'gauss'; valid noise laws are 'normal'",
+    ),
+    (
+        "student-t-df-too-small",
+        "noise: normal",
+        "noise: {law: student-t, df: 1}",
+        "student-t",
+        "models[1].noise.law",
+        r"must be a finite number > 2",
+    ),
+    (
+        "shape-for-wrong-law",
+        "noise: normal",
+        "noise: {law: normal, df: 5}",
+        "law: normal, df",
+        "models[1].noise.df",
+        r"'df' is the shape of the 'student-t' law, not of 'normal'",
+    ),
+    (
+        "noise-unknown-key",
+        "noise: normal",
+        "noise: {law: normal, scale: 2}",
+        "scale",
+        "models[1].noise.scale",
+        r"unknown key 'scale'",
+    ),
+    (
+        "undeclared-exogenous",
+        "    series: south\n",
+        "    series: south\n    exogenous: [humidity]\n",
+        "humidity",
+        "models[1].exogenous[0]",
+        r"column 'humidity' is not declared by source 'demand'; its exogenous columns are 'temp_c', 'rain_mm'",
+    ),
+    (
+        "audit-longer-than-fit",
+        "windows: {fit: 365, audit: 28}",
+        "windows: {fit: 20, audit: 28}",
+        "fit: 20",
+        "models[1].windows.audit",
+        r"audit window \(28\) is longer than the fit window \(20\); need fit >= audit >= 1",
+    ),
+    (
+        "zero-window",
+        "windows: {fit: 365, audit: 28}",
+        "windows: {fit: 365, audit: 0}",
+        "audit: 0",
+        "models[1].windows.audit",
+        r"integer >= 1, got 0",
+    ),
+    (
+        "missing-window-key",
+        "windows: {fit: 365, audit: 28}",
+        "windows: {fit: 365}",
+        "windows: {fit: 365}",
+        "models[1].windows.audit",
+        r"missing; windows need fit and audit",
+    ),
+    (
+        "settings-unknown-key",
+        "    windows: {fit: 365, audit: 28}\n",
+        "    windows: {fit: 365, audit: 28}\n    settings: {seed: 3}\n",
+        "settings",
+        "models[1].settings.seed",
+        r"unknown key 'seed'; valid keys are 'level', 'calibration', 'replicates'",
+    ),
+    (
+        "settings-replicates",
+        "    windows: {fit: 365, audit: 28}\n",
+        "    windows: {fit: 365, audit: 28}\n    settings: {replicates: 10}\n",
+        "settings",
+        "models[1].settings.replicates",
+        r"integer >= 99, got 10",
+    ),
+    (
+        "bad-date",
+        "    windows: {fit: 365, audit: 28}\n",
+        "    windows: {fit: 365, audit: 28}\n    last_validated: last week\n",
+        "last_validated",
+        "models[1].last_validated",
+        r"expected a date like 2026-06-30, got 'last week'",
+    ),
+    (
+        "value-is-key",
+        "    series: south\n",
+        "    series: south\n    value: district\n",
+        "value: district",
+        "models[1].value",
+        r"'district' is the source's key or time column",
+    ),
+    (
+        "entry-not-a-mapping",
+        SOUTH,
+        "  - just a string\n",
+        "just a string",
+        "models[1]",
+        r"expected a mapping with id, owner",
+    ),
+    (
+        "merge-key",
+        "    tier: 1\n",
+        "    tier: 1\n    <<: {owner: x}\n",
+        "<<",
+        "models[1].<key>",
+        r"merge keys \('<<'\) are not supported",
+    ),
+    (
+        "non-text-key",
+        "    tier: 1\n",
+        "    tier: 1\n    3: x\n",
+        "3: x",
+        "models[1].<key>",
+        r"keys must be text, got 3",
+    ),
 ]
 
 
@@ -510,8 +818,11 @@ def test_broken_source_is_dropped_and_its_models_rejected(tmp_path):
     assert re.search(r"expected one of '15min', .* got 'daily'", reg.source_problems[0].message)
     for rejected in reg.rejected:
         problem = next(p for p in rejected.problems if p.field.endswith(".source"))
-        assert re.search(r"source 'demand' has 1 problem\(s\) and was dropped; first: registry\.yaml:\d+: "
-                         r"sources\.demand\.frequency", problem.message)
+        assert re.search(
+            r"source 'demand' has 1 problem\(s\) and was dropped; first: registry\.yaml:\d+: "
+            r"sources\.demand\.frequency",
+            problem.message,
+        )
     path = tmp_path / FILE
     path.write_text(text, encoding="utf-8")
     all_fields = [p.field for p in check_registry(path)]
@@ -519,17 +830,62 @@ def test_broken_source_is_dropped_and_its_models_rejected(tmp_path):
 
 
 SOURCE_CASES = [
-    ("source-unknown-key", "    partitioning: null\n", "    partitioning: null\n    format: parquet\n", "format",
-     "sources.demand.format", r"unknown key 'format'"),
-    ("source-missing-uri", "    uri: data/demand.parquet\n", "", "  demand:", "sources.demand.uri", r"missing; a source needs 'uri'"),
-    ("source-bad-partitioning", "partitioning: null", "partitioning: directory", "directory", "sources.demand.partitioning",
-     r"expected one of 'hive'"),
-    ("source-frequency-case", "frequency: D", "frequency: d", "frequency: d", "sources.demand.frequency", r"did you mean 'D'\?"),
-    ("source-same-columns", "value: demand", "value: district", "  demand:", "sources.demand",
-     r"key, time and value must be three different columns"),
-    ("source-exogenous-not-list", "exogenous: [temp_c, rain_mm]", "exogenous: temp_c", "exogenous: temp_c",
-     "sources.demand.exogenous", r"expected a list of column names"),
-    ("source-unsafe-name", "  demand:\n", "  ../demand:\n", "../demand", "sources.../demand", r"source name '\.\./demand' is not allowed"),
+    (
+        "source-unknown-key",
+        "    partitioning: null\n",
+        "    partitioning: null\n    format: parquet\n",
+        "format",
+        "sources.demand.format",
+        r"unknown key 'format'",
+    ),
+    (
+        "source-missing-uri",
+        "    uri: data/demand.parquet\n",
+        "",
+        "  demand:",
+        "sources.demand.uri",
+        r"missing; a source needs 'uri'",
+    ),
+    (
+        "source-bad-partitioning",
+        "partitioning: null",
+        "partitioning: directory",
+        "directory",
+        "sources.demand.partitioning",
+        r"expected one of 'hive'",
+    ),
+    (
+        "source-frequency-case",
+        "frequency: D",
+        "frequency: d",
+        "frequency: d",
+        "sources.demand.frequency",
+        r"did you mean 'D'\?",
+    ),
+    (
+        "source-same-columns",
+        "value: demand",
+        "value: district",
+        "  demand:",
+        "sources.demand",
+        r"key, time and value must be three different columns",
+    ),
+    (
+        "source-exogenous-not-list",
+        "exogenous: [temp_c, rain_mm]",
+        "exogenous: temp_c",
+        "exogenous: temp_c",
+        "sources.demand.exogenous",
+        r"expected a list of column names",
+    ),
+    (
+        "source-unsafe-name",
+        "  demand:\n",
+        "  ../demand:\n",
+        "../demand",
+        "sources.../demand",
+        r"source name '\.\./demand' is not allowed",
+    ),
 ]
 
 
@@ -565,9 +921,16 @@ def test_entry_builds_its_audit_settings_and_noise_law():
     reg = parse_registry(VALID, FILE)
     north, south = reg.model("north-demand"), reg.model("south-demand")
     # the entry's overrides (replicates 499, bootstrap), the policy's level and seed, the entry's audit window
-    assert north.audit_settings(reg.policy) == AuditSettings(level=0.05, calibration="bootstrap", replicates=499, seed=20261201, audit_window=28)
-    assert south.audit_settings(reg.policy) == AuditSettings(level=0.05, calibration="simulated", replicates=999, seed=20261201, audit_window=28)
-    assert north.noise_law() == {"law": "student-t", "shape": 5.0} and south.noise_law() == {"law": "normal", "shape": None}
+    assert north.audit_settings(reg.policy) == AuditSettings(
+        level=0.05, calibration="bootstrap", replicates=499, seed=20261201, audit_window=28
+    )
+    assert south.audit_settings(reg.policy) == AuditSettings(
+        level=0.05, calibration="simulated", replicates=999, seed=20261201, audit_window=28
+    )
+    assert north.noise_law() == {"law": "student-t", "shape": 5.0} and south.noise_law() == {
+        "law": "normal",
+        "shape": None,
+    }
 
 
 def test_entry_survives_its_plain_view():
@@ -592,10 +955,15 @@ def test_policy_partitions_reach_the_audit_settings():
     reg = parse_registry(text, FILE)
     assert reg.policy.partitions == chosen == reg.model("south-demand").audit_settings(reg.policy).partitions
     with pytest.raises(RegistryError) as info:
-        parse_registry(_edit("  seed: 20261201\n", f"  seed: 20261201\n  partitions: [{PARTITION_KINDS[0].upper()}]\n"), FILE)
+        parse_registry(
+            _edit("  seed: 20261201\n", f"  seed: 20261201\n  partitions: [{PARTITION_KINDS[0].upper()}]\n"), FILE
+        )
     (problem,) = info.value.problems
     assert problem.field == "policy.partitions[0]" and problem.line == _line(VALID, "seed:") + 1
-    assert re.search(rf"expected one of .*got '{PARTITION_KINDS[0].upper()}' \(did you mean '{PARTITION_KINDS[0]}'\?\)", problem.message)
+    assert re.search(
+        rf"expected one of .*got '{PARTITION_KINDS[0].upper()}' \(did you mean '{PARTITION_KINDS[0]}'\?\)",
+        problem.message,
+    )
 
 
 def test_setting_bounds_come_from_the_vocabulary():
@@ -604,18 +972,25 @@ def test_setting_bounds_come_from_the_vocabulary():
     from fitaudit.core.vocabulary import SETTING_BOUNDS
 
     lowest = SETTING_BOUNDS["replicates"][0].left
-    for where, old, line in (("policy", "  replicates: 999\n", "  replicates: {}\n"),
-                             ("models[0].settings", "replicates: 499,", "replicates: {},")):
+    for where, old, line in (
+        ("policy", "  replicates: 999\n", "  replicates: {}\n"),
+        ("models[0].settings", "replicates: 499,", "replicates: {},"),
+    ):
         reg = parse_registry(_edit(old, line.format(lowest)), FILE)
         assert reg.rejected == ()
         text = _edit(old, line.format(lowest - 1))
         problems = check_registry_text(text)
-        assert [p.message for p in problems if p.field == f"{where}.replicates"] == [f"expected an integer >= {lowest}, got {lowest - 1}"]
+        assert [p.message for p in problems if p.field == f"{where}.replicates"] == [
+            f"expected an integer >= {lowest}, got {lowest - 1}"
+        ]
     schema = registry_json_schema()["$defs"]
     assert schema["Policy"]["properties"]["replicates"]["minimum"] == lowest
     assert schema["ModelSettings"]["properties"]["replicates"]["minimum"] == lowest
     level = SETTING_BOUNDS["level"][0]
-    assert (schema["Policy"]["properties"]["level"]["exclusiveMinimum"], schema["Policy"]["properties"]["level"]["exclusiveMaximum"]) == (level.left, level.right)
+    assert (
+        schema["Policy"]["properties"]["level"]["exclusiveMinimum"],
+        schema["Policy"]["properties"]["level"]["exclusiveMaximum"],
+    ) == (level.left, level.right)
 
 
 def check_registry_text(text: str) -> list[RegistryProblem]:
@@ -637,11 +1012,13 @@ def test_json_schema_describes_what_the_parser_accepts():
     assert list(validator.iter_errors(valid)) == []
     example = (pathlib.Path(__file__).resolve().parents[1] / "examples" / "registry.yaml").read_text()
     assert list(validator.iter_errors(json.loads(json.dumps(yaml.safe_load(example), default=str)))) == []
-    for old, new, where in (("    tier: 1\n", "    tier: 1\n    windw: 3\n", ["models", 1]),
-                            ("tier: 1", "tier: 5", ["models", 1, "tier"]),
-                            ("frequency: D", "frequency: daily", ["sources", "demand", "frequency"]),
-                            ("  fdr_q: 0.10\n", "  fdr_q: 0.10\n  levle: 0.01\n", ["policy"]),
-                            ("noise: normal", "noise: gauss", ["models", 1, "noise"])):
+    for old, new, where in (
+        ("    tier: 1\n", "    tier: 1\n    windw: 3\n", ["models", 1]),
+        ("tier: 1", "tier: 5", ["models", 1, "tier"]),
+        ("frequency: D", "frequency: daily", ["sources", "demand", "frequency"]),
+        ("  fdr_q: 0.10\n", "  fdr_q: 0.10\n  levle: 0.01\n", ["policy"]),
+        ("noise: normal", "noise: gauss", ["models", 1, "noise"]),
+    ):
         broken = json.loads(json.dumps(yaml.safe_load(_edit(old, new)), default=str))
         errors = list(validator.iter_errors(broken))
         assert len(errors) == 1 and list(jsonschema.exceptions.best_match(errors).absolute_path) == where, new
@@ -674,10 +1051,60 @@ def test_fields_the_loader_fills_in_are_unknown_keys_in_the_yaml():
 # ------------------------------------------------------------------------------------------
 # property: random documents never crash the parser
 # ------------------------------------------------------------------------------------------
-_WORDS = ["version", "policy", "sources", "models", "id", "spec", "family", "arima", "noise", "windows", "fit",
-          "audit", "level", "uri", "key", "time", "value", "frequency", "D", "-", ":", "[", "]", "{", "}", ",",
-          "&a", "*a", "!!int", "!!str", "!x", "<<", "'", '"', "#", "|", ">", "?", "1", "0.5", "-3", "yes", "~",
-          "2026-02-30", "\n", "\n  ", "\n    ", "\t", " ", "é", "\u202e", "1e999"]
+_WORDS = [
+    "version",
+    "policy",
+    "sources",
+    "models",
+    "id",
+    "spec",
+    "family",
+    "arima",
+    "noise",
+    "windows",
+    "fit",
+    "audit",
+    "level",
+    "uri",
+    "key",
+    "time",
+    "value",
+    "frequency",
+    "D",
+    "-",
+    ":",
+    "[",
+    "]",
+    "{",
+    "}",
+    ",",
+    "&a",
+    "*a",
+    "!!int",
+    "!!str",
+    "!x",
+    "<<",
+    "'",
+    '"',
+    "#",
+    "|",
+    ">",
+    "?",
+    "1",
+    "0.5",
+    "-3",
+    "yes",
+    "~",
+    "2026-02-30",
+    "\n",
+    "\n  ",
+    "\n    ",
+    "\t",
+    " ",
+    "é",
+    "\u202e",
+    "1e999",
+]
 
 
 def _outcome(text: str) -> None:
@@ -695,14 +1122,52 @@ def test_random_token_soup_never_crashes(text):
     _outcome(text)
 
 
-_scalars = st.one_of(st.none(), st.booleans(), st.integers(-10**6, 10**6), st.floats(allow_nan=True),
-                     st.text(max_size=12), st.sampled_from(["arima", "normal", "student-t", "D", "demand", "north"]))
-_keys = st.one_of(st.sampled_from(["version", "policy", "sources", "models", "id", "owner", "tier", "source", "series",
-                                   "spec", "family", "order", "noise", "law", "df", "windows", "fit", "audit", "level",
-                                   "justification", "approved_by", "uri", "key", "time", "value", "frequency"]),
-                  st.text(max_size=8))
-_trees = st.recursive(_scalars, lambda inner: st.one_of(st.lists(inner, max_size=4), st.dictionaries(_keys, inner, max_size=5)),
-                      max_leaves=25)
+_scalars = st.one_of(
+    st.none(),
+    st.booleans(),
+    st.integers(-(10**6), 10**6),
+    st.floats(allow_nan=True),
+    st.text(max_size=12),
+    st.sampled_from(["arima", "normal", "student-t", "D", "demand", "north"]),
+)
+_keys = st.one_of(
+    st.sampled_from(
+        [
+            "version",
+            "policy",
+            "sources",
+            "models",
+            "id",
+            "owner",
+            "tier",
+            "source",
+            "series",
+            "spec",
+            "family",
+            "order",
+            "noise",
+            "law",
+            "df",
+            "windows",
+            "fit",
+            "audit",
+            "level",
+            "justification",
+            "approved_by",
+            "uri",
+            "key",
+            "time",
+            "value",
+            "frequency",
+        ]
+    ),
+    st.text(max_size=8),
+)
+_trees = st.recursive(
+    _scalars,
+    lambda inner: st.one_of(st.lists(inner, max_size=4), st.dictionaries(_keys, inner, max_size=5)),
+    max_leaves=25,
+)
 
 
 @settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])

@@ -47,7 +47,13 @@ META = {
     "code_commit": "292b527",
     "prefect_version": "3.9.0",
 }
-POLICY = {"level": 0.05, "multiple_testing": "bh", "fdr_q": 0.10, "justification": "weekly audit policy", "approved_by": "model-risk committee"}
+POLICY = {
+    "level": 0.05,
+    "multiple_testing": "bh",
+    "fdr_q": 0.10,
+    "justification": "weekly audit policy",
+    "approved_by": "model-risk committee",
+}
 
 
 # ----------------------------------------------------------------------------------------------
@@ -63,7 +69,10 @@ def _ar1(rng: np.random.Generator, n: int, phi: float = 0.6) -> np.ndarray:
 
 def _history(*verdicts: str) -> list[dict]:
     start = dt.date(2026, 11, 30) - dt.timedelta(weeks=len(verdicts))
-    return [{"as_of": (start + dt.timedelta(weeks=k)).isoformat(), "verdict": v, "r_max": 0.7 + 0.05 * k, "p_value": 0.4} for k, v in enumerate(verdicts)]
+    return [
+        {"as_of": (start + dt.timedelta(weeks=k)).isoformat(), "verdict": v, "r_max": 0.7 + 0.05 * k, "p_value": 0.4}
+        for k, v in enumerate(verdicts)
+    ]
 
 
 def build_fixture_document() -> dict:
@@ -86,29 +95,67 @@ def build_fixture_document() -> dict:
         trend = np.cumsum(rng.standard_normal(200)) + 0.1 * np.arange(200)
         cases.append(("trend-ets", trend, ExpSmoothing(trend="add"), None, _history(*["pass"] * 9)))
     days = lambda n: np.arange(np.datetime64("2026-11-30") - n + 1, np.datetime64("2026-11-30") + 1)  # noqa: E731 (daily, ending at the as-of date)
-    results = [audit_series(series, spec, production=prod, settings=settings, label=name, timestamps=days(len(series))) for name, series, spec, prod, _ in cases]
-    results = apply_fleet_rules(results, q=POLICY["fdr_q"], histories=[[h["verdict"] for h in hist] for *_, hist in cases])
+    results = [
+        audit_series(series, spec, production=prod, settings=settings, label=name, timestamps=days(len(series)))
+        for name, series, spec, prod, _ in cases
+    ]
+    results = apply_fleet_rules(
+        results, q=POLICY["fdr_q"], histories=[[h["verdict"] for h in hist] for *_, hist in cases]
+    )
     records = []
     for (name, series, spec, prod, hist), res in zip(cases, results):
-        entry = {"id": name, "safe_id": name, "owner": "forecasting-team", "tier": 2, "description": f"Weekly demand, {name}",
-                 "source": "demo", "series": name}
+        entry = {
+            "id": name,
+            "safe_id": name,
+            "owner": "forecasting-team",
+            "tier": 2,
+            "description": f"Weekly demand, {name}",
+            "source": "demo",
+            "series": name,
+        }
         candidates = None
         if res.verdict == "respecify":
             entry["owner"] = ATTRIBUTE_BREAKER
             entry["description"] = RLO + "reversed " + LONG
             candidates = [{"spec_text": "ARIMA(0,1,1)" + HOSTILE, "noise": "student-t", "r_max": 0.91, "p_value": 0.21}]
-        records.append(model_record(
-            entry, as_of=AS_OF, verdict=res.verdict, reasons=res.reasons, audit=res.to_dict(), spec_text=spec.describe(),
-            lineage={"extract": {"digest": "ab" * 32, "rows": int(series.size), "columns": ["value", "<img src=x>"]}, "windows": {"audit": 60}},
-            settings=settings.to_dict(),
-            production_version={"version": 3, "sha256": "cd" * 32, "created_at": "2026-10-01T00:00:00Z"} if prod else None,
-            history=hist, candidates=candidates, escalated=res.escalated,
-        ))
-    records.append(model_record(  # a registry entry that never reached the audit
-        {"id": HOSTILE, "safe_id": "entry-7", "owner": None}, as_of=AS_OF, verdict="error",
-        reasons=[f"models[6].id: {HOSTILE!s} is not a usable id; use letters, digits, '.', '_' or '-'."], audit=None, spec_text="unknown",
-    ))
-    doc = build_results(as_of=AS_OF, registry={"path": "registry.yaml", "sha256": "ef" * 32}, policy=POLICY, records=records, tool_version="0.1.0")
+        records.append(
+            model_record(
+                entry,
+                as_of=AS_OF,
+                verdict=res.verdict,
+                reasons=res.reasons,
+                audit=res.to_dict(),
+                spec_text=spec.describe(),
+                lineage={
+                    "extract": {"digest": "ab" * 32, "rows": int(series.size), "columns": ["value", "<img src=x>"]},
+                    "windows": {"audit": 60},
+                },
+                settings=settings.to_dict(),
+                production_version={"version": 3, "sha256": "cd" * 32, "created_at": "2026-10-01T00:00:00Z"}
+                if prod
+                else None,
+                history=hist,
+                candidates=candidates,
+                escalated=res.escalated,
+            )
+        )
+    records.append(
+        model_record(  # a registry entry that never reached the audit
+            {"id": HOSTILE, "safe_id": "entry-7", "owner": None},
+            as_of=AS_OF,
+            verdict="error",
+            reasons=[f"models[6].id: {HOSTILE!s} is not a usable id; use letters, digits, '.', '_' or '-'."],
+            audit=None,
+            spec_text="unknown",
+        )
+    )
+    doc = build_results(
+        as_of=AS_OF,
+        registry={"path": "registry.yaml", "sha256": "ef" * 32},
+        policy=POLICY,
+        records=records,
+        tool_version="0.1.0",
+    )
     return json.loads(json.dumps(doc))  # exactly what results.json holds
 
 
@@ -233,14 +280,16 @@ def printed_matches(printed: str, value) -> bool:
     if "e" in printed:
         mantissa = printed.split("e")[0]
         decimals = len(mantissa.split(".")[1]) if "." in mantissa else 0
-        return math.isclose(float(printed), value, rel_tol=0.51 * 10.0 ** -decimals)
+        return math.isclose(float(printed), value, rel_tol=0.51 * 10.0**-decimals)
     decimals = len(printed.split(".")[1]) if "." in printed else 0
-    return abs(float(printed) - value) <= 0.5 * 10.0 ** -decimals * (1 + 1e-9)
+    return abs(float(printed) - value) <= 0.5 * 10.0**-decimals * (1 + 1e-9)
 
 
 def test_printed_matches_helper_can_fail():
     assert printed_matches("0.738", 0.73812) and printed_matches("184", 184.2) and printed_matches("< 0.001", 0.0005)
-    assert not printed_matches("0.74", 0.7312) and not printed_matches("< 0.001", 0.01) and not printed_matches("n/a", 0.3)
+    assert (
+        not printed_matches("0.74", 0.7312) and not printed_matches("< 0.001", 0.01) and not printed_matches("n/a", 0.3)
+    )
 
 
 # ----------------------------------------------------------------------------------------------
@@ -262,22 +311,48 @@ def test_every_page_has_language_title_and_charset(dom):
         assert any(m.attrs.get("charset", "").lower() == "utf-8" for m in root.iter("meta")), name
 
 
-RESOURCE_TAGS = {"script", "img", "link", "iframe", "frame", "object", "embed", "audio", "video", "source", "track", "base", "form", "input", "image", "use", "foreignobject"}
+RESOURCE_TAGS = {
+    "script",
+    "img",
+    "link",
+    "iframe",
+    "frame",
+    "object",
+    "embed",
+    "audio",
+    "video",
+    "source",
+    "track",
+    "base",
+    "form",
+    "input",
+    "image",
+    "use",
+    "foreignobject",
+}
 
 
-def _check_self_contained(name: str, root: Node, raw: str, targets: dict[str, Node], archive_links: bool = False) -> None:
+def _check_self_contained(
+    name: str, root: Node, raw: str, targets: dict[str, Node], archive_links: bool = False
+) -> None:
     for node in root.iter():
         assert node.tag not in RESOURCE_TAGS, f"{name}: <{node.tag}> loads or runs something"
         for attr, value in node.attrs.items():
             assert not attr.startswith("on"), f"{name}: event handler attribute {attr}"
-            assert attr not in ("src", "srcset", "xlink:href", "action", "formaction", "poster", "data"), f"{name}: {attr}={value!r}"
+            assert attr not in ("src", "srcset", "xlink:href", "action", "formaction", "poster", "data"), (
+                f"{name}: {attr}={value!r}"
+            )
         if "href" in node.attrs:
             href = node.attrs["href"]
             assert node.tag == "a", f"{name}: href on <{node.tag}>"
-            assert not re.match(r"^[a-zA-Z][a-zA-Z0-9+.-]*:", href) and not href.startswith(("/", "\\")), f"{name}: external link {href!r}"
+            assert not re.match(r"^[a-zA-Z][a-zA-Z0-9+.-]*:", href) and not href.startswith(("/", "\\")), (
+                f"{name}: external link {href!r}"
+            )
             path, _, fragment = href.partition("#")
             if archive_links:
-                assert re.fullmatch(r"runs/\d{4}/[A-Za-z0-9][A-Za-z0-9_.-]*/index\.html", path) or (not path and fragment), href
+                assert re.fullmatch(r"runs/\d{4}/[A-Za-z0-9][A-Za-z0-9_.-]*/index\.html", path) or (
+                    not path and fragment
+                ), href
                 continue
             target_name = posixpath.normpath(posixpath.join(posixpath.dirname(name), path)) if path else name
             assert target_name in targets, f"{name}: link {href!r} leaves the run's pages"
@@ -295,7 +370,9 @@ def test_pages_are_self_contained(pages, dom):
 
 
 def test_self_containment_check_can_fail(dom):
-    bad = parse(b'<!DOCTYPE html><html lang="en"><head><title>x</title></head><body><a href="https://example.org/">x</a></body></html>')
+    bad = parse(
+        b'<!DOCTYPE html><html lang="en"><head><title>x</title></head><body><a href="https://example.org/">x</a></body></html>'
+    )
     with pytest.raises(AssertionError, match="external link"):
         _check_self_contained("index.html", bad, "", dom)
 
@@ -331,7 +408,9 @@ def test_every_chart_has_a_text_alternative(dom):
         for fig in root.iter("figure"):
             assert any(c.tag == "figcaption" and c.text().strip() for c in fig.elements()), name
             if name.startswith("models/"):
-                assert next(fig.iter("table"), None) is not None, f"{name}: figure {fig.attrs.get('id')} has no data table"
+                assert next(fig.iter("table"), None) is not None, (
+                    f"{name}: figure {fig.attrs.get('id')} has no data table"
+                )
     assert svgs >= 10
 
 
@@ -347,14 +426,18 @@ def test_status_is_shown_by_symbol_and_word(dom, doc):
                 coloured += 1
                 symbol, word = STATUS[key]
                 text = node.text()
-                assert symbol in text and word in text, f"{name}: status colour {key} on {text!r} without symbol and word"
+                assert symbol in text and word in text, (
+                    f"{name}: status colour {key} on {text!r} without symbol and word"
+                )
     assert coloured > len(doc["models"]) * 3
     run = dom["index.html"]
     headers = [th.text().strip() for th in next(run.find_id("counts").iter("thead")).iter("th")]
     assert headers[2:] == [f"{s} {w}" for s, w in STATUS.values()]
 
 
-CSS_CONTRAST_SOURCE = "WCAG 2.1: definitions of relative luminance and contrast ratio; SC 1.4.3 (4.5:1) and SC 1.4.11 (3:1)"
+CSS_CONTRAST_SOURCE = (
+    "WCAG 2.1: definitions of relative luminance and contrast ratio; SC 1.4.3 (4.5:1) and SC 1.4.11 (3:1)"
+)
 
 
 def _relative_luminance(hex_colour: str) -> float:
@@ -380,9 +463,15 @@ def _palette(css: str) -> dict[str, str]:
 
 
 def test_contrast_formula_matches_the_definition():
-    assert _contrast("#000000", "#ffffff") == pytest.approx(21.0)  # source: WCAG 2.1 contrast ratio (ranges from 1 to 21)
-    assert _contrast("#777777", "#777777") == pytest.approx(1.0)  # source: WCAG 2.1 contrast ratio (equal colours give 1)
-    assert _contrast("#767676", "#ffffff") == pytest.approx(4.54, abs=0.01)  # from memory: #767676 is the lightest grey passing 4.5:1 on white
+    assert _contrast("#000000", "#ffffff") == pytest.approx(
+        21.0
+    )  # source: WCAG 2.1 contrast ratio (ranges from 1 to 21)
+    assert _contrast("#777777", "#777777") == pytest.approx(
+        1.0
+    )  # source: WCAG 2.1 contrast ratio (equal colours give 1)
+    assert _contrast("#767676", "#ffffff") == pytest.approx(
+        4.54, abs=0.01
+    )  # from memory: #767676 is the lightest grey passing 4.5:1 on white
 
 
 def test_palette_contrast_meets_wcag_aa():
@@ -395,7 +484,13 @@ def test_palette_contrast_meets_wcag_aa():
     # the scale's cells sit inside a framed map (see report.css); the grey cells must stand out from the page
     symbol_cells = {k: v for k, v in heats.items() if k in ("heat-inf", "heat-na")}
     ink = {"over-ink": palette["over-ink"]}
-    for fg_group, bg_group, need in ((inks, bgs, 4.5), (marks, bgs, 3.0), (symbol_cells, bgs, 3.0), (ink, heats, 3.0), (ink, {"over-halo": palette["over-halo"]}, 4.5)):
+    for fg_group, bg_group, need in (
+        (inks, bgs, 4.5),
+        (marks, bgs, 3.0),
+        (symbol_cells, bgs, 3.0),
+        (ink, heats, 3.0),
+        (ink, {"over-halo": palette["over-halo"]}, 4.5),
+    ):
         for f, fc in fg_group.items():
             for b, bc in bg_group.items():
                 if _contrast(fc, bc) < need:
@@ -413,7 +508,11 @@ def _lab(hex_colour: str, simulate: np.ndarray | None = None) -> np.ndarray:
     lin = np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
     if simulate is not None:
         lin = np.clip(simulate @ lin, 0.0, 1.0)
-    xyz = np.array([[0.4124, 0.3576, 0.1805], [0.2126, 0.7152, 0.0722], [0.0193, 0.1192, 0.9505]]) @ lin / np.array([0.95047, 1.0, 1.08883])
+    xyz = (
+        np.array([[0.4124, 0.3576, 0.1805], [0.2126, 0.7152, 0.0722], [0.0193, 0.1192, 0.9505]])
+        @ lin
+        / np.array([0.95047, 1.0, 1.08883])
+    )
     f = np.where(xyz > (6 / 29) ** 3, np.cbrt(xyz), xyz / (3 * (6 / 29) ** 2) + 4 / 29)
     return np.array([116 * f[1] - 16, 500 * (f[0] - f[1]), 200 * (f[1] - f[2])])
 
@@ -421,9 +520,15 @@ def _lab(hex_colour: str, simulate: np.ndarray | None = None) -> np.ndarray:
 # from memory: Machado, Oliveira and Fernandes (2009), "A physiologically-based model for simulation of
 # color vision deficiency", IEEE TVCG 15(6), the matrices for severity 1.0 (applied to linear RGB)
 CVD = {
-    "protanopia": np.array([[0.152286, 1.052583, -0.204868], [0.114503, 0.786281, 0.099216], [-0.003882, -0.048116, 1.051998]]),
-    "deuteranopia": np.array([[0.367322, 0.860646, -0.227968], [0.280085, 0.672501, 0.047413], [-0.011820, 0.042940, 0.968881]]),
-    "tritanopia": np.array([[1.255528, -0.076749, -0.178779], [-0.078411, 0.930809, 0.147602], [0.004733, 0.691367, 0.303900]]),
+    "protanopia": np.array(
+        [[0.152286, 1.052583, -0.204868], [0.114503, 0.786281, 0.099216], [-0.003882, -0.048116, 1.051998]]
+    ),
+    "deuteranopia": np.array(
+        [[0.367322, 0.860646, -0.227968], [0.280085, 0.672501, 0.047413], [-0.011820, 0.042940, 0.968881]]
+    ),
+    "tritanopia": np.array(
+        [[1.255528, -0.076749, -0.178779], [-0.078411, 0.930809, 0.147602], [0.004733, 0.691367, 0.303900]]
+    ),
 }
 
 
@@ -468,7 +573,11 @@ def test_stylesheet_uses_only_palette_colours_in_their_roles():
     assert not re.search(r"#[0-9a-fA-F]{3,8}\b|rgb|hsl", body), "colour literal outside the palette"
     used = set(re.findall(r"var\(--([a-z0-9-]+)\)", body))
     assert used <= set(palette), used - set(palette)
-    for prop, allowed in (("color", ("ink-",)), ("fill", ("ink-", "mark-", "heat-", "over-")), ("stroke", ("mark-", "over-", "deco-"))):
+    for prop, allowed in (
+        ("color", ("ink-",)),
+        ("fill", ("ink-", "mark-", "heat-", "over-")),
+        ("stroke", ("mark-", "over-", "deco-")),
+    ):
         for value in re.findall(rf"(?<![-a-z]){prop}\s*:\s*([^;}}]+)", body):
             if value.strip() == "none":
                 continue
@@ -482,7 +591,14 @@ def test_stylesheet_uses_only_palette_colours_in_their_roles():
 def test_every_chart_mark_has_a_palette_colour(dom):
     """Each class drawn in an SVG is coloured by a rule of the stylesheet (so the contrast test covers it)."""
     css = _stylesheet()
-    drawn = {cls for root in dom.values() for svg in root.iter("svg") for node in svg.iter() if node.tag != "svg" for cls in node.classes()}
+    drawn = {
+        cls
+        for root in dom.values()
+        for svg in root.iter("svg")
+        for node in svg.iter()
+        if node.tag != "svg"
+        for cls in node.classes()
+    }
     assert {"edge", "mem", "mx", "bar", "pt", "ref", "stem"} <= drawn
     for cls in drawn:
         rule = re.search(rf"svg \.{re.escape(cls)}\s*\{{([^}}]*)\}}", css)
@@ -496,7 +612,9 @@ def test_print_stylesheet_is_a4_and_keeps_rows_whole():
     assert re.search(r"@page\s*\{[^}]*size:\s*A4", block)
     assert re.search(r"tr[^{]*\{[^}]*break-inside:\s*avoid", block)
     assert "details::details-content" in block  # data tables in <details> print too
-    assert not re.search(r"display:\s*none", block.replace("nav.top { display: none; }", "")), "print hides something besides navigation"
+    assert not re.search(r"display:\s*none", block.replace("nav.top { display: none; }", "")), (
+        "print hides something besides navigation"
+    )
 
 
 # ----------------------------------------------------------------------------------------------
@@ -554,7 +672,9 @@ def test_run_page_rows_match_the_document(doc, dom):
         assert printed_matches(cells[header.index("p adj.")], check and check["p_adjusted"])
         trail = cells[header.index("−7") : header.index("now") + 1]
         past = [h["verdict"] for h in m["history"]][-7:]
-        expected = ["· no audit"] * (7 - len(past)) + [f"{STATUS[v][0]} {STATUS[v][1]}" for v in past] + [f"{symbol} {word}"]
+        expected = (
+            ["· no audit"] * (7 - len(past)) + [f"{STATUS[v][0]} {STATUS[v][1]}" for v in past] + [f"{symbol} {word}"]
+        )
         assert trail == expected
 
 
@@ -563,11 +683,22 @@ def test_movement_matches_the_document(doc, dom):
     header, rows = table_rows(run.find_id("movement-counts"))
     counts = dict(zip(header, rows[0][1]))
     moves = doc["summary"]["movement"]
-    assert {k: int(counts[label]) for k, label in (("new", "new exception"), ("persisting", "persisting"), ("resolved", "resolved"), ("steady", "still passing"), ("first", "first audit"))} == moves
+    assert {
+        k: int(counts[label])
+        for k, label in (
+            ("new", "new exception"),
+            ("persisting", "persisting"),
+            ("resolved", "resolved"),
+            ("steady", "still passing"),
+            ("first", "first audit"),
+        )
+    } == moves
     for key in ("new", "persisting", "resolved"):
         listed = [a.text() for a in run.find_id(f"moved-{key}").iter("a")]
         assert listed == [m["id"] for m in doc["models"] if m["movement"] == key]
-    assert moves["resolved"] >= 1 and moves["persisting"] >= 1 and moves["new"] >= 1  # the fixture moves in every direction
+    assert (
+        moves["resolved"] >= 1 and moves["persisting"] >= 1 and moves["new"] >= 1
+    )  # the fixture moves in every direction
 
 
 CHECK_FIELDS = {
@@ -606,10 +737,20 @@ def test_model_pages_match_the_document(doc, dom):
                 continue
             assert int(by_label["Residuals n"][column]) == check["n"]
             assert int(by_label["Cells s"][column]) == check["cells"]
-            assert by_label["Ljung-Box"][column].startswith("Q ") and f"on {check['ljung_box']['lags']} lags, df {check['ljung_box']['df']}" in by_label["Ljung-Box"][column]
+            assert (
+                by_label["Ljung-Box"][column].startswith("Q ")
+                and f"on {check['ljung_box']['lags']} lags, df {check['ljung_box']['df']}"
+                in by_label["Ljung-Box"][column]
+            )
             for label, field in CHECK_FIELDS.items():
                 shown = by_label[label][column].split(" (")[0]  # a threshold or floor may follow in parentheses
-                assert printed_matches(shown, check[field]), (m["id"], kind, label, by_label[label][column], check[field])
+                assert printed_matches(shown, check[field]), (
+                    m["id"],
+                    kind,
+                    label,
+                    by_label[label][column],
+                    check[field],
+                )
                 compared += 1
     assert compared >= 40
 
@@ -626,15 +767,21 @@ def test_map_tables_match_the_scaled_grid(doc, dom):
             bold = sum(1 for td in table.iter("td") if "fail" in td.classes())
             infinite = sum(1 for td in table.iter("td") if td.text() == "∞")
             grid, inf_mask = check["scaled_grid"], check["map"]["infinite"]
-            assert bold == sum(1 for row, mask in zip(grid, inf_mask) for v, i in zip(row, mask) if v is not None and not i and v > 1)
+            assert bold == sum(
+                1 for row, mask in zip(grid, inf_mask) for v, i in zip(row, mask) if v is not None and not i and v > 1
+            )
             assert infinite == sum(map(sum, inf_mask))
             _, rows = table_rows(table)
             top_alpha = rows[0][1][0]
             assert printed_matches(top_alpha, check["map"]["alphas"][-1])  # rows run from the largest alpha down
             svg = next(fig.iter("svg"))
             assert sum(1 for r in svg.iter("rect")) == len(grid) * len(grid[0])
-            assert (sum(1 for p in svg.iter("path") if p.attrs.get("class") == "edge") == 1) == (bold > 0)  # the boundary is drawn iff a point fails
-            assert sum(1 for c in svg.iter("circle") if c.attrs.get("class") == "mem") == 5  # the five classical members
+            assert (sum(1 for p in svg.iter("path") if p.attrs.get("class") == "edge") == 1) == (
+                bold > 0
+            )  # the boundary is drawn iff a point fails
+            assert (
+                sum(1 for c in svg.iter("circle") if c.attrs.get("class") == "mem") == 5
+            )  # the five classical members
             assert sum(1 for p in svg.iter("path") if p.attrs.get("class") == "mx") == 1  # the maximum
             maps += 1
     assert maps >= 6
@@ -712,18 +859,39 @@ def _headings(root: Node, tag: str = "h2") -> list[str]:
 def test_page_structure(doc, pages, dom):
     n_exceptions = sum(m["verdict"] != "pass" for m in doc["models"])
     assert _headings(dom["index.html"]) == [
-        "Summary", f"Exceptions ({n_exceptions})", "Movement since the previous audit", "All models: status over the last 8 audits",
+        "Summary",
+        f"Exceptions ({n_exceptions})",
+        "Movement since the previous audit",
+        "All models: status over the last 8 audits",
     ]
     run = pages["index.html"].decode("utf-8")
-    assert run.index('id="counts"') < run.index('id="false-flags"') < run.index('id="exceptions"') < run.index('id="movement"') < run.index('id="trail"')
+    assert (
+        run.index('id="counts"')
+        < run.index('id="false-flags"')
+        < run.index('id="exceptions"')
+        < run.index('id="movement"')
+        < run.index('id="trail"')
+    )
     audited = next(m for m in doc["models"] if m["verdict"] == "respecify")
     assert _headings(dom[f"models/{audited['safe_id']}.html"]) == [
-        "Verdict and reasons", "Production check and refit check", "Divergence map", "Residual diagnostics",
-        "Parameters: production versus refit", "Change point", "Candidate specifications", "History of the standardised maximum",
-        "Data lineage", "Settings used",
+        "Verdict and reasons",
+        "Production check and refit check",
+        "Divergence map",
+        "Residual diagnostics",
+        "Parameters: production versus refit",
+        "Change point",
+        "Candidate specifications",
+        "History of the standardised maximum",
+        "Data lineage",
+        "Settings used",
     ]
     assert _headings(dom["models/entry-7.html"]) == [
-        "Verdict and reasons", "No audit ran", "Candidate specifications", "History of the standardised maximum", "Data lineage", "Settings used",
+        "Verdict and reasons",
+        "No audit ran",
+        "Candidate specifications",
+        "History of the standardised maximum",
+        "Data lineage",
+        "Settings used",
     ]
     for kind in ("production", "refit"):
         for fig in ("map", "hist", "qq", "acf"):
@@ -748,11 +916,22 @@ def test_change_point_and_parameters_are_shown(doc, dom):
 
 def test_method_page_explains_with_formulas_references_and_cautions(dom):
     method = dom["method.html"].text()
-    for ref in ("Stummer, W. and Vajda, I. (2012)", "Cressie, N. and Read, T. R. C. (1984)", "Ljung, G. M. and Box, G. E. P. (1978)",
-                "McLeod, A. I. and Li, W. K. (1983)", "Nikulin, M. S. (1973)", "Rao, K. C. and Robson, D. S. (1974)",
-                "Benjamini, Y. and Hochberg, Y. (1995)"):
+    for ref in (
+        "Stummer, W. and Vajda, I. (2012)",
+        "Cressie, N. and Read, T. R. C. (1984)",
+        "Ljung, G. M. and Box, G. E. P. (1978)",
+        "McLeod, A. I. and Li, W. K. (1983)",
+        "Nikulin, M. S. (1973)",
+        "Rao, K. C. and Robson, D. S. (1974)",
+        "Benjamini, Y. and Hochberg, Y. (1995)",
+    ):
         assert ref in method
-    for formula in ("Q(h) = n (n + 2)", "R = maxg Tg / cg", "T = 2 n Bφα(P, Q | Mβ)", "p = ( 1 + #{ b : R*b ≥ R } ) / ( B + 1 )"):
+    for formula in (
+        "Q(h) = n (n + 2)",
+        "R = maxg Tg / cg",
+        "T = 2 n Bφα(P, Q | Mβ)",
+        "p = ( 1 + #{ b : R*b ≥ R } ) / ( B + 1 )",
+    ):
         assert formula in method, formula
     assert "statistical evidence, not proof that a model is fit for its use" in method
     policy = dom["method.html"].find_id("policy").text()
@@ -780,11 +959,21 @@ def test_a_thousand_model_run_page_stays_under_2_mb(doc):
         record = copy.deepcopy(audited[k % len(audited)])
         record["id"] = record["safe_id"] = f"fleet-{k:04d}-{record['id']}"
         records.append(record)
-    fleet = build_results(as_of=AS_OF, registry={"path": "registry.yaml", "sha256": "ef" * 32}, policy=POLICY, records=records, tool_version="0.1.0")
+    fleet = build_results(
+        as_of=AS_OF,
+        registry={"path": "registry.yaml", "sha256": "ef" * 32},
+        policy=POLICY,
+        records=records,
+        tool_version="0.1.0",
+    )
     pages = render_run(json.loads(json.dumps(fleet)), META)
     assert len(pages) == 1002
-    assert len(pages["index.html"]) <= 2_000_000  # source: docs/architecture.md §4 (the run page for 1,000 models at most 2 MB)
-    assert max(len(v) for k, v in pages.items() if k.startswith("models/")) <= 150_000  # source: docs/architecture.md §4
+    assert (
+        len(pages["index.html"]) <= 2_000_000
+    )  # source: docs/architecture.md §4 (the run page for 1,000 models at most 2 MB)
+    assert (
+        max(len(v) for k, v in pages.items() if k.startswith("models/")) <= 150_000
+    )  # source: docs/architecture.md §4
     run = parse(pages["index.html"])
     assert len(list(next(run.find_id("trail").iter("tbody")).iter("tr"))) == 1000
 
@@ -804,7 +993,19 @@ def test_archive_index_lists_published_runs(tmp_path, doc):
             run.finish({"counts": {k: doc["summary"][k] for k in ("registered", "audited", *STATUS)}})
         run_ids.append(run_id)
     runs = archive.list_runs(root)
-    runs.append({"run_id": HOSTILE, "path": "../../etc", "as_of": "2026-12-07", "time": "t", "seq": 99, "counts": None, "purged": False, "signoffs": [], "manifest_sha256": "0" * 64})
+    runs.append(
+        {
+            "run_id": HOSTILE,
+            "path": "../../etc",
+            "as_of": "2026-12-07",
+            "time": "t",
+            "seq": 99,
+            "counts": None,
+            "purged": False,
+            "signoffs": [],
+            "manifest_sha256": "0" * 64,
+        }
+    )
     page = render_archive_index(runs)
     text = page.decode("utf-8")
     root_node = parse(page)
@@ -826,7 +1027,14 @@ def test_run_context_names_the_chain_head_the_previous_audit_and_the_trend(tmp_p
 
     root = tmp_path / "archive"
     empty = run_context(root, dt.date(2026, 11, 30))
-    assert empty == {"archive_head": None, "chain_head": None, "chain_seq": 0, "previous_run_id": None, "previous_as_of": None, "fleet_trend": []}
+    assert empty == {
+        "archive_head": None,
+        "chain_head": None,
+        "chain_seq": 0,
+        "previous_run_id": None,
+        "previous_as_of": None,
+        "fleet_trend": [],
+    }
     published = []
     plan = [  # (as_of, kind, passed, registered, models requested)
         (dt.date(2026, 11, 2), "audit", 8, 10, None),
@@ -840,7 +1048,11 @@ def test_run_context_names_the_chain_head_the_previous_audit_and_the_trend(tmp_p
         with archive.open_run(root, run_id, as_of.year) as run:
             if kind == "audit":
                 run.write_bytes("results.json", b"{}")
-                manifest = {"kind": "audit", "counts": {"registered": registered, "pass": passed}, "scope": {"models_requested": requested}}
+                manifest = {
+                    "kind": "audit",
+                    "counts": {"registered": registered, "pass": passed},
+                    "scope": {"models_requested": requested},
+                }
             else:
                 run.write_bytes("refit.json", b"{}")
                 manifest = {"kind": "refit", "counts": {"promoted": 1}}
@@ -848,19 +1060,33 @@ def test_run_context_names_the_chain_head_the_previous_audit_and_the_trend(tmp_p
     context = run_context(root, dt.date(2026, 11, 30))
     head, seq = archive.chain_head(root)
     assert context["archive_head"] == f"{head} (seq {seq})" and context["chain_seq"] == seq == len(plan)
-    assert context["previous_run_id"] == published[4].run_id and context["previous_as_of"] == "2026-12-07"  # the audit published last
-    assert context["fleet_trend"] == [{"as_of": "2026-11-02", "passed": 8, "registered": 10}, {"as_of": "2026-11-09", "passed": 9, "registered": 10}]
-    assert run_context(root, dt.date(2026, 11, 30), trend_length=1)["fleet_trend"] == [{"as_of": "2026-11-09", "passed": 9, "registered": 10}]
+    assert (
+        context["previous_run_id"] == published[4].run_id and context["previous_as_of"] == "2026-12-07"
+    )  # the audit published last
+    assert context["fleet_trend"] == [
+        {"as_of": "2026-11-02", "passed": 8, "registered": 10},
+        {"as_of": "2026-11-09", "passed": 9, "registered": 10},
+    ]
+    assert run_context(root, dt.date(2026, 11, 30), trend_length=1)["fleet_trend"] == [
+        {"as_of": "2026-11-09", "passed": 9, "registered": 10}
+    ]
 
 
 def test_run_page_names_the_chain_head_and_the_previous_run(doc):
     head = "ab" * 32 + " (seq 12)"
-    page = parse(render_run(doc, dict(META, archive_head=head, previous_run_id="20261123-T010203Z-0a0b", previous_as_of="2026-11-23"))["index.html"])
+    page = parse(
+        render_run(
+            doc, dict(META, archive_head=head, previous_run_id="20261123-T010203Z-0a0b", previous_as_of="2026-11-23")
+        )["index.html"]
+    )
     facts = next(page.iter("dl")).text()
     assert head in facts and "20261123-T010203Z-0a0b (as of 2026-11-23)" in facts
     first = parse(render_run(doc, META)["index.html"])
     facts = next(first.iter("dl")).text()
-    assert "none: this is the first entry of the archive’s hash chain" in facts and "none: the first audit run in this archive" in facts
+    assert (
+        "none: this is the first entry of the archive’s hash chain" in facts
+        and "none: the first audit run in this archive" in facts
+    )
 
 
 # ----------------------------------------------------------------------------------------------
@@ -872,15 +1098,24 @@ def test_exceptions_say_what_to_do_and_by_when(doc, dom):
     table = next(dom["index.html"].find_id("exceptions").iter("table"))
     header, rows = table_rows(table)
     expected = sorted((m for m in doc["models"] if m["verdict"] != "pass"), key=lambda m: (m["severity"], m["id"]))
-    defaults = {1: 7, 2: 14, 3: 28}  # source: the registry schema's default days to act per tier (tasks/registry/schema.py DaysToAct)
+    defaults = {
+        1: 7,
+        2: 14,
+        3: 28,
+    }  # source: the registry schema's default days to act per tier (tasks/registry/schema.py DaysToAct)
     for (_, cells), m in zip(rows, expected):
         days = defaults.get(m["tier"], 7)  # an entry without a tier gets the shortest
         due = (dt.date(2026, 11, 30) + dt.timedelta(days=days)).isoformat()
         action = cells[header.index("Action")]
-        assert action.startswith(owner_action(m["verdict"], escalated=m["escalated"])["action"]) and action.endswith(f"By {due}.")
+        assert action.startswith(owner_action(m["verdict"], escalated=m["escalated"])["action"]) and action.endswith(
+            f"By {due}."
+        )
         assert "promot" not in action or (m["verdict"] == "refit" and not m["escalated"])
     legend = dom["index.html"].find_id("tier-legend").text()
-    assert "from 1 (most material) to 3" in legend and "7 days to act on an exception of a tier-1 model, 14 of tier 2 and 28 of tier 3" in legend
+    assert (
+        "from 1 (most material) to 3" in legend
+        and "7 days to act on an exception of a tier-1 model, 14 of tier 2 and 28 of tier 3" in legend
+    )
     refit = next(m for m in doc["models"] if m["verdict"] == "refit")
     box = dom[f"models/{refit['safe_id']}.html"].find_id("action").text()
     assert "approve their promotion" in box and "By 2026-12-14 (14 days after the as-of date" in box
@@ -893,7 +1128,10 @@ def test_days_to_act_come_from_the_policy(doc):
     header, rows = table_rows(next(page.find_id("exceptions").iter("table")))
     tier2 = [cells for _, cells in rows if cells[header.index("Tier")] == "2"]
     assert tier2 and all(c[header.index("Action")].endswith("By 2026-12-05.") for c in tier2)  # 30 November + 5 days
-    assert "3 days to act on an exception of a tier-1 model, 5 of tier 2 and 9 of tier 3" in page.find_id("tier-legend").text()
+    assert (
+        "3 days to act on an exception of a tier-1 model, 5 of tier 2 and 9 of tier 3"
+        in page.find_id("tier-legend").text()
+    )
 
 
 def test_check_table_puts_thresholds_and_floors_beside_the_p_values(doc, dom):
@@ -905,40 +1143,63 @@ def test_check_table_puts_thresholds_and_floors_beside_the_p_values(doc, dom):
                 continue
             _, rows = table_rows(next(dom[f"models/{m['safe_id']}.html"].find_id("checks").iter("table")))
             cell = {cells[0]: cells[1:][column] for _, cells in rows}
-            floor = 1 / (check["calibration"]["replicates"] + 1)  # source: docs/method.md §7 (p = (1 + #{R* >= R}) / (B + 1))
+            floor = 1 / (
+                check["calibration"]["replicates"] + 1
+            )  # source: docs/method.md §7 (p = (1 + #{R* >= R}) / (B + 1))
             assert cell["Smallest possible p of the distribution gate"].startswith(f"p ≥ {floor:g} (1 / (199 + 1)")
             at_floor = check["p_distribution"] <= floor * (1 + 1e-9)
             assert ("(the smallest possible with 199 simulations" in cell["p, distribution gate"]) == at_floor
-            assert cell["Threshold of each gate (unadjusted)"] == "fails at p ≤ 0.025 (level 0.05 split over the two gates)"
+            assert (
+                cell["Threshold of each gate (unadjusted)"]
+                == "fails at p ≤ 0.025 (level 0.05 split over the two gates)"
+            )
             verdict = "fails" if check["p_adjusted"] <= POLICY["fdr_q"] else "passes"
-            assert cell["p, adjusted across the run"].endswith(f"(the run's rule: the check fails at ≤ q = 0.1, Benjamini-Hochberg; it {verdict})")
-            assert cell["Window"].endswith(f"to 2026-11-30 ({check['window']['length']} observations)")  # dates, not positions
+            assert cell["p, adjusted across the run"].endswith(
+                f"(the run's rule: the check fails at ≤ q = 0.1, Benjamini-Hochberg; it {verdict})"
+            )
+            assert cell["Window"].endswith(
+                f"to 2026-11-30 ({check['window']['length']} observations)"
+            )  # dates, not positions
             shown += 1
     assert shown >= 6
 
 
 def test_reviewer_pages_show_words_not_internals(pages, dom):
-    internals = re.compile(r"\b(?!T_max\b)[A-Za-z0-9]+_[A-Za-z0-9_]+\b|\bNone\b|\bTrue\b|\bFalse\b|shape=|\{'|\[\[|'line'")
+    internals = re.compile(
+        r"\b(?!T_max\b)[A-Za-z0-9]+_[A-Za-z0-9_]+\b|\bNone\b|\bTrue\b|\bFalse\b|shape=|\{'|\[\[|'line'"
+    )
     for name, root in dom.items():
         text = next(root.iter("main")).text()
         found = internals.findall(text)
         assert not found, (name, found[:5])  # no registry keys, Python reprs or table keys
     policy = [tr for tr, _ in table_rows(dom["method.html"].find_id("policy"))[1]]
-    assert not any(tr.elements()[0].text().strip().lower() == "line" for tr in policy)  # the registry's line number is bookkeeping
+    assert not any(
+        tr.elements()[0].text().strip().lower() == "line" for tr in policy
+    )  # the registry's line number is bookkeeping
     assert internals.search("fit_window None") and internals.search("{'a': 1}")  # the pattern does catch internals
 
 
 def test_partial_runs_say_their_p_values_were_adjusted_over_fewer_checks(doc):
     full = parse(render_run(doc, META)["index.html"])
     assert full.find_id("partial-run") is None
-    partial = parse(render_run(doc, dict(META, scope={"models_requested": 7, "registry_models": 45, "unreadable_sources": ["sensors"]}))["index.html"])
+    partial = parse(
+        render_run(
+            doc, dict(META, scope={"models_requested": 7, "registry_models": 45, "unreadable_sources": ["sensors"]})
+        )["index.html"]
+    )
     text = partial.find_id("partial-run").text()
     assert "only 7 of the registry's 45 models were audited (--models)" in text and "the source(s) sensors" in text
-    assert f"adjusted over the {doc['summary']['checks']} checks that ran" in text and "the same model can pass in the full run and be flagged in this one" in text
+    assert (
+        f"adjusted over the {doc['summary']['checks']} checks that ran" in text
+        and "the same model can pass in the full run and be flagged in this one" in text
+    )
 
 
 def test_run_page_has_a_one_line_fleet_trend(doc):
-    trend = [{"as_of": "2026-11-16", "passed": 4, "registered": 8}, {"as_of": "2026-11-23", "passed": 6, "registered": 8}]
+    trend = [
+        {"as_of": "2026-11-16", "passed": 4, "registered": 8},
+        {"as_of": "2026-11-23", "passed": 6, "registered": 8},
+    ]
     page = parse(render_run(doc, dict(META, fleet_trend=trend))["index.html"])
     line = page.find_id("fleet-trend")
     now = 100 * doc["summary"]["pass"] / doc["summary"]["registered"]
@@ -951,7 +1212,9 @@ def test_run_page_has_a_one_line_fleet_trend(doc):
 def test_passes_with_a_caution_are_listed_to_watch(doc):
     watched = copy.deepcopy(doc)
     target = next(m for m in watched["models"] if m["verdict"] == "pass")
-    target["reasons"].append("Caution, production check: it passes narrowly: its largest standardised statistic is 0.97 of its critical value (within 10 % of failing).")
+    target["reasons"].append(
+        "Caution, production check: it passes narrowly: its largest standardised statistic is 0.97 of its critical value (within 10 % of failing)."
+    )
     page = parse(render_run(watched, META)["index.html"])
     items = [li.text() for li in next(page.find_id("exceptions").iter("ul")).iter("li")]
     assert len(items) == 1 and items[0].startswith(target["id"]) and "0.97 of its critical value" in items[0]

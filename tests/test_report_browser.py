@@ -49,7 +49,10 @@ META = {
     "archive_head": "5f" * 32 + " (seq 41)",
     "previous_run_id": "20261123-T010203Z-a1a1",
     "previous_as_of": "2026-11-23",
-    "fleet_trend": [{"as_of": "2026-11-09", "passed": 3, "registered": 3}, {"as_of": "2026-11-23", "passed": 2, "registered": 3}],
+    "fleet_trend": [
+        {"as_of": "2026-11-09", "passed": 3, "registered": 3},
+        {"as_of": "2026-11-23", "passed": 2, "registered": 3},
+    ],
 }
 A4_POINTS = (595.28, 841.89)  # source: ISO 216 A4 = 210 mm x 297 mm; 1 pt = 1/72 inch = 0.3528 mm
 
@@ -66,12 +69,29 @@ class Browser:
             os.dup2(a, 3)
             os.dup2(b, 4)
 
-        args = [executable, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-                "--disable-background-networking", "--disable-component-update", "--disable-sync",
-                "--disable-features=MediaRouter,OptimizationHints", f"--user-data-dir={profile}",
-                "--remote-debugging-pipe", "about:blank"]
-        self.process = subprocess.Popen(args, preexec_fn=wire_pipes, pass_fds=(3, 4), stdin=subprocess.DEVNULL,
-                                        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        args = [
+            executable,
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--disable-quic",
+            "--no-first-run",
+            "--disable-background-networking",
+            "--disable-component-update",
+            "--disable-sync",
+            "--disable-features=MediaRouter,OptimizationHints",
+            f"--user-data-dir={profile}",
+            "--remote-debugging-pipe",
+            "about:blank",
+        ]
+        self.process = subprocess.Popen(
+            args,
+            preexec_fn=wire_pipes,
+            pass_fds=(3, 4),
+            stdin=subprocess.DEVNULL,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
         os.close(to_browser_r)
         os.close(from_browser_w)
         self._buffer = b""
@@ -113,7 +133,11 @@ class Browser:
         session = self.call("Target.attachToTarget", {"targetId": target, "flatten": True})["sessionId"]
         for domain in ("Page", "Network", "Runtime", "Log"):
             self.call(f"{domain}.enable", session=session)
-        self.call("Emulation.setDeviceMetricsOverride", {"width": 1280, "height": 900, "deviceScaleFactor": 1, "mobile": False}, session=session)
+        self.call(
+            "Emulation.setDeviceMetricsOverride",
+            {"width": 1280, "height": 900, "deviceScaleFactor": 1, "mobile": False},
+            session=session,
+        )
         return session
 
     def load(self, session: str, url: str) -> list[dict]:
@@ -133,8 +157,15 @@ class Browser:
 
     def screenshot(self, session: str, path: pathlib.Path) -> bytes:
         height = self.call("Page.getLayoutMetrics", session=session)["cssContentSize"]["height"]
-        data = self.call("Page.captureScreenshot", {"format": "png", "captureBeyondViewport": True,
-                                                    "clip": {"x": 0, "y": 0, "width": 1280, "height": min(height, 12000), "scale": 1}}, session=session)["data"]
+        data = self.call(
+            "Page.captureScreenshot",
+            {
+                "format": "png",
+                "captureBeyondViewport": True,
+                "clip": {"x": 0, "y": 0, "width": 1280, "height": min(height, 12000), "scale": 1},
+            },
+            session=session,
+        )["data"]
         png = base64.b64decode(data)
         path.write_bytes(png)
         return png
@@ -166,7 +197,9 @@ def errors_of(events: list[dict]) -> list[str]:
 @pytest.fixture(scope="module")
 def browser():
     if not (os.path.isfile(CHROMIUM) and os.access(CHROMIUM, os.X_OK)):
-        message = f"headless Chromium not found at {CHROMIUM}; install Debian's `chromium` package (apt-get install chromium)"
+        message = (
+            f"headless Chromium not found at {CHROMIUM}; install Debian's `chromium` package (apt-get install chromium)"
+        )
         if REQUIRED:
             pytest.fail(message + " (FITAUDIT_REQUIRE_BROWSER=1 makes the browser tests required)")
         pytest.skip(message)
@@ -193,16 +226,47 @@ def run_folder(tmp_path_factory) -> tuple[pathlib.Path, dict]:
     walk = np.cumsum(rng.standard_t(2, size=300))
     settings = AuditSettings(replicates=99, audit_window=60, change_permutations=99)
     cases = [("steady-demand", y), ("wandering-demand", walk)]
-    days = np.arange(np.datetime64("2026-11-30") - 299, np.datetime64("2026-11-30") + 1)  # daily, ending at the as-of date
-    results = apply_fleet_rules([audit_series(s, arima, production=production, settings=settings, label=n, timestamps=days) for n, s in cases], q=0.1)
-    records = [model_record({"id": n, "safe_id": n, "owner": "team <b>a</b>", "tier": 2}, as_of="2026-11-30", verdict=r.verdict, reasons=r.reasons,
-                            audit=r.to_dict(), spec_text=arima.describe(), settings=settings.to_dict(),
-                            history=[{"as_of": "2026-11-23", "verdict": "refit", "r_max": 1.2, "p_value": 0.01}])
-               for (n, _), r in zip(cases, results)]
-    records.append(model_record({"id": "<script>alert(1)</script>", "safe_id": "entry-3"}, as_of="2026-11-30", verdict="error",
-                                reasons=["the registry entry has no usable id"], audit=None, spec_text="unknown"))
-    doc = json.loads(json.dumps(build_results(as_of="2026-11-30", registry={"path": "registry.yaml", "sha256": "0" * 64},
-                                              policy={"level": 0.05, "multiple_testing": "bh", "fdr_q": 0.1}, records=records, tool_version="0.1.0")))
+    days = np.arange(
+        np.datetime64("2026-11-30") - 299, np.datetime64("2026-11-30") + 1
+    )  # daily, ending at the as-of date
+    results = apply_fleet_rules(
+        [audit_series(s, arima, production=production, settings=settings, label=n, timestamps=days) for n, s in cases],
+        q=0.1,
+    )
+    records = [
+        model_record(
+            {"id": n, "safe_id": n, "owner": "team <b>a</b>", "tier": 2},
+            as_of="2026-11-30",
+            verdict=r.verdict,
+            reasons=r.reasons,
+            audit=r.to_dict(),
+            spec_text=arima.describe(),
+            settings=settings.to_dict(),
+            history=[{"as_of": "2026-11-23", "verdict": "refit", "r_max": 1.2, "p_value": 0.01}],
+        )
+        for (n, _), r in zip(cases, results)
+    ]
+    records.append(
+        model_record(
+            {"id": "<script>alert(1)</script>", "safe_id": "entry-3"},
+            as_of="2026-11-30",
+            verdict="error",
+            reasons=["the registry entry has no usable id"],
+            audit=None,
+            spec_text="unknown",
+        )
+    )
+    doc = json.loads(
+        json.dumps(
+            build_results(
+                as_of="2026-11-30",
+                registry={"path": "registry.yaml", "sha256": "0" * 64},
+                policy={"level": 0.05, "multiple_testing": "bh", "fdr_q": 0.1},
+                records=records,
+                tool_version="0.1.0",
+            )
+        )
+    )
     assert {m["verdict"] for m in doc["models"]} >= {"pass", "respecify", "error"}
     folder = tmp_path_factory.mktemp("run")
     for name, data in render_run(doc, META).items():
@@ -253,16 +317,27 @@ def test_run_page_opens_offline_and_shows_counts_and_exceptions(browser, run_fol
     counts_text = seen["#counts"]["text"]
     for symbol, word in STATUS.values():
         assert f"{symbol} {word}" in counts_text
-    rendered = browser.evaluate(session, "Array.from(document.querySelectorAll('#counts tbody td')).map(td => td.innerText.trim())")
+    rendered = browser.evaluate(
+        session, "Array.from(document.querySelectorAll('#counts tbody td')).map(td => td.innerText.trim())"
+    )
     assert [int(x) for x in rendered] == [doc["summary"][k] for k in ("registered", "audited", *STATUS)]
     assert "<script>alert(1)</script>" in seen["#exceptions table"]["text"]  # shown as text, not run
     facts = browser.evaluate(session, "document.querySelector('.facts').innerText")
-    assert "5f" * 32 + " (seq 41)" in facts and "20261123-T010203Z-a1a1 (as of 2026-11-23)" in facts  # the chain head and the previous run
-    columns = browser.evaluate(session, "Array.from(document.querySelectorAll('#exceptions thead th')).map(th => th.innerText.trim())")
+    assert (
+        "5f" * 32 + " (seq 41)" in facts and "20261123-T010203Z-a1a1 (as of 2026-11-23)" in facts
+    )  # the chain head and the previous run
+    columns = browser.evaluate(
+        session, "Array.from(document.querySelectorAll('#exceptions thead th')).map(th => th.innerText.trim())"
+    )
     assert columns[-2:] == ["Reason", "Action"]
-    actions = browser.evaluate(session, "Array.from(document.querySelectorAll('#exceptions td.action')).map(td => td.innerText)")
+    actions = browser.evaluate(
+        session, "Array.from(document.querySelectorAll('#exceptions td.action')).map(td => td.innerText)"
+    )
     assert actions and all(re.search(r"By 2026-12-\d\d\.$", a) for a in actions)
-    table_box = browser.evaluate(session, "(() => { const t = document.querySelector('#exceptions table').getBoundingClientRect(); return t.right; })()")
+    table_box = browser.evaluate(
+        session,
+        "(() => { const t = document.querySelector('#exceptions table').getBoundingClientRect(); return t.right; })()",
+    )
     assert table_box <= 1280  # the action column fits the page width, no sideways scrolling
     assert "→" in browser.evaluate(session, "document.querySelector('#fleet-trend').innerText")
     path = shots / "run-page.png"
@@ -280,20 +355,38 @@ def test_model_page_shows_the_divergence_map(browser, run_folder, shots, record_
     events = browser.load(session, url)
     assert set(requests_of(events)) <= _allowed_urls(folder) and url in requests_of(events)
     assert errors_of(events) == []
-    seen = browser.evaluate(session, VISIBLE % json.dumps([f"#model-{model['safe_id']}", "#figure-map-production svg", "#figure-map-refit svg",
-                                                           "#figure-hist-refit svg", "#figure-qq-refit svg", "#figure-acf-refit svg", "#checks table"]))
+    seen = browser.evaluate(
+        session,
+        VISIBLE
+        % json.dumps(
+            [
+                f"#model-{model['safe_id']}",
+                "#figure-map-production svg",
+                "#figure-map-refit svg",
+                "#figure-hist-refit svg",
+                "#figure-qq-refit svg",
+                "#figure-acf-refit svg",
+                "#checks table",
+            ]
+        ),
+    )
     for selector, box in seen.items():
         assert box and box["shown"] and box["w"] > 200 and box["h"] > 150, (selector, box)
-    marks = browser.evaluate(session, """(() => {
+    marks = browser.evaluate(
+        session,
+        """(() => {
       const svg = document.querySelector('#figure-map-production svg');
       const box = el => { const r = el.getBoundingClientRect(); return r.width > 0 && r.height > 0; };
       return {cells: svg.querySelectorAll('rect').length, edge: Array.from(svg.querySelectorAll('path.edge')).filter(box).length,
               members: Array.from(svg.querySelectorAll('circle.mem')).filter(box).length, max: Array.from(svg.querySelectorAll('path.mx')).filter(box).length,
               fill: getComputedStyle(svg.querySelector('rect')).fill};
-    })()""")
+    })()""",
+    )
     assert marks["cells"] == 17 * 9 and marks["edge"] == 1 and marks["members"] == 5 and marks["max"] == 1
     assert marks["fill"].startswith("rgb(")  # the inline stylesheet coloured the cells
-    classes = browser.evaluate(session, """(() => {
+    classes = browser.evaluate(
+        session,
+        """(() => {
       const hex = h => { const v = h.trim(); return `rgb(${parseInt(v.slice(1, 3), 16)}, ${parseInt(v.slice(3, 5), 16)}, ${parseInt(v.slice(5, 7), 16)})`; };
       const root = getComputedStyle(document.documentElement), out = {};
       for (const r of document.querySelectorAll('svg.heat rect')) {
@@ -301,10 +394,13 @@ def test_model_page_shows_the_divergence_map(browser, run_folder, shots, record_
         out[cls] = [getComputedStyle(r).fill, hex(root.getPropertyValue(name))];
       }
       return out;
-    })()""")
+    })()""",
+    )
     assert {"h7", "h8"} <= set(classes)  # the walk fails far beyond the critical value
     for cls, (fill, expected) in classes.items():
-        assert fill == expected, cls  # each class drawn in its palette colour (checked for order and contrast in test_report.py)
+        assert fill == expected, (
+            cls
+        )  # each class drawn in its palette colour (checked for order and contrast in test_report.py)
     assert browser.evaluate(session, "document.querySelectorAll('#figure-map-production svg path.frame').length") == 1
     action = browser.evaluate(session, "document.querySelector('#action').innerText")
     assert "What the owner should do." in action and "By 2026-12-" in action
@@ -317,8 +413,11 @@ def test_model_page_shows_the_divergence_map(browser, run_folder, shots, record_
 def test_recorder_catches_requests_and_console_errors(browser, tmp_path):
     """A negative control: the same checks do flag a page that fetches and fails."""
     bad = tmp_path / "bad.html"
-    bad.write_text('<!DOCTYPE html><html lang="en"><title>x</title><img src="http://127.0.0.1:9/x.png" alt="">'
-                   '<script>console.error("boom")</script></html>', encoding="utf-8")
+    bad.write_text(
+        '<!DOCTYPE html><html lang="en"><title>x</title><img src="http://127.0.0.1:9/x.png" alt="">'
+        '<script>console.error("boom")</script></html>',
+        encoding="utf-8",
+    )
     session = browser.open_tab()
     events = browser.load(session, bad.as_uri())
     assert "http://127.0.0.1:9/x.png" in requests_of(events)
@@ -331,11 +430,16 @@ def test_run_page_prints_on_a4_without_hiding_data_tables(browser, run_folder, t
     session = browser.open_tab()
     browser.load(session, (folder / "models" / f"{model['safe_id']}.html").as_uri())
     browser.call("Emulation.setEmulatedMedia", {"media": "print"}, session=session)
-    hidden_in_print = browser.evaluate(session, "Array.from(document.querySelectorAll('details table')).filter(t => t.getBoundingClientRect().height === 0).length")
+    hidden_in_print = browser.evaluate(
+        session,
+        "Array.from(document.querySelectorAll('details table')).filter(t => t.getBoundingClientRect().height === 0).length",
+    )
     assert hidden_in_print == 0  # closed <details> still print their data tables
     browser.call("Emulation.setEmulatedMedia", {"media": ""}, session=session)
     browser.load(session, (folder / "index.html").as_uri())
-    pdf = base64.b64decode(browser.call("Page.printToPDF", {"preferCSSPageSize": True, "printBackground": True}, session=session)["data"])
+    pdf = base64.b64decode(
+        browser.call("Page.printToPDF", {"preferCSSPageSize": True, "printBackground": True}, session=session)["data"]
+    )
     (tmp_path / "run-page.pdf").write_bytes(pdf)
     assert pdf.startswith(b"%PDF-")
     pages = re.findall(rb"/Type\s*/Page(?!s)", pdf)

@@ -28,11 +28,16 @@ def served(prefect_server, tmp_path_factory):
     demo = write_demo(root)
     env = dict(os.environ, PREFECT_API_URL=prefect_server)
     code = (
-        "import sys; from fitaudit.flows.deploy import serve_all; "
-        "serve_all(registry=sys.argv[1], archive=sys.argv[2])"
+        "import sys; from fitaudit.flows.deploy import serve_all; serve_all(registry=sys.argv[1], archive=sys.argv[2])"
     )
     log = open(root / "serve.log", "wb")
-    proc = subprocess.Popen([sys.executable, "-c", code, demo["registry"], demo["archive"]], env=env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
+    proc = subprocess.Popen(
+        [sys.executable, "-c", code, demo["registry"], demo["archive"]],
+        env=env,
+        stdout=log,
+        stderr=subprocess.STDOUT,
+        start_new_session=True,
+    )
     try:
         _wait_for_deployments(["fitaudit-audit/weekly", "fitaudit-refit/refit"], demo["registry"], proc)
         yield demo
@@ -63,7 +68,8 @@ def _wait_for_deployments(names: list[str], registry: str, proc: subprocess.Pope
                 if name.endswith("/weekly") and deployment.parameters.get("registry") != registry:
                     return False
                 if name.endswith("/refit") and not any(
-                    getattr(t, "parameters", None) and t.parameters.get("registry") == registry for t in await _triggers(client, deployment.id)
+                    getattr(t, "parameters", None) and t.parameters.get("registry") == registry
+                    for t in await _triggers(client, deployment.id)
                 ):
                     return False
             return True
@@ -93,7 +99,12 @@ def _events(prefix: str, since, want: int, timeout: float = 60, flow_run=None) -
 
     async def read():
         async with get_client() as client:
-            page = await client.read_events(filter=EventFilter(event=EventNameFilter(prefix=[prefix]), occurred=EventOccurredFilter(since=since), related=related), limit=50)
+            page = await client.read_events(
+                filter=EventFilter(
+                    event=EventNameFilter(prefix=[prefix]), occurred=EventOccurredFilter(since=since), related=related
+                ),
+                limit=50,
+            )
             return page.events
 
     deadline = time.monotonic() + timeout
@@ -119,12 +130,19 @@ def test_served_audit_runs_through_the_api_with_artifacts_events_and_triggered_r
     from prefect.deployments import run_deployment
 
     since = dt.datetime.now(dt.UTC) - dt.timedelta(seconds=5)
-    run = run_deployment("fitaudit-audit/weekly", parameters={"as_of": DEMO_AS_OF.isoformat(), "models": MODELS}, timeout=600, poll_interval=2)
+    run = run_deployment(
+        "fitaudit-audit/weekly",
+        parameters={"as_of": DEMO_AS_OF.isoformat(), "models": MODELS},
+        timeout=600,
+        poll_interval=2,
+    )
     assert run.state.is_completed(), run.state
 
     async def artifacts():
         async with get_client() as client:
-            arts = await client.read_artifacts(artifact_filter=ArtifactFilter(flow_run_id=ArtifactFilterFlowRunId(any_=[run.id])))
+            arts = await client.read_artifacts(
+                artifact_filter=ArtifactFilter(flow_run_id=ArtifactFilterFlowRunId(any_=[run.id]))
+            )
             return {a.key for a in arts}
 
     assert {"fitaudit-verdicts", "fitaudit-summary", "fitaudit-report"} <= asyncio.run(artifacts())
@@ -138,18 +156,29 @@ def test_served_audit_runs_through_the_api_with_artifacts_events_and_triggered_r
     # the refit deployment's trigger turns the run event into one refit flow run for the flagged models
     async def refit_runs():
         async with get_client() as client:
-            return await client.read_flow_runs(deployment_filter=DeploymentFilter(name=DeploymentFilterName(any_=["refit"])))
+            return await client.read_flow_runs(
+                deployment_filter=DeploymentFilter(name=DeploymentFilterName(any_=["refit"]))
+            )
 
     deadline = time.monotonic() + 180
     runs = []
     while time.monotonic() < deadline:
         # runs of this session only: a kept server database also holds earlier sessions' runs
-        runs = [r for r in asyncio.run(refit_runs()) if r.parameters.get("model_ids") == ["demand-d-07"] and r.parameters.get("registry") == served["registry"]]
+        runs = [
+            r
+            for r in asyncio.run(refit_runs())
+            if r.parameters.get("model_ids") == ["demand-d-07"] and r.parameters.get("registry") == served["registry"]
+        ]
         if runs and runs[0].state is not None and runs[0].state.is_final():
             break
         time.sleep(2)
     assert runs, "no refit run was triggered by the fitaudit.run.completed event"
     assert len(runs) == 1 and runs[0].state.is_completed(), runs  # one refit run per audit
-    assert runs[0].name == f"refit {DEMO_AS_OF.isoformat()} registry.yaml, 1 model"  # the audit's as-of date, not today's
+    assert (
+        runs[0].name == f"refit {DEMO_AS_OF.isoformat()} registry.yaml, 1 model"
+    )  # the audit's as-of date, not today's
     # the trigger forwards the audited registry's digest: the refit checks it is the same file
-    assert runs[0].parameters.get("registry_sha256") == hashlib.sha256(pathlib.Path(served["registry"]).read_bytes()).hexdigest()
+    assert (
+        runs[0].parameters.get("registry_sha256")
+        == hashlib.sha256(pathlib.Path(served["registry"]).read_bytes()).hexdigest()
+    )

@@ -81,7 +81,11 @@ def _macrodata(column: str) -> np.ndarray:
     return macrodata.load_pandas().data[column].to_numpy(dtype=float)
 
 
-SERIES = {"oil": lambda: _fpp2_series("oildata"), "austourists": lambda: _fpp2_series("austourists"), "co2": _co2_monthly}
+SERIES = {
+    "oil": lambda: _fpp2_series("oildata"),
+    "austourists": lambda: _fpp2_series("austourists"),
+    "co2": _co2_monthly,
+}
 #: Packaged seasonal series and their periods, for the fit-optimality table below.
 SEASONAL_SERIES = {
     "nottem": (lambda: _r_datasets("nottem"), 12),  # Nottingham monthly air temperature 1920-1939
@@ -140,8 +144,9 @@ def _from_statsmodels(spec: ExpSmoothing, vec: np.ndarray) -> dict:
 
 
 def _statsmodels_model(spec: ExpSmoothing, y: np.ndarray) -> ETSModel:
-    return ETSModel(y, error="add", trend=spec.trend, damped_trend=spec.damped, seasonal=spec.seasonal,
-                    seasonal_periods=spec.period)
+    return ETSModel(
+        y, error="add", trend=spec.trend, damped_trend=spec.damped, seasonal=spec.seasonal, seasonal_periods=spec.period
+    )
 
 
 def _gaussian_loglik(e: np.ndarray) -> float:
@@ -244,13 +249,15 @@ def _params_from_r(spec: ExpSmoothing, r: dict) -> dict:
     return p
 
 
-@pytest.mark.parametrize("series,kind,damped,model,spec", R_CASES, ids=[f"{c[3]}{'d' if c[2] else ''}" for c in R_CASES])
+@pytest.mark.parametrize(
+    "series,kind,damped,model,spec", R_CASES, ids=[f"{c[3]}{'d' if c[2] else ''}" for c in R_CASES]
+)
 def test_matches_r_forecast_ets(series, kind, damped, model, spec):
     y = SERIES[series]()
     r = _r_fit(kind, damped, model)
     if spec.seasonal:
         # source: R forecast::ets initstate; R normalises the m initial seasonal states to sum 0, as we do
-        assert abs(sum(r["initstate"][1 + bool(spec.trend):])) < 1e-6
+        assert abs(sum(r["initstate"][1 + bool(spec.trend) :])) < 1e-6
     p = _params_from_r(spec, r)
     e = spec.errors(y, p)
     # source: R forecast::ets residuals (stored to 8 significant digits)
@@ -286,7 +293,9 @@ SM_CASES = [
 ]
 
 
-@pytest.mark.parametrize("series,spec,tol_smoothing,tol_states,note", SM_CASES, ids=[f"{c[0]}-{c[1].describe()}" for c in SM_CASES])
+@pytest.mark.parametrize(
+    "series,spec,tol_smoothing,tol_states,note", SM_CASES, ids=[f"{c[0]}-{c[1].describe()}" for c in SM_CASES]
+)
 def test_matches_statsmodels_etsmodel(series, spec, tol_smoothing, tol_states, note):
     y = SERIES[series]()
     fit = spec.fit(y)
@@ -418,8 +427,11 @@ def test_nottem_additive_season_is_not_stopped_at_the_alpha_bound():
 
 
 # -- fit result contract ---------------------------------------------------------------------------
-@pytest.mark.parametrize("spec", [ExpSmoothing(trend="add", seasonal="add", period=4), ExpSmoothing(seasonal="mul", period=4)],
-                         ids=lambda s: s.describe())
+@pytest.mark.parametrize(
+    "spec",
+    [ExpSmoothing(trend="add", seasonal="add", period=4), ExpSmoothing(seasonal="mul", period=4)],
+    ids=lambda s: s.describe(),
+)
 def test_fit_result_contract(spec):
     y = _fpp2_series("austourists")
     fit = spec.fit(y)
@@ -439,11 +451,38 @@ def test_fit_result_contract(spec):
 # -- simulation round trips --------------------------------------------------------------------------
 ROUND_TRIPS = [
     (ExpSmoothing(), {"alpha": 0.4, "l0": 10.0, "sigma2": 1.0}),
-    (ExpSmoothing(trend="add", damped=True, seasonal="add", period=7),
-     {"alpha": 0.3, "beta": 0.05, "gamma": 0.15, "phi": 0.9, "l0": 100.0, "b0": 0.5,
-      "s0": 4.0, "s1": -2.0, "s2": 1.0, "s3": 3.0, "s4": -1.5, "s5": -6.0, "sigma2": 4.0}),
-    (ExpSmoothing(trend="add", seasonal="mul", period=4),
-     {"alpha": 0.3, "beta": 0.05, "gamma": 0.15, "l0": 100.0, "b0": 0.2, "s0": 1.1, "s1": 0.9, "s2": 1.2, "sigma2": 4.0}),
+    (
+        ExpSmoothing(trend="add", damped=True, seasonal="add", period=7),
+        {
+            "alpha": 0.3,
+            "beta": 0.05,
+            "gamma": 0.15,
+            "phi": 0.9,
+            "l0": 100.0,
+            "b0": 0.5,
+            "s0": 4.0,
+            "s1": -2.0,
+            "s2": 1.0,
+            "s3": 3.0,
+            "s4": -1.5,
+            "s5": -6.0,
+            "sigma2": 4.0,
+        },
+    ),
+    (
+        ExpSmoothing(trend="add", seasonal="mul", period=4),
+        {
+            "alpha": 0.3,
+            "beta": 0.05,
+            "gamma": 0.15,
+            "l0": 100.0,
+            "b0": 0.2,
+            "s0": 1.1,
+            "s1": 0.9,
+            "s2": 1.2,
+            "sigma2": 4.0,
+        },
+    ),
 ]
 
 
@@ -466,7 +505,21 @@ def test_registry_and_description():
     assert ExpSmoothing().describe() == "ETS(A,N,N)"
     assert spec.seasonal_period() == 7 and ExpSmoothing().seasonal_period() == 1
     assert spec.n_dynamic_params() == 0
-    assert spec.param_names() == ["alpha", "beta", "gamma", "phi", "l0", "b0", "s0", "s1", "s2", "s3", "s4", "s5", "sigma2"]
+    assert spec.param_names() == [
+        "alpha",
+        "beta",
+        "gamma",
+        "phi",
+        "l0",
+        "b0",
+        "s0",
+        "s1",
+        "s2",
+        "s3",
+        "s4",
+        "s5",
+        "sigma2",
+    ]
 
 
 @pytest.mark.parametrize(

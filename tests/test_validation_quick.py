@@ -81,8 +81,19 @@ def test_single_members_at_their_own_reference_have_nominal_size():
     for i in range(reps):
         settings = dataclasses.replace(SETTINGS, seed=i % TABLE_SEEDS)
         check = audit_series(AR1.simulate(AR1_TRUTH, 200, rng), AR1, settings=settings, cache=cache).refit
-        table = refit_table(law, check.n, check.cells, True, settings.alphas, settings.betas, settings.scaling,
-                            settings.r, settings.replicates, settings.seed, cache=cache)
+        table = refit_table(
+            law,
+            check.n,
+            check.cells,
+            True,
+            settings.alphas,
+            settings.betas,
+            settings.scaling,
+            settings.r,
+            settings.replicates,
+            settings.seed,
+            cache=cache,
+        )
         t = check.map.statistic
         # source: scipy.stats.chisquare is Pearson's X2 (lambda = 1 of Cressie-Read)
         assert t[ia2, ib] == pytest.approx(stats.chisquare(check.counts).statistic, rel=1e-9)

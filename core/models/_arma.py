@@ -86,6 +86,7 @@ _BLOCK = 64  # rows per block of the innovations update
 
 # -- polynomials and the stationarity transform -----------------------------------------------
 
+
 def seasonal_product(regular: np.ndarray, seasonal: np.ndarray, period: int) -> np.ndarray:
     """Coefficients of the product ``a(B) * c(B^s)`` of a regular and a seasonal polynomial.
 
@@ -205,6 +206,7 @@ def is_stationary(phi: np.ndarray) -> bool:
 
 # -- second moments ---------------------------------------------------------------------------
 
+
 def _psi_weights(ar_poly: np.ndarray, ma_poly: np.ndarray, n: int) -> np.ndarray:
     """First ``n`` coefficients of ``theta(B) / phi(B) = sum psi_j B^j``.
 
@@ -224,8 +226,9 @@ def _psi_weights(ar_poly: np.ndarray, ma_poly: np.ndarray, n: int) -> np.ndarray
     return np.array(psi)
 
 
-def arma_autocovariance(ar_poly: np.ndarray, ma_poly: np.ndarray, nlags: int,
-                        basis: np.ndarray | None = None) -> np.ndarray:
+def arma_autocovariance(
+    ar_poly: np.ndarray, ma_poly: np.ndarray, nlags: int, basis: np.ndarray | None = None
+) -> np.ndarray:
     """Autocovariances ``gamma(0..nlags-1)`` of a stationary ARMA process with unit innovation variance.
 
     Solves the linear system ``gamma(k) - sum_j phi_j gamma(|k - j|) = sum_{j>=k} theta_j psi_{j-k}``
@@ -393,6 +396,7 @@ def _factor(cov: np.ndarray) -> np.ndarray:
 
 # -- differencing -----------------------------------------------------------------------------
 
+
 def difference(x: np.ndarray, d: int, seasonal_d: int, period: int) -> np.ndarray:
     """Apply ``(1 - B)^d (1 - B^s)^D`` along the last axis, dropping the first ``d + s D`` values."""
     out = np.asarray(x, dtype=float)
@@ -419,6 +423,7 @@ def differencing_polynomial(d: int, seasonal_d: int, period: int) -> np.ndarray:
 
 
 # -- the exact likelihood ---------------------------------------------------------------------
+
 
 def _padded(poly: np.ndarray, size: int) -> np.ndarray:
     """``poly`` followed by zeros up to length ``size``."""
@@ -560,6 +565,7 @@ def gaussian_loglik(logdet: float, q: float, m: int, sigma2: float) -> float:
 
 # -- conditional sum of squares ---------------------------------------------------------------
 
+
 class ConditionalLikelihood:
     """Conditional sum of squares of a regression with ARMA errors, for fixed data rows.
 
@@ -662,6 +668,7 @@ def css_jacobian(factors: list, ma_poly: np.ndarray, w: np.ndarray, resid: np.nd
 
 # -- innovations of the exact predictor -------------------------------------------------------
 
+
 def standardized_innovations(system: ExactSystem, coef: np.ndarray) -> np.ndarray:
     """One-step innovations of the exact predictor divided by ``sqrt(F_t)``: ``v_t / sqrt(F_t)``.
 
@@ -720,8 +727,10 @@ def standardized_innovations(system: ExactSystem, coef: np.ndarray) -> np.ndarra
 
 # -- simulation -------------------------------------------------------------------------------
 
-def simulate_arma(ar_poly: np.ndarray, ma_poly: np.ndarray, innovations: np.ndarray, sigma2: float,
-                  rng: np.random.Generator) -> np.ndarray:
+
+def simulate_arma(
+    ar_poly: np.ndarray, ma_poly: np.ndarray, innovations: np.ndarray, sigma2: float, rng: np.random.Generator
+) -> np.ndarray:
     """Stationary ARMA path driven by ``innovations``, started from the stationary law.
 
     The pre-sample values ``(w_{-1..-r}, e_{-1..-r})`` are drawn jointly Gaussian with covariance

@@ -203,7 +203,9 @@ class ForecastModel(abc.ABC):
         return self.errors(y, params, exog)
 
     @abc.abstractmethod
-    def simulate(self, params: Mapping[str, float], n: int, rng: np.random.Generator, exog=None, innovations=None) -> np.ndarray:
+    def simulate(
+        self, params: Mapping[str, float], n: int, rng: np.random.Generator, exog=None, innovations=None
+    ) -> np.ndarray:
         """Simulate ``n`` observations from the model with the given parameters.
 
         ``innovations`` (length ``n``, standardised or not: they are used as the one-step
@@ -237,6 +239,7 @@ class ForecastModel(abc.ABC):
 
     def to_dict(self) -> dict:
         """``{"family": ..., **hyperparameters}`` with tuples as lists (JSON-ready)."""
+
         def plain(v):
             if isinstance(v, tuple):
                 return [plain(x) for x in v]

@@ -225,16 +225,31 @@ class Arima(ForecastModel):
         beta = np.array([params[name] for name in names[coefs.size : -1]])
         aic, bic = information_criteria(point.loglik, len(params), point.nobs)
         if not converged:
-            warnings.warn(ConvergenceWarning(
-                f"{self.describe()}: the optimiser did not converge ({message}); the estimates may not "
-                "maximise the likelihood. Check the series for level shifts or outliers, raise maxiter, "
-                "or lower the orders."), stacklevel=2)
+            warnings.warn(
+                ConvergenceWarning(
+                    f"{self.describe()}: the optimiser did not converge ({message}); the estimates may not "
+                    "maximise the likelihood. Check the series for level shifts or outliers, raise maxiter, "
+                    "or lower the orders."
+                ),
+                stacklevel=2,
+            )
         return FitResult(
-            spec=copy.deepcopy(self), params=params, loglik=point.loglik, sigma2=point.sigma2, aic=aic,
-            bic=bic, nobs=point.nobs, residuals=self._innovations(data, coefs, beta), converged=converged,
-            message=message, iterations=evaluations,
-            extras={"bse": estimator.standard_errors(coefs, point, names), "method": self.method,
-                    "differenced_nobs": data.rows.shape[1]},
+            spec=copy.deepcopy(self),
+            params=params,
+            loglik=point.loglik,
+            sigma2=point.sigma2,
+            aic=aic,
+            bic=bic,
+            nobs=point.nobs,
+            residuals=self._innovations(data, coefs, beta),
+            converged=converged,
+            message=message,
+            iterations=evaluations,
+            extras={
+                "bse": estimator.standard_errors(coefs, point, names),
+                "method": self.method,
+                "differenced_nobs": data.rows.shape[1],
+            },
         )
 
     def errors(self, y, params: Mapping[str, float], exog=None) -> np.ndarray:
@@ -282,8 +297,9 @@ class Arima(ForecastModel):
         base["intercept"] = -float(e0[ok] @ slope[ok]) / denom if denom > 0 else float(params.get("intercept", 0.0))
         return self.errors(y, base, exog)
 
-    def simulate(self, params: Mapping[str, float], n: int, rng: np.random.Generator, exog=None,
-                 innovations=None) -> np.ndarray:
+    def simulate(
+        self, params: Mapping[str, float], n: int, rng: np.random.Generator, exog=None, innovations=None
+    ) -> np.ndarray:
         """Simulate ``n`` values of the model.
 
         The ARMA part of the differenced series starts in its stationary law (pre-sample values
@@ -580,7 +596,13 @@ class _Estimator:
                 damping *= growth
                 growth *= 2.0
             else:
-                return coefs, information, True, f"css: converged ({iteration} iterations, no further decrease)", evaluations
+                return (
+                    coefs,
+                    information,
+                    True,
+                    f"css: converged ({iteration} iterations, no further decrease)",
+                    evaluations,
+                )
             decrease = (q - trial_q) / q
             coefs, resid_rows, beta, q = trial, trial_rows, trial_beta, trial_q
             if decrease < tolerance:
@@ -628,8 +650,9 @@ class _Estimator:
             options["hess_inv0"] = hess_inv0
         res = minimize(self._value_and_gradient, x0, jac=True, method="BFGS", options=options)
         gain = 0.5 * m * float(res.jac @ res.hess_inv @ res.jac)
-        converged = bool(np.isfinite(res.fun) and (res.success or gain < _GAIN_TOLERANCE)
-                         and res.nit < self.spec.maxiter)
+        converged = bool(
+            np.isfinite(res.fun) and (res.success or gain < _GAIN_TOLERANCE) and res.nit < self.spec.maxiter
+        )
         evaluations = int(res.nfev) * (1 + x0.size)
         return self.layout.constrain(res.x), converged, f"exact: {res.message}", evaluations
 
@@ -668,6 +691,7 @@ class _Estimator:
 
 
 # -- small helpers ----------------------------------------------------------------------------
+
 
 def _coef_vector(beta: np.ndarray) -> np.ndarray:
     """``[1, -beta]``: the combination of the rows ``[z; X]`` that gives ``w = z - X beta``."""

@@ -112,7 +112,9 @@ def resolve_function(path: str, owner: str = "NonlinearAR") -> Callable:
     target: Any = module
     for part in attribute.split("."):
         if not hasattr(target, part):
-            public = sorted(name for name, value in vars(module).items() if callable(value) and not name.startswith("_"))
+            public = sorted(
+                name for name, value in vars(module).items() if callable(value) and not name.startswith("_")
+            )
             raise SpecificationError(
                 f"{owner}: module {module_name!r} has no attribute {attribute!r} (function={path!r}); "
                 f"its public callables are: {', '.join(public) or 'none'}."
@@ -193,7 +195,9 @@ class NonlinearAR(ForecastModel):
             start, exog = None, None
         else:
             if delay is not None or trim != 0.15:
-                raise SpecificationError(f"{owner}: delay and trim apply to function='setar' only; drop them for {function!r}.")
+                raise SpecificationError(
+                    f"{owner}: delay and trim apply to function='setar' only; drop them for {function!r}."
+                )
             start = _check_start(start, function, owner)
             exog = _check_exog_names(exog, owner)
         self.function = function
@@ -257,7 +261,9 @@ class NonlinearAR(ForecastModel):
                 )
             return np.empty((n, 0))
         if exog is None:
-            raise SpecificationError(f"{self.describe()}: the spec needs exogenous columns {list(self.exog)}; pass exog.")
+            raise SpecificationError(
+                f"{self.describe()}: the spec needs exogenous columns {list(self.exog)}; pass exog."
+            )
         X, names = exog_matrix(exog, n, self.describe())
         missing = [name for name in self.exog if name not in names]
         if missing:
@@ -328,7 +334,9 @@ class NonlinearAR(ForecastModel):
         if d != round(d) or d < 1:
             raise SpecificationError(f"{self.describe()}: delay must be a positive integer; got {d!r}.")
         if self.delay is not None and int(d) != self.delay:
-            raise SpecificationError(f"{self.describe()}: the parameters have delay {int(d)} but the spec fixes {self.delay}.")
+            raise SpecificationError(
+                f"{self.describe()}: the parameters have delay {int(d)} but the spec fixes {self.delay}."
+            )
         return int(d)
 
     def fit(self, y, exog=None) -> FitResult:
@@ -383,8 +391,9 @@ class NonlinearAR(ForecastModel):
             r = target - self._call(f, theta, lags, X)
             return np.where(np.isfinite(r), r, _NONFINITE_PENALTY)
 
-        res = least_squares(residuals, theta0, method="lm", xtol=1e-14, ftol=1e-14, gtol=1e-14,
-                            max_nfev=200 * (theta0.size + 1))
+        res = least_squares(
+            residuals, theta0, method="lm", xtol=1e-14, ftol=1e-14, gtol=1e-14, max_nfev=200 * (theta0.size + 1)
+        )
         theta = res.x
         names = list(self.start)
         params = dict(zip(names, map(float, theta)))
@@ -401,7 +410,9 @@ class NonlinearAR(ForecastModel):
                 ConvergenceWarning,
                 stacklevel=3,
             )
-        return self._result(params | {"sigma2": sigma2}, e, n_eff, converged, str(res.message), int(res.nfev), {"bse": bse})
+        return self._result(
+            params | {"sigma2": sigma2}, e, n_eff, converged, str(res.message), int(res.nfev), {"bse": bse}
+        )
 
     def _fit_setar(self, y: np.ndarray) -> FitResult:
         delays = [self.delay] if self.delay else list(range(1, max(self.lags) + 1))
@@ -430,7 +441,9 @@ class NonlinearAR(ForecastModel):
     def _result(self, params, e, n_eff, converged, message, iterations, extras) -> FitResult:
         sigma2 = params["sigma2"]
         if not sigma2 > 0:
-            raise SpecificationError(f"{self.describe()}: the fit is exact (zero residuals); the series is deterministic.")
+            raise SpecificationError(
+                f"{self.describe()}: the fit is exact (zero residuals); the series is deterministic."
+            )
         loglik = -0.5 * n_eff * (math.log(2.0 * math.pi * sigma2) + 1.0)
         aic, bic = information_criteria(loglik, len(params), n_eff)
         return FitResult(
@@ -448,8 +461,16 @@ class NonlinearAR(ForecastModel):
             extras=extras,
         )
 
-    def simulate(self, params: Mapping[str, float], n: int, rng: np.random.Generator, exog=None, innovations=None,
-                 *, burn: int = BURN_IN) -> np.ndarray:
+    def simulate(
+        self,
+        params: Mapping[str, float],
+        n: int,
+        rng: np.random.Generator,
+        exog=None,
+        innovations=None,
+        *,
+        burn: int = BURN_IN,
+    ) -> np.ndarray:
         """Simulate n observations after ``burn`` discarded ones started from zeros.
 
         Parameters
@@ -477,7 +498,9 @@ class NonlinearAR(ForecastModel):
         """
         vec = self._check_params(params, [])
         if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-            raise InputError(f"{self.describe()}: the number of observations to simulate must be a positive integer; got {n!r}.")
+            raise InputError(
+                f"{self.describe()}: the number of observations to simulate must be a positive integer; got {n!r}."
+            )
         sigma = math.sqrt(vec[-1]) if vec[-1] > 0 else 0.0
         if innovations is None:
             if not vec[-1] > 0:
@@ -541,7 +564,9 @@ def _threshold_search(y: np.ndarray, lags: np.ndarray, delays: list[int], origin
         split = split[ok]
         if split.size == 0:
             continue
-        rss = _regime_rss(XX[split], Xy[split], yy[split]) + _regime_rss(XX[-1] - XX[split], Xy[-1] - Xy[split], yy[-1] - yy[split])
+        rss = _regime_rss(XX[split], Xy[split], yy[split]) + _regime_rss(
+            XX[-1] - XX[split], Xy[-1] - Xy[split], yy[-1] - yy[split]
+        )
         i = int(np.argmin(rss))
         if best is None or rss[i] < best[0]:
             best = (rss[i], d, float(zs[split[i]]))
@@ -611,8 +636,11 @@ def _check_lags(lags, owner: str) -> tuple[int, ...]:
         values = tuple(int(lag) for lag in lags)
     except (TypeError, ValueError):
         raise SpecificationError(f"{owner}: lags must be a sequence of positive integers; got {lags!r}.") from None
-    if not values or any(v < 1 for v in values) or len(set(values)) != len(values) or any(
-        float(a) != b for a, b in zip(lags, values)
+    if (
+        not values
+        or any(v < 1 for v in values)
+        or len(set(values)) != len(values)
+        or any(float(a) != b for a, b in zip(lags, values))
     ):
         raise SpecificationError(f"{owner}: lags must be distinct positive integers, e.g. (1, 2); got {lags!r}.")
     return values
@@ -627,7 +655,9 @@ def _check_start(start, function: str, owner: str) -> dict[str, float]:
     out = {}
     for name, value in start.items():
         if not isinstance(name, str) or not _IDENTIFIER.match(name) or name == "sigma2":
-            raise SpecificationError(f"{owner}: parameter name {name!r} in start must be an identifier other than 'sigma2'.")
+            raise SpecificationError(
+                f"{owner}: parameter name {name!r} in start must be an identifier other than 'sigma2'."
+            )
         try:
             value = float(value)
         except (TypeError, ValueError):

@@ -56,12 +56,19 @@ _LOCAL_SEARCHES = 3
 #: (AirPassengers ETS(A,N,A) and ETS(A,Ad,N), austourists ETS(A,A,N)) and a small-alpha maximum beside a
 #: local one at the lower bound (nottem ETS(A,N,A), alpha 0.031) are missed from interior points alone
 #: (tests/test_smoothing.py compares every spec with statsmodels' ETSModel on packaged series).
-_START_AXES = {"alpha": (0.01, 0.03, 0.1, 0.3, 0.9), "beta": (0.01, 0.1, 0.9), "gamma": (0.01, 0.2, 0.9), "phi": (0.8, 0.98)}
+_START_AXES = {
+    "alpha": (0.01, 0.03, 0.1, 0.3, 0.9),
+    "beta": (0.01, 0.1, 0.9),
+    "gamma": (0.01, 0.2, 0.9),
+    "phi": (0.8, 0.98),
+}
 #: Stand-in for non-finite one-step errors during the multiplicative-season search (series scaled to mean 1).
 _NONFINITE_PENALTY = 1e6
 
 
-def error_filter(alpha: float, beta: float, gamma: float, phi: float, trend: bool, period: int) -> tuple[np.ndarray, np.ndarray]:
+def error_filter(
+    alpha: float, beta: float, gamma: float, phi: float, trend: bool, period: int
+) -> tuple[np.ndarray, np.ndarray]:
     """Numerator and denominator of the filter from ``y - d`` to the one-step errors (additive ETS).
 
     Parameters
@@ -270,7 +277,7 @@ class ExpSmoothing(ForecastModel):
             "phi": col.get("phi", np.ones(B)),
             "l0": col["l0"],
             "b0": col.get("b0", np.zeros(B)),
-            "seasonal": P[:, len(names) - (self.period - 1):] if self.seasonal else np.zeros((B, 0)),
+            "seasonal": P[:, len(names) - (self.period - 1) :] if self.seasonal else np.zeros((B, 0)),
         }
 
     def _first_cycle(self, free: np.ndarray) -> np.ndarray:
@@ -324,12 +331,12 @@ class ExpSmoothing(ForecastModel):
     def _deterministic_path(self, row: np.ndarray, n: int) -> np.ndarray:
         """d_t = l0 + b0 (phi + ... + phi^t) + s_{t-m}: the predictions when every error is zero (additive)."""
         phi = self._smoothing_values(row)["phi"]
-        states = row[len(self._smoothing_names()):]
+        states = row[len(self._smoothing_names()) :]
         path = np.full(n, states[0])
         if self.trend:
             path += states[1] * np.cumsum(phi ** np.arange(1, n + 1))
         if self.seasonal:
-            path += np.resize(self._first_cycle(states[None, -(self.period - 1):])[0], n)
+            path += np.resize(self._first_cycle(states[None, -(self.period - 1) :])[0], n)
         return path
 
     def _smoothing_values(self, theta: np.ndarray) -> dict[str, float]:
@@ -548,8 +555,14 @@ class ExpSmoothing(ForecastModel):
         grid = self._start_grid()
         values = np.array([objective(z) for z in grid])
         runs = [
-            minimize(value_and_gradient, grid[i], method="L-BFGS-B", jac=True, bounds=bounds,
-                     options={"ftol": 1e-13, "gtol": 1e-9, "maxiter": 500})
+            minimize(
+                value_and_gradient,
+                grid[i],
+                method="L-BFGS-B",
+                jac=True,
+                bounds=bounds,
+                options={"ftol": 1e-13, "gtol": 1e-9, "maxiter": 500},
+            )
             for i in np.argsort(values, kind="stable")[:_LOCAL_SEARCHES]
         ]
         runs.sort(key=lambda r: (_rounded(r.fun), not r.success))  # near-ties: a converged run first
@@ -585,9 +598,18 @@ class ExpSmoothing(ForecastModel):
             return np.where(np.isfinite(J), J, 0.0)
 
         runs = [
-            least_squares(residuals, np.clip(self._to_optimiser(start), lower, upper), jac=jacobian,
-                          bounds=(lower, upper), method="trf", x_scale="jac", ftol=1e-12, xtol=1e-12, gtol=1e-10,
-                          max_nfev=500)
+            least_squares(
+                residuals,
+                np.clip(self._to_optimiser(start), lower, upper),
+                jac=jacobian,
+                bounds=(lower, upper),
+                method="trf",
+                x_scale="jac",
+                ftol=1e-12,
+                xtol=1e-12,
+                gtol=1e-10,
+                max_nfev=500,
+            )
             for start in self._multiplicative_starts(ys)
         ]
         res = min(runs, key=lambda r: (_rounded(r.cost), not r.success))
@@ -610,11 +632,11 @@ class ExpSmoothing(ForecastModel):
             if any(np.allclose(vec[:k], s[:k], atol=1e-3) for s in starts):
                 continue
             level = vec[k]
-            offsets = additive._first_cycle(vec[None, -(m - 1):])[0][::-1]  # s0..s{m-1}
+            offsets = additive._first_cycle(vec[None, -(m - 1) :])[0][::-1]  # s0..s{m-1}
             factors = np.clip(1.0 + offsets / level, 0.05, None) if level > 0 else np.ones(m)
             factors *= m / factors.sum()
             start = vec.copy()
-            start[-(m - 1):] = factors[:-1]
+            start[-(m - 1) :] = factors[:-1]
             starts.append(start)
         heavy = self._to_optimiser(starts[0])
         heavy[:k] = [0.97 if name == "phi" else (0.1 if name == "alpha" else 0.01) for name in self._smoothing_names()]
@@ -702,7 +724,9 @@ class ExpSmoothing(ForecastModel):
         return hits
 
     # -- simulation ----------------------------------------------------------------------------
-    def simulate(self, params: Mapping[str, float], n: int, rng: np.random.Generator, exog=None, innovations=None) -> np.ndarray:
+    def simulate(
+        self, params: Mapping[str, float], n: int, rng: np.random.Generator, exog=None, innovations=None
+    ) -> np.ndarray:
         """Simulate n observations from the states in ``params`` (l0, b0, s*) forward.
 
         Parameters
@@ -840,7 +864,9 @@ class _AdditiveProfile:
         row = np.concatenate([theta, states])
         with np.errstate(over="ignore", invalid="ignore"):
             w = lfilter([1.0], den, np.stack([self.y - spec._deterministic_path(row, self.y.size), e]), axis=-1)
-        lagged_products = np.stack([e @ _lagged(w[0], self.coefficient_shifts), e @ _lagged(w[1], self.coefficient_shifts)])
+        lagged_products = np.stack(
+            [e @ _lagged(w[0], self.coefficient_shifts), e @ _lagged(w[1], self.coefficient_shifts)]
+        )
         grad = np.empty(len(theta))
         for i, name in enumerate(spec._smoothing_names()):
             shifted = dict(c)

@@ -449,4 +449,3 @@ def _transient(task, task_run, state) -> bool:
     except Exception:
         return False
     return False
-

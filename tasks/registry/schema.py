@@ -263,6 +263,8 @@ SeriesKey = Annotated[
 IsoDate = Annotated[
     str | None, BeforeValidator(_iso_date, json_schema_input_type=dt.date | None), expect("a date like 2026-06-30")
 ]
+
+
 def _uri_template(value: str) -> str:
     problem = uri_template_problem(value)
     if problem:
@@ -281,7 +283,9 @@ def _filter_term(value: Any) -> tuple:
 #: One row-filter term ``[column, op, value]`` (see :mod:`fitaudit.tasks.uris`).
 FilterTerm = Annotated[Any, AfterValidator(_filter_term)]
 #: A calendar date, kept as ``YYYY-MM-DD``.
-HolidayDate = Annotated[str, BeforeValidator(_iso_date, json_schema_input_type=dt.date), expect("a date like 2026-12-25")]
+HolidayDate = Annotated[
+    str, BeforeValidator(_iso_date, json_schema_input_type=dt.date), expect("a date like 2026-12-25")
+]
 PositiveNumber = bounded(Interval(float, 0.0, None, "neither"), "a positive number")
 Tier = bounded(Interval(int, 1, 3))
 Version = Annotated[Literal[1], BeforeValidator(_not_bool), expect("1 (the only registry version this fitaudit reads)")]
@@ -404,7 +408,11 @@ class DaysToAct(Block):
     def for_tier(self, tier: int | None) -> int:
         """The days of ``tier``; for an unknown tier (an entry the registry rejected) the shortest."""
         days = {1: self.tier_1, 2: self.tier_2, 3: self.tier_3}
-        return days.get(tier, min(days.values())) if isinstance(tier, int) and not isinstance(tier, bool) else min(days.values())
+        return (
+            days.get(tier, min(days.values()))
+            if isinstance(tier, int) and not isinstance(tier, bool)
+            else min(days.values())
+        )
 
 
 class OwnerNotice(Block):
@@ -414,10 +422,12 @@ class OwnerNotice(Block):
     missing_hints = {"*": "a notice needs both owner and block, e.g. {owner: ..., block: slack-webhook/south-zone}"}
 
     owner: Text = Field(description="The owner, exactly as the model entries write it.")
-    block: Annotated[str, Field(pattern=r"^[a-z0-9-]+/[A-Za-z0-9_.-]+$"), AfterValidator(_text),
-                     expect("a Prefect block as 'block-type/block-name', e.g. slack-webhook/south-zone")] = Field(
-        description="The Prefect notification block that reaches the owner, as 'block-type/block-name'."
-    )
+    block: Annotated[
+        str,
+        Field(pattern=r"^[a-z0-9-]+/[A-Za-z0-9_.-]+$"),
+        AfterValidator(_text),
+        expect("a Prefect block as 'block-type/block-name', e.g. slack-webhook/south-zone"),
+    ] = Field(description="The Prefect notification block that reaches the owner, as 'block-type/block-name'.")
 
 
 class Policy(Block):
@@ -522,7 +532,9 @@ class SourceEntry(Block):
     holidays: Annotated[tuple[HolidayDate, ...], expect("a list of dates like [2026-12-25, 2026-12-26]")] = Field(
         (), description="Dates business-day sources (frequency B) have no observation for."
     )
-    filter: Annotated[tuple[FilterTerm, ...], expect("a list of [column, op, value] terms, e.g. [[region, in, [north, south]]]")] = Field(
+    filter: Annotated[
+        tuple[FilterTerm, ...], expect("a list of [column, op, value] terms, e.g. [[region, in, [north, south]]]")
+    ] = Field(
         (),
         description="Rows to keep, every term holding: [column, op, value] with op one of "
         + ", ".join(FILTER_OPS)
@@ -867,8 +879,19 @@ class ModelEntry(EntryBase):
     :func:`fitaudit.core.models.model_from_dict`), a ``noise`` law, and fit and audit windows."""
 
     key_order = (
-        "id", "owner", "tier", "description", "source", "series", "value", "exogenous", "spec", "noise", "windows",
-        "settings", "last_validated",
+        "id",
+        "owner",
+        "tier",
+        "description",
+        "source",
+        "series",
+        "value",
+        "exogenous",
+        "spec",
+        "noise",
+        "windows",
+        "settings",
+        "last_validated",
     )
     missing_hints = {
         "*": "required in every model entry ({required})",
@@ -941,7 +964,11 @@ def _quantile_columns(columns: dict) -> dict:
                 on_key=True,
             )
         if level in seen:
-            raise invalid(f"quantile level {key!r} is the level of {seen[level]!r} again; keep one column per level", at=(key,), on_key=True)
+            raise invalid(
+                f"quantile level {key!r} is the level of {seen[level]!r} again; keep one column per level",
+                at=(key,),
+                on_key=True,
+            )
         seen[level] = key
     if len(seen) < 2:
         raise invalid(
@@ -951,7 +978,9 @@ def _quantile_columns(columns: dict) -> dict:
     names = tuple(columns.values())
     for i, name in enumerate(names):
         if name in names[:i]:
-            raise invalid(f"column {name!r} is given for two levels; each level needs its own column", at=(list(columns)[i],))
+            raise invalid(
+                f"column {name!r} is given for two levels; each level needs its own column", at=(list(columns)[i],)
+            )
     return columns
 
 
@@ -989,7 +1018,7 @@ class Forecasts(Block):
     )
     quantiles: QuantileColumns = Field(
         None,
-        description="Predictive quantile columns by level, e.g. {\"0.05\": q05, \"0.95\": q95}: at least two levels "
+        description='Predictive quantile columns by level, e.g. {"0.05": q05, "0.95": q95}: at least two levels '
         "strictly between 0 and 1 (instead of mean, scale and noise).",
     )
     horizon: bounded(Interval(int, 1, None)) = Field(1, description="Steps ahead the forecasts were issued.")
@@ -1083,7 +1112,11 @@ class Forecasts(Block):
         """One line, e.g. ``forecasts (quantiles 0.05..0.95), 1-step``."""
         if self.quantiles is not None:
             levels = list(self.levels())
-            what = f"quantiles {levels[0]:g}..{levels[-1]:g}" if len(levels) > 2 else "quantiles " + ", ".join(f"{x:g}" for x in levels)
+            what = (
+                f"quantiles {levels[0]:g}..{levels[-1]:g}"
+                if len(levels) > 2
+                else "quantiles " + ", ".join(f"{x:g}" for x in levels)
+            )
         else:
             law = self.law()
             name = law["law"] if law["shape"] is None else f"{law['law']}({law['shape']:g})"
@@ -1137,7 +1170,16 @@ class ForecastEntry(EntryBase):
     uncertainty (:func:`fitaudit.core.forecasts.audit_forecasts`) and never refits the model."""
 
     key_order = (
-        "id", "owner", "tier", "description", "source", "series", "value", "forecasts", "windows", "settings",
+        "id",
+        "owner",
+        "tier",
+        "description",
+        "source",
+        "series",
+        "value",
+        "forecasts",
+        "windows",
+        "settings",
         "last_validated",
     )
 
@@ -1168,9 +1210,13 @@ class ForecastEntry(EntryBase):
             h = self.forecasts.horizon
             per = (
                 f"each of the {h} interleaved subsequences of {h}-step forecasts needs {minimum_length(0)} observations"
-                if h > 1 else f"the cells of the distribution gate need {minimum_length(0)} observations"
+                if h > 1
+                else f"the cells of the distribution gate need {minimum_length(0)} observations"
             )
-            raise invalid(f"the audit window ({self.windows.audit}) is too short: {per}, so give audit >= {need}", at=("windows", "audit"))
+            raise invalid(
+                f"the audit window ({self.windows.audit}) is too short: {per}, so give audit >= {need}",
+                at=("windows", "audit"),
+            )
         sources = _context(info).get("sources")
         source = sources.get(self.source) if isinstance(sources, dict) else None
         if source is None:
