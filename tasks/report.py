@@ -739,6 +739,11 @@ def _meta_view(meta: Mapping[str, Any]) -> dict:
         and isinstance(t.get("registered"), int)
         and t["registered"] > 0
     ]
+    view["history_problems"] = [
+        {k: _text(p.get(k)) for k in ("run_id", "as_of", "problem")}
+        for p in meta.get("history_problems") or ()
+        if isinstance(p, Mapping)
+    ]
     return view
 
 

@@ -453,7 +453,7 @@ def test_staging_uses_one_snapshot_of_the_production_versions(tmp_path, monkeypa
     reg = load_registry(fleet.write())
     real = batches._model_input
 
-    def promotion_meanwhile(entry, *args):  # `fitaudit promote` for m-b while m-a is being staged
+    def promotion_meanwhile(entry, *args, **kwargs):  # `fitaudit promote` for m-b while m-a is being staged
         if entry.id == "m-a":
             v = param_store.write_version(
                 store,
@@ -466,7 +466,7 @@ def test_staging_uses_one_snapshot_of_the_production_versions(tmp_path, monkeypa
                 lineage={},
             )
             param_store.promote(store, "m-b", v.version, approved_by="A. Approver", note="meanwhile")
-        return real(entry, *args)
+        return real(entry, *args, **kwargs)
 
     monkeypatch.setattr(batches, "_model_input", promotion_meanwhile)
     staged = batches.stage_inputs(reg, AS_OF, tmp_path / "work", archive_root=store)
