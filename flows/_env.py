@@ -78,8 +78,11 @@ def _write_logging_config(home: pathlib.Path) -> pathlib.Path:
     return target
 
 
-def configure_prefect(workdir: str | os.PathLike | None = None) -> dict:
+def configure_prefect(workdir: str | os.PathLike | None = None, write_logging: bool = True) -> dict:
     """Set the process environment for a quiet local Prefect run; returns what was chosen.
+
+    ``write_logging=False`` writes nothing (commands that never start a flow, such as ``verify``,
+    must not leave a ``.prefect`` folder in the working directory: it may be inside an archive).
 
     Idempotent, and never overrides a setting the user gave.
     """
@@ -91,7 +94,7 @@ def configure_prefect(workdir: str | os.PathLike | None = None) -> dict:
     for key, value in QUIET_SETTINGS.items():
         os.environ.setdefault(key, value)
     home = pathlib.Path(os.environ.get("PREFECT_HOME", pathlib.Path.home() / ".prefect"))
-    if "PREFECT_LOGGING_CONFIG_PATH" not in os.environ:
+    if write_logging and "PREFECT_LOGGING_CONFIG_PATH" not in os.environ:
         os.environ["PREFECT_LOGGING_CONFIG_PATH"] = str(_write_logging_config(home))
     return {
         "home": str(home),

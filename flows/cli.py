@@ -644,10 +644,14 @@ def _quiet_prefect_tracebacks() -> None:
             logger.addFilter(expected)
 
 
+#: Commands that run Prefect flows (only these write Prefect's logging configuration).
+FLOW_COMMANDS = frozenset({"demo", "run", "refit", "backfill", "serve"})
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``fitaudit`` command."""
     args = build_parser().parse_args(argv)
-    _env.configure_prefect()
+    _env.configure_prefect(write_logging=args.command in FLOW_COMMANDS)
     from fitaudit.core.exceptions import FitauditError
 
     from .server import reap_stale_servers

@@ -70,3 +70,16 @@ def test_help_loads_no_heavy_library(tmp_path):
     out = _probe(["--help"], tmp_path)
     assert out["rc"] == 0
     assert out["loaded"] == []
+
+
+def test_verify_inside_an_archive_leaves_nothing_behind(tmp_path):
+    """`fitaudit verify` run from inside a run folder must not create Prefect's home there: the
+    folder would be an added file of the run (found while auditing the demo archive)."""
+    import os
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if not k.startswith("PREFECT_")}
+    code = "import sys; from fitaudit.flows.cli import main; sys.exit(main(['verify', sys.argv[1]]))"
+    subprocess.run([sys.executable, "-c", code, str(tmp_path)], cwd=tmp_path, env=env, capture_output=True, timeout=120)
+    assert not (tmp_path / ".prefect").exists()
