@@ -52,6 +52,8 @@ __all__ = [
     "CalibrationCache",
     "key_rng",
     "production_table",
+    "settings_production_table",
+    "settings_refit_table",
     "refit_table",
     "bootstrap_table",
     "standardised_maximum",
@@ -432,6 +434,31 @@ def production_table(
     return (cache if cache is not None else CalibrationCache()).get(key, build)
 
 
+def settings_production_table(
+    settings, n: int, s: int, gate: Gate | None, cache: CalibrationCache | None = None
+) -> NullTable:
+    """:func:`production_table` with the grid, replicates and seed of ``settings`` (an ``AuditSettings``)."""
+    grid = (settings.alphas, settings.betas, settings.scaling, settings.r)
+    return production_table(n, s, *grid, settings.replicates, settings.seed, cache, gate=gate)
+
+
+def settings_refit_table(
+    settings,
+    law,
+    n: int,
+    s: int,
+    location: bool,
+    gate: Gate | None,
+    shape: float | None = None,
+    cache: CalibrationCache | None = None,
+) -> NullTable:
+    """:func:`refit_table` with the grid, replicates and seed of ``settings`` (an ``AuditSettings``)."""
+    grid = (settings.alphas, settings.betas, settings.scaling, settings.r)
+    return refit_table(
+        law, n, s, location, *grid, settings.replicates, settings.seed, shape=shape, cache=cache, gate=gate
+    )
+
+
 def shape_key(shape: float | None) -> float | None:
     """Shape value used in table keys: two significant digits (the null is simulated there)."""
     if shape is None:
@@ -609,38 +636,13 @@ def prepare_calibration(
             model, law = as_model(spec), as_noise_law(noise)
             if has_production and n_obs >= settings.audit_window:
                 n = settings.audit_window
-                production_table(
-                    n,
-                    number_of_cells(n, 0),
-                    settings.alphas,
-                    settings.betas,
-                    settings.scaling,
-                    settings.r,
-                    settings.replicates,
-                    settings.seed,
-                    cache,
-                    gate=settings.gate(n, 0),
-                )
+                settings_production_table(settings, n, number_of_cells(n, 0), settings.gate(n, 0), cache)
             if settings.calibration == "simulated" and law.pivotal and not (law.has_shape and law.shape is None):
                 n = (settings.fit_window or n_obs) - model.presample()
                 location = model.has_location()
                 s = number_of_cells(n, law.n_estimated(location))
                 k = law.n_estimated(location)
-                refit_table(
-                    law,
-                    n,
-                    s,
-                    location,
-                    settings.alphas,
-                    settings.betas,
-                    settings.scaling,
-                    settings.r,
-                    settings.replicates,
-                    settings.seed,
-                    shape=law.shape,
-                    cache=cache,
-                    gate=settings.gate(n, k),
-                )
+                settings_refit_table(settings, law, n, s, location, settings.gate(n, k), shape=law.shape, cache=cache)
         except (FitauditError, ValueError):
             continue  # the model's own audit reports the problem
     return cache

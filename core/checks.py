@@ -31,8 +31,8 @@ from .calibration import (
     independence_table,
     key_rng,
     nrr_term,
-    production_table,
-    refit_table,
+    settings_production_table,
+    settings_refit_table,
     standardised_maximum,
 )
 from .cells import cell_counts, number_of_cells
@@ -277,18 +277,7 @@ def score_frozen(
     if settings.calibration != "asymptotic":
 
         def table_for(n, s, gate):
-            return production_table(
-                n,
-                s,
-                settings.alphas,
-                settings.betas,
-                settings.scaling,
-                settings.r,
-                settings.replicates,
-                settings.seed,
-                cache,
-                gate=gate,
-            )
+            return settings_production_table(settings, n, s, gate, cache)
 
     return _score(kind, e, u, law, nparams, 0, 0, period, settings, table_for, window, cache)
 
@@ -393,54 +382,17 @@ def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label) -> tuple
             if settings.calibration != "asymptotic":
 
                 def table_for(n, s, gate):
-                    return production_table(
-                        n,
-                        s,
-                        settings.alphas,
-                        settings.betas,
-                        settings.scaling,
-                        settings.r,
-                        settings.replicates,
-                        settings.seed,
-                        cache,
-                        gate=gate,
-                    )
+                    return settings_production_table(settings, n, s, gate, cache)
         else:
             if settings.calibration == "simulated":
 
                 def table_for(n, s, gate):
-                    return refit_table(
-                        law,
-                        n,
-                        s,
-                        location,
-                        settings.alphas,
-                        settings.betas,
-                        settings.scaling,
-                        settings.r,
-                        settings.replicates,
-                        settings.seed,
-                        shape=nparams.shape,
-                        cache=cache,
-                        gate=gate,
-                    )
+                    return settings_refit_table(settings, law, n, s, location, gate, shape=nparams.shape, cache=cache)
             elif settings.calibration == "bootstrap":
 
                 def table_for(n, s, gate):
-                    simulated = refit_table(
-                        law,
-                        n,
-                        s,
-                        location,
-                        settings.alphas,
-                        settings.betas,
-                        settings.scaling,
-                        settings.r,
-                        settings.replicates,
-                        settings.seed,
-                        shape=nparams.shape,
-                        cache=cache,
-                        gate=gate,
+                    simulated = settings_refit_table(
+                        settings, law, n, s, location, gate, shape=nparams.shape, cache=cache
                     )
                     return _bootstrap(model, fit, law, nparams, yf, xf, n, s, location, settings, simulated, gate)
 

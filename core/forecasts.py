@@ -67,7 +67,7 @@ import numpy as np
 from scipy import special, stats
 
 from ._validation import Interval, check_param
-from .calibration import CalibrationCache, key_rng, production_table
+from .calibration import CalibrationCache, key_rng, settings_production_table
 from .cells import number_of_cells
 from .change import locate_change
 from .checks import _digest, _failed_check, score_frozen
@@ -1449,18 +1449,7 @@ def prepare_forecast_calibration(
             continue
         for n in forecast_table_lengths(settings.audit_window, horizon):
             try:
-                production_table(
-                    n,
-                    number_of_cells(n, 0),
-                    settings.alphas,
-                    settings.betas,
-                    settings.scaling,
-                    settings.r,
-                    settings.replicates,
-                    settings.seed,
-                    cache,
-                    gate=settings.gate(n, 0),
-                )
+                settings_production_table(settings, n, number_of_cells(n, 0), settings.gate(n, 0), cache)
             except (FitauditError, ValueError):
                 continue  # too short: the audit itself reports it
     return cache
