@@ -303,20 +303,7 @@ def results_rows(doc: Mapping[str, Any]) -> list[dict]:
             ok = chk.get("status") == "ok"
             row[f"{kind}_status"] = chk.get("status")
             row[f"{kind}_partition"] = ((chk.get("gate") or {}).get("deciding") or {}).get("kind") if ok else None
-            for field in (
-                "n",
-                "cells",
-                "t_max",
-                "r_max",
-                "alpha_max",
-                "beta_max",
-                "p_distribution",
-                "p_independence",
-                "p_value",
-                "p_adjusted",
-                "effect_divergence",
-                "effect_acf",
-            ):
+            for field in _CHECK_FIELDS[1:]:  # the numbers (status is above)
                 row[f"{kind}_{field}"] = _num(chk.get(field)) if ok else None
         rows.append(row)
     return rows
