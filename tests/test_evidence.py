@@ -805,6 +805,12 @@ def _gone(procs: list, timeout: float = 30.0) -> list:
         time.sleep(0.2)
 
 
+def _start_run(home, log, registry, archive_path):
+    """`fitaudit run` in batches of four (so that it has worker processes) as a child process."""
+    args = ("run", str(registry), "--archive", str(archive_path), "--as-of", AS_OF.isoformat(), "--batch-size", "4")
+    return _cli(home, log, *args)
+
+
 @pytest.mark.slow
 def test_sigterm_stops_the_embedded_server_and_the_workers(signal_fleet, tmp_path):
     import psutil
@@ -812,18 +818,7 @@ def test_sigterm_stops_the_embedded_server_and_the_workers(signal_fleet, tmp_pat
     root, registry, home = signal_fleet
     log_path = tmp_path / "run.log"
     with open(log_path, "wb") as log:
-        proc = _cli(
-            home,
-            log,
-            "run",
-            str(registry),
-            "--archive",
-            str(tmp_path / "archive"),
-            "--as-of",
-            AS_OF.isoformat(),
-            "--batch-size",
-            "4",
-        )
+        proc = _start_run(home, log, registry, tmp_path / "archive")
         try:
             _wait_for(lambda: b"fitaudit: audited" in log_path.read_bytes(), proc, "a finished batch")
             (record,) = _records(home)
@@ -850,18 +845,7 @@ def test_after_sigkill_the_next_command_reaps_the_server(signal_fleet, tmp_path)
     root, registry, home = signal_fleet
     log_path = tmp_path / "run.log"
     with open(log_path, "wb") as log:
-        proc = _cli(
-            home,
-            log,
-            "run",
-            str(registry),
-            "--archive",
-            str(tmp_path / "archive"),
-            "--as-of",
-            AS_OF.isoformat(),
-            "--batch-size",
-            "4",
-        )
+        proc = _start_run(home, log, registry, tmp_path / "archive")
         try:
             _wait_for(lambda: len(_records(home)) == 1, proc, "the embedded server")
             (record,) = _records(home)
