@@ -35,8 +35,8 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from scipy import stats
 
+from ._scipy import stats
 from .cells import cell_counts, number_of_cells
 from .divergence import divergence_map
 from .exceptions import FitauditError, InputError

@@ -16,8 +16,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import special
 
+from ._scipy import special
 from .calibration import key_rng
 from .cells import cell_index, number_of_cells
 from .exceptions import InputError, InsufficientDataError

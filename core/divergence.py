@@ -42,8 +42,8 @@ from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
-from scipy import special
 
+from ._scipy import special
 from .exceptions import InputError
 
 __all__ = [

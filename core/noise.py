@@ -44,8 +44,8 @@ from dataclasses import dataclass
 from typing import Any, ClassVar
 
 import numpy as np
-from scipy import integrate, special
 
+from ._scipy import integrate, special
 from .exceptions import ConvergenceWarning, InputError, InsufficientDataError, SpecificationError
 
 __all__ = [

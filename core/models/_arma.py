@@ -46,8 +46,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import blas, lapack
-from scipy.signal import lfilter
+
+from .._scipy import blas, lapack, signal
 
 __all__ = [
     "seasonal_product",
@@ -215,7 +215,7 @@ def _psi_weights(ar_poly: np.ndarray, ma_poly: np.ndarray, n: int) -> np.ndarray
     if n > 8:
         impulse = np.zeros(n)
         impulse[0] = 1.0
-        return lfilter(ma_poly, ar_poly, impulse)
+        return signal.lfilter(ma_poly, ar_poly, impulse)
     phi = -np.asarray(ar_poly[1:], dtype=float)
     psi = [0.0] * n
     for j in range(n):
@@ -409,7 +409,7 @@ def difference(x: np.ndarray, d: int, seasonal_d: int, period: int) -> np.ndarra
 
 def integrate(w: np.ndarray, d: int, seasonal_d: int, period: int) -> np.ndarray:
     """Invert ``(1 - B)^d (1 - B^s)^D`` along the last axis, taking pre-sample values as zero."""
-    return lfilter([1.0], differencing_polynomial(d, seasonal_d, period), w, axis=-1)
+    return signal.lfilter([1.0], differencing_polynomial(d, seasonal_d, period), w, axis=-1)
 
 
 def differencing_polynomial(d: int, seasonal_d: int, period: int) -> np.ndarray:
@@ -501,13 +501,13 @@ class ExactLikelihood:
         a = _padded(ma_poly, r + 1)
         # the response to the unit initial state e_i is the impulse response g of 1/theta(B)
         # delayed by i steps (transposed direct form II), so H is Toeplitz: H[t, i] = g[t - i]
-        g = lfilter([1.0], a, self._impulse)
+        g = signal.lfilter([1.0], a, self._impulse)
         g[np.abs(g) < _NEGLIGIBLE] = 0.0  # keep products clear of (very slow) subnormal numbers
         self._shifted[r:] = g
         factor = _factor(initial_state_covariance(b, a, self.layout))
         out = np.empty((r + k, self.nobs))
         out[:r] = factor.T @ np.take(self._shifted, self._toeplitz)  # rows g_t = R' h_t
-        out[r:] = lfilter(b, a, self.rows, axis=-1)  # e0 rows
+        out[r:] = signal.lfilter(b, a, self.rows, axis=-1)  # e0 rows
         # one Cholesky of [[M, R'H'U], [U'HR, U'U]], M = I + R'H'HR: its trailing block is the
         # Woodbury-reduced Gram matrix and its leading diagonal gives log det M
         augmented = out @ out.T
@@ -603,7 +603,7 @@ class ConditionalLikelihood:
         a = _padded(ma_poly, r + 1)
         mw, _ = state_maps(b, a, self.layout)
         zi = self._head @ mw[:, : self.pstar].T
-        return lfilter(b, a, self._tail, axis=-1, zi=zi)[0]
+        return signal.lfilter(b, a, self._tail, axis=-1, zi=zi)[0]
 
     def gram(self, ar_poly: np.ndarray, ma_poly: np.ndarray) -> np.ndarray:
         """``(k, k)`` Gram matrix of the conditional residuals of the rows."""
@@ -658,12 +658,12 @@ def css_jacobian(factors: list, ma_poly: np.ndarray, w: np.ndarray, resid: np.nd
         for g, (side, poly, _, _) in enumerate(factors):
             if g != f and side == is_ma:
                 other = np.convolve(other, poly)
-        signal = e_full if is_ma else w
-        base = np.convolve(signal, other)[:m] if other.size > 1 else signal
+        source = e_full if is_ma else w
+        base = np.convolve(source, other)[:m] if other.size > 1 else source
         inputs.extend(-_lagged(base, period * j, pstar) for j in range(1, count + 1))
     if not inputs:
         return np.empty((0, m - pstar))
-    return lfilter([1.0], ma_poly, np.array(inputs), axis=-1)
+    return signal.lfilter([1.0], ma_poly, np.array(inputs), axis=-1)
 
 
 # -- innovations of the exact predictor -------------------------------------------------------
@@ -770,4 +770,4 @@ def simulate_arma(
     # state of lfilter(b=ma, a=ar, e): inputs are e, outputs are w
     m_in, m_out = state_maps(b, a, layout)
     zi = m_in @ e_past + m_out @ w_past
-    return lfilter(b, a, innovations, zi=zi)[0]
+    return signal.lfilter(b, a, innovations, zi=zi)[0]

@@ -30,9 +30,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import lapack
-from scipy.optimize import minimize
 
+from .._scipy import lapack, optimize
 from .._validation import Interval, Options, validate_params
 from ..exceptions import ConvergenceWarning, InputError, InsufficientDataError, SpecificationError
 from . import _arma
@@ -648,7 +647,7 @@ class _Estimator:
         hess_inv0 = _inverse_if_definite(jac.T @ information @ jac / m)
         if hess_inv0 is not None:
             options["hess_inv0"] = hess_inv0
-        res = minimize(self._value_and_gradient, x0, jac=True, method="BFGS", options=options)
+        res = optimize.minimize(self._value_and_gradient, x0, jac=True, method="BFGS", options=options)
         gain = 0.5 * m * float(res.jac @ res.hess_inv @ res.jac)
         converged = bool(
             np.isfinite(res.fun) and (res.success or gain < _GAIN_TOLERANCE) and res.nit < self.spec.maxiter

@@ -52,8 +52,8 @@ from collections.abc import Callable, Mapping
 from typing import Any
 
 import numpy as np
-from scipy.optimize import least_squares
 
+from .._scipy import optimize
 from .._validation import Interval, check_param
 from ..exceptions import ConvergenceWarning, InputError, SpecificationError
 from ._base import FitResult, ForecastModel, check_series, exog_matrix, information_criteria
@@ -391,7 +391,7 @@ class NonlinearAR(ForecastModel):
             r = target - self._call(f, theta, lags, X)
             return np.where(np.isfinite(r), r, _NONFINITE_PENALTY)
 
-        res = least_squares(
+        res = optimize.least_squares(
             residuals, theta0, method="lm", xtol=1e-14, ftol=1e-14, gtol=1e-14, max_nfev=200 * (theta0.size + 1)
         )
         theta = res.x

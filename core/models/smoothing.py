@@ -32,9 +32,8 @@ import warnings
 from collections.abc import Mapping
 
 import numpy as np
-from scipy.optimize import least_squares, minimize
-from scipy.signal import lfilter
 
+from .._scipy import optimize, signal
 from .._validation import Interval, Options, validate_params
 from ..exceptions import ConvergenceWarning, InputError, SpecificationError
 from ._base import FitResult, ForecastModel, check_series, information_criteria
@@ -350,7 +349,7 @@ class ExpSmoothing(ForecastModel):
 
     def _additive_errors(self, y: np.ndarray, row: np.ndarray) -> np.ndarray:
         num, den = self._additive_filter(self._smoothing_values(row))
-        return lfilter(num, den, y - self._deterministic_path(row, y.size))
+        return signal.lfilter(num, den, y - self._deterministic_path(row, y.size))
 
     def _multiplicative_errors(self, y: np.ndarray, P: np.ndarray) -> np.ndarray:
         """One-step errors of a (B, d) batch of parameter vectors, shape (B, n); see the module notes.
@@ -461,8 +460,6 @@ class ExpSmoothing(ForecastModel):
         k = len(self._smoothing_names())
         theta = vec[:k]
         if self.seasonal == "mul":
-            from scipy.optimize import least_squares
-
             scale = float(np.mean(y))
 
             def resid(states: np.ndarray) -> np.ndarray:
@@ -473,7 +470,7 @@ class ExpSmoothing(ForecastModel):
             start[0] = start[0] / scale
             if self.trend:
                 start[1] = start[1] / scale
-            sol = least_squares(resid, start, method="trf")
+            sol = optimize.least_squares(resid, start, method="trf")
             states = sol.x.copy()
             states[0] *= scale
             if self.trend:
@@ -555,7 +552,7 @@ class ExpSmoothing(ForecastModel):
         grid = self._start_grid()
         values = np.array([objective(z) for z in grid])
         runs = [
-            minimize(
+            optimize.minimize(
                 value_and_gradient,
                 grid[i],
                 method="L-BFGS-B",
@@ -598,7 +595,7 @@ class ExpSmoothing(ForecastModel):
             return np.where(np.isfinite(J), J, 0.0)
 
         runs = [
-            least_squares(
+            optimize.least_squares(
                 residuals,
                 np.clip(self._to_optimiser(start), lower, upper),
                 jac=jacobian,
@@ -759,7 +756,7 @@ class ExpSmoothing(ForecastModel):
         row = vec[:-1]
         if self.seasonal != "mul":
             num, den = self._additive_filter(self._smoothing_values(row))
-            return self._deterministic_path(row, n) + lfilter(den, num, e)
+            return self._deterministic_path(row, n) + signal.lfilter(den, num, e)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             y = self._simulate_multiplicative(row, e)
         if not np.isfinite(y).all():
@@ -841,7 +838,7 @@ class _AdditiveProfile:
         if spec.trend:
             self.inputs[2] = np.cumsum(c["phi"] ** self.powers)
         with np.errstate(over="ignore", invalid="ignore"):
-            F = lfilter(num, den, self.inputs[self.rows], axis=-1)
+            F = signal.lfilter(num, den, self.inputs[self.rows], axis=-1)
         if not np.isfinite(F).all():
             return np.inf, np.zeros(self.n_states), None
         r = F[0]
@@ -863,7 +860,7 @@ class _AdditiveProfile:
         c, num, den, e = parts
         row = np.concatenate([theta, states])
         with np.errstate(over="ignore", invalid="ignore"):
-            w = lfilter([1.0], den, np.stack([self.y - spec._deterministic_path(row, self.y.size), e]), axis=-1)
+            w = signal.lfilter([1.0], den, np.stack([self.y - spec._deterministic_path(row, self.y.size), e]), axis=-1)
         lagged_products = np.stack(
             [e @ _lagged(w[0], self.coefficient_shifts), e @ _lagged(w[1], self.coefficient_shifts)]
         )
@@ -875,7 +872,7 @@ class _AdditiveProfile:
             grad[i] = (num1 - num) @ lagged_products[0] - (den1 - den) @ lagged_products[1]
             if name == "phi":
                 dpath = states[1] * np.cumsum(self.powers * c["phi"] ** (self.powers - 1))
-                grad[i] -= e @ lfilter(num, den, dpath)
+                grad[i] -= e @ signal.lfilter(num, den, dpath)
         return sse, 2.0 * grad, states
 
 
