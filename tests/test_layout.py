@@ -88,6 +88,23 @@ def test_core_imports_only_stdlib_numpy_scipy(path):
         )
 
 
+#: The one module that imports Jinja2 (docs/architecture.md §1.2); the report's views and charts only build dicts.
+JINJA_HOME = "tasks/report/render.py"
+
+
+@pytest.mark.parametrize(
+    "path",
+    sorted(p for top in ("core", "tasks", "flows", API) for p in (REPO / top).rglob("*.py")),
+    ids=lambda p: str(p.relative_to(REPO)),
+)
+def test_only_the_report_renderer_imports_jinja2(path):
+    rel = path.relative_to(REPO).as_posix()
+    imports = _imports(ast.parse(path.read_text(), filename=str(path)))
+    jinja = [line for module, line in imports if module.split(".")[0] == "jinja2"]
+    assert rel == JINJA_HOME or not jinja, f"{rel}:{jinja[0]} imports jinja2; only {JINJA_HOME} may"
+    assert rel != JINJA_HOME or jinja, f"{JINJA_HOME} no longer imports jinja2: update JINJA_HOME"
+
+
 @pytest.mark.parametrize(
     "path",
     sorted(p for top in ("tests", "bench") for p in (REPO / top).rglob("*.py")),

@@ -1,0 +1,146 @@
+"""Numbers and user text as the report prints them.
+
+The number formatters are the Jinja2 filters ``num``, ``p``, ``px`` and ``count`` (registered by
+:mod:`fitaudit.tasks.report.render`); the view builders call them directly.  :func:`user_text`
+guards what autoescape cannot: it makes bidirectional and control characters visible and cuts
+long values.
+"""
+
+from __future__ import annotations
+
+import math
+import unicodedata
+from collections.abc import Mapping
+from typing import Any
+
+#: How many characters of an id, owner or table key are shown before the rest is cut.
+SHORT_TEXT = 160
+_VISIBLE_CONTROLS = {0x061C, 0x200E, 0x200F, 0x2028, 0x2029} | set(range(0x202A, 0x202F)) | set(range(0x2066, 0x206A))
+
+
+def to_float(x: Any) -> float | None:
+    """A number from the document (None, numbers, or the strings "inf", "-inf", "nan")."""
+    if x is None or isinstance(x, bool):
+        return None
+    if isinstance(x, str):
+        try:
+            x = float(x)
+        except ValueError:
+            return None
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return None if math.isnan(v) else v
+
+
+def format_number(x: Any, digits: int = 3) -> str:
+    """A number with ``digits`` significant figures (Jinja filter ``num``).
+
+    Fixed notation without trailing zeros, scientific below 1e-4 and from 1e6 on; integers print
+    whole, missing values (None, NaN) as ``n/a`` and infinities (also the document's ``"inf"``) as
+    ``∞``.
+    """
+    if isinstance(x, int) and not isinstance(x, bool):
+        return str(x)
+    v = to_float(x)
+    if v is None:
+        return "n/a"
+    if math.isinf(v):
+        return "∞" if v > 0 else "-∞"
+    if v == 0:
+        return "0"
+    a = abs(v)
+    if a < 1e-4 or a >= 1e6:
+        return f"{v:.{digits - 1}e}"
+    decimals = max(0, digits - 1 - math.floor(math.log10(a)))
+    text = f"{v:.{decimals}f}"
+    if "." in text:
+        text = text.rstrip("0").rstrip(".")
+    return "0" if float(text) == 0 else text
+
+
+def format_p(p: Any) -> str:
+    """A p-value with three decimals, ``< 0.001`` below that, ``n/a`` when missing (filter ``p``).
+
+    Three decimals match the resolution of the default 999 simulated replicates, whose smallest
+    p-value is 1 / 1000.
+    """
+    v = to_float(p)
+    if v is None:
+        return "n/a"
+    return "< 0.001" if v < 0.001 else f"{v:.3f}"
+
+
+def coord(x: float) -> str:
+    """An SVG coordinate with at most one decimal."""
+    text = f"{x:.1f}"
+    return text[:-2] if text.endswith(".0") else text
+
+
+def count_text(x: Any) -> str:
+    return "n/a" if x is None else str(x)
+
+
+def user_text(value: Any, limit: int | None = None) -> str:
+    """User text made safe to show: bidi/control characters visible as ``[U+XXXX]``, long text cut.
+
+    Escaping of ``<``, ``&`` and quotes is left to autoescape; this guards what escaping cannot:
+    direction overrides that reorder the rest of a line, and invisible controls.
+    """
+    if value is None:
+        return ""
+    text = str(value)
+    cut = 0
+    if limit is not None and len(text) > limit:
+        cut, text = len(text) - limit, text[:limit]
+    out = []
+    for ch in text:
+        code = ord(ch)
+        if code in _VISIBLE_CONTROLS or (unicodedata.category(ch) == "Cc" and ch not in "\t\n"):
+            out.append(f"[U+{code:04X}]")
+        else:
+            out.append(ch)
+    shown = "".join(out)
+    return f"{shown}… (+{cut} characters)" if cut else shown
+
+
+def value_text(value: Any) -> str:
+    """A settings/lineage value as short text."""
+    if value is None:
+        return "—"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, (int, float)):
+        return format_number(value, 4)
+    if isinstance(value, (list, tuple)):
+        if not value:
+            return "none"
+        if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value) and len(value) > 8:
+            return f"{len(value)} values from {format_number(value[0], 4)} to {format_number(value[-1], 4)}"
+        return ", ".join(value_text(v) for v in value[:20]) + (
+            f", … ({len(value) - 20} more)" if len(value) > 20 else ""
+        )
+    if isinstance(value, Mapping):
+        return "; ".join(f"{user_text(k)}: {value_text(v)}" for k, v in value.items())
+    return user_text(value)
+
+
+def kv_rows(mapping: Mapping[str, Any] | None, prefix: str = "", limit: int = 200) -> list[dict]:
+    """Flatten nested mappings (and lists of mappings) into ``{"key", "value"}`` rows."""
+    rows: list[dict] = []
+    for key, value in (mapping or {}).items():
+        name = f"{prefix}{key}"
+        if isinstance(value, Mapping) and value:
+            rows.extend(kv_rows(value, f"{name}.", limit))
+        elif isinstance(value, (list, tuple)) and value and all(isinstance(v, Mapping) for v in value):
+            for i, item in enumerate(value[:20]):
+                rows.extend(kv_rows(item, f"{name}[{i}].", limit))
+            if len(value) > 20:
+                rows.append({"key": user_text(f"{name}[…]"), "value": f"{len(value) - 20} more entries"})
+        else:
+            rows.append({"key": user_text(name, SHORT_TEXT), "value": value_text(value)})
+        if len(rows) >= limit:
+            rows = rows[:limit] + [{"key": "…", "value": "further entries omitted"}]
+            break
+    return rows
