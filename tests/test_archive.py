@@ -518,10 +518,10 @@ def _crash_at(step: str):
 def test_torn_chain_append_is_pending_then_completed(tmp_path, monkeypatch):
     root = tmp_path / "archive"
     _publish(root, "20251229-T220000Z-aaaa", dt.date(2025, 12, 29))
-    monkeypatch.setattr(archive, "_STEP_HOOK", _crash_at("append-journal-written"))
+    monkeypatch.setattr(archive.durable, "_STEP_HOOK", _crash_at("append-journal-written"))
     with pytest.raises(ArchiveError, match="call recover"):
         _publish(root, "20260105-T220000Z-bbbb", dt.date(2026, 1, 5))
-    monkeypatch.setattr(archive, "_STEP_HOOK", None)
+    monkeypatch.setattr(archive.durable, "_STEP_HOOK", None)
     line = json.loads((root / ".journal" / "append.json").read_bytes())["line"].encode()
     with open(root / "chain.jsonl", "ab") as fh:  # what a write cut short by a crash leaves
         fh.write(line[: len(line) // 2])
@@ -543,10 +543,10 @@ def test_torn_chain_append_is_pending_then_completed(tmp_path, monkeypatch):
 
 def test_renamed_run_without_chain_entry_is_pending_then_recorded(tmp_path, monkeypatch):
     root = tmp_path / "archive"
-    monkeypatch.setattr(archive, "_STEP_HOOK", _crash_at("renamed"))
+    monkeypatch.setattr(archive.durable, "_STEP_HOOK", _crash_at("renamed"))
     with pytest.raises(SimulatedCrash):
         _publish(root, "20260105-T220000Z-bbbb", dt.date(2026, 1, 5))
-    monkeypatch.setattr(archive, "_STEP_HOOK", None)
+    monkeypatch.setattr(archive.durable, "_STEP_HOOK", None)
     folder = root / "runs/2026/20260105-T220000Z-bbbb"
     assert folder.is_dir() and not (root / "chain.jsonl").exists()
     assert archive.verify_archive(root) == []
@@ -630,10 +630,10 @@ def test_purge_refuses_tampered_runs_and_pending_work(tmp_path, monkeypatch):
     assert old.path.exists() and len(archive.read_chain(root)) == 1
     _flip_byte(old.path / "index.html")
 
-    monkeypatch.setattr(archive, "_STEP_HOOK", _crash_at("renamed"))
+    monkeypatch.setattr(archive.durable, "_STEP_HOOK", _crash_at("renamed"))
     with pytest.raises(SimulatedCrash):
         _publish(root, "20260105-T220000Z-bbbb", dt.date(2026, 1, 5))
-    monkeypatch.setattr(archive, "_STEP_HOOK", None)
+    monkeypatch.setattr(archive.durable, "_STEP_HOOK", None)
     with pytest.raises(ArchiveError, match="call recover"):
         archive.purge_runs(root, before=dt.date(2026, 1, 1), reason="retention", approved_by="x")
     archive.recover(root)

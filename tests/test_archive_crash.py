@@ -39,7 +39,7 @@ def work(root, mode, kill_step, kill_at, delay):
         if step == kill_step and seen[step] == kill_at:
             os.kill(os.getpid(), signal.SIGKILL)
         time.sleep(delay)
-    archive._STEP_HOOK = hook
+    archive.durable._STEP_HOOK = hook
 
     def publish(run_id):
         with archive.open_run(root, run_id, 2026) as run:

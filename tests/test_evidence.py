@@ -172,10 +172,10 @@ def test_an_interrupted_promotion_leaves_both_or_neither(tmp_path, monkeypatch, 
         if name == step:
             raise SimulatedCrash(step)
 
-    monkeypatch.setattr(archive, "_STEP_HOOK", hook)
+    monkeypatch.setattr(archive.durable, "_STEP_HOOK", hook)
     with pytest.raises(SimulatedCrash):
         param_store.promote(tmp_path, "m1", 1, approved_by="A. Approver", note="validated")
-    monkeypatch.setattr(archive, "_STEP_HOOK", None)
+    monkeypatch.setattr(archive.durable, "_STEP_HOOK", None)
     assert archive.verify_archive(tmp_path) == []  # an interrupted promotion is pending, not a problem
     assert any(n.kind == "pending" for n in archive.verify_archive(tmp_path, include_notes=True))
     archive.recover(tmp_path)
@@ -662,28 +662,28 @@ def test_disk_full_at_publication_prints_the_cause_and_the_next_run_recovers(
 ):
     _, registry = fleet
     store = _copy(after_d1, tmp_path)
-    real_write = archive.write_once
+    real_write = archive.writer.write_once
 
     def full(path, data):
         if pathlib.Path(path).name == "results.parquet":
             raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
         return real_write(path, data)
 
-    monkeypatch.setattr(archive, "write_once", full)
+    monkeypatch.setattr(archive.writer, "write_once", full)
     capsys.readouterr()
     assert _run(registry, store, D2) == EXIT_ERROR
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "results.parquet" in err[0] and "No space left on device [ENOSPC]" in err[0], err
     assert "already published" not in err[0]
-    monkeypatch.setattr(archive, "write_once", real_write)
+    monkeypatch.setattr(archive.writer, "write_once", real_write)
 
-    real_append, calls = archive._append_bytes, []
+    real_append, calls = archive.chain._append_bytes, []
 
     def full_after_rename(path, data):  # the run folder is already renamed into runs/
         calls.append(path)
         raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
 
-    monkeypatch.setattr(archive, "_append_bytes", full_after_rename)
+    monkeypatch.setattr(archive.chain, "_append_bytes", full_after_rename)
     assert _run(registry, store, D2) == EXIT_ERROR
     err = capsys.readouterr().err.strip().splitlines()
     assert (
@@ -692,7 +692,7 @@ def test_disk_full_at_publication_prints_the_cause_and_the_next_run_recovers(
         and "No space left on device" in err[0]
     ), err
     assert len(calls) == 1  # not retried
-    monkeypatch.setattr(archive, "_append_bytes", real_append)
+    monkeypatch.setattr(archive.chain, "_append_bytes", real_append)
     assert archive.verify_archive(store) == []  # the renamed run is pending, not a problem
     assert _run(registry, store, D2) == EXIT_OK  # its recovery records the interrupted run
     assert len([r for r in archive.list_runs(store) if r["as_of"] == D2.isoformat()]) == 2
@@ -700,7 +700,7 @@ def test_disk_full_at_publication_prints_the_cause_and_the_next_run_recovers(
 
 
 class _ReadOnlyOs:
-    """``os`` as the archive module sees it on a read-only mount: opening for writing fails with EROFS."""
+    """``os`` as the archive lock (a run's first write) sees it on a read-only mount: opening for writing fails."""
 
     def __init__(self, root: pathlib.Path):
         self._root = str(root)
@@ -719,7 +719,7 @@ def test_a_read_only_archive_fails_in_one_line(fleet, after_d1, tmp_path, monkey
     # tests run as root in CI, where chmod does not stop writes: the mount is simulated
     _, registry = fleet
     store = _copy(after_d1, tmp_path)
-    monkeypatch.setattr(archive, "os", _ReadOnlyOs(store))
+    monkeypatch.setattr(archive.lock, "os", _ReadOnlyOs(store))
     capsys.readouterr()
     assert _run(registry, store, D2) == EXIT_ERROR
     err = capsys.readouterr().err.strip().splitlines()

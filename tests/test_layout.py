@@ -138,7 +138,7 @@ def test_wheel_holds_only_the_fitaudit_namespace(tmp_path):
     assert "fitaudit/__init__.py" in names  # the public surface, from api/
     for sub in (
         "core/divergence.py",
-        "tasks/archive.py",
+        "tasks/archive/__init__.py",
         "flows/cli.py",
         "templates/run.html.j2",
         "templates/report.css",
