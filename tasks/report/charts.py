@@ -37,15 +37,20 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
     cid = esc(c["id"])
 
     def line(g: Mapping[str, Any]) -> str:
-        return f'<line x1="{px(g["x1"])}" y1="{px(g["y1"])}" x2="{px(g["x2"])}" y2="{px(g["y2"])}" class="{esc(g["cls"])}"/>'
+        return (
+            f'<line x1="{px(g["x1"])}" y1="{px(g["y1"])}" x2="{px(g["x2"])}" y2="{px(g["y2"])}" '
+            f'class="{esc(g["cls"])}"/>'
+        )
 
     out = [
-        f'<svg class="chart {esc(c["cls"])}" role="img" aria-labelledby="{cid}-t {cid}-d" viewBox="0 0 {px(c["w"])} {px(c["h"])}" '
-        f'width="{px(c["w"])}" height="{px(c["h"])}">\n<title id="{cid}-t">{esc(c["title"])}</title>\n<desc id="{cid}-d">{esc(c["desc"])}</desc>\n',
+        f'<svg class="chart {esc(c["cls"])}" role="img" aria-labelledby="{cid}-t {cid}-d" '
+        f'viewBox="0 0 {px(c["w"])} {px(c["h"])}" width="{px(c["w"])}" height="{px(c["h"])}">\n'
+        f'<title id="{cid}-t">{esc(c["title"])}</title>\n<desc id="{cid}-d">{esc(c["desc"])}</desc>\n',
         "".join(map(line, c["grid"])),
         "\n",
         "".join(
-            f'<rect x="{px(r["x"])}" y="{px(r["y"])}" width="{px(r["w"])}" height="{px(r["h"])}" class="{esc(r["cls"])}"/>'
+            f'<rect x="{px(r["x"])}" y="{px(r["y"])}" width="{px(r["w"])}" height="{px(r["h"])}" '
+            f'class="{esc(r["cls"])}"/>'
             for r in c["rects"]
         ),
         "\n",
@@ -61,7 +66,8 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
         ),
         "\n",
         "".join(
-            f'<text x="{px(t["x"])}" y="{px(t["y"])}" text-anchor="{esc(t["anchor"])}" class="{esc(t["cls"])}">{esc(t["text"])}</text>'
+            f'<text x="{px(t["x"])}" y="{px(t["y"])}" text-anchor="{esc(t["anchor"])}" '
+            f'class="{esc(t["cls"])}">{esc(t["text"])}</text>'
             for t in c["texts"]
         ),
         "\n</svg>\n",
@@ -166,7 +172,8 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     largest = max(finite) if finite else None
     desc = (
         f"{label}: T divided by its critical value at {na} values of alpha ({format_number(alphas[0])} to "
-        f"{format_number(alphas[-1])}, rows) and {nb} values of beta ({format_number(betas[0])} to {format_number(betas[-1])}, columns). "
+        f"{format_number(alphas[-1])}, rows) and {nb} values of beta ({format_number(betas[0])} to "
+        f"{format_number(betas[-1])}, columns). "
         f"{n_fail} of {na * nb} points exceed 1 (the check fails there); {n_inf} are infinite (an empty cell); "
         f"the largest finite value is {format_number(largest)}."
     )
@@ -269,7 +276,8 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
         cx, cy = cell_x(j) + cw / 2, cell_y(i) + ch / 2
         chart["paths"].append(
             {
-                "d": f"M{coord(cx)} {coord(cy - 7)}L{coord(cx + 7)} {coord(cy)}L{coord(cx)} {coord(cy + 7)}L{coord(cx - 7)} {coord(cy)}Z",
+                "d": f"M{coord(cx)} {coord(cy - 7)}L{coord(cx + 7)} {coord(cy)}"
+                f"L{coord(cx)} {coord(cy + 7)}L{coord(cx - 7)} {coord(cy)}Z",
                 "cls": "mx",
             }
         )
@@ -385,7 +393,10 @@ def qq_plot(check: Mapping[str, Any], chart_id: str, label: str) -> dict | None:
     width, height = 300.0, 260.0
     x = Scale(lo, hi, 48, width - 12)
     y = Scale(lo, hi, height - 42, 18)
-    desc = f"{label}: {len(pairs)} quantiles of the standardised residuals against the quantiles of the noise law; points on the dashed diagonal mean agreement."
+    desc = (
+        f"{label}: {len(pairs)} quantiles of the standardised residuals against the quantiles of the noise law; "
+        "points on the dashed diagonal mean agreement."
+    )
     chart = new_chart(chart_id, width, height, f"Q-Q plot of the {label.lower()}", desc)
     ticks = _nice_ticks(lo, hi, 5)
     _axes(chart, x, y, ticks, ticks, "noise-law quantile", "residual quantile")
@@ -440,7 +451,8 @@ def history_chart(points: Sequence[dict], chart_id: str) -> dict | None:
     x = Scale(-0.5, len(shown) - 0.5, 48, width - 12)
     y = Scale(0.0, hi, height - 46, 18)
     desc = (
-        f"Standardised maximum R of the deciding check at {len(values)} audits from {shown[0]['as_of']} to {shown[-1]['as_of']}; "
+        f"Standardised maximum R of the deciding check at {len(values)} audits from {shown[0]['as_of']} "
+        f"to {shown[-1]['as_of']}; "
         f"each point is drawn as the symbol of that audit's verdict."
     )
     chart = new_chart(chart_id, width, height, "History of the standardised maximum", desc)

@@ -141,6 +141,6 @@ NOT_REFITTED_PAGE = (
 FORECAST_ACTIONS = {
     "refit": "Re-estimate the model that issues these forecasts so that they match their stated uncertainty again "
     "(fitaudit does not refit it); the next audit checks the new forecasts.",
-    "respecify": "The forecasts failed audit after audit: review how they are made (the method, not only its parameters) "
-    "and have the change validated.",
+    "respecify": "The forecasts failed audit after audit: review how they are made "
+    "(the method, not only its parameters) and have the change validated.",
 }

@@ -183,7 +183,10 @@ def _check_rows(
         if p is None or rule["q"] is None:
             return format_p(p)
         verdict = "fails" if p <= rule["q"] else "passes"
-        return f"{format_p(p)} (the run's rule: the check fails at ≤ q = {format_number(rule['q'])}, {rule['label']}; it {verdict})"
+        return (
+            f"{format_p(p)} (the run's rule: the check fails at ≤ q = {format_number(rule['q'])}, "
+            f"{rule['label']}; it {verdict})"
+        )
 
     def status_text(c):
         if c is None:
@@ -424,8 +427,9 @@ def _accuracy_rows(acc: Mapping[str, Any]) -> list[dict]:
             {
                 "key": "Mean absolute scaled error (MASE)",
                 "value": (
-                    f"{value}: mean absolute error of the point forecast ({user_text(acc.get('point'))}) over that of the one-step "
-                    f"seasonal naive forecast in the {user_text(acc.get('mase_scale_from'))}; below 1 is better than the naive forecast "
+                    f"{value}: mean absolute error of the point forecast ({user_text(acc.get('point'))}) "
+                    "over that of the one-step seasonal naive forecast in the "
+                    f"{user_text(acc.get('mase_scale_from'))}; below 1 is better than the naive forecast "
                     "(Hyndman and Koehler 2006)"
                 ),
             }
@@ -437,7 +441,8 @@ def _accuracy_rows(acc: Mapping[str, Any]) -> list[dict]:
             {
                 "key": "Continuous ranked probability score (CRPS, mean)",
                 "value": (
-                    f"{format_number(acc.get('crps'), 4)} ({user_text(acc.get('crps_method'))}; smaller is better, in the units of the series)"
+                    f"{format_number(acc.get('crps'), 4)} ({user_text(acc.get('crps_method'))}; "
+                    "smaller is better, in the units of the series)"
                 ),
             }
         )
@@ -457,7 +462,8 @@ def _accuracy_rows(acc: Mapping[str, Any]) -> list[dict]:
             {
                 "key": "CRPS skill",
                 "value": (
-                    f"{format_number(acc.get('crps_skill'))} (1 − CRPS / CRPS of the naive forecast: above 0 the stated distributions "
+                    f"{format_number(acc.get('crps_skill'))} (1 − CRPS / CRPS of the naive forecast: "
+                    "above 0 the stated distributions "
                     "beat the naive one, 0 ties, below 0 loses)"
                 ),
             }
@@ -470,7 +476,8 @@ def _forecast_rows(check: Mapping[str, Any]) -> dict[str, str]:
     noise = check.get("noise") or {}
     mean, sd = to_float(noise.get("score_mean")), to_float(noise.get("score_sd"))
     scores = (
-        f"mean {format_number(mean, 2)} and standard deviation {format_number(sd, 2)} (0 and 1 when the stated laws are "
+        f"mean {format_number(mean, 2)} and standard deviation {format_number(sd, 2)} "
+        "(0 and 1 when the stated laws are "
         "right: a positive mean means forecasts too low, a standard deviation above 1 a stated uncertainty too narrow)"
         if mean is not None and sd is not None
         else "n/a"
@@ -482,7 +489,8 @@ def _forecast_rows(check: Mapping[str, Any]) -> dict[str, str]:
         "k": "0 (nothing is estimated: the predictive laws were stated before the data)",
         "noise": f"standard normal scores of the PIT values (stated: {user_text(noise.get('stated'))})",
         "reference": (
-            f"{count_text(cal.get('replicates'))} simulated sets of {check.get('n')} independent uniform PIT values (the stated laws "
+            f"{count_text(cal.get('replicates'))} simulated sets of {check.get('n')} independent uniform PIT values "
+            "(the stated laws "
             "are fixed before the data, so this null is exact)"
             if cal.get("method") == "simulated"
             else user_text(cal.get("method"))
@@ -564,7 +572,8 @@ def model_page_view(m: Mapping[str, Any], as_of: str, policy: Mapping[str, Any] 
             {
                 "key": "Production version",
                 "value": (
-                    f"{user_text(pv.get('version'))} (SHA-256 {user_text(pv.get('sha256'))}, created {user_text(pv.get('created_at'))})"
+                    f"{user_text(pv.get('version'))} (SHA-256 {user_text(pv.get('sha256'))}, "
+                    f"created {user_text(pv.get('created_at'))})"
                     if pv
                     else "none"
                 ),

@@ -27,16 +27,19 @@ def _check_models(models: Sequence[Mapping[str, Any]]) -> None:
         safe = m.get("safe_id")
         if not isinstance(safe, str) or not SAFE_ID.match(safe):
             raise InputError(
-                f"render_run: model #{k} (id {str(m.get('id'))[:80]!r}) has safe_id {str(safe)[:80]!r}, which is not a safe file name "
-                f"(pattern {SAFE_ID.pattern}); build the record with fitaudit.tasks.results.model_record from the registry's safe_id"
+                f"render_run: model #{k} (id {str(m.get('id'))[:80]!r}) has safe_id {str(safe)[:80]!r}, "
+                f"which is not a safe file name (pattern {SAFE_ID.pattern}); build the record with "
+                "fitaudit.tasks.results.model_record from the registry's safe_id"
             )
         if safe.lower() in seen:
             raise InputError(
-                f"render_run: models {seen[safe.lower()]!r} and {str(m.get('id'))[:80]!r} share the file name {safe!r} (case-insensitively); safe ids must be unique"
+                f"render_run: models {seen[safe.lower()]!r} and {str(m.get('id'))[:80]!r} share the file name "
+                f"{safe!r} (case-insensitively); safe ids must be unique"
             )
         if m.get("verdict") not in STATUS:
             raise InputError(
-                f"render_run: model {str(m.get('id'))[:80]!r} has verdict {m.get('verdict')!r}; expected one of {', '.join(STATUS)}"
+                f"render_run: model {str(m.get('id'))[:80]!r} has verdict {m.get('verdict')!r}; "
+                f"expected one of {', '.join(STATUS)}"
             )
         seen[safe.lower()] = str(m.get("id"))[:80]
 
@@ -96,12 +99,14 @@ def _false_flag_sentence(
     """The expected number of false flags if every model were healthy, and what the adjustment does."""
     text = (
         f"This run scored {checks} checks (the production and refit checks that ran). If every model were healthy, "
-        f"about {format_number(expected)} of them would still fail at the {format_number(level)} level before any adjustment."
+        f"about {format_number(expected)} of them would still fail at the {format_number(level)} level "
+        "before any adjustment."
     )
     if key in ("bh", "by"):
         text += (
-            f" Verdicts use p-values adjusted across the run with the {method} procedure at q = {format_number(q)}, which keeps the "
-            f"expected share of false flags among the flagged checks at or below {format_number(None if q is None else 100 * q)} %"
+            f" Verdicts use p-values adjusted across the run with the {method} procedure at q = {format_number(q)}, "
+            "which keeps the expected share of false flags among the flagged checks at or below "
+            f"{format_number(None if q is None else 100 * q)} %"
             + (
                 ", whatever the dependence between the tests."
                 if key == "by"
@@ -109,7 +114,10 @@ def _false_flag_sentence(
             )
         )
     elif key == "bonferroni":
-        text += f" Verdicts use Bonferroni-adjusted p-values at {format_number(q)}, which keeps the chance of any false flag in the run at or below {format_number(q)}."
+        text += (
+            f" Verdicts use Bonferroni-adjusted p-values at {format_number(q)}, which keeps the chance of any "
+            f"false flag in the run at or below {format_number(q)}."
+        )
     else:
         text += (
             " Verdicts use unadjusted p-values, so about that many false flags are to be expected among the exceptions."
@@ -121,7 +129,8 @@ def _tier_legend(policy: Mapping[str, Any] | None) -> str:
     days = days_to_act(policy)
     return (
         "Tier is the model's materiality under the policy, from 1 (most material) to 3. The owner has "
-        f"{days.tier_1} days to act on an exception of a tier-1 model, {days.tier_2} of tier 2 and {days.tier_3} of tier 3, "
+        f"{days.tier_1} days to act on an exception of a tier-1 model, {days.tier_2} of tier 2 "
+        f"and {days.tier_3} of tier 3, "
         "counted from the as-of date; an entry the registry rejected (no tier) gets the shortest."
     )
 
@@ -231,7 +240,8 @@ def _scope_view(meta: Mapping[str, Any], summary: Mapping[str, Any]) -> str | No
             + " have no checks, because the sources could not be read"
         )
     return (
-        f"This is a partial run: {' and '.join(parts)}. The p-values were adjusted over the {summary.get('checks', 0)} checks that ran, "
+        f"This is a partial run: {' and '.join(parts)}. The p-values were adjusted over the "
+        f"{summary.get('checks', 0)} checks that ran, "
         "not over a full run's, so the same model can pass in the full run and be flagged in this one (or the reverse)."
     )
 
@@ -242,7 +252,8 @@ def _history_problems_view(meta: Mapping[str, Any]) -> list[str]:
     for p in meta.get("history_problems") or ():
         if isinstance(p, Mapping):
             out.append(
-                f"The audit of {user_text(p.get('as_of'), 40)} (run {user_text(p.get('run_id'), 80)}) was left out of the models' "
+                f"The audit of {user_text(p.get('as_of'), 40)} (run {user_text(p.get('run_id'), 80)}) "
+                "was left out of the models' "
                 f"history: {user_text(p.get('problem'), 300)}"
             )
     return out

@@ -40,7 +40,8 @@ def meta_view(meta: Mapping[str, Any]) -> dict:
     missing = [k for k in _REQUIRED_META if meta.get(k) in (None, "")]
     if missing:
         raise InputError(
-            f"render_run: meta lacks {', '.join(missing)}; pass every one of {', '.join(_REQUIRED_META)} (archive_head and previous_run_id are optional)"
+            f"render_run: meta lacks {', '.join(missing)}; pass every one of {', '.join(_REQUIRED_META)} "
+            "(archive_head and previous_run_id are optional)"
         )
     view = {k: user_text(meta[k], SHORT_TEXT) for k in _REQUIRED_META}
     view["archive_head"] = user_text(meta.get("archive_head")) or None
