@@ -1,7 +1,7 @@
 """Compact data for the report's charts of one check: residual histogram, Q-Q points, autocorrelations;
 and the sizes of a check's errors in plain units (spread against the assumed variance, bias, dates).
 
-Pure numpy; the report (``tasks/report.py``) turns these numbers into SVG and sentences.
+Pure numpy; the report (``tasks/report/charts.py``) turns these numbers into SVG and sentences.
 """
 
 from __future__ import annotations
