@@ -13,6 +13,14 @@ outside fitaudit's own work functions (staging, calibration, audits, fleet rules
 search, results document, rendering, archive writing; timed with
 :class:`~bench.harness.WorkClock`), i.e. inside Prefect: task and flow run bookkeeping, state
 changes, the API round trips, events and artifacts.
+
+*Fit-bound ratio* is the fleet's wall time (server start and flow, as for the throughput) over the
+time of the fleet's model fits alone, measured in the same run by :func:`fit_time`: each
+series' model fitted as the audit's refit check fits it (on the registry's fit window, here the
+whole 730 days) plus the production filter (the one-step errors of the production parameters),
+one series after another in the parent process, divided by the number of worker processes the
+flow uses (one per CPU): the time the fits alone would take if split evenly over the flow's
+workers, with nothing else to do.
 """
 
 from __future__ import annotations
@@ -21,17 +29,19 @@ import argparse
 import pathlib
 import tempfile
 import time
+import warnings
 
 from fitaudit.core.vocabulary import VERDICTS
 
-from .fleet_data import AS_OF, fleet_series, model_ids, write_fleet
+from .fleet_data import AS_OF, FleetSeries, fleet_series, model_ids, write_fleet
 from .harness import WorkClock, child_env, run_child, warm_prefect_home, write_result
 from .peer import measure_peer
 
-__all__ = ["main", "WORK_FUNCTIONS", "audit_in_child"]
+__all__ = ["main", "WORK_FUNCTIONS", "audit_in_child", "fit_time"]
 
 GOAL_RATIO = 20.0
 GOAL_SHARE = 0.10
+GOAL_FIT_BOUND = 3.0
 
 #: fitaudit's own work, as called by the flow and its tasks (module, function).  ``run_local``
 #: is where a batch task hands its plain function (audit, candidate search, records and pages)
@@ -100,6 +110,65 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
     }
 
 
+def fit_time(series: list[FleetSeries], workers: int | None = None) -> dict:
+    """Seconds of the fleet's model fits alone, as the audit does them, one series after another.
+
+    Per series: the refit (``model.fit`` on the whole series, the benchmark registry's fit window)
+    and the production filter (``model.production_errors`` with the generating parameters, the
+    promoted production version).  One warm-up fit comes first (it imports scipy's modules).
+    ``fit_bound_s`` is the sequential time over ``workers`` (default: the flow's worker
+    processes, one per CPU).
+    """
+    from fitaudit.core.models import model_from_dict
+    from fitaudit.tasks.workers import default_processes
+
+    workers = workers or default_processes()
+    per_family: dict[str, float] = {}
+    counts: dict[str, int] = {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # convergence warnings: the audit reports them, here only time counts
+        first = series[0]
+        model_from_dict(first.spec).fit(first.y, first.exog or None)
+        for s in series:
+            model = model_from_dict(s.spec)
+            exog = s.exog or None
+            t0 = time.perf_counter()
+            model.fit(s.y, exog)
+            model.production_errors(s.y, s.params, exog)
+            elapsed = time.perf_counter() - t0
+            family = s.spec["family"]
+            per_family[family] = per_family.get(family, 0.0) + elapsed
+            counts[family] = counts.get(family, 0) + 1
+    sequential = sum(per_family.values())
+    return {
+        "sequential_s": sequential,
+        "workers": workers,
+        "fit_bound_s": sequential / workers,
+        "per_family_ms": {k: 1e3 * v / counts[k] for k, v in per_family.items()},
+        "counts": counts,
+    }
+
+
+def _fit_bound_row(n: int, ours: dict, fits: dict) -> dict:
+    wall = ours["server_start_s"] + ours["flow_s"]
+    ratio = wall / fits["fit_bound_s"]
+    fam = ", ".join(f"{k} {v:.1f} ms" for k, v in sorted(fits["per_family_ms"].items()))
+    return {
+        "benchmark": "Fit-bound ratio",
+        "size": f"the same {n}-series run",
+        "measured": f"fleet wall time {wall:.1f} s (flow {ours['flow_s']:.1f} s + server start "
+        f"{ours['server_start_s']:.1f} s) over the fits alone {fits['fit_bound_s']:.1f} s (refit and production "
+        f"filter of every series, {fits['sequential_s']:.1f} s one after another in one process, split over the "
+        f"flow's {fits['workers']} worker processes; per series: {fam}); flow alone "
+        f"{ours['flow_s'] / fits['fit_bound_s']:.1f}x",
+        "ratio": ratio,
+        "ratio_text": f"{ratio:.1f}x",
+        "goal": f"<= {GOAL_FIT_BOUND:.0f}x",
+        "met": ratio <= GOAL_FIT_BOUND,
+        "details": {"fits": fits},
+    }
+
+
 def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
     ours_s = ours["server_start_s"] + ours["flow_s"]
     ours_rate = n / ours_s
@@ -144,9 +213,11 @@ def main(quick: bool = False) -> list[dict]:
         paths = write_fleet(root / "fleet", n)
         home = root / "prefect-home"
         warm_prefect_home(home)
-        peer = measure_peer(fleet_series(n), paths.data + "/fleet", subset)
+        series = fleet_series(n)
+        peer = measure_peer(series, paths.data + "/fleet", subset)
+        fits = fit_time(series)
         ours = run_child("bench.fleet", ["--registry", paths.registry, "--archive", paths.archive], child_env(home))
-    return _fleet_rows(n, ours, peer)
+    return _fleet_rows(n, ours, peer) + [_fit_bound_row(n, ours, fits)]
 
 
 def _child(argv: list[str] | None = None) -> None:
