@@ -180,7 +180,7 @@ def _score(
         "partitions": partitions,
         "deciding": deciding,
     }
-    lags = settings.lb_lags or ljung_box_lags(n, period, model_df)
+    lags = settings.lb_lags or ljung_box_lags(n, period if period > 1 else settings.season, model_df)
     lags = min(lags, n - 1)
     lb = ljung_box(e, lags, model_df=model_df if kind == "refit" else 0)
     ml = mcleod_li(e, lags)

@@ -1124,7 +1124,7 @@ def _subsequence_check(
     p_sub = [c.p_distribution for c in checks]
     best = int(np.argmin(p_sub))
     p_dist = float(min(1.0, h * p_sub[best]))
-    lags = settings.lb_lags or ljung_box_lags(w, period)
+    lags = settings.lb_lags or ljung_box_lags(w, period if period > 1 else settings.season)
     lb = lagged_ljung_box(z, h, lags)
     r = acf(z, h + lags - 1)
     effect_acf = float(np.max(np.abs(r[h:])))

@@ -53,6 +53,11 @@ class AuditSettings:
         Observations used by the refit (the most recent); None uses the whole series.
     lb_lags : int or None
         Ljung-Box lag; None applies the rule of docs/method.md §9.2.
+    season : int, default 1
+        The seasonal period of the data's calendar (7 for daily, 5 for business days, 12 for
+        monthly data; 1 for none).  The Ljung-Box lag rule uses it when the model itself has no
+        seasonal period, so that a non-seasonal model of seasonal data is tested over two
+        seasons (docs/method.md §9.2).
     locate_change : bool, default True
         Locate the most likely break of a failing production check.
     change_permutations : int, default 499
@@ -82,6 +87,7 @@ class AuditSettings:
     audit_window: int = 56
     fit_window: int | None = None
     lb_lags: int | None = None
+    season: int = 1
     locate_change: bool = True
     change_permutations: int = 499
     practical_divergence: float | None = None
@@ -102,6 +108,7 @@ class AuditSettings:
                 "audit_window",
                 "fit_window",
                 "lb_lags",
+                "season",
                 "change_permutations",
                 "practical_divergence",
                 "practical_acf",

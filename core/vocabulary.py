@@ -76,6 +76,7 @@ SETTING_BOUNDS: dict[str, list] = {
     "audit_window": [Interval(int, 1, None)],
     "fit_window": [Interval(int, 1, None), None],
     "lb_lags": [Interval(int, 1, None), None],
+    "season": [Interval(int, 1, None)],
     "change_permutations": [Interval(int, 19, None)],
     "practical_divergence": [Interval(float, 0.0, None), None],
     "practical_acf": [Interval(float, 0.0, 1.0), None],

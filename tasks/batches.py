@@ -109,6 +109,10 @@ class StagedRun:
     production: dict = field(
         default_factory=dict
     )  # ProductionSnapshot.to_dict(): the versions staged, for the manifest
+    #: Sources some of whose series were too stale to audit, by name: the resolved ``uri``, the
+    #: source's ``last`` timestamp, the ``as_of`` date, the ``frequency``, the periods ``allowed``
+    #: and the ``models`` judged insufficient for it (the run page lists each source once).
+    stale_sources: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         """JSON-ready view."""
@@ -117,6 +121,7 @@ class StagedRun:
             "fingerprints": {k: v for k, v in self.fingerprints.items()},
             "source_errors": dict(self.source_errors),
             "production": dict(self.production),
+            "stale_sources": {k: dict(v) for k, v in self.stale_sources.items()},
         }
 
 
@@ -323,16 +328,14 @@ def stage_inputs(
     # digests of source files already hashed, by version (path, size, modification time)
     cache = FingerprintCache(archive / FINGERPRINT_CACHE) if archive is not None else None
     source_errors: dict[str, str] = {}
+    stale_sources: dict[str, dict] = {}
     for source_name in sorted(by_source):
         template = registry.sources[source_name]
         source = template.for_as_of(as_of)  # a dated export: the as-of date's folder or file
         models = by_source[source_name]
+        allowed = source.periods_allowed(registry.policy.max_staleness_days, end)
         # the windows, plus the periods the source may lag behind the as-of date
-        span_days = (
-            FREQUENCY_DAYS.get(source.frequency, 31)
-            * (max(m.staged_window for m in models) + 2 + source.staleness_allowed)
-            + 2
-        )
+        span_days = FREQUENCY_DAYS.get(source.frequency, 31) * (max(m.staged_window for m in models) + 2 + allowed) + 2
         start = end - np.timedelta64(int(math.ceil(span_days * 86400)), "s")
         stated = [m.forecasts.columns() for m in models if isinstance(m, ForecastEntry)]
         columns = sorted(
@@ -389,9 +392,22 @@ def stage_inputs(
                     snapshot,
                     holidays=source.holidays,
                     end=end,
-                    max_staleness=source.staleness_allowed,
+                    max_staleness=allowed,
                 )
                 meta["history"] = [dict(h) for h in histories.get(entry.id, ())]
+                if any(p["kind"] == STALE for p in meta["problems"]):
+                    stale = stale_sources.setdefault(
+                        source_name,
+                        {
+                            "uri": source.uri,
+                            "last": fp.time_max if fp is not None else None,
+                            "as_of": as_of.isoformat(),
+                            "frequency": source.frequency,
+                            "allowed": allowed,
+                            "models": [],
+                        },
+                    )
+                    stale["models"].append(entry.id)
                 arrays[f"{i}/y"] = y
                 arrays[f"{i}/t"] = t
                 for j, name in enumerate(meta["exog_names"]):
@@ -405,7 +421,13 @@ def stage_inputs(
         del data
         if cache is not None:
             cache.save()
-    return StagedRun(tuple(batches), fingerprints, source_errors, snapshot.to_dict() if snapshot is not None else {})
+    return StagedRun(
+        tuple(batches),
+        fingerprints,
+        source_errors,
+        snapshot.to_dict() if snapshot is not None else {},
+        stale_sources,
+    )
 
 
 def _model_input(
@@ -532,7 +554,7 @@ def _stale(
             f"model {entry.id!r}: source {entry.source!r} is stale: the last observation of {whose} is {shown}, "
             f"{late} period(s) of frequency {frequency!r} before the as-of date {as_of} (at most {allowed} allowed by "
             "max_staleness). Fix: refresh the extract up to the as-of date, audit at an earlier as-of date (--as-of), "
-            "or raise the source's max_staleness."
+            "or raise the source's max_staleness (periods) or the policy's max_staleness_days."
         ),
     }
 

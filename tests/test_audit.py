@@ -102,6 +102,18 @@ def test_neglected_seasonality_is_respecify_and_candidates_find_it(cache):
     assert cands[0].passed and cands[0].spec_text.startswith("ARIMA(1,0,0)(1,0,0)7")
 
 
+@pytest.mark.parametrize("season, lags", [(1, 10), (5, 10), (7, 14), (24, 48), (52, 80)])
+def test_the_calendars_season_sets_the_ljung_box_lags_of_a_model_without_one(cache, season, lags):
+    # h = 2m for seasonal data, 10 otherwise, at most n/5 (n = 400 here)
+    # source: Hyndman and Athanasopoulos 2021, section 5.4
+    y = ar1_series(np.random.default_rng(40))
+    res = audit_series(y, AR1, settings=dataclasses.replace(FAST, season=season), cache=cache)
+    assert res.refit.ljung_box["lags"] == lags and res.production is None
+    seasonal = Arima(order=(1, 0, 0), seasonal=(0, 0, 1, 12), trend="c")  # the model's own season wins
+    res = audit_series(y, seasonal, settings=dataclasses.replace(FAST, season=season), cache=cache)
+    assert res.refit.ljung_box["lags"] == 24
+
+
 def test_neighbour_specs_are_valid_and_new():
     spec = Arima(order=(1, 0, 1), seasonal=(0, 1, 1, 7))
     out = neighbour_specs(spec)

@@ -88,6 +88,75 @@ def test_business_days_count_no_weekend_as_late(tmp_path):
     )
 
 
+def _stage_run(tmp_path, series: dict, as_of: dt.date, policy_days=None, **source_extra):
+    fleet = Fleet(tmp_path)
+    write_parquet(tmp_path / "data" / "x.parquet", long_table(series))
+    fleet.source("x", "data/x.parquet", **source_extra)
+    if policy_days is not None:
+        fleet.policy["max_staleness_days"] = policy_days
+    for k in series:
+        fleet.model(f"m-{k}", "x", k)
+    reg = load_registry(fleet.write())
+    staged = batches.stage_inputs(reg, as_of, tmp_path / "work")
+    return staged, {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+
+
+@pytest.mark.parametrize("lag, policy_days, stale", [(7, 7, False), (8, 7, True), (2, 7, False), (2, None, True)])
+def test_the_policy_sets_a_staleness_in_days_for_every_source(tmp_path, lag, policy_days, stale):
+    # 7 days of a daily calendar are 7 periods  # common practice
+    rng = np.random.default_rng(10)
+    staged, items = _stage_run(
+        tmp_path, {"a": {"date": days(), "y": ar1(rng)}}, AS_OF + dt.timedelta(days=lag), policy_days
+    )
+    assert bool(_stale(items["m-a"])) == stale
+    assert bool(staged.stale_sources) == stale
+
+
+def test_the_policys_days_never_shorten_a_calendar_period(tmp_path):
+    # a month-end source audited 20 days after its last month end: one period late, within the
+    # default of one period even though the policy allows only 7 days
+    # source: pandas.date_range(freq="ME") (pandas 3.1.1)  # common practice
+    grid = pd.date_range(end="2026-10-31", periods=120, freq="ME")
+    series = {"a": {"date": grid.to_numpy().astype("datetime64[us]"), "y": ar1(np.random.default_rng(12), n=120)}}
+    staged, items = _stage_run(tmp_path, series, dt.date(2026, 11, 20), policy_days=7, frequency="ME")
+    assert _stale(items["m-a"]) == [] and staged.stale_sources == {}
+
+
+def test_a_sources_own_max_staleness_overrides_the_policy(tmp_path):
+    rng = np.random.default_rng(13)
+    staged, items = _stage_run(
+        tmp_path, {"a": {"date": days(), "y": ar1(rng)}}, AS_OF + dt.timedelta(days=5), policy_days=30, max_staleness=2
+    )
+    (problem,) = _stale(items["m-a"])
+    assert "at most 2 allowed" in problem["message"] and "max_staleness_days" in problem["message"]
+
+
+def test_stale_sources_are_listed_once_with_their_models(tmp_path):
+    rng = np.random.default_rng(14)
+    series = {k: {"date": days(), "y": ar1(rng)} for k in ("a", "b", "c")}
+    as_of = AS_OF + dt.timedelta(days=7)
+    staged, items = _stage_run(tmp_path, series, as_of)
+    assert list(staged.stale_sources) == ["x"]
+    listed = staged.stale_sources["x"]
+    assert listed["models"] == ["m-a", "m-b", "m-c"] and listed["as_of"] == as_of.isoformat()
+    assert listed["last"].startswith(str(AS_OF)) and listed["allowed"] == 1 and listed["frequency"] == "D"
+    assert staged.to_dict()["stale_sources"] == {"x": listed}
+
+
+def test_holidays_from_a_holiday_file_are_no_periods(tmp_path):
+    # source: pandas.bdate_range (pandas 3.1.1): 240 business days ending on Friday 2026-08-28
+    grid = pd.bdate_range(end="2026-08-28", periods=240)  # common practice
+    series = {"a": {"date": grid.to_numpy().astype("datetime64[us]"), "y": ar1(np.random.default_rng(15), n=240)}}
+    (tmp_path / "hol").mkdir()
+    (tmp_path / "hol" / "holidays.txt").write_text(
+        "# bank holidays of our fictional calendar\n2026-08-31, late-summer holiday\n\n2026-12-25 Christmas\n",
+        encoding="utf-8",
+    )
+    tuesday = dt.date(2026, 9, 1)
+    _, items = _stage_run(tmp_path / "hol", series, tuesday, frequency="B", holiday_file="holidays.txt")
+    assert _stale(items["m-a"]) == []  # Saturday, Sunday and the Monday holiday are skipped
+
+
 def test_a_source_stale_beyond_the_span_read_names_its_own_last_timestamp(tmp_path):
     rng = np.random.default_rng(9)
     items = _stage(tmp_path, {"a": {"date": days(), "y": ar1(rng)}}, AS_OF + dt.timedelta(days=2000))
@@ -182,8 +251,8 @@ def test_staging_keeps_the_fingerprint_cache_in_the_archive(tmp_path, monkeypatc
     first = batches.stage_inputs(reg, AS_OF, tmp_path / "w1", archive_root=archive)
     assert (archive / batches.FINGERPRINT_CACHE).is_file()
     hashed = []
-    real = extracts._hash_file
-    monkeypatch.setattr(extracts, "_hash_file", lambda loc, path: hashed.append(path) or real(loc, path))
+    real = extracts.fingerprints._hash_file
+    monkeypatch.setattr(extracts.fingerprints, "_hash_file", lambda loc, path: hashed.append(path) or real(loc, path))
     second = batches.stage_inputs(
         reg, AS_OF, tmp_path / "w2", archive_root=archive, model_ids=["m-a"]
     )  # a one-model refit

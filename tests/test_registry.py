@@ -307,6 +307,92 @@ def test_max_staleness_is_a_source_setting():
     assert problem.line == _line(text, "max_staleness")
 
 
+def test_max_staleness_days_is_a_policy_setting():
+    text = _edit("refit_policy: approval", "refit_policy: approval\n  max_staleness_days: 7")
+    assert parse_registry(text, FILE).policy.to_dict()["max_staleness_days"] == 7
+    assert "max_staleness_days" not in parse_registry(VALID, FILE).policy.to_dict()  # null: results unchanged
+    text = _edit("refit_policy: approval", "refit_policy: approval\n  max_staleness_days: 1.5")
+    with pytest.raises(RegistryError) as info:
+        parse_registry(text, FILE)
+    (problem,) = info.value.problems
+    assert problem.field == "policy.max_staleness_days" and "expected a whole number of days" in problem.message
+    assert problem.line == _line(text, "max_staleness_days")
+
+
+def _holiday_registry(tmp_path, frequency: str, file_text: str | None) -> tuple[str, Registry]:
+    if file_text is not None:
+        (tmp_path / "holidays.txt").write_text(file_text, encoding="utf-8")
+    text = _edit("frequency: D", f"frequency: {frequency}\n    holiday_file: holidays.txt")
+    text = text.replace("seasonal: [0, 1, 1, 7]", "seasonal: [0, 1, 1, 5]")
+    return text, parse_registry(text, FILE, base_dir=tmp_path)
+
+
+def test_a_holiday_file_joins_the_holidays(tmp_path):
+    text, reg = _holiday_registry(tmp_path, "B", "# our bank holidays\n2026-12-25 Christmas Day\n\n2026-12-28, moved\n")
+    source = reg.sources["demand"]
+    assert reg.source_problems == () and source.holidays == ("2026-12-25", "2026-12-28")
+    assert source.to_dict()["holiday_file"] == "holidays.txt"
+    # a source re-read from its record (no registry folder) keeps the dates it was read with
+    record = {k: tuple(v) if isinstance(v, list) else v for k, v in source.to_dict().items()}
+    again = type(source).model_validate(record | {"name": "demand", "line": 0})
+    assert again.holidays == source.holidays
+
+
+@pytest.mark.parametrize(
+    "frequency, file_text, message",
+    [
+        (
+            "B",
+            None,
+            r"cannot read holiday file 'holidays.txt' \(No such file or directory; looked for .*holidays.txt\)",
+        ),
+        ("B", "2026-12-25\nBoxing Day 2026-12-26\n", r"line 2 of holiday file 'holidays.txt' starts with 'Boxing'"),
+        ("D", "2026-12-25\n", r"a holiday file applies to business days \(frequency B\) only, not to 'D'"),
+    ],
+)
+def test_bad_holiday_files_are_source_problems(tmp_path, frequency, file_text, message):
+    text, reg = _holiday_registry(tmp_path, frequency, file_text)
+    (problem,) = reg.source_problems
+    assert problem.field == "sources.demand.holiday_file" and re.search(message, problem.message), str(problem)
+    assert problem.line == _line(text, "holiday_file")
+
+
+@pytest.mark.parametrize(
+    "frequency, spec, expected",
+    [
+        ("D", "{family: arima, order: [1, 0, 0], seasonal: [0, 1, 1, calendar]}", ("seasonal", (0, 1, 1, 7))),
+        ("B", "{family: smoothing, seasonal: add, period: calendar}", ("period", 5)),
+        ("MS", "{family: smoothing, trend: add, damped: true, seasonal: add, period: calendar}", ("period", 12)),
+    ],
+)
+def test_a_seasonal_period_may_be_the_calendars(frequency, spec, expected):
+    # seasons of the calendars: 7 days a week, 5 business days a week, 12 months  # common practice
+    text = _edit("frequency: D", f"frequency: {frequency}").replace(
+        "spec: {family: arima, order: [0, 1, 1]}", f"spec: {spec}"
+    )
+    reg = parse_registry(text, FILE)
+    key, value = expected
+    south = reg.model("south-demand")
+    assert south.spec[key] == value and south.season == {"D": 7, "B": 5, "MS": 12}[frequency]
+    assert south.audit_settings(reg.policy).season == south.season
+
+
+def test_the_calendar_word_needs_a_calendar_with_a_season():
+    text = _edit("frequency: D", "frequency: YE").replace(
+        "spec: {family: arima, order: [0, 1, 1]}", "spec: {family: smoothing, seasonal: add, period: calendar}"
+    )
+    reg = parse_registry(text, FILE)
+    rejected = {r.id: r for r in reg.rejected}["south-demand"]
+    (problem,) = [p for p in rejected.problems if "calendar" in p.message]
+    assert problem.field == "models[1].spec.period" and "whose calendar has no season" in problem.message
+
+
+def test_the_season_is_filled_in_not_written():
+    text = VALID.replace("    windows: {fit: 365, audit: 28}\n", "    windows: {fit: 365, audit: 28}\n    season: 3\n")
+    rejected = {r.id: r for r in parse_registry(text, FILE).rejected}["south-demand"]
+    assert any(p.field == "models[1].season" and "unknown" in p.message for p in rejected.problems)
+
+
 @pytest.mark.parametrize(
     "frequency, holidays, message",
     [
@@ -920,12 +1006,13 @@ def test_entry_builds_its_audit_settings_and_noise_law():
 
     reg = parse_registry(VALID, FILE)
     north, south = reg.model("north-demand"), reg.model("south-demand")
-    # the entry's overrides (replicates 499, bootstrap), the policy's level and seed, the entry's audit window
+    # the entry's overrides (replicates 499, bootstrap), the policy's level and seed, the entry's audit window,
+    # the daily calendar's season (7)
     assert north.audit_settings(reg.policy) == AuditSettings(
-        level=0.05, calibration="bootstrap", replicates=499, seed=20261201, audit_window=28
+        level=0.05, calibration="bootstrap", replicates=499, seed=20261201, audit_window=28, season=7
     )
     assert south.audit_settings(reg.policy) == AuditSettings(
-        level=0.05, calibration="simulated", replicates=999, seed=20261201, audit_window=28
+        level=0.05, calibration="simulated", replicates=999, seed=20261201, audit_window=28, season=7
     )
     assert north.noise_law() == {"law": "student-t", "shape": 5.0} and south.noise_law() == {
         "law": "normal",

@@ -140,9 +140,10 @@ class Registry:
 class _Reading:
     """One registry document being read: its nodes, its plain values and the problems found."""
 
-    def __init__(self, file: str, root: yaml.Node):
+    def __init__(self, file: str, root: yaml.Node, base_dir: str | None = None):
         self.file = file
         self.root = root
+        self.base_dir = base_dir  # where relative paths (holiday files) resolve
         self.data, issues = to_plain(root)
         self.general: list[RegistryProblem] = []
         self.by_entry: dict[tuple, list[RegistryProblem]] = {}
@@ -220,7 +221,7 @@ class _Reading:
                     )
                 )
             data = self.with_internal(SourceEntry, data, path, problems, name=name, line=line)
-            source = self.validate(SourceEntry, data, path, problems)
+            source = self.validate(SourceEntry, data, path, problems, {"base_dir": self.base_dir})
             if problems:
                 dropped[name] = sorted(problems, key=lambda p: p.line or 0)
             else:
@@ -316,7 +317,7 @@ def _analyse(
     if root is None:
         message = "the registry is empty; expected a mapping with 'version', 'policy', 'sources' and 'models'"
         return [RegistryProblem(filename, 1, "", message)], [], None
-    reading = _Reading(filename, root)
+    reading = _Reading(filename, root, base_dir)
     document = reading.document()
     sources, dropped = reading.sources()
     models, rejected = reading.models(sources, dropped)

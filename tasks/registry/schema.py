@@ -60,7 +60,7 @@ from fitaudit.core.settings import AuditSettings
 from fitaudit.core.vocabulary import PARTITION_KINDS, SETTING_BOUNDS
 
 from .._io import SAFE_ID, json_ready  # SAFE_ID: model ids and source names usable as file names
-from ..frequencies import ALIASES, FREQUENCIES, canonical_frequency, default_staleness
+from ..frequencies import ALIASES, FREQUENCIES, SEASONS, canonical_frequency, default_staleness, periods_after
 from ..uris import FILTER_OPS, filter_term_problem, resolve_uri, uri_template_problem
 from .problems import listing, suggest
 
@@ -472,6 +472,14 @@ class Policy(Block):
     notify: Annotated[tuple[OwnerNotice, ...], expect("a list of {owner, block} mappings")] = Field(
         (), description="Owners told of their exceptions by `fitaudit serve`'s notification automations."
     )
+    max_staleness_days: Annotated[
+        Annotated[int, Field(ge=0)] | None, expect("a whole number of days (0 or more), or null")
+    ] = Field(
+        None,
+        description="Days the last observation of a source may lag behind the as-of date before its models are "
+        "judged insufficient, for every source without its own max_staleness (never less than one period of the "
+        "source's frequency); null: one period of each source's frequency.",
+    )
     partitions: Partitions = Field(
         None,
         description="Cell partitions of the distribution gate; null uses the audit's default"
@@ -498,7 +506,44 @@ class Policy(Block):
             del out["partitions"]
         if not self.notify:
             del out["notify"]
+        if self.max_staleness_days is None:
+            del out["max_staleness_days"]
         return out
+
+
+def read_holiday_file(name: str, base_dir: str) -> tuple[str, ...]:
+    """The dates of a holiday file: one ISO date per line, ``#`` lines and text after the date ignored.
+
+    Raises the registry's ``invalid`` error (its message names the line) for an unreadable file
+    or a line that does not start with a date.
+    """
+    import os
+
+    path = os.path.join(base_dir, name)
+    try:
+        with open(path, encoding="utf-8-sig") as handle:
+            lines = handle.read().splitlines()
+    except (OSError, UnicodeDecodeError) as exc:
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else type(exc).__name__
+        raise invalid(
+            f"cannot read holiday file {name!r} ({reason}; looked for {path}); give a UTF-8 text file relative to "
+            "the registry's folder",
+            at=("holiday_file",),
+        ) from None
+    days = []
+    for number, line in enumerate(lines, start=1):
+        text = line.strip()
+        if not text or text.startswith("#"):
+            continue
+        first = re.split(r"[\s,;]", text, maxsplit=1)[0]
+        try:
+            days.append(dt.date.fromisoformat(first).isoformat())
+        except ValueError:
+            raise invalid(
+                f"line {number} of holiday file {name!r} starts with {first[:_SHOW]!r}, not a date like 2026-12-25",
+                at=("holiday_file",),
+            ) from None
+    return tuple(days)
 
 
 class SourceEntry(Block):
@@ -540,12 +585,18 @@ class SourceEntry(Block):
         + ", ".join(FILTER_OPS)
         + " (pyarrow's dataset filter terms; a list value for in and not in).",
     )
+    holiday_file: Annotated[Text | None, expect("a file path relative to the registry's folder")] = Field(
+        None,
+        description="A text file of holiday dates for a business-day source, one ISO date per line (anything after "
+        "the date, such as a name, and lines starting with # are ignored); joined with `holidays`.",
+    )
     max_staleness: Annotated[
         Annotated[int, Field(ge=0)] | None, expect("a whole number of periods (0 or more), or null for the default")
     ] = Field(
         None,
         description="Periods of the source's frequency its last observation may lag behind the as-of date before "
-        "its models are judged insufficient (default: one period; one day's worth for frequencies finer than a day).",
+        "its models are judged insufficient (default: the policy's max_staleness_days, and at least one period; "
+        "one day's worth for frequencies finer than a day).",
     )
     partitioning: Annotated[
         Literal[PARTITIONINGS] | None, expect(f"one of {listing(PARTITIONINGS)}", PARTITIONINGS)
@@ -585,6 +636,24 @@ class SourceEntry(Block):
             raise invalid(f"holidays apply to business days (frequency B) only, not to {info.data['frequency']!r}")
         return tuple(sorted(set(days)))
 
+    @field_validator("holiday_file")
+    @classmethod
+    def _holiday_file_of_business_days(cls, name: str | None, info: ValidationInfo) -> str | None:
+        if name is not None and info.data.get("frequency") not in (None, "B"):
+            raise invalid(
+                f"a holiday file applies to business days (frequency B) only, not to {info.data['frequency']!r}"
+            )
+        return name
+
+    @model_validator(mode="after")
+    def _join_holiday_file(self, info: ValidationInfo) -> SourceEntry:
+        """Read the holiday file (when the loader gives the registry's folder) into ``holidays``."""
+        base_dir = _context(info).get("base_dir")
+        if self.holiday_file is None or base_dir is None:
+            return self  # a re-validated source already holds the file's dates in holidays
+        days = read_holiday_file(self.holiday_file, base_dir)
+        return self.model_copy(update={"holidays": tuple(sorted(set(self.holidays) | set(days)))})
+
     def to_dict(self) -> dict:
         """Plain-Python view (``forecasts``, ``holidays``, ``filter`` and ``max_staleness`` only when the source declares them)."""
         out = super().to_dict()
@@ -592,6 +661,8 @@ class SourceEntry(Block):
             del out["forecasts"]
         if not self.holidays:
             del out["holidays"]
+        if self.holiday_file is None:
+            del out["holiday_file"]
         if not self.filter:
             del out["filter"]
         else:
@@ -609,6 +680,21 @@ class SourceEntry(Block):
     def staleness_allowed(self) -> int:
         """``max_staleness``, or the frequency's default (:func:`~fitaudit.tasks.frequencies.default_staleness`)."""
         return default_staleness(self.frequency) if self.max_staleness is None else self.max_staleness
+
+    def periods_allowed(self, policy_days: int | None, end: Any) -> int:
+        """Periods the last observation may lag behind ``end`` (the as-of date's last instant).
+
+        The source's own ``max_staleness`` when it sets one; otherwise the grid periods of the
+        policy's ``max_staleness_days`` before ``end``, and never fewer than the frequency's
+        default of one period (a monthly source is not stale a week after its month ended).
+        """
+        if self.max_staleness is not None or policy_days is None:
+            return self.staleness_allowed
+        import numpy as np
+
+        end = np.datetime64(end, "ns")
+        since = end - np.timedelta64(int(policy_days), "D").astype("timedelta64[ns]")
+        return max(self.staleness_allowed, periods_after(self.frequency, since, end, self.holidays))
 
     @model_validator(mode="after")
     def _three_roles(self) -> SourceEntry:
@@ -756,9 +842,47 @@ def _families_schema(schema: dict) -> None:
     schema.update(properties={"family": {"type": "string", "enum": sorted(FAMILIES)}}, required=["family"])
 
 
-#: A model spec: ``family`` and the family's hyperparameters (lists read as tuples).
+#: The word a spec writes for "the seasonal period of the source's calendar".
+CALENDAR_PERIOD = "calendar"
+
+
+def _calendar_period(spec: Any, info: ValidationInfo) -> Any:
+    """Replace the word ``calendar`` in a spec's seasonal period by the source calendar's season.
+
+    ``period: calendar`` (smoothing) and ``seasonal: [P, D, Q, calendar]`` (ARIMA) take the
+    season of the model's source (5 for business days, 7 for daily data, 12 for monthly data,
+    ...: :data:`fitaudit.tasks.frequencies.SEASONS`); the validated entry keeps the number.
+    """
+    if not isinstance(spec, dict):
+        return spec
+    seasonal = spec.get("seasonal")
+    at: tuple | None = None
+    if spec.get("period") == CALENDAR_PERIOD:
+        at = ("period",)
+    elif isinstance(seasonal, tuple | list) and len(seasonal) == 4 and seasonal[3] == CALENDAR_PERIOD:
+        at = ("seasonal", 3)
+    if at is None:
+        return spec
+    source = _declared_source(info)
+    if source is None:
+        raise invalid("'calendar' stands for the season of the model's source; name a valid source", at=at)
+    season = SEASONS[source.frequency]
+    if season < 2:
+        raise invalid(
+            f"source {source.name!r} has frequency {source.frequency!r}, whose calendar has no season; "
+            "give the seasonal period as a number",
+            at=at,
+        )
+    if at == ("period",):
+        return {**spec, "period": season}
+    return {**spec, "seasonal": (*seasonal[:3], season)}
+
+
+#: A model spec: ``family`` and the family's hyperparameters (lists read as tuples); a seasonal
+#: period may be written ``calendar`` (the source calendar's season).
 Spec = Annotated[
     dict[str, Any],
+    BeforeValidator(_calendar_period),
     AfterValidator(_buildable),
     expect("a mapping like {family: arima, order: [1, 0, 1]}"),
     Field(json_schema_extra=_families_schema),
@@ -800,7 +924,7 @@ class EntryBase(Block):
         "fitaudit fits) or forecasts (forecasts made elsewhere)"
     )
     missing_hints = {"*": "required in every model entry ({required})"}
-    internal_fields = ("line",)
+    internal_fields = ("line", "season")
 
     id: ModelId = Field(description="The model's id (it names files: letters, digits, '_', '.', '-').")
     owner: Text = Field(description="Who answers for the model.")
@@ -814,16 +938,21 @@ class EntryBase(Block):
     )
     last_validated: IsoDate = Field(None, description="When the model was last validated by a person.")
     line: SkipJsonSchema[int] = 0
+    #: The season of the source's calendar (:data:`fitaudit.tasks.frequencies.SEASONS`), filled in
+    #: from the source: the Ljung-Box lag rule of a model without a season uses it.
+    season: SkipJsonSchema[int] = 1
 
     @model_validator(mode="before")
     @classmethod
     def _source_value(cls, data: Any, info: ValidationInfo) -> Any:
-        """The target column defaults to the source's value column."""
+        """The target column defaults to the source's value column; the season is the source calendar's."""
         sources = _context(info).get("sources") or {}
-        if isinstance(data, dict) and "value" not in data and isinstance(data.get("source"), str):
+        if isinstance(data, dict) and isinstance(data.get("source"), str):
             source = sources.get(data["source"])
             if source is not None:
-                return {**data, "value": source.value}
+                data = {**data, "season": SEASONS[source.frequency]}
+                if "value" not in data:
+                    data["value"] = source.value
         return data
 
     @field_validator("source")
@@ -870,6 +999,7 @@ class EntryBase(Block):
             replicates=policy.replicates if over.replicates is None else over.replicates,
             seed=policy.seed,
             audit_window=self.windows.audit,
+            season=self.season,
             **extra,
         )
 
