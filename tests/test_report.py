@@ -978,6 +978,27 @@ def test_a_thousand_model_run_page_stays_under_2_mb(doc):
     assert len(list(next(run.find_id("trail").iter("tbody")).iter("tr"))) == 1000
 
 
+def test_stale_sources_are_named_once_on_the_run_page(doc):
+    models = [f"m-{k:02d}" for k in range(7)]
+    stale = {
+        "sales": {
+            "uri": "/data/exports/2026-11-30/sales.parquet",
+            "last": "2026-11-23T00:00:00Z",
+            "as_of": "2026-11-30",
+            "frequency": "D",
+            "allowed": 1,
+            "models": models,
+        }
+    }
+    page = parse(render_run(doc, dict(META, stale_sources=stale))["index.html"])
+    (para,) = [p for p in page.iter("p") if "stale-source" in p.classes()]
+    said = para.text()
+    assert said.count("Source sales") == 1 and "last observed on 2026-11-23" in said
+    assert "before the as-of date 2026-11-30: 7 model(s)" in said and "m-04 and 2 more" in said and "m-05" not in said
+    plain = render_run(doc, META)["index.html"].decode("utf-8")
+    assert "stale-source" not in plain
+
+
 # ----------------------------------------------------------------------------------------------
 # archive index
 # ----------------------------------------------------------------------------------------------

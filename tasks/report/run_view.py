@@ -19,6 +19,7 @@ from .text import SHORT_TEXT, coord, format_number, to_float, user_text
 from .views import check_ran, days_to_act, deciding_check, model_link, record_action
 
 _HISTORY_CELLS = 8
+_STALE_MODELS_SHOWN = 5  # model ids named per stale source; the exceptions table lists them all
 
 
 def _check_models(models: Sequence[Mapping[str, Any]]) -> None:
@@ -259,6 +260,30 @@ def _history_problems_view(meta: Mapping[str, Any]) -> list[str]:
     return out
 
 
+def _stale_sources_view(meta: Mapping[str, Any]) -> list[str]:
+    """One sentence per source whose last observation was too old to audit its models (listed once,
+    however many of its models it made insufficient)."""
+    out = []
+    stale = meta.get("stale_sources") or {}
+    for name in sorted(stale):
+        s = stale[name]
+        if not isinstance(s, Mapping):
+            continue
+        models = [user_text(m, 80) for m in s.get("models") or ()]
+        shown = ", ".join(models[:_STALE_MODELS_SHOWN]) + (
+            f" and {len(models) - _STALE_MODELS_SHOWN} more" if len(models) > _STALE_MODELS_SHOWN else ""
+        )
+        last = user_text(str(s.get("last") or "unknown")[:10] if s.get("last") else "unknown", 40)
+        out.append(
+            f"Source {user_text(name, 80)} ({user_text(s.get('uri'), 200)}) was last observed on {last}, more than "
+            f"{user_text(s.get('allowed'), 10)} period(s) of frequency {user_text(s.get('frequency'), 10)} before the "
+            f"as-of date {user_text(s.get('as_of'), 20)}: {len(models)} model(s) had no recent data to audit "
+            f"({shown}). Refresh the extract, or raise the source's max_staleness or the policy's max_staleness_days "
+            "if the delay is expected."
+        )
+    return out
+
+
 def _movement_view(doc: Mapping[str, Any], models: Sequence[Mapping[str, Any]]) -> dict:
     moves = doc["summary"].get("movement") or {}
     groups = []
@@ -305,6 +330,7 @@ def index_view(doc: Mapping[str, Any], context: Mapping[str, Any]) -> dict:
         "summary": _summary_view(doc),
         "scope": _scope_view(context["meta"], doc["summary"]),
         "history_problems": _history_problems_view(context["meta"]),
+        "stale_sources": _stale_sources_view(context["meta"]),
         "exceptions": _exceptions_view(models, doc["run"].get("policy"), as_of),
         "tier_legend": _tier_legend(doc["run"].get("policy")),
         "watch": _watch_view(models),

@@ -66,6 +66,8 @@ def meta_view(meta: Mapping[str, Any]) -> dict:
         for p in meta.get("history_problems") or ()
         if isinstance(p, Mapping)
     ]
+    stale = meta.get("stale_sources") if isinstance(meta.get("stale_sources"), Mapping) else {}
+    view["stale_sources"] = {str(name): dict(s) for name, s in stale.items() if isinstance(s, Mapping)}
     return view
 
 
