@@ -70,7 +70,7 @@ def _run(name: str, quick: bool) -> list[dict]:
 def _table(rows: list[dict]) -> str:
     lines = ["| benchmark | size | measured | ratio | goal | met |", "| --- | --- | --- | --- | --- | --- |"]
     for r in rows:
-        met = "yes" if r["met"] else "**no**"
+        met = "n/a" if r["met"] is None else "yes" if r["met"] else "**no**"
         lines.append(f"| {r['benchmark']} | {r['size']} | {r['measured']} | {r['ratio_text']} | {r['goal']} | {met} |")
     return "\n".join(lines)
 
@@ -126,6 +126,10 @@ def _details(rows: list[dict]) -> str:
                     _seconds(d["two_workers"]["flow_timings"], stages),
                 )
             )
+            if "projection" in d:
+                from .scaleout import describe_projection
+
+                out.append("**Scale-out model.** " + describe_projection(d["projection"]))
         if "runs" in d:
             mib = 2**20
             lines = [

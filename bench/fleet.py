@@ -26,6 +26,7 @@ workers, with nothing else to do.
 from __future__ import annotations
 
 import argparse
+import json
 import pathlib
 import tempfile
 import time
@@ -98,7 +99,9 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
     result = flow_fn(registry=registry, as_of=AS_OF, archive=archive, models=models)
     t2 = time.perf_counter()
     work = clock.covered(t1, t2)
+    manifest = pathlib.Path(result["report"]).parent / "manifest.json"
     return {
+        "batches": json.loads(manifest.read_text())["batches"] if manifest.is_file() else None,
         "server_start_s": t1 - t0,
         "flow_s": t2 - t1,
         "work_s": work,
