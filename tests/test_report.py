@@ -811,6 +811,27 @@ def test_hostile_strings_render_harmlessly(doc, pages, dom):
     assert HOSTILE in next(hostile_page.iter("title")).text()
 
 
+def test_user_text_shows_exactly_the_controls_and_direction_characters():
+    """Over the first two planes, a character is shown as ``[U+XXXX]`` exactly when it is a control
+    (category Cc) other than tab and newline, or a character that changes direction or breaks a line."""
+    import unicodedata
+
+    from fitaudit.tasks.report.text import user_text
+
+    # source: Unicode Standard Annex #9 (Unicode Bidirectional Algorithm), section 2: the Arabic letter
+    # mark, the left-to-right and right-to-left marks, embeddings and overrides, isolates; U+2028 and
+    # U+2029 are the line and paragraph separators (Unicode Standard, chapter 5.8)
+    direction = {0x061C, 0x200E, 0x200F, 0x2028, 0x2029, *range(0x202A, 0x202F), *range(0x2066, 0x206A)}
+    chars = [chr(c) for c in range(0x20000)]
+    shown = [
+        f"[U+{ord(ch):04X}]" if ord(ch) in direction or (unicodedata.category(ch) == "Cc" and ch not in "\t\n") else ch
+        for ch in chars
+    ]
+    assert sum(s != ch for s, ch in zip(shown, chars)) == 63 + 14  # 65 Cc code points but tab, newline; 14 others
+    assert user_text("".join(chars)) == "".join(shown)
+    assert user_text("a\u202eb", 2) == "a[U+202E]… (+1 characters)"  # cut first, then shown
+
+
 def test_long_values_are_cut_on_the_run_page_only(doc):
     long_doc = copy.deepcopy(doc)
     target = next(m for m in long_doc["models"] if m["verdict"] == "refit")

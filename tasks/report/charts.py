@@ -11,6 +11,7 @@ here: text values are escaped with markupsafe as autoescape would.
 
 from __future__ import annotations
 
+import bisect
 import math
 from collections.abc import Mapping, Sequence
 from typing import Any
@@ -141,7 +142,8 @@ def _axes(
 
 
 def _heat_class(v: float) -> str:
-    return "h" + str(1 + sum(v > edge for edge in HEAT_BINS))
+    """``h1`` .. ``h8``: one more than the number of edges of :data:`HEAT_BINS` below ``v``."""
+    return _HEAT_CLASSES[bisect.bisect_left(HEAT_BINS, v)]
 
 
 def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
@@ -291,12 +293,14 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
         "largest": largest,
         "max_point": max_point,
         "members_marked": [CLASSICAL_MEMBER_LABELS[m] for m in members_marked],
-        "bins": heat_legend(),
+        "bins": _HEAT_LEGEND,
         "scale_words": HEAT_SCALE_WORDS,
     }
 
 
 def heat_legend() -> list[dict]:
+    """The heat map's classes for its legend: class name, range of T / critical value in words, and
+    whether the check fails there."""
     edges = (None,) + HEAT_BINS + (None,)
     out = []
     for k in range(len(HEAT_BINS) + 1):
@@ -310,6 +314,10 @@ def heat_legend() -> list[dict]:
         out.append({"cls": f"h{k + 1}", "text": text, "fails": lo is not None and lo >= 1.0})
     return out
 
+
+#: The legend of every heat map (built once: the classes are fixed; templates only read it).
+_HEAT_LEGEND = heat_legend()
+_HEAT_CLASSES = tuple(f"h{k + 1}" for k in range(len(HEAT_BINS) + 1))
 
 #: How the heat map's colours read, for its legend.
 HEAT_SCALE_WORDS = (

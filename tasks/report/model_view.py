@@ -503,7 +503,8 @@ def _forecast_view(m: Mapping[str, Any], view: dict) -> dict | None:
     check in place of two, and what the model's identity rows mean for it; None for a fitted model.
 
     Adjusts ``view`` (from :func:`model_page_view`) in place: the identity rows name the statement and
-    the stated law, the checks table has one column, the charts are labelled as the forecast check.
+    the stated law, and the checks table has one column (:func:`model_page_view` labels the charts
+    as the forecast check).
     """
     stated = m.get("forecasts")
     if stated is None:
@@ -537,7 +538,6 @@ def _forecast_view(m: Mapping[str, Any], view: dict) -> dict | None:
                 cells = [said[r["key"]]]
             rows.append({**r, "cells": cells})
         view["audit"]["check_rows"] = rows
-        view["audit"]["checks"] = [c for c in (_check_view(production, "production", _FORECAST_CHECK),) if c]
     return {
         "note": NOT_REFITTED_PAGE,
         "statement": kv_rows(stated),
@@ -589,10 +589,15 @@ def model_page_view(m: Mapping[str, Any], as_of: str, policy: Mapping[str, Any] 
     }
     if audit:
         production, refit = audit.get("production"), audit.get("refit")
+        checks = (
+            (_check_view(production, "production", _FORECAST_CHECK),)  # forecasts made elsewhere: one check
+            if m.get("forecasts") is not None
+            else (_check_view(production, "production"), _check_view(refit, "refit"))
+        )
         view["audit"] = {
             "has_production": production is not None,
             "check_rows": _check_rows(production, refit, policy),
-            "checks": [c for c in (_check_view(production, "production"), _check_view(refit, "refit")) if c],
+            "checks": [c for c in checks if c],
             "params": _params_rows(audit),
             "fitted": {k: (audit.get("fitted") or {}).get(k) for k in ("loglik", "aic", "bic", "nobs", "converged")},
             "fit_message": user_text((audit.get("fitted") or {}).get("message")).rstrip("."),

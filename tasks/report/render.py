@@ -38,6 +38,7 @@ def environment() -> jinja2.Environment:
         trim_blocks=True,
         lstrip_blocks=True,
         keep_trailing_newline=True,
+        auto_reload=False,  # the templates ship with the package: no file check per page
     )
     env.filters.update(num=format_number, p=format_p, px=coord, count=count_text, svg=svg_element)
     return env

@@ -9,13 +9,17 @@ long values.
 from __future__ import annotations
 
 import math
-import unicodedata
+import re
 from collections.abc import Mapping
 from typing import Any
 
 #: How many characters of an id, owner or table key are shown before the rest is cut.
 SHORT_TEXT = 160
-_VISIBLE_CONTROLS = {0x061C, 0x200E, 0x200F, 0x2028, 0x2029} | set(range(0x202A, 0x202F)) | set(range(0x2066, 0x206A))
+#: Characters :func:`user_text` shows as ``[U+XXXX]``: the control characters (Unicode category Cc:
+#: U+0000-U+001F and U+007F-U+009F) but tab and newline, the Arabic letter mark, the left-to-right and
+#: right-to-left marks, the line and paragraph separators, and the bidirectional embeddings, overrides
+#: and isolates (U+202A-U+202E, U+2066-U+2069).
+_VISIBLE = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028\u2029\u202a-\u202e\u2066-\u2069]")
 
 
 def to_float(x: Any) -> float | None:
@@ -94,15 +98,12 @@ def user_text(value: Any, limit: int | None = None) -> str:
     cut = 0
     if limit is not None and len(text) > limit:
         cut, text = len(text) - limit, text[:limit]
-    out = []
-    for ch in text:
-        code = ord(ch)
-        if code in _VISIBLE_CONTROLS or (unicodedata.category(ch) == "Cc" and ch not in "\t\n"):
-            out.append(f"[U+{code:04X}]")
-        else:
-            out.append(ch)
-    shown = "".join(out)
+    shown = _VISIBLE.sub(_code_point, text)
     return f"{shown}… (+{cut} characters)" if cut else shown
+
+
+def _code_point(match: re.Match) -> str:
+    return f"[U+{ord(match.group()):04X}]"
 
 
 def value_text(value: Any) -> str:
