@@ -6,7 +6,7 @@ import pathlib
 import shutil
 from collections.abc import Callable
 
-from fitaudit.tasks.demo import DEMO_AS_OF, demo_as_of_dates, write_demo
+from fitaudit.demo import DEMO_AS_OF, demo_as_of_dates, write_demo
 
 from .audit import audit_flow
 

@@ -9,8 +9,8 @@ import sys
 
 import pytest
 
+from fitaudit.demo import DEMO_AS_OF, write_demo
 from fitaudit.flows.cli import EXIT_FAIL_ON, EXIT_OK, EXIT_USAGE, EXIT_VERIFY, build_parser, main
-from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
 
 COMMANDS = [
     ["demo"],

@@ -8,9 +8,9 @@ import re
 
 import pytest
 
+from fitaudit.demo import DEMO_AS_OF, write_demo
 from fitaudit.flows.cli import EXIT_OK, EXIT_USAGE, main
 from fitaudit.tasks.deepcheck import deep_check
-from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
 
 REPO = pathlib.Path(__file__).resolve().parents[1]
 PROBLEM = re.compile(r"^(?P<file>\S+\.yaml):(?P<line>\d+): (?P<field>\S+): (?P<message>.+)$")

@@ -10,8 +10,8 @@ import shutil
 import pytest
 
 from fitaudit.core.vocabulary import VERDICTS
+from fitaudit.demo import DEMO_AS_OF, write_demo
 from fitaudit.tasks.archive import verify_archive
-from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
 
 pytestmark = pytest.mark.server
 

@@ -725,9 +725,9 @@ FLOW_MODELS = ["supplier-pump-01", "supplier-pump-02", "notebook-leak-01", "ener
 
 @pytest.fixture(scope="module")
 def flow_run(prefect_server, tmp_path_factory):
+    from fitaudit.demo import DEMO_AS_OF, write_demo
     from fitaudit.flows.audit import audit_flow
     from fitaudit.tasks import events
-    from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
 
     demo = write_demo(tmp_path_factory.mktemp("forecast-flow"))
     sent = []
@@ -791,9 +791,9 @@ def test_the_audit_flow_publishes_forecast_entries_like_any_model(flow_run):
 
 @pytest.mark.server
 def test_fitaudit_refit_refuses_a_forecast_entry(flow_run, capsys):
+    from fitaudit.demo import DEMO_AS_OF
     from fitaudit.flows.cli import EXIT_ERROR, main
     from fitaudit.flows.refit import refit_flow
-    from fitaudit.tasks.demo import DEMO_AS_OF
     from fitaudit.tasks.refit import NotRefittableError
 
     demo = flow_run["demo"]

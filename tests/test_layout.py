@@ -10,7 +10,7 @@ import tomllib
 import pytest
 
 REPO = pathlib.Path(__file__).resolve().parents[1]
-TOP = ("core", "tasks", "flows", "templates")
+TOP = ("core", "tasks", "flows", "templates", "demo")
 #: The folder installed as the package ``fitaudit`` itself (its public surface).
 API = "api"
 
@@ -39,6 +39,7 @@ def test_every_package_folder_is_listed():
 def test_installed_under_one_namespace():
     import fitaudit
     import fitaudit.core
+    import fitaudit.demo
     import fitaudit.flows
     import fitaudit.tasks
     import fitaudit.templates
@@ -118,6 +119,72 @@ def test_tests_import_fitaudit_namespace_only(path):
         )
 
 
+def _absolute_imports(source: str, rel: pathlib.PurePath):
+    """Every module that ``source`` (the file ``rel`` under the repository) imports, with its line;
+    relative imports are resolved within the ``fitaudit`` namespace."""
+    package = ["fitaudit"] if rel.parts[0] == API else ["fitaudit", rel.parts[0]]
+    package += rel.parts[1:-1]
+    for node in ast.walk(ast.parse(source, filename=str(rel))):
+        if isinstance(node, ast.Import):
+            for alias in node.names:
+                yield alias.name, node.lineno
+        elif isinstance(node, ast.ImportFrom):
+            parent = package[: len(package) - node.level + 1] if node.level else []
+            base = ".".join([*parent, *([node.module] if node.module else [])])
+            if node.module is None:  # ``from .. import demo``: the names are modules
+                for alias in node.names:
+                    yield f"{base}.{alias.name}", node.lineno
+            else:
+                yield base, node.lineno
+
+
+#: The only modules outside demo/ that may import the demo scenario: the demo command and the command
+#: line that starts it (docs/architecture.md §1).  The audit itself never depends on the fiction.
+DEMO_IMPORTERS = ("flows/demo.py", "flows/cli.py")
+
+
+def _imports_of(package: str, source: str, rel: pathlib.PurePath) -> list[int]:
+    return [line for module, line in _absolute_imports(source, rel) if module.split(".")[:2] == package.split(".")]
+
+
+def test_layer_import_detector_resolves_relative_imports():
+    """The checks below can fail: absolute, relative and ``from .. import demo`` forms are all found."""
+    source = (
+        "from fitaudit.demo import write_demo\n"
+        "from ..demo import scenario\n"
+        "from .. import demo\n"
+        "import fitaudit.demo.scenario\n"
+        "from . import audit\n"
+        "from ..tasks.demo_notes import x\n"
+    )
+    rel = pathlib.PurePosixPath("flows/probe.py")
+    assert _imports_of("fitaudit.demo", source, rel) == [1, 2, 3, 4]  # common practice: one hit per line
+    assert _imports_of("fitaudit.flows", source, rel) == [5]
+    assert _imports_of("fitaudit.demo", "from .scenario import x\n", pathlib.PurePosixPath("demo/__init__.py")) == [1]
+
+
+@pytest.mark.parametrize(
+    "path",
+    sorted(p for top in ("core", "tasks", "flows", API) for p in (REPO / top).rglob("*.py")),
+    ids=lambda p: str(p.relative_to(REPO)),
+)
+def test_only_the_demo_command_imports_the_demo(path):
+    rel = path.relative_to(REPO)
+    lines = _imports_of("fitaudit.demo", path.read_text(), rel)
+    assert rel.as_posix() in DEMO_IMPORTERS or not lines, (
+        f"{rel}:{lines[0] if lines else ''} imports fitaudit.demo; only {', '.join(DEMO_IMPORTERS)} may"
+    )
+
+
+@pytest.mark.parametrize("path", sorted((REPO / "demo").rglob("*.py")), ids=lambda p: str(p.relative_to(REPO)))
+def test_the_demo_imports_core_and_tasks_not_flows(path):
+    rel = path.relative_to(REPO)
+    lines = _imports_of("fitaudit.flows", path.read_text(), rel)
+    assert not lines, (
+        f"{rel}:{lines[0]} imports fitaudit.flows; the demo generator imports fitaudit.core and tasks only"
+    )
+
+
 @pytest.mark.slow
 def test_wheel_holds_only_the_fitaudit_namespace(tmp_path):
     """A built wheel puts fitaudit/ and its dist-info at the top, nothing named core/tasks/flows/tests."""
@@ -139,6 +206,7 @@ def test_wheel_holds_only_the_fitaudit_namespace(tmp_path):
     for sub in (
         "core/divergence.py",
         "tasks/archive/__init__.py",
+        "demo/scenario.py",
         "flows/cli.py",
         "templates/run.html.j2",
         "templates/report.css",

@@ -135,7 +135,7 @@ def test_locate_change_matches_the_original_loop(seed):
 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory):
-    from fitaudit.tasks.demo import write_demo
+    from fitaudit.demo import write_demo
 
     return write_demo(tmp_path_factory.mktemp("optimisations-demo"))
 
@@ -148,8 +148,8 @@ def registry(demo):
 
 
 def test_staging_in_several_scans_writes_the_same_batches(demo, registry, tmp_path):
+    from fitaudit.demo import DEMO_AS_OF
     from fitaudit.tasks.batches import read_batch, stage_inputs
-    from fitaudit.tasks.demo import DEMO_AS_OF
 
     one = stage_inputs(
         registry, DEMO_AS_OF, tmp_path / "one", archive_root=demo["archive"], batch_size=4, series_per_scan=10**6
@@ -170,6 +170,7 @@ def test_staging_in_several_scans_writes_the_same_batches(demo, registry, tmp_pa
 
 
 def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo, registry, tmp_path):
+    from fitaudit.demo import DEMO_AS_OF
     from fitaudit.tasks.audit import (
         audit_batch,
         audit_batch_spilled,
@@ -180,7 +181,6 @@ def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo, reg
         spill_path,
     )
     from fitaudit.tasks.batches import stage_inputs
-    from fitaudit.tasks.demo import DEMO_AS_OF
 
     wanted = ["demand-d-02", "demand-d-07", "demand-d-13", "demand-d-22", "demand-d-25", "energy-pump-01"]
     staged = stage_inputs(registry, DEMO_AS_OF, tmp_path, archive_root=demo["archive"], model_ids=wanted, batch_size=3)
@@ -213,6 +213,7 @@ def _reference_run(
     demo: dict, registry, archive: pathlib.Path, work: pathlib.Path, meta: dict
 ) -> tuple[bytes, dict, list]:
     """The plain pipeline: the same stage functions in this process, whole document and pages in memory."""
+    from fitaudit.demo import DEMO_AS_OF
     from fitaudit.tasks._io import canonical_json
     from fitaudit.tasks.audit import (
         audit_batch,
@@ -225,7 +226,6 @@ def _reference_run(
         with_candidates,
     )
     from fitaudit.tasks.batches import stage_inputs
-    from fitaudit.tasks.demo import DEMO_AS_OF
     from fitaudit.tasks.report import render_run
     from fitaudit.tasks.results import build_results, results_rows
 
@@ -254,8 +254,8 @@ def _reference_run(
 @pytest.mark.slow
 @pytest.mark.server
 def test_audit_flow_matches_the_plain_pipeline(demo, registry, prefect_server, tmp_path, monkeypatch):
+    from fitaudit.demo import DEMO_AS_OF
     from fitaudit.flows.audit import audit_flow
-    from fitaudit.tasks.demo import DEMO_AS_OF
     from fitaudit.tasks.report import environment
 
     archive = tmp_path / "archive"

@@ -15,7 +15,7 @@ import time
 
 import pytest
 
-from fitaudit.tasks.demo import DEMO_AS_OF, write_demo
+from fitaudit.demo import DEMO_AS_OF, write_demo
 
 pytestmark = [pytest.mark.server, pytest.mark.slow]
 

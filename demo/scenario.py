@@ -49,8 +49,7 @@ import pyarrow.parquet as pq
 from scipy import stats
 
 from fitaudit.core.models import ForecastModel, model_from_dict
-
-from .params import promote, write_version
+from fitaudit.tasks.params import promote, write_version
 
 __all__ = ["DEMO_AS_OF", "DEMO_START", "write_demo", "demo_as_of_dates"]
 
