@@ -12,6 +12,7 @@ here: text values are escaped with markupsafe as autoescape would.
 from __future__ import annotations
 
 import bisect
+import functools
 import math
 from collections.abc import Mapping, Sequence
 from typing import Any
@@ -34,13 +35,13 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
     and a macro call per attribute made charts most of a page's rendering time.  Every text value
     is escaped as autoescape would; coordinates pass through :func:`coord`.
     """
-    esc, px = markupsafe.escape, coord
+    esc, px, word = markupsafe.escape, coord, _escaped_word
     cid = esc(c["id"])
 
     def line(g: Mapping[str, Any]) -> str:
         return (
             f'<line x1="{px(g["x1"])}" y1="{px(g["y1"])}" x2="{px(g["x2"])}" y2="{px(g["y2"])}" '
-            f'class="{esc(g["cls"])}"/>'
+            f'class="{word(g["cls"])}"/>'
         )
 
     out = [
@@ -51,7 +52,7 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
         "\n",
         "".join(
             f'<rect x="{px(r["x"])}" y="{px(r["y"])}" width="{px(r["w"])}" height="{px(r["h"])}" '
-            f'class="{esc(r["cls"])}"/>'
+            f'class="{word(r["cls"])}"/>'
             for r in c["rects"]
         ),
         "\n",
@@ -62,18 +63,24 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
         "".join(f'<path d="{esc(p["d"])}" class="{esc(p["cls"])}"/>' for p in c["paths"]),
         "\n",
         "".join(
-            f'<circle cx="{px(o["cx"])}" cy="{px(o["cy"])}" r="{px(o["r"])}" class="{esc(o["cls"])}"/>'
+            f'<circle cx="{px(o["cx"])}" cy="{px(o["cy"])}" r="{px(o["r"])}" class="{word(o["cls"])}"/>'
             for o in c["circles"]
         ),
         "\n",
         "".join(
-            f'<text x="{px(t["x"])}" y="{px(t["y"])}" text-anchor="{esc(t["anchor"])}" '
-            f'class="{esc(t["cls"])}">{esc(t["text"])}</text>'
+            f'<text x="{px(t["x"])}" y="{px(t["y"])}" text-anchor="{word(t["anchor"])}" '
+            f'class="{word(t["cls"])}">{esc(t["text"])}</text>'
             for t in c["texts"]
         ),
         "\n</svg>\n",
     ]
     return markupsafe.Markup("".join(out))
+
+
+@functools.lru_cache(maxsize=64)
+def _escaped_word(word: str) -> str:
+    """A class name or anchor, escaped once: a chart repeats a few of them hundreds of times."""
+    return str(markupsafe.escape(word))
 
 
 class Scale:
@@ -157,6 +164,7 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     cw, ch, left, top = 40.0, 18.0, 178.0, 16.0
     width, height = left + nb * cw + 12, top + na * ch + 46
     values = [[to_float(grid[i][j]) for j in range(nb)] for i in range(na)]
+    alpha_text, beta_text = [format_number(a) for a in alphas], [format_number(b) for b in betas]
     fail = [
         [v is not None and not bool(infinite[i][j]) and v > 1.0 for j, v in enumerate(row)]
         for i, row in enumerate(values)
@@ -173,9 +181,9 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     finite = [v for i, row in enumerate(values) for j, v in enumerate(row) if v is not None and not infinite[i][j]]
     largest = max(finite) if finite else None
     desc = (
-        f"{label}: T divided by its critical value at {na} values of alpha ({format_number(alphas[0])} to "
-        f"{format_number(alphas[-1])}, rows) and {nb} values of beta ({format_number(betas[0])} to "
-        f"{format_number(betas[-1])}, columns). "
+        f"{label}: T divided by its critical value at {na} values of alpha ({alpha_text[0]} to "
+        f"{alpha_text[-1]}, rows) and {nb} values of beta ({beta_text[0]} to "
+        f"{beta_text[-1]}, columns). "
         f"{n_fail} of {na * nb} points exceed 1 (the check fails there); {n_inf} are infinite (an empty cell); "
         f"the largest finite value is {format_number(largest)}."
     )
@@ -201,7 +209,7 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
                 cls, shown = _heat_class(v), format_number(v)
             chart["rects"].append({"x": x0, "y": y0, "w": cw, "h": ch, "cls": cls})
             row_cells.append({"text": shown, "fail": fail[i][j]})
-        rows_table.append({"alpha": format_number(alphas[i]), "cells": row_cells})
+        rows_table.append({"alpha": alpha_text[i], "cells": row_cells})
     # edge of the failing region: every side of a failing cell that borders a non-failing one
     segments = []
     for i in range(na):
@@ -227,18 +235,18 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     if segments:
         chart["paths"].append({"d": "".join(segments), "cls": "edge"})
     # axes: alpha ticks on the left, beta ticks below
-    for i, a in enumerate(alphas):
+    for i in range(na):
         if i % 2 == 0 or na <= 9:
             chart["texts"].append(
-                {"x": left - 5, "y": cell_y(i) + ch / 2 + 4, "text": format_number(a), "cls": "tk", "anchor": "end"}
+                {"x": left - 5, "y": cell_y(i) + ch / 2 + 4, "text": alpha_text[i], "cls": "tk", "anchor": "end"}
             )
-    for j, b in enumerate(betas):
+    for j in range(nb):
         if j % 2 == 0 or nb <= 5:
             chart["texts"].append(
                 {
                     "x": cell_x(j) + cw / 2,
                     "y": top + na * ch + 14,
-                    "text": format_number(b),
+                    "text": beta_text[j],
                     "cls": "tk",
                     "anchor": "middle",
                 }
@@ -286,7 +294,7 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
         max_point = {"alpha": format_number(a_max), "beta": format_number(b_max)}
     return {
         "chart": chart,
-        "table": {"betas": [format_number(b) for b in betas], "rows": rows_table},
+        "table": {"betas": beta_text, "rows": rows_table},
         "n_fail": n_fail,
         "n_inf": n_inf,
         "n_points": na * nb,
@@ -332,6 +340,7 @@ def histogram(check: Mapping[str, Any], chart_id: str, label: str) -> dict | Non
     if not edges or not counts:
         return None
     density = plots.get("hist_density")
+    edge_text = [format_number(e) for e in edges]
     total = sum(counts) or 1
     observed = [c / (total * (edges[k + 1] - edges[k])) for k, c in enumerate(counts)]
     theory = [to_float(d) or 0.0 for d in density] if density else None
@@ -341,7 +350,7 @@ def histogram(check: Mapping[str, Any], chart_id: str, label: str) -> dict | Non
     y = Scale(0.0, top_value, height - 42, 18)
     desc = (
         f"{label}: observed density of the {total} standardised residuals in {len(counts)} bins from "
-        f"{format_number(edges[0])} to {format_number(edges[-1])}"
+        f"{edge_text[0]} to {edge_text[-1]}"
         + (
             ", with the density of the noise law as a line."
             if theory
@@ -371,7 +380,7 @@ def histogram(check: Mapping[str, Any], chart_id: str, label: str) -> dict | Non
         )
     rows = [
         {
-            "bin": f"{format_number(edges[k])} to {format_number(edges[k + 1])}",
+            "bin": f"{edge_text[k]} to {edge_text[k + 1]}",
             "count": counts[k],
             "observed": format_number(observed[k]),
             "noise": format_number(theory[k]) if theory else "n/a",

@@ -281,6 +281,7 @@ def _check_view(check: Mapping[str, Any] | None, kind: str, label: str | None = 
     n = check.get("n") or 0
     s = check.get("cells") or 0
     counts = check.get("counts") or []
+    expected = format_number(n / s if s else None)  # the same for every cell (equiprobable cells)
     return {
         "kind": kind,
         "label": label,
@@ -289,10 +290,7 @@ def _check_view(check: Mapping[str, Any] | None, kind: str, label: str | None = 
         "qq": qq_plot(check, f"qq-{kind}", label),
         "acf": acf_plot(check, f"acf-{kind}", label),
         "members": _members_rows(check),
-        "cells": [
-            {"cell": k + 1, "observed": c, "expected": format_number(n / s if s else None)}
-            for k, c in enumerate(counts)
-        ],
+        "cells": [{"cell": k + 1, "observed": c, "expected": expected} for k, c in enumerate(counts)],
     }
 
 

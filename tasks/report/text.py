@@ -45,11 +45,16 @@ def format_number(x: Any, digits: int = 3) -> str:
     whole, missing values (None, NaN) as ``n/a`` and infinities (also the document's ``"inf"``) as
     ``∞``.
     """
-    if isinstance(x, int) and not isinstance(x, bool):
+    if type(x) is float:  # the common case, as to_float would take it
+        if x != x:
+            return "n/a"
+        v = x
+    elif isinstance(x, int) and not isinstance(x, bool):
         return str(x)
-    v = to_float(x)
-    if v is None:
-        return "n/a"
+    else:
+        v = to_float(x)
+        if v is None:
+            return "n/a"
     if math.isinf(v):
         return "∞" if v > 0 else "-∞"
     if v == 0:
@@ -78,8 +83,7 @@ def format_p(p: Any) -> str:
 
 def coord(x: float) -> str:
     """An SVG coordinate with at most one decimal."""
-    text = f"{x:.1f}"
-    return text[:-2] if text.endswith(".0") else text
+    return f"{x:.1f}".removesuffix(".0")
 
 
 def count_text(x: Any) -> str:
