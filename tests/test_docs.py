@@ -167,7 +167,7 @@ def test_architecture_paths_exist():
     """Every repository path the architecture document names (e.g. ``core/cells.py``) exists, so a
     module that moves must move its row in "Where each concept lives" too."""
     text = (ROOT / "docs" / "architecture.md").read_text(encoding="utf-8")
-    paths = re.findall(r"`((?:core|tasks|flows|templates|tests|bench|docs|examples|api)/[\w./-]*)`", text)
+    paths = re.findall(r"`((?:core|tasks|flows|templates|tests|bench|docs|examples|api|demo)/[\w./-]*)`", text)
     assert "core/vocabulary.py" in paths
     missing = sorted({p for p in paths if not (ROOT / p).exists()})
     assert not missing, f"docs/architecture.md names paths that do not exist: {missing}"
