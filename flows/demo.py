@@ -50,7 +50,8 @@ def run_demo(
             )
         )
     say(
-        f"audit {len(earlier) + 1} of {len(earlier) + 1}: as of {DEMO_AS_OF}, then one refit run for the models it flags"
+        f"audit {len(earlier) + 1} of {len(earlier) + 1}: as of {DEMO_AS_OF}, "
+        "then one refit run for the models it flags"
     )
     result = audit_flow(
         registry=paths["registry"],
@@ -63,7 +64,8 @@ def run_demo(
     refits = result.get("refits")
     if refits:
         say(
-            f"refit run {refits['run_id']} refitted {', '.join(r['model_id'] for r in refits['records'])}: {refits['path']}"
+            f"refit run {refits['run_id']} refitted {', '.join(r['model_id'] for r in refits['records'])}: "
+            f"{refits['path']}"
         )
     else:
         say("no model was flagged for a refit")

@@ -44,10 +44,6 @@ class PublishedRun:
     manifest_sha256: str
     seq: int
 
-    def to_dict(self) -> dict[str, Any]:
-        """Plain-dict form (path as a string)."""
-        return {"run_id": self.run_id, "path": str(self.path), "manifest_sha256": self.manifest_sha256, "seq": self.seq}
-
 
 class RunWriter:
     """Writes one run into a private staging folder and publishes it atomically with :meth:`finish`.
