@@ -2,6 +2,10 @@
 functions.  The only module of fitaudit that imports Jinja2; the views it renders come from
 :mod:`~fitaudit.tasks.report.run_view`, :mod:`~fitaudit.tasks.report.model_view` and
 :mod:`~fitaudit.tasks.report.views`.
+
+The model page's per-row loops (map, histogram, Q-Q, autocorrelation and cell tables, the checks
+table) read their rows' items by subscript (``x["text"]``): Jinja2's dot syntax tries an attribute
+first, which on a dict costs a caught AttributeError per cell.
 """
 
 from __future__ import annotations
