@@ -151,7 +151,7 @@ class _Spy:
 
     def __init__(self):
         self.scans = []
-        self.real = extracts._dataset
+        self.real = extracts.reading._dataset
 
     def __call__(self, loc, paths):
         spy = self
@@ -169,7 +169,7 @@ class _Spy:
 
 def test_filter_push_down_and_one_scan_for_all_series(one_file, monkeypatch):
     spy = _Spy()
-    monkeypatch.setattr(extracts, "_dataset", spy)
+    monkeypatch.setattr(extracts.reading, "_dataset", spy)
     out = read_series(
         _source("demand.parquet"),
         ["north", "east"],
@@ -192,7 +192,7 @@ def test_filter_push_down_and_one_scan_for_all_series(one_file, monkeypatch):
 def test_only_needed_columns_are_read(tmp_path, monkeypatch):
     _write(tmp_path / "demand.parquet", _table("north", _days("2024-01-01", 10), note=["x"] * 10, flag=[True] * 10))
     spy = _Spy()
-    monkeypatch.setattr(extracts, "_dataset", spy)
+    monkeypatch.setattr(extracts.reading, "_dataset", spy)
     out = read_series(_source("demand.parquet"), ["north"], ["demand"], base_dir=tmp_path)
     assert set(spy.scans[0]["columns"]) - {"__fragment_index", "__batch_index"} == {"district", "date", "demand"}
     assert out["north"].problems == ()  # extra columns are not an error
@@ -689,8 +689,8 @@ def test_fingerprint_cache_reuses_digests_of_unchanged_files(tmp_path, monkeypat
     assert cache_file.is_file()
 
     hashed = []
-    real = extracts._hash_file
-    monkeypatch.setattr(extracts, "_hash_file", lambda loc, path: hashed.append(path) or real(loc, path))
+    real = extracts.fingerprints._hash_file
+    monkeypatch.setattr(extracts.fingerprints, "_hash_file", lambda loc, path: hashed.append(path) or real(loc, path))
     again = extracts.FingerprintCache(cache_file)  # a later run: read back from the archive
     second = fingerprint_source(_source("x"), tmp_path, cache=again)
     assert hashed == [] and (again.hits, again.misses) == (2, 0)

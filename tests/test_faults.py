@@ -195,13 +195,13 @@ def flaky_source(monkeypatch):
 
     def install(failures: int) -> FlakyFiles:
         handler = FlakyFiles(failures)
-        locate = extracts._locate
+        locate = extracts.stores._locate
 
         def flaky_locate(source, base_dir, io_errors="skip"):
             loc = locate(source, base_dir, io_errors)
             return dataclasses.replace(loc, fs=PyFileSystem(handler)) if source.name == "flaky" else loc
 
-        monkeypatch.setattr(extracts, "_locate", flaky_locate)
+        monkeypatch.setattr(extracts.stores, "_locate", flaky_locate)
         stage = audit_module.stage_inputs_task
         assert stage.retries >= 2 and stage.retry_condition_fn is not None  # the production configuration
         monkeypatch.setattr(audit_module, "stage_inputs_task", stage.with_options(retry_delay_seconds=0))
@@ -217,9 +217,9 @@ def test_read_series_raises_io_errors_for_retry_or_names_the_file(fleet, monkeyp
     source = load_registry(root / "registry.yaml").sources["flaky"]
     for mode, failures in (("raise", 1), ("skip", -1)):
         handler = FlakyFiles(failures)
-        locate = extracts._locate
+        locate = extracts.stores._locate
         monkeypatch.setattr(
-            extracts,
+            extracts.stores,
             "_locate",
             lambda s, b, io_errors="skip", locate=locate, handler=handler: dataclasses.replace(
                 locate(s, b, io_errors), fs=PyFileSystem(handler)

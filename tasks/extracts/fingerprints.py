@@ -1,0 +1,196 @@
+"""Fingerprints: what a source held when it was read, for the manifest, with a cache of file digests."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import pathlib
+import time as _time
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.fs as pafs
+
+from .._io import canonical_json, sha256_bytes, sha256_file
+from ..registry import SourceEntry
+from . import stores
+from .conversion import _to_time
+from .formatting import _iso
+from .records import ExtractFingerprint, FileFingerprint
+from .stores import _dataset, _File, _inspect_files, _Location, _relative
+
+__all__ = ["RACY_SECONDS", "FingerprintCache", "fingerprint_source"]
+
+
+#: A file whose modification time is this close to the moment it was hashed is not cached.
+RACY_SECONDS = 2.0
+
+
+class FingerprintCache:
+    """SHA-256 digests of source files by version (path, size, modification time), in one JSON file.
+
+    Parameters
+    ----------
+    path : path-like
+        The cache file (staging uses ``<archive>/.fingerprints/cache.json``); created by
+        :meth:`save`.  A missing or unreadable file is an empty cache: the cache only saves
+        work, it never decides what the manifest says about bytes it has not seen.
+
+    Notes
+    -----
+    The same trade as ``make`` and ``rsync``: a file rewritten with the same size and
+    modification time keeps its old digest.  ``hits`` and ``misses`` count lookups.
+    """
+
+    def __init__(self, path: str | os.PathLike):
+        self.path = pathlib.Path(path)
+        self.hits = 0
+        self.misses = 0
+        self._changed = False
+        try:
+            data = json.loads(self.path.read_text(encoding="utf-8"))
+            self._entries = {k: v for k, v in data.get("files", {}).items() if isinstance(v, dict)}
+        except (OSError, ValueError, AttributeError):
+            self._entries = {}
+
+    @staticmethod
+    def _key(fs: pafs.FileSystem, path: str) -> str:
+        return f"{fs.type_name}:{path}"
+
+    def get(self, fs: pafs.FileSystem, path: str, size: int, mtime_ns: int | None) -> str | None:
+        """The cached digest of this version of the file, or None."""
+        entry = self._entries.get(self._key(fs, path))
+        if mtime_ns is not None and entry and entry.get("size") == size and entry.get("mtime_ns") == mtime_ns:
+            self.hits += 1
+            return entry.get("sha256")
+        self.misses += 1
+        return None
+
+    def put(
+        self, fs: pafs.FileSystem, path: str, size: int, mtime_ns: int | None, sha256: str, hashed_at: float
+    ) -> None:
+        """Remember a digest (not for a file without a modification time or modified too recently)."""
+        if mtime_ns is None or not sha256 or hashed_at - mtime_ns / 1e9 < RACY_SECONDS:
+            return
+        self._entries[self._key(fs, path)] = {"size": size, "mtime_ns": mtime_ns, "sha256": sha256}
+        self._changed = True
+
+    def save(self) -> None:
+        """Write the cache (atomically: a temporary file renamed over it) when it changed."""
+        if not self._changed:
+            return
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = self.path.with_name(f".{self.path.name}.{os.getpid()}.tmp")
+        tmp.write_bytes(canonical_json({"files": self._entries}))
+        os.replace(tmp, self.path)
+        self._changed = False
+
+
+def _mtimes(loc: _Location, paths: list[str]) -> dict[str, int | None]:
+    """Modification time (ns) of each file, None where the file system gives none."""
+    try:
+        infos = loc.fs.get_file_info(paths)
+    except (pa.ArrowException, OSError):
+        return dict.fromkeys(paths)
+    return {p: (None if i.mtime_ns is None else int(i.mtime_ns)) for p, i in zip(paths, infos)}
+
+
+def _hash_file(loc: _Location, path: str) -> str:
+    if isinstance(loc.fs, pafs.LocalFileSystem):
+        return sha256_file(path)
+    digest = hashlib.sha256()
+    with loc.fs.open_input_stream(path) as stream:
+        while chunk := stream.read(1 << 20):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def fingerprint_source(
+    source: SourceEntry,
+    base_dir: str | os.PathLike | None = None,
+    *,
+    io_errors: str = "skip",
+    cache: FingerprintCache | None = None,
+) -> ExtractFingerprint:
+    """Hash every file of a source and summarise what it holds (for the manifest).
+
+    Parameters
+    ----------
+    source : SourceEntry
+        The registry's source entry.
+    base_dir : path-like, optional
+        Folder that a relative ``source.uri`` resolves against.
+    io_errors : {"skip", "raise"}
+        As in :func:`read_series` (``"skip"``: a file whose bytes cannot be read is listed as
+        unreadable).
+    cache : FingerprintCache, optional
+        Digests of file versions already hashed (reused; new ones added; the caller saves it).
+
+    Returns
+    -------
+    ExtractFingerprint
+
+    Raises
+    ------
+    ExtractError
+        When the path does not exist, the folder is empty, or no file is readable Parquet.
+    """
+    loc = stores._locate(source, base_dir, io_errors)
+    files = _inspect_files(loc)
+    mtimes = _mtimes(loc, [f.path for f in files]) if cache is not None else {}
+    prints, listing, unreadable = [], [], []
+    for f in files:
+        digest = cache.get(loc.fs, f.path, f.size, mtimes.get(f.path)) if cache is not None else None
+        if digest is None:
+            try:
+                hashed_at = _time.time()
+                digest = _hash_file(loc, f.path)
+                if cache is not None:
+                    cache.put(loc.fs, f.path, f.size, mtimes.get(f.path), digest, hashed_at)
+            except OSError as exc:
+                loc.pass_io_error(exc)
+                digest = ""  # the bytes cannot even be read
+        prints.append(FileFingerprint(f.path, f.size, digest))
+        listing.append([_relative(loc, f.path), f.size, digest])
+        if f.schema is None or not digest:
+            unreadable.append(f.path)
+    readable = [f for f in files if f.schema is not None]
+    columns = tuple(dict.fromkeys(n for f in readable for n in f.schema.names))
+    time_min, time_max = _time_range(loc, readable, source.time, unreadable)
+    return ExtractFingerprint(
+        source=source.name,
+        uri=source.uri,
+        files=tuple(prints),
+        rows=sum(f.rows for f in readable),
+        time_min=time_min,
+        time_max=time_max,
+        columns=columns,
+        unreadable=tuple(sorted(set(unreadable))),
+        digest=sha256_bytes(canonical_json(listing)),
+    )
+
+
+def _time_range(
+    loc: _Location, readable: list[_File], time_column: str, failed: list[str]
+) -> tuple[str | None, str | None]:
+    """First and last timestamp over the readable files; files whose time column fails to read go to ``failed``."""
+    lows, highs = [], []
+    for f in readable:
+        if time_column not in f.schema.names:
+            continue
+        try:
+            t, _, why = _to_time(_dataset(loc, [f.path]).to_table(columns=[time_column])[time_column])
+        except (pa.ArrowException, OSError) as exc:
+            loc.pass_io_error(exc)
+            failed.append(f.path)
+            continue
+        if t is None or why:
+            continue
+        t = t[~np.isnat(t)]
+        if t.size:
+            lows.append(t.min())
+            highs.append(t.max())
+    if not lows:
+        return None, None
+    return _iso(min(lows), full=True), _iso(max(highs), full=True)
