@@ -80,6 +80,8 @@ _LABELS = {
     "audit.run_local": "audits and candidate searches",
     "publish.run_local": "records and pages",
     "audit.publish_staged": "archive writing and run page",
+    "publish.publish_staged": "archive writing and run page",
+    "publish.render_archive_index_file": "archive index page",
     "audit.calibration_for": "null tables",
     "batches.stage_inputs": "staging",
     "registry.load_registry": "registry",

@@ -26,6 +26,7 @@ workers, with nothing else to do.
 from __future__ import annotations
 
 import argparse
+import importlib
 import json
 import pathlib
 import tempfile
@@ -46,24 +47,51 @@ GOAL_FIT_BOUND = 3.0
 
 #: fitaudit's own work, as called by the flow and its tasks (module, function).  ``run_local``
 #: is where a batch task hands its plain function (audit, candidate search, records and pages)
-#: to the local worker processes, or runs it in place.
+#: to the local worker processes, or runs it in place.  A function is listed at each module that
+#: calls it by its global name (the flow module before its @tasks moved to fitaudit.tasks, and
+#: the task modules after); :func:`audit_in_child` patches the entries that exist and refuses to
+#: run when a function exists at none of them.
 WORK_FUNCTIONS = (
     ("fitaudit.tasks.registry", "load_registry"),
     ("fitaudit.flows.audit", "recover"),
+    ("fitaudit.tasks.archive_tasks", "recover"),
     ("fitaudit.flows.audit", "require_intact"),
+    ("fitaudit.tasks.archive_tasks", "require_intact"),
     ("fitaudit.flows.audit", "load_history"),
+    ("fitaudit.tasks.publish", "load_history"),
     ("fitaudit.tasks.batches", "stage_inputs"),
     ("fitaudit.tasks.audit", "calibration_for"),
     ("fitaudit.tasks.audit", "run_local"),
     ("fitaudit.flows.audit", "finalize"),
+    ("fitaudit.tasks.audit", "finalize"),
     ("fitaudit.tasks.publish", "run_local"),
     ("fitaudit.flows.audit", "results_head"),
     ("fitaudit.flows.audit", "results_summary"),
     ("fitaudit.flows.audit", "package_versions"),
     ("fitaudit.flows.audit", "code_commit"),
     ("fitaudit.flows.audit", "publish_staged"),
+    ("fitaudit.tasks.publish", "publish_staged"),
     ("fitaudit.flows.audit", "render_archive_index_file"),
+    ("fitaudit.tasks.publish", "render_archive_index_file"),
 )
+
+
+def _patch_work_functions(clock: WorkClock) -> None:
+    """Time every existing entry of :data:`WORK_FUNCTIONS`; raise if a function exists at none."""
+    found = set()
+    for module, name in WORK_FUNCTIONS:
+        try:
+            present = hasattr(importlib.import_module(module), name)
+        except ModuleNotFoundError:
+            present = False
+        if present:
+            clock.patch(module, name)
+            found.add(name)
+    missing = sorted({name for _, name in WORK_FUNCTIONS} - found)
+    if missing:
+        raise RuntimeError(
+            f"bench/fleet.py: work functions not found at any listed module: {missing}; update WORK_FUNCTIONS"
+        )
 
 
 def audit_in_child(registry: str, archive: str, models: list[str] | None = None, dask_workers: int = 0) -> dict:
@@ -72,8 +100,7 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
 
     _env.configure_prefect()
     clock = WorkClock()
-    for module, name in WORK_FUNCTIONS:
-        clock.patch(module, name)
+    _patch_work_functions(clock)
     from prefect.client.orchestration import get_client
 
     from fitaudit.flows.audit import audit_flow
