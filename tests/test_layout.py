@@ -95,7 +95,7 @@ JINJA_HOME = "tasks/report/render.py"
 
 @pytest.mark.parametrize(
     "path",
-    sorted(p for top in ("core", "tasks", "flows", API) for p in (REPO / top).rglob("*.py")),
+    sorted(p for top in ("core", "tasks", "flows", "demo", API) for p in (REPO / top).rglob("*.py")),
     ids=lambda p: str(p.relative_to(REPO)),
 )
 def test_only_the_report_renderer_imports_jinja2(path):
