@@ -565,9 +565,15 @@ def _default_registry(args: argparse.Namespace) -> str | None:
     """Fill an omitted registry argument from the ``registry_path`` setting; a message when that file is missing."""
     if not hasattr(args, "registry") or args.registry is not None:
         return None
-    from fitaudit.tasks.settings import get_settings
+    # the environment variable is the setting's highest-priority source: read it without loading
+    # Prefect's settings machinery (about a second of imports), which the other sources need
+    env = os.environ.get("PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH")
+    if env:
+        path = pathlib.Path(env)
+    else:
+        from fitaudit.tasks.settings import get_settings
 
-    path = get_settings().registry_path
+        path = get_settings().registry_path
     if not path.is_file():
         return (
             f"fitaudit {args.command}: no registry given, and the registry_path setting names {str(path)!r}, "

@@ -47,6 +47,15 @@ def test_registry_check_does_not_import_prefect_or_scipy(tmp_path):
     assert out["loaded"] == ["numpy"]  # model specs, noise laws and settings are built without scipy or Prefect
 
 
+def test_registry_check_from_the_environment_setting_does_not_import_prefect(tmp_path, monkeypatch):
+    """With no registry argument the path comes from the ``registry_path`` setting; its environment
+    variable (the highest-priority source of Prefect's settings) is read without loading Prefect."""
+    monkeypatch.setenv("PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH", str(EXAMPLE_REGISTRY))
+    out = _probe(["registry", "check"], tmp_path)
+    assert out["rc"] == 0  # the example registry, found through the setting
+    assert out["loaded"] == ["numpy"]
+
+
 def test_verify_does_not_import_prefect(tmp_path, archive):
     out = _probe(["verify", str(archive)], tmp_path)
     assert out["rc"] == 0  # an empty archive folder is intact
