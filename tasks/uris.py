@@ -27,6 +27,9 @@ __all__ = [
     "resolve_uri",
     "filter_term_problem",
     "filter_expression",
+    "FILESYSTEMS",
+    "SECRET_OPTIONS",
+    "is_object_store",
 ]
 
 #: Comparison operators a row filter term may use (pyarrow.parquet.filters_to_expression's).
@@ -35,7 +38,38 @@ FILTER_OPS: tuple[str, ...] = ("=", "==", "!=", "<", "<=", ">", ">=", "in", "not
 #: Operators whose value is a list.
 LIST_OPS: tuple[str, ...] = ("in", "not in")
 
+#: How an object store's URI is opened: pyarrow's own file systems (``arrow``: S3FileSystem, with
+#: the AWS SDK's retries of transient errors) or an fsspec file system (``fsspec``: s3fs, gcsfs,
+#: adlfs, ... wrapped in pyarrow.fs.FSSpecHandler).
+FILESYSTEMS: tuple[str, ...] = ("arrow", "fsspec")
+
+#: Option names whose values are secrets: masked in every view of a source, scrubbed from messages.
+SECRET_OPTIONS = frozenset(
+    {
+        "key",
+        "secret",
+        "token",
+        "password",
+        "access_key",
+        "secret_key",
+        "session_token",
+        "aws_access_key_id",
+        "aws_secret_access_key",
+        "aws_session_token",
+        "account_key",
+        "sas_token",
+        "client_secret",
+        "credentials",
+    }
+)
+
 _PROBE = dt.date(2026, 1, 2)
+
+
+def is_object_store(uri: str) -> bool:
+    """Whether ``uri`` names a file system by scheme (``s3://``, ``gs://``, ...) other than ``file://``."""
+    scheme, sep, _ = uri.partition("://")
+    return bool(sep) and scheme.lower() != "file"
 
 
 def _fields(uri: str) -> list[tuple[str, str, str | None]]:

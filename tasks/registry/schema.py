@@ -61,7 +61,15 @@ from fitaudit.core.vocabulary import PARTITION_KINDS, SETTING_BOUNDS
 
 from .._io import SAFE_ID, json_ready  # SAFE_ID: model ids and source names usable as file names
 from ..frequencies import ALIASES, FREQUENCIES, SEASONS, canonical_frequency, default_staleness, periods_after
-from ..uris import FILTER_OPS, filter_term_problem, resolve_uri, uri_template_problem
+from ..uris import (
+    FILESYSTEMS,
+    FILTER_OPS,
+    SECRET_OPTIONS,
+    filter_term_problem,
+    is_object_store,
+    resolve_uri,
+    uri_template_problem,
+)
 from .problems import listing, suggest
 
 __all__ = [
@@ -251,6 +259,9 @@ def _null_to_empty(value: Any) -> Any:
 
 #: Non-blank text.
 Text = Annotated[str, AfterValidator(_text), expect("text")]
+
+#: A value of an object store option (storage_options); a nested mapping holds the same.
+StoreOption = str | bool | int | float | None
 #: Text that may be empty (null reads as empty).
 Description = Annotated[str, BeforeValidator(_null_to_empty), AfterValidator(_text_or_empty), expect("text")]
 #: Distinct, non-blank column names.
@@ -601,7 +612,37 @@ class SourceEntry(Block):
     partitioning: Annotated[
         Literal[PARTITIONINGS] | None, expect(f"one of {listing(PARTITIONINGS)}", PARTITIONINGS)
     ] = Field(None, description="hive for a hive-partitioned folder; null otherwise.")
+    storage_options: Annotated[
+        dict[Text, StoreOption | dict[Text, StoreOption]] | None,
+        expect("a mapping of option names to values, e.g. {endpoint_url: 'https://s3.example.net', region: eu-west-1}"),
+    ] = Field(
+        None,
+        repr=False,
+        description="Options of an object store's file system (s3fs's names: endpoint_url, region, anon, key, "
+        "secret, token, ...; other names go to the file system as written). Keep secrets in a credentials Block.",
+    )
+    credentials: Annotated[Text | None, expect("a Prefect Block written block-type/name")] = Field(
+        None,
+        description="A Prefect Block holding the object store's credentials, written block-type/name: "
+        "fitaudit-store-credentials/<name> (fitaudit's ObjectStoreCredentials) or aws-credentials/<name> "
+        "(prefect-aws's AwsCredentials, when installed); storage_options given beside it win.",
+    )
+    filesystem: Annotated[Literal[FILESYSTEMS], expect(f"one of {listing(FILESYSTEMS)}", FILESYSTEMS)] = Field(
+        "arrow",
+        description="How an object store is opened: arrow (pyarrow's S3FileSystem, no extra package) or fsspec "
+        "(fsspec.filesystem(scheme, **storage_options), e.g. s3fs or gcsfs installed beside fitaudit).",
+    )
     line: SkipJsonSchema[int] = 0
+
+    @field_validator("storage_options", "credentials")
+    @classmethod
+    def _object_store_only(cls, value: Any, info: ValidationInfo) -> Any:
+        uri = info.data.get("uri")
+        if value is not None and uri is not None and not is_object_store(uri):
+            raise invalid(f"{info.field_name} apply to an object store's uri (s3://..., gs://...), not to {uri!r}")
+        if info.field_name == "credentials" and value is not None and value.count("/") != 1:
+            raise invalid(f"write the Block as block-type/name, e.g. fitaudit-store-credentials/{value}")
+        return value
 
     @field_validator("exogenous")
     @classmethod
@@ -669,6 +710,13 @@ class SourceEntry(Block):
             out["filter"] = [[c, op, list(v) if isinstance(v, tuple) else v] for c, op, v in self.filter]
         if self.max_staleness is None:
             del out["max_staleness"]
+        if self.storage_options is None:
+            del out["storage_options"]
+        else:  # a secret written in the registry never leaves it
+            out["storage_options"] = {k: "***" if k in SECRET_OPTIONS else v for k, v in self.storage_options.items()}
+        for name, default in (("credentials", None), ("filesystem", "arrow")):
+            if out[name] == default:
+                del out[name]
         return out
 
     def for_as_of(self, as_of: dt.date) -> SourceEntry:
