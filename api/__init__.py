@@ -20,7 +20,6 @@ load numpy, scipy or pandas before it needs them, and Prefect is configured befo
 from __future__ import annotations
 
 import importlib
-import importlib.metadata
 from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
@@ -51,10 +50,13 @@ _HOMES = {
     "load_results": "fitaudit.tasks.frames",
 }
 
-__version__ = importlib.metadata.version("fitaudit")
-
 
 def __getattr__(name: str):
+    if name == "__version__":  # read on first use: importlib.metadata costs every command ~30 ms
+        from importlib import metadata
+
+        value = globals()["__version__"] = metadata.version("fitaudit")
+        return value
     if name in _HOMES:
         value = getattr(importlib.import_module(_HOMES[name]), name)
         globals()[name] = value  # later look-ups skip this function
