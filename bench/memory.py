@@ -99,10 +99,11 @@ def main(quick: bool = False) -> list[dict]:
 
 
 def _copy_params(src: pathlib.Path, dst: pathlib.Path) -> None:
-    """A fresh archive holding only the parameter store (so no run sees another's history)."""
+    """A copy of the fresh fleet archive: the parameter store and the chain of its promotions, no
+    run yet (so no run sees another's history)."""
     import shutil
 
-    shutil.copytree(src / "params", dst / "params")
+    shutil.copytree(src, dst)
 
 
 def _results_size(archive: pathlib.Path) -> int:

@@ -121,7 +121,8 @@ def main(quick: bool = False) -> list[dict]:
             with local_server(log_path=str(root / "server.log")) as api_url:
                 for workers in (1, 2):
                     archive = root / f"archive-{workers}"
-                    shutil.copytree(pathlib.Path(paths.archive) / "params", archive / "params")
+                    # the whole fresh archive: the promotions of the production versions are chain entries
+                    shutil.copytree(paths.archive, archive)
                     runs[workers] = run_child(
                         "bench.fleet",
                         ["--registry", paths.registry, "--archive", str(archive), "--dask", str(workers)],
