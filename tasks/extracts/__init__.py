@@ -3,7 +3,8 @@
 Modules: :mod:`.stores` (where the files are: local paths and object stores), :mod:`.reading`
 (:func:`read_series`), :mod:`.conversion` (Arrow columns to numpy, the pushed-down filter),
 :mod:`.validation` (:func:`series_problems`, the grid checks), :mod:`.fingerprints`
-(:func:`fingerprint_source`, :class:`FingerprintCache`) and :mod:`.records` (what they return).
+(:func:`fingerprint_source`, :class:`FingerprintCache`), :mod:`.records` (what they return) and
+:mod:`.credentials` (:class:`ObjectStoreCredentials`, a Prefect Block for an object store's credentials).
 
 A source (see :class:`~fitaudit.tasks.registry.SourceEntry`) is a Parquet file, a folder of
 Parquet files, a hive-partitioned folder, or a URI that :func:`pyarrow.fs.FileSystem.from_uri`
@@ -50,4 +51,14 @@ __all__ = [
     "RACY_SECONDS",
     "read_series",
     "series_problems",
+    "ObjectStoreCredentials",
 ]
+
+
+def __getattr__(name: str):
+    # the Block imports Prefect: loaded when asked for (``fitaudit registry check`` stays light)
+    if name == "ObjectStoreCredentials":
+        from .credentials import ObjectStoreCredentials
+
+        return ObjectStoreCredentials
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

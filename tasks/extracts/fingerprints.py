@@ -28,7 +28,12 @@ RACY_SECONDS = 2.0
 
 
 class FingerprintCache:
-    """SHA-256 digests of source files by version (path, size, modification time), in one JSON file.
+    """SHA-256 digests of source files by version, in one JSON file.
+
+    A file's version is its path, size and modification time; on an object store that gives one
+    (an S3 ``ETag`` and ``VersionId``; an fsspec file system's ``ETag``/``VersionId``/``generation``),
+    its path, size and that version tag instead, which changes with every write, so that no racy
+    window applies.
 
     Parameters
     ----------
@@ -58,19 +63,38 @@ class FingerprintCache:
     def _key(fs: pafs.FileSystem, path: str) -> str:
         return f"{fs.type_name}:{path}"
 
-    def get(self, fs: pafs.FileSystem, path: str, size: int, mtime_ns: int | None) -> str | None:
-        """The cached digest of this version of the file, or None."""
+    def get(
+        self, fs: pafs.FileSystem, path: str, size: int, mtime_ns: int | None, version: str | None = None
+    ) -> str | None:
+        """The cached digest of this version of the file (by ``version`` when given), or None."""
         entry = self._entries.get(self._key(fs, path))
-        if mtime_ns is not None and entry and entry.get("size") == size and entry.get("mtime_ns") == mtime_ns:
+        same = (
+            entry.get("version") == version
+            if version is not None and entry
+            else mtime_ns is not None and entry and entry.get("mtime_ns") == mtime_ns
+        )
+        if same and entry.get("size") == size:
             self.hits += 1
             return entry.get("sha256")
         self.misses += 1
         return None
 
     def put(
-        self, fs: pafs.FileSystem, path: str, size: int, mtime_ns: int | None, sha256: str, hashed_at: float
+        self,
+        fs: pafs.FileSystem,
+        path: str,
+        size: int,
+        mtime_ns: int | None,
+        sha256: str,
+        hashed_at: float,
+        version: str | None = None,
     ) -> None:
-        """Remember a digest (not for a file without a modification time or modified too recently)."""
+        """Remember a digest (without a ``version``: not for a file without a modification time or
+        modified too recently)."""
+        if version is not None and sha256:
+            self._entries[self._key(fs, path)] = {"size": size, "version": version, "sha256": sha256}
+            self._changed = True
+            return
         if mtime_ns is None or not sha256 or hashed_at - mtime_ns / 1e9 < RACY_SECONDS:
             return
         self._entries[self._key(fs, path)] = {"size": size, "mtime_ns": mtime_ns, "sha256": sha256}
@@ -94,6 +118,33 @@ def _mtimes(loc: _Location, paths: list[str]) -> dict[str, int | None]:
     except (pa.ArrowException, OSError):
         return dict.fromkeys(paths)
     return {p: (None if i.mtime_ns is None else int(i.mtime_ns)) for p, i in zip(paths, infos)}
+
+
+def _versions(loc: _Location, paths: list[str]) -> dict[str, str | None]:
+    """An object store's version tag of each file (``VersionId/ETag``), None where it gives none."""
+    if not loc.remote:
+        return {}
+    out: dict[str, str | None] = {}
+    for path in paths:
+        try:
+            out[path] = _object_version(loc.fs, path)
+        except (pa.ArrowException, OSError) as exc:
+            loc.pass_io_error(exc)
+            out[path] = None
+    return out
+
+
+def _object_version(fs: pafs.FileSystem, path: str) -> str | None:
+    handler = getattr(fs, "handler", None)
+    if isinstance(handler, pafs.FSSpecHandler):  # s3fs, gcsfs, ...: their info() (cached listing or a HEAD)
+        info = handler.fs.info(path)
+        tags = [info.get(k) for k in ("VersionId", "ETag", "etag", "generation")]
+    else:  # pyarrow's own: the object's metadata (one HEAD request, no bytes)
+        with fs.open_input_file(path) as f:
+            meta = f.metadata() or {}
+        tags = [meta.get(k) for k in ("VersionId", "ETag")]
+    tags = [t.decode() if isinstance(t, bytes) else str(t) for t in tags if t]
+    return "/".join(tags) or None
 
 
 def _hash_file(loc: _Location, path: str) -> str:
@@ -139,15 +190,17 @@ def fingerprint_source(
     loc = stores._locate(source, base_dir, io_errors)
     files = _inspect_files(loc)
     mtimes = _mtimes(loc, [f.path for f in files]) if cache is not None else {}
+    versions = _versions(loc, [f.path for f in files]) if cache is not None else {}
     prints, listing, unreadable = [], [], []
     for f in files:
-        digest = cache.get(loc.fs, f.path, f.size, mtimes.get(f.path)) if cache is not None else None
+        version = versions.get(f.path)
+        digest = cache.get(loc.fs, f.path, f.size, mtimes.get(f.path), version) if cache is not None else None
         if digest is None:
             try:
                 hashed_at = _time.time()
                 digest = _hash_file(loc, f.path)
                 if cache is not None:
-                    cache.put(loc.fs, f.path, f.size, mtimes.get(f.path), digest, hashed_at)
+                    cache.put(loc.fs, f.path, f.size, mtimes.get(f.path), digest, hashed_at, version)
             except OSError as exc:
                 loc.pass_io_error(exc)
                 digest = ""  # the bytes cannot even be read
