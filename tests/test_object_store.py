@@ -349,3 +349,61 @@ def test_the_audit_flow_audits_the_good_source_and_names_the_broken_ones(store, 
         if path.is_file():
             data = path.read_bytes()
             assert not any(secret.encode() in data for secret in _secrets(store)), path
+
+
+def test_the_fingerprint_cache_keys_object_store_files_by_etag(store, tmp_path, monkeypatch):
+    from fitaudit.tasks import extracts
+
+    source = _source_at(store, store["url"])
+    cache = extracts.FingerprintCache(tmp_path / "cache.json")
+    first = fingerprint_source(source, cache=cache)
+    assert (cache.hits, cache.misses) == (0, 2)
+    cache.save()
+    entries = json.loads((tmp_path / "cache.json").read_text())["files"]
+    assert all(e["version"].strip('"') and "mtime_ns" not in e for e in entries.values())  # keyed by the ETag
+    hashed = []
+    real = extracts.fingerprints._hash_file
+    monkeypatch.setattr(extracts.fingerprints, "_hash_file", lambda loc, path: hashed.append(path) or real(loc, path))
+    again = extracts.FingerprintCache(tmp_path / "cache.json")
+    assert fingerprint_source(source, cache=again).to_dict() == first.to_dict()
+    assert hashed == [] and (again.hits, again.misses) == (2, 0)  # no byte downloaded again
+    # a new upload of one object (a new ETag at the same path) is hashed again
+    s3 = boto3.client(
+        "s3", endpoint_url=store["url"], region_name=REGION, aws_access_key_id="admin", aws_secret_access_key="admin"
+    )
+    key = f"exports/{AS_OF:%Y-%m-%d}/sales/region=north/part-0.parquet"
+    body = s3.get_object(Bucket=BUCKET, Key=key)["Body"].read()
+    table = pq.read_table(io.BytesIO(body))
+    changed = table.set_column(table.schema.get_field_index("y"), "y", [np.asarray(table["y"]) + 1.0])
+    try:
+        s3.put_object(Bucket=BUCKET, Key=key, Body=_parquet_bytes(changed))
+        third = fingerprint_source(source, cache=extracts.FingerprintCache(tmp_path / "cache.json"))
+        assert len(hashed) == 1 and hashed[0].endswith("region=north/part-0.parquet")
+        assert third.files[0].sha256 != first.files[0].sha256 and third.files[1] == first.files[1]
+    finally:
+        s3.put_object(Bucket=BUCKET, Key=key, Body=body)
+
+
+def test_an_fsspec_file_system_serves_a_source(tmp_path):
+    import fsspec
+
+    memory = fsspec.filesystem("memory")
+    table = long_table({"a": {"date": days(), "y": ar1(np.random.default_rng(3))}})
+    with memory.open("/exports/sales.parquet", "wb") as f:
+        f.write(_parquet_bytes(table))
+    from fitaudit.tasks.registry import SourceEntry
+
+    source = SourceEntry(
+        name="m",
+        uri="memory://exports/sales.parquet",
+        key="series",
+        time="date",
+        value="y",
+        frequency="D",
+        filesystem="fsspec",
+        storage_options={},
+    )
+    out = read_series(source, ["a"], ["y"])
+    assert out["a"].time.size == N_DAYS and out["a"].problems == ()
+    np.testing.assert_array_equal(out["a"].columns["y"], np.asarray(table["y"]))
+    assert fingerprint_source(source).rows == N_DAYS
