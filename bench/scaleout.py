@@ -99,7 +99,7 @@ def describe_projection(p: dict) -> str:
             f"{q['ideal_speedup']:.1f}x with E = 0)."
         )
     lines.append(
-        f"Limit for many workers: {p['limit']:.1f}x ({p['limit_ideal']:.1f}x with E = 0), set by the serial part S."
+        f"Limit for many workers: T(1) / (S + E) = {p['limit']:.1f}x (T(1) / S = {p['limit_ideal']:.1f}x with E = 0)."
     )
     return " ".join(lines)
 
