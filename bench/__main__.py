@@ -27,7 +27,7 @@ BENCHMARKS = ("micro", "fleet", "scaleout", "memory")
 
 
 def _micro(quick: bool) -> list[dict]:
-    from . import divergence_map, fit, gate_cost, startup
+    from . import divergence_map, fingerprint, fit, gate_cost, startup
 
     rows = []
     for r in divergence_map.main(quick=quick):
@@ -57,6 +57,7 @@ def _micro(quick: bool) -> list[dict]:
         )
     rows += gate_cost.main(quick=quick)
     rows += startup.main(quick=quick)
+    rows += fingerprint.main(quick=quick)
     return rows
 
 
