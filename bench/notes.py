@@ -145,8 +145,8 @@ optimiser's path and so the fitted digits, which this issue required to stay ide
 statsmodels (the shortfall column is 0 wherever measured so far; on UKDriverDeaths statsmodels'
 ETSModel stops about 9 log-likelihood units lower). The seasonal ARIMA specs with a long
 differenced series, the weekly model with a seasonal AR term at lag 52 (statsmodels' state has 53
-dimensions) and the regressions pass with margin; ARMA(1,1), ARMA(2,2) and AR(2) with regressors
-lie between 7x and 18x depending on the load. Two kinds of spec miss. AR(1)(0,1,1)7 on 730 daily
+dimensions) and the airline models pass with margin (15x to 26x in quick runs); ARMA(1,1),
+ARMA(2,2) and AR(2) with regressors lie between 7x (ARMA(2,2) on a loaded machine) and 24x. Two kinds of spec miss. AR(1)(0,1,1)7 on 730 daily
 values (about 7x): statsmodels' Kalman filter is fast for this small state (about 30 ms), while
 fitaudit's fit is about 17 evaluations of the exact likelihood at about 0.25 ms each (two
 `lfilter` passes over the series, a Gram product and a Cholesky factorisation, 0.14 ms; the initial
