@@ -9,45 +9,39 @@ from __future__ import annotations
 
 import datetime as dt
 import pathlib
-import pickle
 import time
 
-from prefect import flow, get_run_logger, task, unmapped
-from prefect.cache_policies import NO_CACHE
+from prefect import flow, get_run_logger, unmapped
 from prefect.task_runners import ThreadPoolTaskRunner
 from prefect.utilities.annotations import quote
 
 from fitaudit.core.vocabulary import VERDICTS
-from fitaudit.tasks.archive import new_run_id, open_work_folder, read_chain, recover, require_intact
+from fitaudit.tasks.archive import new_run_id, open_work_folder
+from fitaudit.tasks.archive_tasks import check_archive_task, recover_task
 from fitaudit.tasks.audit import (
-    Outcome,
     audit_batch_task,
     calibration_task,
     candidate_jobs,
     candidate_tables,
     candidates_task,
-    finalize,
-    rejected_outcome,
-    spill_path,
+    finalize_task,
     tables_task,
     wants_candidates,
     with_candidates,
 )
 from fitaudit.tasks.batches import stage_inputs_task
-from fitaudit.tasks.events import emit_run_event, emit_verdict_events, publish_artifacts
+from fitaudit.tasks.events import events_task
+from fitaudit.tasks.outcomes import rejected_outcome, render_parcels
 from fitaudit.tasks.publish import (
-    History,
-    StagedRecord,
     code_commit,
-    load_history,
+    context_task,
+    history_task,
     operator_identity,
     package_versions,
-    publish_staged,
-    render_archive_index_file,
+    publish_task,
     render_outcomes_task,
-    run_context,
 )
-from fitaudit.tasks.registry import Registry, load_registry_task
+from fitaudit.tasks.registry import load_registry_task
 from fitaudit.tasks.results import results_head, results_summary
 from fitaudit.tasks.settings import get_settings
 from fitaudit.tasks.workers import default_processes, local_workers
@@ -57,71 +51,6 @@ __all__ = ["audit_flow"]
 
 def _utc() -> str:
     return dt.datetime.now(dt.UTC).replace(microsecond=0).isoformat().replace("+00:00", "Z")
-
-
-@task(name="recover-archive", cache_policy=NO_CACHE, persist_result=False)
-def recover_task(archive: str) -> list[str]:
-    """Complete or roll back an interrupted publication before a new run starts."""
-    return recover(archive) if pathlib.Path(archive).exists() else []
-
-
-@task(name="check-archive", cache_policy=NO_CACHE, persist_result=False)
-def check_archive_task(archive: str) -> list[str]:
-    """Refuse to add to an archive that ``fitaudit verify`` rejects; returns the acknowledged damage."""
-    return [str(p) for p in require_intact(archive)]
-
-
-@task(name="read-archive-context", cache_policy=NO_CACHE, persist_result=False)
-def context_task(archive: str, as_of: dt.date) -> dict:
-    """The chain head this run extends, the previous audit run and the fleet's pass-share trend."""
-    return run_context(archive, as_of)
-
-
-@task(name="load-history", cache_policy=NO_CACHE, persist_result=False)
-def history_task(archive: str, as_of: dt.date, model_ids: list[str]) -> History:
-    """Earlier audits per model from the archive's audit runs, each checked against its manifest."""
-    return load_history(archive, as_of, model_ids)
-
-
-@task(name="apply-fleet-rules", cache_policy=NO_CACHE, persist_result=False)
-def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
-    """p-value adjustment across the run and the persistence rule."""
-    return finalize(outcomes, registry.policy)
-
-
-# never retried: a failure after the run folder's rename would be retried as "already published";
-# recover() settles an interrupted publication instead, and the original error is what the user sees
-@task(name="publish-run", cache_policy=NO_CACHE, persist_result=False)
-def publish_task(
-    archive: str, head: dict, summary: dict, staged: list[StagedRecord], meta: dict, manifest: dict, run_id: str
-) -> dict:
-    """Write the run folder atomically from the staged records and pages, refresh the archive index."""
-    published = publish_staged(archive, head, summary, staged, meta, manifest, run_id=run_id)
-    render_archive_index_file(archive)
-    entry = read_chain(archive)[published.seq - 1]  # the run's own chain entry: the head it made
-    get_run_logger().info(
-        "published run %s: manifest SHA-256 %s; chain head %s (seq %d)",
-        published.run_id,
-        published.manifest_sha256,
-        entry["hash"],
-        published.seq,
-    )
-    return {
-        "run_id": published.run_id,
-        "path": str(pathlib.Path(archive) / published.path),
-        "manifest_sha256": published.manifest_sha256,
-        "seq": published.seq,
-        "chain_head": {"hash": entry["hash"], "seq": published.seq},
-    }
-
-
-@task(name="publish-events", cache_policy=NO_CACHE, persist_result=False)
-def events_task(recs: list[dict], summary: dict, run: dict) -> int:
-    """One event per model verdict, one per run, and the run's artifacts."""
-    n = emit_verdict_events(recs, run)
-    emit_run_event(run, summary)
-    publish_artifacts(recs, summary, run)
-    return n
 
 
 def _workers() -> int:
@@ -165,24 +94,6 @@ def _local_processes(requested: int, batches: int, models: int) -> int:
     if requested == 0:
         requested = default_processes() if models >= AUTO_PROCESSES_MIN_MODELS else 1
     return min(requested, batches)
-
-
-def _render_inputs(final: list, batches: list, staged) -> tuple[list[bytes], list[str], list[str | None]]:
-    """Per batch: its final (light) outcomes pickled, a part name and the file of its full outcomes.
-
-    ``batches`` are the batch tasks' outcome lists plus the rejected entries' last; ``final`` keeps
-    their order.  Pickled, because Prefect walks lists of dataclasses among task inputs and
-    prefect-dask reshapes ``quote``-wrapped ones; bytes pass through both untouched.
-    """
-    parcels, names, spills, start = [], [], [], 0
-    for i, batch in enumerate(batches):
-        if batch:
-            batch_path = staged.batches[i].path if i < len(staged.batches) else None
-            parcels.append(pickle.dumps(final[start : start + len(batch)], protocol=pickle.HIGHEST_PROTOCOL))
-            names.append(pathlib.Path(batch_path).name if batch_path else "rejected")
-            spills.append(spill_path(batch_path) if batch_path else None)
-        start += len(batch)
-    return parcels, names, spills
 
 
 def _runner_name() -> str:
@@ -349,7 +260,7 @@ def audit_flow(
                     "unreadable_sources": sorted(staged.source_errors),
                 },
             }
-            parcels, names, spills = _render_inputs(final, batches, staged)
+            parcels, names, spills = render_parcels(final, batches, [b.path for b in staged.batches])
             rendered = render_outcomes_task.map(
                 parcels,
                 unmapped(head),

@@ -5,57 +5,18 @@ from __future__ import annotations
 import datetime as dt
 import pathlib
 
-from prefect import flow, get_run_logger, task, unmapped
-from prefect.cache_policies import NO_CACHE
-from prefect.events import emit_event
+from prefect import flow, get_run_logger, unmapped
 
 from fitaudit.core.calibration import CalibrationCache
-from fitaudit.tasks.archive import new_run_id, open_run, open_work_folder, recover, require_intact
+from fitaudit.tasks.archive import new_run_id, open_work_folder, recover, require_intact
 from fitaudit.tasks.batches import stage_inputs_task
+from fitaudit.tasks.events import refit_events_task
 from fitaudit.tasks.publish import code_commit, operator_identity, package_versions
-from fitaudit.tasks.refit import refit_batch_task, refuse_forecast_entries
+from fitaudit.tasks.refit import record_task, refit_batch_task, refuse_forecast_entries
 from fitaudit.tasks.registry import load_registry_task, require_digest
 from fitaudit.tasks.settings import get_settings
 
 __all__ = ["refit_flow"]
-
-
-@task(name="record-refits", cache_policy=NO_CACHE, persist_result=False)
-def record_task(archive: str, run_id: str, as_of: dt.date, records: list[dict], manifest: dict) -> str:
-    """Archive the refit records as a run folder (``refit.json``), linked into the chain."""
-    writer = open_run(archive, run_id, as_of.year, as_of=as_of)
-    with writer:
-        writer.write_json(
-            "refit.json",
-            {"schema": "fitaudit.refit", "schema_version": 1, "as_of": as_of.isoformat(), "records": records},
-        )
-        published = writer.finish(manifest)
-    return str(pathlib.Path(archive) / published.path)
-
-
-@task(name="refit-events", cache_policy=NO_CACHE, persist_result=False)
-def refit_events_task(records: list[dict], run_id: str) -> None:
-    """``fitaudit.model.promoted`` / ``.refit-awaiting-approval`` / ``.respecify-candidates`` events."""
-    names = {
-        "promoted": "promoted",
-        "awaiting approval": "refit-awaiting-approval",
-        "respecify": "respecify-candidates",
-    }
-    for rec in records:
-        name = names.get(rec.get("status"))
-        if name:
-            emit_event(
-                event=f"fitaudit.model.{name}",
-                resource={
-                    "prefect.resource.id": f"fitaudit.model.{rec['model_id']}",
-                    "prefect.resource.name": rec["model_id"],
-                },
-                related=[{"prefect.resource.id": f"fitaudit.refit.{run_id}", "prefect.resource.role": "refit-run"}],
-                payload={
-                    k: rec.get(k) for k in ("status", "candidate_version", "promoted_version") if rec.get(k) is not None
-                }
-                | {"candidates": len(rec.get("candidates") or [])},
-            )
 
 
 def _run_name() -> str:

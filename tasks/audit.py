@@ -12,12 +12,9 @@ One broken model never sinks a batch: every failure becomes that model's ``error
 from __future__ import annotations
 
 import dataclasses
-import pathlib
-import pickle
 import time
 import traceback
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -29,8 +26,16 @@ from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.exceptions import FitauditError
 
 from .batches import ModelInput, batch_metadata, read_batch
-from .registry import ForecastEntry, Policy, RejectedEntry
-from .results import model_record
+from .outcomes import (  # the outcome's shapes live there; re-exported for the audit stage's callers
+    Outcome,
+    light_outcome,
+    records,
+    rejected_outcome,
+    restore_outcomes,
+    spill_outcomes,
+    spill_path,
+)
+from .registry import ForecastEntry, Policy, Registry
 from .workers import TimeLimitExceeded, run_local, time_limit
 
 __all__ = [
@@ -43,6 +48,7 @@ __all__ = [
     "restore_outcomes",
     "spill_path",
     "finalize",
+    "finalize_task",
     "rejected_outcome",
     "records",
     "audit_batch_task",
@@ -59,32 +65,6 @@ __all__ = [
     "calibration_for",
     "calibration_task",
 ]
-
-
-@dataclass(frozen=True)
-class Outcome:
-    """One model's outcome in a run (before or after the fleet rules).
-
-    ``entry`` is the registry entry's plain view (``ModelEntry.to_dict()``, or the fields of a
-    rejected entry), as the results record takes it.
-    """
-
-    entry: dict
-    verdict: str
-    reasons: tuple
-    result: AuditResult | None = None
-    lineage: dict = field(default_factory=dict)
-    production: dict | None = None
-    history: tuple = ()
-    settings: dict = field(default_factory=dict)
-    spec_text: str = ""
-    timings: dict = field(default_factory=dict)
-    candidates: tuple | None = None
-
-    @property
-    def model_id(self) -> str:
-        """The model entry's id."""
-        return str(self.entry.get("id"))
 
 
 def _spec_text(spec: Mapping[str, Any]) -> str:
@@ -247,97 +227,13 @@ def audit_batch(
     return audit_inputs(read_batch(path), policy, cache, time_limit_s)
 
 
-#: CheckResult fields that only the records and pages need (the fleet rules use the others: the
-#: reasons they rewrite name the classical members, McLeod-Li, the simulation's floor and, for a
-#: forecast audit, the window's length, so ``members``, ``mcleod_li``, ``calibration`` and
-#: ``window`` stay).
-_CHECK_DETAIL = {"map": None, "critical_grid": None, "scaled_grid": None, "plots": {}, "counts": ()}
-
-
-def spill_path(batch_path: str) -> str:
-    """Where :func:`audit_batch_spilled` keeps a batch's full outcomes."""
-    return str(batch_path) + ".outcomes.pickle"
-
-
-def light_outcome(outcome: Outcome) -> Outcome:
-    """The outcome without what only its record needs: enough for the fleet rules
-    (:func:`finalize`), the candidate search and the run's timings, at a fraction of the memory.
-
-    Kept: the id, verdict, reasons, history, timings and, of the result, every number the verdict
-    is decided from and every figure its reasons quote.  Dropped: the entry's other fields,
-    lineage, settings, and the checks' maps, grids, plots and counts, the change location and the
-    fitted parameters.
-    :func:`restore_outcomes` puts them back.
-    """
-    res = outcome.result
-    if res is not None:
-        res = dataclasses.replace(
-            res,
-            production=None if res.production is None else dataclasses.replace(res.production, **_CHECK_DETAIL),
-            refit=None if res.refit is None else dataclasses.replace(res.refit, **_CHECK_DETAIL),
-            change=None,
-            fitted={},
-            production_params=None,
-        )
-    return dataclasses.replace(
-        outcome, entry={"id": outcome.entry.get("id")}, result=res, lineage={}, settings={}, spec_text=""
-    )
-
-
 def audit_batch_spilled(
     path: str, policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0
 ) -> list[Outcome]:
-    """:func:`audit_batch`, keeping the full outcomes in :func:`spill_path` and returning them light
-    (:func:`light_outcome`): the flow process never holds every model's full result."""
-    outcomes = audit_batch(path, policy, cache, time_limit_s)
-    target = pathlib.Path(spill_path(path))
-    tmp = target.with_name(target.name + ".tmp")
-    tmp.write_bytes(pickle.dumps(outcomes, protocol=pickle.HIGHEST_PROTOCOL))
-    tmp.replace(target)
-    return [light_outcome(o) for o in outcomes]
-
-
-def restore_outcomes(final: Sequence[Outcome], spilled: str) -> list[Outcome]:
-    """Full outcomes of a batch with the run's final decisions applied.
-
-    ``final`` are the batch's light outcomes after :func:`finalize` and :func:`with_candidates`;
-    ``spilled`` the file :func:`audit_batch_spilled` wrote (the run's own work folder).  The fleet
-    rules change a result's verdict, reasons, escalation and each check's adjusted p-value, and
-    the outcome's verdict, reasons and candidates; exactly these are copied onto the full outcomes.
-    """
-    full = pickle.loads(pathlib.Path(spilled).read_bytes())
-    if [o.model_id for o in full] != [o.model_id for o in final]:
-        raise FitauditError(
-            f"{spilled}: the kept outcomes do not match the batch's models; the run's work folder was changed during the run."
-        )
-    out = []
-    for whole, done in zip(full, final):
-        res = whole.result
-        if res is not None:
-            checks = {
-                kind: dataclasses.replace(getattr(res, kind), p_adjusted=getattr(done.result, kind).p_adjusted)
-                for kind in ("production", "refit")
-                if getattr(res, kind) is not None
-            }
-            res = dataclasses.replace(
-                res, verdict=done.result.verdict, reasons=done.result.reasons, escalated=done.result.escalated, **checks
-            )
-        out.append(
-            dataclasses.replace(
-                whole, verdict=done.verdict, reasons=done.reasons, result=res, candidates=done.candidates
-            )
-        )
-    return out
-
-
-def rejected_outcome(entry: RejectedEntry) -> Outcome:
-    """A registry entry that failed validation: an ``error`` outcome listing its problems."""
-    info = {"id": entry.id, "safe_id": entry.safe_id, "owner": entry.owner, "line": entry.line, "spec": {}}
-    # the registry by file name, as in the results document: results do not depend on where the registry lives
-    reasons = tuple(
-        f"Registry entry rejected: {dataclasses.replace(p, file=pathlib.PurePath(p.file).name)}" for p in entry.problems
-    )
-    return Outcome(entry=info, verdict="error", reasons=reasons, spec_text="(invalid registry entry)")
+    """:func:`audit_batch`, keeping the full outcomes in :func:`~fitaudit.tasks.outcomes.spill_path`
+    and returning them light (:func:`~fitaudit.tasks.outcomes.spill_outcomes`): the flow process
+    never holds every model's full result."""
+    return spill_outcomes(audit_batch(path, policy, cache, time_limit_s), path)
 
 
 def finalize(outcomes: Sequence[Outcome], policy: Policy) -> list[Outcome]:
@@ -359,6 +255,12 @@ def finalize(outcomes: Sequence[Outcome], policy: Policy) -> list[Outcome]:
     return out
 
 
+@task(name="apply-fleet-rules", cache_policy=NO_CACHE, persist_result=False)
+def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
+    """p-value adjustment across the run and the persistence rule."""
+    return finalize(outcomes, registry.policy)
+
+
 def wants_candidates(outcome: Outcome) -> bool:
     """Whether the candidate search runs for an outcome: a ``respecify`` verdict of a model
     fitaudit fits (a forecast audit has no refit check, and no specification to vary)."""
@@ -368,31 +270,6 @@ def wants_candidates(outcome: Outcome) -> bool:
 def with_candidates(outcomes: Sequence[Outcome], found: Mapping[str, list[dict]]) -> list[Outcome]:
     """Attach candidate lists to the outcomes they belong to."""
     return [dataclasses.replace(o, candidates=tuple(found[o.model_id])) if o.model_id in found else o for o in outcomes]
-
-
-def records(outcomes: Sequence[Outcome], as_of: str) -> list[dict]:
-    """Results-document records (see :mod:`fitaudit.tasks.results`) of the outcomes."""
-    out = []
-    for o in outcomes:
-        entry = dict(o.entry)
-        entry.setdefault("safe_id", entry.get("id"))
-        out.append(
-            model_record(
-                entry,
-                as_of=as_of,
-                verdict=o.verdict,
-                reasons=o.reasons,
-                audit=None if o.result is None else o.result.to_dict(),
-                spec_text=o.spec_text,
-                lineage=o.lineage,
-                settings=o.settings,
-                production_version=o.production,
-                history=o.history,
-                candidates=None if o.candidates is None else list(o.candidates),
-                escalated=bool(o.result.escalated) if o.result is not None else False,
-            )
-        )
-    return out
 
 
 def calibration_for(batch_paths: Sequence[str], policy: Policy) -> CalibrationCache:

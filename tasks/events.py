@@ -26,7 +26,9 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from prefect import task
 from prefect.artifacts import create_link_artifact, create_markdown_artifact, create_table_artifact
+from prefect.cache_policies import NO_CACHE
 from prefect.events import emit_event
 
 from fitaudit.core.vocabulary import VERDICTS
@@ -45,6 +47,9 @@ __all__ = [
     "emit_verdict_events",
     "emit_run_event",
     "publish_artifacts",
+    "events_task",
+    "REFIT_EVENTS",
+    "refit_events_task",
     "artifact_key",
     "owner_automation",
 ]
@@ -220,6 +225,43 @@ def publish_artifacts(records: Sequence[Mapping[str, Any]], summary: Mapping[str
             key=artifact_key("fitaudit-report"),
             description="Report of the latest audit run",
         )
+
+
+@task(name="publish-events", cache_policy=NO_CACHE, persist_result=False)
+def events_task(recs: list[dict], summary: dict, run: dict) -> int:
+    """One event per model verdict, one per run, and the run's artifacts."""
+    n = emit_verdict_events(recs, run)
+    emit_run_event(run, summary)
+    publish_artifacts(recs, summary, run)
+    return n
+
+
+#: A refit record's status and the event it emits (``fitaudit.model.<name>``).
+REFIT_EVENTS = {
+    "promoted": "promoted",
+    "awaiting approval": "refit-awaiting-approval",
+    "respecify": "respecify-candidates",
+}
+
+
+@task(name="refit-events", cache_policy=NO_CACHE, persist_result=False)
+def refit_events_task(records: list[dict], run_id: str) -> None:
+    """``fitaudit.model.promoted`` / ``.refit-awaiting-approval`` / ``.respecify-candidates`` events."""
+    for rec in records:
+        name = REFIT_EVENTS.get(rec.get("status"))
+        if name:
+            emit_event(
+                event=f"fitaudit.model.{name}",
+                resource={
+                    "prefect.resource.id": f"fitaudit.model.{rec['model_id']}",
+                    "prefect.resource.name": rec["model_id"],
+                },
+                related=[{"prefect.resource.id": f"fitaudit.refit.{run_id}", "prefect.resource.role": "refit-run"}],
+                payload={
+                    k: rec.get(k) for k in ("status", "candidate_version", "promoted_version") if rec.get(k) is not None
+                }
+                | {"candidates": len(rec.get("candidates") or [])},
+            )
 
 
 def owner_automation(owner: str, block_document_id, *, name: str | None = None, within: dt.timedelta = dt.timedelta(0)):

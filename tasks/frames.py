@@ -1,7 +1,7 @@
 """A published run's results as pandas DataFrames, for notebooks (``fitaudit.load_results``).
 
 A run folder holds ``results.parquet``, one row per model with the headline numbers of its
-verdict and of its production and refit checks (``fitaudit.tasks.results.results_rows``), next to
+verdict and of its production and refit checks (``fitaudit.tasks.outcomes.parquet_row``), next to
 ``results.json`` (the whole document) and ``manifest.json`` (run id, as-of date, policy, counts,
 fingerprints).  :func:`load_results` reads the Parquet file and the manifest only, so loading a
 run of 10,000 models takes a fraction of a second; the per-model details (reasons, divergence

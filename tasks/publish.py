@@ -6,12 +6,13 @@ fingerprints, versions, seeds, timings), written through :class:`~fitaudit.tasks
 which makes the run visible only when complete and links it into the hash chain.
 :func:`load_history` reads earlier verdicts back from the archive for trends and persistence.
 
-The audit flow never holds the whole document or every page: :func:`render_outcomes` (one call
-per batch, in parallel) turns a batch's outcomes into records, writes each record's canonical JSON
-and its model page to the run's work folder and keeps only a
-:func:`~fitaudit.tasks.results.light_record` per model; :func:`publish_staged` then streams
-``results.json`` from those pieces and renders the run page from the light records.  The files
-are byte for byte ``canonical_json(doc)`` and ``render_run(doc, meta)`` of the full document
+The audit flow never holds the whole document or every page: :func:`render_outcomes_task` (one
+call per batch, in parallel) turns a batch's outcomes into records, writes each record's canonical
+JSON and its model page to the run's work folder and keeps only a light record per model
+(:func:`fitaudit.tasks.outcomes.render_outcomes`; the shapes of a model's outcome are all in
+:mod:`fitaudit.tasks.outcomes`); :func:`publish_staged` then streams ``results.json`` from those
+pieces and renders the run page from the light records.  The files are byte for byte
+``canonical_json(doc)`` and ``render_run(doc, meta)`` of the full document
 (tests/test_optimisations.py).
 """
 
@@ -20,39 +21,47 @@ from __future__ import annotations
 import datetime as dt
 import getpass
 import importlib.metadata
-import io
 import os
 import pathlib
 import pickle
 import platform
 import socket
 import subprocess
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import pyarrow as pa
 import pyarrow.parquet as pq
-from prefect import task
+from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 
-from ._io import canonical_json, sha256_bytes
-from .archive import PublishedRun, chain_head, history_runs, list_runs, open_run
-from .results import light_record, results_json_chunks, results_rows
+from ._io import sha256_bytes
+from .archive import PublishedRun, chain_head, history_runs, list_runs, open_run, read_chain
+from .outcomes import (
+    HISTORY_COLUMNS,
+    StagedRecord,
+    history_row,
+    parquet_bytes,
+    render_outcomes,
+    results_rows,
+    staged_bytes,
+)
+from .results import results_json_chunks
 from .workers import run_local
 
 __all__ = [
-    "StagedRecord",
-    "stage_records",
-    "render_outcomes",
     "render_outcomes_task",
     "publish_staged",
+    "publish_task",
     "load_history",
+    "history_task",
     "History",
     "package_versions",
     "code_commit",
     "render_archive_index_file",
     "run_context",
+    "context_task",
     "HISTORY_LENGTH",
     "TREND_LENGTH",
 ]
@@ -95,78 +104,6 @@ def operator_identity(configured: str = "") -> str:
     return f"{user}@{socket.gethostname()}"
 
 
-def _parquet_bytes(rows: Sequence[Mapping[str, Any]]) -> bytes:
-    table = pa.Table.from_pylist(list(rows)) if rows else pa.table({"model_id": pa.array([], pa.string())})
-    buf = io.BytesIO()
-    pq.write_table(table, buf, compression="zstd")
-    return buf.getvalue()
-
-
-@dataclass(frozen=True)
-class StagedRecord:
-    """One model's record and page, made and waiting in the run's work folder.
-
-    ``light`` is :func:`~fitaudit.tasks.results.light_record` of the record; the record's canonical
-    JSON is ``length`` bytes at ``offset`` of the file ``part``; ``page`` is its rendered page.
-    """
-
-    light: dict
-    part: str
-    offset: int
-    length: int
-    page: str
-
-
-def stage_records(
-    records: Iterable[Mapping[str, Any]],
-    head: Mapping[str, Any],
-    meta: Mapping[str, Any],
-    folder: str | os.PathLike,
-    name: str,
-) -> list[StagedRecord]:
-    """Write each record's canonical JSON to ``<folder>/<name>.json`` and its model page to
-    ``<folder>/models/``; return the :class:`StagedRecord` of each, in order.
-
-    ``head`` is :func:`~fitaudit.tasks.results.results_head`; ``meta`` as for
-    :func:`~fitaudit.tasks.report.render_run`.  One record is in memory at a time.
-    """
-    from .report import page_context, render_model_page
-
-    folder = pathlib.Path(folder)
-    (folder / "models").mkdir(parents=True, exist_ok=True)
-    context = page_context(head, meta)
-    as_of = head["run"]["as_of"]
-    part = folder / f"{name}.json"
-    staged, offset = [], 0
-    with open(part, "wb") as fh:
-        for rec in records:
-            data = canonical_json(rec)
-            fh.write(data)
-            page = folder / "models" / f"{rec['safe_id']}.html"
-            page.write_bytes(render_model_page(rec, context, as_of))
-            staged.append(StagedRecord(light_record(rec), str(part), offset, len(data), str(page)))
-            offset += len(data)
-    return staged
-
-
-def render_outcomes(
-    outcomes: Sequence[Any],
-    head: Mapping[str, Any],
-    meta: Mapping[str, Any],
-    folder: str,
-    name: str,
-    spilled: str | None = None,
-) -> list[StagedRecord]:
-    """Records of a batch's final outcomes (:func:`fitaudit.tasks.audit.records`), staged with
-    :func:`stage_records`.  With ``spilled``, ``outcomes`` are light and the full ones are read
-    back from that file first (:func:`fitaudit.tasks.audit.restore_outcomes`)."""
-    from .audit import records, restore_outcomes
-
-    if spilled is not None:
-        outcomes = restore_outcomes(outcomes, spilled)
-    return stage_records(records(outcomes, head["run"]["as_of"]), head, meta, folder, name)
-
-
 def _render_pickled(
     outcomes: bytes, head: Mapping[str, Any], meta: Mapping[str, Any], folder: str, name: str, spilled: str | None
 ) -> list[StagedRecord]:
@@ -193,20 +130,6 @@ def render_outcomes_task(
     return run_local(workers, _render_pickled, outcomes, head, meta, folder, name, spilled)
 
 
-def _record_bytes(staged: Sequence[StagedRecord]) -> Iterator[bytes]:
-    handles: dict[str, Any] = {}
-    try:
-        for item in staged:
-            fh = handles.get(item.part)
-            if fh is None:
-                fh = handles[item.part] = open(item.part, "rb")
-            fh.seek(item.offset)
-            yield fh.read(item.length)
-    finally:
-        for fh in handles.values():
-            fh.close()
-
-
 def publish_staged(
     archive_root: str | os.PathLike,
     head: Mapping[str, Any],
@@ -217,7 +140,7 @@ def publish_staged(
     *,
     run_id: str,
 ) -> PublishedRun:
-    """Publish a run whose records and model pages were staged (:func:`stage_records`).
+    """Publish a run whose records and model pages were staged (:func:`~fitaudit.tasks.outcomes.stage_records`).
 
     Writes the run folder of the document ``head`` + ``summary`` + the records (sorted by id):
     ``results.json`` streamed from the staged pieces, ``results.parquet`` and the run page from
@@ -233,12 +156,38 @@ def publish_staged(
     as_of = dt.date.fromisoformat(head["run"]["as_of"])
     writer = open_run(archive_root, run_id, as_of.year, as_of=as_of)
     with writer:
-        writer.write_chunks("results.json", results_json_chunks(head, summary, _record_bytes(ordered)))
-        writer.write_bytes("results.parquet", _parquet_bytes(results_rows(doc)))
+        writer.write_chunks("results.json", results_json_chunks(head, summary, staged_bytes(ordered)))
+        writer.write_bytes("results.parquet", parquet_bytes(results_rows(doc)))
         for rel, data in sorted(pages.items()):
             writer.write_bytes(rel, data if isinstance(data, bytes) else pathlib.Path(data).read_bytes())
         published = writer.finish(dict(manifest, run_id=run_id, as_of=as_of.isoformat()))
     return published
+
+
+# never retried: a failure after the run folder's rename would be retried as "already published";
+# recover() settles an interrupted publication instead, and the original error is what the user sees
+@task(name="publish-run", cache_policy=NO_CACHE, persist_result=False)
+def publish_task(
+    archive: str, head: dict, summary: dict, staged: list[StagedRecord], meta: dict, manifest: dict, run_id: str
+) -> dict:
+    """Write the run folder atomically from the staged records and pages, refresh the archive index."""
+    published = publish_staged(archive, head, summary, staged, meta, manifest, run_id=run_id)
+    render_archive_index_file(archive)
+    entry = read_chain(archive)[published.seq - 1]  # the run's own chain entry: the head it made
+    get_run_logger().info(
+        "published run %s: manifest SHA-256 %s; chain head %s (seq %d)",
+        published.run_id,
+        published.manifest_sha256,
+        entry["hash"],
+        published.seq,
+    )
+    return {
+        "run_id": published.run_id,
+        "path": str(pathlib.Path(archive) / published.path),
+        "manifest_sha256": published.manifest_sha256,
+        "seq": published.seq,
+        "chain_head": {"hash": entry["hash"], "seq": published.seq},
+    }
 
 
 @dataclass(frozen=True)
@@ -258,9 +207,6 @@ class History:
     def to_manifest(self) -> dict:
         """The manifest's record of where the history came from."""
         return {"runs": list(self.runs), "problems": [dict(p) for p in self.problems]}
-
-
-_HISTORY_COLUMNS = ["model_id", "verdict", "production_r_max", "refit_r_max", "production_p_value", "refit_p_value"]
 
 
 def _audit_results(run: Mapping[str, Any], root: pathlib.Path) -> tuple[list[dict] | None, str | None]:
@@ -292,7 +238,7 @@ def _audit_results(run: Mapping[str, Any], root: pathlib.Path) -> tuple[list[dic
             f"{str(listed.get('sha256'))[:12]}...); not used"
         )
     try:
-        return pq.read_table(pa.BufferReader(data), columns=_HISTORY_COLUMNS).to_pylist(), None
+        return pq.read_table(pa.BufferReader(data), columns=HISTORY_COLUMNS).to_pylist(), None
     except (OSError, pa.ArrowInvalid, KeyError) as exc:
         return None, f"{run['path']}/results.parquet cannot be read as a results table ({exc})"
 
@@ -335,16 +281,15 @@ def load_history(
                 or len(seen.get(mid, ())) >= limit
             ):
                 continue
-            use_prod = row.get("production_r_max") is not None
-            seen.setdefault(mid, {})[run["as_of"]] = {
-                "as_of": run["as_of"],
-                "verdict": row["verdict"],
-                "r_max": row["production_r_max"] if use_prod else row.get("refit_r_max"),
-                "p_value": row["production_p_value"] if use_prod else row.get("refit_p_value"),
-                "run_id": run["run_id"],
-            }
+            seen.setdefault(mid, {})[run["as_of"]] = history_row(row, run["as_of"], run["run_id"])
     records = {mid: [by_date[d] for d in sorted(by_date)] for mid, by_date in sorted(seen.items())}
     return History(records, tuple(used), tuple(problems))
+
+
+@task(name="load-history", cache_policy=NO_CACHE, persist_result=False)
+def history_task(archive: str, as_of: dt.date, model_ids: list[str]) -> History:
+    """Earlier audits per model from the archive's audit runs, each checked against its manifest."""
+    return load_history(archive, as_of, model_ids)
 
 
 def run_context(archive_root: str | os.PathLike, as_of: dt.date, *, trend_length: int = TREND_LENGTH) -> dict:
@@ -402,6 +347,12 @@ def run_context(archive_root: str | os.PathLike, as_of: dt.date, *, trend_length
         "previous_as_of": previous["as_of"] if previous else None,
         "fleet_trend": trend,
     }
+
+
+@task(name="read-archive-context", cache_policy=NO_CACHE, persist_result=False)
+def context_task(archive: str, as_of: dt.date) -> dict:
+    """The chain head this run extends, the previous audit run and the fleet's pass-share trend."""
+    return run_context(archive, as_of)
 
 
 def render_archive_index_file(archive_root: str | os.PathLike) -> pathlib.Path:

@@ -16,7 +16,9 @@ an audit starts.
 
 from __future__ import annotations
 
+import datetime as dt
 import os
+import pathlib
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -28,6 +30,7 @@ from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.candidates import search_candidates
 from fitaudit.core.exceptions import FitauditError
 
+from .archive import open_run
 from .audit import audit_series_for
 from .batches import ModelInput, read_batch
 from .params import promote, write_version
@@ -42,6 +45,7 @@ __all__ = [
     "refit_input",
     "refit_batch",
     "refit_batch_task",
+    "record_task",
 ]
 
 #: Verdicts after which the audit may start the refit flow (a model fitaudit fits only).
@@ -215,3 +219,16 @@ def refit_batch_task(
     )
     get_run_logger().info("refit batch %s: %s", path.rsplit("/", 1)[-1], {r["model_id"]: r["status"] for r in out})
     return out
+
+
+@task(name="record-refits", cache_policy=NO_CACHE, persist_result=False)
+def record_task(archive: str, run_id: str, as_of: dt.date, records: list[dict], manifest: dict) -> str:
+    """Archive the refit records as a run folder (``refit.json``), linked into the chain."""
+    writer = open_run(archive, run_id, as_of.year, as_of=as_of)
+    with writer:
+        writer.write_json(
+            "refit.json",
+            {"schema": "fitaudit.refit", "schema_version": 1, "as_of": as_of.isoformat(), "records": records},
+        )
+        published = writer.finish(manifest)
+    return str(pathlib.Path(archive) / published.path)

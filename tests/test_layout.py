@@ -185,6 +185,52 @@ def test_the_demo_imports_core_and_tasks_not_flows(path):
     )
 
 
+def _task_definitions(tree: ast.AST) -> list[tuple[str, int]]:
+    """Prefect task definitions in a module: functions decorated with ``task``/``task(...)`` (bare or
+    as ``prefect.task``), calls ``task(fn)`` and imports of ``task`` from prefect, as (what, line)."""
+
+    def is_task(node: ast.AST) -> bool:
+        node = node.func if isinstance(node, ast.Call) else node
+        return (isinstance(node, ast.Name) and node.id == "task") or (
+            isinstance(node, ast.Attribute) and node.attr == "task"
+        )
+
+    found = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.FunctionDef | ast.AsyncFunctionDef):
+            found += [(f"@task {node.name}", d.lineno) for d in node.decorator_list if is_task(d)]
+        elif isinstance(node, ast.Call) and is_task(node.func) and node.args:
+            found.append(("task(...) call", node.lineno))
+        elif isinstance(node, ast.ImportFrom) and (node.module or "").split(".")[0] == "prefect":
+            found += [("import of prefect's task", node.lineno) for a in node.names if a.name == "task"]
+    return found
+
+
+def test_task_detector_finds_every_form():
+    """The check below can fail: each way of defining a task in a module is found."""
+    source = (
+        "from prefect import flow, task\n"
+        "import prefect\n"
+        "@task\ndef a(): ...\n"
+        "@task(name='b', retries=2)\ndef b(): ...\n"
+        "@prefect.task(name='c')\nasync def c(): ...\n"
+        "d = task(lambda: 1)\n"
+        "@flow\ndef composed(): a()\n"
+    )
+    found = _task_definitions(ast.parse(source))
+    assert sorted(line for _, line in found) == [1, 3, 5, 7, 9]  # common practice: one hit per definition
+    assert _task_definitions(ast.parse("from prefect import flow\n@flow\ndef f(): ...\n")) == []
+
+
+@pytest.mark.parametrize("path", sorted((REPO / "flows").rglob("*.py")), ids=lambda p: str(p.relative_to(REPO)))
+def test_flows_define_no_tasks(path):
+    """Every @task lives in tasks/; flows/ only compose them (docs/architecture.md §1.2-§1.3)."""
+    found = _task_definitions(ast.parse(path.read_text(), filename=str(path)))
+    assert not found, f"{path.relative_to(REPO)} defines tasks (move them into tasks/): " + ", ".join(
+        f"{what} at line {line}" for what, line in found
+    )
+
+
 @pytest.mark.slow
 def test_wheel_holds_only_the_fitaudit_namespace(tmp_path):
     """A built wheel puts fitaudit/ and its dist-info at the top, nothing named core/tasks/flows/tests."""
