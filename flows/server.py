@@ -28,7 +28,6 @@ import socket
 import subprocess
 import sys
 import time
-import urllib.request
 from collections.abc import Iterator
 
 __all__ = [
@@ -52,6 +51,8 @@ def free_port() -> int:
 
 def wait_healthy(api_url: str, timeout: float = 120.0, process: subprocess.Popen | None = None) -> None:
     """Poll ``<api_url>/health`` until it answers; raise ``RuntimeError`` on timeout or exit."""
+    import urllib.request  # here: every command imports this module, few start a server
+
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         if process is not None and process.poll() is not None:
