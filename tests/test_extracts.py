@@ -727,3 +727,20 @@ def test_an_unreadable_cache_is_an_empty_one(tmp_path):
         cache.misses == 1
         and fp.files[0].sha256 == hashlib.sha256((tmp_path / "x" / "north.parquet").read_bytes()).hexdigest()
     )
+
+
+def test_a_cached_file_keeps_its_time_range_so_its_time_column_is_not_read_again(tmp_path, monkeypatch):
+    _write(tmp_path / "x" / "north.parquet", _table("north", _days("2024-01-01", 31)))
+    _write(tmp_path / "x" / "south.parquet", _table("south", _days("2024-02-01", 10)))
+    for name in ("north", "south"):
+        _age(tmp_path / "x" / f"{name}.parquet")
+    first = fingerprint_source(_source("x"), tmp_path, cache=(cache := extracts.FingerprintCache(tmp_path / "c.json")))
+    cache.save()
+    assert (first.time_min, first.time_max) == ("2024-01-01T00:00:00", "2024-02-10T00:00:00")  # the data written
+    scans = []
+    real = extracts.fingerprints._dataset
+    monkeypatch.setattr(extracts.fingerprints, "_dataset", lambda loc, paths: scans.append(paths) or real(loc, paths))
+    again = fingerprint_source(_source("x"), tmp_path, cache=extracts.FingerprintCache(tmp_path / "c.json"))
+    assert scans == [] and again.to_dict() == first.to_dict()  # the manifest's record is the same
+    # without a cache the time column is read as before
+    assert fingerprint_source(_source("x"), tmp_path).to_dict() == first.to_dict() and len(scans) == 2

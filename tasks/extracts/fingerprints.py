@@ -53,6 +53,7 @@ class FingerprintCache:
         self.hits = 0
         self.misses = 0
         self._changed = False
+        self._current: set[str] = set()  # entries checked against the file's version in this run
         try:
             data = json.loads(self.path.read_text(encoding="utf-8"))
             self._entries = {k: v for k, v in data.get("files", {}).items() if isinstance(v, dict)}
@@ -74,6 +75,7 @@ class FingerprintCache:
             else mtime_ns is not None and entry and entry.get("mtime_ns") == mtime_ns
         )
         if same and entry.get("size") == size:
+            self._current.add(self._key(fs, path))
             self.hits += 1
             return entry.get("sha256")
         self.misses += 1
@@ -93,12 +95,30 @@ class FingerprintCache:
         modified too recently)."""
         if version is not None and sha256:
             self._entries[self._key(fs, path)] = {"size": size, "version": version, "sha256": sha256}
+            self._current.add(self._key(fs, path))
             self._changed = True
             return
         if mtime_ns is None or not sha256 or hashed_at - mtime_ns / 1e9 < RACY_SECONDS:
             return
         self._entries[self._key(fs, path)] = {"size": size, "mtime_ns": mtime_ns, "sha256": sha256}
+        self._current.add(self._key(fs, path))
         self._changed = True
+
+    def span(self, fs: pafs.FileSystem, path: str, column: str) -> list[int] | None:
+        """The cached first and last timestamp (ns) of ``column`` in a file whose digest this run took
+        from the cache or stored (``[]``: no usable timestamp), or None when not cached."""
+        key = self._key(fs, path)
+        if key not in self._current:
+            return None
+        span = self._entries[key].get("spans", {}).get(column)
+        return list(span) if isinstance(span, list) else None
+
+    def put_span(self, fs: pafs.FileSystem, path: str, column: str, span: list[int]) -> None:
+        """Remember the time range of ``column`` beside the file's digest (only for a current entry)."""
+        key = self._key(fs, path)
+        if key in self._current:
+            self._entries[key].setdefault("spans", {})[column] = list(span)
+            self._changed = True
 
     def save(self) -> None:
         """Write the cache (atomically: a temporary file renamed over it) when it changed."""
@@ -210,7 +230,7 @@ def fingerprint_source(
             unreadable.append(f.path)
     readable = [f for f in files if f.schema is not None]
     columns = tuple(dict.fromkeys(n for f in readable for n in f.schema.names))
-    time_min, time_max = _time_range(loc, readable, source.time, unreadable)
+    time_min, time_max = _time_range(loc, readable, source.time, unreadable, cache)
     return ExtractFingerprint(
         source=source.name,
         uri=source.uri,
@@ -225,25 +245,38 @@ def fingerprint_source(
 
 
 def _time_range(
-    loc: _Location, readable: list[_File], time_column: str, failed: list[str]
+    loc: _Location,
+    readable: list[_File],
+    time_column: str,
+    failed: list[str],
+    cache: FingerprintCache | None = None,
 ) -> tuple[str | None, str | None]:
-    """First and last timestamp over the readable files; files whose time column fails to read go to ``failed``."""
+    """First and last timestamp over the readable files; files whose time column fails to read go to ``failed``.
+
+    A file's own range is kept in the cache beside its digest (it follows from the same bytes),
+    so that a file whose digest came from the cache is not read again."""
     lows, highs = [], []
     for f in readable:
         if time_column not in f.schema.names:
             continue
-        try:
-            t, _, why = _to_time(_dataset(loc, [f.path]).to_table(columns=[time_column])[time_column])
-        except (pa.ArrowException, OSError) as exc:
-            loc.pass_io_error(exc)
-            failed.append(f.path)
-            continue
-        if t is None or why:
-            continue
-        t = t[~np.isnat(t)]
-        if t.size:
-            lows.append(t.min())
-            highs.append(t.max())
+        span = cache.span(loc.fs, f.path, time_column) if cache is not None else None
+        if span is None:
+            try:
+                t, _, why = _to_time(_dataset(loc, [f.path]).to_table(columns=[time_column])[time_column])
+            except (pa.ArrowException, OSError) as exc:
+                loc.pass_io_error(exc)
+                failed.append(f.path)
+                continue
+            if t is None or why:
+                span = []  # a time column of the wrong type: reported when the series are read
+            else:
+                t = t[~np.isnat(t)]
+                span = [int(t.min().astype(np.int64)), int(t.max().astype(np.int64))] if t.size else []
+            if cache is not None:
+                cache.put_span(loc.fs, f.path, time_column, span)
+        if span:
+            lows.append(np.datetime64(span[0], "ns"))
+            highs.append(np.datetime64(span[1], "ns"))
     if not lows:
         return None, None
     return _iso(min(lows), full=True), _iso(max(highs), full=True)
