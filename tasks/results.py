@@ -16,7 +16,7 @@ Schema (version 1)::
                  "movement", "exception": {"first_seen", "consecutive"} | null,
                  "production_version": {"version", "sha256", "created_at"} | null,
                  "lineage": {...}, "settings": {...}, "audit": AuditResult.to_dict() | null,
-                 "history": [{"as_of", "verdict", "r_max", "p_value"}, ...],
+                 "history": [{"as_of", "verdict", "r_max", "p_value", "run_id"}, ...],
                  "candidates": [...] | null,
                  "forecasts": {...}  (forecast entries only: the statement audited)}, ...]}
 
