@@ -259,6 +259,8 @@ def audit_flow(
                     "registry_models": len(reg.models) + len(reg.rejected),
                     "unreadable_sources": sorted(staged.source_errors),
                 },
+                # sources too stale to audit: the run page lists each once
+                "stale_sources": {k: dict(v) for k, v in staged.stale_sources.items()},
             }
             parcels, names, spills = render_parcels(final, batches, [b.path for b in staged.batches])
             rendered = render_outcomes_task.map(
@@ -283,6 +285,7 @@ def audit_flow(
             "registry": {"path": str(pathlib.Path(reg.path).resolve()), "sha256": reg.sha256},
             "inputs": staged.fingerprints,
             "source_errors": staged.source_errors,
+            "stale_sources": staged.stale_sources,
             "policy": reg.policy.to_dict(),
             "seeds": {"policy_seed": reg.policy.seed},
             "counts": {k: summary[k] for k in ("registered", "audited", *VERDICTS)},

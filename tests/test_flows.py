@@ -350,3 +350,23 @@ def test_the_run_event_carries_the_manifest_digest_the_chain_head_and_the_models
     ]  # refit and respecify alike, as `run --refit`
     assert resource.get("fitaudit.refits-needed") == "yes"
     assert payload["report_url"] == pathlib.Path(first_run["report"]).as_uri()  # no report_base_url: a file:// link
+
+
+def test_stale_extracts_are_named_once_in_the_manifest_and_on_the_run_page(demo, prefect_server, tmp_path):
+    import datetime as dt
+
+    from fitaudit.flows.audit import audit_flow
+
+    late = DEMO_AS_OF + dt.timedelta(days=8)  # the demo's extracts end at DEMO_AS_OF: 8 daily periods late
+    models = ["demand-d-02", "demand-d-07", "energy-pump-01", "leakage-leak-01"]
+    run = audit_flow(
+        registry=demo["registry"], as_of=late, archive=_fresh_archive(demo, tmp_path), models=models, batch_size=3
+    )
+    doc = json.loads(_results(run))
+    assert {m["id"]: m["verdict"] for m in doc["models"]} == dict.fromkeys(models, "insufficient")
+    manifest = json.loads((pathlib.Path(run["report"]).parent / "manifest.json").read_text())
+    stale = manifest["stale_sources"]
+    assert sorted(stale) == ["demand", "network"]
+    assert stale["demand"]["models"] == ["demand-d-02", "demand-d-07"] and stale["demand"]["as_of"] == late.isoformat()
+    page = pathlib.Path(run["report"]).read_text(encoding="utf-8")
+    assert page.count("Stale source.") == 2 and page.count("Source demand (") == 1
