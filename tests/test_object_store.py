@@ -21,6 +21,7 @@ import pathlib
 import socket
 import sys
 import threading
+import time
 
 import numpy as np
 import pyarrow.parquet as pq
@@ -190,6 +191,26 @@ def _registry(root: pathlib.Path, sources: dict[str, dict]):
     return load_registry(fleet.write())
 
 
+def _stage_task_runs(flow_run_id) -> list:
+    """The flow run's staging task runs (waits for the server to record them as final)."""
+    import asyncio
+
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import FlowRunFilter, FlowRunFilterId
+
+    async def read():
+        async with get_client() as client:
+            runs = await client.read_task_runs(flow_run_filter=FlowRunFilter(id=FlowRunFilterId(any_=[flow_run_id])))
+            return [r for r in runs if r.name.startswith("stage-extracts")]
+
+    for _ in range(60):
+        runs = asyncio.run(read())
+        if runs and all(r.state is not None and r.state.is_final() for r in runs):
+            return runs
+        time.sleep(0.5)
+    return runs
+
+
 def _items(staged) -> dict:
     return {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
 
@@ -327,7 +348,12 @@ def test_the_audit_flow_audits_the_good_source_and_names_the_broken_ones(store, 
         },
     )
     with enforced(store):
-        run = audit_flow(registry=str(root / "registry.yaml"), as_of=AS_OF, archive=str(tmp_path / "archive"))
+        state = audit_flow(
+            registry=str(root / "registry.yaml"), as_of=AS_OF, archive=str(tmp_path / "archive"), return_state=True
+        )
+    run = state.result()
+    (stage,) = _stage_task_runs(state.state_details.flow_run_id)
+    assert stage.run_count == 1 and stage.state.is_completed()  # a refusal or a missing object is not retried
     records = {m["id"]: m for m in results_of(run)["models"]}
     assert records["good-a"]["verdict"] in AUDITED and records["good-b"]["verdict"] in AUDITED
     for model, needle in (
