@@ -4,8 +4,8 @@ Building model specifications, noise laws and audit settings (what ``fitaudit re
 does for every registered model) needs no scipy; importing ``scipy.signal``, ``scipy.optimize``,
 ``scipy.stats`` and ``scipy.linalg`` takes a second or more on a cold start, so core reaches
 them through :class:`LazyModule`: the module is imported on the first attribute read, and each
-attribute is then stored on the proxy, so later reads (the likelihood loops call ``lapack.dpotrf`` and ``signal.lfilter`` on every
-evaluation) are plain instance attribute look-ups.
+attribute is then stored on the proxy, so later reads (the likelihood loops call ``lapack.dpotrf``
+and ``signal.lfilter`` on every evaluation) are plain instance attribute look-ups.
 """
 
 from __future__ import annotations

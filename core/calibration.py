@@ -572,7 +572,8 @@ def nrr_term(
 ) -> float:
     """Nikulin-Rao-Robson correction ``V' B (J - J*)^-1 B' V`` for fixed cells.
 
-    With cell probabilities ``q_j`` (``1/s`` unless ``probs`` is given), ``V_j = (N_j - n q_j) / sqrt(n q_j)``, ``B_ji = (dq_j/dtheta_i)/sqrt(q_j)``,
+    With cell probabilities ``q_j`` (``1/s`` unless ``probs`` is given),
+    ``V_j = (N_j - n q_j) / sqrt(n q_j)``, ``B_ji = (dq_j/dtheta_i)/sqrt(q_j)``,
     ``J`` the per-observation Fisher information of the estimated noise parameters and
     ``J* = B'B``: adding this term to ``X2`` (or to any member of the family, docs/method.md §5.4)
     restores the chi-square(s - 1) limit when the parameters are maximum-likelihood estimates

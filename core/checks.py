@@ -75,7 +75,9 @@ def _deciding_partition(part, u: np.ndarray) -> dict:
         "cell": j,
         "observed": int(obs[j]),
         "expected": round(float(exp[j]), 2),
-        "sentence": f"{part.describe_cell(j)} of the assumed law holds {int(obs[j])} errors where {exp[j]:.1f} were expected",
+        "sentence": (
+            f"{part.describe_cell(j)} of the assumed law holds {int(obs[j])} errors where {exp[j]:.1f} were expected"
+        ),
     }
 
 
@@ -297,7 +299,10 @@ MAGNITUDE_RANGE = (1e-150, 1e150)
 
 
 def _check_inputs(y: np.ndarray, exog: Mapping[str, np.ndarray] | None, law: NoiseLaw, label: str) -> None:
-    """Refuse data the numerics cannot handle, with the fix: magnitudes outside :data:`MAGNITUDE_RANGE`, non-counts under a count law."""
+    """Refuse data the numerics cannot handle, with the fix.
+
+    Magnitudes outside :data:`MAGNITUDE_RANGE` and non-counts under a count law are refused.
+    """
     low, high = MAGNITUDE_RANGE
     columns = [("the series", y)] + [
         (f"exogenous column {k!r}", np.asarray(v, dtype=float)) for k, v in (exog or {}).items()
@@ -310,7 +315,8 @@ def _check_inputs(y: np.ndarray, exog: Mapping[str, np.ndarray] | None, law: Noi
             )
             raise InputError(
                 f"{label}: {name} holds values {side} their squares leave the range of double precision and no fit "
-                "can run. Rescale the column in the extract (e.g. record thousands, millions or millionths of the unit)."
+                "can run. Rescale the column in the extract (e.g. record thousands, millions or millionths of the "
+                "unit)."
             )
     law.check_observations(y, label)
 

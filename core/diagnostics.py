@@ -343,6 +343,7 @@ def ljung_box_lags(n: int, period: int = 1, model_df: int = 0) -> int:
     h = max(min(cap, n // 5), int(model_df) + 3)
     if h >= n:
         raise InsufficientDataError(
-            f"The Ljung-Box gate needs {h} lags (model_df {model_df} + 3 at least) and so at least {h + 1} residuals; got {n}."
+            f"The Ljung-Box gate needs {h} lags (model_df {model_df} + 3 at least) and so at least {h + 1} residuals; "
+            f"got {n}."
         )
     return int(h)

@@ -165,8 +165,9 @@ def _positive(a: np.ndarray, name: str, owner: str, offset: int = 0) -> np.ndarr
     bad = np.flatnonzero(a <= 0)
     if bad.size:
         raise InputError(
-            f"{owner}: {name} must be positive, but {bad.size} value(s) are not, first at position {offset + int(bad[0])} "
-            f"({a[bad[0]]:g}); a predictive distribution needs a positive spread. Correct the forecast store."
+            f"{owner}: {name} must be positive, but {bad.size} value(s) are not, first at position "
+            f"{offset + int(bad[0])} ({a[bad[0]]:g}); a predictive distribution needs a positive spread. Correct the "
+            "forecast store."
         )
     return a
 
@@ -280,8 +281,8 @@ def _pit_counts(y, mean, noise, rng, owner: str, offset: int = 0) -> np.ndarray:
     bad = np.flatnonzero((y < 0) | (y != np.round(y)))
     if bad.size:
         raise InputError(
-            f"{owner}: the {law.name} law needs counts, but {bad.size} actual(s) are not non-negative integers, first at "
-            f"position {offset + int(bad[0])} ({y[bad[0]]:g}); state a continuous predictive law for this series."
+            f"{owner}: the {law.name} law needs counts, but {bad.size} actual(s) are not non-negative integers, first "
+            f"at position {offset + int(bad[0])} ({y[bad[0]]:g}); state a continuous predictive law for this series."
         )
     params = NoiseParams(law=law.name, loc=0.0, scale=1.0, shape=law.shape, estimated=())
     return np.asarray(law.randomized_pit(y, mean, params, rng), dtype=float)
@@ -327,9 +328,9 @@ def _quantile_table(quantiles, n: int, owner: str, offset: int = 0) -> tuple[np.
         t, k = int(rows[0]), int(cols[0])
         raise InputError(
             f"{owner}: the stated quantiles cross at {int(cross.any(axis=1).sum())} observation(s), first at position "
-            f"{offset + t}: the {levels_arr[k + 1]:g} quantile ({Q[t, k + 1]:g}) is below the {levels_arr[k]:g} quantile "
-            f"({Q[t, k]:g}). Quantiles must not decrease with the level; correct the forecast store (if the crossing is "
-            "rounding noise, sort each row's quantiles)."
+            f"{offset + t}: the {levels_arr[k + 1]:g} quantile ({Q[t, k + 1]:g}) is below the {levels_arr[k]:g} "
+            f"quantile ({Q[t, k]:g}). Quantiles must not decrease with the level; correct the forecast store (if the "
+            "crossing is rounding noise, sort each row's quantiles)."
         )
     return levels_arr, Q
 
@@ -343,9 +344,9 @@ def _tail_scales(levels: np.ndarray, Q: np.ndarray, owner: str, offset: int = 0)
     if flat.any():
         t = int(np.flatnonzero(flat)[0])
         raise InputError(
-            f"{owner}: every stated quantile is the same value ({Q[t, 0]:g}) at {int(flat.sum())} observation(s), first at "
-            f"position {offset + t}; that states no uncertainty at all. State quantiles with spread, or audit those "
-            "observations with a count law."
+            f"{owner}: every stated quantile is the same value ({Q[t, 0]:g}) at {int(flat.sum())} observation(s), "
+            f"first at position {offset + t}; that states no uncertainty at all. State quantiles with spread, or audit "
+            "those observations with a count law."
         )
     j = np.argmax(above_first, axis=1)  # first level whose quantile exceeds the lowest one
     i = K - 1 - np.argmax(below_last[:, ::-1], axis=1)  # last level whose quantile is below the highest one
@@ -879,24 +880,25 @@ def check_forecast_timing(issued, target, label: str | None = None) -> list[str]
         return [f"{who}{iss.size} issue time(s) for {tgt.size} target time(s); state one issue time per forecast."]
     if (iss.dtype.kind == "M") != (tgt.dtype.kind == "M"):
         return [
-            f"{who}issue times ({iss.dtype}) and target times ({tgt.dtype}) are not on one clock; store both as time stamps."
+            f"{who}issue times ({iss.dtype}) and target times ({tgt.dtype}) are not on one clock; store both as time "
+            "stamps."
         ]
     problems = []
     missing = np.isnat(iss) if iss.dtype.kind == "M" else ~np.isfinite(iss.astype(float))
     if missing.any():
         first = int(np.flatnonzero(missing)[0])
         problems.append(
-            f"{who}{int(missing.sum())} forecast(s) have no issue time, first for target {tgt[first]} (position {first}); "
-            "every audited forecast needs the time it was issued, to show it came before the observation."
+            f"{who}{int(missing.sum())} forecast(s) have no issue time, first for target {tgt[first]} (position "
+            f"{first}); every audited forecast needs the time it was issued, to show it came before the observation."
         )
     with np.errstate(invalid="ignore"):
         late = ~missing & (iss >= tgt)
     if late.any():
         first = int(np.flatnonzero(late)[0])
         problems.append(
-            f"{who}{int(late.sum())} forecast(s) were issued at or after the observation they predict, first the forecast for "
-            f"{tgt[first]} issued at {iss[first]} (position {first}); such a forecast may have seen the actual. Keep only "
-            "the forecast of record issued before each target time in the forecast store."
+            f"{who}{int(late.sum())} forecast(s) were issued at or after the observation they predict, first the "
+            f"forecast for {tgt[first]} issued at {iss[first]} (position {first}); such a forecast may have seen the "
+            "actual. Keep only the forecast of record issued before each target time in the forecast store."
         )
     return problems
 
@@ -914,7 +916,8 @@ def _gate_text(check: CheckResult, threshold: float, adjusted: bool) -> str:
         )
         parts.append(
             "the PIT values of the actuals are not uniform "
-            f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{where}, p {_fmt_p(check.p_distribution)})"
+            f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{where}, p "
+            f"{_fmt_p(check.p_distribution)})"
         )
     if ind:
         lb = check.ljung_box
@@ -964,9 +967,9 @@ def forecast_verdict(check: CheckResult, threshold: float, adjusted: bool = Fals
         first = lb.get("first_lag", 1)
         return "pass", (
             f"The stated forecasts still match the {w} actuals of the audit window: the PIT values are consistent with "
-            f"uniform (largest T {check.t_at_max:.1f} against {check.critical_value:.1f}, p {_fmt_p(check.p_distribution)}) "
-            f"and their normal scores show no autocorrelation at lags {first}..{first + int(lb.get('lags', 1)) - 1} "
-            f"(p {_fmt_p(check.p_independence)}).",
+            f"uniform (largest T {check.t_at_max:.1f} against {check.critical_value:.1f}, p "
+            f"{_fmt_p(check.p_distribution)}) and their normal scores show no autocorrelation at lags "
+            f"{first}..{first + int(lb.get('lags', 1)) - 1} (p {_fmt_p(check.p_independence)}).",
             NOT_REFITTED,
         )
     return "refit", (
@@ -1143,7 +1146,9 @@ def _subsequence_check(
     calibration = dict(
         checks[best].calibration,
         subsequences=[{"n": int(c.n), "p_distribution": float(c.p_distribution)} for c in checks],
-        combination=f"Bonferroni over the {h} interleaved subsequences of {h}-step forecasts (Diebold, Gunther and Tay 1998)",
+        combination=(
+            f"Bonferroni over the {h} interleaved subsequences of {h}-step forecasts (Diebold, Gunther and Tay 1998)"
+        ),
         deciding_subsequence=best,
     )
     plots = dict(checks[best].plots, acf=np.asarray(r[1:]).round(6).tolist())

@@ -127,7 +127,8 @@ class NoiseParams:
         order = [PARAMETER_NAMES.index(e) if e in PARAMETER_NAMES else -1 for e in estimated]
         if -1 in order or order != sorted(set(order)):
             raise InputError(
-                f"NoiseParams.estimated must list distinct names from {PARAMETER_NAMES} in that order; got {estimated!r}."
+                f"NoiseParams.estimated must list distinct names from {PARAMETER_NAMES} in that order; got "
+                f"{estimated!r}."
             )
         if "shape" in estimated and self.shape is None:
             raise InputError(f"NoiseParams for the {self.law!r} law list 'shape' as estimated but carry no shape.")
@@ -614,8 +615,8 @@ class _LocationScaleLaw(NoiseLaw):
         sigma2 = float(production["sigma2"])
         if not (np.isfinite(sigma2) and sigma2 > 0):
             raise InputError(
-                f"{label + ': ' if label else ''}the production parameter version's sigma2 = {sigma2:g} is not a positive variance; "
-                "refit the model and promote a new parameter version."
+                f"{label + ': ' if label else ''}the production parameter version's sigma2 = {sigma2:g} is not a "
+                "positive variance; refit the model and promote a new parameter version."
             )
         return self.from_variance(sigma2)
 
@@ -715,7 +716,8 @@ class _LocationScaleLaw(NoiseLaw):
         if flat.any():
             raise InputError(
                 f"{self.name} fit: row(s) {np.flatnonzero(flat)[:5].tolist()} have all residuals equal"
-                f"{' to their median' if location else ' to 0'}; the scale cannot be estimated (is the model an exact fit?)."
+                f"{' to their median' if location else ' to 0'}; the scale cannot be estimated (is the model an exact "
+                "fit?)."
             )
         return self._fit_rows(X, bool(location))
 
@@ -1351,9 +1353,9 @@ class _CountLaw(NoiseLaw):
         bad = np.flatnonzero((y < 0) | (y != np.round(y)))
         if bad.size:
             raise InputError(
-                f"{label}: the {self.name} noise law needs counts (non-negative integers), but {bad.size} value(s) are not, "
-                f"first at position {int(bad[0])} ({y[bad[0]]:g}). Register a continuous noise law (normal, student-t, "
-                "laplace, logistic) for this series, or correct the extract."
+                f"{label}: the {self.name} noise law needs counts (non-negative integers), but {bad.size} value(s) are "
+                f"not, first at position {int(bad[0])} ({y[bad[0]]:g}). Register a continuous noise law (normal, "
+                "student-t, laplace, logistic) for this series, or correct the extract."
             )
 
     def standardise(self, errors, params: NoiseParams) -> np.ndarray:

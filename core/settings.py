@@ -132,7 +132,8 @@ class AuditSettings:
         unknown = [p for p in parts if p not in PARTITION_KINDS]
         if not parts or unknown or len(set(parts)) != len(parts):
             raise InputError(
-                f"AuditSettings: partitions must be distinct kinds from {', '.join(PARTITION_KINDS)}; got {self.partitions!r}."
+                f"AuditSettings: partitions must be distinct kinds from {', '.join(PARTITION_KINDS)}; got "
+                f"{self.partitions!r}."
             )
         object.__setattr__(self, "partitions", parts)
         if self.gate_members is not None:
@@ -144,7 +145,8 @@ class AuditSettings:
                 ) from None
             if not members or any(b < 0 or b > 1 for _, b in members):
                 raise InputError(
-                    f"AuditSettings: gate_members must be non-empty (alpha, beta) pairs with beta in [0, 1]; got {self.gate_members!r}."
+                    "AuditSettings: gate_members must be non-empty (alpha, beta) pairs with beta in [0, 1]; got "
+                    f"{self.gate_members!r}."
                 )
             object.__setattr__(self, "gate_members", members)
 

@@ -88,7 +88,10 @@ def _rule(check: CheckResult, threshold: float, adjusted: bool) -> str:
         side = "at or below" if check.p_adjusted <= threshold else "above"
         adj = "< 0.001" if check.p_adjusted < 0.001 else f"{check.p_adjusted:.3f}"
         return f"check p {_fmt_p(check.p_value)}, adjusted across the run to {adj}, {side} q = {threshold:g}"
-    return f"check p {_fmt_p(check.p_value)}; each gate fails at p ≤ {threshold / 2:g} (level {threshold:g} split over the two gates)"
+    return (
+        f"check p {_fmt_p(check.p_value)}; each gate fails at p ≤ {threshold / 2:g} (level {threshold:g} split "
+        "over the two gates)"
+    )
 
 
 def _window_words(check: CheckResult) -> str:
@@ -112,7 +115,10 @@ def _bias_words(sizes: dict, since: str | None) -> str | None:
     when = f" since {since}" if since else ""
     side = "high" if bias_sd < 0 else "low"  # e = y - forecast: negative errors are forecasts above the data
     if pct is not None and abs(pct) >= 0.5:
-        return f"the forecasts ran {abs(pct):.0f} % {side}{when} ({abs(bias_sd):.1f} standard deviations of the assumed error)"
+        return (
+            f"the forecasts ran {abs(pct):.0f} % {side}{when} ({abs(bias_sd):.1f} standard deviations of the "
+            "assumed error)"
+        )
     return f"the forecasts ran {abs(bias_sd):.1f} standard deviations of the assumed error too {side}{when}"
 
 
@@ -130,7 +136,10 @@ def _plain_failure(check: CheckResult, threshold: float, adjusted: bool) -> str:
         if ratio >= 1:
             spread = f"the {noun} are {ratio:.1f} times as variable as the model assumes"
         else:
-            spread = f"the {noun} are only {ratio:.2f} times as variable as the model assumes (it overstates its uncertainty)"
+            spread = (
+                f"the {noun} are only {ratio:.2f} times as variable as the model assumes (it overstates its "
+                "uncertainty)"
+            )
     # the larger departure first: the bias in standard deviations against the excess of the spread, |sqrt(ratio) - 1|
     shown = since if since.get("date") and since.get("bias_sd") is not None else eff
     excess = abs(np.sqrt(ratio) - 1) if ratio is not None and ratio > 0 else 0.0
@@ -143,8 +152,8 @@ def _plain_failure(check: CheckResult, threshold: float, adjusted: bool) -> str:
         parts.append(f"the {noun} are not distributed as the model assumes{sentence}")
     if ind:
         parts.append(
-            f"consecutive {noun} are correlated (largest autocorrelation {check.effect_acf:.2f}), so the forecasts leave predictable "
-            "structure unused"
+            f"consecutive {noun} are correlated (largest autocorrelation {check.effect_acf:.2f}), so the forecasts "
+            "leave predictable structure unused"
         )
     return "; ".join(parts) if parts else "no gate was flagged"
 
@@ -160,13 +169,15 @@ def _why_failed(check: CheckResult, threshold: float, adjusted: bool) -> str:
         on = f" on the {deciding['kind']} cells" if deciding.get("kind") else ""
         parts.append(
             f"the residual distribution departs from the assumed {check.noise.get('law', 'noise')} law{cells} "
-            f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{on}{where}; distribution gate {_p_gate(check)})"
+            f"(T {check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{on}{where}; distribution "
+            f"gate {_p_gate(check)})"
         )
     if ind:
         lb = check.ljung_box
         parts.append(
-            f"the residuals are autocorrelated (Ljung-Box Q {lb.get('statistic', float('nan')):.1f} on {lb.get('lags')} lags, "
-            f"p {_fmt_p(check.p_independence)}; largest |autocorrelation| {check.effect_acf:.2f})"
+            f"the residuals are autocorrelated (Ljung-Box Q {lb.get('statistic', float('nan')):.1f} on "
+            f"{lb.get('lags')} lags, p {_fmt_p(check.p_independence)}; largest |autocorrelation| "
+            f"{check.effect_acf:.2f})"
         )
     text = " and ".join(parts) if parts else "no gate was flagged"
     return f"{text}; {_rule(check, threshold, adjusted)}"
@@ -177,10 +188,13 @@ def _summary_pass(check: CheckResult, threshold: float, adjusted: bool) -> str:
     on = f" on the {deciding['kind']} cells" if deciding.get("kind") else ""
     beyond = check.t_at_max > check.critical_value
     return (
-        f"the distribution gate finds no departure from the assumed law (largest standardised statistic: T {check.t_at_max:.1f} "
-        f"against a critical value of {check.critical_value:.1f}{on}, {_p_gate(check)}"
+        "the distribution gate finds no departure from the assumed law (largest standardised statistic: T "
+        f"{check.t_at_max:.1f} against a critical value of {check.critical_value:.1f}{on}, {_p_gate(check)}"
         + (", not significant after the adjustment across the run" if beyond else "")
-        + f") and Ljung-Box finds no autocorrelation (p {_fmt_p(check.p_independence)}); {_rule(check, threshold, adjusted)}"
+        + (
+            f") and Ljung-Box finds no autocorrelation (p {_fmt_p(check.p_independence)}); "
+            f"{_rule(check, threshold, adjusted)}"
+        )
     )
 
 
@@ -227,8 +241,8 @@ def _cautions(check: CheckResult) -> list[str]:
     ml = (check.mcleod_li or {}).get("p_value")
     if ml is not None and np.isfinite(ml) and ml < MCLEOD_LI_NOTE_P:
         out.append(
-            f"there is strong evidence of changing variance (McLeod-Li on squared residuals, p {_fmt_p(ml)}; reported only, "
-            "it does not decide the verdict)"
+            f"there is strong evidence of changing variance (McLeod-Li on squared residuals, p {_fmt_p(ml)}; reported "
+            "only, it does not decide the verdict)"
         )
     return out
 
@@ -299,20 +313,22 @@ def decide_verdict(
         stats = f"Production check: {_why_failed(production, threshold, adjusted)}."
         if not refit.ok:
             return refit.status, (
-                f"The refit check could not run, so the failing production check cannot be told apart from a model that no longer fits: {refit.message}",
+                "The refit check could not run, so the failing production check cannot be told apart from a model "
+                f"that no longer fits: {refit.message}",
                 f"The production parameters no longer fit {window}: {plain}.",
                 stats,
             )
         if refit.passed(threshold, adjusted):
             return "refit", (
-                f"Refit: the production parameters no longer fit {window}, while the same model re-estimated does: {plain}.",
+                f"Refit: the production parameters no longer fit {window}, while the same model re-estimated does: "
+                f"{plain}.",
                 stats,
                 f"Refit check ({_window_words(refit)}): {_summary_pass(refit, threshold, adjusted)}.",
                 *_caution_reasons(refit, "refit check"),
             )
         return "respecify", (
-            f"Respecify: re-estimated on {_window_words(refit)}, the model still does not describe the series, so the model class "
-            f"no longer fits: {_plain_failure(refit, threshold, adjusted)}.",
+            f"Respecify: re-estimated on {_window_words(refit)}, the model still does not describe the series, so the "
+            f"model class no longer fits: {_plain_failure(refit, threshold, adjusted)}.",
             f"Refit check ({_window_words(refit)}): {_why_failed(refit, threshold, adjusted)}.",
             f"The production parameters also fail on {window}: {plain}.",
             stats,
@@ -327,7 +343,8 @@ def decide_verdict(
             *_caution_reasons(refit, "refit check"),
         )
     return "respecify", (
-        f"Respecify: the model re-estimated on {window} does not describe the series: {_plain_failure(refit, threshold, adjusted)}.",
+        f"Respecify: the model re-estimated on {window} does not describe the series: "
+        f"{_plain_failure(refit, threshold, adjusted)}.",
         f"Refit check: {_why_failed(refit, threshold, adjusted)}.",
     )
 
@@ -371,7 +388,10 @@ def owner_action(
     if verdict == "pass":
         return {"action": "None: the model passed.", "due": None, "days": None}
     if not refittable:
-        refit = "Re-estimate the model that issues these forecasts (fitaudit does not refit it) and restate their uncertainty."
+        refit = (
+            "Re-estimate the model that issues these forecasts (fitaudit does not refit it) and restate their "
+            "uncertainty."
+        )
     elif refit_policy != "automatic":
         refit = "Check the refitted parameters and approve their promotion (fitaudit promote), or say why not."
     else:
@@ -379,11 +399,14 @@ def owner_action(
     texts = {
         "refit": refit,
         "respecify": (
-            "Refits keep recurring: choose a new specification (see the candidates) and have it validated, rather than approving another refit."
+            "Refits keep recurring: choose a new specification (see the candidates) and have it validated, rather than "
+            "approving another refit."
             if escalated
             else "Choose a new specification (see the candidates) and have it validated."
         ),
-        "insufficient": "Provide the data the reason names (or shorten the windows in the registry) so the model can be audited.",
+        "insufficient": (
+            "Provide the data the reason names (or shorten the windows in the registry) so the model can be audited."
+        ),
         "error": "Fix the problem the reason names so the model can be audited.",
     }
     due = None
@@ -490,7 +513,8 @@ def escalate_persistent_refit(history: Sequence[str], current: str, k: int = 2, 
     unknown = sorted({v for v in verdicts if v not in VERDICTS}, key=str)
     if unknown:
         raise InputError(
-            f"escalate_persistent_refit: unknown verdict(s) {unknown}; valid verdicts are {', '.join(repr(v) for v in VERDICTS)}."
+            f"escalate_persistent_refit: unknown verdict(s) {unknown}; valid verdicts are "
+            f"{', '.join(repr(v) for v in VERDICTS)}."
         )
     if current != "refit":
         return False
@@ -564,7 +588,8 @@ def apply_fleet_rules(
             )
             if use_adjusted:
                 reasons = reasons + (
-                    f"p-values were adjusted across the run's {len(pvals)} checks ({ADJUSTMENT_LABELS.get(method, method)}, q = {q:g}).",
+                    f"p-values were adjusted across the run's {len(pvals)} checks "
+                    f"({ADJUSTMENT_LABELS.get(method, method)}, q = {q:g}).",
                 )
             escalated = False
             if verdict == "refit" and escalate_persistent_refit(list(histories[i]), verdict, k=k, n=n):
@@ -572,9 +597,9 @@ def apply_fleet_rules(
                 recent = [*list(histories[i])[-(n - 1) :], "refit"] if n > 1 else ["refit"]
                 lead = reasons[0].removeprefix("Refit: ")
                 reasons = (
-                    f"Respecify (escalated): a refit was needed in {recent.count('refit')} of the last {len(recent)} audits, this one "
-                    f"included (the policy escalates {k} in {n}), so re-estimating no longer keeps the model fit and its "
-                    "specification needs review.",
+                    f"Respecify (escalated): a refit was needed in {recent.count('refit')} of the last {len(recent)} "
+                    f"audits, this one included (the policy escalates {k} in {n}), so re-estimating no longer keeps "
+                    "the model fit and its specification needs review.",
                     f"On its own, this audit would call for a refit: {lead[:1].lower()}{lead[1:]}",
                     *reasons[1:],
                 )

@@ -480,7 +480,8 @@ class ExpSmoothing(ForecastModel):
         e = self._batch_errors(y, np.concatenate([theta, states])[None, :])[0]
         if not np.isfinite(e).all():
             raise SpecificationError(
-                f"{self.describe()}: the one-step errors overflow with parameters {dict(params)} on this series; refit the model."
+                f"{self.describe()}: the one-step errors overflow with parameters {dict(params)} on this series; refit "
+                "the model."
             )
         return e
 
