@@ -308,7 +308,8 @@ def audit_flow(
         report = str(pathlib.Path(published["path"]) / "index.html")
         if published["seq"] != extends["chain_seq"] + 1:
             logger.warning(
-                "run %s: %d chain entries were appended while it ran; its page names the head before them (seq %s), its own entry is seq %d",
+                "run %s: %d chain entries were appended while it ran; its page names the head before them (seq %s), "
+                "its own entry is seq %d",
                 run_id,
                 published["seq"] - extends["chain_seq"] - 1,
                 extends["chain_seq"],

@@ -59,7 +59,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="fitaudit",
         description="Weekly goodness-of-fit audits of registered forecasting models, on Prefect 3.",
-        epilog="Exit codes: 0 ok; 1 failure; 2 usage or registry invalid; 3 --fail-on verdict seen; 4 verify found problems.",
+        epilog=(
+            "Exit codes: 0 ok; 1 failure; 2 usage or registry invalid; 3 --fail-on verdict seen; 4 verify found "
+            "problems."
+        ),
     )
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
@@ -115,7 +118,10 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument(
         "--registry-sha256",
         metavar="DIGEST",
-        help="refuse the registry unless its SHA-256 is DIGEST (the audit run's manifest records it): refit what was audited",
+        help=(
+            "refuse the registry unless its SHA-256 is DIGEST (the audit run's manifest records it): refit what was "
+            "audited"
+        ),
     )
 
     b = sub.add_parser("backfill", help="audit a range of past as-of dates so that trends exist from day one")
@@ -166,8 +172,8 @@ def build_parser() -> argparse.ArgumentParser:
     gsub.add_parser(
         "schema",
         help="print the registry's JSON Schema, for editors (completion and checks while typing)",
-        description="Print the JSON Schema (draft 2020-12) of a registry file. Save it, e.g. as registry.schema.json, and "
-        "point your editor at it; with the YAML language server a first line "
+        description="Print the JSON Schema (draft 2020-12) of a registry file. Save it, e.g. as registry.schema.json, "
+        "and point your editor at it; with the YAML language server a first line "
         "'# yaml-language-server: $schema=registry.schema.json' in the registry does it. "
         "`fitaudit registry check` remains the full check (sources declared, spec buildable, ids unique).",
     )
@@ -185,8 +191,8 @@ def build_parser() -> argparse.ArgumentParser:
     pi = pmsub.add_parser(
         "import",
         help="store parameters estimated elsewhere as a model's production version (checked, then promoted)",
-        description="Check a parameters file (JSON, or YAML for .yaml/.yml: params, noise, date, approved_by; see the README) "
-        "against the registry's model entry and store it as the model's production version.",
+        description="Check a parameters file (JSON, or YAML for .yaml/.yml: params, noise, date, approved_by; see the "
+        "README) against the registry's model entry and store it as the model's production version.",
     )
     pi.add_argument("registry", help="registry YAML file (read only)")
     pi.add_argument("model", help="model id")
@@ -197,10 +203,10 @@ def build_parser() -> argparse.ArgumentParser:
     ak = sub.add_parser(
         "acknowledge",
         help="record the archive's damage in the hash chain so that runs can continue (when it cannot be restored)",
-        description="Record every problem `fitaudit verify` finds in an 'acknowledgement' chain entry, with who and why. "
-        "Nothing is deleted or rewritten: a run folder or promoted version whose chain entry was lost is recorded as found, "
-        "a chain line cut short is ended, and verify reports the recorded problems as acknowledged (any new damage is a problem "
-        "again). Restore from a backup instead whenever you can.",
+        description="Record every problem `fitaudit verify` finds in an 'acknowledgement' chain entry, with who and "
+        "why. Nothing is deleted or rewritten: a run folder or promoted version whose chain entry was lost is recorded "
+        "as found, a chain line cut short is ended, and verify reports the recorded problems as acknowledged (any new "
+        "damage is a problem again). Restore from a backup instead whenever you can.",
     )
     ak.add_argument("archive", help="archive folder")
     ak.add_argument("--by", required=True, help="who acknowledges the damage (name and role)")
@@ -274,7 +280,8 @@ def _print_summary(result: dict, quiet: bool) -> None:
     if refits:
         statuses = ", ".join(f"{r['model_id']} {r['status']}" for r in refits.get("records") or [])
         print(
-            f"refit run {refits['run_id']} for {len(refits.get('records') or [])} flagged model(s): {statuses}; record {refits['path']}"
+            f"refit run {refits['run_id']} for {len(refits.get('records') or [])} flagged model(s): {statuses}; record "
+            f"{refits['path']}"
         )
 
 
@@ -578,7 +585,8 @@ def _default_registry(args: argparse.Namespace) -> str | None:
         return (
             f"fitaudit {args.command}: no registry given, and the registry_path setting names {str(path)!r}, "
             "which is not a file. Give the registry file as an argument, or set "
-            "PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH (or registry_path under [integrations.fitaudit] in prefect.toml)."
+            "PREFECT_INTEGRATIONS_FITAUDIT_REGISTRY_PATH (or registry_path under [integrations.fitaudit] in "
+            "prefect.toml)."
         )
     args.registry = str(path)
     return None

@@ -26,7 +26,10 @@ def _run_name() -> str:
     params = flow_run.parameters or {}
     as_of = params.get("as_of") or dt.datetime.now(dt.UTC).date()
     ids = params.get("model_ids") or []
-    return f"refit {str(as_of)[:10]} {pathlib.Path(str(params.get('registry'))).name}, {len(ids)} model{'s' if len(ids) != 1 else ''}"
+    return (
+        f"refit {str(as_of)[:10]} {pathlib.Path(str(params.get('registry'))).name}, {len(ids)} "
+        f"model{'s' if len(ids) != 1 else ''}"
+    )
 
 
 @flow(name="fitaudit-refit", flow_run_name=_run_name, persist_result=False, log_prints=False)

@@ -231,6 +231,7 @@ def reap_stale_servers(grace: float = 5.0) -> list[str]:
                 send(pid, signal.SIGKILL)
         path.unlink(missing_ok=True)
         actions.append(
-            f"stopped a Prefect server left running by an interrupted fitaudit command (pid {pid}, port {record.get('port')})"
+            f"stopped a Prefect server left running by an interrupted fitaudit command (pid {pid}, port "
+            f"{record.get('port')})"
         )
     return actions

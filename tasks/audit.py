@@ -120,7 +120,10 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
     except Exception as exc:  # contain anything (e.g. a user's nonlinear function) to this model
         where = traceback.extract_tb(exc.__traceback__)[-1] if exc.__traceback__ else None
         at = f" (at {where.filename.rsplit('/', 1)[-1]}:{where.lineno})" if where else ""
-        msg = f"model {item.model_id!r}: the audit failed with {type(exc).__name__}: {exc}{at}. Check the model spec and the series; the other models are unaffected."
+        msg = (
+            f"model {item.model_id!r}: the audit failed with {type(exc).__name__}: {exc}{at}. Check the model spec "
+            "and the series; the other models are unaffected."
+        )
         return Outcome(
             verdict="error", reasons=(msg,), production=prod_meta, timings={"total_s": time.perf_counter() - t0}, **base
         )

@@ -160,7 +160,9 @@ def _production(
             version = snapshot.versions.get(entry.id)
     except (ParameterStoreError, OSError, ValueError) as exc:
         return {
-            "error": f"model {entry.id!r}: its parameter store cannot be read ({exc}); run `fitaudit verify` on the archive."
+            "error": (
+                f"model {entry.id!r}: its parameter store cannot be read ({exc}); run `fitaudit verify` on the archive."
+            )
         }
     if version is None:
         return None
@@ -377,7 +379,8 @@ def stage_inputs(
                     if os_errors == "raise":
                         raise
                     source_errors[source_name] = (
-                        f"reading source {source_name!r} failed after retries ({type(exc).__name__}: {exc}); check that its storage is reachable"
+                        f"reading source {source_name!r} failed after retries ({type(exc).__name__}: {exc}); check "
+                        "that its storage is reachable"
                     )
                 data = data or {}
             metas, arrays = [], {}
@@ -521,7 +524,10 @@ def _model_input(
             {
                 "kind": "no-data",
                 "severity": "insufficient",
-                "message": f"model {entry.id!r}: no observations of series {entry.series!r} in source {entry.source!r} on or before the as-of date.",
+                "message": (
+                    f"model {entry.id!r}: no observations of series {entry.series!r} in source "
+                    f"{entry.source!r} on or before the as-of date."
+                ),
             }
         )
     meta = {
@@ -580,8 +586,8 @@ def _missing_forecasts(entry: ForecastEntry, t: np.ndarray, arrays: dict, stated
                     "message": (
                         f"model {entry.id!r}: source {entry.source!r}, series {entry.series!r}: column {column!r} (the "
                         f"{what}) has no forecast for {bad.size} of the {w} observations of the audit window, first "
-                        f"{first}; every audited observation needs the forecast issued before it. Fix: fill the forecast "
-                        "store for those times, or shorten the audit window to the stretch that has forecasts."
+                        f"{first}; every audited observation needs the forecast issued before it. Fix: fill the "
+                        "forecast store for those times, or shorten the audit window to the stretch that has forecasts."
                     ),
                 }
             )

@@ -301,7 +301,10 @@ def owner_automation(owner: str, block_document_id, *, name: str | None = None, 
         actions=[
             SendNotification(
                 block_document_id=block_document_id,
-                subject="fitaudit: {{ event.payload.model_id }} needs {{ event.payload.verdict }} (as of {{ event.payload.as_of }})",
+                subject=(
+                    "fitaudit: {{ event.payload.model_id }} needs {{ event.payload.verdict }} (as of {{ "
+                    "event.payload.as_of }})"
+                ),
                 body=body,
             )
         ],

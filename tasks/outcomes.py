@@ -187,7 +187,8 @@ def restore_outcomes(final: Sequence[Outcome], spilled: str) -> list[Outcome]:
     full = pickle.loads(pathlib.Path(spilled).read_bytes())
     if [o.model_id for o in full] != [o.model_id for o in final]:
         raise FitauditError(
-            f"{spilled}: the kept outcomes do not match the batch's models; the run's work folder was changed during the run."
+            f"{spilled}: the kept outcomes do not match the batch's models; the run's work folder was changed during "
+            "the run."
         )
     out = []
     for whole, done in zip(full, final):

@@ -588,7 +588,10 @@ def read_params_file(path: str | os.PathLike) -> ParamsFile:
             where = ".".join(str(p) for p in err["loc"]) or "(file)"
             message = err["msg"].removeprefix("Value error, ")
             if err["type"] == "extra_forbidden":
-                message = f"unknown field; the fields are {', '.join(ParamsFile.model_fields)} (noise: law and shape, df or size)"
+                message = (
+                    f"unknown field; the fields are {', '.join(ParamsFile.model_fields)} (noise: law and shape, "
+                    "df or size)"
+                )
             lines.append(f"{path}: {where}: {message}")
         raise ParamsFileError("\n".join(lines)) from None
     except ValueError as exc:
@@ -633,12 +636,13 @@ def check_imported_params(entry: Any, parsed: ParamsFile, source: str = "the par
         )
     if parsed.model_id is not None and parsed.model_id != model_id:
         raise ParamsFileError(
-            f"{source} is for model {parsed.model_id!r}, not {model_id!r}; import it for its own model or correct model_id"
+            f"{source} is for model {parsed.model_id!r}, not {model_id!r}; import it for its own model or correct "
+            "model_id"
         )
     if parsed.family is not None and parsed.family != spec.get("family"):
         raise ParamsFileError(
-            f"{source} holds {parsed.family!r} parameters but model {model_id!r} is registered as {spec.get('family')!r}; "
-            "import parameters of the registered family, or change the registry entry first"
+            f"{source} holds {parsed.family!r} parameters but model {model_id!r} is registered as "
+            f"{spec.get('family')!r}; import parameters of the registered family, or change the registry entry first"
         )
     model = as_model(spec)
     exog_names = list(getattr(entry, "exogenous", ()) or ())
@@ -658,14 +662,15 @@ def check_imported_params(entry: Any, parsed: ParamsFile, source: str = "the par
     params = {name: float(parsed.params[name]) for name in expected}
     if not params["sigma2"] > 0:
         raise ParamsFileError(
-            f"model {model_id!r}: sigma2 = {params['sigma2']:g} in {source} is not a positive variance; give the innovation variance"
+            f"model {model_id!r}: sigma2 = {params['sigma2']:g} in {source} is not a positive variance; give the "
+            "innovation variance"
         )
     noise = _entry_noise(entry)
     law_name = noise.get("law")
     if parsed.noise.law is not None and parsed.noise.law != law_name:
         raise ParamsFileError(
-            f"model {model_id!r} is registered with the {law_name!r} noise law but {source} states {parsed.noise.law!r}; "
-            "import parameters for the registered law, or change the registry entry first"
+            f"model {model_id!r} is registered with the {law_name!r} noise law but {source} states "
+            f"{parsed.noise.law!r}; import parameters for the registered law, or change the registry entry first"
         )
     shape = parsed.noise.fixed_shape()
     try:
@@ -673,8 +678,8 @@ def check_imported_params(entry: Any, parsed: ParamsFile, source: str = "the par
         if law.has_shape:
             if law.shape is not None and shape is not None and not math.isclose(shape, law.shape, rel_tol=1e-12):
                 raise ParamsFileError(
-                    f"model {model_id!r}: the registry fixes the {law_name} shape at {law.shape:g} but {source} gives {shape:g}; "
-                    "drop the shape from the file or change the registry entry"
+                    f"model {model_id!r}: the registry fixes the {law_name} shape at {law.shape:g} but {source} gives "
+                    f"{shape:g}; drop the shape from the file or change the registry entry"
                 )
             shape = law.shape if law.shape is not None else shape
             if shape is None:

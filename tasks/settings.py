@@ -30,20 +30,26 @@ class FitauditSettings(PrefectBaseSettings):
     processes: int = Field(
         default=0,
         ge=0,
-        description="Local worker processes for the batches under the default task runner; 0 uses every CPU, 1 computes in the task threads.",
+        description=(
+            "Local worker processes for the batches under the default task runner; 0 uses every CPU, 1 "
+            "computes in the task threads."
+        ),
     )
     model_time_limit_s: float = Field(
         default=900.0,
         ge=0,
-        description="Wall-clock limit per model audit, enforced in the local worker processes (an error verdict when reached); 0 disables.",
+        description=(
+            "Wall-clock limit per model audit, enforced in the local worker processes (an error verdict when "
+            "reached); 0 disables."
+        ),
     )
     operator: str = Field(default="", description="Operator or service account recorded in each manifest.")
     report_base_url: str = Field(
         default="",
         pattern=r"^(https?://\S+)?$",
-        description="Where the archive is served or synced (http or https, e.g. https://audit.example.org/fitaudit/): report "
-        "links in Prefect's artifacts, events and notifications become <base>/runs/<YYYY>/<run-id>/index.html instead of file:// "
-        "links, which do not open from Prefect's UI. Empty: file:// links.",
+        description="Where the archive is served or synced (http or https, e.g. https://audit.example.org/fitaudit/): "
+        "report links in Prefect's artifacts, events and notifications become <base>/runs/<YYYY>/<run-id>/index.html "
+        "instead of file:// links, which do not open from Prefect's UI. Empty: file:// links.",
     )
 
 

@@ -85,7 +85,8 @@ def uri_template_problem(uri: str) -> str | None:
     for name, spec, conv in fields:
         if name != "as_of" or conv is not None:
             return (
-                f"the uri template may hold only {{as_of}} or {{as_of:<strftime codes>}}, got {{{name}{'!' + conv if conv else ''}}}; "
+                f"the uri template may hold only {{as_of}} or {{as_of:<strftime codes>}}, got "
+                f"{{{name}{'!' + conv if conv else ''}}}; "
                 "e.g. exports/{as_of:%Y-%m-%d}/sales.parquet (a literal brace is written {{ or }})"
             )
         try:

@@ -447,8 +447,8 @@ class Policy(Block):
     ``persistence`` escalates repeated ``refit`` verdicts; ``refit_policy`` says whether refitted
     parameters are promoted automatically or need approval; ``days_to_act`` gives each tier's
     deadline for acting on an exception; ``flow_timeout_minutes`` bounds a run's time;
-    ``notify`` names the notification block of each owner who wants their exceptions sent; ``partitions`` chooses the cell
-    partitions of the distribution gate (null: the audit's default).
+    ``notify`` names the notification block of each owner who wants their exceptions sent;
+    ``partitions`` chooses the cell partitions of the distribution gate (null: the audit's default).
     """
 
     shape_hint = "a mapping of thresholds"
@@ -566,9 +566,9 @@ class SourceEntry(Block):
 
     name: SkipJsonSchema[str] = ""
     uri: Annotated[Text, AfterValidator(_uri_template)] = Field(
-        description="A Parquet file, a folder of them, or a URI (s3://..., gs://...); relative to the registry's folder. "
-        "It may hold the run's as-of date, e.g. exports/{as_of:%Y-%m-%d}/sales.parquet (strftime codes; a literal "
-        "brace is doubled); the manifest records the resolved URI."
+        description="A Parquet file, a folder of them, or a URI (s3://..., gs://...); relative to the registry's "
+        "folder. It may hold the run's as-of date, e.g. exports/{as_of:%Y-%m-%d}/sales.parquet (strftime codes; a "
+        "literal brace is doubled); the manifest records the resolved URI."
     )
     key: Text = Field(description="The series key column.")
     time: Text = Field(description="The timestamp column.")
@@ -696,7 +696,10 @@ class SourceEntry(Block):
         return self.model_copy(update={"holidays": tuple(sorted(set(self.holidays) | set(days)))})
 
     def to_dict(self) -> dict:
-        """Plain-Python view (``forecasts``, ``holidays``, ``filter`` and ``max_staleness`` only when the source declares them)."""
+        """Plain-Python view.
+
+        ``forecasts``, ``holidays``, ``filter`` and ``max_staleness`` appear only when the source declares them.
+        """
         out = super().to_dict()
         if not self.forecasts:
             del out["forecasts"]
