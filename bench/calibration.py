@@ -718,25 +718,26 @@ def render(result: dict) -> str:
         "",
         f"- Command: `{result['command']}`"
         + (" (the CI-sized quick mode: too few series for firm conclusions)" if result["quick"] else ""),
-        f"- Seed {SEED} (series); null tables seeded by the audit's own rule, with table seeds 0..{plan.table_seeds - 1} "
-        f"(series i uses `AuditSettings(seed=i mod {plan.table_seeds})`).",
-        f"- Versions: Python {v['python']}, numpy {v['numpy']}, scipy {v['scipy']}, fitaudit {v['fitaudit']}, commit {v['commit']}, "
-        f"core/ source digest {v['core']} (SHA-256 of core/**/*.py); "
+        f"- Seed {SEED} (series); null tables seeded by the audit's own rule, with table seeds "
+        f"0..{plan.table_seeds - 1} (series i uses `AuditSettings(seed=i mod {plan.table_seeds})`).",
+        f"- Versions: Python {v['python']}, numpy {v['numpy']}, scipy {v['scipy']}, fitaudit {v['fitaudit']}, commit "
+        f"{v['commit']}, core/ source digest {v['core']} (SHA-256 of core/**/*.py); "
         f"{v['cpus']} CPUs, {result['workers']} worker process(es).",
         f"- Runtime: size study {result['seconds']['size']:.0f} s, power study {result['seconds']['power']:.0f} s, "
         f"total {result['seconds']['total']:.0f} s.",
         f"- Audit settings: the defaults (`AuditSettings()`): distribution gate = standardised maximum of the members "
         f"{', '.join(f'({a:.4g}, {b:g})' for a, b in BASE.gate_members)} (alpha, beta) on the partitions "
-        f"{', '.join(BASE.partitions)}; the report's map = grid alpha -1..3 step 0.25 x beta 0..1 step 0.125 (153 members) "
-        f"on the equiprobable cells; geometric scaling, R = {BASE.replicates} simulated null data sets per table, audit "
-        f"window {WINDOW}, Ljung-Box lags by docs/method.md §9.2; change location off (it does not affect the p-values).",
+        f"{', '.join(BASE.partitions)}; the report's map = grid alpha -1..3 step 0.25 x beta 0..1 step 0.125 (153 "
+        f"members) on the equiprobable cells; geometric scaling, R = {BASE.replicates} simulated null data sets per "
+        f"table, audit window {WINDOW}, Ljung-Box lags by docs/method.md §9.2; change location off (it does not affect "
+        "the p-values).",
         f"- Series: {plan.series} per setting for `simulated` and `asymptotic` (the same series for both); "
-        f"`bootstrap`: the first {plan.bootstrap_series} of them, each with {plan.bootstrap_replicates} bootstrap refits "
-        f"(`bootstrap_replicates={plan.bootstrap_replicates}`); power: {plan.power_series} series per scenario.",
-        "- The calibrated summary is the audit's standardised maximum `r_max` = max over the gate's (partition, member) "
-        "pairs of T / c, c the pair's own simulated 95 % null point (`NullTable.gate_reference`); its gate p-value is "
-        "`p_distribution`. Every partition scores the same PIT values, and each null table scores the same simulated "
-        "samples on every partition, so the maximum is calibrated jointly.",
+        f"`bootstrap`: the first {plan.bootstrap_series} of them, each with {plan.bootstrap_replicates} bootstrap "
+        f"refits (`bootstrap_replicates={plan.bootstrap_replicates}`); power: {plan.power_series} series per scenario.",
+        "- The calibrated summary is the audit's standardised maximum `r_max` = max over the gate's (partition, "
+        "member) pairs of T / c, c the pair's own simulated 95 % null point (`NullTable.gate_reference`); its gate "
+        "p-value is `p_distribution`. Every partition scores the same PIT values, and each null table scores the same "
+        "simulated samples on every partition, so the maximum is calibrated jointly.",
         "",
         "Monte Carlo standard errors are given after ±. They are binomial; for `simulated` rows they also include the "
         f"spread between the {plan.table_seeds} null tables, 0.05·0.95/((R+2)K). Rates count the checks that ran; "
@@ -788,9 +789,9 @@ def render(result: dict) -> str:
     nulls = result["production_nulls"]
     out += [
         "",
-        f"LB gate = the Ljung-Box gate alone at its Bonferroni share (`p_independence <= {LEVEL / 2:g}`). The production "
-        "check has no model refit, so its `bootstrap` calibration uses the exact table of `simulated` (i.i.d. uniform PIT values); its "
-        "bootstrap columns repeat the simulated rule on the first series.",
+        f"LB gate = the Ljung-Box gate alone at its Bonferroni share (`p_independence <= {LEVEL / 2:g}`). The "
+        "production check has no model refit, so its `bootstrap` calibration uses the exact table of `simulated` "
+        "(i.i.d. uniform PIT values); its bootstrap columns repeat the simulated rule on the first series.",
         "",
         f"The production check's gates alone on their exact null ({plan.null_series} audit windows of {WINDOW} values; "
         "distribution gate: i.i.d. uniform PIT values scored on the gate's partitions against the "
@@ -967,15 +968,15 @@ def discussion(result: dict) -> list[str]:
     refit = ", ".join(f"{r['refit_gate']['rate']:.3f}" for _, r in asym)
     liberal = all(r[f]["rate"] > SIZE_GOAL[1] for _, r in asym for f in ("refit_gate", "production_gate"))
     lines.append(
-        f"- **Asymptotic calibration.** The production gate (each partition's largest member against chi-square(s - 1), "
-        f"Bonferroni over the partitions, on {WINDOW} errors) rejects at {prod} in the four settings, the refit gate (the "
-        f"same with each partition's Nikulin-Rao-Robson term) at {refit}. "
+        "- **Asymptotic calibration.** The production gate (each partition's largest member against chi-square(s - "
+        f"1), Bonferroni over the partitions, on {WINDOW} errors) rejects at {prod} in the four settings, the refit "
+        f"gate (the same with each partition's Nikulin-Rao-Robson term) at {refit}. "
         + (
             "Both are far above 5 %: every member is asymptotically chi-square(s - 1), but in finite samples the "
             "members' own 95 % points differ widely (for the production table, {:.2f} to {:.2f} times the "
             "chi-square(s - 1) point, the largest at alpha {:g}, beta {:g}), so the maximum over 153 members is "
-            "stochastically much larger than chi-square (docs/method.md §5.1 and §5.6). The asymptotic method is liberal "
-            "for the grid maximum at these sample sizes and should serve only as a fast screen.".format(
+            "stochastically much larger than chi-square (docs/method.md §5.1 and §5.6). The asymptotic method is "
+            "liberal for the grid maximum at these sample sizes and should serve only as a fast screen.".format(
                 *result["production_nulls"]["distribution"]["reference_spread"]
             )
             if liberal
@@ -992,8 +993,8 @@ def discussion(result: dict) -> list[str]:
             f"{r['refit_gate']['rate']:.3f} (refit) / {r['production_gate']['rate']:.3f} (production)" for r in sim
         )
         + " in the four settings. The refit table is exact for i.i.d. location-scale noise and relies on the "
-        "asymptotic negligibility of the estimated dynamic parameters for model residuals (docs/method.md §8.1-§8.2); the "
-        "production table is exact for frozen parameters."
+        "asymptotic negligibility of the estimated dynamic parameters for model residuals (docs/method.md §8.1-§8.2); "
+        "the production table is exact for frozen parameters."
     )
     nulls = result["production_nulls"]
     ties, strict = nulls["distribution"]["ties"], nulls["distribution"]["strict"]
@@ -1048,9 +1049,10 @@ def discussion(result: dict) -> list[str]:
     before = cand["means"][0]
     lines.append(
         f"- **Power.** Mean power over the {len(alt)} distributional alternatives: ours {means['ours']['rate']:.3f}, "
-        f"Pearson on the equiprobable cells {means['pearson']['rate']:.3f}, likelihood-ratio {means['likelihood-ratio']['rate']:.3f}, "
-        f"Jarque-Bera {means['jarque-bera']['rate']:.3f}, Anderson-Darling {means['anderson-darling']['rate']:.3f}; the gate "
-        f"before this change (every grid member on the equiprobable cells) reaches {before:.3f} on the same series. "
+        f"Pearson on the equiprobable cells {means['pearson']['rate']:.3f}, likelihood-ratio "
+        f"{means['likelihood-ratio']['rate']:.3f}, Jarque-Bera {means['jarque-bera']['rate']:.3f}, Anderson-Darling "
+        f"{means['anderson-darling']['rate']:.3f}; the gate before this change (every grid member on the equiprobable "
+        f"cells) reaches {before:.3f} on the same series. "
         + (
             "Ours is below Pearson's in "
             + ", ".join(f"{b['scenario']} by {b['pearson'] - b['ours']:.3f}" for b in g["below_pearson"])
@@ -1085,7 +1087,8 @@ def discussion(result: dict) -> list[str]:
             + (
                 "Anderson-Darling with the production parameters as given beats ours in "
                 + ", ".join(
-                    f"{_short(r['scenario'])} ({r['anderson-darling (given)']['rate']:.3f} against {r['ours']['rate']:.3f})"
+                    f"{_short(r['scenario'])} ({r['anderson-darling (given)']['rate']:.3f} against "
+                    f"{r['ours']['rate']:.3f})"
                     for r in ahead
                 )
                 + ": it compares every error with the stated law, while cells lose resolution in the body of the "
@@ -1111,8 +1114,9 @@ def discussion(result: dict) -> list[str]:
         r = shift[0]
         lines.append(
             f"- **Level shift.** Jarque-Bera ({r['jarque-bera']['rate']:.3f}) and Anderson-Darling "
-            f"({r['anderson-darling']['rate']:.3f}) estimate the mean and scale from the errors themselves and are blind "
-            "to a shift of the error mean; the cell statistics use the production variance and zero mean and see it."
+            f"({r['anderson-darling']['rate']:.3f}) estimate the mean and scale from the errors themselves and are "
+            "blind to a shift of the error mean; the cell statistics use the production variance and zero mean and see "
+            "it."
         )
     dep = [r for r in power_rows if r["departure"] == "dependence"]
     if dep:
@@ -1193,7 +1197,10 @@ if __name__ == "__main__":
         type=int,
         default=0,
         metavar="N",
-        help="only the power study with N series per scenario on a separate seed: prints the candidate gates' mean powers",
+        help=(
+            "only the power study with N series per scenario on a separate seed: prints the candidate gates' mean "
+            "powers"
+        ),
     )
     parser.add_argument(
         "--out",

@@ -211,9 +211,9 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
         {
             "benchmark": "Fleet throughput",
             "size": f"{n} series x 730 days ({verdicts})",
-            "measured": f"fitaudit {ours_rate:.2f} series/s ({ours_s:.1f} s incl. {ours['server_start_s']:.1f} s server start); "
-            f"peer {peer['series_per_second']:.3f} series/s ({peer['seconds_per_series']:.2f} s/series: {fam}; "
-            f"{peer['subset']} random series, extrapolated)",
+            "measured": f"fitaudit {ours_rate:.2f} series/s ({ours_s:.1f} s incl. {ours['server_start_s']:.1f} s "
+            f"server start); peer {peer['series_per_second']:.3f} series/s ({peer['seconds_per_series']:.2f} s/series: "
+            f"{fam}; {peer['subset']} random series, extrapolated)",
             "ratio": ratio,
             "ratio_text": f"{ratio:.1f}x",
             "goal": f">= {GOAL_RATIO:.0f}x the peer's series/s",
@@ -223,8 +223,8 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
         {
             "benchmark": "Orchestration share",
             "size": f"the same {n}-series flow run",
-            "measured": f"{ours['orchestration_s']:.1f} s of {ours['flow_s']:.1f} s flow wall time outside fitaudit's work functions "
-            f"(server start-up {ours['server_start_s']:.1f} s not included)",
+            "measured": f"{ours['orchestration_s']:.1f} s of {ours['flow_s']:.1f} s flow wall time outside fitaudit's "
+            f"work functions (server start-up {ours['server_start_s']:.1f} s not included)",
             "ratio": share,
             "ratio_text": f"{100 * share:.1f} %",
             "goal": f"<= {100 * GOAL_SHARE:.0f} %",

@@ -127,7 +127,8 @@ def simulate(setting: Setting, index: int) -> tuple[np.ndarray, dict]:
         y = level + sd * rng.standard_normal(n)
         quantiles = {lv: level + bias * sd + scale_factor * sd * stats.norm.ppf(lv) for lv in LEVELS}
         return y, {"quantiles": quantiles, "period": 7}
-    # 3-step: y_t = 100 + x_t, x_t = AR x_(t-1) + e_t; forecast from t-3: AR^3 x_(t-3), error sd sigma sqrt(1 + AR^2 + AR^4)
+    # 3-step: y_t = 100 + x_t, x_t = AR x_(t-1) + e_t; forecast from t-3: AR^3 x_(t-3),
+    # error sd sigma sqrt(1 + AR^2 + AR^4)
     sigma = 3.0
     e = sigma * rng.standard_normal(n + 200)
     x = np.zeros(n + 200)
@@ -225,8 +226,8 @@ def run(quick: bool = False, workers: int = 1) -> list[str]:
         "",
         "`audit_forecasts` scores the PIT values of actuals under their stated predictive laws "
         "(`bench/forecast_study.py`" + (", quick run" if quick else "") + f"; {replicates}-replicate null tables over "
-        f"{TABLE_SEEDS} table seeds, {workers} worker process(es), {elapsed:.0f} s). Rates at nominal 5 %: each gate at "
-        "2.5 % (its Bonferroni half), the whole check at 5 %, with Wilson 95 % intervals.",
+        f"{TABLE_SEEDS} table seeds, {workers} worker process(es), {elapsed:.0f} s). Rates at nominal 5 %: each gate "
+        "at 2.5 % (its Bonferroni half), the whole check at 5 %, with Wilson 95 % intervals.",
         "",
         "### Size: correct predictive laws",
         "",
@@ -238,7 +239,8 @@ def run(quick: bool = False, workers: int = 1) -> list[str]:
         n_ok = _rate(recs, "whole")[3]
         if n_ok < len(recs):
             failures.append(
-                f"{s.name}: {len(recs) - n_ok} of {len(recs)} audits did not run ({next(r['message'] for r in recs if not r['ok'])})"
+                f"{s.name}: {len(recs) - n_ok} of {len(recs)} audits did not run "
+                f"({next(r['message'] for r in recs if not r['ok'])})"
             )
         chi2 = _fmt(_rate(recs, "independence_chi2")) if s.statement == "3-step" else "as simulated"
         rows.append(

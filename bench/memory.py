@@ -123,7 +123,10 @@ def _row(runs: list[dict], total: int) -> dict:
     return {
         "benchmark": "Peak memory",
         "size": f"{total:,}-series extract; runs of " + ", ".join(f"{r['models']:,}" for r in runs) + " models",
-        "measured": f"{text}; growth {growth / mib:.1f} MiB per 1,000 models (results.json: {results_per_1000 / mib:.1f} MiB per 1,000)",
+        "measured": (
+            f"{text}; growth {growth / mib:.1f} MiB per 1,000 models (results.json: "
+            f"{results_per_1000 / mib:.1f} MiB per 1,000)"
+        ),
         "ratio": peak / GOAL_BYTES,
         "ratio_text": f"{peak / mib:,.0f} MiB",
         "goal": "<= 1.5 GB at 10,000 models; growth no more than the results",

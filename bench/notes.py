@@ -1,6 +1,7 @@
 """The explanatory part of ``docs/performance.md`` (written below the measured tables)."""
 
-NOTES = """## How each number is measured
+NOTES = (
+    """## How each number is measured
 
 **Fleet throughput.** `bench/fleet_data.py` generates the fleet: daily series of 730 days ending
 2026-11-30, 80 % seasonal ARIMA (1,0,1)(0,1,1)7 with the region's daily temperature as exogenous
@@ -110,17 +111,42 @@ the implementation it replaced.
 
 | where | change | measured gain |
 | --- | --- | --- |
-| `flows/audit.py` | large task inputs (registry, histories, outcomes, results, manifest) passed with `prefect.utilities.annotations.quote`: Prefect walked every element of them, twice per task call, looking for futures | 12.6 s of a 78 s 200-model run was spent there (py-spy); now none |
-| `core/change.py` | change location: the 499 permutation maxima by one stable sort and a cumulative sum per permutation (O(n)) instead of one-hot cumulative counts (O(n s)); the observed profile still uses `split_statistics` | 3.07 s to 0.036 s per located change at n = 720 (86x); change location had been 13.7 s of a 20.5 s 200-model audit |
-| `tasks/workers.py`, `tasks/audit.py`, `tasks/publish.py`, `flows/audit.py` | under the default thread runner the batch work (audit, candidate search, records and pages) runs in local worker processes, one per CPU (`spawn`, single-threaded BLAS, the caller's script not re-imported); the thread pool has one thread per CPU; runs below 100 models and other runners compute in place | 1,000-series flow, runs alternated (processes=1, default, 1, default): flow 62.8, 50.5, 62.7, 40.5 s; records and pages 18.7, 8.7, 17.4, 8.8 s; candidate search 9.9, 5.6, 8.8, 5.7 s; audit stage 25.1, 26.0, 26.6, 16.4 s (numpy releases the GIL in its larger operations, so the threads already overlapped part of the audit) |
-| `tasks/report/charts.py`, templates | the charts' SVG written by a Python filter (`svg`) instead of a Jinja macro called per attribute | 39 ms to 8 ms per model page (200-model report) |
-| `core/results.py`, `tasks/_io.py` | `_plain` returns finite numeric arrays with `tolist()` and tests floats with `math`; `json_ready` checks the common leaves first | records 12 ms to 2.2 ms and canonical JSON 1.9 ms to 1.2 ms per model |
-| `tasks/audit.py`, `tasks/publish.py`, `tasks/results.py`, `tasks/archive/writer.py`, `flows/audit.py` | memory: batch tasks keep each model's full outcome on disk in the run's work folder and return a light one (verdict numbers only) for the fleet rules; records and pages are made per batch in the workers, written to the work folder and summarised by a light record; `results.json` is streamed from the pieces (`RunWriter.write_chunks`) and the run page rendered from the light records | the full document took 87.5 KB and the pages 100 KB per model in memory (tracemalloc), about 1.9 GB at 10,000 models before; see the memory table |
-| `tasks/batches.py` | staging reads a source in filtered scans of at most 1,000 series (whole batches), not all at once | a scan of 1,000 series raised the resident memory by about 90 MB (mostly pyarrow's buffers) |
-| `tasks/batches.py` | the number of batches is a multiple of the workers and at least 4 per worker | 1,000 models on 2 workers: 8 batches of 125 instead of 5 of 200 (3 rounds on one worker) |
-| `tasks/audit.py` | candidate searches grouped by the null tables they build (residual count, noise law), one group per task | each table of the other noise laws is simulated once per run instead of once per worker process |
-| `flows/audit.py` | `m.id in set(models)` built the set once per model | quadratic in the number of models given with `models=` |
-
+"""
+    "| `flows/audit.py` | large task inputs (registry, histories, outcomes, results, manifest) passed with "
+    "`prefect.utilities.annotations.quote`: Prefect walked every element of them, twice per task call, looking for "
+    "futures | 12.6 s of a 78 s 200-model run was spent there (py-spy); now none |\n"
+    "| `core/change.py` | change location: the 499 permutation maxima by one stable sort and a cumulative sum per "
+    "permutation (O(n)) instead of one-hot cumulative counts (O(n s)); the observed profile still uses "
+    "`split_statistics` | 3.07 s to 0.036 s per located change at n = 720 (86x); change location had been 13.7 s of a "
+    "20.5 s 200-model audit |\n"
+    "| `tasks/workers.py`, `tasks/audit.py`, `tasks/publish.py`, `flows/audit.py` | under the default thread runner "
+    "the batch work (audit, candidate search, records and pages) runs in local worker processes, one per CPU (`spawn`, "
+    "single-threaded BLAS, the caller's script not re-imported); the thread pool has one thread per CPU; runs below "
+    "100 models and other runners compute in place | 1,000-series flow, runs alternated (processes=1, default, 1, "
+    "default): flow 62.8, 50.5, 62.7, 40.5 s; records and pages 18.7, 8.7, 17.4, 8.8 s; candidate search 9.9, 5.6, "
+    "8.8, 5.7 s; audit stage 25.1, 26.0, 26.6, 16.4 s (numpy releases the GIL in its larger operations, so the threads "
+    "already overlapped part of the audit) |\n"
+    "| `tasks/report/charts.py`, templates | the charts' SVG written by a Python filter (`svg`) instead of a Jinja "
+    "macro called per attribute | 39 ms to 8 ms per model page (200-model report) |\n"
+    "| `core/results.py`, `tasks/_io.py` | `_plain` returns finite numeric arrays with `tolist()` and tests floats "
+    "with `math`; `json_ready` checks the common leaves first | records 12 ms to 2.2 ms and canonical JSON 1.9 ms to "
+    "1.2 ms per model |\n"
+    "| `tasks/audit.py`, `tasks/publish.py`, `tasks/results.py`, `tasks/archive/writer.py`, `flows/audit.py` | memory: "
+    "batch tasks keep each model's full outcome on disk in the run's work folder and return a light one (verdict "
+    "numbers only) for the fleet rules; records and pages are made per batch in the workers, written to the work "
+    "folder and summarised by a light record; `results.json` is streamed from the pieces (`RunWriter.write_chunks`) "
+    "and the run page rendered from the light records | the full document took 87.5 KB and the pages 100 KB per model "
+    "in memory (tracemalloc), about 1.9 GB at 10,000 models before; see the memory table |\n"
+    "| `tasks/batches.py` | staging reads a source in filtered scans of at most 1,000 series (whole batches), not all "
+    "at once | a scan of 1,000 series raised the resident memory by about 90 MB (mostly pyarrow's buffers) |\n"
+    "| `tasks/batches.py` | the number of batches is a multiple of the workers and at least 4 per worker | 1,000 "
+    "models on 2 workers: 8 batches of 125 instead of 5 of 200 (3 rounds on one worker) |\n"
+    "| `tasks/audit.py` | candidate searches grouped by the null tables they build (residual count, noise law), one "
+    "group per task | each table of the other noise laws is simulated once per run instead of once per worker "
+    "process |\n"
+    "| `flows/audit.py` | `m.id in set(models)` built the set once per model | quadratic in the number of models given "
+    "with `models=` |\n"
+    """
 ## Reading the goals
 
 Numbers quoted here come from the runs of this page. During the memory runs another job (the
@@ -149,8 +175,10 @@ statsmodels (the shortfall column is 0 wherever measured so far; on UKDriverDeat
 ETSModel stops about 9 log-likelihood units lower). The seasonal ARIMA specs with a long
 differenced series, the weekly model with a seasonal AR term at lag 52 (statsmodels' state has 53
 dimensions) and the airline models pass with margin (15x to 26x in quick runs); ARMA(1,1),
-ARMA(2,2) and AR(2) with regressors lie between 7x (ARMA(2,2) on a loaded machine) and 24x. Two kinds of spec miss. AR(1)(0,1,1)7 on 730 daily
-values (about 7x): statsmodels' Kalman filter is fast for this small state (about 30 ms), while
+"""
+    "ARMA(2,2) and AR(2) with regressors lie between 7x (ARMA(2,2) on a loaded machine) and 24x. Two kinds of spec "
+    "miss. AR(1)(0,1,1)7 on 730 daily\n"
+    """values (about 7x): statsmodels' Kalman filter is fast for this small state (about 30 ms), while
 fitaudit's fit is about 17 evaluations of the exact likelihood at about 0.25 ms each (two
 `lfilter` passes over the series, a Gram product and a Cholesky factorisation, 0.14 ms; the initial
 state covariance, 0.04 ms), spread over numpy calls that each cost a few microseconds: no single
@@ -169,8 +197,10 @@ audit stage 1.49x (1.73x and 1.40x in an earlier run; about 1x when another job 
 What does not scale: staging, calibration, the fleet rules, publication, events and the
 cluster's start run once (about 10 s together), and the candidate search (15 s there) is
 dominated by one student-t table per respecify model, which the searches now spread evenly over
-the workers, with the tables they share built once beforehand. On an idle machine with more cores than workers the batch stages scale with
-the workers; the fixed part is what keeps the flow below 1.7x on 1,000 series.
+"""
+    "the workers, with the tables they share built once beforehand. On an idle machine with more cores than workers "
+    "the batch stages scale with\n"
+    """the workers; the fixed part is what keeps the flow below 1.7x on 1,000 series.
 
 **What limits scale-out, and larger clusters (model on paper).** On two cores the second worker
 does not get a core of its own: the flow process (staging, tables, fleet rules, publication), the
@@ -196,3 +226,4 @@ each: every worker imports Prefect, pyarrow and Jinja2 through the task modules,
 batch). Moving the batches' plain functions into modules that import none of these, or fewer
 worker processes, would bring the tree under 1.5 GB.
 """
+)

@@ -143,7 +143,8 @@ def main(quick: bool = False) -> list[dict]:
             "benchmark": "Scale-out (Dask)",
             "size": f"{n} series, LocalCluster 1 vs 2 worker processes, real Prefect server",
             "measured": f"1 worker {one['flow_s']:.1f} s, 2 workers {two['flow_s']:.1f} s (flow wall time); "
-            f"audit stage {one['flow_timings']['audit_s']:.1f} s vs {two['flow_timings']['audit_s']:.1f} s ({audit_speedup:.2f}x)",
+            f"audit stage {one['flow_timings']['audit_s']:.1f} s vs {two['flow_timings']['audit_s']:.1f} s "
+            f"({audit_speedup:.2f}x)",
             "ratio": speedup,
             "ratio_text": f"{speedup:.2f}x",
             "goal": f">= {GOAL}x",

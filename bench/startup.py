@@ -94,7 +94,9 @@ def main(quick: bool = False) -> list[dict]:
             {
                 "benchmark": "Command start-up",
                 "size": r["command"],
-                "measured": f"{r['seconds']:.2f} s wall; python -c pass {r['python_seconds']:.3f} s (median, alternating)",
+                "measured": (
+                    f"{r['seconds']:.2f} s wall; python -c pass {r['python_seconds']:.3f} s (median, alternating)"
+                ),
                 "ratio": r["ratio"],
                 "ratio_text": f"{r['ratio']:.1f}x Python's start-up",
                 "goal": f"< {GOAL_S} s",
@@ -111,5 +113,6 @@ if __name__ == "__main__":
     print(f"{'command':28s} {'wall s':>8s} {'python s':>9s} {'ratio':>7s}  goal < {GOAL_S} s")
     for r in measure(repeats=n):
         print(
-            f"{r['command']:28s} {r['seconds']:8.3f} {r['python_seconds']:9.3f} {r['ratio']:7.1f}  {'met' if r['met'] else 'missed'}"
+            f"{r['command']:28s} {r['seconds']:8.3f} {r['python_seconds']:9.3f} {r['ratio']:7.1f}  "
+            f"{'met' if r['met'] else 'missed'}"
         )
