@@ -875,7 +875,8 @@ FATAL = [
     (
         "no-approver",
         GOOD_HEAD.replace(", approved_by: 'T. Approver, tests'", "") + GOOD_SOURCES + GOOD_MODELS,
-        r"registry\.yaml:2: policy\.approved_by: missing; every threshold needs a written justification and an approver",
+        r"registry\.yaml:2: policy\.approved_by: missing; "
+        r"every threshold needs a written justification and an approver",
     ),
     (
         "models-not-a-list",

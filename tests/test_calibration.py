@@ -26,10 +26,8 @@ GRID = (DEFAULT_ALPHAS, DEFAULT_BETAS, "geometric", None)
 @pytest.mark.parametrize(
     "df,value",
     [
-        (
-            1,
-            3.84146,
-        ),  # source: Abramowitz & Stegun (1964) table 26.8, upper 5 % points (table number from memory; docs/method.md §13.3)
+        (1, 3.84146),  # source: Abramowitz & Stegun (1964) table 26.8, upper 5 % points
+        # (table number from memory; docs/method.md §13.3)
         (2, 5.99146),  # source: Abramowitz & Stegun (1964) table 26.8
         (3, 7.81473),  # source: Abramowitz & Stegun (1964) table 26.8
         (4, 9.48773),  # source: Abramowitz & Stegun (1964) table 26.8
@@ -49,7 +47,8 @@ def test_chi_square_lower_tail_point():
 
 
 def test_monte_carlo_p_value_and_critical_value_by_hand():
-    # four simulated standardised maxima 1, 2, 3, 4 (R = 4): p(2.5) = (1 + 2) / 5  # source: Davison & Hinkley (1997) eq. 4.11
+    # four simulated standardised maxima 1, 2, 3, 4 (R = 4): p(2.5) = (1 + 2) / 5
+    # source: Davison & Hinkley (1997) eq. 4.11
     table = NullTable(("hand",), np.ones((1, 1)), np.array([1.0, 2.0, 3.0, 4.0]))
     assert table.p_value(2.5) == pytest.approx(3 / 5)
     assert table.p_value(4.0) == pytest.approx(2 / 5)

@@ -19,7 +19,8 @@ from fitaudit.core.exceptions import InsufficientDataError
         (500, 0, 24),
         (1000, 0, 32),
         (5000, 0, 60),
-        # common practice: at least k + 3 cells and at least five expected counts per cell (Cochran 1952; docs/method.md §6.3)
+        # common practice: at least k + 3 cells and at least five expected counts per cell
+        # (Cochran 1952; docs/method.md §6.3)
         (28, 0, 5),
         (20, 0, 4),
         (35, 3, 7),

@@ -90,7 +90,8 @@ def test_the_example_registry_without_its_data_is_not_valid_when_deep(capsys):
         ),
         (
             "    spec: {family: arima, order: [1, 0, 1], seasonal: [0, 1, 1, 7], trend: n}\n    noise: normal\n",
-            "    spec: {family: nonlinear-ar, function: 'fitaudit_no_such_pkg.m:f', lags: [1], start: {a: 0.5, b: 0.1}}\n    noise: normal\n",
+            "    spec: {family: nonlinear-ar, function: 'fitaudit_no_such_pkg.m:f', lags: [1], start: {a: 0.5, b: "
+            "0.1}}\n    noise: normal\n",
             "models[0].spec.function",
             r"cannot import module 'fitaudit_no_such_pkg.m'",
         ),

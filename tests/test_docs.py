@@ -83,7 +83,8 @@ def bare_doc_problems(text: str) -> list[tuple[int, str]]:
             out.append(
                 (
                     m.start(),
-                    f"{m.group(0)!r} is not a document of this repository (cite docs/method.md or docs/architecture.md)",
+                    f"{m.group(0)!r} is not a document of this repository "
+                    "(cite docs/method.md or docs/architecture.md)",
                 )
             )
     return out

@@ -216,7 +216,8 @@ ENTRY_CASES = [
     ),
     (
         "two-statements",
-        '    forecasts: {mean: fc_mean, scale: fc_sd, quantiles: {"0.05": q05, "0.95": q95}}\n    windows: {audit: 56}\n',
+        '    forecasts: {mean: fc_mean, scale: fc_sd, quantiles: {"0.05": q05, "0.95": q95}}\n    windows: {audit: '
+        "56}\n",
         "forecasts:",
         "models[1].forecasts.mean",
         r"state each predictive distribution one way",
@@ -293,7 +294,8 @@ ENTRY_CASES = [
     ),
     (
         "spec-too",
-        "    forecasts: {mean: fc_mean, scale: 2}\n    spec: {family: arima, order: [1, 0, 0]}\n    windows: {audit: 56}\n",
+        "    forecasts: {mean: fc_mean, scale: 2}\n    spec: {family: arima, order: [1, 0, 0]}\n    windows: {audit: "
+        "56}\n",
         "spec:",
         "models[1].spec",
         r"a forecast entry has no 'spec': fitaudit audits the forecasts its source states and fits nothing",
@@ -465,7 +467,8 @@ def run(tmp_path_factory):
     (root / "data").mkdir()
     data = _extract(root / "data" / "supplier.parquet")
     bad = "".join(
-        f"  - {{id: {mid}, owner: o, tier: 3, source: supplier, series: {series}, forecasts: {stated}, windows: {{audit: 56}}}}\n"
+        f"  - {{id: {mid}, owner: o, tier: 3, source: supplier, series: {series}, forecasts: {stated}, windows: "
+        f"{{audit: 56}}}}\n"
         for mid, (series, stated) in BAD_ENTRIES.items()
     )
     (root / FILE).write_text(VALID + bad)
@@ -590,19 +593,24 @@ def test_forecast_records_in_results_json_and_parquet(run):
         ),
         (
             "fq-cross",
-            r"model 'fq-cross' \(source 'supplier', series 'cross'\).*the stated quantiles cross at 1 observation\(s\).*the 0\.5 quantile .* is below the 0\.25 quantile .*correct the forecast store",
+            r"model 'fq-cross' \(source 'supplier', series 'cross'\).*the stated quantiles cross at 1 "
+            r"observation\(s\).*the 0\.5 quantile .* is below the 0\.25 quantile .*correct the forecast store",
         ),
         (
             "fm-negsd",
-            r"model 'fm-negsd' \(source 'supplier', series 'negsd'\).*the predictive scale must be positive, but 1 value\(s\) are not.*Correct the forecast store",
+            r"model 'fm-negsd' \(source 'supplier', series 'negsd'\).*the predictive scale must be positive, but 1 "
+            r"value\(s\) are not.*Correct the forecast store",
         ),
         (
             "fq-late",
-            r"model 'fq-late' \(source 'supplier', series 'late'\), column 'issued_at': 1 forecast\(s\) were issued at or after the observation they predict, first the forecast for 2026-11-25T00:00:00 issued at 2026-11-25T02:00:00",
+            r"model 'fq-late' \(source 'supplier', series 'late'\), column 'issued_at': 1 forecast\(s\) were issued at "
+            r"or after the observation they predict, first the forecast for 2026-11-25T00:00:00 issued at "
+            r"2026-11-25T02:00:00",
         ),
         (
             "fq-gap",
-            r"model 'fq-gap': source 'supplier', series 'gap': column 'q95' \(the quantile 0\.95\) has no forecast for 1 of the 56 observations of the audit window, first 2026-11-20T00:00:00.*Fix: ",
+            r"model 'fq-gap': source 'supplier', series 'gap': column 'q95' \(the quantile 0\.95\) has no forecast for "
+            r"1 of the 56 observations of the audit window, first 2026-11-20T00:00:00.*Fix: ",
         ),
     ],
 )
@@ -709,7 +717,11 @@ def test_refits_refuse_forecast_entries(run):
     reg = run["registry"]
     with pytest.raises(
         NotRefittableError,
-        match=r"'fq-good' is a forecast entry: fitaudit audits the forecasts its owner states and holds no model to refit.*the owner should re-estimate the model that issues them.*Nothing was refitted; refit the other models alone \('fit-good'\)",
+        match=(
+            r"'fq-good' is a forecast entry: fitaudit audits the forecasts its owner states and holds no model to "
+            r"refit.*the owner should re-estimate the model that issues them.*Nothing was refitted; refit the other "
+            r"models alone \('fit-good'\)"
+        ),
     ):
         refuse_forecast_entries(reg, ["fq-good", "fit-good"])
     refuse_forecast_entries(reg, ["fit-good"])  # fitted models go ahead

@@ -190,7 +190,8 @@ def test_crps_normal_closed_form_and_references():
     mu = np.array([0.0, 0.5, 1.0, 9.0])
     sd = np.array([1.0, 2.0, 0.7, 3.0])
     ours = crps_normal(y, mu, sd)
-    # source: Gneiting and Raftery (2007): CRPS(N(0, 1), 0) = 2 phi(0) - 1/sqrt(pi) = (sqrt 2 - 1) / sqrt(pi) = 0.2336950
+    # source: Gneiting and Raftery (2007):
+    # CRPS(N(0, 1), 0) = 2 phi(0) - 1/sqrt(pi) = (sqrt 2 - 1) / sqrt(pi) = 0.2336950
     assert ours[0] == pytest.approx((math.sqrt(2) - 1) / math.sqrt(math.pi), rel=1e-14)
     # source: properscoring.crps_gaussian and scoringrules.crps_normal
     np.testing.assert_allclose(ours, properscoring.crps_gaussian(y, mu=mu, sig=sd), rtol=1e-12)

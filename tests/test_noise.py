@@ -468,7 +468,8 @@ def test_randomized_pit_is_uniform_under_the_model(name):
     mean = rng.uniform(0.2, 6.0, size=5000)
     y = law.sample_counts(mean, rng, params)
     u = law.randomized_pit(y, mean, params, rng)
-    # source: Dunn and Smyth (1996), docs/method.md §6.2 (exactly U(0,1) under H0); scipy.stats.kstest, seeded, wide tolerance
+    # source: Dunn and Smyth (1996), docs/method.md §6.2 (exactly U(0,1) under H0);
+    # scipy.stats.kstest, seeded, wide tolerance
     assert stats.kstest(u, "uniform").pvalue > 1e-3
 
 

@@ -200,7 +200,8 @@ def test_a_failing_mean_function_is_contained_with_a_clear_message():
         ("no_such_module_fitaudit_test:f", "cannot import module 'no_such_module_fitaudit_test'"),
         (
             "nlar_functions:missing",
-            "has no attribute 'missing'.*public callables are: ar1_with_input, broken, expar1, linear_ar2, lstar1, never_returns, wrong_length\\.",
+            "has no attribute 'missing'.*public callables are: ar1_with_input, broken, expar1, linear_ar2, lstar1, "
+            "never_returns, wrong_length\\.",
         ),
         ("nlar_functions:NOT_A_FUNCTION", "is a int, not a function"),
     ],

@@ -32,26 +32,34 @@ from fitaudit.core.noise import get_law
 from fitaudit.core.vocabulary import VERDICTS
 
 #: The chart macro of templates/_charts.html.j2 before the ``svg`` filter replaced it.
-REFERENCE_SVG_MACRO = """{% macro svg(c) %}
-<svg class="chart {{ c.cls }}" role="img" aria-labelledby="{{ c.id }}-t {{ c.id }}-d" viewBox="0 0 {{ c.w|px }} {{ c.h|px }}" width="{{ c.w|px }}" height="{{ c.h|px }}">
-<title id="{{ c.id }}-t">{{ c.title }}</title>
-<desc id="{{ c.id }}-d">{{ c.desc }}</desc>
-{% for l in c.grid %}<line x1="{{ l.x1|px }}" y1="{{ l.y1|px }}" x2="{{ l.x2|px }}" y2="{{ l.y2|px }}" class="{{ l.cls }}"/>{% endfor %}
-
-{% for r in c.rects %}<rect x="{{ r.x|px }}" y="{{ r.y|px }}" width="{{ r.w|px }}" height="{{ r.h|px }}" class="{{ r.cls }}"/>{% endfor %}
-
-{% for l in c.lines %}<line x1="{{ l.x1|px }}" y1="{{ l.y1|px }}" x2="{{ l.x2|px }}" y2="{{ l.y2|px }}" class="{{ l.cls }}"/>{% endfor %}
-
-{% for p in c.polylines %}<polyline points="{{ p.points }}" class="{{ p.cls }}"/>{% endfor %}
-
-{% for p in c.paths %}<path d="{{ p.d }}" class="{{ p.cls }}"/>{% endfor %}
-
-{% for o in c.circles %}<circle cx="{{ o.cx|px }}" cy="{{ o.cy|px }}" r="{{ o.r|px }}" class="{{ o.cls }}"/>{% endfor %}
-
-{% for t in c.texts %}<text x="{{ t.x|px }}" y="{{ t.y|px }}" text-anchor="{{ t.anchor }}" class="{{ t.cls }}">{{ t.text }}</text>{% endfor %}
-
-</svg>
-{% endmacro %}"""
+REFERENCE_SVG_MACRO = (
+    "{% macro svg(c) %}\n"
+    '<svg class="chart {{ c.cls }}" role="img" aria-labelledby="{{ c.id }}-t {{ c.id }}-d" '
+    'viewBox="0 0 {{ c.w|px }} {{ c.h|px }}" width="{{ c.w|px }}" height="{{ c.h|px }}">\n'
+    '<title id="{{ c.id }}-t">{{ c.title }}</title>\n'
+    '<desc id="{{ c.id }}-d">{{ c.desc }}</desc>\n'
+    '{% for l in c.grid %}<line x1="{{ l.x1|px }}" y1="{{ l.y1|px }}" x2="{{ l.x2|px }}" y2="{{ l.y2|px }}" '
+    'class="{{ l.cls }}"/>{% endfor %}\n'
+    "\n"
+    '{% for r in c.rects %}<rect x="{{ r.x|px }}" y="{{ r.y|px }}" width="{{ r.w|px }}" height="{{ r.h|px }}" '
+    'class="{{ r.cls }}"/>{% endfor %}\n'
+    "\n"
+    '{% for l in c.lines %}<line x1="{{ l.x1|px }}" y1="{{ l.y1|px }}" x2="{{ l.x2|px }}" y2="{{ l.y2|px }}" '
+    'class="{{ l.cls }}"/>{% endfor %}\n'
+    "\n"
+    '{% for p in c.polylines %}<polyline points="{{ p.points }}" class="{{ p.cls }}"/>{% endfor %}\n'
+    "\n"
+    '{% for p in c.paths %}<path d="{{ p.d }}" class="{{ p.cls }}"/>{% endfor %}\n'
+    "\n"
+    '{% for o in c.circles %}<circle cx="{{ o.cx|px }}" cy="{{ o.cy|px }}" r="{{ o.r|px }}" '
+    'class="{{ o.cls }}"/>{% endfor %}\n'
+    "\n"
+    '{% for t in c.texts %}<text x="{{ t.x|px }}" y="{{ t.y|px }}" text-anchor="{{ t.anchor }}" '
+    'class="{{ t.cls }}">{{ t.text }}</text>{% endfor %}\n'
+    "\n"
+    "</svg>\n"
+    "{% endmacro %}"
+)
 
 #: Demo models covering four sources, every verdict, smoothing, threshold AR, a rejected entry and
 #: forecasts made elsewhere (quantiles failing, a mean with a fixed scale passing).
@@ -106,7 +114,8 @@ def test_permutation_maxima_equal_the_g_test_maxima(rng):
         for k in range(trim, row.size - trim + 1):
             table = np.vstack([np.bincount(row[:k], minlength=s), np.bincount(row[k:], minlength=s)])
             keep = table.sum(axis=0) > 0
-            # source: scipy.stats.chi2_contingency with lambda_="log-likelihood" (G-test of homogeneity of the two sides)
+            # source: scipy.stats.chi2_contingency with lambda_="log-likelihood" (G-test of homogeneity of the two
+            # sides)
             g.append(stats.chi2_contingency(table[:, keep], correction=False, lambda_="log-likelihood").statistic)
         assert value == pytest.approx(max(g), rel=1e-10)
 

@@ -28,7 +28,8 @@ GATE = {
 def check(
     kind: str = "production", *, fails: bool = False, ratio: float = 0.5, acf_fails: bool = False, **extra
 ) -> CheckResult:
-    """A check that ran: passing (T / critical = ``ratio``) or failing its distribution gate at the floor of 499 simulations."""
+    """A check that ran: passing (T / critical = ``ratio``) or failing its distribution gate at the
+    floor of 499 simulations."""
     p_dist = 0.002 if fails else 0.4
     p_ind = 0.0004 if acf_fails else 0.6
     values = dict(
@@ -116,7 +117,8 @@ def test_respecify_leads_with_why_the_refit_fails():
     verdict, reasons = decide_verdict(failing_production(), check("refit", n=180, acf_fails=True), 0.05)
     assert verdict == "respecify"
     assert reasons[0].startswith(
-        "Respecify: re-estimated on the 56 observations from 2026-10-06 to 2026-11-30, the model still does not describe"
+        "Respecify: re-estimated on the 56 observations from 2026-10-06 to 2026-11-30, the model still does not "
+        "describe"
     )
     assert "consecutive residuals are correlated (largest autocorrelation 0.39)" in reasons[0]
     assert reasons[1].startswith("Refit check") and "Ljung-Box Q 33.7 on 11 lags" in reasons[1]
@@ -240,7 +242,8 @@ def test_pass_needs_no_action_and_unknown_verdicts_are_refused():
 
 def test_a_bias_is_said_only_when_clear_of_its_noise_and_the_larger_departure_leads():
     lead = decide_verdict(failing_production(), check("refit"), 0.05)[1][0]
-    # bias 0.5 sd over 48 errors with spread ratio 1.9: 0.5 * sqrt(48) / sqrt(1.9) = 2.5 standard errors (common practice: at least 2)
+    # bias 0.5 sd over 48 errors with spread ratio 1.9: 0.5 * sqrt(48) / sqrt(1.9) = 2.5 standard errors
+    # (common practice: at least 2)
     assert lead.index("the forecasts ran 6 % high") < lead.index(
         "1.8 times as variable"
     )  # 0.5 sd > sqrt(1.8) - 1 = 0.34

@@ -371,7 +371,8 @@ def test_pages_are_self_contained(pages, dom):
 
 def test_self_containment_check_can_fail(dom):
     bad = parse(
-        b'<!DOCTYPE html><html lang="en"><head><title>x</title></head><body><a href="https://example.org/">x</a></body></html>'
+        b'<!DOCTYPE html><html lang="en"><head><title>x</title></head><body><a '
+        b'href="https://example.org/">x</a></body></html>'
     )
     with pytest.raises(AssertionError, match="external link"):
         _check_self_contained("index.html", bad, "", dom)
@@ -1255,7 +1256,8 @@ def test_passes_with_a_caution_are_listed_to_watch(doc):
     watched = copy.deepcopy(doc)
     target = next(m for m in watched["models"] if m["verdict"] == "pass")
     target["reasons"].append(
-        "Caution, production check: it passes narrowly: its largest standardised statistic is 0.97 of its critical value (within 10 % of failing)."
+        "Caution, production check: it passes narrowly: its largest standardised statistic is 0.97 of its critical "
+        "value (within 10 % of failing)."
     )
     page = parse(render_run(watched, META)["index.html"])
     items = [li.text() for li in next(page.find_id("exceptions").iter("ul")).iter("li")]

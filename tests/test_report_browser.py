@@ -294,7 +294,8 @@ VISIBLE = """(() => {
     const el = document.querySelector(sel);
     if (!el) { out[sel] = null; continue; }
     const r = el.getBoundingClientRect(), s = getComputedStyle(el);
-    out[sel] = {w: r.width, h: r.height, top: r.top + window.scrollY, shown: s.visibility === 'visible' && s.display !== 'none' && parseFloat(s.opacity) > 0,
+    out[sel] = {w: r.width, h: r.height, top: r.top + window.scrollY,
+                shown: s.visibility === 'visible' && s.display !== 'none' && parseFloat(s.opacity) > 0,
                 text: (el.innerText ?? el.textContent).slice(0, 400)};
   }
   return out;
@@ -377,8 +378,10 @@ def test_model_page_shows_the_divergence_map(browser, run_folder, shots, record_
         """(() => {
       const svg = document.querySelector('#figure-map-production svg');
       const box = el => { const r = el.getBoundingClientRect(); return r.width > 0 && r.height > 0; };
-      return {cells: svg.querySelectorAll('rect').length, edge: Array.from(svg.querySelectorAll('path.edge')).filter(box).length,
-              members: Array.from(svg.querySelectorAll('circle.mem')).filter(box).length, max: Array.from(svg.querySelectorAll('path.mx')).filter(box).length,
+      return {cells: svg.querySelectorAll('rect').length,
+              edge: Array.from(svg.querySelectorAll('path.edge')).filter(box).length,
+              members: Array.from(svg.querySelectorAll('circle.mem')).filter(box).length,
+              max: Array.from(svg.querySelectorAll('path.mx')).filter(box).length,
               fill: getComputedStyle(svg.querySelector('rect')).fill};
     })()""",
     )
@@ -387,10 +390,14 @@ def test_model_page_shows_the_divergence_map(browser, run_folder, shots, record_
     classes = browser.evaluate(
         session,
         """(() => {
-      const hex = h => { const v = h.trim(); return `rgb(${parseInt(v.slice(1, 3), 16)}, ${parseInt(v.slice(3, 5), 16)}, ${parseInt(v.slice(5, 7), 16)})`; };
+      const hex = h => {
+        const v = h.trim();
+        return `rgb(${parseInt(v.slice(1, 3), 16)}, ${parseInt(v.slice(3, 5), 16)}, ${parseInt(v.slice(5, 7), 16)})`;
+      };
       const root = getComputedStyle(document.documentElement), out = {};
       for (const r of document.querySelectorAll('svg.heat rect')) {
-        const cls = r.getAttribute('class'), name = cls === 'hinf' ? '--heat-inf' : cls === 'hna' ? '--heat-na' : `--heat-${cls.slice(1)}`;
+        const cls = r.getAttribute('class'),
+          name = cls === 'hinf' ? '--heat-inf' : cls === 'hna' ? '--heat-na' : `--heat-${cls.slice(1)}`;
         out[cls] = [getComputedStyle(r).fill, hex(root.getPropertyValue(name))];
       }
       return out;
@@ -432,7 +439,8 @@ def test_run_page_prints_on_a4_without_hiding_data_tables(browser, run_folder, t
     browser.call("Emulation.setEmulatedMedia", {"media": "print"}, session=session)
     hidden_in_print = browser.evaluate(
         session,
-        "Array.from(document.querySelectorAll('details table')).filter(t => t.getBoundingClientRect().height === 0).length",
+        "Array.from(document.querySelectorAll('details table'))"
+        ".filter(t => t.getBoundingClientRect().height === 0).length",
     )
     assert hidden_in_print == 0  # closed <details> still print their data tables
     browser.call("Emulation.setEmulatedMedia", {"media": ""}, session=session)
