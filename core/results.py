@@ -30,10 +30,11 @@ class CheckResult:
     ``beta_max``, ``t_at_max`` and simultaneous ``critical_value``; ``critical_grid`` holds the
     critical value of every grid point and ``scaled_grid`` = T / critical value (the gate fails
     when any point exceeds 1); the calibrated p-value of the distribution gate, the independence
-    gate (Ljung-Box) with McLeod-Li reported, the Bonferroni-combined ``p_value`` (``p_adjusted`` after fleet adjustment), effect
-    sizes, cell counts and the noise parameters; ``plots`` holds compact data for the report
-    (standardised-residual histogram, Q-Q points, autocorrelations); ``effects`` holds the
-    errors' sizes in plain units and the window's dates (:func:`~fitaudit.core.plotdata.error_effects`).
+    gate (Ljung-Box) with McLeod-Li reported, the Bonferroni-combined ``p_value`` (``p_adjusted``
+    after fleet adjustment), effect sizes, cell counts and the noise parameters; ``plots`` holds
+    compact data for the report (standardised-residual histogram, Q-Q points, autocorrelations);
+    ``effects`` holds the errors' sizes in plain units and the window's dates
+    (:func:`~fitaudit.core.plotdata.error_effects`).
     """
 
     kind: str
