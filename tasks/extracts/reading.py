@@ -309,9 +309,9 @@ def _series_from_chunks(src, key, parts, columns, exogenous, start, end, missing
                 "mixed-timezones",
                 "error",
                 prefix
-                + f"its rows come from files with time-zone-aware timestamps ({_listing(kinds['aware'][:_SHOW])}) and from "
-                f"files with naive timestamps ({_listing(kinds['naive'][:_SHOW])}); naive times would be taken as UTC and may be "
-                "shifted. Fix: write every file with UTC timestamps (or all naive in one agreed zone).",
+                + f"its rows come from files with time-zone-aware timestamps ({_listing(kinds['aware'][:_SHOW])}) and "
+                f"from files with naive timestamps ({_listing(kinds['naive'][:_SHOW])}); naive times would be taken as "
+                "UTC and may be shifted. Fix: write every file with UTC timestamps (or all naive in one agreed zone).",
             )
         )
     time = np.concatenate(times) if times else np.empty(0, _NS)
@@ -340,7 +340,9 @@ def _series_from_chunks(src, key, parts, columns, exogenous, start, end, missing
 
 def _fix(kind: str) -> str:
     return {
-        "missing-column": ". Fix: add the column to every file of the extract, or remove it from the models that use it.",
+        "missing-column": (
+            ". Fix: add the column to every file of the extract, or remove it from the models that use it."
+        ),
         "column-type": ". Fix: write the column with a numeric (or, for time, timestamp) type in every file.",
     }.get(kind, ".")
 
@@ -362,7 +364,10 @@ def _present_keys(loc: _Location, readable: list[_File], src: SourceEntry) -> li
 def _missing_series(src, loc, key, present, skipped, start, end) -> SeriesData:
     shown = _listing(present[:10]) + (f" (first 10 of {len(present)})" if len(present) > 10 else "")
     if key in present and (start is not None or end is not None):
-        span = f"{_iso(start) if start is not None else 'the first row'} and {_iso(end) if end is not None else 'the last row'}"
+        span = (
+            f"{_iso(start) if start is not None else 'the first row'} and "
+            f"{_iso(end) if end is not None else 'the last row'}"
+        )
         what = f"has no rows between {span}"
         fix = "check the as-of date and the windows, or refresh the extract"
     elif key in present:

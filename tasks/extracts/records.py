@@ -137,5 +137,6 @@ def _too_short(key: str, source: str, n: int, min_length: int) -> SeriesProblem 
         "too-short",
         "insufficient",
         f"source {source!r}, series {key!r}: {n} observation(s), but at least {min_length} are needed for the "
-        "registered windows and model orders. Fix: extend the extract's history, or shorten the windows in the registry.",
+        "registered windows and model orders. Fix: extend the extract's history, or shorten the windows in the "
+        "registry.",
     )

@@ -117,8 +117,8 @@ def _grid_problems(time: np.ndarray, frequency: str, holidays: tuple = ()) -> li
             ""
             if frequency in SUBDAILY
             else (
-                " (Time-zone-aware local timestamps shift by an hour in UTC across daylight-saving changes: store daily and "
-                "coarser data as dates.)"
+                " (Time-zone-aware local timestamps shift by an hour in UTC across daylight-saving changes: store "
+                "daily and coarser data as dates.)"
             )
         )
         out.append(
@@ -143,7 +143,8 @@ def _grid_problems(time: np.ndarray, frequency: str, holidays: tuple = ()) -> li
                 (
                     "gap",
                     f"{n_missing} timestamp(s) missing against {name}, first: {_stamps(to_time(np.array(first)))}. "
-                    "Fix: fill the gaps in the extract (impute and flag the rows), or correct the registered frequency.",
+                    "Fix: fill the gaps in the extract (impute and flag the rows), or correct the registered "
+                    "frequency.",
                 )
             )
     return out
