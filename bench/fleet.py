@@ -49,8 +49,9 @@ GOAL_FIT_BOUND = 3.0
 #: is where a batch task hands its plain function (audit, candidate search, records and pages)
 #: to the local worker processes, or runs it in place.  A function is listed at each module that
 #: calls it by its global name (the flow module before its @tasks moved to fitaudit.tasks, and
-#: the task modules after); :func:`audit_in_child` patches the entries that exist and refuses to
-#: run when a function exists at none of them.
+#: the task modules after, and the audit stage's ``task`` module since its @tasks moved apart from
+#: the plain functions); :func:`audit_in_child` patches the entries that exist and refuses to run
+#: when a function exists at none of them.
 WORK_FUNCTIONS = (
     ("fitaudit.tasks.registry", "load_registry"),
     ("fitaudit.flows.audit", "recover"),
@@ -61,9 +62,12 @@ WORK_FUNCTIONS = (
     ("fitaudit.tasks.publish", "load_history"),
     ("fitaudit.tasks.batches", "stage_inputs"),
     ("fitaudit.tasks.audit", "calibration_for"),
+    ("fitaudit.tasks.audit.task", "calibration_for"),
     ("fitaudit.tasks.audit", "run_local"),
+    ("fitaudit.tasks.audit.task", "run_local"),
     ("fitaudit.flows.audit", "finalize"),
     ("fitaudit.tasks.audit", "finalize"),
+    ("fitaudit.tasks.audit.task", "finalize"),
     ("fitaudit.tasks.publish", "run_local"),
     ("fitaudit.flows.audit", "results_head"),
     ("fitaudit.flows.audit", "results_summary"),

@@ -18,17 +18,8 @@ from prefect.utilities.annotations import quote
 from fitaudit.core.vocabulary import VERDICTS
 from fitaudit.tasks.archive import new_run_id, open_work_folder
 from fitaudit.tasks.archive_tasks import check_archive_task, recover_task
-from fitaudit.tasks.audit import (
-    audit_batch_task,
-    calibration_task,
-    candidate_jobs,
-    candidate_tables,
-    candidates_task,
-    finalize_task,
-    tables_task,
-    wants_candidates,
-    with_candidates,
-)
+from fitaudit.tasks.audit import candidate_jobs, candidate_tables, wants_candidates, with_candidates
+from fitaudit.tasks.audit.task import audit_batch_task, calibration_task, candidates_task, finalize_task, tables_task
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.events import events_task
 from fitaudit.tasks.outcomes import rejected_outcome, render_parcels

@@ -25,6 +25,7 @@ from fitaudit.core.models import model_from_dict
 
 from ._io import json_ready
 from .archive import ProductionSnapshot, production_snapshot
+from .batchfiles import ModelInput, batch_metadata, read_batch, write_batch
 from .extracts import (
     ExtractError,
     ExtractFingerprint,
@@ -35,7 +36,7 @@ from .extracts import (
 )
 from .frequencies import FREQUENCY_DAYS, periods_after
 from .params import ParameterStoreError, production_version
-from .registry import EntryBase, ForecastEntry, ModelEntry, Registry, entry_from_dict
+from .registry import EntryBase, ForecastEntry, ModelEntry, Registry
 
 __all__ = [
     "ModelInput",
@@ -64,31 +65,6 @@ STALE = "stale"
 
 #: A forecast entry's stated forecast missing for an observation of the audit window.
 MISSING_FORECAST = "missing-forecast"
-
-
-@dataclass(frozen=True)
-class ModelInput:
-    """Everything one model's audit needs, read back from a batch file (the registry entry typed).
-
-    ``forecasts`` holds a forecast entry's stated columns by name, aligned with ``y`` (NaN where
-    no forecast was stored; issue times as seconds since 1970-01-01 UTC); empty for a model
-    fitaudit fits.
-    """
-
-    entry: EntryBase
-    y: np.ndarray
-    time: np.ndarray
-    exog: dict
-    production: dict | None
-    lineage: dict
-    problems: tuple
-    history: tuple
-    forecasts: dict = field(default_factory=dict)
-
-    @property
-    def model_id(self) -> str:
-        """The model entry's id."""
-        return self.entry.id
 
 
 @dataclass(frozen=True)
@@ -227,46 +203,6 @@ def _lineage(entry: EntryBase, fp: ExtractFingerprint | None, time: np.ndarray, 
         "audit_window": entry.audit_window,
         "audit_first": iso(time[-entry.audit_window]) if time.size >= entry.audit_window else None,
     }
-
-
-def _write_batch(path: pathlib.Path, inputs: list[dict], arrays: dict[str, np.ndarray]) -> None:
-    np.savez(path.with_suffix(".npz"), **arrays)
-    # keys keep their order (no canonical sorting): the order of a NonlinearAR spec's ``start``
-    # is the order of theta handed to the user's mean function
-    text = json.dumps(json_ready(inputs), indent=2, ensure_ascii=False, allow_nan=False)
-    path.with_suffix(".json").write_bytes(text.encode("utf-8"))
-
-
-def batch_metadata(path: str | pathlib.Path) -> list[dict]:
-    """The JSON part of a staged batch (entries, production versions, lineage, problems), no data;
-    each ``entry`` is the typed registry entry again (:func:`fitaudit.tasks.registry.entry_from_dict`)."""
-    meta = json.loads(pathlib.Path(path).with_suffix(".json").read_text())
-    return [{**m, "entry": entry_from_dict(m["entry"])} for m in meta]
-
-
-def read_batch(path: str | pathlib.Path) -> list[ModelInput]:
-    """Read a staged batch back as :class:`ModelInput` objects."""
-    path = pathlib.Path(path)
-    meta = batch_metadata(path)
-    with np.load(path.with_suffix(".npz"), allow_pickle=False) as data:
-        out = []
-        for i, m in enumerate(meta):
-            exog = {name: data[f"{i}/x/{j}"] for j, name in enumerate(m["exog_names"])}
-            stated = {name: data[f"{i}/f/{j}"] for j, name in enumerate(m.get("forecast_names", ()))}
-            out.append(
-                ModelInput(
-                    entry=m["entry"],
-                    y=data[f"{i}/y"],
-                    time=data[f"{i}/t"],
-                    exog=exog,
-                    production=m["production"],
-                    lineage=m["lineage"],
-                    problems=tuple(m["problems"]),
-                    history=tuple(m["history"]),
-                    forecasts=stated,
-                )
-            )
-    return out
 
 
 def stage_inputs(
@@ -419,7 +355,7 @@ def stage_inputs(
                     arrays[f"{i}/f/{j}"] = exog[name]
                 metas.append(meta)
             path = staging / f"batch-{len(batches) + 1:04d}"
-            _write_batch(path, metas, arrays)
+            write_batch(path, metas, arrays)
             batches.append(BatchRef(str(path), tuple(e.id for e in chunk)))
         del data
         if cache is not None:

@@ -76,6 +76,7 @@ __all__ = [
     "stage_records",
     "render_parcels",
     "render_outcomes",
+    "render_pickled",
     "staged_bytes",
     "parquet_row",
     "results_rows",
@@ -461,6 +462,15 @@ def render_outcomes(
     if spilled is not None:
         outcomes = restore_outcomes(outcomes, spilled)
     return stage_records(records(outcomes, head["run"]["as_of"]), head, meta, folder, name)
+
+
+def render_pickled(
+    parcel: bytes, head: Mapping[str, Any], meta: Mapping[str, Any], folder: str, name: str, spilled: str | None
+) -> list[StagedRecord]:
+    """:func:`render_outcomes` of a pickled parcel (:func:`render_parcels`): the function the render
+    task hands to a local worker process (:func:`fitaudit.tasks.workers.run_local`), which then
+    imports this module and the report's, never Prefect or pyarrow."""
+    return render_outcomes(pickle.loads(parcel), head, meta, folder, name, spilled)
 
 
 def staged_bytes(staged: Sequence[StagedRecord]) -> Iterator[bytes]:

@@ -23,7 +23,6 @@ import getpass
 import importlib.metadata
 import os
 import pathlib
-import pickle
 import platform
 import socket
 import subprocess
@@ -43,7 +42,7 @@ from .outcomes import (
     StagedRecord,
     history_row,
     parquet_bytes,
-    render_outcomes,
+    render_pickled,
     results_rows,
     staged_bytes,
 )
@@ -104,12 +103,6 @@ def operator_identity(configured: str = "") -> str:
     return f"{user}@{socket.gethostname()}"
 
 
-def _render_pickled(
-    outcomes: bytes, head: Mapping[str, Any], meta: Mapping[str, Any], folder: str, name: str, spilled: str | None
-) -> list[StagedRecord]:
-    return render_outcomes(pickle.loads(outcomes), head, meta, folder, name, spilled)
-
-
 @task(name="render-pages", cache_policy=NO_CACHE, persist_result=False)
 def render_outcomes_task(
     outcomes: bytes,
@@ -127,7 +120,7 @@ def render_outcomes_task(
     dataclasses among task inputs (slow for thousands of results), and prefect-dask reshapes inputs
     wrapped in ``quote``; bytes pass through both untouched.
     """
-    return run_local(workers, _render_pickled, outcomes, head, meta, folder, name, spilled)
+    return run_local(workers, render_pickled, outcomes, head, meta, folder, name, spilled)
 
 
 def publish_staged(

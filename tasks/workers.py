@@ -58,8 +58,15 @@ def default_processes() -> int:
 
 
 def _warm() -> int:
-    """Import the audit stack in a fresh worker (so the first batch does not pay for it)."""
-    import fitaudit.tasks.audit  # noqa: F401
+    """Import the work's modules in a fresh worker (so the first batch does not pay for it).
+
+    Only the plain functions' modules: the audit's (:mod:`fitaudit.tasks.audit.work`) and the
+    records' and pages' (:mod:`fitaudit.tasks.outcomes`, :mod:`fitaudit.tasks.report`).  None of
+    them imports Prefect, pyarrow or pandas, so a worker holds numpy, scipy, pydantic and Jinja2
+    but not the flow's libraries (tests/test_startup.py checks).
+    """
+    import fitaudit.tasks.audit.work  # noqa: F401
+    import fitaudit.tasks.outcomes  # noqa: F401
     import fitaudit.tasks.report  # noqa: F401
 
     return os.getpid()

@@ -93,3 +93,97 @@ def test_verify_inside_an_archive_leaves_nothing_behind(tmp_path):
     code = "import sys; from fitaudit.flows.cli import main; sys.exit(main(['verify', sys.argv[1]]))"
     subprocess.run([sys.executable, "-c", code, str(tmp_path)], cwd=tmp_path, env=env, capture_output=True, timeout=120)
     assert not (tmp_path / ".prefect").exists()
+
+
+#: A local worker process (fitaudit.tasks.workers) as it runs: each call arrives pickled (a
+#: function by module and name, plain arguments), is unpickled, which imports the function's
+#: module and the arguments' classes, and runs.  Reports the flow's libraries that got loaded.
+_WORKER = """
+import json, pickle, sys
+for call in sys.argv[1:]:
+    with open(call, "rb") as fh:
+        fn, args = pickle.load(fh)
+    fn(*args)
+print(json.dumps(sorted(m for m in ("prefect", "pyarrow", "pandas", "fsspec") if m in sys.modules)))
+"""
+
+_FLOW_LIBRARIES = ("prefect", "pyarrow", "pandas", "fsspec")
+
+
+def _loaded_after_import(module: str, libraries: tuple[str, ...]) -> list[str]:
+    code = (
+        f"import importlib, json, sys; importlib.import_module({module!r}); "
+        f"print(json.dumps(sorted(m for m in {libraries!r} if m in sys.modules)))"
+    )
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def test_the_audit_work_module_loads_none_of_the_flows_libraries():
+    """The module of the audit's plain functions, which a local worker imports to audit a batch or
+    search candidates, loads neither Prefect, pyarrow, pandas, fsspec nor Jinja2; nor does its
+    package, whose ``@task`` wrappers load on first use."""
+    libraries = (*_FLOW_LIBRARIES, "jinja2")
+    assert _loaded_after_import("fitaudit.tasks.audit.work", libraries) == []
+    assert _loaded_after_import("fitaudit.tasks.audit", libraries) == []
+    assert _loaded_after_import("fitaudit.tasks.audit.task", ("prefect",)) == ["prefect"]  # the wrappers do
+
+
+def test_a_local_worker_audits_and_renders_a_batch_without_the_flows_libraries(tmp_path):
+    """What the batch tasks hand a local worker, run as the worker runs it (warm-up, the audit of a
+    staged batch, the records and pages of its outcomes), loads neither Prefect, pyarrow, pandas nor
+    fsspec: a worker holds the work's libraries only (docs/architecture.md §1.2)."""
+    import pickle
+
+    import numpy as np
+
+    sys.path.insert(0, str(pathlib.Path(__file__).resolve().parent))  # tests/: fleet_fixtures
+    from fleet_fixtures import AS_OF, Fleet, ar1, days, long_table, write_parquet
+
+    from fitaudit.tasks.audit import audit_batch_spilled, finalize
+    from fitaudit.tasks.batches import stage_inputs
+    from fitaudit.tasks.outcomes import render_parcels, render_pickled
+    from fitaudit.tasks.registry import load_registry
+    from fitaudit.tasks.results import results_head
+    from fitaudit.tasks.workers import _warm
+
+    rng = np.random.default_rng(11)
+    fleet = Fleet(tmp_path)
+    write_parquet(tmp_path / "data" / "x.parquet", long_table({k: {"date": days(), "y": ar1(rng)} for k in "ab"}))
+    fleet.source("x", "data/x.parquet")
+    for k in "ab":
+        fleet.model(f"m-{k}", "x", k)
+    reg = load_registry(fleet.write())
+    (batch,) = stage_inputs(reg, AS_OF, tmp_path / "work").batches
+    light = finalize(audit_batch_spilled(batch.path, reg.policy), reg.policy)  # the flow's side of the run
+    (parcel,), (name,), (spilled,) = render_parcels(light, [light], [batch.path])
+    head = results_head(
+        as_of=AS_OF.isoformat(), registry={"path": "registry.yaml", "sha256": reg.sha256}, policy={}, tool_version="0"
+    )
+    meta = {
+        "run_id": "20260828-T010203Z-abcd",
+        "started_utc": "2026-08-28T01:02:03Z",
+        "finished_utc": "2026-08-28T01:04:00Z",
+        "operator": "test",
+        "tool_version": "0",
+        "code_commit": "292b527",
+        "prefect_version": "3",
+    }
+    pages = tmp_path / "pages"
+    calls = []
+    for i, call in enumerate(
+        [
+            (_warm, ()),
+            (audit_batch_spilled, (batch.path, reg.policy, None, 0.0)),
+            (render_pickled, (parcel, head, meta, str(pages), name, spilled)),
+        ]
+    ):
+        calls.append(tmp_path / f"call-{i}.pickle")
+        calls[-1].write_bytes(pickle.dumps(call))
+    done = subprocess.run(
+        [sys.executable, "-c", _WORKER, *map(str, calls)], capture_output=True, text=True, timeout=600
+    )
+    assert done.returncode == 0, done.stderr
+    assert sorted(p.name for p in (pages / "models").iterdir()) == ["m-a.html", "m-b.html"]  # the work was done
+    assert json.loads(done.stdout.strip().splitlines()[-1]) == []

@@ -1,12 +1,16 @@
-"""The audit stage: run :func:`fitaudit.core.audit.audit_series` over staged batches.
+"""The audit stage's work: run :func:`fitaudit.core.audit.audit_series` over staged batches.
 
 A forecast entry (forecasts made elsewhere) is audited by
 :func:`fitaudit.core.forecasts.audit_forecasts` instead, after its issue times are checked; its
 result has no refit check (``refit`` is None) and it gets no candidate search.
 
-Plain functions do the work (testable without Prefect); the thin ``@task`` wrapper adds logging.
-One broken model never sinks a batch: every failure becomes that model's ``error`` (or
-``insufficient``) outcome with a plain message, and the others go on.
+Plain functions only (testable without Prefect; the ``@task`` wrappers are in :mod:`.task`).
+This is the module a local worker process imports to audit a batch or search candidates
+(:func:`fitaudit.tasks.workers.run_local`), so it imports what the work needs and nothing more:
+numpy, scipy (through the core), the registry's entry types and the batch files, never Prefect,
+pyarrow or pandas (tests/test_startup.py checks).  One broken model never sinks a batch: every
+failure becomes that model's ``error`` (or ``insufficient``) outcome with a plain message, and the
+others go on.
 """
 
 from __future__ import annotations
@@ -18,52 +22,32 @@ from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
 import numpy as np
-from prefect import get_run_logger, task
-from prefect.cache_policies import NO_CACHE
 
 from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model, prepare_calibration
 from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.exceptions import FitauditError
 
-from .batches import ModelInput, batch_metadata, read_batch
-from .outcomes import (  # the outcome's shapes live there; re-exported for the audit stage's callers
-    Outcome,
-    light_outcome,
-    records,
-    rejected_outcome,
-    restore_outcomes,
-    spill_outcomes,
-    spill_path,
-)
-from .registry import ForecastEntry, Policy, Registry
-from .workers import TimeLimitExceeded, run_local, time_limit
+from ..batchfiles import ModelInput, batch_metadata, read_batch
+from ..outcomes import Outcome, spill_outcomes
+from ..registry import ForecastEntry, Policy
+from ..workers import TimeLimitExceeded, time_limit
 
 __all__ = [
-    "Outcome",
     "audit_input",
     "audit_inputs",
     "audit_batch",
     "audit_batch_spilled",
-    "light_outcome",
-    "restore_outcomes",
-    "spill_path",
-    "finalize",
-    "finalize_task",
-    "rejected_outcome",
-    "records",
-    "audit_batch_task",
+    "audit_series_for",
     "audit_forecasts_for",
     "forecast_timing_problems",
+    "finalize",
     "wants_candidates",
-    "candidates_for",
-    "candidate_jobs",
-    "candidate_tables",
-    "tables_task",
-    "candidates_for_jobs",
-    "candidates_task",
     "with_candidates",
     "calibration_for",
-    "calibration_task",
+    "candidates_for",
+    "candidates_for_jobs",
+    "candidate_jobs",
+    "candidate_tables",
 ]
 
 
@@ -258,12 +242,6 @@ def finalize(outcomes: Sequence[Outcome], policy: Policy) -> list[Outcome]:
     return out
 
 
-@task(name="apply-fleet-rules", cache_policy=NO_CACHE, persist_result=False)
-def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
-    """p-value adjustment across the run and the persistence rule."""
-    return finalize(outcomes, registry.policy)
-
-
 def wants_candidates(outcome: Outcome) -> bool:
     """Whether the candidate search runs for an outcome: a ``respecify`` verdict of a model
     fitaudit fits (a forecast audit has no refit check, and no specification to vary)."""
@@ -304,40 +282,6 @@ def calibration_for(batch_paths: Sequence[str], policy: Policy) -> CalibrationCa
             )
     cache = prepare_calibration(entries)
     return prepare_forecast_calibration(forecasts, cache) if forecasts else cache
-
-
-@task(name="prepare-calibration", cache_policy=NO_CACHE, persist_result=False)
-def calibration_task(batch_paths: list[str], policy: Policy) -> CalibrationCache:
-    """Prefect task: simulate every null table the run needs, once, before the batches start."""
-    cache = calibration_for(batch_paths, policy)
-    get_run_logger().info("calibration: %d null tables", len(cache))
-    return cache
-
-
-@task(name="audit-batch", cache_policy=NO_CACHE, persist_result=False)
-def audit_batch_task(
-    path: str,
-    policy: Policy,
-    cache: CalibrationCache | None = None,
-    workers: str | None = None,
-    time_limit_s: float = 0.0,
-) -> list[Outcome]:
-    """Prefect task: audit one staged batch (a file path in, light outcomes out; the full ones
-    wait in :func:`spill_path` for :func:`restore_outcomes`).
-
-    ``workers`` is the token of the flow run's local worker processes
-    (:func:`fitaudit.tasks.workers.local_workers`); the batch is computed there when given, and
-    only there is ``time_limit_s`` per model enforced.
-    """
-    t0 = time.perf_counter()
-    outcomes = run_local(workers, audit_batch_spilled, path, policy, cache, time_limit_s)
-    counts: dict[str, int] = {}
-    for o in outcomes:
-        counts[o.verdict] = counts.get(o.verdict, 0) + 1
-    get_run_logger().info(
-        "batch %s: %d models in %.1f s %s", path.rsplit("/", 1)[-1], len(outcomes), time.perf_counter() - t0, counts
-    )
-    return outcomes
 
 
 def candidates_for(
@@ -419,13 +363,6 @@ def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list
     return list(tables.values())
 
 
-@task(name="prepare-candidate-calibration", cache_policy=NO_CACHE, persist_result=False)
-def tables_task(entries: list, cache: CalibrationCache, workers: str | None = None) -> CalibrationCache:
-    """Prefect task: the null tables of :func:`prepare_calibration` ``entries`` missing from
-    ``cache`` (in the local worker processes named by ``workers``, when given)."""
-    return run_local(workers, prepare_calibration, entries, cache)
-
-
 def candidates_for_jobs(
     jobs: Sequence[Sequence], policy: Policy, cache: CalibrationCache | None = None
 ) -> dict[str, list[dict]]:
@@ -435,12 +372,3 @@ def candidates_for_jobs(
     for path, ids in jobs:
         found.update(candidates_for(path, ids, policy, cache))
     return found
-
-
-@task(name="search-candidates", cache_policy=NO_CACHE, persist_result=False)
-def candidates_task(
-    jobs: list, policy: Policy, cache: CalibrationCache | None = None, workers: str | None = None
-) -> dict[str, list[dict]]:
-    """Prefect task: candidate specifications for one group of ``respecify`` models
-    (:func:`candidate_jobs`), in the local worker processes named by ``workers`` when given."""
-    return run_local(workers, candidates_for_jobs, jobs, policy, cache)

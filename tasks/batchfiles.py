@@ -1,0 +1,88 @@
+"""The staged batch files: one ``batch-NNNN.npz`` (the arrays) and ``.json`` (the rest) per batch.
+
+:func:`fitaudit.tasks.batches.stage_inputs` writes them (:func:`write_batch`); the audit, the
+candidate search and the refits read them back (:func:`read_batch`, :func:`batch_metadata`).
+Reading needs numpy and the registry's entry types only: this module is what a local worker
+process imports to read its batch (:mod:`fitaudit.tasks.workers`), so it must not import the
+staging module (Prefect, pyarrow, pandas, the archive).
+"""
+
+from __future__ import annotations
+
+import json
+import pathlib
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ._io import json_ready
+from .registry import EntryBase, entry_from_dict
+
+__all__ = ["ModelInput", "write_batch", "batch_metadata", "read_batch"]
+
+
+@dataclass(frozen=True)
+class ModelInput:
+    """Everything one model's audit needs, read back from a batch file (the registry entry typed).
+
+    ``forecasts`` holds a forecast entry's stated columns by name, aligned with ``y`` (NaN where
+    no forecast was stored; issue times as seconds since 1970-01-01 UTC); empty for a model
+    fitaudit fits.
+    """
+
+    entry: EntryBase
+    y: np.ndarray
+    time: np.ndarray
+    exog: dict
+    production: dict | None
+    lineage: dict
+    problems: tuple
+    history: tuple
+    forecasts: dict = field(default_factory=dict)
+
+    @property
+    def model_id(self) -> str:
+        """The model entry's id."""
+        return self.entry.id
+
+
+def write_batch(path: pathlib.Path, inputs: list[dict], arrays: dict[str, np.ndarray]) -> None:
+    """Write one batch: ``arrays`` to ``path``'s ``.npz`` and ``inputs`` (one JSON-ready dict per
+    model) to its ``.json``."""
+    np.savez(path.with_suffix(".npz"), **arrays)
+    # keys keep their order (no canonical sorting): the order of a NonlinearAR spec's ``start``
+    # is the order of theta handed to the user's mean function
+    text = json.dumps(json_ready(inputs), indent=2, ensure_ascii=False, allow_nan=False)
+    path.with_suffix(".json").write_bytes(text.encode("utf-8"))
+
+
+def batch_metadata(path: str | pathlib.Path) -> list[dict]:
+    """The JSON part of a staged batch (entries, production versions, lineage, problems), no data;
+    each ``entry`` is the typed registry entry again (:func:`fitaudit.tasks.registry.entry_from_dict`)."""
+    meta = json.loads(pathlib.Path(path).with_suffix(".json").read_text())
+    return [{**m, "entry": entry_from_dict(m["entry"])} for m in meta]
+
+
+def read_batch(path: str | pathlib.Path) -> list[ModelInput]:
+    """Read a staged batch back as :class:`ModelInput` objects."""
+    path = pathlib.Path(path)
+    meta = batch_metadata(path)
+    with np.load(path.with_suffix(".npz"), allow_pickle=False) as data:
+        out = []
+        for i, m in enumerate(meta):
+            exog = {name: data[f"{i}/x/{j}"] for j, name in enumerate(m["exog_names"])}
+            stated = {name: data[f"{i}/f/{j}"] for j, name in enumerate(m.get("forecast_names", ()))}
+            out.append(
+                ModelInput(
+                    entry=m["entry"],
+                    y=data[f"{i}/y"],
+                    time=data[f"{i}/t"],
+                    exog=exog,
+                    production=m["production"],
+                    lineage=m["lineage"],
+                    problems=tuple(m["problems"]),
+                    history=tuple(m["history"]),
+                    forecasts=stated,
+                )
+            )
+    return out
