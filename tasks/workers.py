@@ -27,6 +27,8 @@ from typing import Any, TypeVar
 
 from fitaudit.core.exceptions import FitauditError
 
+from .memory import release_freed_memory
+
 __all__ = [
     "local_workers",
     "run_local",
@@ -70,6 +72,21 @@ def _warm() -> int:
     import fitaudit.tasks.report  # noqa: F401
 
     return os.getpid()
+
+
+def _run_and_release(fn: Callable[..., T], *args: Any) -> T:
+    """``fn(*args)`` in a worker, then the memory it freed back to the operating system.
+
+    A batch's peak (the null tables' simulations, the candidate search) is freed when it ends, but
+    glibc's ``malloc`` keeps the pages: without :func:`~fitaudit.tasks.memory.release_freed_memory`
+    an idle worker stays near its last peak (about 70 MB above its working size after a candidate
+    search), which adds to the process tree's peak while the other worker and the flow work.
+    Frees nothing in use, so the result does not depend on it.
+    """
+    try:
+        return fn(*args)
+    finally:
+        release_freed_memory()
 
 
 @contextlib.contextmanager
@@ -154,7 +171,10 @@ def local_workers(processes: int) -> Iterator[str | None]:
 def run_local(token: str | None, fn: Callable[..., T], *args: Any) -> T:
     """``fn(*args)`` in the pool named by ``token`` if this process holds it, else in place.
 
-    ``fn`` and ``args`` must be picklable (module-level functions, plain data).
+    ``fn`` and ``args`` must be picklable (module-level functions, plain data).  A worker imports
+    ``fn``'s module to run it: keep such functions in modules that import neither Prefect, pyarrow
+    nor pandas (``tasks/audit/work.py``, ``tasks/outcomes.py``; tests/test_startup.py).  In a
+    worker, the memory the call freed is returned to the system after it (:func:`_run_and_release`).
     """
     with _POOLS_LOCK:
         pool = _POOLS.get(token) if token else None
@@ -164,7 +184,7 @@ def run_local(token: str | None, fn: Callable[..., T], *args: Any) -> T:
     if pool is None:
         return fn(*args)
     try:
-        return pool.submit(fn, *args).result()
+        return pool.submit(_run_and_release, fn, *args).result()
     except BrokenProcessPool:
         if token in _STOPPED:
             raise WorkersStopped("the run was interrupted; its worker processes were stopped") from None

@@ -87,3 +87,32 @@ def test_never_imports_pyarrow():
         """
     )
     assert out == "False False"
+
+
+def test_a_local_worker_returns_a_calls_freed_memory():
+    # tasks.workers runs each call handed to a worker process through _run_and_release: the same
+    # churn of small arrays as above (its result, the last array, stays in use at the heap's top)
+    # leaves its heap pages resident when called plainly and returns them when called through the
+    # wrapper, whose result is the call's own
+    out = _run(
+        """
+        import numpy as np
+        from fitaudit.tasks.workers import _run_and_release
+        def churn():
+            small = [np.ones(8000) for _ in range(2000)]
+            return small[-1]
+        base = rss()
+        plain = churn()
+        kept_plain = rss() - base
+        from fitaudit.tasks.memory import release_freed_memory
+        release_freed_memory()
+        base = rss()
+        wrapped = _run_and_release(churn)
+        print(float(plain.sum()), float(wrapped.sum()), kept_plain, rss() - base)
+        """
+    )
+    plain, wrapped, kept_plain, kept_wrapped = out.split()
+    if int(kept_plain) < 64 * 2**20:
+        pytest.skip("this allocator returned the freed pages by itself")
+    assert plain == wrapped == "8000.0"
+    assert int(kept_wrapped) < 16 * 2**20  # common practice: well below the 64 MB kept by the plain call
