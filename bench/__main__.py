@@ -140,12 +140,14 @@ def _details(rows: list[dict]) -> str:
         if "runs" in d:
             mib = 2**20
             lines = [
-                "| models | flow process peak | process tree peak | results.json | run time |",
-                "| --- | --- | --- | --- | --- |",
+                "| models | flow process peak | Prefect server peak | worker processes peak | process tree peak "
+                "| results.json | run time |",
+                "| --- | --- | --- | --- | --- | --- | --- |",
             ]
             for run in d["runs"]:
                 lines.append(
-                    f"| {run['models']:,} | {run['process'] / mib:,.0f} MiB | {run['tree'] / mib:,.0f} MiB | "
+                    f"| {run['models']:,} | {run['process'] / mib:,.0f} MiB | {run.get('server', 0) / mib:,.0f} MiB | "
+                    f"{run.get('workers', 0) / mib:,.0f} MiB | {run['tree'] / mib:,.0f} MiB | "
                     f"{run['results_json_bytes'] / mib:,.1f} MiB | {run['seconds']:.0f} s |"
                 )
             out.append("**Memory runs.**\n\n" + "\n".join(lines))
