@@ -37,7 +37,6 @@ from fitaudit.core.vocabulary import VERDICTS
 
 from .fleet_data import AS_OF, FleetSeries, fleet_series, model_ids, write_fleet
 from .harness import WorkClock, child_env, run_child, warm_prefect_home, write_result
-from .peer import measure_peer
 
 __all__ = ["main", "WORK_FUNCTIONS", "audit_in_child", "fit_time"]
 
@@ -240,6 +239,10 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
 
 def main(quick: bool = False) -> list[dict]:
     """Generate the fleet, time the peer on a subset and the audit flow on all of it."""
+    # imported here: the peer loads statsmodels (about 20 MB), which the audit's child (also
+    # bench.memory's) must not carry
+    from .peer import measure_peer
+
     n = 200 if quick else 1000
     subset = 10 if quick else 50
     with tempfile.TemporaryDirectory(prefix="fitaudit-bench-fleet-") as tmp:
