@@ -35,6 +35,7 @@ from .extracts import (
     series_problems,
 )
 from .frequencies import FREQUENCY_DAYS, periods_after
+from .memory import release_freed_memory
 from .params import ParameterStoreError, production_version
 from .registry import EntryBase, ForecastEntry, ModelEntry, Registry
 
@@ -550,5 +551,11 @@ def _retry_transient(task, task_run, state) -> bool:
     persist_result=False,
 )
 def stage_inputs_task(registry: Registry, as_of: dt.date, staging_dir: str, **kwargs) -> StagedRun:
-    """Prefect task: one scan per source, batch files out (retried for transient I/O errors)."""
-    return stage_inputs(registry, as_of, staging_dir, **kwargs)
+    """Prefect task: one scan per source, batch files out (retried for transient I/O errors).
+
+    Then the scans' freed read buffers go back to the system (:func:`release_freed_memory`:
+    pyarrow's pool keeps about 110 MB per 1,000 daily series otherwise, for the rest of the run)."""
+    try:
+        return stage_inputs(registry, as_of, staging_dir, **kwargs)
+    finally:
+        release_freed_memory()
