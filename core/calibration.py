@@ -324,7 +324,9 @@ class CalibrationCache:
             table = self.tables.get(key)
             if table is None:
                 table = build()
-                self.tables[key] = table
+                # a new dict, not an insertion: another thread may be iterating the tables (Prefect
+                # walks a task's parameters while batches in other task threads add tables)
+                self.tables = {**self.tables, key: table}
                 self.builds += 1
             else:
                 self.hits += 1
@@ -340,9 +342,11 @@ class CalibrationCache:
         self._lock = threading.Lock()
 
     def merge(self, other: CalibrationCache) -> None:
-        """Add the tables of ``other`` that this cache lacks."""
-        for k, v in other.tables.items():
-            self.tables.setdefault(k, v)
+        """Add the tables of ``other`` that this cache lacks (a new dict, as in :meth:`get`)."""
+        with self._lock:
+            new = {k: v for k, v in other.tables.items() if k not in self.tables}
+            if new:
+                self.tables = {**self.tables, **new}
 
     def __len__(self) -> int:
         return len(self.tables)

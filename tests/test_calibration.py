@@ -76,6 +76,25 @@ def test_tables_are_shared_and_do_not_depend_on_build_order():
     assert production_table(40, 8, *GRID, 99, 3, a) is t1 and a.hits == 1 and a.builds == 1
 
 
+def test_tables_can_be_iterated_while_a_table_is_added():
+    # Prefect walks a task's parameters (the cache among them) in one thread while a batch in
+    # another task thread adds a table: the walk must not see the dict change size
+    cache = CalibrationCache()
+    first = production_table(40, 8, *GRID, 99, 3, cache)
+    seen = []
+    for key in cache.tables:
+        added = production_table(60, 10, *GRID, 99, 3, cache)  # a new key, built during the walk
+        seen.append(key)
+    assert seen == [first.key] and len(cache) == 2 and cache.builds == 2
+    other = CalibrationCache()
+    production_table(40, 8, *GRID, 99, 3, other)
+    for _ in cache.tables.items():
+        cache.merge(other)  # nothing new: the same two tables
+        production_table(80, 12, *GRID, 99, 3, other)
+        cache.merge(other)  # one new table, added during the walk
+    assert len(cache) == 3 and cache.tables[added.key] is added
+
+
 def test_production_null_size(rng):
     """Under the null (uniform PIT values) the simulated calibration rejects about 5 %."""
     n, s = 60, number_of_cells(60)
