@@ -25,7 +25,7 @@ from fitaudit.core.models import model_from_dict
 
 from ._io import json_ready
 from .archive import ProductionSnapshot, production_snapshot
-from .batchfiles import ModelInput, batch_metadata, read_batch, write_batch
+from .batchfiles import write_batch
 from .extracts import (
     ExtractError,
     ExtractFingerprint,
@@ -40,13 +40,10 @@ from .params import ParameterStoreError, production_version
 from .registry import EntryBase, ForecastEntry, ModelEntry, Registry
 
 __all__ = [
-    "ModelInput",
     "BatchRef",
     "StagedRun",
     "stage_inputs",
     "stage_inputs_task",
-    "read_batch",
-    "batch_metadata",
     "batch_size_for",
     "ROW_KINDS",
     "STALE",

@@ -33,7 +33,7 @@ from prefect.events import emit_event
 
 from fitaudit.core.vocabulary import VERDICTS
 
-from .results import is_forecast_record
+from .outcomes import is_forecast_record
 
 __all__ = [
     "EVENT_PREFIX",

@@ -32,10 +32,10 @@ from fitaudit.core.exceptions import FitauditError
 
 from .archive import open_run
 from .audit import audit_series_for
-from .batches import ModelInput, read_batch
+from .batchfiles import ModelInput, read_batch
+from .outcomes import is_forecast_record
 from .params import promote, write_version
 from .registry import ForecastEntry, Policy, Registry
-from .results import is_forecast_record
 
 __all__ = [
     "NotRefittableError",

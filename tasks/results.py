@@ -33,23 +33,13 @@ from typing import Any
 
 from fitaudit.core.vocabulary import ADJUDICATED_VERDICTS, VERDICTS
 
-# one model's record, its light view and its parquet row live with the other shapes of a model's
-# outcome (tasks/outcomes.py); re-exported here, where the document that holds them is built
-from .outcomes import SEVERITY, is_forecast_record, light_record, model_record, movement, results_rows
-
 __all__ = [
     "SCHEMA",
     "SCHEMA_VERSION",
-    "SEVERITY",
-    "model_record",
     "build_results",
     "results_head",
     "results_summary",
-    "light_record",
-    "is_forecast_record",
     "results_json_chunks",
-    "results_rows",
-    "movement",
 ]
 
 SCHEMA = "fitaudit.results"

@@ -20,7 +20,7 @@ import pytest
 sys.path.insert(0, __import__("os").path.dirname(__file__))
 from fleet_fixtures import AS_OF, Fleet, ar1, days, long_table, write_parquet  # noqa: E402
 
-from fitaudit.tasks import batches  # noqa: E402
+from fitaudit.tasks import batches, batchfiles  # noqa: E402
 from fitaudit.tasks.registry import load_registry  # noqa: E402
 
 
@@ -32,7 +32,7 @@ def _stage(tmp_path, series: dict, as_of: dt.date, **source_extra):
         fleet.model(f"m-{k}", "x", k)
     reg = load_registry(fleet.write())
     staged = batches.stage_inputs(reg, as_of, tmp_path / "work")
-    return {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+    return {i.model_id: i for b in staged.batches for i in batchfiles.read_batch(b.path)}
 
 
 def _stale(item) -> list[dict]:
@@ -98,7 +98,7 @@ def _stage_run(tmp_path, series: dict, as_of: dt.date, policy_days=None, **sourc
         fleet.model(f"m-{k}", "x", k)
     reg = load_registry(fleet.write())
     staged = batches.stage_inputs(reg, as_of, tmp_path / "work")
-    return staged, {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+    return staged, {i.model_id: i for b in staged.batches for i in batchfiles.read_batch(b.path)}
 
 
 @pytest.mark.parametrize("lag, policy_days, stale", [(7, 7, False), (8, 7, True), (2, 7, False), (2, None, True)])
@@ -196,12 +196,12 @@ def test_a_dated_uri_reads_the_as_of_folder_and_the_manifest_names_it(tmp_path):
         assert fp["uri_template"] == "exports/{as_of:%Y%m%d}/sales.parquet"
         assert [pathlib.Path(f["path"]).parent.name for f in fp["files"]] == [f"{as_of:%Y%m%d}"]
         assert fp["rows"] == 2 * rows
-        items = {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+        items = {i.model_id: i for b in staged.batches for i in batchfiles.read_batch(b.path)}
         assert items["m-a"].problems == () and str(items["m-a"].time[-1])[:10] == str(as_of)
     # no folder for the date: every model of the source gets an error naming the resolved uri
     late = AS_OF + dt.timedelta(days=1)
     staged = batches.stage_inputs(reg, late, tmp_path / "work-late")
-    items = {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+    items = {i.model_id: i for b in staged.batches for i in batchfiles.read_batch(b.path)}
     (problem,) = items["m-b"].problems
     assert problem["severity"] == "error"
     assert f"uri 'exports/{late:%Y%m%d}/sales.parquet'" in problem["message"] and "does not exist" in problem["message"]
@@ -218,7 +218,7 @@ def test_a_row_filter_keeps_only_its_rows(tmp_path):
     items = {
         i.model_id: i
         for b in batches.stage_inputs(reg, AS_OF, tmp_path / "work").batches
-        for i in batches.read_batch(b.path)
+        for i in batchfiles.read_batch(b.path)
     }
     assert items["m-a"].problems == () and items["m-a"].y.size == 200
     assert items["m-b"].y.size == 0  # the filter dropped series b: reported as absent, not audited
@@ -236,7 +236,7 @@ def test_a_broken_row_filter_is_a_per_source_error(tmp_path, term, needle):
     reg = _dated_fleet(tmp_path, "exports/{as_of:%Y%m%d}/sales.parquet", filter=[term])
     staged = batches.stage_inputs(reg, AS_OF, tmp_path / "work")
     assert needle in staged.source_errors["x"] and "Fix: " in staged.source_errors["x"]
-    items = {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+    items = {i.model_id: i for b in staged.batches for i in batchfiles.read_batch(b.path)}
     assert all(any(needle in p["message"] for p in items[m].problems) for m in ("m-a", "m-b"))
 
 

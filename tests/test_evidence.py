@@ -436,7 +436,7 @@ def test_a_tampered_or_missing_history_file_is_named_not_used(tmp_path, damage):
 
 
 def test_staging_uses_one_snapshot_of_the_production_versions(tmp_path, monkeypatch):
-    from fitaudit.tasks import batches
+    from fitaudit.tasks import batches, batchfiles
 
     rng = np.random.default_rng(3)
     fleet = Fleet(tmp_path)
@@ -470,7 +470,7 @@ def test_staging_uses_one_snapshot_of_the_production_versions(tmp_path, monkeypa
 
     monkeypatch.setattr(batches, "_model_input", promotion_meanwhile)
     staged = batches.stage_inputs(reg, AS_OF, tmp_path / "work", archive_root=store)
-    items = {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+    items = {i.model_id: i for b in staged.batches for i in batchfiles.read_batch(b.path)}
     assert items["m-b"].production["version"] == 2  # the version of the snapshot, not the one promoted meanwhile
     assert param_store.production_version(store, "m-b").version == 4
     assert staged.production["versions"]["m-b"] == {"version": 2, "sha256": items["m-b"].production["sha256"]}

@@ -459,9 +459,10 @@ def run(tmp_path_factory):
         spill_path,
     )
     from fitaudit.tasks.batches import stage_inputs
+    from fitaudit.tasks.outcomes import results_rows
     from fitaudit.tasks.registry import load_registry
     from fitaudit.tasks.report import render_run
-    from fitaudit.tasks.results import build_results, results_rows
+    from fitaudit.tasks.results import build_results
 
     root = tmp_path_factory.mktemp("forecast-entries")
     (root / "data").mkdir()
@@ -690,7 +691,7 @@ def test_the_owner_of_failing_forecasts_is_asked_to_re_estimate(run):
 
 def test_verdict_events_name_the_entry_kind(run, monkeypatch):
     from fitaudit.tasks import events
-    from fitaudit.tasks.results import light_record
+    from fitaudit.tasks.outcomes import light_record
 
     sent = []
     monkeypatch.setattr(events, "emit_event", lambda **kw: sent.append(kw))
@@ -711,8 +712,8 @@ def test_verdict_events_name_the_entry_kind(run, monkeypatch):
 
 
 def test_refits_refuse_forecast_entries(run):
+    from fitaudit.tasks.outcomes import light_record
     from fitaudit.tasks.refit import NotRefittableError, refit_targets, refuse_forecast_entries
-    from fitaudit.tasks.results import light_record
 
     reg = run["registry"]
     with pytest.raises(

@@ -30,7 +30,7 @@ import pytest
 sys.path.insert(0, __import__("os").path.dirname(__file__))
 from fleet_fixtures import AS_OF, AUDITED, N_DAYS, Fleet, ar1, days, long_table, results_of  # noqa: E402
 
-from fitaudit.tasks import batches  # noqa: E402
+from fitaudit.tasks import batches, batchfiles  # noqa: E402
 from fitaudit.tasks.extracts import ExtractError, fingerprint_source, read_series  # noqa: E402
 from fitaudit.tasks.registry import load_registry  # noqa: E402
 
@@ -212,7 +212,7 @@ def _stage_task_runs(flow_run_id) -> list:
 
 
 def _items(staged) -> dict:
-    return {i.model_id: i for b in staged.batches for i in batches.read_batch(b.path)}
+    return {i.model_id: i for b in staged.batches for i in batchfiles.read_batch(b.path)}
 
 
 def _secrets(store) -> list[str]:

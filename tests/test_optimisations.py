@@ -158,7 +158,8 @@ def registry(demo):
 
 def test_staging_in_several_scans_writes_the_same_batches(demo, registry, tmp_path):
     from fitaudit.demo import DEMO_AS_OF
-    from fitaudit.tasks.batches import read_batch, stage_inputs
+    from fitaudit.tasks.batches import stage_inputs
+    from fitaudit.tasks.batchfiles import read_batch
 
     one = stage_inputs(
         registry, DEMO_AS_OF, tmp_path / "one", archive_root=demo["archive"], batch_size=4, series_per_scan=10**6
@@ -235,8 +236,9 @@ def _reference_run(
         with_candidates,
     )
     from fitaudit.tasks.batches import stage_inputs
+    from fitaudit.tasks.outcomes import results_rows
     from fitaudit.tasks.report import render_run
-    from fitaudit.tasks.results import build_results, results_rows
+    from fitaudit.tasks.results import build_results
 
     staged = stage_inputs(
         registry, DEMO_AS_OF, work, archive_root=str(archive), model_ids=DEMO_SUBSET, series_per_scan=10**6

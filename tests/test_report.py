@@ -2,7 +2,7 @@
 
 Fixture documents come from the real pipeline: seeded series are audited with
 ``fitaudit.core.audit.audit_series``, adjusted across the run with ``apply_fleet_rules`` and
-wrapped with ``fitaudit.tasks.results.model_record`` / ``build_results``.  Pages are parsed with the
+wrapped with ``fitaudit.tasks.outcomes.model_record`` / ``build_results``.  Pages are parsed with the
 standard library's ``html.parser``; colour contrast is computed with the WCAG 2.1 formulas.
 """
 
@@ -25,8 +25,9 @@ from fitaudit.core.audit import AuditSettings, apply_fleet_rules, audit_series
 from fitaudit.core.exceptions import InputError
 from fitaudit.core.models.arima import Arima
 from fitaudit.tasks import archive
+from fitaudit.tasks.outcomes import model_record
 from fitaudit.tasks.report import HEAT_BINS, STATUS, environment, render_archive_index, render_run
-from fitaudit.tasks.results import build_results, model_record
+from fitaudit.tasks.results import build_results
 
 try:
     from fitaudit.core.models.smoothing import ExpSmoothing

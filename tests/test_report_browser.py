@@ -31,8 +31,9 @@ import pytest
 
 from fitaudit.core.audit import AuditSettings, apply_fleet_rules, audit_series
 from fitaudit.core.models.arima import Arima
+from fitaudit.tasks.outcomes import model_record
 from fitaudit.tasks.report import STATUS, render_run
-from fitaudit.tasks.results import build_results, model_record
+from fitaudit.tasks.results import build_results
 
 pytestmark = pytest.mark.browser
 

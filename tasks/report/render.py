@@ -62,7 +62,7 @@ def render_model_page(m: Mapping[str, Any], context: Mapping[str, Any], as_of: s
 def render_index_page(doc: Mapping[str, Any], context: Mapping[str, Any]) -> bytes:
     """``index.html``: summary, exceptions, movement and every model's status row.
 
-    ``doc["models"]`` may hold :func:`fitaudit.tasks.results.light_record` views instead of the
+    ``doc["models"]`` may hold :func:`fitaudit.tasks.outcomes.light_record` views instead of the
     full records (the page shows only their headline numbers); they are checked as in
     :func:`render_run`.
     """

@@ -11,8 +11,8 @@ from fitaudit.core.exceptions import InputError
 from fitaudit.core.verdict import CAUTION_PREFIX
 from fitaudit.core.vocabulary import ADJUSTMENT_LABELS
 
+from ..outcomes import SEVERITY
 from ..registry import SAFE_ID
-from ..results import SEVERITY
 from .charts import Scale, new_chart
 from .labels import MOVEMENT, STATUS, status_view
 from .text import SHORT_TEXT, coord, format_number, to_float, user_text
@@ -30,7 +30,7 @@ def _check_models(models: Sequence[Mapping[str, Any]]) -> None:
             raise InputError(
                 f"render_run: model #{k} (id {str(m.get('id'))[:80]!r}) has safe_id {str(safe)[:80]!r}, "
                 f"which is not a safe file name (pattern {SAFE_ID.pattern}); build the record with "
-                "fitaudit.tasks.results.model_record from the registry's safe_id"
+                "fitaudit.tasks.outcomes.model_record from the registry's safe_id"
             )
         if safe.lower() in seen:
             raise InputError(

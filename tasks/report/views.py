@@ -13,9 +13,9 @@ from typing import Any
 from fitaudit.core.exceptions import InputError
 from fitaudit.core.verdict import CAUTION_PREFIX, owner_action
 
+from ..outcomes import is_forecast_record
 from ..registry import SAFE_ID
 from ..registry.schema import DaysToAct
-from ..results import is_forecast_record
 from .charts import HEAT_SCALE_WORDS, heat_legend
 from .labels import CAUTION, FORECAST_ACTIONS, SETTING_LABELS, STATUS, labelled_rows, status_view
 from .text import SHORT_TEXT, user_text
