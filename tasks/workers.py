@@ -185,7 +185,7 @@ def run_local(token: str | None, fn: Callable[..., T], *args: Any) -> T:
         return fn(*args)
     try:
         return pool.submit(_run_and_release, fn, *args).result()
-    except BrokenProcessPool:
+    except (BrokenProcessPool, cf.CancelledError):  # a call still queued when the pool shut down is cancelled
         if token in _STOPPED:
             raise WorkersStopped("the run was interrupted; its worker processes were stopped") from None
         raise
