@@ -227,8 +227,12 @@ nor pandas, every process returns freed memory to the system after staging, cali
 worker call (`tasks/memory.py`: pyarrow's pool kept about 110 MB per 1,000 series after the
 scans, glibc's heap about 60 MB after the null tables), and the fleet child no longer imports the
 peer's statsmodels. On a 2,000-model fleet, same machine, before -> after: flow process 623 -> 548
-MiB, server 239 -> 238 MiB, workers 928 -> 692 MiB, tree 1,756 -> 1,368 MiB; the next `make bench`
-measures 10,000 models. The earlier run: the flow process peaked at 0.85 GB for 10,000 models and
+MiB, server 239 -> 238 MiB, workers 928 -> 692 MiB, tree 1,756 -> 1,368 MiB. At 5,000 models
+(after): flow 659 MiB, server 247 MiB, workers 703 MiB, tree 1,509 MiB. With the retained memory gone,
+the flow process's own growth shows: about 50 MiB per 1,000 models (the registry's entries about
+20 KB each, a light outcome about 24 KB in memory, then the light records), so 10,000 models would
+reach about 1.7 GiB for the tree by extrapolation: likely still a miss, which the next `make bench`
+measures. The earlier run: the flow process peaked at 0.85 GB for 10,000 models and
 grows by a few MB per 1,000 models (2.6 MB here, 5.7 MB in an earlier run; the peaks vary by
 about 0.1 GB between runs), well below the size of the results themselves
 (`results.json`, 21 MB per 1,000): it holds a light outcome per model until its batch is rendered,
