@@ -859,8 +859,15 @@ def test_duplicate_file_names_and_missing_metadata_are_refused(doc):
     bad["models"][1]["safe_id"] = bad["models"][0]["safe_id"].upper()
     with pytest.raises(InputError, match="share the file name"):
         render_run(bad, META)
-    with pytest.raises(InputError, match="meta lacks code_commit"):
-        render_run(doc, {k: v for k, v in META.items() if k != "code_commit"})
+    with pytest.raises(InputError, match="meta lacks prefect_version"):
+        render_run(doc, {k: v for k, v in META.items() if k != "prefect_version"})
+
+
+def test_a_run_of_an_installed_package_has_no_commit_and_still_renders(doc):
+    # fitaudit installed from a wheel is no git checkout: code_commit() gives None
+    pages = render_run(doc, dict(META, code_commit=None))
+    tool = next(dd for dd in parse(pages["index.html"]).iter("dd") if "fitaudit" in dd.text())
+    assert "none recorded (an installed package, not a git checkout)" in tool.text()
 
 
 def test_environment_escapes_and_is_strict():

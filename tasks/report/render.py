@@ -83,8 +83,9 @@ def render_run(doc: dict, meta: dict) -> dict[str, bytes]:
         The results document (:func:`fitaudit.tasks.results.build_results`, JSON-ready).
     meta : dict
         Run metadata not in the document: ``run_id``, ``started_utc``, ``finished_utc``,
-        ``operator``, ``tool_version``, ``code_commit``, ``prefect_version`` and, optionally,
-        ``archive_head`` (the chain hash before this run) and ``previous_run_id``.
+        ``operator``, ``tool_version``, ``prefect_version`` and, optionally, ``code_commit`` (None
+        for an installed package, which the pages say), ``archive_head`` (the chain hash before
+        this run) and ``previous_run_id``.
 
     Returns
     -------

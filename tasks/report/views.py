@@ -20,7 +20,9 @@ from .charts import HEAT_SCALE_WORDS, heat_legend
 from .labels import CAUTION, FORECAST_ACTIONS, SETTING_LABELS, STATUS, labelled_rows, status_view
 from .text import SHORT_TEXT, user_text
 
-_REQUIRED_META = ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "code_commit", "prefect_version")
+_REQUIRED_META = ("run_id", "started_utc", "finished_utc", "operator", "tool_version", "prefect_version")
+#: Shown for ``code_commit`` when the run's fitaudit is an installed package rather than a git checkout.
+NO_COMMIT = "none recorded (an installed package, not a git checkout)"
 
 
 def deciding_check(audit: Mapping[str, Any] | None) -> Mapping[str, Any] | None:
@@ -41,9 +43,10 @@ def meta_view(meta: Mapping[str, Any]) -> dict:
     if missing:
         raise InputError(
             f"render_run: meta lacks {', '.join(missing)}; pass every one of {', '.join(_REQUIRED_META)} "
-            "(archive_head and previous_run_id are optional)"
+            "(code_commit, archive_head and previous_run_id are optional)"
         )
     view = {k: user_text(meta[k], SHORT_TEXT) for k in _REQUIRED_META}
+    view["code_commit"] = user_text(meta.get("code_commit"), SHORT_TEXT) or NO_COMMIT
     view["archive_head"] = user_text(meta.get("archive_head")) or None
     view["previous_run_id"] = user_text(meta.get("previous_run_id")) or None
     view["previous_as_of"] = user_text(meta.get("previous_as_of")) or None
