@@ -273,7 +273,7 @@ def _stale_sources_view(meta: Mapping[str, Any]) -> list[str]:
         shown = ", ".join(models[:_STALE_MODELS_SHOWN]) + (
             f" and {len(models) - _STALE_MODELS_SHOWN} more" if len(models) > _STALE_MODELS_SHOWN else ""
         )
-        last = user_text(str(s.get("last") or "unknown")[:10] if s.get("last") else "unknown", 40)
+        last = user_text(str(s["last"])[:10], 40) if s.get("last") else "unknown"  # the date of a UTC timestamp
         out.append(
             f"Source {user_text(name, 80)} ({user_text(s.get('uri'), 200)}) was last observed on {last}, more than "
             f"{user_text(s.get('allowed'), 10)} period(s) of frequency {user_text(s.get('frequency'), 10)} before the "
