@@ -463,11 +463,35 @@ def settings_refit_table(
     )
 
 
-def shape_key(shape: float | None) -> float | None:
-    """Shape value used in table keys: two significant digits (the null is simulated there)."""
+#: Rows of simulated residuals fitted at a time when a refit table is built.
+_FIT_BLOCK_ROWS = 256
+
+#: Step of the grid in ``1 / nu`` on which the null of a student-t law with estimated degrees of
+#: freedom is simulated (docs/method.md §7.3).
+INVERSE_SHAPE_STEP = 0.02
+
+
+def shape_key(shape: float | None, estimated: bool = False) -> float | None:
+    """Shape value at which a table is simulated and by which it is keyed.
+
+    A fixed shape is used as given.  An estimated student-t degrees of freedom ``nu`` is moved to
+    the nearest point of a grid uniform in ``1 / nu`` with step :data:`INVERSE_SHAPE_STEP`,
+    ``nu_key = 1 / (k h)`` with ``k = max(1, round(1 / (nu h)))``: the t density differs from the
+    normal by a term of order ``1 / nu`` (``f_nu(z) = phi(z) (1 + (z^4 - 2 z^2 - 1) / (4 nu) +
+    O(nu^-2))``, Johnson, Kotz and Balakrishnan 1995, ch. 28; from memory), so equal steps in
+    ``1 / nu`` are equal steps in distance from the normal, and every estimate above
+    ``2 / (3 h)`` (about 33) shares the table at ``nu = 1 / h`` (50).  The step is far below the
+    estimate's own error and the tables' Monte Carlo error (docs/method.md §7.3).
+
+    >>> shape_key(7.3), shape_key(7.3, estimated=True), shape_key(180.0, estimated=True)
+    (7.3, 7.142857142857142, 50.0)
+    """
     if shape is None:
         return None
-    return float(f"{shape:.2g}")
+    if not estimated:
+        return float(shape)
+    k = max(1, round(1.0 / (float(shape) * INVERSE_SHAPE_STEP)))
+    return 1.0 / (k * INVERSE_SHAPE_STEP)
 
 
 def refit_table(
@@ -498,8 +522,9 @@ def refit_table(
             f"refit_table: the {law.name} law has no pivotal null after re-estimation (its law depends on the "
             "predictive means); count checks use production_table."
         )
-    skey = shape_key(shape)
-    estimated = "shape estimated" if (law.has_shape and law.shape is None) else "shape fixed"
+    shape_free = law.has_shape and law.shape is None
+    skey = shape_key(shape, estimated=shape_free)
+    estimated = "shape estimated" if shape_free else "shape fixed"
     key = (
         "refit",
         f"law={law.name}",
@@ -518,8 +543,12 @@ def refit_table(
     def build() -> NullTable:
         rng = key_rng(seed, *key)
         x = law.sample_standard((2 * replicates, n), rng, shape=skey)
-        loc, scale, shp = law.fit_batch(x, location=location)
-        u = law.cdf_batch(x, loc, scale, shp)
+        u = np.empty_like(x)
+        # rows are fitted independently, so blocks give the same values with a fraction of the
+        # Newton iterations' temporary arrays (about ten of the block's size)
+        for start in range(0, len(x), _FIT_BLOCK_ROWS):
+            block = x[start : start + _FIT_BLOCK_ROWS]
+            u[start : start + _FIT_BLOCK_ROWS] = law.cdf_batch(block, *law.fit_batch(block, location=location))
         maps = _map_statistics(cell_counts(u, s), s, alphas, betas, scaling, r)
         return _with_gate(key, maps, replicates, gate, u)
 

@@ -188,3 +188,31 @@ def test_nrr_restores_chi_square_size(rng):
     # between chi2(s - 3) and chi2(s - 1) (Chernoff and Lehmann 1954), so it rejects less (docs/method.md §5.3, §5.4)
     assert 0.02 <= rate_y2 <= 0.09
     assert rate_x2 < rate_y2
+
+
+def test_estimated_t_shapes_in_one_grid_cell_share_a_table():
+    """An estimated degrees of freedom is simulated on the grid uniform in 1/nu (docs/method.md §7.3):
+    5.5 and 5.7 (1/nu 0.182 and 0.175) fall in the cell of 1/nu = 0.18, 8.0 does not."""
+    law = get_law("student-t")
+    cache = CalibrationCache()
+    tables = [refit_table(law, 80, 8, True, *GRID, 99, 3, shape=nu, cache=cache) for nu in (5.5, 5.7, 8.0)]
+    assert cache.builds == 2 and tables[0] is tables[1] and tables[2] is not tables[0]
+    assert "shape=5.555555555555555" in tables[0].key  # 1 / (9 * 0.02)
+    # a fixed shape is simulated as given
+    fixed = refit_table(get_law("student-t", 5.7), 80, 8, True, *GRID, 99, 3, shape=5.7, cache=cache)
+    assert "shape=5.7" in fixed.key
+
+
+def test_refit_table_blocks_give_the_table_of_one_pass(monkeypatch):
+    """Fitting the simulated rows in blocks (to bound the memory) changes no value of the table."""
+    from fitaudit.core import calibration
+
+    law = get_law("student-t")
+    tables = []
+    for rows in (10**9, 37):
+        monkeypatch.setattr(calibration, "_FIT_BLOCK_ROWS", rows)
+        tables.append(refit_table(law, 60, 8, True, *GRID, 99, 5, shape=9.0))
+    whole, blocks = tables
+    assert whole.key == blocks.key
+    np.testing.assert_array_equal(whole.r_max, blocks.r_max)
+    np.testing.assert_array_equal(whole.reference, blocks.reference)
