@@ -210,25 +210,15 @@ def is_stationary(phi: np.ndarray) -> bool:
 def _psi_weights(ar_poly: np.ndarray, ma_poly: np.ndarray, n: int) -> np.ndarray:
     """First ``n`` coefficients of ``theta(B) / phi(B) = sum psi_j B^j``.
 
-    ``psi_j = theta_j + sum_{i=1}^{min(j, p)} phi_i psi_{j-i}`` (a short recursion; lfilter for long ones).
+    ``psi_j = theta_j + sum_{i=1}^{min(j, p)} phi_i psi_{j-i}``: the impulse response of the filter
+    ``theta(B) / phi(B)`` (Brockwell and Davis 1991, eq. 3.3.3).
     """
-    if n > 8:
-        impulse = np.zeros(n)
-        impulse[0] = 1.0
-        return signal.lfilter(ma_poly, ar_poly, impulse)
-    phi = -np.asarray(ar_poly[1:], dtype=float)
-    psi = [0.0] * n
-    for j in range(n):
-        value = ma_poly[j] if j < len(ma_poly) else 0.0
-        for i in range(1, min(j, phi.size) + 1):
-            value += phi[i - 1] * psi[j - i]
-        psi[j] = value
-    return np.array(psi)
+    impulse = np.zeros(n)
+    impulse[:1] = 1.0
+    return signal.lfilter(ma_poly, ar_poly, impulse)
 
 
-def arma_autocovariance(
-    ar_poly: np.ndarray, ma_poly: np.ndarray, nlags: int, basis: np.ndarray | None = None
-) -> np.ndarray:
+def arma_autocovariance(ar_poly: np.ndarray, ma_poly: np.ndarray, nlags: int) -> np.ndarray:
     """Autocovariances ``gamma(0..nlags-1)`` of a stationary ARMA process with unit innovation variance.
 
     Solves the linear system ``gamma(k) - sum_j phi_j gamma(|k - j|) = sum_{j>=k} theta_j psi_{j-k}``
@@ -237,11 +227,10 @@ def arma_autocovariance(
     Parameters
     ----------
     ar_poly, ma_poly : ndarray
-        ``[1, -phi_1, ..., -phi_p]`` and ``[1, theta_1, ..., theta_q]`` (trailing zeros allowed).
+        ``[1, -phi_1, ..., -phi_p]`` and ``[1, theta_1, ..., theta_q]`` (trailing zeros allowed,
+        but each one enlarges the system).
     nlags : int
         Number of lags wanted (>= 1).
-    basis : ndarray, optional
-        Precomputed ``_acov_basis(p, max(nlags, p + 1))`` (see :class:`StateLayout`).
 
     Returns
     -------
@@ -265,23 +254,20 @@ def arma_autocovariance(
     rhs[: min(q + 1, size)] = head[:size]
     if not has_ar:
         return rhs[:nlags]
-    if basis is None or basis.shape[1] != size:
-        basis = _acov_basis(p, size)
-    system = np.tensordot(ar_poly, basis, axes=1)
-    _, _, gamma, info = lapack.dgesv(system, rhs)
+    _, _, gamma, info = lapack.dgesv(_acov_system(ar_poly, size), rhs)
     if info != 0:
         raise np.linalg.LinAlgError("autocovariance system is singular (AR polynomial not stationary?)")
     return gamma[:nlags]
 
 
-def _acov_basis(p: int, size: int) -> np.ndarray:
-    """``basis[j]`` has ones at ``(k, |k - j|)``, k < size: ``sum_j a_j basis[j]`` is the system of
-    :func:`arma_autocovariance` for the AR polynomial ``a`` (``a_0 = 1``)."""
-    basis = np.zeros((p + 1, size, size))
+def _acov_system(ar_poly: np.ndarray, size: int) -> np.ndarray:
+    """The matrix of :func:`arma_autocovariance`: ``sum_j a_j`` at ``(k, |k - j|)`` for ``k < size``
+    and the non-zero coefficients ``a_j`` of ``ar_poly`` (``a_0 = 1``); summed in a fixed order."""
+    lags = np.flatnonzero(ar_poly)
     rows = np.arange(size)
-    for j in range(p + 1):
-        basis[j, rows, np.abs(rows - j)] += 1.0
-    return basis
+    flat = (rows[None, :] * size + np.abs(rows[None, :] - lags[:, None])).ravel()
+    weights = np.repeat(ar_poly[lags], size)
+    return np.bincount(flat, weights=weights, minlength=size * size).reshape(size, size)
 
 
 class StateLayout:
@@ -297,14 +283,11 @@ class StateLayout:
         ``|i - j|``: indices of the autocovariance matrix.
     shift, upper : ndarray
         ``max(j - i, 0)`` and ``j >= i``: indices and support of the cross-covariance matrix.
-    acov_basis : ndarray
-        Basis of the autocovariance system for AR polynomials padded to degree r.
     """
 
     def __init__(self, r: int):
         lags = np.arange(r)
         self.r = r
-        self.acov_basis = _acov_basis(r, r + 1)
         self.hankel = lags[:, None] + lags[None, :] + 1
         self.toeplitz = np.abs(lags[:, None] - lags[None, :])
         shift = lags[None, :] - lags[:, None]
@@ -329,7 +312,7 @@ def state_maps(num: np.ndarray, den: np.ndarray, layout: StateLayout) -> tuple[n
 
 def _second_moments(ar_poly, ma_poly, layout: StateLayout) -> tuple[np.ndarray, np.ndarray]:
     """``G[j, l] = gamma(|j - l|)`` and ``C[j, l] = E[w_{-j} e_{-l}] = psi_{l-j}`` (l >= j), over sigma2."""
-    gamma = arma_autocovariance(ar_poly, ma_poly, layout.r, layout.acov_basis)
+    gamma = arma_autocovariance(ar_poly, ma_poly, layout.r)
     psi = _psi_weights(ar_poly, ma_poly, layout.r)
     return gamma[layout.toeplitz], np.where(layout.upper, psi[layout.shift], 0.0)
 
@@ -339,7 +322,9 @@ def initial_state_covariance(ar_poly: np.ndarray, ma_poly: np.ndarray, layout: S
 
     With ``z = Mw w_past + Me e_past`` (see :func:`state_maps`),
     ``Pz = Mw G Mw' + Mw C Me' + Me C' Mw' + Me Me'``, where ``G[j, l] = gamma(|j - l|)`` and
-    ``C[j, l] = E[w_{-j} e_{-l}] / sigma2 = psi_{l-j}`` for ``l >= j`` (zero otherwise).
+    ``C[j, l] = E[w_{-j} e_{-l}] / sigma2 = psi_{l-j}`` for ``l >= j`` (zero otherwise).  ``Mw`` is
+    zero outside its leading ``p x p`` block (p the AR degree, often far below r in seasonal
+    models), so only ``gamma(0..p-1)`` and the first p rows of ``C`` are needed.
 
     For ``r <= 3`` the same matrix is obtained more cheaply from the state recursion: substituting
     ``w_n = e_n - z_{0,n-1}`` into the lfilter state update gives ``z_n = T z_{n-1} + c e_n`` with
@@ -353,17 +338,23 @@ def initial_state_covariance(ar_poly: np.ndarray, ma_poly: np.ndarray, layout: S
         ``r x r`` matrix, ``r = max(p, q)``.
     """
     layout = layout or StateLayout(max(len(ar_poly), len(ma_poly)) - 1)
-    if layout.r <= _SMALL_STATE:
-        return _small_state_covariance(_padded(ar_poly, layout.r + 1), _padded(ma_poly, layout.r + 1))
-    mw, me = state_maps(ar_poly, ma_poly, layout)
-    has_ar, has_ma = bool(ar_poly[1:].any()), bool(ma_poly[1:].any())
-    if not has_ar:  # Mw = 0
-        return me @ me.T
-    acov, cross = _second_moments(ar_poly, ma_poly, layout)
-    cov = mw @ acov @ mw.T
-    if has_ma:
-        mwc = mw @ cross @ me.T
-        cov += mwc + mwc.T + me @ me.T
+    r = layout.r
+    if r <= _SMALL_STATE:
+        return _small_state_covariance(_padded(ar_poly, r + 1), _padded(ma_poly, r + 1))
+    b, a = _padded(ar_poly, r + 1), _padded(ma_poly, r + 1)
+    mw, me = state_maps(b, a, layout)
+    cov = me @ me.T
+    lags = np.flatnonzero(b[1:])
+    if not lags.size:  # Mw = 0
+        return cov
+    p = int(lags[-1]) + 1
+    gamma = arma_autocovariance(b[: p + 1], a, p)
+    psi = _psi_weights(b[: p + 1], a, r)
+    mw = mw[:p, :p]
+    cross = np.zeros((r, r))
+    cross[:p] = mw @ np.where(layout.upper[:p], psi[layout.shift[:p]], 0.0) @ me.T
+    cov += cross + cross.T
+    cov[:p, :p] += mw @ gamma[layout.toeplitz[:p, :p]] @ mw.T
     return cov
 
 

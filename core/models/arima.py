@@ -31,7 +31,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .._scipy import lapack, optimize
+from .._scipy import lapack
 from .._validation import Interval, Options, validate_params
 from ..exceptions import ConvergenceWarning, InputError, InsufficientDataError, SpecificationError
 from . import _arma
@@ -47,6 +47,9 @@ _MAX_UNCONSTRAINED = 1e4  # |x| cap of the transform: partial autocorrelation wi
 _GRADIENT_STEP = 1e-7  # relative forward-difference step on the transformed scale
 _GTOL = 1e-5  # BFGS gradient tolerance of -loglik/m on the transformed scale
 _GAIN_TOLERANCE = 1e-4  # remaining log-likelihood gain predicted by the quasi-Newton model
+_STEP_GAIN_TOLERANCE = 1e-5  # log-likelihood gain of a full quasi-Newton step that ends the iterations
+_ARMIJO = 1e-4  # sufficient-decrease constant of the line search (Nocedal and Wright 2006, sect. 3.1)
+_LINE_SEARCH_STEPS = 30  # trial points per line search before the search direction is given up
 _CSS_TOLERANCE = 1e-10  # relative decrease of the sum of squares that ends Gauss-Newton (method="css")
 _START_TOLERANCE = 1e-5  # the same when the conditional fit only starts the exact one
 _HESSIAN_STEP = 1e-4  # relative step of the forward-difference Hessian (standard errors)
@@ -514,15 +517,26 @@ class _Estimator:
         self.rows[0] -= data.ols @ data.rows[1:]
         self.exact = _arma.ExactLikelihood(self.rows, self.layout.r)
         self.conditional = _arma.ConditionalLikelihood(self.rows, self.layout.pstar, self.layout.r)
+        # pieces by (criterion, coefficient bytes): the optimiser's last point is evaluated again
+        # for the estimates and the standard errors; a pure function of the bytes, so reusing it
+        # changes no result
+        self._memo: dict = {}
 
     # -- profiled criteria ----------------------------------------------------------------
     def _pieces(self, coefs: np.ndarray, criterion: str) -> tuple[np.ndarray, float, int]:
         """``(gram, logdet, nobs)`` of the exact or conditional criterion at ``coefs``."""
+        key = (criterion, coefs.tobytes())
+        found = self._memo.get(key)
+        if found is not None:
+            return found
         polynomials = self.layout.polynomials(coefs)
         if criterion == "exact":
             system = self.exact.system(*polynomials)
-            return system.gram, system.logdet, self.exact.nobs
-        return self.conditional.gram(*polynomials), 0.0, self.conditional.nobs
+            found = system.gram, system.logdet, self.exact.nobs
+        else:
+            found = self.conditional.gram(*polynomials), 0.0, self.conditional.nobs
+        self._memo[key] = found
+        return found
 
     def evaluate(self, coefs: np.ndarray, criterion: str) -> _Point:
         """Log-likelihood, regression correction (to least squares) and sigma2 at ``coefs``."""
@@ -616,44 +630,102 @@ class _Estimator:
         except (np.linalg.LinAlgError, ValueError):
             return np.inf
 
-    def _value_and_gradient(self, x: np.ndarray) -> tuple[float, np.ndarray]:
-        """Objective and its forward-difference gradient."""
-        f0 = self._objective(x)
+    def _gradient(self, x: np.ndarray, f0: float) -> np.ndarray:
+        """Forward-difference gradient of :meth:`_objective` at ``x`` (where it equals ``f0``)."""
         grad = np.empty(x.size)
         for i in range(x.size):
             step = _GRADIENT_STEP * max(1.0, abs(x[i]))
             shifted = x.copy()
             shifted[i] += step
             grad[i] = (self._objective(shifted) - f0) / step
-        return f0, grad
+        return grad
 
     def exact_fit(self, coefs0: np.ndarray, information: np.ndarray) -> tuple[np.ndarray, bool, str, int]:
         """Maximise the exact likelihood by BFGS on the transformed coefficients from ``coefs0``.
 
-        The initial inverse Hessian is the Gauss-Newton information carried to the transformed
-        scale, ``m (T' I T)^{-1}`` with ``T`` the Jacobian of the transform.  Converged means
-        scipy's criterion was met, or the log-likelihood gain still predicted by the quasi-Newton
-        model, ``m g' H^{-1} g / 2``, is below 1e-4 (finite-difference gradients often end BFGS
-        with a "precision loss" message at the optimum).
+        Quasi-Newton iterations (Nocedal and Wright 2006, "Numerical Optimization", 2nd ed.,
+        algorithm 6.1) with a backtracking line search: the step ``-H g`` is tried at full length
+        and shortened by safeguarded quadratic interpolation (factor 0.1 to 0.5) until the
+        sufficient-decrease condition ``f(x + a p) <= f(x) + 1e-4 a g'p`` holds (their
+        algorithm 3.1 and sect. 3.5); trial points need no gradient, which is computed by forward
+        differences only at accepted points.  The inverse Hessian ``H`` is updated by the BFGS
+        formula (eq. 6.17) when the curvature ``s'y`` is positive and kept otherwise.  The
+        initial ``H`` is the Gauss-Newton information carried to the transformed scale,
+        ``m (T' I T)^{-1}`` with ``T`` the Jacobian of the transform.  The iterations stop when
+        the largest gradient component of ``-loglik/m`` is below 1e-5, or when no step along the
+        quasi-Newton direction lowers the objective (forward-difference gradients are noisy at
+        the optimum), or after a full-length step whose log-likelihood gain, both predicted by the
+        quasi-Newton model (``m g' H g / 2``) and achieved, is below 1e-5 (near the optimum BFGS
+        converges superlinearly, so the gain left after such a step is far smaller still).
+        Converged means the first or the last, or the gain still predicted at the last gradient
+        below 1e-4.
 
         Returns
         -------
         coefs, converged, message, evaluations
         """
-        m = self.exact.nobs
-        x0 = self.layout.unconstrain(coefs0)
-        jac = self.layout.transform_jacobian(x0)
-        options = {"maxiter": self.spec.maxiter, "gtol": _GTOL}
-        hess_inv0 = _inverse_if_definite(jac.T @ information @ jac / m)
-        if hess_inv0 is not None:
-            options["hess_inv0"] = hess_inv0
-        res = optimize.minimize(self._value_and_gradient, x0, jac=True, method="BFGS", options=options)
-        gain = 0.5 * m * float(res.jac @ res.hess_inv @ res.jac)
-        converged = bool(
-            np.isfinite(res.fun) and (res.success or gain < _GAIN_TOLERANCE) and res.nit < self.spec.maxiter
-        )
-        evaluations = int(res.nfev) * (1 + x0.size)
-        return self.layout.constrain(res.x), converged, f"exact: {res.message}", evaluations
+        m, size, maxiter = self.exact.nobs, self.layout.size, self.spec.maxiter
+        x = self.layout.unconstrain(coefs0)
+        jac = self.layout.transform_jacobian(x)
+        identity = np.eye(size)
+        hess_inv = _inverse_if_definite(jac.T @ information @ jac / m)
+        if hess_inv is None:
+            hess_inv = identity
+        f = self._objective(x)
+        evaluations = 1
+        if not np.isfinite(f):
+            return coefs0, False, "exact: the likelihood is not finite at the starting values", evaluations
+        grad = self._gradient(x, f)
+        evaluations += size
+        message, stopped = f"exact: iteration limit {maxiter} reached", False
+        for iteration in range(1, maxiter + 1):
+            if np.max(np.abs(grad)) <= _GTOL:
+                message, stopped = f"exact: converged ({iteration - 1} iterations, gradient below tolerance)", True
+                break
+            direction = -(hess_inv @ grad)
+            slope = float(grad @ direction)
+            if not slope < 0.0:  # not a descent direction: restart from steepest descent
+                hess_inv = identity
+                direction, slope = -grad, -float(grad @ grad)
+            step, accepted = 1.0, False
+            for _ in range(_LINE_SEARCH_STEPS):
+                trial = x + step * direction
+                f_trial = self._objective(trial)
+                evaluations += 1
+                if f_trial <= f + _ARMIJO * step * slope:
+                    accepted = True
+                    break
+                if np.isfinite(f_trial):
+                    curvature = f_trial - f - slope * step
+                    guess = -slope * step * step / (2.0 * curvature) if curvature > 0 else 0.1 * step
+                    step = min(max(guess, 0.1 * step), 0.5 * step)
+                else:
+                    step *= 0.1
+            if not accepted:
+                message = f"exact: stopped after {iteration - 1} iterations (no decrease along the search direction)"
+                break
+            if step == 1.0 and -0.5 * m * slope < _STEP_GAIN_TOLERANCE and m * (f - f_trial) < _STEP_GAIN_TOLERANCE:
+                # a full quasi-Newton step whose predicted and actual gains are negligible ends at the
+                # optimum (superlinear convergence): its gradient would only confirm it
+                x, f = trial, f_trial
+                message, stopped = f"exact: converged ({iteration} iterations, last step's gain below tolerance)", True
+                break
+            grad_trial = self._gradient(trial, f_trial)
+            evaluations += size
+            s, y = trial - x, grad_trial - grad
+            sy = float(s @ y)
+            if sy > 0.0:
+                hy = hess_inv @ y
+                rho = 1.0 / sy
+                hess_inv = (
+                    hess_inv
+                    + ((sy + float(y @ hy)) * rho * rho) * np.outer(s, s)
+                    - rho * (np.outer(hy, s) + np.outer(s, hy))
+                )
+            x, f, grad = trial, f_trial, grad_trial
+        gain = 0.5 * m * float(grad @ hess_inv @ grad)
+        converged = bool(stopped or (gain < _GAIN_TOLERANCE and iteration < maxiter))
+        return self.layout.constrain(x), converged, message, evaluations
 
     # -- standard errors ------------------------------------------------------------------
     def standard_errors(self, coefs: np.ndarray, point: _Point, names: list[str]) -> dict:
@@ -667,16 +739,16 @@ class _Estimator:
         out = dict.fromkeys(names, math.nan)
         out["sigma2"] = point.sigma2 * math.sqrt(2.0 / point.nobs)
         n_arma = self.layout.size
-        pieces = {}
+        checked = set()
 
         def loglik(theta: np.ndarray) -> float:
             arma, beta = theta[:n_arma], theta[n_arma:]
             key = arma.tobytes()
-            if key not in pieces:
+            if key not in checked:
                 if not self.layout.in_region(arma):
                     raise ValueError("outside the stationary/invertible region")
-                pieces[key] = self._pieces(arma, self.spec.method)
-            gram, logdet, nobs = pieces[key]
+                checked.add(key)
+            gram, logdet, nobs = self._pieces(arma, self.spec.method)
             c = _coef_vector(beta)
             q = float(c @ gram @ c)
             return _arma.profile_loglik(logdet, q, nobs)[0]
