@@ -208,6 +208,15 @@ def test_autocovariances_match_statsmodels():
     np.testing.assert_allclose(ours, arma_acovf(ar_poly, ma_poly, nobs=8), rtol=1e-10)  # source: statsmodels arma_acovf
 
 
+@pytest.mark.parametrize("nlags", [1, 2, 6])
+def test_autocovariances_with_one_ar_coefficient_match_statsmodels(nlags):
+    ar_poly = np.array([1.0, 0.7])
+    ma_poly = np.array([1.0, 0.4, 0.0, 0.0, 0.0, -0.3])
+    ours = _arma.arma_autocovariance(ar_poly, ma_poly, nlags)
+    # source: statsmodels arma_acovf
+    np.testing.assert_allclose(ours, arma_acovf(ar_poly, ma_poly, nobs=nlags), rtol=1e-10)
+
+
 @pytest.mark.parametrize("pacf", [[0.5], [0.9, -0.8], [-0.3, 0.6, 0.95, -0.2]])
 def test_pacf_transform_gives_stationary_polynomials_and_inverts(pacf):
     phi = _arma.pacf_to_coefficients(np.array(pacf))
@@ -227,6 +236,9 @@ def test_pacf_transform_gives_stationary_polynomials_and_inverts(pacf):
         ([1.0, -0.6], [1.0, 0.3]),
         ([1.0, -0.5, 0.3], [1.0, 0.4, 0.0]),
         ([1.0, -0.2, 0.1, -0.3, 0.05], [1.0, 0.5, 0.1, 0.0, 0.2]),
+        ([1.0, -0.5], [1.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, -0.6]),  # AR(1)(0,0,1)7: one AR lag, r = 7
+        ([1.0, 0.8], [1.0, 0.4, 0.0, 0.0, 0.0, 0.0, 0.0, -0.6, -0.24]),  # (1 + 0.4B)(1 - 0.6B^7)
+        ([1.0, -0.4, 0.0, 0.0, -0.5, 0.2], [1.0, 0.3]),  # (1 - 0.4B)(1 - 0.5B^4): two AR lags apart
     ],
 )
 def test_state_covariance_equals_the_covariance_of_lfiltic_states(ar_poly, ma_poly):

@@ -213,6 +213,15 @@ def _psi_weights(ar_poly: np.ndarray, ma_poly: np.ndarray, n: int) -> np.ndarray
     ``psi_j = theta_j + sum_{i=1}^{min(j, p)} phi_i psi_{j-i}``: the impulse response of the filter
     ``theta(B) / phi(B)`` (Brockwell and Davis 1991, eq. 3.3.3).
     """
+    if len(ar_poly) == 2 and n <= 16:  # one AR coefficient: a short scalar recursion beats the filter call
+        phi = -float(ar_poly[1])
+        theta = ma_poly.tolist()[:n]
+        theta += [0.0] * (n - len(theta))
+        psi, previous = [], 0.0
+        for value in theta:
+            previous = value + phi * previous
+            psi.append(previous)
+        return np.array(psi)
     impulse = np.zeros(n)
     impulse[:1] = 1.0
     return signal.lfilter(ma_poly, ar_poly, impulse)
@@ -244,16 +253,28 @@ def arma_autocovariance(ar_poly: np.ndarray, ma_poly: np.ndarray, nlags: int) ->
     """
     ar_poly = np.asarray(ar_poly, dtype=float)
     ma_poly = np.asarray(ma_poly, dtype=float)
+    has_ar = bool(ar_poly[1:].any())
+    psi = _psi_weights(ar_poly, ma_poly, len(ma_poly)) if has_ar else ma_poly
+    return _autocovariance(ar_poly, ma_poly, psi, nlags)
+
+
+def _autocovariance(ar_poly: np.ndarray, ma_poly: np.ndarray, psi: np.ndarray, nlags: int) -> np.ndarray:
+    """:func:`arma_autocovariance` given the weights ``psi_0..psi_q`` (or more)."""
     p = len(ar_poly) - 1
     q = len(ma_poly) - 1
     size = max(nlags, p + 1)
     has_ar = bool(ar_poly[1:].any())
-    psi = _psi_weights(ar_poly, ma_poly, q + 1) if has_ar else ma_poly
     rhs = np.zeros(size)
     head = np.correlate(ma_poly, psi[: q + 1], "full")[q:]
     rhs[: min(q + 1, size)] = head[:size]
     if not has_ar:
         return rhs[:nlags]
+    if p == 1 and nlags <= 2:  # the two equations solved in closed form
+        phi = -float(ar_poly[1])
+        if not abs(phi) < 1.0:
+            raise np.linalg.LinAlgError("autocovariance system is singular (AR polynomial not stationary?)")
+        gamma0 = (rhs[0] + phi * rhs[1]) / (1.0 - phi * phi)
+        return np.array([gamma0, phi * gamma0 + rhs[1]])[:nlags]
     _, _, gamma, info = lapack.dgesv(_acov_system(ar_poly, size), rhs)
     if info != 0:
         raise np.linalg.LinAlgError("autocovariance system is singular (AR polynomial not stationary?)")
@@ -262,12 +283,12 @@ def arma_autocovariance(ar_poly: np.ndarray, ma_poly: np.ndarray, nlags: int) ->
 
 def _acov_system(ar_poly: np.ndarray, size: int) -> np.ndarray:
     """The matrix of :func:`arma_autocovariance`: ``sum_j a_j`` at ``(k, |k - j|)`` for ``k < size``
-    and the non-zero coefficients ``a_j`` of ``ar_poly`` (``a_0 = 1``); summed in a fixed order."""
-    lags = np.flatnonzero(ar_poly)
+    and the non-zero coefficients ``a_j`` of ``ar_poly`` (``a_0 = 1``), added in order of j."""
+    system = np.zeros((size, size))
     rows = np.arange(size)
-    flat = (rows[None, :] * size + np.abs(rows[None, :] - lags[:, None])).ravel()
-    weights = np.repeat(ar_poly[lags], size)
-    return np.bincount(flat, weights=weights, minlength=size * size).reshape(size, size)
+    for j in np.flatnonzero(ar_poly).tolist():
+        system[rows, np.abs(rows - j)] += ar_poly[j]
+    return system
 
 
 class StateLayout:
@@ -348,8 +369,15 @@ def initial_state_covariance(ar_poly: np.ndarray, ma_poly: np.ndarray, layout: S
     if not lags.size:  # Mw = 0
         return cov
     p = int(lags[-1]) + 1
-    gamma = arma_autocovariance(b[: p + 1], a, p)
-    psi = _psi_weights(b[: p + 1], a, r)
+    psi = _psi_weights(b[: p + 1], a, r + 1)
+    gamma = _autocovariance(b[: p + 1], a, psi, p)
+    if p == 1:  # Mw = b_1 e_1 e_1' and Me is symmetric (Hankel): the cross term is one vector
+        b1 = float(b[1])
+        cross = b1 * (me @ psi[:r])
+        cov[0] += cross
+        cov[:, 0] += cross
+        cov[0, 0] += b1 * b1 * gamma[0]
+        return cov
     mw = mw[:p, :p]
     cross = np.zeros((r, r))
     cross[:p] = mw @ np.where(layout.upper[:p], psi[layout.shift[:p]], 0.0) @ me.T
@@ -468,8 +496,14 @@ class ExactLikelihood:
         m = rows.shape[1]
         self._impulse = np.zeros(m)
         self._impulse[0] = 1.0
+        self._one = np.ones(1)
         self._shifted = np.zeros(r + m)
-        self._toeplitz = (r - np.arange(r))[:, None] + np.arange(m)[None, :]
+        # a read-only view of the delayed impulse responses: lagged[i, t] = shifted[r + t - i], so
+        # once shifted[r:] holds g, lagged is H' (rows h_t' of H, column t)
+        step = self._shifted.strides[0]
+        self._lagged = np.lib.stride_tricks.as_strided(
+            self._shifted[r:], shape=(r, m), strides=(-step, step), writeable=False
+        )
 
     @property
     def nobs(self) -> int:
@@ -488,16 +522,19 @@ class ExactLikelihood:
         k = self.rows.shape[0]
         if r == 0:
             return ExactSystem(self.rows, np.empty((0, self.nobs)), 0.0, self.rows @ self.rows.T)
-        b = _padded(ar_poly, r + 1)
-        a = _padded(ma_poly, r + 1)
+        b = ar_poly if len(ar_poly) == r + 1 else _padded(ar_poly, r + 1)
+        a = ma_poly if len(ma_poly) == r + 1 else _padded(ma_poly, r + 1)
         # the response to the unit initial state e_i is the impulse response g of 1/theta(B)
         # delayed by i steps (transposed direct form II), so H is Toeplitz: H[t, i] = g[t - i]
-        g = signal.lfilter([1.0], a, self._impulse)
-        g[np.abs(g) < _NEGLIGIBLE] = 0.0  # keep products clear of (very slow) subnormal numbers
-        self._shifted[r:] = g
+        if a[1:].any():
+            g = signal.lfilter(self._one, a, self._impulse)
+            g[np.abs(g) < _NEGLIGIBLE] = 0.0  # keep products clear of (very slow) subnormal numbers
+            self._shifted[r:] = g
+        else:  # no MA part: g is the unit impulse
+            self._shifted[r:] = self._impulse
         factor = _factor(initial_state_covariance(b, a, self.layout))
         out = np.empty((r + k, self.nobs))
-        out[:r] = factor.T @ np.take(self._shifted, self._toeplitz)  # rows g_t = R' h_t
+        out[:r] = factor.T @ self._lagged  # rows g_t = R' h_t
         out[r:] = signal.lfilter(b, a, self.rows, axis=-1)  # e0 rows
         # one Cholesky of [[M, R'H'U], [U'HR, U'U]], M = I + R'H'HR: its trailing block is the
         # Woodbury-reduced Gram matrix and its leading diagonal gives log det M
