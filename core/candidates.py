@@ -123,6 +123,13 @@ def neighbour_specs(spec: ForecastModel | Mapping[str, Any]) -> list[dict]:
     return out
 
 
+def _independence_rejects(y, model: ForecastModel, noise, exog, settings: AuditSettings, cache) -> bool:
+    """Whether the refit check of ``model`` (with its own law) flags the independence gate."""
+    res = audit_series(y, model.to_dict(), noise=noise, exog=exog, production=None, settings=settings, cache=cache)
+    check = res.refit
+    return check is not None and check.ok and check.gate_flags(settings.level)[1]
+
+
 def search_candidates(
     y,
     spec: ForecastModel | Mapping[str, Any],
@@ -133,6 +140,7 @@ def search_candidates(
     specs: Sequence[Mapping[str, Any]] | None = None,
     laws: Sequence[str] | None = None,
     cache: CalibrationCache | None = None,
+    skip_futile: bool = True,
 ) -> list[Candidate]:
     """Score neighbouring specifications and other noise laws; return the passing ones, best first.
 
@@ -146,6 +154,11 @@ def search_candidates(
         Candidate specifications; default :func:`neighbour_specs` of ``spec``.
     laws : list of str, optional
         Other noise laws tried with the original spec; default the continuous laws.
+    skip_futile : bool, default True
+        Do not try other laws when the original spec's independence gate rejects: the laws share
+        the spec's residuals and the Ljung-Box gate looks only at them (docs/method.md §9), so no
+        law can pass and the list returned is the same; it saves their fits and, for a law whose
+        shape is estimated, its null table.
 
     Returns
     -------
@@ -157,9 +170,10 @@ def search_candidates(
     cache = cache if cache is not None else CalibrationCache()
     settings = settings if settings is not None else AuditSettings()
     trials: list[tuple[dict, Any]] = [(s_, noise) for s_ in (specs if specs is not None else neighbour_specs(model))]
-    for law in laws if laws is not None else CONTINUOUS_LAWS:
-        if law != noise_name:
-            trials.append((model.to_dict(), law))
+    other_laws = [law for law in (laws if laws is not None else CONTINUOUS_LAWS) if law != noise_name]
+    if other_laws and skip_futile and _independence_rejects(y, model, noise, exog, settings, cache):
+        other_laws = []
+    trials += [(model.to_dict(), law) for law in other_laws]
     scored = []
     for cand_spec, cand_noise in trials:
         res = audit_series(

@@ -102,6 +102,29 @@ def test_neglected_seasonality_is_respecify_and_candidates_find_it(cache):
     assert cands[0].passed and cands[0].spec_text.startswith("ARIMA(1,0,0)(1,0,0)7")
 
 
+def test_other_laws_are_not_tried_when_the_specs_independence_gate_rejects(cache, monkeypatch):
+    """Neglected seasonality fails Ljung-Box; the other laws share the residuals, so none can pass:
+    skipping them returns the same candidates and runs no law trial."""
+    import fitaudit.core.candidates as candidates
+
+    rng = np.random.default_rng(14)
+    seasonal = Arima(order=(1, 0, 0), seasonal=(1, 0, 0, 7), trend="c")
+    y = seasonal.simulate({"ar1": 0.5, "sar1": 0.6, "intercept": 10.0, "sigma2": 1.0}, 400, rng)
+    specs = [seasonal.to_dict()]
+    full = search_candidates(y, AR1, settings=FAST, cache=cache, specs=specs, skip_futile=False)
+    laws_tried = []
+    real = candidates.audit_series
+
+    def counting(y_, spec, noise="normal", **kwargs):
+        laws_tried.append(noise)
+        return real(y_, spec, noise=noise, **kwargs)
+
+    monkeypatch.setattr(candidates, "audit_series", counting)
+    quick = search_candidates(y, AR1, settings=FAST, cache=cache, specs=specs)
+    assert [c.to_dict() for c in quick] == [c.to_dict() for c in full] and len(full) == 1
+    assert laws_tried == ["normal", "normal"]  # the spec's own check and the one neighbour
+
+
 @pytest.mark.parametrize("season, lags", [(1, 10), (5, 10), (7, 14), (24, 48), (52, 80)])
 def test_the_calendars_season_sets_the_ljung_box_lags_of_a_model_without_one(cache, season, lags):
     # h = 2m for seasonal data, 10 otherwise, at most n/5 (n = 400 here)
