@@ -172,8 +172,9 @@ class ExpSmoothing(ForecastModel):
     apart, so its fits differ slightly (by little when gamma is small).
 
     *Standard errors* (``FitResult.extras["bse"]``): from the Gauss-Newton information
-    ``J'J / sigma2``, J the central-difference Jacobian of the one-step errors with respect to
-    the parameters; ``bse(sigma2) = sigma2 sqrt(2 / n)``.  Parameters at a bound are listed in
+    ``J'J / sigma2``, J the Jacobian of the one-step errors with respect to the parameters
+    (analytic for an additive season or none, central differences for a multiplicative one);
+    ``bse(sigma2) = sigma2 sqrt(2 / n)``.  Parameters at a bound are listed in
     ``extras["at_bound"]``; their standard errors are not meaningful.
 
     For the Ljung-Box test the model counts no ARMA coefficients (:meth:`n_dynamic_params` is 0):
@@ -305,21 +306,6 @@ class ExpSmoothing(ForecastModel):
         if "gamma" in names:
             z[..., names.index("gamma")] /= 1.0 - alpha
         return z
-
-    def _chain_rule(self, z: np.ndarray, grad: np.ndarray) -> np.ndarray:
-        """Gradient in optimiser coordinates from the gradient in (alpha, beta, gamma, phi)."""
-        names = self._smoothing_names()
-        out = grad.copy()
-        alpha = z[0]
-        if "beta" in names:
-            i = names.index("beta")
-            out[0] += z[i] * grad[i]
-            out[i] = alpha * grad[i]
-        if "gamma" in names:
-            i = names.index("gamma")
-            out[0] -= z[i] * grad[i]
-            out[i] = (1.0 - alpha) * grad[i]
-        return out
 
     def _bounds(self) -> list[tuple[float | None, float | None]]:
         unit = (SMOOTHING_MARGIN, 1.0 - SMOOTHING_MARGIN)
@@ -538,31 +524,20 @@ class ExpSmoothing(ForecastModel):
         """
         profile = _AdditiveProfile(self, y)
         bounds = self._bounds()[: len(self._smoothing_names())]
-
-        def objective(z: np.ndarray) -> float:
-            sse = profile(self._to_natural(np.asarray(z, dtype=float)[None, :])[0])[0]
-            return 0.5 * y.size * np.log(sse) if np.isfinite(sse) and sse > 0 else 1e300
-
-        def value_and_gradient(z: np.ndarray) -> tuple[float, np.ndarray]:
-            theta = self._to_natural(z[None, :])[0]
-            sse, grad, _ = profile.value_and_gradient(theta)
-            if not (np.isfinite(sse) and sse > 0):
-                return 1e300, np.zeros_like(z)
-            return 0.5 * y.size * np.log(sse), 0.5 * y.size / sse * self._chain_rule(z, grad)
-
-        grid = self._start_grid()
-        values = np.array([objective(z) for z in grid])
-        runs = [
-            optimize.minimize(
-                value_and_gradient,
-                grid[i],
-                method="L-BFGS-B",
-                jac=True,
-                bounds=bounds,
-                options={"ftol": 1e-13, "gtol": 1e-9, "maxiter": 500},
-            )
-            for i in np.argsort(values, kind="stable")[:_LOCAL_SEARCHES]
-        ]
+        grid = np.array(self._start_grid())
+        with np.errstate(over="ignore", invalid="ignore"):
+            values = profile.objective_values(self._to_natural(grid))
+            runs = [
+                optimize.minimize(
+                    profile.objective,
+                    grid[i],
+                    method="L-BFGS-B",
+                    jac=True,
+                    bounds=bounds,
+                    options={"ftol": 1e-13, "gtol": 1e-9, "maxiter": 500},
+                )
+                for i in np.argsort(values, kind="stable")[:_LOCAL_SEARCHES]
+            ]
         runs.sort(key=lambda r: (_rounded(r.fun), not r.success))  # near-ties: a converged run first
         out = []
         for res in runs:
@@ -697,10 +672,18 @@ class ExpSmoothing(ForecastModel):
         return bool(np.max(np.abs(pg)) <= 1e-4 * max(1.0, abs(float(res.fun))))
 
     def _standard_errors(self, y: np.ndarray, vec: np.ndarray, sigma2: float) -> dict[str, float]:
-        """sqrt of diag(sigma2 (J'J)^-1), J the central-difference Jacobian of the errors."""
-        Z, step = _central_batch(vec)
-        E = self._batch_errors(y, Z)
-        J = (E[1::2] - E[2::2]).T / (2.0 * step)
+        """sqrt of diag(sigma2 (J'J)^-1), J the Jacobian of the one-step errors with respect to the parameters.
+
+        Additive season (or none): J is analytic (:meth:`_AdditiveProfile.error_jacobian`, the
+        states at their least-squares values as in the fit); multiplicative season: central differences.
+        """
+        if self.seasonal == "mul":
+            Z, step = _central_batch(vec)
+            E = self._batch_errors(y, Z)
+            J = (E[1::2] - E[2::2]).T / (2.0 * step)
+        else:
+            k = len(self._smoothing_names())
+            J = np.concatenate(_AdditiveProfile(self, y).error_jacobian(vec[:k]), axis=1)
         names = self.param_names()
         with np.errstate(invalid="ignore"):
             try:
@@ -795,86 +778,299 @@ class ExpSmoothing(ForecastModel):
 
 
 class _AdditiveProfile:
-    """Profile sum of squares of additive ETS, the initial states solved by least squares, and its gradient.
+    """Profile sum of squares of additive ETS, the initial states solved by least squares, and its derivatives.
 
-    The errors are ``e = lfilter(num, den, y - d)`` with the deterministic path d linear in the
-    states (:meth:`ExpSmoothing._deterministic_path`), so for given smoothing parameters the states
-    are the least-squares coefficients of the filtered path components.  By time invariance the
-    filtered seasonal indicators are shifts of one filtered indicator comb, so only y, the level,
-    the trend and one comb are filtered.
+    With the error filter num/den (:func:`error_filter`) the errors are
+    ``e = den^-1 (num * y - q)``, ``*`` a causal convolution, where ``q = num * d`` is the
+    deterministic path d of the initial states passed through num.  num is the characteristic
+    polynomial of the state transition (unit root, damping factor, seasonal roots), so it
+    annihilates d after its first ``len(num) - 1`` terms: q is a short transient ``q = Q s``,
+    linear in the states s, and ``den^-1 q = Lag(h) Q s`` with h the impulse response of 1/den.
+    Each evaluation therefore filters two rows (num * y and a unit impulse) whatever the number of
+    states; the states are the least-squares coefficients of the columns ``Lag(h) Q``.
 
-    Gradient (envelope theorem, states at their least-squares values): with w_v and w_e the
-    inputs y - d and the errors e passed through 1 / den,
-    ``dSSE/dtheta = 2 sum_j [dnum_j/dtheta (e . w_v shifted by j) - dden_j/dtheta (e . w_e shifted by j)]``
-    plus, for phi, ``2 e . lfilter(num, den, dv/dphi)``.  num and den are affine in each smoothing
-    parameter, so their derivatives are exact unit differences of :func:`error_filter`.
+    The series is centred and scaled first (mean 0, standard deviation 1; the level state absorbs
+    the shift), so sums of squares and tolerances do not depend on the units of y.
+
+    Gradient (envelope theorem, states at their least-squares values): differentiating
+    ``den * e = num * y - q`` gives ``de/dtheta_i = den^-1 (dnum_i * y - dq_i - dden_i * e)``, and
+    ``dSSE/dtheta_i = 2 a . (dnum_i * y - dq_i - dden_i * e)`` with ``a = den^-T e`` the errors
+    filtered backwards in time (the adjoint of the filter), so one more filtered row gives every
+    component.  num and den are affine in each smoothing parameter (:meth:`_polynomials`).
     """
 
     def __init__(self, spec: ExpSmoothing, y: np.ndarray):
         self.spec = spec
-        self.y = y
+        self.names = spec._smoothing_names()
+        self.shift = float(np.mean(y))
+        self.scale = float(np.std(y)) or 1.0
+        self.y = (y - self.shift) / self.scale
         n = y.size
-        self.powers = np.arange(1, n + 1)
-        self.inputs = np.zeros((4, n))  # y, level, trend, seasonal comb
-        self.inputs[0] = y
-        self.inputs[1] = 1.0
+        self.offset = n * np.log(self.scale)  # n/2 log SSE in the units of y from the scaled SSE
+        self.n = n
+        self.trend = bool(spec.trend)
         self.m = spec.period if spec.seasonal else 0
-        if self.m:
-            self.inputs[3, :: self.m] = 1.0
-            self.comb_shifts = _lag_index(n, self.m)
-        self.rows = [0, 1] + ([2] if spec.trend else []) + ([3] if self.m else [])
-        self.n_states = len(spec._state_names())
-        n_coefficients = (self.m or 1) + 1 + bool(spec.trend)  # length of num and den
-        self.coefficient_shifts = _lag_index(n, n_coefficients)
+        self.basis = _filter_basis(self.trend, self.m)
+        self.L = self.basis.shape[1]  # length of num and den
+        self.Lq = self.L - 1  # length of the transient q
+        self.lag_q = _lag_index(n, self.Lq)
+        self.lag_y = _lagged(self.y, _lag_index(n, self.L))  # (n, L) of y[t - j]: num * y = lag_y @ num
+        self.lead = np.arange(n)[:, None] + np.arange(self.L)[None, :]  # x[t + j] (0 beyond the end)
+        self.inputs = np.zeros((2, n))
+        self.impulse = self.inputs[1]
+        self.impulse[0] = 1.0
+        t = np.arange(self.Lq)
+        # deterministic paths of the unit seasonal states at t < Lq (s_k is used at t = m-1-k mod m, minus s_{m-1})
+        self.season_head = (
+            np.stack(
+                [((t % self.m) == self.m - 1 - k).astype(float) - ((t % self.m) == 0) for k in range(self.m - 1)],
+                axis=1,
+            )
+            if self.m
+            else np.zeros((self.Lq, 0))
+        )
+        self.toeplitz = np.subtract.outer(t, t)  # i - j
+        self.toeplitz_index = np.clip(self.toeplitz, 0, None)
+        self.toeplitz_mask = (self.toeplitz >= 0).astype(float)
+        self.head = self._heads(np.ones(1))[0][0]  # (Lq, k); the trend column is refilled for each phi
+        self.head_powers = np.arange(1.0, self.Lq + 1)
+        self.index = {name: i for i, name in enumerate(self.names)}
+        self.n_states = self.head.shape[1]
+        # G_ij = sum_t h(t-i) h(t-j) = (lag |i-j| autocorrelation) - (its last min(i, j) terms)
+        self.gram_lag = np.abs(self.toeplitz)
+        self.gram_first = np.minimum.outer(t, t)
+        self.tail_index = (n - t[:, None] + t[None, :], n + np.broadcast_to(t, (self.Lq, self.Lq)))  # in padded h
 
-    def __call__(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
-        """(SSE, least-squares states) at smoothing parameters ``theta`` (param order)."""
-        sse, states, _ = self._solve(theta)
-        return sse, states
+    # -- filter coefficients -----------------------------------------------------------------
+    def _coefficients(self, Theta: np.ndarray) -> np.ndarray:
+        """(B, 7) weights of the basis rows N0, N1, A0, A1, Bb, G0, G1 (see :func:`_filter_basis`)."""
+        B = Theta.shape[0]
+        col = dict(zip(self.names, Theta.T))
+        a = col["alpha"]
+        b = col.get("beta", np.zeros(B))
+        g = col.get("gamma", np.zeros(B))
+        p = col.get("phi", np.ones(B))
+        return np.stack([np.ones(B), p, a, a * p, b * p, g, g * p], axis=1)
+
+    def _derivative_coefficients(self, theta: np.ndarray) -> np.ndarray:
+        """(d, 7) weights of the derivatives of den with respect to the smoothing parameters."""
+        c = dict(zip(self.names, theta))
+        p, a, b, g = c.get("phi", 1.0), c["alpha"], c.get("beta", 0.0), c.get("gamma", 0.0)
+        rows = {
+            "alpha": [0.0, 0.0, 1.0, p, 0.0, 0.0, 0.0],
+            "beta": [0.0, 0.0, 0.0, 0.0, p, 0.0, 0.0],
+            "gamma": [0.0, 0.0, 0.0, 0.0, 0.0, 1.0, p],
+            "phi": [0.0, 1.0, 0.0, a, b, 0.0, g],
+        }
+        return np.array([rows[name] for name in self.names])
+
+    def _heads(self, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Deterministic paths of the unit states at t < Lq, (B, Lq, k), and their derivative in phi."""
+        B = phi.size
+        Lq = self.Lq
+        cols = [np.ones((B, Lq, 1))]
+        dcols = [np.zeros((B, Lq, 1))]
+        if self.trend:
+            i = np.arange(1, Lq + 1)
+            powers = phi[:, None] ** i
+            cols.append(np.cumsum(powers, axis=1)[:, :, None])  # phi + ... + phi^(t+1)
+            dcols.append(np.cumsum(i * phi[:, None] ** (i - 1), axis=1)[:, :, None])
+        if self.m:
+            cols.append(np.broadcast_to(self.season_head, (B, Lq, self.m - 1)))
+            dcols.append(np.zeros((B, Lq, self.m - 1)))
+        return np.concatenate(cols, axis=2), np.concatenate(dcols, axis=2)
+
+    def _transient(self, num: np.ndarray, D: np.ndarray) -> np.ndarray:
+        """Q = (first Lq terms of num * d) per unit state: lower-triangular Toeplitz(num) @ D, (B, Lq, k)."""
+        T = np.where(self.toeplitz >= 0, num[:, np.clip(self.toeplitz, 0, None)], 0.0)
+        return T @ D
+
+    # -- evaluation ------------------------------------------------------------------------------
+    def _polynomials(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """num, den, the unit-state paths D (Lq, k) and dD/dphi at one parameter vector (param order)."""
+        c = dict(zip(self.names, theta.tolist()))
+        a, b, g, p = c["alpha"], c.get("beta", 0.0), c.get("gamma", 0.0), c.get("phi", 1.0)
+        den = np.array([1.0, p, a, a * p, b * p, g, g * p]) @ self.basis
+        num = self.basis[0] + p * self.basis[1]
+        D = self.head.copy()
+        dD = np.zeros_like(D)
+        if self.trend:
+            powers = p**self.head_powers
+            D[:, 1] = np.cumsum(powers)
+            dD[:, 1] = np.cumsum(self.head_powers * powers) / p
+        return num, den, D, dD
+
+    def _toeplitz(self, poly: np.ndarray) -> np.ndarray:
+        """Lower-triangular Toeplitz matrix (Lq, Lq) of the first Lq coefficients of ``poly``."""
+        return poly[self.toeplitz_index] * self.toeplitz_mask
 
     def _solve(self, theta: np.ndarray):
-        spec = self.spec
-        c = spec._smoothing_values(theta)
-        num, den = spec._additive_filter(c)
-        if spec.trend:
-            self.inputs[2] = np.cumsum(c["phi"] ** self.powers)
-        with np.errstate(over="ignore", invalid="ignore"):
-            F = signal.lfilter(num, den, self.inputs[self.rows], axis=-1)
+        """(SSE, states, parts) at smoothing parameters ``theta`` (param order), centred and scaled units."""
+        num, den, D, dD = self._polynomials(theta)
+        self.inputs[0] = self.lag_y @ num
+        F = signal.lfilter([1.0], den, self.inputs, axis=-1)
         if not np.isfinite(F).all():
             return np.inf, np.zeros(self.n_states), None
-        r = F[0]
-        columns = [F[1:3] if spec.trend else F[1:2]]
-        if self.m:
-            shifted = _lagged(F[-1], self.comb_shifts)
-            columns.append((shifted[:, self.m - 1 : 0 : -1] - shifted[:, :1]).T)
-        M = np.concatenate(columns, axis=0).T
+        r, h = F
+        M = _lagged(h, self.lag_q) @ (self._toeplitz(num) @ D)
         states = _least_squares(M, r)
         e = r - M @ states
-        return float(e @ e), states, (c, num, den, e)
+        return float(e @ e), states, (num, den, D, dD, h, M, e)
 
-    def value_and_gradient(self, theta: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
-        """(SSE, dSSE/dtheta, states) at smoothing parameters ``theta`` (param order)."""
+    def __call__(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
+        """(SSE, least-squares states) at smoothing parameters ``theta`` (param order), in the units of y."""
+        with np.errstate(over="ignore", invalid="ignore"):
+            sse, states, _ = self._solve(theta)
+        return sse * self.scale**2, self._unscaled(states)
+
+    def _unscaled(self, states: np.ndarray) -> np.ndarray:
+        out = states * self.scale
+        out[0] += self.shift
+        return out
+
+    def _dq(self, num: np.ndarray, D: np.ndarray, dD: np.ndarray) -> np.ndarray:
+        """dQ/dphi, (Lq, k): num = N0 + phi N1 and the trend path depend on phi."""
+        return self._toeplitz(self.basis[1]) @ D + self._toeplitz(num) @ dD
+
+    def value_and_gradient(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
+        """(SSE, dSSE/dtheta) at smoothing parameters ``theta`` (param order), centred and scaled units.
+
+        Call within ``np.errstate(over="ignore", invalid="ignore")``: parameters far outside the
+        forecastable region make the filter overflow, which is reported as an infinite SSE.
+        """
         sse, states, parts = self._solve(theta)
         if parts is None or not np.isfinite(sse):
-            return np.inf, np.zeros(len(theta)), states
-        spec = self.spec
-        c, num, den, e = parts
-        row = np.concatenate([theta, states])
+            return np.inf, np.zeros(len(theta))
+        num, den, D, dD, h, M, e = parts
+        a = signal.lfilter([1.0], den, e[::-1])[::-1]  # den^-T e
+        lead = _leading(a, self.lead)  # (n, L): a[t + j]
+        c_e = lead.T @ e
+        dden = self._derivative_coefficients(theta) @ self.basis
+        grad = -(dden @ c_e)
+        if "phi" in self.index:
+            grad[self.index["phi"]] += self.basis[1] @ (lead.T @ self.y) - a[: self.Lq] @ (
+                self._dq(num, D, dD) @ states
+            )
+        return sse, 2.0 * grad
+
+    def objective(self, z: np.ndarray) -> tuple[float, np.ndarray]:
+        """``n/2 log SSE`` (in the units of y) and its gradient in optimiser coordinates
+        (alpha, beta/alpha, gamma/(1 - alpha), phi); 1e300 where the errors overflow."""
+        theta = z.copy()
+        i_beta, i_gamma = self.index.get("beta"), self.index.get("gamma")
+        if i_beta is not None:
+            theta[i_beta] *= z[0]
+        if i_gamma is not None:
+            theta[i_gamma] *= 1.0 - z[0]
+        sse, grad = self.value_and_gradient(theta)
+        if not (np.isfinite(sse) and sse > 0):
+            return 1e300, np.zeros_like(z)
+        out = grad.copy()  # chain rule: beta = z_beta alpha, gamma = z_gamma (1 - alpha)
+        if i_beta is not None:
+            out[0] += z[i_beta] * grad[i_beta]
+            out[i_beta] = z[0] * grad[i_beta]
+        if i_gamma is not None:
+            out[0] -= z[i_gamma] * grad[i_gamma]
+            out[i_gamma] = (1.0 - z[0]) * grad[i_gamma]
+        half = 0.5 * self.n
+        return half * np.log(sse) + self.offset, half / sse * out
+
+    def objective_values(self, Theta: np.ndarray) -> np.ndarray:
+        """``n/2 log SSE`` (in the units of y) at a (B, d) batch of smoothing parameters; 1e300 where not finite."""
+        sse = self.grid_values(Theta)
+        ok = np.isfinite(sse) & (sse > 0)
+        return np.where(ok, 0.5 * self.n * np.log(np.where(ok, sse, 1.0)) + self.offset, 1e300)
+
+    def error_jacobian(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(de/dtheta at fixed states, de/dstates), (n, d) and (n, k), in the units of y and of the parameters."""
         with np.errstate(over="ignore", invalid="ignore"):
-            w = signal.lfilter([1.0], den, np.stack([self.y - spec._deterministic_path(row, self.y.size), e]), axis=-1)
-        lagged_products = np.stack(
-            [e @ _lagged(w[0], self.coefficient_shifts), e @ _lagged(w[1], self.coefficient_shifts)]
-        )
-        grad = np.empty(len(theta))
-        for i, name in enumerate(spec._smoothing_names()):
-            shifted = dict(c)
-            shifted[name] += 1.0
-            num1, den1 = spec._additive_filter(shifted)
-            grad[i] = (num1 - num) @ lagged_products[0] - (den1 - den) @ lagged_products[1]
-            if name == "phi":
-                dpath = states[1] * np.cumsum(self.powers * c["phi"] ** (self.powers - 1))
-                grad[i] -= e @ signal.lfilter(num, den, dpath)
-        return sse, 2.0 * grad, states
+            sse, states, (num, den, D, dD, h, M, e) = self._solve(theta)
+            dden = self._derivative_coefficients(theta) @ self.basis
+            rows = -np.stack([np.convolve(p, e)[: self.n] for p in dden])
+            if "phi" in self.index:
+                i = self.index["phi"]
+                rows[i] += np.convolve(self.basis[1], self.y)[: self.n]
+                rows[i, : self.Lq] -= self._dq(num, D, dD) @ states
+            J = signal.lfilter([1.0], den, rows, axis=-1).T
+        return J * self.scale, -M
+
+    def grid_values(self, Theta: np.ndarray) -> np.ndarray:
+        """Profile SSE (centred and scaled units) at a (B, d) batch of smoothing parameters; inf if not finite."""
+        C = self._coefficients(Theta)
+        num = C[:, :2] @ self.basis[:2]
+        den = C @ self.basis
+        U = num @ self.lag_y.T
+        B, n = U.shape
+        R = np.empty((B, n))
+        H = np.empty((B, n))
+        with np.errstate(over="ignore", invalid="ignore"):
+            for b in range(B):  # scipy filters one coefficient set per call
+                self.inputs[0] = U[b]
+                R[b], H[b] = signal.lfilter([1.0], den[b], self.inputs, axis=-1)
+            finite = np.isfinite(R).all(axis=1) & np.isfinite(H).all(axis=1)
+            R = np.where(np.isfinite(R), R, 0.0)
+            H = np.where(np.isfinite(H), H, 0.0)
+            D, _ = self._heads(C[:, 1])
+            Q = self._transient(num, D)
+            # Gram matrix of the lagged impulse responses and their products with R, from (cross-)correlations
+            Lq = self.Lq
+            auto = np.stack([np.einsum("bt,bt->b", H[:, : n - d], H[:, d:]) for d in range(Lq)], axis=1)
+            cross = np.stack([np.einsum("bt,bt->b", R[:, d:], H[:, : n - d]) for d in range(Lq)], axis=1)
+            padded = np.concatenate([np.zeros((B, Lq)), H], axis=1)
+            last = padded[:, self.tail_index[0]] * padded[:, self.tail_index[1]]  # (B, Lq lags, Lq): tails
+            tails = np.concatenate([np.zeros((B, Lq, 1)), np.cumsum(last[:, :, ::-1], axis=2)], axis=2)
+            G = auto[:, self.gram_lag] - tails[:, self.gram_lag, self.gram_first]
+            A = np.swapaxes(Q, 1, 2) @ G @ Q
+            rhs = np.einsum("bqk,bq->bk", Q, cross)
+            scale = np.sqrt(np.abs(np.einsum("bii->bi", A)))
+            scale[~(scale > 0)] = 1.0
+            As = A / scale[:, :, None] / scale[:, None, :]
+            try:
+                coef = np.linalg.solve(As, (rhs / scale)[:, :, None])[..., 0]
+            except np.linalg.LinAlgError:
+                coef = np.stack([np.linalg.lstsq(a, b, rcond=None)[0] for a, b in zip(As, rhs / scale)])
+            total = np.einsum("bn,bn->b", R, R)
+            sse = total - np.einsum("bk,bk->b", rhs / scale, coef)
+            # the difference loses digits when the fit removes most of R (relative error ~ 1e-16 total / sse):
+            # such points are evaluated with explicit errors
+            for b in np.nonzero(finite & ~(sse > 1e-8 * total))[0]:
+                sse[b] = self._solve(Theta[b])[0]
+        return np.where(finite & np.isfinite(sse), sse, np.inf)
+
+
+def _filter_basis(trend: bool, m: int) -> np.ndarray:
+    """Rows N0, N1, A0, A1, Bb, G0, G1 with num = N0 + phi N1 and
+    den = num + alpha (A0 + phi A1) + phi beta Bb + gamma (G0 + phi G1) (:func:`error_filter`).
+
+    With T(B) = 1 - phi B (trend) or 1, S(B) = 1 + B + ... + B^(m-1) (season) or 1, and the
+    differencing 1 - B^m (season) or 1 - B: ``num = T (1 - B^m)``, the alpha term ``B T S``, the
+    beta term ``phi B S`` and the gamma term ``B^m T``.
+    """
+    t0, t1 = (np.array([1.0, 0.0]), np.array([0.0, -1.0])) if trend else (np.array([1.0]), np.array([0.0]))
+    diff = np.zeros((m or 1) + 1)
+    diff[0], diff[-1] = 1.0, -1.0
+    bs = np.concatenate([[0.0], np.ones(m or 1)])  # B S(B)
+    L = diff.size + t0.size - 1
+
+    def row(p: np.ndarray) -> np.ndarray:
+        out = np.zeros(L)
+        out[: min(L, p.size)] = p[:L]
+        return out
+
+    zero = np.zeros(L)
+    bm = np.zeros((m or 1) + 1)
+    bm[-1] = 1.0  # B^m
+    return np.array(
+        [
+            row(np.convolve(diff, t0)),
+            row(np.convolve(diff, t1)),
+            row(np.convolve(bs, t0)),
+            row(np.convolve(bs, t1)),
+            row(bs) if trend else zero,
+            row(np.convolve(bm, t0)) if m else zero,
+            row(np.convolve(bm, t1)) if m else zero,
+        ]
+    )
 
 
 def _lag_index(n: int, lags: int) -> np.ndarray:
@@ -886,17 +1082,22 @@ def _lagged(x: np.ndarray, index: np.ndarray) -> np.ndarray:
     return np.concatenate([np.zeros(index.shape[1]), x])[index]
 
 
+def _leading(x: np.ndarray, index: np.ndarray) -> np.ndarray:
+    """The (n, lags) matrix x[t + j] (0 beyond the end) for an index from ``arange(n)[:, None] + arange(lags)``."""
+    return np.concatenate([x, np.zeros(index.shape[1])])[index]
+
+
 def _least_squares(M: np.ndarray, r: np.ndarray) -> np.ndarray:
     """Least-squares coefficients by column-scaled normal equations (lstsq if singular).
 
     The residual is computed afterwards from the coefficients, so coefficient errors affect the
     sum of squares only to second order.
     """
-    scale = np.sqrt(np.einsum("ij,ij->j", M, M))
-    scale[scale == 0] = 1.0
-    Ms = M / scale
+    G = M.T @ M
+    scale = np.sqrt(np.diag(G))
+    scale[~(scale > 0)] = 1.0
     try:
-        return np.linalg.solve(Ms.T @ Ms, Ms.T @ r) / scale
+        return np.linalg.solve(G / np.outer(scale, scale), (M.T @ r) / scale) / scale
     except np.linalg.LinAlgError:
         return np.linalg.lstsq(M, r, rcond=None)[0]
 
