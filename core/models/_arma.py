@@ -362,22 +362,29 @@ def initial_state_covariance(ar_poly: np.ndarray, ma_poly: np.ndarray, layout: S
     r = layout.r
     if r <= _SMALL_STATE:
         return _small_state_covariance(_padded(ar_poly, r + 1), _padded(ma_poly, r + 1))
-    b, a = _padded(ar_poly, r + 1), _padded(ma_poly, r + 1)
-    mw, me = state_maps(b, a, layout)
-    cov = me @ me.T
+    b = ar_poly if len(ar_poly) == r + 1 else _padded(ar_poly, r + 1)
+    a = ma_poly if len(ma_poly) == r + 1 else _padded(ma_poly, r + 1)
     lags = np.flatnonzero(b[1:])
-    if not lags.size:  # Mw = 0
-        return cov
-    p = int(lags[-1]) + 1
-    psi = _psi_weights(b[: p + 1], a, r + 1)
-    gamma = _autocovariance(b[: p + 1], a, psi, p)
-    if p == 1:  # Mw = b_1 e_1 e_1' and Me is symmetric (Hankel): the cross term is one vector
+    p = int(lags[-1]) + 1 if lags.size else 0
+    if p <= 1:  # Mw = b_1 e_1 e_1' (or zero): Me alone is needed
+        extended = np.zeros(2 * r + 1)
+        extended[: r + 1] = a
+        me = extended[layout.hankel]  # minus Me (Hankel, so symmetric)
+        cov = me @ me.T
+        if not p:
+            return cov
+        psi = _psi_weights(b[:2], a, r + 1)
+        gamma = _autocovariance(b[:2], a, psi, 1)
         b1 = float(b[1])
-        cross = b1 * (me @ psi[:r])
+        cross = -b1 * (me @ psi[:r])  # first row of Mw C Me'
         cov[0] += cross
         cov[:, 0] += cross
         cov[0, 0] += b1 * b1 * gamma[0]
         return cov
+    mw, me = state_maps(b, a, layout)
+    cov = me @ me.T
+    psi = _psi_weights(b[: p + 1], a, r + 1)
+    gamma = _autocovariance(b[: p + 1], a, psi, p)
     mw = mw[:p, :p]
     cross = np.zeros((r, r))
     cross[:p] = mw @ np.where(layout.upper[:p], psi[layout.shift[:p]], 0.0) @ me.T
@@ -528,7 +535,8 @@ class ExactLikelihood:
         # delayed by i steps (transposed direct form II), so H is Toeplitz: H[t, i] = g[t - i]
         if a[1:].any():
             g = signal.lfilter(self._one, a, self._impulse)
-            g[np.abs(g) < _NEGLIGIBLE] = 0.0  # keep products clear of (very slow) subnormal numbers
+            if abs(g[-r:]).max() < _NEGLIGIBLE:  # decayed: keep products clear of (very slow) subnormal numbers
+                g[np.abs(g) < _NEGLIGIBLE] = 0.0
             self._shifted[r:] = g
         else:  # no MA part: g is the unit impulse
             self._shifted[r:] = self._impulse
@@ -706,7 +714,7 @@ def standardized_innovations(system: ExactSystem, coef: np.ndarray) -> np.ndarra
     squares) update of ``u``; its innovations and variances (over sigma2) equal those of the
     Kalman filter for ``w``, because the map ``w -> e0`` is lower triangular with unit diagonal.
 
-    The update runs over blocks of 64 values: for a block with rows ``G`` and prior ``N(mu, P)``,
+    The update runs over blocks of at most 64 values: for a block with rows ``G`` and prior ``N(mu, P)``,
     the block covariance is ``S = I + G P G'`` and, with ``S = C C'`` (Cholesky), the standardised
     innovations are ``C^{-1} (e0_B + G mu)``; then ``mu -= W' z`` and ``P -= W' W`` with
     ``W = C^{-1} G P``. Once ``|g_t|^2 < 1e-12`` for every later t (``h_t`` decays with the MA
@@ -736,17 +744,18 @@ def standardized_innovations(system: ExactSystem, coef: np.ndarray) -> np.ndarra
     mean = np.zeros(r)
     cov = np.eye(r)
     for start in range(0, t_end, _BLOCK):
-        rows = g[start : start + _BLOCK]
+        end = min(start + _BLOCK, t_end)
+        rows = g[start:end]
         gp = rows @ cov
         block_cov = gp @ rows.T
         block_cov.flat[:: rows.shape[0] + 1] += 1.0
         chol, info = lapack.dpotrf(block_cov, lower=1, clean=1)
         if info != 0:
             raise np.linalg.LinAlgError("innovations: block covariance is not positive definite")
-        rhs = np.column_stack([e0[start : start + _BLOCK] + rows @ mean, gp])
+        rhs = np.column_stack([e0[start:end] + rows @ mean, gp])
         solved = blas.dtrsm(1.0, chol, rhs, lower=1)
         z, w = solved[:, 0], solved[:, 1:]
-        out[start : start + _BLOCK] = z
+        out[start:end] = z
         mean -= w.T @ z
         cov -= w.T @ w
     out[t_end:] = e0[t_end:] + g[t_end:] @ mean
