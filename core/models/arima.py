@@ -470,11 +470,12 @@ class _Coefficients:
             out.append((is_ma, poly, period, values.size))
         return out
 
-    def polynomials(self, coefs: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Multiplied-out AR polynomial ``phi(B) Phi(B^s)`` and MA polynomial ``theta(B) Theta(B^s)``."""
+    def polynomials(self, coefs: np.ndarray, factors: list | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """Multiplied-out AR polynomial ``phi(B) Phi(B^s)`` and MA polynomial ``theta(B) Theta(B^s)``
+        (``factors``: :meth:`factors` of ``coefs`` when already at hand)."""
         ar_poly = np.ones(1)
         ma_poly = np.ones(1)
-        for is_ma, poly, _, _ in self.factors(coefs):
+        for is_ma, poly, _, _ in self.factors(coefs) if factors is None else factors:
             if is_ma:
                 ma_poly = np.convolve(ma_poly, poly) if ma_poly.size > 1 else poly
             else:
@@ -584,17 +585,25 @@ class _Estimator:
         if not layout.size:
             return coefs, information, True, "no ARMA coefficients: closed-form least squares", 1
         evaluations, damping, growth = 1, 1e-3, 2.0
+
+        def last_information() -> np.ndarray:  # J'J / sigma2 of the last linearisation
+            return _schur_arma(normal, layout.size) / (q_normal / self.conditional.nobs)
+
         for iteration in range(1, self.spec.maxiter + 1):
             resid = resid_rows[0] - beta @ resid_rows[1:]
             w = self.rows[0] - beta @ self.rows[1:]
-            ma_poly = layout.polynomials(coefs)[1]
-            jac = np.vstack([_arma.css_jacobian(layout.factors(coefs), ma_poly, w, resid, pstar), -resid_rows[1:]])
+            factors = layout.factors(coefs)
+            ma_poly = layout.polynomials(coefs, factors)[1]
+            jac = np.vstack([_arma.css_jacobian(factors, ma_poly, w, resid, pstar), -resid_rows[1:]])
             normal = jac @ jac.T
             gradient = jac @ resid
-            information = _schur_arma(normal, layout.size) / (q / self.conditional.nobs)
-            scale = np.diag(normal) + 1e-12 * np.max(np.diag(normal))
+            q_normal = q
+            diagonal = normal.diagonal()
+            scale = diagonal + 1e-12 * diagonal.max()
             while damping < 1e10:
-                chol, info = lapack.dpotrf(normal + damping * np.diag(scale), lower=1, clean=1)
+                damped = normal.copy()
+                damped.flat[:: normal.shape[0] + 1] += damping * scale
+                chol, info = lapack.dpotrf(damped, lower=1, clean=1)
                 step = -lapack.dpotrs(chol, gradient, lower=1)[0] if info == 0 else np.zeros_like(gradient)
                 trial = coefs + step[: layout.size]
                 if info == 0 and layout.in_region(trial):
@@ -611,7 +620,7 @@ class _Estimator:
             else:
                 return (
                     coefs,
-                    information,
+                    last_information(),
                     True,
                     f"css: converged ({iteration} iterations, no further decrease)",
                     evaluations,
@@ -619,8 +628,8 @@ class _Estimator:
             decrease = (q - trial_q) / q
             coefs, resid_rows, beta, q = trial, trial_rows, trial_beta, trial_q
             if decrease < tolerance:
-                return coefs, information, True, f"css: converged ({iteration} iterations)", evaluations
-        return coefs, information, False, f"css: iteration limit {self.spec.maxiter} reached", evaluations
+                return coefs, last_information(), True, f"css: converged ({iteration} iterations)", evaluations
+        return coefs, last_information(), False, f"css: iteration limit {self.spec.maxiter} reached", evaluations
 
     # -- exact likelihood: BFGS on the transformed scale ----------------------------------
     def _objective(self, x: np.ndarray) -> float:
