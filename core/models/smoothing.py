@@ -33,7 +33,7 @@ from collections.abc import Mapping
 
 import numpy as np
 
-from .._scipy import optimize, signal
+from .._scipy import lapack, optimize, signal
 from .._validation import Interval, Options, validate_params
 from ..exceptions import ConvergenceWarning, InputError, SpecificationError
 from ._base import FitResult, ForecastModel, check_series, information_criteria
@@ -836,6 +836,7 @@ class _AdditiveProfile:
         self.head_powers = np.arange(1.0, self.Lq + 1)
         self.index = {name: i for i, name in enumerate(self.names)}
         self.n_states = self.head.shape[1]
+        self.toeplitz_n1 = self._toeplitz(self.basis[1])
         # G_ij = sum_t h(t-i) h(t-j) = (lag |i-j| autocorrelation) - (its last min(i, j) terms)
         self.gram_lag = np.abs(self.toeplitz)
         self.gram_first = np.minimum.outer(t, t)
@@ -886,19 +887,20 @@ class _AdditiveProfile:
         return T @ D
 
     # -- evaluation ------------------------------------------------------------------------------
-    def _polynomials(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """num, den, the unit-state paths D (Lq, k) and dD/dphi at one parameter vector (param order)."""
-        c = dict(zip(self.names, theta.tolist()))
+    def _polynomials(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """num, den and the unit-state paths D (Lq, k) at one parameter vector (param order)."""
+        c = self._named(theta)
         a, b, g, p = c["alpha"], c.get("beta", 0.0), c.get("gamma", 0.0), c.get("phi", 1.0)
         den = np.array([1.0, p, a, a * p, b * p, g, g * p]) @ self.basis
         num = self.basis[0] + p * self.basis[1]
-        D = self.head.copy()
-        dD = np.zeros_like(D)
+        D = self.head
         if self.trend:
-            powers = p**self.head_powers
-            D[:, 1] = np.cumsum(powers)
-            dD[:, 1] = np.cumsum(self.head_powers * powers) / p
-        return num, den, D, dD
+            D = D.copy()
+            D[:, 1] = np.cumsum(p**self.head_powers)
+        return num, den, D
+
+    def _named(self, theta: np.ndarray) -> dict[str, float]:
+        return dict(zip(self.names, theta.tolist()))
 
     def _toeplitz(self, poly: np.ndarray) -> np.ndarray:
         """Lower-triangular Toeplitz matrix (Lq, Lq) of the first Lq coefficients of ``poly``."""
@@ -906,16 +908,16 @@ class _AdditiveProfile:
 
     def _solve(self, theta: np.ndarray):
         """(SSE, states, parts) at smoothing parameters ``theta`` (param order), centred and scaled units."""
-        num, den, D, dD = self._polynomials(theta)
+        num, den, D = self._polynomials(theta)
         self.inputs[0] = self.lag_y @ num
         F = signal.lfilter([1.0], den, self.inputs, axis=-1)
-        if not np.isfinite(F).all():
+        if not np.isfinite(F[:, -1]).all():  # an overflow propagates to the last term (inf or nan)
             return np.inf, np.zeros(self.n_states), None
         r, h = F
         M = _lagged(h, self.lag_q) @ (self._toeplitz(num) @ D)
         states = _least_squares(M, r)
         e = r - M @ states
-        return float(e @ e), states, (num, den, D, dD, h, M, e)
+        return float(e @ e), states, (num, den, D, h, M, e)
 
     def __call__(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
         """(SSE, least-squares states) at smoothing parameters ``theta`` (param order), in the units of y."""
@@ -928,9 +930,12 @@ class _AdditiveProfile:
         out[0] += self.shift
         return out
 
-    def _dq(self, num: np.ndarray, D: np.ndarray, dD: np.ndarray) -> np.ndarray:
-        """dQ/dphi, (Lq, k): num = N0 + phi N1 and the trend path depend on phi."""
-        return self._toeplitz(self.basis[1]) @ D + self._toeplitz(num) @ dD
+    def _dq(self, theta: np.ndarray, num: np.ndarray, D: np.ndarray) -> np.ndarray:
+        """dQ/dphi, (Lq, k): num = N0 + phi N1 and the trend path phi + ... + phi^(t+1) depend on phi."""
+        p = self._named(theta)["phi"]
+        dD = np.zeros_like(D)
+        dD[:, 1] = np.cumsum(self.head_powers * p ** (self.head_powers - 1.0))
+        return self.toeplitz_n1 @ D + self._toeplitz(num) @ dD
 
     def value_and_gradient(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
         """(SSE, dSSE/dtheta) at smoothing parameters ``theta`` (param order), centred and scaled units.
@@ -941,16 +946,15 @@ class _AdditiveProfile:
         sse, states, parts = self._solve(theta)
         if parts is None or not np.isfinite(sse):
             return np.inf, np.zeros(len(theta))
-        num, den, D, dD, h, M, e = parts
+        num, den, D, h, M, e = parts
         a = signal.lfilter([1.0], den, e[::-1])[::-1]  # den^-T e
         lead = _leading(a, self.lead)  # (n, L): a[t + j]
         c_e = lead.T @ e
         dden = self._derivative_coefficients(theta) @ self.basis
         grad = -(dden @ c_e)
         if "phi" in self.index:
-            grad[self.index["phi"]] += self.basis[1] @ (lead.T @ self.y) - a[: self.Lq] @ (
-                self._dq(num, D, dD) @ states
-            )
+            dq = self._dq(theta, num, D) @ states
+            grad[self.index["phi"]] += self.basis[1] @ (lead.T @ self.y) - a[: self.Lq] @ dq
         return sse, 2.0 * grad
 
     def objective(self, z: np.ndarray) -> tuple[float, np.ndarray]:
@@ -984,13 +988,13 @@ class _AdditiveProfile:
     def error_jacobian(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(de/dtheta at fixed states, de/dstates), (n, d) and (n, k), in the units of y and of the parameters."""
         with np.errstate(over="ignore", invalid="ignore"):
-            sse, states, (num, den, D, dD, h, M, e) = self._solve(theta)
+            sse, states, (num, den, D, h, M, e) = self._solve(theta)
             dden = self._derivative_coefficients(theta) @ self.basis
             rows = -np.stack([np.convolve(p, e)[: self.n] for p in dden])
             if "phi" in self.index:
                 i = self.index["phi"]
                 rows[i] += np.convolve(self.basis[1], self.y)[: self.n]
-                rows[i, : self.Lq] -= self._dq(num, D, dD) @ states
+                rows[i, : self.Lq] -= self._dq(theta, num, D) @ states
             J = signal.lfilter([1.0], den, rows, axis=-1).T
         return J * self.scale, -M
 
@@ -1096,10 +1100,10 @@ def _least_squares(M: np.ndarray, r: np.ndarray) -> np.ndarray:
     G = M.T @ M
     scale = np.sqrt(np.diag(G))
     scale[~(scale > 0)] = 1.0
-    try:
-        return np.linalg.solve(G / np.outer(scale, scale), (M.T @ r) / scale) / scale
-    except np.linalg.LinAlgError:
-        return np.linalg.lstsq(M, r, rcond=None)[0]
+    _, coef, info = lapack.dposv(G / np.outer(scale, scale), (M.T @ r) / scale)  # Cholesky
+    if info == 0:
+        return coef / scale
+    return np.linalg.lstsq(M, r, rcond=None)[0]
 
 
 def _cycle_operator(c: Mapping[str, np.ndarray], m: int) -> np.ndarray:
