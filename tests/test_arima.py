@@ -285,6 +285,32 @@ def test_arma11_with_intercept_on_simulated_series_matches_statsmodels():
     _assert_matches_reference(fit, reference, spec, [])  # source: statsmodels ARIMA fit
 
 
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_seasonal_ar1_on_simulated_daily_series_matches_statsmodels(seed):
+    """AR(1)(0,1,1)7: the quasi-Newton iterations stop at statsmodels' maximum, not short of it."""
+    rng = np.random.default_rng(seed)
+    spec = Arima(order=(1, 0, 0), seasonal=(0, 1, 1, 7))
+    y = spec.simulate({"ar1": 0.5, "sma1": -0.6, "sigma2": 1.0}, 730, rng)
+    fit = spec.fit(y)
+    reference = _reference_model(spec, y).fit(disp=0)
+    assert fit.converged
+    _assert_matches_reference(fit, reference, spec, [])  # source: statsmodels SARIMAX(simple_differencing=True) fit
+    assert fit.loglik > reference.llf - 1e-4  # common practice: not below statsmodels' maximum
+
+
+@pytest.mark.parametrize("seed", [4, 5, 6])
+def test_arma22_on_simulated_series_reaches_the_statsmodels_maximum(seed):
+    """ARMA(2,2) with intercept (a ridge of near-cancelling roots): log-likelihood not below statsmodels'."""
+    rng = np.random.default_rng(seed)
+    spec = Arima(order=(2, 0, 2), trend="c")
+    truth = {"ar1": 0.5, "ar2": 0.2, "ma1": 0.4, "ma2": -0.2, "intercept": 3.0, "sigma2": 1.5}
+    y = spec.simulate(truth, 500, rng)
+    fit = spec.fit(y)
+    reference = ARIMA(y, order=(2, 0, 2), trend="c").fit()
+    assert fit.converged
+    assert fit.loglik > reference.llf - 0.01  # source: statsmodels ARIMA fit; common practice: to 0.01
+
+
 def test_arima111_with_drift_on_log_gdp_matches_statsmodels(macro):
     y = macro["log_gdp"]
     spec = Arima(order=(1, 1, 1), trend="t")

@@ -688,6 +688,9 @@ class _Estimator:
         evaluations += size
         message, stopped = f"exact: iteration limit {maxiter} reached", False
         for iteration in range(1, maxiter + 1):
+            if not np.isfinite(grad).all():
+                message = f"exact: stopped after {iteration - 1} iterations (the gradient is not finite)"
+                break
             if np.max(np.abs(grad)) <= _GTOL:
                 message, stopped = f"exact: converged ({iteration - 1} iterations, gradient below tolerance)", True
                 break
