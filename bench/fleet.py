@@ -28,6 +28,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import json
+import os
 import pathlib
 import tempfile
 import time
@@ -207,6 +208,7 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
     ours_rate = n / ours_s
     ratio = ours_rate / peer["series_per_second"]
     share = ours["orchestration_s"] / ours["flow_s"]
+    cores = os.cpu_count() or 1
     c = ours["counts"]
     verdicts = ", ".join(f"{c[v]} {v}" for v in VERDICTS if c.get(v))
     fam = ", ".join(f"{k} {v:.2f} s" for k, v in sorted(peer["per_family_s"].items()))
@@ -216,7 +218,8 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
             "size": f"{n} series x 730 days ({verdicts})",
             "measured": f"fitaudit {ours_rate:.2f} series/s ({ours_s:.1f} s incl. {ours['server_start_s']:.1f} s "
             f"server start); peer {peer['series_per_second']:.3f} series/s ({peer['seconds_per_series']:.2f} s/series: "
-            f"{fam}; {peer['subset']} random series, extrapolated)",
+            f"{fam}; {peer['subset']} random series, extrapolated); per core {ratio / cores:.1f}x (fitaudit on "
+            f"{cores} cores, the peer on one)",
             "ratio": ratio,
             "ratio_text": f"{ratio:.1f}x",
             "goal": f">= {GOAL_RATIO:.0f}x the peer's series/s",
