@@ -426,6 +426,69 @@ def test_nottem_additive_season_is_not_stopped_at_the_alpha_bound():
     assert "alpha" not in fit.extras["at_bound"]
 
 
+# -- profile likelihood internals ------------------------------------------------------------------
+def _profile_sse(spec: ExpSmoothing, y: np.ndarray, theta: np.ndarray) -> float:
+    """Profile SSE by brute force: the states from a least-squares fit of the errors' columns, one state at a time."""
+    k = len(spec.param_names()) - 1 - theta.size
+    base = np.concatenate([theta, np.zeros(k)])
+    e0 = spec.errors(y, dict(zip(spec.param_names(), list(base) + [1.0])))
+    columns = []
+    for j in range(k):
+        unit = base.copy()
+        unit[theta.size + j] = 1.0
+        columns.append(e0 - spec.errors(y, dict(zip(spec.param_names(), list(unit) + [1.0]))))
+    M = np.column_stack(columns)  # errors are affine in the states: e = e0 - M states
+    states = np.linalg.lstsq(M, e0, rcond=None)[0]
+    e = e0 - M @ states
+    return float(e @ e)
+
+
+@pytest.mark.parametrize("spec", ADDITIVE_SPECS, ids=lambda s: s.describe())
+def test_profile_value_and_gradient(spec):
+    """The profile SSE (two filtered rows and a short transient) equals brute-force least squares over the
+    states, and its analytic gradient (the adjoint filter) equals central differences."""
+    from fitaudit.core.models.smoothing import _AdditiveProfile
+
+    y = _fpp2_series("austourists")
+    theta = np.array([{"alpha": 0.35, "beta": 0.05, "gamma": 0.3, "phi": 0.9}[n] for n in spec._smoothing_names()])
+    profile = _AdditiveProfile(spec, y)
+    # common practice: the errors are affine in the states, so least squares on unit-state differences is exact
+    assert profile(theta)[0] == pytest.approx(_profile_sse(spec, y, theta), rel=1e-9)
+    assert profile.grid_values(theta[None, :])[0] * profile.scale**2 == pytest.approx(profile(theta)[0], rel=1e-9)
+    sse, grad = profile.value_and_gradient(theta)
+    step = 1e-6
+    numeric = [
+        (profile(theta + step * np.eye(theta.size)[i])[0] - profile(theta - step * np.eye(theta.size)[i])[0])
+        / (2 * step)
+        for i in range(theta.size)
+    ]
+    # common practice: central differences (step 1e-6) agree with an exact gradient to about 1e-6 relative
+    np.testing.assert_allclose(grad * profile.scale**2, numeric, rtol=1e-5, atol=1e-6 * sse * profile.scale**2)
+
+
+def test_standard_errors_match_a_central_difference_jacobian():
+    """bse from the analytic Jacobian of the errors equal those of a central-difference Jacobian."""
+    y = _fpp2_series("austourists")
+    spec = ExpSmoothing(trend="add", damped=True, seasonal="add", period=4)
+    fit = spec.fit(y)
+    names = spec.param_names()[:-1]
+    vec = np.array([fit.params[n] for n in names])
+    columns = []
+    for i in range(vec.size):
+        h = 1e-6 * max(1.0, abs(vec[i]))
+        up, down = vec.copy(), vec.copy()
+        up[i] += h
+        down[i] -= h
+        e_up = spec.errors(y, dict(zip(names, up)) | {"sigma2": 1.0})
+        e_down = spec.errors(y, dict(zip(names, down)) | {"sigma2": 1.0})
+        columns.append((e_up - e_down) / (2 * h))
+    J = np.column_stack(columns)
+    bse = np.sqrt(np.diag(fit.sigma2 * np.linalg.inv(J.T @ J)))
+    for name, value in zip(names, bse):
+        # common practice: Gauss-Newton information J'J / sigma2; 1e-3 covers the differencing error
+        assert fit.extras["bse"][name] == pytest.approx(value, rel=1e-3), name
+
+
 # -- fit result contract ---------------------------------------------------------------------------
 @pytest.mark.parametrize(
     "spec",
