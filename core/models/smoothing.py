@@ -835,6 +835,9 @@ class _AdditiveProfile:
         self.head = self._heads(np.ones(1))[0][0]  # (Lq, k); the trend column is refilled for each phi
         self.head_powers = np.arange(1.0, self.Lq + 1)
         self.index = {name: i for i, name in enumerate(self.names)}
+        self.positions = tuple(self.index.get(name) for name in ("alpha", "beta", "gamma", "phi"))
+        self.one = np.ones(1)  # the numerator of 1/den
+        self.padded = np.zeros(n + self.L)  # zeros around a series, for lagged and leading views
         self.n_states = self.head.shape[1]
         self.toeplitz_n1 = self._toeplitz(self.basis[1])
         # G_ij = sum_t h(t-i) h(t-j) = (lag |i-j| autocorrelation) - (its last min(i, j) terms)
@@ -855,8 +858,7 @@ class _AdditiveProfile:
 
     def _derivative_coefficients(self, theta: np.ndarray) -> np.ndarray:
         """(d, 7) weights of the derivatives of den with respect to the smoothing parameters."""
-        c = dict(zip(self.names, theta))
-        p, a, b, g = c.get("phi", 1.0), c["alpha"], c.get("beta", 0.0), c.get("gamma", 0.0)
+        a, b, g, p = self._values(theta)
         rows = {
             "alpha": [0.0, 0.0, 1.0, p, 0.0, 0.0, 0.0],
             "beta": [0.0, 0.0, 0.0, 0.0, p, 0.0, 0.0],
@@ -887,10 +889,14 @@ class _AdditiveProfile:
         return T @ D
 
     # -- evaluation ------------------------------------------------------------------------------
+    def _values(self, theta: np.ndarray) -> tuple[float, float, float, float]:
+        """alpha, beta, gamma, phi from a parameter vector (param order; absent: 0, 0, 0, 1)."""
+        a, b, g, p = (theta[i] if i is not None else v for i, v in zip(self.positions, (0.0, 0.0, 0.0, 1.0)))
+        return a, b, g, p
+
     def _polynomials(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """num, den and the unit-state paths D (Lq, k) at one parameter vector (param order)."""
-        c = self._named(theta)
-        a, b, g, p = c["alpha"], c.get("beta", 0.0), c.get("gamma", 0.0), c.get("phi", 1.0)
+        a, b, g, p = self._values(theta)
         den = np.array([1.0, p, a, a * p, b * p, g, g * p]) @ self.basis
         num = self.basis[0] + p * self.basis[1]
         D = self.head
@@ -899,8 +905,18 @@ class _AdditiveProfile:
             D[:, 1] = np.cumsum(p**self.head_powers)
         return num, den, D
 
-    def _named(self, theta: np.ndarray) -> dict[str, float]:
-        return dict(zip(self.names, theta.tolist()))
+    def _lagged_h(self, h: np.ndarray) -> np.ndarray:
+        """(n, Lq) matrix h[t - j], 0 before the start."""
+        self.padded[self.Lq : self.Lq + self.n] = h
+        return self.padded[self.lag_q]
+
+    def _leading(self, a: np.ndarray) -> np.ndarray:
+        """(n, L) matrix a[t + j], 0 beyond the end."""
+        self.padded[: self.n] = a
+        self.padded[self.n :] = 0.0
+        out = self.padded[self.lead]
+        self.padded[: self.n + self.Lq] = 0.0
+        return out
 
     def _toeplitz(self, poly: np.ndarray) -> np.ndarray:
         """Lower-triangular Toeplitz matrix (Lq, Lq) of the first Lq coefficients of ``poly``."""
@@ -910,11 +926,11 @@ class _AdditiveProfile:
         """(SSE, states, parts) at smoothing parameters ``theta`` (param order), centred and scaled units."""
         num, den, D = self._polynomials(theta)
         self.inputs[0] = self.lag_y @ num
-        F = signal.lfilter([1.0], den, self.inputs, axis=-1)
+        F = signal.lfilter(self.one, den, self.inputs, axis=-1)
         if not np.isfinite(F[:, -1]).all():  # an overflow propagates to the last term (inf or nan)
             return np.inf, np.zeros(self.n_states), None
         r, h = F
-        M = _lagged(h, self.lag_q) @ (self._toeplitz(num) @ D)
+        M = self._lagged_h(h) @ (self._toeplitz(num) @ D)
         states = _least_squares(M, r)
         e = r - M @ states
         return float(e @ e), states, (num, den, D, h, M, e)
@@ -932,7 +948,7 @@ class _AdditiveProfile:
 
     def _dq(self, theta: np.ndarray, num: np.ndarray, D: np.ndarray) -> np.ndarray:
         """dQ/dphi, (Lq, k): num = N0 + phi N1 and the trend path phi + ... + phi^(t+1) depend on phi."""
-        p = self._named(theta)["phi"]
+        p = self._values(theta)[3]
         dD = np.zeros_like(D)
         dD[:, 1] = np.cumsum(self.head_powers * p ** (self.head_powers - 1.0))
         return self.toeplitz_n1 @ D + self._toeplitz(num) @ dD
@@ -947,8 +963,8 @@ class _AdditiveProfile:
         if parts is None or not np.isfinite(sse):
             return np.inf, np.zeros(len(theta))
         num, den, D, h, M, e = parts
-        a = signal.lfilter([1.0], den, e[::-1])[::-1]  # den^-T e
-        lead = _leading(a, self.lead)  # (n, L): a[t + j]
+        a = signal.lfilter(self.one, den, e[::-1])[::-1]  # den^-T e
+        lead = self._leading(a)  # (n, L): a[t + j]
         c_e = lead.T @ e
         dden = self._derivative_coefficients(theta) @ self.basis
         grad = -(dden @ c_e)
@@ -1086,23 +1102,15 @@ def _lagged(x: np.ndarray, index: np.ndarray) -> np.ndarray:
     return np.concatenate([np.zeros(index.shape[1]), x])[index]
 
 
-def _leading(x: np.ndarray, index: np.ndarray) -> np.ndarray:
-    """The (n, lags) matrix x[t + j] (0 beyond the end) for an index from ``arange(n)[:, None] + arange(lags)``."""
-    return np.concatenate([x, np.zeros(index.shape[1])])[index]
-
-
 def _least_squares(M: np.ndarray, r: np.ndarray) -> np.ndarray:
-    """Least-squares coefficients by column-scaled normal equations (lstsq if singular).
+    """Least-squares coefficients by the normal equations (lstsq if not positive definite).
 
     The residual is computed afterwards from the coefficients, so coefficient errors affect the
     sum of squares only to second order.
     """
-    G = M.T @ M
-    scale = np.sqrt(np.diag(G))
-    scale[~(scale > 0)] = 1.0
-    _, coef, info = lapack.dposv(G / np.outer(scale, scale), (M.T @ r) / scale)  # Cholesky
+    _, coef, info = lapack.dposv(M.T @ M, M.T @ r)  # Cholesky; its accuracy does not depend on column scaling
     if info == 0:
-        return coef / scale
+        return coef
     return np.linalg.lstsq(M, r, rcond=None)[0]
 
 
