@@ -1282,3 +1282,24 @@ def test_mutated_valid_documents_never_crash(data):
         if not lines:
             break
     _outcome("\n".join(lines) + "\n")
+
+
+def test_a_large_registry_is_parsed_in_a_child_with_the_same_result(tmp_path, monkeypatch):
+    """Above CHILD_PARSE_BYTES the flow's registry task parses in a child process (to keep the
+    parse's temporary memory out of the flow process): the same registry, the same errors."""
+    from fitaudit.tasks.registry import task as registry_task
+
+    monkeypatch.setattr(registry_task, "CHILD_PARSE_BYTES", 0)  # every file counts as large
+    good = tmp_path / "registry.yaml"
+    good.write_text(VALID)
+    in_child = registry_task.load_registry_task.fn(str(good))
+    in_process = load_registry(str(good))
+    assert in_child == in_process and in_child.sha256 == in_process.sha256 and len(in_child.models) == 2
+    bad = tmp_path / "bad.yaml"
+    bad.write_text(VALID.replace("level: 0.05", "level: 7"))
+    with pytest.raises(RegistryError) as here:
+        load_registry(str(bad))
+    with pytest.raises(RegistryError) as child:
+        registry_task.load_registry_task.fn(str(bad))
+    assert [str(p) for p in child.value.problems] == [str(p) for p in here.value.problems]
+    assert str(child.value) == str(here.value) and child.value.problems

@@ -91,6 +91,10 @@ class RegistryError(FitauditError):
             f"{file} has {len(self.problems)} problem(s); the audit cannot start until they are fixed:\n{lines}"
         )
 
+    def __reduce__(self):
+        # pickled with its problems, not its message (a registry parsed in a child process)
+        return (type(self), (self.problems,))
+
 
 class RegistryChangedError(FitauditError):
     """The registry file is not the one that was audited: its SHA-256 differs."""
