@@ -28,6 +28,7 @@ Two evaluation routes, both without a Python loop over single time points:
 
 from __future__ import annotations
 
+import math
 import warnings
 from collections.abc import Mapping
 
@@ -510,19 +511,20 @@ class ExpSmoothing(ForecastModel):
         y = self._validate_y(y, self.min_length())
         if self.seasonal == "mul":
             vec, res = self._fit_multiplicative(y)
-        else:
-            vec, res = self._fit_additive(y)
-        return self._result(y, vec, res)
+            return self._result(y, vec, res)
+        profile = _AdditiveProfile(self, y)
+        vec, res = self._additive_searches(y, profile)[0]
+        return self._result(y, vec, res, profile)
 
-    def _fit_additive(self, y: np.ndarray):
-        return self._additive_searches(y)[0]
-
-    def _additive_searches(self, y: np.ndarray) -> list[tuple[np.ndarray, object]]:
+    def _additive_searches(
+        self, y: np.ndarray, profile: _AdditiveProfile | None = None
+    ) -> list[tuple[np.ndarray, object]]:
         """Local maxima of the profile likelihood from the best grid points, best first.
 
         Each entry is (parameter vector without sigma2, scipy OptimizeResult).
         """
-        profile = _AdditiveProfile(self, y)
+        if profile is None:
+            profile = _AdditiveProfile(self, y)
         bounds = self._bounds()[: len(self._smoothing_names())]
         grid = np.array(self._start_grid())
         with np.errstate(over="ignore", invalid="ignore"):
@@ -616,7 +618,7 @@ class ExpSmoothing(ForecastModel):
         starts.insert(1, self._to_natural(heavy))
         return starts[:_LOCAL_SEARCHES]
 
-    def _result(self, y: np.ndarray, vec: np.ndarray, res) -> FitResult:
+    def _result(self, y: np.ndarray, vec: np.ndarray, res, profile: _AdditiveProfile | None = None) -> FitResult:
         n = y.size
         residuals = self._batch_errors(y, vec[None, :])[0]
         sse = float(residuals @ residuals)
@@ -650,7 +652,7 @@ class ExpSmoothing(ForecastModel):
             converged=converged,
             message=str(res.message) or ("converged" if converged else "stopped"),
             iterations=int(res.nfev),
-            extras={"bse": self._standard_errors(y, vec, sigma2), "at_bound": self._at_bound(vec)},
+            extras={"bse": self._standard_errors(y, vec, sigma2, profile), "at_bound": self._at_bound(vec)},
         )
 
     def _stalled_at_optimum(self, res) -> bool:
@@ -671,7 +673,9 @@ class ExpSmoothing(ForecastModel):
                 pg[i] = 0.0
         return bool(np.max(np.abs(pg)) <= 1e-4 * max(1.0, abs(float(res.fun))))
 
-    def _standard_errors(self, y: np.ndarray, vec: np.ndarray, sigma2: float) -> dict[str, float]:
+    def _standard_errors(
+        self, y: np.ndarray, vec: np.ndarray, sigma2: float, profile: _AdditiveProfile | None = None
+    ) -> dict[str, float]:
         """sqrt of diag(sigma2 (J'J)^-1), J the Jacobian of the one-step errors with respect to the parameters.
 
         Additive season (or none): J is analytic (:meth:`_AdditiveProfile.error_jacobian`, the
@@ -683,7 +687,9 @@ class ExpSmoothing(ForecastModel):
             J = (E[1::2] - E[2::2]).T / (2.0 * step)
         else:
             k = len(self._smoothing_names())
-            J = np.concatenate(_AdditiveProfile(self, y).error_jacobian(vec[:k]), axis=1)
+            if profile is None:
+                profile = _AdditiveProfile(self, y)
+            J = np.concatenate(profile.error_jacobian(vec[:k]), axis=1)
         names = self.param_names()
         with np.errstate(invalid="ignore"):
             try:
@@ -813,9 +819,7 @@ class _AdditiveProfile:
         self.basis = _filter_basis(self.trend, self.m)
         self.L = self.basis.shape[1]  # length of num and den
         self.Lq = self.L - 1  # length of the transient q
-        self.lag_q = _lag_index(n, self.Lq)
         self.lag_y = _lagged(self.y, _lag_index(n, self.L))  # (n, L) of y[t - j]: num * y = lag_y @ num
-        self.lead = np.arange(n)[:, None] + np.arange(self.L)[None, :]  # x[t + j] (0 beyond the end)
         self.inputs = np.zeros((2, n))
         self.impulse = self.inputs[1]
         self.impulse[0] = 1.0
@@ -836,8 +840,24 @@ class _AdditiveProfile:
         self.head_powers = np.arange(1.0, self.Lq + 1)
         self.index = {name: i for i, name in enumerate(self.names)}
         self.positions = tuple(self.index.get(name) for name in ("alpha", "beta", "gamma", "phi"))
+        self.i_phi = self.positions[3]
+        _, N1, A0, A1, Bb, G0, G1 = self.basis
+        zero = np.zeros(self.L)
+        terms = {  # d den / d theta_i = sum of (1, phi, alpha, beta, gamma) times these rows
+            "alpha": (A0, A1, zero, zero, zero),
+            "beta": (zero, Bb, zero, zero, zero),
+            "gamma": (G0, G1, zero, zero, zero),
+            "phi": (N1, zero, A1, Bb, G1),
+        }
+        self.den_derivative_terms = np.stack([np.stack(terms[name]) for name in self.names], axis=1).reshape(5, -1)
+        self.y_n1 = self.lag_y @ self.basis[1]  # N1 * y (causal convolution), the derivative of num * y in phi
         self.one = np.ones(1)  # the numerator of 1/den
         self.padded = np.zeros(n + self.L)  # zeros around a series, for lagged and leading views
+        step = self.padded.strides[0]
+        # lag_view[t, j] = padded[Lq + t - j] (a read-only strided view)
+        self.lag_view = np.lib.stride_tricks.as_strided(
+            self.padded[self.Lq :], shape=(n, self.Lq), strides=(step, -step), writeable=False
+        )
         self.n_states = self.head.shape[1]
         self.toeplitz_n1 = self._toeplitz(self.basis[1])
         # G_ij = sum_t h(t-i) h(t-j) = (lag |i-j| autocorrelation) - (its last min(i, j) terms)
@@ -855,17 +875,6 @@ class _AdditiveProfile:
         g = col.get("gamma", np.zeros(B))
         p = col.get("phi", np.ones(B))
         return np.stack([np.ones(B), p, a, a * p, b * p, g, g * p], axis=1)
-
-    def _derivative_coefficients(self, theta: np.ndarray) -> np.ndarray:
-        """(d, 7) weights of the derivatives of den with respect to the smoothing parameters."""
-        a, b, g, p = self._values(theta)
-        rows = {
-            "alpha": [0.0, 0.0, 1.0, p, 0.0, 0.0, 0.0],
-            "beta": [0.0, 0.0, 0.0, 0.0, p, 0.0, 0.0],
-            "gamma": [0.0, 0.0, 0.0, 0.0, 0.0, 1.0, p],
-            "phi": [0.0, 1.0, 0.0, a, b, 0.0, g],
-        }
-        return np.array([rows[name] for name in self.names])
 
     def _heads(self, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Deterministic paths of the unit states at t < Lq, (B, Lq, k), and their derivative in phi."""
@@ -906,17 +915,9 @@ class _AdditiveProfile:
         return num, den, D
 
     def _lagged_h(self, h: np.ndarray) -> np.ndarray:
-        """(n, Lq) matrix h[t - j], 0 before the start."""
+        """(n, Lq) matrix h[t - j], 0 before the start: a strided view, valid until ``padded`` is written again."""
         self.padded[self.Lq : self.Lq + self.n] = h
-        return self.padded[self.lag_q]
-
-    def _leading(self, a: np.ndarray) -> np.ndarray:
-        """(n, L) matrix a[t + j], 0 beyond the end."""
-        self.padded[: self.n] = a
-        self.padded[self.n :] = 0.0
-        out = self.padded[self.lead]
-        self.padded[: self.n + self.Lq] = 0.0
-        return out
+        return self.lag_view
 
     def _toeplitz(self, poly: np.ndarray) -> np.ndarray:
         """Lower-triangular Toeplitz matrix (Lq, Lq) of the first Lq coefficients of ``poly``."""
@@ -927,13 +928,14 @@ class _AdditiveProfile:
         num, den, D = self._polynomials(theta)
         self.inputs[0] = self.lag_y @ num
         F = signal.lfilter(self.one, den, self.inputs, axis=-1)
-        if not np.isfinite(F[:, -1]).all():  # an overflow propagates to the last term (inf or nan)
-            return np.inf, np.zeros(self.n_states), None
         r, h = F
-        M = self._lagged_h(h) @ (self._toeplitz(num) @ D)
+        if not (math.isfinite(r[-1]) and math.isfinite(h[-1])):  # an overflow propagates to the last term
+            return np.inf, np.zeros(self.n_states), None
+        Tn = self._toeplitz(num)
+        M = self._lagged_h(h) @ (Tn @ D)
         states = _least_squares(M, r)
         e = r - M @ states
-        return float(e @ e), states, (num, den, D, h, M, e)
+        return float(e @ e), states, (num, den, D, h, M, e, Tn)
 
     def __call__(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
         """(SSE, least-squares states) at smoothing parameters ``theta`` (param order), in the units of y."""
@@ -946,12 +948,18 @@ class _AdditiveProfile:
         out[0] += self.shift
         return out
 
-    def _dq(self, theta: np.ndarray, num: np.ndarray, D: np.ndarray) -> np.ndarray:
-        """dQ/dphi, (Lq, k): num = N0 + phi N1 and the trend path phi + ... + phi^(t+1) depend on phi."""
-        p = self._values(theta)[3]
-        dD = np.zeros_like(D)
-        dD[:, 1] = np.cumsum(self.head_powers * p ** (self.head_powers - 1.0))
-        return self.toeplitz_n1 @ D + self._toeplitz(num) @ dD
+    def _dq_states(self, theta: np.ndarray, Tn: np.ndarray, D: np.ndarray, states: np.ndarray) -> np.ndarray:
+        """(dQ/dphi) s, (Lq,): num = N0 + phi N1 and the trend path phi + ... + phi^(t+1) depend on phi
+        (``Tn`` the Toeplitz matrix of num, s the states)."""
+        p = theta[self.positions[3]]
+        dtrend = np.cumsum(self.head_powers * p ** (self.head_powers - 1.0))
+        return self.toeplitz_n1 @ (D @ states) + Tn @ (dtrend * states[1])
+
+    def _den_derivatives(self, theta: np.ndarray) -> np.ndarray:
+        """(d, L) coefficients of d den / d theta_i, from
+        den = num + alpha (A0 + phi A1) + phi beta Bb + gamma (G0 + phi G1) (:func:`_filter_basis`)."""
+        a, b, g, p = self._values(theta)
+        return (np.array([1.0, p, a, b, g]) @ self.den_derivative_terms).reshape(len(self.names), self.L)
 
     def value_and_gradient(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
         """(SSE, dSSE/dtheta) at smoothing parameters ``theta`` (param order), centred and scaled units.
@@ -962,15 +970,15 @@ class _AdditiveProfile:
         sse, states, parts = self._solve(theta)
         if parts is None or not np.isfinite(sse):
             return np.inf, np.zeros(len(theta))
-        num, den, D, h, M, e = parts
+        num, den, D, h, M, e, Tn = parts
         a = signal.lfilter(self.one, den, e[::-1])[::-1]  # den^-T e
-        lead = self._leading(a)  # (n, L): a[t + j]
-        c_e = lead.T @ e
-        dden = self._derivative_coefficients(theta) @ self.basis
-        grad = -(dden @ c_e)
-        if "phi" in self.index:
-            dq = self._dq(theta, num, D) @ states
-            grad[self.index["phi"]] += self.basis[1] @ (lead.T @ self.y) - a[: self.Lq] @ dq
+        self.padded[: self.n] = a
+        self.padded[self.n :] = 0.0
+        c_e = np.correlate(self.padded[: self.n + self.Lq], e, "valid")  # sum_t a[t + j] e[t], j < L
+        self.padded[: self.n] = 0.0  # zeros before the start again, for lag_view
+        grad = -(self._den_derivatives(theta) @ c_e)
+        if self.i_phi is not None:  # dnum/dphi * y = N1 * y
+            grad[self.i_phi] += a @ self.y_n1 - a[: self.Lq] @ self._dq_states(theta, Tn, D, states)
         return sse, 2.0 * grad
 
     def objective(self, z: np.ndarray) -> tuple[float, np.ndarray]:
@@ -1004,13 +1012,13 @@ class _AdditiveProfile:
     def error_jacobian(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(de/dtheta at fixed states, de/dstates), (n, d) and (n, k), in the units of y and of the parameters."""
         with np.errstate(over="ignore", invalid="ignore"):
-            sse, states, (num, den, D, h, M, e) = self._solve(theta)
-            dden = self._derivative_coefficients(theta) @ self.basis
+            sse, states, (num, den, D, h, M, e, Tn) = self._solve(theta)
+            dden = self._den_derivatives(theta)
             rows = -np.stack([np.convolve(p, e)[: self.n] for p in dden])
             if "phi" in self.index:
                 i = self.index["phi"]
                 rows[i] += np.convolve(self.basis[1], self.y)[: self.n]
-                rows[i, : self.Lq] -= self._dq(theta, num, D) @ states
+                rows[i, : self.Lq] -= self._dq_states(theta, Tn, D, states)
             J = signal.lfilter([1.0], den, rows, axis=-1).T
         return J * self.scale, -M
 
@@ -1028,8 +1036,9 @@ class _AdditiveProfile:
                 self.inputs[0] = U[b]
                 R[b], H[b] = signal.lfilter([1.0], den[b], self.inputs, axis=-1)
             finite = np.isfinite(R).all(axis=1) & np.isfinite(H).all(axis=1)
-            R = np.where(np.isfinite(R), R, 0.0)
-            H = np.where(np.isfinite(H), H, 0.0)
+            if not finite.all():
+                R = np.where(np.isfinite(R), R, 0.0)
+                H = np.where(np.isfinite(H), H, 0.0)
             D, _ = self._heads(C[:, 1])
             Q = self._transient(num, D)
             # Gram matrix of the lagged impulse responses and their products with R, from (cross-)correlations
