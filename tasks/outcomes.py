@@ -129,8 +129,14 @@ def rejected_outcome(entry: RejectedEntry) -> Outcome:
 #: CheckResult fields that only the records and pages need (the fleet rules use the others: the
 #: reasons they rewrite name the classical members, McLeod-Li, the simulation's floor and, for a
 #: forecast audit, the window's length, so ``members``, ``mcleod_li``, ``calibration`` and
-#: ``window`` stay).
+#: ``window`` stay; of the ``gate`` only its ``deciding`` cell, which the reasons describe).
 _CHECK_DETAIL = {"map": None, "critical_grid": None, "scaled_grid": None, "plots": {}, "counts": ()}
+
+
+def _check_for_fleet_rules(check):
+    gate = check.gate or {}
+    kept = {"deciding": gate["deciding"]} if "deciding" in gate else {}
+    return dataclasses.replace(check, gate=kept, **_CHECK_DETAIL)
 
 
 def light_outcome(outcome: Outcome) -> Outcome:
@@ -140,16 +146,16 @@ def light_outcome(outcome: Outcome) -> Outcome:
 
     Kept: the id, verdict, reasons, history, timings and, of the result, every number the verdict
     is decided from and every figure its reasons quote.  Dropped: the entry's other fields,
-    lineage, settings, and the checks' maps, grids, plots and counts, the change location and the
-    fitted parameters.
+    lineage, settings, and the checks' maps, grids, plots and counts, their gates' partitions and
+    member statistics, the change location and the fitted parameters.
     :func:`restore_outcomes` puts them back.
     """
     res = outcome.result
     if res is not None:
         res = dataclasses.replace(
             res,
-            production=None if res.production is None else dataclasses.replace(res.production, **_CHECK_DETAIL),
-            refit=None if res.refit is None else dataclasses.replace(res.refit, **_CHECK_DETAIL),
+            production=None if res.production is None else _check_for_fleet_rules(res.production),
+            refit=None if res.refit is None else _check_for_fleet_rules(res.refit),
             change=None,
             fitted={},
             production_params=None,
