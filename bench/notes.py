@@ -188,92 +188,66 @@ degrees of freedom, docs/method.md §7.3) and the Newton sums of the t law (equa
     """
 ## Reading the goals
 
-Numbers quoted here come from the runs of this page. During the memory runs another job (the
-size/power study) shared the machine, which lengthens their run times but not their peaks.
+Numbers quoted here come from the runs of this page (a fresh clone, nothing else running).
 
-**Throughput (goal 20x): missed.** The peer is fast once its BLAS is single-threaded: statsmodels
-fits this SARIMAX in 0.2-0.27 s and the ETS model in 0.1-0.16 s, so it audits 4-5.5 series per
-second while doing much less than the audit. fitaudit's per-model work is about 30 ms of audit
-(fits, both checks, change location; an ETS fit alone is about 50 ms: three L-BFGS-B searches of
-the profile likelihood to tight tolerances) and about 15 ms for the record and the model page
-(page 11 ms, record 2 ms, canonical JSON 1 ms), spread over the two cores; on top come costs
-that do not shrink with the fleet: the embedded Prefect server's start (8-10 s), the null tables
-(about 2 s), the candidate search for the respecify models (8-10 s: each estimates a student-t
-shape and simulates its own table) and the publication (a few seconds, one fsync per file). At
-1,000 series that is about 18 series/s (4.1x; 3.0x in an earlier run on a machine loaded by
-another job). Even with no fixed costs, 45 ms of work per model on two cores caps fitaudit near
-45 series/s, 8-11x this peer. What would close the gap: a long-lived Prefect server
-(`PREFECT_API_URL`) removes the start-up; more cores scale the batch work (the worker processes
-use every CPU, the peer is one process); the per-model cost is in the model fits
-(`core/models/`), where a batched fit of same-shaped series (one optimiser over many series,
-vectorised likelihoods) would be the next step. It was not done here because it changes the
-optimiser's path and so the fitted digits, which this issue required to stay identical.
+**Throughput (goal 20x): missed, 4.0x** (2.0x per core). Before this round's work the same
+benchmark gave 2.3x (13.7 series/s, flow 66.4 s): the stronger distribution gate finds most planted
+changes, so 48 models are searched for candidates, and the search was 38.4 s of the flow. Now the
+flow takes 42.3 s: stage 2.0 s, calibration 1.7 s, audit 14.4 s (was 15.6), candidates 13.6 s
+(was 38.4: the student-t tables on a grid of the degrees of freedom, the other laws skipped when
+the independence gate already rejects, cheaper fits and t-law steps), render 5.0 s, publish 6.7 s;
+the embedded server's start adds 8.4 s. The peer is fast once its BLAS is single-threaded
+(statsmodels fits this SARIMAX in about 0.2 s and the ETS model in about 0.1 s) and does much less
+than the audit. fitaudit's per-model work is about 30 ms of audit and 10 ms of record and page on
+two cores; with the server start, the null tables, the candidate search and the publication fixed
+per run, 20x (about 100 series/s, 10 s for the fleet) is out of reach on two cores: the server
+start alone is 8 s. What would close more of the gap: a long-lived Prefect server
+(`PREFECT_API_URL`), more cores (the batch work uses every CPU, the peer one), batched fits of
+same-shaped series, and a candidate search that shares its student-t tables across worker
+processes (each of the four search tasks now simulates the tables its own models need).
 
-**Model fits (goal 10x at equal log-likelihood).** No spec fits to a lower log-likelihood than
-statsmodels (the shortfall column is 0 wherever measured so far; on UKDriverDeaths statsmodels'
-ETSModel stops about 9 log-likelihood units lower). The seasonal ARIMA specs with a long
-differenced series, the weekly model with a seasonal AR term at lag 52 (statsmodels' state has 53
-dimensions) and the airline models pass with margin (15x to 26x in quick runs); ARMA(1,1),
-"""
-    "ARMA(2,2) and AR(2) with regressors lie between 7x (ARMA(2,2) on a loaded machine) and 24x. Two kinds of spec "
-    "miss. AR(1)(0,1,1)7 on 730 daily\n"
-    """values (about 7x): statsmodels' Kalman filter is fast for this small state (about 30 ms), while
-fitaudit's fit is about 17 evaluations of the exact likelihood at about 0.25 ms each (two
-`lfilter` passes over the series, a Gram product and a Cholesky factorisation, 0.14 ms; the initial
-state covariance, 0.04 ms), spread over numpy calls that each cost a few microseconds: no single
-waste to remove, a batched likelihood over several parameter vectors would be the way. Damped
-Holt-Winters (2x to 5x): the fit runs three L-BFGS-B searches of the profile likelihood from
-different starting points, about 50 evaluations each, because a single start stops at local optima
-on some packaged series (R's `nottem`); fewer starts would buy speed with optimality, which the
-goal forbids. `python -m bench.fit --profile` prints the profiles.
+**Fit-bound ratio (goal 3): missed, 10.3x** (flow alone 8.6x). The fits alone (refit and
+production filter of every series) take 4.9 s split over two workers (7.5 s before this round's
+fit work); the audit adds the scoring, calibration and change location (about as much again), the
+candidate search its own fits and tables, and the report and archive their pages and files.
 
-**Orchestration share (goal 10 %): met**, about 6 % of the flow's wall time at 1,000 series: with
-batches of 100-200 models and large inputs quoted, Prefect's bookkeeping, logs, events and
-artifacts take a few seconds.
+**Model fits (goal 10x at equal log-likelihood): 10 of 11 specs meet it.** No spec fits to a lower
+log-likelihood than statsmodels (the shortfall column is 0; on UKDriverDeaths statsmodels' ETSModel
+stops about 9 log-likelihood units lower). ARIMA: 13x to 29x, AR(1)(0,1,1)7 included (7.8x before:
+an in-house BFGS with the gradient only at accepted points, memoised likelihood pieces, closed
+forms for one AR coefficient). Damped Holt-Winters: period 12 on R's series 11.3x (4.4x before),
+period 7 on the fleet's 730 daily values 6.3x (2.0x before): the fit keeps three L-BFGS-B searches
+from the best points of a 90-point grid, because a single start stops at local optima on packaged
+series (R's `nottem`); about 50 evaluations of 90 us each, the grid and scipy's optimiser wrapper
+are what is left. Replacing L-BFGS-B by a leaner optimiser was tried and reached a lower maximum on
+one packaged series (elec_equip, 0.03 log-likelihood units), so it was not kept. `python -m
+bench.fit --profile` prints the profiles.
 
-**Scale-out (goal 1.7x): missed.** Two Dask workers made the whole flow 1.44x faster and the
-audit stage 1.49x (1.73x and 1.40x in an earlier run; about 1x when another job held a core).
-What does not scale: staging, calibration, the fleet rules, publication, events and the
-cluster's start run once (about 10 s together), and the candidate search (15 s there) is
-dominated by one student-t table per respecify model, which the searches now spread evenly over
-"""
-    "the workers, with the tables they share built once beforehand. On an idle machine with more cores than workers "
-    "the batch stages scale with\n"
-    """the workers; the fixed part is what keeps the flow below 1.7x on 1,000 series.
+**Orchestration share (goal 10 %): met**, 8.4 % of the flow's wall time at 1,000 series (3.5 s):
+with the flow shorter, Prefect's fixed bookkeeping weighs more.
 
-**What limits scale-out, and larger clusters (model on paper).** On two cores the second worker
-does not get a core of its own: the flow process (staging, tables, fleet rules, publication), the
-Prefect server and the Dask scheduler run on the same two CPUs, so the 2-worker run's batch
-stages take longer than half the 1-worker run's (`E` in the model). On a cluster the batch stages
+**Scale-out: measured 1.33x** for the flow (1 against 2 Dask workers) and 1.48x for the audit
+stage. Staging, calibration, the fleet rules, publication and the cluster's start run once
+(about 7 s), and on two cores the second worker shares the CPUs with the flow process, the Prefect
+server and the Dask scheduler (`E` below).
+
+**What limits scale-out, and larger clusters (model on paper).** On a cluster the batch stages
 (audit, records and pages) divide by the workers, but the serial part `S` does not, and the
-candidate search divides only by the number of models it searches (a few per thousand); the model
-under the table gives, from this run's own stage times, the flow time at 8 and 32 workers with and
-without `E` and the limit `T(1) / (S + E)`: a few times the 1-worker flow, not 8 or 32. Beyond
-that, more workers need the serial stages parallelised (staging and publication per batch), the
-candidate search split per candidate rather than per model, and a Prefect server that keeps up
-with four task runs per worker per stage, which this model assumes and does not measure.
+candidate search divides only by the number of models it searches (48 here); the model under the
+table gives, from this run's own stage times, the flow time at 8 and 32 workers with and without
+`E` and the limit `T(1) / (S + E)`: a few times the 1-worker flow, not 8 or 32. Beyond that, more
+workers need the serial stages parallelised (staging and publication per batch), the candidate
+search split per candidate rather than per model, and a Prefect server that keeps up with four
+task runs per worker per stage, which this model assumes and does not measure.
 
-**Memory (goal 1.5 GB for the process tree).** The run described next (before the changes below)
-missed it: the tree peaked at 1.9 GB. Since then the worker processes load neither Prefect, pyarrow
-nor pandas, every process returns freed memory to the system after staging, calibration and each
-worker call (`tasks/memory.py`: pyarrow's pool kept about 110 MB per 1,000 series after the
-scans, glibc's heap about 60 MB after the null tables), and the fleet child no longer imports the
-peer's statsmodels. On a 2,000-model fleet, same machine, before -> after: flow process 623 -> 548
-MiB, server 239 -> 238 MiB, workers 928 -> 692 MiB, tree 1,756 -> 1,368 MiB. At 5,000 models
-(after): flow 659 MiB, server 247 MiB, workers 703 MiB, tree 1,509 MiB. With the retained memory gone,
-the flow process's own growth shows: about 50 MiB per 1,000 models (the registry's entries about
-20 KB each, a light outcome about 24 KB in memory, then the light records), so 10,000 models would
-reach about 1.7 GiB for the tree by extrapolation: likely still a miss, which the next `make bench`
-measures. The earlier run: the flow process peaked at 0.85 GB for 10,000 models and
-grows by a few MB per 1,000 models (2.6 MB here, 5.7 MB in an earlier run; the peaks vary by
-about 0.1 GB between runs), well below the size of the results themselves
-(`results.json`, 21 MB per 1,000): it holds a light outcome per model until its batch is rendered,
-then a light record for the run page, the events and the Parquet file; the full results live in
-the work folder and the archive, and staging reads at most 1,000 series at a time. Most of its
-0.85 GB is the imports and the 10,000-entry registry, the same in all three runs. The whole process
-tree peaks at 1.9 GB: the Prefect server (about 0.25 GB) and the two worker processes (0.3-0.4 GB
-each: every worker imports Prefect, pyarrow and Jinja2 through the task modules, and holds one
-batch). Moving the batches' plain functions into modules that import none of these, or fewer
-worker processes, would bring the tree under 1.5 GB.
+**Memory (goal 1.5 GB for the process tree): met, 1,411 MiB at 10,000 models** (1,712 MiB before
+this round): flow process 800 MiB (916 before), server 287 MiB, worker processes 489 MiB (707
+before). Three changes: the student-t and other refit tables fit their simulated rows in blocks of
+256 (a tenth of the Newton iterations' temporary arrays in the workers), a registry of 1 MB or more
+is parsed in a child process (the parse's freed YAML nodes stayed in the flow process: 190 MiB
+retained for 10,000 entries, 52 MiB now), and light outcomes keep only the deciding cell of each
+check's gate (28.9 to 19.1 KB each). The flow process still grows 14.7 MiB per 1,000 models (21.8
+before): the light outcomes and light records it holds for the fleet rules and the run page, below
+the size of the results themselves (`results.json`, 24 MiB per 1,000).
 """
 )
