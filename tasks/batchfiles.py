@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 import pathlib
+from collections.abc import Collection
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -56,20 +57,34 @@ def write_batch(path: pathlib.Path, inputs: list[dict], arrays: dict[str, np.nda
     path.with_suffix(".json").write_bytes(text.encode("utf-8"))
 
 
-def batch_metadata(path: str | pathlib.Path) -> list[dict]:
+def _indexed_metadata(path: pathlib.Path, model_ids: Collection[str] | None) -> list[tuple[int, dict]]:
+    """``(position in the batch, metadata)`` of the batch's models, only those in ``model_ids``
+    when given (their entries are typed; the others' are not even parsed)."""
+    meta = json.loads(path.with_suffix(".json").read_text())
+    wanted = None if model_ids is None else set(model_ids)
+    return [
+        (i, {**m, "entry": entry_from_dict(m["entry"])})
+        for i, m in enumerate(meta)
+        if wanted is None or m["entry"]["id"] in wanted
+    ]
+
+
+def batch_metadata(path: str | pathlib.Path, model_ids: Collection[str] | None = None) -> list[dict]:
     """The JSON part of a staged batch (entries, production versions, lineage, problems), no data;
-    each ``entry`` is the typed registry entry again (:func:`fitaudit.tasks.registry.entry_from_dict`)."""
-    meta = json.loads(pathlib.Path(path).with_suffix(".json").read_text())
-    return [{**m, "entry": entry_from_dict(m["entry"])} for m in meta]
+    each ``entry`` is the typed registry entry again (:func:`fitaudit.tasks.registry.entry_from_dict`).
+    With ``model_ids``, only those models, in batch order."""
+    return [m for _, m in _indexed_metadata(pathlib.Path(path), model_ids)]
 
 
-def read_batch(path: str | pathlib.Path) -> list[ModelInput]:
-    """Read a staged batch back as :class:`ModelInput` objects."""
+def read_batch(path: str | pathlib.Path, model_ids: Collection[str] | None = None) -> list[ModelInput]:
+    """Read a staged batch back as :class:`ModelInput` objects; with ``model_ids``, only those
+    models, in batch order (the others' arrays are not loaded: the candidate search wants a few
+    models of each batch)."""
     path = pathlib.Path(path)
-    meta = batch_metadata(path)
+    meta = _indexed_metadata(path, model_ids)
     with np.load(path.with_suffix(".npz"), allow_pickle=False) as data:
         out = []
-        for i, m in enumerate(meta):
+        for i, m in meta:
             exog = {name: data[f"{i}/x/{j}"] for j, name in enumerate(m["exog_names"])}
             stated = {name: data[f"{i}/f/{j}"] for j, name in enumerate(m.get("forecast_names", ()))}
             out.append(

@@ -258,3 +258,27 @@ def test_staging_keeps_the_fingerprint_cache_in_the_archive(tmp_path, monkeypatc
     )  # a one-model refit
     assert hashed == []  # the digest came from the cache
     assert second.fingerprints["x"] == first.fingerprints["x"]  # the manifest's record is the same
+
+
+def test_reading_some_models_of_a_batch_gives_their_full_items_in_batch_order(tmp_path):
+    """``read_batch(path, model_ids)`` (the candidate search reads a few models per batch) equals
+    the full read filtered: same entries, arrays and metadata, in the batch's order."""
+    rng = np.random.default_rng(8)
+    fleet = Fleet(tmp_path)
+    write_parquet(tmp_path / "data" / "x.parquet", long_table({k: {"date": days(), "y": ar1(rng)} for k in "abcd"}))
+    fleet.source("x", "data/x.parquet")
+    for k in "abcd":
+        fleet.model(f"m-{k}", "x", k)
+    staged = batches.stage_inputs(load_registry(fleet.write()), AS_OF, tmp_path / "work")
+    (batch,) = staged.batches
+    full = batchfiles.read_batch(batch.path)
+    some = batchfiles.read_batch(batch.path, ["m-d", "m-b"])
+    assert [i.model_id for i in some] == ["m-b", "m-d"]
+    by_id = {i.model_id: i for i in full}
+    for item in some:
+        ref = by_id[item.model_id]
+        assert item.entry == ref.entry and item.lineage == ref.lineage and item.problems == ref.problems
+        np.testing.assert_array_equal(item.y, ref.y)
+        np.testing.assert_array_equal(item.time, ref.time)
+    assert [m["entry"].id for m in batchfiles.batch_metadata(batch.path, {"m-c"})] == ["m-c"]
+    assert batchfiles.read_batch(batch.path, []) == []

@@ -290,11 +290,10 @@ def candidates_for(
     """Candidate search (:func:`fitaudit.core.candidates.search_candidates`) for models of a batch."""
     from fitaudit.core.candidates import search_candidates
 
-    wanted = set(model_ids)
     cache = cache if cache is not None else CalibrationCache()
     out: dict[str, list[dict]] = {}
-    for item in read_batch(path):
-        if item.model_id not in wanted or isinstance(item.entry, ForecastEntry):
+    for item in read_batch(path, model_ids):
+        if isinstance(item.entry, ForecastEntry):
             continue  # forecasts made elsewhere: fitaudit has no specification to vary
         entry = item.entry
         try:
@@ -341,10 +340,9 @@ def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list
     tables: dict[tuple, list] = {}
     for group in jobs:
         for path, ids in group:
-            wanted = set(ids)
-            for meta in batch_metadata(path):
+            for meta in batch_metadata(path, ids):
                 entry = meta["entry"]
-                if entry.id not in wanted or isinstance(entry, ForecastEntry):
+                if isinstance(entry, ForecastEntry):
                     continue
                 settings = entry.audit_settings(policy)
                 n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
