@@ -42,7 +42,7 @@ from .change import locate_change
 from .checks import MAGNITUDE_RANGE, _check_inputs, _failed_check, _production_check, _refit_check, score_frozen
 from .exceptions import FitauditError, InputError
 from .forecasts import audit_forecasts
-from .models import as_model, check_series, exog_matrix
+from .models import FitResult, as_model, check_series, exog_matrix
 from .noise import as_noise_law
 from .plotdata import error_effects, iso_date
 from .results import AuditResult, CheckResult, _plain
@@ -79,6 +79,7 @@ def audit_series(
     cache: CalibrationCache | None = None,
     label: str | None = None,
     timestamps=None,
+    fit: FitResult | None = None,
 ) -> AuditResult:
     """Audit one series: production check, refit check, verdict.
 
@@ -105,6 +106,10 @@ def audit_series(
     timestamps : array_like, shape (n,), optional
         Timestamps of ``y``; used only to name dates (windows, a located change) in the results
         and reasons (:func:`~fitaudit.core.plotdata.error_effects`).
+    fit : FitResult, optional
+        The refit of ``spec`` to this ``y`` and ``exog`` (:func:`~fitaudit.core.checks.refit_model`),
+        when the caller already has it: used instead of fitting again.  The candidate search
+        scores one fit under several noise laws (the model's fit does not depend on the law).
 
     Returns
     -------
@@ -162,7 +167,7 @@ def audit_series(
         timings["production_s"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
-    refit_check, fit = _refit_check(model, y_arr, exog, law, settings, cache, label)
+    refit_check, fit = _refit_check(model, y_arr, exog, law, settings, cache, label, fit)
     timings["refit_s"] = time.perf_counter() - t0
 
     change = None

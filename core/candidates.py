@@ -17,7 +17,9 @@ import numpy as np
 
 from .audit import audit_series
 from .calibration import CalibrationCache
-from .models import ForecastModel, as_model, model_from_dict
+from .checks import refit_model
+from .exceptions import FitauditError
+from .models import FitResult, ForecastModel, as_model, model_from_dict
 from .noise import NOISE_LAWS
 from .settings import AuditSettings
 
@@ -123,9 +125,24 @@ def neighbour_specs(spec: ForecastModel | Mapping[str, Any]) -> list[dict]:
     return out
 
 
-def _independence_rejects(y, model: ForecastModel, noise, exog, settings: AuditSettings, cache) -> bool:
+def _spec_fit(y, model: ForecastModel, exog, settings: AuditSettings) -> FitResult | None:
+    """The failing specification's refit, shared by the trials that change only its noise law
+    (a model's fit does not depend on the law); None when it fails: each trial then fits and
+    reports the failure itself."""
+    try:
+        x = None if exog is None else {k: np.asarray(v, dtype=float) for k, v in dict(exog).items()}
+        return refit_model(model, np.asarray(y, dtype=float), x, settings)
+    except (FitauditError, ValueError, TypeError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError):
+        return None
+
+
+def _independence_rejects(
+    y, model: ForecastModel, noise, exog, settings: AuditSettings, cache, fit: FitResult | None = None
+) -> bool:
     """Whether the refit check of ``model`` (with its own law) flags the independence gate."""
-    res = audit_series(y, model.to_dict(), noise=noise, exog=exog, production=None, settings=settings, cache=cache)
+    res = audit_series(
+        y, model.to_dict(), noise=noise, exog=exog, production=None, settings=settings, cache=cache, fit=fit
+    )
     check = res.refit
     return check is not None and check.ok and check.gate_flags(settings.level)[1]
 
@@ -171,13 +188,21 @@ def search_candidates(
     settings = settings if settings is not None else AuditSettings()
     trials: list[tuple[dict, Any]] = [(s_, noise) for s_ in (specs if specs is not None else neighbour_specs(model))]
     other_laws = [law for law in (laws if laws is not None else CONTINUOUS_LAWS) if law != noise_name]
-    if other_laws and skip_futile and _independence_rejects(y, model, noise, exog, settings, cache):
+    spec_fit = _spec_fit(y, model, exog, settings) if other_laws else None
+    if other_laws and skip_futile and _independence_rejects(y, model, noise, exog, settings, cache, spec_fit):
         other_laws = []
     trials += [(model.to_dict(), law) for law in other_laws]
     scored = []
-    for cand_spec, cand_noise in trials:
+    for i, (cand_spec, cand_noise) in enumerate(trials):
         res = audit_series(
-            y, dict(cand_spec), noise=cand_noise, exog=exog, production=None, settings=settings, cache=cache
+            y,
+            dict(cand_spec),
+            noise=cand_noise,
+            exog=exog,
+            production=None,
+            settings=settings,
+            cache=cache,
+            fit=spec_fit if i >= len(trials) - len(other_laws) else None,
         )
         chk = res.refit
         scaled = (

@@ -353,19 +353,32 @@ def _production_check(
         return _failed_check("production", exc, window, label), None, None
 
 
-def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label) -> tuple[CheckResult, Any]:
+def fit_window(n_all: int, settings) -> slice:
+    """The refit check's fit window of a series of ``n_all`` values: its last ``settings.fit_window``
+    values (all of them when unset or longer)."""
+    return slice(n_all - min(settings.fit_window or n_all, n_all), n_all)
+
+
+def refit_model(model, y: np.ndarray, exog, settings):
+    """:meth:`ForecastModel.fit` on the fit window (:func:`fit_window`), convergence warnings
+    silenced (the refit check reports ``fit.converged`` itself)."""
+    sl = fit_window(y.size, settings)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        return model.fit(y[sl], _slice_exog(exog, sl))
+
+
+def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label, fit=None) -> tuple[CheckResult, Any]:
+    """The refit check; ``fit``, when given, is :func:`refit_model`'s result for the same model and
+    data (the candidate search scores one fit under several noise laws) and is not made again."""
     n_all = y.size
-    fw = settings.fit_window or n_all
-    fw = min(fw, n_all)
-    sl = slice(n_all - fw, n_all)
-    window = {"first": n_all - fw, "last": n_all - 1, "length": fw}
-    fit = None
+    sl = fit_window(n_all, settings)
+    window = {"first": sl.start, "last": n_all - 1, "length": n_all - sl.start}
     try:
         yf = y[sl]
         xf = _slice_exog(exog, sl)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", ConvergenceWarning)  # reported through fit.converged below
-            fit = model.fit(yf, xf)
+        if fit is None:
+            fit = refit_model(model, y, exog, settings)
         if not fit.converged:
             detail = fit.message or "no message from the optimiser"
             raise FitauditError(

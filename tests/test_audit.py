@@ -125,6 +125,38 @@ def test_other_laws_are_not_tried_when_the_specs_independence_gate_rejects(cache
     assert laws_tried == ["normal", "normal"]  # the spec's own check and the one neighbour
 
 
+def test_the_law_trials_score_one_fit_of_the_spec_with_the_same_candidates(cache, monkeypatch):
+    """Student-t innovations: the normal AR(1) fails on its distribution, not its independence, so
+    the other laws are tried.  They share the spec's fit (the fit does not depend on the law):
+    the candidates equal those of auditing every trial afresh, with the spec fitted once."""
+    import fitaudit.core.candidates as candidates
+
+    rng = np.random.default_rng(21)
+    y = AR1.simulate(TRUE, 400, rng, innovations=rng.standard_t(3, size=400))
+    specs = [{"family": "arima", "order": [2, 0, 0], "trend": "c"}]
+    real = candidates.audit_series
+
+    def afresh(y_, spec, noise="normal", **kwargs):
+        kwargs.pop("fit", None)
+        return real(y_, spec, noise=noise, **kwargs)
+
+    monkeypatch.setattr(candidates, "audit_series", afresh)
+    reference = search_candidates(y, AR1, settings=FAST, cache=cache, specs=specs)
+    monkeypatch.setattr(candidates, "audit_series", real)
+    fits = []
+    real_fit = Arima.fit
+
+    def counting_fit(self, y_, exog=None):
+        fits.append(self.to_dict()["order"])
+        return real_fit(self, y_, exog)
+
+    monkeypatch.setattr(Arima, "fit", counting_fit)
+    shared = search_candidates(y, AR1, settings=FAST, cache=cache, specs=specs)
+    assert [c.to_dict() for c in shared] == [c.to_dict() for c in reference]
+    assert {c.noise for c in reference} - {"normal"}  # another law passes: the law trials were run
+    assert sorted(fits) == [[1, 0, 0], [2, 0, 0]]  # the spec once (its check and 3 laws), the neighbour once
+
+
 @pytest.mark.parametrize("season, lags", [(1, 10), (5, 10), (7, 14), (24, 48), (52, 80)])
 def test_the_calendars_season_sets_the_ljung_box_lags_of_a_model_without_one(cache, season, lags):
     # h = 2m for seasonal data, 10 otherwise, at most n/5 (n = 400 here)
