@@ -24,6 +24,8 @@ __all__ = [
     "minimum_length",
     "cell_counts",
     "cell_index",
+    "CountsBelow",
+    "boundary_union",
     "Partition",
     "make_partition",
     "make_partitions",
@@ -73,13 +75,60 @@ def cell_index(u: np.ndarray, s: int) -> np.ndarray:
     return np.minimum((np.clip(u, 0.0, 1.0) * s).astype(np.int64), s - 1)
 
 
-def cell_counts(u: np.ndarray, s: int) -> np.ndarray:
+@dataclass(frozen=True)
+class CountsBelow:
+    """Rows of PIT values known only through their counts below fixed boundaries.
+
+    ``below[r, j]`` is the number of values of row ``r`` (of ``n``) whose PIT is below
+    ``boundaries[j]`` (interior, increasing).  A simulated null table needs only cell counts, and
+    for a continuous law they follow from one quantile per row and boundary
+    (``counts_below_batch`` of the continuous laws in :mod:`fitaudit.core.noise`) instead of one distribution-function
+    value per observation.  :func:`cell_counts` and :meth:`Partition.counts` accept it in place of
+    the PIT values, for any cells whose boundaries are among ``boundaries`` (to 12 decimals).
+
+    >>> pit = CountsBelow(np.array([0.25, 0.5, 0.75]), np.array([[1, 2, 4]]), 4)
+    >>> cell_counts(pit, 4), cell_counts(np.array([[0.1, 0.3, 0.6, 0.7]]), 4)
+    (array([[1., 1., 2., 0.]]), array([[1., 1., 2., 0.]]))
+    """
+
+    boundaries: np.ndarray
+    below: np.ndarray
+    n: int
+
+    def counts(self, boundaries) -> np.ndarray:
+        """Counts in the cells with these boundaries (0, ..., 1), shape (R, s)."""
+        inner = np.asarray(boundaries, dtype=float)[1:-1]
+        cols = np.searchsorted(self.boundaries, inner - 1e-12)
+        known = cols < self.boundaries.size
+        if not (known.all() and np.allclose(self.boundaries[cols], inner, rtol=0.0, atol=1e-12)):
+            raise InputError("CountsBelow.counts: a cell boundary was not among those counted; count it too.")
+        rows = len(self.below)
+        edges = np.concatenate([np.zeros((rows, 1)), self.below[:, cols], np.full((rows, 1), self.n)], axis=1)
+        return np.diff(edges, axis=1).astype(float)
+
+
+def boundary_union(*boundary_sets) -> np.ndarray:
+    """The distinct interior boundaries (to 1e-12) of several cell sets, increasing; an int ``s``
+    stands for ``s`` equiprobable cells.
+
+    >>> boundary_union(4, (0.0, 0.5, 0.9, 1.0))
+    array([0.25, 0.5 , 0.75, 0.9 ])
+    """
+    values = []
+    for b in boundary_sets:
+        values.extend((np.arange(1, b) / b) if isinstance(b, (int, np.integer)) else np.asarray(b, dtype=float)[1:-1])
+    values = np.sort(np.asarray(values, dtype=float))
+    return values[np.r_[True, np.diff(values) > 1e-12]] if values.size else values
+
+
+def cell_counts(u: np.ndarray | CountsBelow, s: int) -> np.ndarray:
     """Counts of PIT values in ``s`` equiprobable cells, along the last axis.
 
     Parameters
     ----------
-    u : ndarray, shape (n,) or (R, n)
-        PIT values in [0, 1].
+    u : ndarray, shape (n,) or (R, n), or CountsBelow
+        PIT values in [0, 1] (or rows known by their counts below boundaries that include
+        ``j / s``).
     s : int
         Number of cells.
 
@@ -87,6 +136,8 @@ def cell_counts(u: np.ndarray, s: int) -> np.ndarray:
     -------
     ndarray of float, shape (s,) or (R, s)
     """
+    if isinstance(u, CountsBelow):
+        return u.counts(np.arange(s + 1) / s)
     idx = cell_index(u, s)
     if idx.ndim == 1:
         return np.bincount(idx, minlength=s).astype(float)
@@ -141,8 +192,10 @@ class Partition:
         """True when every cell has probability ``1/s`` (counted as :func:`cell_counts` does)."""
         return self.kind in ("equiprobable", "terciles", "quartiles")
 
-    def counts(self, u: np.ndarray) -> np.ndarray:
+    def counts(self, u: np.ndarray | CountsBelow) -> np.ndarray:
         """Counts of PIT values in the cells, along the last axis: shape (s,) or (R, s)."""
+        if isinstance(u, CountsBelow):
+            return u.counts(self.boundaries)
         if self.equiprobable:
             return cell_counts(u, self.s)
         u = np.asarray(u, dtype=float)

@@ -216,3 +216,34 @@ def test_refit_table_blocks_give_the_table_of_one_pass(monkeypatch):
     assert whole.key == blocks.key
     np.testing.assert_array_equal(whole.r_max, blocks.r_max)
     np.testing.assert_array_equal(whole.reference, blocks.reference)
+
+
+def _pit_refit_table(law, n, s, gate, replicates, seed, shape):
+    """The refit table built from the PIT values of every simulated value (the construction the
+    counts below the fitted quantiles replaced): same key, same draws, same fits."""
+    from fitaudit.core import calibration
+
+    probe = refit_table(law, n, s, True, *GRID, 3, seed, shape=shape, gate=gate)  # only for its key
+    key = tuple(f"R={replicates}" if str(k).startswith("R=") else k for k in probe.key)
+    x = law.sample_standard((2 * replicates, n), calibration.key_rng(seed, *key), shape=shape)
+    u = law.cdf_batch(x, *law.fit_batch(x, location=True))
+    maps = calibration._map_statistics(cell_counts(u, s), s, *GRID)
+    return calibration._with_gate(key, maps, replicates, gate, u)
+
+
+@pytest.mark.parametrize("name, shape", [("normal", None), ("student-t", 6.25), ("laplace", None), ("logistic", None)])
+def test_refit_tables_from_counts_below_the_fitted_quantiles_equal_those_from_the_pit(name, shape):
+    """The simulated refit table counts each row's values below its fitted law's quantiles at the
+    cells' boundaries instead of computing every PIT value; the tables (members and gate) are the same."""
+    from fitaudit.core.calibration import Gate
+    from fitaudit.core.cells import make_partitions
+    from fitaudit.core.settings import DEFAULT_GATE_MEMBERS, DEFAULT_PARTITIONS
+
+    law, n, s = get_law(name), 150, number_of_cells(150, 2)
+    alphas, betas = zip(*DEFAULT_GATE_MEMBERS)
+    gate = Gate(make_partitions(DEFAULT_PARTITIONS, n, 2), alphas, betas)
+    table = refit_table(law, n, s, True, *GRID, 199, 11, shape=shape, gate=gate)
+    reference = _pit_refit_table(law, n, s, gate, 199, 11, shape)
+    assert table.key == reference.key
+    for field in ("reference", "r_max", "gate_reference", "gate_max"):
+        np.testing.assert_array_equal(getattr(table, field), getattr(reference, field))
