@@ -513,15 +513,16 @@ class ExpSmoothing(ForecastModel):
             vec, res = self._fit_multiplicative(y)
             return self._result(y, vec, res)
         profile = _AdditiveProfile(self, y)
-        vec, res = self._additive_searches(y, profile)[0]
+        vec, res = self._additive_searches(y, profile, best_only=True)[0]
         return self._result(y, vec, res, profile)
 
     def _additive_searches(
-        self, y: np.ndarray, profile: _AdditiveProfile | None = None
+        self, y: np.ndarray, profile: _AdditiveProfile | None = None, best_only: bool = False
     ) -> list[tuple[np.ndarray, object]]:
         """Local maxima of the profile likelihood from the best grid points, best first.
 
-        Each entry is (parameter vector without sigma2, scipy OptimizeResult).
+        Each entry is (parameter vector without sigma2, scipy OptimizeResult); with ``best_only``
+        only the best one (every search still runs; only its states are solved for).
         """
         if profile is None:
             profile = _AdditiveProfile(self, y)
@@ -542,7 +543,7 @@ class ExpSmoothing(ForecastModel):
             ]
         runs.sort(key=lambda r: (_rounded(r.fun), not r.success))  # near-ties: a converged run first
         out = []
-        for res in runs:
+        for res in runs[:1] if best_only else runs:
             theta = self._to_natural(res.x[None, :])[0]
             out.append((np.concatenate([theta, profile(theta)[1]]), res))
         return out
@@ -900,8 +901,13 @@ class _AdditiveProfile:
     # -- evaluation ------------------------------------------------------------------------------
     def _values(self, theta: np.ndarray) -> tuple[float, float, float, float]:
         """alpha, beta, gamma, phi from a parameter vector (param order; absent: 0, 0, 0, 1)."""
-        a, b, g, p = (theta[i] if i is not None else v for i, v in zip(self.positions, (0.0, 0.0, 0.0, 1.0)))
-        return a, b, g, p
+        _, i_beta, i_gamma, i_phi = self.positions  # alpha is always a parameter, first
+        return (
+            theta[0],
+            0.0 if i_beta is None else theta[i_beta],
+            0.0 if i_gamma is None else theta[i_gamma],
+            1.0 if i_phi is None else theta[i_phi],
+        )
 
     def _polynomials(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """num, den and the unit-state paths D (Lq, k) at one parameter vector (param order)."""
@@ -932,7 +938,7 @@ class _AdditiveProfile:
         if not (math.isfinite(r[-1]) and math.isfinite(h[-1])):  # an overflow propagates to the last term
             return np.inf, np.zeros(self.n_states), None
         Tn = self._toeplitz(num)
-        M = self._lagged_h(h) @ (Tn @ D)
+        M = np.ascontiguousarray(self._lagged_h(h)) @ (Tn @ D)  # a contiguous copy multiplies faster (same values)
         states = _least_squares(M, r)
         e = r - M @ states
         return float(e @ e), states, (num, den, D, h, M, e, Tn)
