@@ -135,8 +135,10 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     :func:`split_statistics` is ``T_k = 2 (S_k - f(k) - f(n - k) - S_0 + f(n))``, since the pooled
     counts ``N_j`` do not depend on ``k``.  Moving error ``t`` (in cell ``c``, with ``o_t`` earlier
     errors in the same cell) from "after" to "before" changes ``S`` by
-    ``f(o_t + 1) - f(o_t) + f(N_c - o_t - 1) - f(N_c - o_t)``, so ``S_k`` is a cumulative sum.  The
-    ranks ``o_t`` come from one stable sort of each row by cell.
+    ``f(o_t + 1) - f(o_t) + f(N_c - o_t - 1) - f(N_c - o_t)``, so ``S_k`` is a cumulative sum.  In
+    the order of a stable sort of a row by cell, the cells and the ranks ``o_t`` are the same in
+    every row (cell ``c`` fills ``N_c`` places, its ranks ``0, 1, ...``), so the steps are one
+    vector, put back into each row's time order through the row's sort.
     """
     idx = np.atleast_2d(idx)
     B, n = idx.shape
@@ -146,12 +148,12 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
         idx.astype(np.int16) if s <= np.iinfo(np.int16).max else idx
     )  # 16-bit keys: numpy's stable sort is a radix sort
     order = np.argsort(small, axis=1, kind="stable")
-    group_start = np.cumsum(totals) - totals
-    sorted_cells = np.take_along_axis(idx, order, axis=1)
-    occ = np.empty_like(order)
-    np.put_along_axis(occ, order, np.arange(n)[None, :] - group_start[sorted_cells], axis=1)
-    rest = totals[idx] - occ
-    step = f[occ + 1] - f[occ] + f[rest - 1] - f[rest]
+    cells = np.repeat(np.arange(s), totals)
+    occ = np.arange(n) - (np.cumsum(totals) - totals)[cells]
+    rest = totals[cells] - occ
+    sorted_step = f[occ + 1] - f[occ] + f[rest - 1] - f[rest]
+    step = np.empty((B, n))
+    step.ravel()[(order + n * np.arange(B)[:, None]).ravel()] = np.tile(sorted_step, B)
     s0 = float(f[totals].sum())
     k = np.arange(trim, n - trim + 1)
     s_k = s0 + np.cumsum(step, axis=1)[:, k - 1]
