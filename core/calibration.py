@@ -38,6 +38,7 @@ import numpy as np
 
 from ._scipy import stats
 from .cells import CountsBelow, boundary_union, cell_counts, number_of_cells
+from .diagnostics import chi2_sf
 from .divergence import divergence_map
 from .exceptions import FitauditError, InputError
 from .models import as_model
@@ -600,7 +601,7 @@ def chi2_p_value(statistic: float, df: int) -> float:
     """Upper-tail chi-square probability ``P(chi2_df >= statistic)`` (``+inf`` gives 0)."""
     if np.isinf(statistic):
         return 0.0
-    return float(stats.chi2.sf(statistic, df))
+    return float(chi2_sf(statistic, df))
 
 
 def chi2_critical_value(level: float, df: int) -> float:

@@ -26,7 +26,7 @@ from typing import Literal
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
-from scipy import special, stats
+from scipy import special
 
 from .exceptions import InputError, InsufficientDataError
 
@@ -34,11 +34,26 @@ __all__ = [
     "PortmanteauResult",
     "acf",
     "acf_band",
+    "chi2_sf",
     "ljung_box",
     "ljung_box_batch",
     "ljung_box_lags",
     "mcleod_li",
 ]
+
+
+def chi2_sf(x, df):
+    """Upper-tail chi-square probability ``P(chi2_df >= x)`` (1 for ``x <= 0``), elementwise.
+
+    ``scipy.special.chdtrc``, the function ``scipy.stats.chi2.sf`` evaluates, without the
+    distribution object's argument handling (about 80 us a call, paid for every member and
+    portmanteau test of every audit); equal to it for every ``x``, NaN included.
+
+    >>> round(float(chi2_sf(3.841, 1)), 4), round(float(chi2_sf(18.307, 10)), 4)  # 95 % points: common practice
+    (0.05, 0.05)
+    """
+    return special.chdtrc(df, np.maximum(x, 0.0))
+
 
 _LJUNG_BOX_CONVENTION = (
     "Q = n(n+2) sum_{k=1..h} r_k^2/(n-k), r_k the sample autocorrelation (mean removed, denominator n); "
@@ -244,7 +259,7 @@ def ljung_box(x, lags: int, model_df: int = 0) -> PortmanteauResult:
     if np.ptp(a) == 0:
         raise InputError("ljung_box: the residuals are constant, so their autocorrelation is undefined.")
     q = float(_q_statistic(a[None, :], lags)[0])
-    return PortmanteauResult("ljung-box", q, lags, df, float(stats.chi2.sf(q, df)), _LJUNG_BOX_CONVENTION, int(a.size))
+    return PortmanteauResult("ljung-box", q, lags, df, float(chi2_sf(q, df)), _LJUNG_BOX_CONVENTION, int(a.size))
 
 
 def mcleod_li(x, lags: int) -> PortmanteauResult:
@@ -270,7 +285,7 @@ def mcleod_li(x, lags: int) -> PortmanteauResult:
     if np.ptp(sq) == 0:
         raise InputError("mcleod_li: the squared residuals are constant, so their autocorrelation is undefined.")
     q = float(_q_statistic((sq - sq.mean())[None, :], lags)[0])
-    return PortmanteauResult("mcleod-li", q, lags, df, float(stats.chi2.sf(q, df)), _MCLEOD_LI_CONVENTION, int(a.size))
+    return PortmanteauResult("mcleod-li", q, lags, df, float(chi2_sf(q, df)), _MCLEOD_LI_CONVENTION, int(a.size))
 
 
 def ljung_box_batch(X, lags: int, model_df: int = 0) -> tuple[np.ndarray, np.ndarray]:
@@ -302,7 +317,7 @@ def ljung_box_batch(X, lags: int, model_df: int = 0) -> tuple[np.ndarray, np.nda
     if constant.any():
         raise InputError(f"ljung_box_batch: row(s) {np.flatnonzero(constant)[:5].tolist()} are constant.")
     q = _q_statistic(X, lags)
-    return q, stats.chi2.sf(q, df)
+    return q, chi2_sf(q, df)
 
 
 def ljung_box_lags(n: int, period: int = 1, model_df: int = 0) -> int:

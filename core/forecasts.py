@@ -71,7 +71,7 @@ from .calibration import CalibrationCache, key_rng, settings_production_table
 from .cells import number_of_cells
 from .change import locate_change
 from .checks import _digest, _failed_check, score_frozen
-from .diagnostics import PortmanteauResult, acf, ljung_box_lags
+from .diagnostics import PortmanteauResult, acf, chi2_sf, ljung_box_lags
 from .exceptions import FitauditError, InputError, InsufficientDataError
 from .noise import NoiseLaw, NoiseParams, as_noise_law, get_law
 from .results import AuditResult, CheckResult, _plain
@@ -572,9 +572,7 @@ def lagged_ljung_box(x, start: int, lags: int) -> PortmanteauResult:
         if start > 1
         else "Q = n(n+2) sum_{k=1..h} r_k^2/(n-k); p-value from chi-square(h)"
     )
-    return PortmanteauResult(
-        "ljung-box", q, int(lags), int(lags), float(stats.chi2.sf(q, lags)), convention, int(a.size)
-    )
+    return PortmanteauResult("ljung-box", q, int(lags), int(lags), float(chi2_sf(q, lags)), convention, int(a.size))
 
 
 def _lagged_input(x, start: int, lags: int) -> np.ndarray:

@@ -10,7 +10,15 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from fitaudit.core.diagnostics import acf, acf_band, ljung_box, ljung_box_batch, ljung_box_lags, mcleod_li
+from fitaudit.core.diagnostics import (
+    acf,
+    acf_band,
+    chi2_sf,
+    ljung_box,
+    ljung_box_batch,
+    ljung_box_lags,
+    mcleod_li,
+)
 from fitaudit.core.exceptions import InputError, InsufficientDataError
 
 sm_stattools = pytest.importorskip("statsmodels.tsa.stattools")
@@ -167,3 +175,13 @@ def test_result_to_dict(rng):
     d = ljung_box(rng.standard_normal(50), 5).to_dict()
     assert set(d) == {"name", "statistic", "lags", "df", "p_value", "convention", "n"}
     assert d["name"] == "ljung-box" and d["lags"] == 5
+
+
+def test_chi2_sf_is_scipys_chi2_sf_for_every_argument():
+    """The chi-square tail the p-values use (without scipy.stats' distribution object) equals
+    scipy.stats.chi2.sf exactly: negative, zero, tiny, ordinary, far-tail, infinite and NaN values."""
+    rng = np.random.default_rng(3)
+    x = np.r_[-2.0, -1e-15, 0.0, 1e-300, rng.gamma(2.0, 6.0, 500), 300.0, 5e3, np.inf, np.nan]
+    for df in (1, 2, 5, 10, 27, 120):
+        expected = np.array([stats.chi2.sf(v, df) for v in x])  # source: scipy.stats.chi2
+        np.testing.assert_array_equal(chi2_sf(x, df), expected)
