@@ -126,7 +126,7 @@ class Gate:
         ub, ib = np.unique(self.betas, return_inverse=True)
         out = []
         for part in self.partitions:
-            grid = divergence_map(part.counts(u), part.probs, ua, ub, self.scaling, self.r).statistic
+            grid = divergence_map(part.counts(u), part.probs, ua, ub, self.scaling, self.r, members=False).statistic
             out.append(grid[..., ia, ib])
         return np.stack(out, axis=-2)
 
@@ -380,7 +380,7 @@ def _grid_key(alphas, betas, scaling: str, r) -> tuple:
 
 def _map_statistics(counts: np.ndarray, s: int, alphas, betas, scaling, r) -> np.ndarray:
     """Divergence maps of simulated count vectors, shape (R, A, B)."""
-    m = divergence_map(np.atleast_2d(counts), np.full(s, 1.0 / s), alphas, betas, scaling, r)
+    m = divergence_map(np.atleast_2d(counts), np.full(s, 1.0 / s), alphas, betas, scaling, r, members=False)
     return m.statistic
 
 

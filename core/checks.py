@@ -463,7 +463,13 @@ def _bootstrap(
             u2 = law.pit(e2, p2)
             counts = cell_counts(u2, s)
             grid = divergence_map(
-                counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r
+                counts,
+                np.full(s, 1.0 / s),
+                settings.alphas,
+                settings.betas,
+                settings.scaling,
+                settings.r,
+                members=False,
             ).statistic
             return grid, gate.statistics(u2)
         except (FitauditError, ValueError, np.linalg.LinAlgError, ArithmeticError):

@@ -561,3 +561,44 @@ def test_property_batch_equals_loop(rows, sr):
             batch.statistic[i], single.statistic
         )
         assert batch.t_max[i] == pytest.approx(single.t_max)
+
+
+@pytest.mark.parametrize("scaling", ["geometric", "model", "data"])
+def test_a_map_without_its_classical_members_has_the_same_statistics(scaling):
+    """``members=False`` (the null tables and the gate read only the statistics) leaves the members
+    out and changes nothing else, for a batch and a single vector, empty cells included."""
+    rng = np.random.default_rng(9)
+    counts = rng.multinomial(60, np.full(12, 1 / 12), size=40).astype(float)
+    counts[0, :3] = 0.0
+    q = np.full(12, 1 / 12)
+    for c in (counts, counts[0]):
+        full = divergence_map(c, q, scaling=scaling)
+        bare = divergence_map(c, q, scaling=scaling, members=False)
+        assert bare.members == {} and set(full.members) == {
+            "pearson",
+            "likelihood-ratio",
+            "cressie-read-2/3",
+            "freeman-tukey",
+            "neyman",
+        }
+        np.testing.assert_array_equal(bare.statistic, full.statistic)
+        np.testing.assert_array_equal(bare.infinite, full.infinite)
+        np.testing.assert_array_equal(bare.t_max, full.t_max)
+        np.testing.assert_array_equal(np.asarray(bare.argmax), np.asarray(full.argmax))
+
+
+@pytest.mark.parametrize("scaling, r", [("geometric", None), ("power", 0.5), ("model", None), ("data", None)])
+def test_many_rows_computed_per_distinct_cell_equal_each_row_alone(scaling, r):
+    """Many rows of counts (a null table) are computed once per distinct cell and gathered; each
+    row equals its map computed alone (to rounding: numpy's vectorised exp and log may differ in
+    the last bit with the array's length), infinite points and empty cells included."""
+    rng = np.random.default_rng(17)
+    counts = rng.multinomial(40, np.full(12, 1 / 12), size=400).astype(float)  # 4,800 cells, some empty
+    q = np.full(12, 1 / 12)
+    betas = DEFAULT_BETAS[1:] if scaling == "power" else DEFAULT_BETAS
+    batch = divergence_map(counts, q, DEFAULT_ALPHAS, betas, scaling, r, members=False)
+    alone = np.stack([divergence_map(c, q, DEFAULT_ALPHAS, betas, scaling, r).statistic for c in counts])
+    assert (counts == 0).any() and np.isinf(alone).any()
+    np.testing.assert_array_equal(np.isinf(batch.statistic), np.isinf(alone))
+    finite = np.isfinite(alone)
+    np.testing.assert_allclose(batch.statistic[finite], alone[finite], rtol=1e-12, atol=1e-12)
