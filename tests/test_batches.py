@@ -24,14 +24,18 @@ from fitaudit.tasks import batches, batchfiles  # noqa: E402
 from fitaudit.tasks.registry import load_registry  # noqa: E402
 
 
-def _stage(tmp_path, series: dict, as_of: dt.date, **source_extra):
+def _staged(tmp_path, series: dict, as_of: dt.date, **source_extra):
     fleet = Fleet(tmp_path)
     write_parquet(tmp_path / "data" / "x.parquet", long_table(series))
     fleet.source("x", "data/x.parquet", **source_extra)
     for k in series:
         fleet.model(f"m-{k}", "x", k)
     reg = load_registry(fleet.write())
-    staged = batches.stage_inputs(reg, as_of, tmp_path / "work")
+    return batches.stage_inputs(reg, as_of, tmp_path / "work")
+
+
+def _stage(tmp_path, series: dict, as_of: dt.date, **source_extra):
+    staged = _staged(tmp_path, series, as_of, **source_extra)
     return {i.model_id: i for b in staged.batches for i in batchfiles.read_batch(b.path)}
 
 
@@ -264,13 +268,7 @@ def test_reading_some_models_of_a_batch_gives_their_full_items_in_batch_order(tm
     """``read_batch(path, model_ids)`` (the candidate search reads a few models per batch) equals
     the full read filtered: same entries, arrays and metadata, in the batch's order."""
     rng = np.random.default_rng(8)
-    fleet = Fleet(tmp_path)
-    write_parquet(tmp_path / "data" / "x.parquet", long_table({k: {"date": days(), "y": ar1(rng)} for k in "abcd"}))
-    fleet.source("x", "data/x.parquet")
-    for k in "abcd":
-        fleet.model(f"m-{k}", "x", k)
-    staged = batches.stage_inputs(load_registry(fleet.write()), AS_OF, tmp_path / "work")
-    (batch,) = staged.batches
+    (batch,) = _staged(tmp_path, {k: {"date": days(), "y": ar1(rng)} for k in "abcd"}, AS_OF).batches
     full = batchfiles.read_batch(batch.path)
     some = batchfiles.read_batch(batch.path, ["m-d", "m-b"])
     assert [i.model_id for i in some] == ["m-b", "m-d"]
