@@ -26,8 +26,8 @@ from typing import Literal
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
-from scipy import special
 
+from ._scipy import special
 from .exceptions import InputError, InsufficientDataError
 
 __all__ = [
