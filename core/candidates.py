@@ -186,14 +186,16 @@ def search_candidates(
     noise_name = noise if isinstance(noise, str) else str(dict(noise).get("law"))
     cache = cache if cache is not None else CalibrationCache()
     settings = settings if settings is not None else AuditSettings()
-    trials: list[tuple[dict, Any]] = [(s_, noise) for s_ in (specs if specs is not None else neighbour_specs(model))]
+    trials: list[tuple[dict, Any, FitResult | None]] = [
+        (s_, noise, None) for s_ in (specs if specs is not None else neighbour_specs(model))
+    ]
     other_laws = [law for law in (laws if laws is not None else CONTINUOUS_LAWS) if law != noise_name]
     spec_fit = _spec_fit(y, model, exog, settings) if other_laws else None
     if other_laws and skip_futile and _independence_rejects(y, model, noise, exog, settings, cache, spec_fit):
         other_laws = []
-    trials += [(model.to_dict(), law) for law in other_laws]
+    trials += [(model.to_dict(), law, spec_fit) for law in other_laws]
     scored = []
-    for i, (cand_spec, cand_noise) in enumerate(trials):
+    for cand_spec, cand_noise, cand_fit in trials:
         res = audit_series(
             y,
             dict(cand_spec),
@@ -202,7 +204,7 @@ def search_candidates(
             production=None,
             settings=settings,
             cache=cache,
-            fit=spec_fit if i >= len(trials) - len(other_laws) else None,
+            fit=cand_fit,
         )
         chk = res.refit
         scaled = (
