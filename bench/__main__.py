@@ -22,6 +22,7 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 from . import machine  # noqa: E402
 from .harness import REPO  # noqa: E402
 from .notes import NOTES  # noqa: E402
+from .reading import reading_the_goals  # noqa: E402
 
 BENCHMARKS = ("micro", "fleet", "scaleout", "memory")
 
@@ -166,7 +167,7 @@ def _markdown(rows: list[dict], info: dict, command: str, loads: dict, started: 
         "## Machine\n\n| item | value |\n| --- | --- |\n" + machine_rows + "\n\n"
         f"Load average (1 min) before -> after each benchmark: {load_text}. The machine is shared: a load above the "
         "number of cores means other processes competed for the CPU during the measurement, which slows both sides of "
-        "a ratio but can still bias it (see the notes).\n\n" + NOTES
+        "a ratio but can still bias it (see the notes).\n\n" + NOTES + reading_the_goals(rows)
     )
 
 
