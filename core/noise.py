@@ -46,7 +46,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from ._scipy import integrate, special
-from .cells import CountsBelow
+from .cells import CountsBelow, count_below_rows
 from .exceptions import ConvergenceWarning, InputError, InsufficientDataError, SpecificationError
 
 __all__ = [
@@ -864,11 +864,7 @@ class _LocationScaleLaw(NoiseLaw):
                 f"{self.name} counts_below_batch: X and loc must be finite and scale finite and positive in every row."
             )
         edges = loc + scale * self._std_ppf(b[None, :], self._shape_column(shape, R, "counts_below_batch"))
-        # one stable sort of each row with its edges put first: an edge precedes the values equal
-        # to it, and edge j is the j-th edge met, so its position less j counts the values below
-        order = np.argsort(np.concatenate([edges, X], axis=1), axis=1, kind="stable")
-        position = np.nonzero(order < b.size)[1].reshape(R, b.size)
-        return CountsBelow(b, position - np.arange(b.size), n)
+        return CountsBelow(b, count_below_rows(X, edges), n)
 
     def _shape_column(self, shape, R: int, owner: str):
         if not self.has_shape:

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from fitaudit.core.cells import cell_counts, cell_index, minimum_length, number_of_cells
+from fitaudit.core.cells import cell_counts, cell_index, count_below_rows, minimum_length, number_of_cells
 from fitaudit.core.exceptions import InsufficientDataError
 
 
@@ -53,3 +53,14 @@ def test_cell_counts_match_numpy_histogram(rng):
 def test_cell_index_edges():
     # common practice: cell j is [(j-1)/s, j/s); u = 1 goes to the last cell
     assert cell_index(np.array([0.0, 0.1999, 0.2, 0.9999, 1.0]), 5).tolist() == [0, 0, 1, 4, 4]
+
+
+@pytest.mark.parametrize("n", [0, 1, 2, 7, 8, 9, 730])
+def test_count_below_rows_equals_numpy_searchsorted_row_by_row(n):
+    """Counts strictly below each edge, ties included (values rounded to one decimal, so many
+    equal an edge), against numpy's own lower bound per row."""
+    rng = np.random.default_rng(n)
+    X = np.round(rng.standard_t(4, size=(6, n)), 1)
+    edges = np.round(rng.normal(size=(6, 5)), 1)  # unsorted edges are allowed
+    expected = np.array([np.searchsorted(np.sort(x), e, side="left") for x, e in zip(X, edges)])
+    np.testing.assert_array_equal(count_below_rows(X, edges), expected)
