@@ -232,10 +232,11 @@ def _newton_ascent(loglik, data: np.ndarray, theta0: np.ndarray, lower: np.ndarr
     converged = np.zeros(len(theta), dtype=bool)
     todo = np.arange(len(theta))
     eye = np.eye(theta.shape[1], dtype=bool)
+    y = data  # the rows of `todo`, gathered again only when some of them stop
     for _ in range(_NEWTON_MAX_ITER):
         if todo.size == 0:
             break
-        th, y = theta[todo], data[todo]
+        th = theta[todo]
         ll, grad, hess = loglik(th, y, True)
         frozen = ((th <= lower) & (grad < 0)) | ((th >= upper) & (grad > 0))
         grad = np.where(frozen, 0.0, grad)
@@ -257,7 +258,7 @@ def _newton_ascent(loglik, data: np.ndarray, theta0: np.ndarray, lower: np.ndarr
                 break
             cand = np.clip(th[idx] + step[idx, None] * direction[idx], lower, upper)
             with np.errstate(all="ignore"):
-                ll_cand = loglik(cand, y[idx], False)
+                ll_cand = loglik(cand, y if idx.size == len(y) else y[idx], False)
             ok = ll_cand >= ll[idx] + _ARMIJO * step[idx] * decrement[idx]
             new_th[idx[ok]] = cand[ok]
             pending[idx[ok]] = False
@@ -270,7 +271,8 @@ def _newton_ascent(loglik, data: np.ndarray, theta0: np.ndarray, lower: np.ndarr
         done = small_step | stalled
         converged[todo[small_step]] = True
         converged[todo[stalled & (decrement <= 1e-6 * n)]] = True
-        todo = todo[~done]
+        if done.any():
+            todo, y = todo[~done], y[~done]
     return theta, converged
 
 
