@@ -94,6 +94,10 @@ _LABELS = {
 }
 
 
+#: The flow's stage timings shown on the page, in the flow's order (candidate_tables is part of candidates).
+_STAGES = ("stage_s", "calibration_s", "audit_s", "candidates_s", "candidate_tables_s", "render_s", "publish_s")
+
+
 def _seconds(d: dict, keys: tuple) -> str:
     return ", ".join(f"{k.removesuffix('_s')} {d[k]:.1f} s" for k in keys if k in d)
 
@@ -105,17 +109,18 @@ def _details(rows: list[dict]) -> str:
         d = r.get("details") or {}
         if "ours" in d:
             ours, peer = d["ours"], d["peer"]
-            stages = ("stage_s", "calibration_s", "audit_s", "candidates_s", "render_s", "publish_s")
             work = sorted(d["ours"]["work_by_function_s"].items(), key=lambda kv: -kv[1])
             out.append(
-                "**Fleet run.** Embedded server start {:.1f} s; flow {:.1f} s, by stage (wall time): {} (render: the "
-                "records and model pages of every batch; publish: from the start of render to the end of the archive "
-                "writing). Work summed per function (two batches at a time, so the sum can exceed the wall time): {}. "
+                "**Fleet run.** Embedded server start {:.1f} s; flow {:.1f} s, by stage (wall time): {} "
+                "(candidate_tables: the null tables the searches share, built before them, part of candidates; "
+                "render: the records and model pages of every batch; publish: from the start of render to the end of "
+                "the archive writing). Work summed per function (two batches at a time, so the sum can exceed the "
+                "wall time): {}. "
                 "Flow wall time outside them: {:.1f} s. Peer per family: {}; subset {} ({}); "
                 "extract read {:.2f} s.".format(
                     ours["server_start_s"],
                     ours["flow_s"],
-                    _seconds(ours["flow_timings"], stages),
+                    _seconds(ours["flow_timings"], _STAGES),
                     ", ".join(f"{_LABELS.get(k, k)} {v:.1f} s" for k, v in work if v >= 0.05),
                     ours["orchestration_s"],
                     ", ".join(f"{k} {v:.3f} s" for k, v in sorted(peer["per_family_s"].items())),
@@ -125,13 +130,12 @@ def _details(rows: list[dict]) -> str:
                 )
             )
         if "one_worker" in d:
-            stages = ("stage_s", "calibration_s", "audit_s", "candidates_s", "render_s", "publish_s")
             out.append(
                 "**Scale-out runs.** 1 worker: flow {:.1f} s ({}); 2 workers: flow {:.1f} s ({}).".format(
                     d["one_worker"]["flow_s"],
-                    _seconds(d["one_worker"]["flow_timings"], stages),
+                    _seconds(d["one_worker"]["flow_timings"], _STAGES),
                     d["two_workers"]["flow_s"],
-                    _seconds(d["two_workers"]["flow_timings"], stages),
+                    _seconds(d["two_workers"]["flow_timings"], _STAGES),
                 )
             )
             if "projection" in d:

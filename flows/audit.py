@@ -221,6 +221,7 @@ def audit_flow(
                     if shared:
                         for tables in tables_task.map(shared, unmapped(cache), unmapped(workers)).result():
                             cache.merge(tables)
+                    timings["candidate_tables_s"] = time.perf_counter() - t0
                     found = candidates_task.map(jobs, unmapped(reg.policy), unmapped(cache), unmapped(workers))
                     final = with_candidates(final, {k: v for part in found.result() for k, v in part.items()})
                 timings["candidates_s"] = time.perf_counter() - t0

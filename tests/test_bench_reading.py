@@ -29,6 +29,7 @@ def test_numbers_come_from_the_rows():
     text = reading_the_goals([FLEET, *FIT_ROWS])
     assert "**Throughput (goal 20x): missed, 4.5x** (2.2x per core)" in text
     assert "25.0 series/s against the peer's 6.2" in text  # 1000 / (35 + 5)
+    assert "the flow alone is 28.6 series/s, 4.6x the peer" in text  # 1000 / 35, over 6.25
     assert "archive writing and run page 2.5 s" in text  # publish runs from the start of render: 8.5 - 6.0
     assert "20x would need the whole fleet in 8 s" in text  # 1000 / (20 * 6.25)
     assert "1 of 2 specs meet it; met at 12.0x to 12.0x" in text
