@@ -651,3 +651,25 @@ def test_fit_never_returns_silent_nan():
         fit = Arima(order=(2, 0, 2), trend="c").fit(y)
     assert np.isfinite(fit.loglik) and np.isfinite(fit.residuals).all()
     assert fit.converged or any(issubclass(w.category, ConvergenceWarning) for w in caught)
+
+
+@pytest.mark.parametrize(
+    "spec, series",
+    [
+        ({"family": "arima", "order": [1, 1, 1]}, "nile"),
+        ({"family": "smoothing", "trend": "add", "damped": True, "seasonal": "add", "period": 12}, "equipment"),
+        ({"family": "nonlinear-ar", "function": "setar", "lags": [1, 2]}, "sunspots"),
+    ],
+)
+def test_fits_without_standard_errors_are_the_same_fits(spec, series, nile_series, equipment_log, sunspot_series):
+    """The audit fits with ``standard_errors=False``: every family then leaves ``extras["bse"]`` out
+    and returns the same estimates, likelihood and residuals, bit for bit (packaged series)."""
+    y = {"nile": nile_series, "equipment": equipment_log, "sunspots": sunspot_series}[series]
+    model = model_from_dict(spec)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        full, lean = model.fit(y), model.fit(y, standard_errors=False)
+    assert full.extras["bse"] and "bse" not in lean.extras
+    assert lean.params == full.params and lean.loglik == full.loglik
+    np.testing.assert_array_equal(lean.residuals, full.residuals)
+    assert {k: v for k, v in full.extras.items() if k != "bse"} == lean.extras

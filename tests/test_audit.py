@@ -146,9 +146,9 @@ def test_the_law_trials_score_one_fit_of_the_spec_with_the_same_candidates(cache
     fits = []
     real_fit = Arima.fit
 
-    def counting_fit(self, y_, exog=None):
+    def counting_fit(self, y_, exog=None, **kwargs):
         fits.append(self.to_dict()["order"])
-        return real_fit(self, y_, exog)
+        return real_fit(self, y_, exog, **kwargs)
 
     monkeypatch.setattr(Arima, "fit", counting_fit)
     shared = search_candidates(y, AR1, settings=FAST, cache=cache, specs=specs)

@@ -185,8 +185,13 @@ class ForecastModel(abc.ABC):
         """Names of the parameters, ``sigma2`` last."""
 
     @abc.abstractmethod
-    def fit(self, y, exog=None) -> FitResult:
-        """Estimate the parameters on ``y`` (and ``exog``); returns a new :class:`FitResult`."""
+    def fit(self, y, exog=None, *, standard_errors: bool = True) -> FitResult:
+        """Estimate the parameters on ``y`` (and ``exog``); returns a new :class:`FitResult`.
+
+        ``standard_errors=False`` leaves ``extras["bse"]`` out: the audit reads only the estimates,
+        the likelihood and the residuals, and for some families the standard errors (a numerical
+        Hessian) cost a third of the fit.
+        """
 
     @abc.abstractmethod
     def errors(self, y, params: Mapping[str, float], exog=None) -> np.ndarray:

@@ -191,14 +191,15 @@ class Arima(ForecastModel):
         return self._lost() + max(layout.pstar, layout.qstar) + len(self.param_names([""] * n_exog))
 
     # -- estimation, errors, simulation ---------------------------------------------------
-    def fit(self, y, exog=None) -> FitResult:
+    def fit(self, y, exog=None, *, standard_errors: bool = True) -> FitResult:
         """Estimate the model on ``y`` (and ``exog``, a mapping ``{name: array}``).
 
         Returns
         -------
         FitResult
             ``params`` in :meth:`param_names` order, the exact (or conditional) log-likelihood,
-            standardised one-step residuals aligned to ``y``, ``extras["bse"]`` standard errors.
+            standardised one-step residuals aligned to ``y``, ``extras["bse"]`` standard errors
+            (left out with ``standard_errors=False``).
 
         Raises
         ------
@@ -248,7 +249,7 @@ class Arima(ForecastModel):
             message=message,
             iterations=evaluations,
             extras={
-                "bse": estimator.standard_errors(coefs, point, names),
+                **({"bse": estimator.standard_errors(coefs, point, names)} if standard_errors else {}),
                 "method": self.method,
                 "differenced_nobs": data.rows.shape[1],
             },

@@ -44,6 +44,7 @@ an amplitude-dependent autoregressive time series model. *Biometrika* 68, 189-19
 
 from __future__ import annotations
 
+import dataclasses
 import importlib
 import math
 import re
@@ -339,7 +340,7 @@ class NonlinearAR(ForecastModel):
             )
         return int(d)
 
-    def fit(self, y, exog=None) -> FitResult:
+    def fit(self, y, exog=None, *, standard_errors: bool = True) -> FitResult:
         """Conditional least squares (user function) or the SETAR grid search (see the module notes).
 
         Parameters
@@ -352,7 +353,8 @@ class NonlinearAR(ForecastModel):
         Returns
         -------
         FitResult
-            With ``extras["bse"]``; SETAR adds ``extras["regime_sizes"]``.
+            With ``extras["bse"]`` (a by-product of the fit; left out with ``standard_errors=False``);
+            SETAR adds ``extras["regime_sizes"]``.
 
         Raises
         ------
@@ -370,8 +372,12 @@ class NonlinearAR(ForecastModel):
         if self.is_setar:
             if exog is not None:
                 raise SpecificationError(f"{self.describe()}: SETAR takes no exogenous inputs; drop exog.")
-            return self._fit_setar(y)
-        return self._fit_user(y, exog)
+            fit = self._fit_setar(y)
+        else:
+            fit = self._fit_user(y, exog)
+        if not standard_errors:  # a by-product of both fits, left out for the same contract as the other families
+            fit = dataclasses.replace(fit, extras={k: v for k, v in fit.extras.items() if k != "bse"})
+        return fit
 
     def _fit_user(self, y: np.ndarray, exog) -> FitResult:
         origin = self._origin()

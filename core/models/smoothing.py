@@ -473,7 +473,7 @@ class ExpSmoothing(ForecastModel):
         return e
 
     # -- estimation --------------------------------------------------------------------------
-    def fit(self, y, exog=None) -> FitResult:
+    def fit(self, y, exog=None, *, standard_errors: bool = True) -> FitResult:
         """Maximum-likelihood fit within the usual bounds (see the class notes).
 
         Parameters
@@ -488,7 +488,7 @@ class ExpSmoothing(ForecastModel):
         -------
         FitResult
             ``params`` in :meth:`param_names` order, ``residuals`` = :meth:`errors` at them,
-            ``extras["bse"]`` and ``extras["at_bound"]``.
+            ``extras["bse"]`` (left out with ``standard_errors=False``) and ``extras["at_bound"]``.
 
         Warns
         -----
@@ -511,10 +511,10 @@ class ExpSmoothing(ForecastModel):
         y = self._validate_y(y, self.min_length())
         if self.seasonal == "mul":
             vec, res = self._fit_multiplicative(y)
-            return self._result(y, vec, res)
+            return self._result(y, vec, res, standard_errors=standard_errors)
         profile = _AdditiveProfile(self, y)
         vec, res = self._additive_searches(y, profile, best_only=True)[0]
-        return self._result(y, vec, res, profile)
+        return self._result(y, vec, res, profile, standard_errors)
 
     def _additive_searches(
         self, y: np.ndarray, profile: _AdditiveProfile | None = None, best_only: bool = False
@@ -619,7 +619,9 @@ class ExpSmoothing(ForecastModel):
         starts.insert(1, self._to_natural(heavy))
         return starts[:_LOCAL_SEARCHES]
 
-    def _result(self, y: np.ndarray, vec: np.ndarray, res, profile: _AdditiveProfile | None = None) -> FitResult:
+    def _result(
+        self, y: np.ndarray, vec: np.ndarray, res, profile: _AdditiveProfile | None = None, standard_errors: bool = True
+    ) -> FitResult:
         n = y.size
         residuals = self._batch_errors(y, vec[None, :])[0]
         sse = float(residuals @ residuals)
@@ -653,7 +655,10 @@ class ExpSmoothing(ForecastModel):
             converged=converged,
             message=str(res.message) or ("converged" if converged else "stopped"),
             iterations=int(res.nfev),
-            extras={"bse": self._standard_errors(y, vec, sigma2, profile), "at_bound": self._at_bound(vec)},
+            extras={
+                **({"bse": self._standard_errors(y, vec, sigma2, profile)} if standard_errors else {}),
+                "at_bound": self._at_bound(vec),
+            },
         )
 
     def _stalled_at_optimum(self, res) -> bool:
