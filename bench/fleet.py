@@ -147,7 +147,8 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
 def fit_time(series: list[FleetSeries], workers: int | None = None) -> dict:
     """Seconds of the fleet's model fits alone, as the audit does them, one series after another.
 
-    Per series: the refit (``model.fit`` on the whole series, the benchmark registry's fit window)
+    Per series: the refit (``model.fit`` on the whole series, the benchmark registry's fit window,
+    without standard errors, as :func:`fitaudit.core.checks.refit_model`)
     and the production filter (``model.production_errors`` with the generating parameters, the
     promoted production version).  One warm-up fit comes first (it imports scipy's modules).
     ``fit_bound_s`` is the sequential time over ``workers`` (default: the flow's worker
@@ -162,12 +163,12 @@ def fit_time(series: list[FleetSeries], workers: int | None = None) -> dict:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # convergence warnings: the audit reports them, here only time counts
         first = series[0]
-        model_from_dict(first.spec).fit(first.y, first.exog or None)
+        model_from_dict(first.spec).fit(first.y, first.exog or None, standard_errors=False)
         for s in series:
             model = model_from_dict(s.spec)
             exog = s.exog or None
             t0 = time.perf_counter()
-            model.fit(s.y, exog)
+            model.fit(s.y, exog, standard_errors=False)  # as the audit's refit_model
             model.production_errors(s.y, s.params, exog)
             elapsed = time.perf_counter() - t0
             family = s.spec["family"]
