@@ -38,6 +38,7 @@ References
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Literal
 
@@ -575,8 +576,10 @@ class DivergenceMap:
 
 def _inf_to_str(x):
     if isinstance(x, list):
+        if set(map(type, x)) == {float} and math.isfinite(sum(x)):  # a row of finite floats: nothing to replace
+            return x
         return [_inf_to_str(v) for v in x]
-    if isinstance(x, float) and np.isinf(x):
+    if isinstance(x, float) and math.isinf(x):
         return "inf" if x > 0 else "-inf"
     return x
 

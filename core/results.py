@@ -200,11 +200,24 @@ class AuditResult:
         return out
 
 
+#: Types that :func:`_plain` returns unchanged (finite ``float`` too).
+_PLAIN_TYPES = frozenset({str, int, bool, type(None)})
+
+
+def _plain_leaves(v: list | tuple) -> bool:
+    """Whether every element of ``v`` is already plain: of :data:`_PLAIN_TYPES`, or all finite floats
+    (their sum is finite only if every one is)."""
+    kinds = set(map(type, v))
+    return kinds <= _PLAIN_TYPES or (kinds == {float} and math.isfinite(sum(v)))
+
+
 def _plain(v: Any) -> Any:
     """numpy -> Python, non-finite floats -> strings (strict JSON)."""
     if isinstance(v, dict):
         return {str(k): _plain(x) for k, x in v.items()}
     if isinstance(v, (list, tuple)):
+        if _plain_leaves(v):
+            return list(v)
         return [_plain(x) for x in v]
     if isinstance(v, np.ndarray):
         if v.dtype.kind in "biu" or (v.dtype.kind == "f" and np.isfinite(v).all()):

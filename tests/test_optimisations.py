@@ -6,6 +6,9 @@ Each optimisation is checked against the unoptimised way of computing the same t
   ``fitaudit.core.change.split_statistics``) and scipy's G-test, and ``locate_change`` against the
   original permutation loop (kept below);
 * the report's ``svg`` filter against the Jinja macro it replaced (kept below);
+* the report's number format against its previous form (kept below), the rectangles' coordinate
+  texts against ``coord``, and the JSON conversions' fast paths for lists of plain values against
+  the element-by-element conversions;
 * staging in several filtered scans against one scan per source;
 * light outcomes restored after the fleet rules against the fleet rules on full outcomes;
 * the whole audit flow (local worker processes, outcomes kept on disk, records and pages made per
@@ -323,3 +326,55 @@ def test_streamed_results_json_equals_canonical_json():
     assert b"".join(results_json_chunks(head, summary, [])) == canonical_json(
         {**head, "summary": summary, "models": []}
     )
+
+
+def _reference_format_number(v: float, digits: int) -> str:
+    """The report's number format for a float before its fixed-notation branch moved first (kept as it was)."""
+    import math
+
+    if v != v:
+        return "n/a"
+    if math.isinf(v):
+        return "∞" if v > 0 else "-∞"
+    if v == 0:
+        return "0"
+    a = abs(v)
+    if a < 1e-4 or a >= 1e6:
+        return f"{v:.{digits - 1}e}"
+    decimals = max(0, digits - 1 - math.floor(math.log10(a)))
+    text = f"{v:.{decimals}f}"
+    if "." in text:
+        text = text.rstrip("0").rstrip(".")
+    return "0" if float(text) == 0 else text
+
+
+def test_report_number_and_coordinate_texts_match_the_unoptimised_ones():
+    from fitaudit.tasks.report.charts import _CoordText
+    from fitaudit.tasks.report.text import coord, format_number
+
+    rng = np.random.default_rng(7)
+    edges = [s * 10.0**k for k in range(-6, 8) for s in (1.0, -1.0, 0.99995, 9.9995, 4.9995, 0.5)]
+    spread = rng.lognormal(0.0, 4.0, 3000) * rng.choice([-1, 1], 3000)
+    values = edges + [np.nextafter(x, 0.0) for x in edges] + list(spread)
+    values = [float(x) for x in values] + [0.0, -0.0, float("inf"), float("-inf"), float("nan")]
+    for digits in (1, 2, 3, 4, 6):
+        # source: the reference above (the unoptimised format)
+        assert [format_number(x, digits) for x in values] == [_reference_format_number(x, digits) for x in values]
+    px = _CoordText().__getitem__
+    shown = [0.0, -0.0, 0.04, -0.04, 1.05, 12.25, 0.0, -0.0, 1.05, float("nan"), float("nan")]
+    assert [px(x) for x in shown] == [coord(x) for x in shown]  # source: coord itself; 0.0 and -0.0 print 0 and -0
+
+
+def test_json_fast_paths_keep_every_conversion():
+    from fitaudit.core.results import _plain
+    from fitaudit.tasks._io import canonical_json, json_ready
+
+    inf, nan = float("inf"), float("nan")
+    # source: the element-by-element conversions (docstrings of json_ready and _plain)
+    assert json_ready([1.5, inf, -inf, nan]) == [1.5, "inf", "-inf", "nan"]
+    assert json_ready([1e308, 1e308]) == [1e308, 1e308]  # a sum that overflows takes the slow path, values kept
+    assert json_ready((1, True, None, "a")) == [1, True, None, "a"]
+    assert json_ready([np.int64(3), 2.0]) == [3, 2.0] and type(json_ready([np.int64(3)])[0]) is int
+    assert _plain([1.5, inf, nan]) == [1.5, "inf", None]
+    assert _plain((np.float64(2.5), 1)) == [2.5, 1] and type(_plain([np.float64(2.5)])[0]) is float
+    assert canonical_json({"a": [0.1, 0.2], "b": [inf]}) == b'{"a":[0.1,0.2],"b":["inf"]}'

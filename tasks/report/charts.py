@@ -36,6 +36,7 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
     is escaped as autoescape would; coordinates pass through :func:`coord`.
     """
     esc, px, word = markupsafe.escape, coord, _escaped_word
+    cell_px = _CoordText().__getitem__  # rectangles: a heat map's cells repeat a few dozen coordinates
     cid = esc(c["id"])
 
     def line(g: Mapping[str, Any]) -> str:
@@ -51,8 +52,8 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
         "".join(map(line, c["grid"])),
         "\n",
         "".join(
-            f'<rect x="{px(r["x"])}" y="{px(r["y"])}" width="{px(r["w"])}" height="{px(r["h"])}" '
-            f'class="{word(r["cls"])}"/>'
+            f'<rect x="{cell_px(r["x"])}" y="{cell_px(r["y"])}" width="{cell_px(r["w"])}" '
+            f'height="{cell_px(r["h"])}" class="{word(r["cls"])}"/>'
             for r in c["rects"]
         ),
         "\n",
@@ -75,6 +76,19 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
         "\n</svg>\n",
     ]
     return markupsafe.Markup("".join(out))
+
+
+class _CoordText(dict):
+    """:func:`coord` of each value, formatted once per chart: a heat map's cells share a few dozen
+    coordinates between several hundred rectangles (a lookup that misses costs about three
+    :func:`coord` calls, so only the rectangles use it).  Zero is never kept: 0.0 and -0.0 are
+    equal keys but print ``0`` and ``-0``."""
+
+    def __missing__(self, x: float) -> str:
+        text = coord(x)
+        if x:
+            self[x] = text
+        return text
 
 
 @functools.lru_cache(maxsize=64)
@@ -154,7 +168,8 @@ def _heat_class(v: float) -> str:
 
 
 def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
-    """The divergence map as a heat map of T / critical value, with its data table."""
+    """The divergence map as a heat map of T / critical value, with its data table (a row per
+    alpha: its text and its cells as ``(text, fails)`` pairs)."""
     dmap = check["map"]
     alphas = [float(a) for a in dmap["alphas"]]
     betas = [float(b) for b in dmap["betas"]]
@@ -170,11 +185,8 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
         for i, row in enumerate(values)
     ]
 
-    def cell_x(j: int) -> float:
-        return left + j * cw
-
-    def cell_y(i: int) -> float:
-        return top + (na - 1 - i) * ch
+    xs = [left + j * cw for j in range(nb)]  # left edge of each column (beta)
+    ys = [top + (na - 1 - i) * ch for i in range(na)]  # top edge of each row (alpha, the first at the bottom)
 
     n_fail = sum(map(sum, fail))
     n_inf = sum(bool(infinite[i][j]) for i in range(na) for j in range(nb))
@@ -189,26 +201,20 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     )
     chart = new_chart(chart_id, width, height, f"Divergence map of the {label.lower()}", desc)
     chart["cls"] = "heat"
-    rows_table = []
-    for i in range(na):
+    rows_table, rects, texts = [], chart["rects"], chart["texts"]
+    for i, (y0, row, row_inf, row_fail) in enumerate(zip(ys, values, infinite, fail)):
         row_cells = []
-        for j in range(nb):
-            v = values[i][j]
-            x0, y0 = cell_x(j), cell_y(i)
-            if infinite[i][j]:
+        for x0, v, is_inf, failing in zip(xs, row, row_inf, row_fail):
+            if is_inf:
                 cls, shown = "hinf", "∞"
-                chart["texts"].append(
-                    {"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "∞", "cls": "sym", "anchor": "middle"}
-                )
+                texts.append({"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "∞", "cls": "sym", "anchor": "middle"})
             elif v is None:
                 cls, shown = "hna", "n/a"
-                chart["texts"].append(
-                    {"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "–", "cls": "sym", "anchor": "middle"}
-                )
+                texts.append({"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "–", "cls": "sym", "anchor": "middle"})
             else:
                 cls, shown = _heat_class(v), format_number(v)
-            chart["rects"].append({"x": x0, "y": y0, "w": cw, "h": ch, "cls": cls})
-            row_cells.append({"text": shown, "fail": fail[i][j]})
+            rects.append({"x": x0, "y": y0, "w": cw, "h": ch, "cls": cls})
+            row_cells.append((shown, failing))
         rows_table.append({"alpha": alpha_text[i], "cells": row_cells})
     # edge of the failing region: every side of a failing cell that borders a non-failing one
     segments = []
@@ -216,7 +222,7 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
         for j in range(nb):
             if not fail[i][j]:
                 continue
-            x0, y0 = cell_x(j), cell_y(i)
+            x0, y0 = xs[j], ys[i]
             if i + 1 >= na or not fail[i + 1][j]:
                 segments.append(f"M{coord(x0)} {coord(y0)}H{coord(x0 + cw)}")
             if i == 0 or not fail[i - 1][j]:
@@ -238,13 +244,13 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     for i in range(na):
         if i % 2 == 0 or na <= 9:
             chart["texts"].append(
-                {"x": left - 5, "y": cell_y(i) + ch / 2 + 4, "text": alpha_text[i], "cls": "tk", "anchor": "end"}
+                {"x": left - 5, "y": ys[i] + ch / 2 + 4, "text": alpha_text[i], "cls": "tk", "anchor": "end"}
             )
     for j in range(nb):
         if j % 2 == 0 or nb <= 5:
             chart["texts"].append(
                 {
-                    "x": cell_x(j) + cw / 2,
+                    "x": xs[j] + cw / 2,
                     "y": top + na * ch + 14,
                     "text": beta_text[j],
                     "cls": "tk",
@@ -271,7 +277,7 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
                 continue
             pos = (a - alphas[0]) / step
             cy = top + (na - 1 - pos) * ch + ch / 2
-            cx = cell_x(0) + cw / 2
+            cx = xs[0] + cw / 2
             chart["circles"].append({"cx": cx, "cy": cy, "r": 4.5, "cls": "mem"})
             chart["lines"].append({"x1": left - 50, "y1": cy, "x2": left - 38, "y2": cy, "cls": "lead"})
             chart["texts"].append(
@@ -283,7 +289,7 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     if a_max is not None and b_max is not None:
         i = min(range(na), key=lambda k: abs(alphas[k] - a_max))
         j = min(range(nb), key=lambda k: abs(betas[k] - b_max))
-        cx, cy = cell_x(j) + cw / 2, cell_y(i) + ch / 2
+        cx, cy = xs[j] + cw / 2, ys[i] + ch / 2
         chart["paths"].append(
             {
                 "d": f"M{coord(cx)} {coord(cy - 7)}L{coord(cx + 7)} {coord(cy)}"
@@ -420,7 +426,7 @@ def qq_plot(check: Mapping[str, Any], chart_id: str, label: str) -> dict | None:
     chart["lines"].append({"x1": x(lo), "y1": y(lo), "x2": x(hi), "y2": y(hi), "cls": "ref"})
     for a, b in pairs:
         chart["circles"].append({"cx": x(a), "cy": y(b), "r": 2.6, "cls": "pt"})
-    rows = [{"theoretical": format_number(a), "sample": format_number(b)} for a, b in pairs]
+    rows = [(format_number(a), format_number(b)) for a, b in pairs]  # (noise-law quantile, residual quantile)
     return {"chart": chart, "rows": rows}
 
 

@@ -4,8 +4,10 @@ functions.  The only module of fitaudit that imports Jinja2; the views it render
 :mod:`~fitaudit.tasks.report.views`.
 
 The model page's per-row loops (map, histogram, Q-Q, autocorrelation and cell tables, the checks
-table) read their rows' items by subscript (``x["text"]``): Jinja2's dot syntax tries an attribute
-first, which on a dict costs a caught AttributeError per cell.
+table) read their rows' items by subscript (``r["value"]``): Jinja2's dot syntax tries an attribute
+first, which on a dict costs a caught AttributeError per cell.  The two longest, the map's cells
+(``(text, fails)``) and the Q-Q rows (``(noise-law quantile, residual quantile)``), are tuples that
+the loop unpacks, with no lookup at all.
 """
 
 from __future__ import annotations

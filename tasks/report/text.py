@@ -55,18 +55,22 @@ def format_number(x: Any, digits: int = 3) -> str:
         v = to_float(x)
         if v is None:
             return "n/a"
-    if math.isinf(v):
+    a = abs(v)
+    if 1e-4 <= a < 1e6:  # fixed notation, the common case first
+        decimals = max(0, digits - 1 - math.floor(math.log10(a)))
+        text = f"{v:.{decimals}f}"
+        if "." in text:
+            text = text.rstrip("0").rstrip(".")
+        return "0" if text in _ZERO_TEXT else text  # a value that rounds to zero prints 0, never -0
+    if a == math.inf:
         return "∞" if v > 0 else "-∞"
     if v == 0:
         return "0"
-    a = abs(v)
-    if a < 1e-4 or a >= 1e6:
-        return f"{v:.{digits - 1}e}"
-    decimals = max(0, digits - 1 - math.floor(math.log10(a)))
-    text = f"{v:.{decimals}f}"
-    if "." in text:
-        text = text.rstrip("0").rstrip(".")
-    return "0" if float(text) == 0 else text
+    return f"{v:.{digits - 1}e}"
+
+
+#: Fixed-notation texts of a value that rounds to zero (trailing zeros stripped).
+_ZERO_TEXT = frozenset({"0", "-0"})
 
 
 def format_p(p: Any) -> str:
