@@ -57,11 +57,12 @@ projection is given with `E` and with `E = 0`; the limit for many workers is `T(
 **Fit-bound ratio.** In the fleet benchmark's parent process, before the flow runs,
 `bench/fleet.py:fit_time` fits every series of the same fleet as the audit's refit check does (the
 registry's fit window, all 730 days, no standard errors: the audit computes none) and computes the
-production filter (one-step errors of the production parameters), one series after another, after one warm-up fit. The fits-alone time is
-that sum divided by the flow's worker processes (one per CPU): the time the fits would take split
-evenly over the flow's workers with nothing else to do. The ratio is the fleet's wall time
-(server start and flow, as for the throughput) over it; the flow alone is shown too. The candidate
-search's fits are not counted: they are work the audit adds, not the fit-bound limit.
+production filter (one-step errors of the production parameters), one series after another, after
+one warm-up fit. The fits-alone time is that sum divided by the flow's worker processes (one per
+CPU): the time the fits would take split evenly over the flow's workers with nothing else to do.
+The ratio is the fleet's wall time (server start and flow, as for the throughput) over it; the flow
+alone is shown too. The candidate search's fits are not counted: they are work the audit adds, not
+the fit-bound limit.
 
 **Peak memory.** One 10,000-series extract; runs audit its first 2,500, 5,000 and 10,000 models in
 fresh child processes; the parent polls the resident set size (psutil, every 0.2 s) of the flow
