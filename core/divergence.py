@@ -44,6 +44,7 @@ from typing import Literal
 
 import numpy as np
 
+from ._plain import all_plain
 from ._scipy import special
 from .exceptions import InputError
 
@@ -576,7 +577,7 @@ class DivergenceMap:
 
 def _inf_to_str(x):
     if isinstance(x, list):
-        if set(map(type, x)) == {float} and math.isfinite(sum(x)):  # a row of finite floats: nothing to replace
+        if all_plain(x):  # nothing to replace
             return x
         return [_inf_to_str(v) for v in x]
     if isinstance(x, float) and math.isinf(x):

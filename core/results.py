@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from ._plain import all_plain
 from .change import ChangeResult
 from .divergence import DivergenceMap
 
@@ -200,23 +201,12 @@ class AuditResult:
         return out
 
 
-#: Types that :func:`_plain` returns unchanged (finite ``float`` too).
-_PLAIN_TYPES = frozenset({str, int, bool, type(None)})
-
-
-def _plain_leaves(v: list | tuple) -> bool:
-    """Whether every element of ``v`` is already plain: of :data:`_PLAIN_TYPES`, or all finite floats
-    (their sum is finite only if every one is)."""
-    kinds = set(map(type, v))
-    return kinds <= _PLAIN_TYPES or (kinds == {float} and math.isfinite(sum(v)))
-
-
 def _plain(v: Any) -> Any:
     """numpy -> Python, non-finite floats -> strings (strict JSON)."""
     if isinstance(v, dict):
         return {str(k): _plain(x) for k, x in v.items()}
     if isinstance(v, (list, tuple)):
-        if _plain_leaves(v):
+        if all_plain(v):
             return list(v)
         return [_plain(x) for x in v]
     if isinstance(v, np.ndarray):

@@ -14,6 +14,8 @@ import tempfile
 from collections.abc import Iterable, Iterator
 from typing import Any
 
+from fitaudit.core._plain import all_plain
+
 __all__ = [
     "SAFE_ID",
     "canonical_json",
@@ -34,10 +36,6 @@ SAFE_ID = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,127}\Z")
 _CHUNK = 1 << 20
 
 
-#: Types that :func:`json_ready` returns unchanged (finite ``float`` too).
-_READY_TYPES = frozenset({str, int, bool, type(None)})
-
-
 def json_ready(obj: Any) -> Any:
     """Convert numpy scalars/arrays, tuples, paths and non-finite floats to JSON-safe values.
 
@@ -55,9 +53,8 @@ def json_ready(obj: Any) -> Any:
     if isinstance(obj, dict):
         return {str(k): json_ready(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        kinds = set(map(type, obj))
-        if kinds <= _READY_TYPES or (kinds == {float} and math.isfinite(sum(obj))):
-            return list(obj)  # every element already JSON-ready (finite floats: their sum is finite)
+        if all_plain(obj):
+            return list(obj)  # every element already JSON-ready
         return [json_ready(v) for v in obj]
     if hasattr(obj, "tolist") and not isinstance(obj, bytes):
         return json_ready(obj.tolist())
