@@ -112,10 +112,10 @@ and threshold models and the local worker processes forced on), and each numeric
 the implementation it replaced. Three changes of an earlier round change numbers on purpose, each
 said in its row: the model fits (new optimiser paths reach the same maxima, to about 1e-7 in the
 log-likelihood, never lower than statsmodels'), the student-t tables (simulated on a grid of the
-degrees of freedom, docs/method.md §7.3) and the Newton sums of the t law (equal to rounding). Every
-later row changes no result: each is tested against what it replaced, and the one that is not
-bit-identical (the null tables' maps per distinct cell) differs in the last bit of a table's
-values. The last four rows are this round's.
+degrees of freedom, docs/method.md §7.3) and the Newton sums of the t law (equal to rounding). The
+last eleven rows (the last four this round's) change no result: each is tested against what it
+replaced, and the one that is not bit-identical (the null tables' maps per distinct cell) differs
+in the last bit of a table's values.
 
 | where | change | measured gain |
 | --- | --- | --- |
