@@ -37,6 +37,7 @@ from typing import Any
 
 import numpy as np
 
+from ._plain import plain_data
 from .calibration import CalibrationCache, prepare_calibration
 from .change import locate_change
 from .checks import MAGNITUDE_RANGE, _check_inputs, _failed_check, _production_check, _refit_check, score_frozen
@@ -45,7 +46,7 @@ from .forecasts import audit_forecasts
 from .models import FitResult, as_model, check_series, exog_matrix
 from .noise import as_noise_law
 from .plotdata import error_effects, iso_date
-from .results import AuditResult, CheckResult, _plain
+from .results import AuditResult, CheckResult
 from .settings import DEFAULT_GATE_MEMBERS, DEFAULT_PARTITIONS, AuditSettings
 from .verdict import apply_fleet_rules, decide_verdict
 
@@ -142,7 +143,7 @@ def audit_series(
             reasons=(f"The audit could not start: {check.message}",),
             production=None,
             refit=check,
-            spec=_plain(spec_dict),
+            spec=plain_data(spec_dict),
             noise=str(noise_name),
             timings={"total_s": time.perf_counter() - t_start},
         )
@@ -226,7 +227,7 @@ def audit_series(
         reasons=reasons,
         production=prod_check,
         refit=refit_check,
-        spec=_plain(spec_dict),
+        spec=plain_data(spec_dict),
         noise=law.name if law.shape is None or not law.has_shape else f"{law.name}({law.shape:g})",
         fitted=fitted,
         production_params=None if production is None else {k: float(v) for k, v in production.items()},

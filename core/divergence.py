@@ -38,13 +38,12 @@ References
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Literal
 
 import numpy as np
 
-from ._plain import all_plain
+from ._plain import KEEP, plain_data
 from ._scipy import special
 from .exceptions import InputError
 
@@ -551,12 +550,13 @@ class DivergenceMap:
         )
 
     def to_dict(self) -> dict:
-        """Plain-Python view (lists, floats; infinities as the string ``"inf"``)."""
+        """Plain-Python view (lists, floats; infinities as the strings ``"inf"``/``"-inf"``, NaN kept).
 
-        def clean(x):
-            arr = np.asarray(x, dtype=float)
-            lst = arr.tolist()
-            return _inf_to_str(lst)
+        ``alpha_max`` and ``beta_max`` are NaN-free instead: NaN (no finite grid point) as ``None``.
+        """
+
+        def clean(x):  # NaN kept, infinities as strings
+            return plain_data(np.asarray(x, dtype=float).tolist(), nan=KEEP)
 
         return {
             "statistic": clean(self.statistic),
@@ -567,30 +567,12 @@ class DivergenceMap:
             "scaling": self.scaling,
             "r": self.r,
             "infinite": np.asarray(self.infinite).tolist(),
-            "t_max": _inf_to_str(np.asarray(self.t_max, dtype=float).tolist()),
+            "t_max": clean(self.t_max),
             "argmax": [np.asarray(k).tolist() for k in self.argmax],
-            "alpha_max": _nan_to_none(np.asarray(self.alpha_max).tolist()),
-            "beta_max": _nan_to_none(np.asarray(self.beta_max).tolist()),
-            "members": {k: _inf_to_str(np.asarray(v, dtype=float).tolist()) for k, v in self.members.items()},
+            "alpha_max": plain_data(np.asarray(self.alpha_max).tolist(), inf=KEEP),
+            "beta_max": plain_data(np.asarray(self.beta_max).tolist(), inf=KEEP),
+            "members": {k: clean(v) for k, v in self.members.items()},
         }
-
-
-def _inf_to_str(x):
-    if isinstance(x, list):
-        if all_plain(x):  # nothing to replace
-            return x
-        return [_inf_to_str(v) for v in x]
-    if isinstance(x, float) and math.isinf(x):
-        return "inf" if x > 0 else "-inf"
-    return x
-
-
-def _nan_to_none(x):
-    if isinstance(x, list):
-        return [_nan_to_none(v) for v in x]
-    if isinstance(x, float) and np.isnan(x):
-        return None
-    return x
 
 
 #: Cells (rows x cells) from which :func:`_grid_sums` computes the terms once per distinct cell.

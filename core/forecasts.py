@@ -66,6 +66,7 @@ from typing import Any
 import numpy as np
 from scipy import special, stats
 
+from ._plain import plain_data
 from ._validation import Interval, check_param
 from .calibration import CalibrationCache, key_rng, settings_production_table
 from .cells import number_of_cells
@@ -74,7 +75,7 @@ from .checks import _digest, _failed_check, score_frozen
 from .diagnostics import PortmanteauResult, acf, chi2_sf, ljung_box_lags
 from .exceptions import FitauditError, InputError, InsufficientDataError
 from .noise import NoiseLaw, NoiseParams, as_noise_law, get_law
-from .results import AuditResult, CheckResult, _plain
+from .results import AuditResult, CheckResult
 from .settings import AuditSettings
 from .verdict import _fmt_p
 
@@ -1329,7 +1330,7 @@ def audit_forecasts(
             reasons=reasons,
             production=check,
             refit=None,
-            spec=_plain(spec),
+            spec=plain_data(spec),
             noise=str(noise_name),
             timings={"total_s": time.perf_counter() - t_start},
         )
@@ -1380,10 +1381,10 @@ def audit_forecasts(
         reasons=reasons,
         production=check,
         refit=None,
-        spec=_plain(spec),
+        spec=plain_data(spec),
         noise=str(noise_name),
         change=change,
-        accuracy=_plain(accuracy),
+        accuracy=plain_data(accuracy),
         timings=timings,
     )
 

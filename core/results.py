@@ -7,13 +7,11 @@ grids rounded to 6 decimals), so ``results.json`` is reproducible byte for byte.
 from __future__ import annotations
 
 import dataclasses
-import math
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 
-from ._plain import all_plain
+from ._plain import plain_data
 from .change import ChangeResult
 from .divergence import DivergenceMap
 
@@ -121,13 +119,13 @@ class CheckResult:
                 v = None if v is None else _rounded(v)
             elif isinstance(v, tuple):
                 v = list(v)
-            out[f.name] = _plain(v)
+            out[f.name] = plain_data(v)
         return out
 
 
 def _rounded(grid: np.ndarray) -> list:
     """A grid as nested lists rounded to 6 decimals, non-finite values as strings or None."""
-    return _plain(np.round(np.asarray(grid, dtype=float), 6))
+    return plain_data(np.round(np.asarray(grid, dtype=float), 6))
 
 
 @dataclass(frozen=True)
@@ -189,39 +187,13 @@ class AuditResult:
             "reasons": list(self.reasons),
             "production": None if self.production is None else self.production.to_dict(),
             "refit": None if self.refit is None else self.refit.to_dict(),
-            "spec": _plain(self.spec),
+            "spec": plain_data(self.spec),
             "noise": self.noise,
-            "fitted": _plain(self.fitted),
-            "production_params": _plain(self.production_params),
+            "fitted": plain_data(self.fitted),
+            "production_params": plain_data(self.production_params),
             "change": None if self.change is None else self.change.to_dict(),
             "escalated": self.escalated,
         }
         if self.accuracy:
-            out["accuracy"] = _plain(self.accuracy)
+            out["accuracy"] = plain_data(self.accuracy)
         return out
-
-
-def _plain(v: Any) -> Any:
-    """numpy -> Python, non-finite floats -> strings (strict JSON)."""
-    if isinstance(v, dict):
-        return {str(k): _plain(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        if all_plain(v):
-            return list(v)
-        return [_plain(x) for x in v]
-    if isinstance(v, np.ndarray):
-        if v.dtype.kind in "biu" or (v.dtype.kind == "f" and np.isfinite(v).all()):
-            return v.tolist()  # already plain: Python ints, bools or finite floats
-        return _plain(v.tolist())
-    if isinstance(v, (np.floating, float)):
-        f = float(v)
-        if math.isnan(f):
-            return None
-        if math.isinf(f):
-            return "inf" if f > 0 else "-inf"
-        return f
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (np.bool_,)):
-        return bool(v)
-    return v

@@ -9,12 +9,12 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass
 
+from ._plain import plain_data
 from ._validation import Options, check_param
 from .calibration import Gate
 from .cells import make_partitions
 from .divergence import DEFAULT_ALPHAS, DEFAULT_BETAS, SCALINGS
 from .exceptions import InputError
-from .results import _plain
 from .vocabulary import PARTITION_KINDS, SETTING_BOUNDS, Calibration
 
 __all__ = ["AuditSettings", "DEFAULT_PARTITIONS", "DEFAULT_GATE_MEMBERS"]
@@ -161,4 +161,4 @@ class AuditSettings:
 
     def to_dict(self) -> dict:
         """Plain-Python view."""
-        return {f.name: _plain(getattr(self, f.name)) for f in dataclasses.fields(self)}
+        return {f.name: plain_data(getattr(self, f.name)) for f in dataclasses.fields(self)}

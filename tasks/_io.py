@@ -6,7 +6,6 @@ import contextlib
 import datetime as _dt
 import hashlib
 import json
-import math
 import os
 import pathlib
 import re
@@ -14,7 +13,7 @@ import tempfile
 from collections.abc import Iterable, Iterator
 from typing import Any
 
-from fitaudit.core._plain import all_plain
+from fitaudit.core._plain import plain_data
 
 __all__ = [
     "SAFE_ID",
@@ -40,31 +39,11 @@ def json_ready(obj: Any) -> Any:
     """Convert numpy scalars/arrays, tuples, paths and non-finite floats to JSON-safe values.
 
     Non-finite floats become the strings ``"inf"``, ``"-inf"`` and ``"nan"`` so that files stay
-    strict JSON (``allow_nan=False``) and round-trip without loss of meaning.
+    strict JSON (``allow_nan=False``) and round-trip without loss of meaning; paths become POSIX
+    strings, dates ISO strings, and anything JSON cannot hold raises ``TypeError``
+    (:func:`fitaudit.core._plain.plain_data` with ``nan="nan", strict=True``).
     """
-    if isinstance(obj, (str, int)) or obj is None:  # the commonest leaves first (bool is an int)
-        return obj
-    if isinstance(obj, float):
-        if math.isnan(obj):
-            return "nan"
-        if math.isinf(obj):
-            return "inf" if obj > 0 else "-inf"
-        return obj
-    if isinstance(obj, dict):
-        return {str(k): json_ready(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        if all_plain(obj):
-            return list(obj)  # every element already JSON-ready
-        return [json_ready(v) for v in obj]
-    if hasattr(obj, "tolist") and not isinstance(obj, bytes):
-        return json_ready(obj.tolist())
-    if isinstance(obj, pathlib.PurePath):
-        return obj.as_posix()
-    if isinstance(obj, (_dt.date, _dt.datetime)):
-        return obj.isoformat()
-    if hasattr(obj, "item"):
-        return json_ready(obj.item())
-    raise TypeError(f"cannot serialise {type(obj).__name__} to JSON")
+    return plain_data(obj, nan="nan", strict=True)
 
 
 def canonical_json(obj: Any, indent: int | None = None) -> bytes:

@@ -366,11 +366,11 @@ def test_report_number_and_coordinate_texts_match_the_unoptimised_ones():
 
 
 def test_json_fast_paths_keep_every_conversion():
-    from fitaudit.core.results import _plain
+    from fitaudit.core._plain import plain_data as _plain  # the records' conversion (its defaults)
     from fitaudit.tasks._io import canonical_json, json_ready
 
     inf, nan = float("inf"), float("nan")
-    # source: the element-by-element conversions (docstrings of json_ready and _plain)
+    # source: the element-by-element conversions (docstrings of json_ready and plain_data)
     assert json_ready([1.5, inf, -inf, nan]) == [1.5, "inf", "-inf", "nan"]
     assert json_ready([1e308, 1e308]) == [1e308, 1e308]  # a sum that overflows takes the slow path, values kept
     assert json_ready((1, True, None, "a")) == [1, True, None, "a"]
@@ -378,3 +378,96 @@ def test_json_fast_paths_keep_every_conversion():
     assert _plain([1.5, inf, nan]) == [1.5, "inf", None]
     assert _plain((np.float64(2.5), 1)) == [2.5, 1] and type(_plain([np.float64(2.5)])[0]) is float
     assert canonical_json({"a": [0.1, 0.2], "b": [inf]}) == b'{"a":[0.1,0.2],"b":["inf"]}'
+
+
+def test_the_one_json_conversion_writes_each_call_site_as_before():
+    """Records, divergence maps and canonical JSON write what their own converters wrote before the merge.
+
+    Before the merge ``core/results.py`` ``_plain`` (records: NaN as None), ``core/divergence.py``
+    ``_inf_to_str``/``_nan_to_none`` (NaN kept; ``alpha_max`` NaN as None) and ``tasks/_io.py``
+    ``json_ready`` (NaN as "nan"; paths and dates as strings) were three converters; the expected
+    values below were worked out by hand from those functions.  JSON texts are compared so that
+    ``3`` and ``3.0``, ``None``, ``"nan"`` and ``NaN`` all differ.
+    """
+    import datetime as dt
+
+    from fitaudit.core.divergence import DivergenceMap
+    from fitaudit.core.results import AuditResult
+    from fitaudit.tasks._io import canonical_json, json_ready
+
+    inf, nan = float("inf"), float("nan")
+    nested = {
+        "a": (1.5, nan, inf, -inf),
+        "b": [
+            np.float32(0.5),
+            np.int64(3),
+            np.float32(np.inf),
+            np.float64(-np.inf),
+            np.float32(np.nan),
+            np.float64(2.5),
+        ],
+        "c": np.array([[1.0, np.nan], [np.inf, -np.inf]]),
+        "d": {"e": (np.arange(2), True, None), 7: {"f": np.array([0.25, 2.0], dtype=np.float32)}},
+    }
+
+    # records (AuditResult.to_dict, old _plain): NaN -> None, infinities -> strings, numpy -> Python
+    record = AuditResult("pass", (), None, None, spec=nested, noise="normal", accuracy=nested).to_dict()
+    expected = {
+        "a": [1.5, None, "inf", "-inf"],
+        "b": [0.5, 3, "inf", "-inf", None, 2.5],
+        "c": [[1.0, None], ["inf", "-inf"]],
+        "d": {"e": [[0, 1], True, None], "7": {"f": [0.25, 2.0]}},
+    }
+    assert json.dumps(record["spec"]) == json.dumps(record["accuracy"]) == json.dumps(expected)
+    assert [type(x) for x in record["spec"]["b"]] == [float, int, str, str, type(None), float]  # np.float64 too
+
+    # canonical JSON (old json_ready): NaN -> "nan"; a finite numpy.float64 (a float) is kept as it is
+    ready = json_ready(nested)
+    expected = {
+        "a": [1.5, "nan", "inf", "-inf"],
+        "b": [0.5, 3, "inf", "-inf", "nan", 2.5],
+        "c": [[1.0, "nan"], ["inf", "-inf"]],
+        "d": {"e": [[0, 1], True, None], "7": {"f": [0.25, 2.0]}},
+    }
+    assert json.dumps(ready) == json.dumps(expected)
+    assert [type(x) for x in ready["b"]] == [float, int, str, str, str, np.float64]
+    assert canonical_json(nested) == (
+        b'{"a":[1.5,"nan","inf","-inf"],"b":[0.5,3,"inf","-inf","nan",2.5],"c":[[1.0,"nan"],["inf","-inf"]],'
+        b'"d":{"7":{"f":[0.25,2.0]},"e":[[0,1],true,null]}}'
+    )
+    leaves = {"p": pathlib.PurePosixPath("x/y"), "t": dt.date(2024, 1, 2)}
+    assert json_ready(leaves) == {"p": "x/y", "t": "2024-01-02"}
+    assert AuditResult("pass", (), None, None, spec=leaves, noise="normal").to_dict()["spec"] == leaves  # kept
+    with pytest.raises(TypeError, match="cannot serialise set to JSON"):
+        json_ready({"s": {1}})
+
+    # divergence map (old _inf_to_str: NaN kept, infinities -> strings; _nan_to_none: alpha_max NaN -> None)
+    m = DivergenceMap(
+        statistic=nested["c"],
+        n=10,
+        cells=3,
+        alphas=np.array([0.5, 1.0]),
+        betas=np.array([0.0, 1.0]),
+        scaling="model",
+        r=None,
+        infinite=np.isinf(nested["c"]),
+        t_max=np.float32(np.inf),
+        argmax=(np.int64(-1), -1),
+        members={"pearson": nested["a"], "neyman": (nested["b"][:2], np.array([-inf, 0.25])), "g": np.float64(nan)},
+    ).to_dict()
+    expected = {
+        "statistic": [[1.0, nan], ["inf", "-inf"]],
+        "n": 10,
+        "cells": 3,
+        "alphas": [0.5, 1.0],
+        "betas": [0.0, 1.0],
+        "scaling": "model",
+        "r": None,
+        "infinite": [[False, False], [True, True]],
+        "t_max": "inf",
+        "argmax": [-1, -1],
+        "alpha_max": None,
+        "beta_max": None,
+        "members": {"pearson": [1.5, nan, "inf", "-inf"], "neyman": [[0.5, 3.0], ["-inf", 0.25]], "g": nan},
+    }
+    assert json.dumps(m) == json.dumps(expected)  # NaN written as NaN: the map's own view keeps it
