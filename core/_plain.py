@@ -19,9 +19,8 @@ from __future__ import annotations
 import datetime as _dt
 import math
 import pathlib
+import sys
 from typing import Any
-
-import numpy as np
 
 __all__ = ["KEEP", "PLAIN_TYPES", "all_plain", "plain_data"]
 
@@ -107,6 +106,9 @@ def plain_data(value: Any, *, nan: Any = None, inf: Any = ("inf", "-inf"), stric
     TypeError: cannot serialise set to JSON
     """
     positive, negative = (None, None) if inf is KEEP else inf
+    # numpy is looked up, not imported: a numpy value means numpy is loaded, and commands that convert
+    # only plain data (verify, signoff, promote: canonical JSON) must not load it (tests/test_startup.py)
+    np = sys.modules.get("numpy")
 
     def nonfinite(f: float) -> Any:
         if math.isnan(f):
@@ -125,16 +127,17 @@ def plain_data(value: Any, *, nan: Any = None, inf: Any = ("inf", "-inf"), stric
             return {str(k): convert(x) for k, x in v.items()}
         if isinstance(v, (list, tuple)):
             return list(v) if all_plain(v) else [convert(x) for x in v]
-        if isinstance(v, np.ndarray):
-            if v.dtype.kind in "biu" or (v.dtype.kind == "f" and np.isfinite(v).all()):
-                return v.tolist()  # already plain: Python ints, bools or finite floats
-            return convert(v.tolist())
-        if isinstance(v, np.floating):
-            return convert(float(v))
-        if isinstance(v, np.integer):
-            return int(v)
-        if isinstance(v, np.bool_):
-            return bool(v)
+        if np is not None:
+            if isinstance(v, np.ndarray):
+                if v.dtype.kind in "biu" or (v.dtype.kind == "f" and np.isfinite(v).all()):
+                    return v.tolist()  # already plain: Python ints, bools or finite floats
+                return convert(v.tolist())
+            if isinstance(v, np.floating):
+                return convert(float(v))
+            if isinstance(v, np.integer):
+                return int(v)
+            if isinstance(v, np.bool_):
+                return bool(v)
         if not strict:
             return v
         if hasattr(v, "tolist") and not isinstance(v, bytes):
