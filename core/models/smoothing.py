@@ -856,7 +856,8 @@ class _AdditiveProfile:
             "phi": (N1, zero, A1, Bb, G1),
         }
         self.den_derivative_terms = np.stack([np.stack(terms[name]) for name in self.names], axis=1).reshape(5, -1)
-        self.y_n1 = self.lag_y @ self.basis[1]  # N1 * y (causal convolution), the derivative of num * y in phi
+        self.y_n0 = self.lag_y @ self.basis[0]  # N0 * y (causal convolution): num * y = N0 * y + phi N1 * y
+        self.y_n1 = self.lag_y @ self.basis[1]  # N1 * y, the derivative of num * y in phi
         self.one = np.ones(1)  # the numerator of 1/den
         self.padded = np.zeros(n + self.L)  # zeros around a series, for lagged and leading views
         step = self.padded.strides[0]
@@ -874,13 +875,16 @@ class _AdditiveProfile:
     # -- filter coefficients -----------------------------------------------------------------
     def _coefficients(self, Theta: np.ndarray) -> np.ndarray:
         """(B, 7) weights of the basis rows N0, N1, A0, A1, Bb, G0, G1 (see :func:`_filter_basis`)."""
-        B = Theta.shape[0]
-        col = dict(zip(self.names, Theta.T))
-        a = col["alpha"]
-        b = col.get("beta", np.zeros(B))
-        g = col.get("gamma", np.zeros(B))
-        p = col.get("phi", np.ones(B))
-        return np.stack([np.ones(B), p, a, a * p, b * p, g, g * p], axis=1)
+        _, i_beta, i_gamma, i_phi = self.positions  # alpha is always a parameter, first
+        C = np.empty((Theta.shape[0], 7))
+        C[:, 0] = 1.0
+        C[:, 1] = 1.0 if i_phi is None else Theta[:, i_phi]
+        C[:, 2] = Theta[:, 0]
+        C[:, 3] = C[:, 2] * C[:, 1]
+        C[:, 4] = 0.0 if i_beta is None else Theta[:, i_beta] * C[:, 1]
+        C[:, 5] = 0.0 if i_gamma is None else Theta[:, i_gamma]
+        C[:, 6] = C[:, 5] * C[:, 1]
+        return C
 
     def _heads(self, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Deterministic paths of the unit states at t < Lq, (B, Lq, k), and their derivative in phi."""
@@ -1033,33 +1037,42 @@ class _AdditiveProfile:
             J = signal.lfilter([1.0], den, rows, axis=-1).T
         return J * self.scale, -M
 
+    def _lag_products(self, H: np.ndarray, R: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The lagged impulse responses and their products, from H (B, n + Lq: Lq zeros, then h) and R (B, n).
+
+        Returns the view ``lagged[b, t, j] = h[t - j]`` (B, n, Lq; valid while H lives), its Gram
+        matrix G (B, Lq, Lq) and its products with R (B, Lq).  ``G_ij = sum_t h(t-i) h(t-j)`` is the
+        lag |i-j| autocorrelation less its last min(i, j) products, so nothing of size n x Lq is formed.
+        """
+        B, n, Lq = R.shape[0], self.n, self.Lq
+        rs, ts = H.strides
+        lagged = np.ndarray((B, n, Lq), np.float64, H, Lq * ts, (rs, ts, -ts))
+        auto = np.einsum("btj,bt->bj", lagged, H[:, Lq:])
+        cross = np.einsum("btj,bt->bj", lagged, R)
+        last = H[:, self.tail_index[0]] * H[:, self.tail_index[1]]  # (B, Lq lags, Lq): the last products
+        tails = np.concatenate([np.zeros((B, Lq, 1)), np.cumsum(last[:, :, ::-1], axis=2)], axis=2)
+        return lagged, auto[:, self.gram_lag] - tails[:, self.gram_lag, self.gram_first], cross
+
     def grid_values(self, Theta: np.ndarray) -> np.ndarray:
         """Profile SSE (centred and scaled units) at a (B, d) batch of smoothing parameters; inf if not finite."""
         C = self._coefficients(Theta)
         num = C[:, :2] @ self.basis[:2]
         den = C @ self.basis
-        U = num @ self.lag_y.T
+        U = self.y_n0 + C[:, 1:2] * self.y_n1  # num * y
         B, n = U.shape
+        Lq = self.Lq
         R = np.empty((B, n))
-        H = np.empty((B, n))
+        H = np.zeros((B, n + Lq))  # impulse responses after Lq zeros
         with np.errstate(over="ignore", invalid="ignore"):
             for b in range(B):  # scipy filters one coefficient set per call
                 self.inputs[0] = U[b]
-                R[b], H[b] = signal.lfilter([1.0], den[b], self.inputs, axis=-1)
-            finite = np.isfinite(R).all(axis=1) & np.isfinite(H).all(axis=1)
-            if not finite.all():
-                R = np.where(np.isfinite(R), R, 0.0)
-                H = np.where(np.isfinite(H), H, 0.0)
+                R[b], H[b, Lq:] = signal.lfilter(self.one, den[b], self.inputs, axis=-1)
+            finite = np.isfinite(R[:, -1]) & np.isfinite(H[:, -1])  # an overflow propagates to the last term
+            R[~finite] = 0.0
+            H[~finite] = 0.0
             D, _ = self._heads(C[:, 1])
             Q = self._transient(num, D)
-            # Gram matrix of the lagged impulse responses and their products with R, from (cross-)correlations
-            Lq = self.Lq
-            auto = np.stack([np.einsum("bt,bt->b", H[:, : n - d], H[:, d:]) for d in range(Lq)], axis=1)
-            cross = np.stack([np.einsum("bt,bt->b", R[:, d:], H[:, : n - d]) for d in range(Lq)], axis=1)
-            padded = np.concatenate([np.zeros((B, Lq)), H], axis=1)
-            last = padded[:, self.tail_index[0]] * padded[:, self.tail_index[1]]  # (B, Lq lags, Lq): tails
-            tails = np.concatenate([np.zeros((B, Lq, 1)), np.cumsum(last[:, :, ::-1], axis=2)], axis=2)
-            G = auto[:, self.gram_lag] - tails[:, self.gram_lag, self.gram_first]
+            _, G, cross = self._lag_products(H, R)
             A = np.swapaxes(Q, 1, 2) @ G @ Q
             rhs = np.einsum("bqk,bq->bk", Q, cross)
             scale = np.sqrt(np.abs(np.einsum("bii->bi", A)))
