@@ -66,7 +66,7 @@ def peak_rss(cmd: list[str], env: dict, interval: float = 0.2) -> dict:
 
 
 def _is_server(p: psutil.Process) -> bool:
-    """The embedded Prefect server: Prefect starts it as ``python -m uvicorn ...``."""
+    """The embedded Prefect server, started as ``python -m uvicorn ...``."""
     try:
         return "uvicorn" in p.cmdline()[1:3]
     except psutil.Error:

@@ -21,6 +21,7 @@ import argparse
 import contextlib
 import datetime as dt
 import errno
+import importlib
 import json
 import os
 import pathlib
@@ -224,8 +225,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 @contextlib.contextmanager
-def _server_if_needed(args: argparse.Namespace):
-    """Start a local Prefect server when asked, or when Dask is requested without one."""
+def _server_if_needed(args: argparse.Namespace, flow_module: str):
+    """Start a local Prefect server when asked, or when Dask is requested without one; otherwise the
+    embedded server, while ``flow_module`` (the command's flows) is imported."""
     wants = getattr(args, "start_server", False) or (
         getattr(args, "dask", None) and "PREFECT_API_URL" not in os.environ
     )
@@ -246,7 +248,7 @@ def _server_if_needed(args: argparse.Namespace):
         from .server import start_embedded_server
 
         # started now rather than by the first flow, so that it is recorded and can be reaped after a SIGKILL
-        yield os.environ.get("PREFECT_API_URL") or start_embedded_server()
+        yield os.environ.get("PREFECT_API_URL") or start_embedded_server(lambda: importlib.import_module(flow_module))
 
 
 def _with_runner(flow_fn, dask: str | None):
@@ -398,7 +400,7 @@ def _cmd_run(args) -> int:
     reg = _checked_registry(args)
     if reg is None:
         return EXIT_USAGE
-    with _server_if_needed(args):
+    with _server_if_needed(args, "fitaudit.flows.audit"):
         from .audit import audit_flow
 
         flow_fn = _with_runner(_timeout(audit_flow, reg), args.dask)
@@ -429,7 +431,7 @@ def _cmd_refit(args) -> int:
     reg = _checked_registry(args)
     if reg is None:
         return EXIT_USAGE
-    with _server_if_needed(args):
+    with _server_if_needed(args, "fitaudit.flows.refit"):
         from .refit import refit_flow
 
         try:
@@ -463,7 +465,7 @@ def _cmd_backfill(args) -> int:
     if reg is None:
         return EXIT_USAGE
     dates = max(1, (args.end - args.start).days // max(args.every, 1) + 1)
-    with _server_if_needed(args):
+    with _server_if_needed(args, "fitaudit.flows.backfill"):
         from .backfill import backfill_flow
 
         results = _with_runner(_timeout(backfill_flow, reg, dates), args.dask)(
@@ -486,7 +488,7 @@ def _cmd_serve(args) -> int:
         return EXIT_USAGE
     if _checked_registry(args) is None:
         return EXIT_USAGE
-    with _server_if_needed(args):
+    with _server_if_needed(args, "fitaudit.flows.deploy"):
         from .deploy import serve_all
 
         serve_all(
@@ -539,7 +541,7 @@ def _cmd_signoff(args) -> int:
 
 
 def _cmd_demo(args) -> int:
-    with _server_if_needed(args):
+    with _server_if_needed(args, "fitaudit.flows.demo"):
         from .demo import run_demo
 
         result = run_demo(
@@ -596,7 +598,7 @@ class Terminated(BaseException):
     """Raised in the main thread on SIGTERM, so that the command unwinds and exits cleanly.
 
     Unwinding stops the local worker processes (``tasks.workers.local_workers``) and a server
-    started with ``--start-server``; Prefect's embedded server is stopped by Prefect's exit handler.
+    started with ``--start-server``; the embedded server is stopped by an exit handler.
     A ``BaseException``, like ``KeyboardInterrupt``: no ``except Exception`` swallows it.
     """
 

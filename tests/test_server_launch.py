@@ -1,0 +1,116 @@
+"""The embedded Prefect server launched by fitaudit itself (flows/server.py ``start_embedded_server``).
+
+A command that found no Prefect configuration of the user's launches the server before it imports
+Prefect, so its own imports run while the server starts; any configuration (environment, profile
+or a settings file in the working directory) leaves the start to Prefect, as before.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import pathlib
+import subprocess
+import sys
+import textwrap
+import time
+import types
+
+import pytest
+
+from fitaudit.flows import server
+
+
+@pytest.fixture
+def plain_env(monkeypatch, tmp_path):
+    """The environment configure_prefect sets up, in an empty working directory, Prefect not imported."""
+    for key in ("PREFECT_API_URL", "PREFECT_PROFILE", "PREFECT_PROFILES_PATH"):
+        monkeypatch.delenv(key, raising=False)
+    monkeypatch.setenv("PREFECT_HOME", str(tmp_path / ".prefect"))
+    monkeypatch.setenv("PREFECT_SERVER_EPHEMERAL_ENABLED", "true")
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delitem(sys.modules, "prefect", raising=False)  # restored after the test
+    return tmp_path
+
+
+def test_launched_here_only_without_any_prefect_configuration(plain_env, monkeypatch):
+    assert server._launch_here()
+    monkeypatch.setenv("PREFECT_API_URL", "http://127.0.0.1:4200/api")
+    assert not server._launch_here()  # a server of the user's
+    monkeypatch.delenv("PREFECT_API_URL")
+    monkeypatch.setenv("PREFECT_SERVER_EPHEMERAL_ENABLED", "false")
+    assert not server._launch_here()  # the embedded server is switched off
+    monkeypatch.setenv("PREFECT_SERVER_EPHEMERAL_ENABLED", "true")
+    monkeypatch.setenv("PREFECT_PROFILE", "work")
+    assert not server._launch_here()
+    monkeypatch.delenv("PREFECT_PROFILE")
+    assert server._launch_here()
+
+
+@pytest.mark.parametrize(
+    ("name", "text", "configures"),
+    [
+        ("prefect.toml", 'api.url = "http://127.0.0.1:4200/api"\n', True),
+        (".env", "PREFECT_API_URL=http://127.0.0.1:4200/api\n", True),
+        ("pyproject.toml", '[tool.prefect]\napi.url = "http://127.0.0.1:4200/api"\n', True),
+        ("pyproject.toml", '[project]\nname = "forecasts"\n', False),
+    ],
+)
+def test_a_settings_file_in_the_working_directory_leaves_the_start_to_prefect(plain_env, name, text, configures):
+    # common practice: Prefect 3 reads settings from these files in the working directory
+    (plain_env / name).write_text(text)
+    assert server._launch_here() is not configures
+
+
+def test_a_profiles_file_in_the_prefect_home_leaves_the_start_to_prefect(plain_env):
+    home = pathlib.Path(os.environ["PREFECT_HOME"])
+    home.mkdir(parents=True)
+    (home / "profiles.toml").write_text('active = "work"\n')
+    assert not server._launch_here()
+
+
+def test_no_launch_once_prefect_is_imported(plain_env, monkeypatch):
+    # Prefect reads its settings when imported: too late to set the API URL (a stand-in module, not a second import)
+    monkeypatch.setitem(sys.modules, "prefect", types.ModuleType("prefect"))
+    assert not server._launch_here()
+
+
+_CHILD = textwrap.dedent(
+    """
+    import json, os, sys, time
+    from fitaudit.flows import _env
+    _env.configure_prefect()
+    from fitaudit.flows.server import start_embedded_server, tracked_servers
+    seen = {}
+    def prepare():
+        seen["prefect imported while the server starts"] = "prefect" in sys.modules
+        import fitaudit.flows.audit  # noqa: F401
+    url = start_embedded_server(prepare)
+    from prefect.client.orchestration import get_client
+    with get_client(sync_client=True) as client:
+        client.hello()
+        seen["client url"] = str(client.api_url)
+    print(json.dumps({**seen, "url": url, "env": os.environ.get("PREFECT_API_URL"), "records": tracked_servers()}))
+    """
+)
+
+
+@pytest.mark.server
+def test_the_launched_server_answers_and_is_stopped_and_unrecorded_at_exit(tmp_path):
+    import psutil
+
+    env = {k: v for k, v in os.environ.items() if not k.startswith("PREFECT_")}
+    proc = subprocess.run(
+        [sys.executable, "-c", _CHILD], cwd=tmp_path, env=env, capture_output=True, text=True, timeout=300
+    )
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    out = json.loads(proc.stdout.strip().splitlines()[-1])
+    assert out["prefect imported while the server starts"] is False
+    assert out["url"] == out["env"] and out["client url"].rstrip("/") == out["url"]
+    (record,) = out["records"]
+    assert record["kind"] == "embedded" and out["url"] == f"http://127.0.0.1:{record['port']}/api"
+    deadline = time.monotonic() + 30
+    while psutil.pid_exists(record["pid"]) and psutil.Process(record["pid"]).status() != psutil.STATUS_ZOMBIE:
+        assert time.monotonic() < deadline, "the embedded server still runs after the command exited"
+        time.sleep(0.2)
+    assert not list((tmp_path / ".prefect" / "fitaudit-servers").glob("*.json"))
