@@ -163,8 +163,9 @@ def start_embedded_server(prepare: Callable[[], object] | None = None) -> str | 
     return api_url
 
 
-#: Files in the working directory from which Prefect reads settings (besides the environment).
-_PREFECT_SETTING_FILES = ("prefect.toml", ".env", "pyproject.toml")
+#: Files in the working directory from which Prefect reads settings (besides the environment), each
+#: with the text that marks Prefect settings in it ("" : any such file).
+_PREFECT_SETTING_FILES = {"prefect.toml": "", ".env": "PREFECT_", "pyproject.toml": "[tool.prefect"}
 
 
 def _launch_here() -> bool:
@@ -179,9 +180,9 @@ def _launch_here() -> bool:
         return False
     if "PREFECT_PROFILES_PATH" in env or pathlib.Path(env.get("PREFECT_HOME", "."), "profiles.toml").exists():
         return False
-    for name in _PREFECT_SETTING_FILES:
+    for name, marker in _PREFECT_SETTING_FILES.items():
         path = pathlib.Path(name)
-        if path.is_file() and (name != "pyproject.toml" or "[tool.prefect" in path.read_text(errors="replace")):
+        if path.is_file() and marker in path.read_text(errors="replace"):
             return False
     return True
 

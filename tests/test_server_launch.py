@@ -54,6 +54,7 @@ def test_launched_here_only_without_any_prefect_configuration(plain_env, monkeyp
         (".env", "PREFECT_API_URL=http://127.0.0.1:4200/api\n", True),
         ("pyproject.toml", '[tool.prefect]\napi.url = "http://127.0.0.1:4200/api"\n', True),
         ("pyproject.toml", '[project]\nname = "forecasts"\n', False),
+        (".env", "DATABASE_URL=sqlite:///forecasts.db\n", False),
     ],
 )
 def test_a_settings_file_in_the_working_directory_leaves_the_start_to_prefect(plain_env, name, text, configures):
