@@ -29,6 +29,8 @@ import sys
 import time
 from collections.abc import Callable, Iterator
 
+from ._env import QUIET_SETTINGS
+
 __all__ = [
     "local_server",
     "free_port",
@@ -97,22 +99,26 @@ def local_server(port: int | None = None, log_path: str | None = None, timeout: 
             os.environ.pop("PREFECT_API_URL", None)
         else:
             os.environ["PREFECT_API_URL"] = previous
-        _stop_group(proc.pid)
-        try:
-            proc.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            with contextlib.suppress(ProcessLookupError):
-                os.killpg(proc.pid, signal.SIGKILL)
-            proc.wait(timeout=20)
+        _stop(proc, group=True, grace=20.0)
         _untrack(record)
         if log_path:
             log.close()
 
 
-def _stop_group(pgid: int) -> None:
-    """SIGTERM to a server's process group (it runs in its own session)."""
-    with contextlib.suppress(ProcessLookupError, PermissionError):
-        os.killpg(pgid, signal.SIGTERM)
+def _stop(proc: subprocess.Popen, group: bool = False, grace: float = 10.0) -> None:
+    """Stop a server this process started and wait for it: SIGTERM, then SIGKILL after ``grace`` seconds
+    (to its process group when it runs in a session of its own, as a started ``prefect server`` does)."""
+    send = os.killpg if group else os.kill
+    for sig in (signal.SIGTERM, signal.SIGKILL):
+        if not group and proc.poll() is not None:  # gone (and reaped): its pid may belong to another process now
+            return  # (a group is signalled anyway: the leader's children may outlive it)
+        with contextlib.suppress(ProcessLookupError, PermissionError):
+            send(proc.pid, sig)
+        try:
+            proc.wait(timeout=grace)
+        except subprocess.TimeoutExpired:
+            if sig == signal.SIGKILL:
+                raise
 
 
 # ----------------------------------------------------------------------------------------------
@@ -140,10 +146,16 @@ def start_embedded_server(prepare: Callable[[], object] | None = None) -> str | 
         proc, port = _launch_embedded()
         api_url = os.environ["PREFECT_API_URL"] = f"http://127.0.0.1:{port}/api"
         record = _track(proc.pid, "embedded", port)
-        atexit.register(_stop_embedded, proc, record)
+
+        def stop() -> None:  # at exit: the server, then its record
+            _stop(proc)
+            _untrack(record)
+
+        atexit.register(stop)
         if prepare is not None:
             prepare()
-        wait_healthy(api_url, float(os.environ.get("PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS", 120)), proc)
+        timeout = os.environ.get(_STARTUP_TIMEOUT, QUIET_SETTINGS[_STARTUP_TIMEOUT])
+        wait_healthy(api_url, float(timeout), proc)
         return api_url
     from prefect.settings import PREFECT_API_URL, PREFECT_SERVER_EPHEMERAL_ENABLED
 
@@ -163,6 +175,8 @@ def start_embedded_server(prepare: Callable[[], object] | None = None) -> str | 
     return api_url
 
 
+#: Prefect's setting for how long to wait for the embedded server (fitaudit's default in ``QUIET_SETTINGS``).
+_STARTUP_TIMEOUT = "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS"
 #: Files in the working directory from which Prefect reads settings (besides the environment), each
 #: with the text that marks Prefect settings in it ("" : any such file).
 _PREFECT_SETTING_FILES = {"prefect.toml": "", ".env": "PREFECT_", "pyproject.toml": "[tool.prefect"}
@@ -230,18 +244,6 @@ def _launch_embedded() -> tuple[subprocess.Popen, int]:
     finally:
         sock.close()
     return proc, port
-
-
-def _stop_embedded(proc: subprocess.Popen, record: pathlib.Path | None) -> None:
-    """At exit: stop a server :func:`_launch_embedded` started (SIGTERM, SIGKILL after 10 s), then its record."""
-    if proc.poll() is None:
-        proc.terminate()
-        try:
-            proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(timeout=10)
-    _untrack(record)
 
 
 def _records_dir() -> pathlib.Path:

@@ -366,7 +366,7 @@ def test_report_number_and_coordinate_texts_match_the_unoptimised_ones():
 
 
 def test_json_fast_paths_keep_every_conversion():
-    from fitaudit.core._plain import plain_data as _plain  # the records' conversion (its defaults)
+    from fitaudit.core._plain import plain_data  # the records' conversion (its defaults)
     from fitaudit.tasks._io import canonical_json, json_ready
 
     inf, nan = float("inf"), float("nan")
@@ -375,8 +375,8 @@ def test_json_fast_paths_keep_every_conversion():
     assert json_ready([1e308, 1e308]) == [1e308, 1e308]  # a sum that overflows takes the slow path, values kept
     assert json_ready((1, True, None, "a")) == [1, True, None, "a"]
     assert json_ready([np.int64(3), 2.0]) == [3, 2.0] and type(json_ready([np.int64(3)])[0]) is int
-    assert _plain([1.5, inf, nan]) == [1.5, "inf", None]
-    assert _plain((np.float64(2.5), 1)) == [2.5, 1] and type(_plain([np.float64(2.5)])[0]) is float
+    assert plain_data([1.5, inf, nan]) == [1.5, "inf", None]
+    assert plain_data((np.float64(2.5), 1)) == [2.5, 1] and type(plain_data([np.float64(2.5)])[0]) is float
     assert canonical_json({"a": [0.1, 0.2], "b": [inf]}) == b'{"a":[0.1,0.2],"b":["inf"]}'
 
 
