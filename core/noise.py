@@ -78,6 +78,9 @@ NB_SIZE_BOUNDS: tuple[float, float] = (1e-3, 1e6)
 
 _NEWTON_MAX_ITER = 100  # Newton iterations per row
 _NEWTON_STEP_TOL = 1e-10  # convergence: largest step in standardised units
+#: convergence: Newton decrement per observation below which the predicted increase (half the
+#: decrement) is lost in the rounding of the n-term log-likelihood sum (about n x 1e-16 per unit)
+_NEWTON_DECREMENT_TOL = 1e-14
 _MAX_HALVINGS = 40  # backtracking steps per Newton iteration
 _ARMIJO = 1e-4  # sufficient-increase constant of the line search
 
@@ -219,8 +222,13 @@ def _newton_ascent(loglik, data: np.ndarray, theta0: np.ndarray, lower: np.ndarr
     ``derivatives`` is true, also its gradient (r, k) and Hessian (r, k, k).  Each iteration takes
     the Newton direction of the Hessian with its eigenvalues replaced by their absolute values
     (floored), so the direction always ascends; components at a bound whose gradient points
-    outward are held fixed; an Armijo backtracking search guarantees an increase.  Rows stop
-    independently, so a row's result does not depend on the other rows.
+    outward are held fixed; an Armijo backtracking search guarantees an increase.  A row stops
+    when its step falls below ``_NEWTON_STEP_TOL`` or its Newton decrement ``g' H^-1 g`` (twice the
+    increase the quadratic model predicts) below ``_NEWTON_DECREMENT_TOL * n``, the rounding level
+    of the log-likelihood: a line search there compares values equal to rounding and would only
+    halve its step until it gives up (the Newton decrement stopping rule, Boyd and Vandenberghe
+    2004, *Convex Optimization*, sec. 9.5.1).  Rows stop independently, so a row's result does not
+    depend on the other rows.
 
     Returns
     -------
@@ -248,10 +256,11 @@ def _newton_ascent(loglik, data: np.ndarray, theta0: np.ndarray, lower: np.ndarr
         coef = np.einsum("rji,rj->ri", evecs, grad) / evals
         direction = np.einsum("rij,rj->ri", evecs, coef)
         decrement = np.einsum("ri,ri->r", grad, direction)
+        flat = decrement <= _NEWTON_DECREMENT_TOL * n  # at the maximum to rounding: stop without a search
 
         new_th = th.copy()
         step = np.ones(len(todo))
-        pending = np.ones(len(todo), dtype=bool)
+        pending = ~flat
         for _ in range(_MAX_HALVINGS):
             idx = np.flatnonzero(pending)
             if idx.size == 0:
@@ -268,8 +277,8 @@ def _newton_ascent(loglik, data: np.ndarray, theta0: np.ndarray, lower: np.ndarr
         # no acceptable step: the attainable increase is below rounding if the decrement is tiny
         stalled = pending
         theta[todo] = new_th
-        done = small_step | stalled
-        converged[todo[small_step]] = True
+        done = small_step | stalled | flat
+        converged[todo[small_step | flat]] = True
         converged[todo[stalled & (decrement <= 1e-6 * n)]] = True
         if done.any():
             todo, y = todo[~done], y[~done]

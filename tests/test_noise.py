@@ -243,6 +243,27 @@ def test_student_t_df_bounds():
     )  # common practice: Cauchy -> lowest df
 
 
+@pytest.mark.parametrize("name", ["student-t", "logistic"])
+def test_batched_newton_stops_at_the_maximum(name):
+    """The Newton decrement stop (core/noise.py, Boyd and Vandenberghe 2004, sec. 9.5.1) ends each
+    row at its maximum: scipy's own fit, started from ours, finds no higher likelihood."""
+    rng = np.random.default_rng(23)
+    X = np.concatenate([rng.standard_t(5, size=(12, 400)), rng.standard_normal((12, 400)), rng.logistic(size=(12, 400))])
+    law = get_law(name)
+    loc, scale, shape = law.fit_batch(X)
+    for i, x in enumerate(X):
+        if name == "student-t":
+            ours = stats.t.logpdf(x, shape[i], loc[i], scale[i]).sum()
+            ref = stats.t.fit(x, shape[i], loc=loc[i], scale=scale[i])  # source: scipy.stats t.fit (Nelder-Mead)
+            best = stats.t.logpdf(x, *ref).sum()
+            if STUDENT_T_DF_BOUNDS[0] < ref[0] < STUDENT_T_DF_BOUNDS[1]:
+                assert ours >= best - 1e-9 * abs(best)
+        else:
+            ours = stats.logistic.logpdf(x, loc[i], scale[i]).sum()
+            best = stats.logistic.logpdf(x, *stats.logistic.fit(x, loc=loc[i], scale=scale[i])).sum()  # source: scipy
+            assert ours >= best - 1e-9 * abs(best)
+
+
 def test_iteration_budget_exhausted_warns(monkeypatch):
     import fitaudit.core.noise as noise_module
 
