@@ -248,7 +248,9 @@ def test_batched_newton_stops_at_the_maximum(name):
     """The Newton decrement stop (core/noise.py, Boyd and Vandenberghe 2004, sec. 9.5.1) ends each
     row at its maximum: scipy's own fit, started from ours, finds no higher likelihood."""
     rng = np.random.default_rng(23)
-    X = np.concatenate([rng.standard_t(5, size=(12, 400)), rng.standard_normal((12, 400)), rng.logistic(size=(12, 400))])
+    X = np.concatenate(
+        [rng.standard_t(5, size=(12, 400)), rng.standard_normal((12, 400)), rng.logistic(size=(12, 400))]
+    )
     law = get_law(name)
     loc, scale, shape = law.fit_batch(X)
     for i, x in enumerate(X):
