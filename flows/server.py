@@ -208,6 +208,12 @@ def _launch_embedded() -> tuple[subprocess.Popen, int]:
     ``python -m uvicorn --factory prefect.server.api.server:create_app`` with the ephemeral-mode
     variables, so the same services run); the listening socket is handed over with uvicorn's
     ``--fd``, so the port is known before the server runs and no other process can take it.
+
+    uvicorn wraps a handed-over descriptor as a Unix socket, so asyncio does not switch Nagle's
+    algorithm off on the connections it accepts, as it does for TCP sockets: every response
+    (headers and body written separately) then waited about 40 ms for the client's delayed
+    acknowledgement.  ``TCP_NODELAY`` is set on the listening socket instead; Linux copies it to
+    every accepted connection (:func:`_loopback_listener`).
     """
     import importlib.util
 
@@ -215,10 +221,8 @@ def _launch_embedded() -> tuple[subprocess.Popen, int]:
     if spec is None or not spec.submodule_search_locations:
         raise RuntimeError("fitaudit: Prefect is not installed (pip install prefect)")
     app_dir = str(pathlib.Path(next(iter(spec.submodule_search_locations))).parent)
-    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    sock = _loopback_listener()
     try:
-        sock.bind(("127.0.0.1", 0))
-        sock.listen(128)
         port = int(sock.getsockname()[1])
         env = {**os.environ, "PREFECT_UI_ENABLED": "0", "PREFECT__SERVER_EPHEMERAL": "1", "PREFECT__SERVER_FINAL": "1"}
         # in this command's process group, as Prefect launches it: a Ctrl-C reaches both
@@ -244,6 +248,19 @@ def _launch_embedded() -> tuple[subprocess.Popen, int]:
     finally:
         sock.close()
     return proc, port
+
+
+def _loopback_listener() -> socket.socket:
+    """A listening TCP socket on a free loopback port, with ``TCP_NODELAY`` for its connections."""
+    sock = socket.socket(socket.AF_INET, socket.SOCK_STREAM)
+    try:
+        sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+        sock.bind(("127.0.0.1", 0))
+        sock.listen(128)
+    except OSError:
+        sock.close()
+        raise
+    return sock
 
 
 def _records_dir() -> pathlib.Path:

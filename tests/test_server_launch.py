@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 import os
 import pathlib
+import socket
 import subprocess
 import sys
 import textwrap
@@ -115,3 +116,23 @@ def test_the_launched_server_answers_and_is_stopped_and_unrecorded_at_exit(tmp_p
         assert time.monotonic() < deadline, "the embedded server still runs after the command exited"
         time.sleep(0.2)
     assert not list((tmp_path / ".prefect" / "fitaudit-servers").glob("*.json"))
+
+
+def _accepted_nodelay(listener: socket.socket) -> int:
+    """TCP_NODELAY of a connection accepted as uvicorn accepts on a handed-over descriptor."""
+    wrapped = socket.fromfd(listener.fileno(), socket.AF_UNIX, socket.SOCK_STREAM)  # uvicorn's --fd wrapping
+    with wrapped, socket.create_connection(listener.getsockname()):
+        conn, _ = wrapped.accept()
+        with conn:
+            return conn.getsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY)
+
+
+def test_connections_to_the_launched_server_do_not_wait_for_acknowledgements():
+    """asyncio leaves Nagle's algorithm on for a socket it takes for a Unix socket, and each API
+    answer then waited ~40 ms for the delayed acknowledgement; the listener passes TCP_NODELAY on."""
+    with server._loopback_listener() as listener:
+        assert _accepted_nodelay(listener) != 0
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as plain:  # the same without the option: Nagle on
+        plain.bind(("127.0.0.1", 0))
+        plain.listen(1)
+        assert _accepted_nodelay(plain) == 0
