@@ -471,3 +471,24 @@ def test_the_one_json_conversion_writes_each_call_site_as_before():
         "members": {"pearson": [1.5, nan, "inf", "-inf"], "neyman": [[0.5, 3.0], ["-inf", 0.25]], "g": nan},
     }
     assert json.dumps(m) == json.dumps(expected)  # NaN written as NaN: the map's own view keeps it
+
+
+def test_the_direct_filter_call_equals_scipy_lfilter():
+    """core/_scipy.py ``lfilter`` skips scipy's argument checks; every form the models use gives
+    scipy.signal.lfilter's numbers exactly (source: scipy.signal.lfilter)."""
+    from scipy import signal
+
+    from fitaudit.core._scipy import lfilter
+
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(3, 200))
+    b = np.array([1.0, 0.4, -0.2])
+    for a in (np.array([1.0, -0.6, 0.25]), np.array([2.0, -0.6, 0.25]), np.ones(1)):
+        assert np.array_equal(lfilter(b, a, x, axis=-1), signal.lfilter(b, a, x, axis=-1))
+        assert np.array_equal(lfilter(b, a, x[1, ::-1]), signal.lfilter(b, a, x[1, ::-1]))  # a reversed view
+        assert np.array_equal(lfilter(b, a, x.T, axis=0), signal.lfilter(b, a, x.T, axis=0))
+    a = np.array([1.0, -0.6, 0.25])
+    zi = rng.normal(size=(3, 2))
+    ours, theirs = lfilter(b, a, x, axis=-1, zi=zi), signal.lfilter(b, a, x, axis=-1, zi=zi)
+    assert np.array_equal(ours[0], theirs[0]) and np.array_equal(ours[1], theirs[1])
+    assert np.array_equal(lfilter([1.0], a, x[0]), signal.lfilter([1.0], a, x[0]))  # a list: scipy's own path

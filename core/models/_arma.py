@@ -47,7 +47,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .._scipy import blas, lapack, signal
+from .._scipy import blas, lapack, lfilter
 
 __all__ = [
     "seasonal_product",
@@ -224,7 +224,7 @@ def _psi_weights(ar_poly: np.ndarray, ma_poly: np.ndarray, n: int) -> np.ndarray
         return np.array(psi)
     impulse = np.zeros(n)
     impulse[:1] = 1.0
-    return signal.lfilter(ma_poly, ar_poly, impulse)
+    return lfilter(ma_poly, ar_poly, impulse)
 
 
 def arma_autocovariance(ar_poly: np.ndarray, ma_poly: np.ndarray, nlags: int) -> np.ndarray:
@@ -435,7 +435,7 @@ def difference(x: np.ndarray, d: int, seasonal_d: int, period: int) -> np.ndarra
 
 def integrate(w: np.ndarray, d: int, seasonal_d: int, period: int) -> np.ndarray:
     """Invert ``(1 - B)^d (1 - B^s)^D`` along the last axis, taking pre-sample values as zero."""
-    return signal.lfilter([1.0], differencing_polynomial(d, seasonal_d, period), w, axis=-1)
+    return lfilter([1.0], differencing_polynomial(d, seasonal_d, period), w, axis=-1)
 
 
 def differencing_polynomial(d: int, seasonal_d: int, period: int) -> np.ndarray:
@@ -534,7 +534,7 @@ class ExactLikelihood:
         # the response to the unit initial state e_i is the impulse response g of 1/theta(B)
         # delayed by i steps (transposed direct form II), so H is Toeplitz: H[t, i] = g[t - i]
         if a[1:].any():
-            g = signal.lfilter(self._one, a, self._impulse)
+            g = lfilter(self._one, a, self._impulse)
             if abs(g[-r:]).max() < _NEGLIGIBLE:  # decayed: keep products clear of (very slow) subnormal numbers
                 g[np.abs(g) < _NEGLIGIBLE] = 0.0
             self._shifted[r:] = g
@@ -543,7 +543,7 @@ class ExactLikelihood:
         factor = _factor(initial_state_covariance(b, a, self.layout))
         out = np.empty((r + k, self.nobs))
         out[:r] = factor.T @ self._lagged  # rows g_t = R' h_t
-        out[r:] = signal.lfilter(b, a, self.rows, axis=-1)  # e0 rows
+        out[r:] = lfilter(b, a, self.rows, axis=-1)  # e0 rows
         # one Cholesky of [[M, R'H'U], [U'HR, U'U]], M = I + R'H'HR: its trailing block is the
         # Woodbury-reduced Gram matrix and its leading diagonal gives log det M
         augmented = out @ out.T
@@ -639,7 +639,7 @@ class ConditionalLikelihood:
         a = _padded(ma_poly, r + 1)
         mw, _ = state_maps(b, a, self.layout)
         zi = self._head @ mw[:, : self.pstar].T
-        return signal.lfilter(b, a, self._tail, axis=-1, zi=zi)[0]
+        return lfilter(b, a, self._tail, axis=-1, zi=zi)[0]
 
     def gram(self, ar_poly: np.ndarray, ma_poly: np.ndarray) -> np.ndarray:
         """``(k, k)`` Gram matrix of the conditional residuals of the rows."""
@@ -699,7 +699,7 @@ def css_jacobian(factors: list, ma_poly: np.ndarray, w: np.ndarray, resid: np.nd
         inputs.extend(-_lagged(base, period * j, pstar) for j in range(1, count + 1))
     if not inputs:
         return np.empty((0, m - pstar))
-    return signal.lfilter([1.0], ma_poly, np.array(inputs), axis=-1)
+    return lfilter([1.0], ma_poly, np.array(inputs), axis=-1)
 
 
 # -- innovations of the exact predictor -------------------------------------------------------
@@ -807,4 +807,4 @@ def simulate_arma(
     # state of lfilter(b=ma, a=ar, e): inputs are e, outputs are w
     m_in, m_out = state_maps(b, a, layout)
     zi = m_in @ e_past + m_out @ w_past
-    return signal.lfilter(b, a, innovations, zi=zi)[0]
+    return lfilter(b, a, innovations, zi=zi)[0]

@@ -34,7 +34,7 @@ from collections.abc import Mapping
 
 import numpy as np
 
-from .._scipy import lapack, optimize, signal
+from .._scipy import lapack, lfilter, optimize
 from .._validation import Interval, Options, validate_params
 from ..exceptions import ConvergenceWarning, InputError, SpecificationError
 from ._base import FitResult, ForecastModel, check_series, information_criteria
@@ -336,7 +336,7 @@ class ExpSmoothing(ForecastModel):
 
     def _additive_errors(self, y: np.ndarray, row: np.ndarray) -> np.ndarray:
         num, den = self._additive_filter(self._smoothing_values(row))
-        return signal.lfilter(num, den, y - self._deterministic_path(row, y.size))
+        return lfilter(num, den, y - self._deterministic_path(row, y.size))
 
     def _multiplicative_errors(self, y: np.ndarray, P: np.ndarray) -> np.ndarray:
         """One-step errors of a (B, d) batch of parameter vectors, shape (B, n); see the module notes.
@@ -752,7 +752,7 @@ class ExpSmoothing(ForecastModel):
         row = vec[:-1]
         if self.seasonal != "mul":
             num, den = self._additive_filter(self._smoothing_values(row))
-            return self._deterministic_path(row, n) + signal.lfilter(den, num, e)
+            return self._deterministic_path(row, n) + lfilter(den, num, e)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             y = self._simulate_multiplicative(row, e)
         if not np.isfinite(y).all():
@@ -942,7 +942,7 @@ class _AdditiveProfile:
         """(SSE, states, parts) at smoothing parameters ``theta`` (param order), centred and scaled units."""
         num, den, D = self._polynomials(theta)
         self.inputs[0] = self.lag_y @ num
-        F = signal.lfilter(self.one, den, self.inputs, axis=-1)
+        F = lfilter(self.one, den, self.inputs, axis=-1)
         r, h = F
         if not (math.isfinite(r[-1]) and math.isfinite(h[-1])):  # an overflow propagates to the last term
             return np.inf, np.zeros(self.n_states), None
@@ -986,7 +986,7 @@ class _AdditiveProfile:
         if parts is None or not np.isfinite(sse):
             return np.inf, np.zeros(len(theta))
         num, den, D, h, M, e, Tn = parts
-        a = signal.lfilter(self.one, den, e[::-1])[::-1]  # den^-T e
+        a = lfilter(self.one, den, e[::-1])[::-1]  # den^-T e
         self.padded[: self.n] = a
         self.padded[self.n :] = 0.0
         c_e = np.correlate(self.padded[: self.n + self.Lq], e, "valid")  # sum_t a[t + j] e[t], j < L
@@ -1034,7 +1034,7 @@ class _AdditiveProfile:
                 i = self.index["phi"]
                 rows[i] += np.convolve(self.basis[1], self.y)[: self.n]
                 rows[i, : self.Lq] -= self._dq_states(theta, Tn, D, states)
-            J = signal.lfilter([1.0], den, rows, axis=-1).T
+            J = lfilter([1.0], den, rows, axis=-1).T
         return J * self.scale, -M
 
     def _lag_products(self, H: np.ndarray, R: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -1066,7 +1066,7 @@ class _AdditiveProfile:
         with np.errstate(over="ignore", invalid="ignore"):
             for b in range(B):  # scipy filters one coefficient set per call
                 self.inputs[0] = U[b]
-                R[b], H[b, Lq:] = signal.lfilter(self.one, den[b], self.inputs, axis=-1)
+                R[b], H[b, Lq:] = lfilter(self.one, den[b], self.inputs, axis=-1)
             finite = np.isfinite(R[:, -1]) & np.isfinite(H[:, -1])  # an overflow propagates to the last term
             R[~finite] = 0.0
             H[~finite] = 0.0
