@@ -29,6 +29,7 @@ workers, with nothing else to do.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
 import json
 import os
@@ -108,10 +109,11 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
     _env.configure_prefect()
     clock = WorkClock()
     t0 = time.perf_counter()
-    # as `fitaudit run` does: the embedded server launched first, the flow's imports while it starts
-    from fitaudit.flows.server import start_embedded_server
+    # as `fitaudit run` does: the embedded server launched first, the flow's imports while it starts,
+    # and its runs without heartbeats (a configured server, as for the Dask runs, keeps Prefect's settings)
+    from fitaudit.flows.server import embedded_run_settings, start_embedded_server
 
-    start_embedded_server(lambda: _patch_work_functions(clock))
+    embedded = start_embedded_server(lambda: _patch_work_functions(clock)) is not None
     from prefect.client.orchestration import get_client
 
     from fitaudit.flows.audit import audit_flow
@@ -133,7 +135,8 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
     with get_client(sync_client=True) as client:  # the first answer of the embedded server (or the real one)
         client.hello()
     t1 = time.perf_counter()
-    result = flow_fn(registry=registry, as_of=AS_OF, archive=archive, models=models)
+    with embedded_run_settings() if embedded else contextlib.nullcontext():
+        result = flow_fn(registry=registry, as_of=AS_OF, archive=archive, models=models)
     t2 = time.perf_counter()
     work = clock.covered(t1, t2)
     manifest = pathlib.Path(result["report"]).parent / "manifest.json"

@@ -23,7 +23,7 @@ from __future__ import annotations
 import datetime as dt
 import pathlib
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from prefect import task
@@ -100,6 +100,20 @@ def report_url(path: str | None, archive: str | None, base_url: str = "") -> str
     return page.resolve().as_uri() if page.is_absolute() else f"file://{path}"
 
 
+def _model_urls(report_path: str | None, archive: str | None, base_url: str = "") -> Callable[[str], str | None]:
+    """``safe_id -> report_url(<run folder>/models/<safe_id>.html, archive, base_url)``, the folder
+    resolved once per run rather than once per page (a safe id is a plain file name: no separator,
+    nothing a URI escapes).
+
+    >>> _model_urls("/srv/archive/runs/2026/r1/index.html", "/srv/archive", "https://audit.example")("m-1")
+    'https://audit.example/runs/2026/r1/models/m-1.html'
+    """
+    if not report_path:
+        return lambda safe_id: None
+    models = report_url(str(pathlib.Path(report_path).parent / "models"), archive, base_url)
+    return lambda safe_id: f"{models}/{safe_id}.html"
+
+
 def artifact_key(*parts: str) -> str:
     """A Prefect artifact key (``^[a-z0-9-]*$``) built from ``parts``."""
     text = "-".join(parts).lower()
@@ -120,13 +134,13 @@ def emit_verdict_events(records: Sequence[Mapping[str, Any]], run: Mapping[str, 
 
     count = 0
     base = run.get("report_base_url") or ""
-    folder = pathlib.Path(run["report_path"]).parent if run.get("report_path") else None
+    report = report_url(run.get("report_path"), run.get("archive"), base)
+    model_url = _model_urls(run.get("report_path"), run.get("archive"), base)
     for rec in records:
         audit = rec.get("audit") or {}
         deciding = audit.get("production") or audit.get("refit") or {}
         kind = "forecasts" if is_forecast_record(rec) else "model"
         action = record_action(rec, run.get("policy"), run["as_of"])
-        page = str(folder / "models" / f"{rec['safe_id']}.html") if folder is not None else None
         emit_event(
             event=verdict_event_name(rec["verdict"]),
             resource={
@@ -153,8 +167,8 @@ def emit_verdict_events(records: Sequence[Mapping[str, Any]], run: Mapping[str, 
                 "owner": str(rec.get("owner") or ""),
                 "action": action["action"],
                 "due": action["due"],
-                "model_url": report_url(page, run.get("archive"), base),
-                "report_url": report_url(run.get("report_path"), run.get("archive"), base),
+                "model_url": model_url(rec["safe_id"]),
+                "report_url": report,
             },
         )
         count += 1

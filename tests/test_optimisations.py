@@ -492,3 +492,24 @@ def test_the_direct_filter_call_equals_scipy_lfilter():
     ours, theirs = lfilter(b, a, x, axis=-1, zi=zi), signal.lfilter(b, a, x, axis=-1, zi=zi)
     assert np.array_equal(ours[0], theirs[0]) and np.array_equal(ours[1], theirs[1])
     assert np.array_equal(lfilter([1.0], a, x[0]), signal.lfilter([1.0], a, x[0]))  # a list: scipy's own path
+
+
+@pytest.mark.parametrize("base_url", ["", "https://audit.example/fitaudit/"])
+def test_model_links_built_once_per_run_equal_report_url_per_page(tmp_path, base_url):
+    """tasks/events.py resolves the run's models folder once for the verdict events' links; each
+    link equals report_url of the page itself (source: tasks/events.py report_url), also when the
+    archive is reached through a symbolic link."""
+    from fitaudit.tasks.events import _model_urls, report_url
+
+    real = tmp_path / "real-archive"
+    (real / "runs" / "r1" / "models").mkdir(parents=True)
+    (real / "runs" / "r1" / "models" / "m-1.html").write_text("page")
+    linked = tmp_path / "archive"
+    linked.symlink_to(real, target_is_directory=True)
+    for archive in (real, linked):
+        report = archive / "runs" / "r1" / "index.html"
+        links = _model_urls(str(report), str(archive), base_url)
+        for safe_id in ("m-1", "demand_d.07", "not-written-yet"):
+            page = report.parent / "models" / f"{safe_id}.html"
+            assert links(safe_id) == report_url(str(page), str(archive), base_url)
+    assert _model_urls(None, str(real), base_url)("m-1") is None

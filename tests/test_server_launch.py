@@ -136,3 +136,27 @@ def test_connections_to_the_launched_server_do_not_wait_for_acknowledgements():
         plain.bind(("127.0.0.1", 0))
         plain.listen(1)
         assert _accepted_nodelay(plain) == 0
+
+
+def test_runs_on_the_embedded_server_send_no_heartbeats_a_users_server_keeps_them(monkeypatch):
+    """flows/server.py embedded_run_settings: Prefect's heartbeat thread made every run's end wait
+    up to a second; only runs on the command's own embedded server go without it."""
+    import argparse
+
+    from prefect.settings import get_current_settings
+
+    from fitaudit.flows import cli
+
+    default = get_current_settings().flows.heartbeat_frequency
+    assert default is not None  # Prefect 3 sends heartbeats by default
+    args = argparse.Namespace(start_server=False, dask=None)
+    monkeypatch.delenv("PREFECT_API_URL", raising=False)
+    monkeypatch.setattr(server, "start_embedded_server", lambda prepare=None: "http://127.0.0.1:1/api")
+    with cli._server_if_needed(args, "fitaudit.flows.audit") as url:
+        assert url == "http://127.0.0.1:1/api"
+        assert get_current_settings().flows.heartbeat_frequency is None
+    assert get_current_settings().flows.heartbeat_frequency == default
+    monkeypatch.setenv("PREFECT_API_URL", "http://127.0.0.1:4200/api")  # a server of the user's
+    with cli._server_if_needed(args, "fitaudit.flows.audit") as url:
+        assert url == "http://127.0.0.1:4200/api"
+        assert get_current_settings().flows.heartbeat_frequency == default
