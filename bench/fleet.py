@@ -29,7 +29,6 @@ workers, with nothing else to do.
 from __future__ import annotations
 
 import argparse
-import contextlib
 import importlib
 import json
 import os
@@ -111,33 +110,32 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
     t0 = time.perf_counter()
     # as `fitaudit run` does: the embedded server launched first, the flow's imports while it starts,
     # and its runs without heartbeats (a configured server, as for the Dask runs, keeps Prefect's settings)
-    from fitaudit.flows.server import embedded_run_settings, start_embedded_server
+    from fitaudit.flows.server import embedded_server
 
-    embedded = start_embedded_server(lambda: _patch_work_functions(clock)) is not None
-    from prefect.client.orchestration import get_client
+    with embedded_server(lambda: _patch_work_functions(clock)):
+        from prefect.client.orchestration import get_client
 
-    from fitaudit.flows.audit import audit_flow
+        from fitaudit.flows.audit import audit_flow
 
-    flow_fn = audit_flow
-    if dask_workers:
-        from prefect_dask import DaskTaskRunner
+        flow_fn = audit_flow
+        if dask_workers:
+            from prefect_dask import DaskTaskRunner
 
-        runner = DaskTaskRunner(
-            cluster_class="distributed.LocalCluster",
-            cluster_kwargs={
-                "n_workers": dask_workers,
-                "threads_per_worker": 1,
-                "processes": True,
-                "dashboard_address": None,
-            },
-        )
-        flow_fn = audit_flow.with_options(task_runner=runner)
-    with get_client(sync_client=True) as client:  # the first answer of the embedded server (or the real one)
-        client.hello()
-    t1 = time.perf_counter()
-    with embedded_run_settings() if embedded else contextlib.nullcontext():
+            runner = DaskTaskRunner(
+                cluster_class="distributed.LocalCluster",
+                cluster_kwargs={
+                    "n_workers": dask_workers,
+                    "threads_per_worker": 1,
+                    "processes": True,
+                    "dashboard_address": None,
+                },
+            )
+            flow_fn = audit_flow.with_options(task_runner=runner)
+        with get_client(sync_client=True) as client:  # the first answer of the embedded server (or the real one)
+            client.hello()
+        t1 = time.perf_counter()
         result = flow_fn(registry=registry, as_of=AS_OF, archive=archive, models=models)
-    t2 = time.perf_counter()
+        t2 = time.perf_counter()
     work = clock.covered(t1, t2)
     manifest = pathlib.Path(result["report"]).parent / "manifest.json"
     return {

@@ -245,17 +245,13 @@ def _server_if_needed(args: argparse.Namespace, flow_module: str):
             print(f"fitaudit: started a local Prefect server at {url} (log {log})", file=sys.stderr)
             yield url
     else:
-        from .server import embedded_run_settings, start_embedded_server
+        from .server import embedded_server
 
         if os.environ.get("PREFECT_API_URL"):  # a server of the user's
             yield os.environ["PREFECT_API_URL"]
             return
         # started now rather than by the first flow, so that it is recorded and can be reaped after a SIGKILL
-        url = start_embedded_server(lambda: importlib.import_module(flow_module))
-        if url is None:  # Prefect's settings name another server (a profile) or disable the embedded one
-            yield None
-            return
-        with embedded_run_settings():
+        with embedded_server(lambda: importlib.import_module(flow_module)) as url:
             yield url
 
 

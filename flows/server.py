@@ -36,7 +36,7 @@ __all__ = [
     "free_port",
     "wait_healthy",
     "start_embedded_server",
-    "embedded_run_settings",
+    "embedded_server",
     "reap_stale_servers",
     "tracked_servers",
 ]
@@ -177,8 +177,9 @@ def start_embedded_server(prepare: Callable[[], object] | None = None) -> str | 
 
 
 @contextlib.contextmanager
-def embedded_run_settings() -> Iterator[None]:
-    """Prefect settings for the flow runs of a command on its embedded server: no run heartbeats.
+def embedded_server(prepare: Callable[[], object] | None = None) -> Iterator[str | None]:
+    """:func:`start_embedded_server`, the command's flow runs on it made without run heartbeats;
+    yields its API URL (None: nothing started, Prefect's settings apply unchanged).
 
     Prefect 3 sends a heartbeat event for each flow run (every 180 s by default) from a thread, so
     that a server's automation can mark a run whose process died as crashed.  The embedded server
@@ -187,10 +188,14 @@ def embedded_run_settings() -> Iterator[None]:
     only between one-second sleeps (0.5 s on average at the end of an audit run, measured).  A
     server of the user's keeps Prefect's setting.
     """
+    url = start_embedded_server(prepare)
+    if url is None:
+        yield None
+        return
     from prefect.settings import temporary_settings
 
     with temporary_settings(updates={"flows.heartbeat_frequency": None}):
-        yield
+        yield url
 
 
 #: Prefect's setting for how long to wait for the embedded server (fitaudit's default in ``QUIET_SETTINGS``).

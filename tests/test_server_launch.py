@@ -139,7 +139,7 @@ def test_connections_to_the_launched_server_do_not_wait_for_acknowledgements():
 
 
 def test_runs_on_the_embedded_server_send_no_heartbeats_a_users_server_keeps_them(monkeypatch):
-    """flows/server.py embedded_run_settings: Prefect's heartbeat thread made every run's end wait
+    """flows/server.py embedded_server: Prefect's heartbeat thread made every run's end wait
     up to a second; only runs on the command's own embedded server go without it."""
     import argparse
 
