@@ -46,16 +46,26 @@ def json_ready(obj: Any) -> Any:
     return plain_data(obj, nan="nan", strict=True)
 
 
-def canonical_json(obj: Any, indent: int | None = None) -> bytes:
-    """Deterministic UTF-8 JSON: sorted keys, no NaN, fixed separators (hash input)."""
-    text = json.dumps(
-        json_ready(obj),
-        sort_keys=True,
-        ensure_ascii=False,
-        allow_nan=False,
-        indent=indent,
-        separators=(",", ":") if indent is None else (",", ": "),
-    )
+def canonical_json(obj: Any, indent: int | None = None, *, parsed: bool = False) -> bytes:
+    """Deterministic UTF-8 JSON: sorted keys, no NaN, fixed separators (hash input).
+
+    ``parsed=True`` says ``obj`` came from ``json.loads`` (only dicts, lists, strings, numbers,
+    booleans and None): the conversion by :func:`json_ready` is skipped unless a non-finite float
+    needs it, with the same bytes as a result (the chain check writes every line back this way).
+    """
+    options = {
+        "sort_keys": True,
+        "ensure_ascii": False,
+        "allow_nan": False,
+        "indent": indent,
+        "separators": (",", ":") if indent is None else (",", ": "),
+    }
+    try:
+        text = json.dumps(obj, **options) if parsed else None
+    except ValueError:  # NaN or infinity: json_ready turns them into strings
+        text = None
+    if text is None:
+        text = json.dumps(json_ready(obj), **options)
     return text.encode("utf-8") + (b"\n" if indent is not None else b"")
 
 

@@ -355,6 +355,49 @@ def test_read_chain_and_changes_refuse_a_damaged_chain(populated):
         archive.record_signoff(root, "20260112-T220000Z-cccc", name="x", role="y")
 
 
+CHAIN_TAMPERING = [case for case, (_, kind, _) in TAMPERING.items() if kind == "chain"]
+
+
+@pytest.mark.parametrize("case", CHAIN_TAMPERING)
+def test_remembered_chain_check_equals_a_full_check(populated, case):
+    """The process remembers the chain lines it checked (tasks/archive/chain.py _CHECKED) and parses
+    only lines added after them; a change to a remembered line must still be found, and every
+    result must equal a check from scratch."""
+    from fitaudit.tasks.archive.chain import _load_chain
+
+    root, runs = populated
+    assert archive.read_chain(root)  # fills the memo
+    TAMPERING[case][0](root, runs)
+    remembered, fresh = _load_chain(root), _load_chain(root, fresh=True)
+    assert (remembered.problems or remembered.torn) and remembered == fresh
+    with pytest.raises(ArchiveError, match="chain"):
+        archive.read_chain(root)
+
+
+def test_remembered_chain_check_follows_appends_and_acknowledged_damage(populated):
+    from fitaudit.tasks.archive.chain import _load_chain
+
+    root, runs = populated
+    archive.read_chain(root)
+    _publish(root, "20260119-T220000Z-dddd", dt.date(2026, 1, 19))  # appended after the remembered lines
+    assert _load_chain(root) == _load_chain(root, fresh=True)
+    lines = _chain_lines(root)
+    _set_chain_lines(root, lines[:2] + [b'{"not": "an entry"}\n'] + lines[2:])  # damage, then acknowledge it
+    archive.acknowledge_damage(root, by="Records officer", note="line inserted by a faulty copy script")
+    archive.record_signoff(root, runs["new"].run_id, name="A. Reviewer", role="model validator")
+    remembered = _load_chain(root)
+    assert remembered == _load_chain(root, fresh=True)
+    assert [p.where for p in remembered.problems][:1] == ["chain.jsonl line 3"]
+
+
+def test_read_chain_returns_the_callers_own_entries(populated):
+    root, _ = populated
+    first = archive.read_chain(root)
+    first[0]["payload"]["run_id"] = "changed by the caller"
+    assert archive.read_chain(root)[0]["payload"]["run_id"] != "changed by the caller"
+    assert archive.verify_archive(root) == []
+
+
 # ------------------------------------------------------------------------------------------
 # writer rules and path safety
 

@@ -11,6 +11,7 @@ windows) through ``audit_series``: it never raises and always gives a valid verd
 
 from __future__ import annotations
 
+import json
 import math
 import re
 
@@ -274,3 +275,22 @@ def test_random_finite_series_always_get_a_verdict(kind, n, seed, exponent, spec
         check = result.deciding_check
         assert check.ok and math.isfinite(check.p_value) and 0.0 <= check.p_value <= 1.0
     canonical_json(result.to_dict())
+
+
+# ------------------------------------------------------------------------------------------
+# canonical JSON: the shortcut for parsed JSON writes the same bytes
+# ------------------------------------------------------------------------------------------
+_json_values = st.recursive(
+    st.none() | st.booleans() | st.integers() | st.floats() | st.text(),
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=6), inner, max_size=4),
+    max_leaves=20,
+)
+
+
+@settings(max_examples=300, deadline=None)
+@given(value=_json_values, indent=st.sampled_from([None, 2]))
+def test_canonical_json_of_parsed_json_skips_nothing_that_matters(value, indent):
+    """``canonical_json(..., parsed=True)`` (the chain check's shortcut) equals the full conversion,
+    non-finite floats (which ``json.loads`` accepts as NaN and Infinity) included."""
+    parsed = json.loads(json.dumps(value))
+    assert canonical_json(parsed, indent, parsed=True) == canonical_json(parsed, indent)

@@ -3,6 +3,7 @@ damage its ``acknowledgement`` entries record."""
 
 from __future__ import annotations
 
+import copy
 import dataclasses
 import json
 import os
@@ -30,23 +31,50 @@ class _Chain:
     last_hash: str | None = None  # the hash the next line's prev must equal (None: not checked)
 
 
-def _entry_hash(entry: dict) -> str:
-    return sha256_bytes(canonical_json({k: v for k, v in entry.items() if k != "hash"}))
+def _entry_hash(entry: dict, *, parsed: bool = False) -> str:
+    return sha256_bytes(canonical_json({k: v for k, v in entry.items() if k != "hash"}, parsed=parsed))
 
 
-def _load_chain(root: pathlib.Path) -> _Chain:
+#: The last chain checked in this process, per chain file, cut after its last complete line.  A
+#: line's check depends only on its own bytes and the hash of the well-formed line before it, so
+#: when the file still starts with exactly these bytes (one memory comparison) only the lines after
+#: them are parsed; any other change to the file means a full check.  Without it every append
+#: re-read the whole chain (10,000 promotions in one process: quadratic, most of an hour).
+_CHECKED: dict[str, _Chain] = {}
+_CHECKED_MAX = 8  # archives remembered; the oldest is dropped beyond this
+
+
+def _load_chain(root: pathlib.Path, *, fresh: bool = False) -> _Chain:
+    """chain.jsonl read and checked line by line (``fresh``: without the memo of lines already checked)."""
     path = root / _CHAIN
     data = path.read_bytes() if path.exists() else b""
-    lines = data.split(b"\n")
-    torn = lines.pop()
+    complete = data[: data.rfind(b"\n") + 1]
+    known = None if fresh else _CHECKED.get(str(path))
+    if known is None or not complete.startswith(known.data):
+        known = _Chain((), (), b"", b"", GENESIS)
+    new = _check_lines(complete[len(known.data) :], known.data.count(b"\n") + 1, known.last_hash)
+    checked = _Chain(known.entries + new.entries, known.problems + new.problems, complete, b"", new.last_hash)
+    if not fresh:
+        _CHECKED.pop(str(path), None)
+        _CHECKED[str(path)] = checked
+        while len(_CHECKED) > _CHECKED_MAX:
+            del _CHECKED[next(iter(_CHECKED))]
+    return dataclasses.replace(checked, data=data, torn=data[len(complete) :])
+
+
+def _check_lines(block: bytes, first_line: int, expected_prev: str | None) -> _Chain:
+    """Check complete chain lines (``block`` ends with a newline) numbered from ``first_line``.
+
+    ``expected_prev`` is the hash the first line's ``prev`` must equal (None: not checked, after a
+    line that is not an entry); the result's ``last_hash`` is the one the next line's must equal.
+    """
     entries: list[tuple[int, dict]] = []
     problems: list[ArchiveProblem] = []
-    expected_prev: str | None = GENESIS
 
     def bad(line_no: int, message: str) -> None:
         problems.append(ArchiveProblem("chain", f"{_CHAIN} line {line_no}", message))
 
-    for line_no, raw in enumerate(lines, start=1):
+    for line_no, raw in enumerate(block.split(b"\n")[:-1], start=first_line):
         try:
             entry = json.loads(raw)
         except ValueError:
@@ -57,9 +85,9 @@ def _load_chain(root: pathlib.Path) -> _Chain:
             bad(line_no, f"is not a chain entry (expected exactly the keys {sorted(_ENTRY_KEYS)})")
             expected_prev = None
             continue
-        if canonical_json(entry) != raw:
+        if canonical_json(entry, parsed=True) != raw:
             bad(line_no, "is not in canonical form (line edited)")
-        if entry["hash"] != _entry_hash(entry):
+        if entry["hash"] != _entry_hash(entry, parsed=True):
             bad(line_no, "hash does not match the entry's content (line edited)")
         if entry["seq"] != line_no:
             bad(line_no, f"has seq {entry['seq']!r} but is line {line_no} (lines dropped, duplicated or reordered)")
@@ -73,7 +101,7 @@ def _load_chain(root: pathlib.Path) -> _Chain:
         else:
             entries.append((line_no, entry))
         expected_prev = entry["hash"] if isinstance(entry["hash"], str) else None
-    return _Chain(tuple(entries), tuple(problems), data, torn, expected_prev)
+    return _Chain(tuple(entries), tuple(problems), block, b"", expected_prev)
 
 
 @dataclasses.dataclass
@@ -272,7 +300,7 @@ def append_chain(archive_root: str | os.PathLike, kind: str, payload: dict) -> d
                 payload["path"],
                 payload["sha256"],
             ):
-                return entry
+                return copy.deepcopy(entry)  # the caller's own: the checked chain is remembered (_CHECKED)
         return _append_locked(root, kind, payload)
 
 
@@ -286,7 +314,7 @@ def read_chain(archive_root: str | os.PathLike) -> list[dict]:
     """
     root = _root(archive_root)
     with _archive_lock(root, shared=True):
-        return [entry for _, entry in _intact_chain(root).entries]
+        return copy.deepcopy([entry for _, entry in _intact_chain(root).entries])  # the caller's own (_CHECKED)
 
 
 _HEAD = re.compile(r"^\s*(?:head:\s*)?(?P<hash>[0-9a-fA-F]{64})\s*(?:\(\s*seq\s+(?P<seq>[0-9]+)\s*\))?\s*$")

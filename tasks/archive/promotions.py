@@ -27,18 +27,28 @@ from .lock import _archive_lock
 from .problems import ArchiveError, ArchiveProblem
 
 
-def _recorded_promotions(chain: _Chain, acks: _Acks) -> dict[str, tuple[str, int]]:
+def _recorded_promotions(chain: _Chain, acks: _Acks, model_id: str | None = None) -> dict[str, tuple[str, int]]:
     """``params path -> (sha256, line)`` of every promotion the chain records, oldest first.
 
     Promotion entries on undamaged lines and promoted versions recorded by an acknowledgement; a
-    path recorded again moves to the end (it is newer).
+    path recorded again moves to the end (it is newer).  ``model_id``: that model's only.
     """
     damaged = {_line_of(p) for p in chain.problems}
-    items = [(line, e["payload"]) for line, e in chain.entries if e["kind"] == "promotion" and line not in damaged]
+    folder = f"{_PARAMS}/{model_id}/" if model_id is not None else ""
+    items = [
+        (line, e["payload"])
+        for line, e in chain.entries
+        if e["kind"] == "promotion" and line not in damaged and str(e["payload"].get("path")).startswith(folder)
+    ]
     out: dict[str, tuple[str, int]] = {}
     for line, payload in sorted(items + acks.promotions, key=lambda item: item[0]):
         path, digest = payload.get("path"), payload.get("sha256")
-        if isinstance(path, str) and isinstance(digest, str) and _PARAMS_PATH.fullmatch(path):
+        if (
+            isinstance(path, str)
+            and isinstance(digest, str)
+            and path.startswith(folder)
+            and _PARAMS_PATH.fullmatch(path)
+        ):
             out.pop(path, None)
             out[path] = (digest, line)
     return out
@@ -81,7 +91,10 @@ def _check_promotion_records(
 def _production_locked(
     root: pathlib.Path, recorded: dict[str, tuple[str, int]], pending: set[str], model_id: str
 ) -> tuple[ParameterVersion | None, str | None]:
-    """(production version, None) or (None, why it cannot be used); the caller holds a lock."""
+    """(production version, None) or (None, why it cannot be used); the caller holds a lock.
+
+    ``recorded``: the recorded promotions (:func:`_recorded_promotions`), of this model or more.
+    """
     try:
         versions = list_versions(root, model_id)
     except ParameterStoreError as exc:
@@ -164,11 +177,13 @@ def production_snapshot(archive_root: str | os.PathLike, model_ids) -> Productio
         return ProductionSnapshot({m: None for m in ids}, {}, 0, None)
     with _archive_lock(root, shared=True):
         chain = _intact_chain(root)
-        recorded = _recorded_promotions(chain, _acknowledgements(chain))
+        by_model: dict[str, dict[str, tuple[str, int]]] = {}  # one pass, not one per model
+        for path, record in _recorded_promotions(chain, _acknowledgements(chain)).items():
+            by_model.setdefault(path.split("/")[1], {})[path] = record
         pending = set(_read_journals(root, []).promotions)
         versions, errors = {}, {}
         for model_id in ids:
-            version, error = _production_locked(root, recorded, pending, model_id)
+            version, error = _production_locked(root, by_model.get(model_id, {}), pending, model_id)
             versions[model_id] = version
             if error:
                 errors[model_id] = error
@@ -214,7 +229,7 @@ def record_promotion(
         for journal_path in sorted((root / _JOURNAL).glob(f"{_PROMOTION_PREFIX}*.json")):
             _recover_promotion(root, journal_path)
             chain = _intact_chain(root)
-        recorded = _recorded_promotions(chain, _acknowledgements(chain))
+        recorded = _recorded_promotions(chain, _acknowledgements(chain), model_id)
         current, _ = _production_locked(root, recorded, set(), model_id)
         fields = promotion_fields(root, model_id, version, approved_by=approved_by, note=note, current=current)
         journal = f"{_PROMOTION_PREFIX}{model_id}.json"

@@ -147,7 +147,7 @@ def verify_archive(
 def _verify_locked(root: pathlib.Path, head: tuple[str, int | None] | None = None) -> list[ArchiveProblem]:
     """Every problem and note of :func:`verify_archive`, acknowledged ones marked; the caller holds a lock."""
     problems: list[ArchiveProblem] = []
-    chain = _load_chain(root)
+    chain = _load_chain(root, fresh=True)  # verify reads every line, whatever this process checked before
     problems += chain.problems
     journals = _read_journals(root, problems)
     unjournaled = [f for f in (root / _RUNS).glob("*/*") if _rel(root, f) not in journals.runs]
