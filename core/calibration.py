@@ -39,7 +39,7 @@ import numpy as np
 from ._scipy import stats
 from .cells import CountsBelow, boundary_union, cell_counts, number_of_cells
 from .diagnostics import chi2_sf
-from .divergence import divergence_map
+from .divergence import divergence_map, partition_statistics
 from .exceptions import FitauditError, InputError
 from .models import as_model
 from .noise import as_noise_law
@@ -124,11 +124,10 @@ class Gate:
         (or for rows known by their counts below every partition's boundaries)."""
         ua, ia = np.unique(self.alphas, return_inverse=True)
         ub, ib = np.unique(self.betas, return_inverse=True)
-        out = []
-        for part in self.partitions:
-            grid = divergence_map(part.counts(u), part.probs, ua, ub, self.scaling, self.r, members=False).statistic
-            out.append(grid[..., ia, ib])
-        return np.stack(out, axis=-2)
+        counts = np.concatenate([part.counts(u) for part in self.partitions], axis=-1)
+        probs = np.concatenate([part.probs for part in self.partitions])
+        sizes = [part.s for part in self.partitions]
+        return partition_statistics(counts, probs, sizes, ua, ub, self.scaling, self.r)[..., ia, ib]
 
 
 @dataclass(frozen=True)

@@ -57,6 +57,7 @@ __all__ = [
     "power_generator",
     "scaled_bregman",
     "divergence_map",
+    "partition_statistics",
     "empty_cell_factor",
     "zero_model_cell_factor",
 ]
@@ -607,23 +608,39 @@ def _grid_terms(u, qs, pos, alphas: np.ndarray, betas: np.ndarray, scaling: str,
 
 
 @_quiet
-def _grid_sums(p: np.ndarray, q: np.ndarray, alphas: np.ndarray, betas: np.ndarray, scaling: str, r) -> np.ndarray:
+def _grid_sums(
+    p: np.ndarray,
+    q: np.ndarray,
+    alphas: np.ndarray,
+    betas: np.ndarray,
+    scaling: str,
+    r,
+    sizes: tuple[int, ...] | None = None,
+) -> np.ndarray:
     """B over the (alpha, beta) grid for rows p (N, s) and q (N, s) or (s,): shape (N, A, B).
 
     The terms of the sums come from :func:`_grid_terms`.  A term depends only on its cell's
     ``(p, q)``, and many rows of counts (a null table's 2,000 rows of 28 cells) hold few distinct
     cells (about a hundred), so from :data:`_DISTINCT_FROM` cells on the terms are computed once
     per distinct cell and gathered: the same values, summed in the same order.
+
+    With ``sizes`` the cells are consecutive groups of these sizes, each a distribution of its own
+    (the partitions of a gate, scored in one pass): the result is (N, len(sizes), A, B), each
+    group's sums the values a call with that group's cells alone gives (tests/test_divergence.py).
     """
     N, s = p.shape
-    B = betas.size  # shapes below: N rows, A alphas, B betas, s cells
+    B = betas.size  # shapes below: N rows, G groups, A alphas, B betas, s cells
+    ends = np.cumsum(sizes if sizes is not None else (s,)).tolist()
+    groups = list(zip([0, *ends[:-1]], ends))
     q2 = np.broadcast_to(q, p.shape)
     pos = (p > 0) & (q2 > 0)
+
     with np.errstate(divide="ignore", invalid="ignore"):
         qs = np.where(pos, q2, 1.0)
         u = np.where(pos, _log_ratio(np.where(pos, p, 1.0), qs), 0.0)  # (N, s)
         if u.size < _DISTINCT_FROM:
-            total = _grid_terms(u, qs, pos, alphas, betas, scaling, r).sum(axis=-1)
+            terms = _grid_terms(u, qs, pos, alphas, betas, scaling, r)  # (N, A, B, s) or (N, A, s)
+            total = np.stack([terms[..., lo:hi].sum(axis=-1) for lo, hi in groups], axis=1)  # (N, G, A, B) or (N, G, A)
         else:
             _, iu = np.unique(u, return_inverse=True)
             q_values, iq = np.unique(qs, return_inverse=True)
@@ -631,29 +648,35 @@ def _grid_sums(p: np.ndarray, q: np.ndarray, alphas: np.ndarray, betas: np.ndarr
             _, first, where = np.unique(key, return_index=True, return_inverse=True)
             cells = [a.ravel()[first][None, :] for a in (u, qs, pos)]
             terms = _grid_terms(*cells, alphas, betas, scaling, r)[0]  # (A, B, K) or (A, K)
-            total = np.moveaxis(terms[..., where.reshape(u.shape)].sum(axis=-1), -1, 0)
-        if total.ndim == 2:  # model, data, unit: the same for every beta
-            total = total[:, :, None] * np.ones(B)
+            gathered = terms[..., where.reshape(u.shape)]  # (A, B, N, s) or (A, N, s)
+            total = np.stack([np.moveaxis(gathered[..., lo:hi].sum(axis=-1), -1, 0) for lo, hi in groups], axis=1)
+        if total.ndim == 3:  # model, data, unit: the same for every beta
+            total = total[..., None] * np.ones(B)
         # empty cells: f0 * q (unit: f0 * q^alpha)
         emp = (p == 0) & (q2 > 0)
         if emp.any():
             f0 = empty_cell_factor(alphas[:, None], betas[None, :], scaling, r)  # (A, B)
-            if scaling == "unit":
-                w = (np.where(emp, q2, 0.0)[:, None, :] ** alphas[None, :, None]).sum(-1)  # (N, A)
-                w = np.where(emp.any(-1)[:, None], w, 0.0)[:, :, None]
-            else:
-                w = np.where(emp, q2, 0.0).sum(-1)[:, None, None]
-            total = total + np.where(w > 0, f0[None] * w, 0.0)
+            total = total + _missing_cells(emp, q2, f0, alphas, scaling, groups)
         imp = (q2 == 0) & (p > 0)
         if imp.any():
             g0 = zero_model_cell_factor(alphas[:, None], betas[None, :], scaling, r)
-            if scaling == "unit":
-                w = (np.where(imp, p, 0.0)[:, None, :] ** alphas[None, :, None]).sum(-1)
-                w = np.where(imp.any(-1)[:, None], w, 0.0)[:, :, None]
-            else:
-                w = np.where(imp, p, 0.0).sum(-1)[:, None, None]
-            total = total + np.where(w > 0, g0[None] * w, 0.0)
-    return total
+            total = total + _missing_cells(imp, p, g0, alphas, scaling, groups)
+    return total if sizes is not None else total[:, 0]
+
+
+def _missing_cells(where: np.ndarray, mass: np.ndarray, factor: np.ndarray, alphas, scaling: str, groups) -> np.ndarray:
+    """The limits of the terms of cells with p = 0 (``mass`` q) or q = 0 (``mass`` p), per group:
+    ``factor`` times the group's mass in them (``unit``: times the sum of mass^alpha), (N, G, A, B)."""
+    out = []
+    for lo, hi in groups:
+        here, m = where[:, lo:hi], np.where(where, mass, 0.0)[:, lo:hi]
+        if scaling == "unit":
+            w = (m[:, None, :] ** alphas[None, :, None]).sum(-1)  # (N, A)
+            w = np.where(here.any(-1)[:, None], w, 0.0)[:, :, None]
+        else:
+            w = m.sum(-1)[:, None, None]
+        out.append(np.where(w > 0, factor[None] * w, 0.0))
+    return np.stack(out, axis=1)
 
 
 def divergence_map(
@@ -784,6 +807,59 @@ def divergence_map(
         argmax=(ai, bi),
         members=classical,
     )
+
+
+def partition_statistics(
+    counts, probs, sizes, alphas, betas, scaling: Scaling = "geometric", r: float | None = None
+) -> np.ndarray:
+    """``T = 2 n B(P_n, Q | M)`` on an (alpha, beta) grid for several partitions of the same values at once.
+
+    ``counts`` and ``probs`` hold the partitions' cells one after another (``sizes`` cells each);
+    every partition counts all ``n`` values.  Each partition's statistics equal
+    ``divergence_map(its counts, its probs, alphas, betas, scaling, r).statistic``, bit for bit
+    (tests/test_divergence.py): one pass over the grid instead of one per partition, for the
+    distribution gate (:class:`fitaudit.core.calibration.Gate`), whose inputs are built, not given.
+
+    Parameters
+    ----------
+    counts : array_like, shape (S,) or (N, S)
+        Cell counts of the partitions, ``S = sum(sizes)``.
+    probs : array_like, shape (S,)
+        Model cell probabilities; each partition's sum to 1.
+    sizes : sequence of int
+        Cells of each partition, in order.
+    alphas, betas, scaling, r
+        The grid and the scaling, as for :func:`divergence_map`.
+
+    Returns
+    -------
+    ndarray, shape (len(sizes), A, B) or (N, len(sizes), A, B)
+
+    Examples
+    --------
+    Mendel's dihybrid cross on its four classes and on round against wrinkled seeds (315 + 108
+    against 101 + 32 for 3 : 1); alpha = 2 with the model scaling is Pearson's X2:
+
+    >>> counts, probs = [315, 108, 101, 32, 315 + 108, 101 + 32], [9/16, 3/16, 3/16, 1/16, 3/4, 1/4]
+    >>> t = partition_statistics(counts, probs, (4, 2), [2.0], [0.0], "model")
+    >>> [round(float(v), 6) for v in t[:, 0, 0]]  # 36/417 + 36/139 = 0.345324 for the second
+    [0.470024, 0.345324]
+    """
+    r = _check_scaling(scaling, r, "partition_statistics")
+    c = np.asarray(counts, dtype=float)
+    q = np.asarray(probs, dtype=float)
+    a, b = (np.atleast_1d(v).ravel() for v in _check_alpha_beta(alphas, betas, "partition_statistics"))
+    sizes = tuple(int(k) for k in sizes)
+    c2 = c[None, :] if c.ndim == 1 else c
+    n = c2[:, : sizes[0]].sum(axis=1)
+    p = c2 / n[:, None]
+    with np.errstate(over="ignore"):
+        stat = _chunked(
+            lambda rows: 2.0 * n[rows, None, None, None] * _grid_sums(p[rows], q, a, b, scaling, r, sizes),
+            len(n),
+            a.size * b.size * c.shape[-1],
+        )
+    return stat[0] if c.ndim == 1 else stat
 
 
 def _chunked(fn, n_rows: int, per_row: int, budget: int = 4_000_000) -> np.ndarray:

@@ -17,6 +17,7 @@ from fitaudit.core.divergence import (
     DEFAULT_BETAS,
     divergence_map,
     empty_cell_factor,
+    partition_statistics,
     power_generator,
     scaled_bregman,
     zero_model_cell_factor,
@@ -602,3 +603,33 @@ def test_many_rows_computed_per_distinct_cell_equal_each_row_alone(scaling, r):
     np.testing.assert_array_equal(np.isinf(batch.statistic), np.isinf(alone))
     finite = np.isfinite(alone)
     np.testing.assert_allclose(batch.statistic[finite], alone[finite], rtol=1e-12, atol=1e-12)
+
+
+# ------------------------------------------------------------------------------------------
+# several partitions in one pass (the distribution gate)
+# ------------------------------------------------------------------------------------------
+@pytest.mark.parametrize(
+    ("scaling", "r"),
+    [("geometric", None), ("power", 0.5), ("power", -1.0), ("model", None), ("data", None), ("unit", None)],
+)
+@pytest.mark.parametrize("rows", [1, 5, 400])  # 400 rows of 30 cells take the distinct-cell path (4,096 cells on), some partitions alone do not
+def test_partition_statistics_equal_one_map_per_partition_bit_for_bit(scaling, r, rows):
+    """Each partition's block equals ``divergence_map`` on that partition alone, exactly: the gate's
+    statistics and their null tables must not move when computed in one pass."""
+    rng = np.random.default_rng(7)
+    parts = [np.full(3, 1 / 3), np.full(20, 1 / 20), np.array([0.01, 0.04, 0.45, 0.45, 0.04, 0.01])]
+    probs = [*parts[:2], np.r_[parts[2][:5], 0.0, parts[2][5]]]  # a cell the model gives probability 0
+    counts = [rng.multinomial(60, q, size=rows).astype(float) for q in probs]
+    counts[1][:, 4] += counts[1][:, :4].sum(axis=1)  # empty cells (every partition still counts all 60 values)
+    counts[1][:, :4] = 0.0
+    counts[2][0, 5] = 1.0  # an observation where the model says none can be
+    counts[2][0, 2] -= 1.0
+    alphas, betas = np.array([-1.0, 0.0, 0.5, 1.0, 2.0, 3.0]), np.array([0.0, 0.25, 1.0])
+    together = partition_statistics(
+        np.concatenate(counts, axis=1), np.concatenate(probs), [len(q) for q in probs], alphas, betas, scaling, r
+    )
+    assert together.shape == (rows, 3, alphas.size, betas.size)
+    for i, (c, q) in enumerate(zip(counts, probs)):
+        alone = divergence_map(c, q, alphas, betas, scaling, r, members=False).statistic
+        np.testing.assert_array_equal(together[:, i], alone)
+    assert np.isinf(together[0, 2]).any()  # the impossible cell is infinite, as alone
