@@ -223,6 +223,33 @@ def test_interleaved_rows_and_null_keys(tmp_path):
     assert out["north"].problems == () and out["south"].problems == ()
 
 
+def test_keys_stored_as_a_dictionary_in_one_file_and_as_text_in_another(tmp_path):
+    """Rows are grouped by key codes (Arrow's dictionary encoding): a dictionary-typed key column, a
+    plain one and interleaved rows must give each series its own rows in stored order."""
+    times = np.repeat(_days("2024-01-01", 6), 2)
+    first = pa.table(
+        {
+            "district": pa.array(["north", "south"] * 6).dictionary_encode(),
+            "date": times,
+            "demand": np.arange(12.0),
+            "temp_c": np.zeros(12),
+        }
+    )
+    later = pa.table(
+        {"district": ["south", "north"] * 6, "date": times + np.timedelta64(6, "D"), "demand": 100 + np.arange(12.0)}
+    )
+    later = later.append_column("temp_c", pa.array(np.zeros(12)))
+    _write(tmp_path / "d" / "a.parquet", first)
+    _write(tmp_path / "d" / "b.parquet", later)
+    out = read_series(_source("d"), ["north", "south"], ["demand"], base_dir=tmp_path)
+    np.testing.assert_array_equal(
+        out["north"].columns["demand"], np.r_[np.arange(0.0, 12, 2), np.arange(101.0, 112, 2)]
+    )
+    np.testing.assert_array_equal(
+        out["south"].columns["demand"], np.r_[np.arange(1.0, 12, 2), np.arange(100.0, 112, 2)]
+    )
+
+
 def test_hive_partition_with_numeric_values(tmp_path):
     for key in (101, 202):
         _write(

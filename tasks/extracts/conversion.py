@@ -68,13 +68,19 @@ def _to_seconds(column: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray | None, 
     return seconds, ""
 
 
-def _to_keys(column: pa.ChunkedArray | pa.Array) -> np.ndarray:
-    """Keys as text; a null key becomes :data:`_NULL_KEY` (never a registered series)."""
+def _to_keys(column: pa.ChunkedArray | pa.Array) -> tuple[np.ndarray, list[str]]:
+    """Keys as text, dictionary-encoded by Arrow: each row's code (an index into the texts) and the
+    distinct texts; a null key becomes :data:`_NULL_KEY` (never a registered series).
+
+    Codes, not a numpy array of Python strings: grouping 730,000 rows by key then sorts small
+    integers (10 ms) instead of strings (340 ms).
+    """
     t = _plain_type(column.type)
     if pa.types.is_dictionary(column.type):
         column = column.cast(t)
     text = pc.fill_null(column.cast(pa.string()), _NULL_KEY)
-    return np.asarray(text.to_numpy(zero_copy_only=False), dtype=object)
+    encoded = (text.combine_chunks() if isinstance(text, pa.ChunkedArray) else text).dictionary_encode()
+    return encoded.indices.to_numpy(zero_copy_only=False), encoded.dictionary.to_pylist()
 
 
 def _key_values(t: pa.DataType, keys: list[str]) -> pa.Array | None:

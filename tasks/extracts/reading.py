@@ -29,7 +29,7 @@ class _Chunk:
     """Rows read from one file (or from the unified scan), normalised."""
 
     file: str  # relative path, "" for the unified scan
-    keys: np.ndarray
+    keys: tuple[np.ndarray, list[str]]  # each row's key code and the keys' texts (conversion._to_keys)
     time: np.ndarray | None
     time_kind: str
     columns: dict  # name -> float64 array, or None when the column is missing/unusable here
@@ -232,7 +232,7 @@ def _assemble(
     exogenous = set(src.exogenous)
     per_key: dict[str, list[tuple[_Chunk, np.ndarray]]] = {k: [] for k in keys}
     for chunk in chunks:
-        for key, rows in _rows_by_key(chunk.keys, keys).items():
+        for key, rows in _rows_by_key(*chunk.keys, keys).items():
             per_key[key].append((chunk, rows))
     missing = [k for k in keys if not per_key[k]]
     skipped_paths = {path for path, _ in skipped}
@@ -249,14 +249,14 @@ def _assemble(
     return out
 
 
-def _rows_by_key(chunk_keys: np.ndarray, wanted: list[str]) -> dict[str, np.ndarray]:
-    """Row positions (in stored order) of each wanted key present in a chunk."""
-    if not chunk_keys.size:
+def _rows_by_key(codes: np.ndarray, names: list[str], wanted: list[str]) -> dict[str, np.ndarray]:
+    """Row positions (in stored order) of each wanted key present in a chunk, from its rows' key
+    ``codes`` (indices into ``names``)."""
+    if not codes.size:
         return {}
-    unique, inverse = np.unique(chunk_keys, return_inverse=True)
-    order = np.argsort(inverse, kind="stable")
-    bounds = np.searchsorted(inverse[order], np.arange(unique.size + 1))
-    code = {k: i for i, k in enumerate(unique.tolist())}
+    order = np.argsort(codes, kind="stable")
+    bounds = np.searchsorted(codes[order], np.arange(len(names) + 1))
+    code = {k: i for i, k in enumerate(names)}
     return {k: order[bounds[code[k]] : bounds[code[k] + 1]] for k in wanted if k in code}
 
 
@@ -353,11 +353,11 @@ def _present_keys(loc: _Location, readable: list[_File], src: SourceEntry) -> li
         if src.key not in f.schema.names:
             continue
         try:
-            keys = _to_keys(_dataset(loc, [f.path]).to_table(columns=[src.key])[src.key])
+            _, names = _to_keys(_dataset(loc, [f.path]).to_table(columns=[src.key])[src.key])
         except (pa.ArrowException, OSError) as exc:
             loc.pass_io_error(exc)
             continue
-        found.update(k for k in keys if k != _NULL_KEY)
+        found.update(k for k in names if k != _NULL_KEY)
     return sorted(found)
 
 
