@@ -612,7 +612,8 @@ def test_many_rows_computed_per_distinct_cell_equal_each_row_alone(scaling, r):
     ("scaling", "r"),
     [("geometric", None), ("power", 0.5), ("power", -1.0), ("model", None), ("data", None), ("unit", None)],
 )
-@pytest.mark.parametrize("rows", [1, 5, 400])  # 400 rows of 30 cells take the distinct-cell path (4,096 cells on), some partitions alone do not
+# 400 rows of 30 cells take the distinct-cell path (4,096 cells on), some partitions alone do not
+@pytest.mark.parametrize("rows", [1, 5, 400])
 def test_partition_statistics_equal_one_map_per_partition_bit_for_bit(scaling, r, rows):
     """Each partition's block equals ``divergence_map`` on that partition alone, exactly: the gate's
     statistics and their null tables must not move when computed in one pass."""
