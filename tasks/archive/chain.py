@@ -9,6 +9,7 @@ import json
 import os
 import pathlib
 import re
+import threading
 
 from fitaudit.core.exceptions import InputError
 
@@ -42,6 +43,7 @@ def _entry_hash(entry: dict, *, parsed: bool = False) -> str:
 #: re-read the whole chain (10,000 promotions in one process: quadratic, most of an hour).
 _CHECKED: dict[str, _Chain] = {}
 _CHECKED_MAX = 8  # archives remembered; the oldest is dropped beyond this
+_CHECKED_LOCK = threading.Lock()  # task threads read archives under a shared lock, so at the same time
 
 
 def _load_chain(root: pathlib.Path, *, fresh: bool = False) -> _Chain:
@@ -49,16 +51,18 @@ def _load_chain(root: pathlib.Path, *, fresh: bool = False) -> _Chain:
     path = root / _CHAIN
     data = path.read_bytes() if path.exists() else b""
     complete = data[: data.rfind(b"\n") + 1]
-    known = None if fresh else _CHECKED.get(str(path))
+    with _CHECKED_LOCK:
+        known = None if fresh else _CHECKED.get(str(path))
     if known is None or not complete.startswith(known.data):
         known = _Chain((), (), b"", b"", GENESIS)
     new = _check_lines(complete[len(known.data) :], known.data.count(b"\n") + 1, known.last_hash)
     checked = _Chain(known.entries + new.entries, known.problems + new.problems, complete, b"", new.last_hash)
     if not fresh:
-        _CHECKED.pop(str(path), None)
-        _CHECKED[str(path)] = checked
-        while len(_CHECKED) > _CHECKED_MAX:
-            del _CHECKED[next(iter(_CHECKED))]
+        with _CHECKED_LOCK:
+            _CHECKED.pop(str(path), None)
+            _CHECKED[str(path)] = checked
+            while len(_CHECKED) > _CHECKED_MAX:
+                del _CHECKED[next(iter(_CHECKED))]
     return dataclasses.replace(checked, data=data, torn=data[len(complete) :])
 
 
