@@ -845,13 +845,28 @@ def partition_statistics(
     >>> [round(float(v), 6) for v in t[:, 0, 0]]  # 36/417 + 36/139 = 0.345324 for the second
     [0.470024, 0.345324]
     """
-    r = _check_scaling(scaling, r, "partition_statistics")
+    owner = "partition_statistics"
+    r = _check_scaling(scaling, r, owner)
     c = np.asarray(counts, dtype=float)
     q = np.asarray(probs, dtype=float)
-    a, b = (np.atleast_1d(v).ravel() for v in _check_alpha_beta(alphas, betas, "partition_statistics"))
+    a, b = (np.atleast_1d(v).ravel() for v in _check_alpha_beta(alphas, betas, owner))
     sizes = tuple(int(k) for k in sizes)
+    if c.ndim not in (1, 2) or q.ndim != 1 or not sizes or min(sizes) < 1 or not c.shape[-1] == q.size == sum(sizes):
+        raise InputError(
+            f"{owner}: counts of shape {c.shape} and probs of shape {q.shape} must hold the partitions' cells one "
+            f"after another, {sum(sizes)} in all for sizes {list(sizes)} (each at least 1)."
+        )
+    if not (np.isfinite(c).all() and (c >= 0).all() and np.isfinite(q).all() and (q >= 0).all()):
+        raise InputError(f"{owner}: counts and probs must be finite and non-negative.")
+    starts = np.cumsum((0,) + sizes[:-1])
+    sums = np.add.reduceat(q, starts)
+    if np.abs(sums - 1.0).max() > np.sqrt(_EPS) * max(1.0, max(sizes) ** 0.5):  # as _check_probabilities
+        raise InputError(f"{owner}: each partition's probs must sum to 1; they sum to {sums.tolist()}.")
     c2 = c[None, :] if c.ndim == 1 else c
-    n = c2[:, : sizes[0]].sum(axis=1)
+    totals = np.add.reduceat(c2, starts, axis=1)  # (N, P): every partition counts the same values
+    n = totals[:, 0]
+    if (n <= 0).any() or (np.abs(totals - n[:, None]) > 1e-9 * n[:, None]).any():
+        raise InputError(f"{owner}: every partition must count the same values (a positive total); got {totals[0]}.")
     p = c2 / n[:, None]
     with np.errstate(over="ignore"):
         stat = _chunked(

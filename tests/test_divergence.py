@@ -634,3 +634,18 @@ def test_partition_statistics_equal_one_map_per_partition_bit_for_bit(scaling, r
         alone = divergence_map(c, q, alphas, betas, scaling, r, members=False).statistic
         np.testing.assert_array_equal(together[:, i], alone)
     assert np.isinf(together[0, 2]).any()  # the impossible cell is infinite, as alone
+
+
+@pytest.mark.parametrize(
+    ("counts", "probs", "sizes", "match"),
+    [
+        ([1, 2, 3], [0.5, 0.5, 1.0], (2, 2), "one after another"),
+        ([1, 2, 3], [0.5, 0.5, 1.0], (3,), "sum to 1"),
+        ([1, 2, 4], [0.5, 0.5, 1.0], (2, 1), "same values"),
+        ([1, -2, 3], [0.5, 0.5, 1.0], (2, 1), "non-negative"),
+        ([1, 2, 3], [0.5, 0.5, np.nan], (2, 1), "non-negative"),
+    ],
+)
+def test_partition_statistics_refuses_inputs_that_are_not_partitions(counts, probs, sizes, match):
+    with pytest.raises(InputError, match=match):
+        partition_statistics(counts, probs, sizes, [1.0], [0.5])
