@@ -279,7 +279,7 @@ rounded to six decimals.
     "per model: 1,000 models 38.0 to 8.2 s, 10,000 about 54 min to 159 s; `python -m bench` 63.7 to 12.9 min |\n"
     "| `core/divergence.py`, `core/calibration.py` | the distribution gate scores its partitions in one pass "
     "(`partition_statistics`: the cells side by side, the grid's terms once, summed per partition; bit-identical to "
-    "one map per partition, test) | one audited row's gate 563 to 202 us, two per model |\n"
+    "one map per partition, test; inputs checked) | one audited row's gate 553 to 223 us, two per model |\n"
     "| `tasks/extracts/`, `tasks/batchfiles.py` | extract rows grouped by Arrow's dictionary codes of the key column "
     "instead of `np.unique` over Python strings (same rows in stored order, tests); staged batch metadata written "
     "without indent, so `json` uses its C encoder | grouping 730,000 rows of 1,000 keys 343 to 10 ms; staging the "
