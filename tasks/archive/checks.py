@@ -6,6 +6,7 @@ import contextlib
 import json
 import os
 import pathlib
+from concurrent.futures import ThreadPoolExecutor
 
 from .._io import canonical_json, sha256_bytes, sha256_file
 from ..params import ParameterStoreError, list_versions, verify_params
@@ -72,8 +73,11 @@ def _check_run_folder(
         )
     for name in sorted(set(files) - set(listed)):
         problems.append(ArchiveProblem("added", f"{rel}/{name}", "is not listed in manifest.json (file added)"))
-    for name in sorted(set(files) & set(listed)):
-        digest, size = sha256_file(files[name]), files[name].stat().st_size
+    names = sorted(set(files) & set(listed))
+    # hashlib releases the GIL while it hashes, so the files are read and hashed on every core
+    with ThreadPoolExecutor(max_workers=os.cpu_count() or 1) as pool:
+        measured = pool.map(lambda name: (sha256_file(files[name]), files[name].stat().st_size), names)
+    for name, (digest, size) in zip(names, measured):
         expected = listed[name] if isinstance(listed[name], dict) else {}
         if digest != expected.get("sha256") or size != expected.get("size"):
             problems.append(
