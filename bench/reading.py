@@ -58,8 +58,8 @@ def _throughput(row: dict) -> str:
         f"server start alone is {ours['server_start_s']:.0f} s. What would close more of the gap: a long-lived "
         "Prefect server (`PREFECT_API_URL`), more cores (the batch work uses every CPU, the peer one), batched fits "
         "of same-shaped series, and cheaper null tables for the laws whose shape the candidate search estimates "
-        "(each such model needs a table at its own shape: in the fleet's search, 10 distinct tables for 48 models, "
-        "about 0.35 s each, and only one of them wanted by both worker groups, so sharing them would not help)."
+        "(each such model needs a table at its own estimated shape, and few shapes recur among the searched "
+        "models, so sharing the tables between worker processes would not help)."
     )
 
 

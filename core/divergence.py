@@ -339,6 +339,11 @@ def _check_scaling(scaling, r, owner: str) -> float | None:
     return None
 
 
+def _sum_tolerance(cells: int) -> float:
+    """How far from 1 a vector of ``cells`` probabilities may sum (rounding grows with sqrt(cells))."""
+    return float(np.sqrt(_EPS) * max(1.0, cells**0.5))
+
+
 def _check_probabilities(q: np.ndarray, name: str, owner: str) -> None:
     if q.ndim == 0 or q.shape[-1] == 0:
         raise InputError(f"{owner}: {name!r} must have at least one cell along its last axis; got shape {q.shape}.")
@@ -348,7 +353,7 @@ def _check_probabilities(q: np.ndarray, name: str, owner: str) -> None:
         raise InputError(
             f"{owner}: {name!r} has negative entries (smallest {q.min():.6g}); probabilities must be >= 0."
         )
-    tol = np.sqrt(_EPS) * max(1.0, q.shape[-1] ** 0.5)
+    tol = _sum_tolerance(q.shape[-1])
     sums = q.sum(axis=-1)
     worst = np.max(np.abs(sums - 1.0))
     if worst > tol:
@@ -860,7 +865,7 @@ def partition_statistics(
         raise InputError(f"{owner}: counts and probs must be finite and non-negative.")
     starts = np.cumsum((0,) + sizes[:-1])
     sums = np.add.reduceat(q, starts)
-    if np.abs(sums - 1.0).max() > np.sqrt(_EPS) * max(1.0, max(sizes) ** 0.5):  # as _check_probabilities
+    if np.abs(sums - 1.0).max() > _sum_tolerance(max(sizes)):
         raise InputError(f"{owner}: each partition's probs must sum to 1; they sum to {sums.tolist()}.")
     c2 = c[None, :] if c.ndim == 1 else c
     totals = np.add.reduceat(c2, starts, axis=1)  # (N, P): every partition counts the same values
