@@ -1058,14 +1058,14 @@ class _AdditiveProfile:
         C = self._coefficients(Theta)
         num = C[:, :2] @ self.basis[:2]
         den = C @ self.basis
-        U = self.y_n0 + C[:, 1:2] * self.y_n1  # num * y
-        B, n = U.shape
-        Lq = self.Lq
-        R = np.empty((B, n))
+        B, n, Lq = C.shape[0], self.n, self.Lq
+        # num * y, written where its filtered rows go: a (B, n) temporary costs more in fresh pages than in arithmetic
+        R = np.multiply(C[:, 1:2], self.y_n1, out=np.empty((B, n)))
+        R += self.y_n0
         H = np.zeros((B, n + Lq))  # impulse responses after Lq zeros
         with np.errstate(over="ignore", invalid="ignore"):
             for b in range(B):  # scipy filters one coefficient set per call
-                self.inputs[0] = U[b]
+                self.inputs[0] = R[b]
                 R[b], H[b, Lq:] = lfilter(self.one, den[b], self.inputs, axis=-1)
             finite = np.isfinite(R[:, -1]) & np.isfinite(H[:, -1])  # an overflow propagates to the last term
             R[~finite] = 0.0
