@@ -34,7 +34,7 @@ from collections.abc import Mapping
 
 import numpy as np
 
-from .._scipy import lapack, lfilter, optimize
+from .._scipy import lapack, lfilter, minimize_lbfgsb, optimize
 from .._validation import Interval, Options, validate_params
 from ..exceptions import ConvergenceWarning, InputError, SpecificationError
 from ._base import FitResult, ForecastModel, check_series, information_criteria
@@ -531,14 +531,7 @@ class ExpSmoothing(ForecastModel):
         with np.errstate(over="ignore", invalid="ignore"):
             values = profile.objective_values(self._to_natural(grid))
             runs = [
-                optimize.minimize(
-                    profile.objective,
-                    grid[i],
-                    method="L-BFGS-B",
-                    jac=True,
-                    bounds=bounds,
-                    options={"ftol": 1e-13, "gtol": 1e-9, "maxiter": 500},
-                )
+                minimize_lbfgsb(profile.objective, grid[i], bounds, ftol=1e-13, gtol=1e-9, maxiter=500)
                 for i in np.argsort(values, kind="stable")[:_LOCAL_SEARCHES]
             ]
         runs.sort(key=lambda r: (_rounded(r.fun), not r.success))  # near-ties: a converged run first
