@@ -12,7 +12,18 @@ from __future__ import annotations
 
 import importlib
 
-__all__ = ["LazyModule", "blas", "integrate", "lapack", "lfilter", "minimize_lbfgsb", "optimize", "signal", "special", "stats"]
+__all__ = [
+    "LazyModule",
+    "blas",
+    "integrate",
+    "lapack",
+    "lfilter",
+    "minimize_lbfgsb",
+    "optimize",
+    "signal",
+    "special",
+    "stats",
+]
 
 
 class LazyModule:
@@ -154,7 +165,12 @@ def minimize_lbfgsb(fun, x0, bounds, *, ftol: float, gtol: float, maxiter: int):
     step = _LBFGSB[0]
     if step is None:
         return optimize.minimize(
-            fun, x0, method="L-BFGS-B", jac=True, bounds=bounds, options={"ftol": ftol, "gtol": gtol, "maxiter": maxiter}
+            fun,
+            x0,
+            method="L-BFGS-B",
+            jac=True,
+            bounds=bounds,
+            options={"ftol": ftol, "gtol": gtol, "maxiter": maxiter},
         )
     return _lbfgsb_loop(step, fun, x0, bounds, ftol, gtol, maxiter)
 

@@ -494,6 +494,103 @@ def test_the_direct_filter_call_equals_scipy_lfilter():
     assert np.array_equal(lfilter([1.0], a, x[0]), signal.lfilter([1.0], a, x[0]))  # a list: scipy's own path
 
 
+def _same_lbfgsb_result(ours, theirs) -> bool:
+    return (
+        np.array_equal(ours.x, theirs.x)
+        and ours.fun == theirs.fun
+        and np.array_equal(ours.jac, theirs.jac)
+        and (ours.nfev, ours.nit, ours.status, ours.message, ours.success)
+        == (theirs.nfev, theirs.nit, theirs.status, theirs.message, theirs.success)
+    )
+
+
+def _smoothing_searches():
+    """(objective, start, bounds) of the smoothing fits' searches on series shipped with statsmodels."""
+    from statsmodels.datasets import co2, elec_equip, macrodata
+
+    from fitaudit.core.models.smoothing import ExpSmoothing, _AdditiveProfile
+
+    co2_monthly = co2.load_pandas().data["co2"].resample("MS").mean().ffill().to_numpy()
+    cases = [
+        (ExpSmoothing(trend="add", damped=True, seasonal="add", period=12), co2_monthly),
+        (ExpSmoothing(trend="add", damped=True, seasonal="add", period=12), elec_equip.load_pandas().data.iloc[:, 0]),
+        (ExpSmoothing(trend="add", damped=True), macrodata.load_pandas().data["realgdp"]),
+        (ExpSmoothing(seasonal="add", period=4), macrodata.load_pandas().data["unemp"]),
+    ]
+    for spec, y in cases:
+        profile = _AdditiveProfile(spec, np.asarray(y, dtype=float))
+        grid = np.array(spec._start_grid())
+        with np.errstate(over="ignore", invalid="ignore"):
+            values = profile.objective_values(spec._to_natural(grid))
+        for i in np.argsort(values, kind="stable")[:3]:
+            yield profile.objective, grid[i], spec._bounds()[: len(spec._smoothing_names())]
+
+
+def test_the_direct_lbfgsb_loop_equals_scipy_minimize():
+    """core/_scipy.py ``minimize_lbfgsb`` drives scipy's compiled L-BFGS-B step without scipy's wrapper;
+    on the smoothing fits' own searches (packaged series, the three best grid starts each) and on a
+    problem with each kind of bound, stopped by convergence or by the iteration limit, it returns
+    scipy.optimize.minimize's result exactly (source: scipy.optimize.minimize, method "L-BFGS-B")."""
+    import scipy
+    from scipy import optimize
+
+    from fitaudit.core import _scipy
+    from fitaudit.core._scipy import minimize_lbfgsb
+
+    centre = np.array([0.3, -0.4, 2.0, 0.7])
+
+    def quartic(x):
+        d = x - centre
+        value = float(d @ d + (d[0] * d[1]) ** 2 + d[2] ** 4 + np.sin(3 * d[3]))
+        return value, 2 * d + np.array(
+            [2 * d[0] * d[1] ** 2, 2 * d[1] * d[0] ** 2, 4 * d[2] ** 3, 3 * np.cos(3 * d[3])]
+        )
+
+    every_bound = [(0.0, 1.0), (None, 0.2), (-1.0, None), (None, None)]
+    problems = [*_smoothing_searches(), (quartic, np.array([0.9, 0.5, 0.1, 0.0]), every_bound)]
+    with np.errstate(over="ignore", invalid="ignore"):
+        for fun, start, bounds in problems:
+            for maxiter in (500, 3):
+                options = {"ftol": 1e-13, "gtol": 1e-9, "maxiter": maxiter}
+                theirs = optimize.minimize(fun, start, method="L-BFGS-B", jac=True, bounds=bounds, options=options)
+                ours = minimize_lbfgsb(fun, start, bounds, **options)
+                assert _same_lbfgsb_result(ours, theirs), (ours, theirs)
+    stopped = minimize_lbfgsb(quartic, np.array([0.9, 0.5, 0.1, 0.0]), every_bound, ftol=1e-13, gtol=1e-9, maxiter=3)
+    assert (stopped.status, stopped.success) == (1, False)  # the limit case above was reached, not skipped
+    if tuple(int(v) for v in scipy.__version__.split(".")[:2]) >= (1, 15):
+        assert _scipy._LBFGSB[0] is not None  # the direct loop is what ran, not scipy's function
+
+
+def test_the_direct_lbfgsb_loop_is_refused_when_it_differs(monkeypatch):
+    """The first-call check falls back to scipy's function when the compiled step is missing, fails,
+    or makes the loop give another result than scipy.optimize.minimize."""
+    import scipy.optimize._lbfgsb as compiled
+
+    from fitaudit.core import _scipy
+
+    real = compiled.setulb
+    assert _scipy._checked_lbfgsb_step() is real
+
+    def failing(*args):
+        raise TypeError("another signature")
+
+    def nudging(m, x, *rest):  # the loop's iterates moved by one unit in the last place
+        real(m, x, *rest)
+        x[0] = np.nextafter(x[0], np.inf)
+
+    for replacement in (failing, nudging):
+        monkeypatch.setattr(compiled, "setulb", replacement)
+        assert _scipy._checked_lbfgsb_step() is None
+    monkeypatch.delattr(compiled, "setulb")
+    assert _scipy._checked_lbfgsb_step() is None
+    monkeypatch.undo()  # scipy's routine back, for scipy's own function
+    monkeypatch.setattr(_scipy, "_LBFGSB", [None])  # which then answers
+    res = _scipy.minimize_lbfgsb(
+        lambda x: (float(x @ x), 2 * x), np.array([1.0]), [(0.5, 2.0)], ftol=1e-12, gtol=1e-10, maxiter=50
+    )
+    assert res.x.tolist() == [0.5] and res.success
+
+
 @pytest.mark.parametrize("base_url", ["", "https://audit.example/fitaudit/"])
 def test_model_links_built_once_per_run_equal_report_url_per_page(tmp_path, base_url):
     """tasks/events.py resolves the run's models folder once for the verdict events' links; each
