@@ -903,12 +903,13 @@ class _AdditiveProfile:
     # -- evaluation ------------------------------------------------------------------------------
     def _values(self, theta: np.ndarray) -> tuple[float, float, float, float]:
         """alpha, beta, gamma, phi from a parameter vector (param order; absent: 0, 0, 0, 1)."""
+        t = theta.tolist()  # Python floats: the same products as numpy scalars', at a fraction of the cost
         _, i_beta, i_gamma, i_phi = self.positions  # alpha is always a parameter, first
         return (
-            theta[0],
-            0.0 if i_beta is None else theta[i_beta],
-            0.0 if i_gamma is None else theta[i_gamma],
-            1.0 if i_phi is None else theta[i_phi],
+            t[0],
+            0.0 if i_beta is None else t[i_beta],
+            0.0 if i_gamma is None else t[i_gamma],
+            1.0 if i_phi is None else t[i_phi],
         )
 
     def _polynomials(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
