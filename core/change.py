@@ -145,7 +145,7 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     totals = np.bincount(idx[0], minlength=s)
     f = special.xlogy(np.arange(n + 1.0), np.arange(n + 1.0))
     small = (
-        idx.astype(np.int16) if s <= np.iinfo(np.int16).max else idx
+        idx.astype(np.int16, copy=False) if s <= np.iinfo(np.int16).max else idx
     )  # 16-bit keys: numpy's stable sort is a radix sort
     order = np.argsort(small, axis=1, kind="stable")
     cells = np.repeat(np.arange(s), totals)
@@ -153,12 +153,18 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     rest = totals[cells] - occ
     sorted_step = f[occ + 1] - f[occ] + f[rest - 1] - f[rest]
     step = np.empty((B, n))
-    step.ravel()[(order + n * np.arange(B)[:, None]).ravel()] = np.tile(sorted_step, B)
+    np.put_along_axis(step, order, np.broadcast_to(sorted_step, (B, n)), axis=1)
     s0 = float(f[totals].sum())
     k = np.arange(trim, n - trim + 1)
-    s_k = s0 + np.cumsum(step, axis=1)[:, k - 1]
-    t = 2.0 * (s_k - f[k] - f[n - k] - s0 + f[n])
-    return t.max(axis=1)
+    # T_k / 2 in place, in the order of 2 (s0 + S_k - f(k) - f(n - k) - s0 + f(n)); doubling is exact,
+    # so it is applied to the maxima
+    half_t = np.cumsum(step, axis=1)[:, trim - 1 : n - trim]  # columns k - 1
+    half_t += s0
+    half_t -= f[k]
+    half_t -= f[n - k]
+    half_t -= s0
+    half_t += f[n]
+    return 2.0 * half_t.max(axis=1)
 
 
 def locate_change(
@@ -221,7 +227,8 @@ def locate_change(
     t_obs = float(profile_inner[k_best])
     rng = key_rng(seed, "change", n, s)
     perm = np.argsort(rng.random((permutations, n)), axis=1)
-    t_perm = permutation_maxima(idx[perm], s, h)
+    keys = idx.astype(np.int16) if s <= np.iinfo(np.int16).max else idx  # gathered and sorted as 16-bit keys
+    t_perm = permutation_maxima(keys[perm], s, h)
     exceed = int(np.sum(t_perm >= t_obs - 1e-9 * max(1.0, abs(t_obs))))
     split = h + k_best
     profile = np.full(n + 1, np.nan)
