@@ -310,10 +310,11 @@ def write_fields(
     )
 
 
-def _load(path: pathlib.Path, model_id: str, version: int) -> ParameterVersion:
-    """Read one file and verify its hash, name and folder; ParameterStoreError names the file."""
+def _load(path: pathlib.Path, model_id: str, version: int, content: bytes | None = None) -> ParameterVersion:
+    """Read one file (or take its ``content``, read already) and verify its hash, name and folder;
+    ParameterStoreError names the file."""
     try:
-        data = json.loads(path.read_bytes())
+        data = json.loads(path.read_bytes() if content is None else content)
     except (OSError, ValueError) as exc:
         raise ParameterStoreError(
             f"{path}: cannot be read as JSON ({exc}); restore it from a backup of the archive"
@@ -340,8 +341,13 @@ def _load(path: pathlib.Path, model_id: str, version: int) -> ParameterVersion:
     return ParameterVersion(**data, sha256=stored)
 
 
-def list_versions(archive_root: str | os.PathLike, model_id: str) -> list[ParameterVersion]:
+def list_versions(
+    archive_root: str | os.PathLike, model_id: str, *, load: Callable[..., ParameterVersion] | None = None
+) -> list[ParameterVersion]:
     """Every stored version of ``model_id``, oldest first, each verified against its hash.
+
+    ``load(path, model_id, version)`` replaces the reading of one file (a verification passes one
+    that reads each file once, whatever asks for it).
 
     Raises
     ------
@@ -349,7 +355,8 @@ def list_versions(archive_root: str | os.PathLike, model_id: str) -> list[Parame
         When any file is altered, unreadable, or stored under the wrong name (named in the message).
     """
     folder = _model_dir(archive_root, model_id)
-    return [_load(folder / f"{n}.json", model_id, n) for n in _version_numbers(folder)]
+    load = load or _load
+    return [load(folder / f"{n}.json", model_id, n) for n in _version_numbers(folder)]
 
 
 def production_version(archive_root: str | os.PathLike, model_id: str) -> ParameterVersion | None:
@@ -455,12 +462,12 @@ def promote(
     return record_promotion(archive_root, model_id, version, approved_by=approved_by, note=note, details=details)
 
 
-def verify_params(archive_root: str | os.PathLike) -> list[str]:
+def verify_params(archive_root: str | os.PathLike, *, load: Callable[..., ParameterVersion] | None = None) -> list[str]:
     """Check the whole parameter store; returns the problems found (empty when all is well).
 
     Detects altered or unreadable files, names that are not ``<n>.json`` under a safe model id,
     gaps in the numbering, and promotions that refer to a missing or later version.  Hidden files
-    (temporary files left by an interrupted writer) are ignored.
+    (temporary files left by an interrupted writer) are ignored.  ``load`` as for :func:`list_versions`.
     """
     root = pathlib.Path(archive_root) / "params"
     if not root.is_dir():
@@ -472,11 +479,11 @@ def verify_params(archive_root: str | os.PathLike) -> list[str]:
         if not folder.is_dir() or not SAFE_ID.match(folder.name):
             problems.append(f"{folder}: not a model folder (expected a folder named by a safe model id)")
             continue
-        problems += _verify_model(folder)
+        problems += _verify_model(folder, load or _load)
     return problems
 
 
-def _verify_model(folder: pathlib.Path) -> list[str]:
+def _verify_model(folder: pathlib.Path, load: Callable[..., ParameterVersion]) -> list[str]:
     problems = []
     for entry in sorted(folder.iterdir()):
         if not entry.name.startswith(".") and not _FILE_NAME.match(entry.name):
@@ -490,7 +497,7 @@ def _verify_model(folder: pathlib.Path) -> list[str]:
     loaded = {}
     for n in numbers:
         try:
-            loaded[n] = _load(folder / f"{n}.json", folder.name, n)
+            loaded[n] = load(folder / f"{n}.json", folder.name, n)
         except ParameterStoreError as exc:
             problems.append(str(exc))
     for n, record in loaded.items():

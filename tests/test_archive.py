@@ -694,3 +694,58 @@ def test_verify_reads_without_writing(populated):
     os.chmod(root / "chain.jsonl", 0o444)
     assert archive.verify_archive(root) == []
     assert sorted((p.relative_to(root).as_posix(), p.stat().st_mtime_ns) for p in root.rglob("*")) == before
+
+
+def test_verification_reads_each_parameter_file_once_and_finds_what_fresh_reads_find(tmp_path, monkeypatch):
+    """One verification keeps each parameter file's bytes and checked record (tasks/archive/checks.py
+    ParamsReads): every file is read once, and the problems equal those of a verification that reads
+    the file again at every question, for an altered value, a re-hashed forgery, reformatted bytes
+    and a file that is not JSON."""
+    from fitaudit.tasks.archive import checks
+
+    root = tmp_path / "archive"
+    _publish(root, "20261130-T220000Z-aaaa", dt.date(2026, 11, 30))
+    for model in ("m-altered", "m-forged", "m-reformatted", "m-garbage", "m-intact"):
+        _write_params(root, model, {"ar1": 0.5})
+    altered = root / "params" / "m-altered" / "1.json"
+    altered.write_text(altered.read_text().replace('"ar1": 0.5', '"ar1": 0.6'))
+    _rewrite_params(root, "params/m-forged/2.json", note="approved after all")
+    reformatted = root / "params" / "m-reformatted" / "1.json"
+    reformatted.write_text(json.dumps(json.loads(reformatted.read_text()), sort_keys=True, indent=4) + "\n")
+    (root / "params" / "m-garbage" / "2.json").write_text("{not json")
+
+    reads: list[pathlib.Path] = []
+    real_read_bytes = pathlib.Path.read_bytes
+
+    def counting(path):
+        if "params" in path.parts:
+            reads.append(path)
+        return real_read_bytes(path)
+
+    monkeypatch.setattr(pathlib.Path, "read_bytes", counting)
+    kept = archive.verify_archive(root)
+    assert sorted(reads) == sorted(set(reads)) and len(reads) == 10  # ten files, each read once
+
+    class FreshReads(checks.ParamsReads):  # no memory: every question reads the file again
+        def content(self, path):
+            return path.read_bytes()
+
+        def load(self, path, model_id, version):
+            return checks._load(path, model_id, version)
+
+    monkeypatch.setattr(checks, "ParamsReads", FreshReads)
+    from fitaudit.tasks.archive import verify as verify_module
+
+    monkeypatch.setattr(verify_module, "ParamsReads", FreshReads)
+    reads.clear()
+    fresh = archive.verify_archive(root)
+    assert len(reads) > 10  # the comparison really read again
+    assert [(p.kind, p.where, p.message) for p in kept] == [(p.kind, p.where, p.message) for p in fresh]
+    found = " | ".join(f"{p.where}: {p.message}" for p in kept)
+    for expected in (
+        "m-altered/1.json: content does not match its SHA-256",
+        "m-forged/2.json",
+        "m-reformatted/1.json: is not byte-for-byte the canonical JSON",
+        "m-garbage/2.json: cannot be read as JSON",
+    ):
+        assert expected in found, (expected, found)

@@ -9,7 +9,7 @@ import pathlib
 from concurrent.futures import ThreadPoolExecutor
 
 from .._io import canonical_json, sha256_bytes, sha256_file
-from ..params import ParameterStoreError, list_versions, verify_params
+from ..params import ParameterStoreError, ParameterVersion, _load, list_versions, verify_params
 from .layout import _MANIFEST, _PARAMS, _PARAMS_PATH, _rel
 from .problems import ArchiveProblem
 
@@ -93,13 +93,57 @@ def _check_run_folder(
     return problems
 
 
-def _promotion_problem(root: pathlib.Path, payload: dict) -> str | None:
+class ParamsReads:
+    """The parameter files one verification reads, each read, parsed and verified once.
+
+    A verification asks for the same files several times (the store's own checks, each promotion
+    entry, the promoted versions' records, the byte-exact form); under the archive lock they cannot
+    change in between, so the bytes and :func:`fitaudit.tasks.params._load`'s outcome (a version,
+    or the error it raised) are kept for the next question.
+    """
+
+    def __init__(self) -> None:
+        self._content: dict[pathlib.Path, bytes | OSError] = {}
+        self._loaded: dict[tuple, ParameterVersion | ParameterStoreError] = {}
+
+    def content(self, path: pathlib.Path) -> bytes:
+        """The file's bytes (``OSError`` when it cannot be read, raised again at every call)."""
+        if path not in self._content:
+            try:
+                self._content[path] = path.read_bytes()
+            except OSError as exc:
+                self._content[path] = exc
+        found = self._content[path]
+        if isinstance(found, OSError):
+            raise found
+        return found
+
+    def load(self, path: pathlib.Path, model_id: str, version: int) -> ParameterVersion:
+        """:func:`fitaudit.tasks.params._load` of the file, from the bytes read once."""
+        key = (path, model_id, version)
+        if key not in self._loaded:
+            try:
+                try:
+                    content = self.content(path)
+                except OSError:
+                    content = None  # _load reads it again and words the error
+                self._loaded[key] = _load(path, model_id, version, content)
+            except ParameterStoreError as exc:
+                self._loaded[key] = exc
+        found = self._loaded[key]
+        if isinstance(found, ParameterStoreError):
+            raise found
+        return found
+
+
+def _promotion_problem(root: pathlib.Path, payload: dict, reads: ParamsReads | None = None) -> str | None:
     """Why a promotion payload does not match the parameter version it names (None when it does)."""
     match = _PARAMS_PATH.fullmatch(str(payload.get("path")))
     if not match:
         return f"payload path {payload.get('path')!r} is not params/<model-id>/<version>.json"
     try:
-        versions = {v.version: v for v in list_versions(root, match["model"])}
+        load = None if reads is None else reads.load
+        versions = {v.version: v for v in list_versions(root, match["model"], load=load)}
     except ParameterStoreError as exc:
         return str(exc).replace(f"{root}/", "")
     record = versions.get(int(match["version"]))
@@ -111,10 +155,11 @@ def _promotion_problem(root: pathlib.Path, payload: dict) -> str | None:
     return None
 
 
-def _check_params(root: pathlib.Path) -> list[ArchiveProblem]:
+def _check_params(root: pathlib.Path, reads: ParamsReads | None = None) -> list[ArchiveProblem]:
     """The parameter store's own checks (fitaudit.tasks.params.verify_params), plus byte-exact form."""
+    reads = reads if reads is not None else ParamsReads()
     problems = []
-    for message in verify_params(root):
+    for message in verify_params(root, load=reads.load):
         where, _, text = message.replace(f"{root}/", "").partition(": ")
         problems.append(ArchiveProblem("params", where, text))
     for path in sorted((root / _PARAMS).glob("*/*")):
@@ -122,9 +167,9 @@ def _check_params(root: pathlib.Path) -> list[ArchiveProblem]:
         if path.name.startswith(".") and path.name.endswith(".tmp"):
             problems.append(ArchiveProblem("leftover", rel, "temporary file of an interrupted write"))
         elif path.name.endswith(".json") and path.is_file() and not path.is_symlink():
-            data = path.read_bytes()
+            data = reads.content(path)
             with contextlib.suppress(ValueError):  # unreadable files are reported by verify_params
-                if data != canonical_json(json.loads(data), indent=2):
+                if data != canonical_json(json.loads(data), indent=2, parsed=True):
                     message = "is not byte-for-byte the canonical JSON the parameter store writes (file edited)"
                     problems.append(ArchiveProblem("params", rel, message))
     return problems

@@ -7,7 +7,7 @@ import pathlib
 import re
 
 from .chain import _acknowledgements, _Chain, _load_chain, parse_head
-from .checks import _check_params, _check_run_folder, _promotion_problem
+from .checks import ParamsReads, _check_params, _check_run_folder, _promotion_problem
 from .durable import _children
 from .journals import _Journals, _read_journals
 from .layout import _APPEND_JOURNAL, _CHAIN, _JOURNAL, _RUNS, _STAGING, _TRASH, _rel, _root
@@ -159,17 +159,18 @@ def _verify_locked(root: pathlib.Path, head: tuple[str, int | None] | None = Non
     problems += _check_recorded_runs(root, runs, journals)
     problems += _check_run_tree(root, runs, journals)
     acks = _acknowledgements(chain)
+    reads = ParamsReads()  # each parameter file read and verified once below
     for line, entry in chain.entries:
         if entry["kind"] == "promotion":
-            problem = _promotion_problem(root, entry["payload"])
+            problem = _promotion_problem(root, entry["payload"], reads)
             if problem:
                 problems.append(ArchiveProblem("params", f"{_CHAIN} line {line}", f"promotion: {problem}"))
     for line, item in acks.promotions:
-        problem = _promotion_problem(root, item)
+        problem = _promotion_problem(root, item, reads)
         if problem:
             problems.append(ArchiveProblem("params", f"{_CHAIN} line {line}", f"acknowledged promotion: {problem}"))
-    problems += _check_promotion_records(root, _recorded_promotions(chain, acks), journals)
-    problems += _check_params(root)
+    problems += _check_promotion_records(root, _recorded_promotions(chain, acks), journals, reads)
+    problems += _check_params(root, reads)
     problems += _leftovers(root)
     if head is not None:
         digest, seq = head
