@@ -119,18 +119,9 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
 
         flow_fn = audit_flow
         if dask_workers:
-            from prefect_dask import DaskTaskRunner
+            from fitaudit.flows.runners import dask_runner
 
-            runner = DaskTaskRunner(
-                cluster_class="distributed.LocalCluster",
-                cluster_kwargs={
-                    "n_workers": dask_workers,
-                    "threads_per_worker": 1,
-                    "processes": True,
-                    "dashboard_address": None,
-                },
-            )
-            flow_fn = audit_flow.with_options(task_runner=runner)
+            flow_fn = audit_flow.with_options(task_runner=dask_runner(f"local:{dask_workers}"))  # as --dask local:N
         with get_client(sync_client=True) as client:  # the first answer of the embedded server (or the real one)
             client.hello()
         t1 = time.perf_counter()

@@ -258,17 +258,9 @@ def _server_if_needed(args: argparse.Namespace, flow_module: str):
 def _with_runner(flow_fn, dask: str | None):
     if not dask:
         return flow_fn
-    from prefect_dask import DaskTaskRunner
+    from .runners import dask_runner
 
-    if dask.startswith("local:"):
-        n = int(dask.split(":", 1)[1] or 2)
-        runner = DaskTaskRunner(
-            cluster_class="distributed.LocalCluster",
-            cluster_kwargs={"n_workers": n, "threads_per_worker": 1, "processes": True, "dashboard_address": None},
-        )
-    else:
-        runner = DaskTaskRunner(address=dask)
-    return flow_fn.with_options(task_runner=runner)
+    return flow_fn.with_options(task_runner=dask_runner(dask))
 
 
 def _print_summary(result: dict, quiet: bool) -> None:

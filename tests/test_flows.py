@@ -141,15 +141,10 @@ def test_events_and_artifacts_exist(first_run):
 @pytest.mark.slow
 def test_dask_runner_gives_the_same_results(demo, first_run, tmp_path):
     pytest.importorskip("prefect_dask")
-    from prefect_dask import DaskTaskRunner
-
     from fitaudit.flows.audit import audit_flow
+    from fitaudit.flows.runners import dask_runner
 
-    runner = DaskTaskRunner(
-        cluster_class="distributed.LocalCluster",
-        cluster_kwargs={"n_workers": 2, "threads_per_worker": 1, "processes": True, "dashboard_address": None},
-    )
-    run = audit_flow.with_options(task_runner=runner)(
+    run = audit_flow.with_options(task_runner=dask_runner("local:2"))(
         registry=demo["registry"], as_of=DEMO_AS_OF, archive=_fresh_archive(demo, tmp_path), models=SUBSET, batch_size=3
     )
     assert run["counts"] == first_run["counts"]
