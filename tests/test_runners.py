@@ -51,6 +51,7 @@ def test_local_workers_start_without_the_nanny_trim_threshold(dask_config):
 
 
 def test_an_address_is_used_as_it_is(dask_config):
-    runner = dask_runner("tcp://127.0.0.1:8786")
-    assert runner.address == "tcp://127.0.0.1:8786"
-    assert dask.config.get(NANNY_TRIM_SETTING) == 65536  # a cluster of the user's keeps its own settings
+    with dask.config.set({NANNY_TRIM_SETTING: 65536}):  # distributed's default (other tests may have unset it)
+        runner = dask_runner("tcp://127.0.0.1:8786")
+        assert runner.address == "tcp://127.0.0.1:8786"
+        assert dask.config.get(NANNY_TRIM_SETTING) == 65536  # a cluster of the user's keeps its own settings
