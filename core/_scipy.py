@@ -143,14 +143,15 @@ def minimize_lbfgsb(fun, x0, bounds, *, ftol: float, gtol: float, maxiter: int):
     options={"ftol": ftol, "gtol": gtol, "maxiter": maxiter})``, driving scipy's compiled step directly.
 
     ``fun(x)`` returns ``(value, gradient)``.  scipy's wrapper spends about 25 us per evaluation
-    and 50 us per call on its function object, result objects and checks around the same compiled
-    routine (Byrd, Lu, Nocedal and Zhu 1995; scipy >= 1.15 ships it translated to C); the
-    smoothing fits evaluate a 60 us objective some fifty times per fit, so they drive the routine
-    here with the same reverse-communication loop.  The result is scipy's: the same iterates,
-    ``x``, ``fun``, ``jac``, ``nfev``, ``nit``, ``status``, ``message`` and ``success`` (without
-    ``hess_inv``).  On the first call the loop is checked against ``scipy.optimize.minimize`` on a
-    small bounded problem; if it differs or the routine is missing or has another signature
-    (scipy < 1.15 ships the Fortran original), scipy's function is used for every call.
+    and 50 us per call on its function object, result objects and checks around its compiled
+    routine (L-BFGS-B 3.0, Byrd, Lu, Nocedal and Zhu 1995 and Morales and Nocedal 2011, which
+    scipy ships translated to C); the smoothing fits evaluate a 60 us objective some fifty times
+    per fit, so they drive the routine here with the same reverse-communication loop.  The result
+    is scipy's: the same iterates, ``x``, ``fun``, ``jac``, ``nfev``, ``nit``, ``status``,
+    ``message`` and ``success`` (without ``hess_inv``).  On the first call the loop is checked
+    against ``scipy.optimize.minimize`` on a small bounded problem; if it differs, or the routine
+    is missing or takes other arguments (the loop follows scipy 1.17's), scipy's function is used
+    for every call.
 
     Examples
     --------
@@ -176,7 +177,7 @@ def minimize_lbfgsb(fun, x0, bounds, *, ftol: float, gtol: float, maxiter: int):
 
 
 def _lbfgsb_loop(step, fun, x0, bounds, ftol, gtol, maxiter):
-    """scipy.optimize._lbfgsb_py._minimize_lbfgsb's loop (scipy 1.15-1.17), without its wrappers.
+    """scipy.optimize._lbfgsb_py._minimize_lbfgsb's loop (as in scipy 1.17), without its wrappers.
 
     Like scipy's function object, a point is evaluated once: a request for the last point reuses
     its value and gradient (and is not counted in ``nfev``).
