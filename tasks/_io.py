@@ -94,11 +94,13 @@ def _naming(path: pathlib.Path) -> Iterator[None]:
         raise
 
 
-def write_once(path: str | os.PathLike, data: bytes) -> None:
+def write_once(path: str | os.PathLike, data: bytes, *, sync: bool = True) -> None:
     """Write ``data`` to a new file; never overwrite an existing one.
 
     Writes a temporary sibling, fsyncs it, then hard-links it into place (``os.link`` fails if
-    the target exists), so readers never see a half-written file.
+    the target exists), so readers never see a half-written file.  ``sync=False`` leaves the
+    fsync to the caller (:class:`fitaudit.tasks.archive.RunWriter` syncs a run's files together
+    before its manifest); readers of the running system still see the file whole.
     """
     path = pathlib.Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -108,13 +110,14 @@ def write_once(path: str | os.PathLike, data: bytes) -> None:
         with _naming(path), os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
-            os.fsync(fh.fileno())
+            if sync:
+                os.fsync(fh.fileno())
         os.link(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)
 
 
-def write_once_chunks(path: str | os.PathLike, chunks: Iterable[bytes]) -> tuple[str, int]:
+def write_once_chunks(path: str | os.PathLike, chunks: Iterable[bytes], *, sync: bool = True) -> tuple[str, int]:
     """:func:`write_once` for data given in pieces (never all in memory); returns (SHA-256, size)."""
     path = pathlib.Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
@@ -128,7 +131,8 @@ def write_once_chunks(path: str | os.PathLike, chunks: Iterable[bytes]) -> tuple
                 digest.update(chunk)
                 size += len(chunk)
             fh.flush()
-            os.fsync(fh.fileno())
+            if sync:
+                os.fsync(fh.fileno())
         os.link(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)

@@ -749,3 +749,47 @@ def test_verification_reads_each_parameter_file_once_and_finds_what_fresh_reads_
         "m-garbage/2.json: cannot be read as JSON",
     ):
         assert expected in found, (expected, found)
+
+
+def test_a_runs_files_are_synced_together_before_its_manifest(tmp_path, monkeypatch):
+    """RunWriter writes a run's files without one fsync each and syncs them all, several at a time,
+    before it writes manifest.json; an fsync that fails (a full disk can first show there) names
+    the file, and nothing is published."""
+    import errno
+
+    from fitaudit.tasks.archive import durable, writer
+
+    root = tmp_path / "archive"
+    events, synced = [], []
+    real_files, real_write = writer._fsync_files, writer.write_once
+
+    def files(paths):
+        paths = list(paths)
+        synced.extend(p.name for p in paths)
+        events.append("files synced")
+        real_files(paths)
+
+    def write(path, data, **options):
+        if pathlib.Path(path).name == "manifest.json":
+            events.append("manifest written")
+        return real_write(path, data, **options)
+
+    monkeypatch.setattr(writer, "_fsync_files", files)
+    monkeypatch.setattr(writer, "write_once", write)
+    first = _publish(root, "20261130-T220000Z-aaaa", dt.date(2026, 11, 30))
+    assert events == ["files synced", "manifest written"]
+    assert sorted(synced) == ["index.html", "m1.html", "m2.html", "results.json", "results.parquet"]
+    assert archive.verify_archive(root) == []
+
+    def full(fd):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(durable.os, "fsync", full)
+    with pytest.raises(OSError) as caught:
+        _publish(root, "20261201-T220000Z-bbbb", dt.date(2026, 12, 1))
+    assert caught.value.errno == errno.ENOSPC and caught.value.filename is not None
+    staged = {"index.html", "m1.html", "m2.html", "results.json", "results.parquet"}
+    assert pathlib.Path(caught.value.filename).name in staged
+    monkeypatch.undo()
+    assert [p.name for p in (root / "runs" / "2026").iterdir()] == [first.path.name]
+    assert archive.verify_archive(root) == []

@@ -664,10 +664,10 @@ def test_disk_full_at_publication_prints_the_cause_and_the_next_run_recovers(
     store = _copy(after_d1, tmp_path)
     real_write = archive.writer.write_once
 
-    def full(path, data):
+    def full(path, data, **options):
         if pathlib.Path(path).name == "results.parquet":
             raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
-        return real_write(path, data)
+        return real_write(path, data, **options)
 
     monkeypatch.setattr(archive.writer, "write_once", full)
     capsys.readouterr()

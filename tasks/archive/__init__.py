@@ -13,10 +13,11 @@ Layout under the archive root::
 
 Publication protocol (``RunWriter.finish``)
 -------------------------------------------
-1. Every file is written once into ``.staging/<run-id>.<hex>/`` (fsynced; never overwritten); the
+1. Every file is written once into ``.staging/<run-id>.<hex>/`` (never overwritten); the
    staging folder is ``flock``-ed by its writer so ``recover`` leaves a live one alone.
-2. ``manifest.json`` (caller's fields + ``run_id``, ``as_of``, ``schema_version`` and ``files``:
-   SHA-256 and size of every other file) is written and every staged folder is fsynced.
+2. Every staged file is fsynced (several at a time), then ``manifest.json`` (caller's fields +
+   ``run_id``, ``as_of``, ``schema_version`` and ``files``: SHA-256 and size of every other file)
+   is written and fsynced, and every staged folder is fsynced.
 3. Under the archive lock: the chain is checked, then ``.journal/run-<run-id>.json`` records the
    intended chain payload (run id, path, as-of date, manifest SHA-256).
 4. The staging folder is renamed to ``runs/<YYYY>/<run-id>/`` (atomic; the run becomes visible whole).

@@ -6,10 +6,11 @@ import json
 import os
 import pathlib
 import shutil
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
-from .._io import canonical_json, write_once
+from .._io import _naming, canonical_json, write_once
 from .layout import _JOURNAL
 
 # Test seam: when set, called with a step name at each step of the protocols (crash tests use it to
@@ -28,6 +29,27 @@ def _fsync_dir(path: pathlib.Path) -> None:
         os.fsync(fd)
     finally:
         os.close(fd)
+
+
+def _fsync_files(paths: Iterable[pathlib.Path]) -> None:
+    """fsync regular files, several at a time: the file system commits concurrent fsyncs together
+    (1,000 model pages: 0.37-0.43 s one after another, 0.13 s in eight threads, measured)."""
+    paths = list(paths)
+
+    def sync(path: pathlib.Path) -> None:
+        with _naming(path):  # a full disk can first show at the fsync: the error names the file
+            fd = os.open(path, os.O_RDONLY)
+            try:
+                os.fsync(fd)
+            finally:
+                os.close(fd)
+
+    if len(paths) < 2:
+        for path in paths:
+            sync(path)
+        return
+    with ThreadPoolExecutor(max_workers=min(8, len(paths))) as pool:
+        list(pool.map(sync, paths))  # list(): an OSError of any file is raised here
 
 
 def _fsync_tree(folder: pathlib.Path) -> None:

@@ -15,7 +15,7 @@ from fitaudit.core.exceptions import InputError
 
 from .._io import canonical_json, sha256_bytes, write_once, write_once_chunks
 from .chain import _append_locked, _settle_append
-from .durable import _fsync_dir, _fsync_tree, _mkdirs, _remove_journal, _step, _write_journal
+from .durable import _fsync_dir, _fsync_files, _fsync_tree, _mkdirs, _remove_journal, _step, _write_journal
 from .layout import (
     _MANIFEST,
     _REPORT,
@@ -94,14 +94,14 @@ class RunWriter:
         if not isinstance(data, (bytes, bytearray, memoryview)):
             raise InputError(f"data for {key!r} must be bytes; use write_text or write_json for {type(data).__name__}")
         data = bytes(data)
-        write_once(self._staging.joinpath(*parts), data)
+        write_once(self._staging.joinpath(*parts), data, sync=False)  # synced together by finish()
         self._files[key] = {"sha256": sha256_bytes(data), "size": len(data)}
         _step("file-written")
 
     def write_chunks(self, relpath: str, chunks) -> None:
         """Write one file from an iterable of bytes pieces, never holding it whole (see :meth:`write_bytes`)."""
         parts = self._claim(relpath)
-        sha, size = write_once_chunks(self._staging.joinpath(*parts), (bytes(c) for c in chunks))
+        sha, size = write_once_chunks(self._staging.joinpath(*parts), (bytes(c) for c in chunks), sync=False)
         self._files["/".join(parts)] = {"sha256": sha, "size": size}
         _step("file-written")
 
@@ -181,6 +181,8 @@ class RunWriter:
             data = canonical_json(full, indent=2)
         except (TypeError, ValueError) as exc:
             raise InputError(f"manifest of run {self.run_id} cannot be written as JSON: {exc}") from exc
+        # every file durable before the manifest that lists it, then the manifest and the folders
+        _fsync_files(self._staging.joinpath(*name.split("/")) for name in self._files)
         write_once(self._staging / _MANIFEST, data)
         _fsync_tree(self._staging)
         _step("staged")
