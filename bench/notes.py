@@ -311,6 +311,11 @@ rounded to six decimals.
     "`MALLOC_TRIM_THRESHOLD_=65536`, with which glibc unmaps and re-zeroes every large temporary (test on real "
     "workers) | a candidate search's null table 0.54-0.61 to 0.29-0.33 s; the fleet on a local cluster, one run "
     "each: 1 worker flow 40.9 to 36.9 s (candidate search 13.0 to 9.0 s), 2 workers 29.2 to 26.4 s |\n"
+    "| `tasks/archive/writer.py`, `tasks/archive/durable.py`, `tasks/_io.py` | a run's files are written without one "
+    "fsync each and synced together, eight at a time, before the manifest that lists them (same order of durable "
+    "steps; a failing fsync names its file and publishes nothing, test) | archive writing and run page of the "
+    "1,000-series fleet 1.13-1.22 to 0.80-0.85 s (alternated three times); 1,000 files of 40 kB: fsyncs one after "
+    "another 0.37-0.43 s, in eight threads 0.13 s |\n"
     """
 """
 )
