@@ -6,7 +6,9 @@ import contextlib
 import json
 import os
 import pathlib
+from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
+from typing import Any
 
 from .._io import canonical_json, sha256_bytes, sha256_file
 from ..params import ParameterStoreError, ParameterVersion, _load, list_versions, verify_params
@@ -108,32 +110,33 @@ class ParamsReads:
 
     def content(self, path: pathlib.Path) -> bytes:
         """The file's bytes (``OSError`` when it cannot be read, raised again at every call)."""
-        if path not in self._content:
-            try:
-                self._content[path] = path.read_bytes()
-            except OSError as exc:
-                self._content[path] = exc
-        found = self._content[path]
-        if isinstance(found, OSError):
-            raise found
-        return found
+        return _remembered(self._content, path, path.read_bytes, OSError)
 
     def load(self, path: pathlib.Path, model_id: str, version: int) -> ParameterVersion:
         """:func:`fitaudit.tasks.params._load` of the file, from the bytes read once."""
-        key = (path, model_id, version)
-        if key not in self._loaded:
+
+        def load_once() -> ParameterVersion:
             try:
-                try:
-                    content = self.content(path)
-                except OSError:
-                    content = None  # _load reads it again and words the error
-                self._loaded[key] = _load(path, model_id, version, content)
-            except ParameterStoreError as exc:
-                self._loaded[key] = exc
-        found = self._loaded[key]
-        if isinstance(found, ParameterStoreError):
-            raise found
-        return found
+                content = self.content(path)
+            except OSError:
+                content = None  # _load reads it again and words the error
+            return _load(path, model_id, version, content)
+
+        return _remembered(self._loaded, (path, model_id, version), load_once, ParameterStoreError)
+
+
+def _remembered(memo: dict, key: Any, compute: Callable[[], Any], errors: type[Exception]) -> Any:
+    """``compute()`` once per key: its result, or the error of type ``errors`` it raised, is kept in
+    ``memo`` and given back (raised again) at every call."""
+    if key not in memo:
+        try:
+            memo[key] = compute()
+        except errors as exc:
+            memo[key] = exc
+    found = memo[key]
+    if isinstance(found, errors):
+        raise found
+    return found
 
 
 def _promotion_problem(root: pathlib.Path, payload: dict, reads: ParamsReads | None = None) -> str | None:
