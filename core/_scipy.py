@@ -184,15 +184,13 @@ def _lbfgsb_loop(step, fun, x0, bounds, ftol, gtol, maxiter):
     """
     import numpy as np
 
-    x = np.array(x0, dtype=np.float64).ravel()
+    lo = np.array([-np.inf if b[0] is None else b[0] for b in bounds], dtype=np.float64)
+    hi = np.array([np.inf if b[1] is None else b[1] for b in bounds], dtype=np.float64)
+    x = np.clip(np.array(x0, dtype=np.float64).ravel(), lo, hi)
     n = x.size
-    lower, upper, kinds = np.zeros(n), np.zeros(n), np.zeros(n, np.int32)
-    for i, (lo, hi) in enumerate(bounds):  # scipy's bound codes: 0 none, 1 lower, 2 both, 3 upper
-        has_lo = lo is not None and not np.isinf(lo)
-        has_hi = hi is not None and not np.isinf(hi)
-        lower[i], upper[i] = (lo if has_lo else 0.0), (hi if has_hi else 0.0)
-        kinds[i] = (0, 1, 3, 2)[has_lo + 2 * has_hi]
-        x[i] = min(max(x[i], -np.inf if lo is None else lo), np.inf if hi is None else hi)
+    has_lo, has_hi = np.isfinite(lo), np.isfinite(hi)
+    lower, upper = np.where(has_lo, lo, 0.0), np.where(has_hi, hi, 0.0)
+    kinds = np.select([has_lo & has_hi, has_lo, has_hi], [2, 1, 3], 0).astype(np.int32)  # scipy's bound codes
     m = _MAXCOR
     f, g = np.array(0.0), np.zeros(n)
     work, iwork = np.zeros(2 * m * n + 5 * n + 11 * m * m + 8 * m), np.zeros(3 * n, np.int32)

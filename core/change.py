@@ -111,6 +111,12 @@ def split_statistics(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     return out[0] if out.shape[0] == 1 else out
 
 
+def _sort_keys(idx: np.ndarray, s: int) -> np.ndarray:
+    """Cell indices as 16-bit integers when ``s`` cells fit (numpy's stable sort of them is a radix
+    sort, and gathering them moves a quarter of the bytes); as they are otherwise."""
+    return idx.astype(np.int16, copy=False) if s <= np.iinfo(np.int16).max else idx
+
+
 def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     """``max_k T_k`` of each row of cell indices, in O(n) per row (no one-hot counts).
 
@@ -144,10 +150,7 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     B, n = idx.shape
     totals = np.bincount(idx[0], minlength=s)
     f = special.xlogy(np.arange(n + 1.0), np.arange(n + 1.0))
-    small = (
-        idx.astype(np.int16, copy=False) if s <= np.iinfo(np.int16).max else idx
-    )  # 16-bit keys: numpy's stable sort is a radix sort
-    order = np.argsort(small, axis=1, kind="stable")
+    order = np.argsort(_sort_keys(idx, s), axis=1, kind="stable")
     cells = np.repeat(np.arange(s), totals)
     occ = np.arange(n) - (np.cumsum(totals) - totals)[cells]
     rest = totals[cells] - occ
@@ -227,8 +230,7 @@ def locate_change(
     t_obs = float(profile_inner[k_best])
     rng = key_rng(seed, "change", n, s)
     perm = np.argsort(rng.random((permutations, n)), axis=1)
-    keys = idx.astype(np.int16) if s <= np.iinfo(np.int16).max else idx  # gathered and sorted as 16-bit keys
-    t_perm = permutation_maxima(keys[perm], s, h)
+    t_perm = permutation_maxima(_sort_keys(idx, s)[perm], s, h)  # the permuted rows gathered as sort keys
     exceed = int(np.sum(t_perm >= t_obs - 1e-9 * max(1.0, abs(t_obs))))
     split = h + k_best
     profile = np.full(n + 1, np.nan)

@@ -557,6 +557,8 @@ def test_the_direct_lbfgsb_loop_equals_scipy_minimize():
                 assert _same_lbfgsb_result(ours, theirs), (ours, theirs)
     stopped = minimize_lbfgsb(quartic, np.array([0.9, 0.5, 0.1, 0.0]), every_bound, ftol=1e-13, gtol=1e-9, maxiter=3)
     assert (stopped.status, stopped.success) == (1, False)  # the limit case above was reached, not skipped
+    # from memory: scipy 1.15 brought the C translation whose step the loop drives (its wrapper's
+    # disp and iprint were deprecated then); an older scipy falls back to scipy's function
     if tuple(int(v) for v in scipy.__version__.split(".")[:2]) >= (1, 15):
         assert _scipy._LBFGSB[0] is not None  # the direct loop is what ran, not scipy's function
 

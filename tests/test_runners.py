@@ -41,17 +41,20 @@ def dask_config(monkeypatch):
 def test_local_workers_start_without_the_nanny_trim_threshold(dask_config):
     runner = dask_runner("local:1")
     kwargs = runner.cluster_kwargs
-    assert runner.cluster_class is distributed.LocalCluster or "LocalCluster" in str(runner.cluster_class)
+    assert runner.cluster_class == "distributed.LocalCluster"
     assert kwargs == {"n_workers": 1, "threads_per_worker": 1, "processes": True, "dashboard_address": None}
     assert dask.config.get(NANNY_TRIM_SETTING) is None
     assert _worker_environment(kwargs) is None
     # the setting is what made the difference: distributed's default puts the variable there
-    with dask.config.set({NANNY_TRIM_SETTING: 65536}):
+    with dask.config.set(
+        {NANNY_TRIM_SETTING: 65536}
+    ):  # source: distributed's distributed.yaml, nanny.pre-spawn-environ
         assert _worker_environment(kwargs) == "65536"
 
 
 def test_an_address_is_used_as_it_is(dask_config):
-    with dask.config.set({NANNY_TRIM_SETTING: 65536}):  # distributed's default (other tests may have unset it)
+    # distributed's default (source: its distributed.yaml); other tests may have unset it
+    with dask.config.set({NANNY_TRIM_SETTING: 65536}):
         runner = dask_runner("tcp://127.0.0.1:8786")
         assert runner.address == "tcp://127.0.0.1:8786"
         assert dask.config.get(NANNY_TRIM_SETTING) == 65536  # a cluster of the user's keeps its own settings
