@@ -446,7 +446,8 @@ def _profile_sse(spec: ExpSmoothing, y: np.ndarray, theta: np.ndarray) -> float:
 @pytest.mark.parametrize("spec", ADDITIVE_SPECS, ids=lambda s: s.describe())
 def test_profile_value_and_gradient(spec):
     """The profile SSE (two filtered rows and a short transient) equals brute-force least squares over the
-    states, and its analytic gradient (the adjoint filter) equals central differences."""
+    states, in each of its three forms (states, batched grid, the search's), and its analytic gradient (the
+    adjoint filter) equals central differences."""
     from fitaudit.core.models.smoothing import _AdditiveProfile
 
     y = _fpp2_series("austourists")
@@ -456,6 +457,8 @@ def test_profile_value_and_gradient(spec):
     assert profile(theta)[0] == pytest.approx(_profile_sse(spec, y, theta), rel=1e-9)
     assert profile.grid_values(theta[None, :])[0] * profile.scale**2 == pytest.approx(profile(theta)[0], rel=1e-9)
     sse, grad = profile.value_and_gradient(theta)
+    # the search's fit on the lagged impulse responses (c = Q s) has the states' sum of squares: Q is invertible
+    assert sse * profile.scale**2 == pytest.approx(profile(theta)[0], rel=1e-9)
     step = 1e-6
     numeric = [
         (profile(theta + step * np.eye(theta.size)[i])[0] - profile(theta - step * np.eye(theta.size)[i])[0])

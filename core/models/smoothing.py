@@ -792,14 +792,17 @@ class _AdditiveProfile:
     annihilates d after its first ``len(num) - 1`` terms: q is a short transient ``q = Q s``,
     linear in the states s, and ``den^-1 q = Lag(h) Q s`` with h the impulse response of 1/den.
     Each evaluation therefore filters two rows (num * y and a unit impulse) whatever the number of
-    states; the states are the least-squares coefficients of the columns ``Lag(h) Q``.
+    states; the states are the least-squares coefficients of the columns ``Lag(h) Q``.  Q is square
+    (Lq x Lq) and invertible, so the profile SSE is also the least-squares fit on the columns
+    ``Lag(h)`` alone, with coefficients c = Q s: the search and the start grid work with c, and the
+    states are solved for once, at the end (:meth:`__call__`).
 
     The series is centred and scaled first (mean 0, standard deviation 1; the level state absorbs
     the shift), so sums of squares and tolerances do not depend on the units of y.
 
-    Gradient (envelope theorem, states at their least-squares values): differentiating
-    ``den * e = num * y - q`` gives ``de/dtheta_i = den^-1 (dnum_i * y - dq_i - dden_i * e)``, and
-    ``dSSE/dtheta_i = 2 a . (dnum_i * y - dq_i - dden_i * e)`` with ``a = den^-T e`` the errors
+    Gradient (envelope theorem, c at its least-squares value): differentiating
+    ``den * e = num * y - c`` (c placed at t < Lq) gives ``de/dtheta_i = den^-1 (dnum_i * y - dden_i * e)``,
+    and ``dSSE/dtheta_i = 2 a . (dnum_i * y - dden_i * e)`` with ``a = den^-T e`` the errors
     filtered backwards in time (the adjoint of the filter), so one more filtered row gives every
     component.  num and den are affine in each smoothing parameter (:meth:`_polynomials`).
     """
@@ -818,7 +821,6 @@ class _AdditiveProfile:
         self.basis = _filter_basis(self.trend, self.m)
         self.L = self.basis.shape[1]  # length of num and den
         self.Lq = self.L - 1  # length of the transient q
-        self.lag_y = _lagged(self.y, _lag_index(n, self.L))  # (n, L) of y[t - j]: num * y = lag_y @ num
         self.inputs = np.zeros((2, n))
         self.impulse = self.inputs[1]
         self.impulse[0] = 1.0
@@ -835,8 +837,11 @@ class _AdditiveProfile:
         self.toeplitz = np.subtract.outer(t, t)  # i - j
         self.toeplitz_index = np.clip(self.toeplitz, 0, None)
         self.toeplitz_mask = (self.toeplitz >= 0).astype(float)
-        self.head = self._heads(np.ones(1))[0][0]  # (Lq, k); the trend column is refilled for each phi
         self.head_powers = np.arange(1.0, self.Lq + 1)
+        # deterministic paths of the unit states at t < Lq, (Lq, k): level, trend (refilled for each phi), season
+        self.head = np.concatenate(
+            [np.ones((self.Lq, 1))] + ([self.head_powers[:, None]] if self.trend else []) + [self.season_head], axis=1
+        )
         self.index = {name: i for i, name in enumerate(self.names)}
         self.positions = tuple(self.index.get(name) for name in ("alpha", "beta", "gamma", "phi"))
         self.i_phi = self.positions[3]
@@ -849,8 +854,8 @@ class _AdditiveProfile:
             "phi": (N1, zero, A1, Bb, G1),
         }
         self.den_derivative_terms = np.stack([np.stack(terms[name]) for name in self.names], axis=1).reshape(5, -1)
-        self.y_n0 = self.lag_y @ self.basis[0]  # N0 * y (causal convolution): num * y = N0 * y + phi N1 * y
-        self.y_n1 = self.lag_y @ self.basis[1]  # N1 * y, the derivative of num * y in phi
+        self.y_n0 = np.convolve(self.y, self.basis[0])[:n]  # N0 * y (causal): num * y = N0 * y + phi N1 * y
+        self.y_n1 = np.convolve(self.y, self.basis[1])[:n]  # N1 * y, the derivative of num * y in phi
         self.one = np.ones(1)  # the numerator of 1/den
         self.padded = np.zeros(n + self.L)  # zeros around a series, for lagged and leading views
         step = self.padded.strides[0]
@@ -879,27 +884,6 @@ class _AdditiveProfile:
         C[:, 6] = C[:, 5] * C[:, 1]
         return C
 
-    def _heads(self, phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Deterministic paths of the unit states at t < Lq, (B, Lq, k), and their derivative in phi."""
-        B = phi.size
-        Lq = self.Lq
-        cols = [np.ones((B, Lq, 1))]
-        dcols = [np.zeros((B, Lq, 1))]
-        if self.trend:
-            i = np.arange(1, Lq + 1)
-            powers = phi[:, None] ** i
-            cols.append(np.cumsum(powers, axis=1)[:, :, None])  # phi + ... + phi^(t+1)
-            dcols.append(np.cumsum(i * phi[:, None] ** (i - 1), axis=1)[:, :, None])
-        if self.m:
-            cols.append(np.broadcast_to(self.season_head, (B, Lq, self.m - 1)))
-            dcols.append(np.zeros((B, Lq, self.m - 1)))
-        return np.concatenate(cols, axis=2), np.concatenate(dcols, axis=2)
-
-    def _transient(self, num: np.ndarray, D: np.ndarray) -> np.ndarray:
-        """Q = (first Lq terms of num * d) per unit state: lower-triangular Toeplitz(num) @ D, (B, Lq, k)."""
-        T = np.where(self.toeplitz >= 0, num[:, np.clip(self.toeplitz, 0, None)], 0.0)
-        return T @ D
-
     # -- evaluation ------------------------------------------------------------------------------
     def _values(self, theta: np.ndarray) -> tuple[float, float, float, float]:
         """alpha, beta, gamma, phi from a parameter vector (param order; absent: 0, 0, 0, 1)."""
@@ -923,6 +907,12 @@ class _AdditiveProfile:
             D[:, 1] = np.cumsum(p**self.head_powers)
         return num, den, D
 
+    def _filtered(self, den: np.ndarray, phi: float) -> np.ndarray:
+        """(2, n): r = den^-1 (num * y) and h = den^-1 (unit impulse), with num * y = N0 * y + phi N1 * y."""
+        np.multiply(self.y_n1, phi, out=self.inputs[0])
+        self.inputs[0] += self.y_n0
+        return lfilter(self.one, den, self.inputs, axis=-1)
+
     def _lagged_h(self, h: np.ndarray) -> np.ndarray:
         """(n, Lq) matrix h[t - j], 0 before the start: a strided view, valid until ``padded`` is written again."""
         self.padded[self.Lq : self.Lq + self.n] = h
@@ -935,9 +925,7 @@ class _AdditiveProfile:
     def _solve(self, theta: np.ndarray):
         """(SSE, states, parts) at smoothing parameters ``theta`` (param order), centred and scaled units."""
         num, den, D = self._polynomials(theta)
-        self.inputs[0] = self.lag_y @ num
-        F = lfilter(self.one, den, self.inputs, axis=-1)
-        r, h = F
+        r, h = self._filtered(den, self._values(theta)[3])
         if not (math.isfinite(r[-1]) and math.isfinite(h[-1])):  # an overflow propagates to the last term
             return np.inf, np.zeros(self.n_states), None
         Tn = self._toeplitz(num)
@@ -964,53 +952,69 @@ class _AdditiveProfile:
         dtrend = np.cumsum(self.head_powers * p ** (self.head_powers - 1.0))
         return self.toeplitz_n1 @ (D @ states) + Tn @ (dtrend * states[1])
 
-    def _den_derivatives(self, theta: np.ndarray) -> np.ndarray:
-        """(d, L) coefficients of d den / d theta_i, from
+    def _den_derivatives(self, values: tuple[float, float, float, float]) -> np.ndarray:
+        """(d, L) coefficients of d den / d theta_i at (alpha, beta, gamma, phi) (:meth:`_values`), from
         den = num + alpha (A0 + phi A1) + phi beta Bb + gamma (G0 + phi G1) (:func:`_filter_basis`)."""
-        a, b, g, p = self._values(theta)
+        a, b, g, p = values
         return (np.array([1.0, p, a, b, g]) @ self.den_derivative_terms).reshape(len(self.names), self.L)
 
     def value_and_gradient(self, theta: np.ndarray) -> tuple[float, np.ndarray]:
         """(SSE, dSSE/dtheta) at smoothing parameters ``theta`` (param order), centred and scaled units.
 
+        Least squares on the lagged impulse responses (coefficients c = Q s; see the class notes),
+        so neither Q nor the states are formed.
+
         Call within ``np.errstate(over="ignore", invalid="ignore")``: parameters far outside the
         forecastable region make the filter overflow, which is reported as an infinite SSE.
         """
-        sse, states, parts = self._solve(theta)
-        if parts is None or not np.isfinite(sse):
-            return np.inf, np.zeros(len(theta))
-        num, den, D, h, M, e, Tn = parts
-        a = lfilter(self.one, den, e[::-1])[::-1]  # den^-T e
-        self.padded[: self.n] = a
+        return self._sse_and_gradient(self._values(theta))
+
+    def _sse_and_gradient(self, values: tuple[float, float, float, float]) -> tuple[float, np.ndarray]:
+        """:meth:`value_and_gradient` at (alpha, beta, gamma, phi) (:meth:`_values`)."""
+        a, b, g, p = values
+        den = np.array([1.0, p, a, a * p, b * p, g, g * p]) @ self.basis
+        r, h = self._filtered(den, p)
+        if not (math.isfinite(r[-1]) and math.isfinite(h[-1])):  # an overflow propagates to the last term
+            return np.inf, np.zeros(len(self.names))
+        H = np.ascontiguousarray(self._lagged_h(h))  # a contiguous copy multiplies faster (same values)
+        e = r - H @ _least_squares(H, r)
+        adjoint = lfilter(self.one, den, e[::-1])[::-1]  # den^-T e
+        self.padded[: self.n] = adjoint
         self.padded[self.n :] = 0.0
-        c_e = np.correlate(self.padded[: self.n + self.Lq], e, "valid")  # sum_t a[t + j] e[t], j < L
+        c_e = np.correlate(self.padded[: self.n + self.Lq], e, "valid")  # sum_t adjoint[t + j] e[t], j < L
         self.padded[: self.n] = 0.0  # zeros before the start again, for lag_view
-        grad = -(self._den_derivatives(theta) @ c_e)
+        grad = self._den_derivatives(values) @ c_e
         if self.i_phi is not None:  # dnum/dphi * y = N1 * y
-            grad[self.i_phi] += a @ self.y_n1 - a[: self.Lq] @ self._dq_states(theta, Tn, D, states)
-        return sse, 2.0 * grad
+            grad[self.i_phi] -= adjoint @ self.y_n1
+        return float(e @ e), -2.0 * grad
 
     def objective(self, z: np.ndarray) -> tuple[float, np.ndarray]:
         """``n/2 log SSE`` (in the units of y) and its gradient in optimiser coordinates
-        (alpha, beta/alpha, gamma/(1 - alpha), phi); 1e300 where the errors overflow."""
-        theta = z.copy()
-        i_beta, i_gamma = self.index.get("beta"), self.index.get("gamma")
-        if i_beta is not None:
-            theta[i_beta] *= z[0]
-        if i_gamma is not None:
-            theta[i_gamma] *= 1.0 - z[0]
-        sse, grad = self.value_and_gradient(theta)
-        if not (np.isfinite(sse) and sse > 0):
+        (alpha, beta/alpha, gamma/(1 - alpha), phi); 1e300 where the errors overflow.
+
+        The coordinates and the chain rule are worked in Python floats (the same products as numpy's).
+        """
+        zs = z.tolist()
+        _, i_beta, i_gamma, i_phi = self.positions
+        alpha = zs[0]
+        values = (
+            alpha,
+            0.0 if i_beta is None else zs[i_beta] * alpha,
+            0.0 if i_gamma is None else zs[i_gamma] * (1.0 - alpha),
+            1.0 if i_phi is None else zs[i_phi],
+        )
+        sse, grad = self._sse_and_gradient(values)
+        if not (math.isfinite(sse) and sse > 0):
             return 1e300, np.zeros_like(z)
-        out = grad.copy()  # chain rule: beta = z_beta alpha, gamma = z_gamma (1 - alpha)
+        out = grad.tolist()  # chain rule: beta = z_beta alpha, gamma = z_gamma (1 - alpha)
         if i_beta is not None:
-            out[0] += z[i_beta] * grad[i_beta]
-            out[i_beta] = z[0] * grad[i_beta]
+            out[0] += zs[i_beta] * out[i_beta]
+            out[i_beta] *= alpha
         if i_gamma is not None:
-            out[0] -= z[i_gamma] * grad[i_gamma]
-            out[i_gamma] = (1.0 - z[0]) * grad[i_gamma]
+            out[0] -= zs[i_gamma] * out[i_gamma]
+            out[i_gamma] *= 1.0 - alpha
         half = 0.5 * self.n
-        return half * np.log(sse) + self.offset, half / sse * out
+        return half * math.log(sse) + self.offset, np.array(out) * (half / sse)
 
     def objective_values(self, Theta: np.ndarray) -> np.ndarray:
         """``n/2 log SSE`` (in the units of y) at a (B, d) batch of smoothing parameters; 1e300 where not finite."""
@@ -1022,7 +1026,7 @@ class _AdditiveProfile:
         """(de/dtheta at fixed states, de/dstates), (n, d) and (n, k), in the units of y and of the parameters."""
         with np.errstate(over="ignore", invalid="ignore"):
             sse, states, (num, den, D, h, M, e, Tn) = self._solve(theta)
-            dden = self._den_derivatives(theta)
+            dden = self._den_derivatives(self._values(theta))
             rows = -np.stack([np.convolve(p, e)[: self.n] for p in dden])
             if "phi" in self.index:
                 i = self.index["phi"]
@@ -1031,44 +1035,38 @@ class _AdditiveProfile:
             J = lfilter([1.0], den, rows, axis=-1).T
         return J * self.scale, -M
 
-    def _lag_products(self, H: np.ndarray, R: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """The lagged impulse responses and their products, from H (B, n + Lq: Lq zeros, then h) and R (B, n).
+    def _lag_products(self, RH: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The Gram matrix G (B, Lq, Lq) of the lagged impulse responses and their products with r (B, Lq),
+        from RH (B, 2, Lq + n): Lq zeros, then r (row 0) and h (row 1).
 
-        Returns the view ``lagged[b, t, j] = h[t - j]`` (B, n, Lq; valid while H lives), its Gram
-        matrix G (B, Lq, Lq) and its products with R (B, Lq).  ``G_ij = sum_t h(t-i) h(t-j)`` is the
-        lag |i-j| autocorrelation less its last min(i, j) products, so nothing of size n x Lq is formed.
+        ``G_ij = sum_t h(t-i) h(t-j)`` is the lag |i-j| autocorrelation less its last min(i, j)
+        products, so nothing of size n x Lq is formed.
         """
-        B, n, Lq = R.shape[0], self.n, self.Lq
-        rs, ts = H.strides
-        lagged = np.ndarray((B, n, Lq), np.float64, H, Lq * ts, (rs, ts, -ts))
-        auto = np.einsum("btj,bt->bj", lagged, H[:, Lq:])
-        cross = np.einsum("btj,bt->bj", lagged, R)
+        B, n, Lq = RH.shape[0], self.n, self.Lq
+        H = RH[:, 1]
+        rs, _, ts = RH.strides
+        lagged = np.ndarray((B, n, Lq), np.float64, RH, (n + 2 * Lq) * ts, (rs, ts, -ts))  # h[t - j] at [b, t, j]
+        cross, auto = np.moveaxis(np.einsum("btj,bst->bsj", lagged, RH[:, :, Lq:]), 1, 0)
         last = H[:, self.tail_index[0]] * H[:, self.tail_index[1]]  # (B, Lq lags, Lq): the last products
         tails = np.concatenate([np.zeros((B, Lq, 1)), np.cumsum(last[:, :, ::-1], axis=2)], axis=2)
-        return lagged, auto[:, self.gram_lag] - tails[:, self.gram_lag, self.gram_first], cross
+        return auto[:, self.gram_lag] - tails[:, self.gram_lag, self.gram_first], cross
 
     def grid_values(self, Theta: np.ndarray) -> np.ndarray:
-        """Profile SSE (centred and scaled units) at a (B, d) batch of smoothing parameters; inf if not finite."""
+        """Profile SSE (centred and scaled units) at a (B, d) batch of smoothing parameters; inf if not finite.
+
+        The normal equations are those of :meth:`value_and_gradient` (coefficients c = Q s of the
+        lagged impulse responses), batched.
+        """
         C = self._coefficients(Theta)
-        num = C[:, :2] @ self.basis[:2]
         den = C @ self.basis
-        B, n, Lq = C.shape[0], self.n, self.Lq
-        # num * y, written where its filtered rows go: a (B, n) temporary costs more in fresh pages than in arithmetic
-        R = np.multiply(C[:, 1:2], self.y_n1, out=np.empty((B, n)))
-        R += self.y_n0
-        H = np.zeros((B, n + Lq))  # impulse responses after Lq zeros
+        B, Lq = C.shape[0], self.Lq
+        RH = np.zeros((B, 2, Lq + self.n))  # Lq zeros, then r and h
         with np.errstate(over="ignore", invalid="ignore"):
             for b in range(B):  # scipy filters one coefficient set per call
-                self.inputs[0] = R[b]
-                R[b], H[b, Lq:] = lfilter(self.one, den[b], self.inputs, axis=-1)
-            finite = np.isfinite(R[:, -1]) & np.isfinite(H[:, -1])  # an overflow propagates to the last term
-            R[~finite] = 0.0
-            H[~finite] = 0.0
-            D, _ = self._heads(C[:, 1])
-            Q = self._transient(num, D)
-            _, G, cross = self._lag_products(H, R)
-            A = np.swapaxes(Q, 1, 2) @ G @ Q
-            rhs = np.einsum("bqk,bq->bk", Q, cross)
+                RH[b, :, Lq:] = self._filtered(den[b], C[b, 1])
+            finite = np.isfinite(RH[:, 0, -1]) & np.isfinite(RH[:, 1, -1])  # an overflow propagates to the last term
+            RH[~finite] = 0.0
+            A, rhs = self._lag_products(RH)
             scale = np.sqrt(np.abs(np.einsum("bii->bi", A)))
             scale[~(scale > 0)] = 1.0
             As = A / scale[:, :, None] / scale[:, None, :]
@@ -1076,9 +1074,10 @@ class _AdditiveProfile:
                 coef = np.linalg.solve(As, (rhs / scale)[:, :, None])[..., 0]
             except np.linalg.LinAlgError:
                 coef = np.stack([np.linalg.lstsq(a, b, rcond=None)[0] for a, b in zip(As, rhs / scale)])
+            R = RH[:, 0, Lq:]
             total = np.einsum("bn,bn->b", R, R)
             sse = total - np.einsum("bk,bk->b", rhs / scale, coef)
-            # the difference loses digits when the fit removes most of R (relative error ~ 1e-16 total / sse):
+            # the difference loses digits when the fit removes most of r (relative error ~ 1e-16 total / sse):
             # such points are evaluated with explicit errors
             for b in np.nonzero(finite & ~(sse > 1e-8 * total))[0]:
                 sse[b] = self._solve(Theta[b])[0]
@@ -1118,15 +1117,6 @@ def _filter_basis(trend: bool, m: int) -> np.ndarray:
             row(np.convolve(bm, t1)) if m else zero,
         ]
     )
-
-
-def _lag_index(n: int, lags: int) -> np.ndarray:
-    """Index into ``concatenate([zeros(lags), x])`` giving the (n, lags) matrix x[t - j] (0 before the start)."""
-    return lags + np.arange(n)[:, None] - np.arange(lags)[None, :]
-
-
-def _lagged(x: np.ndarray, index: np.ndarray) -> np.ndarray:
-    return np.concatenate([np.zeros(index.shape[1]), x])[index]
 
 
 def _least_squares(M: np.ndarray, r: np.ndarray) -> np.ndarray:
