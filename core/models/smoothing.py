@@ -821,9 +821,10 @@ class _AdditiveProfile:
         self.basis = _filter_basis(self.trend, self.m)
         self.L = self.basis.shape[1]  # length of num and den
         self.Lq = self.L - 1  # length of the transient q
-        self.inputs = np.zeros((2, n))
-        self.impulse = self.inputs[1]
-        self.impulse[0] = 1.0
+        # the filters' inputs, Lq zeros first: num * y and a unit impulse.  The outputs then start with
+        # Lq exact zeros, which give the lagged impulse responses h[t - j] as a view (:meth:`_lagged`)
+        self.inputs = np.zeros((2, self.Lq + n))
+        self.inputs[1, self.Lq] = 1.0
         t = np.arange(self.Lq)
         # deterministic paths of the unit seasonal states at t < Lq (s_k is used at t = m-1-k mod m, minus s_{m-1})
         self.season_head = (
@@ -857,18 +858,14 @@ class _AdditiveProfile:
         self.y_n0 = np.convolve(self.y, self.basis[0])[:n]  # N0 * y (causal): num * y = N0 * y + phi N1 * y
         self.y_n1 = np.convolve(self.y, self.basis[1])[:n]  # N1 * y, the derivative of num * y in phi
         self.one = np.ones(1)  # the numerator of 1/den
-        self.padded = np.zeros(n + self.L)  # zeros around a series, for lagged and leading views
-        step = self.padded.strides[0]
-        # lag_view[t, j] = padded[Lq + t - j] (a read-only strided view)
-        self.lag_view = np.lib.stride_tricks.as_strided(
-            self.padded[self.Lq :], shape=(n, self.Lq), strides=(step, -step), writeable=False
-        )
+        self.padded = np.zeros(n + self.Lq)  # a series, then Lq zeros that stay zero
         self.n_states = self.head.shape[1]
         self.toeplitz_n1 = self._toeplitz(self.basis[1])
         # G_ij = sum_t h(t-i) h(t-j) = (lag |i-j| autocorrelation) - (its last min(i, j) terms)
         self.gram_lag = np.abs(self.toeplitz)
-        self.gram_first = np.minimum.outer(t, t)
-        self.tail_index = (n - t[:, None] + t[None, :], n + np.broadcast_to(t, (self.Lq, self.Lq)))  # in padded h
+        # the last terms of h reversed, h[n-1], h[n-2], ..., in the lower-triangular Toeplitz matrix V of the Gram tail
+        self.tail_index = np.clip(self.toeplitz - 1, 0, None)
+        self.tail_mask = (self.toeplitz >= 1).astype(float)
 
     # -- filter coefficients -----------------------------------------------------------------
     def _coefficients(self, Theta: np.ndarray) -> np.ndarray:
@@ -907,16 +904,32 @@ class _AdditiveProfile:
             D[:, 1] = np.cumsum(p**self.head_powers)
         return num, den, D
 
+    def _num_y(self, phi, out: np.ndarray) -> None:
+        """Write num * y = N0 * y + phi N1 * y to ``out`` (n,), or (B, n) for phi of shape (B, 1)."""
+        np.multiply(phi, self.y_n1, out=out)
+        out += self.y_n0
+
     def _filtered(self, den: np.ndarray, phi: float) -> np.ndarray:
-        """(2, n): r = den^-1 (num * y) and h = den^-1 (unit impulse), with num * y = N0 * y + phi N1 * y."""
-        np.multiply(self.y_n1, phi, out=self.inputs[0])
-        self.inputs[0] += self.y_n0
+        """(2, n): r = den^-1 (num * y) and h = den^-1 (unit impulse)."""
+        self._num_y(phi, self.inputs[0, self.Lq :])
         return lfilter(self.one, den, self.inputs, axis=-1)
 
-    def _lagged_h(self, h: np.ndarray) -> np.ndarray:
-        """(n, Lq) matrix h[t - j], 0 before the start: a strided view, valid until ``padded`` is written again."""
-        self.padded[self.Lq : self.Lq + self.n] = h
-        return self.lag_view
+    def _lagged(self, F: np.ndarray) -> np.ndarray:
+        """The (..., n, Lq) view h[t - j] of filtered rows F (..., 2, Lq + n) (:meth:`_filtered`)."""
+        *batch, _, width = F.shape
+        step = F.strides[-1]
+        start = (width + self.Lq) * step  # row 1, after its Lq zeros
+        return np.ndarray((*batch, self.n, self.Lq), np.float64, F, start, (*F.strides[:-2], step, -step))
+
+    def _gram(self, auto: np.ndarray, F: np.ndarray) -> np.ndarray:
+        """``G_ij = sum_t h(t-i) h(t-j)`` (..., Lq, Lq) from the autocorrelations of h at lags 0..Lq-1 (..., Lq).
+
+        G_ij is the lag |i-j| autocorrelation less the products that run past the end of the series:
+        ``G_(i+1)(j+1) = G_ij - h(n-1-i) h(n-1-j)``, so ``G = Toeplitz(auto) - V V'`` with V the
+        lower-triangular Toeplitz matrix of the last terms of h, newest first, below its diagonal.
+        """
+        V = F[..., 1, : -self.Lq - 1 : -1][..., self.tail_index] * self.tail_mask
+        return auto[..., self.gram_lag] - V @ np.swapaxes(V, -1, -2)
 
     def _toeplitz(self, poly: np.ndarray) -> np.ndarray:
         """Lower-triangular Toeplitz matrix (Lq, Lq) of the first Lq coefficients of ``poly``."""
@@ -925,11 +938,12 @@ class _AdditiveProfile:
     def _solve(self, theta: np.ndarray):
         """(SSE, states, parts) at smoothing parameters ``theta`` (param order), centred and scaled units."""
         num, den, D = self._polynomials(theta)
-        r, h = self._filtered(den, self._values(theta)[3])
+        F = self._filtered(den, self._values(theta)[3])
+        r, h = F[0, self.Lq :], F[1, self.Lq :]
         if not (math.isfinite(r[-1]) and math.isfinite(h[-1])):  # an overflow propagates to the last term
             return np.inf, np.zeros(self.n_states), None
         Tn = self._toeplitz(num)
-        M = np.ascontiguousarray(self._lagged_h(h)) @ (Tn @ D)  # a contiguous copy multiplies faster (same values)
+        M = np.ascontiguousarray(self._lagged(F)) @ (Tn @ D)  # a contiguous copy multiplies faster (same values)
         states = _least_squares(M, r)
         e = r - M @ states
         return float(e @ e), states, (num, den, D, h, M, e, Tn)
@@ -973,16 +987,18 @@ class _AdditiveProfile:
         """:meth:`value_and_gradient` at (alpha, beta, gamma, phi) (:meth:`_values`)."""
         a, b, g, p = values
         den = np.array([1.0, p, a, a * p, b * p, g, g * p]) @ self.basis
-        r, h = self._filtered(den, p)
+        F = self._filtered(den, p)
+        Lq, n = self.Lq, self.n
+        r, h = F[0, Lq:], F[1, Lq:]
         if not (math.isfinite(r[-1]) and math.isfinite(h[-1])):  # an overflow propagates to the last term
             return np.inf, np.zeros(len(self.names))
-        H = np.ascontiguousarray(self._lagged_h(h))  # a contiguous copy multiplies faster (same values)
-        e = r - H @ _least_squares(H, r)
+        # correlations with h after its Lq zeros: index k holds lag Lq - k
+        auto = np.correlate(F[1], h, "valid")[Lq:0:-1]  # sum_t h(t) h(t - j), j < Lq
+        cross = np.correlate(F[1], r, "valid")[Lq:0:-1]  # sum_t h(t - j) r(t)
+        e = r - np.convolve(h, _least_squares(self._lagged(F), r, self._gram(auto, F), cross))[:n]
         adjoint = lfilter(self.one, den, e[::-1])[::-1]  # den^-T e
-        self.padded[: self.n] = adjoint
-        self.padded[self.n :] = 0.0
-        c_e = np.correlate(self.padded[: self.n + self.Lq], e, "valid")  # sum_t adjoint[t + j] e[t], j < L
-        self.padded[: self.n] = 0.0  # zeros before the start again, for lag_view
+        self.padded[:n] = adjoint
+        c_e = np.correlate(self.padded, e, "valid")  # sum_t adjoint[t + j] e[t], j < L
         grad = self._den_derivatives(values) @ c_e
         if self.i_phi is not None:  # dnum/dphi * y = N1 * y
             grad[self.i_phi] -= adjoint @ self.y_n1
@@ -1036,20 +1052,10 @@ class _AdditiveProfile:
         return J * self.scale, -M
 
     def _lag_products(self, RH: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """The Gram matrix G (B, Lq, Lq) of the lagged impulse responses and their products with r (B, Lq),
-        from RH (B, 2, Lq + n): Lq zeros, then r (row 0) and h (row 1).
-
-        ``G_ij = sum_t h(t-i) h(t-j)`` is the lag |i-j| autocorrelation less its last min(i, j)
-        products, so nothing of size n x Lq is formed.
-        """
-        B, n, Lq = RH.shape[0], self.n, self.Lq
-        H = RH[:, 1]
-        rs, _, ts = RH.strides
-        lagged = np.ndarray((B, n, Lq), np.float64, RH, (n + 2 * Lq) * ts, (rs, ts, -ts))  # h[t - j] at [b, t, j]
-        cross, auto = np.moveaxis(np.einsum("btj,bst->bsj", lagged, RH[:, :, Lq:]), 1, 0)
-        last = H[:, self.tail_index[0]] * H[:, self.tail_index[1]]  # (B, Lq lags, Lq): the last products
-        tails = np.concatenate([np.zeros((B, Lq, 1)), np.cumsum(last[:, :, ::-1], axis=2)], axis=2)
-        return auto[:, self.gram_lag] - tails[:, self.gram_lag, self.gram_first], cross
+        """The Gram matrix (B, Lq, Lq) of the lagged impulse responses and their products with r (B, Lq),
+        from B sets of filtered rows (B, 2, Lq + n) (:meth:`_filtered`); nothing of size n x Lq is formed."""
+        cross, auto = np.moveaxis(np.einsum("btj,bst->bsj", self._lagged(RH), RH[:, :, self.Lq :]), 1, 0)
+        return self._gram(auto, RH), cross
 
     def grid_values(self, Theta: np.ndarray) -> np.ndarray:
         """Profile SSE (centred and scaled units) at a (B, d) batch of smoothing parameters; inf if not finite.
@@ -1060,10 +1066,12 @@ class _AdditiveProfile:
         C = self._coefficients(Theta)
         den = C @ self.basis
         B, Lq = C.shape[0], self.Lq
-        RH = np.zeros((B, 2, Lq + self.n))  # Lq zeros, then r and h
+        RH = np.zeros((B, 2, Lq + self.n))  # the inputs of :meth:`_filtered`, filtered in place
+        self._num_y(C[:, 1:2], RH[:, 0, Lq:])
+        RH[:, 1, Lq] = 1.0
         with np.errstate(over="ignore", invalid="ignore"):
             for b in range(B):  # scipy filters one coefficient set per call
-                RH[b, :, Lq:] = self._filtered(den[b], C[b, 1])
+                RH[b] = lfilter(self.one, den[b], RH[b], axis=-1)
             finite = np.isfinite(RH[:, 0, -1]) & np.isfinite(RH[:, 1, -1])  # an overflow propagates to the last term
             RH[~finite] = 0.0
             A, rhs = self._lag_products(RH)
@@ -1119,13 +1127,16 @@ def _filter_basis(trend: bool, m: int) -> np.ndarray:
     )
 
 
-def _least_squares(M: np.ndarray, r: np.ndarray) -> np.ndarray:
-    """Least-squares coefficients by the normal equations (lstsq if not positive definite).
+def _least_squares(M: np.ndarray, r: np.ndarray, gram: np.ndarray | None = None, rhs: np.ndarray | None = None):
+    """Least-squares coefficients by the normal equations ``gram = M'M``, ``rhs = M'r`` (formed here
+    unless given), or lstsq when gram is not positive definite.
 
     The residual is computed afterwards from the coefficients, so coefficient errors affect the
     sum of squares only to second order.
     """
-    _, coef, info = lapack.dposv(M.T @ M, M.T @ r)  # Cholesky; its accuracy does not depend on column scaling
+    gram = M.T @ M if gram is None else gram
+    rhs = M.T @ r if rhs is None else rhs
+    _, coef, info = lapack.dposv(gram, rhs)  # Cholesky; its accuracy does not depend on column scaling
     if info == 0:
         return coef
     return np.linalg.lstsq(M, r, rcond=None)[0]
