@@ -11,6 +11,7 @@ and ``signal.lfilter`` on every evaluation) are plain instance attribute look-up
 from __future__ import annotations
 
 import importlib
+import sys
 
 __all__ = [
     "LazyModule",
@@ -136,6 +137,7 @@ _LBFGSB_TASK = {
     604: "XTOL TEST SATISFIED",
 }
 _MAXCOR, _MAXLS, _MAXFUN = 10, 20, 15000  # scipy's defaults for method="L-BFGS-B"
+_EPS = sys.float_info.epsilon  # np.finfo(float).eps, without numpy's finfo machinery
 
 
 def minimize_lbfgsb(fun, x0, bounds, *, ftol: float, gtol: float, maxiter: int):
@@ -190,13 +192,13 @@ def _lbfgsb_loop(step, fun, x0, bounds, ftol, gtol, maxiter):
     n = x.size
     has_lo, has_hi = np.isfinite(lo), np.isfinite(hi)
     lower, upper = np.where(has_lo, lo, 0.0), np.where(has_hi, hi, 0.0)
-    kinds = np.select([has_lo & has_hi, has_lo, has_hi], [2, 1, 3], 0).astype(np.int32)  # scipy's bound codes
+    kinds = np.where(has_lo, np.where(has_hi, 2, 1), np.where(has_hi, 3, 0)).astype(np.int32)  # scipy's bound codes
     m = _MAXCOR
     f, g = np.array(0.0), np.zeros(n)
     work, iwork = np.zeros(2 * m * n + 5 * n + 11 * m * m + 8 * m), np.zeros(3 * n, np.int32)
     task, line_task = np.zeros(2, np.int32), np.zeros(2, np.int32)
     lsave, isave, dsave = np.zeros(4, np.int32), np.zeros(44, np.int32), np.zeros(29)
-    factr = ftol / np.finfo(float).eps
+    factr = ftol / _EPS
     nfev = nit = 0
     last_x = None
     while True:

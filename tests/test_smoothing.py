@@ -469,6 +469,34 @@ def test_profile_value_and_gradient(spec):
     np.testing.assert_allclose(grad * profile.scale**2, numeric, rtol=1e-5, atol=1e-6 * sse * profile.scale**2)
 
 
+def test_least_squares_falls_back_to_lstsq_on_a_singular_gram():
+    """The profile's normal equations answer as numpy's lstsq, also when the Gram matrix is singular
+    (then lstsq answers, on the matrix formed only then)."""
+    from fitaudit.core.models.smoothing import _least_squares
+
+    rng = np.random.default_rng(7)
+    r = rng.normal(size=50)
+    full = rng.normal(size=(50, 3))
+    singular = np.column_stack([full[:, 0], full[:, 0], full[:, 1]])  # two equal columns
+    formed = []
+
+    def lazily(M):
+        def make():
+            formed.append(M)
+            return M
+
+        return make
+
+    # common practice: numpy's lstsq is the reference least-squares solver (minimum norm when rank-deficient)
+    np.testing.assert_allclose(_least_squares(full, r), np.linalg.lstsq(full, r, rcond=None)[0], rtol=1e-10)
+    got = _least_squares(lazily(full), r, full.T @ full, full.T @ r)
+    np.testing.assert_allclose(got, np.linalg.lstsq(full, r, rcond=None)[0], rtol=1e-10)
+    assert formed == []  # a positive definite Gram matrix needs no matrix
+    got = _least_squares(lazily(singular), r, singular.T @ singular, singular.T @ r)
+    np.testing.assert_allclose(got, np.linalg.lstsq(singular, r, rcond=None)[0], rtol=1e-10)
+    assert len(formed) == 1
+
+
 def test_standard_errors_match_a_central_difference_jacobian():
     """bse from the analytic Jacobian of the errors equal those of a central-difference Jacobian."""
     y = _fpp2_series("austourists")

@@ -527,7 +527,7 @@ class ExpSmoothing(ForecastModel):
         if profile is None:
             profile = _AdditiveProfile(self, y)
         bounds = self._bounds()[: len(self._smoothing_names())]
-        grid = np.array(self._start_grid())
+        grid = self._start_grid()
         with np.errstate(over="ignore", invalid="ignore"):
             values = profile.objective_values(self._to_natural(grid))
             runs = [
@@ -541,11 +541,10 @@ class ExpSmoothing(ForecastModel):
             out.append((np.concatenate([theta, profile(theta)[1]]), res))
         return out
 
-    def _start_grid(self) -> list[np.ndarray]:
-        """Starting points (optimiser coordinates) for the smoothing parameters."""
-        axes = _START_AXES
-        grids = np.meshgrid(*[axes[name] for name in self._smoothing_names()], indexing="ij")
-        return list(np.stack([g.ravel() for g in grids], axis=1))
+    def _start_grid(self) -> np.ndarray:
+        """Starting points (optimiser coordinates) for the smoothing parameters, one per row."""
+        axes = [_START_AXES[name] for name in self._smoothing_names()]
+        return np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, len(axes))
 
     def _fit_multiplicative(self, y: np.ndarray):
         scale = float(np.mean(y))
@@ -828,10 +827,7 @@ class _AdditiveProfile:
         t = np.arange(self.Lq)
         # deterministic paths of the unit seasonal states at t < Lq (s_k is used at t = m-1-k mod m, minus s_{m-1})
         self.season_head = (
-            np.stack(
-                [((t % self.m) == self.m - 1 - k).astype(float) - ((t % self.m) == 0) for k in range(self.m - 1)],
-                axis=1,
-            )
+            ((t % self.m)[:, None] == self.m - 1 - np.arange(self.m - 1)) - ((t % self.m) == 0)[:, None].astype(float)
             if self.m
             else np.zeros((self.Lq, 0))
         )
@@ -846,19 +842,15 @@ class _AdditiveProfile:
         self.index = {name: i for i, name in enumerate(self.names)}
         self.positions = tuple(self.index.get(name) for name in ("alpha", "beta", "gamma", "phi"))
         self.i_phi = self.positions[3]
-        _, N1, A0, A1, Bb, G0, G1 = self.basis
-        zero = np.zeros(self.L)
-        terms = {  # d den / d theta_i = sum of (1, phi, alpha, beta, gamma) times these rows
-            "alpha": (A0, A1, zero, zero, zero),
-            "beta": (zero, Bb, zero, zero, zero),
-            "gamma": (G0, G1, zero, zero, zero),
-            "phi": (N1, zero, A1, Bb, G1),
-        }
-        self.den_derivative_terms = np.stack([np.stack(terms[name]) for name in self.names], axis=1).reshape(5, -1)
+        # d den / d theta_i = sum of (1, phi, alpha, beta, gamma) times these rows of the basis (7: a zero row)
+        terms = {"alpha": (2, 3, 7, 7, 7), "beta": (7, 4, 7, 7, 7), "gamma": (5, 6, 7, 7, 7), "phi": (1, 7, 3, 4, 6)}
+        rows = np.array([terms[name] for name in self.names]).T  # (5, d)
+        self.den_derivative_terms = np.vstack([self.basis, np.zeros(self.L)])[rows].reshape(5, -1)
         self.y_n0 = np.convolve(self.y, self.basis[0])[:n]  # N0 * y (causal): num * y = N0 * y + phi N1 * y
         self.y_n1 = np.convolve(self.y, self.basis[1])[:n]  # N1 * y, the derivative of num * y in phi
         self.one = np.ones(1)  # the numerator of 1/den
         self.padded = np.zeros(n + self.Lq)  # a series, then Lq zeros that stay zero
+        self._solved: tuple = (None, None)  # (parameters as bytes, answer) of the last :meth:`_solve`
         self.n_states = self.head.shape[1]
         self.toeplitz_n1 = self._toeplitz(self.basis[1])
         # G_ij = sum_t h(t-i) h(t-j) = (lag |i-j| autocorrelation) - (its last min(i, j) terms)
@@ -936,7 +928,18 @@ class _AdditiveProfile:
         return poly[self.toeplitz_index] * self.toeplitz_mask
 
     def _solve(self, theta: np.ndarray):
-        """(SSE, states, parts) at smoothing parameters ``theta`` (param order), centred and scaled units."""
+        """(SSE, states, parts) at smoothing parameters ``theta`` (param order), centred and scaled units.
+
+        The last answer is kept: a fit asks for the states at its optimum and then for the errors'
+        Jacobian there (:meth:`error_jacobian`).  Its arrays are read, never written, by the callers.
+        """
+        key = theta.tobytes()
+        if self._solved[0] == key:
+            return self._solved[1]
+        self._solved = (key, self._solve_anew(theta))
+        return self._solved[1]
+
+    def _solve_anew(self, theta: np.ndarray):
         num, den, D = self._polynomials(theta)
         F = self._filtered(den, self._values(theta)[3])
         r, h = F[0, self.Lq :], F[1, self.Lq :]
@@ -995,7 +998,7 @@ class _AdditiveProfile:
         # correlations with h after its Lq zeros: index k holds lag Lq - k
         auto = np.correlate(F[1], h, "valid")[Lq:0:-1]  # sum_t h(t) h(t - j), j < Lq
         cross = np.correlate(F[1], r, "valid")[Lq:0:-1]  # sum_t h(t - j) r(t)
-        e = r - np.convolve(h, _least_squares(self._lagged(F), r, self._gram(auto, F), cross))[:n]
+        e = r - np.convolve(h, _least_squares(lambda: self._lagged(F), r, self._gram(auto, F), cross))[:n]
         adjoint = lfilter(self.one, den, e[::-1])[::-1]  # den^-T e
         self.padded[:n] = adjoint
         c_e = np.correlate(self.padded, e, "valid")  # sum_t adjoint[t + j] e[t], j < L
@@ -1127,9 +1130,10 @@ def _filter_basis(trend: bool, m: int) -> np.ndarray:
     )
 
 
-def _least_squares(M: np.ndarray, r: np.ndarray, gram: np.ndarray | None = None, rhs: np.ndarray | None = None):
+def _least_squares(M, r: np.ndarray, gram: np.ndarray | None = None, rhs: np.ndarray | None = None) -> np.ndarray:
     """Least-squares coefficients by the normal equations ``gram = M'M``, ``rhs = M'r`` (formed here
-    unless given), or lstsq when gram is not positive definite.
+    unless given), or lstsq when gram is not positive definite.  With gram and rhs given, M may be a
+    function that returns the matrix (it is then formed only for lstsq).
 
     The residual is computed afterwards from the coefficients, so coefficient errors affect the
     sum of squares only to second order.
@@ -1139,7 +1143,7 @@ def _least_squares(M: np.ndarray, r: np.ndarray, gram: np.ndarray | None = None,
     _, coef, info = lapack.dposv(gram, rhs)  # Cholesky; its accuracy does not depend on column scaling
     if info == 0:
         return coef
-    return np.linalg.lstsq(M, r, rcond=None)[0]
+    return np.linalg.lstsq(M if isinstance(M, np.ndarray) else M(), r, rcond=None)[0]
 
 
 def _cycle_operator(c: Mapping[str, np.ndarray], m: int) -> np.ndarray:
