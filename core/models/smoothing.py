@@ -853,8 +853,7 @@ class _AdditiveProfile:
         self._solved: tuple = (None, None)  # (parameters as bytes, answer) of the last :meth:`_solve`
         self.n_states = self.head.shape[1]
         self.toeplitz_n1 = self._toeplitz(self.basis[1])
-        # G_ij = sum_t h(t-i) h(t-j) = (lag |i-j| autocorrelation) - (its last min(i, j) terms)
-        self.gram_lag = np.abs(self.toeplitz)
+        self.gram_lag = np.abs(self.toeplitz)  # the lag of each entry of the Gram matrix (:meth:`_gram`)
         # the last terms of h reversed, h[n-1], h[n-2], ..., in the lower-triangular Toeplitz matrix V of the Gram tail
         self.tail_index = np.clip(self.toeplitz - 1, 0, None)
         self.tail_mask = (self.toeplitz >= 1).astype(float)
@@ -902,7 +901,7 @@ class _AdditiveProfile:
         out += self.y_n0
 
     def _filtered(self, den: np.ndarray, phi: float) -> np.ndarray:
-        """(2, n): r = den^-1 (num * y) and h = den^-1 (unit impulse)."""
+        """(2, Lq + n): Lq zeros, then r = den^-1 (num * y) (row 0) and h = den^-1 (unit impulse) (row 1)."""
         self._num_y(phi, self.inputs[0, self.Lq :])
         return lfilter(self.one, den, self.inputs, axis=-1)
 
