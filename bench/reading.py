@@ -68,11 +68,11 @@ def _fit_bound(row: dict) -> str:
     per = ", ".join(f"{k} {v:.1f} ms" for k, v in sorted(fits["per_family_ms"].items()))
     flow_alone = row["measured"].rsplit("flow alone ", 1)[-1]
     return (
-        f"**Fit-bound ratio (goal 3): {_verdict(row)}, {row['ratio_text']}** (flow alone {flow_alone}). The fits "
-        f"alone (refit and production filter of every series; per series {per}) take {fits['fit_bound_s']:.1f} s "
-        f"split over {fits['workers']} workers. The audit adds the scoring, the calibration and the change "
-        "location, the candidate search its own fits and null tables, and the report and archive their pages and "
-        "files; the server start is counted on the fleet side."
+        f"**Fit-bound ratio (goal at most 3): {_verdict(row)}, {row['ratio_text']}** (flow alone {flow_alone}). "
+        f"The fits alone (refit and production filter of every series; per series {per}) take "
+        f"{fits['fit_bound_s']:.1f} s split over {fits['workers']} workers. The audit adds the scoring, the "
+        "calibration and the change location, the candidate search its own fits and null tables, and the report "
+        "and archive their pages and files; the server start is counted on the fleet side."
     )
 
 
