@@ -469,6 +469,29 @@ def test_profile_value_and_gradient(spec):
     np.testing.assert_allclose(grad * profile.scale**2, numeric, rtol=1e-5, atol=1e-6 * sse * profile.scale**2)
 
 
+@pytest.mark.parametrize("spec", ADDITIVE_SPECS, ids=lambda s: s.describe())
+def test_search_and_state_fits_agree_at_the_corners_of_the_bounds(spec):
+    """The search fits on the lagged impulse responses (c = Q s) instead of the states; the two sums of squares
+    agree wherever the search can go, the corners of its box included (Q invertible there too)."""
+    from fitaudit.core.models.smoothing import PHI_RANGE, SMOOTHING_MARGIN, _AdditiveProfile
+
+    y = _fpp2_series("austourists")
+    profile = _AdditiveProfile(spec, y)
+    ends = {"phi": PHI_RANGE}
+    names = spec._smoothing_names()
+    corners = np.stack(
+        np.meshgrid(*[ends.get(n, (SMOOTHING_MARGIN, 1.0 - SMOOTHING_MARGIN)) for n in names], indexing="ij"), axis=-1
+    ).reshape(-1, len(names))
+    theta = spec._to_natural(corners)  # optimiser coordinates to parameters (beta = z alpha, gamma = z (1 - alpha))
+    with np.errstate(over="ignore", invalid="ignore"):
+        for point in theta:
+            states_sse = profile(point)[0]
+            if not np.isfinite(states_sse):
+                continue  # outside the forecastable region both report an overflow
+            search_sse = profile.value_and_gradient(point)[0] * profile.scale**2
+            assert search_sse == pytest.approx(states_sse, rel=1e-8)
+
+
 def test_least_squares_falls_back_to_lstsq_on_a_singular_gram():
     """The profile's normal equations answer as numpy's lstsq, also when the Gram matrix is singular
     (then lstsq answers, on the matrix formed only then)."""
