@@ -884,10 +884,16 @@ class _AdditiveProfile:
             1.0 if i_phi is None else t[i_phi],
         )
 
+    def _den(self, values: tuple[float, float, float, float]) -> np.ndarray:
+        """den at (alpha, beta, gamma, phi) (:meth:`_values`); :meth:`_coefficients` is the batched form."""
+        a, b, g, p = values
+        return np.array([1.0, p, a, a * p, b * p, g, g * p]) @ self.basis
+
     def _polynomials(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """num, den and the unit-state paths D (Lq, k) at one parameter vector (param order)."""
-        a, b, g, p = self._values(theta)
-        den = np.array([1.0, p, a, a * p, b * p, g, g * p]) @ self.basis
+        values = self._values(theta)
+        p = values[3]
+        den = self._den(values)
         num = self.basis[0] + p * self.basis[1]
         D = self.head
         if self.trend:
@@ -987,9 +993,8 @@ class _AdditiveProfile:
 
     def _sse_and_gradient(self, values: tuple[float, float, float, float]) -> tuple[float, np.ndarray]:
         """:meth:`value_and_gradient` at (alpha, beta, gamma, phi) (:meth:`_values`)."""
-        a, b, g, p = values
-        den = np.array([1.0, p, a, a * p, b * p, g, g * p]) @ self.basis
-        F = self._filtered(den, p)
+        den = self._den(values)
+        F = self._filtered(den, values[3])
         Lq, n = self.Lq, self.n
         r, h = F[0, Lq:], F[1, Lq:]
         if not (math.isfinite(r[-1]) and math.isfinite(h[-1])):  # an overflow propagates to the last term
@@ -1012,24 +1017,18 @@ class _AdditiveProfile:
 
         The coordinates and the chain rule are worked in Python floats (the same products as numpy's).
         """
-        zs = z.tolist()
-        _, i_beta, i_gamma, i_phi = self.positions
-        alpha = zs[0]
-        values = (
-            alpha,
-            0.0 if i_beta is None else zs[i_beta] * alpha,
-            0.0 if i_gamma is None else zs[i_gamma] * (1.0 - alpha),
-            1.0 if i_phi is None else zs[i_phi],
-        )
+        alpha, z_beta, z_gamma, phi = self._values(z)  # absent parameters: 0, 0, 1 as for theta
+        values = (alpha, z_beta * alpha, z_gamma * (1.0 - alpha), phi)
         sse, grad = self._sse_and_gradient(values)
         if not (math.isfinite(sse) and sse > 0):
             return 1e300, np.zeros_like(z)
         out = grad.tolist()  # chain rule: beta = z_beta alpha, gamma = z_gamma (1 - alpha)
+        _, i_beta, i_gamma, _ = self.positions
         if i_beta is not None:
-            out[0] += zs[i_beta] * out[i_beta]
+            out[0] += z_beta * out[i_beta]
             out[i_beta] *= alpha
         if i_gamma is not None:
-            out[0] -= zs[i_gamma] * out[i_gamma]
+            out[0] -= z_gamma * out[i_gamma]
             out[i_gamma] *= 1.0 - alpha
         half = 0.5 * self.n
         return half * math.log(sse) + self.offset, np.array(out) * (half / sse)
@@ -1048,9 +1047,9 @@ class _AdditiveProfile:
             rows = -np.stack([np.convolve(p, e)[: self.n] for p in dden])
             if "phi" in self.index:
                 i = self.index["phi"]
-                rows[i] += np.convolve(self.basis[1], self.y)[: self.n]
+                rows[i] += self.y_n1
                 rows[i, : self.Lq] -= self._dq_states(theta, Tn, D, states)
-            J = lfilter([1.0], den, rows, axis=-1).T
+            J = lfilter(self.one, den, rows, axis=-1).T
         return J * self.scale, -M
 
     def _lag_products(self, RH: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
