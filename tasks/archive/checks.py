@@ -158,9 +158,8 @@ def _promotion_problem(root: pathlib.Path, payload: dict, reads: ParamsReads | N
     return None
 
 
-def _check_params(root: pathlib.Path, reads: ParamsReads | None = None) -> list[ArchiveProblem]:
+def _check_params(root: pathlib.Path, reads: ParamsReads) -> list[ArchiveProblem]:
     """The parameter store's own checks (fitaudit.tasks.params.verify_params), plus byte-exact form."""
-    reads = reads if reads is not None else ParamsReads()
     problems = []
     for message in verify_params(root, load=reads.load):
         where, _, text = message.replace(f"{root}/", "").partition(": ")

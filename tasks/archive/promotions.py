@@ -56,7 +56,7 @@ def _recorded_promotions(chain: _Chain, acks: _Acks, model_id: str | None = None
 
 
 def _check_promotion_records(
-    root: pathlib.Path, recorded: dict[str, tuple[str, int]], journals: _Journals, reads: ParamsReads | None = None
+    root: pathlib.Path, recorded: dict[str, tuple[str, int]], journals: _Journals, reads: ParamsReads
 ) -> list[ArchiveProblem]:
     """Every ``promoted`` version must be recorded in the chain (or be a pending promotion)."""
     problems = []
@@ -65,7 +65,7 @@ def _check_promotion_records(
         if not _PARAMS_PATH.fullmatch(rel) or path.is_symlink() or not path.is_file():
             continue
         try:
-            data = json.loads(path.read_bytes() if reads is None else reads.content(path))
+            data = json.loads(reads.content(path))
         except (OSError, ValueError):
             continue  # reported by verify_params
         if not isinstance(data, dict) or data.get("status") != "promoted":
