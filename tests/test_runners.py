@@ -46,9 +46,8 @@ def test_local_workers_start_without_the_nanny_trim_threshold(dask_config):
     assert dask.config.get(NANNY_TRIM_SETTING) is None
     assert _worker_environment(kwargs) is None
     # the setting is what made the difference: distributed's default puts the variable there
-    with dask.config.set(
-        {NANNY_TRIM_SETTING: 65536}
-    ):  # source: distributed's distributed.yaml, nanny.pre-spawn-environ
+    # source: distributed's distributed.yaml, nanny.pre-spawn-environ
+    with dask.config.set({NANNY_TRIM_SETTING: 65536}):
         assert _worker_environment(kwargs) == "65536"
 
 
