@@ -15,6 +15,7 @@ import sys
 
 __all__ = [
     "LazyModule",
+    "import_all",
     "blas",
     "integrate",
     "lapack",
@@ -65,6 +66,17 @@ optimize = LazyModule("scipy.optimize")
 signal = LazyModule("scipy.signal")
 special = LazyModule("scipy.special")
 stats = LazyModule("scipy.stats")
+
+
+def import_all() -> None:
+    """Import every module the proxies above name, now.
+
+    For a process that will compute and has nothing else to do yet (a worker waiting for its
+    first batch): the first fit then pays no import.  ``scipy.signal`` alone imports most of
+    scipy, ``scipy.stats`` included.
+    """
+    for proxy in (blas, integrate, lapack, optimize, signal, special, stats):
+        importlib.import_module(proxy._name)
 
 
 _FAST_FILTER: list = []  # [(scipy's compiled filter or None, numpy.ndarray, float64)], set on the first call

@@ -64,9 +64,9 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
-from scipy import special, stats
 
 from ._plain import plain_data
+from ._scipy import special, stats
 from ._validation import Interval, check_param
 from .calibration import CalibrationCache, key_rng, settings_production_table
 from .cells import number_of_cells
