@@ -20,7 +20,7 @@ from fitaudit.tasks.archive import new_run_id, open_work_folder
 from fitaudit.tasks.archive_tasks import check_archive_task, recover_task
 from fitaudit.tasks.audit import candidate_jobs, candidate_tables, wants_candidates, with_candidates
 from fitaudit.tasks.audit.task import audit_batch_task, calibration_task, candidates_task, finalize_task, tables_task
-from fitaudit.tasks.batches import planned_batches, stage_inputs_task
+from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.events import events_task
 from fitaudit.tasks.outcomes import rejected_outcome, render_parcels
 from fitaudit.tasks.publish import (
@@ -164,39 +164,34 @@ def audit_flow(
     timings: dict[str, float] = {}
 
     reg = load_registry_task(registry)
+    recovered = recover_task(archive)
+    acknowledged = check_archive_task(archive)
+    extends = context_task(archive, as_of)
+    run_id = new_run_id(as_of)
     wanted = None if models is None else set(models)
     ids = [m.id for m in reg.models if wanted is None or m.id in wanted]
-    size = batch_size or settings.batch_size
-    processes = _local_processes(settings.processes, planned_batches(reg, ids, size, _workers()), len(ids))
-    scratch = None
+    history = history_task(archive, as_of, quote(ids))
+    # the run's scratch folder, locked while it runs; recover() removes it if the process dies
+    scratch = open_work_folder(archive, run_id)
+    work = scratch.path
     try:
-        # the worker processes start first, so that their imports overlap the archive checks and
-        # the staging (this thread reads while a core is idle); they stop once the pages are made
-        with local_workers(processes) as workers:
-            recovered = recover_task(archive)
-            acknowledged = check_archive_task(archive)
-            extends = context_task(archive, as_of)
-            run_id = new_run_id(as_of)
-            history = history_task(archive, as_of, quote(ids))
-            # the run's scratch folder, locked while it runs; recover() removes it if the process dies
-            scratch = open_work_folder(archive, run_id)
-            work = scratch.path
-            t0 = time.perf_counter()
-            # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
-            # them (twice per task call) looking for futures, which costs seconds on a big fleet
-            stage_args = dict(
-                archive_root=archive,
-                histories=quote(history.records),
-                model_ids=quote(ids),
-                batch_size=size,
-                workers=_workers(),
-            )
-            try:
-                staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
-            except OSError:
-                staged = stage_inputs_task(quote(reg), as_of, str(work), os_errors="record", **stage_args)
-            timings["stage_s"] = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
+        # them (twice per task call) looking for futures, which costs seconds on a big fleet
+        stage_args = dict(
+            archive_root=archive,
+            histories=quote(history.records),
+            model_ids=quote(ids),
+            batch_size=batch_size or settings.batch_size,
+            workers=_workers(),
+        )
+        try:
+            staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
+        except OSError:
+            staged = stage_inputs_task(quote(reg), as_of, str(work), os_errors="record", **stage_args)
+        timings["stage_s"] = time.perf_counter() - t0
 
+        with local_workers(_local_processes(settings.processes, len(staged.batches), len(ids))) as workers:
             t0 = time.perf_counter()
             cache = calibration_task([b.path for b in staged.batches], reg.policy)
             timings["calibration_s"] = time.perf_counter() - t0
@@ -345,8 +340,7 @@ def audit_flow(
                     registry_sha256=reg.sha256,
                 )
     finally:
-        if scratch is not None:
-            scratch.close()
+        scratch.close()
     return {
         "run_id": run_id,
         "as_of": as_of.isoformat(),

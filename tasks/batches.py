@@ -45,7 +45,6 @@ __all__ = [
     "stage_inputs",
     "stage_inputs_task",
     "batch_size_for",
-    "planned_batches",
     "ROW_KINDS",
     "STALE",
 ]
@@ -204,31 +203,6 @@ def _lineage(entry: EntryBase, fp: ExtractFingerprint | None, time: np.ndarray, 
     }
 
 
-def _entries(registry: Registry, model_ids: Iterable[str] | None) -> list[EntryBase]:
-    """The accepted entries to audit: ``model_ids`` (every one when None), in registry order."""
-    wanted = set(model_ids) if model_ids is not None else None
-    return [m for m in registry.models if wanted is None or m.id in wanted]
-
-
-def _by_source(entries: Iterable[EntryBase]) -> dict[str, list[EntryBase]]:
-    """Entries per source name, each list in model-id order: a source's batches are its list cut
-    into runs of the batch size."""
-    by_source: dict[str, list[EntryBase]] = {}
-    for e in sorted(entries, key=lambda e: e.id):
-        by_source.setdefault(e.source, []).append(e)
-    return by_source
-
-
-def planned_batches(
-    registry: Registry, model_ids: Iterable[str] | None = None, batch_size: int = 0, workers: int = 1
-) -> int:
-    """The number of batches :func:`stage_inputs` will write for these arguments, known from the
-    registry alone (so that a run can start its worker processes before it reads any data)."""
-    entries = _entries(registry, model_ids)
-    size = batch_size_for(len(entries), workers, batch_size)
-    return sum(math.ceil(len(models) / size) for models in _by_source(entries).values())
-
-
 def stage_inputs(
     registry: Registry,
     as_of: dt.date,
@@ -272,7 +246,8 @@ def stage_inputs(
     staging = pathlib.Path(staging_dir)
     staging.mkdir(parents=True, exist_ok=True)
     archive = pathlib.Path(archive_root) if archive_root is not None else None
-    entries = _entries(registry, model_ids)
+    wanted = set(model_ids) if model_ids is not None else None
+    entries = [m for m in registry.models if wanted is None or m.id in wanted]
     size = batch_size_for(len(entries), workers, batch_size)
     end = _end_of_day(as_of)
     histories = histories or {}
@@ -280,7 +255,10 @@ def stage_inputs(
     # (forecast entries have no parameters: fitaudit fits nothing of them)
     fitted = [e.id for e in entries if isinstance(e, ModelEntry)]
     snapshot = production_snapshot(archive, fitted) if archive is not None else None
-    by_source = _by_source(entries)
+    by_source: dict[str, list[EntryBase]] = {}
+    for e in sorted(entries, key=lambda e: e.id):
+        by_source.setdefault(e.source, []).append(e)
+
     batches: list[BatchRef] = []
     fingerprints: dict[str, dict] = {}
     # digests of source files already hashed, by version (path, size, modification time)

@@ -280,25 +280,3 @@ def test_reading_some_models_of_a_batch_gives_their_full_items_in_batch_order(tm
         np.testing.assert_array_equal(item.time, ref.time)
     assert [m["entry"].id for m in batchfiles.batch_metadata(batch.path, {"m-c"})] == ["m-c"]
     assert batchfiles.read_batch(batch.path, []) == []
-
-
-# ------------------------------------------------------------------------------------------
-# the batch count a run plans before it reads data (it starts its worker processes then)
-
-
-@pytest.mark.parametrize(
-    ("batch_size", "workers", "some"),
-    [(0, 1, None), (0, 2, None), (2, 1, None), (3, 2, None), (4, 1, ["m-x0", "m-x3", "m-y1"]), (1, 2, ["m-y0"])],
-)
-def test_planned_batches_is_the_number_staging_writes(tmp_path, batch_size, workers, some):
-    rng = np.random.default_rng(5)
-    fleet = Fleet(tmp_path)
-    for name, count in (("x", 5), ("y", 2)):  # two sources: batches never mix them
-        series = {f"{name}{i}": {"date": days(), "y": ar1(rng)} for i in range(count)}
-        write_parquet(tmp_path / "data" / f"{name}.parquet", long_table(series))
-        fleet.source(name, f"data/{name}.parquet")
-        for k in series:
-            fleet.model(f"m-{k}", name, k)
-    reg = load_registry(fleet.write())
-    staged = batches.stage_inputs(reg, AS_OF, tmp_path / "work", model_ids=some, batch_size=batch_size, workers=workers)
-    assert batches.planned_batches(reg, some, batch_size, workers) == len(staged.batches) > 0
