@@ -40,7 +40,7 @@ import warnings
 from fitaudit.core.vocabulary import VERDICTS
 
 from .fleet_data import AS_OF, FleetSeries, fleet_series, model_ids, write_fleet
-from .harness import WorkClock, child_env, run_child, warm_prefect_home, write_result
+from .harness import CpuSnapshot, WorkClock, child_env, cpu_used, run_child, warm_prefect_home, write_result
 
 __all__ = ["main", "WORK_FUNCTIONS", "audit_in_child", "fit_time"]
 
@@ -107,6 +107,7 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
 
     _env.configure_prefect()
     clock = WorkClock()
+    cpu0 = CpuSnapshot.now()
     t0 = time.perf_counter()
     # as `fitaudit run` does: the embedded server launched first, the flow's imports while it starts,
     # and its runs without heartbeats (a configured server, as for the Dask runs, keeps Prefect's settings)
@@ -125,8 +126,10 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
         with get_client(sync_client=True) as client:  # the first answer of the embedded server (or the real one)
             client.hello()
         t1 = time.perf_counter()
+        cpu1 = CpuSnapshot.now()
         result = flow_fn(registry=registry, as_of=AS_OF, archive=archive, models=models)
         t2 = time.perf_counter()
+        cpu2 = CpuSnapshot.now()
     work = clock.covered(t1, t2)
     manifest = pathlib.Path(result["report"]).parent / "manifest.json"
     return {
@@ -136,6 +139,12 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
         "work_s": work,
         "orchestration_s": (t2 - t1) - work,
         "work_by_function_s": clock.by_label(),
+        # CPU seconds: while the server starts (this process's imports, the server), and during the
+        # flow (this process, the server, the worker processes or Dask cluster the flow started)
+        "cpu_s": {
+            "server_start": {k: v for k, v in cpu_used(cpu0, cpu1).items() if k != "lasting"},
+            "flow": cpu_used(cpu1, cpu2),
+        },
         "counts": result["counts"],
         "flow_timings": result["timings"],
         "report": result["report"],
@@ -239,6 +248,31 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
     ]
 
 
+def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
+    """Where the run's CPU seconds went, against the CPU that goal 1's wall time allows."""
+    cores = os.cpu_count() or 1
+    start, flow = ours["cpu_s"]["server_start"], ours["cpu_s"]["flow"]
+    used = sum(start.values()) + sum(flow.values())
+    allowed_s = n / (GOAL_RATIO * peer["series_per_second"])  # goal 1's wall time for the whole run
+    budget = cores * allowed_s
+    busy = sum(flow.values()) / ours["flow_s"]
+    return {
+        "benchmark": "CPU use",
+        "size": f"the same {n}-series run",
+        "measured": f"flow {ours['flow_s']:.1f} s: worker processes {flow['passing']:.1f}, flow process "
+        f"{flow['own']:.1f}, Prefect server {flow['lasting']:.1f} CPU s ({sum(flow.values()):.1f} CPU s, "
+        f"{busy:.2f} of {cores} cores busy on average); server start {ours['server_start_s']:.1f} s: "
+        f"{sum(start.values()):.1f} CPU s (the command's imports {start['own']:.1f}, the server "
+        f"{start['passing']:.1f}); "
+        f"goal 1 allows {allowed_s:.1f} s, at most {budget:.1f} CPU s on {cores} cores",
+        "ratio": used / budget,
+        "ratio_text": f"{used:.1f} CPU s, {used / budget:.1f}x goal 1's",
+        "goal": "a reading of goal 1 (no goal of its own)",
+        "met": None,
+        "details": {"cpu_s": ours["cpu_s"], "flow_s": ours["flow_s"], "allowed_s": allowed_s, "cores": cores},
+    }
+
+
 def main(quick: bool = False) -> list[dict]:
     """Generate the fleet, time the peer on a subset and the audit flow on all of it."""
     # imported here: the peer loads statsmodels (about 20 MB), which the audit's child (also
@@ -256,7 +290,7 @@ def main(quick: bool = False) -> list[dict]:
         peer = measure_peer(series, paths.data + "/fleet", subset)
         fits = fit_time(series)
         ours = run_child("bench.fleet", ["--registry", paths.registry, "--archive", paths.archive], child_env(home))
-    return _fleet_rows(n, ours, peer) + [_fit_bound_row(n, ours, fits)]
+    return _fleet_rows(n, ours, peer) + [_fit_bound_row(n, ours, fits), _cpu_row(n, ours, peer)]
 
 
 def _child(argv: list[str] | None = None) -> None:

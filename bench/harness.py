@@ -11,14 +11,25 @@ import importlib
 import json
 import os
 import pathlib
+import resource
 import subprocess
 import sys
 import tempfile
 import threading
 import time
 from collections.abc import Callable, Sequence
+from typing import NamedTuple
 
-__all__ = ["REPO", "child_env", "run_child", "write_result", "WorkClock", "warm_prefect_home"]
+__all__ = [
+    "REPO",
+    "child_env",
+    "run_child",
+    "write_result",
+    "WorkClock",
+    "warm_prefect_home",
+    "CpuSnapshot",
+    "cpu_used",
+]
 
 REPO = pathlib.Path(__file__).resolve().parents[1]
 
@@ -132,3 +143,36 @@ class WorkClock:
         for a, b, label in self.intervals:
             out[label] = out.get(label, 0.0) + (b - a)
         return out
+
+
+class CpuSnapshot(NamedTuple):
+    """CPU seconds (user + system) used so far: by this process, by the children it has waited for,
+    and by each child (any depth) still running, by pid."""
+
+    own: float
+    waited: float
+    running: dict[int, float]
+
+    @classmethod
+    def now(cls) -> CpuSnapshot:
+        import psutil  # a benchmark dependency (bench.memory): fitaudit itself does not need it
+
+        own, waited = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+        running = {}
+        for child in psutil.Process().children(recursive=True):
+            try:
+                t = child.cpu_times()
+            except psutil.Error:  # gone meanwhile: counted as waited for, once its parent reaps it
+                continue
+            running[child.pid] = t.user + t.system
+        return cls(own.ru_utime + own.ru_stime, waited.ru_utime + waited.ru_stime, running)
+
+
+def cpu_used(before: CpuSnapshot, after: CpuSnapshot) -> dict[str, float]:
+    """CPU seconds between two snapshots of one process: ``own`` (this process), ``lasting`` (children
+    running at both, such as a server) and ``passing`` (children started meanwhile: those waited
+    for, and those still running at ``after``).  A child that started before ``before`` and was
+    waited for meanwhile would count whole in ``passing``; the benchmarks start none such."""
+    lasting = sum(after.running[pid] - cpu for pid, cpu in before.running.items() if pid in after.running)
+    started = sum(cpu for pid, cpu in after.running.items() if pid not in before.running)
+    return {"own": after.own - before.own, "lasting": lasting, "passing": after.waited - before.waited + started}

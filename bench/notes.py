@@ -67,6 +67,15 @@ The ratio is the fleet's wall time (server start and flow, as for the throughput
 alone is shown too. The candidate search's fits are not counted: they are work the audit adds, not
 the fit-bound limit.
 
+**CPU use.** In the fleet run's child process, `bench/harness.py:CpuSnapshot` reads the CPU
+seconds (user and system) of the process itself (`getrusage`), of the children it has waited for
+(`RUSAGE_CHILDREN`: the worker processes, which the flow stops and waits for) and of each child
+still running (`psutil`: the Prefect server), before the server's launch, when the server first
+answers and when the flow returns. The row sums them and sets the total against the CPU that goal
+1's wall time allows: the peer's time for the fleet over 20, times the cores. The average number
+of busy cores during the flow (its CPU seconds over its wall time) says how much of the run is
+waiting rather than computing.
+
 **Peak memory.** One 10,000-series extract; runs audit its first 2,500, 5,000 and 10,000 models in
 fresh child processes; the parent polls the resident set size (psutil, every 0.2 s) of the flow
 process, of the embedded Prefect server (the child started as `python -m uvicorn`), of the local

@@ -76,6 +76,21 @@ def _fit_bound(row: dict) -> str:
     )
 
 
+def _cpu(row: dict) -> str:
+    d = row["details"]
+    flow = d["cpu_s"]["flow"]
+    used = sum(d["cpu_s"]["server_start"].values()) + sum(flow.values())
+    return (
+        f"**CPU use: {used:.0f} CPU seconds, {row['ratio']:.1f} times what goal 1 allows** (its wall time "
+        f"{d['allowed_s']:.1f} s on {d['cores']} cores). During the flow the cores were busy "
+        f"{sum(flow.values()) / d['flow_s']:.2f} of {d['cores']} on average, so the run is bound by the CPU, not by "
+        "waiting: overlapping its stages could win back at most the idle part, and goal 1 needs the work itself cut "
+        f"by that factor. The worker processes (audit, candidate search, records and pages) used "
+        f"{flow['passing']:.1f} CPU s, the flow process (staging, the null tables, the fleet rules, the archive, "
+        f"Prefect's task runs) {flow['own']:.1f} and the Prefect server {flow['lasting']:.1f}."
+    )
+
+
 def _fits(rows: list[dict]) -> str:
     met = [r for r in rows if r["met"]]
     missed = [r for r in rows if not r["met"]]
@@ -163,6 +178,7 @@ def reading_the_goals(rows: list[dict]) -> str:
 
     add("Fleet throughput", _throughput)
     add("Fit-bound ratio", _fit_bound)
+    add("CPU use", _cpu)
     fit_rows = by.get("Model fit (micro)", [])
     parts.append(_fits(fit_rows) if fit_rows else "**Model fits:** not measured in this run.")
     add("Orchestration share", _orchestration)

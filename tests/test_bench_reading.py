@@ -42,3 +42,42 @@ def test_a_benchmark_left_out_is_said_to_be_unmeasured():
         assert f"**{name}:** not measured in this run." in text
     failed = {"benchmark": "Fleet throughput", "size": "", "measured": "failed: OSError", "met": False}
     assert "**Fleet throughput:** not measured in this run." in reading_the_goals([failed])
+
+
+def test_cpu_use_is_read_against_the_cpu_goal_1_allows(monkeypatch):
+    import bench.fleet
+
+    monkeypatch.setattr(bench.fleet.os, "cpu_count", lambda: 2)
+    ours = {
+        "flow_s": 20.0,
+        "server_start_s": 3.0,
+        "cpu_s": {"server_start": {"own": 1.0, "passing": 3.0}, "flow": {"own": 5.0, "lasting": 2.0, "passing": 28.0}},
+    }
+    row = bench.fleet._cpu_row(1000, ours, {"series_per_second": 6.25})  # goal 1: 1000 / (20 * 6.25) = 8 s
+    assert row["met"] is None and abs(row["ratio"] - 39.0 / 16.0) < 1e-12  # 4 + 35 CPU s over 2 cores x 8 s
+    assert "goal 1 allows 8.0 s, at most 16.0 CPU s on 2 cores" in row["measured"]
+    text = reading_the_goals([FLEET, row])
+    assert "**CPU use: 39 CPU seconds, 2.4 times what goal 1 allows** (its wall time 8.0 s on 2 cores)" in text
+    assert "busy 1.75 of 2 on average" in text  # 35 CPU s in a 20 s flow
+    assert "used 28.0 CPU s, the flow process" in text and "5.0 and the Prefect server 2.0" in text
+
+
+def test_cpu_used_splits_this_process_the_lasting_children_and_the_passing_ones():
+    from bench.harness import CpuSnapshot, cpu_used
+
+    before = CpuSnapshot(own=1.0, waited=0.5, running={10: 1.0})  # pid 10: a server
+    after = CpuSnapshot(own=4.0, waited=7.5, running={10: 3.0, 11: 0.5})  # 11: a worker still running
+    assert cpu_used(before, after) == {"own": 3.0, "lasting": 2.0, "passing": 7.5}
+
+
+def test_a_child_waited_for_counts_as_passing():
+    import subprocess
+    import sys
+
+    from bench.harness import CpuSnapshot, cpu_used
+
+    before = CpuSnapshot.now()
+    burn = "import time\nwhile time.process_time() < 0.2: pass"  # at least 0.2 s of CPU, however long it takes
+    subprocess.run([sys.executable, "-c", burn], check=True)
+    used = cpu_used(before, CpuSnapshot.now())
+    assert used["passing"] >= 0.2 and used["lasting"] == 0.0
