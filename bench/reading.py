@@ -59,7 +59,7 @@ def _throughput(row: dict) -> str:
         "Prefect server (`PREFECT_API_URL`), more cores (the batch work uses every CPU, the peer one), batched fits "
         "of same-shaped series, and cheaper null tables for the laws whose shape the candidate search estimates "
         "(each such model needs a table at its own estimated shape, and few shapes recur among the searched "
-        "models, so sharing the tables between worker processes would not help)."
+        "models, so sharing the tables between worker processes would save only the few built twice)."
     )
 
 
