@@ -24,6 +24,11 @@ whole 730 days) plus the production filter (the one-step errors of the productio
 one series after another in the parent process, divided by the number of worker processes the
 flow uses (one per CPU): the time the fits alone would take if split evenly over the flow's
 workers, with nothing else to do.
+
+*CPU use* is the CPU time of the same run, per process (the flow process, the worker processes,
+the Prefect server; :class:`~bench.harness.CpuSnapshot`), set against the CPU that goal 1's wall
+time allows on this machine's cores: a run that keeps every core busy can only get faster by
+doing less work.
 """
 
 from __future__ import annotations

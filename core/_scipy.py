@@ -75,7 +75,7 @@ def import_all() -> None:
     first batch): the first fit then pays no import.  ``scipy.signal`` alone imports most of
     scipy, ``scipy.stats`` included.
     """
-    for proxy in (blas, integrate, lapack, optimize, signal, special, stats):
+    for proxy in [value for value in globals().values() if isinstance(value, LazyModule)]:
         importlib.import_module(proxy._name)
 
 

@@ -64,7 +64,8 @@ def _warm() -> int:
     """Import the work's modules in a fresh worker (so the first batch does not pay for it).
 
     Only the plain functions' modules: the audit's (:mod:`fitaudit.tasks.audit.work`) and the
-    records' and pages' (:mod:`fitaudit.tasks.outcomes`, :mod:`fitaudit.tasks.report`).  None of
+    records' and pages' (:mod:`fitaudit.tasks.outcomes`, :mod:`fitaudit.tasks.report`), and the
+    scipy modules that core imports when a computation first needs them.  None of
     them imports Prefect, pyarrow or pandas, so a worker holds numpy, scipy, pydantic and Jinja2
     but not the flow's libraries (tests/test_startup.py checks).
     """
