@@ -89,6 +89,29 @@ def test_core_imports_only_stdlib_numpy_scipy(path):
         )
 
 
+#: The one core module that names scipy's modules at import time: every other reaches them through its lazy
+#: proxies, so importing core costs no scipy (an eager ``from scipy import stats`` in one module loaded
+#: ``scipy.stats``, 62 MiB, into every process that imported the audit).
+SCIPY_HOME = "core/_scipy.py"
+
+
+@pytest.mark.parametrize("path", sorted((REPO / "core").rglob("*.py")), ids=lambda p: str(p.relative_to(REPO)))
+def test_core_reaches_scipy_through_its_lazy_proxies(path):
+    if path.relative_to(REPO).as_posix() == SCIPY_HOME:
+        return
+    for node in ast.parse(path.read_text(), filename=str(path)).body:  # module level only
+        if isinstance(node, ast.Import):
+            modules = [alias.name for alias in node.names]
+        elif isinstance(node, ast.ImportFrom) and node.level == 0:
+            modules = [node.module or ""]
+        else:
+            continue
+        for module in modules:
+            assert module.split(".")[0] != "scipy", (
+                f"{path}:{node.lineno} imports {module} at module level; use `from ._scipy import ...` ({SCIPY_HOME})"
+            )
+
+
 #: The one module that imports Jinja2 (docs/architecture.md §1.2); the report's views and charts only build dicts.
 JINJA_HOME = "tasks/report/render.py"
 
