@@ -44,9 +44,7 @@ def _fsync_files(paths: Iterable[pathlib.Path]) -> None:
             finally:
                 os.close(fd)
 
-    if len(paths) < 2:
-        for path in paths:
-            sync(path)
+    if not paths:
         return
     with ThreadPoolExecutor(max_workers=min(8, len(paths))) as pool:
         list(pool.map(sync, paths))  # list(): an OSError of any file is raised here
