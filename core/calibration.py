@@ -32,7 +32,7 @@ import hashlib
 import threading
 from collections.abc import Callable, Hashable, Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Protocol
 
 import numpy as np
 
@@ -51,6 +51,7 @@ __all__ = [
     "Gate",
     "NullTable",
     "CalibrationCache",
+    "TableStore",
     "key_rng",
     "production_table",
     "settings_production_table",
@@ -305,32 +306,58 @@ def standardised_maximum(statistics: np.ndarray, reference: np.ndarray) -> np.nd
     return out[()] if np.ndim(out) == 0 else out
 
 
+class TableStore(Protocol):
+    """Where a :class:`CalibrationCache` keeps simulated tables between runs (core does no I/O:
+    the caller supplies the store, e.g. ``fitaudit.tasks.table_store.FolderTableStore``).
+
+    ``load(key)`` returns the table kept under ``key``, or None when there is none or it cannot be
+    used (unreadable, or made by other code); ``save(key, table)`` keeps a table just built.
+    Neither raises because the store cannot be read or written: a store only saves work, since
+    a table is a deterministic function of its key and the seed (docs/method.md §7.7).
+    """
+
+    def load(self, key: tuple) -> NullTable | StatisticTable | None: ...
+
+    def save(self, key: tuple, table: NullTable | StatisticTable) -> None: ...
+
+
 @dataclass
 class CalibrationCache:
     """Explicit store of null tables shared by all models of a run (no hidden globals).
 
     ``get(key, build)`` returns the table for ``key``, building it once with ``build()``.  Tables
     are deterministic functions of their key and the run seed, so caches built in different
-    batches or processes hold identical tables and can be merged.
+    batches or processes hold identical tables and can be merged.  With a ``store`` (see
+    :class:`TableStore`), a table missing here is first looked up there, and one built here is
+    saved there, so later runs reuse it; ``loads`` counts the tables taken from the store.
     """
 
     tables: dict = field(default_factory=dict)
     hits: int = 0
     builds: int = 0
+    store: TableStore | None = field(default=None, compare=False)
+    loads: int = 0
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False, compare=False)
 
     def get(self, key: tuple, build: Callable[[], NullTable]) -> NullTable:
-        """The table for ``key``; ``build`` runs only when the key is new (thread-safe)."""
+        """The table for ``key``; ``build`` runs only when the key is new here and in the store
+        (thread-safe)."""
         with self._lock:
             table = self.tables.get(key)
+            if table is not None:
+                self.hits += 1
+                return table
+            table = self.store.load(key) if self.store is not None else None
             if table is None:
                 table = build()
-                # a new dict, not an insertion: another thread may be iterating the tables (Prefect
-                # walks a task's parameters while batches in other task threads add tables)
-                self.tables = {**self.tables, key: table}
                 self.builds += 1
+                if self.store is not None:
+                    self.store.save(key, table)
             else:
-                self.hits += 1
+                self.loads += 1
+            # a new dict, not an insertion: another thread may be iterating the tables (Prefect
+            # walks a task's parameters while batches in other task threads add tables)
+            self.tables = {**self.tables, key: table}
             return table
 
     def __getstate__(self) -> dict:

@@ -35,6 +35,7 @@ from fitaudit.tasks.publish import (
 from fitaudit.tasks.registry import load_registry_task
 from fitaudit.tasks.results import results_head, results_summary
 from fitaudit.tasks.settings import get_settings
+from fitaudit.tasks.table_store import archive_tables
 from fitaudit.tasks.workers import default_processes, local_workers
 
 __all__ = ["audit_flow"]
@@ -193,7 +194,8 @@ def audit_flow(
 
         with local_workers(_local_processes(settings.processes, len(staged.batches), len(ids))) as workers:
             t0 = time.perf_counter()
-            cache = calibration_task([b.path for b in staged.batches], reg.policy)
+            store = archive_tables(archive, settings.reuse_null_tables)
+            cache = calibration_task([b.path for b in staged.batches], reg.policy, store)
             timings["calibration_s"] = time.perf_counter() - t0
             t0 = time.perf_counter()
             futures = audit_batch_task.map(
@@ -283,6 +285,8 @@ def audit_flow(
             "counts": {k: summary[k] for k in ("registered", "audited", *VERDICTS)},
             "batches": len(staged.batches),
             "calibration_tables": len(cache),
+            # of the tables prepared before the batches, those taken from <archive>/.tables (reuse_null_tables)
+            "calibration_tables_reused": cache.loads,
             "recovered": recovered,
             "acknowledged_damage": acknowledged,
             "history": history.to_manifest(),

@@ -15,6 +15,7 @@ from fitaudit.tasks.publish import code_commit, operator_identity, package_versi
 from fitaudit.tasks.refit import record_task, refit_batch_task, refuse_forecast_entries
 from fitaudit.tasks.registry import load_registry_task, require_digest
 from fitaudit.tasks.settings import get_settings
+from fitaudit.tasks.table_store import archive_tables
 
 __all__ = ["refit_flow"]
 
@@ -98,7 +99,7 @@ def refit_flow(
             unmapped(operator),
             unmapped(approve),
             unmapped(approved_by),
-            unmapped(CalibrationCache()),
+            unmapped(CalibrationCache(store=archive_tables(archive, settings.reuse_null_tables))),
         )
         records = [r for batch in futures.result() for r in batch]
         records += [

@@ -43,6 +43,14 @@ class FitauditSettings(PrefectBaseSettings):
             "reached); 0 disables."
         ),
     )
+    reuse_null_tables: bool = Field(
+        default=True,
+        description=(
+            "Keep the simulated null tables in <archive>/.tables and reuse them in later runs (a table depends "
+            "only on its key, the seed and fitaudit's code, so the results are the same); false simulates every "
+            "table in every run."
+        ),
+    )
     operator: str = Field(default="", description="Operator or service account recorded in each manifest.")
     report_base_url: str = Field(
         default="",

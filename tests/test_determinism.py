@@ -164,6 +164,8 @@ def test_one_worker_thread_gives_the_same_results(fleet_root, reference):
 
 
 def test_a_rerun_into_the_same_archive_gives_the_same_results(fleet_root, reference, prefect_server):
+    # the second run takes every null table from the archive's .tables folder instead of
+    # simulating it (docs/architecture.md §2.4): the results must not change by a byte
     from fitaudit.flows.audit import audit_flow
 
     archive = _archive(fleet_root, "archive-twice")
@@ -172,6 +174,18 @@ def test_a_rerun_into_the_same_archive_gives_the_same_results(fleet_root, refere
         for _ in range(2)
     ]
     assert [(pathlib.Path(r["report"]).parent / "results.json").read_bytes() for r in runs] == [reference[0]] * 2
+    manifests = [json.loads((pathlib.Path(r["report"]).parent / "manifest.json").read_bytes()) for r in runs]
+    prepared = [m["calibration_tables"] for m in manifests]
+    assert prepared[0] == prepared[1] > 0
+    assert [m["calibration_tables_reused"] for m in manifests] == [0, prepared[0]]
+    assert len(list((pathlib.Path(archive) / ".tables").glob("*.npz"))) >= prepared[0]
+
+
+def test_a_run_that_may_not_reuse_tables_keeps_none(fleet_root, reference, monkeypatch):
+    monkeypatch.setenv("PREFECT_INTEGRATIONS_FITAUDIT_REUSE_NULL_TABLES", "false")
+    results, manifest = _run(fleet_root, "archive-no-reuse", batch_size=2)
+    assert results == reference[0] and manifest["calibration_tables_reused"] == 0
+    assert not (fleet_root / "archive-no-reuse" / ".tables").exists()
 
 
 def test_another_seed_changes_the_results(tmp_path, reference, prefect_server):

@@ -9,6 +9,7 @@ Layout under the archive root::
     .journal/               intents written before a step that must be completed or rolled back (private)
     .trash/                 purged run folders being deleted (private)
     .fingerprints/          digests of source files by version, reused by staging (private; a cache, not evidence)
+    .tables/                simulated null tables, reused by later runs (private; a cache, not evidence)
     .lock                   lock file serialising every change to chain.jsonl and runs/
 
 Publication protocol (``RunWriter.finish``)

@@ -13,7 +13,7 @@ from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 
 from fitaudit.core.audit import prepare_calibration
-from fitaudit.core.calibration import CalibrationCache
+from fitaudit.core.calibration import CalibrationCache, TableStore
 
 from ..memory import release_freed_memory
 from ..outcomes import Outcome
@@ -31,16 +31,17 @@ def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
 
 
 @task(name="prepare-calibration", cache_policy=NO_CACHE, persist_result=False)
-def calibration_task(batch_paths: list[str], policy: Policy) -> CalibrationCache:
-    """Prefect task: simulate every null table the run needs, once, before the batches start.
+def calibration_task(batch_paths: list[str], policy: Policy, store: TableStore | None = None) -> CalibrationCache:
+    """Prefect task: simulate every null table the run needs, once, before the batches start
+    (or take it from ``store``, where earlier runs kept it: :func:`calibration_for`).
 
     Then the simulations' freed arrays go back to the system (:func:`release_freed_memory`: about
     60 MB of glibc's heap otherwise); the tables themselves are small and kept."""
     try:
-        cache = calibration_for(batch_paths, policy)
+        cache = calibration_for(batch_paths, policy, store)
     finally:
         release_freed_memory()
-    get_run_logger().info("calibration: %d null tables", len(cache))
+    get_run_logger().info("calibration: %d null tables (%d kept from earlier runs)", len(cache), cache.loads)
     return cache
 
 

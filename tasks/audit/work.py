@@ -24,7 +24,7 @@ from typing import Any
 import numpy as np
 
 from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model, prepare_calibration
-from fitaudit.core.calibration import CalibrationCache
+from fitaudit.core.calibration import CalibrationCache, TableStore
 from fitaudit.core.exceptions import FitauditError
 
 from ..batchfiles import ModelInput, batch_metadata, read_batch
@@ -253,11 +253,14 @@ def with_candidates(outcomes: Sequence[Outcome], found: Mapping[str, list[dict]]
     return [dataclasses.replace(o, candidates=tuple(found[o.model_id])) if o.model_id in found else o for o in outcomes]
 
 
-def calibration_for(batch_paths: Sequence[str], policy: Policy) -> CalibrationCache:
+def calibration_for(batch_paths: Sequence[str], policy: Policy, store: TableStore | None = None) -> CalibrationCache:
     """Build the run's shared null tables from the staged batches' metadata (no data read):
     :func:`fitaudit.core.audit.prepare_calibration` for fitted models and
     :func:`fitaudit.core.forecasts.prepare_forecast_calibration` for forecast entries (the
-    window, or for h-step forecasts the lengths of their subsequences)."""
+    window, or for h-step forecasts the lengths of their subsequences).  With a ``store``
+    (:class:`~fitaudit.tasks.table_store.FolderTableStore`), tables kept by earlier runs are
+    taken from it and new ones saved to it; the returned cache carries the store to the batches,
+    so the tables they build on demand are kept too."""
     from fitaudit.core.forecasts import prepare_forecast_calibration
 
     entries, forecasts = [], []
@@ -280,7 +283,7 @@ def calibration_for(batch_paths: Sequence[str], policy: Policy) -> CalibrationCa
                     bool(production and not production.get("error")),
                 )
             )
-    cache = prepare_calibration(entries)
+    cache = prepare_calibration(entries, CalibrationCache(store=store))
     return prepare_forecast_calibration(forecasts, cache) if forecasts else cache
 
 

@@ -1,0 +1,122 @@
+"""Simulated null tables kept between runs, in ``<archive>/.tables/``.
+
+A null table is a deterministic function of its key, the seed and the code that simulates it
+(docs/method.md §7.7), so a fleet audited every week needs the same tables every week: the
+normal law's refit tables for each residual count, the production window's table, and the
+student-t tables at the grid of estimated shapes the candidate search meets.  A
+:class:`FolderTableStore` passed to :class:`~fitaudit.core.calibration.CalibrationCache` keeps
+each table built in a run as one ``.npz`` file and hands it to later runs instead of
+simulating it again.
+
+A kept table is used only by the same code: its file name and its contents carry a digest of
+fitaudit's ``core`` sources, of the numpy and scipy versions and of the machine type
+(:func:`code_digest`), so any change to the simulation makes the old files unused.  The files
+are a cache, not evidence: deleting the folder, or the setting ``reuse_null_tables = false``,
+makes every run simulate its tables again, with identical results.  Written with ``numpy.savez``
+and read with ``allow_pickle=False``: a file holds arrays and one JSON text, never code.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import hashlib
+import json
+import os
+import pathlib
+import platform
+import sys
+import tempfile
+import zipfile
+
+import numpy as np
+
+from fitaudit.core.calibration import NullTable, StatisticTable
+
+__all__ = ["TABLE_FOLDER", "FolderTableStore", "archive_tables", "code_digest"]
+
+#: The store's folder under the archive root (private; a cache, not evidence).
+TABLE_FOLDER = ".tables"
+
+#: Array fields of each table class, in the order they are written.
+_ARRAYS = {
+    "null": ("reference", "r_max", "gate_reference", "gate_max"),
+    "statistic": ("values",),
+}
+
+
+@functools.cache
+def code_digest() -> str:
+    """SHA-256 of what a simulated table depends on besides its key: every source file of
+    ``fitaudit.core`` (path and bytes, in path order), the numpy and scipy versions (their random
+    streams and special functions), the Python version and the machine type."""
+    import scipy
+
+    import fitaudit.core
+
+    root = pathlib.Path(fitaudit.core.__file__).parent
+    h = hashlib.sha256()
+    for path in sorted(root.rglob("*.py")):
+        h.update(path.relative_to(root).as_posix().encode() + b"\0" + path.read_bytes() + b"\0")
+    python = "{}.{}".format(*sys.version_info[:2])
+    h.update(f"numpy {np.__version__} scipy {scipy.__version__} python {python} {platform.machine()}".encode())
+    return h.hexdigest()
+
+
+@dataclasses.dataclass(frozen=True)
+class FolderTableStore:
+    """A :class:`~fitaudit.core.calibration.TableStore` of one ``.npz`` file per table in ``folder``.
+
+    Plain data (a path), so a cache that holds it pickles to worker processes, which then read
+    and write the same folder; a file is written to a temporary name and renamed, so a reader
+    never sees half of one and two processes that build the same table write the same bytes.
+    A file that is missing, unreadable or written by other code is not used (:meth:`load` returns
+    None and the table is simulated); a folder that cannot be written only loses the saving.
+    """
+
+    folder: pathlib.Path
+
+    def _path(self, key: tuple) -> pathlib.Path:
+        name = hashlib.sha256(f"{code_digest()}\0{key!r}".encode()).hexdigest()[:40]
+        return self.folder / f"{name}.npz"
+
+    def load(self, key: tuple) -> NullTable | StatisticTable | None:
+        """The table kept for ``key`` by this code, or None."""
+        try:
+            with np.load(self._path(key), allow_pickle=False) as data:
+                meta = json.loads(str(data["meta"]))
+                if meta.get("key") != repr(key) or meta.get("code") != code_digest():
+                    return None
+                kind = meta["kind"]
+                arrays = {name: data[name] if name in data.files else None for name in _ARRAYS[kind]}
+        except (OSError, EOFError, ValueError, KeyError, TypeError, zipfile.BadZipFile):  # absent or damaged
+            return None
+        table_class = NullTable if kind == "null" else StatisticTable
+        return table_class(key=key, method=meta["method"], **arrays)
+
+    def save(self, key: tuple, table: NullTable | StatisticTable) -> None:
+        """Keep ``table`` under ``key`` (a table of another class, or an unwritable folder: nothing kept)."""
+        kind = "null" if isinstance(table, NullTable) else "statistic" if isinstance(table, StatisticTable) else None
+        if kind is None:
+            return
+        meta = json.dumps({"key": repr(key), "code": code_digest(), "kind": kind, "method": table.method})
+        arrays = {name: getattr(table, name) for name in _ARRAYS[kind] if getattr(table, name) is not None}
+        path = self._path(key)
+        try:
+            self.folder.mkdir(parents=True, exist_ok=True)
+            fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=".tmp", dir=self.folder)
+            try:
+                with os.fdopen(fd, "wb") as f:
+                    np.savez(f, meta=np.array(meta), **arrays)
+                os.replace(tmp, path)
+            except BaseException:
+                pathlib.Path(tmp).unlink(missing_ok=True)
+                raise
+        except OSError:
+            return
+
+
+def archive_tables(archive_root: str | os.PathLike, reuse: bool = True) -> FolderTableStore | None:
+    """The store in ``<archive_root>/.tables``, or None when ``reuse`` is false (the setting
+    ``reuse_null_tables``: every table is then simulated in every run)."""
+    return FolderTableStore(pathlib.Path(archive_root) / TABLE_FOLDER) if reuse else None

@@ -1,0 +1,138 @@
+"""Null tables kept between runs (tasks/table_store.py, docs/architecture.md §2.4).
+
+A kept table must be the table the code would simulate, bit for bit; a file written by other
+code, a damaged file or a folder that cannot be written must only cost the saving, never a result.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import pickle
+
+import numpy as np
+import pytest
+
+from fitaudit.core.calibration import (
+    CalibrationCache,
+    NullTable,
+    StatisticTable,
+    independence_table,
+    production_table,
+    settings_refit_table,
+)
+from fitaudit.core.cells import number_of_cells
+from fitaudit.core.divergence import DEFAULT_ALPHAS, DEFAULT_BETAS
+from fitaudit.core.noise import get_law
+from fitaudit.core.settings import AuditSettings
+from fitaudit.tasks import table_store
+from fitaudit.tasks.table_store import TABLE_FOLDER, FolderTableStore, archive_tables
+
+GRID = (DEFAULT_ALPHAS, DEFAULT_BETAS, "geometric", None)
+SETTINGS = AuditSettings(replicates=99)
+
+
+def _refit_t(cache: CalibrationCache, shape: float = 7.3) -> NullTable:
+    """A student-t refit table at an estimated shape, with the default gate: the kind a batch
+    builds on demand (every array field of a NullTable is set)."""
+    law, n = get_law("student-t"), 120
+    k = law.n_estimated(True)
+    return settings_refit_table(
+        SETTINGS, law, n, number_of_cells(n, k), True, SETTINGS.gate(n, k), shape=shape, cache=cache
+    )
+
+
+def _same(a, b) -> bool:
+    fields = [f.name for f in dataclasses.fields(a)]
+    return type(a) is type(b) and all(
+        np.array_equal(getattr(a, f), getattr(b, f))
+        if isinstance(getattr(a, f), np.ndarray)
+        else getattr(a, f) == getattr(b, f)
+        for f in fields
+    )
+
+
+def _tables(cache: CalibrationCache) -> list:
+    return [
+        production_table(56, 8, *GRID, 99, 3, cache),
+        _refit_t(cache),
+        independence_table(56, 10, 99, 3, cache),
+    ]
+
+
+def test_a_kept_table_is_the_simulated_table_bit_for_bit(tmp_path):
+    plain = _tables(CalibrationCache())
+    store = FolderTableStore(tmp_path / TABLE_FOLDER)
+    first = CalibrationCache(store=store)
+    built = _tables(first)
+    assert (first.builds, first.loads) == (3, 0) and len(list(store.folder.glob("*.npz"))) == 3
+    second = CalibrationCache(store=store)
+    kept = _tables(second)
+    assert (second.builds, second.loads) == (0, 3)  # nothing simulated again
+    for p, b, k in zip(plain, built, kept):
+        assert _same(p, b) and _same(p, k)
+    assert isinstance(kept[1], NullTable) and kept[1].has_gate and isinstance(kept[2], StatisticTable)
+
+
+def test_a_table_of_another_key_is_never_taken(tmp_path):
+    store = FolderTableStore(tmp_path)
+    _refit_t(CalibrationCache(store=store), shape=7.3)
+    other = CalibrationCache(store=store)
+    _refit_t(other, shape=4.1)  # another shape key: simulated, not loaded
+    assert (other.builds, other.loads) == (1, 0)
+
+
+def test_tables_written_by_other_code_are_not_used(tmp_path, monkeypatch):
+    store = FolderTableStore(tmp_path)
+    reference = _refit_t(CalibrationCache(store=store))
+    monkeypatch.setattr(table_store, "code_digest", lambda: "0" * 64)  # as if core had changed
+    changed = CalibrationCache(store=store)
+    assert _same(_refit_t(changed), reference) and (changed.builds, changed.loads) == (1, 0)
+    # a file whose name matches but whose contents name other code is not used either
+    path = store._path(reference.key)
+    for f in store.folder.glob("*.npz"):
+        if f != path:
+            f.replace(path)  # the first run's file under the changed code's name
+    assert store.load(reference.key) is None
+
+
+def test_the_code_digest_covers_the_core_sources_and_the_libraries():
+    digest = table_store.code_digest()
+    assert len(digest) == 64 and table_store.code_digest() is digest  # computed once per process
+
+
+@pytest.mark.parametrize("damage", [b"", b"not a zip file", b"PK\x03\x04 truncated"])
+def test_a_damaged_file_is_simulated_again_and_replaced(tmp_path, damage):
+    store = FolderTableStore(tmp_path)
+    reference = _refit_t(CalibrationCache(store=store))
+    path = store._path(reference.key)
+    path.write_bytes(damage)
+    again = CalibrationCache(store=store)
+    assert _same(_refit_t(again), reference) and (again.builds, again.loads) == (1, 0)
+    assert _same(store.load(reference.key), reference)  # the rebuilt table was written back
+
+
+def test_a_folder_that_cannot_be_written_only_loses_the_saving(tmp_path):
+    blocker = tmp_path / "file"
+    blocker.write_text("a file where the folder should be")
+    cache = CalibrationCache(store=FolderTableStore(blocker / TABLE_FOLDER))
+    assert _same(_refit_t(cache), _refit_t(CalibrationCache())) and cache.builds == 1
+    assert blocker.read_text() == "a file where the folder should be"
+
+
+def test_a_file_holds_no_pickle(tmp_path):
+    store = FolderTableStore(tmp_path)
+    table = _refit_t(CalibrationCache(store=store))
+    with np.load(store._path(table.key), allow_pickle=False) as data:  # raises if any array were pickled
+        assert set(data.files) == {"meta", "reference", "r_max", "gate_reference", "gate_max"}
+    assert not list(tmp_path.glob("*.tmp"))  # written under a temporary name, then renamed
+
+
+def test_a_cache_with_its_store_reaches_worker_processes_by_pickle(tmp_path):
+    cache = pickle.loads(pickle.dumps(CalibrationCache(store=FolderTableStore(tmp_path))))
+    _refit_t(cache)
+    assert cache.store == FolderTableStore(tmp_path) and len(list(tmp_path.glob("*.npz"))) == 1
+
+
+def test_the_archive_store_follows_the_setting(tmp_path):
+    assert archive_tables(tmp_path) == FolderTableStore(tmp_path / ".tables")
+    assert archive_tables(tmp_path, reuse=False) is None
