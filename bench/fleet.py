@@ -25,6 +25,11 @@ one series after another in the parent process, divided by the number of worker 
 flow uses (one per CPU): the time the fits alone would take if split evenly over the flow's
 workers, with nothing else to do.
 
+*Tables kept* is a second run of the same fleet, into a copy of the fresh archive that holds the
+``.tables`` folder the first run left (as next week's run finds it, docs/architecture.md §2.4):
+the same work, but the null tables are read instead of simulated.  Its results must equal the
+first run's byte for byte; goal 1 is judged on the first run, which simulates every table.
+
 *CPU use* is the CPU time of the same run, per process (the flow process, the worker processes,
 the Prefect server; :class:`~bench.harness.CpuSnapshot`), set against the CPU that goal 1's wall
 time allows on this machine's cores: a run that keeps every core busy can only get faster by
@@ -38,6 +43,7 @@ import importlib
 import json
 import os
 import pathlib
+import shutil
 import tempfile
 import time
 import warnings
@@ -151,6 +157,11 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
             "flow": cpu_used(cpu1, cpu2),
         },
         "counts": result["counts"],
+        "tables": {
+            k: json.loads(manifest.read_text()).get(k) for k in ("calibration_tables", "calibration_tables_reused")
+        }
+        if manifest.is_file()
+        else {},
         "flow_timings": result["timings"],
         "report": result["report"],
     }
@@ -253,6 +264,36 @@ def _fleet_rows(n: int, ours: dict, peer: dict) -> list[dict]:
     ]
 
 
+def _kept_row(n: int, ours: dict, kept: dict, peer: dict, same: bool) -> dict:
+    """The second run, with the first run's null tables kept (no goal: goal 1 is judged on the first)."""
+    wall = kept["server_start_s"] + kept["flow_s"]
+    ratio = n / wall / peer["series_per_second"]
+    t0, t1 = ours["flow_timings"], kept["flow_timings"]
+    stages = ", ".join(
+        f"{name} {t0[key]:.1f} -> {t1[key]:.1f} s"
+        for name, key in (("null tables", "calibration_s"), ("candidate search", "candidates_s"))
+        if key in t0 and key in t1
+    )
+    tables = kept.get("tables") or {}
+    return {
+        "benchmark": "Fleet throughput, tables kept",
+        "size": f"the same {n} series, run again into a fresh archive holding the first run's .tables",
+        "measured": f"{n / wall:.2f} series/s ({wall:.1f} s incl. {kept['server_start_s']:.1f} s server start); "
+        f"flow {ours['flow_s']:.1f} -> {kept['flow_s']:.1f} s ({stages}); "
+        f"{tables.get('calibration_tables_reused')} of the run's {tables.get('calibration_tables')} shared tables "
+        f"reused; results.json {'identical to' if same else 'DIFFERENT from'} the first run's",
+        "ratio": ratio,
+        "ratio_text": f"{ratio:.1f}x",
+        "goal": "none (goal 1 is judged on the first run); results identical",
+        "met": None if same else False,
+        "details": {"kept": kept, "same_results": same},
+    }
+
+
+def _results_bytes(run: dict) -> bytes:
+    return (pathlib.Path(run["report"]).parent / "results.json").read_bytes()
+
+
 def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
     """Where the run's CPU seconds went, against the CPU that goal 1's wall time allows."""
     cores = os.cpu_count() or 1
@@ -294,8 +335,17 @@ def main(quick: bool = False) -> list[dict]:
         series = fleet_series(n)
         peer = measure_peer(series, paths.data + "/fleet", subset)
         fits = fit_time(series)
+        fresh = root / "archive-fresh"
+        shutil.copytree(paths.archive, fresh)
         ours = run_child("bench.fleet", ["--registry", paths.registry, "--archive", paths.archive], child_env(home))
-    return _fleet_rows(n, ours, peer) + [_fit_bound_row(n, ours, fits), _cpu_row(n, ours, peer)]
+        # next week's run: the fresh archive with the tables the first run kept
+        again = root / "archive-again"
+        shutil.copytree(fresh, again)
+        shutil.copytree(pathlib.Path(paths.archive) / ".tables", again / ".tables")
+        kept = run_child("bench.fleet", ["--registry", paths.registry, "--archive", str(again)], child_env(home))
+        same = _results_bytes(ours) == _results_bytes(kept)
+    rows = _fleet_rows(n, ours, peer) + [_kept_row(n, ours, kept, peer, same)]
+    return rows + [_fit_bound_row(n, ours, fits), _cpu_row(n, ours, peer)]
 
 
 def _child(argv: list[str] | None = None) -> None:

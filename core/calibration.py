@@ -329,14 +329,15 @@ class CalibrationCache:
     are deterministic functions of their key and the run seed, so caches built in different
     batches or processes hold identical tables and can be merged.  With a ``store`` (see
     :class:`TableStore`), a table missing here is first looked up there, and one built here is
-    saved there, so later runs reuse it; ``loads`` counts the tables taken from the store.
+    saved there, so later runs reuse it; ``reused`` holds the keys of the tables taken from the
+    store (also those of a merged cache).
     """
 
     tables: dict = field(default_factory=dict)
     hits: int = 0
     builds: int = 0
     store: TableStore | None = field(default=None, compare=False)
-    loads: int = 0
+    reused: frozenset = frozenset()
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False, compare=False)
 
     def get(self, key: tuple, build: Callable[[], NullTable]) -> NullTable:
@@ -354,7 +355,7 @@ class CalibrationCache:
                 if self.store is not None:
                     self.store.save(key, table)
             else:
-                self.loads += 1
+                self.reused = self.reused | {key}
             # a new dict, not an insertion: another thread may be iterating the tables (Prefect
             # walks a task's parameters while batches in other task threads add tables)
             self.tables = {**self.tables, key: table}
@@ -370,11 +371,13 @@ class CalibrationCache:
         self._lock = threading.Lock()
 
     def merge(self, other: CalibrationCache) -> None:
-        """Add the tables of ``other`` that this cache lacks (a new dict, as in :meth:`get`)."""
+        """Add the tables of ``other`` that this cache lacks (a new dict, as in :meth:`get`), and
+        which of them ``other`` took from its store."""
         with self._lock:
             new = {k: v for k, v in other.tables.items() if k not in self.tables}
             if new:
                 self.tables = {**self.tables, **new}
+                self.reused = self.reused | (other.reused & new.keys())
 
     def __len__(self) -> int:
         return len(self.tables)

@@ -285,8 +285,8 @@ def audit_flow(
             "counts": {k: summary[k] for k in ("registered", "audited", *VERDICTS)},
             "batches": len(staged.batches),
             "calibration_tables": len(cache),
-            # of the tables prepared before the batches, those taken from <archive>/.tables (reuse_null_tables)
-            "calibration_tables_reused": cache.loads,
+            # of the shared tables (before the batches, for the candidate search), those read from <archive>/.tables
+            "calibration_tables_reused": len(cache.reused),
             "recovered": recovered,
             "acknowledged_damage": acknowledged,
             "history": history.to_manifest(),

@@ -62,6 +62,28 @@ def test_cpu_use_is_read_against_the_cpu_goal_1_allows(monkeypatch):
     assert "used 28.0 CPU s, the flow process" in text and "5.0 and the Prefect server 2.0" in text
 
 
+def test_the_run_with_kept_tables_is_read_beside_the_first():
+    import bench.fleet
+
+    first = {**FLEET["details"]["ours"], "flow_timings": {"calibration_s": 1.0, "candidates_s": 4.0}}
+    kept = {
+        "server_start_s": 3.0,
+        "flow_s": 17.0,
+        "flow_timings": {"calibration_s": 0.25, "candidates_s": 2.0},
+        "tables": {"calibration_tables": 9, "calibration_tables_reused": 9},
+    }
+    row = bench.fleet._kept_row(1000, first, kept, {"series_per_second": 6.25}, same=True)
+    assert abs(row["ratio"] - 1000 / 20.0 / 6.25) < 1e-12 and row["met"] is None  # 1000 series in 3 + 17 s
+    assert "flow 35.0 -> 17.0 s (null tables 1.0 -> 0.2 s, candidate search 4.0 -> 2.0 s)" in row["measured"]
+    assert "9 of the run's 9 shared tables reused" in row["measured"]
+    text = reading_the_goals([FLEET, row])
+    assert "**Tables kept (the next run of the same fleet): 8.0x the peer** (no goal)" in text
+    assert "results.json was identical to the first run's." in text
+    differing = bench.fleet._kept_row(1000, first, kept, {"series_per_second": 6.25}, same=False)
+    assert differing["met"] is False and "DIFFERENT from the first run's" in differing["measured"]
+    assert "NOT identical to the first run's: a defect." in reading_the_goals([FLEET, differing])
+
+
 def test_cpu_used_splits_this_process_the_lasting_children_and_the_passing_ones():
     from bench.harness import CpuSnapshot, cpu_used
 

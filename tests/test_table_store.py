@@ -64,13 +64,24 @@ def test_a_kept_table_is_the_simulated_table_bit_for_bit(tmp_path):
     store = FolderTableStore(tmp_path / TABLE_FOLDER)
     first = CalibrationCache(store=store)
     built = _tables(first)
-    assert (first.builds, first.loads) == (3, 0) and len(list(store.folder.glob("*.npz"))) == 3
+    assert (first.builds, first.reused) == (3, frozenset()) and len(list(store.folder.glob("*.npz"))) == 3
     second = CalibrationCache(store=store)
     kept = _tables(second)
-    assert (second.builds, second.loads) == (0, 3)  # nothing simulated again
+    assert second.builds == 0 and second.reused == {t.key for t in kept}  # nothing simulated again
     for p, b, k in zip(plain, built, kept):
         assert _same(p, b) and _same(p, k)
     assert isinstance(kept[1], NullTable) and kept[1].has_gate and isinstance(kept[2], StatisticTable)
+
+
+def test_a_merged_cache_brings_which_of_its_tables_were_reused(tmp_path):
+    store = FolderTableStore(tmp_path)
+    _refit_t(CalibrationCache(store=store))
+    worker = CalibrationCache(store=store)  # as a worker process's copy that read a kept table
+    kept = _refit_t(worker)
+    built = production_table(56, 8, *GRID, 99, 3, worker)
+    flow = CalibrationCache()
+    flow.merge(worker)
+    assert len(flow) == 2 and flow.reused == {kept.key} and built.key not in flow.reused
 
 
 def test_a_table_of_another_key_is_never_taken(tmp_path):
@@ -78,7 +89,7 @@ def test_a_table_of_another_key_is_never_taken(tmp_path):
     _refit_t(CalibrationCache(store=store), shape=7.3)
     other = CalibrationCache(store=store)
     _refit_t(other, shape=4.1)  # another shape key: simulated, not loaded
-    assert (other.builds, other.loads) == (1, 0)
+    assert (other.builds, other.reused) == (1, frozenset())
 
 
 def test_tables_written_by_other_code_are_not_used(tmp_path, monkeypatch):
@@ -86,7 +97,7 @@ def test_tables_written_by_other_code_are_not_used(tmp_path, monkeypatch):
     reference = _refit_t(CalibrationCache(store=store))
     monkeypatch.setattr(table_store, "code_digest", lambda: "0" * 64)  # as if core had changed
     changed = CalibrationCache(store=store)
-    assert _same(_refit_t(changed), reference) and (changed.builds, changed.loads) == (1, 0)
+    assert _same(_refit_t(changed), reference) and (changed.builds, changed.reused) == (1, frozenset())
     # a file whose name matches but whose contents name other code is not used either
     path = store._path(reference.key)
     for f in store.folder.glob("*.npz"):
@@ -107,7 +118,7 @@ def test_a_damaged_file_is_simulated_again_and_replaced(tmp_path, damage):
     path = store._path(reference.key)
     path.write_bytes(damage)
     again = CalibrationCache(store=store)
-    assert _same(_refit_t(again), reference) and (again.builds, again.loads) == (1, 0)
+    assert _same(_refit_t(again), reference) and (again.builds, again.reused) == (1, frozenset())
     assert _same(store.load(reference.key), reference)  # the rebuilt table was written back
 
 

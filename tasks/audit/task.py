@@ -41,7 +41,7 @@ def calibration_task(batch_paths: list[str], policy: Policy, store: TableStore |
         cache = calibration_for(batch_paths, policy, store)
     finally:
         release_freed_memory()
-    get_run_logger().info("calibration: %d null tables (%d kept from earlier runs)", len(cache), cache.loads)
+    get_run_logger().info("calibration: %d null tables (%d kept from earlier runs)", len(cache), len(cache.reused))
     return cache
 
 
