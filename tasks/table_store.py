@@ -38,6 +38,9 @@ __all__ = ["TABLE_FOLDER", "FolderTableStore", "archive_tables", "code_digest"]
 #: The store's folder under the archive root (private; a cache, not evidence).
 TABLE_FOLDER = ".tables"
 
+#: What reading an absent, damaged or foreign file raises (numpy's loader, the zip reader, the JSON text).
+_UNREADABLE = (OSError, EOFError, ValueError, KeyError, TypeError, AttributeError, zipfile.BadZipFile)
+
 #: Array fields of each table class, in the order they are written.
 _ARRAYS = {
     "null": ("reference", "r_max", "gate_reference", "gate_max"),
@@ -69,7 +72,7 @@ class FolderTableStore:
 
     Plain data (a path), so a cache that holds it pickles to worker processes, which then read
     and write the same folder; a file is written to a temporary name and renamed, so a reader
-    never sees half of one and two processes that build the same table write the same bytes.
+    never sees half of one, and two processes that build the same table write equal tables.
     A file that is missing, unreadable or written by other code is not used (:meth:`load` returns
     None and the table is simulated); a folder that cannot be written only loses the saving.
     """
@@ -89,7 +92,7 @@ class FolderTableStore:
                     return None
                 kind = meta["kind"]
                 arrays = {name: data[name] if name in data.files else None for name in _ARRAYS[kind]}
-        except (OSError, EOFError, ValueError, KeyError, TypeError, zipfile.BadZipFile):  # absent or damaged
+        except _UNREADABLE:
             return None
         table_class = NullTable if kind == "null" else StatisticTable
         return table_class(key=key, method=meta["method"], **arrays)

@@ -122,6 +122,15 @@ def test_a_damaged_file_is_simulated_again_and_replaced(tmp_path, damage):
     assert _same(store.load(reference.key), reference)  # the rebuilt table was written back
 
 
+@pytest.mark.parametrize("meta", ["[1, 2]", '{"kind": "other"}', "not json"])
+def test_a_file_with_foreign_contents_is_not_used(tmp_path, meta):
+    store = FolderTableStore(tmp_path)
+    reference = _refit_t(CalibrationCache(store=store))
+    with open(store._path(reference.key), "wb") as f:
+        np.savez(f, meta=np.array(meta), reference=reference.reference, r_max=reference.r_max)
+    assert store.load(reference.key) is None
+
+
 def test_a_folder_that_cannot_be_written_only_loses_the_saving(tmp_path):
     blocker = tmp_path / "file"
     blocker.write_text("a file where the folder should be")
