@@ -142,9 +142,10 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
         t2 = time.perf_counter()
         cpu2 = CpuSnapshot.now()
     work = clock.covered(t1, t2)
-    manifest = pathlib.Path(result["report"]).parent / "manifest.json"
+    path = pathlib.Path(result["report"]).parent / "manifest.json"
+    manifest = json.loads(path.read_text()) if path.is_file() else {}
     return {
-        "batches": json.loads(manifest.read_text())["batches"] if manifest.is_file() else None,
+        "batches": manifest.get("batches"),
         "server_start_s": t1 - t0,
         "flow_s": t2 - t1,
         "work_s": work,
@@ -157,11 +158,7 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
             "flow": cpu_used(cpu1, cpu2),
         },
         "counts": result["counts"],
-        "tables": {
-            k: json.loads(manifest.read_text()).get(k) for k in ("calibration_tables", "calibration_tables_reused")
-        }
-        if manifest.is_file()
-        else {},
+        "tables": {k: manifest.get(k) for k in ("calibration_tables", "calibration_tables_reused")},
         "flow_timings": result["timings"],
         "report": result["report"],
     }

@@ -1,4 +1,4 @@
-"""Small file helpers shared by the stages: canonical JSON, hashing, write-once files."""
+"""Small file helpers shared by the stages: canonical JSON, hashing, write-once and replaced files."""
 
 from __future__ import annotations
 
@@ -9,6 +9,7 @@ import json
 import os
 import pathlib
 import re
+import secrets
 import tempfile
 from collections.abc import Iterable, Iterator
 from typing import Any
@@ -22,6 +23,7 @@ __all__ = [
     "sha256_file",
     "write_once",
     "write_once_chunks",
+    "write_replacing",
     "utc_now",
     "json_ready",
 ]
@@ -91,6 +93,25 @@ def _naming(path: pathlib.Path) -> Iterator[None]:
     except OSError as exc:
         if exc.filename is None and exc.errno is not None:
             raise OSError(exc.errno, exc.strerror, str(path)) from exc
+        raise
+
+
+def write_replacing(path: str | os.PathLike, data: bytes) -> None:
+    """Write ``data`` to ``path``, replacing the file there in one step: a temporary sibling
+    ``.<name>.<random>.tmp`` is written whole, then renamed over ``path`` (``os.replace``), so a
+    reader sees the old file or the new one, never part of one.  The sibling's name is unique, so
+    processes and threads writing the same path at once do not clash (the last rename wins); it
+    is removed when the write fails.  For derived files that are rewritten (caches, the archive's
+    index page, spill files), not for evidence (:func:`write_once`).
+    """
+    path = pathlib.Path(path)
+    tmp = path.with_name(f".{path.name}.{secrets.token_hex(8)}.tmp")
+    try:
+        with _naming(tmp), open(tmp, "xb") as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
         raise
 
 

@@ -51,7 +51,7 @@ from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
-from ._io import canonical_json
+from ._io import canonical_json, write_replacing
 
 if TYPE_CHECKING:
     from fitaudit.core.results import AuditResult
@@ -173,10 +173,7 @@ def spill_path(batch_path: str) -> str:
 def spill_outcomes(outcomes: Sequence[Outcome], batch_path: str) -> list[Outcome]:
     """Keep a batch's full outcomes in :func:`spill_path` (written whole, then renamed into place)
     and return them light (:func:`light_outcome`)."""
-    target = pathlib.Path(spill_path(batch_path))
-    tmp = target.with_name(target.name + ".tmp")
-    tmp.write_bytes(pickle.dumps(list(outcomes), protocol=pickle.HIGHEST_PROTOCOL))
-    tmp.replace(target)
+    write_replacing(spill_path(batch_path), pickle.dumps(list(outcomes), protocol=pickle.HIGHEST_PROTOCOL))
     return [light_outcome(o) for o in outcomes]
 
 

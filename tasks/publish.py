@@ -35,7 +35,7 @@ import pyarrow.parquet as pq
 from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 
-from ._io import sha256_bytes
+from ._io import sha256_bytes, write_replacing
 from .archive import PublishedRun, chain_head, history_runs, list_runs, open_run, read_chain
 from .outcomes import (
     HISTORY_COLUMNS,
@@ -358,7 +358,5 @@ def render_archive_index_file(archive_root: str | os.PathLike) -> pathlib.Path:
 
     root = pathlib.Path(archive_root)
     data = render_archive_index(list_runs(root))
-    tmp = root / f".index.html.{os.getpid()}.tmp"
-    tmp.write_bytes(data)
-    os.replace(tmp, root / "index.html")
+    write_replacing(root / "index.html", data)
     return root / "index.html"

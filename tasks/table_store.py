@@ -21,17 +21,19 @@ from __future__ import annotations
 import dataclasses
 import functools
 import hashlib
+import io
 import json
 import os
 import pathlib
 import platform
 import sys
-import tempfile
 import zipfile
 
 import numpy as np
 
 from fitaudit.core.calibration import NullTable, StatisticTable
+
+from ._io import write_replacing
 
 __all__ = ["TABLE_FOLDER", "FolderTableStore", "archive_tables", "code_digest"]
 
@@ -41,11 +43,13 @@ TABLE_FOLDER = ".tables"
 #: What reading an absent, damaged or foreign file raises (numpy's loader, the zip reader, the JSON text).
 _UNREADABLE = (OSError, EOFError, ValueError, KeyError, TypeError, AttributeError, zipfile.BadZipFile)
 
-#: Array fields of each table class, in the order they are written.
-_ARRAYS = {
-    "null": ("reference", "r_max", "gate_reference", "gate_max"),
-    "statistic": ("values",),
-}
+#: The table classes a file may hold, by the name its JSON text gives; every field but ``key``
+#: and ``method`` is an array (or None, which is not written).
+_KINDS = {"null": NullTable, "statistic": StatisticTable}
+
+
+def _arrays(table_class: type) -> list[str]:
+    return [f.name for f in dataclasses.fields(table_class) if f.name not in ("key", "method")]
 
 
 @functools.cache
@@ -90,31 +94,24 @@ class FolderTableStore:
                 meta = json.loads(str(data["meta"]))
                 if meta.get("key") != repr(key) or meta.get("code") != code_digest():
                     return None
-                kind = meta["kind"]
-                arrays = {name: data[name] if name in data.files else None for name in _ARRAYS[kind]}
+                table_class = _KINDS[meta["kind"]]
+                arrays = {name: data[name] if name in data.files else None for name in _arrays(table_class)}
+                return table_class(key=key, method=meta["method"], **arrays)
         except _UNREADABLE:
             return None
-        table_class = NullTable if kind == "null" else StatisticTable
-        return table_class(key=key, method=meta["method"], **arrays)
 
     def save(self, key: tuple, table: NullTable | StatisticTable) -> None:
         """Keep ``table`` under ``key`` (a table of another class, or an unwritable folder: nothing kept)."""
-        kind = "null" if isinstance(table, NullTable) else "statistic" if isinstance(table, StatisticTable) else None
+        kind = next((name for name, cls in _KINDS.items() if type(table) is cls), None)
         if kind is None:
             return
         meta = json.dumps({"key": repr(key), "code": code_digest(), "kind": kind, "method": table.method})
-        arrays = {name: getattr(table, name) for name in _ARRAYS[kind] if getattr(table, name) is not None}
-        path = self._path(key)
+        arrays = {name: getattr(table, name) for name in _arrays(type(table)) if getattr(table, name) is not None}
+        data = io.BytesIO()
+        np.savez(data, meta=np.array(meta), **arrays)
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
-            fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=".tmp", dir=self.folder)
-            try:
-                with os.fdopen(fd, "wb") as f:
-                    np.savez(f, meta=np.array(meta), **arrays)
-                os.replace(tmp, path)
-            except BaseException:
-                pathlib.Path(tmp).unlink(missing_ok=True)
-                raise
+            write_replacing(self._path(key), data.getvalue())
         except OSError:
             return
 

@@ -793,3 +793,23 @@ def test_a_runs_files_are_synced_together_before_its_manifest(tmp_path, monkeypa
     monkeypatch.undo()
     assert [p.name for p in (root / "runs" / "2026").iterdir()] == [first.path.name]
     assert archive.verify_archive(root) == []
+
+
+def test_a_replaced_file_is_the_old_or_the_new_one_never_a_part(tmp_path, monkeypatch):
+    from fitaudit.tasks import _io
+
+    target = tmp_path / "index.html"
+    target.write_bytes(b"old")
+    _io.write_replacing(target, b"new")
+    assert target.read_bytes() == b"new" and [p.name for p in tmp_path.iterdir()] == ["index.html"]
+
+    class DiskFull(OSError):
+        pass
+
+    def failing_replace(src, dst):
+        raise DiskFull(28, "No space left on device")
+
+    monkeypatch.setattr(_io.os, "replace", failing_replace)
+    with pytest.raises(DiskFull):
+        _io.write_replacing(target, b"newer")
+    assert target.read_bytes() == b"new" and [p.name for p in tmp_path.iterdir()] == ["index.html"]  # no leftover

@@ -7,6 +7,7 @@ code, a damaged file or a folder that cannot be written must only cost the savin
 from __future__ import annotations
 
 import dataclasses
+import pathlib
 import pickle
 
 import numpy as np
@@ -106,9 +107,17 @@ def test_tables_written_by_other_code_are_not_used(tmp_path, monkeypatch):
     assert store.load(reference.key) is None
 
 
-def test_the_code_digest_covers_the_core_sources_and_the_libraries():
+def test_the_code_digest_changes_with_a_core_source_or_a_library_version(monkeypatch):
     digest = table_store.code_digest()
-    assert len(digest) == 64 and table_store.code_digest() is digest  # computed once per process
+    assert table_store.code_digest() is digest  # computed once per process
+    assert table_store.code_digest.__wrapped__() == digest  # the same sources give the same digest
+    read = pathlib.Path.read_bytes
+    edited = lambda path: read(path) + (b"#" if path.name == "calibration.py" else b"")  # noqa: E731
+    monkeypatch.setattr(pathlib.Path, "read_bytes", edited)
+    assert table_store.code_digest.__wrapped__() != digest  # a core source edited
+    monkeypatch.undo()
+    monkeypatch.setattr(np, "__version__", "0.0")
+    assert table_store.code_digest.__wrapped__() != digest  # another numpy
 
 
 @pytest.mark.parametrize("damage", [b"", b"not a zip file", b"PK\x03\x04 truncated"])

@@ -12,7 +12,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.fs as pafs
 
-from .._io import canonical_json, sha256_bytes, sha256_file
+from .._io import canonical_json, sha256_bytes, sha256_file, write_replacing
 from ..registry import SourceEntry
 from . import stores
 from .conversion import _to_time
@@ -125,9 +125,7 @@ class FingerprintCache:
         if not self._changed:
             return
         self.path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = self.path.with_name(f".{self.path.name}.{os.getpid()}.tmp")
-        tmp.write_bytes(canonical_json({"files": self._entries}))
-        os.replace(tmp, self.path)
+        write_replacing(self.path, canonical_json({"files": self._entries}))
         self._changed = False
 
 
