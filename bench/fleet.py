@@ -51,7 +51,17 @@ import warnings
 from fitaudit.core.vocabulary import VERDICTS
 
 from .fleet_data import AS_OF, FleetSeries, fleet_series, model_ids, write_fleet
-from .harness import CpuSnapshot, WorkClock, child_env, cpu_used, run_child, warm_prefect_home, write_result
+from .harness import (
+    CpuSnapshot,
+    CpuTimeline,
+    WorkClock,
+    child_env,
+    cpu_used,
+    idle_phases,
+    run_child,
+    warm_prefect_home,
+    write_result,
+)
 
 __all__ = ["main", "WORK_FUNCTIONS", "audit_in_child", "fit_time"]
 
@@ -118,13 +128,14 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
 
     _env.configure_prefect()
     clock = WorkClock()
+    timeline = CpuTimeline()
     cpu0 = CpuSnapshot.now()
     t0 = time.perf_counter()
     # as `fitaudit run` does: the embedded server launched first, the flow's imports while it starts,
     # and its runs without heartbeats (a configured server, as for the Dask runs, keeps Prefect's settings)
     from fitaudit.flows.server import embedded_server
 
-    with embedded_server(lambda: _patch_work_functions(clock)):
+    with timeline, embedded_server(lambda: _patch_work_functions(clock)):
         from prefect.client.orchestration import get_client
 
         from fitaudit.flows.audit import audit_flow
@@ -157,6 +168,8 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
             "server_start": {k: v for k, v in cpu_used(cpu0, cpu1).items() if k != "lasting"},
             "flow": cpu_used(cpu1, cpu2),
         },
+        # idle core-seconds per phase, from the process tree's CPU sampled every 0.1 s
+        "cpu_phases": idle_phases(timeline.samples, t0, t1, t2, os.cpu_count() or 1),
         "counts": result["counts"],
         "tables": {k: manifest.get(k) for k in ("calibration_tables", "calibration_tables_reused")},
         "flow_timings": result["timings"],
@@ -291,6 +304,14 @@ def _results_bytes(run: dict) -> bytes:
     return (pathlib.Path(run["report"]).parent / "results.json").read_bytes()
 
 
+#: The flow's phases of :func:`bench.harness.idle_phases`, as the CPU row names them.
+_PHASE_TEXT = {
+    "before_batches": "before the batch stages",
+    "batches": "during them",
+    "after_batches": "after them",
+}
+
+
 def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
     """Where the run's CPU seconds went, against the CPU that goal 1's wall time allows."""
     cores = os.cpu_count() or 1
@@ -299,6 +320,16 @@ def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
     allowed_s = n / (GOAL_RATIO * peer["series_per_second"])  # goal 1's wall time for the whole run
     budget = cores * allowed_s
     busy = sum(flow.values()) / ours["flow_s"]
+    phases = ours.get("cpu_phases") or {}
+    idle = {k: v["idle_core_s"] for k, v in phases.items()}
+    idle_text = (
+        "; idle core-seconds (sampled every 0.1 s): server start "
+        + f"{idle.get('server_start', 0.0):.1f}, flow {sum(v for k, v in idle.items() if k != 'server_start'):.1f} ("
+        + ", ".join(f"{_PHASE_TEXT[k]} {v:.1f}" for k, v in idle.items() if k != "server_start")
+        + ")"
+        if idle
+        else ""
+    )
     return {
         "benchmark": "CPU use",
         "size": f"the same {n}-series run",
@@ -307,12 +338,19 @@ def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
         f"{busy:.2f} of {cores} cores busy on average); server start {ours['server_start_s']:.1f} s: "
         f"{sum(start.values()):.1f} CPU s (the command's imports {start['own']:.1f}, the server "
         f"{start['passing']:.1f}); "
-        f"goal 1 allows {allowed_s:.1f} s, at most {budget:.1f} CPU s on {cores} cores",
+        f"goal 1 allows {allowed_s:.1f} s, at most {budget:.1f} CPU s on {cores} cores{idle_text}",
         "ratio": used / budget,
         "ratio_text": f"{used:.1f} CPU s, {used / budget:.1f}x goal 1's",
         "goal": "a reading of goal 1 (no goal of its own)",
         "met": None,
-        "details": {"cpu_s": ours["cpu_s"], "flow_s": ours["flow_s"], "allowed_s": allowed_s, "cores": cores},
+        "details": {
+            "cpu_s": ours["cpu_s"],
+            "flow_s": ours["flow_s"],
+            "allowed_s": allowed_s,
+            "cores": cores,
+            "phases": phases,
+            "server_start_s": ours["server_start_s"],
+        },
     }
 
 

@@ -168,6 +168,98 @@ class CpuSnapshot(NamedTuple):
         return cls(own.ru_utime + own.ru_stime, waited.ru_utime + waited.ru_stime, running)
 
 
+class CpuTimeline:
+    """The process tree's CPU seconds, sampled in a thread every ``interval`` seconds while inside.
+
+    Each sample is ``(time.perf_counter(), this process, the Prefect server, the other children)``,
+    cumulative CPU seconds (user + system); the server is the child running ``uvicorn``, the other
+    children are the worker processes.  A child that has ended keeps its last sampled CPU, so up to
+    one interval of each worker's work at its very end is missed.
+    """
+
+    def __init__(self, interval: float = 0.1):
+        self.interval = interval
+        self.samples: list[tuple[float, float, float, float]] = []
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._sample, name="bench-cpu-timeline", daemon=True)
+
+    def __enter__(self) -> CpuTimeline:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        self._thread.join()
+
+    def _sample(self) -> None:
+        import psutil  # a benchmark dependency (bench.memory): fitaudit itself does not need it
+
+        me = psutil.Process()
+        own_cmdline = me.cmdline()
+        children: dict[int, tuple[str, float]] = {}  # pid: (role, last CPU seconds seen)
+        while True:
+            mine = me.cpu_times()
+            for child in me.children(recursive=True):
+                try:
+                    role = children[child.pid][0] if child.pid in children else _role(child, own_cmdline)
+                    if role is None:
+                        continue
+                    t = child.cpu_times()
+                except psutil.Error:  # gone meanwhile: its last sample stands
+                    continue
+                children[child.pid] = (role, t.user + t.system)
+            server = sum(cpu for role, cpu in children.values() if role == "server")
+            workers = sum(cpu for role, cpu in children.values() if role == "workers")
+            self.samples.append((time.perf_counter(), mine.user + mine.system, server, workers))
+            if self._stop.wait(self.interval):
+                return
+
+
+def _role(child, own_cmdline: list[str]) -> str | None:
+    """``server`` (runs uvicorn) or ``workers``; None for a child forked but not yet running its own
+    program (it still shows this process's command line), which the next sample looks at again."""
+    cmdline = child.cmdline()
+    if cmdline == own_cmdline:
+        return None
+    return "server" if any("uvicorn" in part for part in cmdline) else "workers"
+
+
+def idle_phases(
+    samples: Sequence[tuple[float, float, float, float]], start: float, ready: float, end: float, cores: int
+) -> dict[str, dict[str, float]]:
+    """Wall time, CPU seconds and idle core-seconds (cores x wall - CPU) of a run's phases, from
+    :class:`CpuTimeline` samples: ``server_start`` (``start`` to ``ready``, the server's first
+    answer), then in the flow (``ready`` to ``end``) ``before_batches`` (until the worker processes
+    first use CPU), ``batches`` (until they last do) and ``after_batches``.  Boundaries are read at
+    the samples (the last one at or before each time); a flow without worker CPU has only
+    ``before_batches``.
+    """
+
+    def at(t: float) -> tuple[float, float]:
+        """(time, total CPU) of the last sample at or before t (the first sample if none)."""
+        chosen = samples[0]
+        for sample in samples:
+            if sample[0] <= t:
+                chosen = sample
+        return chosen[0], sum(chosen[1:])
+
+    flow = [s for s in samples if ready <= s[0] <= end]
+    rising = [s[0] for prev, s in zip(flow, flow[1:]) if s[3] > prev[3]]
+    # a worker's CPU rises at the sample after the interval it worked in: that interval starts one sample earlier
+    first = max((p[0] for p in flow if p[0] < rising[0]), default=ready) if rising else end
+    bounds = {"server_start": (start, ready)}
+    if rising:
+        bounds |= {"before_batches": (ready, first), "batches": (first, rising[-1]), "after_batches": (rising[-1], end)}
+    else:
+        bounds["before_batches"] = (ready, end)
+    out = {}
+    for name, (a, b) in bounds.items():
+        (ta, ca), (tb, cb) = at(a), at(b)
+        wall = max(tb - ta, 0.0)
+        out[name] = {"wall_s": wall, "cpu_s": cb - ca, "idle_core_s": max(cores * wall - (cb - ca), 0.0)}
+    return out
+
+
 def cpu_used(before: CpuSnapshot, after: CpuSnapshot) -> dict[str, float]:
     """CPU seconds between two snapshots of one process: ``own`` (this process), ``lasting`` (children
     running at both, such as a server) and ``passing`` (children started meanwhile: those waited

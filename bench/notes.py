@@ -82,7 +82,14 @@ still running (`psutil`: the Prefect server), before the server's launch, when t
 answers and when the flow returns. The row sums them and sets the total against the CPU that goal
 1's wall time allows: the peer's time for the fleet over 20, times the cores. The average number
 of busy cores during the flow (its CPU seconds over its wall time) says how much of the run is
-waiting rather than computing.
+waiting rather than computing. Where the cores stood idle: `bench/harness.py:CpuTimeline`, a
+thread of the same child process, samples the process tree's CPU seconds every 0.1 s (about half
+a millisecond per sample) by role (the child itself, the Prefect server, the worker processes), and
+`idle_phases` splits the run at the server's first answer and at the first and last samples in
+which the worker processes used CPU: the server's start, the flow before the batch stages, the
+batch stages and the flow after them, each with its idle core-seconds (cores times wall time less
+the tree's CPU seconds). A perfect overlap of every stage could shorten the flow by at most the
+flow's idle core-seconds divided by the cores.
 
 **Peak memory.** One 10,000-series extract; runs audit its first 2,500, 5,000 and 10,000 models in
 fresh child processes; the parent polls the resident set size (psutil, every 0.2 s) of the flow

@@ -108,7 +108,38 @@ def _cpu(row: dict) -> str:
         "waiting: overlapping its stages could win back at most the idle part, and goal 1 needs the work itself cut "
         f"by that factor. The worker processes (audit, candidate search, records and pages) used "
         f"{flow['passing']:.1f} CPU s, the flow process (staging, the null tables, the fleet rules, the archive, "
-        f"Prefect's task runs) {flow['own']:.1f} and the Prefect server {flow['lasting']:.1f}."
+        f"Prefect's task runs) {flow['own']:.1f} and the Prefect server {flow['lasting']:.1f}." + _idle(d)
+    )
+
+
+def _idle(d: dict) -> str:
+    """Where the cores stood idle, and the most that overlapping the stages could win back."""
+    phases = d.get("phases") or {}
+    if "before_batches" not in phases:
+        return ""
+    cores = d["cores"]
+    in_flow = {k: v for k, v in phases.items() if k != "server_start"}
+    idle = sum(v["idle_core_s"] for v in in_flow.values())
+    start = phases["server_start"]["idle_core_s"]
+    best = d["flow_s"] - idle / cores
+    parts = [
+        f"{in_flow['before_batches']['idle_core_s']:.1f} before the batch stages (the flow process alone "
+        f"for {in_flow['before_batches']['wall_s']:.1f} s: registry, archive checks, staging, null tables)"
+    ]
+    if "batches" in in_flow:
+        parts += [
+            f"{in_flow['batches']['idle_core_s']:.1f} during them (each stage's last batches, the fleet rules "
+            "between them)",
+            f"{in_flow['after_batches']['idle_core_s']:.1f} after them (archive writing, events; "
+            f"{in_flow['after_batches']['wall_s']:.1f} s)",
+        ]
+    return (
+        f" Sampled every 0.1 s, the cores stood idle for {idle:.1f} core-seconds of the flow: "
+        + "; ".join(parts)
+        + f". A perfect overlap of everything would shorten the flow by at most {idle / cores:.1f} s, to "
+        f"{best:.1f} s, against the {d['allowed_s']:.1f} s goal 1 allows for the whole run. The server's start "
+        f"left {start:.1f} core-seconds idle ({d.get('server_start_s', 0.0):.1f} s, the command's imports "
+        "running beside it)."
     )
 
 

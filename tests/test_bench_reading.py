@@ -62,6 +62,72 @@ def test_cpu_use_is_read_against_the_cpu_goal_1_allows(monkeypatch):
     assert "used 28.0 CPU s, the flow process" in text and "5.0 and the Prefect server 2.0" in text
 
 
+def test_idle_phases_split_the_run_where_the_worker_processes_start_and_stop():
+    from bench.harness import idle_phases
+
+    # (time, this process, server, workers) cumulative CPU seconds; workers run between t = 2 and t = 4
+    samples = [(0, 0, 0, 0), (1, 0.2, 0.8, 0), (2, 1.2, 0.8, 0)]
+    samples += [(3, 1.3, 0.8, 1.7), (4, 1.4, 0.9, 3.6), (5, 2.3, 1.0, 3.6)]
+    phases = idle_phases(samples, 0, 1, 5, 2)
+    assert list(phases) == ["server_start", "before_batches", "batches", "after_batches"]
+    expected = {  # (wall, CPU, idle = 2 cores x wall - CPU), by hand from the samples
+        "server_start": (1.0, 1.0, 1.0),
+        "before_batches": (1.0, 1.0, 1.0),
+        "batches": (2.0, 3.9, 0.1),
+        "after_batches": (1.0, 1.0, 1.0),
+    }
+    for name, (wall, cpu, idle) in expected.items():
+        got = phases[name]
+        assert abs(got["wall_s"] - wall) < 1e-12 and abs(got["cpu_s"] - cpu) < 1e-12
+        assert abs(got["idle_core_s"] - idle) < 1e-12
+    # no worker CPU (a small run computes in place): the whole flow is one phase
+    alone = idle_phases([(0, 0, 0, 0), (1, 0.5, 0.5, 0), (3, 2.5, 0.6, 0)], 0, 1, 3, 2)
+    assert list(alone) == ["server_start", "before_batches"]
+    assert abs(alone["before_batches"]["idle_core_s"] - (4.0 - 2.1)) < 1e-12
+
+
+def test_a_child_not_yet_running_its_own_program_gets_no_role():
+    from bench.harness import _role
+
+    class Child:
+        def __init__(self, cmdline):
+            self._cmdline = cmdline
+
+        def cmdline(self):
+            return self._cmdline
+
+    own = ["python", "-m", "bench.fleet", "--child"]
+    assert _role(Child(own), own) is None  # forked, not exec'd yet: looked at again at the next sample
+    assert _role(Child(["python", "-m", "uvicorn", "--factory"]), own) == "server"
+    assert _role(Child(["python", "-c", "from multiprocessing.spawn import spawn_main"]), own) == "workers"
+
+
+def test_the_cpu_row_says_where_the_cores_stood_idle(monkeypatch):
+    import bench.fleet
+
+    monkeypatch.setattr(bench.fleet.os, "cpu_count", lambda: 2)
+    phases = {
+        "server_start": {"wall_s": 3.0, "cpu_s": 4.0, "idle_core_s": 2.0},
+        "before_batches": {"wall_s": 3.0, "cpu_s": 3.2, "idle_core_s": 2.8},
+        "batches": {"wall_s": 14.0, "cpu_s": 27.0, "idle_core_s": 1.0},
+        "after_batches": {"wall_s": 3.0, "cpu_s": 1.8, "idle_core_s": 4.2},
+    }
+    ours = {
+        "flow_s": 20.0,
+        "server_start_s": 3.0,
+        "cpu_s": {"server_start": {"own": 1.0, "passing": 3.0}, "flow": {"own": 5.0, "lasting": 2.0, "passing": 28.0}},
+        "cpu_phases": phases,
+    }
+    row = bench.fleet._cpu_row(1000, ours, {"series_per_second": 6.25})
+    assert "idle core-seconds (sampled every 0.1 s): server start 2.0, flow 8.0" in row["measured"]
+    assert "(before the batch stages 2.8, during them 1.0, after them 4.2)" in row["measured"]
+    text = reading_the_goals([FLEET, row])
+    assert "the cores stood idle for 8.0 core-seconds of the flow: 2.8 before the batch stages" in text
+    # 8 idle core-seconds on 2 cores: at most 4 s off the 20 s flow
+    assert "shorten the flow by at most 4.0 s, to 16.0 s, against the 8.0 s goal 1 allows" in text
+    assert "The server's start left 2.0 core-seconds idle (3.0 s," in text
+
+
 def test_the_run_with_kept_tables_is_read_beside_the_first():
     import bench.fleet
 
