@@ -7,6 +7,7 @@ archive, and verdicts are published as Prefect events.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import pathlib
 import time
@@ -22,6 +23,7 @@ from fitaudit.tasks.audit import candidate_jobs, candidate_tables, wants_candida
 from fitaudit.tasks.audit.task import audit_batch_task, calibration_task, candidates_task, finalize_task, tables_task
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.events import events_task
+from fitaudit.tasks.memory import heap_frozen
 from fitaudit.tasks.outcomes import rejected_outcome, render_parcels
 from fitaudit.tasks.publish import (
     code_commit,
@@ -175,7 +177,10 @@ def audit_flow(
     # the run's scratch folder, locked while it runs; recover() removes it if the process dies
     scratch = open_work_folder(archive, run_id)
     work = scratch.path
-    try:
+    with contextlib.ExitStack() as ending:
+        ending.callback(scratch.close)
+        # the imports' objects (Prefect, pydantic, pyarrow) left out of the collector's passes until the run ends
+        ending.enter_context(heap_frozen())
         t0 = time.perf_counter()
         # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
         # them (twice per task call) looking for futures, which costs seconds on a big fleet
@@ -343,8 +348,6 @@ def audit_flow(
                     reason=f"verdicts of audit run {run_id}",
                     registry_sha256=reg.sha256,
                 )
-    finally:
-        scratch.close()
     return {
         "run_id": run_id,
         "as_of": as_of.isoformat(),

@@ -27,7 +27,7 @@ from typing import Any, TypeVar
 
 from fitaudit.core.exceptions import FitauditError
 
-from .memory import release_freed_memory
+from .memory import freeze_heap, release_freed_memory
 
 __all__ = [
     "local_workers",
@@ -75,6 +75,7 @@ def _warm() -> int:
     from fitaudit.core._scipy import import_all
 
     import_all()  # the scipy modules the fits use, which core imports on first use
+    freeze_heap()  # what the imports made lives as long as the worker: the collector need not walk it again
     return os.getpid()
 
 

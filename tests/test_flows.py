@@ -51,6 +51,26 @@ def first_run(demo, prefect_server, tmp_path_factory):
     return audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=archive, models=SUBSET, batch_size=3)
 
 
+def test_the_audit_flow_runs_with_its_imports_frozen_and_thaws_them(demo, prefect_server, tmp_path, monkeypatch):
+    import gc
+
+    import fitaudit.flows.audit as module
+
+    seen = []
+    summary = module.results_summary
+
+    def counting(*args, **kwargs):  # called in the flow process after the batch stages
+        seen.append(gc.get_freeze_count())
+        return summary(*args, **kwargs)
+
+    monkeypatch.setattr(module, "results_summary", counting)
+    gc.unfreeze()
+    archive = _fresh_archive(demo, tmp_path)
+    module.audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=archive, models=SUBSET[:2], batch_size=3)
+    assert len(seen) == 1 and seen[0] > 10_000  # Prefect's, pydantic's and fitaudit's objects, frozen
+    assert gc.get_freeze_count() == 0
+
+
 def test_audit_flow_end_to_end(first_run):
     counts = first_run["counts"]
     assert counts["registered"] == len(SUBSET) == sum(counts[v] for v in VERDICTS)
