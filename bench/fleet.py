@@ -133,9 +133,13 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
     t0 = time.perf_counter()
     # as `fitaudit run` does: the embedded server launched first, the flow's imports while it starts,
     # and its runs without heartbeats (a configured server, as for the Dask runs, keeps Prefect's settings)
-    from fitaudit.flows.server import embedded_server
+    from fitaudit.flows.server import command_imports, embedded_server
 
-    with timeline, embedded_server(lambda: _patch_work_functions(clock)):
+    def prepare() -> None:  # the command's imports, then the timers around the work functions
+        command_imports("fitaudit.flows.audit")
+        _patch_work_functions(clock)
+
+    with timeline, embedded_server(prepare):
         from prefect.client.orchestration import get_client
 
         from fitaudit.flows.audit import audit_flow

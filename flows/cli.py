@@ -21,7 +21,6 @@ import argparse
 import contextlib
 import datetime as dt
 import errno
-import importlib
 import json
 import os
 import pathlib
@@ -245,13 +244,13 @@ def _server_if_needed(args: argparse.Namespace, flow_module: str):
             print(f"fitaudit: started a local Prefect server at {url} (log {log})", file=sys.stderr)
             yield url
     else:
-        from .server import embedded_server
+        from .server import command_imports, embedded_server
 
         if os.environ.get("PREFECT_API_URL"):  # a server of the user's
             yield os.environ["PREFECT_API_URL"]
             return
         # started now rather than by the first flow, so that it is recorded and can be reaped after a SIGKILL
-        with embedded_server(lambda: importlib.import_module(flow_module)) as url:
+        with embedded_server(lambda: command_imports(flow_module)) as url:
             yield url
 
 

@@ -160,3 +160,17 @@ def test_runs_on_the_embedded_server_send_no_heartbeats_a_users_server_keeps_the
     with cli._server_if_needed(args, "fitaudit.flows.audit") as url:
         assert url == "http://127.0.0.1:4200/api"
         assert get_current_settings().flows.heartbeat_frequency == default
+
+
+def test_the_command_imports_its_flows_and_the_flow_process_scipy_module_while_the_server_starts():
+    code = textwrap.dedent(
+        """
+        import json, sys
+        from fitaudit.flows.server import WARM_IMPORTS, command_imports
+        command_imports("fitaudit.flows.audit")
+        print(json.dumps({m: m in sys.modules for m in ("fitaudit.flows.audit", *WARM_IMPORTS, "scipy.stats")}))
+        """
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    loaded = json.loads(out.stdout)
+    assert loaded == {"fitaudit.flows.audit": True, "scipy.special": True, "scipy.stats": False}
