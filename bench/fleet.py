@@ -52,6 +52,7 @@ from fitaudit.core.vocabulary import VERDICTS
 
 from .fleet_data import AS_OF, FleetSeries, fleet_series, model_ids, write_fleet
 from .harness import (
+    CPU_SAMPLE_S,
     CpuSnapshot,
     CpuTimeline,
     WorkClock,
@@ -172,7 +173,7 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
             "server_start": {k: v for k, v in cpu_used(cpu0, cpu1).items() if k != "lasting"},
             "flow": cpu_used(cpu1, cpu2),
         },
-        # idle core-seconds per phase, from the process tree's CPU sampled every 0.1 s
+        # idle core-seconds per phase, from the process tree's CPU sampled every CPU_SAMPLE_S seconds
         "cpu_phases": idle_phases(timeline.samples, t0, t1, t2, os.cpu_count() or 1),
         "counts": result["counts"],
         "tables": {k: manifest.get(k) for k in ("calibration_tables", "calibration_tables_reused")},
@@ -327,7 +328,7 @@ def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
     phases = ours.get("cpu_phases") or {}
     idle = {k: v["idle_core_s"] for k, v in phases.items()}
     idle_text = (
-        "; idle core-seconds (sampled every 0.1 s): server start "
+        f"; idle core-seconds (sampled every {CPU_SAMPLE_S:g} s): server start "
         + f"{idle.get('server_start', 0.0):.1f}, flow {sum(v for k, v in idle.items() if k != 'server_start'):.1f} ("
         + ", ".join(f"{_PHASE_TEXT[k]} {v:.1f}" for k, v in idle.items() if k != "server_start")
         + ")"
@@ -353,6 +354,7 @@ def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
             "allowed_s": allowed_s,
             "cores": cores,
             "phases": phases,
+            "sample_s": CPU_SAMPLE_S,
             "server_start_s": ours["server_start_s"],
         },
     }

@@ -168,6 +168,10 @@ class CpuSnapshot(NamedTuple):
         return cls(own.ru_utime + own.ru_stime, waited.ru_utime + waited.ru_stime, running)
 
 
+#: Seconds between two samples of :class:`CpuTimeline` (a sample costs about a millisecond of CPU).
+CPU_SAMPLE_S = 0.2
+
+
 class CpuTimeline:
     """The process tree's CPU seconds, sampled in a thread every ``interval`` seconds while inside.
 
@@ -177,7 +181,7 @@ class CpuTimeline:
     one interval of each worker's work at its very end is missed.
     """
 
-    def __init__(self, interval: float = 0.1):
+    def __init__(self, interval: float = CPU_SAMPLE_S):
         self.interval = interval
         self.samples: list[tuple[float, float, float, float]] = []
         self._stop = threading.Event()

@@ -119,7 +119,7 @@ def test_the_cpu_row_says_where_the_cores_stood_idle(monkeypatch):
         "cpu_phases": phases,
     }
     row = bench.fleet._cpu_row(1000, ours, {"series_per_second": 6.25})
-    assert "idle core-seconds (sampled every 0.1 s): server start 2.0, flow 8.0" in row["measured"]
+    assert "idle core-seconds (sampled every 0.2 s): server start 2.0, flow 8.0" in row["measured"]
     assert "(before the batch stages 2.8, during them 1.0, after them 4.2)" in row["measured"]
     text = reading_the_goals([FLEET, row])
     assert "the cores stood idle for 8.0 core-seconds of the flow: 2.8 before the batch stages" in text
