@@ -61,7 +61,8 @@ def default_processes() -> int:
 
 
 def _warm() -> int:
-    """Import the work's modules in a fresh worker (so the first batch does not pay for it).
+    """Import the work's modules in a fresh worker (so the first batch does not pay for it), then
+    freeze what the imports made (:func:`~fitaudit.tasks.memory.freeze_heap`).
 
     Only the plain functions' modules: the audit's (:mod:`fitaudit.tasks.audit.work`) and the
     records' and pages' (:mod:`fitaudit.tasks.outcomes`, :mod:`fitaudit.tasks.report`), and the
