@@ -317,6 +317,18 @@ _PHASE_TEXT = {
 }
 
 
+def _idle_text(phases: dict) -> str:
+    """The idle core-seconds of :func:`bench.harness.idle_phases`, for the CPU row ("" without them)."""
+    if not phases:
+        return ""
+    flow = {k: v["idle_core_s"] for k, v in phases.items() if k != "server_start"}
+    parts = ", ".join(f"{_PHASE_TEXT[k]} {v:.1f}" for k, v in flow.items())
+    return (
+        f"; idle core-seconds (sampled every {CPU_SAMPLE_S:g} s): server start "
+        f"{phases['server_start']['idle_core_s']:.1f}, flow {sum(flow.values()):.1f} ({parts})"
+    )
+
+
 def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
     """Where the run's CPU seconds went, against the CPU that goal 1's wall time allows."""
     cores = os.cpu_count() or 1
@@ -326,15 +338,6 @@ def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
     budget = cores * allowed_s
     busy = sum(flow.values()) / ours["flow_s"]
     phases = ours.get("cpu_phases") or {}
-    idle = {k: v["idle_core_s"] for k, v in phases.items()}
-    idle_text = (
-        f"; idle core-seconds (sampled every {CPU_SAMPLE_S:g} s): server start "
-        + f"{idle.get('server_start', 0.0):.1f}, flow {sum(v for k, v in idle.items() if k != 'server_start'):.1f} ("
-        + ", ".join(f"{_PHASE_TEXT[k]} {v:.1f}" for k, v in idle.items() if k != "server_start")
-        + ")"
-        if idle
-        else ""
-    )
     return {
         "benchmark": "CPU use",
         "size": f"the same {n}-series run",
@@ -343,7 +346,7 @@ def _cpu_row(n: int, ours: dict, peer: dict) -> dict:
         f"{busy:.2f} of {cores} cores busy on average); server start {ours['server_start_s']:.1f} s: "
         f"{sum(start.values()):.1f} CPU s (the command's imports {start['own']:.1f}, the server "
         f"{start['passing']:.1f}); "
-        f"goal 1 allows {allowed_s:.1f} s, at most {budget:.1f} CPU s on {cores} cores{idle_text}",
+        f"goal 1 allows {allowed_s:.1f} s, at most {budget:.1f} CPU s on {cores} cores{_idle_text(phases)}",
         "ratio": used / budget,
         "ratio_text": f"{used:.1f} CPU s, {used / budget:.1f}x goal 1's",
         "goal": "a reading of goal 1 (no goal of its own)",

@@ -134,11 +134,11 @@ def _idle(d: dict) -> str:
             f"{in_flow['after_batches']['wall_s']:.1f} s)",
         ]
     return (
-        f" Sampled every {d.get('sample_s', 0.2):g} s, the cores stood idle for {idle:.1f} core-seconds of the flow: "
+        f" Sampled every {d['sample_s']:g} s, the cores stood idle for {idle:.1f} core-seconds of the flow: "
         + "; ".join(parts)
         + f". A perfect overlap of everything would shorten the flow by at most {idle / cores:.1f} s, to "
         f"{best:.1f} s, against the {d['allowed_s']:.1f} s goal 1 allows for the whole run. The server's start "
-        f"left {start:.1f} core-seconds idle ({d.get('server_start_s', 0.0):.1f} s, the command's imports "
+        f"left {start:.1f} core-seconds idle ({d['server_start_s']:.1f} s, the command's imports "
         "running beside it)."
     )
 
