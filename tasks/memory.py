@@ -16,6 +16,14 @@ Python's cyclic garbage collector, too, works on what a process has imported: ea
 passes walks every tracked object, and after the imports a flow process holds about 400,000 of
 them (Prefect, pydantic, pyarrow, scipy), a worker about 200,000.  :func:`freeze_heap` and
 :func:`heap_frozen` leave the objects that exist at that moment out of later passes.
+
+The first touch of memory can cost more than the work done in it.  numpy and pyarrow's pool ask
+Linux for transparent huge pages (2 MiB) for large buffers; on a virtual machine whose host
+provides the guest's memory only when the guest first uses it (a microVM, such as the benchmark
+machine of docs/performance.md), a huge page the guest had not used before took about 7 ms to
+appear, so touching 100 MB of new buffers took 0.3-0.8 s, against 0.04 s in small pages, which
+the guest reuses from what it freed recently.  :func:`small_pages` asks for small pages while a
+stage that allocates much at once, and only once, runs (staging's scans).
 """
 
 from __future__ import annotations
@@ -26,7 +34,7 @@ import gc
 import sys
 from collections.abc import Iterator
 
-__all__ = ["release_freed_memory", "freeze_heap", "heap_frozen"]
+__all__ = ["release_freed_memory", "freeze_heap", "heap_frozen", "small_pages"]
 
 
 def freeze_heap() -> int:
@@ -76,6 +84,44 @@ def release_freed_memory() -> dict[str, bool]:
         trim(0)
         done["malloc_trim"] = True
     return done
+
+
+#: ``prctl`` options (linux/prctl.h): the process's "no transparent huge pages" flag.
+_PR_SET_THP_DISABLE = 41
+_PR_GET_THP_DISABLE = 42
+
+
+@contextlib.contextmanager
+def small_pages() -> Iterator[bool]:
+    """While inside, memory this process touches for the first time comes in small pages.
+
+    Sets the process's "no transparent huge pages" flag (``prctl(PR_SET_THP_DISABLE)``, Linux
+    3.15 and later) and puts back the flag it found on leaving (also on error).  Pages already in
+    use keep their size, and nothing but the time of page faults changes: no result depends on it.
+    The flag belongs to the whole process (every thread's faults while inside; a child process
+    started meanwhile inherits it), so it is meant for a stage that runs alone; when two such
+    stages overlap, the first to leave restores the flag early, which costs only time.  Yields
+    whether the flag was set (False on another system, or where the kernel refuses).
+    """
+    prctl = _prctl()
+    before = prctl(_PR_GET_THP_DISABLE, 0, 0, 0, 0) if prctl is not None else -1
+    if before < 0 or prctl(_PR_SET_THP_DISABLE, 1, 0, 0, 0) != 0:
+        yield False
+        return
+    try:
+        yield True
+    finally:
+        prctl(_PR_SET_THP_DISABLE, before, 0, 0, 0)
+
+
+def _prctl():
+    """The C library's ``prctl`` on Linux, or None."""
+    if not sys.platform.startswith("linux"):
+        return None
+    try:
+        return ctypes.CDLL(None).prctl
+    except (OSError, AttributeError):
+        return None
 
 
 def _malloc_trim():
