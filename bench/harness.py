@@ -176,9 +176,10 @@ class CpuTimeline:
     """The process tree's CPU seconds, sampled in a thread every ``interval`` seconds while inside.
 
     Each sample is ``(time.perf_counter(), this process, the Prefect server, the other children)``,
-    cumulative CPU seconds (user + system); the server is the child running ``uvicorn``, the other
-    children are the worker processes.  A child that has ended keeps its last sampled CPU, so up to
-    one interval of each worker's work at its very end is missed.
+    cumulative CPU seconds (user + system); the server is the child running Prefect's server
+    (:func:`is_embedded_server`), the other children are the worker processes.  A child that has
+    ended keeps its last sampled CPU, so up to one interval of each worker's work at its very end
+    is missed.
     """
 
     def __init__(self, interval: float = CPU_SAMPLE_S):
@@ -219,13 +220,22 @@ class CpuTimeline:
                 return
 
 
+def is_embedded_server(cmdline: Sequence[str]) -> bool:
+    """Whether a command line runs Prefect's embedded server: it names the server's application
+    factory (``uvicorn --factory``), however it is launched (:mod:`fitaudit.flows.server_process`)."""
+    from fitaudit.flows.server_process import APP_FACTORY
+
+    return APP_FACTORY in cmdline
+
+
 def _role(child, own_cmdline: list[str]) -> str | None:
-    """``server`` (runs uvicorn) or ``workers``; None for a child forked but not yet running its own
-    program (it still shows this process's command line), which the next sample looks at again."""
+    """``server`` (:func:`is_embedded_server`) or ``workers``; None for a child forked but not yet
+    running its own program (it still shows this process's command line), which the next sample
+    looks at again."""
     cmdline = child.cmdline()
     if cmdline == own_cmdline:
         return None
-    return "server" if any("uvicorn" in part for part in cmdline) else "workers"
+    return "server" if is_embedded_server(cmdline) else "workers"
 
 
 def idle_phases(

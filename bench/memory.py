@@ -6,8 +6,8 @@ child, embedded Prefect server); this process polls the resident set size (RSS) 
 of everything it started (the embedded Prefect server, the local worker processes) every 0.2 s.
 
 Reported per run: the peak RSS of the flow process, of the embedded Prefect server (the child
-started as ``python -m uvicorn``), of the local worker processes (every other descendant, summed
-per sample) and the peak of the sum over the whole process tree.  The goal is judged on the
+started as ``python -m fitaudit.flows.server_process``), of the local worker processes (every
+other descendant, summed per sample) and the peak of the sum over the whole process tree.  The goal is judged on the
 process tree, server and workers included; growth per 1,000 models (of the flow process, where
 the run's data and results live) is compared with the size of the results themselves
 (``results.json`` per 1,000 models).
@@ -26,7 +26,7 @@ import time
 import psutil
 
 from .fleet_data import write_fleet
-from .harness import REPO, child_env, warm_prefect_home
+from .harness import REPO, child_env, is_embedded_server, warm_prefect_home
 
 __all__ = ["main", "peak_rss"]
 
@@ -66,9 +66,9 @@ def peak_rss(cmd: list[str], env: dict, interval: float = 0.2) -> dict:
 
 
 def _is_server(p: psutil.Process) -> bool:
-    """The embedded Prefect server, started as ``python -m uvicorn ...``."""
+    """The embedded Prefect server (:func:`bench.harness.is_embedded_server`)."""
     try:
-        return "uvicorn" in p.cmdline()[1:3]
+        return is_embedded_server(p.cmdline())
     except psutil.Error:
         return False
 

@@ -93,7 +93,7 @@ flow's idle core-seconds divided by the cores.
 
 **Peak memory.** One 10,000-series extract; runs audit its first 2,500, 5,000 and 10,000 models in
 fresh child processes; the parent polls the resident set size (psutil, every 0.2 s) of the flow
-process, of the embedded Prefect server (the child started as `python -m uvicorn`), of the local
+process, of the embedded Prefect server (the child running Prefect's server application), of the local
 worker processes (summed) and of the whole process tree. The goal is judged on the process tree,
 as it is stated (server and workers included); the table shows each process's own peak. "Growth"
 is the flow process's peak increase per 1,000 models between the smallest and the largest run

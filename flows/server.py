@@ -31,6 +31,7 @@ import time
 from collections.abc import Callable, Iterator
 
 from ._env import QUIET_SETTINGS
+from .server_process import APP_FACTORY
 
 __all__ = [
     "local_server",
@@ -244,8 +245,10 @@ def _launch_embedded() -> tuple[subprocess.Popen, int]:
 
     The command is the one Prefect 3 runs for its embedded server (``SubprocessASGIServer``:
     ``python -m uvicorn --factory prefect.server.api.server:create_app`` with the ephemeral-mode
-    variables, so the same services run); the listening socket is handed over with uvicorn's
-    ``--fd``, so the port is known before the server runs and no other process can take it.
+    variables, so the same services run), run by :mod:`fitaudit.flows.server_process`, which
+    makes the application's imports first with the garbage collector paused; the listening socket
+    is handed over with uvicorn's ``--fd``, so the port is known before the server runs and no
+    other process can take it.
 
     uvicorn wraps a handed-over descriptor as a Unix socket, so asyncio does not switch Nagle's
     algorithm off on the connections it accepts, as it does for TCP sockets: every response
@@ -268,11 +271,11 @@ def _launch_embedded() -> tuple[subprocess.Popen, int]:
             [
                 sys.executable,
                 "-m",
-                "uvicorn",
+                "fitaudit.flows.server_process",
                 "--app-dir",
                 app_dir,
                 "--factory",
-                "prefect.server.api.server:create_app",
+                APP_FACTORY,
                 "--fd",
                 str(sock.fileno()),
                 "--log-level",

@@ -15,7 +15,8 @@ in use, so no result depends on it; it only lowers the resident set the later st
 Python's cyclic garbage collector, too, works on what a process has imported: each of its full
 passes walks every tracked object, and after the imports a flow process holds about 400,000 of
 them (Prefect, pydantic, pyarrow, scipy), a worker about 200,000.  :func:`freeze_heap` and
-:func:`heap_frozen` leave the objects that exist at that moment out of later passes.
+:func:`heap_frozen` leave the objects that exist at that moment out of later passes, and
+:func:`collector_paused` makes a process's imports without the passes at all.
 
 The first touch of memory can cost more than the work done in it.  numpy and pyarrow's pool ask
 Linux for transparent huge pages (2 MiB) for large buffers; on a virtual machine whose host
@@ -34,7 +35,7 @@ import gc
 import sys
 from collections.abc import Iterator
 
-__all__ = ["release_freed_memory", "freeze_heap", "heap_frozen", "small_pages"]
+__all__ = ["release_freed_memory", "freeze_heap", "collector_paused", "heap_frozen", "small_pages"]
 
 
 def freeze_heap() -> int:
@@ -49,6 +50,26 @@ def freeze_heap() -> int:
     """
     gc.freeze()
     return gc.get_freeze_count()
+
+
+@contextlib.contextmanager
+def collector_paused() -> Iterator[None]:
+    """Run the block (a process's imports) with the cyclic collector paused, then freeze what it
+    made (:func:`freeze_heap`) and let the collector resume as it was.
+
+    Imports make hundreds of thousands of long-lived objects and almost no garbage, yet each
+    import that allocates enough starts a collection, and the full ones walk everything imported
+    so far: 0.3-0.4 s of the embedded Prefect server's 2.1 s of imports, 0.04 s of a worker's 0.62 s,
+    on the benchmark machine.
+    """
+    enabled = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        freeze_heap()
+        if enabled:
+            gc.enable()
 
 
 @contextlib.contextmanager

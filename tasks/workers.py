@@ -27,7 +27,7 @@ from typing import Any, TypeVar
 
 from fitaudit.core.exceptions import FitauditError
 
-from .memory import freeze_heap, release_freed_memory
+from .memory import collector_paused, release_freed_memory
 
 __all__ = [
     "local_workers",
@@ -61,8 +61,9 @@ def default_processes() -> int:
 
 
 def _warm() -> int:
-    """Import the work's modules in a fresh worker (so the first batch does not pay for it), then
-    freeze what the imports made (:func:`~fitaudit.tasks.memory.freeze_heap`).
+    """Import the work's modules in a fresh worker (so the first batch does not pay for it), with
+    the garbage collector paused and what they made frozen
+    (:func:`~fitaudit.tasks.memory.collector_paused`).
 
     Only the plain functions' modules: the audit's (:mod:`fitaudit.tasks.audit.work`) and the
     records' and pages' (:mod:`fitaudit.tasks.outcomes`, :mod:`fitaudit.tasks.report`), and the
@@ -70,13 +71,14 @@ def _warm() -> int:
     them imports Prefect, pyarrow or pandas, so a worker holds numpy, scipy, pydantic and Jinja2
     but not the flow's libraries (tests/test_startup.py checks).
     """
-    import fitaudit.tasks.audit.work  # noqa: F401
-    import fitaudit.tasks.outcomes  # noqa: F401
-    import fitaudit.tasks.report  # noqa: F401
-    from fitaudit.core._scipy import import_all
+    # what the imports make lives as long as the worker: the collector need not walk it, then or later
+    with collector_paused():
+        import fitaudit.tasks.audit.work  # noqa: F401
+        import fitaudit.tasks.outcomes  # noqa: F401
+        import fitaudit.tasks.report  # noqa: F401
+        from fitaudit.core._scipy import import_all
 
-    import_all()  # the scipy modules the fits use, which core imports on first use
-    freeze_heap()  # what the imports made lives as long as the worker: the collector need not walk it again
+        import_all()  # the scipy modules the fits use, which core imports on first use
     return os.getpid()
 
 

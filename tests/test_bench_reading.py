@@ -98,7 +98,11 @@ def test_a_child_not_yet_running_its_own_program_gets_no_role():
 
     own = ["python", "-m", "bench.fleet", "--child"]
     assert _role(Child(own), own) is None  # forked, not exec'd yet: looked at again at the next sample
-    assert _role(Child(["python", "-m", "uvicorn", "--factory"]), own) == "server"
+    server = ["python", "-m", "fitaudit.flows.server_process", "--factory", "prefect.server.api.server:create_app"]
+    assert _role(Child(server), own) == "server"
+    # Prefect's own launch command is recognised too
+    prefects = ["python", "-m", "uvicorn", "--factory", "prefect.server.api.server:create_app"]
+    assert _role(Child(prefects), own) == "server"
     assert _role(Child(["python", "-c", "from multiprocessing.spawn import spawn_main"]), own) == "workers"
 
 

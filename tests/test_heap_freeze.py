@@ -50,3 +50,60 @@ def test_local_workers_freeze_their_imports(thawed):
     # the work's modules, numpy, scipy, pydantic and Jinja2: well over ten thousand objects in each worker
     assert min(counts) > 10_000
     assert gc.get_freeze_count() == 0  # the caller's heap is left as it was
+
+
+def test_collector_paused_makes_the_block_without_passes_and_freezes_what_it_made(thawed):
+    from fitaudit.tasks.memory import collector_paused
+
+    assert gc.isenabled()
+    with collector_paused():
+        assert not gc.isenabled()
+        made = [{"a": [i]} for i in range(1000)]  # tracked objects, as imports make
+    assert gc.isenabled()
+    assert gc.get_freeze_count() >= len(made)
+    gc.unfreeze()
+    gc.disable()  # a collector paused before stays paused; and it resumes on error too
+    try:
+        with pytest.raises(KeyError), collector_paused():
+            raise KeyError
+        assert not gc.isenabled()
+    finally:
+        gc.enable()
+    with pytest.raises(KeyError), collector_paused():
+        raise KeyError
+    assert gc.isenabled()
+
+
+def test_the_embedded_servers_process_imports_its_application_paused_then_runs_uvicorns_command():
+    import subprocess
+    import sys
+    import textwrap
+
+    # uvicorn's command line replaced by a recorder: what it would run with, and the collector's state
+    code = textwrap.dedent(
+        """
+        import gc, runpy, sys
+        seen = []
+        def record(name, **kw):
+            seen.append((name, kw, sys.argv[1:], gc.isenabled(), gc.get_freeze_count()))
+        runpy.run_module = record
+        from fitaudit.flows import server_process
+        server_process.main(["--factory", server_process.APP_FACTORY, "--fd", "3"])
+        name, kw, argv, enabled, frozen = seen[0]
+        imported = "prefect.server.api.server" in sys.modules
+        print(name, kw["run_name"], " ".join(argv), enabled, imported, frozen > 100_000)
+        """
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=False)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split() == [
+        "uvicorn",
+        "__main__",
+        "--factory",
+        "prefect.server.api.server:create_app",
+        "--fd",
+        "3",
+        "True",
+        "True",
+        "True",
+    ]
