@@ -286,8 +286,9 @@ SM_CASES = [
     # (series, spec, smoothing tolerance, state tolerance relative to max(1, |value|), note)
     ("oil", ExpSmoothing(), 1e-3, 1e-2, "alpha at its bound 0.9999: l0 then only moves e_1, flat"),
     ("oil", ExpSmoothing(trend="add"), 1e-3, 1e-2, "alpha and beta at bounds: flat in l0"),
+    ("oil", ExpSmoothing(trend="add", damped=True), 1e-3, 1e-3, "alpha and beta at bounds"),
     ("austourists", ExpSmoothing(seasonal="add", period=4), 1e-3, 1e-3, ""),
-    ("austourists", ExpSmoothing(trend="add", seasonal="add", period=4), 1e-3, 1e-3, ""),
+    ("austourists", ExpSmoothing(trend="add", seasonal="add", period=4), 1e-3, 1e-2, "flat: 2e-5 lower, s1 0.006 away"),
     ("austourists", ExpSmoothing(trend="add", damped=True, seasonal="add", period=4), 1e-2, 1e-2, "phi at 0.98: flat"),
     ("co2", ExpSmoothing(seasonal="add", period=12), 1e-3, 1e-3, ""),
 ]
@@ -315,8 +316,11 @@ def test_matches_statsmodels_etsmodel(series, spec, tol_smoothing, tol_states, n
 
 @pytest.mark.parametrize(
     "series,spec",
-    [("oil", ExpSmoothing(trend="add", damped=True)), ("co2", ExpSmoothing(trend="add", seasonal="add", period=12))],
-    ids=["oil-AAdN", "co2-AAA"],
+    [
+        ("co2", ExpSmoothing(trend="add", seasonal="add", period=12)),
+        ("co2", ExpSmoothing(trend="add", seasonal="mul", period=12)),
+    ],
+    ids=["co2-AAA", "co2-AAM"],
 )
 def test_finds_a_higher_maximum_than_statsmodels_where_it_stops_early(series, spec):
     y = SERIES[series]()
@@ -325,11 +329,17 @@ def test_finds_a_higher_maximum_than_statsmodels_where_it_stops_early(series, sp
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         reference = model.fit(disp=False)
-    # source: statsmodels ETSModel.fit (default start); its maximum here is a lower local one
-    # (oil AAdN: -258.108 vs our -258.004; co2 AAA: -159.222 vs our -154.785, measured 2026-12)
-    assert fit.loglik > reference.llf + 0.05
-    # source: statsmodels ETSModel.loglike confirms our value on its own implementation
-    assert model.loglike(_to_statsmodels(spec, fit.params)) == pytest.approx(fit.loglik, rel=1e-10)
+    if spec.seasonal == "mul":
+        # statsmodels' multiplicative update is another likelihood (see below): score its estimates with ours
+        theirs = _from_statsmodels(spec, np.asarray(reference.params)) | {"sigma2": 1.0}
+        at_theirs = _gaussian_loglik(spec.errors(y, {k: theirs[k] for k in spec.param_names()}))
+    else:
+        # source: statsmodels ETSModel.loglike confirms our value on its own implementation
+        assert model.loglike(_to_statsmodels(spec, fit.params)) == pytest.approx(fit.loglik, rel=1e-10)
+        at_theirs = reference.llf
+    # source: statsmodels 0.15 ETSModel.fit (default start); its maximum here is a lower local one
+    # (co2 AAA: -159.222 vs our -154.785; co2 AAM: -134.492 vs our -133.097, measured 2026-12-05)
+    assert fit.loglik > at_theirs + 0.05
 
 
 @pytest.mark.parametrize(
@@ -338,9 +348,8 @@ def test_finds_a_higher_maximum_than_statsmodels_where_it_stops_early(series, sp
         ("austourists", ExpSmoothing(seasonal="mul", period=4), 1e-3, 1e-3),
         ("austourists", ExpSmoothing(trend="add", seasonal="mul", period=4), 1e-3, 1e-3),
         ("austourists", ExpSmoothing(trend="add", damped=True, seasonal="mul", period=4), 1e-3, 1e-3),
-        ("co2", ExpSmoothing(trend="add", seasonal="mul", period=12), 1e-2, 1e-3),
     ],
-    ids=["aus-ANM", "aus-AAM", "aus-AAdM", "co2-AAM"],
+    ids=["aus-ANM", "aus-AAM", "aus-AAdM"],
 )
 def test_multiplicative_season_close_to_statsmodels(series, spec, tol_smoothing, tol_states):
     y = SERIES[series]()
