@@ -137,19 +137,19 @@ def small_pages() -> Iterator[bool]:
 
 def _prctl():
     """The C library's ``prctl`` on Linux, or None."""
-    if not sys.platform.startswith("linux"):
-        return None
-    try:
-        return ctypes.CDLL(None).prctl
-    except (OSError, AttributeError):
-        return None
+    return _linux_libc("prctl")
 
 
 def _malloc_trim():
     """glibc's ``malloc_trim``, or None (another C library, another system)."""
+    return _linux_libc("malloc_trim")
+
+
+def _linux_libc(name: str):
+    """The C library's function ``name`` on Linux, or None (another system, or a C library without it)."""
     if not sys.platform.startswith("linux"):
         return None
     try:
-        return ctypes.CDLL(None).malloc_trim
+        return getattr(ctypes.CDLL(None), name)
     except (OSError, AttributeError):
         return None
