@@ -302,10 +302,11 @@ def _newton_ascent(loglik, data: np.ndarray, theta0: np.ndarray, lower: np.ndarr
         done = small_step | stalled | flat
         converged[todo[small_step | flat]] = True
         converged[todo[stalled & (decrement <= 1e-6 * n)]] = True
-        keep = ~done
-        known = (next_ll[keep], next_grad[keep], next_hess[keep], have[keep])
+        known = (next_ll, next_grad, next_hess, have)
         if done.any():
+            keep = ~done
             todo, y = todo[keep], y[keep]
+            known = tuple(a[keep] for a in known)
     return theta, converged
 
 

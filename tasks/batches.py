@@ -551,7 +551,7 @@ def stage_inputs_task(registry: Registry, as_of: dt.date, staging_dir: str, **kw
     """Prefect task: one scan per source, batch files out (retried for transient I/O errors).
 
     The scans' buffers come in small pages (:func:`~fitaudit.tasks.memory.small_pages`: staging
-    the benchmark fleet took 1.0-1.25 s in huge pages on a microVM, 0.57-0.58 s in small ones), and
+    the benchmark fleet took 0.97-1.35 s in huge pages on a microVM, 0.57-0.61 s in small ones), and
     afterwards the freed ones go back to the system (:func:`release_freed_memory`: pyarrow's pool
     keeps about 110 MB per 1,000 daily series otherwise, for the rest of the run)."""
     try:
