@@ -126,18 +126,25 @@ def _patch_work_functions(clock: WorkClock) -> None:
 def audit_in_child(registry: str, archive: str, models: list[str] | None = None, dask_workers: int = 0) -> dict:
     """Run the audit flow in this (child) process and time it; returns timings and counts."""
     from fitaudit.flows import _env
+    from fitaudit.tasks.registry import load_registry
 
     _env.configure_prefect()
+    # as `fitaudit run` does: the registry read before anything starts (not timed); then the embedded
+    # server launched, the flow's imports and the start of its worker processes while it starts, and
+    # its runs without heartbeats (a configured server, as for the Dask runs, keeps Prefect's settings)
+    audited = len(set(models)) if models else len(load_registry(registry).models)
     clock = WorkClock()
     timeline = CpuTimeline()
     cpu0 = CpuSnapshot.now()
     t0 = time.perf_counter()
-    # as `fitaudit run` does: the embedded server launched first, the flow's imports while it starts,
-    # and its runs without heartbeats (a configured server, as for the Dask runs, keeps Prefect's settings)
     from fitaudit.flows.server import command_imports, embedded_server
 
-    def prepare() -> None:  # the command's imports, then the timers around the work functions
+    def prepare() -> None:  # the command's imports and workers, then the timers around the work functions
         command_imports("fitaudit.flows.audit")
+        if not dask_workers:  # the Dask runs' flow uses no local worker processes
+            from fitaudit.flows.audit import start_workers_early
+
+            start_workers_early(audited)
         _patch_work_functions(clock)
 
     with timeline, embedded_server(prepare):

@@ -70,6 +70,8 @@ __all__ = [
     "chi2_critical_value",
     "nrr_term",
     "prepare_calibration",
+    "table_jobs",
+    "build_tables",
 ]
 
 
@@ -686,6 +688,8 @@ def prepare_calibration(
     demand during the audit; so are bootstrap tables.  The returned cache is passed to every batch
     (also to other processes), so no table is built twice.  Tables are deterministic functions of
     their key and the seed (docs/method.md §7.7), so planning them changes no result.
+    ``build_tables(table_jobs(entries), cache)``: callers with several processes can build the
+    jobs apart and merge the caches in the jobs' order.
 
     Parameters
     ----------
@@ -700,21 +704,49 @@ def prepare_calibration(
     -------
     CalibrationCache
     """
-    cache = cache if cache is not None else CalibrationCache()
+    return build_tables(table_jobs(entries), cache)
+
+
+def table_jobs(entries: Sequence[tuple[Any, Any, AuditSettings, int, bool]]) -> list[tuple]:
+    """The distinct null tables :func:`prepare_calibration` builds for ``entries``, one job each, in
+    the order it builds them.
+
+    A job is ``("production", settings, n, None, None)`` or ``("refit", settings, n, law,
+    location)``; jobs are plain picklable tuples, so they can be built in other processes
+    (:func:`build_tables`).
+    """
+    jobs: dict[tuple, tuple] = {}
     for spec, noise, settings, n_obs, has_production in entries:
         if settings.calibration == "asymptotic":
             continue
         try:
             model, law = as_model(spec), as_noise_law(noise)
             if has_production and n_obs >= settings.audit_window:
-                n = settings.audit_window
-                settings_production_table(settings, n, number_of_cells(n, 0), settings.gate(n, 0), cache)
+                job = ("production", settings, settings.audit_window, None, None)
+                jobs.setdefault(job, job)
             if settings.calibration == "simulated" and law.pivotal and not (law.has_shape and law.shape is None):
                 n = (settings.fit_window or n_obs) - model.presample()
                 location = model.has_location()
-                s = number_of_cells(n, law.n_estimated(location))
-                k = law.n_estimated(location)
-                settings_refit_table(settings, law, n, s, location, settings.gate(n, k), shape=law.shape, cache=cache)
+                jobs.setdefault(
+                    ("refit", settings, n, (law.name, law.shape), location), ("refit", settings, n, law, location)
+                )
         except (FitauditError, ValueError):
             continue  # the model's own audit reports the problem
+    return list(jobs.values())
+
+
+def build_tables(jobs: Sequence[tuple], cache: CalibrationCache | None = None) -> CalibrationCache:
+    """Build the null tables of :func:`table_jobs` ``jobs`` into ``cache`` (a new one when
+    omitted), in order; a table already there (or in its store) is not simulated again."""
+    cache = cache if cache is not None else CalibrationCache()
+    for kind, settings, n, law, location in jobs:
+        try:
+            if kind == "production":
+                settings_production_table(settings, n, number_of_cells(n, 0), settings.gate(n, 0), cache)
+            else:
+                k = law.n_estimated(location)
+                s = number_of_cells(n, k)
+                settings_refit_table(settings, law, n, s, location, settings.gate(n, k), shape=law.shape, cache=cache)
+        except (FitauditError, ValueError):
+            continue  # the audits that need the table report the problem
     return cache

@@ -38,9 +38,9 @@ from fitaudit.tasks.registry import load_registry_task
 from fitaudit.tasks.results import results_head, results_summary
 from fitaudit.tasks.settings import get_settings
 from fitaudit.tasks.table_store import archive_tables
-from fitaudit.tasks.workers import default_processes, local_workers
+from fitaudit.tasks.workers import default_processes, local_workers, start_spare_workers
 
-__all__ = ["audit_flow"]
+__all__ = ["audit_flow", "start_workers_early"]
 
 
 def _utc() -> str:
@@ -79,15 +79,33 @@ def _report_progress(futures, staged) -> None:
 AUTO_PROCESSES_MIN_MODELS = 100
 
 
+def _requested_processes(requested: int, models: int) -> int:
+    """``requested`` (the setting ``processes``), or for 0 every CPU when the run has at least
+    :data:`AUTO_PROCESSES_MIN_MODELS` models and one otherwise."""
+    if requested == 0:
+        return default_processes() if models >= AUTO_PROCESSES_MIN_MODELS else 1
+    return requested
+
+
 def _local_processes(requested: int, batches: int, models: int) -> int:
-    """Worker processes for the batches under the default (thread) task runner: ``requested``, or
-    for 0 every CPU when the run has at least :data:`AUTO_PROCESSES_MIN_MODELS` models; at most one
-    per batch.  None under other runners (Dask workers are processes already)."""
+    """Worker processes for the batches under the default (thread) task runner:
+    :func:`_requested_processes`, at most one per batch.  None under other runners (Dask workers
+    are processes already)."""
     if _runner_name() != "ThreadPoolTaskRunner" or batches < 2:
         return 0
-    if requested == 0:
-        requested = default_processes() if models >= AUTO_PROCESSES_MIN_MODELS else 1
-    return min(requested, batches)
+    return min(_requested_processes(requested, models), batches)
+
+
+def start_workers_early(models: int) -> None:
+    """Start the local worker processes that a run of ``models`` models under the default task
+    runner will ask for, before the run (:func:`fitaudit.tasks.workers.start_spare_workers`).
+
+    ``fitaudit run`` and ``fitaudit backfill`` call it while the embedded Prefect server starts, a
+    few seconds in which one core waits: the workers' imports are made then rather than beside the
+    run's null tables.  A run that asks for another number of workers (a batch size that makes
+    fewer batches than workers) stops them and starts its own; nothing else depends on it.
+    """
+    start_spare_workers(_requested_processes(get_settings().processes, models))
 
 
 def _runner_name() -> str:
@@ -200,7 +218,7 @@ def audit_flow(
         with local_workers(_local_processes(settings.processes, len(staged.batches), len(ids))) as workers:
             t0 = time.perf_counter()
             store = archive_tables(archive, settings.reuse_null_tables)
-            cache = calibration_task([b.path for b in staged.batches], reg.policy, store)
+            cache = calibration_task([b.path for b in staged.batches], reg.policy, store, workers)
             timings["calibration_s"] = time.perf_counter() - t0
             t0 = time.perf_counter()
             futures = audit_batch_task.map(

@@ -224,9 +224,11 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 @contextlib.contextmanager
-def _server_if_needed(args: argparse.Namespace, flow_module: str):
+def _server_if_needed(args: argparse.Namespace, flow_module: str, audited: int = 0):
     """Start a local Prefect server when asked, or when Dask is requested without one; otherwise the
-    embedded server, while ``flow_module`` (the command's flows) is imported."""
+    embedded server, while ``flow_module`` (the command's flows) is imported and, for a command
+    that audits ``audited`` models, the worker processes its runs will use are started
+    (:func:`fitaudit.flows.audit.start_workers_early`)."""
     wants = getattr(args, "start_server", False) or (
         getattr(args, "dask", None) and "PREFECT_API_URL" not in os.environ
     )
@@ -249,8 +251,16 @@ def _server_if_needed(args: argparse.Namespace, flow_module: str):
         if os.environ.get("PREFECT_API_URL"):  # a server of the user's
             yield os.environ["PREFECT_API_URL"]
             return
+
+        def prepare() -> None:
+            command_imports(flow_module)
+            if audited:
+                from .audit import start_workers_early
+
+                start_workers_early(audited)
+
         # started now rather than by the first flow, so that it is recorded and can be reaped after a SIGKILL
-        with embedded_server(lambda: command_imports(flow_module)) as url:
+        with embedded_server(prepare) as url:
             yield url
 
 
@@ -395,7 +405,7 @@ def _cmd_run(args) -> int:
     reg = _checked_registry(args)
     if reg is None:
         return EXIT_USAGE
-    with _server_if_needed(args, "fitaudit.flows.audit"):
+    with _server_if_needed(args, "fitaudit.flows.audit", len(set(args.models)) if args.models else len(reg.models)):
         from .audit import audit_flow
 
         flow_fn = _with_runner(_timeout(audit_flow, reg), args.dask)
@@ -460,7 +470,7 @@ def _cmd_backfill(args) -> int:
     if reg is None:
         return EXIT_USAGE
     dates = max(1, (args.end - args.start).days // max(args.every, 1) + 1)
-    with _server_if_needed(args, "fitaudit.flows.backfill"):
+    with _server_if_needed(args, "fitaudit.flows.backfill", len(reg.models)):
         from .backfill import backfill_flow
 
         results = _with_runner(_timeout(backfill_flow, reg, dates), args.dask)(

@@ -8,11 +8,16 @@ in the pool with :func:`run_local`, one whole batch per call, and returns the re
 Tasks run by another runner (a Dask worker, another process) do not find the token and run the
 function in place, so the token is always safe to pass.
 
+A command that is about to run a flow can start the workers ahead of it
+(:func:`start_spare_workers`, while the embedded Prefect server starts and a core would otherwise
+wait); the flow's :func:`local_workers` then takes them over instead of starting its own.
+
 Results do not depend on where a batch runs: every computation is seeded by its inputs.
 """
 
 from __future__ import annotations
 
+import atexit
 import concurrent.futures as cf
 import contextlib
 import multiprocessing
@@ -21,7 +26,7 @@ import signal
 import sys
 import threading
 import uuid
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures.process import BrokenProcessPool
 from typing import Any, TypeVar
 
@@ -31,7 +36,10 @@ from .memory import collector_paused, release_freed_memory
 
 __all__ = [
     "local_workers",
+    "start_spare_workers",
+    "stop_spare_workers",
     "run_local",
+    "map_local",
     "run_in_child",
     "WorkersStopped",
     "default_processes",
@@ -46,6 +54,7 @@ _BLAS_THREADS = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 _POOLS: dict[str, cf.ProcessPoolExecutor] = {}
 _POOLS_LOCK = threading.Lock()
 _STOPPED: set[str] = set()  # tokens of pools stopped because their run was interrupted
+_SPARE: list[tuple[int, cf.ProcessPoolExecutor]] = []  # at most one pool started ahead of a run: (processes, pool)
 
 
 class WorkersStopped(FitauditError):
@@ -60,6 +69,15 @@ def default_processes() -> int:
         return os.cpu_count() or 1
 
 
+_TURN: Any = None  # in a worker of a spare pool: the lock its workers' imports take in turn
+
+
+def _set_turn(lock: Any) -> None:
+    """Worker initialiser of a spare pool: keep the pool's lock for :func:`_warm`."""
+    global _TURN
+    _TURN = lock
+
+
 def _warm() -> int:
     """Import the work's modules in a fresh worker (so the first batch does not pay for it), with
     the garbage collector paused and what they made frozen
@@ -72,7 +90,7 @@ def _warm() -> int:
     but not the flow's libraries (tests/test_startup.py checks).
     """
     # what the imports make lives as long as the worker: the collector need not walk it, then or later
-    with collector_paused():
+    with _TURN if _TURN is not None else contextlib.nullcontext(), collector_paused():
         import fitaudit.tasks.audit.work  # noqa: F401
         import fitaudit.tasks.outcomes  # noqa: F401
         import fitaudit.tasks.report  # noqa: F401
@@ -141,6 +159,60 @@ def _single_threaded_blas() -> Iterator[None]:
             os.environ.pop(name, None)
 
 
+def _start_pool(processes: int, in_turn: bool = False) -> cf.ProcessPoolExecutor:
+    """A ``spawn`` pool of ``processes`` workers, each started now and importing the work's modules
+    (with ``in_turn``, one worker's imports after another's)."""
+    ctx = multiprocessing.get_context("spawn")
+    turn = dict(initializer=_set_turn, initargs=(ctx.Lock(),)) if in_turn else {}
+    pool = cf.ProcessPoolExecutor(max_workers=processes, mp_context=ctx, **turn)
+    with _main_module_hidden(), _single_threaded_blas():
+        for _ in range(processes):  # each submit starts one worker while no worker is idle
+            pool.submit(_warm)
+    return pool
+
+
+def start_spare_workers(processes: int | None = None) -> None:
+    """Start ``processes`` local workers (default: one per CPU) now, for the next
+    :func:`local_workers` of the same number to take over.
+
+    A command calls it while the embedded Prefect server starts: the server's imports keep one
+    core busy for seconds and the command's own imports end sooner, so the workers' imports (about
+    0.6 CPU s each) run on a core that would otherwise wait, instead of beside the run's first
+    stages.  At most one spare pool exists; one that no run takes is stopped by
+    :func:`stop_spare_workers`, or at the latest when the process exits.  Fewer than two
+    processes: nothing is started (a run computes in place).
+    """
+    processes = default_processes() if processes is None else int(processes)
+    if processes < 2:
+        return
+    with _POOLS_LOCK:
+        if _SPARE:
+            return
+        _SPARE.append((processes, _start_pool(processes, in_turn=True)))
+    atexit.register(stop_spare_workers)
+
+
+def stop_spare_workers() -> None:
+    """Stop the spare workers of :func:`start_spare_workers` if no run took them over (else nothing)."""
+    with _POOLS_LOCK:
+        spare = _SPARE.pop() if _SPARE else None
+    if spare is not None:
+        spare[1].shutdown(wait=True, cancel_futures=True)
+
+
+def _take_spare(processes: int) -> cf.ProcessPoolExecutor | None:
+    """The spare pool if it has ``processes`` workers, removed from the spares; None otherwise (a
+    spare of another size is stopped: the run starts its own)."""
+    with _POOLS_LOCK:
+        spare = _SPARE.pop() if _SPARE else None
+    if spare is None:
+        return None
+    if spare[0] == processes:
+        return spare[1]
+    spare[1].shutdown(wait=False, cancel_futures=True)
+    return None
+
+
 @contextlib.contextmanager
 def local_workers(processes: int) -> Iterator[str | None]:
     """A pool of ``processes`` worker processes for the duration of the block; yields its token.
@@ -148,18 +220,17 @@ def local_workers(processes: int) -> Iterator[str | None]:
     Yields None (run everything in place) when ``processes`` < 2.  The workers are started with
     ``spawn`` (the flow process has threads, so ``fork`` would be unsafe) and a single-threaded
     BLAS, begin importing fitaudit right away and are shut down when the block ends, also on error.
+    Workers of the same number started ahead by :func:`start_spare_workers` are taken over instead.
     """
     if processes < 2:
+        stop_spare_workers()  # started for a run that computes in place after all
         yield None
         return
-    pool = cf.ProcessPoolExecutor(max_workers=processes, mp_context=multiprocessing.get_context("spawn"))
     token = f"fitaudit-workers-{uuid.uuid4().hex}"
+    pool = _take_spare(processes) or _start_pool(processes)
     with _POOLS_LOCK:
         _POOLS[token] = pool
     try:
-        with _main_module_hidden(), _single_threaded_blas():
-            for _ in range(processes):  # each submit starts one worker while no worker is idle
-                pool.submit(_warm)
         yield token
     except BaseException as exc:
         if not isinstance(
@@ -184,15 +255,23 @@ def run_local(token: str | None, fn: Callable[..., T], *args: Any) -> T:
     nor pandas (``tasks/audit/work.py``, ``tasks/outcomes.py``; tests/test_startup.py).  In a
     worker, the memory the call freed is returned to the system after it (:func:`_run_and_release`).
     """
+    return map_local(token, fn, [args])[0]
+
+
+def map_local(token: str | None, fn: Callable[..., T], calls: Sequence[Sequence[Any]]) -> list[T]:
+    """``[fn(*args) for args in calls]``: handed to the pool named by ``token`` all at once (so its
+    workers share them), or computed in place, one after another, when this process holds no such
+    pool; the results in the order of ``calls`` either way (as :func:`run_local`)."""
     with _POOLS_LOCK:
         pool = _POOLS.get(token) if token else None
         stopped = token in _STOPPED
     if stopped:
         raise WorkersStopped("the run was interrupted; its worker processes were stopped")
     if pool is None:
-        return fn(*args)
+        return [fn(*args) for args in calls]
     try:
-        return pool.submit(_run_and_release, fn, *args).result()
+        futures = [pool.submit(_run_and_release, fn, *args) for args in calls]
+        return [future.result() for future in futures]
     except (BrokenProcessPool, cf.CancelledError):  # a call still queued when the pool shut down is cancelled
         if token in _STOPPED:
             raise WorkersStopped("the run was interrupted; its worker processes were stopped") from None

@@ -247,3 +247,33 @@ def test_refit_tables_from_counts_below_the_fitted_quantiles_equal_those_from_th
     assert table.key == reference.key
     for field in ("reference", "r_max", "gate_reference", "gate_max"):
         np.testing.assert_array_equal(getattr(table, field), getattr(reference, field))
+
+
+def test_table_jobs_built_apart_and_merged_in_order_equal_prepare_calibration():
+    """The run's tables built one per cache (as the worker processes do) and merged in the order of
+    ``table_jobs`` are the tables of ``prepare_calibration``, in the same order."""
+    from fitaudit.core.calibration import build_tables, prepare_calibration, table_jobs
+    from fitaudit.core.settings import AuditSettings
+
+    settings = AuditSettings(replicates=99, audit_window=40)
+    arima = {"family": "arima", "order": [1, 0, 1], "seasonal": [0, 1, 1, 7]}
+    entries = [
+        (arima, "normal", settings, 120, True),
+        ({"family": "arima", "order": [1, 0, 0]}, "logistic", settings, 120, False),
+        (arima, "normal", settings, 120, True),  # the same tables again
+        ({"family": "arima", "order": [2, 0, 0]}, {"law": "student-t", "shape": None}, settings, 120, True),
+        ({"family": "arima", "order": [-1, 0, 0]}, "normal", settings, 120, True),  # not a model: skipped
+    ]
+    jobs = table_jobs(entries)
+    # production (window 40); refit normal (113 errors after the seasonal difference), refit
+    # logistic (120, location estimated); the t law's estimated shape has no table before the audit
+    assert [(j[0], j[2]) for j in jobs] == [("production", 40), ("refit", 113), ("refit", 120)]
+    whole = prepare_calibration(entries)
+    merged = CalibrationCache()
+    for job in jobs:
+        merged.merge(build_tables([job], CalibrationCache()))
+    assert list(merged.tables) == list(whole.tables)
+    for key, table in whole.tables.items():
+        other = merged.tables[key]
+        for name in ("reference", "r_max", "gate_reference", "gate_max"):
+            assert np.array_equal(getattr(other, name), getattr(table, name)), (key[0], name)

@@ -222,6 +222,53 @@ def test_local_workers_run_elsewhere_and_fall_back_in_place():
         assert token is None
 
 
+@pytest.mark.slow
+def test_spare_workers_are_taken_over_by_a_run_of_their_size_and_stopped_otherwise():
+    import gc
+
+    from fitaudit.tasks import workers
+
+    workers.start_spare_workers(2)
+    spare = workers._SPARE[0][1]
+    workers.start_spare_workers(2)  # at most one spare pool
+    assert len(workers._SPARE) == 1
+    with workers.local_workers(2) as token:
+        assert workers._POOLS[token] is spare and not workers._SPARE  # taken over, not started again
+        assert workers.run_local(token, os.getpid) != os.getpid()
+        # the spare's workers made their imports (in turn) and froze them, as a run's own workers do
+        assert workers.run_local(token, gc.get_freeze_count) > 10_000
+    with pytest.raises(RuntimeError):  # stopped with the run
+        spare.submit(os.getpid)
+
+    workers.start_spare_workers(2)
+    spare = workers._SPARE[0][1]
+    with workers.local_workers(3) as token:  # another size: the spare is stopped, the run starts its own
+        assert workers._POOLS[token] is not spare and not workers._SPARE
+    with pytest.raises(RuntimeError):
+        spare.submit(os.getpid)
+
+    workers.start_spare_workers(2)
+    spare = workers._SPARE[0][1]
+    with workers.local_workers(1) as token:  # a run that computes in place stops it too
+        assert token is None and not workers._SPARE
+    with pytest.raises(RuntimeError):
+        spare.submit(os.getpid)
+    workers.stop_spare_workers()  # nothing left to stop
+    workers.start_spare_workers(1)  # one process: nothing started
+    assert not workers._SPARE
+
+
+@pytest.mark.slow
+def test_map_local_spreads_the_calls_over_the_workers_and_keeps_their_order():
+    from fitaudit.tasks.workers import local_workers, map_local
+
+    calls = [(f"{i:03d}",) for i in range(12)]
+    with local_workers(2) as token:
+        assert map_local(token, int, calls) == list(range(12))
+        assert os.getpid() not in map_local(token, os.getpid, [()] * 4)
+    assert map_local(None, int, calls) == list(range(12))  # in place
+
+
 def _reference_run(
     demo: dict, registry, archive: pathlib.Path, work: pathlib.Path, meta: dict
 ) -> tuple[bytes, dict, list]:

@@ -174,3 +174,38 @@ def test_the_command_imports_its_flows_and_the_flow_process_scipy_module_while_t
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     loaded = json.loads(out.stdout)
     assert loaded == {"fitaudit.flows.audit": True, "scipy.special": True, "scipy.stats": False}
+
+
+def test_a_command_that_audits_starts_its_workers_while_the_embedded_server_starts(monkeypatch):
+    """flows/cli.py: `run` and `backfill` start the worker processes their runs will ask for during
+    the server's start (flows/audit.py start_workers_early); other commands start none."""
+    import argparse
+
+    import fitaudit.flows.audit as audit
+    from fitaudit.flows import cli
+
+    started: list[int] = []
+    monkeypatch.delenv("PREFECT_API_URL", raising=False)
+    monkeypatch.setattr(server, "command_imports", lambda module: None)
+    monkeypatch.setattr(audit, "start_workers_early", started.append)
+
+    def start(prepare=None):
+        prepare()
+        return "http://127.0.0.1:1/api"
+
+    monkeypatch.setattr(server, "start_embedded_server", start)
+    args = argparse.Namespace(start_server=False, dask=None)
+    with cli._server_if_needed(args, "fitaudit.flows.audit", 1000):
+        pass
+    with cli._server_if_needed(args, "fitaudit.flows.demo"):
+        pass
+    assert started == [1000]
+
+
+def test_the_workers_a_run_asks_for_follow_the_processes_setting():
+    from fitaudit.flows.audit import AUTO_PROCESSES_MIN_MODELS, _requested_processes
+    from fitaudit.tasks.workers import default_processes
+
+    assert _requested_processes(0, AUTO_PROCESSES_MIN_MODELS) == default_processes()  # every CPU
+    assert _requested_processes(0, AUTO_PROCESSES_MIN_MODELS - 1) == 1  # a small run computes in place
+    assert _requested_processes(3, 10) == 3  # as set

@@ -31,14 +31,17 @@ def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
 
 
 @task(name="prepare-calibration", cache_policy=NO_CACHE, persist_result=False)
-def calibration_task(batch_paths: list[str], policy: Policy, store: TableStore | None = None) -> CalibrationCache:
+def calibration_task(
+    batch_paths: list[str], policy: Policy, store: TableStore | None = None, workers: str | None = None
+) -> CalibrationCache:
     """Prefect task: simulate every null table the run needs, once, before the batches start
-    (or take it from ``store``, where earlier runs kept it: :func:`calibration_for`).
+    (or take it from ``store``, where earlier runs kept it: :func:`calibration_for`), in the local
+    worker processes named by ``workers`` when given.
 
     Then the simulations' freed arrays go back to the system (:func:`release_freed_memory`: about
     60 MB of glibc's heap otherwise); the tables themselves are small and kept."""
     try:
-        cache = calibration_for(batch_paths, policy, store)
+        cache = calibration_for(batch_paths, policy, store, workers)
     finally:
         release_freed_memory()
     get_run_logger().info("calibration: %d null tables (%d kept from earlier runs)", len(cache), len(cache.reused))

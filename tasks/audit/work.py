@@ -23,14 +23,14 @@ from typing import Any
 
 import numpy as np
 
-from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model, prepare_calibration
-from fitaudit.core.calibration import CalibrationCache, TableStore
+from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model
+from fitaudit.core.calibration import CalibrationCache, TableStore, build_tables, table_jobs
 from fitaudit.core.exceptions import FitauditError
 
 from ..batchfiles import ModelInput, batch_metadata, read_batch
 from ..outcomes import Outcome, spill_outcomes
 from ..registry import ForecastEntry, Policy
-from ..workers import TimeLimitExceeded, time_limit
+from ..workers import TimeLimitExceeded, map_local, time_limit
 
 __all__ = [
     "audit_input",
@@ -253,14 +253,21 @@ def with_candidates(outcomes: Sequence[Outcome], found: Mapping[str, list[dict]]
     return [dataclasses.replace(o, candidates=tuple(found[o.model_id])) if o.model_id in found else o for o in outcomes]
 
 
-def calibration_for(batch_paths: Sequence[str], policy: Policy, store: TableStore | None = None) -> CalibrationCache:
+def calibration_for(
+    batch_paths: Sequence[str], policy: Policy, store: TableStore | None = None, workers: str | None = None
+) -> CalibrationCache:
     """Build the run's shared null tables from the staged batches' metadata (no data read):
     :func:`fitaudit.core.audit.prepare_calibration` for fitted models and
     :func:`fitaudit.core.forecasts.prepare_forecast_calibration` for forecast entries (the
     window, or for h-step forecasts the lengths of their subsequences).  With a ``store``
     (:class:`~fitaudit.tasks.table_store.FolderTableStore`), tables kept by earlier runs are
     taken from it and new ones saved to it; the returned cache carries the store to the batches,
-    so the tables they build on demand are kept too."""
+    so the tables they build on demand are kept too.
+
+    With ``workers`` (:func:`fitaudit.tasks.workers.local_workers`), the fitted models' tables are
+    built one per call in the worker processes, side by side, and merged in the order in which
+    :func:`~fitaudit.core.calibration.prepare_calibration` builds them (the same tables: each is a
+    function of its key and the seed)."""
     from fitaudit.core.forecasts import prepare_forecast_calibration
 
     entries, forecasts = [], []
@@ -283,7 +290,13 @@ def calibration_for(batch_paths: Sequence[str], policy: Policy, store: TableStor
                     bool(production and not production.get("error")),
                 )
             )
-    cache = prepare_calibration(entries, CalibrationCache(store=store))
+    cache = CalibrationCache(store=store)
+    jobs = table_jobs(entries)
+    if workers is None or len(jobs) < 2:
+        build_tables(jobs, cache)
+    else:
+        for part in map_local(workers, build_tables, [([job], CalibrationCache(store=store)) for job in jobs]):
+            cache.merge(part)
     return prepare_forecast_calibration(forecasts, cache) if forecasts else cache
 
 
