@@ -7,6 +7,7 @@ writes its result as JSON to a file named by the parent.
 
 from __future__ import annotations
 
+import glob
 import importlib
 import json
 import os
@@ -168,7 +169,7 @@ class CpuSnapshot(NamedTuple):
         return cls(own.ru_utime + own.ru_stime, waited.ru_utime + waited.ru_stime, running)
 
 
-#: Seconds between two samples of :class:`CpuTimeline` (a sample costs about a millisecond of CPU).
+#: Seconds between two samples of :class:`CpuTimeline` (a sample costs a fraction of a millisecond of CPU).
 CPU_SAMPLE_S = 0.2
 
 
@@ -202,22 +203,50 @@ class CpuTimeline:
         me = psutil.Process()
         own_cmdline = me.cmdline()
         children: dict[int, tuple[str, float]] = {}  # pid: (role, last CPU seconds seen)
+        handles: dict[int, psutil.Process] = {}
         while True:
             mine = me.cpu_times()
-            for child in me.children(recursive=True):
+            for pid in descendants(me.pid):
                 try:
-                    role = children[child.pid][0] if child.pid in children else _role(child, own_cmdline)
+                    child = handles.get(pid) or handles.setdefault(pid, psutil.Process(pid))
+                    role = children[pid][0] if pid in children else _role(child, own_cmdline)
                     if role is None:
                         continue
                     t = child.cpu_times()
                 except psutil.Error:  # gone meanwhile: its last sample stands
                     continue
-                children[child.pid] = (role, t.user + t.system)
+                children[pid] = (role, t.user + t.system)
             server = sum(cpu for role, cpu in children.values() if role == "server")
             workers = sum(cpu for role, cpu in children.values() if role == "workers")
             self.samples.append((time.perf_counter(), mine.user + mine.system, server, workers))
             if self._stop.wait(self.interval):
                 return
+
+
+def descendants(pid: int) -> list[int]:
+    """The process ids below ``pid``, from Linux's ``/proc/<pid>/task/<tid>/children`` lists (about
+    0.1 ms for this run's tree); psutil's ``children(recursive=True)`` elsewhere, which reads every
+    process's parent on the machine (about 2 ms a call, 4-5 ms while the run loads the CPU: with a
+    sample every 0.2 s, 0.7 CPU s of the measured process's run went to the timeline before)."""
+    if not os.path.exists(f"/proc/{pid}/task/{pid}/children"):
+        import psutil
+
+        try:
+            return [child.pid for child in psutil.Process(pid).children(recursive=True)]
+        except psutil.Error:
+            return []
+    found, todo = [], [pid]
+    while todo:
+        parent = todo.pop()
+        for listing in glob.glob(f"/proc/{parent}/task/*/children"):
+            try:
+                with open(listing) as handle:
+                    kids = [int(x) for x in handle.read().split()]
+            except (OSError, ValueError):  # the thread or process ended meanwhile
+                continue
+            found += kids
+            todo += kids
+    return found
 
 
 def is_embedded_server(cmdline: Sequence[str]) -> bool:

@@ -83,8 +83,10 @@ answers and when the flow returns. The row sums them and sets the total against 
 1's wall time allows: the peer's time for the fleet over 20, times the cores. The average number
 of busy cores during the flow (its CPU seconds over its wall time) says how much of the run is
 waiting rather than computing. Where the cores stood idle: `bench/harness.py:CpuTimeline`, a
-thread of the same child process, samples the process tree's CPU seconds every 0.2 s (about a
-millisecond of CPU per sample) by role (the child itself, the Prefect server, the worker processes), and
+thread of the same child process, samples the process tree's CPU seconds every 0.2 s (a fraction
+of a millisecond of CPU per sample: the tree is read from Linux's per-process lists of children,
+not from a scan of every process, which took 0.7 CPU s of the measured process's run) by role
+(the child itself, the Prefect server, the worker processes), and
 `idle_phases` splits the run at the server's first answer and at the first and last samples in
 which the worker processes used CPU: the server's start, the flow before the batch stages, the
 batch stages and the flow after them, each with its idle core-seconds (cores times wall time less

@@ -176,3 +176,33 @@ def test_a_child_waited_for_counts_as_passing():
     # the burner counts as passing, never as lasting (which holds only children running at both snapshots,
     # such as a server another test left running, whose CPU may tick meanwhile: below the burner's 0.2 s)
     assert used["passing"] >= 0.2 and used["lasting"] < 0.2
+
+
+def test_the_timeline_finds_the_whole_process_tree():
+    """bench/harness.py descendants: the children's lists in /proc give the same processes as
+    psutil's scan of every process (a child and its own child)."""
+    import os
+    import subprocess
+    import sys
+    import time
+
+    import psutil
+
+    from bench.harness import descendants
+
+    sleeper = "import time; time.sleep(30)"
+    code = f"import subprocess, sys, time; p = subprocess.Popen([sys.executable, '-c', {sleeper!r}]); time.sleep(30)"
+    child = subprocess.Popen([sys.executable, "-c", code])
+    try:
+        me = psutil.Process()
+        for _ in range(100):  # until the grandchild runs
+            if len(me.children(recursive=True)) >= 2:
+                break
+            time.sleep(0.1)
+        expected = {p.pid for p in me.children(recursive=True)}
+        assert len(expected) >= 2 and set(descendants(os.getpid())) == expected
+    finally:
+        for p in psutil.Process(child.pid).children(recursive=True):
+            p.kill()
+        child.kill()
+        child.wait()

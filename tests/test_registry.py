@@ -162,6 +162,27 @@ def test_hash_and_to_dict(tmp_path):
     assert check_registry(path) == []
 
 
+def test_the_same_bytes_give_the_registry_parsed_last_and_a_holiday_file_is_read_each_time(tmp_path, monkeypatch):
+    """tasks/registry/loader.py: the flow's load-registry task takes the registry `fitaudit run`
+    checked, without a second parse; other bytes or another name parse afresh."""
+    path = tmp_path / FILE
+    path.write_text(VALID, encoding="utf-8")
+    first = load_registry(path)
+    assert load_registry(path) is first
+    path.write_text(VALID + "\n# edited\n", encoding="utf-8")
+    edited = load_registry(path)
+    assert edited is not first and edited.sha256 != first.sha256
+    monkeypatch.chdir(tmp_path)
+    relative = load_registry(FILE)  # the same file under another name, which its messages use
+    assert relative is not edited and relative.path == FILE
+    text, _ = _holiday_registry(tmp_path, "B", "2026-12-25\n")
+    path.write_text(text, encoding="utf-8")
+    with_holidays = load_registry(path)
+    assert with_holidays.sources["demand"].holidays == ("2026-12-25",)
+    (tmp_path / "holidays.txt").write_text("2026-12-25\n2026-12-28\n", encoding="utf-8")
+    assert load_registry(path).sources["demand"].holidays == ("2026-12-25", "2026-12-28")  # the file read again
+
+
 def test_policy_defaults_apply_when_keys_are_omitted():
     text = VALID
     for line in (
