@@ -95,7 +95,16 @@ _LABELS = {
 
 
 #: The flow's stage timings shown on the page, in the flow's order (candidate_tables is part of candidates).
-_STAGES = ("stage_s", "calibration_s", "audit_s", "candidates_s", "candidate_tables_s", "render_s", "publish_s")
+_STAGES = (
+    "stage_s",
+    "calibration_s",
+    "audit_s",
+    "candidates_s",
+    "candidate_tables_s",
+    "render_s",
+    "publish_s",
+    "events_s",
+)
 
 
 def _seconds(d: dict, keys: tuple) -> str:
@@ -114,7 +123,8 @@ def _details(rows: list[dict]) -> str:
                 "**Fleet run.** Embedded server start {:.1f} s; flow {:.1f} s, by stage (wall time): {} "
                 "(candidate_tables: the null tables the searches share, built before them, part of candidates; "
                 "render: the records and model pages of every batch; publish: from the start of render to the end of "
-                "the archive writing). Work summed per function (two batches at a time, so the sum can exceed the "
+                "the archive writing; events: the verdict events and Prefect artifacts after it). Work summed per "
+                "function (two batches at a time, so the sum can exceed the "
                 "wall time): {}. "
                 "Flow wall time outside them: {:.1f} s. Peer per family: {}; subset {} ({}); "
                 "extract read {:.2f} s.".format(

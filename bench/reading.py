@@ -37,13 +37,14 @@ def _throughput(row: dict) -> str:
         if key in t
     )
     archive = t.get("publish_s", 0.0) - t.get("render_s", 0.0)
+    events = f", verdict events and artifacts {t['events_s']:.1f} s" if "events_s" in t else ""
     needed = ours["counts"]["audited"] / (20 * peer["series_per_second"])
     alone = ours["counts"]["audited"] / ours["flow_s"]
     return (
         f"**Throughput (goal 20x): {_verdict(row)}, {row['ratio_text']}** ({per_core:.1f}x per core): fitaudit "
         f"{ours['counts']['audited'] / (ours['flow_s'] + ours['server_start_s']):.1f} series/s against the peer's "
         f"{peer['series_per_second']:.1f}. The flow took {ours['flow_s']:.1f} s ({stages}, archive writing and run "
-        f"page {archive:.1f} s) and the embedded server's start {ours['server_start_s']:.1f} s. A scheduled "
+        f"page {archive:.1f} s{events}) and the embedded server's start {ours['server_start_s']:.1f} s. A scheduled "
         "deployment runs against a long-lived Prefect server and does not pay that start: the flow alone is "
         f"{alone:.1f} series/s, {alone / peer['series_per_second']:.1f}x the peer. "
         f"{ours['counts']['respecify']} models were searched for candidates"

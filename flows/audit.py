@@ -349,7 +349,9 @@ def audit_flow(
             "chain_head": published["chain_head"],
             "refit_models": todo,
         }
+        t0 = time.perf_counter()
         events_task(quote(recs), summary, run)
+        timings["events_s"] = time.perf_counter() - t0
         counts = manifest["counts"]
         logger.info("audit %s as of %s: %s; report %s", run_id, as_of, counts, report)
 
