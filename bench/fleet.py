@@ -8,9 +8,9 @@ artifacts.  The peer (``bench/peer.py``) runs in the parent on a random subset a
 extrapolated per series.
 
 *Throughput* counts the embedded server's start-up and the flow call.  The server is launched as
-``fitaudit run`` launches it, before the flow's modules are imported, and its start-up is timed
-from the launch to its first answer: the imports run meanwhile and are inside that time (before
-this launch order the start-up was timed after the imports, which were not counted).
+``fitaudit run`` launches it, after the registry is read (not timed) and before the flow's modules
+are imported, and its start-up is timed from the launch to its first answer: the imports and the
+start of the local worker processes run meanwhile and are inside that time.
 
 *Orchestration share* is the part of the flow call spent outside fitaudit's own work functions
 (staging, calibration, audits, fleet rules, candidate search, results document, rendering,

@@ -12,10 +12,10 @@ candidates, so the candidate search runs). fitaudit audits the whole fleet with 
 the embedded Prefect server in a fresh child process with a migrated Prefect database:
 production and refit checks, simulated calibration (R = 999), fleet rules, candidate search,
 report, archive, events and artifacts. Its time is the embedded server's start plus the flow call.
-The server is launched as `fitaudit run` launches it, before the flow's modules are imported, and
-its start is timed from the launch to its first answer, so the flow's imports, which run meanwhile,
-are counted inside it (until this round the start was timed after the imports, which were not
-counted; the peer's imports are not counted). The peer (`bench/peer.py`) does by hand, per
+The server is launched as `fitaudit run` launches it, after the command has read the registry (not
+timed, as the peer's imports are not) and before the flow's modules are imported, and its start is
+timed from the launch to its first answer, so the flow's imports and the start of the local worker
+processes, which run meanwhile, are counted inside it. The peer (`bench/peer.py`) does by hand, per
 series, strictly less: read the extract, fit with statsmodels (`SARIMAX` with
 `simple_differencing=True`, the same likelihood as fitaudit's, or `ETSModel`), one-step errors of
 the frozen production parameters (`SARIMAX.filter`, `ETSModel.smooth`; they agree with
@@ -142,7 +142,7 @@ the implementation it replaced. Three changes of an earlier round change numbers
 said in its row: the model fits (new optimiser paths reach the same maxima, to about 1e-7 in the
 log-likelihood, never lower than statsmodels'), the student-t tables (simulated on a grid of the
 degrees of freedom, docs/method.md §7.3) and the Newton sums of the t law (equal to rounding). The
-last twenty-two rows (the last three this round's) change no result: each is tested against what it
+last twenty-four rows (the last two this round's) change no result: each is tested against what it
 replaced. Two are not bit-identical: the null tables' maps per distinct cell differ in the last bit
 of a table's values, and the Q-Q sample quantiles can differ in the last bit before they are
 rounded to six decimals.
@@ -396,6 +396,19 @@ rounded to six decimals.
     "student-t table with estimated shape, five shapes, old and new alternated three times: 0.47-0.49 to "
     "0.42-0.45 s; the fleet's 48 candidate searches in one process without kept tables, alternated twice: "
     "11.2-11.9 to 10.8-11.1 s (same candidates) |\n"
+    "| `tasks/workers.py`, `flows/audit.py`, `flows/cli.py`, `core/calibration.py`, `tasks/audit/` | the local "
+    "worker processes are started while the embedded server starts (`start_workers_early`, `start_spare_workers`; "
+    "their imports one after the other, so the server's start is not slowed) and taken over by the run; the run's "
+    "null tables are built one per call in them, side by side (`table_jobs`, `build_tables`, `map_local`; merged in "
+    "`prepare_calibration`'s order, the same tables, tests) | the fleet child of 1,000 series, old and new "
+    "alternated three times: end to end 31.6-33.5 to 30.0-30.2 s, null tables 1.0-1.4 to 0.37-0.47 s, audit "
+    "9.2-9.5 to 8.1-8.3 s; the workers' start alone (alternated three times): server start 4.58-4.78 to "
+    "4.48-4.67 s, null tables 1.10-1.36 to 0.64-0.71 s (with both workers importing at once the server's start "
+    "grew by 0.2-0.9 s and the flow gained nothing) |\n"
+    "| `tasks/registry/loader.py` | the flow's load-registry task takes the registry the command parsed before it "
+    "started the server when the file's bytes, name and folder are the same (not for a registry naming a holiday "
+    "file, whose validation reads it; test) | a load of the fleet's registry in the flow process 0.26-0.38 s to "
+    "1 ms; the fleet's end to end time within the machine's noise (three alternated pairs) |\n"
     """
 """
 )
