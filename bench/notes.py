@@ -142,7 +142,7 @@ the implementation it replaced. Three changes of an earlier round change numbers
 said in its row: the model fits (new optimiser paths reach the same maxima, to about 1e-7 in the
 log-likelihood, never lower than statsmodels'), the student-t tables (simulated on a grid of the
 degrees of freedom, docs/method.md §7.3) and the Newton sums of the t law (equal to rounding). The
-last twenty-four rows (the last two this round's) change no result: each is tested against what it
+last twenty-five rows (the last three this round's) change no result: each is tested against what it
 replaced. Two are not bit-identical: the null tables' maps per distinct cell differ in the last bit
 of a table's values, and the Q-Q sample quantiles can differ in the last bit before they are
 rounded to six decimals.
@@ -409,6 +409,13 @@ rounded to six decimals.
     "started the server when the file's bytes, name and folder are the same (not for a registry naming a holiday "
     "file, whose validation reads it; test) | a load of the fleet's registry in the flow process 0.26-0.38 s to "
     "1 ms; the fleet's end to end time within the machine's noise (three alternated pairs) |\n"
+    "| `tasks/_io.py`, `tasks/archive/writer.py`, `tasks/publish.py` | the model pages the workers staged in the "
+    "run's work folder are hard-linked into the run being written (`link_once`, `RunWriter.write_file`: the same "
+    "file under its archive name, with the permissions of `write_once`, never over an existing file; copied when "
+    "the work folder is on another file system; tests) instead of read and written again through a temporary "
+    "file | 1,000 pages of 50 kB: 0.24 to 0.11 s; the fleet child of 1,000 series, old and new alternated three "
+    "times: archive writing and run page 0.86-1.60 to 0.70-0.72 s, from the end of the pages to the end of the "
+    "archive writing 0.94-1.70 to 0.79-0.81 s, end to end 29.3-31.8 to 28.8-29.6 s |\n"
     """
 """
 )

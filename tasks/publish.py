@@ -152,7 +152,10 @@ def publish_staged(
         writer.write_chunks("results.json", results_json_chunks(head, summary, staged_bytes(ordered)))
         writer.write_bytes("results.parquet", parquet_bytes(results_rows(doc)))
         for rel, data in sorted(pages.items()):
-            writer.write_bytes(rel, data if isinstance(data, bytes) else pathlib.Path(data).read_bytes())
+            if isinstance(data, bytes):
+                writer.write_bytes(rel, data)
+            else:  # a page the workers staged in the run's work folder, finished
+                writer.write_file(rel, data)
         published = writer.finish(dict(manifest, run_id=run_id, as_of=as_of.isoformat()))
     return published
 

@@ -813,3 +813,41 @@ def test_a_replaced_file_is_the_old_or_the_new_one_never_a_part(tmp_path, monkey
     with pytest.raises(DiskFull):
         _io.write_replacing(target, b"newer")
     assert target.read_bytes() == b"new" and [p.name for p in tmp_path.iterdir()] == ["index.html"]  # no leftover
+
+
+def test_a_staged_page_is_linked_into_the_run_not_copied_and_copied_where_links_fail(tmp_path, monkeypatch):
+    """tasks/_io.py link_once, RunWriter.write_file: a finished file gets the run's name as a
+    second name of the same file, with write_once's permissions; never over an existing file; on a
+    source on another file system the bytes are written instead."""
+    import errno
+    import stat
+
+    from fitaudit.tasks import _io
+
+    staged = tmp_path / "work" / "m1.html"
+    staged.parent.mkdir()
+    staged.write_bytes(b"abc")
+    root = tmp_path / "archive"
+    writer = archive.open_run(root, "20260105-T220000Z-eeee", 2026)
+    with writer:
+        writer.write_file("models/m1.html", staged)
+        published = writer.finish({"operator": "svc-audit"})
+    page = published.path / "models" / "m1.html"
+    assert os.path.samefile(page, staged) and stat.S_IMODE(page.stat().st_mode) == 0o600
+    manifest = json.loads((published.path / "manifest.json").read_bytes())
+    assert manifest["files"]["models/m1.html"] == {"sha256": SHA256_ABC, "size": 3}  # source: hashlib
+    assert archive.verify_archive(root) == []
+    with pytest.raises(FileExistsError):
+        _io.link_once(staged, page)
+
+    real_link = os.link
+
+    def across_devices(src, dst, **kwargs):  # as if the staged page were on another file system
+        if pathlib.Path(src) == staged:
+            raise OSError(errno.EXDEV, "Invalid cross-device link")
+        return real_link(src, dst, **kwargs)
+
+    monkeypatch.setattr(_io.os, "link", across_devices)
+    copied = tmp_path / "elsewhere" / "m1.html"
+    assert _io.link_once(staged, copied) == b"abc"
+    assert copied.read_bytes() == b"abc" and not os.path.samefile(copied, staged)

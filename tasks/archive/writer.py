@@ -13,7 +13,7 @@ from typing import Any
 
 from fitaudit.core.exceptions import InputError
 
-from .._io import canonical_json, sha256_bytes, write_once, write_once_chunks
+from .._io import canonical_json, link_once, sha256_bytes, write_once, write_once_chunks
 from .chain import _append_locked, _settle_append
 from .durable import _fsync_dir, _fsync_files, _fsync_tree, _mkdirs, _remove_journal, _step, _write_journal
 from .layout import (
@@ -96,6 +96,15 @@ class RunWriter:
         data = bytes(data)
         write_once(self._staging.joinpath(*parts), data, sync=False)  # synced together by finish()
         self._files[key] = {"sha256": sha256_bytes(data), "size": len(data)}
+        _step("file-written")
+
+    def write_file(self, relpath: str, source: str | os.PathLike) -> None:
+        """Write one file of the run from a finished file (a staged model page), which must not
+        change afterwards: linked into the run, not copied (:func:`~fitaudit.tasks._io.link_once`;
+        see :meth:`write_bytes`)."""
+        parts = self._claim(relpath)
+        data = link_once(source, self._staging.joinpath(*parts), sync=False)  # synced together by finish()
+        self._files["/".join(parts)] = {"sha256": sha256_bytes(data), "size": len(data)}
         _step("file-written")
 
     def write_chunks(self, relpath: str, chunks) -> None:
