@@ -194,13 +194,15 @@ def test_the_timeline_finds_the_whole_process_tree():
     code = f"import subprocess, sys, time; p = subprocess.Popen([sys.executable, '-c', {sleeper!r}]); time.sleep(30)"
     child = subprocess.Popen([sys.executable, "-c", code])
     try:
-        me = psutil.Process()
+        below = psutil.Process(child.pid)
         for _ in range(100):  # until the grandchild runs
-            if len(me.children(recursive=True)) >= 2:
+            if below.children(recursive=True):
                 break
             time.sleep(0.1)
-        expected = {p.pid for p in me.children(recursive=True)}
-        assert len(expected) >= 2 and set(descendants(os.getpid())) == expected
+        # the started subtree only: other tests' processes may come and go beside it
+        (grandchild,) = below.children(recursive=True)
+        assert descendants(child.pid) == [grandchild.pid]
+        assert {child.pid, grandchild.pid} <= set(descendants(os.getpid()))
     finally:
         for p in psutil.Process(child.pid).children(recursive=True):
             p.kill()
