@@ -189,7 +189,6 @@ def start_spare_workers(processes: int | None = None) -> None:
         if _SPARE:
             return
         _SPARE.append((processes, _start_pool(processes, in_turn=True)))
-    atexit.register(stop_spare_workers)
 
 
 def stop_spare_workers() -> None:
@@ -198,6 +197,9 @@ def stop_spare_workers() -> None:
         spare = _SPARE.pop() if _SPARE else None
     if spare is not None:
         spare[1].shutdown(wait=True, cancel_futures=True)
+
+
+atexit.register(stop_spare_workers)  # a spare pool no run took (nothing otherwise)
 
 
 def _take_spare(processes: int) -> cf.ProcessPoolExecutor | None:

@@ -103,7 +103,7 @@ class RunWriter:
         change afterwards: linked into the run, not copied (:func:`~fitaudit.tasks._io.link_once`;
         see :meth:`write_bytes`)."""
         parts = self._claim(relpath)
-        data = link_once(source, self._staging.joinpath(*parts), sync=False)  # synced together by finish()
+        data = link_once(source, self._staging.joinpath(*parts))  # synced together by finish()
         self._files["/".join(parts)] = {"sha256": sha256_bytes(data), "size": len(data)}
         _step("file-written")
 

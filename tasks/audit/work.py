@@ -291,12 +291,10 @@ def calibration_for(
                 )
             )
     cache = CalibrationCache(store=store)
-    jobs = table_jobs(entries)
-    if workers is None or len(jobs) < 2:
-        build_tables(jobs, cache)
-    else:
-        for part in map_local(workers, build_tables, [([job], CalibrationCache(store=store)) for job in jobs]):
-            cache.merge(part)
+    for part in map_local(
+        workers, build_tables, [([job], CalibrationCache(store=store)) for job in table_jobs(entries)]
+    ):
+        cache.merge(part)
     return prepare_forecast_calibration(forecasts, cache) if forecasts else cache
 
 
