@@ -5,7 +5,8 @@ Each optimisation is checked against the unoptimised way of computing the same t
 * change location: the O(n) permutation maxima against the one-hot split statistics (kept in
   ``fitaudit.core.change.split_statistics``) and scipy's G-test, and ``locate_change`` against the
   original permutation loop (kept below);
-* the report's ``svg`` filter against the Jinja macro it replaced (kept below);
+* the report's ``svg``, ``num_cells`` and ``map_cells`` filters against the Jinja macro and loops they
+  replaced (kept below);
 * the report's number format against its previous form (kept below), the rectangles' coordinate
   texts against ``coord``, and the JSON conversions' fast paths for lists of plain values against
   the element-by-element conversions;
@@ -62,6 +63,14 @@ REFERENCE_SVG_MACRO = (
     "\n"
     "</svg>\n"
     "{% endmacro %}"
+)
+
+#: The template loops of the data tables' number cells before the ``num_cells`` and ``map_cells``
+#: filters replaced them (templates/model.html.j2), as macros the filters' callers can take.
+REFERENCE_CELL_MACROS = (
+    '{% macro num_cells(texts) %}{% for t in texts %}<td class="n">{{ t }}</td>{% endfor %}{% endmacro %}'
+    "{% macro map_cells(cells) %}{% for text, fail in cells %}"
+    '<td class="n{% if fail %} fail{% endif %}">{{ text }}</td>{% endfor %}{% endmacro %}'
 )
 
 #: Demo models covering four sources, every verdict, smoothing, threshold AR, a rejected entry and
@@ -343,6 +352,9 @@ def test_audit_flow_matches_the_plain_pipeline(demo, registry, prefect_server, t
 
     macro = environment().from_string(REFERENCE_SVG_MACRO).module.svg
     monkeypatch.setitem(environment().filters, "svg", macro)  # the reference renders charts with the old macro
+    cells = environment().from_string(REFERENCE_CELL_MACROS).module  # and the tables' cells with the old loops
+    monkeypatch.setitem(environment().filters, "num_cells", cells.num_cells)
+    monkeypatch.setitem(environment().filters, "map_cells", cells.map_cells)
     reference_json, reference_pages, reference_rows = _reference_run(demo, registry, archive, tmp_path / "work", meta)
 
     assert {m["verdict"] for m in json.loads(reference_json)["models"]} == set(VERDICTS)
@@ -400,9 +412,10 @@ def test_report_number_and_coordinate_texts_match_the_unoptimised_ones():
     from fitaudit.tasks.report.text import coord, format_number
 
     rng = np.random.default_rng(7)
-    edges = [s * 10.0**k for k in range(-6, 8) for s in (1.0, -1.0, 0.99995, 9.9995, 4.9995, 0.5)]
-    spread = rng.lognormal(0.0, 4.0, 3000) * rng.choice([-1, 1], 3000)
-    values = edges + [np.nextafter(x, 0.0) for x in edges] + list(spread)
+    halves = (9.5, 9.95, 9.995, 9.9995, 4.95, 4.995, 4.9995, 0.99995)  # where rounding reaches the next power of ten
+    edges = [s * 10.0**k for k in range(-6, 8) for s in (1.0, -1.0, 0.5, -9.995) + halves]
+    spread = rng.lognormal(0.0, 4.0, 20000) * rng.choice([-1, 1], 20000)
+    values = edges + [np.nextafter(x, 0.0) for x in edges] + [np.nextafter(x, 2 * x) for x in edges] + list(spread)
     values = [float(x) for x in values] + [0.0, -0.0, float("inf"), float("-inf"), float("nan")]
     for digits in (1, 2, 3, 4, 6):
         # source: the reference above (the unoptimised format)
@@ -410,6 +423,21 @@ def test_report_number_and_coordinate_texts_match_the_unoptimised_ones():
     px = _CoordText().__getitem__
     shown = [0.0, -0.0, 0.04, -0.04, 1.05, 12.25, 0.0, -0.0, 1.05, float("nan"), float("nan")]
     assert [px(x) for x in shown] == [coord(x) for x in shown]  # source: coord itself; 0.0 and -0.0 print 0 and -0
+
+
+def test_cell_filters_write_what_the_template_loops_wrote():
+    import markupsafe
+
+    from fitaudit.tasks.report.render import environment
+    from fitaudit.tasks.report.table_cells import map_cells, num_cells
+
+    loops = environment().from_string(REFERENCE_CELL_MACROS).module
+    texts = ["0.125", "< 0.001", "n/a", "∞", "a&b\"<c>'", 7, None, markupsafe.Markup("<b>1</b>"), ""]
+    # source: the template loops the filters replaced (REFERENCE_CELL_MACROS), autoescape on
+    assert str(num_cells(texts)) == str(loops.num_cells(texts))
+    pairs = [(t, k % 2 == 0) for k, t in enumerate(texts)]
+    assert str(map_cells(pairs)) == str(loops.map_cells(pairs))
+    assert isinstance(num_cells(texts), markupsafe.Markup)  # not escaped a second time by the page
 
 
 def test_json_fast_paths_keep_every_conversion():

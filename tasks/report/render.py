@@ -5,9 +5,10 @@ functions.  The only module of fitaudit that imports Jinja2; the views it render
 
 The model page's per-row loops (map, histogram, Q-Q, autocorrelation and cell tables, the checks
 table) read their rows' items by subscript (``r["value"]``): Jinja2's dot syntax tries an attribute
-first, which on a dict costs a caught AttributeError per cell.  The two longest, the map's cells
-(``(text, fails)``) and the Q-Q rows (``(noise-law quantile, residual quantile)``), are tuples that
-the loop unpacks, with no lookup at all.
+first, which on a dict costs a caught AttributeError per cell.  The runs of number cells in the
+map, Q-Q, histogram and cell tables are written by the filters ``map_cells`` and ``num_cells``
+(:mod:`~fitaudit.tasks.report.table_cells`): a template loop per cell made them a third of a
+page's template time.
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ import jinja2
 from .charts import svg_element
 from .model_view import model_page_view
 from .run_view import index_view
+from .table_cells import map_cells, num_cells
 from .text import coord, count_text, format_number, format_p
 from .views import archive_view, method_view, page_context
 
@@ -35,7 +37,7 @@ def environment() -> jinja2.Environment:
         Templates from the ``fitaudit.templates`` package (``PackageLoader``); autoescape on for
         ``.html`` and ``.j2`` names and by default for every other name and string template;
         ``StrictUndefined``, so a missing name raises instead of printing nothing; the filters
-        ``num``, ``p``, ``px``, ``count`` and ``svg``.
+        ``num``, ``p``, ``px``, ``count``, ``svg``, ``num_cells`` and ``map_cells``.
     """
     env = jinja2.Environment(
         loader=jinja2.PackageLoader("fitaudit.templates", "."),
@@ -46,7 +48,15 @@ def environment() -> jinja2.Environment:
         keep_trailing_newline=True,
         auto_reload=False,  # the templates ship with the package: no file check per page
     )
-    env.filters.update(num=format_number, p=format_p, px=coord, count=count_text, svg=svg_element)
+    env.filters.update(
+        num=format_number,
+        p=format_p,
+        px=coord,
+        count=count_text,
+        svg=svg_element,
+        num_cells=num_cells,
+        map_cells=map_cells,
+    )
     return env
 
 

@@ -46,7 +46,14 @@ def format_number(x: Any, digits: int = 3) -> str:
     ``∞``.
     """
     if type(x) is float:  # the common case, as to_float would take it
-        if x != x:
+        if 1e-4 <= abs(x) < 1e6:
+            # printf's %g rounds to `digits` significant figures and strips the trailing zeros: the
+            # same text as the fixed notation below whenever it does not switch to an exponent (from
+            # 10**digits on), at half the cost (a model page prints about a thousand numbers)
+            text = "%.*g" % (digits, x)  # noqa: UP031 (a quarter faster than the f-string with a nested width)
+            if "e" not in text:
+                return text
+        elif x != x:
             return "n/a"
         v = x
     elif isinstance(x, int) and not isinstance(x, bool):
