@@ -185,7 +185,11 @@ def audit_series(
             # audit window is then locatable too (index is a position in the series)
             first = int(np.argmax(~np.isnan(prod_errors)))
             change = locate_change(
-                prod_errors[first:], noise=law_prod, permutations=settings.change_permutations, seed=settings.seed
+                prod_errors[first:],
+                noise=law_prod,
+                permutations=settings.change_permutations,
+                seed=settings.seed,
+                cache=cache,
             )
             change = dataclasses.replace(change, index=change.index + first)
         except (FitauditError, ValueError):

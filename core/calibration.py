@@ -341,6 +341,7 @@ class CalibrationCache:
     store: TableStore | None = field(default=None, compare=False)
     reused: frozenset = frozenset()
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False, compare=False)
+    _draws: dict = field(default_factory=dict, repr=False, compare=False)
 
     def get(self, key: tuple, build: Callable[[], NullTable]) -> NullTable:
         """The table for ``key``; ``build`` runs only when the key is new here and in the store
@@ -363,14 +364,31 @@ class CalibrationCache:
             self.tables = {**self.tables, key: table}
             return table
 
+    def draws(self, key: tuple, make: Callable[[], np.ndarray]) -> np.ndarray:
+        """Random draws that every model of a run uses alike (the permutations of change location),
+        made once in this process with ``make()`` and returned read-only (thread-safe).
+
+        Unlike the tables they are kept only in this process: never stored, merged or pickled, since
+        they are a function of ``key`` and the seed and cost less to make than to move.
+        """
+        with self._lock:
+            drawn = self._draws.get(key)
+            if drawn is None:
+                drawn = make()
+                drawn.flags.writeable = False
+                self._draws = {**self._draws, key: drawn}
+            return drawn
+
     def __getstate__(self) -> dict:
         state = dict(self.__dict__)
         state.pop("_lock", None)
+        state.pop("_draws", None)
         return state
 
     def __setstate__(self, state: dict) -> None:
         self.__dict__.update(state)
         self._lock = threading.Lock()
+        self._draws = {}
 
     def merge(self, other: CalibrationCache) -> None:
         """Add the tables of ``other`` that this cache lacks (a new dict, as in :meth:`get`), and

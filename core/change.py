@@ -18,11 +18,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._scipy import special
-from .calibration import key_rng
+from .calibration import CalibrationCache, key_rng
 from .cells import cell_index, number_of_cells
 from .exceptions import InputError, InsufficientDataError
 
-__all__ = ["ChangeResult", "locate_change", "split_statistics", "permutation_maxima"]
+__all__ = ["ChangeResult", "change_permutations", "locate_change", "split_statistics", "permutation_maxima"]
 
 
 @dataclass(frozen=True)
@@ -170,8 +170,29 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     return 2.0 * half_t.max(axis=1)
 
 
+def change_permutations(seed: int, n: int, s: int, permutations: int) -> np.ndarray:
+    """The permutations of :func:`locate_change` for ``n`` errors in ``s`` cells, shape (permutations, n).
+
+    Row ``b`` orders the errors by uniforms drawn from ``key_rng(seed, "change", n, s)``: the
+    same rows for every series of that length, so a run makes them once per process
+    (:meth:`CalibrationCache.draws`).
+
+    >>> p = change_permutations(0, 6, 3, 4)
+    >>> p.shape, bool((np.sort(p, axis=1) == np.arange(6)).all())
+    ((4, 6), True)
+    """
+    rng = key_rng(seed, "change", n, s)
+    return np.argsort(rng.random((permutations, n)), axis=1)
+
+
 def locate_change(
-    errors, noise="normal", params=None, permutations: int = 499, seed: int = 0, trim: float = 0.1
+    errors,
+    noise="normal",
+    params=None,
+    permutations: int = 499,
+    seed: int = 0,
+    trim: float = 0.1,
+    cache: CalibrationCache | None = None,
 ) -> ChangeResult:
     """Locate the most likely break in one-step errors and test it by permutation.
 
@@ -189,6 +210,9 @@ def locate_change(
         Permutations for the p-value (seeded by ``seed``).
     trim : float, default 0.1
         Fraction of the errors (at least one cell's worth, s) kept on each side of a split.
+    cache : CalibrationCache, optional
+        Where the run keeps the permutations (:func:`change_permutations`), made once per length;
+        the result is the same with or without it.
 
     Returns
     -------
@@ -228,8 +252,10 @@ def locate_change(
     profile_inner = split_statistics(idx, s, h)
     k_best = int(np.argmax(profile_inner))
     t_obs = float(profile_inner[k_best])
-    rng = key_rng(seed, "change", n, s)
-    perm = np.argsort(rng.random((permutations, n)), axis=1)
+    if cache is None:
+        perm = change_permutations(seed, n, s, permutations)
+    else:
+        perm = cache.draws(("change", seed, n, s, permutations), lambda: change_permutations(seed, n, s, permutations))
     t_perm = permutation_maxima(_sort_keys(idx, s)[perm], s, h)  # the permuted rows gathered as sort keys
     exceed = int(np.sum(t_perm >= t_obs - 1e-9 * max(1.0, abs(t_obs))))
     split = h + k_best

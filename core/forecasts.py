@@ -1371,6 +1371,7 @@ def audit_forecasts(
                 params=_STANDARD_NORMAL,
                 permutations=settings.change_permutations,
                 seed=settings.seed,
+                cache=cache,
             )
             change = dataclasses.replace(change, index=change.index + first)
         except (FitauditError, ValueError):

@@ -3,8 +3,8 @@
 Each optimisation is checked against the unoptimised way of computing the same thing:
 
 * change location: the O(n) permutation maxima against the one-hot split statistics (kept in
-  ``fitaudit.core.change.split_statistics``) and scipy's G-test, and ``locate_change`` against the
-  original permutation loop (kept below);
+  ``fitaudit.core.change.split_statistics``) and scipy's G-test, and ``locate_change`` (also with the
+  run's permutations made once) against the original permutation loop (kept below);
 * the report's ``svg``, ``num_cells`` and ``map_cells`` filters against the Jinja macro and loops they
   replaced (kept below);
 * the report's number format against its previous form (kept below), the rectangles' coordinate
@@ -22,6 +22,7 @@ from __future__ import annotations
 import json
 import os
 import pathlib
+import pickle
 import shutil
 
 import numpy as np
@@ -152,6 +153,20 @@ def test_locate_change_matches_the_original_loop(seed):
     index, statistic, p_value = _reference_locate_change(errors, permutations, seed)
     # source: the pre-issue-7 implementation above (same seed, same permutations)
     assert (res.index, res.statistic, res.p_value) == (index, statistic, p_value)
+
+
+def test_locate_change_with_the_runs_permutations_matches_the_original_loop():
+    from fitaudit.core.calibration import CalibrationCache
+
+    rng = np.random.default_rng(7)
+    cache = CalibrationCache()
+    for shift in (0.0, 0.6, 1.2):  # three series of one length: the second and third reuse the permutations
+        errors = np.r_[rng.normal(size=300), rng.normal(shift, 1.0, size=200)]
+        res = locate_change(errors, permutations=499, seed=4, cache=cache)
+        # source: the pre-issue-7 implementation above (same seed, same permutations)
+        assert (res.index, res.statistic, res.p_value) == _reference_locate_change(errors, 499, 4)
+    assert len(cache._draws) == 1 and len(cache) == 0  # made once, and not a table (never stored or merged)
+    assert pickle.loads(pickle.dumps(cache))._draws == {}  # kept in this process only
 
 
 @pytest.fixture(scope="module")
