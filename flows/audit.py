@@ -18,7 +18,7 @@ from prefect.utilities.annotations import quote
 
 from fitaudit.core.vocabulary import VERDICTS
 from fitaudit.tasks.archive import new_run_id, open_work_folder
-from fitaudit.tasks.archive_tasks import check_archive_task, recover_task
+from fitaudit.tasks.archive_tasks import check_archive_task, recover_task, refusal_first, start_archive_check
 from fitaudit.tasks.audit import candidate_jobs, candidate_tables, wants_candidates, with_candidates
 from fitaudit.tasks.audit.task import audit_batch_task, calibration_task, candidates_task, finalize_task, tables_task
 from fitaudit.tasks.batches import stage_inputs_task
@@ -186,34 +186,40 @@ def audit_flow(
 
     reg = load_registry_task(registry)
     recovered = recover_task(archive)
-    acknowledged = check_archive_task(archive)
-    extends = context_task(archive, as_of)
     run_id = new_run_id(as_of)
-    wanted = None if models is None else set(models)
-    ids = [m.id for m in reg.models if wanted is None or m.id in wanted]
-    history = history_task(archive, as_of, quote(ids))
-    # the run's scratch folder, locked while it runs; recover() removes it if the process dies
+    # the run's scratch folder, locked while it runs; recover() removes it if the process dies.  Opened
+    # before the archive check starts: its exclusive archive lock would otherwise wait for the check's
     scratch = open_work_folder(archive, run_id)
     work = scratch.path
     with contextlib.ExitStack() as ending:
         ending.callback(scratch.close)
+        # the archive's integrity check runs in a spare worker beside the run's first reads (context,
+        # history, staging); its outcome is taken before any model is audited, and its refusal is the
+        # error a run on a damaged archive ends with, whatever those reads met
+        checking = start_archive_check(archive)
         # the imports' objects (Prefect, pydantic, pyarrow) left out of the collector's passes until the run ends
         ending.enter_context(heap_frozen())
-        t0 = time.perf_counter()
-        # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
-        # them (twice per task call) looking for futures, which costs seconds on a big fleet
-        stage_args = dict(
-            archive_root=archive,
-            histories=quote(history.records),
-            model_ids=quote(ids),
-            batch_size=batch_size or settings.batch_size,
-            workers=_workers(),
-        )
-        try:
-            staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
-        except OSError:
-            staged = stage_inputs_task(quote(reg), as_of, str(work), os_errors="record", **stage_args)
-        timings["stage_s"] = time.perf_counter() - t0
+        with refusal_first(checking):
+            extends = context_task(archive, as_of)
+            wanted = None if models is None else set(models)
+            ids = [m.id for m in reg.models if wanted is None or m.id in wanted]
+            history = history_task(archive, as_of, quote(ids))
+            t0 = time.perf_counter()
+            # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
+            # them (twice per task call) looking for futures, which costs seconds on a big fleet
+            stage_args = dict(
+                archive_root=archive,
+                histories=quote(history.records),
+                model_ids=quote(ids),
+                batch_size=batch_size or settings.batch_size,
+                workers=_workers(),
+            )
+            try:
+                staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
+            except OSError:
+                staged = stage_inputs_task(quote(reg), as_of, str(work), os_errors="record", **stage_args)
+            timings["stage_s"] = time.perf_counter() - t0
+        acknowledged = check_archive_task(archive, quote(checking))
 
         with local_workers(_local_processes(settings.processes, len(staged.batches), len(ids))) as workers:
             t0 = time.perf_counter()

@@ -202,6 +202,24 @@ def stop_spare_workers() -> None:
 atexit.register(stop_spare_workers)  # a spare pool no run took (nothing otherwise)
 
 
+def submit_to_spare(fn: Callable[..., T], *args: Any) -> cf.Future | None:
+    """``fn(*args)`` on a worker of the spare pool (:func:`start_spare_workers`), which stays spare
+    for the run to take over; None when there is no spare pool (the caller computes in place).
+
+    For a run's first stages, before it knows how many workers its batches need: the workers are
+    idle then.  As for :func:`run_local`, ``fn`` lives in a module that imports neither Prefect,
+    pyarrow nor pandas; the caller takes the result before the run takes the pool over.
+    """
+    with _POOLS_LOCK:
+        pool = _SPARE[0][1] if _SPARE else None
+        if pool is None:
+            return None
+        try:
+            return pool.submit(_run_and_release, fn, *args)
+        except RuntimeError:  # the pool is shutting down (the process is exiting)
+            return None
+
+
 def _take_spare(processes: int) -> cf.ProcessPoolExecutor | None:
     """The spare pool if it has ``processes`` workers, removed from the spares; None otherwise (a
     spare of another size is stopped: the run starts its own)."""

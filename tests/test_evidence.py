@@ -870,3 +870,22 @@ def test_after_sigkill_the_next_command_reaps_the_server(signal_fleet, tmp_path)
     )
     assert _gone([server, *children]) == []
     assert _records(home) == []
+
+
+def test_a_refusal_comes_before_the_errors_of_the_reads_beside_the_check():
+    from concurrent.futures import Future
+
+    from fitaudit.tasks.archive_tasks import refusal_first
+
+    refused = Future()
+    refused.set_exception(ArchiveError("the archive fails verification"))
+    with pytest.raises(ArchiveError, match="fails verification") as info:
+        with refusal_first(refused):  # the check ran beside the reads and refused
+            raise OSError("an extract could not be read")
+    assert isinstance(info.value.__cause__, OSError)  # the reads' error is kept, chained
+    passed = Future()
+    passed.set_result([])
+    for started in (passed, None):  # an intact archive, or the check run in place afterwards
+        with pytest.raises(OSError, match="could not be read"):
+            with refusal_first(started):
+                raise OSError("an extract could not be read")

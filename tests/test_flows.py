@@ -71,6 +71,27 @@ def test_the_audit_flow_runs_with_its_imports_frozen_and_thaws_them(demo, prefec
     assert gc.get_freeze_count() == 0
 
 
+def test_a_damaged_archive_is_refused_by_the_check_in_a_spare_worker(demo, prefect_server, tmp_path):
+    from fitaudit.flows.audit import audit_flow
+    from fitaudit.tasks import workers
+    from fitaudit.tasks.archive import ArchiveError
+
+    archive = pathlib.Path(_fresh_archive(demo, tmp_path))
+    version = sorted((archive / "params").glob("*/*.json"))[0]
+    version.write_bytes(version.read_bytes() + b" ")  # a promoted parameter version changed after the fact
+    workers.start_spare_workers(2)  # as `fitaudit run` starts them: the check runs in one, beside staging
+    try:
+        spare = workers._SPARE[0][1]
+        with pytest.raises(ArchiveError, match="fails verification, so nothing is added to it") as refused:
+            audit_flow(registry=demo["registry"], as_of=DEMO_AS_OF, archive=str(archive), models=SUBSET[:2])
+        assert version.name in str(refused.value)
+        assert workers._SPARE[0][1] is spare  # refused before the batches: the workers stay spare (stopped at exit)
+    finally:
+        workers.stop_spare_workers()
+    assert not any((archive / ".work").iterdir())  # the run's scratch folder is gone
+    assert not (archive / "runs").exists()  # nothing added
+
+
 def test_audit_flow_end_to_end(first_run):
     counts = first_run["counts"]
     assert counts["registered"] == len(SUBSET) == sum(counts[v] for v in VERDICTS)
