@@ -92,6 +92,11 @@ _CHILD = textwrap.dedent(
     with get_client(sync_client=True) as client:
         client.hello()
         seen["client url"] = str(client.api_url)
+        seen["block types at start"] = len(client.read_block_types())
+        from fitaudit.tasks.extracts.credentials import ObjectStoreCredentials
+        ObjectStoreCredentials(endpoint_url="http://127.0.0.1:9000").save("lab", overwrite=True)
+        seen["block loaded"] = ObjectStoreCredentials.load("lab").endpoint_url
+        seen["block types after a save"] = len(client.read_block_types())
     print(json.dumps({**seen, "url": url, "env": os.environ.get("PREFECT_API_URL"), "records": tracked_servers()}))
     """
 )
@@ -109,6 +114,9 @@ def test_the_launched_server_answers_and_is_stopped_and_unrecorded_at_exit(tmp_p
     out = json.loads(proc.stdout.strip().splitlines()[-1])
     assert out["prefect imported while the server starts"] is False
     assert out["url"] == out["env"] and out["client url"].rstrip("/") == out["url"]
+    # no catalogue of block types written at the start (EMBEDDED_SERVER_SETTINGS), and a block still saves and loads
+    assert out["block types at start"] == 0 and out["block types after a save"] == 1
+    assert out["block loaded"] == "http://127.0.0.1:9000"
     (record,) = out["records"]
     assert record["kind"] == "embedded" and out["url"] == f"http://127.0.0.1:{record['port']}/api"
     deadline = time.monotonic() + 30
