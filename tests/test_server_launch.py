@@ -97,6 +97,12 @@ _CHILD = textwrap.dedent(
         ObjectStoreCredentials(endpoint_url="http://127.0.0.1:9000").save("lab", overwrite=True)
         seen["block loaded"] = ObjectStoreCredentials.load("lab").endpoint_url
         seen["block types after a save"] = len(client.read_block_types())
+    from fitaudit.flows.server import EMBEDDED_SERVER_SETTINGS
+    (pid,) = [r["pid"] for r in tracked_servers()]
+    environ = dict(
+        item.split("=", 1) for item in open(f"/proc/{pid}/environ").read().split(chr(0)) if "=" in item
+    )
+    seen["server settings"] = {k: environ.get(k) for k in EMBEDDED_SERVER_SETTINGS}
     print(json.dumps({**seen, "url": url, "env": os.environ.get("PREFECT_API_URL"), "records": tracked_servers()}))
     """
 )
@@ -117,6 +123,11 @@ def test_the_launched_server_answers_and_is_stopped_and_unrecorded_at_exit(tmp_p
     # no catalogue of block types written at the start (EMBEDDED_SERVER_SETTINGS), and a block still saves and loads
     assert out["block types at start"] == 0 and out["block types after a save"] == 1
     assert out["block loaded"] == "http://127.0.0.1:9000"
+    assert out["server settings"] == {  # no automations either: the triggers and actions services are off
+        "PREFECT_SERVER_REGISTER_BLOCKS_ON_START": "false",
+        "PREFECT_SERVER_MEMOIZE_BLOCK_AUTO_REGISTRATION": "false",
+        "PREFECT_SERVER_SERVICES_TRIGGERS_ENABLED": "false",
+    }
     (record,) = out["records"]
     assert record["kind"] == "embedded" and out["url"] == f"http://127.0.0.1:{record['port']}/api"
     deadline = time.monotonic() + 30
