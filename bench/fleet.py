@@ -181,12 +181,19 @@ def audit_in_child(registry: str, archive: str, models: list[str] | None = None,
             "flow": cpu_used(cpu1, cpu2),
         },
         # idle core-seconds per phase, from the process tree's CPU sampled every CPU_SAMPLE_S seconds
-        "cpu_phases": idle_phases(timeline.samples, t0, t1, t2, os.cpu_count() or 1),
+        "cpu_phases": idle_phases(timeline.samples, t0, t1, t2, os.cpu_count() or 1, batch_span(clock)),
         "counts": result["counts"],
         "tables": {k: manifest.get(k) for k in ("calibration_tables", "calibration_tables_reused")},
         "flow_timings": result["timings"],
         "report": result["report"],
     }
+
+
+def batch_span(clock: WorkClock) -> tuple[float, float] | None:
+    """From the start of the flow's first call of ``run_local`` (the batch work it hands to the worker
+    processes: audit, candidate search, records and pages) to the end of its last; None without one."""
+    calls = [(a, b) for a, b, label in clock.intervals if label.endswith(".run_local")]
+    return (min(a for a, _ in calls), max(b for _, b in calls)) if calls else None
 
 
 def fit_time(series: list[FleetSeries], workers: int | None = None) -> dict:

@@ -268,14 +268,21 @@ def _role(child, own_cmdline: list[str]) -> str | None:
 
 
 def idle_phases(
-    samples: Sequence[tuple[float, float, float, float]], start: float, ready: float, end: float, cores: int
+    samples: Sequence[tuple[float, float, float, float]],
+    start: float,
+    ready: float,
+    end: float,
+    cores: int,
+    batches: tuple[float, float] | None = None,
 ) -> dict[str, dict[str, float]]:
     """Wall time, CPU seconds and idle core-seconds (cores x wall - CPU) of a run's phases, from
     :class:`CpuTimeline` samples: ``server_start`` (``start`` to ``ready``, the server's first
-    answer), then in the flow (``ready`` to ``end``) ``before_batches`` (until the worker processes
-    first use CPU), ``batches`` (until they last do) and ``after_batches``.  Boundaries are read at
-    the samples (the last one at or before each time); a flow without worker CPU has only
-    ``before_batches``.
+    answer), then in the flow (``ready`` to ``end``) ``before_batches``, ``batches`` and
+    ``after_batches``.  The batch stages are ``batches`` (their first call handed to the worker
+    processes starts, their last ends) when given, else the span in which the worker processes
+    used CPU (a worker that checks the archive beside staging makes that span start early).
+    Boundaries are read at the samples (the last one at or before each time); a flow without
+    batch stages has only ``before_batches``.
     """
 
     def at(t: float) -> tuple[float, float]:
@@ -287,12 +294,15 @@ def idle_phases(
         return chosen[0], sum(chosen[1:])
 
     flow = [s for s in samples if ready <= s[0] <= end]
-    rising = [s[0] for prev, s in zip(flow, flow[1:]) if s[3] > prev[3]]
-    # a worker's CPU rises at the sample after the interval it worked in: that interval starts one sample earlier
-    first = max((p[0] for p in flow if p[0] < rising[0]), default=ready) if rising else end
+    if batches is None:
+        rising = [s[0] for prev, s in zip(flow, flow[1:]) if s[3] > prev[3]]
+        # a worker's CPU rises at the sample after the interval it worked in: that interval starts one sample earlier
+        if rising:
+            batches = (max((p[0] for p in flow if p[0] < rising[0]), default=ready), rising[-1])
     bounds = {"server_start": (start, ready)}
-    if rising:
-        bounds |= {"before_batches": (ready, first), "batches": (first, rising[-1]), "after_batches": (rising[-1], end)}
+    if batches is not None:
+        first, last = max(batches[0], ready), min(batches[1], end)
+        bounds |= {"before_batches": (ready, first), "batches": (first, last), "after_batches": (last, end)}
     else:
         bounds["before_batches"] = (ready, end)
     out = {}

@@ -124,8 +124,9 @@ def _idle(d: dict) -> str:
     start = phases["server_start"]["idle_core_s"]
     best = d["flow_s"] - idle / cores
     parts = [
-        f"{in_flow['before_batches']['idle_core_s']:.1f} before the batch stages (the flow process alone "
-        f"for {in_flow['before_batches']['wall_s']:.1f} s: registry, archive checks, staging, null tables)"
+        f"{in_flow['before_batches']['idle_core_s']:.1f} before the batch stages "
+        f"({in_flow['before_batches']['wall_s']:.1f} s: registry, staging beside the archive check in a worker, "
+        "null tables)"
     ]
     if "batches" in in_flow:
         parts += [

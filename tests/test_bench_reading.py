@@ -80,6 +80,18 @@ def test_idle_phases_split_the_run_where_the_worker_processes_start_and_stop():
         got = phases[name]
         assert abs(got["wall_s"] - wall) < 1e-12 and abs(got["cpu_s"] - cpu) < 1e-12
         assert abs(got["idle_core_s"] - idle) < 1e-12
+    # the batch stages given by the flow's calls that hand them to the workers (bench.fleet.batch_span):
+    # worker CPU before them (an archive check beside staging) stays in the phase before them
+    from bench.fleet import batch_span
+    from bench.harness import WorkClock
+
+    clock = WorkClock()
+    clock.intervals += [(2.0, 3.0, "task.run_local"), (1.5, 1.8, "batches.stage_inputs"), (3.0, 4.0, "task.run_local")]
+    assert batch_span(clock) == (2.0, 4.0) and batch_span(WorkClock()) is None
+    early = [(0, 0, 0, 0), (1, 0.2, 0.8, 0), (2, 1.2, 0.8, 0.7)] + samples[3:]  # a worker computed before t = 2
+    given = idle_phases(early, 0, 1, 5, 2, batch_span(clock))
+    assert abs(given["before_batches"]["cpu_s"] - 1.7) < 1e-12 and abs(given["batches"]["wall_s"] - 2.0) < 1e-12
+    assert idle_phases(early, 0, 1, 5, 2)["batches"]["wall_s"] == 3.0  # the worker-CPU rule starts them at t = 1
     # no worker CPU (a small run computes in place): the whole flow is one phase
     alone = idle_phases([(0, 0, 0, 0), (1, 0.5, 0.5, 0), (3, 2.5, 0.6, 0)], 0, 1, 3, 2)
     assert list(alone) == ["server_start", "before_batches"]
