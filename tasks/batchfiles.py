@@ -49,13 +49,69 @@ class ModelInput:
 
 def write_batch(path: pathlib.Path, inputs: list[dict], arrays: dict[str, np.ndarray]) -> None:
     """Write one batch: ``arrays`` to ``path``'s ``.npz`` and ``inputs`` (one JSON-ready dict per
-    model) to its ``.json``."""
-    np.savez(path.with_suffix(".npz"), **arrays)
+    model) to its ``.json``.
+
+    The arrays are packed one flat buffer per dtype with an index of their names, places and
+    shapes (:func:`_pack`): as one ``.npz`` member each, a batch of 125 models took 20 ms to write
+    and 30-40 ms to read back, about a third of a millisecond per model (measured).
+    """
+    np.savez(path.with_suffix(".npz"), **_pack(arrays))
     # keys keep their order (no canonical sorting): the order of a NonlinearAR spec's ``start``
     # is the order of theta handed to the user's mean function; no indent, so that json writes with
     # its C encoder (a work file; the 1,000 models of the bench fleet 54 to 16 ms)
     text = json.dumps(json_ready(inputs), ensure_ascii=False, allow_nan=False)
     path.with_suffix(".json").write_bytes(text.encode("utf-8"))
+
+
+def _pack(arrays: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """``arrays`` as one flat buffer per dtype (``buffer-K``) and their index: ``names``, the
+    ``buffer`` each is in, and their ``start`` and ``shape`` (padded with -1 to the largest number
+    of dimensions).  :func:`_unpack` gives the same arrays back.
+
+    >>> packed = _pack({"0/y": np.arange(3.0), "0/t": np.array(["2026-01-01"], "datetime64[D]")})
+    >>> sorted(packed), [a.dtype.str for k, a in sorted(packed.items()) if k.startswith("buffer-")]
+    (['buffer', 'buffer-0', 'buffer-1', 'names', 'shape', 'start'], ['<f8', '<M8[D]'])
+    >>> {k: v.tolist() for k, v in _unpack(packed).items()}
+    {'0/y': [0.0, 1.0, 2.0], '0/t': [datetime.date(2026, 1, 1)]}
+    """
+    names = list(arrays)
+    kinds: dict[str, int] = {}
+    parts: list[list[np.ndarray]] = []
+    which, start, ndim = [], [], max((np.ndim(a) for a in arrays.values()), default=1)
+    shape = np.full((len(names), max(ndim, 1)), -1, dtype=np.int64)
+    ends: list[int] = []
+    for row, name in enumerate(names):
+        a = np.asarray(arrays[name])
+        k = kinds.setdefault(a.dtype.str, len(kinds))
+        if k == len(parts):
+            parts.append([])
+            ends.append(0)
+        parts[k].append(a.ravel())
+        which.append(k)
+        start.append(ends[k])
+        ends[k] += a.size
+        shape[row, : a.ndim] = a.shape
+    out = {f"buffer-{k}": np.concatenate(p) if p else np.empty(0) for k, p in enumerate(parts)}
+    out.update(
+        names=np.array(names, dtype=str),
+        buffer=np.array(which, dtype=np.int64),
+        start=np.array(start, dtype=np.int64),
+        shape=shape,
+    )
+    return out
+
+
+def _unpack(data) -> dict[str, np.ndarray]:
+    """The arrays of :func:`_pack` (``data``: its dict, or the loaded ``.npz``), each a view of its buffer."""
+    buffers = {name: data[name] for name in data if name.startswith("buffer-")}
+    out = {}
+    for name, k, first, dims in zip(
+        data["names"].tolist(), data["buffer"].tolist(), data["start"].tolist(), data["shape"].tolist()
+    ):
+        dims = tuple(d for d in dims if d >= 0)
+        size = int(np.prod(dims, dtype=np.int64))
+        out[name] = buffers[f"buffer-{k}"][first : first + size].reshape(dims)
+    return out
 
 
 def _indexed_metadata(path: pathlib.Path, model_ids: Collection[str] | None) -> list[tuple[int, dict]]:
@@ -83,7 +139,8 @@ def read_batch(path: str | pathlib.Path, model_ids: Collection[str] | None = Non
     models of each batch)."""
     path = pathlib.Path(path)
     meta = _indexed_metadata(path, model_ids)
-    with np.load(path.with_suffix(".npz"), allow_pickle=False) as data:
+    with np.load(path.with_suffix(".npz"), allow_pickle=False) as loaded:
+        data = _unpack(loaded)
         out = []
         for i, m in meta:
             exog = {name: data[f"{i}/x/{j}"] for j, name in enumerate(m["exog_names"])}

@@ -280,3 +280,28 @@ def test_reading_some_models_of_a_batch_gives_their_full_items_in_batch_order(tm
         np.testing.assert_array_equal(item.time, ref.time)
     assert [m["entry"].id for m in batchfiles.batch_metadata(batch.path, {"m-c"})] == ["m-c"]
     assert batchfiles.read_batch(batch.path, []) == []
+
+
+def test_batch_arrays_are_packed_per_dtype_and_come_back_equal(tmp_path):
+    from fitaudit.tasks.batchfiles import _pack, _unpack
+
+    rng = np.random.default_rng(3)
+    arrays = {
+        "0/y": rng.normal(size=730),
+        "0/t": np.arange("2024-12-01", "2026-12-01", dtype="datetime64[D]").astype("datetime64[ns]")[:730],
+        "0/x/0": rng.normal(size=730),
+        "1/y": np.array([np.nan, np.inf, -0.0]),  # values kept bit for bit
+        "1/t": np.array([], dtype="datetime64[ns]"),
+        "1/f/0": rng.normal(size=(4, 3)),  # a 2-D array keeps its shape
+        "2/y": np.array(5.0),  # and a 0-D one
+    }
+    path = tmp_path / "batch.npz"
+    np.savez(path, **_pack(arrays))
+    with np.load(path, allow_pickle=False) as loaded:
+        assert len(loaded.files) == 4 + 2  # the index and one buffer per dtype (float64, datetime64[ns])
+        back = _unpack(loaded)
+    assert list(back) == list(arrays)
+    for name, a in arrays.items():
+        # source: the arrays written (np.savez of each on its own was the previous format)
+        assert back[name].dtype == a.dtype and back[name].shape == a.shape, name
+        assert back[name].tobytes() == a.tobytes(), name
