@@ -332,7 +332,8 @@ class CalibrationCache:
     batches or processes hold identical tables and can be merged.  With a ``store`` (see
     :class:`TableStore`), a table missing here is first looked up there, and one built here is
     saved there, so later runs reuse it; ``reused`` holds the keys of the tables taken from the
-    store (also those of a merged cache).
+    store (also those of a merged cache).  ``draws(key, make)`` keeps the random draws every model
+    uses alike (change location's permutations) for this process only.
     """
 
     tables: dict = field(default_factory=dict)

@@ -189,6 +189,7 @@ def audit_flow(
     run_id = new_run_id(as_of)
     # the run's scratch folder, locked while it runs; recover() removes it if the process dies.  Opened
     # before the archive check starts: its exclusive archive lock would otherwise wait for the check's
+    # shared one
     scratch = open_work_folder(archive, run_id)
     work = scratch.path
     with contextlib.ExitStack() as ending:
