@@ -74,26 +74,21 @@ def _pack(arrays: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     >>> {k: v.tolist() for k, v in _unpack(packed).items()}
     {'0/y': [0.0, 1.0, 2.0], '0/t': [datetime.date(2026, 1, 1)]}
     """
-    names = list(arrays)
-    kinds: dict[str, int] = {}
-    parts: list[list[np.ndarray]] = []
-    which, start, ndim = [], [], max((np.ndim(a) for a in arrays.values()), default=1)
-    shape = np.full((len(names), max(ndim, 1)), -1, dtype=np.int64)
-    ends: list[int] = []
-    for row, name in enumerate(names):
-        a = np.asarray(arrays[name])
-        k = kinds.setdefault(a.dtype.str, len(kinds))
-        if k == len(parts):
-            parts.append([])
-            ends.append(0)
-        parts[k].append(a.ravel())
-        which.append(k)
-        start.append(ends[k])
-        ends[k] += a.size
+    values = [np.asarray(a) for a in arrays.values()]
+    kinds = list(dict.fromkeys(a.dtype.str for a in values))  # one buffer per dtype, in order of first use
+    which = [kinds.index(a.dtype.str) for a in values]
+    start, filled = [], [0] * len(kinds)
+    for a, k in zip(values, which):
+        start.append(filled[k])
+        filled[k] += a.size
+    shape = np.full((len(values), max([a.ndim for a in values] + [1])), -1, dtype=np.int64)
+    for row, a in enumerate(values):
         shape[row, : a.ndim] = a.shape
-    out = {f"buffer-{k}": np.concatenate(p) if p else np.empty(0) for k, p in enumerate(parts)}
+    out = {
+        f"buffer-{k}": np.concatenate([a.ravel() for a, w in zip(values, which) if w == k]) for k in range(len(kinds))
+    }
     out.update(
-        names=np.array(names, dtype=str),
+        names=np.array(list(arrays), dtype=str),
         buffer=np.array(which, dtype=np.int64),
         start=np.array(start, dtype=np.int64),
         shape=shape,
