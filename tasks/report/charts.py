@@ -6,7 +6,7 @@ The builders here (divergence heat map, residual histogram, Q-Q plot, autocorrel
 of the standardised maximum) return such views with their data tables; the run view builds its
 small charts with :func:`new_chart` and :class:`Scale`.  :func:`svg_element` writes a view as an
 inline ``<svg>`` element (the ``svg`` filter of :mod:`fitaudit.tasks.report.render`).  No Jinja2
-here: text values are escaped with markupsafe as autoescape would.
+here: text values are escaped as autoescape would (:func:`~fitaudit.tasks.report.text.escaped`).
 """
 
 from __future__ import annotations
@@ -22,7 +22,7 @@ import markupsafe
 from fitaudit.core.divergence import CLASSICAL_MEMBER_LABELS
 
 from .labels import MEMBER_POINTS
-from .text import coord, format_number, to_float
+from .text import coord, escaped, format_number, to_float
 
 #: Upper edges of the heat-map classes of T / critical value (class ``h1`` .. ``h8``); 1 is the gate.
 HEAT_BINS: tuple[float, ...] = (0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 4.0)
@@ -35,7 +35,7 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
     and a macro call per attribute made charts most of a page's rendering time.  Every text value
     is escaped as autoescape would; coordinates pass through :func:`coord`.
     """
-    esc, px, word = markupsafe.escape, coord, _escaped_word
+    esc, px, word = escaped, coord, _escaped_word
     cell_px = _CoordText().__getitem__  # rectangles: a heat map's cells repeat a few dozen coordinates
     cid = esc(c["id"])
 
@@ -94,7 +94,7 @@ class _CoordText(dict):
 @functools.lru_cache(maxsize=64)
 def _escaped_word(word: str) -> str:
     """A class name or anchor, escaped once: a chart repeats a few of them hundreds of times."""
-    return str(markupsafe.escape(word))
+    return escaped(word)
 
 
 class Scale:

@@ -13,6 +13,8 @@ import re
 from collections.abc import Mapping
 from typing import Any
 
+import markupsafe
+
 #: How many characters of an id, owner or table key are shown before the rest is cut.
 SHORT_TEXT = 160
 #: Characters :func:`user_text` shows as ``[U+XXXX]``: the control characters (Unicode category Cc:
@@ -20,6 +22,23 @@ SHORT_TEXT = 160
 #: right-to-left marks, the line and paragraph separators, and the bidirectional embeddings, overrides
 #: and isolates (U+202A-U+202E, U+2066-U+2069).
 _VISIBLE = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f\u061c\u200e\u200f\u2028\u2029\u202a-\u202e\u2066-\u2069]")
+
+
+#: The characters autoescape replaces (markupsafe: ``& < > " '``).
+_NEEDS_ESCAPE = re.compile(r"[&<>\"']").search
+
+
+def escaped(value: Any) -> str:
+    """``value`` as autoescape writes it: ``str(markupsafe.escape(value))``, with a shortcut for
+    plain text that holds none of ``& < > " '`` (a search is a quarter of escape's cost; the
+    report's one escape outside the templates: the ``svg`` and table-cell filters).
+
+    >>> escaped("0.123"), escaped("< 0.001"), escaped(7), escaped(markupsafe.Markup("<b>x</b>"))
+    ('0.123', '&lt; 0.001', '7', '<b>x</b>')
+    """
+    if type(value) is str and _NEEDS_ESCAPE(value) is None:
+        return value
+    return str(markupsafe.escape(value))
 
 
 def to_float(x: Any) -> float | None:
