@@ -90,6 +90,7 @@ def test_idle_phases_split_the_run_where_the_worker_processes_start_and_stop():
     assert batch_span(clock) == (2.0, 4.0) and batch_span(WorkClock()) is None
     early = [(0, 0, 0, 0), (1, 0.2, 0.8, 0), (2, 1.2, 0.8, 0.7)] + samples[3:]  # a worker computed before t = 2
     given = idle_phases(early, 0, 1, 5, 2, batch_span(clock))
+    # by hand from the samples: CPU 2.7 at t = 2 less 1.0 at t = 1; batch stages from t = 2 to t = 4
     assert abs(given["before_batches"]["cpu_s"] - 1.7) < 1e-12 and abs(given["batches"]["wall_s"] - 2.0) < 1e-12
     assert idle_phases(early, 0, 1, 5, 2)["batches"]["wall_s"] == 3.0  # the worker-CPU rule starts them at t = 1
     # no worker CPU (a small run computes in place): the whole flow is one phase

@@ -71,10 +71,16 @@ def test_the_audit_flow_runs_with_its_imports_frozen_and_thaws_them(demo, prefec
     assert gc.get_freeze_count() == 0
 
 
-def test_a_damaged_archive_is_refused_by_the_check_in_a_spare_worker(demo, prefect_server, tmp_path):
+def test_a_damaged_archive_is_refused_by_the_check_in_a_spare_worker(demo, prefect_server, tmp_path, monkeypatch):
+    import fitaudit.tasks.archive_tasks as archive_tasks
     from fitaudit.flows.audit import audit_flow
     from fitaudit.tasks import workers
     from fitaudit.tasks.archive import ArchiveError
+
+    def in_place(archive):  # the flow process's own check: it must not run when a worker is spare
+        raise AssertionError("the archive was checked in the flow process, not in the spare worker")
+
+    monkeypatch.setattr(archive_tasks, "require_intact", in_place)
 
     archive = pathlib.Path(_fresh_archive(demo, tmp_path))
     version = sorted((archive / "params").glob("*/*.json"))[0]
