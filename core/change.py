@@ -117,6 +117,11 @@ def _sort_keys(idx: np.ndarray, s: int) -> np.ndarray:
     return idx.astype(np.int16, copy=False) if s <= np.iinfo(np.int16).max else idx
 
 
+#: Elements (rows x errors) per block of :func:`permutation_maxima`: its arrays then stay in the
+#: processor's cache (measured on 499 rows of 730 errors: 11.9 ms in one block, 7.3 ms in blocks).
+_BLOCK_ELEMENTS = 1 << 17
+
+
 def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     """``max_k T_k`` of each row of cell indices, in O(n) per row (no one-hot counts).
 
@@ -150,24 +155,34 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     B, n = idx.shape
     totals = np.bincount(idx[0], minlength=s)
     f = special.xlogy(np.arange(n + 1.0), np.arange(n + 1.0))
-    order = np.argsort(_sort_keys(idx, s), axis=1, kind="stable")
     cells = np.repeat(np.arange(s), totals)
     occ = np.arange(n) - (np.cumsum(totals) - totals)[cells]
     rest = totals[cells] - occ
     sorted_step = f[occ + 1] - f[occ] + f[rest - 1] - f[rest]
-    step = np.empty((B, n))
-    np.put_along_axis(step, order, np.broadcast_to(sorted_step, (B, n)), axis=1)
     s0 = float(f[totals].sum())
     k = np.arange(trim, n - trim + 1)
-    # T_k / 2 in place, in the order of 2 (s0 + S_k - f(k) - f(n - k) - s0 + f(n)); doubling is exact,
-    # so it is applied to the maxima
-    half_t = np.cumsum(step, axis=1)[:, trim - 1 : n - trim]  # columns k - 1
-    half_t += s0
-    half_t -= f[k]
-    half_t -= f[n - k]
-    half_t -= s0
-    half_t += f[n]
-    return 2.0 * half_t.max(axis=1)
+    f_k, f_rest = f[k], f[n - k]
+    maxima = np.empty(B)
+    # rows in blocks that stay in the processor's cache (499 rows of 730 take 3 MB per array);
+    # each row's value is computed from that row alone, so the blocks give the same values
+    rows = max(1, _BLOCK_ELEMENTS // n)
+    step = np.empty((min(rows, B), n))
+    for lo in range(0, B, rows):
+        keys = _sort_keys(idx[lo : lo + rows], s)
+        block = step[: len(keys)]
+        order = np.argsort(keys, axis=1, kind="stable")
+        np.put_along_axis(block, order, np.broadcast_to(sorted_step, block.shape), axis=1)
+        # T_k / 2 in place, in the order of 2 (s0 + S_k - f(k) - f(n - k) - s0 + f(n)); doubling is
+        # exact, so it is applied to the maxima
+        np.cumsum(block, axis=1, out=block)
+        half_t = block[:, trim - 1 : n - trim]  # columns k - 1
+        half_t += s0
+        half_t -= f_k
+        half_t -= f_rest
+        half_t -= s0
+        half_t += f[n]
+        maxima[lo : lo + len(keys)] = half_t.max(axis=1)
+    return 2.0 * maxima
 
 
 def change_permutations(seed: int, n: int, s: int, permutations: int) -> np.ndarray:

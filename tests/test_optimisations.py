@@ -143,6 +143,21 @@ def test_permutation_maxima_equal_the_one_hot_statistics(rng):
         )
 
 
+def test_permutation_maxima_in_blocks_equal_each_row_alone(rng, monkeypatch):
+    # the rows are worked in cache-sized blocks; a row's value must not depend on its block
+    import fitaudit.core.change as change
+
+    n, s, trim = 300, 20, 30
+    idx = rng.integers(0, s, size=n)
+    rows = idx[np.argsort(rng.random((23, n)), axis=1)]
+    monkeypatch.setattr(change, "_BLOCK_ELEMENTS", 5 * n)  # blocks of 5 rows, the last of 3
+    blocked = permutation_maxima(rows, s, trim)
+    alone = np.array([permutation_maxima(row[None, :], s, trim)[0] for row in rows])
+    assert np.array_equal(blocked, alone)
+    # source: split_statistics (one-hot counts) is the reference, as above
+    np.testing.assert_allclose(blocked, split_statistics(rows, s, trim).max(axis=1), rtol=1e-11)
+
+
 @pytest.mark.parametrize("seed", range(6))
 def test_locate_change_matches_the_original_loop(seed):
     rng = np.random.default_rng(100 + seed)
