@@ -100,18 +100,20 @@ def _phi_log_argument(u: np.ndarray, a: np.ndarray) -> np.ndarray:
     """phi_alpha(exp(u)) by the stable recipe of docs/method.md §2.5 (may overflow to inf)."""
     scale = np.maximum(1.0, np.maximum(np.abs(a), np.abs(1.0 - a)))
     small = np.abs(u) * scale < _SERIES_RADIUS
-    # series: sum_{k>=2} h_{k-2}(a) u^k / k!, h_j(a) = 1 + a + ... + a^j
-    us = np.where(small, u, 0.0)
-    h = np.ones_like(a * us)
-    upow = us * us
-    fact = 2.0
-    series = np.zeros_like(h)
-    for k in range(2, 10):
-        series = series + h * upow / fact
-        h = h * a + 1.0
-        upow = upow * us
-        fact *= k + 1
-    ul = np.where(small, 1.0, u)
+    any_small = bool(small.any())  # rare in counts of a few dozen per cell: then no series at all
+    if any_small:
+        # series: sum_{k>=2} h_{k-2}(a) u^k / k!, h_j(a) = 1 + a + ... + a^j
+        us = np.where(small, u, 0.0)
+        h = np.ones_like(a * us)
+        upow = us * us
+        fact = 2.0
+        series = np.zeros_like(h)
+        for k in range(2, 10):
+            series = series + h * upow / fact
+            h = h * a + 1.0
+            upow = upow * us
+            fact *= k + 1
+    ul = np.where(small, 1.0, u) if any_small else u
     lo = a <= 0.5
     # alpha <= 1/2: [u exprel(alpha u) - expm1(u)] / (alpha - 1), smooth through alpha = 0
     # alpha >  1/2: duality phi_alpha(x) = x phi_{1 - alpha}(1/x), smooth through alpha = 1
@@ -119,7 +121,8 @@ def _phi_log_argument(u: np.ndarray, a: np.ndarray) -> np.ndarray:
     a_hi = np.where(lo, 1.0, a)
     v_lo = (ul * special.exprel(a_lo * ul) - np.expm1(ul)) / (a_lo - 1.0)
     v_hi = np.exp(ul) * ((-ul) * special.exprel((a_hi - 1.0) * ul) - np.expm1(-ul)) / (-a_hi)
-    return np.where(small, series, np.where(lo, v_lo, v_hi))
+    far = np.where(lo, v_lo, v_hi)
+    return np.where(small, series, far) if any_small else far
 
 
 def _log_phi_far(u: np.ndarray, a: np.ndarray) -> np.ndarray:

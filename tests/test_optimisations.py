@@ -158,6 +158,27 @@ def test_permutation_maxima_in_blocks_equal_each_row_alone(rng, monkeypatch):
     np.testing.assert_allclose(blocked, split_statistics(rows, s, trim).max(axis=1), rtol=1e-11)
 
 
+def test_power_generator_without_near_one_cells_skips_only_the_series(rng):
+    # counts of a few dozen per cell rarely give |log(p/q)| below the series radius, and then the
+    # series is not computed at all; the other cells' values must be those of the full recipe
+    from fitaudit.core.divergence import _SERIES_RADIUS, _phi_log_argument
+
+    alphas = np.r_[np.arange(-1.0, 3.01, 0.25), 2.0 / 3.0, 5.0 / 3.0][None, :, None]
+    for _ in range(50):
+        u = rng.normal(0.0, rng.choice([0.05, 1.0, 40.0]), size=(1, 1, 30))
+        u = np.where(np.abs(u) < 4 * _SERIES_RADIUS, 0.5, u)  # no cell near one for any alpha
+        with np.errstate(all="ignore"):
+            fast = _phi_log_argument(u, alphas)
+            full = _phi_log_argument(np.concatenate([u, [[[1e-6]]]], axis=2), alphas)  # forces the series path
+        assert np.array_equal(fast, full[..., :-1], equal_nan=True)
+        # source: the defining formula (t^a - 1 - a (t - 1)) / (a (a - 1)) away from a = 0, 1 and t = 1
+        t_, a_ = np.exp(u[0, 0]), alphas[0, 6, 0]  # alpha = 0.5
+        with np.errstate(all="ignore"):
+            naive = (t_**a_ - 1 - a_ * (t_ - 1)) / (a_ * (a_ - 1))
+        ok = np.isfinite(naive) & (np.abs(u[0, 0]) < 30)
+        np.testing.assert_allclose(fast[0, 6][ok], naive[ok], rtol=1e-9)
+
+
 @pytest.mark.parametrize("seed", range(6))
 def test_locate_change_matches_the_original_loop(seed):
     rng = np.random.default_rng(100 + seed)
