@@ -247,14 +247,22 @@ def audit_flow(
             if search_candidates:
                 t0 = time.perf_counter()
                 todo = {o.model_id for o in final if wants_candidates(o)}
-                jobs = candidate_jobs(staged.batches, todo, groups=2 * _workers())
+                jobs = candidate_jobs(staged.batches, todo)
                 if jobs:
                     shared = candidate_tables(jobs, reg.policy)  # built once each, in parallel, before the searches
                     if shared:
                         for tables in tables_task.map(shared, unmapped(cache), unmapped(workers)).result():
                             cache.merge(tables)
                     timings["candidate_tables_s"] = time.perf_counter() - t0
-                    found = candidates_task.map(jobs, unmapped(reg.policy), unmapped(cache), unmapped(workers))
+                    # one lane per worker; the lanes share the models out as they go (candidates_claimed)
+                    found = candidates_task.map(
+                        range(min(_workers(), len(todo))),
+                        unmapped(jobs),
+                        unmapped(reg.policy),
+                        unmapped(cache),
+                        unmapped(str(work / "candidate-claims")),
+                        unmapped(workers),
+                    )
                     final = with_candidates(final, {k: v for part in found.result() for k, v in part.items()})
                 timings["candidates_s"] = time.perf_counter() - t0
             head = results_head(

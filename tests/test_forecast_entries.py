@@ -655,7 +655,7 @@ def test_candidate_search_skips_forecast_entries(run):
 
     batch = next(b for b in run["staged"].batches if "fq-good" in b.model_ids)
     assert candidates_for(batch.path, ["fq-good"], run["registry"].policy, run["cache"]) == {}
-    assert candidate_tables([[[batch.path, ["fq-good"]]]], run["registry"].policy) == []
+    assert candidate_tables([[batch.path, ["fq-good"]]], run["registry"].policy) == []
 
 
 def test_the_model_page_says_the_model_was_not_refitted(run):

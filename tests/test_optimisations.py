@@ -270,6 +270,32 @@ def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo, reg
     assert records(restored, DEMO_AS_OF.isoformat()) == records(full, DEMO_AS_OF.isoformat())
 
 
+def test_candidate_lanes_search_every_model_once_and_find_what_one_search_finds(demo, registry, tmp_path):
+    from concurrent.futures import ThreadPoolExecutor
+
+    from fitaudit.core.calibration import CalibrationCache
+    from fitaudit.demo import DEMO_AS_OF
+    from fitaudit.tasks.audit import candidate_jobs, candidates_claimed, candidates_for
+    from fitaudit.tasks.batches import stage_inputs
+
+    wanted = ["demand-d-02", "demand-d-07", "demand-d-13", "energy-pump-01", "notebook-leak-01"]
+    staged = stage_inputs(registry, DEMO_AS_OF, tmp_path, archive_root=demo["archive"], model_ids=wanted, batch_size=2)
+    jobs = candidate_jobs(staged.batches, wanted[1:])
+    assert [m for _, ids in jobs for m in ids] == [m for b in staged.batches for m in b.model_ids if m != wanted[0]]
+    cache = CalibrationCache()
+    # source: one search per batch in this process (the plain pipeline's candidates_for) is the reference
+    reference = {}
+    for path, ids in jobs:
+        reference.update(candidates_for(path, ids, registry.policy, cache))
+    claims = tmp_path / "claims"
+    with ThreadPoolExecutor(3) as pool:
+        lanes = list(pool.map(lambda _: candidates_claimed(jobs, registry.policy, cache, str(claims)), range(3)))
+    searched = [m for lane in lanes for m in lane]
+    assert sorted(searched) == sorted(reference)  # every model once, in exactly one lane
+    assert {m: v for lane in lanes for m, v in lane.items()} == reference
+    assert candidates_claimed(jobs, registry.policy, cache, str(claims)) == {}  # all claimed already
+
+
 @pytest.mark.slow
 def test_local_workers_run_elsewhere_and_fall_back_in_place():
     from fitaudit.tasks.workers import local_workers, run_local

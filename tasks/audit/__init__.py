@@ -3,7 +3,7 @@ null tables.
 
 Two modules:
 
-* :mod:`.work`: the plain functions (``audit_batch_spilled``, ``candidates_for_jobs``,
+* :mod:`.work`: the plain functions (``audit_batch_spilled``, ``candidates_claimed``,
   ``calibration_for``, ``finalize``, ...).  A local worker process (:mod:`fitaudit.tasks.workers`)
   imports only this module and what it needs (numpy, scipy, the registry's entry types, the batch
   files): neither Prefect nor pyarrow nor pandas.
@@ -28,8 +28,8 @@ from .work import (
     calibration_for,
     candidate_jobs,
     candidate_tables,
+    candidates_claimed,
     candidates_for,
-    candidates_for_jobs,
     finalize,
     forecast_timing_problems,
     wants_candidates,
@@ -57,7 +57,7 @@ __all__ = [
     "candidates_for",
     "candidate_jobs",
     "candidate_tables",
-    "candidates_for_jobs",
+    "candidates_claimed",
     "with_candidates",
     "calibration_for",
     *_TASKS,

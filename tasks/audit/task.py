@@ -19,7 +19,7 @@ from ..memory import release_freed_memory
 from ..outcomes import Outcome
 from ..registry import Policy, Registry
 from ..workers import run_local
-from .work import audit_batch_spilled, calibration_for, candidates_for_jobs, finalize
+from .work import audit_batch_spilled, calibration_for, candidates_claimed, finalize
 
 __all__ = ["finalize_task", "calibration_task", "audit_batch_task", "tables_task", "candidates_task"]
 
@@ -83,8 +83,16 @@ def tables_task(entries: list, cache: CalibrationCache, workers: str | None = No
 
 @task(name="search-candidates", cache_policy=NO_CACHE, persist_result=False)
 def candidates_task(
-    jobs: list, policy: Policy, cache: CalibrationCache | None = None, workers: str | None = None
+    lane: int,
+    jobs: list,
+    policy: Policy,
+    cache: CalibrationCache | None,
+    claims: str,
+    workers: str | None = None,
 ) -> dict[str, list[dict]]:
-    """Prefect task: candidate specifications for one group of ``respecify`` models
-    (:func:`candidate_jobs`), in the local worker processes named by ``workers`` when given."""
-    return run_local(workers, candidates_for_jobs, jobs, policy, cache)
+    """Prefect task: lane ``lane`` of the candidate searches of ``jobs`` (:func:`candidates_claimed`:
+    each lane takes the next model no other lane has claimed in the folder ``claims``), in the local
+    worker processes named by ``workers`` when given."""
+    found = run_local(workers, candidates_claimed, jobs, policy, cache, claims)
+    get_run_logger().info("candidate lane %d: %d models searched", lane, len(found))
+    return found

@@ -16,6 +16,8 @@ others go on.
 from __future__ import annotations
 
 import dataclasses
+import os
+import pathlib
 import time
 import traceback
 from collections.abc import Iterable, Mapping, Sequence
@@ -45,7 +47,7 @@ __all__ = [
     "with_candidates",
     "calibration_for",
     "candidates_for",
-    "candidates_for_jobs",
+    "candidates_claimed",
     "candidate_jobs",
     "candidate_tables",
 ]
@@ -302,43 +304,82 @@ def candidates_for(
     path: str, model_ids: Sequence[str], policy: Policy, cache: CalibrationCache | None = None
 ) -> dict[str, list[dict]]:
     """Candidate search (:func:`fitaudit.core.candidates.search_candidates`) for models of a batch."""
-    from fitaudit.core.candidates import search_candidates
-
     cache = cache if cache is not None else CalibrationCache()
     out: dict[str, list[dict]] = {}
     for item in read_batch(path, model_ids):
-        if isinstance(item.entry, ForecastEntry):
-            continue  # forecasts made elsewhere: fitaudit has no specification to vary
-        entry = item.entry
-        try:
-            found = search_candidates(
-                item.y,
-                dict(entry.spec),
-                noise=entry.noise_law(),
-                exog=item.exog or None,
-                settings=entry.audit_settings(policy),
-                cache=cache,
-            )
-            out[item.model_id] = [c.to_dict() for c in found]
-        except Exception as exc:  # the search is advice; its failure must not lose the verdict
-            out[item.model_id] = [{"error": f"candidate search failed: {type(exc).__name__}: {exc}"}]
+        out.update(_search_item(item, policy, cache))
     return out
 
 
-def candidate_jobs(batches: Sequence[Any], model_ids: Iterable[str], groups: int) -> list[list[list]]:
-    """The candidate searches of ``model_ids`` split into at most ``groups`` tasks of equal size.
+def _search_item(item: ModelInput, policy: Policy, cache: CalibrationCache) -> dict[str, list[dict]]:
+    """The candidate search of one staged model, as ``{model id: candidates}`` (empty for a forecast entry)."""
+    from fitaudit.core.candidates import search_candidates
 
-    Round robin in batch order; each group lists ``[batch path, [model ids]]`` pairs (lists, not
-    tuples: prefect-dask hands tuples inside task inputs on in another shape).  The searches'
-    shared null tables are built beforehand (:func:`candidate_tables`); what remains per model is
-    its fits and the table of a law whose shape it estimates.
+    if isinstance(item.entry, ForecastEntry):
+        return {}  # forecasts made elsewhere: fitaudit has no specification to vary
+    entry = item.entry
+    try:
+        found = search_candidates(
+            item.y,
+            dict(entry.spec),
+            noise=entry.noise_law(),
+            exog=item.exog or None,
+            settings=entry.audit_settings(policy),
+            cache=cache,
+        )
+        return {item.model_id: [c.to_dict() for c in found]}
+    except Exception as exc:  # the search is advice; its failure must not lose the verdict
+        return {item.model_id: [{"error": f"candidate search failed: {type(exc).__name__}: {exc}"}]}
+
+
+def _claim(folder: pathlib.Path, name: str) -> bool:
+    """Whether this call is the first to claim ``name`` in ``folder`` (creating a file is atomic
+    across processes and threads: exactly one ``O_EXCL`` creation succeeds)."""
+    try:
+        os.close(os.open(folder / name, os.O_CREAT | os.O_EXCL | os.O_WRONLY))
+    except FileExistsError:
+        return False
+    return True
+
+
+def candidates_claimed(
+    jobs: Sequence[Sequence], policy: Policy, cache: CalibrationCache | None, claims: str
+) -> dict[str, list[dict]]:
+    """The candidate searches of ``jobs`` (``[batch path, [model ids]]`` pairs) that this call
+    claims first in the folder ``claims``.
+
+    Several calls (lanes) run over the same jobs at once, one per worker; each takes the next
+    model no other lane has claimed, so the lanes end within one model of each other, whatever
+    the searches cost (a search that simulates a student-t table costs five times one that does
+    not).  Every model is searched exactly once and its candidates do not depend on its lane.  A
+    lane reads each batch's models once and keeps one cache for all its searches.
+    """
+    cache = cache if cache is not None else CalibrationCache()
+    folder = pathlib.Path(claims)
+    folder.mkdir(parents=True, exist_ok=True)
+    found: dict[str, list[dict]] = {}
+    read: dict[str, dict[str, ModelInput]] = {}
+    for number, (path, model_id) in enumerate((path, m) for path, ids in jobs for m in ids):
+        if not _claim(folder, str(number)):
+            continue
+        if path not in read:
+            wanted = [m for p, ids in jobs if p == path for m in ids]
+            read[path] = {item.model_id: item for item in read_batch(path, wanted)}
+        found.update(_search_item(read[path][model_id], policy, cache))
+    return found
+
+
+def candidate_jobs(batches: Sequence[Any], model_ids: Iterable[str]) -> list[list]:
+    """The candidate searches of ``model_ids`` as ``[batch path, [model ids]]`` pairs in batch order
+    (lists, not tuples: prefect-dask hands tuples inside task inputs on in another shape).
+
+    The searches' shared null tables are built beforehand (:func:`candidate_tables`); what remains
+    per model is its fits and the table of a law whose shape it estimates.  The lanes of
+    :func:`candidates_claimed` share the models out as they go.
     """
     wanted = set(model_ids)
-    todo = [(batch.path, m) for batch in batches for m in batch.model_ids if m in wanted]
-    buckets: list[dict[str, list[str]]] = [{} for _ in range(min(max(groups, 1), len(todo)))]
-    for i, (path, model_id) in enumerate(todo):
-        buckets[i % len(buckets)].setdefault(path, []).append(model_id)
-    return [[[path, ids] for path, ids in bucket.items()] for bucket in buckets]
+    jobs = [[batch.path, [m for m in batch.model_ids if m in wanted]] for batch in batches]
+    return [job for job in jobs if job[1]]
 
 
 def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list]]:
@@ -352,35 +393,23 @@ def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list
     from fitaudit.core.candidates import CONTINUOUS_LAWS, neighbour_specs
 
     tables: dict[tuple, list] = {}
-    for group in jobs:
-        for path, ids in group:
-            for meta in batch_metadata(path, ids):
-                entry = meta["entry"]
-                if isinstance(entry, ForecastEntry):
-                    continue
-                settings = entry.audit_settings(policy)
-                n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
-                noise = entry.noise_law()
-                trials = [(spec, noise) for spec in neighbour_specs(dict(entry.spec))]
-                trials += [
-                    (dict(entry.spec), {"law": law, "shape": None}) for law in CONTINUOUS_LAWS if law != noise["law"]
-                ]
-                for spec, law in trials:
-                    try:
-                        model = as_model(spec)
-                        key = (law["law"], law["shape"], n_obs - model.presample(), model.has_location(), settings)
-                    except (FitauditError, ValueError, TypeError):
-                        continue  # the search itself reports an unusable candidate
-                    tables.setdefault(key, [[spec, law, settings, n_obs, False]])
-    return list(tables.values())
-
-
-def candidates_for_jobs(
-    jobs: Sequence[Sequence], policy: Policy, cache: CalibrationCache | None = None
-) -> dict[str, list[dict]]:
-    """:func:`candidates_for` over several batches with one cache (see :func:`candidate_jobs`)."""
-    cache = cache if cache is not None else CalibrationCache()
-    found: dict[str, list[dict]] = {}
     for path, ids in jobs:
-        found.update(candidates_for(path, ids, policy, cache))
-    return found
+        for meta in batch_metadata(path, ids):
+            entry = meta["entry"]
+            if isinstance(entry, ForecastEntry):
+                continue
+            settings = entry.audit_settings(policy)
+            n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
+            noise = entry.noise_law()
+            trials = [(spec, noise) for spec in neighbour_specs(dict(entry.spec))]
+            trials += [
+                (dict(entry.spec), {"law": law, "shape": None}) for law in CONTINUOUS_LAWS if law != noise["law"]
+            ]
+            for spec, law in trials:
+                try:
+                    model = as_model(spec)
+                    key = (law["law"], law["shape"], n_obs - model.presample(), model.has_location(), settings)
+                except (FitauditError, ValueError, TypeError):
+                    continue  # the search itself reports an unusable candidate
+                tables.setdefault(key, [[spec, law, settings, n_obs, False]])
+    return list(tables.values())
