@@ -464,6 +464,9 @@ def test_files_are_never_overwritten(tmp_path):
         for relpath in ("models/m1.html", "models", "models/m1.html/x"):
             with pytest.raises(InputError, match="never overwritten"):
                 run.write_text(relpath, "second")
+        with pytest.raises(InputError, match="must be bytes"):
+            run.write_bytes("notes/n1.txt", "not bytes")
+        run.write_text("notes", "a write that failed reserves no folder")
         with pytest.raises(InputError, match="may not set"):
             run.finish({"files": {}})
         with pytest.raises(InputError, match="differs"):

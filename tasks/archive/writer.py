@@ -62,6 +62,7 @@ class RunWriter:
         self._staging = staging
         self._lock_fd: int | None = lock_fd
         self._files: dict[str, dict[str, Any]] = {}
+        self._folders: set[str] = set()  # the folders of the files claimed, so a file never takes a folder's name
 
     def __enter__(self) -> RunWriter:
         return self
@@ -95,7 +96,7 @@ class RunWriter:
             raise InputError(f"data for {key!r} must be bytes; use write_text or write_json for {type(data).__name__}")
         data = bytes(data)
         write_once(self._staging.joinpath(*parts), data, sync=False)  # synced together by finish()
-        self._files[key] = {"sha256": sha256_bytes(data), "size": len(data)}
+        self._record(key, sha256_bytes(data), len(data))
         _step("file-written")
 
     def write_file(self, relpath: str, source: str | os.PathLike) -> None:
@@ -104,14 +105,14 @@ class RunWriter:
         see :meth:`write_bytes`)."""
         parts = self._claim(relpath)
         data = link_once(source, self._staging.joinpath(*parts))  # synced together by finish()
-        self._files["/".join(parts)] = {"sha256": sha256_bytes(data), "size": len(data)}
+        self._record("/".join(parts), sha256_bytes(data), len(data))
         _step("file-written")
 
     def write_chunks(self, relpath: str, chunks) -> None:
         """Write one file from an iterable of bytes pieces, never holding it whole (see :meth:`write_bytes`)."""
         parts = self._claim(relpath)
         sha, size = write_once_chunks(self._staging.joinpath(*parts), (bytes(c) for c in chunks), sync=False)
-        self._files["/".join(parts)] = {"sha256": sha, "size": size}
+        self._record("/".join(parts), sha, size)
         _step("file-written")
 
     def _claim(self, relpath: str) -> tuple[str, ...]:
@@ -122,12 +123,18 @@ class RunWriter:
         if key == _MANIFEST:
             raise InputError(f"{_MANIFEST} is written by finish(); pass the manifest's fields there")
         clash = [p for p in ("/".join(parts[:k]) for k in range(1, len(parts) + 1)) if p in self._files]
-        if clash or any(name.startswith(key + "/") for name in self._files):
+        if clash or key in self._folders:
             raise InputError(
                 f"{key!r} in run {self.run_id} was already written (or clashes with a file or folder of that name); "
                 "files are never overwritten"
             )
         return parts
+
+    def _record(self, key: str, sha256: str, size: int) -> None:
+        """Enter a file just written in the manifest's list, and its folders in :attr:`_folders`."""
+        self._files[key] = {"sha256": sha256, "size": size}
+        parts = key.split("/")
+        self._folders.update("/".join(parts[:k]) for k in range(1, len(parts)))
 
     def write_text(self, relpath: str, text: str) -> None:
         """Write ``text`` encoded as UTF-8 (see :meth:`write_bytes`)."""
