@@ -66,12 +66,19 @@ REFERENCE_SVG_MACRO = (
     "{% endmacro %}"
 )
 
-#: The template loops of the data tables' number cells before the ``num_cells`` and ``map_cells``
-#: filters replaced them (templates/model.html.j2), as macros the filters' callers can take.
-REFERENCE_CELL_MACROS = (
-    '{% macro num_cells(texts) %}{% for t in texts %}<td class="n">{{ t }}</td>{% endfor %}{% endmacro %}'
-    "{% macro map_cells(cells) %}{% for text, fail in cells %}"
-    '<td class="n{% if fail %} fail{% endif %}">{{ text }}</td>{% endfor %}{% endmacro %}'
+#: The template loops of the data tables' rows before the ``num_rows`` and ``map_rows`` filters
+#: replaced them (templates/model.html.j2; before that the cells too were a loop each), as macros the
+#: filters' callers can take.
+REFERENCE_ROW_MACROS = (
+    '{% macro num_rows(rows, keys=none, head=none, head_class="n") %}{% for r in rows %}<tr>'
+    '{% if head is not none %}<th scope="row"{% if head_class %} class="{{ head_class }}"{% endif %}>{{ r[head] }}'
+    "</th>{% endif %}"
+    '{% if keys is none %}{% for t in r %}<td class="n">{{ t }}</td>{% endfor %}'
+    '{% else %}{% for k in keys %}<td class="n">{{ r[k] }}</td>{% endfor %}{% endif %}</tr>\n'
+    "{% endfor %}{% endmacro %}"
+    '{% macro map_rows(rows) %}{% for row in rows %}<tr><th scope="row" class="n">{{ row["alpha"] }}</th>'
+    '{% for text, fail in row["cells"] %}<td class="n{% if fail %} fail{% endif %}">{{ text }}</td>{% endfor %}'
+    "</tr>\n{% endfor %}{% endmacro %}"
 )
 
 #: Demo models covering four sources, every verdict, smoothing, threshold AR, a rejected entry and
@@ -429,9 +436,9 @@ def test_audit_flow_matches_the_plain_pipeline(demo, registry, prefect_server, t
 
     macro = environment().from_string(REFERENCE_SVG_MACRO).module.svg
     monkeypatch.setitem(environment().filters, "svg", macro)  # the reference renders charts with the old macro
-    cells = environment().from_string(REFERENCE_CELL_MACROS).module  # and the tables' cells with the old loops
-    monkeypatch.setitem(environment().filters, "num_cells", cells.num_cells)
-    monkeypatch.setitem(environment().filters, "map_cells", cells.map_cells)
+    rows = environment().from_string(REFERENCE_ROW_MACROS).module  # and the tables' rows with the old loops
+    monkeypatch.setitem(environment().filters, "num_rows", rows.num_rows)
+    monkeypatch.setitem(environment().filters, "map_rows", rows.map_rows)
     reference_json, reference_pages, reference_rows = _reference_run(demo, registry, archive, tmp_path / "work", meta)
 
     assert {m["verdict"] for m in json.loads(reference_json)["models"]} == set(VERDICTS)
@@ -502,19 +509,26 @@ def test_report_number_and_coordinate_texts_match_the_unoptimised_ones():
     assert [px(x) for x in shown] == [coord(x) for x in shown]  # source: coord itself; 0.0 and -0.0 print 0 and -0
 
 
-def test_cell_filters_write_what_the_template_loops_wrote():
+def test_row_filters_write_what_the_template_loops_wrote():
     import markupsafe
 
     from fitaudit.tasks.report.render import environment
-    from fitaudit.tasks.report.table_cells import map_cells, num_cells
+    from fitaudit.tasks.report.table_cells import map_rows, num_rows
 
-    loops = environment().from_string(REFERENCE_CELL_MACROS).module
+    loops = environment().from_string(REFERENCE_ROW_MACROS).module
     texts = ["0.125", "< 0.001", "n/a", "∞", "a&b\"<c>'", 7, None, markupsafe.Markup("<b>1</b>"), ""]
-    # source: the template loops the filters replaced (REFERENCE_CELL_MACROS), autoescape on
-    assert str(num_cells(texts)) == str(loops.num_cells(texts))
-    pairs = [(t, k % 2 == 0) for k, t in enumerate(texts)]
-    assert str(map_cells(pairs)) == str(loops.map_cells(pairs))
-    assert isinstance(num_cells(texts), markupsafe.Markup)  # not escaped a second time by the page
+    pairs = [texts[k : k + 2] for k in range(0, len(texts) - 1)]
+    dicts = [{"cell": t, "bin": f"[{k}, {k + 1})", "a": t, "b": texts[-1 - k]} for k, t in enumerate(texts)]
+    # source: the template loops the filters replaced (REFERENCE_ROW_MACROS), autoescape on
+    assert str(num_rows(pairs)) == str(loops.num_rows(pairs))
+    assert str(num_rows(dicts, ("a", "b"), head="cell")) == str(loops.num_rows(dicts, ("a", "b"), head="cell"))
+    assert str(num_rows(dicts, ("b",), head="bin", head_class="")) == str(
+        loops.num_rows(dicts, ("b",), head="bin", head_class="")
+    )
+    assert str(num_rows([])) == str(loops.num_rows([])) == ""
+    maps = [{"alpha": t, "cells": [(u, k % 2 == 0) for k, u in enumerate(texts)]} for t in texts]
+    assert str(map_rows(reversed(maps))) == str(loops.map_rows(list(reversed(maps))))
+    assert isinstance(num_rows(pairs), markupsafe.Markup)  # not escaped a second time by the page
 
 
 def test_json_fast_paths_keep_every_conversion():

@@ -3,12 +3,12 @@ functions.  The only module of fitaudit that imports Jinja2; the views it render
 :mod:`~fitaudit.tasks.report.run_view`, :mod:`~fitaudit.tasks.report.model_view` and
 :mod:`~fitaudit.tasks.report.views`.
 
-The model page's per-row loops (map, histogram, Q-Q, autocorrelation and cell tables, the checks
-table) read their rows' items by subscript (``r["value"]``): Jinja2's dot syntax tries an attribute
-first, which on a dict costs a caught AttributeError per cell.  The runs of number cells in the
-map, Q-Q, histogram and cell tables are written by the filters ``map_cells`` and ``num_cells``
-(:mod:`~fitaudit.tasks.report.table_cells`): a template loop per cell made them a third of a
-page's template time.
+The model page's per-row loops (autocorrelation table, the checks table) read their rows' items
+by subscript (``r["value"]``): Jinja2's dot syntax tries an attribute first, which on a dict costs
+a caught AttributeError per cell.  The rows of the map, Q-Q, histogram and cell tables are written
+by the filters ``map_rows`` and ``num_rows`` (:mod:`~fitaudit.tasks.report.table_cells`): a
+template loop per cell made them a third of a page's template time, and a loop per row with a
+filter for its cells still two fifths.
 """
 
 from __future__ import annotations
@@ -22,7 +22,7 @@ import jinja2
 from .charts import svg_element
 from .model_view import model_page_view
 from .run_view import index_view
-from .table_cells import map_cells, num_cells
+from .table_cells import map_rows, num_rows
 from .text import coord, count_text, format_number, format_p
 from .views import archive_view, method_view, page_context
 
@@ -37,7 +37,7 @@ def environment() -> jinja2.Environment:
         Templates from the ``fitaudit.templates`` package (``PackageLoader``); autoescape on for
         ``.html`` and ``.j2`` names and by default for every other name and string template;
         ``StrictUndefined``, so a missing name raises instead of printing nothing; the filters
-        ``num``, ``p``, ``px``, ``count``, ``svg``, ``num_cells`` and ``map_cells``.
+        ``num``, ``p``, ``px``, ``count``, ``svg``, ``num_rows`` and ``map_rows``.
     """
     env = jinja2.Environment(
         loader=jinja2.PackageLoader("fitaudit.templates", "."),
@@ -54,8 +54,8 @@ def environment() -> jinja2.Environment:
         px=coord,
         count=count_text,
         svg=svg_element,
-        num_cells=num_cells,
-        map_cells=map_cells,
+        num_rows=num_rows,
+        map_rows=map_rows,
     )
     return env
 
