@@ -94,13 +94,12 @@ _LABELS = {
 }
 
 
-#: The flow's stage timings shown on the page, in the flow's order (candidate_tables is part of candidates).
+#: The flow's stage timings shown on the page, in the flow's order.
 _STAGES = (
     "stage_s",
     "calibration_s",
     "audit_s",
     "candidates_s",
-    "candidate_tables_s",
     "render_s",
     "publish_s",
     "events_s",
@@ -121,7 +120,7 @@ def _details(rows: list[dict]) -> str:
             work = sorted(d["ours"]["work_by_function_s"].items(), key=lambda kv: -kv[1])
             out.append(
                 "**Fleet run.** Embedded server start {:.1f} s; flow {:.1f} s, by stage (wall time): {} "
-                "(candidate_tables: the null tables the searches share, built before them, part of candidates; "
+                "(candidates: the null tables the searches share, then the searches, in one lane per worker; "
                 "render: the records and model pages of every batch; publish: from the start of render to the end of "
                 "the archive writing; events: the verdict events and Prefect artifacts after it). Work summed per "
                 "function (two batches at a time, so the sum can exceed the "

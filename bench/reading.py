@@ -47,13 +47,8 @@ def _throughput(row: dict) -> str:
         f"page {archive:.1f} s{events}) and the embedded server's start {ours['server_start_s']:.1f} s. A scheduled "
         "deployment runs against a long-lived Prefect server and does not pay that start: the flow alone is "
         f"{alone:.1f} series/s, {alone / peer['series_per_second']:.1f}x the peer. "
-        f"{ours['counts']['respecify']} models were searched for candidates"
-        + (
-            f" ({t['candidate_tables_s']:.1f} s of that stage went to the null tables the searches share). "
-            if "candidate_tables_s" in t
-            else ". "
-        )
-        + "The peer is fast once its BLAS is "
+        f"{ours['counts']['respecify']} models were searched for candidates. "
+        "The peer is fast once its BLAS is "
         "single-threaded and does much less than the audit (no calibration, no candidate search, no report, no "
         f"archive). 20x would need the whole fleet in {needed:.0f} s on two cores, server start included; the "
         f"server start alone is {ours['server_start_s']:.0f} s. What would close more of the gap: a long-lived "

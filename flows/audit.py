@@ -19,8 +19,8 @@ from prefect.utilities.annotations import quote
 from fitaudit.core.vocabulary import VERDICTS
 from fitaudit.tasks.archive import new_run_id, open_work_folder
 from fitaudit.tasks.archive_tasks import check_archive_task, recover_task, refusal_first, start_archive_check
-from fitaudit.tasks.audit import candidate_jobs, candidate_tables, wants_candidates, with_candidates
-from fitaudit.tasks.audit.task import audit_batch_task, calibration_task, candidates_task, finalize_task, tables_task
+from fitaudit.tasks.audit import candidate_jobs, candidate_tables, lanes_cache, wants_candidates, with_candidates
+from fitaudit.tasks.audit.task import audit_batch_task, calibration_task, candidates_task, finalize_task
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.events import events_task
 from fitaudit.tasks.memory import heap_frozen
@@ -249,21 +249,22 @@ def audit_flow(
                 todo = {o.model_id for o in final if wants_candidates(o)}
                 jobs = candidate_jobs(staged.batches, todo)
                 if jobs:
-                    shared = candidate_tables(jobs, reg.policy)  # built once each, in parallel, before the searches
-                    if shared:
-                        for tables in tables_task.map(shared, unmapped(cache), unmapped(workers)).result():
-                            cache.merge(tables)
-                    timings["candidate_tables_s"] = time.perf_counter() - t0
-                    # one lane per worker; the lanes share the models out as they go (candidates_claimed)
-                    found = candidates_task.map(
+                    # the null tables the searches share, then the searches, in one lane per worker: the
+                    # lanes share both out as they go (candidates_claimed)
+                    lanes = candidates_task.map(
                         range(min(_workers(), len(todo))),
                         unmapped(jobs),
+                        unmapped(candidate_tables(jobs, reg.policy)),
                         unmapped(reg.policy),
-                        unmapped(cache),
+                        unmapped(lanes_cache(cache, work)),
                         unmapped(str(work / "candidate-claims")),
                         unmapped(workers),
                     )
-                    final = with_candidates(final, {k: v for part in found.result() for k, v in part.items()})
+                    found = {}
+                    for part, shared in lanes.result():
+                        found.update(part)
+                        cache.merge(shared)
+                    final = with_candidates(final, found)
                 timings["candidates_s"] = time.perf_counter() - t0
             head = results_head(
                 as_of=as_of.isoformat(),

@@ -280,27 +280,38 @@ def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo, reg
 def test_candidate_lanes_search_every_model_once_and_find_what_one_search_finds(demo, registry, tmp_path):
     from concurrent.futures import ThreadPoolExecutor
 
-    from fitaudit.core.calibration import CalibrationCache
+    from fitaudit.core.calibration import CalibrationCache, prepare_calibration
     from fitaudit.demo import DEMO_AS_OF
-    from fitaudit.tasks.audit import candidate_jobs, candidates_claimed, candidates_for
+    from fitaudit.tasks.audit import candidate_jobs, candidate_tables, candidates_claimed, candidates_for, lanes_cache
     from fitaudit.tasks.batches import stage_inputs
 
     wanted = ["demand-d-02", "demand-d-07", "demand-d-13", "energy-pump-01", "notebook-leak-01"]
     staged = stage_inputs(registry, DEMO_AS_OF, tmp_path, archive_root=demo["archive"], model_ids=wanted, batch_size=2)
     jobs = candidate_jobs(staged.batches, wanted[1:])
     assert [m for _, ids in jobs for m in ids] == [m for b in staged.batches for m in b.model_ids if m != wanted[0]]
-    cache = CalibrationCache()
-    # source: one search per batch in this process (the plain pipeline's candidates_for) is the reference
+    tables = candidate_tables(jobs, registry.policy)
+    assert len(tables) >= 2
+    # source: the shared tables built before one search per batch in this process (the plain pipeline's way)
+    reference_cache = CalibrationCache()
+    for entries in tables:
+        prepare_calibration(entries, reference_cache)
     reference = {}
     for path, ids in jobs:
-        reference.update(candidates_for(path, ids, registry.policy, cache))
+        reference.update(candidates_for(path, ids, registry.policy, reference_cache))
     claims = tmp_path / "claims"
+    start = lanes_cache(CalibrationCache(), tmp_path / "scratch")  # no archive store: one in the scratch folder
     with ThreadPoolExecutor(3) as pool:
-        lanes = list(pool.map(lambda _: candidates_claimed(jobs, registry.policy, cache, str(claims)), range(3)))
-    searched = [m for lane in lanes for m in lane]
+        lanes = list(pool.map(lambda _: candidates_claimed(jobs, tables, registry.policy, start, str(claims)), "abc"))
+    searched = [m for found, _ in lanes for m in found]
     assert sorted(searched) == sorted(reference)  # every model once, in exactly one lane
-    assert {m: v for lane in lanes for m, v in lane.items()} == reference
-    assert candidates_claimed(jobs, registry.policy, cache, str(claims)) == {}  # all claimed already
+    assert {m: v for found, _ in lanes for m, v in found.items()} == reference
+    shared = CalibrationCache()
+    for _, part in lanes:
+        shared.merge(part)
+    searched_only = {k for k in reference_cache.tables if "shape estimated" in k}  # a search's own tables
+    assert set(shared.tables) == set(reference_cache.tables) - searched_only
+    assert all(np.array_equal(shared.tables[k].r_max, reference_cache.tables[k].r_max) for k in shared.tables)
+    assert candidates_claimed(jobs, tables, registry.policy, start, str(claims))[0] == {}  # all claimed already
 
 
 @pytest.mark.slow

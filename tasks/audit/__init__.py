@@ -32,11 +32,12 @@ from .work import (
     candidates_for,
     finalize,
     forecast_timing_problems,
+    lanes_cache,
     wants_candidates,
     with_candidates,
 )
 
-_TASKS = ("finalize_task", "calibration_task", "audit_batch_task", "tables_task", "candidates_task")
+_TASKS = ("finalize_task", "calibration_task", "audit_batch_task", "candidates_task")
 
 __all__ = [
     "Outcome",
@@ -58,6 +59,7 @@ __all__ = [
     "candidate_jobs",
     "candidate_tables",
     "candidates_claimed",
+    "lanes_cache",
     "with_candidates",
     "calibration_for",
     *_TASKS,

@@ -12,7 +12,6 @@ import time
 from prefect import get_run_logger, task
 from prefect.cache_policies import NO_CACHE
 
-from fitaudit.core.audit import prepare_calibration
 from fitaudit.core.calibration import CalibrationCache, TableStore
 
 from ..memory import release_freed_memory
@@ -21,7 +20,7 @@ from ..registry import Policy, Registry
 from ..workers import run_local
 from .work import audit_batch_spilled, calibration_for, candidates_claimed, finalize
 
-__all__ = ["finalize_task", "calibration_task", "audit_batch_task", "tables_task", "candidates_task"]
+__all__ = ["finalize_task", "calibration_task", "audit_batch_task", "candidates_task"]
 
 
 @task(name="apply-fleet-rules", cache_policy=NO_CACHE, persist_result=False)
@@ -74,25 +73,19 @@ def audit_batch_task(
     return outcomes
 
 
-@task(name="prepare-candidate-calibration", cache_policy=NO_CACHE, persist_result=False)
-def tables_task(entries: list, cache: CalibrationCache, workers: str | None = None) -> CalibrationCache:
-    """Prefect task: the null tables of :func:`prepare_calibration` ``entries`` missing from
-    ``cache`` (in the local worker processes named by ``workers``, when given)."""
-    return run_local(workers, prepare_calibration, entries, cache)
-
-
 @task(name="search-candidates", cache_policy=NO_CACHE, persist_result=False)
 def candidates_task(
     lane: int,
     jobs: list,
+    tables: list,
     policy: Policy,
     cache: CalibrationCache | None,
     claims: str,
     workers: str | None = None,
-) -> dict[str, list[dict]]:
-    """Prefect task: lane ``lane`` of the candidate searches of ``jobs`` (:func:`candidates_claimed`:
-    each lane takes the next model no other lane has claimed in the folder ``claims``), in the local
-    worker processes named by ``workers`` when given."""
-    found = run_local(workers, candidates_claimed, jobs, policy, cache, claims)
+) -> tuple[dict[str, list[dict]], CalibrationCache]:
+    """Prefect task: lane ``lane`` of the candidate stage (:func:`candidates_claimed`: each lane takes
+    the next shared table, then the next model, that no other lane has claimed in the folder
+    ``claims``), in the local worker processes named by ``workers`` when given."""
+    found, shared = run_local(workers, candidates_claimed, jobs, tables, policy, cache, claims)
     get_run_logger().info("candidate lane %d: %d models searched", lane, len(found))
-    return found
+    return found, shared

@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 
 from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model
-from fitaudit.core.calibration import CalibrationCache, TableStore, build_tables, table_jobs
+from fitaudit.core.calibration import CalibrationCache, TableStore, build_tables, prepare_calibration, table_jobs
 from fitaudit.core.exceptions import FitauditError
 
 from ..batchfiles import ModelInput, batch_metadata, read_batch
@@ -48,6 +48,7 @@ __all__ = [
     "calibration_for",
     "candidates_for",
     "candidates_claimed",
+    "lanes_cache",
     "candidate_jobs",
     "candidate_tables",
 ]
@@ -342,21 +343,49 @@ def _claim(folder: pathlib.Path, name: str) -> bool:
     return True
 
 
-def candidates_claimed(
-    jobs: Sequence[Sequence], policy: Policy, cache: CalibrationCache | None, claims: str
-) -> dict[str, list[dict]]:
-    """The candidate searches of ``jobs`` (``[batch path, [model ids]]`` pairs) that this call
-    claims first in the folder ``claims``.
+#: How long a lane waits for the other lanes' shared tables before its searches build what they lack.
+_TABLES_WAIT_S = 600.0
 
-    Several calls (lanes) run over the same jobs at once, one per worker; each takes the next
-    model no other lane has claimed, so the lanes end within one model of each other, whatever
-    the searches cost (a search that simulates a student-t table costs five times one that does
-    not).  Every model is searched exactly once and its candidates do not depend on its lane.  A
-    lane reads each batch's models once and keeps one cache for all its searches.
+
+def candidates_claimed(
+    jobs: Sequence[Sequence],
+    tables: Sequence[Sequence],
+    policy: Policy,
+    cache: CalibrationCache | None,
+    claims: str,
+) -> tuple[dict[str, list[dict]], CalibrationCache]:
+    """One lane of the candidate searches: the shared null tables ``tables`` (entries of
+    :func:`candidate_tables`) and then the searches of ``jobs`` (``[batch path, [model ids]]``
+    pairs), each of them the ones this lane claims first in the folder ``claims``.
+
+    Several lanes run over the same tables and jobs at once, one per worker, and each takes the
+    next table or model no other lane has claimed, so the lanes end within one search of each
+    other whatever the searches cost (a search that simulates a student-t table costs five times
+    one that does not).  A lane starts its searches once every shared table is built (or after
+    :data:`_TABLES_WAIT_S`, when its searches build what they lack), and reads the other lanes'
+    tables from ``cache``'s store or builds them itself when it has none; every model is searched
+    exactly once and its candidates do not depend on its lane.  A lane reads each batch's models
+    once and keeps one cache for all its searches.
+
+    Returns
+    -------
+    (dict, CalibrationCache)
+        The candidates of the models this lane searched, and the shared tables it built or read.
     """
     cache = cache if cache is not None else CalibrationCache()
     folder = pathlib.Path(claims)
     folder.mkdir(parents=True, exist_ok=True)
+    shared = CalibrationCache(tables=cache.tables, store=cache.store)  # the run's tables are not built again
+    for number, entries in enumerate(tables):
+        if _claim(folder, f"table-{number}"):
+            try:
+                prepare_calibration(entries, shared)
+            finally:  # the other lanes wait for this mark, also when the build failed
+                _claim(folder, f"table-{number}.done")
+    cache.merge(shared)
+    deadline = time.monotonic() + _TABLES_WAIT_S
+    while not all((folder / f"table-{i}.done").exists() for i in range(len(tables))) and time.monotonic() < deadline:
+        time.sleep(0.005)
     found: dict[str, list[dict]] = {}
     read: dict[str, dict[str, ModelInput]] = {}
     for number, (path, model_id) in enumerate((path, m) for path, ids in jobs for m in ids):
@@ -366,7 +395,17 @@ def candidates_claimed(
             wanted = [m for p, ids in jobs if p == path for m in ids]
             read[path] = {item.model_id: item for item in read_batch(path, wanted)}
         found.update(_search_item(read[path][model_id], policy, cache))
-    return found
+    return found, shared
+
+
+def lanes_cache(cache: CalibrationCache, scratch: str | os.PathLike) -> CalibrationCache:
+    """The cache the lanes of :func:`candidates_claimed` start from: the run's tables, and the store
+    through which each lane reads the tables the others built, ``cache``'s (the archive's
+    ``.tables``) or, when the run keeps none, one in the run's scratch folder."""
+    from ..table_store import FolderTableStore
+
+    store = cache.store if cache.store is not None else FolderTableStore(pathlib.Path(scratch) / "tables")
+    return CalibrationCache(tables=cache.tables, store=store)
 
 
 def candidate_jobs(batches: Sequence[Any], model_ids: Iterable[str]) -> list[list]:
