@@ -203,8 +203,10 @@ def embedded_server(prepare: Callable[[], object] | None = None) -> Iterator[str
 #: What a command's process computes with besides its flows' module, imported while the server starts.
 #: ``scipy.special``: the null tables and the fleet rules, in the flow process; on first use it cost
 #: the run 0.3-0.45 s (the null-table stage, measured), while the process waits about 1.8 s for the
-#: server after its other imports.  Not ``scipy.stats``: the worker processes compute with it.
-WARM_IMPORTS = ("scipy.special",)
+#: server after its other imports.  ``fitaudit.tasks.report`` (Jinja2): the run page, the flow's last
+#: step (45 ms, ``python -X importtime``); ``prefect.task_engine``: the first task run (9 ms).  Not
+#: ``scipy.stats``: the worker processes compute with it.
+WARM_IMPORTS = ("scipy.special", "fitaudit.tasks.report", "prefect.task_engine")
 
 
 def command_imports(flow_module: str) -> None:
