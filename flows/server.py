@@ -27,11 +27,12 @@ import signal
 import socket
 import subprocess
 import sys
+import threading
 import time
 from collections.abc import Callable, Iterator
 
 from ._env import QUIET_SETTINGS
-from .server_process import APP_FACTORY
+from .server_process import APP_FACTORY, home, remember_schema
 
 __all__ = [
     "local_server",
@@ -159,6 +160,9 @@ def start_embedded_server(prepare: Callable[[], object] | None = None) -> str | 
             prepare()
         timeout = os.environ.get(_STARTUP_TIMEOUT, QUIET_SETTINGS[_STARTUP_TIMEOUT])
         wait_healthy(api_url, float(timeout), proc)
+        # the schema revision the server's check left (it answers only after the check): off the
+        # command's path, in a thread the interpreter joins at exit
+        threading.Thread(target=remember_schema, name="fitaudit-schema-memo").start()
         return api_url
     from prefect.settings import PREFECT_API_URL, PREFECT_SERVER_EPHEMERAL_ENABLED
 
@@ -270,7 +274,8 @@ def _launch_embedded() -> tuple[subprocess.Popen, int]:
     algorithm off on the connections it accepts, as it does for TCP sockets: every response
     (headers and body written separately) then waited about 40 ms for the client's delayed
     acknowledgement.  ``TCP_NODELAY`` is set on the listening socket instead; Linux copies it to
-    every accepted connection (:func:`_loopback_listener`).
+    every accepted connection (:func:`_loopback_listener`).  The server process skips Prefect's
+    schema check when it would change nothing (:func:`~fitaudit.flows.server_process.schema_settled`).
     """
     import importlib.util
 
@@ -323,8 +328,7 @@ def _loopback_listener() -> socket.socket:
 
 
 def _records_dir() -> pathlib.Path:
-    home = os.environ.get("PREFECT_HOME") or str(pathlib.Path.home() / ".prefect")
-    return pathlib.Path(home) / _RECORDS
+    return home() / _RECORDS
 
 
 def _start_time(pid: int) -> str | None:

@@ -7,6 +7,7 @@ or a settings file in the working directory) leaves the start to Prefect, as bef
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import pathlib
@@ -135,6 +136,15 @@ def test_the_launched_server_answers_and_is_stopped_and_unrecorded_at_exit(tmp_p
         assert time.monotonic() < deadline, "the embedded server still runs after the command exited"
         time.sleep(0.2)
     assert not list((tmp_path / ".prefect" / "fitaudit-servers").glob("*.json"))
+    # a new database: the server made its schema, and the command remembers the revision it left
+    memo = json.loads((tmp_path / ".prefect" / "fitaudit-schema.json").read_text())
+    assert memo["revision"] and memo["prefect"]
+    again = subprocess.run(  # a second start skips the check (tested below) and works as the first
+        [sys.executable, "-c", _CHILD], cwd=tmp_path, env=env, capture_output=True, text=True, timeout=300
+    )
+    assert again.returncode == 0, again.stderr[-3000:]
+    assert json.loads(again.stdout.strip().splitlines()[-1])["block loaded"] == "http://127.0.0.1:9000"
+    assert json.loads((tmp_path / ".prefect" / "fitaudit-schema.json").read_text()) == memo
 
 
 def _accepted_nodelay(listener: socket.socket) -> int:
@@ -234,3 +244,51 @@ def test_the_workers_a_run_asks_for_follow_the_processes_setting():
     assert _requested_processes(0, AUTO_PROCESSES_MIN_MODELS) == default_processes()  # every CPU
     assert _requested_processes(0, AUTO_PROCESSES_MIN_MODELS - 1) == 1  # a small run computes in place
     assert _requested_processes(3, 10) == 3  # as set
+
+
+def _schema_db(home: pathlib.Path, revision: str) -> None:
+    import sqlite3
+
+    home.mkdir(parents=True, exist_ok=True)
+    with sqlite3.connect(home / "prefect.db") as con:
+        con.execute("CREATE TABLE IF NOT EXISTS alembic_version (version_num VARCHAR(32) NOT NULL)")
+        con.execute("DELETE FROM alembic_version")
+        con.execute("INSERT INTO alembic_version VALUES (?)", (revision,))
+
+
+def test_the_schema_check_is_skipped_only_at_the_revision_this_prefect_left(plain_env, monkeypatch):
+    from fitaudit.flows import server_process
+
+    home = plain_env / ".prefect"
+    started = []
+    monkeypatch.setattr(sys, "argv", list(sys.argv))  # main() sets uvicorn's command line there
+    monkeypatch.setattr(server_process, "collector_paused", contextlib.nullcontext)  # no gc.freeze in pytest
+    monkeypatch.setattr(server_process.importlib, "import_module", lambda name: None)
+    monkeypatch.setattr(server_process.runpy, "run_module", lambda *a, **k: started.append(os.environ.get(MIGRATE)))
+    MIGRATE = server_process.MIGRATE
+    monkeypatch.delenv(MIGRATE, raising=False)
+
+    def check_skipped() -> bool:  # what the server process decides at its start
+        monkeypatch.delenv(MIGRATE, raising=False)
+        server_process.main([])
+        return started.pop() == "false"
+
+    assert not check_skipped()  # no database yet
+    _schema_db(home, "3b86c5ea017a")
+    assert not check_skipped()  # a database, but no record of a check
+    server_process.remember_schema()
+    assert check_skipped()
+    _schema_db(home, "aaaaaaaaaaaa")  # another revision (another Prefect version wrote it): check again
+    assert not check_skipped()
+    server_process.remember_schema()
+    assert check_skipped()
+    memo = json.loads((home / "fitaudit-schema.json").read_text())
+    (home / "fitaudit-schema.json").write_text(json.dumps({**memo, "prefect": "0.0.1"}))  # Prefect upgraded
+    assert not check_skipped()
+    server_process.remember_schema()
+    monkeypatch.setenv("PREFECT_SERVER_DATABASE_CONNECTION_URL", "postgresql+asyncpg://db/prefect")
+    assert not check_skipped()  # a database of the user's: never skipped
+    monkeypatch.delenv("PREFECT_SERVER_DATABASE_CONNECTION_URL")
+    monkeypatch.setenv(MIGRATE, "true")
+    server_process.main([])
+    assert started.pop() == "true"  # the user's own setting wins
