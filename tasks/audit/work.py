@@ -412,9 +412,9 @@ def candidate_jobs(batches: Sequence[Any], model_ids: Iterable[str]) -> list[lis
     """The candidate searches of ``model_ids`` as ``[batch path, [model ids]]`` pairs in batch order
     (lists, not tuples: prefect-dask hands tuples inside task inputs on in another shape).
 
-    The searches' shared null tables are built beforehand (:func:`candidate_tables`); what remains
-    per model is its fits and the table of a law whose shape it estimates.  The lanes of
-    :func:`candidates_claimed` share the models out as they go.
+    The lanes of :func:`candidates_claimed` build the searches' shared null tables first
+    (:func:`candidate_tables`) and then share the models out as they go; what remains per model
+    is its fits and the table of a law whose shape it estimates.
     """
     wanted = set(model_ids)
     jobs = [[batch.path, [m for m in batch.model_ids if m in wanted]] for batch in batches]
@@ -426,8 +426,9 @@ def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list
     entries, one group per table (metadata only, no data read).
 
     Neighbouring specifications and other noise laws need tables for new (residual count, law)
-    pairs; built once each, in parallel, before the searches, no worker builds one again.  Laws
-    whose shape is estimated are left out: their tables depend on each model's estimate.
+    pairs; the lanes of :func:`candidates_claimed` build each once, side by side, before the
+    searches, so no search builds one again.  Laws whose shape is estimated are left out: their
+    tables depend on each model's estimate.
     """
     from fitaudit.core.candidates import CONTINUOUS_LAWS, neighbour_specs
 
