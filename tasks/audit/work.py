@@ -365,7 +365,7 @@ def candidates_claimed(
     :data:`_TABLES_WAIT_S`, when its searches build what they lack), and reads the other lanes'
     tables from ``cache``'s store or builds them itself when it has none; every model is searched
     exactly once and its candidates do not depend on its lane.  A lane reads each batch's models
-    once and keeps one cache for all its searches.
+    once, holds one batch at a time, and keeps one cache for all its searches.
 
     Returns
     -------
@@ -387,14 +387,15 @@ def candidates_claimed(
     while not all((folder / f"table-{i}.done").exists() for i in range(len(tables))) and time.monotonic() < deadline:
         time.sleep(0.005)
     found: dict[str, list[dict]] = {}
-    read: dict[str, dict[str, ModelInput]] = {}
+    read_path, items = None, {}
     for number, (path, model_id) in enumerate((path, m) for path, ids in jobs for m in ids):
         if not _claim(folder, str(number)):
             continue
-        if path not in read:
+        if path != read_path:  # the claims go in batch order: a batch read is never needed again
+            read_path, items = None, {}  # its arrays are views of the whole batch's buffers: let them go first
             wanted = [m for p, ids in jobs if p == path for m in ids]
-            read[path] = {item.model_id: item for item in read_batch(path, wanted)}
-        found.update(_search_item(read[path][model_id], policy, cache))
+            read_path, items = path, {item.model_id: item for item in read_batch(path, wanted)}
+        found.update(_search_item(items[model_id], policy, cache))
     return found, shared
 
 
