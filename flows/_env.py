@@ -78,6 +78,11 @@ def _write_logging_config(home: pathlib.Path) -> pathlib.Path:
     return target
 
 
+def prefect_home() -> pathlib.Path:
+    """Prefect's home folder: ``PREFECT_HOME``, or Prefect's default ``~/.prefect``."""
+    return pathlib.Path(os.environ.get("PREFECT_HOME") or str(pathlib.Path.home() / ".prefect"))
+
+
 def configure_prefect(workdir: str | os.PathLike | None = None, write_logging: bool = True) -> dict:
     """Set the process environment for a quiet local Prefect run; returns what was chosen.
 
@@ -93,7 +98,7 @@ def configure_prefect(workdir: str | os.PathLike | None = None, write_logging: b
         os.environ.setdefault("PREFECT_SERVER_EPHEMERAL_ENABLED", "true")
     for key, value in QUIET_SETTINGS.items():
         os.environ.setdefault(key, value)
-    home = pathlib.Path(os.environ.get("PREFECT_HOME", pathlib.Path.home() / ".prefect"))
+    home = prefect_home()
     if write_logging and "PREFECT_LOGGING_CONFIG_PATH" not in os.environ:
         os.environ["PREFECT_LOGGING_CONFIG_PATH"] = str(_write_logging_config(home))
     return {

@@ -31,8 +31,8 @@ import threading
 import time
 from collections.abc import Callable, Iterator
 
-from ._env import QUIET_SETTINGS
-from .server_process import APP_FACTORY, home, remember_schema
+from ._env import QUIET_SETTINGS, prefect_home
+from .server_process import APP_FACTORY, remember_schema
 
 __all__ = [
     "local_server",
@@ -328,7 +328,7 @@ def _loopback_listener() -> socket.socket:
 
 
 def _records_dir() -> pathlib.Path:
-    return home() / _RECORDS
+    return prefect_home() / _RECORDS
 
 
 def _start_time(pid: int) -> str | None:

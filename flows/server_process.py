@@ -20,13 +20,13 @@ import contextlib
 import importlib
 import json
 import os
-import pathlib
 import runpy
 import sys
 
+from fitaudit.flows._env import prefect_home
 from fitaudit.tasks.memory import collector_paused
 
-__all__ = ["APP_FACTORY", "home", "main", "remember_schema", "schema_settled"]
+__all__ = ["APP_FACTORY", "main", "remember_schema", "schema_settled"]
 
 #: The application factory Prefect's embedded server runs (``uvicorn --factory``).
 APP_FACTORY = "prefect.server.api.server:create_app"
@@ -39,11 +39,6 @@ MIGRATE = "PREFECT_SERVER_DATABASE_MIGRATE_ON_START"
 SCHEMA_MEMO = "fitaudit-schema.json"
 
 
-def home() -> pathlib.Path:
-    """Prefect's home folder (``PREFECT_HOME``, default ``~/.prefect``)."""
-    return pathlib.Path(os.environ.get("PREFECT_HOME") or str(pathlib.Path.home() / ".prefect"))
-
-
 def _schema_state() -> dict | None:
     """The installed Prefect's version and the schema revision of the embedded server's database
     (``PREFECT_HOME/prefect.db``, Prefect's default, read with :mod:`sqlite3`); None when there is
@@ -53,7 +48,7 @@ def _schema_state() -> dict | None:
 
     if any(k.startswith(("PREFECT_SERVER_DATABASE_", "PREFECT_API_DATABASE_")) for k in os.environ):
         return None  # a database of the user's, or a setting for it: Prefect checks it
-    db = home() / "prefect.db"
+    db = prefect_home() / "prefect.db"
     if not db.is_file():
         return None
     try:
@@ -66,7 +61,7 @@ def _schema_state() -> dict | None:
 
 def _memo() -> dict | None:
     try:
-        return json.loads((home() / SCHEMA_MEMO).read_text())
+        return json.loads((prefect_home() / SCHEMA_MEMO).read_text())
     except (OSError, ValueError):
         return None
 
@@ -84,7 +79,7 @@ def remember_schema() -> None:
     state = _schema_state()
     if MIGRATE not in os.environ and state is not None and state["revision"] and _memo() != state:
         with contextlib.suppress(OSError):
-            (home() / SCHEMA_MEMO).write_text(json.dumps(state))
+            (prefect_home() / SCHEMA_MEMO).write_text(json.dumps(state))
 
 
 def main(argv: list[str]) -> None:

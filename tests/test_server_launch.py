@@ -260,13 +260,12 @@ def test_the_schema_check_is_skipped_only_at_the_revision_this_prefect_left(plai
     from fitaudit.flows import server_process
 
     home = plain_env / ".prefect"
-    started = []
+    MIGRATE = server_process.MIGRATE
+    started = []  # the schema-check setting in force when uvicorn would have started
     monkeypatch.setattr(sys, "argv", list(sys.argv))  # main() sets uvicorn's command line there
     monkeypatch.setattr(server_process, "collector_paused", contextlib.nullcontext)  # no gc.freeze in pytest
     monkeypatch.setattr(server_process.importlib, "import_module", lambda name: None)
     monkeypatch.setattr(server_process.runpy, "run_module", lambda *a, **k: started.append(os.environ.get(MIGRATE)))
-    MIGRATE = server_process.MIGRATE
-    monkeypatch.delenv(MIGRATE, raising=False)
 
     def check_skipped() -> bool:  # what the server process decides at its start
         monkeypatch.delenv(MIGRATE, raising=False)

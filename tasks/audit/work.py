@@ -392,7 +392,7 @@ def candidates_claimed(
         if not _claim(folder, str(number)):
             continue
         if path != read_path:  # the claims go in batch order: a batch read is never needed again
-            read_path, items = None, {}  # its arrays are views of the whole batch's buffers: let them go first
+            items = {}  # its models' arrays are views of the whole batch's buffers: let them go before the next
             wanted = [m for p, ids in jobs if p == path for m in ids]
             read_path, items = path, {item.model_id: item for item in read_batch(path, wanted)}
         found.update(_search_item(items[model_id], policy, cache))
