@@ -15,10 +15,11 @@ from typing import Any
 
 import numpy as np
 
-from .audit import audit_series
+from .audit import audit_series, audit_series_steps
 from .calibration import CalibrationCache
 from .checks import refit_model
 from .exceptions import FitauditError
+from .lockstep import lockstep
 from .models import FitResult, ForecastModel, as_model, model_from_dict
 from .noise import NOISE_LAWS
 from .settings import AuditSettings
@@ -194,18 +195,15 @@ def search_candidates(
     if other_laws and skip_futile and _independence_rejects(y, model, noise, exog, settings, cache, spec_fit):
         other_laws = []
     trials += [(model.to_dict(), law, spec_fit) for law in other_laws]
-    scored = []
-    for cand_spec, cand_noise, cand_fit in trials:
-        res = audit_series(
-            y,
-            dict(cand_spec),
-            noise=cand_noise,
-            exog=exog,
-            production=None,
-            settings=settings,
-            cache=cache,
-            fit=cand_fit,
+    audits = [
+        audit_series_steps(
+            y, dict(cand_spec), noise=cand_noise, exog=exog, production=None, settings=settings, cache=cache, fit=fit
         )
+        for cand_spec, cand_noise, fit in trials
+    ]
+    scored = []
+    # side by side: the trials' maps and gates are computed together (the same results as one by one)
+    for (cand_spec, cand_noise, _), res in zip(trials, lockstep(audits)):
         chk = res.refit
         scaled = (
             float(np.nanmax(chk.scaled_grid))

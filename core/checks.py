@@ -1,14 +1,16 @@
 """The two checks of an audit and how a check is scored (docs/method.md §1, §7 and §9).
 
-* the **production check** (:func:`_production_check`): frozen production parameters make
+* the **production check** (:func:`_production_steps`): frozen production parameters make
   one-step forecasts; the errors of the audit window go through the noise law's PIT and are
   scored with an exact simulated null (:func:`score_frozen`, shared with forecast audits);
-* the **refit check** (:func:`_refit_check`): the model is re-estimated on the fit window, the
+* the **refit check** (:func:`_refit_steps`): the model is re-estimated on the fit window, the
   noise parameters too, and its residuals are scored against the null of re-estimated
   parameters (simulated, parametric bootstrap or asymptotic with the Nikulin-Rao-Robson term).
 
-:func:`_score` is the shared scorer: partitions and the gate's members, the divergence map,
-calibration, the Ljung-Box independence gate, effect sizes and the report's plot data.
+:func:`_score_steps` is the shared scorer: partitions and the gate's members, the divergence
+map, calibration, the Ljung-Box independence gate, effect sizes and the report's plot data.  The
+checks are steps (generators, :mod:`fitaudit.core.lockstep`): they pause for their cell counts,
+map and gate statistics, which a batch of audits has computed together.
 """
 
 from __future__ import annotations
@@ -39,12 +41,13 @@ from .cells import cell_counts, number_of_cells
 from .diagnostics import acf, ljung_box, ljung_box_lags, mcleod_li
 from .divergence import divergence_map
 from .exceptions import ConvergenceWarning, FitauditError, InputError, InsufficientDataError
+from .lockstep import MapRequest, Steps, run_steps
 from .noise import NoiseLaw, NoiseParams
 from .plotdata import plot_data
 from .results import CheckResult, _rounded
 from .settings import AuditSettings
 
-__all__ = ["score_frozen", "MAGNITUDE_RANGE"]
+__all__ = ["score_frozen", "score_frozen_steps", "MAGNITUDE_RANGE"]
 
 
 def _digest(*arrays: np.ndarray) -> str:
@@ -81,7 +84,7 @@ def _deciding_partition(part, u: np.ndarray) -> dict:
     }
 
 
-def _score(
+def _score_steps(
     kind: str,
     e: np.ndarray,
     u: np.ndarray,
@@ -94,19 +97,20 @@ def _score(
     table_for: Any,
     window: dict,
     cache: CalibrationCache | None = None,
-) -> CheckResult:
+) -> Steps[CheckResult]:
     """Score residuals ``e`` with PIT values ``u``: partitions, map, calibration, independence.
 
     The distribution gate is the standardised maximum of the gate's members over its partitions
     (:meth:`AuditSettings.gate`); the full (alpha, beta) map on the equiprobable cells is the
-    report's picture of where the law fails, with its own simultaneous boundary.
+    report's picture of where the law fails, with its own simultaneous boundary.  The cell
+    counts, the map and the gate's statistics are requested (:mod:`fitaudit.core.lockstep`), so
+    that many checks have them computed together.
     """
     n = e.size
     s = number_of_cells(n, k)
-    counts = cell_counts(u, s)
-    dmap = divergence_map(counts, np.full(s, 1.0 / s), settings.alphas, settings.betas, settings.scaling, settings.r)
     gate = settings.gate(n, k)
-    g_obs = gate.statistics(u)  # (P, G)
+    scored = yield MapRequest(u, s, gate, settings.alphas, settings.betas, settings.scaling, settings.r)
+    counts, dmap, g_obs = scored.counts, scored.map, scored.gate_statistics  # g_obs: (P, G)
     t_obs = dmap.t_max
     calib: dict = {"method": settings.calibration}
     half = settings.level / 2
@@ -275,13 +279,28 @@ def score_frozen(
     -------
     CheckResult
     """
+    return run_steps(score_frozen_steps(e, u, law, nparams, period, settings, cache, window, kind))
+
+
+def score_frozen_steps(
+    e: np.ndarray,
+    u: np.ndarray,
+    law: NoiseLaw,
+    nparams: NoiseParams,
+    period: int,
+    settings: AuditSettings,
+    cache: CalibrationCache | None,
+    window: dict,
+    kind: str = "production",
+) -> Steps[CheckResult]:
+    """:func:`score_frozen` as steps (:mod:`fitaudit.core.lockstep`)."""
     table_for = None
     if settings.calibration != "asymptotic":
 
         def table_for(n, s, gate):
             return settings_production_table(settings, n, s, gate, cache)
 
-    return _score(kind, e, u, law, nparams, 0, 0, period, settings, table_for, window, cache)
+    return (yield from _score_steps(kind, e, u, law, nparams, 0, 0, period, settings, table_for, window, cache))
 
 
 def _failed_check(kind: str, exc: BaseException, window: dict | None = None, label: str | None = None) -> CheckResult:
@@ -321,9 +340,11 @@ def _check_inputs(y: np.ndarray, exog: Mapping[str, np.ndarray] | None, law: Noi
     law.check_observations(y, label)
 
 
-def _production_check(
+def _production_steps(
     model, y, exog, params, law_prod: NoiseLaw, settings, cache, label
-) -> tuple[CheckResult, np.ndarray | None, NoiseParams | None]:
+) -> Steps[tuple[CheckResult, np.ndarray | None, NoiseParams | None]]:
+    """The production check (its steps): the check, the one-step errors of the whole series and
+    the frozen noise parameters (None for both when the check failed)."""
     n_all = y.size
     w = settings.audit_window
     window = {"first": n_all - w, "last": n_all - 1, "length": w}
@@ -347,7 +368,9 @@ def _production_check(
         nparams = law_prod.frozen_params(params, tail, y=y[-w:], label=label)
         # the generator is used by count laws only (the randomised PIT), seeded by the data
         u = law_prod.pit(tail, nparams, key_rng(settings.seed, "pit", "production", _digest(y)), y=y[-w:])
-        check = score_frozen(tail, u, law_prod, nparams, model.seasonal_period(), settings, cache, window)
+        check = yield from score_frozen_steps(
+            tail, u, law_prod, nparams, model.seasonal_period(), settings, cache, window
+        )
         return check, np.asarray(errors, dtype=float), nparams
     except (FitauditError, ValueError, FloatingPointError, np.linalg.LinAlgError, ArithmeticError) as exc:
         return _failed_check("production", exc, window, label), None, None
@@ -369,9 +392,10 @@ def refit_model(model, y: np.ndarray, exog, settings):
         return model.fit(y[sl], _slice_exog(exog, sl), standard_errors=False)
 
 
-def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label, fit=None) -> tuple[CheckResult, Any]:
-    """The refit check; ``fit``, when given, is :func:`refit_model`'s result for the same model and
-    data (the candidate search scores one fit under several noise laws) and is not made again."""
+def _refit_steps(model, y, exog, law: NoiseLaw, settings, cache, label, fit=None) -> Steps[tuple[CheckResult, Any]]:
+    """The refit check (its steps) and the fit; ``fit``, when given, is :func:`refit_model`'s result
+    for the same model and data (the candidate search scores one fit under several noise laws)
+    and is not made again."""
     n_all = y.size
     sl = fit_window(n_all, settings)
     window = {"first": sl.start, "last": n_all - 1, "length": n_all - sl.start}
@@ -416,7 +440,7 @@ def _refit_check(model, y, exog, law: NoiseLaw, settings, cache, label, fit=None
                     )
                     return _bootstrap(model, fit, law, nparams, yf, xf, n, s, location, settings, simulated, gate)
 
-        check = _score(
+        check = yield from _score_steps(
             "refit",
             e,
             u,

@@ -58,6 +58,7 @@ __all__ = [
     "scaled_bregman",
     "divergence_map",
     "partition_statistics",
+    "row_block",
     "empty_cell_factor",
     "zero_model_cell_factor",
 ]
@@ -588,6 +589,22 @@ class DivergenceMap:
 _DISTINCT_FROM = 4096
 
 
+def row_block(cells: int) -> int:
+    """Rows of ``cells`` cells each (all partitions' cells, for :func:`partition_statistics`) that
+    one call of :func:`divergence_map` or :func:`partition_statistics` may take so that every
+    row's statistics are bit for bit those of the row alone.
+
+    Below :data:`_DISTINCT_FROM` cells the terms are computed cell by cell, and every step is then
+    element-wise or a sum along one row; from there on they are computed once per distinct cell
+    and summed in another arrangement, which agrees to rounding only (a few units in the last
+    place, tests/test_lockstep.py).
+
+    >>> row_block(28), row_block(5000)
+    (146, 1)
+    """
+    return max(1, (_DISTINCT_FROM - 1) // cells)
+
+
 def _grid_terms(u, qs, pos, alphas: np.ndarray, betas: np.ndarray, scaling: str, r) -> np.ndarray:
     """The terms of B per cell, for cells ``u = log(p/q)``, ``qs = q`` and ``pos`` (p, q > 0) of
     shape (N, s): shape (N, A, B, s) for the geometric and power scalings, (N, A, s) for the
@@ -630,7 +647,8 @@ def _grid_sums(
     The terms of the sums come from :func:`_grid_terms`.  A term depends only on its cell's
     ``(p, q)``, and many rows of counts (a null table's 2,000 rows of 28 cells) hold few distinct
     cells (about a hundred), so from :data:`_DISTINCT_FROM` cells on the terms are computed once
-    per distinct cell and gathered: the same values, summed in the same order.
+    per distinct cell and gathered: the same values to rounding (not bit for bit: see
+    :func:`row_block`).
 
     With ``sizes`` the cells are consecutive groups of these sizes, each a distribution of its own
     (the partitions of a gate, scored in one pass): the result is (N, len(sizes), A, B), each

@@ -113,13 +113,18 @@ def test_other_laws_are_not_tried_when_the_specs_independence_gate_rejects(cache
     specs = [seasonal.to_dict()]
     full = search_candidates(y, AR1, settings=FAST, cache=cache, specs=specs, skip_futile=False)
     laws_tried = []
-    real = candidates.audit_series
+    real, real_steps = candidates.audit_series, candidates.audit_series_steps
 
     def counting(y_, spec, noise="normal", **kwargs):
         laws_tried.append(noise)
         return real(y_, spec, noise=noise, **kwargs)
 
+    def counting_steps(y_, spec, noise="normal", **kwargs):  # the trials, run side by side
+        laws_tried.append(noise)
+        return real_steps(y_, spec, noise=noise, **kwargs)
+
     monkeypatch.setattr(candidates, "audit_series", counting)
+    monkeypatch.setattr(candidates, "audit_series_steps", counting_steps)
     quick = search_candidates(y, AR1, settings=FAST, cache=cache, specs=specs)
     assert [c.to_dict() for c in quick] == [c.to_dict() for c in full] and len(full) == 1
     assert laws_tried == ["normal", "normal"]  # the spec's own check and the one neighbour
@@ -134,15 +139,21 @@ def test_the_law_trials_score_one_fit_of_the_spec_with_the_same_candidates(cache
     rng = np.random.default_rng(21)
     y = AR1.simulate(TRUE, 400, rng, innovations=rng.standard_t(3, size=400))
     specs = [{"family": "arima", "order": [2, 0, 0], "trend": "c"}]
-    real = candidates.audit_series
+    real, real_steps = candidates.audit_series, candidates.audit_series_steps
 
     def afresh(y_, spec, noise="normal", **kwargs):
         kwargs.pop("fit", None)
         return real(y_, spec, noise=noise, **kwargs)
 
+    def afresh_steps(y_, spec, noise="normal", **kwargs):  # the trials, run side by side
+        kwargs.pop("fit", None)
+        return real_steps(y_, spec, noise=noise, **kwargs)
+
     monkeypatch.setattr(candidates, "audit_series", afresh)
+    monkeypatch.setattr(candidates, "audit_series_steps", afresh_steps)
     reference = search_candidates(y, AR1, settings=FAST, cache=cache, specs=specs)
     monkeypatch.setattr(candidates, "audit_series", real)
+    monkeypatch.setattr(candidates, "audit_series_steps", real_steps)
     fits = []
     real_fit = Arima.fit
 

@@ -25,9 +25,10 @@ from typing import Any
 
 import numpy as np
 
-from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model
+from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model, audit_series_steps
 from fitaudit.core.calibration import CalibrationCache, TableStore, build_tables, prepare_calibration, table_jobs
 from fitaudit.core.exceptions import FitauditError
+from fitaudit.core.lockstep import Steps, lockstep, run_steps
 
 from ..batchfiles import ModelInput, batch_metadata, read_batch
 from ..outcomes import Outcome, spill_outcomes
@@ -40,6 +41,7 @@ __all__ = [
     "audit_batch",
     "audit_batch_spilled",
     "audit_series_for",
+    "audit_series_steps_for",
     "audit_forecasts_for",
     "forecast_timing_problems",
     "finalize",
@@ -67,9 +69,14 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
     ``time_limit_s`` bounds the model's audit where :func:`fitaudit.tasks.workers.time_limit` can
     (the local worker processes); reaching it gives an ``error`` verdict.
     """
+    return audit_inputs([item], policy, cache, time_limit_s)[0]
+
+
+def _outcome_base(item: ModelInput) -> tuple[dict, dict | None]:
+    """What every outcome of ``item`` carries (entry, lineage, history, spec text) and its
+    production version's identity (None without one)."""
     entry = item.entry
-    forecast = isinstance(entry, ForecastEntry)
-    spec_text = entry.describe() if forecast else _spec_text(entry.spec)
+    spec_text = entry.describe() if isinstance(entry, ForecastEntry) else _spec_text(entry.spec)
     base = dict(entry=entry.to_dict(), lineage=item.lineage, history=item.history, spec_text=spec_text)
     production = item.production
     prod_meta = (
@@ -77,6 +84,16 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
         if production is None
         else {k: production[k] for k in ("version", "sha256", "created_at") if k in production}
     )
+    return base, prod_meta
+
+
+def _input_steps(item: ModelInput, policy: Policy, cache: CalibrationCache) -> Steps[Outcome]:
+    """The audit of one staged model as steps (:mod:`fitaudit.core.lockstep`): its outcome, or
+    an exception that :func:`audit_inputs` turns into the model's ``error`` outcome."""
+    entry = item.entry
+    forecast = isinstance(entry, ForecastEntry)
+    base, prod_meta = _outcome_base(item)
+    production = item.production
     errors = [p["message"] for p in item.problems if p["severity"] == "error"]
     if production is not None and production.get("error"):
         errors.append(production["error"])
@@ -89,31 +106,11 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
         late = forecast_timing_problems(item)
         if late:
             return Outcome(verdict="error", reasons=tuple(late), production=prod_meta, **base)
-    t0 = time.perf_counter()
-    try:
-        settings = entry.audit_settings(policy)
-        with time_limit(time_limit_s):
-            result = audit_forecasts_for(item, settings, cache) if forecast else audit_series_for(item, settings, cache)
-    except TimeLimitExceeded as exc:
-        msg = (
-            f"model {item.model_id!r}: the audit did not finish within the time limit of {exc.seconds:g} s per model "
-            "(setting model_time_limit_s). A mean function that never returns, or a much longer series or larger "
-            "model than usual, can cause this: check the model spec and the series, or raise the limit; "
-            "the other models are unaffected."
-        )
-        return Outcome(
-            verdict="error", reasons=(msg,), production=prod_meta, timings={"total_s": time.perf_counter() - t0}, **base
-        )
-    except Exception as exc:  # contain anything (e.g. a user's nonlinear function) to this model
-        where = traceback.extract_tb(exc.__traceback__)[-1] if exc.__traceback__ else None
-        at = f" (at {where.filename.rsplit('/', 1)[-1]}:{where.lineno})" if where else ""
-        msg = (
-            f"model {item.model_id!r}: the audit failed with {type(exc).__name__}: {exc}{at}. Check the model spec "
-            "and the series; the other models are unaffected."
-        )
-        return Outcome(
-            verdict="error", reasons=(msg,), production=prod_meta, timings={"total_s": time.perf_counter() - t0}, **base
-        )
+    settings = entry.audit_settings(policy)
+    if forecast:
+        result = audit_forecasts_for(item, settings, cache)
+    else:
+        result = yield from audit_series_steps_for(item, settings, cache)
     return Outcome(
         verdict=result.verdict,
         reasons=result.reasons,
@@ -125,22 +122,47 @@ def audit_input(item: ModelInput, policy: Policy, cache: CalibrationCache, time_
     )
 
 
+def _failed_outcome(item: ModelInput, exc: BaseException, seconds: float, limit_s: float) -> Outcome:
+    """The ``error`` outcome of a model whose audit raised ``exc`` (or reached its time limit)."""
+    if isinstance(exc, TimeLimitExceeded):
+        msg = (
+            f"model {item.model_id!r}: the audit did not finish within the time limit of {limit_s:g} s per model "
+            "(setting model_time_limit_s). A mean function that never returns, or a much longer series or larger "
+            "model than usual, can cause this: check the model spec and the series, or raise the limit; "
+            "the other models are unaffected."
+        )
+    else:
+        where = traceback.extract_tb(exc.__traceback__)[-1] if exc.__traceback__ else None
+        at = f" (at {where.filename.rsplit('/', 1)[-1]}:{where.lineno})" if where else ""
+        msg = (
+            f"model {item.model_id!r}: the audit failed with {type(exc).__name__}: {exc}{at}. Check the model spec "
+            "and the series; the other models are unaffected."
+        )
+    base, prod_meta = _outcome_base(item)
+    return Outcome(verdict="error", reasons=(msg,), production=prod_meta, timings={"total_s": seconds}, **base)
+
+
 def audit_series_for(item: ModelInput, settings: AuditSettings, cache: CalibrationCache) -> AuditResult:
     """Call the core audit with a staged model's data, spec, noise law and production version."""
-    from fitaudit.core.audit import audit_series
+    return run_steps(audit_series_steps_for(item, settings, cache))
 
+
+def audit_series_steps_for(item: ModelInput, settings: AuditSettings, cache: CalibrationCache) -> Steps[AuditResult]:
+    """:func:`audit_series_for` as steps (:func:`fitaudit.core.audit.audit_series_steps`)."""
     production = item.production
-    return audit_series(
-        item.y,
-        dict(item.entry.spec),
-        noise=item.entry.noise_law(),
-        exog=item.exog or None,
-        production=None if production is None else production["params"],
-        production_noise=None if production is None else production.get("noise"),
-        settings=settings,
-        cache=cache,
-        label=f"model {item.model_id!r}",
-        timestamps=item.time,
+    return (
+        yield from audit_series_steps(
+            item.y,
+            dict(item.entry.spec),
+            noise=item.entry.noise_law(),
+            exog=item.exog or None,
+            production=None if production is None else production["params"],
+            production_noise=None if production is None else production.get("noise"),
+            settings=settings,
+            cache=cache,
+            label=f"model {item.model_id!r}",
+            timestamps=item.time,
+        )
     )
 
 
@@ -205,9 +227,28 @@ def audit_forecasts_for(item: ModelInput, settings: AuditSettings, cache: Calibr
 def audit_inputs(
     items: Iterable[ModelInput], policy: Policy, cache: CalibrationCache | None = None, time_limit_s: float = 0.0
 ) -> list[Outcome]:
-    """Audit staged models with one shared calibration cache (``time_limit_s`` per model, see :func:`audit_input`)."""
+    """Audit staged models with one shared calibration cache (``time_limit_s`` per model, see :func:`audit_input`).
+
+    The models run side by side (:func:`fitaudit.core.lockstep.lockstep`), so that their checks'
+    maps and gates are computed together; each outcome is the one the model gets alone.  A model's
+    time limit bounds its own stretches of work, and whatever one model's audit raises becomes its
+    ``error`` outcome only.
+    """
     cache = cache if cache is not None else CalibrationCache()
-    return [audit_input(item, policy, cache, time_limit_s) for item in items]
+    items = list(items)
+    spent = [0.0] * len(items)
+
+    def resume(i: int, advance):
+        t0 = time.perf_counter()
+        try:
+            with time_limit(max(time_limit_s - spent[i], 1e-3) if time_limit_s > 0 else 0.0):
+                return advance()
+        except (TimeLimitExceeded, Exception) as exc:  # anything (a user's nonlinear function) stays with this model
+            return _failed_outcome(items[i], exc, spent[i] + time.perf_counter() - t0, time_limit_s)
+        finally:
+            spent[i] += time.perf_counter() - t0
+
+    return lockstep([_input_steps(item, policy, cache) for item in items], resume)
 
 
 def audit_batch(
