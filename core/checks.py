@@ -109,8 +109,22 @@ def _score_steps(
     n = e.size
     s = number_of_cells(n, k)
     gate = settings.gate(n, k)
-    scored = yield MapRequest(u, s, gate, settings.alphas, settings.betas, settings.scaling, settings.r)
+    lags = settings.lb_lags or ljung_box_lags(n, period if period > 1 else settings.season, model_df)
+    lags = min(lags, n - 1)
+    plot_lags = max(lags, min(2 * period, n // 4) if period > 1 else lags)
+    scored = yield MapRequest(
+        u,
+        s,
+        gate,
+        settings.alphas,
+        settings.betas,
+        settings.scaling,
+        settings.r,
+        errors=e,
+        lags=plot_lags if lags >= 1 else None,  # else the gates below say what is wrong, as alone
+    )
     counts, dmap, g_obs = scored.counts, scored.map, scored.gate_statistics  # g_obs: (P, G)
+    cov, cov_sq = scored.autocovariances, scored.square_autocovariances
     t_obs = dmap.t_max
     calib: dict = {"method": settings.calibration}
     half = settings.level / 2
@@ -186,11 +200,9 @@ def _score_steps(
         "partitions": partitions,
         "deciding": deciding,
     }
-    lags = settings.lb_lags or ljung_box_lags(n, period if period > 1 else settings.season, model_df)
-    lags = min(lags, n - 1)
-    lb = ljung_box(e, lags, model_df=model_df if kind == "refit" else 0)
-    ml = mcleod_li(e, lags)
-    r = acf(e, lags)
+    lb = ljung_box(e, lags, model_df=model_df if kind == "refit" else 0, given=cov)
+    ml = mcleod_li(e, lags, given=cov_sq)
+    r = acf(e, lags, given=cov)
     effect_acf = float(np.max(np.abs(r[1:]))) if lags >= 1 else float("nan")
     lb_dict = lb.to_dict()
     p_ind = lb.p_value
@@ -233,7 +245,7 @@ def _score_steps(
         counts=tuple(int(c) for c in counts),
         gate=gate_info,
         window=window,
-        plots=plot_data(e, law, nparams, max(lags, min(2 * period, n // 4) if period > 1 else lags)),
+        plots=plot_data(e, law, nparams, plot_lags, autocovariances=cov),
         settings_level=settings.level,
         practical=(settings.practical_divergence, settings.practical_acf),
     )

@@ -34,11 +34,13 @@ __all__ = [
     "PortmanteauResult",
     "acf",
     "acf_band",
+    "autocovariances",
     "chi2_sf",
     "ljung_box",
     "ljung_box_batch",
     "ljung_box_lags",
     "mcleod_li",
+    "square_autocovariances",
 ]
 
 
@@ -109,8 +111,16 @@ def _check_lags(lags, n: int, owner: str, model_df: int = 0) -> tuple[int, int]:
 # --------------------------------------------------------------------------------------------
 # Autocorrelation
 # --------------------------------------------------------------------------------------------
-def _autocovariance(X: np.ndarray, nlags: int) -> np.ndarray:
-    """Autocovariances c_0..c_h of every row (mean removed, denominator n); X is (R, n)."""
+def autocovariances(X: np.ndarray, nlags: int) -> np.ndarray:
+    """Autocovariances ``c_0..c_h`` (``h = nlags``) of every row of X (R, n): mean removed, denominator n.
+
+    Each row's values do not depend on the other rows, nor on ``nlags`` beyond their own lags (the
+    first ``k + 1`` values of a call with more lags are those of a call with ``k``), so one call
+    serves many series and every statistic built from them (tests/test_lockstep.py).
+
+    >>> autocovariances(np.array([[1.0, 2.0, 3.0, 4.0]]), 1).tolist()
+    [[1.25, 0.3125]]
+    """
     n = X.shape[1]
     dev = X - X.mean(axis=1, keepdims=True)
     padded = np.concatenate([dev, np.zeros((len(X), nlags))], axis=1)
@@ -118,7 +128,7 @@ def _autocovariance(X: np.ndarray, nlags: int) -> np.ndarray:
     return np.einsum("rkt,rt->rk", shifted, dev) / n
 
 
-def acf(x, nlags: int) -> np.ndarray:
+def acf(x, nlags: int, *, given: np.ndarray | None = None) -> np.ndarray:
     """Sample autocorrelation function.
 
     ``r_k = c_k / c_0`` with ``c_k = (1/n) sum_{t=1..n-k} (x_t - xbar)(x_{t+k} - xbar)`` (the
@@ -130,6 +140,9 @@ def acf(x, nlags: int) -> np.ndarray:
         Residuals; leading NaN are dropped.
     nlags : int
         Largest lag h, ``1 <= h < n``.
+    given : ndarray, optional
+        The series' :func:`autocovariances` (leading NaN dropped), at least ``nlags + 1`` of them,
+        when they were computed with other series' (:mod:`fitaudit.core.lockstep`): the same result.
 
     Returns
     -------
@@ -148,7 +161,7 @@ def acf(x, nlags: int) -> np.ndarray:
     """
     a = _residual_series(x, "acf")
     _check_lags(nlags, a.size, "acf")
-    c = _autocovariance(a[None, :], int(nlags))[0]
+    c = autocovariances(a[None, :], int(nlags))[0] if given is None else given[: int(nlags) + 1]
     if c[0] <= 0:
         raise InputError("acf: the residuals are constant, so their autocorrelation is undefined.")
     return c / c[0]
@@ -227,14 +240,24 @@ class PortmanteauResult:
 
 def _q_statistic(X: np.ndarray, lags: int) -> np.ndarray:
     """Ljung-Box Q of every row of X (R, n)."""
-    n = X.shape[1]
-    c = _autocovariance(X, lags)
-    r = c[:, 1:] / c[:, :1]
+    return _q_from(autocovariances(X, lags), X.shape[1], lags)
+
+
+def square_autocovariances(X: np.ndarray, nlags: int) -> np.ndarray:
+    """:func:`autocovariances` of the squares of every row of X (R, n), centred by their row mean
+    (what :func:`mcleod_li` tests)."""
+    squares = X**2
+    return autocovariances(squares - squares.mean(axis=1, keepdims=True), nlags)
+
+
+def _q_from(c: np.ndarray, n: int, lags: int) -> np.ndarray:
+    """Ljung-Box Q of rows of autocovariances ``c`` (R, at least lags + 1) of series of length n."""
+    r = c[:, 1 : lags + 1] / c[:, :1]
     k = np.arange(1, lags + 1)
     return n * (n + 2) * np.sum(r**2 / (n - k), axis=1)
 
 
-def ljung_box(x, lags: int, model_df: int = 0) -> PortmanteauResult:
+def ljung_box(x, lags: int, model_df: int = 0, *, given: np.ndarray | None = None) -> PortmanteauResult:
     """Ljung-Box portmanteau test of residual autocorrelation [1]_.
 
     ``Q = n (n + 2) sum_{k=1..h} r_k^2 / (n - k)`` referred to ``chi2(h - model_df)``, with
@@ -249,6 +272,8 @@ def ljung_box(x, lags: int, model_df: int = 0) -> PortmanteauResult:
         h, ``model_df < h < n``; see :func:`ljung_box_lags`.
     model_df : int, default 0
         Number of estimated ARMA coefficients (0 for production errors).
+    given : ndarray, optional
+        As for :func:`acf`: the series' autocovariances, at least ``lags + 1`` of them.
 
     Returns
     -------
@@ -258,11 +283,12 @@ def ljung_box(x, lags: int, model_df: int = 0) -> PortmanteauResult:
     lags, df = _check_lags(lags, a.size, "ljung_box", model_df)
     if np.ptp(a) == 0:
         raise InputError("ljung_box: the residuals are constant, so their autocorrelation is undefined.")
-    q = float(_q_statistic(a[None, :], lags)[0])
+    c = autocovariances(a[None, :], lags) if given is None else given[None, :]
+    q = float(_q_from(c, a.size, lags)[0])
     return PortmanteauResult("ljung-box", q, lags, df, float(chi2_sf(q, df)), _LJUNG_BOX_CONVENTION, int(a.size))
 
 
-def mcleod_li(x, lags: int) -> PortmanteauResult:
+def mcleod_li(x, lags: int, *, given: np.ndarray | None = None) -> PortmanteauResult:
     """McLeod-Li test: Ljung-Box on the squared residuals [2]_.
 
     ``Q`` of :func:`ljung_box` computed from ``e_t^2`` (centred by their mean), referred to
@@ -274,6 +300,9 @@ def mcleod_li(x, lags: int) -> PortmanteauResult:
         Residuals; leading NaN are dropped.
     lags : int
         h, ``1 <= h < n``.
+    given : ndarray, optional
+        The series' :func:`square_autocovariances`, at least ``lags + 1`` of them, when they were
+        computed with other series' (:mod:`fitaudit.core.lockstep`): the same result.
 
     Returns
     -------
@@ -281,10 +310,10 @@ def mcleod_li(x, lags: int) -> PortmanteauResult:
     """
     a = _residual_series(x, "mcleod_li")
     lags, df = _check_lags(lags, a.size, "mcleod_li")
-    sq = a**2
-    if np.ptp(sq) == 0:
+    if np.ptp(a**2) == 0:
         raise InputError("mcleod_li: the squared residuals are constant, so their autocorrelation is undefined.")
-    q = float(_q_statistic((sq - sq.mean())[None, :], lags)[0])
+    c = square_autocovariances(a[None, :], lags) if given is None else given[None, :]
+    q = float(_q_from(c, a.size, lags)[0])
     return PortmanteauResult("mcleod-li", q, lags, df, float(chi2_sf(q, df)), _MCLEOD_LI_CONVENTION, int(a.size))
 
 

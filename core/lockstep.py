@@ -2,12 +2,14 @@
 
 Scoring a check (:func:`fitaudit.core.checks.score_frozen`, the refit check) starts with three
 computations on its PIT values: the counts in equiprobable cells, the divergence map over the
-(alpha, beta) grid and the gate's statistics on its partitions.  For one check they are some
-thirty small numpy calls; for a hundred checks of the same shape they are the same thirty calls
-on a hundred rows, at about a sixth of the cost per check (docs/performance.md).
+(alpha, beta) grid and the gate's statistics on its partitions; and two on its errors: their
+autocovariances and those of their squares (the Ljung-Box and McLeod-Li gates, the report's
+autocorrelations).  For one check they are some forty small numpy calls; for a hundred checks of
+the same shape they are the same calls on a hundred rows, at a fraction of the cost per check
+(docs/performance.md).
 
 A check's steps are therefore a generator: it yields a :class:`MapRequest` when its PIT values
-are known and receives the :class:`MapAndGate` for them (or the exception their computation
+and errors are known and receives the :class:`MapAndGate` for them (or the exception their computation
 raised, thrown in where the request was made).  :func:`run_steps` answers the requests of one
 audit alone; :func:`lockstep` runs the steps of many audits side by side and answers the requests
 of each round together (:func:`map_and_gate`).  Each row's arithmetic is its own, so every result
@@ -26,6 +28,7 @@ import numpy as np
 
 from .calibration import Gate
 from .cells import cell_counts
+from .diagnostics import autocovariances, square_autocovariances
 from .divergence import DivergenceMap, divergence_map, row_block
 
 __all__ = ["MapRequest", "MapAndGate", "Steps", "Waited", "map_and_gate", "run_steps", "lockstep"]
@@ -36,7 +39,9 @@ T = TypeVar("T")
 @dataclass(frozen=True, eq=False)
 class MapRequest:
     """A check's PIT values ``u`` (shape (n,)), scored in ``cells`` equiprobable cells on the
-    grid ``alphas`` x ``betas`` with ``scaling`` (and ``r``) and by the distribution ``gate``."""
+    grid ``alphas`` x ``betas`` with ``scaling`` (and ``r``) and by the distribution ``gate``;
+    and its errors ``errors`` (shape (n,)), whose autocovariances up to lag ``lags`` the
+    independence gate and the report read (None: not wanted)."""
 
     u: np.ndarray
     cells: int
@@ -45,20 +50,26 @@ class MapRequest:
     betas: tuple
     scaling: str
     r: float | None
+    errors: np.ndarray | None = None
+    lags: int | None = None
 
     def group(self) -> tuple:
         """Requests with equal groups are computed in one call."""
-        return (self.u.size, self.cells, self.gate.key(), self.alphas, self.betas, self.scaling, self.r)
+        return (self.u.size, self.cells, self.gate.key(), self.alphas, self.betas, self.scaling, self.r, self.lags)
 
 
 @dataclass(frozen=True, eq=False)
 class MapAndGate:
     """The answer to a :class:`MapRequest`: the cell counts (shape (cells,)), the divergence map
-    with its classical members, and the gate's statistics (shape (partitions, members))."""
+    with its classical members, the gate's statistics (shape (partitions, members)) and, when
+    asked for, the errors' :func:`~fitaudit.core.diagnostics.autocovariances` and those of their
+    squares (:func:`~fitaudit.core.diagnostics.square_autocovariances`), each of shape (lags + 1,)."""
 
     counts: np.ndarray
     map: DivergenceMap
     gate_statistics: np.ndarray
+    autocovariances: np.ndarray | None = None
+    square_autocovariances: np.ndarray | None = None
 
 
 #: The steps of a check or an audit: yields requests, receives their answers, returns its result.
@@ -73,11 +84,16 @@ def _compute(requests: Sequence[MapRequest]) -> list[MapAndGate]:
     block = row_block(max(s, sum(part.s for part in gate.partitions)))
     out: list[MapAndGate] = []
     for lo in range(0, len(requests), block):
-        u = np.stack([r.u for r in requests[lo : lo + block]])
+        rows = requests[lo : lo + block]
+        u = np.stack([r.u for r in rows])
         counts = cell_counts(u, s)
         dmap = divergence_map(counts, probs, first.alphas, first.betas, first.scaling, first.r)
         g = gate.statistics(u)
-        out += [MapAndGate(counts[i], dmap.row(i), g[i]) for i in range(len(u))]
+        cov = cov_sq = [None] * len(rows)
+        if first.lags is not None:
+            errors = np.stack([r.errors for r in rows])
+            cov, cov_sq = autocovariances(errors, first.lags), square_autocovariances(errors, first.lags)
+        out += [MapAndGate(counts[i], dmap.row(i), g[i], cov[i], cov_sq[i]) for i in range(len(u))]
     return out
 
 

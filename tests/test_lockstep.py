@@ -19,6 +19,7 @@ import pytest
 from fitaudit.core.audit import audit_series, audit_series_steps
 from fitaudit.core.calibration import CalibrationCache
 from fitaudit.core.cells import cell_counts, number_of_cells
+from fitaudit.core.diagnostics import acf, autocovariances, ljung_box, mcleod_li, square_autocovariances
 from fitaudit.core.divergence import divergence_map, row_block
 from fitaudit.core.lockstep import MapAndGate, MapRequest, lockstep, map_and_gate, run_steps
 from fitaudit.core.settings import AuditSettings
@@ -62,6 +63,23 @@ def test_rows_of_a_block_are_scored_as_each_row_alone(n, k):
         alone = divergence_map(cell_counts(u[i], s), probs, settings.alphas, settings.betas, settings.scaling)
         assert pickle.dumps(alone) == pickle.dumps(together.row(i))
         assert np.array_equal(gate.statistics(u[i]), gate_together[i], equal_nan=True)
+
+
+def test_independence_statistics_from_a_batchs_autocovariances_equal_those_of_each_series_alone():
+    """Ljung-Box, McLeod-Li and the autocorrelations read from autocovariances computed for many
+    series at once, with more lags than they use, equal the functions' own computation."""
+    rng = np.random.default_rng(15)
+    errors = rng.standard_t(4, size=(40, 723)) * rng.uniform(0.01, 100.0, size=(40, 1))
+    cov, cov_sq = autocovariances(errors, 20), square_autocovariances(errors, 20)
+    for i, e in enumerate(errors):
+        assert pickle.dumps(ljung_box(e, 14, 3, given=cov[i])) == pickle.dumps(ljung_box(e, 14, 3))
+        assert pickle.dumps(mcleod_li(e, 14, given=cov_sq[i])) == pickle.dumps(mcleod_li(e, 14))
+        assert np.array_equal(acf(e, 20, given=cov[i]), acf(e, 20))
+    # source: statsmodels acorr_ljungbox (general-purpose reference library), same convention
+    from statsmodels.stats.diagnostic import acorr_ljungbox
+
+    theirs = acorr_ljungbox(errors[0], lags=[14], model_df=3)
+    assert ljung_box(errors[0], 14, 3, given=cov[0]).statistic == pytest.approx(float(theirs["lb_stat"].iloc[0]))
 
 
 def test_a_request_that_cannot_be_scored_gets_its_exception_and_the_others_their_answers():
