@@ -555,15 +555,27 @@ class ExpSmoothing(ForecastModel):
         lower = np.array([-np.inf if lo is None else lo for lo, _ in bounds])
         upper = np.array([np.inf if hi is None else hi for _, hi in bounds])
 
+        # The recursion's cost is mostly per time step, not per parameter vector: the residuals of a
+        # point are computed with the central differences around it (one pass for 2d + 1 vectors
+        # costs about 1.6 times a pass for one), and the Jacobian the optimiser asks for next, at
+        # the same point unless it rejected the step, is then already there.
+        last: dict = {}
+
+        def with_jacobian(z: np.ndarray) -> np.ndarray:
+            Z, step = _central_batch(z)
+            E = self._multiplicative_errors(ys, self._to_natural(Z))
+            J = (E[1::2] - E[2::2]).T / (2.0 * step)
+            last.update(z=z.copy(), jacobian=np.where(np.isfinite(J), J, 0.0))
+            return E[0]
+
         def residuals(z: np.ndarray) -> np.ndarray:
-            e = self._multiplicative_errors(ys, self._to_natural(z[None, :]))[0]
+            e = with_jacobian(z)
             return np.where(np.isfinite(e), e, _NONFINITE_PENALTY)
 
         def jacobian(z: np.ndarray) -> np.ndarray:
-            Z, step = _central_batch(z)
-            E = self._multiplicative_errors(ys, self._to_natural(Z[1:]))
-            J = (E[0::2] - E[1::2]).T / (2.0 * step)
-            return np.where(np.isfinite(J), J, 0.0)
+            if not ("z" in last and np.array_equal(last["z"], z)):
+                with_jacobian(z)
+            return last["jacobian"].copy(order="K")  # its layout too: the optimiser's products depend on it
 
         runs = [
             optimize.least_squares(
