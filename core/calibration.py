@@ -125,9 +125,17 @@ class Gate:
     def statistics(self, u: np.ndarray | CountsBelow) -> np.ndarray:
         """``2 n B`` of every member on every partition, shape (P, G) for u of shape (n,), (R, P, G) for (R, n)
         (or for rows known by their counts below every partition's boundaries)."""
+        return self.statistics_of_counts(self.counts(u))
+
+    def counts(self, u: np.ndarray | CountsBelow) -> list[np.ndarray]:
+        """Each partition's cell counts of ``u``, shape (s_p,) or (R, s_p)."""
+        return [part.counts(u) for part in self.partitions]
+
+    def statistics_of_counts(self, partition_counts: Sequence[np.ndarray]) -> np.ndarray:
+        """:meth:`statistics` from the partitions' counts (:meth:`counts`)."""
         ua, ia = np.unique(self.alphas, return_inverse=True)
         ub, ib = np.unique(self.betas, return_inverse=True)
-        counts = np.concatenate([part.counts(u) for part in self.partitions], axis=-1)
+        counts = np.concatenate(partition_counts, axis=-1)
         probs = np.concatenate([part.probs for part in self.partitions])
         sizes = [part.s for part in self.partitions]
         return partition_statistics(counts, probs, sizes, ua, ub, self.scaling, self.r)[..., ia, ib]

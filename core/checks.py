@@ -63,13 +63,12 @@ def _slice_exog(exog: Mapping[str, np.ndarray] | None, sl: slice) -> dict | None
     return {k: np.asarray(v, dtype=float)[sl] for k, v in exog.items()}
 
 
-def _deciding_partition(part, u: np.ndarray) -> dict:
-    """The cell of ``part`` whose count departs most from its expectation, in plain words.
+def _deciding_partition(part, obs: np.ndarray) -> dict:
+    """The cell of ``part`` whose count ``obs`` departs most from its expectation, in plain words.
 
     The departure is measured by the Pearson residual ``(O - E) / sqrt(E)``; the sentence reads
     e.g. "the lowest 0.5 % of the assumed law holds 6 errors where 1.0 were expected".
     """
-    obs = part.counts(u)
     exp = part.probs * obs.sum()
     j = int(np.argmax(np.abs(obs - exp) / np.sqrt(exp)))
     return {
@@ -124,6 +123,7 @@ def _score_steps(
         lags=plot_lags if lags >= 1 else None,  # else the gates below say what is wrong, as alone
     )
     counts, dmap, g_obs = scored.counts, scored.map, scored.gate_statistics  # g_obs: (P, G)
+    part_counts = scored.partition_counts
     cov, cov_sq = scored.autocovariances, scored.square_autocovariances
     t_obs = dmap.t_max
     calib: dict = {"method": settings.calibration}
@@ -138,7 +138,7 @@ def _score_steps(
                 grad = law.cell_probability_gradient(
                     np.asarray(part.boundaries) if not part.equiprobable else part.s, nparams
                 )
-                extras[i] = nrr_term(part.counts(u), info, grad, part.probs)
+                extras[i] = nrr_term(part_counts[i], info, grad, part.probs)
             calib["nrr_terms"] = [float(x) for x in extras]
         dfs = np.array([p.s - 1 for p in gate.partitions])
         crit = np.array([chi2_critical_value(half, int(d)) for d in dfs])
@@ -179,13 +179,13 @@ def _score_steps(
         ip, ig = np.unravel_index(int(np.argmax(ratio)), ratio.shape)
         a_max, b_max = gate.alphas[ig], gate.betas[ig]
         t_at, crit_at = float(g_obs[ip, ig]), float(gate_crit[ip, ig])
-        deciding = _deciding_partition(gate.partitions[ip], u)
+        deciding = _deciding_partition(gate.partitions[ip], part_counts[ip])
     else:
         a_max = b_max = t_at = crit_at = float("nan")
     partitions = []
     for i, part in enumerate(gate.partitions):
         row = part.to_dict()
-        row["counts"] = [int(c) for c in part.counts(u)]
+        row["counts"] = [int(c) for c in part_counts[i]]
         with np.errstate(invalid="ignore", divide="ignore"):
             row["standardised"] = (
                 float(np.max(np.where(np.isfinite(ratio[i]), ratio[i], -np.inf)))

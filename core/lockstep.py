@@ -61,13 +61,15 @@ class MapRequest:
 @dataclass(frozen=True, eq=False)
 class MapAndGate:
     """The answer to a :class:`MapRequest`: the cell counts (shape (cells,)), the divergence map
-    with its classical members, the gate's statistics (shape (partitions, members)) and, when
+    with its classical members, the gate's statistics (shape (partitions, members)), each of the
+    gate's partitions' cell counts (:meth:`~fitaudit.core.calibration.Gate.counts`) and, when
     asked for, the errors' :func:`~fitaudit.core.diagnostics.autocovariances` and those of their
     squares (:func:`~fitaudit.core.diagnostics.square_autocovariances`), each of shape (lags + 1,)."""
 
     counts: np.ndarray
     map: DivergenceMap
     gate_statistics: np.ndarray
+    partition_counts: tuple
     autocovariances: np.ndarray | None = None
     square_autocovariances: np.ndarray | None = None
 
@@ -88,12 +90,16 @@ def _compute(requests: Sequence[MapRequest]) -> list[MapAndGate]:
         u = np.stack([r.u for r in rows])
         counts = cell_counts(u, s)
         dmap = divergence_map(counts, probs, first.alphas, first.betas, first.scaling, first.r)
-        g = gate.statistics(u)
+        part_counts = gate.counts(u)
+        g = gate.statistics_of_counts(part_counts)
         cov = cov_sq = [None] * len(rows)
         if first.lags is not None:
             errors = np.stack([r.errors for r in rows])
             cov, cov_sq = autocovariances(errors, first.lags), square_autocovariances(errors, first.lags)
-        out += [MapAndGate(counts[i], dmap.row(i), g[i], cov[i], cov_sq[i]) for i in range(len(u))]
+        out += [
+            MapAndGate(counts[i], dmap.row(i), g[i], tuple(c[i] for c in part_counts), cov[i], cov_sq[i])
+            for i in range(len(u))
+        ]
     return out
 
 
@@ -141,12 +147,7 @@ def _advance(steps: Steps, answer: Any) -> MapRequest | _Finished:
 
 def run_steps(steps: Steps[T]) -> T:
     """Run one audit's (or check's) ``steps`` alone, answering each request on its own; its result."""
-    answer: Any = None
-    while True:
-        step = _advance(steps, answer)
-        if isinstance(step, _Finished):
-            return step.value
-        answer = map_and_gate([step])[0]
+    return lockstep([steps])[0]
 
 
 def lockstep(
