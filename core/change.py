@@ -167,11 +167,13 @@ def permutation_maxima(idx: np.ndarray, s: int, trim: int) -> np.ndarray:
     # each row's value is computed from that row alone, so the blocks give the same values
     rows = max(1, _BLOCK_ELEMENTS // n)
     step = np.empty((min(rows, B), n))
+    # flat offsets of the rows: a scatter through one flat index is half the cost of put_along_axis's
+    offsets = np.arange(0, step.size, n)[:, None]
     for lo in range(0, B, rows):
         keys = _sort_keys(idx[lo : lo + rows], s)
         block = step[: len(keys)]
         order = np.argsort(keys, axis=1, kind="stable")
-        np.put_along_axis(block, order, np.broadcast_to(sorted_step, block.shape), axis=1)
+        block.reshape(-1)[order + offsets[: len(keys)]] = sorted_step  # block[i, order[i, j]] = sorted_step[j]
         # T_k / 2 in place, in the order of 2 (s0 + S_k - f(k) - f(n - k) - s0 + f(n)); doubling is
         # exact, so it is applied to the maxima
         np.cumsum(block, axis=1, out=block)

@@ -159,7 +159,17 @@ def _production(
 
 
 def _same_spec(a: dict, b: dict) -> bool:
-    """Whether two spec dicts describe the same model (defaults filled in by the model class)."""
+    """Whether two spec dicts describe the same model (defaults filled in by the model class).
+
+    Specs with the same JSON text need no models built (the usual case: the stored version's spec
+    is the registry's, whose model the registry built when it was loaded; 0.1 s of staging for
+    1,000 models).
+    """
+    try:
+        if json.dumps(a, sort_keys=True) == json.dumps(b, sort_keys=True):
+            return True
+    except (TypeError, ValueError):  # not plain JSON: compare the models
+        pass
     try:
         return json_ready(model_from_dict(dict(a)).to_dict()) == json_ready(model_from_dict(dict(b)).to_dict())
     except Exception:  # an unreadable stored spec is a mismatch, reported by the caller

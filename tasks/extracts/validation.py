@@ -103,7 +103,7 @@ def _unsorted(time: np.ndarray) -> tuple[str, str]:
 
 def _grid_problems(time: np.ndarray, frequency: str, holidays: tuple = ()) -> list[tuple[str, str]]:
     """Off-grid timestamps and gaps against the declared frequency (on the sorted distinct times)."""
-    t = np.unique(time[~np.isnat(time)])
+    t = _distinct_sorted(time[~np.isnat(time)])
     if t.size < 2:
         return []
     index, on_grid, to_time = _grid_index(t, frequency, holidays)
@@ -150,14 +150,34 @@ def _grid_problems(time: np.ndarray, frequency: str, holidays: tuple = ()) -> li
     return out
 
 
+def _distinct_sorted(t: np.ndarray) -> np.ndarray:
+    """``np.unique(t)``; for times already in order (the usual case) without sorting them again.
+
+    >>> x = np.array(["2026-01-02", "2026-01-01", "2026-01-02"], dtype="datetime64[D]")
+    >>> _distinct_sorted(x).tolist() == _distinct_sorted(np.sort(x)).tolist() == np.unique(x).tolist()
+    True
+    """
+    if t.size < 2 or not (t[1:] >= t[:-1]).all():
+        return np.unique(t)
+    keep = np.empty(t.size, dtype=bool)
+    keep[0] = True
+    np.not_equal(t[1:], t[:-1], out=keep[1:])
+    return t[keep]
+
+
 def _grid_index(t: np.ndarray, frequency: str, holidays: tuple = ()):
     """(grid position of each time, on-grid mask, function from positions back to times)."""
     if frequency in FIXED_STEPS:
         step = FIXED_STEPS[frequency].astype("timedelta64[ns]").astype(np.int64)
         ns = t.astype(np.int64)
-        residues, counts = np.unique(ns % step, return_counts=True)
-        anchor = int(residues[np.argmax(counts)])
-        on_grid = ns % step == anchor
+        residue = ns % step
+        on_grid = residue == residue[0]
+        if on_grid.all():  # the usual case: every time on one grid
+            anchor = int(residue[0])
+        else:  # the grid most times are on
+            residues, counts = np.unique(residue, return_counts=True)
+            anchor = int(residues[np.argmax(counts)])
+            on_grid = residue == anchor
         base = ns[on_grid][0]
         index = (ns - base) // step
 
