@@ -49,12 +49,16 @@ def json_ready(obj: Any) -> Any:
     return plain_data(obj, nan="nan", strict=True)
 
 
-def canonical_json(obj: Any, indent: int | None = None, *, parsed: bool = False) -> bytes:
+def canonical_json(obj: Any, indent: int | None = None, *, str_keys: bool = False) -> bytes:
     """Deterministic UTF-8 JSON: sorted keys, no NaN, fixed separators (hash input).
 
-    ``parsed=True`` says ``obj`` came from ``json.loads`` (only dicts, lists, strings, numbers,
-    booleans and None): the conversion by :func:`json_ready` is skipped unless a non-finite float
-    needs it, with the same bytes as a result (the chain check writes every line back this way).
+    ``str_keys=True`` says every dict key in ``obj`` is a string, as in what ``json.loads`` returns
+    and in the records of :func:`fitaudit.tasks.outcomes.records`: ``obj`` is written as it is, and
+    only when it holds a value JSON cannot write (a non-finite float, a numpy integer or array, a
+    path, a date) does it go through :func:`json_ready` first, with the same bytes as a result (the
+    chain check writes every line back this way; a record's walk is a third of its writing).  Keys
+    of other types would be sorted, and written, differently: ``json`` sorts them before turning
+    them into text, :func:`json_ready` after.
     """
     options = {
         "sort_keys": True,
@@ -64,8 +68,8 @@ def canonical_json(obj: Any, indent: int | None = None, *, parsed: bool = False)
         "separators": (",", ":") if indent is None else (",", ": "),
     }
     try:
-        text = json.dumps(obj, **options) if parsed else None
-    except ValueError:  # NaN or infinity: json_ready turns them into strings
+        text = json.dumps(obj, **options) if str_keys else None
+    except (TypeError, ValueError):  # a value only json_ready turns into JSON
         text = None
     if text is None:
         text = json.dumps(json_ready(obj), **options)

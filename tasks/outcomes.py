@@ -420,7 +420,7 @@ def stage_records(
     staged, offset = [], 0
     with open(part, "wb") as fh:
         for rec in records:
-            data = canonical_json(rec)
+            data = canonical_json(rec, str_keys=True)  # records hold string keys only (test)
             fh.write(data)
             page = folder / "models" / f"{rec['safe_id']}.html"
             page.write_bytes(render_model_page(rec, context, as_of))

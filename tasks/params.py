@@ -128,9 +128,9 @@ class ParameterVersion:
         return json_ready({**self.content(), "sha256": self.sha256})
 
 
-def _digest(content: Mapping[str, Any], *, parsed: bool = False) -> str:
-    """SHA-256 of the canonical JSON of ``content`` (``parsed``: read by ``json.loads``, see canonical_json)."""
-    return sha256_bytes(canonical_json(content, parsed=parsed))
+def _digest(content: Mapping[str, Any], *, str_keys: bool = False) -> str:
+    """SHA-256 of the canonical JSON of ``content`` (``str_keys``: read by ``json.loads``, see canonical_json)."""
+    return sha256_bytes(canonical_json(content, str_keys=str_keys))
 
 
 def _model_dir(archive_root: str | os.PathLike, model_id: str) -> pathlib.Path:
@@ -328,7 +328,7 @@ def _load(path: pathlib.Path, model_id: str, version: int, content: bytes | None
             f"{path}: fields {sorted(set(data) ^ expected)} differ from a parameter version record; "
             "the file was altered"
         )
-    if _digest(data, parsed=True) != stored:
+    if _digest(data, str_keys=True) != stored:
         raise ParameterStoreError(
             f"{path}: content does not match its SHA-256 ({stored}); the file was altered after it "
             "was written. Restore it from a backup; never edit parameter versions, write a new one"

@@ -249,25 +249,29 @@ def test_staging_in_several_scans_writes_the_same_batches(demo, registry, tmp_pa
             )
 
 
-def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo, registry, tmp_path):
+@pytest.fixture(scope="module")
+def demo_outcomes(demo, registry, tmp_path_factory):
+    """Six demo models with every verdict, staged in two batches: the batches, and their final
+    outcomes audited in full and light (spilled)."""
     from fitaudit.demo import DEMO_AS_OF
-    from fitaudit.tasks.audit import (
-        audit_batch,
-        audit_batch_spilled,
-        calibration_for,
-        finalize,
-        records,
-        restore_outcomes,
-        spill_path,
-    )
+    from fitaudit.tasks.audit import audit_batch, audit_batch_spilled, calibration_for, finalize
     from fitaudit.tasks.batches import stage_inputs
 
     wanted = ["demand-d-02", "demand-d-07", "demand-d-13", "demand-d-22", "demand-d-25", "energy-pump-01"]
-    staged = stage_inputs(registry, DEMO_AS_OF, tmp_path, archive_root=demo["archive"], model_ids=wanted, batch_size=3)
+    folder = tmp_path_factory.mktemp("optimisations-outcomes")
+    staged = stage_inputs(registry, DEMO_AS_OF, folder, archive_root=demo["archive"], model_ids=wanted, batch_size=3)
     paths = [b.path for b in staged.batches]
     cache = calibration_for(paths, registry.policy)
     full = finalize([o for p in paths for o in audit_batch(p, registry.policy, cache)], registry.policy)
     light = finalize([o for p in paths for o in audit_batch_spilled(p, registry.policy, cache)], registry.policy)
+    return staged, full, light
+
+
+def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo_outcomes):
+    from fitaudit.demo import DEMO_AS_OF
+    from fitaudit.tasks.audit import records, restore_outcomes, spill_path
+
+    staged, full, light = demo_outcomes
     restored, start = [], 0
     for batch in staged.batches:
         restored += restore_outcomes(light[start : start + len(batch.model_ids)], spill_path(batch.path))
@@ -275,6 +279,31 @@ def test_light_outcomes_restored_after_the_fleet_rules_equal_full_ones(demo, reg
     assert {o.verdict for o in full} >= {"pass", "refit", "respecify", "insufficient"}
     # source: the fleet rules applied to the full outcomes (the unoptimised path)
     assert records(restored, DEMO_AS_OF.isoformat()) == records(full, DEMO_AS_OF.isoformat())
+
+
+def test_records_hold_string_keys_only_so_their_json_needs_no_conversion(demo_outcomes):
+    """stage_records writes a record with ``canonical_json(..., str_keys=True)``: json.dumps of the
+    record itself, which sorts keys before turning them into text; the same bytes as the full
+    conversion only while every key is a string."""
+    from fitaudit.demo import DEMO_AS_OF
+    from fitaudit.tasks._io import canonical_json
+    from fitaudit.tasks.audit import records
+
+    def keys(value):
+        if isinstance(value, dict):
+            yield from value
+            for v in value.values():
+                yield from keys(v)
+        elif isinstance(value, (list, tuple)):
+            for v in value:
+                yield from keys(v)
+
+    _, full, _ = demo_outcomes
+    recs = records(full, DEMO_AS_OF.isoformat())
+    assert {type(k) for rec in recs for k in keys(rec)} == {str}
+    for rec in recs:
+        # source: the full conversion (json_ready, then json.dumps), the path before the shortcut
+        assert canonical_json(rec, str_keys=True) == canonical_json(rec)
 
 
 def test_candidate_lanes_search_every_model_once_and_find_what_one_search_finds(demo, registry, tmp_path):

@@ -290,7 +290,7 @@ _json_values = st.recursive(
 @settings(max_examples=300, deadline=None)
 @given(value=_json_values, indent=st.sampled_from([None, 2]))
 def test_canonical_json_of_parsed_json_skips_nothing_that_matters(value, indent):
-    """``canonical_json(..., parsed=True)`` (the chain check's shortcut) equals the full conversion,
+    """``canonical_json(..., str_keys=True)`` (the chain check's shortcut) equals the full conversion,
     non-finite floats (which ``json.loads`` accepts as NaN and Infinity) included."""
     parsed = json.loads(json.dumps(value))
-    assert canonical_json(parsed, indent, parsed=True) == canonical_json(parsed, indent)
+    assert canonical_json(parsed, indent, str_keys=True) == canonical_json(parsed, indent)

@@ -32,8 +32,8 @@ class _Chain:
     last_hash: str | None = None  # the hash the next line's prev must equal (None: not checked)
 
 
-def _entry_hash(entry: dict, *, parsed: bool = False) -> str:
-    return sha256_bytes(canonical_json({k: v for k, v in entry.items() if k != "hash"}, parsed=parsed))
+def _entry_hash(entry: dict, *, str_keys: bool = False) -> str:
+    return sha256_bytes(canonical_json({k: v for k, v in entry.items() if k != "hash"}, str_keys=str_keys))
 
 
 #: The last chain checked in this process, per chain file, cut after its last complete line.  A
@@ -89,9 +89,9 @@ def _check_lines(block: bytes, first_line: int, expected_prev: str | None) -> _C
             bad(line_no, f"is not a chain entry (expected exactly the keys {sorted(_ENTRY_KEYS)})")
             expected_prev = None
             continue
-        if canonical_json(entry, parsed=True) != raw:
+        if canonical_json(entry, str_keys=True) != raw:
             bad(line_no, "is not in canonical form (line edited)")
-        if entry["hash"] != _entry_hash(entry, parsed=True):
+        if entry["hash"] != _entry_hash(entry, str_keys=True):
             bad(line_no, "hash does not match the entry's content (line edited)")
         if entry["seq"] != line_no:
             bad(line_no, f"has seq {entry['seq']!r} but is line {line_no} (lines dropped, duplicated or reordered)")

@@ -171,7 +171,7 @@ def _check_params(root: pathlib.Path, reads: ParamsReads) -> list[ArchiveProblem
         elif path.name.endswith(".json") and path.is_file() and not path.is_symlink():
             data = reads.content(path)
             with contextlib.suppress(ValueError):  # unreadable files are reported by verify_params
-                if data != canonical_json(json.loads(data), indent=2, parsed=True):
+                if data != canonical_json(json.loads(data), indent=2, str_keys=True):
                     message = "is not byte-for-byte the canonical JSON the parameter store writes (file edited)"
                     problems.append(ArchiveProblem("params", rel, message))
     return problems
