@@ -12,6 +12,11 @@ candidates, so the candidate search runs). fitaudit audits the whole fleet with 
 the embedded Prefect server in a fresh child process with a migrated Prefect database:
 production and refit checks, simulated calibration (R = 999), fleet rules, candidate search,
 report, archive, events and artifacts. Its time is the embedded server's start plus the flow call.
+The fleet is audited three times (once with `--quick`), each time into a fresh copy of the fleet's
+archive in a fresh child process; every figure of the fleet's rows, the stages and the CPU use
+included, is that of the run whose end-to-end time is the median of the three, and the throughput
+row lists all three (on this shared machine one run's time moves by a second or two from run to
+run).
 The server is launched as `fitaudit run` launches it, after the command has read the registry (not
 timed, as the peer's imports are not) and before the flow's modules are imported, and its start is
 timed from the launch to its first answer, so the flow's imports and the start of the local worker
@@ -27,13 +32,13 @@ with a single-threaded BLAS (`OPENBLAS_NUM_THREADS=1`): with OpenBLAS's default 
 exponential smoothing fit took 7x longer on this 2-core machine, and statsmodels' fits slowed
 down just as much, which would have flattered the ratio.
 
-**Fleet throughput, tables kept.** The fleet's archive is copied before the first run; after it, a
-second copy of that fresh archive receives the `.tables` folder the first run left
+**Fleet throughput, tables kept.** The fleet's archive is copied before the first runs; after them, a
+further copy of that fresh archive receives the `.tables` folder the first of them left
 (`<archive>/.tables/`, docs/architecture.md §2.4) and the same fleet is audited again into it, in
 another fresh child process against the same Prefect home: the same work as the first run, except
 that every null table the first run built is read instead of simulated, which is the position of
-a fleet's second weekly run. Its results.json is compared byte for byte with the first run's (the
-row says whether they are identical). Goal 1 is judged on the first run.
+a fleet's second weekly run. Its results.json is compared byte for byte with each first run's (the
+row says whether they are identical). Goal 1 is judged on the first runs.
 
 **Orchestration share.** In the same child process, fitaudit's work functions (registry, staging,
 calibration, the batch work handed to the local worker processes, fleet rules, results head and

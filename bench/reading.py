@@ -40,13 +40,19 @@ def _throughput(row: dict) -> str:
     events = f", verdict events and artifacts {t['events_s']:.1f} s" if "events_s" in t else ""
     needed = ours["counts"]["audited"] / (20 * peer["series_per_second"])
     alone = ours["counts"]["audited"] / ours["flow_s"]
+    runs = row["details"].get("first_runs_s") or []
+    median = (
+        f" (the run of median time among {len(runs)}: {', '.join(f'{r:.1f}' for r in runs)} s end to end)"
+        if len(runs) > 1
+        else ""
+    )
     return (
         f"**Throughput (goal 20x): {_verdict(row)}, {row['ratio_text']}** ({per_core:.1f}x per core): fitaudit "
         f"{ours['counts']['audited'] / (ours['flow_s'] + ours['server_start_s']):.1f} series/s against the peer's "
-        f"{peer['series_per_second']:.1f}. The flow took {ours['flow_s']:.1f} s ({stages}, archive writing and run "
-        f"page {archive:.1f} s{events}) and the embedded server's start {ours['server_start_s']:.1f} s. A scheduled "
-        "deployment runs against a long-lived Prefect server and does not pay that start: the flow alone is "
-        f"{alone:.1f} series/s, {alone / peer['series_per_second']:.1f}x the peer. "
+        f"{peer['series_per_second']:.1f}{median}. The flow took {ours['flow_s']:.1f} s ({stages}, archive writing "
+        f"and run page {archive:.1f} s{events}) and the embedded server's start {ours['server_start_s']:.1f} s. "
+        "A scheduled deployment runs against a long-lived Prefect server and does not pay that start: the flow "
+        f"alone is {alone:.1f} series/s, {alone / peer['series_per_second']:.1f}x the peer. "
         f"{ours['counts']['respecify']} models were searched for candidates. "
         "The peer is fast once its BLAS is "
         "single-threaded and does much less than the audit (no calibration, no candidate search, no report, no "
@@ -67,16 +73,16 @@ def _kept(row: dict) -> str:
     tables = kept.get("tables") or {}
     return (
         f"**Tables kept (the next run of the same fleet): {row['ratio_text']} the peer** (no goal). Run again into a "
-        f"fresh archive holding the `.tables` folder of the first run, the flow took {kept['flow_s']:.1f} s "
+        f"fresh archive holding the `.tables` folder of a first run, the flow took {kept['flow_s']:.1f} s "
         f"(null tables {t.get('calibration_s', float('nan')):.1f} s, candidate search "
         f"{t.get('candidates_s', float('nan')):.1f} s); {tables.get('calibration_tables_reused')} of the "
         f"run's {tables.get('calibration_tables')} shared tables (before the batches and for the candidate "
         "search), and the student-t tables at the shapes the audit and the candidate search estimated, were read "
         "instead of simulated, and results.json was "
-        + ("identical to the first run's. " if same else "NOT identical to the first run's: a defect. ")
+        + ("identical to each first run's. " if same else "NOT identical to every first run's: a defect. ")
         + "A fleet audited every week is in this position from its second run: its tables depend only on the "
         "residual counts, the noise laws and the grid of estimated shapes, not on the data. Goal 1 is judged on "
-        "the first run, which simulates every table."
+        "the first runs, which simulate every table."
     )
 
 

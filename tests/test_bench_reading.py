@@ -36,6 +36,16 @@ def test_numbers_come_from_the_rows():
     assert "Missed: spec B at 7.0x" in text
 
 
+def test_the_median_run_is_read_with_the_times_of_all_first_runs():
+    import bench.fleet
+
+    runs = [{"server_start_s": 5.0, "flow_s": f} for f in (36.0, 35.0, 38.5)]
+    assert bench.fleet.median_run(runs) is runs[0]  # 41.0 s: between 40.0 and 43.5
+    row = {**FLEET, "details": {**FLEET["details"], "first_runs_s": [41.0, 40.0, 43.5]}}
+    text = reading_the_goals([row])
+    assert "against the peer's 6.2 (the run of median time among 3: 41.0, 40.0, 43.5 s end to end)." in text
+
+
 def test_a_benchmark_left_out_is_said_to_be_unmeasured():
     text = reading_the_goals([FLEET])
     for name in ("Fit-bound ratio", "Model fits", "Command start-up", "Scale-out", "Peak memory"):
@@ -161,10 +171,10 @@ def test_the_run_with_kept_tables_is_read_beside_the_first():
     assert "9 of the run's 9 shared tables reused" in row["measured"]
     text = reading_the_goals([FLEET, row])
     assert "**Tables kept (the next run of the same fleet): 8.0x the peer** (no goal)" in text
-    assert "results.json was identical to the first run's." in text
+    assert "results.json was identical to each first run's." in text
     differing = bench.fleet._kept_row(1000, first, kept, {"series_per_second": 6.25}, same=False)
-    assert differing["met"] is False and "DIFFERENT from the first run's" in differing["measured"]
-    assert "NOT identical to the first run's: a defect." in reading_the_goals([FLEET, differing])
+    assert differing["met"] is False and "DIFFERENT from each first run's" in differing["measured"]
+    assert "NOT identical to every first run's: a defect." in reading_the_goals([FLEET, differing])
 
 
 def test_cpu_used_splits_this_process_the_lasting_children_and_the_passing_ones():
