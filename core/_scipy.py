@@ -15,7 +15,6 @@ import sys
 
 __all__ = [
     "LazyModule",
-    "import_all",
     "blas",
     "integrate",
     "lapack",
@@ -25,6 +24,7 @@ __all__ = [
     "signal",
     "special",
     "stats",
+    "warm_imports",
 ]
 
 
@@ -68,15 +68,79 @@ special = LazyModule("scipy.special")
 stats = LazyModule("scipy.stats")
 
 
-def import_all() -> None:
-    """Import every module the proxies above name, now.
+#: The modules every fit and check uses, which :func:`warm_imports` imports ahead of use.
+_FIT_MODULES = (blas, lapack, optimize, special)
+
+
+def warm_imports() -> None:
+    """Import the modules the fits and checks use, and scipy's compiled filter, now.
 
     For a process that will compute and has nothing else to do yet (a worker waiting for its
-    first batch): the first fit then pays no import.  ``scipy.signal`` alone imports most of
-    scipy, ``scipy.stats`` included.
+    first batch): the first fit then pays no import.  ``scipy.signal``, ``scipy.stats`` and
+    ``scipy.integrate`` are left to their first use (a forecast audit, the asymptotic gate, a
+    student-t law's shape derivative): the fits reach the filter without the ``scipy.signal``
+    package (:func:`_compiled_filter`), whose imports (``scipy.stats`` among them) took 0.4-0.7 s
+    of a worker's start, and ``scipy.integrate`` another 0.2 s.
     """
-    for proxy in [value for value in globals().values() if isinstance(value, LazyModule)]:
+    for proxy in _FIT_MODULES:
         importlib.import_module(proxy._name)
+    _fast_filter()
+
+
+def _compiled_filter():
+    """scipy's compiled ``_linear_filter`` (the routine ``scipy.signal.lfilter`` calls), or None.
+
+    While ``scipy.signal`` is not imported, its extension module is loaded from its file
+    (:func:`_extension_from_file`): importing it the usual way runs the package's ``__init__``,
+    which imports most of scipy and none of which the filter needs.  Anything unexpected (another
+    layout of scipy's files) falls back to the usual import.
+    """
+    name = "scipy.signal._sigtools"
+    module = sys.modules.get(name)
+    if module is None and "scipy.signal" not in sys.modules:
+        module = _extension_from_file(name)
+    if module is None:
+        module = importlib.import_module(name)
+    return getattr(module, "_linear_filter", None)
+
+
+def _extension_from_file(name: str):
+    """The compiled module ``name`` of scipy loaded from its file, or None when no such file is
+    found or it does not load.
+
+    The module is not left in ``sys.modules``: a later import of its package then loads it the
+    usual way (Python keeps the loaded extension, so the same functions) and sets it as the
+    package's attribute, which scipy's own code and users expect.
+    """
+    import importlib.machinery
+    import importlib.util
+    import pathlib
+
+    try:
+        import scipy
+
+        *folders, leaf = name.split(".")[1:]
+        folder = pathlib.Path(scipy.__file__).parent.joinpath(*folders)
+        for suffix in importlib.machinery.EXTENSION_SUFFIXES:
+            path = folder / (leaf + suffix)
+            if path.is_file():
+                spec = importlib.util.spec_from_file_location(name, path)
+                module = importlib.util.module_from_spec(spec)
+                spec.loader.exec_module(module)
+                sys.modules.pop(name, None)  # the loader of a single-phase extension registers it
+                return module
+    except Exception:  # the usual import instead
+        return None
+    return None
+
+
+def _fast_filter() -> tuple:
+    """``(compiled filter or None, numpy.ndarray, float64)``, found on the first call."""
+    if not _FAST_FILTER:
+        import numpy  # here, so that importing this module loads neither numpy nor scipy
+
+        _FAST_FILTER.append((_compiled_filter(), numpy.ndarray, numpy.dtype(numpy.float64)))
+    return _FAST_FILTER[0]
 
 
 _FAST_FILTER: list = []  # [(scipy's compiled filter or None, numpy.ndarray, float64)], set on the first call
@@ -87,38 +151,61 @@ def lfilter(b, a, x, axis: int = -1, zi=None):
 
     The public function spends about 2.5 us per call on array-namespace dispatch and argument
     checks before it calls ``scipy.signal._sigtools._linear_filter``; the likelihood loops filter
-    a few rows of float64 a few hundred times per fit, so they call that routine themselves.  The
-    public function is used for anything else (another dtype, ``len(a) == 1``, an ``a[0]`` of 0)
-    and whenever a scipy release no longer has the routine; tests/test_optimisations.py checks
-    both give the same numbers.
+    a few rows of float64 a few hundred times per fit, so they call that routine themselves.  A
+    list ``b`` of numbers is taken as float64 (as scipy takes it), and ``len(a) == 1`` is filtered
+    as scipy filters it, by convolution with ``b / a[0]``, so that the fits never import the
+    ``scipy.signal`` package (see :func:`warm_imports`).  The public function is used for anything
+    else (another dtype, an ``a[0]`` of 0, ``zi`` with ``len(a) == 1``) and whenever a scipy release
+    no longer has the routine; tests/test_optimisations.py checks both give the same numbers.
 
     Examples
     --------
     >>> import numpy as np
     >>> lfilter(np.ones(1), np.array([1.0, -0.5]), np.array([1.0, 0.0, 0.0]))
     array([1.  , 0.5 , 0.25])
+    >>> lfilter([1.0, 1.0], np.array([2.0]), np.array([1.0, 2.0, 3.0]))
+    array([0.5, 1.5, 2.5])
     """
-    if not _FAST_FILTER:
-        import numpy  # here, so that importing this module loads neither numpy nor scipy
-
-        compiled = getattr(importlib.import_module("scipy.signal._sigtools"), "_linear_filter", None)
-        _FAST_FILTER.append((compiled, numpy.ndarray, numpy.dtype(numpy.float64)))
-    compiled, ndarray, f64 = _FAST_FILTER[0]
+    compiled, ndarray, f64 = _FAST_FILTER[0] if _FAST_FILTER else _fast_filter()
+    if type(b) is list and all(type(v) is float for v in b):
+        b = _as_float64(b)
     if (
         compiled is not None
         and type(a) is ndarray
         and type(b) is ndarray
         and type(x) is ndarray
         and a.ndim == 1
-        and a.size > 1
+        and b.ndim == 1
         and a[0] != 0.0
         and a.dtype == f64
         and b.dtype == f64
         and x.dtype == f64
-        and (zi is None or (type(zi) is ndarray and zi.dtype == f64))
+        and b.size > 0
     ):
-        return compiled(b, a, x, axis) if zi is None else compiled(b, a, x, axis, zi)
+        if a.size > 1 and (zi is None or (type(zi) is ndarray and zi.dtype == f64)):
+            return compiled(b, a, x, axis) if zi is None else compiled(b, a, x, axis, zi)
+        if a.size == 1 and zi is None:
+            return _convolved(b / a[0], x, axis)
     return signal.lfilter(b, a, x, axis=axis, zi=zi)
+
+
+def _as_float64(values: list):
+    import numpy
+
+    return numpy.array(values, dtype=numpy.float64)
+
+
+def _convolved(kernel, x, axis: int):
+    """scipy.signal.lfilter's path for ``len(a) == 1``: each lane of ``x`` along ``axis``
+    convolved with ``kernel`` (``b / a[0]``), cut to the lane's length."""
+    import numpy
+
+    lanes = numpy.moveaxis(x, axis, -1)
+    out = numpy.empty(lanes.shape)
+    n = lanes.shape[-1]
+    for index in numpy.ndindex(lanes.shape[:-1]):
+        out[index] = numpy.convolve(kernel, lanes[index])[:n]
+    return numpy.moveaxis(out, -1, axis)
 
 
 _LBFGSB: list = []  # [scipy's compiled L-BFGS-B step or None], decided on the first call

@@ -94,9 +94,9 @@ def _warm() -> int:
         import fitaudit.tasks.audit.work  # noqa: F401
         import fitaudit.tasks.outcomes  # noqa: F401
         import fitaudit.tasks.report  # noqa: F401
-        from fitaudit.core._scipy import import_all
+        from fitaudit.core._scipy import warm_imports
 
-        import_all()  # the scipy modules the fits use, which core imports on first use
+        warm_imports()  # the scipy modules the fits use, which core imports on first use
     return os.getpid()
 
 

@@ -187,3 +187,40 @@ def test_a_local_worker_audits_and_renders_a_batch_without_the_flows_libraries(t
     assert done.returncode == 0, done.stderr
     assert sorted(p.name for p in (pages / "models").iterdir()) == ["m-a.html", "m-b.html"]  # the work was done
     assert json.loads(done.stdout.strip().splitlines()[-1]) == []
+
+
+_WORKER_PROBE = """
+import json, sys
+import numpy as np
+from fitaudit.core._scipy import warm_imports
+from fitaudit.core.audit import audit_series
+from fitaudit.core.settings import AuditSettings
+
+warm_imports()  # what a local worker process does before its first batch (tasks/workers.py)
+rng = np.random.default_rng(7)
+y = 50.0 + np.cumsum(rng.normal(size=400)) * 0.1 + 3.0 * np.sin(np.arange(400) * 2 * np.pi / 7)
+settings = AuditSettings(replicates=99)
+specs = [
+    {"family": "arima", "order": [1, 0, 0], "trend": "c"},  # no MA part: the CSS Jacobian filters with a = [1]
+    {"family": "arima", "order": [1, 0, 1], "seasonal": [0, 1, 1, 7]},
+    {"family": "smoothing", "trend": "add", "damped": True, "seasonal": "add", "period": 7},
+]
+verdicts = [audit_series(y, spec, noise="normal", production=None, settings=settings).verdict for spec in specs]
+loaded = sorted(m for m in ("scipy.signal", "scipy.stats", "scipy.integrate") if m in sys.modules)
+import scipy.signal  # later, as usual: the package and its compiled module as scipy leaves them
+from fitaudit.core._scipy import lfilter
+b, a = np.array([1.0, 0.3]), np.array([1.0, -0.6, 0.2])
+usual = hasattr(scipy.signal, "_sigtools") and np.array_equal(lfilter(b, a, y), scipy.signal.lfilter(b, a, y))
+print(json.dumps({"verdicts": verdicts, "loaded": loaded, "usual": bool(usual)}))
+"""
+
+
+def test_a_workers_fits_and_checks_import_neither_scipy_signal_nor_stats():
+    """A local worker imports only what the fits and checks use (core/_scipy.py ``warm_imports``):
+    the ARIMA and smoothing fits reach scipy's compiled filter without the ``scipy.signal`` package,
+    whose imports (``scipy.stats`` among them) took 0.4-0.7 s of each worker's start."""
+    done = subprocess.run([sys.executable, "-c", _WORKER_PROBE], capture_output=True, text=True, timeout=300)
+    out = json.loads(done.stdout.strip().splitlines()[-1])
+    assert len(out["verdicts"]) == 3 and "error" not in out["verdicts"]
+    assert out["loaded"] == []
+    assert out["usual"]  # source: scipy.signal.lfilter, imported afterwards the usual way
