@@ -22,9 +22,10 @@ from .exceptions import FitauditError
 from .lockstep import lockstep
 from .models import FitResult, ForecastModel, as_model, model_from_dict
 from .noise import NOISE_LAWS
+from .results import CheckResult
 from .settings import AuditSettings
 
-__all__ = ["Candidate", "neighbour_specs", "search_candidates"]
+__all__ = ["Candidate", "independence_flagged", "neighbour_specs", "search_candidates"]
 
 #: The laws tried by default for a continuous series: every registered law that is not a count law.
 CONTINUOUS_LAWS = tuple(name for name, law in NOISE_LAWS.items() if not law.discrete)
@@ -137,6 +138,12 @@ def _spec_fit(y, model: ForecastModel, exog, settings: AuditSettings) -> FitResu
         return None
 
 
+def independence_flagged(check: CheckResult | None) -> bool:
+    """Whether a refit check ran and flags its independence gate (at the check's own level): what
+    the candidate search asks first of the failing specification (see ``skip_futile``)."""
+    return check is not None and check.ok and check.gate_flags()[1]
+
+
 def _independence_rejects(
     y, model: ForecastModel, noise, exog, settings: AuditSettings, cache, fit: FitResult | None = None
 ) -> bool:
@@ -144,8 +151,7 @@ def _independence_rejects(
     res = audit_series(
         y, model.to_dict(), noise=noise, exog=exog, production=None, settings=settings, cache=cache, fit=fit
     )
-    check = res.refit
-    return check is not None and check.ok and check.gate_flags(settings.level)[1]
+    return independence_flagged(res.refit)
 
 
 def search_candidates(
@@ -159,6 +165,7 @@ def search_candidates(
     laws: Sequence[str] | None = None,
     cache: CalibrationCache | None = None,
     skip_futile: bool = True,
+    independence: bool | None = None,
 ) -> list[Candidate]:
     """Score neighbouring specifications and other noise laws; return the passing ones, best first.
 
@@ -177,6 +184,11 @@ def search_candidates(
         the spec's residuals and the Ljung-Box gate looks only at them (docs/method.md §9), so no
         law can pass and the list returned is the same; it saves their fits and, for a law whose
         shape is estimated, its null table.
+    independence : bool, optional
+        Whether the refit check of ``spec`` with ``noise`` flags its independence gate
+        (:func:`independence_flagged`), when the caller's audit of the same series with the same
+        settings already holds that check; the search then neither checks it again nor, when it
+        flags, refits the spec.  None: the search refits the spec and checks it itself.
 
     Returns
     -------
@@ -191,9 +203,12 @@ def search_candidates(
         (s_, noise, None) for s_ in (specs if specs is not None else neighbour_specs(model))
     ]
     other_laws = [law for law in (laws if laws is not None else CONTINUOUS_LAWS) if law != noise_name]
-    spec_fit = _spec_fit(y, model, exog, settings) if other_laws else None
-    if other_laws and skip_futile and _independence_rejects(y, model, noise, exog, settings, cache, spec_fit):
+    if other_laws and skip_futile and independence:
         other_laws = []
+    spec_fit = _spec_fit(y, model, exog, settings) if other_laws else None
+    if other_laws and skip_futile and independence is None:
+        if _independence_rejects(y, model, noise, exog, settings, cache, spec_fit):
+            other_laws = []
     trials += [(model.to_dict(), law, spec_fit) for law in other_laws]
     audits = [
         audit_series_steps(

@@ -19,7 +19,14 @@ from prefect.utilities.annotations import quote
 from fitaudit.core.vocabulary import VERDICTS
 from fitaudit.tasks.archive import new_run_id, open_work_folder
 from fitaudit.tasks.archive_tasks import check_archive_task, recover_task, refusal_first, start_archive_check
-from fitaudit.tasks.audit import candidate_jobs, candidate_tables, lanes_cache, wants_candidates, with_candidates
+from fitaudit.tasks.audit import (
+    candidate_jobs,
+    candidate_tables,
+    independence_flags,
+    lanes_cache,
+    wants_candidates,
+    with_candidates,
+)
 from fitaudit.tasks.audit.task import audit_batch_task, calibration_task, candidates_task, finalize_task
 from fitaudit.tasks.batches import stage_inputs_task
 from fitaudit.tasks.events import events_task
@@ -259,6 +266,8 @@ def audit_flow(
                         unmapped(lanes_cache(cache, work)),
                         unmapped(str(work / "candidate-claims")),
                         unmapped(workers),
+                        # what the audit knows: the searches neither refit nor check a failing spec again
+                        unmapped(independence_flags(o for o in final if o.model_id in todo)),
                     )
                     found = {}
                     for part, shared in lanes.result():

@@ -27,7 +27,7 @@ from prefect.cache_policies import NO_CACHE
 
 from fitaudit.core.audit import as_model
 from fitaudit.core.calibration import CalibrationCache
-from fitaudit.core.candidates import search_candidates
+from fitaudit.core.candidates import independence_flagged, search_candidates
 from fitaudit.core.exceptions import FitauditError
 
 from .archive import open_run
@@ -169,6 +169,7 @@ def refit_input(
         exog=item.exog or None,
         settings=settings,
         cache=cache,
+        independence=independence_flagged(result.refit),  # this refit check's: not made again
     )
     record.update(
         status="respecify",

@@ -306,6 +306,42 @@ def test_records_hold_string_keys_only_so_their_json_needs_no_conversion(demo_ou
         assert canonical_json(rec, str_keys=True) == canonical_json(rec)
 
 
+def test_the_candidate_search_handed_the_audits_independence_flags_finds_the_same_candidates(demo, registry, tmp_path):
+    """The search asks first whether the failing spec's refit check flags its independence gate
+    (then no other law can pass).  The audit's light outcomes after the fleet rules hold that
+    check: handed its flag, the search neither refits nor checks the spec again, and finds what
+    it finds when it checks itself.  The demo's two respecify models cover both answers."""
+    from fitaudit.core.candidates import _independence_rejects
+    from fitaudit.core.models import as_model
+    from fitaudit.demo import DEMO_AS_OF
+    from fitaudit.tasks.audit import audit_batch_spilled, calibration_for, candidates_for, finalize, independence_flags
+    from fitaudit.tasks.batches import stage_inputs
+    from fitaudit.tasks.batchfiles import read_batch
+
+    wanted = ["demand-d-13", "demand-d-19"]
+    staged = stage_inputs(registry, DEMO_AS_OF, tmp_path, archive_root=demo["archive"], model_ids=wanted)
+    (batch,) = staged.batches
+    cache = calibration_for([batch.path], registry.policy)
+    light = finalize(audit_batch_spilled(batch.path, registry.policy, cache), registry.policy)
+    flags = independence_flags(light)
+    assert flags == {"demand-d-13": False, "demand-d-19": True}
+    for item in read_batch(batch.path, wanted):
+        entry = item.entry
+        # source: the search's own check of the spec, refitted (the path without the flag)
+        checked = _independence_rejects(
+            item.y,
+            as_model(dict(entry.spec)),
+            entry.noise_law(),
+            item.exog or None,
+            entry.audit_settings(registry.policy),
+            cache,
+        )
+        assert flags[item.model_id] == checked
+    reference = candidates_for(batch.path, wanted, registry.policy, cache)
+    assert candidates_for(batch.path, wanted, registry.policy, cache, flags) == reference
+    assert set(reference) == set(wanted)
+
+
 def test_candidate_lanes_search_every_model_once_and_find_what_one_search_finds(demo, registry, tmp_path):
     from concurrent.futures import ThreadPoolExecutor
 

@@ -82,10 +82,12 @@ def candidates_task(
     cache: CalibrationCache | None,
     claims: str,
     workers: str | None = None,
+    independence: dict | None = None,
 ) -> tuple[dict[str, list[dict]], CalibrationCache]:
     """Prefect task: lane ``lane`` of the candidate stage (:func:`candidates_claimed`: each lane takes
     the next shared table, then the next model, that no other lane has claimed in the folder
-    ``claims``), in the local worker processes named by ``workers`` when given."""
-    found, shared = run_local(workers, candidates_claimed, jobs, tables, policy, cache, claims)
+    ``claims``), in the local worker processes named by ``workers`` when given; ``independence``:
+    the audit's refit checks' independence flags of the searched models."""
+    found, shared = run_local(workers, candidates_claimed, jobs, tables, policy, cache, claims, independence)
     get_run_logger().info("candidate lane %d: %d models searched", lane, len(found))
     return found, shared

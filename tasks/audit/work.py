@@ -46,6 +46,7 @@ __all__ = [
     "forecast_timing_problems",
     "finalize",
     "wants_candidates",
+    "independence_flags",
     "with_candidates",
     "calibration_for",
     "candidates_for",
@@ -292,6 +293,16 @@ def wants_candidates(outcome: Outcome) -> bool:
     return outcome.verdict == "respecify" and outcome.result is not None and outcome.result.refit is not None
 
 
+def independence_flags(outcomes: Iterable[Outcome]) -> dict[str, bool]:
+    """By model id, for the outcomes the candidate search runs for (:func:`wants_candidates`):
+    whether the refit check flags its independence gate.  The search asks that first of the
+    failing specification; handed these, it neither checks nor refits the specification again
+    (:func:`fitaudit.core.candidates.search_candidates`, ``independence``)."""
+    from fitaudit.core.candidates import independence_flagged
+
+    return {o.model_id: independence_flagged(o.result.refit) for o in outcomes if wants_candidates(o)}
+
+
 def with_candidates(outcomes: Sequence[Outcome], found: Mapping[str, list[dict]]) -> list[Outcome]:
     """Attach candidate lists to the outcomes they belong to."""
     return [dataclasses.replace(o, candidates=tuple(found[o.model_id])) if o.model_id in found else o for o in outcomes]
@@ -343,17 +354,24 @@ def calibration_for(
 
 
 def candidates_for(
-    path: str, model_ids: Sequence[str], policy: Policy, cache: CalibrationCache | None = None
+    path: str,
+    model_ids: Sequence[str],
+    policy: Policy,
+    cache: CalibrationCache | None = None,
+    independence: Mapping[str, bool] | None = None,
 ) -> dict[str, list[dict]]:
-    """Candidate search (:func:`fitaudit.core.candidates.search_candidates`) for models of a batch."""
+    """Candidate search (:func:`fitaudit.core.candidates.search_candidates`) for models of a batch;
+    ``independence``: what the run's audit knows (:func:`independence_flags`)."""
     cache = cache if cache is not None else CalibrationCache()
     out: dict[str, list[dict]] = {}
     for item in read_batch(path, model_ids):
-        out.update(_search_item(item, policy, cache))
+        out.update(_search_item(item, policy, cache, independence))
     return out
 
 
-def _search_item(item: ModelInput, policy: Policy, cache: CalibrationCache) -> dict[str, list[dict]]:
+def _search_item(
+    item: ModelInput, policy: Policy, cache: CalibrationCache, independence: Mapping[str, bool] | None = None
+) -> dict[str, list[dict]]:
     """The candidate search of one staged model, as ``{model id: candidates}`` (empty for a forecast entry)."""
     from fitaudit.core.candidates import search_candidates
 
@@ -368,6 +386,7 @@ def _search_item(item: ModelInput, policy: Policy, cache: CalibrationCache) -> d
             exog=item.exog or None,
             settings=entry.audit_settings(policy),
             cache=cache,
+            independence=(independence or {}).get(item.model_id),
         )
         return {item.model_id: [c.to_dict() for c in found]}
     except Exception as exc:  # the search is advice; its failure must not lose the verdict
@@ -394,10 +413,12 @@ def candidates_claimed(
     policy: Policy,
     cache: CalibrationCache | None,
     claims: str,
+    independence: Mapping[str, bool] | None = None,
 ) -> tuple[dict[str, list[dict]], CalibrationCache]:
     """One lane of the candidate searches: the shared null tables ``tables`` (entries of
     :func:`candidate_tables`) and then the searches of ``jobs`` (``[batch path, [model ids]]``
-    pairs), each of them the ones this lane claims first in the folder ``claims``.
+    pairs), each of them the ones this lane claims first in the folder ``claims``;
+    ``independence``: what the run's audit knows of the searched models (:func:`independence_flags`).
 
     Several lanes run over the same tables and jobs at once, one per worker, and each takes the
     next table or model no other lane has claimed, so the lanes end within one search of each
@@ -436,7 +457,7 @@ def candidates_claimed(
             items = {}  # its models' arrays are views of the whole batch's buffers: let them go before the next
             wanted = [m for p, ids in jobs if p == path for m in ids]
             read_path, items = path, {item.model_id: item for item in read_batch(path, wanted)}
-        found.update(_search_item(items[model_id], policy, cache))
+        found.update(_search_item(items[model_id], policy, cache, independence))
     return found, shared
 
 
