@@ -71,6 +71,7 @@ __all__ = [
     "nrr_term",
     "prepare_calibration",
     "table_jobs",
+    "table_job_key",
     "build_tables",
 ]
 
@@ -750,16 +751,27 @@ def table_jobs(entries: Sequence[tuple[Any, Any, AuditSettings, int, bool]]) -> 
             model, law = as_model(spec), as_noise_law(noise)
             if has_production and n_obs >= settings.audit_window:
                 job = ("production", settings, settings.audit_window, None, None)
-                jobs.setdefault(job, job)
+                jobs.setdefault(table_job_key(job), job)
             if settings.calibration == "simulated" and law.pivotal and not (law.has_shape and law.shape is None):
                 n = (settings.fit_window or n_obs) - model.presample()
-                location = model.has_location()
-                jobs.setdefault(
-                    ("refit", settings, n, (law.name, law.shape), location), ("refit", settings, n, law, location)
-                )
+                job = ("refit", settings, n, law, model.has_location())
+                jobs.setdefault(table_job_key(job), job)
         except (FitauditError, ValueError):
             continue  # the model's own audit reports the problem
     return list(jobs.values())
+
+
+def table_job_key(job: tuple) -> tuple:
+    """What identifies a :func:`table_jobs` job (its law by name and shape): jobs with equal keys
+    build the same table.
+
+    >>> from fitaudit.core.settings import AuditSettings
+    >>> job = ("refit", AuditSettings(), 100, as_noise_law("normal"), True)
+    >>> table_job_key(job)[3:]
+    (('normal', None), True)
+    """
+    kind, settings, n, law, location = job
+    return (kind, settings, n, None if law is None else (law.name, law.shape), location)
 
 
 def build_tables(jobs: Sequence[tuple], cache: CalibrationCache | None = None) -> CalibrationCache:

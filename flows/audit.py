@@ -20,6 +20,7 @@ from fitaudit.core.vocabulary import VERDICTS
 from fitaudit.tasks.archive import new_run_id, open_work_folder
 from fitaudit.tasks.archive_tasks import check_archive_task, recover_task, refusal_first, start_archive_check
 from fitaudit.tasks.audit import (
+    EarlyTables,
     candidate_jobs,
     candidate_tables,
     independence_flags,
@@ -215,12 +216,15 @@ def audit_flow(
             t0 = time.perf_counter()
             # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
             # them (twice per task call) looking for futures, which costs seconds on a big fleet
+            # the shared null tables begin on the spare workers as the batches are written
+            early = EarlyTables(reg.policy, archive_tables(archive, settings.reuse_null_tables))
             stage_args = dict(
                 archive_root=archive,
                 histories=quote(history.records),
                 model_ids=quote(ids),
                 batch_size=batch_size or settings.batch_size,
                 workers=_workers(),
+                on_batch=early.batch_staged,
             )
             try:
                 staged = stage_inputs_task(quote(reg), as_of, str(work), **stage_args)
@@ -231,8 +235,7 @@ def audit_flow(
 
         with local_workers(_local_processes(settings.processes, len(staged.batches), len(ids))) as workers:
             t0 = time.perf_counter()
-            store = archive_tables(archive, settings.reuse_null_tables)
-            cache = calibration_task([b.path for b in staged.batches], reg.policy, store, workers)
+            cache = calibration_task([b.path for b in staged.batches], reg.policy, early.store, workers, quote(early))
             timings["calibration_s"] = time.perf_counter() - t0
             t0 = time.perf_counter()
             futures = audit_batch_task.map(

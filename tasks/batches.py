@@ -14,7 +14,7 @@ import datetime as dt
 import json
 import math
 import pathlib
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -225,6 +225,7 @@ def stage_inputs(
     workers: int = 1,
     os_errors: str = "raise",
     series_per_scan: int = 1000,
+    on_batch: Callable[[BatchRef, list[tuple[EntryBase, dict]]], object] | None = None,
 ) -> StagedRun:
     """Scan every source once and write batch files of per-model inputs.
 
@@ -252,6 +253,10 @@ def stage_inputs(
         A large source is read in filtered scans of about this many series (whole batches each),
         so that staging never holds every series of the fleet (a scan of 1,000 daily series of two
         years raised the resident memory by about 90 MB, most of it pyarrow's read buffers).
+    on_batch : callable, optional
+        Called with each batch once its file is written, and its models' ``(entry, metadata)``
+        pairs (the metadata as written): the run's null tables begin there
+        (:class:`fitaudit.tasks.audit.EarlyTables`).
     """
     staging = pathlib.Path(staging_dir)
     staging.mkdir(parents=True, exist_ok=True)
@@ -365,6 +370,8 @@ def stage_inputs(
             path = staging / f"batch-{len(batches) + 1:04d}"
             write_batch(path, metas, arrays)
             batches.append(BatchRef(str(path), tuple(e.id for e in chunk)))
+            if on_batch is not None:
+                on_batch(batches[-1], list(zip(chunk, metas)))
         del data
         if cache is not None:
             cache.save()

@@ -392,6 +392,51 @@ def test_local_workers_run_elsewhere_and_fall_back_in_place():
 
 
 @pytest.mark.slow
+def test_null_tables_begun_while_staging_are_the_tables_calibration_builds(demo, registry, tmp_path, monkeypatch):
+    """The run's shared null tables begin on the spare workers as each batch is staged; the
+    calibration stage takes them and builds none of them again, and the run's tables are those
+    it builds from the staged batches alone, in the same order."""
+    from fitaudit.demo import DEMO_AS_OF
+    from fitaudit.tasks import workers
+    from fitaudit.tasks.audit import EarlyTables, calibration_for
+    from fitaudit.tasks.audit import work as audit_work
+    from fitaudit.tasks.batches import stage_inputs
+    from fitaudit.tasks.batchfiles import batch_metadata
+
+    workers.start_spare_workers(2)
+    try:
+        early = EarlyTables(registry.policy)
+        staged = stage_inputs(
+            registry, DEMO_AS_OF, tmp_path, archive_root=demo["archive"], batch_size=10, on_batch=early.batch_staged
+        )
+        paths = [b.path for b in staged.batches]
+        begun = len(early._begun)
+        built_here = []
+        real_build = audit_work.build_tables
+
+        def counting(jobs, cache=None):
+            built_here.extend(jobs)
+            return real_build(jobs, cache)
+
+        monkeypatch.setattr(audit_work, "build_tables", counting)
+        with_early = calibration_for(paths, registry.policy, early=early)
+    finally:
+        workers.stop_spare_workers()
+    assert len(staged.batches) > 1 and begun >= 2 and not early._begun  # begun, and every one taken
+    for path in paths:  # what the tables depend on, as staged: the same as read back from the batch files
+        read_back = [audit_work._calibration_entry(m["entry"], m, registry.policy) for m in batch_metadata(path)]
+        assert early.entries(path) == read_back and any(read_back)
+    assert built_here == []  # none built again
+    # source: the tables built from the staged batches in this process (the path without early tables)
+    reference = calibration_for(paths, registry.policy)
+    assert len(built_here) == begun  # the reference built each table itself
+    assert list(with_early.tables) == list(reference.tables)
+    for key, table in reference.tables.items():
+        assert np.array_equal(with_early.tables[key].r_max, table.r_max)
+        assert np.array_equal(with_early.tables[key].reference, table.reference)
+
+
+@pytest.mark.slow
 def test_spare_workers_are_taken_over_by_a_run_of_their_size_and_stopped_otherwise():
     import gc
 

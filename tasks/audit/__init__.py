@@ -19,6 +19,7 @@ from __future__ import annotations
 
 from ..outcomes import Outcome, light_outcome, records, rejected_outcome, restore_outcomes, spill_path
 from .work import (
+    EarlyTables,
     audit_batch,
     audit_batch_spilled,
     audit_forecasts_for,
@@ -64,6 +65,7 @@ __all__ = [
     "lanes_cache",
     "with_candidates",
     "calibration_for",
+    "EarlyTables",
     *_TASKS,
 ]
 

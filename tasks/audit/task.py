@@ -18,7 +18,7 @@ from ..memory import release_freed_memory
 from ..outcomes import Outcome
 from ..registry import Policy, Registry
 from ..workers import run_local
-from .work import audit_batch_spilled, calibration_for, candidates_claimed, finalize
+from .work import EarlyTables, audit_batch_spilled, calibration_for, candidates_claimed, finalize
 
 __all__ = ["finalize_task", "calibration_task", "audit_batch_task", "candidates_task"]
 
@@ -31,16 +31,21 @@ def finalize_task(outcomes: list[Outcome], registry: Registry) -> list[Outcome]:
 
 @task(name="prepare-calibration", cache_policy=NO_CACHE, persist_result=False)
 def calibration_task(
-    batch_paths: list[str], policy: Policy, store: TableStore | None = None, workers: str | None = None
+    batch_paths: list[str],
+    policy: Policy,
+    store: TableStore | None = None,
+    workers: str | None = None,
+    early: EarlyTables | None = None,
 ) -> CalibrationCache:
     """Prefect task: simulate every null table the run needs, once, before the batches start
     (or take it from ``store``, where earlier runs kept it: :func:`calibration_for`), in the local
-    worker processes named by ``workers`` when given.
+    worker processes named by ``workers`` when given; those begun while the batches were staged
+    are taken from ``early``.
 
     Then the simulations' freed arrays go back to the system (:func:`release_freed_memory`: about
     60 MB of glibc's heap otherwise); the tables themselves are small and kept."""
     try:
-        cache = calibration_for(batch_paths, policy, store, workers)
+        cache = calibration_for(batch_paths, policy, store, workers, early)
     finally:
         release_freed_memory()
     get_run_logger().info("calibration: %d null tables (%d kept from earlier runs)", len(cache), len(cache.reused))

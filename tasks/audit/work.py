@@ -21,19 +21,28 @@ import pathlib
 import time
 import traceback
 from collections.abc import Iterable, Mapping, Sequence
+from concurrent.futures import CancelledError
+from concurrent.futures.process import BrokenProcessPool
 from typing import Any
 
 import numpy as np
 
 from fitaudit.core.audit import AuditResult, AuditSettings, apply_fleet_rules, as_model, audit_series_steps
-from fitaudit.core.calibration import CalibrationCache, TableStore, build_tables, prepare_calibration, table_jobs
+from fitaudit.core.calibration import (
+    CalibrationCache,
+    TableStore,
+    build_tables,
+    prepare_calibration,
+    table_job_key,
+    table_jobs,
+)
 from fitaudit.core.exceptions import FitauditError
 from fitaudit.core.lockstep import Steps, lockstep, run_steps
 
 from ..batchfiles import ModelInput, batch_metadata, read_batch
 from ..outcomes import Outcome, spill_outcomes
 from ..registry import ForecastEntry, Policy
-from ..workers import TimeLimitExceeded, map_local, time_limit
+from ..workers import TimeLimitExceeded, map_local, submit_to_spare, time_limit
 
 __all__ = [
     "audit_input",
@@ -49,6 +58,7 @@ __all__ = [
     "independence_flags",
     "with_candidates",
     "calibration_for",
+    "EarlyTables",
     "candidates_for",
     "candidates_claimed",
     "lanes_cache",
@@ -308,8 +318,83 @@ def with_candidates(outcomes: Sequence[Outcome], found: Mapping[str, list[dict]]
     return [dataclasses.replace(o, candidates=tuple(found[o.model_id])) if o.model_id in found else o for o in outcomes]
 
 
+def _calibration_entry(entry: Any, meta: Mapping[str, Any], policy: Policy) -> tuple[str, tuple] | None:
+    """What the shared null tables of one staged model depend on: ``("model", (spec, noise,
+    settings, n_obs, has_production))`` (an entry of :func:`~fitaudit.core.calibration.table_jobs`)
+    or ``("forecast", (settings, horizon))``; None for a model with an error or no data (its own
+    audit reports it)."""
+    if any(p["severity"] == "error" for p in meta["problems"]) or meta["lineage"].get("rows_loaded", 0) == 0:
+        return None
+    if isinstance(entry, ForecastEntry):
+        return "forecast", (entry.audit_settings(policy), entry.forecasts.horizon)
+    production = meta.get("production")
+    n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
+    has_production = bool(production and not production.get("error"))
+    return "model", (dict(entry.spec), entry.noise_law(), entry.audit_settings(policy), n_obs, has_production)
+
+
+class EarlyTables:
+    """The run's shared null tables, begun on the spare workers while the batches are staged.
+
+    Staging hands each batch it has written to :meth:`batch_staged` (``on_batch`` of
+    :func:`fitaudit.tasks.batches.stage_inputs`); the tables its models need that no earlier
+    batch needed (:func:`~fitaudit.core.calibration.table_jobs`) go to the spare worker processes
+    (:func:`~fitaudit.tasks.workers.submit_to_spare`), which wait for the batches then, so the
+    tables are simulated while the rest is staged (each batch's new tables by one call, so
+    that one worker builds them and the other core stays with the staging).  :func:`calibration_for` takes each begun
+    table (:meth:`take`) and builds the others, and what the tables depend on from here rather
+    than from the batch files (:meth:`entries`).  A table is a function of its key and the seed,
+    so the run's tables are the same either way; without a spare pool nothing is begun.
+    """
+
+    def __init__(self, policy: Policy, store: TableStore | None = None):
+        self.policy = policy
+        self.store = store
+        self._begun: dict[tuple, Any] = {}  # table job key -> future of its CalibrationCache
+        self._entries: dict[str, list] = {}  # batch path -> _calibration_entry of each model
+        self._spare = True
+
+    def batch_staged(self, batch: Any, staged: Iterable[tuple[Any, Mapping[str, Any]]]) -> None:
+        """Begin the tables of a staged batch's ``(entry, metadata)`` pairs not begun before."""
+        found = [_calibration_entry(entry, meta, self.policy) for entry, meta in staged]
+        self._entries[str(batch.path)] = found
+        if not self._spare:
+            return
+        entries = [item for kind, item in filter(None, found) if kind == "model"]
+        new = [job for job in table_jobs(entries) if table_job_key(job) not in self._begun]
+        if not new:
+            return
+        # one call per batch: one worker builds them one after another, and the staging keeps its core
+        future = submit_to_spare(build_tables, new, CalibrationCache(store=self.store))
+        if future is None:  # no spare workers: calibration_for builds every table
+            self._spare = False
+            return
+        self._begun.update((table_job_key(job), future) for job in new)
+
+    def entries(self, path: str) -> list | None:
+        """:func:`_calibration_entry` of each model of the batch staged at ``path`` (None: not seen)."""
+        return self._entries.get(str(path))
+
+    def take(self, job: tuple) -> CalibrationCache | None:
+        """The tables begun with ``job``'s (waiting for them), else None.  A batch's new jobs are
+        built by one call, in the order of :func:`~fitaudit.core.calibration.table_jobs`, and the
+        jobs of later batches follow those of earlier ones in that order, so merging each call's
+        tables at its first job keeps the order of the tables."""
+        future = self._begun.pop(table_job_key(job), None)
+        if future is None:
+            return None
+        try:
+            return future.result()
+        except (CancelledError, BrokenProcessPool):  # the spare pool stopped before building it
+            return None
+
+
 def calibration_for(
-    batch_paths: Sequence[str], policy: Policy, store: TableStore | None = None, workers: str | None = None
+    batch_paths: Sequence[str],
+    policy: Policy,
+    store: TableStore | None = None,
+    workers: str | None = None,
+    early: EarlyTables | None = None,
 ) -> CalibrationCache:
     """Build the run's shared null tables from the staged batches' metadata (no data read):
     :func:`fitaudit.core.audit.prepare_calibration` for fitted models and
@@ -322,34 +407,24 @@ def calibration_for(
     With ``workers`` (:func:`fitaudit.tasks.workers.local_workers`), the fitted models' tables are
     built one per call in the worker processes, side by side, and merged in the order in which
     :func:`~fitaudit.core.calibration.prepare_calibration` builds them (the same tables: each is a
-    function of its key and the seed)."""
+    function of its key and the seed); those ``early`` began while the batches were staged
+    (:class:`EarlyTables`, for the same policy) are taken from it, with the models' metadata."""
     from fitaudit.core.forecasts import prepare_forecast_calibration
 
     entries, forecasts = [], []
     for path in batch_paths:
-        for meta in batch_metadata(path):
-            if any(p["severity"] == "error" for p in meta["problems"]) or meta["lineage"].get("rows_loaded", 0) == 0:
-                continue
-            entry = meta["entry"]
-            if isinstance(entry, ForecastEntry):
-                forecasts.append((entry.audit_settings(policy), entry.forecasts.horizon))
-                continue
-            production = meta.get("production")
-            n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
-            entries.append(
-                (
-                    dict(entry.spec),
-                    entry.noise_law(),
-                    entry.audit_settings(policy),
-                    n_obs,
-                    bool(production and not production.get("error")),
-                )
-            )
+        seen = early.entries(path) if early is not None and early.policy == policy else None
+        if seen is None:
+            seen = [_calibration_entry(meta["entry"], meta, policy) for meta in batch_metadata(path)]
+        for kind, item in filter(None, seen):
+            (forecasts if kind == "forecast" else entries).append(item)
+    jobs = table_jobs(entries)
+    begun = [early.take(job) if early is not None else None for job in jobs]
+    missing = [([job], CalibrationCache(store=store)) for job, part in zip(jobs, begun) if part is None]
+    built = iter(map_local(workers, build_tables, missing))
     cache = CalibrationCache(store=store)
-    for part in map_local(
-        workers, build_tables, [([job], CalibrationCache(store=store)) for job in table_jobs(entries)]
-    ):
-        cache.merge(part)
+    for part in begun:
+        cache.merge(part if part is not None else next(built))
     return prepare_forecast_calibration(forecasts, cache) if forecasts else cache
 
 
