@@ -434,6 +434,14 @@ def test_null_tables_begun_while_staging_are_the_tables_calibration_builds(demo,
     for key, table in reference.tables.items():
         assert np.array_equal(with_early.tables[key].r_max, table.r_max)
         assert np.array_equal(with_early.tables[key].reference, table.reference)
+    # without spare workers nothing is begun, and the calibration stage builds every table itself
+    idle = EarlyTables(registry.policy)
+    again = stage_inputs(
+        registry, DEMO_AS_OF, tmp_path / "idle", archive_root=demo["archive"], batch_size=10, on_batch=idle.batch_staged
+    )
+    again_paths = [b.path for b in again.batches]
+    assert not idle._begun and all(idle.entries(path) for path in again_paths)
+    assert list(calibration_for(again_paths, registry.policy, early=idle).tables) == list(reference.tables)
 
 
 @pytest.mark.slow
