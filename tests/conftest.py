@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import os
 import pathlib
+import sys
 import tempfile
 
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
@@ -23,6 +24,18 @@ os.environ.setdefault("PREFECT_LOGGING_TO_API_WHEN_MISSING_FLOW", "ignore")
 os.environ.setdefault("PREFECT_TASKS_DEFAULT_NO_CACHE", "true")
 
 REPO = pathlib.Path(__file__).resolve().parents[1]
+
+
+def pytest_runtest_setup(item: pytest.Item) -> None:
+    """Before a Hypothesis test, stop Prefect's background events client if a flow test left it
+    running: its websocket's keepalive pings take their payload from the global ``random`` module
+    in another thread (``websockets``' ``ping``), and a draw of Hypothesis that happens to span one
+    is reported as a strategy that uses ``random`` (a deprecation warning, an error in later
+    Hypothesis versions).  The next event starts a new client."""
+    if getattr(getattr(item, "obj", None), "is_hypothesis_test", False) and "prefect.events.worker" in sys.modules:
+        from prefect.events.worker import EventsWorker
+
+        EventsWorker.drain_all(timeout=10.0, at_exit=False)
 
 
 @pytest.fixture
