@@ -214,10 +214,10 @@ def audit_flow(
             ids = [m.id for m in reg.models if wanted is None or m.id in wanted]
             history = history_task(archive, as_of, quote(ids))
             t0 = time.perf_counter()
-            # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
-            # them (twice per task call) looking for futures, which costs seconds on a big fleet
             # the shared null tables begin on the spare workers as the batches are written
             early = EarlyTables(reg.policy, archive_tables(archive, settings.reuse_null_tables))
+            # quote(): large inputs are passed as they are; Prefect would otherwise walk every element of
+            # them (twice per task call) looking for futures, which costs seconds on a big fleet
             stage_args = dict(
                 archive_root=archive,
                 histories=quote(history.records),

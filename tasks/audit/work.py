@@ -340,11 +340,12 @@ class EarlyTables:
     :func:`fitaudit.tasks.batches.stage_inputs`); the tables its models need that no earlier
     batch needed (:func:`~fitaudit.core.calibration.table_jobs`) go to the spare worker processes
     (:func:`~fitaudit.tasks.workers.submit_to_spare`), which wait for the batches then, so the
-    tables are simulated while the rest is staged (each batch's new tables by one call, so
-    that one worker builds them and the other core stays with the staging).  :func:`calibration_for` takes each begun
-    table (:meth:`take`) and builds the others, and what the tables depend on from here rather
-    than from the batch files (:meth:`entries`).  A table is a function of its key and the seed,
-    so the run's tables are the same either way; without a spare pool nothing is begun.
+    tables are simulated while the rest is staged.  Each batch's new tables go as one call: one
+    worker builds them one after another, and the other core stays with the staging.
+    :func:`calibration_for` takes each begun table (:meth:`take`) and builds the others, and
+    takes what the tables depend on from here rather than from the batch files (:meth:`entries`).
+    A table is a function of its key and the seed, so the run's tables are the same either way;
+    without a spare pool nothing is begun.
     """
 
     def __init__(self, policy: Policy, store: TableStore | None = None):
@@ -364,7 +365,6 @@ class EarlyTables:
         new = [job for job in table_jobs(entries) if table_job_key(job) not in self._begun]
         if not new:
             return
-        # one call per batch: one worker builds them one after another, and the staging keeps its core
         future = submit_to_spare(build_tables, new, CalibrationCache(store=self.store))
         if future is None:  # no spare workers: calibration_for builds every table
             self._spare = False
