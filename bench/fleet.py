@@ -403,8 +403,7 @@ def main(quick: bool = False) -> list[dict]:
         series = fleet_series(n)
         peer = measure_peer(series, paths.data + "/fleet", subset)
         fits = fit_time(series)
-        fresh = root / "archive-fresh"
-        shutil.copytree(paths.archive, fresh)
+        fresh = pathlib.Path(paths.archive)  # never run into: every run gets its own copy
         runs = []
         for i in range(1 if quick else FIRST_RUNS):  # each into its own copy of the fresh archive
             archive = root / f"archive-{i}"

@@ -328,9 +328,19 @@ def _calibration_entry(entry: Any, meta: Mapping[str, Any], policy: Policy) -> t
     if isinstance(entry, ForecastEntry):
         return "forecast", (entry.audit_settings(policy), entry.forecasts.horizon)
     production = meta.get("production")
-    n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
     has_production = bool(production and not production.get("error"))
-    return "model", (dict(entry.spec), entry.noise_law(), entry.audit_settings(policy), n_obs, has_production)
+    return "model", (
+        dict(entry.spec),
+        entry.noise_law(),
+        entry.audit_settings(policy),
+        _fit_length(entry, meta),
+        has_production,
+    )
+
+
+def _fit_length(entry: Any, meta: Mapping[str, Any]) -> int:
+    """The observations a staged model is fitted on: those loaded, at most its fit window."""
+    return min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
 
 
 class EarlyTables:
@@ -412,8 +422,9 @@ def calibration_for(
     from fitaudit.core.forecasts import prepare_forecast_calibration
 
     entries, forecasts = [], []
+    staged = early if early is not None and early.policy == policy else None
     for path in batch_paths:
-        seen = early.entries(path) if early is not None and early.policy == policy else None
+        seen = staged.entries(path) if staged is not None else None
         if seen is None:
             seen = [_calibration_entry(meta["entry"], meta, policy) for meta in batch_metadata(path)]
         for kind, item in filter(None, seen):
@@ -577,7 +588,7 @@ def candidate_tables(jobs: Sequence[Sequence], policy: Policy) -> list[list[list
             if isinstance(entry, ForecastEntry):
                 continue
             settings = entry.audit_settings(policy)
-            n_obs = min(int(meta["lineage"]["rows_loaded"]), entry.windows.fit)
+            n_obs = _fit_length(entry, meta)
             noise = entry.noise_law()
             trials = [(spec, noise) for spec in neighbour_specs(dict(entry.spec))]
             trials += [
