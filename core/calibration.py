@@ -322,14 +322,19 @@ class TableStore(Protocol):
     the caller supplies the store, e.g. ``fitaudit.tasks.table_store.FolderTableStore``).
 
     ``load(key)`` returns the table kept under ``key``, or None when there is none or it cannot be
-    used (unreadable, or made by other code); ``save(key, table)`` keeps a table just built.
-    Neither raises because the store cannot be read or written: a store only saves work, since
+    used (unreadable, or made by other code); ``save(key, table)`` keeps a table just built, and
+    ``release(key)`` is told when that build failed.  None of them raises because the store
+    cannot be read or written: a store only saves work, since
     a table is a deterministic function of its key and the seed (docs/method.md §7.7).
     """
 
     def load(self, key: tuple) -> NullTable | StatisticTable | None: ...
 
     def save(self, key: tuple, table: NullTable | StatisticTable) -> None: ...
+
+    def release(self, key: tuple) -> None:
+        """The build of ``key``, for which ``load`` returned None, failed (a store that makes other
+        processes wait for a table it let this one build tells them to stop waiting)."""
 
 
 @dataclass
@@ -363,7 +368,12 @@ class CalibrationCache:
                 return table
             table = self.store.load(key) if self.store is not None else None
             if table is None:
-                table = build()
+                try:
+                    table = build()
+                except BaseException:
+                    if self.store is not None:
+                        self.store.release(key)
+                    raise
                 self.builds += 1
                 if self.store is not None:
                     self.store.save(key, table)

@@ -27,6 +27,7 @@ __all__ = [
     "write_replacing",
     "utc_now",
     "json_ready",
+    "claim",
 ]
 
 #: Model ids, source names, run ids and other path segments usable as file names: a letter or
@@ -99,6 +100,22 @@ def _naming(path: pathlib.Path) -> Iterator[None]:
         if exc.filename is None and exc.errno is not None:
             raise OSError(exc.errno, exc.strerror, str(path)) from exc
         raise
+
+
+def claim(folder: str | os.PathLike, name: str, text: str = "") -> bool:
+    """Whether this call is the first to claim ``name`` in ``folder`` (which must exist), writing
+    ``text`` into the claim: creating a file is atomic across processes and threads (exactly one
+    ``O_EXCL`` creation succeeds)."""
+    try:
+        fd = os.open(pathlib.Path(folder, name), os.O_CREAT | os.O_EXCL | os.O_WRONLY)
+    except FileExistsError:
+        return False
+    try:
+        if text:
+            os.write(fd, text.encode())
+    finally:
+        os.close(fd)
+    return True
 
 
 def write_replacing(path: str | os.PathLike, data: bytes) -> None:

@@ -165,3 +165,102 @@ def test_a_cache_with_its_store_reaches_worker_processes_by_pickle(tmp_path):
 def test_the_archive_store_follows_the_setting(tmp_path):
     assert archive_tables(tmp_path) == FolderTableStore(tmp_path / ".tables")
     assert archive_tables(tmp_path, reuse=False) is None
+
+
+# -- claimed tables: the candidate lanes build each table once ---------------------------------
+
+
+def _claimed(tmp_path) -> table_store.ClaimedTableStore:
+    return table_store.ClaimedTableStore(FolderTableStore(tmp_path / "tables"), tmp_path / "claims")
+
+
+def test_a_claimed_table_two_processes_need_at_once_is_built_once(tmp_path, monkeypatch):
+    """Two caches (two lanes) need the same student-t table at once: the one that claims it builds
+    it, the other waits for it and reads it; both hold the table a plain cache simulates."""
+    import threading
+
+    from fitaudit.core import calibration
+
+    store = _claimed(tmp_path)
+    started, release = threading.Event(), threading.Event()
+    real = calibration.NullTable.from_replicates
+
+    def slow_build(*args, **kwargs):  # the first build holds its claim until the second cache has asked
+        started.set()
+        assert release.wait(30)
+        return real(*args, **kwargs)
+
+    waiting = threading.Event()
+    real_wait = table_store.ClaimedTableStore._wait
+
+    def wait(self, name):
+        waiting.set()
+        return real_wait(self, name)
+
+    monkeypatch.setattr(calibration.NullTable, "from_replicates", slow_build)
+    monkeypatch.setattr(table_store.ClaimedTableStore, "_wait", wait)
+    first, second = CalibrationCache(store=store), CalibrationCache(store=store)
+    builder = threading.Thread(target=_refit_t, args=(first,))
+    builder.start()
+    assert started.wait(30)
+    waiter_result = {}
+    waiter = threading.Thread(target=lambda: waiter_result.update(table=_refit_t(second)))
+    waiter.start()
+    assert waiting.wait(30)  # the second cache found the table claimed and waits for it
+    release.set()
+    builder.join(30)
+    waiter.join(30)
+    monkeypatch.setattr(calibration.NullTable, "from_replicates", real)
+    assert (first.builds, second.builds) == (1, 0)  # the second read the first's table
+    assert _same(waiter_result["table"], _refit_t(CalibrationCache()))
+    assert len(list((tmp_path / "claims").glob("*.done"))) == 1
+
+
+def test_a_failed_build_releases_its_claim_and_a_gone_claimant_is_not_waited_for(tmp_path, monkeypatch):
+    from fitaudit.core import calibration
+
+    store = _claimed(tmp_path)
+    real = calibration.NullTable.from_replicates
+
+    def failing(*args, **kwargs):
+        raise MemoryError("no room for the replicates")
+
+    monkeypatch.setattr(calibration.NullTable, "from_replicates", failing)
+    with pytest.raises(MemoryError):
+        _refit_t(CalibrationCache(store=store))
+    monkeypatch.setattr(calibration.NullTable, "from_replicates", real)
+    sleeps = []
+
+    def sleep(seconds):  # a wait would loop here: fail at once instead
+        sleeps.append(seconds)
+        raise AssertionError("waited for a claim that should not be waited for")
+
+    monkeypatch.setattr(table_store.time, "sleep", sleep)
+    cache = CalibrationCache(store=store)
+    assert _same(_refit_t(cache), _refit_t(CalibrationCache())) and cache.builds == 1  # released: built here
+    assert not sleeps
+
+    # a claim left by a process of this host that is gone (its pid is no longer running)
+    other = _claimed(tmp_path / "other")
+    key = _refit_t(CalibrationCache()).key
+    (tmp_path / "other" / "claims").mkdir(parents=True)
+    gone = _finished_pid()
+    (tmp_path / "other" / "claims" / other.store.name(key)).write_text(f"{table_store.socket.gethostname()} {gone}")
+    cache = CalibrationCache(store=other)
+    assert _same(_refit_t(cache), _refit_t(CalibrationCache())) and cache.builds == 1
+    assert not sleeps  # not waited for
+
+
+def _finished_pid() -> int:
+    """The pid of a child process that has exited and been reaped."""
+    import subprocess
+    import sys
+
+    child = subprocess.Popen([sys.executable, "-c", "pass"])
+    child.wait()
+    return child.pid
+
+
+def test_a_claimed_store_reaches_worker_processes_by_pickle(tmp_path):
+    store = _claimed(tmp_path)
+    assert pickle.loads(pickle.dumps(store)) == store

@@ -39,6 +39,7 @@ from fitaudit.core.calibration import (
 from fitaudit.core.exceptions import FitauditError
 from fitaudit.core.lockstep import Steps, lockstep, run_steps
 
+from .._io import claim
 from ..batchfiles import ModelInput, batch_metadata, read_batch
 from ..outcomes import Outcome, spill_outcomes
 from ..registry import ForecastEntry, Policy
@@ -479,16 +480,6 @@ def _search_item(
         return {item.model_id: [{"error": f"candidate search failed: {type(exc).__name__}: {exc}"}]}
 
 
-def _claim(folder: pathlib.Path, name: str) -> bool:
-    """Whether this call is the first to claim ``name`` in ``folder`` (creating a file is atomic
-    across processes and threads: exactly one ``O_EXCL`` creation succeeds)."""
-    try:
-        os.close(os.open(folder / name, os.O_CREAT | os.O_EXCL | os.O_WRONLY))
-    except FileExistsError:
-        return False
-    return True
-
-
 #: How long a lane waits for the other lanes' shared tables before its searches build what they lack.
 _TABLES_WAIT_S = 600.0
 
@@ -525,11 +516,11 @@ def candidates_claimed(
     folder.mkdir(parents=True, exist_ok=True)
     shared = CalibrationCache(tables=cache.tables, store=cache.store)  # the run's tables are not built again
     for number, entries in enumerate(tables):
-        if _claim(folder, f"table-{number}"):
+        if claim(folder, f"table-{number}"):
             try:
                 prepare_calibration(entries, shared)
             finally:  # the other lanes wait for this mark, also when the build failed
-                _claim(folder, f"table-{number}.done")
+                claim(folder, f"table-{number}.done")
     cache.merge(shared)
     deadline = time.monotonic() + _TABLES_WAIT_S
     while not all((folder / f"table-{i}.done").exists() for i in range(len(tables))) and time.monotonic() < deadline:
@@ -537,7 +528,7 @@ def candidates_claimed(
     found: dict[str, list[dict]] = {}
     read_path, items = None, {}
     for number, (path, model_id) in enumerate((path, m) for path, ids in jobs for m in ids):
-        if not _claim(folder, str(number)):
+        if not claim(folder, str(number)):
             continue
         if path != read_path:  # the claims go in batch order: a batch read is never needed again
             items = {}  # its models' arrays are views of the whole batch's buffers: let them go before the next
@@ -550,11 +541,14 @@ def candidates_claimed(
 def lanes_cache(cache: CalibrationCache, scratch: str | os.PathLike) -> CalibrationCache:
     """The cache the lanes of :func:`candidates_claimed` start from: the run's tables, and the store
     through which each lane reads the tables the others built, ``cache``'s (the archive's
-    ``.tables``) or, when the run keeps none, one in the run's scratch folder."""
-    from ..table_store import FolderTableStore
+    ``.tables``) or, when the run keeps none, one in the run's scratch folder; claimed in the
+    scratch folder (:class:`~fitaudit.tasks.table_store.ClaimedTableStore`), so that a table two
+    lanes' searches need at once (a student-t table at a shape both estimate) is built by one."""
+    from ..table_store import ClaimedTableStore, FolderTableStore
 
     store = cache.store if cache.store is not None else FolderTableStore(pathlib.Path(scratch) / "tables")
-    return CalibrationCache(tables=cache.tables, store=store)
+    claimed = ClaimedTableStore(store, pathlib.Path(scratch) / "table-claims")
+    return CalibrationCache(tables=cache.tables, store=claimed)
 
 
 def candidate_jobs(batches: Sequence[Any], model_ids: Iterable[str]) -> list[list]:
