@@ -789,6 +789,54 @@ def test_map_tables_match_the_scaled_grid(doc, dom):
     assert maps >= 6
 
 
+def test_map_cells_and_outline_follow_the_grid(doc, dom):
+    """Each cell of a heat map sits at its (alpha, beta) place with the class of its value, and the
+    outline is exactly the sides of failing cells that border a passing cell or the grid's edge
+    (the cells' text and sides are made once per grid size: this checks them against the grid)."""
+    outlined = 0
+    for m in doc["models"]:
+        for kind in ("production", "refit"):
+            check = (m["audit"] or {}).get(kind)
+            if not check or check["status"] != "ok":
+                continue
+            grid, inf_mask = check["scaled_grid"], check["map"]["infinite"]
+            na, nb = len(grid), len(grid[0])
+            svg = next(dom[f"models/{m['safe_id']}.html"].find_id(f"figure-map-{kind}").iter("svg"))
+            rects = {(float(r.attrs["x"]), float(r.attrs["y"])): r.attrs["class"] for r in svg.iter("rect")}
+            left = min(x for x, _ in rects)
+            top = min(y for _, y in rects)
+            width = {float(r.attrs["width"]) for r in svg.iter("rect")}
+            height = {float(r.attrs["height"]) for r in svg.iter("rect")}
+            assert len(width) == len(height) == 1 and len(rects) == na * nb
+            cw, ch = width.pop(), height.pop()
+            fails = np.zeros((na, nb), dtype=bool)
+            for i in range(na):
+                for j in range(nb):
+                    v, infinite = grid[i][j], inf_mask[i][j]
+                    expected = "hinf" if infinite else "hna" if v is None else f"h{1 + sum(v > b for b in HEAT_BINS)}"
+                    # the first alpha is the bottom row
+                    assert rects[(left + j * cw, top + (na - 1 - i) * ch)] == expected
+                    fails[i, j] = v is not None and not infinite and v > 1
+            sides = set()
+            for i, j in zip(*np.nonzero(fails)):
+                x0, y0 = left + j * cw, top + (na - 1 - i) * ch
+                if i + 1 == na or not fails[i + 1, j]:
+                    sides.add(("H", x0, y0, x0 + cw))
+                if i == 0 or not fails[i - 1, j]:
+                    sides.add(("H", x0, y0 + ch, x0 + cw))
+                if j == 0 or not fails[i, j - 1]:
+                    sides.add(("V", x0, y0, y0 + ch))
+                if j + 1 == nb or not fails[i, j + 1]:
+                    sides.add(("V", x0 + cw, y0, y0 + ch))
+            edge = [p.attrs["d"] for p in svg.iter("path") if p.attrs.get("class") == "edge"]
+            drawn = set()
+            for x, y, direction, end in re.findall(r"M([-\d.]+) ([-\d.]+)([HV])([-\d.]+)", "".join(edge)):
+                drawn.add((direction, float(x), float(y), float(end)))
+            assert drawn == sides
+            outlined += bool(sides)
+    assert outlined >= 2
+
+
 # ----------------------------------------------------------------------------------------------
 # escaping and hostile input
 # ----------------------------------------------------------------------------------------------

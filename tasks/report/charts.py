@@ -1,7 +1,9 @@
 """The report's SVG charts: geometry as plain dictionaries, and their SVG text.
 
 A chart view is a dict of the chart's id, size, title and description and its shapes (``grid``,
-``rects``, ``lines``, ``polylines``, ``paths``, ``circles``, ``texts``) in pixel coordinates.
+``rects``, ``lines``, ``polylines``, ``paths``, ``circles``, ``texts``) in pixel coordinates; a
+heat map's cells are ``cells``, pairs of a rectangle's SVG text up to its class (the same for
+every map of a grid's size, :func:`_heat_geometry`) and the class.
 The builders here (divergence heat map, residual histogram, Q-Q plot, autocorrelations, history
 of the standardised maximum) return such views with their data tables; the run view builds its
 small charts with :func:`new_chart` and :class:`Scale`.  :func:`svg_element` writes a view as an
@@ -56,6 +58,7 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
             f'height="{cell_px(r["h"])}" class="{word(r["cls"])}"/>'
             for r in c["rects"]
         ),
+        "".join(f'{prefix}{word(cls)}"/>' for prefix, cls in c.get("cells", ())),
         "\n",
         "".join(map(line, c["lines"])),
         "\n",
@@ -167,6 +170,34 @@ def _heat_class(v: float) -> str:
     return _HEAT_CLASSES[bisect.bisect_left(HEAT_BINS, v)]
 
 
+#: A heat map's cell width and height and its grid's left and top edges, in pixels.
+_HEAT_CELL = (40.0, 18.0, 178.0, 16.0)
+
+
+@functools.lru_cache(maxsize=8)
+def _heat_geometry(na: int, nb: int) -> tuple[tuple[str, ...], tuple[tuple[str, str, str, str], ...]]:
+    """What every heat map of ``na`` alphas and ``nb`` betas draws alike, made once: each cell's
+    ``<rect`` text up to its class, and each cell's four sides (top, bottom, left, right) as path
+    segments; both row-major with the first alpha at the bottom (a model page draws two maps of
+    the grid's 150-odd cells)."""
+    cw, ch, left, top = _HEAT_CELL
+    prefixes, sides = [], []
+    for i in range(na):
+        y0 = top + (na - 1 - i) * ch
+        for j in range(nb):
+            x0 = left + j * cw
+            prefixes.append(f'<rect x="{coord(x0)}" y="{coord(y0)}" width="{coord(cw)}" height="{coord(ch)}" class="')
+            sides.append(
+                (
+                    f"M{coord(x0)} {coord(y0)}H{coord(x0 + cw)}",
+                    f"M{coord(x0)} {coord(y0 + ch)}H{coord(x0 + cw)}",
+                    f"M{coord(x0)} {coord(y0)}V{coord(y0 + ch)}",
+                    f"M{coord(x0 + cw)} {coord(y0)}V{coord(y0 + ch)}",
+                )
+            )
+    return tuple(prefixes), tuple(sides)
+
+
 def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     """The divergence map as a heat map of T / critical value, with its data table (a row per
     alpha: its text and its cells as ``(text, fails)`` pairs)."""
@@ -176,9 +207,9 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     grid = check.get("scaled_grid") or [[None] * len(betas) for _ in alphas]
     infinite = dmap.get("infinite") or [[False] * len(betas) for _ in alphas]
     na, nb = len(alphas), len(betas)
-    cw, ch, left, top = 40.0, 18.0, 178.0, 16.0
+    cw, ch, left, top = _HEAT_CELL
     width, height = left + nb * cw + 12, top + na * ch + 46
-    values = [[to_float(grid[i][j]) for j in range(nb)] for i in range(na)]
+    values = [[v if type(v) is float and v == v else to_float(v) for v in grid[i][:nb]] for i in range(na)]
     alpha_text, beta_text = [format_number(a) for a in alphas], [format_number(b) for b in betas]
     fail = [
         [v is not None and not bool(infinite[i][j]) and v > 1.0 for j, v in enumerate(row)]
@@ -201,7 +232,9 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     )
     chart = new_chart(chart_id, width, height, f"Divergence map of the {label.lower()}", desc)
     chart["cls"] = "heat"
-    rows_table, rects, texts = [], chart["rects"], chart["texts"]
+    prefixes, sides = _heat_geometry(na, nb)
+    classes: list[str] = []
+    rows_table, texts = [], chart["texts"]
     for i, (y0, row, row_inf, row_fail) in enumerate(zip(ys, values, infinite, fail)):
         row_cells = []
         for x0, v, is_inf, failing in zip(xs, row, row_inf, row_fail):
@@ -213,24 +246,26 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
                 texts.append({"x": x0 + cw / 2, "y": y0 + ch / 2 + 4, "text": "–", "cls": "sym", "anchor": "middle"})
             else:
                 cls, shown = _heat_class(v), format_number(v)
-            rects.append({"x": x0, "y": y0, "w": cw, "h": ch, "cls": cls})
+            classes.append(cls)
             row_cells.append((shown, failing))
         rows_table.append({"alpha": alpha_text[i], "cells": row_cells})
+    chart["cells"] = list(zip(prefixes, classes))
     # edge of the failing region: every side of a failing cell that borders a non-failing one
     segments = []
-    for i in range(na):
-        for j in range(nb):
-            if not fail[i][j]:
-                continue
-            x0, y0 = xs[j], ys[i]
-            if i + 1 >= na or not fail[i + 1][j]:
-                segments.append(f"M{coord(x0)} {coord(y0)}H{coord(x0 + cw)}")
-            if i == 0 or not fail[i - 1][j]:
-                segments.append(f"M{coord(x0)} {coord(y0 + ch)}H{coord(x0 + cw)}")
-            if j == 0 or not fail[i][j - 1]:
-                segments.append(f"M{coord(x0)} {coord(y0)}V{coord(y0 + ch)}")
-            if j + 1 >= nb or not fail[i][j + 1]:
-                segments.append(f"M{coord(x0 + cw)} {coord(y0)}V{coord(y0 + ch)}")
+    if n_fail:
+        for i in range(na):
+            for j in range(nb):
+                if not fail[i][j]:
+                    continue
+                cell_top, cell_bottom, cell_left, cell_right = sides[i * nb + j]
+                if i + 1 >= na or not fail[i + 1][j]:
+                    segments.append(cell_top)
+                if i == 0 or not fail[i - 1][j]:
+                    segments.append(cell_bottom)
+                if j == 0 or not fail[i][j - 1]:
+                    segments.append(cell_left)
+                if j + 1 >= nb or not fail[i][j + 1]:
+                    segments.append(cell_right)
     # a frame around the grid: the lightest cells need no contrast with the page to be seen as part of the map
     chart["paths"].append(
         {
