@@ -36,7 +36,9 @@ from fitaudit.core.change import locate_change, permutation_maxima, split_statis
 from fitaudit.core.noise import get_law
 from fitaudit.core.vocabulary import VERDICTS
 
-#: The chart macro of templates/_charts.html.j2 before the ``svg`` filter replaced it.
+#: The chart macro of templates/_charts.html.j2 before the ``svg`` filter replaced it (a heat map's
+#: cells, whose rectangle text the chart builder now makes once per grid size, are written from that
+#: text; tests/test_report.py checks their places and classes against the grid).
 REFERENCE_SVG_MACRO = (
     "{% macro svg(c) %}\n"
     '<svg class="chart {{ c.cls }}" role="img" aria-labelledby="{{ c.id }}-t {{ c.id }}-d" '
@@ -47,7 +49,8 @@ REFERENCE_SVG_MACRO = (
     'class="{{ l.cls }}"/>{% endfor %}\n'
     "\n"
     '{% for r in c.rects %}<rect x="{{ r.x|px }}" y="{{ r.y|px }}" width="{{ r.w|px }}" height="{{ r.h|px }}" '
-    'class="{{ r.cls }}"/>{% endfor %}\n'
+    'class="{{ r.cls }}"/>{% endfor %}'
+    '{% for prefix, cls in c.get("cells", []) %}{{ prefix|safe }}{{ cls }}"/>{% endfor %}\n'
     "\n"
     '{% for l in c.lines %}<line x1="{{ l.x1|px }}" y1="{{ l.y1|px }}" x2="{{ l.x2|px }}" y2="{{ l.y2|px }}" '
     'class="{{ l.cls }}"/>{% endfor %}\n'
