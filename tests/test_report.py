@@ -757,35 +757,37 @@ def test_model_pages_match_the_document(doc, dom):
     assert compared >= 40
 
 
-def test_map_tables_match_the_scaled_grid(doc, dom):
-    maps = 0
+def _scored_map_figures(doc, dom):
+    """``(check, its heat map's figure)`` for every check of the fixture that scored its residuals."""
     for m in doc["models"]:
         for kind in ("production", "refit"):
             check = (m["audit"] or {}).get(kind)
-            if not check or check["status"] != "ok":
-                continue
-            fig = dom[f"models/{m['safe_id']}.html"].find_id(f"figure-map-{kind}")
-            table = next(fig.iter("table"))
-            bold = sum(1 for td in table.iter("td") if "fail" in td.classes())
-            infinite = sum(1 for td in table.iter("td") if td.text() == "∞")
-            grid, inf_mask = check["scaled_grid"], check["map"]["infinite"]
-            assert bold == sum(
-                1 for row, mask in zip(grid, inf_mask) for v, i in zip(row, mask) if v is not None and not i and v > 1
-            )
-            assert infinite == sum(map(sum, inf_mask))
-            _, rows = table_rows(table)
-            top_alpha = rows[0][1][0]
-            assert printed_matches(top_alpha, check["map"]["alphas"][-1])  # rows run from the largest alpha down
-            svg = next(fig.iter("svg"))
-            assert sum(1 for r in svg.iter("rect")) == len(grid) * len(grid[0])
-            assert (sum(1 for p in svg.iter("path") if p.attrs.get("class") == "edge") == 1) == (
-                bold > 0
-            )  # the boundary is drawn iff a point fails
-            assert (
-                sum(1 for c in svg.iter("circle") if c.attrs.get("class") == "mem") == 5
-            )  # the five classical members
-            assert sum(1 for p in svg.iter("path") if p.attrs.get("class") == "mx") == 1  # the maximum
-            maps += 1
+            if check and check["status"] == "ok":
+                yield check, dom[f"models/{m['safe_id']}.html"].find_id(f"figure-map-{kind}")
+
+
+def test_map_tables_match_the_scaled_grid(doc, dom):
+    maps = 0
+    for check, fig in _scored_map_figures(doc, dom):
+        table = next(fig.iter("table"))
+        bold = sum(1 for td in table.iter("td") if "fail" in td.classes())
+        infinite = sum(1 for td in table.iter("td") if td.text() == "∞")
+        grid, inf_mask = check["scaled_grid"], check["map"]["infinite"]
+        assert bold == sum(
+            1 for row, mask in zip(grid, inf_mask) for v, i in zip(row, mask) if v is not None and not i and v > 1
+        )
+        assert infinite == sum(map(sum, inf_mask))
+        _, rows = table_rows(table)
+        top_alpha = rows[0][1][0]
+        assert printed_matches(top_alpha, check["map"]["alphas"][-1])  # rows run from the largest alpha down
+        svg = next(fig.iter("svg"))
+        assert sum(1 for r in svg.iter("rect")) == len(grid) * len(grid[0])
+        assert (sum(1 for p in svg.iter("path") if p.attrs.get("class") == "edge") == 1) == (
+            bold > 0
+        )  # the boundary is drawn iff a point fails
+        assert sum(1 for c in svg.iter("circle") if c.attrs.get("class") == "mem") == 5  # the five classical members
+        assert sum(1 for p in svg.iter("path") if p.attrs.get("class") == "mx") == 1  # the maximum
+        maps += 1
     assert maps >= 6
 
 
@@ -794,46 +796,42 @@ def test_map_cells_and_outline_follow_the_grid(doc, dom):
     outline is exactly the sides of failing cells that border a passing cell or the grid's edge
     (the cells' text and sides are made once per grid size: this checks them against the grid)."""
     outlined = 0
-    for m in doc["models"]:
-        for kind in ("production", "refit"):
-            check = (m["audit"] or {}).get(kind)
-            if not check or check["status"] != "ok":
-                continue
-            grid, inf_mask = check["scaled_grid"], check["map"]["infinite"]
-            na, nb = len(grid), len(grid[0])
-            svg = next(dom[f"models/{m['safe_id']}.html"].find_id(f"figure-map-{kind}").iter("svg"))
-            rects = {(float(r.attrs["x"]), float(r.attrs["y"])): r.attrs["class"] for r in svg.iter("rect")}
-            left = min(x for x, _ in rects)
-            top = min(y for _, y in rects)
-            width = {float(r.attrs["width"]) for r in svg.iter("rect")}
-            height = {float(r.attrs["height"]) for r in svg.iter("rect")}
-            assert len(width) == len(height) == 1 and len(rects) == na * nb
-            cw, ch = width.pop(), height.pop()
-            fails = np.zeros((na, nb), dtype=bool)
-            for i in range(na):
-                for j in range(nb):
-                    v, infinite = grid[i][j], inf_mask[i][j]
-                    expected = "hinf" if infinite else "hna" if v is None else f"h{1 + sum(v > b for b in HEAT_BINS)}"
-                    # the first alpha is the bottom row
-                    assert rects[(left + j * cw, top + (na - 1 - i) * ch)] == expected
-                    fails[i, j] = v is not None and not infinite and v > 1
-            sides = set()
-            for i, j in zip(*np.nonzero(fails)):
-                x0, y0 = left + j * cw, top + (na - 1 - i) * ch
-                if i + 1 == na or not fails[i + 1, j]:
-                    sides.add(("H", x0, y0, x0 + cw))
-                if i == 0 or not fails[i - 1, j]:
-                    sides.add(("H", x0, y0 + ch, x0 + cw))
-                if j == 0 or not fails[i, j - 1]:
-                    sides.add(("V", x0, y0, y0 + ch))
-                if j + 1 == nb or not fails[i, j + 1]:
-                    sides.add(("V", x0 + cw, y0, y0 + ch))
-            edge = [p.attrs["d"] for p in svg.iter("path") if p.attrs.get("class") == "edge"]
-            drawn = set()
-            for x, y, direction, end in re.findall(r"M([-\d.]+) ([-\d.]+)([HV])([-\d.]+)", "".join(edge)):
-                drawn.add((direction, float(x), float(y), float(end)))
-            assert drawn == sides
-            outlined += bool(sides)
+    for check, fig in _scored_map_figures(doc, dom):
+        grid, inf_mask = check["scaled_grid"], check["map"]["infinite"]
+        na, nb = len(grid), len(grid[0])
+        svg = next(fig.iter("svg"))
+        rects = {(float(r.attrs["x"]), float(r.attrs["y"])): r.attrs["class"] for r in svg.iter("rect")}
+        left = min(x for x, _ in rects)
+        top = min(y for _, y in rects)
+        width = {float(r.attrs["width"]) for r in svg.iter("rect")}
+        height = {float(r.attrs["height"]) for r in svg.iter("rect")}
+        assert len(width) == len(height) == 1 and len(rects) == na * nb
+        cw, ch = width.pop(), height.pop()
+        fails = np.zeros((na, nb), dtype=bool)
+        for i in range(na):
+            for j in range(nb):
+                v, infinite = grid[i][j], inf_mask[i][j]
+                expected = "hinf" if infinite else "hna" if v is None else f"h{1 + sum(v > b for b in HEAT_BINS)}"
+                # the first alpha is the bottom row
+                assert rects[(left + j * cw, top + (na - 1 - i) * ch)] == expected
+                fails[i, j] = v is not None and not infinite and v > 1
+        sides = set()
+        for i, j in zip(*np.nonzero(fails)):
+            x0, y0 = left + j * cw, top + (na - 1 - i) * ch
+            if i + 1 == na or not fails[i + 1, j]:
+                sides.add(("H", x0, y0, x0 + cw))
+            if i == 0 or not fails[i - 1, j]:
+                sides.add(("H", x0, y0 + ch, x0 + cw))
+            if j == 0 or not fails[i, j - 1]:
+                sides.add(("V", x0, y0, y0 + ch))
+            if j + 1 == nb or not fails[i, j + 1]:
+                sides.add(("V", x0 + cw, y0, y0 + ch))
+        edge = [p.attrs["d"] for p in svg.iter("path") if p.attrs.get("class") == "edge"]
+        drawn = set()
+        for x, y, direction, end in re.findall(r"M([-\d.]+) ([-\d.]+)([HV])([-\d.]+)", "".join(edge)):
+            drawn.add((direction, float(x), float(y), float(end)))
+        assert drawn == sides
+        outlined += bool(sides)
     assert outlined >= 2
 
 
