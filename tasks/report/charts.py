@@ -53,11 +53,7 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
         f'<title id="{cid}-t">{esc(c["title"])}</title>\n<desc id="{cid}-d">{esc(c["desc"])}</desc>\n',
         "".join(map(line, c["grid"])),
         "\n",
-        "".join(
-            f'<rect x="{cell_px(r["x"])}" y="{cell_px(r["y"])}" width="{cell_px(r["w"])}" '
-            f'height="{cell_px(r["h"])}" class="{word(r["cls"])}"/>'
-            for r in c["rects"]
-        ),
+        "".join(f'{_rect_open(r["x"], r["y"], r["w"], r["h"], cell_px)}{word(r["cls"])}"/>' for r in c["rects"]),
         "".join(f'{prefix}{word(cls)}"/>' for prefix, cls in c.get("cells", ())),
         "\n",
         "".join(map(line, c["lines"])),
@@ -79,6 +75,11 @@ def svg_element(c: Mapping[str, Any]) -> markupsafe.Markup:
         "\n</svg>\n",
     ]
     return markupsafe.Markup("".join(out))
+
+
+def _rect_open(x: float, y: float, w: float, h: float, px=coord) -> str:
+    """A ``<rect>`` element's text up to its class value (``px`` formats the coordinates)."""
+    return f'<rect x="{px(x)}" y="{px(y)}" width="{px(w)}" height="{px(h)}" class="'
 
 
 class _CoordText(dict):
@@ -186,7 +187,7 @@ def _heat_geometry(na: int, nb: int) -> tuple[tuple[str, ...], tuple[tuple[str, 
         y0 = top + (na - 1 - i) * ch
         for j in range(nb):
             x0 = left + j * cw
-            prefixes.append(f'<rect x="{coord(x0)}" y="{coord(y0)}" width="{coord(cw)}" height="{coord(ch)}" class="')
+            prefixes.append(_rect_open(x0, y0, cw, ch))
             sides.append(
                 (
                     f"M{coord(x0)} {coord(y0)}H{coord(x0 + cw)}",
@@ -209,7 +210,7 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     na, nb = len(alphas), len(betas)
     cw, ch, left, top = _HEAT_CELL
     width, height = left + nb * cw + 12, top + na * ch + 46
-    values = [[v if type(v) is float and v == v else to_float(v) for v in grid[i][:nb]] for i in range(na)]
+    values = [[to_float(grid[i][j]) for j in range(nb)] for i in range(na)]
     alpha_text, beta_text = [format_number(a) for a in alphas], [format_number(b) for b in betas]
     fail = [
         [v is not None and not bool(infinite[i][j]) and v > 1.0 for j, v in enumerate(row)]
@@ -252,20 +253,19 @@ def heatmap(check: Mapping[str, Any], chart_id: str, label: str) -> dict:
     chart["cells"] = list(zip(prefixes, classes))
     # edge of the failing region: every side of a failing cell that borders a non-failing one
     segments = []
-    if n_fail:
-        for i in range(na):
-            for j in range(nb):
-                if not fail[i][j]:
-                    continue
-                cell_top, cell_bottom, cell_left, cell_right = sides[i * nb + j]
-                if i + 1 >= na or not fail[i + 1][j]:
-                    segments.append(cell_top)
-                if i == 0 or not fail[i - 1][j]:
-                    segments.append(cell_bottom)
-                if j == 0 or not fail[i][j - 1]:
-                    segments.append(cell_left)
-                if j + 1 >= nb or not fail[i][j + 1]:
-                    segments.append(cell_right)
+    for i in range(na):
+        for j in range(nb):
+            if not fail[i][j]:
+                continue
+            cell_top, cell_bottom, cell_left, cell_right = sides[i * nb + j]
+            if i + 1 >= na or not fail[i + 1][j]:
+                segments.append(cell_top)
+            if i == 0 or not fail[i - 1][j]:
+                segments.append(cell_bottom)
+            if j == 0 or not fail[i][j - 1]:
+                segments.append(cell_left)
+            if j + 1 >= nb or not fail[i][j + 1]:
+                segments.append(cell_right)
     # a frame around the grid: the lightest cells need no contrast with the page to be seen as part of the map
     chart["paths"].append(
         {

@@ -43,6 +43,8 @@ def escaped(value: Any) -> str:
 
 def to_float(x: Any) -> float | None:
     """A number from the document (None, numbers, or the strings "inf", "-inf", "nan")."""
+    if type(x) is float:  # the common case (a heat map's cells, a chart's points)
+        return None if x != x else x
     if x is None or isinstance(x, bool):
         return None
     if isinstance(x, str):
